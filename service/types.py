@@ -1,0 +1,59 @@
+"""The few types that flow from the sources through the pipeline to the API.
+
+Plain data only: no I/O, no asyncio, no engine state."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+
+@dataclass(frozen=True, slots=True)
+class SampleBlock:
+    """A block of samples from one source.
+
+    ``data`` is float32 ``[C, n]`` in the source's raw units (integer formats keep their
+    integer values; the pipeline multiplies by each channel's sensitivity). ``first_index``
+    counts samples since the stream began, so a jump marks a gap; ``t0_ns`` is the wall time
+    of the first sample in ns since the Unix epoch; ``fs`` is the sample rate in Hz.
+    """
+
+    source_id: str
+    channel_ids: tuple[str, ...]
+    data: np.ndarray
+    first_index: int
+    t0_ns: int
+    fs: float
+
+    @property
+    def n(self) -> int:
+        return int(self.data.shape[1])
+
+
+@dataclass(slots=True)
+class SourceCounters:
+    """Monotonic counters a source keeps; exported through the API and /metrics."""
+
+    samples: int = 0  # samples per channel accepted
+    blocks: int = 0
+    bytes: int = 0
+    gaps: int = 0  # jumps in the sample index (or reordering)
+    malformed: int = 0  # frames/lines/datagrams rejected
+    connections: int = 0
+    disconnects: int = 0
+    partial_frames: int = 0  # bytes left mid-frame when a producer went away
+    drops: int = 0  # blocks dropped because the pipeline fell behind
+    last_error: str = ""
+    extra: dict[str, int] = field(default_factory=dict)
+
+    def as_dict(self) -> dict[str, object]:
+        d: dict[str, object] = {
+            k: getattr(self, k)
+            for k in (
+                "samples", "blocks", "bytes", "gaps", "malformed", "connections",
+                "disconnects", "partial_frames", "drops", "last_error",
+            )
+        }
+        d.update(self.extra)
+        return d
