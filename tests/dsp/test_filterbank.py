@@ -1,0 +1,129 @@
+"""The streaming filter bank against scipy.signal and against itself cut differently."""
+
+import numpy as np
+import pytest
+import scipy.signal
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from dsp.averaging import Averager
+from dsp.filterbank import FilterBank, FrameGrid
+from dsp.scaling import power_spectrum, psd_from_power
+
+
+def _signal(c=3, n=20000, fs=4096.0, seed=1):
+    rng = np.random.default_rng(seed)
+    k = np.arange(n)
+    x = rng.normal(0.0, 0.3, (c, n))
+    for ch in range(c):
+        x[ch] += (ch + 1) * np.sin(2 * np.pi * (210.37 + 50 * ch) * k / fs)
+    return x.astype(np.float32)
+
+
+def test_grid_from_fmax_and_lines():
+    # The trade's set-up: fs = 2.56·Fmax, N = 2.56·lines (common practice).
+    g = FrameGrid.from_fmax(20000, 3200, overlap=0.75)
+    assert (g.fs, g.n, g.hop, g.lines, g.bins) == (51200.0, 8192, 2048, 3200, 4097)
+    assert g.df_hz == pytest.approx(6.25)
+    assert g.fmax_hz == pytest.approx(20000)
+    assert FrameGrid.from_fmax(1000, 400, overlap=0.0).hop == 1024
+    with pytest.raises(ValueError, match=r"lines=1001 gives a frame of 2.56×1001 = 2562.56"):
+        FrameGrid.from_fmax(5000, 1001)
+    with pytest.raises(ValueError, match=r"overlap=1.0 must be a fraction in \[0, 1\)"):
+        FrameGrid.from_fmax(5000, 1600, overlap=1.0)
+    with pytest.raises(ValueError, match=r"fs=-1.0 must be a positive number of Hz"):
+        FrameGrid(fs=-1.0, n=1024, hop=256)
+
+
+@pytest.mark.parametrize("window,scipy_window", [("hann", "hann"), ("flattop", "flattop"),
+                                                 ("blackman-harris", "blackmanharris")])
+def test_psd_equals_scipy_welch(window, scipy_window):
+    # Reference: scipy.signal.welch, same window, nperseg, noverlap, detrend=False,
+    # mean averaging, one-sided density scaling. Required agreement: 1e-5 relative.
+    fs, n = 4096.0, 1024
+    x = _signal(fs=fs)
+    grid = FrameGrid.from_n(n, fs, overlap=0.75)
+    fb = FilterBank(grid, 3, window)
+    avg = Averager("linear", 10_000)
+    batch = fb.push(x)
+    avg.update(power_spectrum(batch.spectra, fb.info.s1, n))
+    ours = psd_from_power(avg.value, fb.info.enbw_hz(fs))
+    f, ref = scipy.signal.welch(x.astype(np.float64), fs, window=scipy_window, nperseg=n,
+                                noverlap=n - grid.hop, detrend=False, average="mean")
+    assert avg.count == (x.shape[1] - n) // grid.hop + 1
+    np.testing.assert_allclose(grid.frequencies(), f)
+    np.testing.assert_allclose(ours, ref, rtol=1e-5, atol=1e-5 * ref.max())
+    noise_bins = ref < 1e-3 * ref.max()
+    np.testing.assert_allclose(ours[noise_bins], ref[noise_bins], rtol=1e-5)
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.lists(st.integers(min_value=0, max_value=3000), min_size=1, max_size=12))
+def test_streaming_equals_batch(cuts):
+    # Streaming equals batch (STYLE.md): any split points give identical frames.
+    x = _signal(c=2, n=9000)
+    grid = FrameGrid.from_n(512, 4096.0, overlap=0.6)
+    one = FilterBank(grid, 2, "hann", tone_hz=np.array([123.4, 987.65]))
+    ref = one.push(x)
+    many = FilterBank(grid, 2, "hann", tone_hz=np.array([123.4, 987.65]))
+    edges = np.unique(np.clip(np.cumsum(cuts), 0, x.shape[1]))
+    parts = [many.push(p) for p in np.split(x, edges, axis=1)]
+    np.testing.assert_array_equal(np.concatenate([p.start for p in parts]), ref.start)
+    np.testing.assert_array_equal(np.concatenate([p.spectra for p in parts], axis=1), ref.spectra)
+    np.testing.assert_allclose(np.concatenate([p.tones for p in parts], axis=1), ref.tones,
+                               rtol=0, atol=1e-4 * np.abs(ref.tones).max())
+    assert one.pending == many.pending
+
+
+def test_frames_never_straddle_a_gap():
+    fs, n = 1000.0, 100
+    grid = FrameGrid.from_n(n, fs, overlap=0.5)
+    fb = FilterBank(grid, 1, "rectangular")
+    first = fb.push(np.ones((1, 180), np.float32), first_index=0)
+    assert list(first.start) == [0, 50]
+    # 70 samples held; the next block starts at 1000, not 180: a gap.
+    after = fb.push(np.full((1, 260), 2.0, np.float32), first_index=1000)
+    assert list(after.start) == [1000, 1050, 1100, 1150]
+    # Every frame after the gap holds only the new samples (DC line = 2·Σw).
+    np.testing.assert_allclose(after.spectra[0, :, 0].real, 2.0 * n)
+    assert fb.resets == 1 and fb.next_index == 1260
+
+
+def test_tracked_tone_is_single_bin_dft_at_any_frequency():
+    # X(f) = Σ w[k] x[k] e^(−2πifk/fs), evaluated here directly in float64.
+    fs, n = 2048.0, 2048
+    grid = FrameGrid.from_n(n, fs, overlap=0.0)
+    f_tone = np.array([[101.37, 640.0], [333.3, 1000.01]])
+    fb = FilterBank(grid, 2, "hann", tone_hz=f_tone)
+    x = _signal(c=2, n=n, fs=fs, seed=5)
+    batch = fb.push(x)
+    k = np.arange(n)
+    for c in range(2):
+        for t in range(2):
+            ref = np.sum(fb.w * x[c].astype(np.float64) * np.exp(-2j * np.pi * f_tone[c, t] * k / fs))
+            assert batch.tones[c, 0, t] == pytest.approx(ref, rel=2e-5, abs=1e-3)
+    # At a line centre the tracked tone equals the rfft line.
+    fb.set_tones(np.array([640.0]))
+    b2 = FilterBank(grid, 2, "hann", tone_hz=np.array([640.0])).push(x)
+    np.testing.assert_allclose(b2.tones[:, 0, 0], b2.spectra[:, 0, 640], rtol=1e-5)
+
+
+def test_sine_on_line_reads_its_peak():
+    # Heinzel 2002 §9: peak amplitude = 2|X|/S1 for a sine on a line centre.
+    grid = FrameGrid.from_fmax(1000, 400, overlap=0.5)
+    fb = FilterBank(grid, 1, "flattop")
+    k = np.arange(4 * grid.n)
+    x = 3.0 * np.sin(2 * np.pi * 100 * grid.df_hz * k / grid.fs)
+    b = fb.push(x.astype(np.float32)[None])
+    assert 2 * np.abs(b.spectra[0, :, 100]) / fb.info.s1 == pytest.approx(3.0, rel=1e-5)
+
+
+def test_bad_blocks_are_refused():
+    fb = FilterBank(FrameGrid.from_n(64, 100.0), 2)
+    with pytest.raises(ValueError, match=r"block has shape \(3, 10\); expected \(2, n\)"):
+        fb.push(np.zeros((3, 10), np.float32))
+    with pytest.raises(ValueError, match=r"window='hamm' is not one of"):
+        FilterBank(FrameGrid.from_n(64, 100.0), 2, "hamm")
+    with pytest.raises(ValueError, match=r"tone frequencies must lie in \[0, fs/2 = 50\] Hz"):
+        fb.set_tones(np.array([60.0]))
+    assert fb.pending == 0
