@@ -86,7 +86,7 @@ class FrameGrid:
     @property
     def lines(self) -> int:
         """Lines shown to users: floor(N/2.56)."""
-        return int(self.n // FMAX_RATIO)
+        return int(np.floor(self.n / FMAX_RATIO + 1e-9))
 
     @property
     def fmax_hz(self) -> float:
