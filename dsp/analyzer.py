@@ -1,0 +1,310 @@
+"""One analysis of a multi-channel stream: filter bank → averaging → units → bands, tones, peaks.
+
+Knows nothing about sockets, files, asyncio or config files; the service drives it with arrays.
+
+The averaged quantity is the *acceleration power spectrum* (RMS² per line in the input
+unit², Heinzel 2002 §9). Every other view — velocity or displacement, RMS/peak/pk-pk,
+PSD, band RMS — is a per-line factor on that average, so changing the displayed unit
+never needs new frames and all views agree with each other.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+
+from .averaging import Averager
+from .bands import Band, band_rms, band_weights
+from .filterbank import FilterBank, FrameGrid
+from .scaling import (
+    DEFAULT_UNIT,
+    amplitude_from_power,
+    power_spectrum,
+    psd_from_power,
+    quantity_of,
+    unit_power_weights,
+)
+from .tones import Peaks, find_peaks, tone_power
+from .types import (
+    AMPLITUDES,
+    INPUT_UNITS,
+    OUTPUT_UNITS,
+    QUANTITIES,
+    Amplitude,
+    AveragingMode,
+    InputUnit,
+    LinearEnd,
+    OutputUnit,
+    check_choice,
+)
+from .windows import DEFAULT_KAISER_BETA, check_window
+
+__all__ = ["AnalysisSpec", "Analyzer", "ToneDef", "resolve_unit"]
+
+
+def resolve_unit(unit: str) -> OutputUnit:
+    """An output unit from a unit or a quantity name (velocity → mm/s, …); checked."""
+    if unit in QUANTITIES:
+        return DEFAULT_UNIT[unit]  # type: ignore[return-value]
+    return check_choice("unit", unit, OUTPUT_UNITS + QUANTITIES)  # type: ignore[return-value]
+
+
+@dataclass(frozen=True)
+class ToneDef:
+    """A tracked tone: at ``hz`` (fixed frequency) or at ``order`` × running speed."""
+
+    name: str
+    hz: float | None = None
+    order: float | None = None
+
+    def __post_init__(self) -> None:
+        if (self.hz is None) == (self.order is None):
+            raise ValueError(f"tone {self.name!r}: give exactly one of hz or order")
+        v = self.hz if self.hz is not None else self.order
+        if not (v is not None and np.isfinite(v) and v > 0):
+            raise ValueError(f"tone {self.name!r}: frequency/order must be a positive number")
+
+    def frequency_hz(self, speed_hz: float | None) -> float:
+        if self.hz is not None:
+            return float(self.hz)
+        if speed_hz is None or not speed_hz > 0:
+            raise ValueError(f"tone {self.name!r} is in orders but the channel has no running speed")
+        return float(self.order) * speed_hz  # type: ignore[arg-type]
+
+
+@dataclass(frozen=True)
+class AnalysisSpec:
+    """Everything that defines one analysis (one "profile") of a channel group.
+
+    ``grid`` fixes fs (Hz), frame length N and hop; ``averages`` is frames (linear) or
+    equivalent frames (exponential); ``unit``/``amplitude`` are the default views;
+    ``lowcut_hz`` is the integration cut; ``peaks`` the number of peaks reported.
+    """
+
+    grid: FrameGrid
+    window: str = "hann"
+    beta: float = DEFAULT_KAISER_BETA
+    averaging: AveragingMode = "exponential"
+    averages: float = 8
+    linear_end: LinearEnd = "restart"
+    input_unit: InputUnit = "g"
+    unit: str = "velocity"
+    amplitude: Amplitude = "rms"
+    lowcut_hz: float = 2.0
+    bands: tuple[Band, ...] = ()
+    tones: tuple[ToneDef, ...] = ()
+    peaks: int = 8
+
+    def __post_init__(self) -> None:
+        check_window(self.window)
+        check_choice("input_unit", self.input_unit, INPUT_UNITS)
+        check_choice("amplitude", self.amplitude, AMPLITUDES)
+        resolve_unit(self.unit)
+        if not (0 <= self.peaks <= 256):
+            raise ValueError(f"peaks={self.peaks!r} must be in [0, 256]")
+        names = [b.name for b in self.bands]
+        if len(set(names)) != len(names):
+            raise ValueError(f"band names repeat: {sorted(n for n in names if names.count(n) > 1)}")
+
+    def with_(self, **changes: object) -> AnalysisSpec:
+        return replace(self, **changes)  # type: ignore[arg-type]
+
+
+@dataclass
+class _Views:
+    unit: OutputUnit
+    weights: np.ndarray  # [Q] power factor from input unit² to unit²
+    band_matrix: np.ndarray  # [C, B, Q] line weights × unit factor
+    tone_weights: np.ndarray  # [C, T]
+
+
+@dataclass
+class Analyzer:
+    """Streaming analysis of C channels that share one sample clock.
+
+    ``push`` takes float32 ``[C, n]`` blocks in ``spec.input_unit``; the read-outs
+    (:meth:`spectrum`, :meth:`bands`, :meth:`tones`, :meth:`peaks`, :meth:`psd`) give the
+    current average in any unit and amplitude type. ``speed_hz`` (per channel, Hz) resolves
+    order bands and order tones; :meth:`set_speed` changes it.
+    """
+
+    spec: AnalysisSpec
+    channels: int
+    speed_hz: np.ndarray | None = None
+    _views: dict[str, _Views] = field(default_factory=dict, init=False, repr=False)
+
+    def __post_init__(self) -> None:
+        spec = self.spec
+        self.grid = spec.grid
+        self.bank = FilterBank(self.grid, self.channels, spec.window, beta=spec.beta)
+        self.info = self.bank.info
+        self.f_hz = self.grid.frequencies()
+        # Lines inside the window's main lobe around DC carry leaked DC; integrating them
+        # would blow up, so the cut is never below the main lobe's half-width.
+        self.lowcut_hz = max(spec.lowcut_hz, self.info.mainlobe_halfwidth_bins * self.grid.df_hz)
+        self.avg = Averager(spec.averaging, spec.averages, linear_end=spec.linear_end)
+        self.tone_avg = Averager(spec.averaging, spec.averages, linear_end=spec.linear_end)
+        self.last_start: int | None = None  # stream index of the newest frame's first sample
+        self.set_speed(self.speed_hz)
+
+    # -- set-up ------------------------------------------------------------------------
+    def set_speed(self, speed_hz: np.ndarray | float | None) -> None:
+        """Running speed per channel in Hz (None/NaN where unknown); re-resolves orders."""
+        if speed_hz is None:
+            s = np.full(self.channels, np.nan)
+        else:
+            s = np.broadcast_to(np.asarray(speed_hz, dtype=np.float64), (self.channels,)).copy()
+        self.speed_hz = s
+        self._edges = np.zeros((self.channels, len(self.spec.bands), 2))
+        for c in range(self.channels):
+            sc = None if not np.isfinite(s[c]) else float(s[c])
+            for b, band in enumerate(self.spec.bands):
+                self._edges[c, b] = (np.nan, np.nan) if (band.basis == "order" and sc is None) \
+                    else band.edges_hz(sc)
+        tone_hz = np.zeros((self.channels, len(self.spec.tones)))
+        for c in range(self.channels):
+            sc = None if not np.isfinite(s[c]) else float(s[c])
+            for t, tone in enumerate(self.spec.tones):
+                f = np.nan if (tone.order is not None and sc is None) else tone.frequency_hz(sc)
+                tone_hz[c, t] = f if (np.isfinite(f) and f <= self.grid.fs / 2) else np.nan
+        self._tone_valid = np.isfinite(tone_hz)
+        new_tones = np.where(self._tone_valid, tone_hz, 0.0)
+        if not np.array_equal(new_tones, self.bank.tone_hz):
+            self.bank.set_tones(new_tones)
+            self.tone_avg.reset()
+        self._views.clear()
+
+    @property
+    def tone_hz(self) -> np.ndarray:
+        """Tracked tone frequencies in Hz, [C, T]; NaN where unresolved (no speed)."""
+        return np.where(self._tone_valid, self.bank.tone_hz, np.nan)
+
+    @property
+    def band_edges_hz(self) -> np.ndarray:
+        """Band edges in Hz, [C, B, 2]; NaN for order bands without a running speed."""
+        return self._edges
+
+    def _view(self, unit: str | None) -> _Views:
+        u = resolve_unit(unit or self.spec.unit)
+        v = self._views.get(u)
+        if v is None:
+            wts = unit_power_weights(self.f_hz, self.spec.input_unit, u, lowcut_hz=self.lowcut_hz)
+            edges = self._edges.reshape(-1, 2)
+            valid = np.isfinite(edges[:, 0])
+            bm = np.zeros((edges.shape[0], self.grid.bins))
+            if valid.any():
+                bm[valid] = band_weights(edges[valid], 0.0, self.grid.df_hz, self.grid.bins)
+            bm = bm.reshape(self.channels, len(self.spec.bands), self.grid.bins) * wts
+            tw = unit_power_weights(np.nan_to_num(self.tone_hz, nan=0.0), self.spec.input_unit, u,
+                                    lowcut_hz=self.lowcut_hz)
+            v = _Views(u, wts, bm, tw)
+            self._views[u] = v
+        return v
+
+    # -- stream ------------------------------------------------------------------------
+    def reset(self, next_index: int | None = None) -> None:
+        """A gap: drop the partial frame and start new averages."""
+        self.bank.reset(next_index)
+        self.avg.reset()
+        self.tone_avg.reset()
+        self.last_start = None
+
+    def push(self, block: np.ndarray, first_index: int | None = None) -> int:
+        """Feed samples ``[C, n]``; returns the number of new frames folded into the averages.
+
+        A ``first_index`` other than the next expected one is a gap: see :meth:`reset`.
+        """
+        if first_index is not None and first_index != self.bank.next_index:
+            self.reset(first_index)
+        batch = self.bank.push(block)
+        if batch.count:
+            self.avg.update(power_spectrum(batch.spectra, self.info.s1, self.grid.n))
+            if batch.tones.shape[2]:
+                self.tone_avg.update(tone_power(batch.tones, self.info.s1))
+            self.last_start = int(batch.start[-1])
+        return batch.count
+
+    # -- read-outs ---------------------------------------------------------------------
+    @property
+    def count(self) -> int:
+        """Frames in the current average."""
+        return self.avg.count
+
+    @property
+    def ready(self) -> bool:
+        return self.avg.value is not None
+
+    @property
+    def last_end_index(self) -> int | None:
+        """Stream index just after the newest frame's last sample (its time is this/fs)."""
+        return None if self.last_start is None else self.last_start + self.grid.n
+
+    def power(self, unit: str | None = None) -> np.ndarray:
+        """Averaged power spectrum in unit² (RMS², float64 [C, Q]); zeros before any frame."""
+        v = self._view(unit)
+        p = self.avg.value
+        if p is None:
+            return np.zeros((self.channels, self.grid.bins))
+        return p * v.weights
+
+    def spectrum(self, unit: str | None = None, amplitude: str | None = None) -> np.ndarray:
+        """Averaged amplitude spectrum, float32 [C, Q], in ``unit`` as ``amplitude`` type."""
+        a = amplitude_from_power(self.power(unit), amplitude or self.spec.amplitude)  # type: ignore[arg-type]
+        return a.astype(np.float32)
+
+    def psd(self, unit: str | None = None) -> np.ndarray:
+        """Averaged PSD in unit²/Hz (float64 [C, Q]): power / ENBW_Hz (Heinzel 2002 §9)."""
+        return psd_from_power(self.power(unit), self.info.enbw_hz(self.grid.fs))
+
+    def bands(self, unit: str | None = None) -> np.ndarray:
+        """Band RMS values in ``unit`` (float64 [C, B]): Σ power·weights / ENBW_bins, square-rooted.
+
+        NaN for an order band on a channel without a running speed.
+        """
+        v = self._view(unit)
+        p = self.avg.value
+        if p is None or not self.spec.bands:
+            return np.full((self.channels, len(self.spec.bands)), np.nan)
+        out = np.sqrt(np.einsum("cq,cbq->cb", p, v.band_matrix) / self.info.enbw_bins)
+        return np.where(np.isnan(self._edges[..., 0]), np.nan, out)
+
+    def tones(self, unit: str | None = None, amplitude: str | None = None) -> np.ndarray:
+        """Tracked-tone amplitudes (float64 [C, T]) at their exact frequencies; NaN if unresolved."""
+        v = self._view(unit)
+        p = self.tone_avg.value
+        if p is None or not self.spec.tones:
+            return np.full((self.channels, len(self.spec.tones)), np.nan)
+        a = amplitude_from_power(p * v.tone_weights, amplitude or self.spec.amplitude)  # type: ignore[arg-type]
+        return np.where(self._tone_valid, a, np.nan)
+
+    def peaks(
+        self, unit: str | None = None, amplitude: str | None = None, count: int | None = None
+    ) -> Peaks:
+        """The largest peaks, interpolated (see ``dsp.tones.find_peaks``), in ``unit``.
+
+        ``amplitude_rms`` of the result is converted to ``amplitude`` type in place of RMS.
+        """
+        k = self.spec.peaks if count is None else count
+        u = resolve_unit(unit or self.spec.unit)
+        # Interpolate on the acceleration spectrum, whose peak shape is exactly the window's,
+        # then weight each peak at its interpolated frequency and re-rank in the asked unit.
+        acc = find_peaks(
+            self.power("m/s2"), self.grid.df_hz, self.spec.window, self.grid.n,  # type: ignore[arg-type]
+            count=max(4 * k, k + 8), min_hz=self.lowcut_hz, beta=self.spec.beta,
+        )
+        f = acc.frequency_hz
+        wts = unit_power_weights(np.nan_to_num(f, nan=0.0), "m/s2", u, lowcut_hz=self.lowcut_hz)
+        power = np.where(np.isfinite(f), acc.amplitude_rms**2 * wts, np.nan)
+        order = np.argsort(np.where(np.isnan(power), -np.inf, -power), axis=1, kind="stable")[:, :k]
+        take = np.take_along_axis
+        amp = amplitude_from_power(take(power, order, 1), amplitude or self.spec.amplitude)  # type: ignore[arg-type]
+        return Peaks(frequency_hz=take(f, order, 1), amplitude_rms=amp, line=take(acc.line, order, 1))
+
+    @property
+    def unit(self) -> OutputUnit:
+        return resolve_unit(self.spec.unit)
+
+    def quantity(self, unit: str | None = None) -> str:
+        return quantity_of(resolve_unit(unit or self.spec.unit))
+
