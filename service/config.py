@@ -1,0 +1,874 @@
+"""The quaver configuration: one TOML file, pydantic models with help text, and cross-checks.
+
+Knows nothing about sockets, asyncio, storage or the engine's state; from dsp it takes only
+the closed option sets and the band/tone definition types.
+
+Every problem is reported as ``key.path[index].field: reason`` (all of them at once, in
+:class:`ConfigError`). Relative paths in the file (``service.data_dir``, file sources'
+``path``) are taken from the folder holding the config file. ``QUAVER_LISTEN`` and
+``QUAVER_DATA_DIR`` override ``service.listen`` and ``service.data_dir``.
+
+A channel named by a source but without a ``[[channels]]`` entry gets the defaults
+(``input_unit = "g"``, ``sensitivity = 1.0``, no running speed). A ``[[channels]]`` entry
+that no source produces is an error, so a mistyped id cannot silently pick up defaults.
+A band or tone given for one channel replaces a ``"*"`` band or tone of the same name on
+that channel.
+"""
+
+from __future__ import annotations
+
+import difflib
+import ipaddress
+import os
+import tomllib
+from collections.abc import Iterable, Mapping
+from pathlib import Path
+from typing import Annotated, Any, Literal, get_args
+
+from pydantic import AfterValidator, BaseModel, ConfigDict, Field, ValidationError, create_model
+
+from dsp.analyzer import ToneDef
+from dsp.bands import OCTAVE_FRACTIONS, Band, octave_bands
+from dsp.types import (
+    Amplitude,
+    AveragingMode,
+    InputUnit,
+    LinearEnd,
+    OutputUnit,
+    Quantity,
+    WindowName,
+)
+from dsp.windows import DEFAULT_KAISER_BETA
+
+__all__ = [
+    "AlarmConfig",
+    "AnalysisOverride",
+    "AnalysisSettings",
+    "BandConfig",
+    "ChannelConfig",
+    "Config",
+    "ConfigError",
+    "FileSourceConfig",
+    "ServiceSettings",
+    "SimulatedSourceConfig",
+    "SourceConfig",
+    "TcpSourceConfig",
+    "TokenConfig",
+    "ToneConfig",
+    "UdpSourceConfig",
+    "bands_for",
+    "channel_ids",
+    "channel_settings",
+    "check_listen_allowed",
+    "effective_analysis",
+    "load_config",
+    "parse_config",
+    "parse_listen",
+    "source_of",
+    "tones_for",
+]
+
+ENV_OVERRIDES: dict[str, tuple[str, str]] = {
+    "QUAVER_LISTEN": ("service", "listen"),
+    "QUAVER_DATA_DIR": ("service", "data_dir"),
+}
+ID_PATTERN = r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$"
+SHA256_PATTERN = r"^[0-9a-fA-F]{64}$"
+FRAME_RATIO = 2.56  # fs = 2.56·Fmax and N = 2.56·lines (common practice)
+
+Id = Annotated[str, Field(pattern=ID_PATTERN)]
+Name = Annotated[str, Field(min_length=1, max_length=64)]
+RawFormat = Literal["s16le", "s32le", "f32le", "f64le"]
+SourceKind = Literal["tcp", "udp", "file", "simulated"]
+Role = Literal["viewer", "operator", "admin"]
+QUANTITY_OF_UNIT = {
+    "g": "acceleration",
+    "m/s2": "acceleration",
+    "mm/s": "velocity",
+    "in/s": "velocity",
+    "um": "displacement",
+    "mil": "displacement",
+}
+
+
+class ConfigError(ValueError):
+    """A configuration that cannot be used; ``problems`` holds one line per problem."""
+
+    def __init__(self, problems: list[str], source: str = "config") -> None:
+        self.problems = list(problems)
+        self.source = source
+        head = f"{source}: {len(self.problems)} problem{'s' if len(self.problems) != 1 else ''}"
+        super().__init__(head + "".join(f"\n  {p}" for p in self.problems))
+
+
+class _Model(BaseModel):
+    model_config = ConfigDict(extra="forbid", validate_default=True, allow_inf_nan=False)
+
+
+def _d(text: str) -> Any:
+    return Field(description=text)
+
+
+# --- [service] --------------------------------------------------------------------------
+
+
+def parse_listen(text: str) -> tuple[str, int]:
+    """Split ``host:port`` (``[v6addr]:port`` for IPv6) into (host, port 0…65535)."""
+    if not isinstance(text, str) or ":" not in text:
+        raise ValueError(f"{text!r} is not host:port (e.g. '127.0.0.1:8750')")
+    host, _, port_s = text.rpartition(":")
+    if host.startswith("[") and host.endswith("]"):
+        host = host[1:-1]
+    elif ":" in host:
+        raise ValueError(f"{text!r}: write an IPv6 address in brackets, e.g. '[::1]:8750'")
+    if not host or not port_s.isdigit() or not 0 <= int(port_s) <= 65535:
+        raise ValueError(f"{text!r} is not host:port with a port in 0-65535")
+    return host, int(port_s)
+
+
+def _valid_listen(text: str) -> str:
+    parse_listen(text)
+    return text
+
+
+Listen = Annotated[str, AfterValidator(_valid_listen)]
+
+
+class ServiceSettings(_Model):
+    listen: Listen = Field(
+        "127.0.0.1:8750",
+        description="HTTP address host:port for REST, WebSocket, /metrics and the dashboard. "
+        "A non-loopback host is refused unless [[tokens]] are configured. Env: QUAVER_LISTEN.",
+    )
+    data_dir: str = Field(
+        "quaver-data",
+        description="Folder for trends, events and evidence (SQLite); a relative path is "
+        "taken from the config file's folder. Env: QUAVER_DATA_DIR.",
+    )
+
+
+# --- [analysis] -------------------------------------------------------------------------
+
+
+class AnalysisSettings(_Model):
+    fmax_hz: float = Field(
+        5000.0,
+        gt=0,
+        description="Highest frequency shown, Hz; needs sample_rate_hz >= 2.56·fmax_hz.",
+    )
+    lines: int = Field(
+        1600,
+        ge=25,
+        le=102400,
+        description="Spectral lines; the frame is "
+        "2.56·lines samples, so lines must be a multiple of 25 (400, 800, "
+        "1600, 3200, 6400, ...).",
+    )
+    window: WindowName = Field(
+        "hann",
+        description="DFT window: rectangular | hann | hamming "
+        "| blackman-harris | flattop | kaiser.",
+    )
+    kaiser_beta: float = Field(
+        DEFAULT_KAISER_BETA, ge=0, le=50, description="Kaiser window shape β (dimensionless)."
+    )
+    overlap: float = Field(0.75, ge=0, lt=1, description="Frame overlap, fraction in [0, 1).")
+    averaging: AveragingMode = Field(
+        "exponential", description="linear (N frames) | exponential | peak-hold."
+    )
+    averages: int = Field(
+        8,
+        ge=1,
+        le=100000,
+        description="Linear: frames in the average; "
+        "exponential: equivalent number of frames (time constant).",
+    )
+    linear_end: LinearEnd = Field(
+        "restart", description="When a linear average is complete: restart | hold."
+    )
+    unit: Quantity = Field(
+        "velocity", description="Quantity shown: acceleration | velocity | displacement."
+    )
+    output_unit: OutputUnit | None = Field(
+        None,
+        description="Display unit matching `unit`: "
+        "g | m/s2 | mm/s | in/s | um | mil; default g, "
+        "mm/s or um.",
+    )
+    amplitude: Amplitude = Field("rms", description="Amplitude scale: peak | rms | peak-to-peak.")
+    lowcut_hz: float = Field(
+        2.0, ge=0, description="Low-frequency cut for integration to velocity/displacement, Hz."
+    )
+    peaks: int = Field(8, ge=0, le=256, description="Number of spectral peaks reported.")
+
+
+def _override_model() -> type[BaseModel]:
+    fields: dict[str, Any] = {}
+    for name, f in AnalysisSettings.model_fields.items():
+        ann = Annotated[(f.annotation, *f.metadata)] if f.metadata else f.annotation
+        help_text = f"{f.description} Overrides [analysis] for this channel."
+        fields[name] = (ann | None, Field(None, description=help_text))
+    return create_model("AnalysisOverride", __base__=_Model, **fields)
+
+
+AnalysisOverride = _override_model()
+
+
+# --- [[sources]] ------------------------------------------------------------------------
+
+
+class _SourceBase(_Model):
+    id: Id = _d("Source id: letters, digits, '.', '_', '-' (url-safe), at most 64.")
+    channels: list[Id] = Field(min_length=1, description="Channel ids in interleave order.")
+    sample_rate_hz: float | None = Field(
+        None, gt=0, description="Sample rate, Hz (samples per second per channel)."
+    )
+    queue_blocks: int = Field(
+        256,
+        ge=1,
+        le=100000,
+        description="Blocks held for the pipeline; "
+        "when full the oldest is dropped and counted in `drops`.",
+    )
+
+
+class TcpSourceConfig(_SourceBase):
+    kind: Literal["tcp"] = _d("Source kind.")
+    listen: Listen = _d("host:port quaver listens on for one producer at a time.")
+    format: Literal["s16le", "s32le", "f32le", "f64le", "framed"] = _d(
+        "Sample format: raw interleaved little-endian s16le | s32le | f32le | f64le, or "
+        "framed (quaver's header per frame, see service/wire.py)."
+    )
+
+
+class UdpSourceConfig(_SourceBase):
+    kind: Literal["udp"] = _d("Source kind.")
+    listen: Listen = _d("host:port quaver receives framed datagrams on.")
+    format: Literal["framed"] = Field("framed", description="Datagrams are framed: one frame each.")
+
+
+class FileSourceConfig(_SourceBase):
+    kind: Literal["file"] = _d("Source kind.")
+    path: str = _d("File to read; relative paths are taken from the config file's folder.")
+    format: Literal["s16le", "s32le", "f32le", "f64le", "csv", "wav"] = _d(
+        "Raw s16le | s32le | f32le | f64le, csv (one row per sample, one column per "
+        "channel), or wav (integer PCM scaled to ±1 full scale)."
+    )
+    follow: bool = Field(
+        True,
+        description="true: follow the growing file (tail); "
+        "false: replay a finished recording, then end.",
+    )
+    replay_speed: float = Field(
+        1.0,
+        ge=0,
+        description="Replay pace as a multiple of real "
+        "time when follow = false; 0 = as fast as the pipeline takes it.",
+    )
+    poll_ms: float = Field(
+        50.0,
+        gt=0,
+        le=10000,
+        description="How often a followed file is checked for growth, truncation and rotation, ms.",
+    )
+    start_at: Literal["end", "beginning"] = Field(
+        "end",
+        description="Where following starts in a file that already exists: end | "
+        "beginning (a file that appears later is always read from its beginning).",
+    )
+
+
+class SimulatedSourceConfig(_SourceBase):
+    kind: Literal["simulated"] = _d("Source kind.")
+    scenario: Name = Field("demo-plant", description="Name of the simulated plant scenario.")
+    speed: float = Field(
+        1.0,
+        gt=0,
+        le=1000,
+        description="Time-lapse factor of the scripted fault growth (1 = real time).",
+    )
+    channels: list[Id] = Field(
+        default_factory=list,
+        description="Channel ids to keep; empty = every channel of the scenario.",
+    )
+
+
+SOURCE_KINDS: tuple[str, ...] = get_args(SourceKind)
+SourceConfig = Annotated[
+    TcpSourceConfig | UdpSourceConfig | FileSourceConfig | SimulatedSourceConfig,
+    Field(discriminator="kind"),
+]
+
+
+# --- [[channels]], [[bands]], [[tones]], [[alarms]], [[tokens]] --------------------------
+
+
+class ChannelConfig(_Model):
+    id: Id = _d("Channel id as named in its source's `channels` list (url-safe).")
+    input_unit: InputUnit = Field(
+        "g", description="Unit of the samples after sensitivity: g | m/s2."
+    )
+    sensitivity: float = Field(
+        1.0,
+        description="Input units per raw sample unit (e.g. "
+        "0.000122 g per count; for WAV: per full scale).",
+    )
+    speed_rpm: float | None = Field(
+        None, gt=0, description="Running speed, r/min; enables order bands and tones."
+    )
+    machine: str = Field(
+        "", max_length=128, description="Machine this sensor is on (grouping label)."
+    )
+    description: str = Field("", max_length=1024, description="Free text, e.g. location.")
+    clip_level: float | None = Field(
+        None,
+        gt=0,
+        description="Raw sample magnitude at which the sensor chain clips "
+        "(raw units); |x| >= clip_level is a sensor fault.",
+    )
+    analysis: AnalysisOverride = Field(  # type: ignore[valid-type]
+        default_factory=AnalysisOverride, description="Per-channel analysis overrides."
+    )
+
+
+class BandConfig(_Model):
+    channel: str = Field("*", description="Channel id, or '*' for every channel.")
+    name: Name = _d("Band name (unique per channel); for an octave set, the name prefix.")
+    lo_hz: float | None = Field(None, ge=0, description="Lower edge, Hz.")
+    hi_hz: float | None = Field(None, gt=0, description="Upper edge, Hz.")
+    lo_order: float | None = Field(
+        None, ge=0, description="Lower edge, orders of running speed (1 = once per revolution)."
+    )
+    hi_order: float | None = Field(None, gt=0, description="Upper edge, orders.")
+    octave: int | None = Field(
+        None,
+        description="1/b-octave band set (IEC 61260-1), b in 1, 3, 6, 12, 24, over lo_hz…hi_hz.",
+    )
+
+
+class ToneConfig(_Model):
+    channel: str = Field("*", description="Channel id, or '*' for every channel.")
+    name: Name = _d("Tone name (unique per channel), e.g. '1X' or 'mesh'.")
+    hz: float | None = Field(None, gt=0, description="Fixed frequency, Hz.")
+    order: float | None = Field(None, gt=0, description="Order of running speed.")
+
+
+class AlarmConfig(_Model):
+    channel: str = Field("*", description="Channel id, or '*' for every channel.")
+    band: str | None = Field(None, description="Band name watched.")
+    tone: str | None = Field(None, description="Tone name watched.")
+    overall: bool = Field(False, description="Watch the overall RMS over lowcut_hz…fmax_hz.")
+    alert: float = _d("Alert (first) level, in the channel's display unit and amplitude.")
+    danger: float = _d("Danger (second) level, same unit; must exceed alert.")
+    hysteresis: float = Field(
+        0.05,
+        ge=0,
+        le=0.5,
+        description="Clear when the value falls below level·(1 − hysteresis); fraction 0…0.5.",
+    )
+    on_delay_s: float = Field(
+        0.0, ge=0, le=86400, description="Time above a level before the alarm goes active, s."
+    )
+    off_delay_s: float = Field(0.0, ge=0, le=86400, description="Time below before it clears, s.")
+    latch: bool = Field(False, description="Stay active until acknowledged.")
+
+
+class TokenConfig(_Model):
+    name: Name = _d("Who holds the token (for logs).")
+    role: Role = _d("viewer (read) | operator (also acknowledge alarms) | admin.")
+    sha256: str = Field(
+        pattern=SHA256_PATTERN,
+        description="Hex SHA-256 of the token (the token itself is never stored).",
+    )
+
+
+class Config(_Model):
+    service: ServiceSettings = Field(default_factory=ServiceSettings, description="[service]")
+    analysis: AnalysisSettings = Field(
+        default_factory=AnalysisSettings, description="Analysis defaults for every channel."
+    )
+    sources: list[SourceConfig] = Field(default_factory=list, description="[[sources]]")
+    channels: list[ChannelConfig] = Field(default_factory=list, description="[[channels]]")
+    bands: list[BandConfig] = Field(default_factory=list, description="[[bands]]")
+    tones: list[ToneConfig] = Field(default_factory=list, description="[[tones]]")
+    alarms: list[AlarmConfig] = Field(default_factory=list, description="[[alarms]]")
+    tokens: list[TokenConfig] = Field(default_factory=list, description="[[tokens]]")
+
+
+MODELS: tuple[type[BaseModel], ...] = (
+    Config,
+    ServiceSettings,
+    AnalysisSettings,
+    AnalysisOverride,
+    TcpSourceConfig,
+    UdpSourceConfig,
+    FileSourceConfig,
+    SimulatedSourceConfig,
+    ChannelConfig,
+    BandConfig,
+    ToneConfig,
+    AlarmConfig,
+    TokenConfig,
+)
+
+
+# --- lookups (on a validated config) ------------------------------------------------------
+
+
+def channel_ids(cfg: Config) -> list[str]:
+    """Every channel id the sources name, in source order then interleave order."""
+    return [c for s in cfg.sources for c in s.channels]
+
+
+def source_of(cfg: Config, channel_id: str) -> SourceConfig | None:
+    """The source whose ``channels`` list names ``channel_id``, or None."""
+    return next((s for s in cfg.sources if channel_id in s.channels), None)
+
+
+def channel_settings(cfg: Config, channel_id: str) -> ChannelConfig:
+    """The ``[[channels]]`` entry for ``channel_id``, or the defaults if it has none."""
+    entry = next((c for c in cfg.channels if c.id == channel_id), None)
+    return entry if entry is not None else ChannelConfig(id=channel_id)
+
+
+def effective_analysis(cfg: Config, channel_id: str) -> AnalysisSettings:
+    """``[analysis]`` with the channel's own ``analysis`` overrides applied."""
+    over = channel_settings(cfg, channel_id).analysis.model_dump(exclude_none=True)
+    return cfg.analysis.model_copy(update=over)
+
+
+def _expand_band(b: BandConfig) -> list[Band]:
+    if b.octave is not None:  # _Checker has made sure 0 < lo_hz < hi_hz
+        sets = octave_bands(b.octave, b.lo_hz or 0.0, b.hi_hz or 0.0)
+        return [ob.as_band(prefix=f"{b.name} ") for ob in sets]
+    if b.lo_order is not None and b.hi_order is not None:
+        return [Band(b.name, b.lo_order, b.hi_order, "order")]
+    return [Band(b.name, b.lo_hz or 0.0, b.hi_hz or 0.0, "hz")]
+
+
+def _is_order_band(b: BandConfig) -> bool:
+    return b.lo_order is not None or b.hi_order is not None
+
+
+def bands_for(cfg: Config, channel_id: str) -> list[Band]:
+    """The bands of one channel, in file order, as :class:`dsp.bands.Band` (Hz or orders).
+
+    ``"*"`` bands apply to every channel except where the channel has a band of the same
+    name of its own; ``"*"`` order bands skip channels without ``speed_rpm``; an octave set
+    becomes one band per IEC 61260-1 band, named ``"<name> <mid-band>"`` (e.g. "thirds 1 kHz").
+    """
+    has_speed = channel_settings(cfg, channel_id).speed_rpm is not None
+    own = [b for b in cfg.bands if b.channel == channel_id]
+    own_names = {band.name for b in own for band in _expand_band(b)}
+    out: list[Band] = []
+    for b in cfg.bands:
+        if b.channel == channel_id:
+            out += _expand_band(b)
+        elif b.channel == "*" and (has_speed or not _is_order_band(b)):
+            out += [band for band in _expand_band(b) if band.name not in own_names]
+    return out
+
+
+def tones_for(cfg: Config, channel_id: str) -> list[ToneDef]:
+    """The tracked tones of one channel (same ``"*"`` rules as :func:`bands_for`)."""
+    has_speed = channel_settings(cfg, channel_id).speed_rpm is not None
+    own_names = {t.name for t in cfg.tones if t.channel == channel_id}
+    return [
+        ToneDef(t.name, hz=t.hz, order=t.order)
+        for t in cfg.tones
+        if t.channel == channel_id
+        or (t.channel == "*" and t.name not in own_names and (has_speed or t.order is None))
+    ]
+
+
+def check_listen_allowed(cfg: Config) -> None:
+    """Raise ConfigError if ``service.listen`` is not loopback and no ``[[tokens]]`` exist."""
+    host, _ = parse_listen(cfg.service.listen)
+    if host == "localhost":
+        return
+    try:
+        loopback = ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        loopback = False  # a host name may resolve to anything
+    if not loopback and not cfg.tokens:
+        raise ConfigError(
+            [
+                f"service.listen: {cfg.service.listen!r} is not a loopback address; add "
+                "[[tokens]] before serving beyond this machine, or listen on 127.0.0.1"
+            ]
+        )
+
+
+# --- loading and error reporting ----------------------------------------------------------
+
+
+def load_config(path: str | os.PathLike[str], env: Mapping[str, str] | None = None) -> Config:
+    """Read, validate and cross-check one TOML config file; raise ConfigError listing every
+    problem (TOML syntax errors carry their line and column)."""
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as e:
+        raise ConfigError([f"cannot read: {e}"], source=str(p)) from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as e:
+        raise ConfigError([f"TOML syntax error: {e}"], source=str(p)) from None
+    return parse_config(data, base_dir=p.resolve().parent, source=str(p), env=env)
+
+
+def parse_config(
+    data: Mapping[str, Any],
+    *,
+    base_dir: Path | None = None,
+    source: str = "config",
+    env: Mapping[str, str] | None = None,
+) -> Config:
+    """Validate a config already parsed into dicts (e.g. built by ``quaver demo``).
+
+    ``env`` (default ``os.environ``) supplies ``QUAVER_*`` overrides; ``base_dir`` anchors
+    relative paths. Raises ConfigError listing every problem.
+    """
+    env = os.environ if env is None else env
+    raw: dict[str, Any] = {k: v for k, v in data.items()}
+    from_env: dict[tuple[str, str], str] = {}
+    for var, (table, key) in ENV_OVERRIDES.items():
+        if env.get(var):
+            section = raw.get(table)
+            raw[table] = {**(section if isinstance(section, dict) else {}), key: env[var]}
+            from_env[(table, key)] = var
+    try:
+        cfg = Config.model_validate(raw)
+    except ValidationError as e:
+        raise ConfigError(_pydantic_problems(e, from_env), source=source) from None
+    problems = _cross_check(cfg)
+    if problems:
+        raise ConfigError(problems, source=source)
+    if base_dir is not None:
+        if ("service", "data_dir") not in from_env:
+            cfg.service.data_dir = str(base_dir / cfg.service.data_dir)
+        for s in cfg.sources:
+            if isinstance(s, FileSourceConfig):
+                s.path = str(base_dir / s.path)
+    return cfg
+
+
+def _path(loc: Iterable[int | str]) -> str:
+    out = ""
+    for part in loc:
+        out += f"[{part}]" if isinstance(part, int) else (f".{part}" if out else str(part))
+    return out
+
+
+_KNOWN_KEYS = sorted({name for m in MODELS for name in m.model_fields})
+
+
+def _pydantic_problems(e: ValidationError, from_env: Mapping[tuple[str, str], str]) -> list[str]:
+    problems = []
+    for err in e.errors():
+        loc = list(err["loc"])
+        # a discriminated union puts the tag in the path: sources.0.tcp.format
+        if len(loc) >= 3 and loc[0] == "sources" and loc[2] in SOURCE_KINDS:
+            del loc[2]
+        kind, ctx, value = err["type"], err.get("ctx", {}), err.get("input")
+        if kind == "literal_error":
+            msg = f"{value!r} is not one of {ctx['expected'].replace(' or ', ', ')}"
+        elif kind == "union_tag_invalid":
+            loc.append("kind")
+            msg = f"{ctx['tag']!r} is not one of {ctx['expected_tags']}"
+        elif kind == "union_tag_not_found":
+            loc.append("kind")
+            msg = f"required key is missing (one of {', '.join(map(repr, SOURCE_KINDS))})"
+        elif kind == "missing":
+            msg = "required key is missing"
+        elif kind == "extra_forbidden":
+            near = difflib.get_close_matches(str(loc[-1]), _KNOWN_KEYS, n=1)
+            msg = "unknown key" + (f"; did you mean {near[0]!r}?" if near else "")
+        elif kind == "string_pattern_mismatch" and ctx.get("pattern") == ID_PATTERN:
+            msg = (
+                f"{value!r} is not a url-safe id: letters, digits, '.', '_' and '-', "
+                "starting with a letter or digit, at most 64 characters"
+            )
+        elif kind == "string_pattern_mismatch" and ctx.get("pattern") == SHA256_PATTERN:
+            msg = "must be the 64 hex digits of a SHA-256 digest"
+        else:
+            msg = err["msg"].removeprefix("Value error, ")
+            if not isinstance(value, dict | list) and repr(value) not in msg:
+                msg += f" (got {value!r})"
+        where = _path(loc)
+        if len(loc) == 2 and tuple(loc) in from_env:
+            where += f" (from {from_env[(loc[0], loc[1])]})"  # type: ignore[index]
+        problems.append(f"{where}: {msg}")
+    return problems
+
+
+# --- cross-checks ---------------------------------------------------------------------------
+
+
+def _fmt_hz(x: float) -> str:
+    return f"{x:g} Hz"
+
+
+class _Checker:
+    """Cross-field and cross-table checks of a config that passed the per-field checks."""
+
+    def __init__(self, cfg: Config) -> None:
+        self.cfg = cfg
+        self.problems: list[str] = []
+        self.channel_source: dict[str, int] = {}
+        self.open_ended = any(
+            isinstance(s, SimulatedSourceConfig) and not s.channels for s in cfg.sources
+        )
+        self.entry_index = {c.id: j for j, c in enumerate(cfg.channels)}
+
+    def add(self, problem: str) -> None:
+        if problem not in self.problems:
+            self.problems.append(problem)
+
+    def run(self) -> list[str]:
+        self.sources()
+        self.channels()
+        self.analysis()
+        before = len(self.problems)
+        self.bands()
+        self.tones()
+        if len(self.problems) == before:  # names are only meaningful once bands/tones are sound
+            self.alarms()
+        self.tokens()
+        return self.problems
+
+    def fs_of(self, ch: str) -> float | None:
+        i = self.channel_source.get(ch)
+        return None if i is None else self.cfg.sources[i].sample_rate_hz
+
+    def known(self, ch: str, where: str) -> bool:
+        if ch == "*" or ch in self.channel_source or self.open_ended:
+            return True
+        listed = ", ".join(repr(c) for c in self.channel_source) or "none"
+        self.add(f"{where}: {ch!r} is not a channel of any source (channels: {listed})")
+        return False
+
+    def targets(self, ch: str) -> list[str]:
+        return list(self.channel_source) if ch == "*" else [ch]
+
+    def sources(self) -> None:
+        cfg = self.cfg
+        if not cfg.sources:
+            self.add("sources: at least one [[sources]] entry is required")
+        seen_id: dict[str, int] = {}
+        seen_listen: dict[tuple[str, str], int] = {}
+        for i, s in enumerate(cfg.sources):
+            if s.id in seen_id:
+                self.add(f"sources[{i}].id: {s.id!r} repeats sources[{seen_id[s.id]}]")
+            seen_id.setdefault(s.id, i)
+            for k, ch in enumerate(s.channels):
+                if ch in self.channel_source:
+                    other = self.channel_source[ch]
+                    self.add(
+                        f"sources[{i}].channels[{k}]: {ch!r} is already a channel of "
+                        f"sources[{other}]"
+                    )
+                else:
+                    self.channel_source[ch] = i
+            needs_fs = isinstance(s, TcpSourceConfig | UdpSourceConfig) or (
+                isinstance(s, FileSourceConfig) and s.format != "wav"
+            )
+            if needs_fs and s.sample_rate_hz is None:
+                self.add(
+                    f"sources[{i}].sample_rate_hz: required for kind={s.kind!r}"
+                    + (f" with format={s.format!r}" if isinstance(s, FileSourceConfig) else "")
+                )
+            if isinstance(s, TcpSourceConfig | UdpSourceConfig):
+                key = (s.kind, s.listen)
+                if key in seen_listen:
+                    self.add(
+                        f"sources[{i}].listen: {s.listen!r} is already used by "
+                        f"sources[{seen_listen[key]}]"
+                    )
+                seen_listen.setdefault(key, i)
+                if s.kind == "tcp" and parse_listen(s.listen) == parse_listen(cfg.service.listen):
+                    self.add(f"sources[{i}].listen: {s.listen!r} is the service's own address")
+
+    def channels(self) -> None:
+        seen: dict[str, int] = {}
+        for j, c in enumerate(self.cfg.channels):
+            if c.id in seen:
+                self.add(f"channels[{j}].id: {c.id!r} repeats channels[{seen[c.id]}]")
+            seen.setdefault(c.id, j)
+            if c.id not in self.channel_source and not self.open_ended:
+                listed = ", ".join(repr(x) for x in self.channel_source) or "none"
+                self.add(
+                    f"channels[{j}].id: {c.id!r} is not produced by any source "
+                    f"(source channels: {listed})"
+                )
+            if c.sensitivity == 0:
+                self.add(f"channels[{j}].sensitivity: must not be 0")
+
+    def where(self, ch: str, field: str) -> str:
+        j = self.entry_index.get(ch)
+        if j is not None and getattr(self.cfg.channels[j].analysis, field) is not None:
+            return f"channels[{j}].analysis.{field}"
+        return f"analysis.{field}"
+
+    def analysis(self) -> None:
+        for ch in [*self.channel_source, *(c.id for c in self.cfg.channels)]:
+            a = effective_analysis(self.cfg, ch)
+            if a.lines % 25:
+                self.add(
+                    f"{self.where(ch, 'lines')}: 2.56·{a.lines} = {a.lines * 2.56:g} "
+                    "samples is not an integer; use a multiple of 25 (e.g. 400, 800, "
+                    "1600, 3200, 6400)"
+                )
+            fs = self.fs_of(ch)
+            if fs is not None and a.fmax_hz * FRAME_RATIO > fs * (1 + 1e-9):
+                src = self.cfg.sources[self.channel_source[ch]]
+                self.add(
+                    f"{self.where(ch, 'fmax_hz')}: {_fmt_hz(a.fmax_hz)} needs a sample "
+                    f"rate of at least 2.56·fmax = {_fmt_hz(a.fmax_hz * FRAME_RATIO)}; "
+                    f"source {src.id!r} runs at {_fmt_hz(fs)}"
+                )
+            if a.output_unit is not None and QUANTITY_OF_UNIT[a.output_unit] != a.unit:
+                self.add(
+                    f"{self.where(ch, 'output_unit')}: {a.output_unit!r} is not a unit "
+                    f"of {a.unit} (unit = {a.unit!r})"
+                )
+            if a.lowcut_hz >= a.fmax_hz:
+                self.add(
+                    f"{self.where(ch, 'lowcut_hz')}: {_fmt_hz(a.lowcut_hz)} must be "
+                    f"below fmax_hz {_fmt_hz(a.fmax_hz)}"
+                )
+
+    def edges(
+        self, where: str, lo: float | None, hi: float | None, lo_key: str, hi_key: str
+    ) -> bool:
+        if lo is None or hi is None:
+            missing = lo_key if lo is None else hi_key
+            self.add(f"{where}.{missing}: required with {hi_key if lo is None else lo_key}")
+            return False
+        if not lo < hi:
+            self.add(f"{where}.{hi_key}: {hi:g} must be above {lo_key} {lo:g}")
+            return False
+        return True
+
+    def speed_needed(self, where: str, ch: str) -> None:
+        targets = self.targets(ch)
+        speeds = [channel_settings(self.cfg, t).speed_rpm for t in targets]
+        if ch != "*" and speeds and speeds[0] is None:
+            self.add(f"{where}: channel {ch!r} has no speed_rpm, so orders cannot be placed")
+        elif ch == "*" and targets and all(s is None for s in speeds):
+            self.add(f"{where}: no channel has speed_rpm, so orders cannot be placed")
+
+    def above_fmax(self, where: str, ch: str, hz: float | None, order: float | None) -> None:
+        over = []
+        for t in self.targets(ch):
+            fmax = effective_analysis(self.cfg, t).fmax_hz
+            rpm = channel_settings(self.cfg, t).speed_rpm
+            f = hz if hz is not None else (order * rpm / 60 if order and rpm else None)
+            if f is not None and f > fmax * (1 + 1e-9):
+                over.append(f"{t!r} ({_fmt_hz(fmax)})")
+        if over:
+            value = _fmt_hz(hz) if hz is not None else f"order {order:g}"
+            self.add(f"{where}: {value} is above fmax_hz of channel {', '.join(over)}")
+
+    def names(
+        self, table: str, scope: dict[tuple[str, str], int], j: int, ch: str, names: list[str]
+    ) -> None:
+        for name in names:
+            if (ch, name) in scope:
+                self.add(
+                    f"{table}[{j}].name: {name!r} repeats {table}[{scope[(ch, name)]}] "
+                    f"on channel {ch!r}"
+                )
+            scope.setdefault((ch, name), j)
+
+    def bands(self) -> None:
+        scope: dict[tuple[str, str], int] = {}
+        fractions = ", ".join(map(str, OCTAVE_FRACTIONS))
+        for j, b in enumerate(self.cfg.bands):
+            w = f"bands[{j}]"
+            if not self.known(b.channel, f"{w}.channel"):
+                continue
+            has_hz = b.lo_hz is not None or b.hi_hz is not None
+            has_order = _is_order_band(b)
+            if has_hz == has_order:
+                self.add(
+                    f"{w}: give lo_hz and hi_hz (Hz) or lo_order and hi_order (orders)"
+                    + (", not both" if has_hz else "")
+                )
+                continue
+            if b.octave is not None:
+                if b.octave not in OCTAVE_FRACTIONS:
+                    self.add(f"{w}.octave: {b.octave!r} is not one of {fractions}")
+                    continue
+                if has_order:
+                    self.add(f"{w}.octave: octave sets are in Hz; give lo_hz and hi_hz")
+                    continue
+            if has_hz:
+                if not self.edges(w, b.lo_hz, b.hi_hz, "lo_hz", "hi_hz"):
+                    continue
+                if b.octave is not None and not b.lo_hz:
+                    self.add(f"{w}.lo_hz: an octave set needs lo_hz > 0")
+                    continue
+                if b.octave is not None and not _expand_band(b):
+                    self.add(
+                        f"{w}: no 1/{b.octave}-octave band lies within {b.lo_hz:g}-{b.hi_hz:g} Hz"
+                    )
+                    continue
+                self.above_fmax(f"{w}.hi_hz", b.channel, b.hi_hz, None)
+            else:
+                if not self.edges(w, b.lo_order, b.hi_order, "lo_order", "hi_order"):
+                    continue
+                self.speed_needed(f"{w}.lo_order", b.channel)
+                self.above_fmax(f"{w}.hi_order", b.channel, None, b.hi_order)
+            self.names("bands", scope, j, b.channel, [x.name for x in _expand_band(b)])
+
+    def tones(self) -> None:
+        scope: dict[tuple[str, str], int] = {}
+        for j, t in enumerate(self.cfg.tones):
+            w = f"tones[{j}]"
+            if not self.known(t.channel, f"{w}.channel"):
+                continue
+            if (t.hz is None) == (t.order is None):
+                self.add(f"{w}: give exactly one of hz or order")
+                continue
+            if t.order is not None:
+                self.speed_needed(f"{w}.order", t.channel)
+            self.above_fmax(
+                f"{w}.{'hz' if t.hz is not None else 'order'}", t.channel, t.hz, t.order
+            )
+            self.names("tones", scope, j, t.channel, [t.name])
+
+    def alarms(self) -> None:
+        for j, a in enumerate(self.cfg.alarms):
+            w = f"alarms[{j}]"
+            if not self.known(a.channel, f"{w}.channel"):
+                continue
+            if (a.band is not None) + (a.tone is not None) + a.overall != 1:
+                self.add(f"{w}: give exactly one of band, tone or overall = true")
+                continue
+            if not a.alert < a.danger:
+                self.add(f"{w}.danger: {a.danger:g} must be above alert {a.alert:g}")
+            if self.open_ended:
+                continue
+            for key, name, lookup in (("band", a.band, bands_for), ("tone", a.tone, tones_for)):
+                if name is None:
+                    continue
+                have = {t: [x.name for x in lookup(self.cfg, t)] for t in self.targets(a.channel)}
+                if not any(name in names for names in have.values()):
+                    listed = sorted({n for names in have.values() for n in names})
+                    on = "any channel" if a.channel == "*" else f"channel {a.channel!r}"
+                    self.add(
+                        f"{w}.{key}: {name!r} is not a {key} of {on} "
+                        f"({key}s: {', '.join(map(repr, listed)) or 'none'})"
+                    )
+
+    def tokens(self) -> None:
+        seen: dict[str, int] = {}
+        for j, t in enumerate(self.cfg.tokens):
+            if t.name in seen:
+                self.add(f"tokens[{j}].name: {t.name!r} repeats tokens[{seen[t.name]}]")
+            seen.setdefault(t.name, j)
+
+
+def _cross_check(cfg: Config) -> list[str]:
+    return _Checker(cfg).run()
