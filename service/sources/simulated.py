@@ -35,13 +35,14 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from dsp.kinematics import BearingFrequencies, bearing_frequencies, gear_mesh_hz
+
 from ..types import SampleBlock, SourceCounters
 
 __all__ = [
     "DEMO_CHANNELS",
     "G_N",
     "SCENARIOS",
-    "BearingFrequencies",
     "BearingGeometry",
     "ChannelInfo",
     "ImpactTrain",
@@ -70,16 +71,6 @@ _ID_RE = re.compile(r"^[a-z0-9][a-z0-9_-]*$")
 
 
 @dataclass(frozen=True, slots=True)
-class BearingFrequencies:
-    """Rolling-element bearing defect frequencies in Hz (Randall & Antoni 2011)."""
-
-    bpfo_hz: float  # ball pass frequency, outer race
-    bpfi_hz: float  # ball pass frequency, inner race
-    ftf_hz: float  # fundamental train (cage) frequency
-    bsf_hz: float  # ball (roller) spin frequency
-
-
-@dataclass(frozen=True, slots=True)
 class BearingGeometry:
     """A rolling-element bearing: element count, diameters in mm, contact angle in degrees."""
 
@@ -89,23 +80,11 @@ class BearingGeometry:
     contact_angle_deg: float = 0.0
 
     def frequencies(self, shaft_hz: float) -> BearingFrequencies:
-        """Defect frequencies in Hz for a shaft turning at ``shaft_hz`` (outer race fixed).
-
-        Randall & Antoni 2011, with n elements, ratio ρ = (d/D)·cos φ and shaft rate fr:
-        BPFO = (n·fr/2)(1 − ρ), BPFI = (n·fr/2)(1 + ρ), FTF = (fr/2)(1 − ρ),
-        BSF = (D/2d)·fr·(1 − ρ²). Kinematic values: real ones run 1–2 % lower (slip).
-        """
-        rho = (
-            self.element_diameter_mm / self.pitch_diameter_mm
-            * math.cos(math.radians(self.contact_angle_deg))
-        )
-        half_n_fr = 0.5 * self.n_elements * shaft_hz
-        return BearingFrequencies(
-            bpfo_hz=half_n_fr * (1.0 - rho),
-            bpfi_hz=half_n_fr * (1.0 + rho),
-            ftf_hz=0.5 * shaft_hz * (1.0 - rho),
-            bsf_hz=self.pitch_diameter_mm / (2.0 * self.element_diameter_mm)
-            * shaft_hz * (1.0 - rho * rho),
+        """Defect frequencies in Hz for a shaft turning at ``shaft_hz`` (outer race fixed):
+        :func:`dsp.kinematics.bearing_frequencies` (Randall & Antoni 2011)."""
+        return bearing_frequencies(
+            self.n_elements, self.element_diameter_mm, self.pitch_diameter_mm,
+            self.contact_angle_deg, shaft_hz,
         )
 
 
@@ -505,7 +484,7 @@ def demo_site(
     # sidebands at ±1X input (pinion) and ±1X output (wheel); fan 1X and blade pass.
     f_in = F1_INPUT_RPM / 60.0
     f_out = F1_FAN_RPM / 60.0
-    mesh = GEAR_PINION_TEETH * f_in
+    mesh = gear_mesh_hz(GEAR_PINION_TEETH, f_in)
     mesh_g = g_peak_for_velocity(0.55, mesh)
     if "f1-gb-h" in chosen_ids:
         cid = "f1-gb-h"
@@ -611,7 +590,7 @@ class SimulatedSource:
         self._start_ns = 0
         self._closed = False
         self._close_event = asyncio.Event()
-        self._waits = 0
+        self.paced_waits = 0
 
     def __aiter__(self) -> AsyncIterator[SampleBlock]:
         return self
@@ -633,7 +612,7 @@ class SimulatedSource:
                 self.counters.drops += lost
             wait_s = (self._next_block + 1) * period_s - elapsed_s
             if wait_s > 0:
-                self._waits += 1
+                self.paced_waits += 1
                 try:
                     async with asyncio.timeout(wait_s):
                         await self._close_event.wait()
@@ -680,6 +659,6 @@ class SimulatedSource:
             "next_index": next_index,
             "plant_time_s": t_s,
             "fault_severity": self.model.fault_severity(t_s),
-            "paced_waits": self._waits,
+            "paced_waits": self.paced_waits,
             "counters": self.counters.as_dict(),
         }
