@@ -433,10 +433,11 @@ def demo_site(
     ``fault_start_s`` for ``fault_ramp_s`` seconds pump p1's drive-end bearing develops an
     outer-race defect (impacts at BPFO ringing a 3.3 kHz resonance, BPFO harmonics) while a
     1X imbalance grows, taking p1-de-h's overall to about 5.5 mm/s; p2 and f1 stay healthy.
-    ``channels`` selects and orders a subset of :data:`DEMO_CHANNELS` ids.
+    ``channels`` selects and orders a subset of :data:`DEMO_CHANNELS` ids (None or empty:
+    all of them, in that order).
     """
     info = {c.id: c for c in DEMO_CHANNELS}
-    if channels is None:
+    if not channels:
         chosen = list(DEMO_CHANNELS)
     else:
         unknown = [c for c in channels if c not in info]
@@ -518,7 +519,6 @@ def demo_site(
         bpfo_p1 = PUMP_DE_BEARING.frequencies(P1_RPM / 60.0).bpfo_hz
         impacts.append(ImpactTrain("p1-de-outer-race", bpfo_p1, responses))
 
-    # Keep DEMO_CHANNELS order unless a subset order was asked for.
     return PlantModel(
         chosen, fs=fs, tones=tones, impacts=impacts, noise_g=noise, seed=seed,
         fault_start_s=fault_start_s, fault_ramp_s=fault_ramp_s,

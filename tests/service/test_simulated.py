@@ -13,6 +13,7 @@ import numpy as np
 import pytest
 import scipy.signal
 
+from service.config import load_config
 from service.sources import simulated as sim
 from service.sources.simulated import (
     DEMO_CHANNELS,
@@ -239,11 +240,13 @@ def test_model_rejects_bad_input_with_clear_messages() -> None:
     with pytest.raises(ValueError, match=r"scenario='plant9' is not one of 'demo'"):
         build_scenario("plant9")
     assert build_scenario("demo", seed=1).channel_ids == tuple(INFO)
+    assert demo_site(channels=[]).channel_ids == tuple(INFO)  # empty list: every channel
 
 
 # --- the demo config agrees with the model -------------------------------------------------
 
-def test_demo_config_matches_the_simulated_site() -> None:
+def test_demo_config_is_valid_and_matches_the_simulated_site() -> None:
+    load_config(DEMO_TOML)  # the project's own validator accepts it (raises ConfigError if not)
     cfg = tomllib.loads(DEMO_TOML.read_text())
     (src,) = cfg["sources"]
     assert (src["kind"], src["scenario"]) == ("simulated", "demo")
