@@ -1,7 +1,7 @@
 """The simulated plant: a deterministic signal model of an invented pumping station, and a
 source that streams it in real time (or faster) for ``quaver demo`` and for tests.
 
-Knows nothing about the pipeline, the dsp engine, config files or the API.
+Knows nothing about the pipeline, the spectral engine, config files or the API.
 
 The site ("Tarn Hollow pumping station", our own invention) has two centrifugal pumps
 driven by motors (p1, p2) and a cooling fan driven through a single-stage gearbox (f1).
@@ -12,7 +12,7 @@ index k (t = k/fs), so a stream rendered in any chunks equals one long render:
   harmonics): phase 2π·frac(f·k/fs + φ/2π), amplitude a_healthy + a_fault·s(t);
 * bearing-defect impacts: impact j of a defect at rate r happens at t_j = (j + ε_j)/r, with
   ε_j ~ N(0, jitter) (the random slip of rolling elements, about 1 % of the spacing;
-  Randall & Antoni 2011, §2) and an amplitude that varies ±10 % from impact to impact. Each
+  Randall & Antoni 2011) and a strength with a 10 % standard deviation between impacts. Each
   impact rings a resonance: a·exp(−ζω_n·τ)·sin(ω_d·τ), τ = t − t_j ≥ 0, ω_d = ω_n√(1−ζ²).
   (ε_j, amplitude) come from a generator seeded by (seed, defect, j // 256), so any impact
   can be recomputed without the ones before it;
@@ -125,8 +125,8 @@ class Tone:
 
 @dataclass(frozen=True, slots=True)
 class Resonance:
-    """How one channel answers a defect impact: a decaying sinusoid of peak ``peak_g`` (at
-    full severity, g) at ``freq_hz`` with damping ratio ``damping`` (0 < ζ < 1)."""
+    """How one channel answers a defect impact: a decaying sinusoid whose envelope starts at
+    ``peak_g`` (g, at full severity), at ``freq_hz`` with damping ratio ``damping`` (0 < ζ < 1)."""
 
     channel: str
     peak_g: float
@@ -429,10 +429,11 @@ def demo_site(
 ) -> PlantModel:
     """The invented Tarn Hollow pumping station, acceleration in g at ``fs`` Hz.
 
-    Healthy velocity overall (10–1000 Hz RMS) is about 1.2–1.5 mm/s on every channel. From
+    Healthy velocity overall (10–1000 Hz RMS) is about 1.0–1.4 mm/s on every channel. From
     ``fault_start_s`` for ``fault_ramp_s`` seconds pump p1's drive-end bearing develops an
     outer-race defect (impacts at BPFO ringing a 3.3 kHz resonance, BPFO harmonics) while a
-    1X imbalance grows, taking p1-de-h's overall to about 5.5 mm/s; p2 and f1 stay healthy.
+    1X imbalance grows, taking p1-de-h's overall to about 5.7 mm/s (alert 2.8 is passed near
+    s = 0.35, danger 4.5 near s = 0.75); p2 and f1 stay healthy.
     ``channels`` selects and orders a subset of :data:`DEMO_CHANNELS` ids (None or empty:
     all of them, in that order).
     """
@@ -458,7 +459,9 @@ def demo_site(
                           g_peak_for_velocity(v_fault_mm_s, f_hz), math.radians(phase_deg)))
 
     # Pumps: 1X, 2X, vane pass; velocity RMS in mm/s. Fault: growing 1X imbalance whose
-    # vector leads the healthy 1X by 40°, and BPFO harmonics from the outer-race defect.
+    # vector leads the healthy 1X by 40°, and BPFO harmonics — the low-frequency, periodic
+    # part of the outer-race defect's response, modelled as plain tones (a simplification:
+    # the impacts below carry the slip jitter, these lines do not).
     pump_levels = {
         #  id          1X    2X    VP    noise  imbalance@s=1  BPFO×1..4 @ s=1    phase
         "p1-de-h": (1.00, 0.45, 0.55, 0.45, 4.6, (0.60, 0.80, 0.65, 0.50), 0.0),

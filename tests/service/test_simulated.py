@@ -199,7 +199,7 @@ def test_bearing_band_climbs_through_its_demo_levels() -> None:
 
 
 def test_envelope_of_faulty_channel_peaks_at_bpfo() -> None:
-    # envelope analysis, Randall & Antoni 2011 §3: band-pass around the resonance the
+    # envelope analysis (Randall & Antoni 2011): band-pass around the resonance the
     # impacts excite, |analytic signal| (Hilbert), spectrum of the envelope
     model = demo_site(channels=["p1-de-h"])
     bpfo = _bpfo_hz(INFO["p1-de-h"].bearing, INFO["p1-de-h"].speed_rpm / 60.0)
@@ -237,6 +237,8 @@ def test_model_rejects_bad_input_with_clear_messages() -> None:
     with pytest.raises(ValueError, match=r"channels \['p9'\] are not in the demo site; "
                                          r"allowed: 'p1-de-h', 'p1-de-v'"):
         demo_site(channels=["p9"])
+    with pytest.raises(ValueError, match=r"fs=8000.0 Hz is too low for the demo site"):
+        demo_site(fs=8000.0)
     with pytest.raises(ValueError, match=r"scenario='plant9' is not one of 'demo'"):
         build_scenario("plant9")
     assert build_scenario("demo", seed=1).channel_ids == tuple(INFO)
