@@ -15,7 +15,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from .averaging import Averager
-from .bands import Band, band_rms, band_weights
+from .bands import Band
 from .filterbank import FilterBank, FrameGrid
 from .scaling import (
     DEFAULT_UNIT,
@@ -114,8 +114,7 @@ class AnalysisSpec:
 @dataclass
 class _Views:
     unit: OutputUnit
-    weights: np.ndarray  # [Q] power factor from input unit² to unit²
-    band_matrix: np.ndarray  # [C, B, Q] line weights × unit factor
+    weights: np.ndarray  # [Q] float32 factor from averaged |X|² to unit² (scaling × units)
     tone_weights: np.ndarray  # [C, T]
 
 
@@ -143,6 +142,12 @@ class Analyzer:
         # Lines inside the window's main lobe around DC carry leaked DC; integrating them
         # would blow up, so the cut is never below the main lobe's half-width.
         self.lowcut_hz = max(spec.lowcut_hz, self.info.mainlobe_halfwidth_bins * self.grid.df_hz)
+        # Power spectrum scaling 2/S1² (Heinzel 2002 §9), DC and Nyquist lines not doubled;
+        # applied at read-out to the averaged |X|² (see push).
+        self._line_scale = power_spectrum(np.ones(self.grid.bins, np.complex64), self.info.s1,
+                                          self.grid.n).astype(np.float64)
+        self._peak_hold = spec.averaging == "peak-hold"
+        self._power_cache: dict[tuple[str, int], np.ndarray] = {}  # read-outs share one power
         self.avg = Averager(spec.averaging, spec.averages, linear_end=spec.linear_end)
         self.tone_avg = Averager(spec.averaging, spec.averages, linear_end=spec.linear_end)
         self.last_start: int | None = None  # stream index of the newest frame's first sample
@@ -168,12 +173,22 @@ class Analyzer:
             for t, tone in enumerate(self.spec.tones):
                 f = np.nan if (tone.order is not None and sc is None) else tone.frequency_hz(sc)
                 tone_hz[c, t] = f if (np.isfinite(f) and f <= self.grid.fs / 2) else np.nan
+        self._edge_pos = self._line_position(np.nan_to_num(self._edges, nan=0.0))
         self._tone_valid = np.isfinite(tone_hz)
         new_tones = np.where(self._tone_valid, tone_hz, 0.0)
         if not np.array_equal(new_tones, self.bank.tone_hz):
             self.bank.set_tones(new_tones)
             self.tone_avg.reset()
         self._views.clear()
+        self._power_cache.clear()
+        self._view(None)  # build the default view now, not on the first read-out
+
+    def _line_position(self, f_hz: np.ndarray) -> np.ndarray:
+        """Cumulative line widths from 0 Hz up to ``f_hz``: the DC line spans [0, Δf/2],
+        line q ≥ 1 spans [(q − ½)Δf, (q + ½)Δf]; clipped to [0, Q]."""
+        df = self.grid.df_hz
+        pos = np.where(f_hz <= df / 2, f_hz / (df / 2), 1.0 + (f_hz - df / 2) / df)
+        return np.clip(pos, 0.0, float(self.grid.bins))
 
     @property
     def tone_hz(self) -> np.ndarray:
@@ -190,15 +205,9 @@ class Analyzer:
         v = self._views.get(u)
         if v is None:
             wts = unit_power_weights(self.f_hz, self.spec.input_unit, u, lowcut_hz=self.lowcut_hz)
-            edges = self._edges.reshape(-1, 2)
-            valid = np.isfinite(edges[:, 0])
-            bm = np.zeros((edges.shape[0], self.grid.bins))
-            if valid.any():
-                bm[valid] = band_weights(edges[valid], 0.0, self.grid.df_hz, self.grid.bins)
-            bm = bm.reshape(self.channels, len(self.spec.bands), self.grid.bins) * wts
             tw = unit_power_weights(np.nan_to_num(self.tone_hz, nan=0.0), self.spec.input_unit, u,
                                     lowcut_hz=self.lowcut_hz)
-            v = _Views(u, wts, bm, tw)
+            v = _Views(u, (wts * self._line_scale).astype(np.float32), tw)
             self._views[u] = v
         return v
 
@@ -206,6 +215,7 @@ class Analyzer:
     def reset(self, next_index: int | None = None) -> None:
         """A gap: drop the partial frame and start new averages."""
         self.bank.reset(next_index)
+        self._power_cache.clear()
         self.avg.reset()
         self.tone_avg.reset()
         self.last_start = None
@@ -219,7 +229,11 @@ class Analyzer:
             self.reset(first_index)
         batch = self.bank.push(block)
         if batch.count:
-            self.avg.update(power_spectrum(batch.spectra, self.info.s1, self.grid.n))
+            # |X|² in place on the interleaved (re, im) floats; the pair sum and the scaling
+            # 2/S1² are linear, so they wait until read-out (once per push, not per frame).
+            v = batch.spectra.view(np.float32)
+            np.square(v, out=v)
+            self.avg.update(v[..., 0::2] + v[..., 1::2] if self._peak_hold else v)
             if batch.tones.shape[2]:
                 self.tone_avg.update(tone_power(batch.tones, self.info.s1))
             self.last_start = int(batch.start[-1])
@@ -241,17 +255,29 @@ class Analyzer:
         return None if self.last_start is None else self.last_start + self.grid.n
 
     def power(self, unit: str | None = None) -> np.ndarray:
-        """Averaged power spectrum in unit² (RMS², float64 [C, Q]); zeros before any frame."""
+        """Averaged power spectrum in unit² (RMS², [C, Q]; float32 unless the average is linear,
+        then float64); zeros before any frame. Read-only: read-outs of one push share it."""
         v = self._view(unit)
+        key = (v.unit, self.bank.frames_out)
+        cached = self._power_cache.get(key)
+        if cached is not None:
+            return cached
         p = self.avg.value
         if p is None:
             return np.zeros((self.channels, self.grid.bins))
-        return p * v.weights
+        if not self._peak_hold:
+            p = p[:, 0::2] + p[:, 1::2]
+        out = p * v.weights
+        out.setflags(write=False)
+        if len(self._power_cache) > 8:
+            self._power_cache.clear()
+        self._power_cache[key] = out
+        return out
 
     def spectrum(self, unit: str | None = None, amplitude: str | None = None) -> np.ndarray:
         """Averaged amplitude spectrum, float32 [C, Q], in ``unit`` as ``amplitude`` type."""
-        a = amplitude_from_power(self.power(unit), amplitude or self.spec.amplitude)  # type: ignore[arg-type]
-        return a.astype(np.float32)
+        p32 = self.power(unit).astype(np.float32)
+        return amplitude_from_power(p32, amplitude or self.spec.amplitude)  # type: ignore[arg-type]
 
     def psd(self, unit: str | None = None) -> np.ndarray:
         """Averaged PSD in unit²/Hz (float64 [C, Q]): power / ENBW_Hz (Heinzel 2002 §9)."""
@@ -262,12 +288,33 @@ class Analyzer:
 
         NaN for an order band on a channel without a running speed.
         """
-        v = self._view(unit)
-        p = self.avg.value
-        if p is None or not self.spec.bands:
+        if self.avg.value is None or not self.spec.bands:
             return np.full((self.channels, len(self.spec.bands)), np.nan)
-        out = np.sqrt(np.einsum("cq,cbq->cb", p, v.band_matrix) / self.info.enbw_bins)
+        # Σ_q weight_bq·P_q as a difference of the cumulative sum taken at the band edges, a
+        # fractional line counted pro rata — equal to dsp.bands.band_weights, at O(Q) cost.
+        p = self.power(unit)
+        q = self.grid.bins
+        pos = self._edge_pos.reshape(self.channels, -1)  # [C, 2B] in lines from 0 Hz
+        i = np.minimum(pos.astype(np.intp), q - 1)
+        at = self._cumulative_at(p, i) + (pos - i) * np.take_along_axis(p, i, 1)
+        at = at.reshape(self.channels, -1, 2)
+        out = np.sqrt(np.maximum(at[..., 1] - at[..., 0], 0.0) / self.info.enbw_bins)
         return np.where(np.isnan(self._edges[..., 0]), np.nan, out)
+
+    def _cumulative_at(self, p: np.ndarray, i: np.ndarray) -> np.ndarray:
+        """Σ_{q < i[c, j]} p[c, q] for every (c, j): one np.add.reduceat over the flattened
+        spectrum between sorted edge indices, then a cumulative sum over the few segments."""
+        c_count, q = p.shape
+        order = np.argsort(i, axis=1, kind="stable")
+        srt = np.take_along_axis(i, order, 1)
+        starts = np.concatenate((np.zeros((c_count, 1), np.intp), srt), axis=1)
+        flat = (starts + q * np.arange(c_count)[:, None]).ravel()
+        seg = np.add.reduceat(p.ravel(), flat, dtype=np.float64).reshape(c_count, -1)
+        seg[:, :-1][np.diff(starts, axis=1) == 0] = 0.0  # reduceat gives p[i] for empty runs
+        cum = np.cumsum(seg[:, :-1], axis=1)
+        out = np.empty_like(cum)
+        np.put_along_axis(out, order, cum, 1)
+        return out
 
     def tones(self, unit: str | None = None, amplitude: str | None = None) -> np.ndarray:
         """Tracked-tone amplitudes (float64 [C, T]) at their exact frequencies; NaN if unresolved."""

@@ -40,7 +40,9 @@ class Averager:
       be fractional (see :func:`frames_for_time_constant`).
     * ``peak-hold``: the element-wise maximum since reset.
 
-    :attr:`value` is float64 with the trailing shape of the frames; :attr:`count` is the
+    :attr:`value` has the trailing shape of the frames; it is float64 for linear averages
+    (long sums) and keeps the frames' dtype for exponential and peak hold, whose result
+    is a convex combination or a maximum and so loses nothing to float32 rounding; :attr:`count` is the
     number of frames in the current average (for exponential: frames since reset, capped
     at ``averages``).
     """
@@ -93,7 +95,7 @@ class Averager:
         if p_count == 0:
             return
         if self.mode == "peak-hold":
-            m = x.max(axis=1).astype(np.float64)
+            m = x.max(axis=1)
             self._sum = m if self._sum is None else np.maximum(self._sum, m)
             self._seen += p_count
         elif self.mode == "exponential":
@@ -108,11 +110,14 @@ class Averager:
         # y_P = y_0·Π(1−α_j) + Σ_p α_p·Π_{j>p}(1−α_j)·x_p  — weights from a suffix product.
         suffix = np.append(np.cumprod(keep[::-1])[::-1][1:], 1.0)
         weights = alpha * suffix
-        new = np.tensordot(x, weights, axes=([1], [0]))  # [C, ...]
+        # matmul over the frame axis: (P,) @ [C, P, M] → [C, M] (BLAS; tensordot would copy x).
+        flat = x.reshape(x.shape[0], x.shape[1], -1)
+        new = np.matmul(weights.astype(flat.dtype), flat).reshape(x.shape[:1] + x.shape[2:])
         if self._sum is None:
-            self._sum = new.astype(np.float64)
+            self._sum = new
         else:
-            self._sum = self._sum * np.prod(keep) + new
+            self._sum *= float(np.prod(keep))  # a Python float keeps the float32 loop (NEP 50)
+            self._sum += new
         self._seen += x.shape[1]
 
     def _update_linear(self, x: np.ndarray) -> None:

@@ -22,6 +22,7 @@ import numpy as np
 import scipy.fft
 from numpy.lib.stride_tricks import sliding_window_view
 
+from .tones import tone_kernel
 from .windows import DEFAULT_KAISER_BETA, WindowInfo, check_window, get_window, window_info
 
 __all__ = ["FrameBatch", "FrameGrid", "FilterBank", "FMAX_RATIO"]
@@ -170,13 +171,19 @@ class FilterBank:
         self.w = get_window(window, grid.n, beta=beta)  # type: ignore[arg-type]
         self.info: WindowInfo = window_info(window, grid.n, beta=beta)  # type: ignore[arg-type]
         self._w32 = self.w.astype(np.float32)
-        self._tail = np.empty((self.channels, 0), dtype=np.float32)
+        # Samples not yet consumed live in _buf[:, _lo:_hi]; a block is appended after them
+        # and the region is moved to the front only when the buffer's end is reached, so
+        # each sample is copied about once (no concatenation per push).
+        self._buf = np.empty((self.channels, 4 * grid.n), dtype=np.float32)
+        self._lo = self._hi = 0
+        self._work = np.empty((self.channels, 0, grid.n), dtype=np.float32)
         self._next_index = 0  # stream index of the sample after the last one pushed
-        self._tail_start = 0  # stream index of _tail[:, 0]
+        self._tail_start = 0  # stream index of _buf[:, _lo]
         self.frames_out = 0
         self.resets = 0
         self._tone_hz = np.zeros((self.channels, 0))
-        self._kernel = np.zeros((self.channels, grid.n, 0), dtype=np.float32)
+        self._kernel = np.zeros((1, grid.n, 0), dtype=np.float32)  # [G, n, 2T], G groups
+        self._tone_group = np.zeros(self.channels, dtype=np.intp)  # channel → kernel group
         if tone_hz is not None:
             self.set_tones(tone_hz)
 
@@ -189,9 +196,9 @@ class FilterBank:
     def set_tones(self, tone_hz: np.ndarray) -> None:
         """Track tones at ``tone_hz`` (Hz): shape (T,) for all channels or (C, T) per channel.
 
-        Each must lie in [0, fs/2]. The kernel K[c, k, t] = cos(2π·f·k/fs) and
-        K[c, k, T+t] = −sin(2π·f·k/fs) is built in float64 and stored as float32; it is
-        applied to the windowed frames, the same ones the rfft sees.
+        Each must lie in [0, fs/2]. The kernel K[k, t] = cos(2π·f·k/fs),
+        K[k, T+t] = −sin(2π·f·k/fs) (``dsp.tones.tone_kernel`` with no window) is applied to
+        the windowed frames, the same ones the rfft sees.
         """
         f = np.asarray(tone_hz, dtype=np.float64)
         if f.ndim == 1:
@@ -204,11 +211,33 @@ class FilterBank:
             raise ValueError(f"tone frequencies must lie in [0, fs/2 = {self.grid.fs / 2:g}] Hz")
         if np.array_equal(f, self._tone_hz):
             return
-        k = np.arange(self.grid.n, dtype=np.float64)
-        phase = (2 * np.pi / self.grid.fs) * f[:, None, :] * k[None, :, None]  # (C, n, T)
-        kern = np.concatenate((np.cos(phase), -np.sin(phase)), axis=2)
-        self._kernel = np.ascontiguousarray(kern, dtype=np.float32)
+        if f.size == 0:
+            self._kernel = np.zeros((1, self.grid.n, 0), dtype=np.float32)
+            self._tone_group = np.zeros(self.channels, dtype=np.intp)
+            self._tone_hz = f.copy()
+            return
+        # Channels that track the same frequencies (same machine, same speed) share one
+        # kernel, so their frames go through one large matrix product instead of C small ones.
+        rows, group = np.unique(f, axis=0, return_inverse=True)
+        # The kernel goes onto windowed frames, so it carries no window of its own.
+        self._kernel = tone_kernel(rows, self.grid.n, self.grid.fs, "rectangular")
+        self._tone_group = group.reshape(-1)
         self._tone_hz = f.copy()
+
+    def _tones(self, windowed: np.ndarray) -> np.ndarray:
+        c_count, p_count, n = windowed.shape
+        t = self._kernel.shape[2] // 2
+        ri = np.empty((c_count, p_count, 2 * t), dtype=np.float32)
+        for g in range(self._kernel.shape[0]):
+            sel = np.flatnonzero(self._tone_group == g)
+            if sel.size == c_count:
+                ri = (windowed.reshape(-1, n) @ self._kernel[g]).reshape(c_count, p_count, 2 * t)
+            else:
+                ri[sel] = windowed[sel] @ self._kernel[g]
+        out = np.empty((c_count, p_count, t), dtype=np.complex64)
+        out.real = ri[..., :t]
+        out.imag = ri[..., t:]
+        return out
 
     # -- stream ------------------------------------------------------------------------
     @property
@@ -219,15 +248,29 @@ class FilterBank:
     @property
     def pending(self) -> int:
         """Samples held towards the next frame."""
-        return int(self._tail.shape[1])
+        return self._hi - self._lo
 
     def reset(self, next_index: int | None = None) -> None:
         """Discard the partial frame (a gap); assembly restarts at ``next_index``."""
-        self._tail = np.empty((self.channels, 0), dtype=np.float32)
+        self._lo = self._hi = 0
         if next_index is not None:
             self._next_index = int(next_index)
         self._tail_start = self._next_index
         self.resets += 1
+
+    def _append(self, x: np.ndarray) -> None:
+        k = x.shape[1]
+        held = self._hi - self._lo
+        if self._hi + k > self._buf.shape[1]:
+            if held + k > self._buf.shape[1]:  # a block bigger than the buffer: grow it
+                grown = np.empty((self.channels, 2 * (held + k)), dtype=np.float32)
+                grown[:, :held] = self._buf[:, self._lo : self._hi]
+                self._buf = grown
+            else:
+                self._buf[:, :held] = self._buf[:, self._lo : self._hi]
+            self._lo, self._hi = 0, held
+        self._buf[:, self._hi : self._hi + k] = x
+        self._hi += k
 
     def push(self, block: np.ndarray, first_index: int | None = None) -> FrameBatch:
         """Append ``block`` (float32[C, n], any n ≥ 0) and return the frames it completed.
@@ -247,18 +290,20 @@ class FilterBank:
         if first_index is not None and first_index != self._next_index:
             self.reset(first_index)
         self._next_index += x.shape[1]
-        buf = np.concatenate((self._tail, x), axis=1) if self._tail.shape[1] else x
+        self._append(x)
+        buf = self._buf[:, self._lo : self._hi]
         n, hop = self.grid.n, self.grid.hop
         length = buf.shape[1]
         p_count = (length - n) // hop + 1 if length >= n else 0
         if p_count:
             frames = sliding_window_view(buf, n, axis=1)[:, : (p_count - 1) * hop + 1 : hop]
-            windowed = frames * self._w32  # (C, P, n), contiguous
+            if self._work.shape[1] < p_count:
+                self._work = np.empty((self.channels, p_count, n), dtype=np.float32)
+            # Reused buffer: the FFT input is not freshly allocated (and page-faulted) each push.
+            windowed = np.multiply(frames, self._w32, out=self._work[:, :p_count])
             spectra = scipy.fft.rfft(windowed, axis=-1, workers=1)
             if self._kernel.shape[2]:
-                ri = np.matmul(windowed, self._kernel)
-                t = self._kernel.shape[2] // 2
-                tones = (ri[..., :t] + 1j * ri[..., t:]).astype(np.complex64)
+                tones = self._tones(windowed)
             else:
                 tones = np.zeros((self.channels, p_count, 0), dtype=np.complex64)
             start = self._tail_start + hop * np.arange(p_count, dtype=np.int64)
@@ -267,8 +312,7 @@ class FilterBank:
             tones = np.zeros((self.channels, 0, self._kernel.shape[2] // 2), dtype=np.complex64)
             start = np.zeros(0, dtype=np.int64)
         consumed = p_count * hop
-        # Copy the remainder so the caller's block (or a big concatenation) is not kept alive.
-        self._tail = np.array(buf[:, consumed:], dtype=np.float32, copy=True)
+        self._lo += consumed
         self._tail_start += consumed
         self.frames_out += p_count
         return FrameBatch(start=start, spectra=spectra, tones=tones)

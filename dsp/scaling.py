@@ -65,9 +65,8 @@ def power_spectrum(x_q: np.ndarray, s1: float, n: int) -> np.ndarray:
     ``x_q`` is ``rfft(w·x)`` along its last axis for an ``n``-point frame; line 0 and
     (for even n) the Nyquist line are not doubled.
     """
-    v = x_q.view(np.float32 if x_q.dtype == np.complex64 else np.float64)
-    v = v.reshape(*x_q.shape, 2)
-    ps = np.einsum("...i,...i->...", v, v)  # |X|², without complex temporaries
+    ps = np.square(x_q.real)  # |X|² without complex temporaries (einsum is ~8× slower here)
+    ps += np.square(x_q.imag)
     ps *= 2.0 / (s1 * s1)
     ps[..., 0] *= 0.5
     if n % 2 == 0:
@@ -88,9 +87,9 @@ def amplitude_from_power(power: np.ndarray, amplitude: Amplitude) -> np.ndarray:
     check_choice("amplitude", amplitude, AMPLITUDES)
     a = np.sqrt(power)
     if amplitude == "peak":
-        a = a * np.sqrt(2.0)
+        a *= float(np.sqrt(2.0))  # Python floats keep the input's dtype (NEP 50)
     elif amplitude == "peak-to-peak":
-        a = a * (2.0 * np.sqrt(2.0))
+        a *= float(2.0 * np.sqrt(2.0))
     return a
 
 
