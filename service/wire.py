@@ -133,8 +133,10 @@ def encode_raw(data: np.ndarray, fmt: str) -> bytes:
     if dtype.kind == "i":
         rounded = np.rint(arr.astype(np.float64))
         info = np.iinfo(dtype)
-        if not np.all(np.isfinite(rounded)) or rounded.min(initial=0) < info.min or (
-            rounded.max(initial=0) > info.max
+        if (
+            not np.all(np.isfinite(rounded))
+            or rounded.min(initial=0) < info.min
+            or (rounded.max(initial=0) > info.max)
         ):
             raise ValueError(f"values do not fit {fmt} ([{info.min}, {info.max}], finite)")
         arr = rounded
@@ -159,9 +161,7 @@ class Frame:
         return int(self.data.shape[1])
 
 
-def encode_frame(
-    data: np.ndarray, fmt: str, fs: float, first_index: int, t_ns: int = 0
-) -> bytes:
+def encode_frame(data: np.ndarray, fmt: str, fs: float, first_index: int, t_ns: int = 0) -> bytes:
     """One framed-format frame holding ``data`` (float ``[C, n]``, raw units, n >= 1).
 
     ``fs`` in Hz, ``first_index`` in samples (0 … 2⁶⁴−1), ``t_ns`` in ns since the Unix
@@ -180,8 +180,15 @@ def encode_frame(
     if not 0 <= first_index < 2**64:
         raise ValueError(f"first_index={first_index!r} must be in [0, 2**64)")
     head = _HEAD.pack(
-        MAGIC, VERSION, FORMAT_CODES[fmt], channels, float(fs), int(first_index), int(t_ns),
-        len(payload), zlib.crc32(payload),
+        MAGIC,
+        VERSION,
+        FORMAT_CODES[fmt],
+        channels,
+        float(fs),
+        int(first_index),
+        int(t_ns),
+        len(payload),
+        zlib.crc32(payload),
     )
     return head + struct.pack("<I", zlib.crc32(head)) + payload
 

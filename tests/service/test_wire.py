@@ -18,7 +18,8 @@ LAYOUT = struct.Struct("<4sBBHdQqIII")
 
 def _frames_equal(a: list[wire.Frame], b: list[wire.Frame]) -> bool:
     return len(a) == len(b) and all(
-        (x.channels, x.fs, x.first_index, x.t_ns, x.fmt) == (y.channels, y.fs, y.first_index, y.t_ns, y.fmt)
+        (x.channels, x.fs, x.first_index, x.t_ns, x.fmt)
+        == (y.channels, y.fs, y.first_index, y.t_ns, y.fmt)
         and np.array_equal(x.data, y.data, equal_nan=True)
         for x, y in zip(a, b, strict=True)
     )
@@ -42,9 +43,15 @@ def test_header_layout_matches_documented_table() -> None:
     assert pcrc == zlib.crc32(payload) and hcrc == zlib.crc32(b[:40])
 
 
-@pytest.mark.parametrize(("fmt", "code", "pack"), [
-    ("s16le", 0, "h"), ("s32le", 1, "i"), ("f32le", 2, "f"), ("f64le", 3, "d"),
-])
+@pytest.mark.parametrize(
+    ("fmt", "code", "pack"),
+    [
+        ("s16le", 0, "h"),
+        ("s32le", 1, "i"),
+        ("f32le", 2, "f"),
+        ("f64le", 3, "d"),
+    ],
+)
 def test_decode_raw_matches_struct_packing(fmt: str, code: int, pack: str) -> None:
     values = [0, 1, -1, 1000, -32768, 32767, 7, 12345, -5]  # 3 channels x 3 samples
     buf = struct.pack(f"<{len(values)}{pack}", *values)
@@ -77,7 +84,13 @@ def test_frame_round_trip_every_format(fmt: str) -> None:
         x = rng.standard_normal((3, 100))
     fr = wire.decode_datagram(wire.encode_frame(x, fmt, 25600.0, 2**63 + 5, -3))
     assert (fr.channels, fr.fs, fr.first_index, fr.t_ns, fr.fmt, fr.n) == (
-        3, 25600.0, 2**63 + 5, -3, fmt, 100)
+        3,
+        25600.0,
+        2**63 + 5,
+        -3,
+        fmt,
+        100,
+    )
     assert fr.data.dtype == np.float32
     np.testing.assert_array_equal(fr.data, x.astype(np.float32))
 
@@ -94,11 +107,15 @@ def test_encode_rejects_values_outside_integer_range() -> None:
         wire.encode_raw(np.array([[32768.0]]), "s16le")
     with pytest.raises(ValueError, match="do not fit s32le"):
         wire.encode_raw(np.array([[np.nan]]), "s32le")
-    assert wire.encode_raw(np.array([[32767.4, -32768.0]]), "s16le") == struct.pack("<2h", 32767, -32768)
+    assert wire.encode_raw(np.array([[32767.4, -32768.0]]), "s16le") == struct.pack(
+        "<2h", 32767, -32768
+    )
 
 
 def test_format_choice_errors_list_allowed_values() -> None:
-    with pytest.raises(ValueError, match=r"format='f16le' is not one of 's16le', 's32le', 'f32le', 'f64le'"):
+    with pytest.raises(
+        ValueError, match=r"format='f16le' is not one of 's16le', 's32le', 'f32le', 'f64le'"
+    ):
         wire.decode_raw(b"", "f16le", 1)
     with pytest.raises(ValueError, match="format='u8' is not one of"):
         wire.encode_frame(np.zeros((1, 1)), "u8", 1.0, 0)
@@ -139,17 +156,22 @@ def _corrupt(frame: bytes, offset: int) -> bytes:
     return bytes(b)
 
 
-@pytest.mark.parametrize(("offset", "reason"), [
-    (10, "header CRC mismatch"),      # inside the sample-rate field
-    (33, "header CRC mismatch"),      # inside the payload length
-    (50, "payload CRC mismatch"),     # inside the payload
-])
+@pytest.mark.parametrize(
+    ("offset", "reason"),
+    [
+        (10, "header CRC mismatch"),  # inside the sample-rate field
+        (33, "header CRC mismatch"),  # inside the payload length
+        (50, "payload CRC mismatch"),  # inside the payload
+    ],
+)
 def test_corrupted_frame_rejected_once_neighbours_kept(offset: int, reason: str) -> None:
     a, b, c = _good_frames(3, seed=5)
     dec = wire.FrameDecoder()
     got = dec.feed(a + _corrupt(b, offset) + c)
     assert [g.first_index for g in got] == [
-        wire.decode_datagram(a).first_index, wire.decode_datagram(c).first_index]
+        wire.decode_datagram(a).first_index,
+        wire.decode_datagram(c).first_index,
+    ]
     assert dec.malformed == 1 and dec.last_reason == reason
 
 
@@ -162,21 +184,33 @@ def test_cut_off_frame_does_not_swallow_the_next() -> None:
     assert dec.malformed == 1 and dec.last_reason == "payload CRC mismatch"
 
 
-def _raw_header(*, version: int = 1, code: int = 2, channels: int = 1, fs: float = 100.0,
-                length: int = 4, payload: bytes = b"\0\0\0\0") -> bytes:
-    head = LAYOUT.pack(b"QVRF", version, code, channels, fs, 0, 0, length, zlib.crc32(payload), 0)[:40]
+def _raw_header(
+    *,
+    version: int = 1,
+    code: int = 2,
+    channels: int = 1,
+    fs: float = 100.0,
+    length: int = 4,
+    payload: bytes = b"\0\0\0\0",
+) -> bytes:
+    head = LAYOUT.pack(b"QVRF", version, code, channels, fs, 0, 0, length, zlib.crc32(payload), 0)[
+        :40
+    ]
     return head + struct.pack("<I", zlib.crc32(head)) + payload
 
 
-@pytest.mark.parametrize(("kw", "reason"), [
-    ({"version": 2}, "unsupported version 2"),
-    ({"code": 9}, "unknown sample format code 9"),
-    ({"channels": 0}, "channel count 0 outside 1-4096"),
-    ({"fs": float("nan")}, "sample rate nan Hz"),
-    ({"fs": -1.0}, "sample rate -1.0 Hz"),
-    ({"length": 6, "payload": b"\0" * 6}, "payload length 6 is not a non-zero multiple of 4"),
-    ({"length": 0, "payload": b""}, "payload length 0 is not a non-zero multiple"),
-])
+@pytest.mark.parametrize(
+    ("kw", "reason"),
+    [
+        ({"version": 2}, "unsupported version 2"),
+        ({"code": 9}, "unknown sample format code 9"),
+        ({"channels": 0}, "channel count 0 outside 1-4096"),
+        ({"fs": float("nan")}, "sample rate nan Hz"),
+        ({"fs": -1.0}, "sample rate -1.0 Hz"),
+        ({"length": 6, "payload": b"\0" * 6}, "payload length 6 is not a non-zero multiple of 4"),
+        ({"length": 0, "payload": b""}, "payload length 0 is not a non-zero multiple"),
+    ],
+)
 def test_bad_header_fields_rejected_with_reason(kw: dict[str, object], reason: str) -> None:
     bad = _raw_header(**kw)  # type: ignore[arg-type]
     with pytest.raises(wire.WireError, match=reason):
@@ -222,9 +256,14 @@ def test_partial_frame_is_held_until_complete() -> None:
 
 
 _frame_lists = st.lists(
-    st.tuples(st.sampled_from(wire.RAW_FORMATS), st.integers(1, 3), st.integers(1, 20),
-              st.integers(0, 2**40)),
-    min_size=1, max_size=6,
+    st.tuples(
+        st.sampled_from(wire.RAW_FORMATS),
+        st.integers(1, 3),
+        st.integers(1, 20),
+        st.integers(0, 2**40),
+    ),
+    min_size=1,
+    max_size=6,
 )
 
 
@@ -238,8 +277,9 @@ def _build(specs: list[tuple[str, int, int, int]]) -> list[bytes]:
 
 @settings(derandomize=True, max_examples=150, deadline=None)
 @given(_frame_lists, st.lists(st.binary(max_size=60), max_size=7), st.data())
-def test_random_chunking_and_garbage(specs: list[tuple[str, int, int, int]],
-                                     garbage: list[bytes], data: st.DataObject) -> None:
+def test_random_chunking_and_garbage(
+    specs: list[tuple[str, int, int, int]], garbage: list[bytes], data: st.DataObject
+) -> None:
     frames = _build(specs)
     pieces: list[bytes] = []
     for i, f in enumerate(frames):
@@ -247,7 +287,7 @@ def test_random_chunking_and_garbage(specs: list[tuple[str, int, int, int]],
             # garbage, sometimes with a stray magic inside to force a resync
             g = garbage[i]
             if data.draw(st.booleans()):
-                g = g[: len(g) // 2] + wire.MAGIC + g[len(g) // 2:]
+                g = g[: len(g) // 2] + wire.MAGIC + g[len(g) // 2 :]
             pieces.append(g)
         pieces.append(f)
     stream = b"".join(pieces)
@@ -260,7 +300,10 @@ def test_random_chunking_and_garbage(specs: list[tuple[str, int, int, int]],
         parts += chunked.feed(stream[lo:hi])
     assert _frames_equal(whole, parts)
     assert (one.malformed, one.skipped_bytes, one.pending_bytes) == (
-        chunked.malformed, chunked.skipped_bytes, chunked.pending_bytes)
+        chunked.malformed,
+        chunked.skipped_bytes,
+        chunked.pending_bytes,
+    )
     # every good frame comes through (a garbage header passing a CRC-32 is a 2**-32 event)
     assert _frames_equal(whole, [wire.decode_datagram(f) for f in frames])
 
