@@ -280,12 +280,14 @@ class FileSourceConfig(_SourceBase):
 
 class SimulatedSourceConfig(_SourceBase):
     kind: Literal["simulated"] = _d("Source kind.")
-    scenario: Name = Field("demo-plant", description="Name of the simulated plant scenario.")
+    scenario: Name = Field(
+        "demo", description="Simulated plant scenario (see service/sources/simulated.py: 'demo')."
+    )
     speed: float = Field(
         1.0,
-        gt=0,
+        ge=0,
         le=1000,
-        description="Time-lapse factor of the scripted fault growth (1 = real time).",
+        description="Pace as a multiple of real time (0 = as fast as the pipeline takes it).",
     )
     channels: list[Id] = Field(
         default_factory=list,
@@ -658,6 +660,12 @@ class _Checker:
         seen_id: dict[str, int] = {}
         seen_listen: dict[tuple[str, str], int] = {}
         for i, s in enumerate(cfg.sources):
+            if isinstance(s, SimulatedSourceConfig):
+                from .sources.simulated import SCENARIOS  # the plant model names them
+
+                if s.scenario not in SCENARIOS:
+                    listed = ", ".join(map(repr, SCENARIOS))
+                    self.add(f"sources[{i}].scenario: {s.scenario!r} is not one of {listed}")
             if s.id in seen_id:
                 self.add(f"sources[{i}].id: {s.id!r} repeats sources[{seen_id[s.id]}]")
             seen_id.setdefault(s.id, i)

@@ -484,13 +484,18 @@ def test_relative_file_path_taken_from_config_folder(tmp_path: Path) -> None:
 
 def test_simulated_source_without_channel_list_defers_channel_checks() -> None:
     d = {
-        "sources": [{"id": "demo", "kind": "simulated", "scenario": "demo-plant", "speed": 10}],
+        "sources": [{"id": "demo", "kind": "simulated", "scenario": "demo", "speed": 10}],
         "bands": [{"channel": "pump-1-de", "name": "overall", "lo_hz": 10, "hi_hz": 1000}],
     }
     cfg = _parse(d)
     src = cfg.sources[0]
     assert isinstance(src, qc.SimulatedSourceConfig)
-    assert (src.scenario, src.speed, src.channels) == ("demo-plant", 10.0, [])
+    assert (src.scenario, src.speed, src.channels) == ("demo", 10.0, [])
+    d["sources"][0]["scenario"] = "refinery"
+    with pytest.raises(
+        ConfigError, match=r"sources\[0\]\.scenario: 'refinery' is not one of 'demo'"
+    ):
+        _parse(d)
 
 
 def test_every_setting_has_help_text() -> None:
