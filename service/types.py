@@ -57,3 +57,54 @@ class SourceCounters:
         }
         d.update(self.extra)
         return d
+
+
+@dataclass(frozen=True, slots=True)
+class BandValue:
+    name: str
+    lo_hz: float
+    hi_hz: float
+    value: float  # RMS in the frame's display unit (NaN if unresolved)
+
+
+@dataclass(frozen=True, slots=True)
+class ToneValue:
+    name: str
+    frequency_hz: float
+    value: float  # in the frame's display unit and amplitude type
+
+
+@dataclass(frozen=True, slots=True)
+class SpectralFrame:
+    """One channel's averaged spectrum and the values computed from it, at one moment.
+
+    ``power`` is float32 ``[Q]``: the averaged power spectrum in ``input_unit``² (RMS² per
+    line, Heinzel 2002 §9) on f[q] = f0_hz + q·df_hz, q = 0…lines; every display unit and
+    amplitude type derives from it (see ``service.spectra``). ``bands``, ``tones``,
+    ``peaks`` and ``overall`` are in the display ``unit`` and ``amplitude`` (bands and
+    overall are always RMS). ``t_ns`` is the time just after the newest frame's last sample.
+    """
+
+    channel: str
+    profile: str
+    seq: int
+    t_ns: int
+    fs: float
+    n: int
+    df_hz: float
+    f0_hz: float
+    lines: int
+    fmax_hz: float
+    window: str
+    enbw_bins: float
+    averaging: str
+    averages: int
+    input_unit: str
+    unit: str
+    amplitude: str
+    lowcut_hz: float
+    power: np.ndarray
+    overall: float
+    bands: tuple[BandValue, ...]
+    tones: tuple[ToneValue, ...]
+    peaks: tuple[ToneValue, ...]

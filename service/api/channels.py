@@ -1,0 +1,110 @@
+"""Channel resources: list, state, latest spectrum (JSON/CSV/NPY, any unit), bands, tones.
+
+Reads the hub's latest frames; never touches an engine."""
+
+from __future__ import annotations
+
+from typing import Annotated, Any, Literal
+
+import numpy as np
+from fastapi import APIRouter, Query, Response
+
+from dsp.types import AMPLITUDES, OUTPUT_UNITS, QUANTITIES
+
+from ..spectra import spectrum_values, to_csv, to_npy
+from ..types import SpectralFrame
+from .deps import ChannelDep, FrameDep, HubDep
+
+router = APIRouter(tags=["channels"])
+
+UnitQ = Literal["g", "m/s2", "mm/s", "in/s", "um", "mil", "acceleration", "velocity",
+                "displacement"]
+AmplitudeQ = Literal["peak", "rms", "peak-to-peak"]
+assert set(UnitQ.__args__) == set(OUTPUT_UNITS + QUANTITIES)  # type: ignore[attr-defined]
+assert set(AmplitudeQ.__args__) == set(AMPLITUDES)  # type: ignore[attr-defined]
+
+
+def _num(v: float) -> float | None:
+    """JSON has no NaN: unresolved values (e.g. an order band without a speed) are null."""
+    return None if not np.isfinite(v) else float(v)
+
+
+def _stamp(frame: SpectralFrame) -> dict[str, Any]:
+    return {"channel": frame.channel, "profile": frame.profile, "seq": frame.seq,
+            "timestamp_ns": frame.t_ns, "timestamp": _iso(frame.t_ns)}
+
+
+def _iso(t_ns: int) -> str:
+    return np.datetime_as_string(np.datetime64(t_ns, "ns"), unit="ms") + "Z"
+
+
+def _summary(hub: Any, cid: str) -> dict[str, Any]:
+    st = hub.channels[cid]
+    d = st.as_dict()
+    f = hub.latest.get(cid)
+    if f is not None:
+        d["latest"] = {**_stamp(f), "unit": f.unit, "overall": _num(f.overall),
+                       "fmax_hz": f.fmax_hz, "lines": f.lines}
+    else:
+        d["latest"] = None
+    return d
+
+
+@router.get("/channels", summary="Every channel with its state, counters and latest overall")
+def list_channels(hub: HubDep) -> list[dict[str, Any]]:
+    return [_summary(hub, cid) for cid in hub.channels]
+
+
+@router.get("/channels/{channel_id}", summary="One channel's state and counters")
+def get_channel(channel: ChannelDep, hub: HubDep) -> dict[str, Any]:
+    return _summary(hub, channel.id)
+
+
+@router.get(
+    "/channels/{channel_id}/spectrum",
+    summary="Latest averaged spectrum in any unit and amplitude type",
+    responses={200: {"content": {"application/json": {}, "text/csv": {},
+                                 "application/octet-stream": {}}},
+               404: {"description": "unknown channel"},
+               503: {"description": "no spectrum yet"}},
+)
+def get_spectrum(
+    frame: FrameDep,
+    unit: Annotated[UnitQ | None, Query(description="Unit or quantity; default: the channel's")] = None,
+    amplitude: Annotated[AmplitudeQ | None, Query(description="peak | rms | peak-to-peak")] = None,
+    format: Annotated[Literal["json", "csv", "npy"], Query(description="json | csv | npy")] = "json",
+) -> Any:
+    values, u, a = spectrum_values(frame, unit, amplitude)
+    if format == "csv":
+        return Response(to_csv(frame, values, u, a), media_type="text/csv")
+    if format == "npy":
+        return Response(to_npy(values), media_type="application/octet-stream",
+                        headers={"X-Quaver-F0-Hz": str(frame.f0_hz),
+                                 "X-Quaver-Df-Hz": repr(frame.df_hz),
+                                 "X-Quaver-Unit": u, "X-Quaver-Amplitude": a})
+    return {
+        **_stamp(frame), "f0_hz": frame.f0_hz, "df_hz": frame.df_hz, "lines": frame.lines,
+        "fmax_hz": frame.fmax_hz, "unit": u, "amplitude": a, "averages": frame.averages,
+        "averaging": frame.averaging, "window": frame.window, "enbw_bins": frame.enbw_bins,
+        "lowcut_hz": frame.lowcut_hz, "values": values.tolist(),
+    }
+
+
+@router.get("/channels/{channel_id}/bands", summary="Latest band RMS values and the overall")
+def get_bands(frame: FrameDep) -> dict[str, Any]:
+    return {
+        **_stamp(frame), "unit": frame.unit, "amplitude": "rms",
+        "overall": _num(frame.overall),
+        "bands": [{"name": b.name, "lo_hz": _num(b.lo_hz), "hi_hz": _num(b.hi_hz),
+                   "value": _num(b.value)} for b in frame.bands],
+    }
+
+
+@router.get("/channels/{channel_id}/tones", summary="Tracked tones and the largest peaks")
+def get_tones(frame: FrameDep) -> dict[str, Any]:
+    return {
+        **_stamp(frame), "unit": frame.unit, "amplitude": frame.amplitude,
+        "tones": [{"name": t.name, "frequency_hz": _num(t.frequency_hz), "amplitude": _num(t.value)}
+                  for t in frame.tones],
+        "peaks": [{"frequency_hz": p.frequency_hz, "amplitude": p.value} for p in frame.peaks],
+    }

@@ -1,0 +1,43 @@
+"""Shared FastAPI dependencies (the hub, a channel's latest frame).
+
+No routes here; no I/O beyond reading the hub."""
+
+from __future__ import annotations
+
+from typing import Annotated
+
+from fastapi import Depends, HTTPException, Path, Request
+
+from ..hub import Hub
+from ..pipeline import ChannelState
+from ..types import SpectralFrame
+
+
+def get_hub(request: Request) -> Hub:
+    return request.app.state.hub  # type: ignore[no-any-return]
+
+
+HubDep = Annotated[Hub, Depends(get_hub)]
+
+ChannelId = Annotated[str, Path(description="Channel id", max_length=64)]
+
+
+def get_channel(channel_id: ChannelId, hub: HubDep) -> ChannelState:
+    st = hub.channels.get(channel_id)
+    if st is None:
+        raise HTTPException(404, f"unknown channel {channel_id!r}")
+    return st
+
+
+def get_frame(channel_id: ChannelId, hub: HubDep) -> SpectralFrame:
+    get_channel(channel_id, hub)
+    frame = hub.latest.get(channel_id)
+    if frame is None:
+        raise HTTPException(
+            503, f"channel {channel_id!r} has no spectrum yet", headers={"Retry-After": "1"}
+        )
+    return frame
+
+
+ChannelDep = Annotated[ChannelState, Depends(get_channel)]
+FrameDep = Annotated[SpectralFrame, Depends(get_frame)]

@@ -1,0 +1,268 @@
+"""The pipeline: per source, blocks → sensor checks → dsp analyzers → SpectralFrames for the hub.
+
+Owns one worker thread per source for the numpy work; knows nothing about HTTP or storage.
+
+Real-time contract: a source's blocks are processed in order on that source's worker
+thread; the event loop only awaits the result and hands frames to the hub. If the worker
+falls behind, the source's bounded queue drops its oldest blocks and counts them
+(``counters.drops``); the pipeline reports that channel as ``overrun`` for a while.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import logging
+import time
+from collections.abc import Callable, Sequence
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from dsp.analyzer import Analyzer
+from dsp.bands import Band
+
+from .config import Config, bands_for, channel_settings, effective_analysis, tones_for
+from .profiles import analysis_spec
+from .types import BandValue, SampleBlock, SpectralFrame, ToneValue
+
+log = logging.getLogger("quaver.pipeline")
+
+OVERALL = "_overall"  # internal band: RMS over lowcut_hz … fmax_hz in the display unit
+FAULT_HOLD_S = 2.0  # a sensor fault is held this long after the last bad block (common practice)
+OVERRUN_HOLD_S = 5.0
+
+
+@dataclass
+class ChannelState:
+    """What the service knows about one channel; updated by its source's worker thread."""
+
+    id: str
+    source_id: str
+    machine: str
+    description: str
+    input_unit: str
+    sensitivity: float
+    speed_rpm: float | None
+    clip_level: float | None
+    fs: float = 0.0
+    status: str = "no-data"  # ok | no-data | gap | sensor-fault | overrun
+    fault: str = ""  # why the sensor is in fault, empty when ok
+    fault_until: float = 0.0  # monotonic seconds
+    overrun_until: float = 0.0
+    samples: int = 0
+    gaps: int = 0
+    frames: int = 0
+    nonfinite_blocks: int = 0
+    flat_blocks: int = 0
+    clipped_blocks: int = 0
+    sensor_faults: int = 0  # transitions into sensor fault
+    last_block_ns: int = 0
+    notes: tuple[str, ...] = ()
+
+    def as_dict(self) -> dict[str, object]:
+        return {
+            "id": self.id, "source": self.source_id, "machine": self.machine,
+            "description": self.description, "sample_rate_hz": self.fs,
+            "input_unit": self.input_unit, "sensitivity": self.sensitivity,
+            "speed_rpm": self.speed_rpm, "status": self.status, "fault": self.fault,
+            "counters": {
+                "samples": self.samples, "gaps": self.gaps, "frames": self.frames,
+                "nonfinite_blocks": self.nonfinite_blocks, "flat_blocks": self.flat_blocks,
+                "clipped_blocks": self.clipped_blocks, "sensor_faults": self.sensor_faults,
+            },
+            "notes": list(self.notes),
+        }
+
+
+@dataclass
+class ChannelGroup:
+    """Channels of one source that share analysis settings: one vectorised Analyzer."""
+
+    profile: str
+    rows: np.ndarray  # indices of these channels in the source's blocks
+    channel_ids: tuple[str, ...]
+    analyzer: Analyzer
+    bands: tuple[Band, ...]  # user bands, in order (the analyzer also has OVERALL last)
+
+
+@dataclass
+class SourcePipeline:
+    source: object  # a Source: id, channel_ids, fs, counters, async iteration, aclose()
+    groups: list[ChannelGroup]
+    channels: dict[str, ChannelState]
+    publish: Callable[[list[SpectralFrame], float], None]
+    seq: int = 0
+    blocks: int = 0
+    latency_s: float = 0.0
+    _next_index: int | None = None
+    _executor: ThreadPoolExecutor = field(init=False)
+
+    def __post_init__(self) -> None:
+        sid = getattr(self.source, "id", "source")
+        self._executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix=f"dsp-{sid}")
+        self._last_drops = 0
+
+    async def run(self) -> None:
+        """Consume the source until it ends or the task is cancelled."""
+        loop = asyncio.get_running_loop()
+        try:
+            async for block in self.source:  # type: ignore[attr-defined]
+                t0 = time.perf_counter()
+                frames = await loop.run_in_executor(self._executor, self.process, block)
+                self.latency_s = time.perf_counter() - t0
+                if frames:
+                    self.publish(frames, self.latency_s)
+        finally:
+            self._executor.shutdown(wait=False, cancel_futures=True)
+
+    # -- worker thread -----------------------------------------------------------------
+    def process(self, block: SampleBlock) -> list[SpectralFrame]:
+        """Sensor checks, gap handling and analysis of one block (runs on the worker thread)."""
+        now = time.monotonic()
+        self.blocks += 1
+        states = [self.channels[c] for c in block.channel_ids]
+        x = block.data
+        gap = self._next_index is not None and block.first_index != self._next_index
+        self._next_index = block.first_index + block.n
+        drops = int(getattr(getattr(self.source, "counters", None), "drops", 0))
+        overrun = drops > self._last_drops
+        self._last_drops = drops
+        sens = np.array([s.sensitivity for s in states], dtype=np.float32)[:, None]
+        finite = np.isfinite(x).all(axis=1)
+        if not finite.all():
+            x = np.where(np.isfinite(x), x, 0.0).astype(np.float32)
+        ptp = np.ptp(x, axis=1) if x.shape[1] else np.zeros(x.shape[0])
+        flat = (ptp == 0) & (x.shape[1] >= 0.05 * block.fs)
+        for c, st in enumerate(states):
+            st.fs = block.fs
+            st.samples += block.n
+            st.last_block_ns = block.t0_ns
+            if gap:
+                st.gaps += 1
+            clipped = st.clip_level is not None and bool(
+                np.any(np.abs(x[c]) >= st.clip_level)
+            )
+            reason = ("non-finite samples (NaN/inf)" if not finite[c] else
+                      "flat line" if flat[c] else "clipping" if clipped else "")
+            if reason:
+                st.nonfinite_blocks += not finite[c]
+                st.flat_blocks += bool(flat[c])
+                st.clipped_blocks += clipped
+                if st.status != "sensor-fault":
+                    st.sensor_faults += 1
+                    log.warning("channel %s: sensor fault: %s", st.id, reason)
+                st.fault, st.fault_until = reason, now + FAULT_HOLD_S
+            if overrun:
+                st.overrun_until = now + OVERRUN_HOLD_S
+        x = x * sens  # raw units → engineering units
+        frames: list[SpectralFrame] = []
+        for g in self.groups:
+            an = g.analyzer
+            new = an.push(x[g.rows], first_index=block.first_index)
+            if gap:
+                for cid in g.channel_ids:
+                    self.channels[cid].status = "gap"
+            if new:
+                frames += self._frames(g, block, new)
+        for st in states:
+            if now < st.fault_until:
+                st.status = "sensor-fault"
+            elif st.status == "sensor-fault":
+                st.status, st.fault = "ok", ""
+                log.info("channel %s: sensor fault cleared", st.id)
+            elif now < st.overrun_until:
+                st.status = "overrun"
+            elif st.status in ("overrun", "no-data") and st.frames:
+                st.status = "ok"
+        return frames
+
+    def _frames(self, g: ChannelGroup, block: SampleBlock, new: int) -> list[SpectralFrame]:
+        an = g.analyzer
+        spec = an.spec
+        lines = an.grid.lines
+        unit = an.unit
+        power_in = an.power(spec.input_unit)[:, : lines + 1].astype(np.float32)
+        bands = an.bands()
+        edges = an.band_edges_hz
+        tones = an.tones()
+        tone_hz = an.tone_hz
+        peaks = an.peaks()
+        end = an.last_end_index or 0
+        # Time of the newest frame's end, from the block's own clock.
+        t_ns = int(block.t0_ns + (end - block.first_index) * 1e9 / block.fs)
+        out = []
+        for c, cid in enumerate(g.channel_ids):
+            st = self.channels[cid]
+            st.frames += new
+            if st.status in ("gap", "no-data"):
+                st.status = "ok"
+            self.seq += 1
+            out.append(SpectralFrame(
+                channel=cid, profile=g.profile, seq=self.seq, t_ns=t_ns, fs=an.grid.fs,
+                n=an.grid.n, df_hz=an.grid.df_hz, f0_hz=0.0, lines=lines,
+                fmax_hz=an.grid.fmax_hz, window=spec.window, enbw_bins=an.info.enbw_bins,
+                averaging=spec.averaging, averages=an.count, input_unit=spec.input_unit,
+                unit=unit, amplitude=spec.amplitude, lowcut_hz=an.lowcut_hz,
+                power=power_in[c], overall=float(bands[c, -1]),
+                bands=tuple(
+                    BandValue(b.name, float(edges[c, i, 0]), float(edges[c, i, 1]),
+                              float(bands[c, i]))
+                    for i, b in enumerate(g.bands)
+                ),
+                tones=tuple(
+                    ToneValue(t.name, float(tone_hz[c, i]), float(tones[c, i]))
+                    for i, t in enumerate(spec.tones)
+                ),
+                peaks=tuple(
+                    ToneValue("", float(f), float(a))
+                    for f, a in zip(peaks.frequency_hz[c], peaks.amplitude_rms[c], strict=True)
+                    if np.isfinite(f)
+                ),
+            ))
+        return out
+
+
+def build_groups(cfg: Config, source_id: str, channel_ids: Sequence[str], fs: float,
+                 channels: dict[str, ChannelState]) -> list[ChannelGroup]:
+    """Group a source's channels by identical analysis set-up; one Analyzer per group."""
+    keyed: dict[str, list[int]] = {}
+    specs: dict[str, tuple[object, tuple[Band, ...], tuple[str, ...]]] = {}
+    for row, cid in enumerate(channel_ids):
+        ch = channel_settings(cfg, cid)
+        settings = effective_analysis(cfg, cid)
+        bands = tuple(bands_for(cfg, cid))
+        tones = tuple(tones_for(cfg, cid))
+        res = analysis_spec(settings, fs, input_unit=ch.input_unit,
+                            bands=bands + (Band(OVERALL, settings.lowcut_hz,
+                                                min(settings.fmax_hz, fs / 2.56)),),
+                            tones=tones)
+        key = repr((res.spec, ch.input_unit))
+        keyed.setdefault(key, []).append(row)
+        specs[key] = (res.spec, bands, res.notes)
+        channels[cid].notes = res.notes
+    groups = []
+    for key, rows in keyed.items():
+        spec, bands, _ = specs[key]
+        ids = tuple(channel_ids[r] for r in rows)
+        speed = np.array([
+            (channel_settings(cfg, c).speed_rpm or np.nan) / 60.0 for c in ids
+        ])
+        groups.append(ChannelGroup(
+            profile="default", rows=np.array(rows), channel_ids=ids,
+            analyzer=Analyzer(spec, len(ids), speed_hz=speed),  # type: ignore[arg-type]
+            bands=bands,
+        ))
+    return groups
+
+
+def channel_states(cfg: Config, source_id: str, channel_ids: Sequence[str]) -> dict[str, ChannelState]:
+    out = {}
+    for cid in channel_ids:
+        ch = channel_settings(cfg, cid)
+        out[cid] = ChannelState(
+            id=cid, source_id=source_id, machine=ch.machine, description=ch.description,
+            input_unit=ch.input_unit, sensitivity=ch.sensitivity, speed_rpm=ch.speed_rpm,
+            clip_level=ch.clip_level,
+        )
+    return out
