@@ -74,8 +74,9 @@ class TextParser:
 
     Feed it complete lines (:meth:`parse`); it numbers lines across calls for its reports.
     ``columns`` fixes the channel count (else the header or first data row sets it).
-    ``malformed`` counts skipped rows; ``problems`` keeps the latest reasons, each
-    ``"line N: ..."``. "nan" and "inf" are numbers and pass through.
+    ``malformed`` counts skipped rows; ``problems`` keeps the first ``max_problems``
+    reasons and ``last_problem`` the latest, each ``"line N: ..."``. "nan" and "inf" are
+    numbers and pass through.
     """
 
     def __init__(self, columns: int | None = None, max_problems: int = MAX_PROBLEMS) -> None:
@@ -85,12 +86,14 @@ class TextParser:
         self.header: tuple[str, ...] | None = None
         self.line_no = 0  # lines consumed so far
         self.malformed = 0
+        self.last_problem = ""
         self.problems: list[str] = []
         self._max_problems = max_problems
         self._seen_content = False
 
     def _problem(self, text: str) -> None:
         self.malformed += 1
+        self.last_problem = text
         if len(self.problems) < self._max_problems:
             self.problems.append(text)
 

@@ -1,0 +1,251 @@
+"""The source contract (``async for block in source`` yields SampleBlocks) and a queued base
+class that keeps it: bounded hand-over, drop-oldest on overflow, counters, clean stop.
+
+Knows nothing about the engine, the pipeline, the config file or HTTP.
+
+Real-time contract
+------------------
+* **Producer side.** Socket callbacks and the file poller run on the event loop. They may
+  not block, sleep or await the consumer: they decode what arrived, wrap an owned copy in
+  one :class:`~service.types.SampleBlock` and hand it over with a call that never waits.
+* **Overflow.** Blocks wait in a queue of ``queue_blocks``. When it is full the *oldest*
+  queued block is dropped, ``counters.drops`` goes up and ``status()["overrun"]`` is true
+  until the consumer has emptied the queue. Overflow is never an exception. The dropped
+  block leaves a jump in ``first_index``, so the pipeline sees a gap.
+* **Bad input** (malformed frames or rows, disconnects, truncation, rotation) is counted in
+  ``counters`` with the latest reason in ``counters.last_error``; it never ends the stream.
+* **Sample index.** ``first_index`` counts samples since the source began. Any block whose
+  ``first_index`` is not the previous block's ``first_index + n`` follows a gap; sources
+  add ``GAP_SAMPLES`` to the index when a stream restarts (reconnect, truncation,
+  rotation) so that the jump is visible, and count it in ``counters.gaps``.
+* **Stopping.** ``await source.aclose()`` stops the producers, discards queued blocks and
+  ends the iteration of a waiting consumer. A finite source (a replayed recording) ends
+  the iteration after its last block. A setup fault (a port that cannot be bound, a
+  recording that cannot be read) raises from ``start()``, which the first ``__anext__``
+  calls if nobody did.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import time
+from abc import ABC, abstractmethod
+from collections.abc import Callable, Sequence
+from typing import Any, ClassVar, Protocol, runtime_checkable
+
+import numpy as np
+
+from ..types import SampleBlock, SourceCounters
+from ..wire import Frame
+
+__all__ = ["GAP_SAMPLES", "QueuedSource", "Source"]
+
+GAP_SAMPLES = 1  # index jump marking a restarted stream
+
+
+@runtime_checkable
+class Source(Protocol):
+    """What the pipeline needs from any source (the simulated plant included)."""
+
+    id: str
+    channel_ids: tuple[str, ...]
+    counters: SourceCounters
+
+    @property
+    def fs(self) -> float | None: ...  # Hz; None until known (a WAV not yet seen)
+
+    def __aiter__(self) -> Any: ...
+
+    async def __anext__(self) -> SampleBlock: ...
+
+    async def aclose(self) -> None: ...
+
+    def status(self) -> dict[str, object]: ...
+
+
+class _End:
+    """Queue marker: the stream has ended."""
+
+
+_END = _End()
+
+
+class QueuedSource(ABC):
+    """Base of the I/O sources: owns the hand-over queue, counters and start/stop."""
+
+    kind: ClassVar[str] = "?"
+
+    def __init__(
+        self,
+        source_id: str,
+        channel_ids: Sequence[str],
+        fs: float | None,
+        *,
+        queue_blocks: int = 256,
+        clock: Callable[[], int] = time.time_ns,
+    ) -> None:
+        if not channel_ids:
+            raise ValueError(f"source {source_id!r}: needs at least one channel")
+        if queue_blocks < 1:
+            raise ValueError(f"queue_blocks={queue_blocks!r} must be >= 1")
+        self.id = source_id
+        self.channel_ids = tuple(channel_ids)
+        self._fs = fs
+        self.counters = SourceCounters()
+        self.overrun = False
+        self.state = "created"
+        self._clock = clock
+        self._queue: asyncio.Queue[SampleBlock | _End] = asyncio.Queue(maxsize=queue_blocks)
+        self._started = False
+        self._closed = False
+        self._tasks: set[asyncio.Task[None]] = set()
+
+    @property
+    def fs(self) -> float | None:
+        """Sample rate in Hz (None until a WAV header has told it)."""
+        return self._fs
+
+    # --- lifecycle -------------------------------------------------------------------
+
+    async def start(self) -> None:
+        """Bind / open and start producing; raises if the source cannot be set up."""
+        if self._started:
+            return
+        self._started = True
+        try:
+            await self._start()
+        except BaseException:
+            self.state = "failed"
+            raise
+
+    @abstractmethod
+    async def _start(self) -> None: ...
+
+    async def _stop(self) -> None:  # noqa: B027 - an optional hook
+        """Release sockets and files (override); tasks are cancelled by ``aclose``."""
+
+    def _spawn(self, coro: Any) -> None:
+        task: asyncio.Task[None] = asyncio.get_running_loop().create_task(coro)
+        self._tasks.add(task)
+        task.add_done_callback(self._task_done)
+
+    def _task_done(self, task: asyncio.Task[None]) -> None:
+        self._tasks.discard(task)
+        if not task.cancelled() and task.exception() is not None:
+            exc = task.exception()
+            self.counters.last_error = f"{type(exc).__name__}: {exc}"
+            self.state = "failed"
+            self._end_nowait()
+
+    async def aclose(self) -> None:
+        """Stop producing, drop queued blocks and end the consumer's iteration."""
+        if self._closed:
+            return
+        self._closed = True
+        tasks = list(self._tasks)
+        for t in tasks:
+            t.cancel()
+        await asyncio.gather(*tasks, return_exceptions=True)
+        await self._stop()
+        while not self._queue.empty():
+            self._queue.get_nowait()
+        self._queue.put_nowait(_END)
+        self.state = "closed"
+
+    # --- consumer side ---------------------------------------------------------------
+
+    def __aiter__(self) -> QueuedSource:
+        return self
+
+    async def __anext__(self) -> SampleBlock:
+        if not self._started:
+            await self.start()
+        item = await self._queue.get()
+        if isinstance(item, _End):
+            self._queue.put_nowait(item)  # later calls end too
+            raise StopAsyncIteration
+        if self._queue.empty():
+            self.overrun = False
+        return item
+
+    # --- producer side ---------------------------------------------------------------
+
+    def _block(self, data: np.ndarray, first_index: int, t0_ns: int) -> SampleBlock:
+        fs = self._fs
+        if fs is None:  # a source only produces once it knows its rate
+            raise RuntimeError(f"source {self.id!r} produced samples before knowing fs")
+        self.counters.samples += int(data.shape[1])
+        self.counters.blocks += 1
+        return SampleBlock(self.id, self.channel_ids, data, int(first_index), int(t0_ns), fs)
+
+    def _emit(self, data: np.ndarray, first_index: int, t0_ns: int) -> None:
+        """Hand a block over without waiting; when the queue is full drop the oldest."""
+        if self._closed:
+            return
+        block = self._block(data, first_index, t0_ns)
+        if self._queue.full():
+            old = self._queue.get_nowait()
+            if isinstance(old, _End):  # never drop the end marker
+                self._queue.put_nowait(old)
+                return
+            self.counters.drops += 1
+            self.overrun = True
+        self._queue.put_nowait(block)
+
+    async def _emit_wait(self, data: np.ndarray, first_index: int, t0_ns: int) -> None:
+        """Hand a block over, waiting for room (a recording replay is not real-time)."""
+        if not self._closed:
+            await self._queue.put(self._block(data, first_index, t0_ns))
+
+    def _end_nowait(self) -> None:
+        if self._queue.full():
+            self._queue.get_nowait()
+            self.counters.drops += 1
+        self._queue.put_nowait(_END)
+
+    async def _end(self) -> None:
+        await self._queue.put(_END)
+
+    def _arrival_t0_ns(self, n: int) -> int:
+        """Wall time of the first of ``n`` samples that have just arrived (ns)."""
+        fs = self._fs or 1.0
+        return self._clock() - round(n * 1e9 / fs)
+
+    def _error(self, text: str) -> None:
+        self.counters.last_error = text
+
+    def _bump(self, key: str, by: int = 1) -> None:
+        self.counters.extra[key] = self.counters.extra.get(key, 0) + by
+
+    # --- framed input (TCP and UDP) ----------------------------------------------------
+
+    def _frame_problem(self, frame: Frame) -> str | None:
+        """Why a decoded frame does not fit this source, or None."""
+        if frame.channels != len(self.channel_ids):
+            return (
+                f"frame has {frame.channels} channels; source {self.id!r} declares "
+                f"{len(self.channel_ids)}"
+            )
+        fs = self._fs
+        if fs is not None and abs(frame.fs - fs) > 1e-9 * fs:
+            return f"frame sample rate {frame.fs:g} Hz differs from the configured {fs:g} Hz"
+        return None
+
+    # --- status ----------------------------------------------------------------------
+
+    def _status_extra(self) -> dict[str, object]:
+        return {}
+
+    def status(self) -> dict[str, object]:
+        """Plain data for the API: identity, state, overrun flag, queue depth, counters."""
+        return {
+            "id": self.id,
+            "kind": self.kind,
+            "fs": self._fs,
+            "channels": list(self.channel_ids),
+            "state": self.state,
+            "overrun": self.overrun,
+            "queued": self._queue.qsize(),
+            **self._status_extra(),
+            "counters": self.counters.as_dict(),
+        }
