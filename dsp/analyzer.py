@@ -111,6 +111,37 @@ class AnalysisSpec:
         return replace(self, **changes)  # type: ignore[arg-type]
 
 
+@dataclass(frozen=True)
+class _EdgePlan:
+    """Precomputed index work for band sums (fixed until the band edges change).
+
+    Band edges sit at positions ``pos`` [C, 2B] in cumulative line widths from 0 Hz. The
+    spectrum is cut at the sorted integer parts by one ``np.add.reduceat``; a cumulative
+    sum of the segments gives Σ_{q<i} P[q] at each edge, plus the fractional line."""
+
+    starts: np.ndarray  # flat reduceat indices, [C·(2B+1)]
+    empty: np.ndarray  # [C, 2B+1] segments that are empty runs
+    row: np.ndarray  # [C, 1]
+    unsort: np.ndarray  # [C, 2B] sorted position of each edge
+    flat_i: np.ndarray  # [C, 2B] flat index of each edge's line
+    frac: np.ndarray  # [C, 2B] fraction of that line below the edge
+
+    @classmethod
+    def build(cls, pos: np.ndarray, q: int) -> _EdgePlan:
+        c_count = pos.shape[0]
+        i = np.minimum(pos.astype(np.intp), q - 1)
+        order = np.argsort(i, axis=1, kind="stable")
+        srt = np.take_along_axis(i, order, 1)
+        starts = np.concatenate((np.zeros((c_count, 1), np.intp), srt), axis=1)
+        empty = np.zeros(starts.shape, dtype=bool)
+        empty[:, :-1] = np.diff(starts, axis=1) == 0
+        offset = q * np.arange(c_count)[:, None]
+        return cls(
+            starts=(starts + offset).ravel(), empty=empty, row=np.arange(c_count)[:, None],
+            unsort=np.argsort(order, axis=1), flat_i=i + offset, frac=pos - i,
+        )
+
+
 @dataclass
 class _Views:
     unit: OutputUnit
@@ -173,7 +204,10 @@ class Analyzer:
             for t, tone in enumerate(self.spec.tones):
                 f = np.nan if (tone.order is not None and sc is None) else tone.frequency_hz(sc)
                 tone_hz[c, t] = f if (np.isfinite(f) and f <= self.grid.fs / 2) else np.nan
-        self._edge_pos = self._line_position(np.nan_to_num(self._edges, nan=0.0))
+        self._edge_plan = _EdgePlan.build(
+            self._line_position(np.nan_to_num(self._edges, nan=0.0)).reshape(self.channels, -1),
+            self.grid.bins,
+        )
         self._tone_valid = np.isfinite(tone_hz)
         new_tones = np.where(self._tone_valid, tone_hz, 0.0)
         if not np.array_equal(new_tones, self.bank.tone_hz):
@@ -293,28 +327,14 @@ class Analyzer:
         # Σ_q weight_bq·P_q as a difference of the cumulative sum taken at the band edges, a
         # fractional line counted pro rata — equal to dsp.bands.band_weights, at O(Q) cost.
         p = self.power(unit)
-        q = self.grid.bins
-        pos = self._edge_pos.reshape(self.channels, -1)  # [C, 2B] in lines from 0 Hz
-        i = np.minimum(pos.astype(np.intp), q - 1)
-        at = self._cumulative_at(p, i) + (pos - i) * np.take_along_axis(p, i, 1)
+        e = self._edge_plan
+        seg = np.add.reduceat(p.ravel(), e.starts, dtype=np.float64).reshape(self.channels, -1)
+        seg[e.empty] = 0.0  # reduceat gives p[i] for an empty run
+        cum = np.cumsum(seg[:, :-1], axis=1)[e.row, e.unsort]  # Σ_{q<i} p[q] at each edge
+        at = cum + e.frac * p.ravel()[e.flat_i]
         at = at.reshape(self.channels, -1, 2)
         out = np.sqrt(np.maximum(at[..., 1] - at[..., 0], 0.0) / self.info.enbw_bins)
         return np.where(np.isnan(self._edges[..., 0]), np.nan, out)
-
-    def _cumulative_at(self, p: np.ndarray, i: np.ndarray) -> np.ndarray:
-        """Σ_{q < i[c, j]} p[c, q] for every (c, j): one np.add.reduceat over the flattened
-        spectrum between sorted edge indices, then a cumulative sum over the few segments."""
-        c_count, q = p.shape
-        order = np.argsort(i, axis=1, kind="stable")
-        srt = np.take_along_axis(i, order, 1)
-        starts = np.concatenate((np.zeros((c_count, 1), np.intp), srt), axis=1)
-        flat = (starts + q * np.arange(c_count)[:, None]).ravel()
-        seg = np.add.reduceat(p.ravel(), flat, dtype=np.float64).reshape(c_count, -1)
-        seg[:, :-1][np.diff(starts, axis=1) == 0] = 0.0  # reduceat gives p[i] for empty runs
-        cum = np.cumsum(seg[:, :-1], axis=1)
-        out = np.empty_like(cum)
-        np.put_along_axis(out, order, cum, 1)
-        return out
 
     def tones(self, unit: str | None = None, amplitude: str | None = None) -> np.ndarray:
         """Tracked-tone amplitudes (float64 [C, T]) at their exact frequencies; NaN if unresolved."""

@@ -63,6 +63,7 @@ class Averager:
         self.mode = mode
         self.averages = float(averages)
         self.linear_end = linear_end
+        self._weights: dict[int, tuple[np.ndarray, float]] = {}
         self.reset()
 
     def reset(self) -> None:
@@ -103,20 +104,31 @@ class Averager:
         else:
             self._update_linear(x)
 
-    def _update_exponential(self, x: np.ndarray) -> None:
-        k = self._seen + 1 + np.arange(x.shape[1], dtype=np.float64)
+    def _exp_weights(self, p_count: int) -> tuple[np.ndarray, float]:
+        """Weights of P new frames and the decay of the old value (cached once steady)."""
+        steady = self._seen >= self.averages
+        key = p_count
+        if steady and key in self._weights:
+            return self._weights[key]
+        k = self._seen + 1 + np.arange(p_count, dtype=np.float64)
         alpha = 1.0 / np.minimum(k, self.averages)
         keep = 1.0 - alpha
         # y_P = y_0·Π(1−α_j) + Σ_p α_p·Π_{j>p}(1−α_j)·x_p  — weights from a suffix product.
         suffix = np.append(np.cumprod(keep[::-1])[::-1][1:], 1.0)
-        weights = alpha * suffix
+        out = (alpha * suffix, float(np.prod(keep)))
+        if steady:
+            self._weights[key] = out
+        return out
+
+    def _update_exponential(self, x: np.ndarray) -> None:
+        weights, decay = self._exp_weights(x.shape[1])
         # matmul over the frame axis: (P,) @ [C, P, M] → [C, M] (BLAS; tensordot would copy x).
         flat = x.reshape(x.shape[0], x.shape[1], -1)
         new = np.matmul(weights.astype(flat.dtype), flat).reshape(x.shape[:1] + x.shape[2:])
         if self._sum is None:
             self._sum = new
         else:
-            self._sum *= float(np.prod(keep))  # a Python float keeps the float32 loop (NEP 50)
+            self._sum *= decay  # a Python float keeps the float32 loop (NEP 50)
             self._sum += new
         self._seen += x.shape[1]
 
