@@ -169,14 +169,15 @@ class Analyzer:
         self.grid = spec.grid
         self.bank = FilterBank(self.grid, self.channels, spec.window, beta=spec.beta)
         self.info = self.bank.info
-        self.f_hz = self.grid.frequencies()
+        self.q = self.grid.analysis_bins  # lines kept: DC … Fmax
+        self.f_hz = self.grid.frequencies()[: self.q]
         # Lines inside the window's main lobe around DC carry leaked DC; integrating them
         # would blow up, so the cut is never below the main lobe's half-width.
         self.lowcut_hz = max(spec.lowcut_hz, self.info.mainlobe_halfwidth_bins * self.grid.df_hz)
         # Power spectrum scaling 2/S1² (Heinzel 2002 §9), DC and Nyquist lines not doubled;
         # applied at read-out to the averaged |X|² (see push).
         self._line_scale = power_spectrum(np.ones(self.grid.bins, np.complex64), self.info.s1,
-                                          self.grid.n).astype(np.float64)
+                                          self.grid.n).astype(np.float64)[: self.q]
         self._peak_hold = spec.averaging == "peak-hold"
         self._power_cache: dict[tuple[str, int], np.ndarray] = {}  # read-outs share one power
         self.avg = Averager(spec.averaging, spec.averages, linear_end=spec.linear_end)
@@ -206,7 +207,7 @@ class Analyzer:
                 tone_hz[c, t] = f if (np.isfinite(f) and f <= self.grid.fs / 2) else np.nan
         self._edge_plan = _EdgePlan.build(
             self._line_position(np.nan_to_num(self._edges, nan=0.0)).reshape(self.channels, -1),
-            self.grid.bins,
+            self.q,
         )
         self._tone_valid = np.isfinite(tone_hz)
         new_tones = np.where(self._tone_valid, tone_hz, 0.0)
@@ -222,7 +223,7 @@ class Analyzer:
         line q ≥ 1 spans [(q − ½)Δf, (q + ½)Δf]; clipped to [0, Q]."""
         df = self.grid.df_hz
         pos = np.where(f_hz <= df / 2, f_hz / (df / 2), 1.0 + (f_hz - df / 2) / df)
-        return np.clip(pos, 0.0, float(self.grid.bins))
+        return np.clip(pos, 0.0, float(self.q))
 
     @property
     def tone_hz(self) -> np.ndarray:
@@ -265,7 +266,7 @@ class Analyzer:
         if batch.count:
             # |X|² in place on the interleaved (re, im) floats; the pair sum and the scaling
             # 2/S1² are linear, so they wait until read-out (once per push, not per frame).
-            v = batch.spectra.view(np.float32)
+            v = batch.spectra[..., : self.q].view(np.float32)
             np.square(v, out=v)
             self.avg.update(v[..., 0::2] + v[..., 1::2] if self._peak_hold else v)
             if batch.tones.shape[2]:
@@ -298,7 +299,7 @@ class Analyzer:
             return cached
         p = self.avg.value
         if p is None:
-            return np.zeros((self.channels, self.grid.bins))
+            return np.zeros((self.channels, self.q))
         if not self._peak_hold:
             p = p[:, 0::2] + p[:, 1::2]
         out = p * v.weights

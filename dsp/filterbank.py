@@ -37,8 +37,11 @@ class FrameGrid:
     fs: float
     n: int
     hop: int
+    keep: int | None = None  # lines analysed (0…keep−1); None = all N/2+1
 
     def __post_init__(self) -> None:
+        if self.keep is not None and not (1 <= self.keep <= self.n // 2 + 1):
+            raise ValueError(f"keep={self.keep!r} must be in [1, n//2 + 1]")
         if not (np.isfinite(self.fs) and self.fs > 0):
             raise ValueError(f"fs={self.fs!r} must be a positive number of Hz")
         if int(self.n) != self.n or self.n < 8:
@@ -67,7 +70,7 @@ class FrameGrid:
             )
         if not (np.isfinite(fmax_hz) and fmax_hz > 0):
             raise ValueError(f"fmax_hz={fmax_hz!r} must be a positive number of Hz")
-        return cls(fs=FMAX_RATIO * float(fmax_hz), n=n, hop=cls.hop_for(n, overlap))
+        return cls(fs=FMAX_RATIO * float(fmax_hz), n=n, hop=cls.hop_for(n, overlap), keep=lines + 1)
 
     @classmethod
     def from_n(cls, n: int, fs: float, overlap: float = 0.75) -> FrameGrid:
@@ -83,6 +86,13 @@ class FrameGrid:
     def bins(self) -> int:
         """Number of rfft lines, N//2 + 1 (DC to Nyquist)."""
         return self.n // 2 + 1
+
+    @property
+    def analysis_bins(self) -> int:
+        """Lines the analysis keeps: 0…Fmax (lines + 1) when set up by Fmax, else all bins.
+
+        Lines above Fmax lie in the anti-alias filter's roll-off and are not shown."""
+        return self.keep if self.keep is not None else self.bins
 
     @property
     def lines(self) -> int:

@@ -84,7 +84,7 @@ def test_bands_equal_the_band_weight_matrix():
     spec = _spec(bands=bands, unit="g")
     an = Analyzer(spec, 3)
     an.push(np.random.default_rng(2).normal(size=(3, 30000)).astype(np.float32))
-    w = band_weights(an.band_edges_hz[0], 0.0, an.grid.df_hz, an.grid.bins)
+    w = band_weights(an.band_edges_hz[0], 0.0, an.grid.df_hz, an.q)  # lines 0…Fmax
     ref = band_rms(an.power("g"), w, an.info.enbw_bins)
     np.testing.assert_allclose(an.bands("g"), ref, rtol=1e-6)
 
