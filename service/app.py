@@ -5,51 +5,21 @@ Owns start-up and shut-down order; the pieces it wires know nothing about each o
 from __future__ import annotations
 
 import asyncio
+import functools
 import logging
 import signal
 import tomllib
 from collections.abc import Callable
 from importlib import resources
-from typing import Any
-
 import uvicorn
 
 from .api import create_app
-from .config import (
-    Config,
-    FileSourceConfig,
-    SimulatedSourceConfig,
-    TcpSourceConfig,
-    UdpSourceConfig,
-    parse_config,
-    parse_listen,
-)
+from .config import Config, parse_config, parse_listen
 from .hub import Hub
 from .pipeline import SourcePipeline, build_groups, channel_states
+from .sources import make_source
 
 log = logging.getLogger("quaver")
-
-
-def make_source(src: Any) -> Any:
-    """The source object for one ``[[sources]]`` entry."""
-    if isinstance(src, SimulatedSourceConfig):
-        from .sources.simulated import SimulatedSource, build_scenario
-
-        model = build_scenario(src.scenario, channels=list(src.channels), fs=src.sample_rate_hz)
-        return SimulatedSource(src.id, model, speed=src.speed, queue_blocks=src.queue_blocks)
-    if isinstance(src, TcpSourceConfig):
-        from .sources.tcp import TcpSource
-
-        return TcpSource.from_config(src)
-    if isinstance(src, UdpSourceConfig):
-        from .sources.udp import UdpSource
-
-        return UdpSource.from_config(src)
-    if isinstance(src, FileSourceConfig):
-        from .sources.filetail import FileSource
-
-        return FileSource.from_config(src)
-    raise ValueError(f"unknown source kind {type(src).__name__}")
 
 
 class Service:
@@ -64,12 +34,20 @@ class Service:
             source = make_source(src_cfg)
             ids = list(source.channel_ids)
             states = channel_states(cfg, src_cfg.id, ids)
-            groups = build_groups(cfg, src_cfg.id, ids, float(source.fs), states)
             self.hub.channels.update(states)
             self.hub.sources[src_cfg.id] = source
-            self.pipelines.append(SourcePipeline(source, groups, states, self.hub.publish))
+            self.pipelines.append(SourcePipeline(
+                source, states, self.hub.publish,
+                make_groups=functools.partial(build_groups, cfg, src_cfg.id, ids, states=states),
+            ))
 
     async def start(self) -> None:
+        """Open every source first (a port that cannot be bound fails the start-up), then
+        start one pipeline task per source."""
+        for p in self.pipelines:
+            start = getattr(p.source, "start", None)
+            if start is not None:
+                await start()
         for p in self.pipelines:
             self.tasks.append(asyncio.create_task(self._run(p), name=f"pipeline-{p.source.id}"))  # type: ignore[attr-defined]
 

@@ -89,9 +89,11 @@ class ChannelGroup:
 @dataclass
 class SourcePipeline:
     source: object  # a Source: id, channel_ids, fs, counters, async iteration, aclose()
-    groups: list[ChannelGroup]
     channels: dict[str, ChannelState]
     publish: Callable[[list[SpectralFrame], float], None]
+    make_groups: Callable[[float], list[ChannelGroup]]  # built at the stream's sample rate
+    groups: list[ChannelGroup] = field(default_factory=list)
+    fs: float | None = None
     seq: int = 0
     blocks: int = 0
     latency_s: float = 0.0
@@ -121,6 +123,11 @@ class SourcePipeline:
         """Sensor checks, gap handling and analysis of one block (runs on the worker thread)."""
         now = time.monotonic()
         self.blocks += 1
+        if block.fs != self.fs:  # first block, or the producer changed its rate
+            if self.fs is not None:
+                log.warning("source %s: sample rate %g → %g Hz; analysis restarts",
+                            block.source_id, self.fs, block.fs)
+            self.groups, self.fs = self.make_groups(block.fs), block.fs
         states = [self.channels[c] for c in block.channel_ids]
         x = block.data
         gap = self._next_index is not None and block.first_index != self._next_index
@@ -223,8 +230,8 @@ class SourcePipeline:
         return out
 
 
-def build_groups(cfg: Config, source_id: str, channel_ids: Sequence[str], fs: float,
-                 channels: dict[str, ChannelState]) -> list[ChannelGroup]:
+def build_groups(cfg: Config, source_id: str, channel_ids: Sequence[str], fs: float, *,
+                 states: dict[str, ChannelState]) -> list[ChannelGroup]:
     """Group a source's channels by identical analysis set-up; one Analyzer per group."""
     keyed: dict[str, list[int]] = {}
     specs: dict[str, tuple[object, tuple[Band, ...], tuple[str, ...]]] = {}
@@ -240,7 +247,7 @@ def build_groups(cfg: Config, source_id: str, channel_ids: Sequence[str], fs: fl
         key = repr((res.spec, ch.input_unit))
         keyed.setdefault(key, []).append(row)
         specs[key] = (res.spec, bands, res.notes)
-        channels[cid].notes = res.notes
+        states[cid].notes = res.notes
     groups = []
     for key, rows in keyed.items():
         spec, bands, _ = specs[key]
