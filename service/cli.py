@@ -1,0 +1,926 @@
+"""The ``quaver`` console script: demo, serve, check, analyze, feed and bench.
+
+Knows the config, recordings, wire formats and the engine's public API; holds no server code
+(the running service is ``service.app``) and no DSP of its own (``analyze`` is the engine).
+
+Exit codes: 0 done; 1 a run-time failure (file, network); 2 bad usage or a bad config;
+130 interrupted. Every error is one readable line on stderr (a config error: one problem
+per line), never a traceback.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import select
+import socket
+import sys
+import time
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from typing import IO, Any
+
+import numpy as np
+from pydantic import ValidationError
+
+from dsp.analyzer import Analyzer, ToneDef, resolve_unit
+from dsp.bands import Band
+from dsp.filterbank import FMAX_RATIO
+from dsp.types import (
+    AMPLITUDES,
+    AVERAGING_MODES,
+    INPUT_UNITS,
+    OUTPUT_UNITS,
+    QUANTITIES,
+    WINDOW_NAMES,
+)
+
+from .config import (
+    QUANTITY_OF_UNIT,
+    AnalysisSettings,
+    Config,
+    ConfigError,
+    SimulatedSourceConfig,
+    bands_for,
+    channel_ids,
+    channel_settings,
+    check_listen_allowed,
+    effective_analysis,
+    load_config,
+    parse_listen,
+    tones_for,
+)
+from .profiles import analysis_spec
+from .recording import RECORDING_FORMATS, Recording, load_recording
+from .wire import RAW_FORMATS, encode_frame, encode_raw
+
+__all__ = [
+    "CliError",
+    "Progress",
+    "build_parser",
+    "feed_recording",
+    "main",
+    "parse_band",
+    "parse_tone",
+]
+
+DEFAULT_LISTEN = "127.0.0.1:8750"
+OVERALL = "_overall"  # internal band: lowcut_hz … Fmax, as the service's pipeline computes it
+CHUNK_S = 1.0  # analyze pushes the recording through the engine this many seconds at a time
+FEED_FORMATS: tuple[str, ...] = (*RAW_FORMATS, "framed")
+FRAMED_PAYLOAD = "f32le"  # sample format inside framed frames
+FEED_BACKOFF_S = (0.2, 5.0)  # first reconnect delay, cap; doubled per failed attempt
+FEED_EOF_WAIT_S = 3.0  # after the last block: wait this long for the receiver to close
+
+
+class CliError(Exception):
+    """A failure reported as one line; ``code`` is the exit status (1 run time, 2 usage)."""
+
+    def __init__(self, message: str, code: int = 1) -> None:
+        super().__init__(message)
+        self.code = code
+
+
+# --- option parsers -----------------------------------------------------------------------
+
+
+def parse_band(text: str) -> Band:
+    """A band from ``NAME:LO_HZ:HI_HZ`` (edges in Hz, LO < HI), e.g. ``overall:10:1000``."""
+    name, sep, rest = text.partition(":")
+    lo_s, sep2, hi_s = rest.partition(":")
+    if not (name and sep and sep2):
+        raise ValueError(f"{text!r} is not NAME:LO_HZ:HI_HZ (e.g. 'overall:10:1000')")
+    try:
+        lo, hi = float(lo_s), float(hi_s)
+    except ValueError:
+        raise ValueError(f"{text!r}: band edges must be numbers of Hz (NAME:LO_HZ:HI_HZ)") from None
+    if not (math.isfinite(lo) and math.isfinite(hi) and 0 <= lo < hi):
+        raise ValueError(f"{text!r}: need 0 <= LO_HZ < HI_HZ")
+    return Band(name, lo, hi)
+
+
+def parse_tone(text: str) -> ToneDef:
+    """A tracked tone from ``NAME:HZ`` (a fixed frequency in Hz > 0), e.g. ``mesh:1234.5``."""
+    name, sep, hz_s = text.rpartition(":")
+    if not (name and sep):
+        raise ValueError(f"{text!r} is not NAME:HZ (e.g. 'mesh:1234.5')")
+    try:
+        hz = float(hz_s)
+    except ValueError:
+        raise ValueError(f"{text!r}: the tone frequency must be a number of Hz (NAME:HZ)") from None
+    if not (math.isfinite(hz) and hz > 0):
+        raise ValueError(f"{text!r}: the tone frequency must be > 0 Hz")
+    return ToneDef(name, hz=hz)
+
+
+def _argtype(fn: Callable[[str], Any]) -> Callable[[str], Any]:
+    """Wrap a parser so argparse prints its ValueError message instead of a generic one."""
+
+    def parse(text: str) -> Any:
+        try:
+            return fn(text)
+        except ValueError as e:
+            raise argparse.ArgumentTypeError(str(e)) from None
+
+    parse.__name__ = fn.__name__
+    return parse
+
+
+def _positive(kind: type, *, allow_zero: bool = False) -> Callable[[str], Any]:
+    def parse(text: str) -> Any:
+        try:
+            v = kind(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+        if not (math.isfinite(v) and (v >= 0 if allow_zero else v > 0)):
+            raise argparse.ArgumentTypeError(f"{text!r} must be {'>= 0' if allow_zero else '> 0'}")
+        return v
+
+    return parse
+
+
+def _listen_arg(text: str) -> str:
+    try:
+        parse_listen(text)
+    except ValueError as e:
+        raise argparse.ArgumentTypeError(str(e)) from None
+    return text
+
+
+# --- progress -------------------------------------------------------------------------------
+
+
+class Progress:
+    """Percentage done, on ``stream`` (stderr by default).
+
+    On a terminal one line is rewritten in place (``\\r``) whenever the whole percent
+    changes; elsewhere (a log, a pipe) a line is written at each quarter, so a log gets a
+    few lines and not hundreds. ``total`` and ``done`` are in any one unit (samples).
+    """
+
+    def __init__(self, label: str, total: int, stream: IO[str] | None = None) -> None:
+        self.label = label
+        self.total = max(int(total), 1)
+        self.stream = stream if stream is not None else sys.stderr
+        isatty = getattr(self.stream, "isatty", None)
+        self.tty = bool(isatty and isatty())
+        self._shown = -1  # last percentage written (terminal) or last quarter (elsewhere, x25)
+        self._open = False
+
+    def update(self, done: int) -> None:
+        """Report ``done`` of ``total``."""
+        pct = min(100, 100 * int(done) // self.total)
+        if self.tty:
+            if pct != self._shown:
+                self.stream.write(f"\r{self.label}: {pct:3d} %")
+                self.stream.flush()
+                self._shown, self._open = pct, True
+        elif pct // 25 * 25 > max(self._shown, 0):
+            self._shown = pct // 25 * 25
+            self.stream.write(f"{self.label}: {self._shown} %\n")
+            self.stream.flush()
+
+    def close(self) -> None:
+        """End the in-place line on a terminal."""
+        if self._open:
+            self.stream.write("\n")
+            self.stream.flush()
+            self._open = False
+
+
+def _say(text: str) -> None:
+    print(text, file=sys.stderr, flush=True)
+
+
+def _num(v: float) -> float | None:
+    """JSON has no NaN: unresolved values (a tone above Nyquist) are null."""
+    return float(v) if np.isfinite(v) else None
+
+
+def _config_error(e: ConfigError) -> int:
+    print(str(e), file=sys.stderr)
+    return 2
+
+
+# --- demo / serve / check -------------------------------------------------------------------
+
+
+def _app() -> Any:
+    try:
+        from service import app
+    except ImportError as e:
+        raise CliError(f"the running service is not available in this install ({e})") from None
+    return app
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    app = _app()
+    try:
+        cfg = app.demo_config(listen=args.listen, data_dir=args.data_dir, speed=args.speed)
+        check_listen_allowed(cfg)
+    except ConfigError as e:
+        return _config_error(e)
+    return int(app.run_service(cfg, announce=lambda s: print(s, flush=True)))
+
+
+def cmd_serve(args: argparse.Namespace) -> int:
+    try:
+        cfg = load_config(args.config)
+        check_listen_allowed(cfg)
+    except ConfigError as e:
+        return _config_error(e)
+    return int(_app().run_service(cfg, announce=lambda s: print(s, flush=True)))
+
+
+def _source_fs(src: Any, cfg: Config, ch: str) -> tuple[float, str]:
+    """(fs in Hz, how it was found) for a channel's source; for `check` only."""
+    if src.sample_rate_hz is not None:
+        return float(src.sample_rate_hz), ""
+    if isinstance(src, SimulatedSourceConfig):
+        from .sources.simulated import DEMO_FS
+
+        return DEMO_FS, " (the scenario's rate)"
+    fmax = effective_analysis(cfg, ch).fmax_hz  # a WAV file: the header decides at run time
+    return FMAX_RATIO * fmax, " (assumed 2.56*fmax_hz; the WAV header decides)"
+
+
+def cmd_check(args: argparse.Namespace) -> int:
+    try:
+        cfg = load_config(args.config)
+        check_listen_allowed(cfg)
+    except ConfigError as e:
+        return _config_error(e)
+    out: list[str] = [f"{args.config}: OK"]
+    out.append(f"service: listen {cfg.service.listen}, data_dir {cfg.service.data_dir}, "
+               f"{len(cfg.tokens)} token(s)")
+    out.append(f"sources: {len(cfg.sources)}")
+    for s in cfg.sources:
+        where = getattr(s, "listen", None) or getattr(s, "path", None) or getattr(s, "scenario", "")
+        rate = f"{s.sample_rate_hz:g} Hz" if s.sample_rate_hz else "rate from the source"
+        chans = ", ".join(s.channels) or "every channel of the scenario"
+        fmt = getattr(s, "format", "")
+        out.append(f"  {s.id}: {s.kind} {where} {fmt} {rate}; channels {chans}".replace("  ;", ";"))
+    ids = channel_ids(cfg)
+    out.append(f"channels: {len(ids)}")
+    problems: list[str] = []
+    for cid in ids:
+        src = next(s for s in cfg.sources if cid in s.channels)
+        fs, how = _source_fs(src, cfg, cid)
+        ch = channel_settings(cfg, cid)
+        settings = effective_analysis(cfg, cid)
+        bands, tones = bands_for(cfg, cid), tones_for(cfg, cid)
+        try:
+            res = analysis_spec(settings, fs, input_unit=ch.input_unit, bands=bands, tones=tones)
+        except ValueError as e:
+            problems.append(f"channels {cid!r}: {e}")
+            continue
+        g, spec = res.spec.grid, res.spec
+        unit = resolve_unit(settings.output_unit or settings.unit)
+        out.append(
+            f"  {cid} ({src.id}): fs {fs:g} Hz{how}, Fmax {g.fmax_hz:g} Hz, {g.lines} lines, "
+            f"df {g.df_hz:g} Hz, {spec.window}, N {g.n}, hop {g.hop}, "
+            f"{spec.averaging} {spec.averages:g}, {unit} {spec.amplitude}, "
+            f"{len(bands)} band(s), {len(tones)} tone(s)"
+        )
+        out += [f"    note: {n}" for n in res.notes]
+    out.append(f"alarms: {len(cfg.alarms)}")
+    print("\n".join(out))
+    if problems:
+        return _config_error(ConfigError(problems, source=str(args.config)))
+    return 0
+
+
+# --- analyze --------------------------------------------------------------------------------
+
+
+@dataclass
+class _Group:
+    """Recording rows analysed with one set-up (one engine instance)."""
+
+    rows: list[int]
+    config_channel: str | None
+    settings: AnalysisSettings
+    input_unit: str
+    sensitivity: float
+    speed_hz: float
+    bands: list[Band]
+    tones: list[ToneDef]
+    analyzer: Analyzer | None = None
+    notes: tuple[str, ...] = ()
+
+
+_OPTION_OF = {
+    "fmax_hz": "--fmax", "lines": "--lines", "window": "--window", "overlap": "--overlap",
+    "averaging": "--averaging", "averages": "--averages", "unit": "--unit",
+    "output_unit": "--unit", "amplitude": "--amplitude", "lowcut_hz": "--lowcut",
+    "peaks": "--peaks",
+}
+
+
+def _settings(base: dict[str, Any], over: dict[str, Any]) -> AnalysisSettings:
+    try:
+        return AnalysisSettings.model_validate({**base, **over})
+    except ValidationError as e:
+        err = e.errors()[0]
+        key = str(err["loc"][0]) if err["loc"] else "?"
+        raise CliError(f"{_OPTION_OF.get(key, key)}: {err['msg']} (got {err.get('input')!r})",
+                       2) from None
+
+
+def _cli_overrides(args: argparse.Namespace) -> dict[str, Any]:
+    over: dict[str, Any] = {}
+    for key, value in (("fmax_hz", args.fmax), ("lines", args.lines), ("window", args.window),
+                       ("overlap", args.overlap), ("amplitude", args.amplitude),
+                       ("lowcut_hz", args.lowcut), ("peaks", args.peaks)):
+        if value is not None:
+            over[key] = value
+    if args.unit is not None:
+        if args.unit in QUANTITIES:
+            over.update(unit=args.unit, output_unit=None)
+        else:
+            over.update(unit=QUANTITY_OF_UNIT[args.unit], output_unit=args.unit)
+    return over
+
+
+def _plan(args: argparse.Namespace, rec: Recording) -> list[_Group]:
+    """One group per distinct set-up: all rows alike without a config; by config channel with."""
+    over = _cli_overrides(args)
+    cli_bands = list(args.band or [])
+    cli_tones = list(args.tone or [])
+    if args.config is None:
+        if args.channel is not None:
+            raise CliError("--channel needs -c/--config", 2)
+        base = {"fmax_hz": rec.fs / FMAX_RATIO}
+        return [_Group(list(range(rec.data.shape[0])), None, _settings(base, over),
+                       args.input_unit or "g",
+                       1.0 if args.sensitivity is None else args.sensitivity,
+                       math.nan, cli_bands, cli_tones)]
+    cfg = load_config(args.config)
+    known = list(dict.fromkeys([*channel_ids(cfg), *(c.id for c in cfg.channels)]))
+    listed = ", ".join(map(repr, known)) or "none"
+    if args.channel is not None:
+        if args.channel not in known:
+            raise CliError(f"--channel {args.channel!r} is not a channel of {args.config} "
+                           f"(channels: {listed})", 2)
+        chosen = [args.channel] * rec.data.shape[0]
+    elif all(n in known for n in rec.channel_names):
+        chosen = list(rec.channel_names)  # a text header naming the config's channels
+    elif len(known) == 1:
+        chosen = known * rec.data.shape[0]
+    else:
+        raise CliError(f"{args.config} has several channels; choose one with --channel "
+                       f"(channels: {listed})", 2)
+    groups: dict[str, _Group] = {}
+    for row, cid in enumerate(chosen):
+        if cid in groups:
+            groups[cid].rows.append(row)
+            continue
+        ch = channel_settings(cfg, cid)
+        base = effective_analysis(cfg, cid).model_dump()
+        # A recording's mean spectrum is what an analyst wants; the config's live averaging
+        # applies only when asked for on the command line.
+        base.pop("averaging")
+        base.pop("averages")
+        bands = {b.name: b for b in bands_for(cfg, cid)} | {b.name: b for b in cli_bands}
+        tones = {t.name: t for t in tones_for(cfg, cid)} | {t.name: t for t in cli_tones}
+        groups[cid] = _Group(
+            [row], cid, _settings(base, over), args.input_unit or ch.input_unit,
+            ch.sensitivity if args.sensitivity is None else args.sensitivity,
+            (ch.speed_rpm or math.nan) / 60.0, list(bands.values()), list(tones.values()),
+        )
+    return list(groups.values())
+
+
+def _frames_in(n_samples: int, n: int, hop: int) -> int:
+    return 0 if n_samples < n else (n_samples - n) // hop + 1
+
+
+def _build(g: _Group, args: argparse.Namespace, rec: Recording) -> None:
+    s = g.settings
+    fs = rec.fs
+    if args.fmax is not None and args.fmax > fs / FMAX_RATIO * (1 + 1e-9):
+        raise CliError(f"--fmax {args.fmax:g} Hz needs a sample rate of at least 2.56*fmax = "
+                       f"{FMAX_RATIO * args.fmax:g} Hz; the recording runs at {fs:g} Hz", 2)
+    if not (math.isfinite(g.sensitivity) and g.sensitivity != 0):
+        raise CliError(f"--sensitivity {g.sensitivity!r} must be a finite non-zero number", 2)
+    overall = Band(OVERALL, s.lowcut_hz, min(s.fmax_hz, fs / FMAX_RATIO))
+    res = analysis_spec(s, fs, input_unit=g.input_unit, bands=[*g.bands, overall], tones=g.tones)
+    spec, grid = res.spec, res.spec.grid
+    frames = _frames_in(rec.data.shape[1], grid.n, grid.hop)
+    if frames == 0:
+        raise CliError(f"the recording holds {rec.data.shape[1]} samples per channel, fewer "
+                       f"than one frame of N = {grid.n} ({grid.lines} lines); use fewer --lines")
+    mode = args.averaging or "linear"
+    if args.averages is not None:
+        averages: float = args.averages
+    else:
+        averages = frames if mode == "linear" else s.averages
+    # linear: the mean of the first `averages` frames (all of them by default), then held.
+    spec = spec.with_(averaging=mode, averages=averages, linear_end="hold")
+    g.analyzer = Analyzer(spec, len(g.rows), speed_hz=np.full(len(g.rows), g.speed_hz))
+    g.notes = res.notes
+
+
+def _channel_result(g: _Group, j: int, row: int, rec: Recording, unit: str | None,
+                    amplitude: str) -> dict[str, Any]:
+    an = g.analyzer
+    assert an is not None
+    spec, grid = an.spec, an.grid
+    u = an.unit if unit is None else unit
+    lines = grid.lines
+    spectrum = an.spectrum(u, amplitude)[j, : lines + 1]
+    band_values = an.bands(u)[j]
+    edges = an.band_edges_hz[j]
+    named = [i for i, b in enumerate(spec.bands) if b.name != OVERALL]
+    i_overall = next(i for i, b in enumerate(spec.bands) if b.name == OVERALL)
+    tone_values = an.tones(u, amplitude)[j]
+    tone_hz = an.tone_hz[j]
+    peaks = an.peaks(u, amplitude)
+    return {
+        "channel": rec.channel_names[row],
+        "config_channel": g.config_channel,
+        "fs_hz": grid.fs,
+        "df_hz": grid.df_hz,
+        "f0_hz": 0.0,
+        "lines": lines,
+        "fmax_hz": grid.fmax_hz,
+        "n": grid.n,
+        "hop": grid.hop,
+        "window": spec.window,
+        "averaging": spec.averaging,
+        "averages": an.count,
+        "input_unit": spec.input_unit,
+        "sensitivity": g.sensitivity,
+        "unit": u,
+        "amplitude": amplitude,
+        "lowcut_hz": an.lowcut_hz,
+        "overall": _num(band_values[i_overall]),
+        "overall_band_hz": [_num(edges[i_overall, 0]), _num(edges[i_overall, 1])],
+        "band_amplitude": "rms",
+        "bands": [{"name": spec.bands[i].name, "lo_hz": _num(edges[i, 0]),
+                   "hi_hz": _num(edges[i, 1]), "value": _num(band_values[i])} for i in named],
+        "tones": [{"name": t.name, "frequency_hz": _num(tone_hz[i]),
+                   "amplitude": _num(tone_values[i])} for i, t in enumerate(spec.tones)],
+        "peaks": [{"frequency_hz": float(f), "amplitude": float(a)}
+                  for f, a in zip(peaks.frequency_hz[j], peaks.amplitude_rms[j], strict=True)
+                  if np.isfinite(f)],
+        "notes": list(g.notes),
+        "spectrum": [float(v) for v in spectrum],
+    }
+
+
+def _fmt(v: float | None, digits: int = 5) -> str:
+    return "-" if v is None else f"{v:.{digits}g}"
+
+
+def _table(r: dict[str, Any]) -> str:
+    u, a = r["unit"], r["amplitude"]
+    lo, hi = r["overall_band_hz"]
+    cfg = f" (config channel {r['config_channel']})" if r["config_channel"] else ""
+    out = [
+        f"{r['channel']}{cfg}: fs {r['fs_hz']:g} Hz, Fmax {r['fmax_hz']:g} Hz, {r['lines']} "
+        f"lines, df {r['df_hz']:g} Hz, {r['window']}, N {r['n']}, hop {r['hop']}, "
+        f"{r['averaging']} average of {r['averages']} frame(s)",
+        f"  overall {_fmt(lo, 4)}-{_fmt(hi, 5)} Hz: {_fmt(r['overall'])} {u} rms",
+    ]
+    out += [f"  note: {n}" for n in r["notes"]]
+    if r["bands"]:
+        out.append(f"  bands ({u} rms)")
+        out += [f"    {b['name']:<20} {_fmt(b['lo_hz'], 6):>9}-{_fmt(b['hi_hz'], 6):<9} Hz "
+                f"{_fmt(b['value']):>11}" for b in r["bands"]]
+    if r["peaks"]:
+        out.append(f"  peaks ({u} {a})")
+        out += [f"    {p['frequency_hz']:12.3f} Hz {_fmt(p['amplitude']):>11}" for p in r["peaks"]]
+    if r["tones"]:
+        out.append(f"  tones ({u} {a})")
+        out += [f"    {t['name']:<20} {_fmt(t['frequency_hz'], 8):>12} Hz "
+                f"{_fmt(t['amplitude']):>11}" for t in r["tones"]]
+    return "\n".join(out)
+
+
+def _read(path: str, fmt: str | None, channels: int | None, fs: float | None) -> Recording:
+    try:
+        return load_recording(path, fmt=fmt, channels=channels, fs=fs)
+    except FileNotFoundError:
+        raise CliError(f"{path}: no such file") from None
+
+
+def cmd_analyze(args: argparse.Namespace) -> int:
+    """Offline analysis through the service's own engine set-up; see the subcommand help."""
+    rec = _read(args.file, args.format, args.channels, args.rate)
+    try:
+        groups = _plan(args, rec)
+    except ConfigError as e:
+        return _config_error(e)
+    for g in groups:
+        _build(g, args, rec)
+    for p in rec.problems:
+        _say(f"{args.file}: {p}")
+    n_total = rec.data.shape[1]
+    chunk = max(1, int(round(CHUNK_S * rec.fs)))
+    progress = Progress(f"analyze {os.path.basename(str(args.file))}", n_total) \
+        if n_total > chunk else None
+    for start in range(0, n_total, chunk):
+        for g in groups:
+            x = rec.data[g.rows, start : start + chunk]
+            g.analyzer.push((x * np.float32(g.sensitivity)).astype(np.float32, copy=False))  # type: ignore[union-attr]
+        if progress:
+            progress.update(min(start + chunk, n_total))
+    if progress:
+        progress.close()
+    results: list[dict[str, Any]] = [{} for _ in range(rec.data.shape[0])]
+    for g in groups:
+        amp = g.settings.amplitude
+        unit = g.settings.output_unit or g.settings.unit
+        for j, row in enumerate(g.rows):
+            results[row] = _channel_result(g, j, row, rec, unit, amp)
+    if args.json:
+        doc = {"file": str(args.file), "format": rec.fmt, "fs_hz": rec.fs,
+               "samples": int(n_total), "duration_s": n_total / rec.fs,
+               "problems": rec.problems, "channels": results}
+        print(json.dumps(doc))
+    else:
+        head = (f"{args.file}: {rec.data.shape[0]} channel(s), {rec.fs:g} Hz, "
+                f"{n_total / rec.fs:.3f} s ({n_total} samples), {rec.fmt}")
+        print("\n".join([head, *(_table(r) for r in results)]))
+    return 0
+
+
+# --- feed -----------------------------------------------------------------------------------
+
+
+class _Link:
+    """A blocking TCP connection that reconnects: at most ``retries`` failed attempts in a row,
+    waiting 0.2 s, 0.4 s, … (at most 5 s) between them."""
+
+    def __init__(self, host: str, port: int, retries: int, say: Callable[[str], None]) -> None:
+        self.host, self.port, self.retries, self.say = host, port, retries, say
+        self.sock: socket.socket | None = None
+        self.connections = 0
+        self.drops = 0
+
+    @property
+    def where(self) -> str:
+        return f"{self.host}:{self.port}"
+
+    def _drop(self, why: str) -> None:
+        if self.sock is not None:
+            self.sock.close()
+            self.sock = None
+        self.drops += 1
+        self.say(f"feed: connection to {self.where} lost ({why})")
+
+    def _connect(self) -> None:
+        delay, cap = FEED_BACKOFF_S
+        failures = 0
+        while True:
+            if self.connections or failures:  # a reconnect, or a retry of the first connect
+                time.sleep(delay)
+                delay = min(2 * delay, cap)
+            try:
+                self.sock = socket.create_connection((self.host, self.port), timeout=10.0)
+                self.sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+                self.connections += 1
+                if self.connections > 1:
+                    self.say(f"feed: reconnected to {self.where}")
+                return
+            except OSError as e:
+                failures += 1
+                if failures > self.retries:
+                    raise CliError(f"cannot connect to {self.where} after {failures} "
+                                   f"attempt(s): {e}") from None
+                self.say(f"feed: cannot connect to {self.where} ({e}); attempt {failures} of "
+                         f"{self.retries}, next in {delay:g} s")
+
+    def _peer_closed(self) -> str | None:
+        """Why the receiver has gone, if it has (its FIN or RST is already here)."""
+        assert self.sock is not None
+        try:
+            readable, _, _ = select.select([self.sock], [], [], 0)
+            if not readable:
+                return None
+            data = self.sock.recv(65536, socket.MSG_DONTWAIT)
+        except BlockingIOError:
+            return None
+        except OSError as e:
+            return f"{type(e).__name__}: {e}"
+        return "closed by the receiver" if not data else None  # data: ignored
+
+    def send(self, payload: bytes, first_index: int) -> None:
+        """Send one block whole; on a drop, reconnect and send the whole block again."""
+        while True:
+            if self.sock is None:
+                self._connect()
+                if self.connections > 1:
+                    self.say(f"feed: resuming at sample {first_index} (this block is sent whole; "
+                             "blocks the lost connection had buffered are not resent)")
+            why = self._peer_closed()
+            if why is None:
+                try:
+                    self.sock.sendall(payload)  # type: ignore[union-attr]
+                    return
+                except OSError as e:
+                    why = f"{type(e).__name__}: {e}"
+            self._drop(why)
+
+    def finish(self) -> bool:
+        """Half-close and wait (bounded) for the receiver to close; False if it reset."""
+        if self.sock is None:
+            return True
+        sock, self.sock = self.sock, None
+        try:
+            sock.shutdown(socket.SHUT_WR)
+            sock.settimeout(FEED_EOF_WAIT_S)
+            while sock.recv(65536):
+                pass
+            return True
+        except TimeoutError:
+            return True  # the receiver keeps the connection open: nothing more to learn
+        except OSError as e:
+            self.say(f"feed: the receiver reset the connection after the last block ({e}); "
+                     "the last blocks may not have arrived")
+            return False
+        finally:
+            sock.close()
+
+
+def feed_recording(
+    data: np.ndarray,
+    fs: float,
+    host: str,
+    port: int,
+    *,
+    fmt: str = "f32le",
+    block_ms: float = 100.0,
+    speed: float = 1.0,
+    passes: int = 1,
+    retries: int = 10,
+    say: Callable[[str], None] = _say,
+    progress: Progress | None = None,
+) -> tuple[int, int]:
+    """Send ``data`` (float ``[C, n]`` in the receiver's raw units) to a TCP receiver.
+
+    Blocks hold round(block_ms·fs/1000) samples per channel. Block b, ending at stream
+    sample k_end, is sent k_end/fs/``speed`` seconds after the start (``speed`` 0: at once).
+    ``fmt`` is a raw format (s16le | s32le | f32le | f64le: interleaved samples, integer
+    formats rounded, out-of-range values refused) or ``framed`` (service.wire frames with
+    f32le payload, ``fs``, the first-sample index since the stream began and the first
+    sample's time in ns: the wall time at the start plus index/fs). ``passes`` repeats the
+    recording with continuing indices (0: until interrupted). Returns (samples sent per
+    channel, reconnects). A lost connection is re-made (see :class:`_Link`) and the block
+    whose send failed is sent again whole.
+    """
+    if fmt not in FEED_FORMATS:
+        raise ValueError(f"format={fmt!r} is not one of {', '.join(map(repr, FEED_FORMATS))}")
+    x = np.asarray(data, dtype=np.float64)
+    c, n = x.shape
+    block = max(1, int(round(block_ms * fs / 1000.0)))
+    if fmt != "framed":  # refuse unsendable values before connecting
+        encode_raw(np.array([[np.min(x), np.max(x)]]), fmt)
+    link = _Link(host, port, retries, say)
+    t_start = time.monotonic()
+    wall_ns = time.time_ns()
+    index = 0
+    p = 0
+    while passes == 0 or p < passes:
+        for k in range(0, n, block):
+            part = x[:, k : k + block]
+            end = index + part.shape[1]
+            if speed > 0:
+                delay = t_start + end / fs / speed - time.monotonic()
+                if delay > 0:
+                    time.sleep(delay)
+            if fmt == "framed":
+                payload = encode_frame(part, FRAMED_PAYLOAD, fs, index,
+                                       wall_ns + round(index * 1e9 / fs))
+            else:
+                payload = encode_raw(part, fmt)
+            link.send(payload, index)
+            index = end
+            if progress is not None:
+                progress.update(index)
+        p += 1
+    if progress is not None:
+        progress.close()
+    if not link.finish():
+        raise CliError("the receiver reset the connection at the end; some samples may be lost")
+    return index, max(link.connections - 1, 0)
+
+
+def cmd_feed(args: argparse.Namespace) -> int:
+    host, port = parse_listen(args.to)
+    rec = _read(args.file, args.file_format, args.channels, args.rate)
+    for p in rec.problems:
+        _say(f"{args.file}: {p}")
+    passes = 1 if args.loop is None else args.loop
+    pace = "as fast as possible" if args.speed == 0 else f"x{args.speed:g} real time"
+    c, n = rec.data.shape
+    _say(f"feed: {args.file} ({c} ch, {rec.fs:g} Hz, {n / rec.fs:.3f} s) to {host}:{port} as "
+         f"{args.format}, {args.block_ms:g} ms blocks, {pace}"
+         + ("" if passes == 1 else (", looping" if passes == 0 else f", {passes} passes")))
+    progress = Progress("feed", n * passes) if passes else None
+    sent, reconnects = feed_recording(
+        rec.data * args.scale if args.scale != 1.0 else rec.data, rec.fs, host, port,
+        fmt=args.format, block_ms=args.block_ms, speed=args.speed, passes=passes,
+        retries=args.retries, progress=progress,
+    )
+    _say(f"feed: done: {sent} samples per channel, {reconnects} reconnect(s)")
+    return 0
+
+
+# --- bench ----------------------------------------------------------------------------------
+
+
+def cmd_bench(args: argparse.Namespace) -> int:
+    from dsp import bench
+
+    argv: list[str] = []
+    for opt in ("channels", "seconds", "repeats"):
+        v = getattr(args, opt)
+        if v is not None:
+            argv += [f"--{opt}", str(v)]
+    argv += ["--short"] * args.short + ["--json"] * args.json
+    return int(bench.main(argv))
+
+
+# --- parser ---------------------------------------------------------------------------------
+
+
+def _recording_options(p: argparse.ArgumentParser, format_flag: str) -> None:
+    p.add_argument("file", help="recording: WAV (integer PCM read as +-1 full scale), raw "
+                   "interleaved little-endian samples, or CSV/whitespace text (one row per "
+                   "sample, one column per channel, optional header row)")
+    p.add_argument(format_flag, choices=RECORDING_FORMATS, default=None,
+                   help="recording format (default: from the extension: .wav, .csv/.txt/.tsv/"
+                   ".dat; raw files need it)")
+    p.add_argument("--rate", type=_positive(float), default=None, metavar="HZ",
+                   help="sample rate in Hz, samples per second per channel (raw and text "
+                   "files; a WAV file's header gives it)")
+    p.add_argument("--channels", type=_positive(int), default=None, metavar="N",
+                   help="channel count (raw files; text takes it from the columns)")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser of ``quaver`` (every option carries help text with its unit)."""
+    ap = argparse.ArgumentParser(
+        prog="quaver",
+        description="quaver: continuous machinery-vibration monitoring (spectra, bands, tones, "
+        "alarms). A monitoring aid, not a machine-protection or safety system.",
+    )
+    sub = ap.add_subparsers(dest="command", metavar="COMMAND")
+
+    p = sub.add_parser("demo", help="run the service on a simulated plant (no config needed)",
+                       description="Run the service with the built-in simulated plant (an "
+                       "invented pumping station whose bearing fault grows over a few minutes) "
+                       "and print the dashboard address. Ctrl-C stops.")
+    p.add_argument("--listen", type=_listen_arg, default=None, metavar="HOST:PORT",
+                   help=f"HTTP address for the dashboard and API (default {DEFAULT_LISTEN}, or "
+                   "$QUAVER_LISTEN); a non-loopback address is refused without tokens")
+    p.add_argument("--data-dir", default=None, metavar="DIR",
+                   help="folder for trends, events and evidence (default quaver-data, or "
+                   "$QUAVER_DATA_DIR)")
+    p.add_argument("--speed", type=_positive(float), default=None, metavar="X",
+                   help="time-lapse factor of the simulated fault growth, x real time "
+                   "(default 1; e.g. 10 reaches danger in about 20 s)")
+    p.set_defaults(func=cmd_demo)
+
+    p = sub.add_parser("serve", help="run the service from a config file",
+                       description="Validate the config (as `check` does), then run the "
+                       "service until Ctrl-C or SIGTERM.")
+    p.add_argument("-c", "--config", required=True, metavar="FILE", help="TOML config file")
+    p.set_defaults(func=cmd_serve)
+
+    p = sub.add_parser("check", help="validate a config file and summarise it",
+                       description="Validate a config; print the sources and, per channel, "
+                       "the analysis set-up (fs, Fmax, lines, line spacing, window, frame length "
+                       "N and hop in samples, bands, tones). Exit 2 listing every problem with "
+                       "its key path.")
+    p.add_argument("-c", "--config", required=True, metavar="FILE", help="TOML config file")
+    p.set_defaults(func=cmd_check)
+
+    p = sub.add_parser(
+        "analyze", help="analyse a recording offline with the service's engine",
+        description="Analyse a recording with the same engine and set-up rules as the running "
+        "service, in 1 s chunks. Averaging defaults to linear over the whole recording (the mean "
+        "spectrum of every frame), also with -c. The spectrum lists lines q = 0..lines at "
+        "f = q*df Hz. Bands and the overall (lowcut..Fmax) are RMS; peaks and tracked tones are "
+        "in --amplitude. Samples are multiplied by --sensitivity before analysis.",
+    )
+    _recording_options(p, "--format")
+    p.add_argument("-c", "--config", default=None, metavar="FILE",
+                   help="take analysis settings, bands, tones, input unit, sensitivity and "
+                   "running speed from a config channel (command-line options override)")
+    p.add_argument("--channel", default=None, metavar="ID",
+                   help="config channel whose settings apply to every recording channel "
+                   "(default: a text header's names, or the config's only channel)")
+    p.add_argument("--sensitivity", type=float, default=None, metavar="UNITS",
+                   help="input units (g or m/s2) per raw sample unit; for WAV per full scale "
+                   "(default 1, or the config channel's)")
+    p.add_argument("--input-unit", choices=INPUT_UNITS, default=None,
+                   help="acceleration unit of the samples after --sensitivity (default g)")
+    p.add_argument("--fmax", type=_positive(float), default=None, metavar="HZ",
+                   help="highest frequency shown, Hz (default fs/2.56; at most fs/2.56)")
+    p.add_argument("--lines", type=int, default=None, metavar="LINES",
+                   help="spectral lines, a multiple of 25 (frame N = 2.56*lines samples; "
+                   "default 1600)")
+    p.add_argument("--window", choices=WINDOW_NAMES, default=None, help="DFT window (default hann)")
+    p.add_argument("--overlap", type=float, default=None, metavar="FRACTION",
+                   help="frame overlap, fraction in [0, 1) (default 0.75)")
+    p.add_argument("--averaging", choices=AVERAGING_MODES, default=None,
+                   help="linear (mean of --averages frames, then held) | exponential (state at "
+                   "the end of the recording) | peak-hold (default linear)")
+    p.add_argument("--averages", type=_positive(int), default=None, metavar="FRAMES",
+                   help="frames in a linear average (default: every frame of the recording) or "
+                   "equivalent frames of an exponential one (default 8)")
+    p.add_argument("--unit", choices=(*QUANTITIES, *OUTPUT_UNITS), default=None,
+                   help="quantity (acceleration -> g, velocity -> mm/s, displacement -> um) or "
+                   "unit g | m/s2 | mm/s | in/s | um | mil (default velocity)")
+    p.add_argument("--amplitude", choices=AMPLITUDES, default=None,
+                   help="amplitude type of the spectrum, peaks and tones (default rms)")
+    p.add_argument("--lowcut", type=_positive(float, allow_zero=True), default=None,
+                   metavar="HZ", help="low-frequency cut for integration and the overall, Hz "
+                   "(default 2)")
+    p.add_argument("--band", type=_argtype(parse_band), action="append", metavar="NAME:LO:HI",
+                   help="a band, edges in Hz (repeatable), e.g. overall:10:1000")
+    p.add_argument("--tone", type=_argtype(parse_tone), action="append", metavar="NAME:HZ",
+                   help="a tracked tone at a fixed frequency in Hz (repeatable), e.g. mesh:1234.5")
+    p.add_argument("--peaks", type=int, default=None, metavar="K",
+                   help="number of largest spectral peaks reported, 0..256 (default 8)")
+    p.add_argument("--json", action="store_true",
+                   help="print one JSON document (per channel: spectrum, bands, peaks, tones) "
+                   "instead of tables; progress still goes to stderr")
+    p.set_defaults(func=cmd_analyze)
+
+    p = sub.add_parser(
+        "feed", help="send a recording to a TCP source (a ready test producer)",
+        description="Stream a recording to a quaver TCP source at real-time pace or faster. A "
+        "dropped connection is re-made (bounded retries with backoff) and the block whose send "
+        "failed is sent again whole; blocks the dead connection had already buffered are lost "
+        "(framed: the receiver sees the gap by sample index).",
+    )
+    _recording_options(p, "--file-format")
+    p.add_argument("--to", required=True, type=_listen_arg, metavar="HOST:PORT",
+                   help="address of the TCP source")
+    p.add_argument("--format", choices=FEED_FORMATS, default="f32le",
+                   help="on the wire: raw interleaved little-endian s16le | s32le | f32le | f64le "
+                   "(values sent as they are after --scale; integers rounded) or framed "
+                   "(quaver's frame header with rate, first-sample index and time; f32le "
+                   "payload) (default f32le)")
+    p.add_argument("--speed", type=_positive(float, allow_zero=True), default=1.0, metavar="X",
+                   help="pace as a multiple of real time; 0 = as fast as possible (default 1)")
+    p.add_argument("--block-ms", type=_positive(float), default=100.0, metavar="MS",
+                   help="samples per send, in ms of recording (default 100)")
+    p.add_argument("--loop", type=_positive(int, allow_zero=True), nargs="?", const=0,
+                   default=None, metavar="N",
+                   help="repeat the recording with continuing sample indices: N passes in all, "
+                   "or until Ctrl-C without N")
+    p.add_argument("--scale", type=float, default=1.0, metavar="FACTOR",
+                   help="multiply every sample before sending (e.g. 32768 to send a WAV read as "
+                   "+-1 full scale as s16le counts) (default 1)")
+    p.add_argument("--retries", type=_positive(int, allow_zero=True), default=10, metavar="N",
+                   help="failed connection attempts in a row before giving up (default 10)")
+    p.set_defaults(func=cmd_feed)
+
+    p = sub.add_parser("bench", help="benchmark the spectral engine against a bare rfft",
+                       description="Engine throughput and cost relative to the bare batched "
+                       "rfft of the same frames (dsp.bench).")
+    p.add_argument("--short", action="store_true", help="quick run: 1 and 8 channels, 0.5 s")
+    p.add_argument("--json", action="store_true", help="print the report as JSON")
+    p.add_argument("--channels", default=None, metavar="LIST",
+                   help="comma-separated channel counts (default 1,8,64)")
+    p.add_argument("--seconds", type=_positive(float), default=None, metavar="S",
+                   help="signal length per case, s (default 2)")
+    p.add_argument("--repeats", type=_positive(int), default=None, metavar="N",
+                   help="best of this many runs (default 5)")
+    p.set_defaults(func=cmd_bench)
+    return ap
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run ``quaver`` with ``argv`` (default sys.argv[1:]); returns the exit status."""
+    parser = build_parser()
+    try:
+        args = parser.parse_args(list(argv) if argv is not None else None)
+    except SystemExit as e:  # argparse has printed usage and the reason
+        return e.code if isinstance(e.code, int) else 2
+    if args.command is None:
+        parser.print_help(sys.stderr)
+        return 2
+    try:
+        return int(args.func(args))
+    except CliError as e:
+        _say(f"quaver {args.command}: {e}")
+        return e.code
+    except ConfigError as e:
+        return _config_error(e)
+    except KeyboardInterrupt:
+        if args.command == "feed" and args.loop == 0:
+            _say("feed: stopped")
+            return 0
+        _say(f"quaver {args.command}: interrupted")
+        return 130
+    except (OSError, ValueError) as e:  # bad input or a failing file/socket: one line
+        _say(f"quaver {args.command}: {e}")
+        return 1
