@@ -62,6 +62,7 @@ class TcpSource(QueuedSource):
         self.peer: str | None = None
         self._server: asyncio.Server | None = None
         self._writer: asyncio.StreamWriter | None = None
+        self._handlers: set[asyncio.Task[object]] = set()
         self._next_index: int | None = None  # framed: expected first index of the next frame
         self._raw_index = 0  # raw: index of the next sample
         self._delivered = False  # raw: samples since the last restart
@@ -74,10 +75,15 @@ class TcpSource(QueuedSource):
         log.info("source %s: listening on %s:%d (%s)", self.id, *self.address, self.fmt)
 
     async def _stop(self) -> None:
-        if self._writer is not None:
-            self._writer.close()
+        # Closing the transport ends the handler's read; cancelling the handler instead
+        # makes asyncio's stream callback log a spurious error on Python 3.11.
         if self._server is not None:
             self._server.close()
+        if self._writer is not None:
+            self._writer.transport.abort()
+        if self._handlers:
+            await asyncio.wait(self._handlers, timeout=2.0)
+        if self._server is not None:
             await self._server.wait_closed()
 
     async def _on_connect(self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
@@ -94,8 +100,8 @@ class TcpSource(QueuedSource):
                 await writer.wait_closed()
             return
         task = asyncio.current_task()
-        if task is not None:  # so aclose() can cancel it
-            self._tasks.add(task)  # type: ignore[arg-type]
+        if task is not None:  # so aclose() can wait for it
+            self._handlers.add(task)
         self._writer, self.peer = writer, peer
         self.counters.connections += 1
         self.state = "connected"
@@ -111,7 +117,7 @@ class TcpSource(QueuedSource):
             with contextlib.suppress(OSError, asyncio.CancelledError):
                 await writer.wait_closed()
             if task is not None:
-                self._tasks.discard(task)  # type: ignore[arg-type]
+                self._handlers.discard(task)
             log.info("source %s: producer %s disconnected", self.id, peer)
 
     async def _serve(self, reader: asyncio.StreamReader) -> None:
