@@ -109,8 +109,8 @@ async def serve(cfg: Config, *, announce: Callable[[str], None] = print,
     while not server.started and not task.done():
         await asyncio.sleep(0.02)
     if server.started:
-        announce(f"quaver {len(service.hub.channels)} channels; dashboard and API at "
-                 f"http://{host}:{port}/ (API under /api/v1, docs at /docs); Ctrl-C stops")
+        announce(f"quaver: {len(service.hub.channels)} channels; open http://{host}:{port}/ "
+                 f"(API under /api/v1, docs at /docs); Ctrl-C stops")
         if started is not None:
             started.set()
     await task
