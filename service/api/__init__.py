@@ -8,7 +8,12 @@ from collections.abc import AsyncIterator, Callable
 from contextlib import asynccontextmanager
 from typing import Any
 
+from pathlib import Path
+
+import web
 from fastapi import FastAPI
+from fastapi.responses import FileResponse
+from fastapi.staticfiles import StaticFiles
 
 from .. import __version__
 from ..hub import Hub
@@ -38,4 +43,11 @@ def create_app(hub: Hub, *, lifespan_hooks: tuple[Callable[[], Any], Callable[[]
     app.state.hub = hub
     app.include_router(health.router, prefix="/api/v1")
     app.include_router(channels.router, prefix="/api/v1")
+    web_dir = Path(web.__file__).parent  # the installed package's files, not the working dir
+    app.mount("/static", StaticFiles(directory=web_dir), name="static")
+
+    @app.get("/", include_in_schema=False)
+    def dashboard() -> FileResponse:
+        return FileResponse(web_dir / "index.html", media_type="text/html")
+
     return app
