@@ -5,6 +5,7 @@ Holds no engine state and does no I/O; publishers hand it finished frames."""
 from __future__ import annotations
 
 import asyncio
+import collections
 import time
 from collections.abc import Iterable
 from dataclasses import dataclass, field
@@ -13,25 +14,59 @@ from .pipeline import ChannelState
 from .types import SpectralFrame
 
 
-@dataclass
 class Subscriber:
-    """A bounded queue of frames; when full the oldest is dropped and counted (never blocks)."""
+    """One client's pending items: the newest frame per channel, and alarm events in order.
 
-    channels: frozenset[str] | None = None  # None = every channel
-    max_queue: int = 8
-    queue: asyncio.Queue[SpectralFrame] = field(init=False)
-    missed: int = 0
+    A frame that arrives before the previous one of its channel was taken replaces it
+    (``missed`` counts the replaced ones): a slow client skips to the newest frame and the
+    publisher never waits. Events are kept in order up to ``max_events`` (then the oldest
+    are dropped and counted too — a client that far behind should re-read /alarms).
+    """
 
-    def __post_init__(self) -> None:
-        self.queue = asyncio.Queue(self.max_queue)
+    def __init__(self, channels: frozenset[str] | None = None, max_events: int = 256,
+                 kinds: frozenset[str] | None = None) -> None:
+        self.channels = channels  # None = every channel
+        self.kinds = kinds if kinds is not None else frozenset(
+            {"spectrum", "bands", "tones", "alarms", "status"})
+        self.max_events = max_events
+        self.frames: dict[str, SpectralFrame] = {}
+        self.events: collections.deque[dict[str, object]] = collections.deque()
+        self.missed = 0
+        self._wake = asyncio.Event()
+        self.queue = self  # ``await sub.queue.get()`` reads well at call sites
 
     def offer(self, frame: SpectralFrame) -> None:
         if self.channels is not None and frame.channel not in self.channels:
             return
-        if self.queue.full():
-            self.queue.get_nowait()
+        if not self.kinds & {"spectrum", "bands", "tones"}:
+            return
+        if frame.channel in self.frames:
             self.missed += 1
-        self.queue.put_nowait(frame)
+        self.frames[frame.channel] = frame
+        self._wake.set()
+
+    def offer_event(self, event: dict[str, object]) -> None:
+        if "alarms" not in self.kinds:
+            return
+        if self.channels is not None and event.get("channel") not in self.channels:
+            return
+        if len(self.events) >= self.max_events:
+            self.events.popleft()
+            self.missed += 1
+        self.events.append(event)
+        self._wake.set()
+
+    def pending(self) -> int:
+        return len(self.frames) + len(self.events)
+
+    async def get(self) -> SpectralFrame | dict[str, object]:
+        while not (self.events or self.frames):
+            self._wake.clear()
+            await self._wake.wait()
+        if self.events:
+            return self.events.popleft()
+        channel = next(iter(self.frames))
+        return self.frames.pop(channel)
 
 
 @dataclass
@@ -52,7 +87,12 @@ class Hub:
             for s in self.subscribers:
                 s.offer(f)
 
-    def subscribe(self, channels: Iterable[str] | None = None, max_queue: int = 8) -> Subscriber:
+    def publish_event(self, event: dict[str, object]) -> None:
+        """Announce an alarm event (already committed to the store) to subscribers."""
+        for s in self.subscribers:
+            s.offer_event(event)
+
+    def subscribe(self, channels: Iterable[str] | None = None, max_queue: int = 256) -> Subscriber:
         sub = Subscriber(frozenset(channels) if channels is not None else None, max_queue)
         self.subscribers.add(sub)
         return sub

@@ -90,8 +90,7 @@ def get_spectrum(
     }
 
 
-@router.get("/channels/{channel_id}/bands", summary="Latest band RMS values and the overall")
-def get_bands(frame: FrameDep) -> dict[str, Any]:
+def bands_payload(frame: SpectralFrame) -> dict[str, Any]:
     return {
         **_stamp(frame), "unit": frame.unit, "amplitude": "rms",
         "overall": _num(frame.overall),
@@ -100,11 +99,20 @@ def get_bands(frame: FrameDep) -> dict[str, Any]:
     }
 
 
-@router.get("/channels/{channel_id}/tones", summary="Tracked tones and the largest peaks")
-def get_tones(frame: FrameDep) -> dict[str, Any]:
+def tones_payload(frame: SpectralFrame) -> dict[str, Any]:
     return {
         **_stamp(frame), "unit": frame.unit, "amplitude": frame.amplitude,
         "tones": [{"name": t.name, "frequency_hz": _num(t.frequency_hz), "amplitude": _num(t.value)}
                   for t in frame.tones],
         "peaks": [{"frequency_hz": p.frequency_hz, "amplitude": p.value} for p in frame.peaks],
     }
+
+
+@router.get("/channels/{channel_id}/bands", summary="Latest band RMS values and the overall")
+def get_bands(frame: FrameDep) -> dict[str, Any]:
+    return bands_payload(frame)
+
+
+@router.get("/channels/{channel_id}/tones", summary="Tracked tones and the largest peaks")
+def get_tones(frame: FrameDep) -> dict[str, Any]:
+    return tones_payload(frame)

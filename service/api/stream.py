@@ -1,0 +1,191 @@
+"""WebSocket /api/v1/stream: live spectra (binary), bands, tones, alarms and status (JSON).
+
+Reads the hub through a bounded subscriber queue; a slow client only ever delays itself.
+
+Protocol
+--------
+The client sends a text message ``{"subscribe": {"channels": [...] | "*", "kinds": [...],
+"max_rate_hz": 10, "unit": "mm/s", "amplitude": "rms"}}`` (it may send another at any
+time to change its subscription). ``kinds`` ⊆ spectrum, bands, tones, alarms, status.
+
+The server sends:
+
+* binary spectrum messages: bytes 0–3 a little-endian u32 header length L, then L bytes of
+  UTF-8 JSON ``{"kind": "spectrum", "channel", "seq", "timestamp_ns", "f0_hz", "df_hz",
+  "unit", "amplitude", "averages", "count", "missed"}``, then ``count`` little-endian
+  float32 values (the header is padded with spaces so the values start 4-byte aligned);
+* text JSON messages ``{"kind": "hello" | "bands" | "tones" | "alarm" | "status" | "error",
+  ...}`` whose fields match the REST resources.
+
+``missed`` counts the frames this client skipped (its queue was full or its rate limit
+held them back). Each client has its own bounded queue; when it is full the oldest frame
+is dropped — the engine and the other clients never wait for it.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import json
+import struct
+import time
+from typing import Any
+
+from fastapi import APIRouter, WebSocket, WebSocketDisconnect
+from pydantic import BaseModel, Field, ValidationError, field_validator
+
+from .. import __version__
+from ..hub import Hub
+from ..spectra import spectrum_values
+from ..types import SpectralFrame
+from .channels import bands_payload, tones_payload
+
+router = APIRouter()
+
+KINDS = ("spectrum", "bands", "tones", "alarms", "status")
+MAX_MESSAGE_BYTES = 4096  # a subscription is small; anything bigger is refused
+STATUS_PERIOD_S = 1.0
+
+
+class Subscription(BaseModel):
+    channels: list[str] | str = Field("*", description="channel ids, or '*' for all")
+    kinds: list[str] = Field(default_factory=lambda: list(KINDS))
+    max_rate_hz: float = Field(10.0, gt=0, le=100, description="per channel, messages/s")
+    unit: str | None = None
+    amplitude: str | None = None
+
+    @field_validator("channels")
+    @classmethod
+    def _channels(cls, v: list[str] | str) -> list[str] | str:
+        if isinstance(v, str) and v != "*":
+            raise ValueError("channels must be a list of ids or '*'")
+        return v
+
+    @field_validator("kinds")
+    @classmethod
+    def _kinds(cls, v: list[str]) -> list[str]:
+        bad = [k for k in v if k not in KINDS]
+        if bad:
+            raise ValueError(f"unknown kinds {bad}; allowed: {', '.join(KINDS)}")
+        return v
+
+
+def encode_spectrum(frame: SpectralFrame, unit: str | None, amplitude: str | None,
+                    missed: int) -> bytes:
+    values, u, a = spectrum_values(frame, unit, amplitude)
+    header = json.dumps({
+        "kind": "spectrum", "channel": frame.channel, "profile": frame.profile,
+        "seq": frame.seq, "timestamp_ns": frame.t_ns, "f0_hz": frame.f0_hz,
+        "df_hz": frame.df_hz, "unit": u, "amplitude": a, "averages": frame.averages,
+        "count": int(values.size), "missed": missed,
+    }, separators=(",", ":")).encode()
+    header += b" " * (-(4 + len(header)) % 4)
+    return struct.pack("<I", len(header)) + header + values.astype("<f4").tobytes()
+
+
+class _Session:
+    def __init__(self, ws: WebSocket, hub: Hub) -> None:
+        self.ws, self.hub = ws, hub
+        self.sub = hub.subscribe(None)
+        self.spec = Subscription()
+        self.last_sent: dict[str, float] = {}
+        self.held_back = 0
+
+    def apply(self, spec: Subscription) -> None:
+        self.spec = spec
+        chans = None if spec.channels == "*" else frozenset(spec.channels)
+        unknown = sorted(set(chans or ()) - set(self.hub.channels))
+        if unknown:
+            raise ValueError(f"unknown channels {unknown}")
+        self.sub.channels = chans
+        self.sub.kinds = frozenset(spec.kinds)
+
+    async def receive_loop(self) -> None:
+        while True:
+            msg = await self.ws.receive()
+            if msg["type"] == "websocket.disconnect":
+                raise WebSocketDisconnect(msg.get("code", 1000))
+            text = msg.get("text")
+            data = msg.get("bytes")
+            size = len(text.encode()) if text is not None else len(data or b"")
+            if size > MAX_MESSAGE_BYTES:
+                await self.ws.close(code=1009, reason=f"message over {MAX_MESSAGE_BYTES} bytes")
+                return
+            try:
+                body = json.loads(text if text is not None else (data or b"").decode())
+                if not isinstance(body, dict) or "subscribe" not in body:
+                    raise ValueError('expected {"subscribe": {...}}')
+                self.apply(Subscription.model_validate(body["subscribe"]))
+            except ValidationError as e:
+                reason = "; ".join(
+                    f"{'.'.join(str(p) for p in err['loc']) or 'subscribe'}: {err['msg']}"
+                    for err in e.errors()
+                )
+                await self.send_json({"kind": "error", "reason": reason[:500]})
+            except ValueError as e:
+                await self.send_json({"kind": "error", "reason": str(e)[:500]})
+
+    async def send_json(self, obj: dict[str, Any]) -> None:
+        await self.ws.send_text(json.dumps(obj, separators=(",", ":")))
+
+    async def send_loop(self) -> None:
+        next_status = 0.0
+        while True:
+            now = time.monotonic()
+            if "status" in self.spec.kinds and now >= next_status:
+                await self.send_json({"kind": "status", "channels": [
+                    {"id": st.id, "status": st.status, "fault": st.fault}
+                    for st in self.hub.channels.values()
+                ]})
+                next_status = now + STATUS_PERIOD_S
+            try:
+                item = await asyncio.wait_for(self.sub.queue.get(), timeout=STATUS_PERIOD_S)
+            except TimeoutError:
+                continue
+            if isinstance(item, SpectralFrame):
+                await self._send_frame(item)
+            else:  # an alarm event (dict) published by the service
+                if "alarms" in self.spec.kinds:
+                    await self.send_json({"kind": "alarm", **item})
+
+    async def _send_frame(self, frame: SpectralFrame) -> None:
+        now = time.monotonic()
+        min_gap = 1.0 / self.spec.max_rate_hz
+        if now - self.last_sent.get(frame.channel, -1e9) < min_gap * 0.999:
+            self.held_back += 1
+            return
+        self.last_sent[frame.channel] = now
+        kinds = self.spec.kinds
+        missed = self.sub.missed + self.held_back
+        if "spectrum" in kinds:
+            await self.ws.send_bytes(encode_spectrum(frame, self.spec.unit, self.spec.amplitude,
+                                                     missed))
+        if "bands" in kinds:
+            await self.send_json({"kind": "bands", **bands_payload(frame)})
+        if "tones" in kinds:
+            await self.send_json({"kind": "tones", **tones_payload(frame)})
+
+
+@router.websocket("/stream")
+async def stream(ws: WebSocket) -> None:
+    hub: Hub = ws.app.state.hub
+    check = getattr(ws.app.state, "check_websocket", None)
+    if check is not None and not await check(ws):
+        return
+    await ws.accept()
+    session = _Session(ws, hub)
+    try:
+        await session.send_json({"kind": "hello", "version": __version__,
+                                 "channels": list(hub.channels), "kinds": list(KINDS)})
+        recv = asyncio.create_task(session.receive_loop())
+        send = asyncio.create_task(session.send_loop())
+        done, pending = await asyncio.wait({recv, send}, return_when=asyncio.FIRST_COMPLETED)
+        for t in pending:
+            t.cancel()
+        for t in done:
+            exc = t.exception()
+            if exc is not None and not isinstance(exc, WebSocketDisconnect | RuntimeError):
+                raise exc
+    except WebSocketDisconnect:
+        pass
+    finally:
+        hub.unsubscribe(session.sub)
