@@ -502,3 +502,23 @@ def test_every_setting_has_help_text() -> None:
     for model in qc.MODELS:
         for name, field in model.model_fields.items():
             assert field.description and len(field.description) > 5, f"{model.__name__}.{name}"
+
+
+def test_simulated_source_built_from_config() -> None:
+    from service.sources import Source, make_source
+
+    d = {
+        "sources": [
+            {
+                "id": "demo",
+                "kind": "simulated",
+                "scenario": "demo",
+                "sample_rate_hz": 12800,
+                "channels": ["p1-de-h", "f1-gb-h"],
+                "speed": 0,
+            }
+        ]
+    }
+    src = make_source(_parse(d).sources[0])
+    assert isinstance(src, Source)
+    assert (src.id, src.channel_ids, src.fs) == ("demo", ("p1-de-h", "f1-gb-h"), 12800.0)
