@@ -207,7 +207,7 @@ def _override_model() -> type[BaseModel]:
     for name, f in AnalysisSettings.model_fields.items():
         ann = Annotated[(f.annotation, *f.metadata)] if f.metadata else f.annotation
         help_text = f"{f.description} Overrides [analysis] for this channel."
-        fields[name] = (ann | None, Field(None, description=help_text))
+        fields[name] = (ann | None, Field(None, description=help_text))  # type: ignore[operator]
     return create_model("AnalysisOverride", __base__=_Model, **fields)
 
 
@@ -378,16 +378,20 @@ class AlarmConfig(_Model):
 class TokenConfig(_Model):
     name: Name = _d("Who holds the token (for logs).")
     role: Role = _d("viewer (read) | operator (also acknowledge alarms) | admin.")
-    sha256: str = Field(
+    sha256: Annotated[str, AfterValidator(str.lower)] = Field(
         pattern=SHA256_PATTERN,
-        description="Hex SHA-256 of the token (the token itself is never stored).",
+        description="Hex SHA-256 of the token (the token itself is never stored); "
+        "kept in lower case.",
     )
 
 
 class Config(_Model):
-    service: ServiceSettings = Field(default_factory=ServiceSettings, description="[service]")
+    service: ServiceSettings = Field(
+        default_factory=lambda: ServiceSettings.model_validate({}), description="[service]"
+    )
     analysis: AnalysisSettings = Field(
-        default_factory=AnalysisSettings, description="Analysis defaults for every channel."
+        default_factory=lambda: AnalysisSettings.model_validate({}),
+        description="Analysis defaults for every channel.",
     )
     sources: list[SourceConfig] = Field(default_factory=list, description="[[sources]]")
     channels: list[ChannelConfig] = Field(default_factory=list, description="[[channels]]")
@@ -430,12 +434,13 @@ def source_of(cfg: Config, channel_id: str) -> SourceConfig | None:
 def channel_settings(cfg: Config, channel_id: str) -> ChannelConfig:
     """The ``[[channels]]`` entry for ``channel_id``, or the defaults if it has none."""
     entry = next((c for c in cfg.channels if c.id == channel_id), None)
-    return entry if entry is not None else ChannelConfig(id=channel_id)
+    return entry if entry is not None else ChannelConfig.model_validate({"id": channel_id})
 
 
 def effective_analysis(cfg: Config, channel_id: str) -> AnalysisSettings:
     """``[analysis]`` with the channel's own ``analysis`` overrides applied."""
-    over = channel_settings(cfg, channel_id).analysis.model_dump(exclude_none=True)
+    override: BaseModel = channel_settings(cfg, channel_id).analysis
+    over = override.model_dump(exclude_none=True)
     return cfg.analysis.model_copy(update=over)
 
 

@@ -430,8 +430,10 @@ def test_non_loopback_refused_without_tokens(listen: str, allowed: bool) -> None
             ConfigError, match=r"service\.listen: .* is not a loopback address; add \[\[tokens\]\]"
         ):
             qc.check_listen_allowed(cfg)
-    d["tokens"] = [{"name": "scada", "role": "viewer", "sha256": "ab" * 32}]
-    qc.check_listen_allowed(_parse(d))
+    d["tokens"] = [{"name": "scada", "role": "viewer", "sha256": "AB" * 32}]
+    with_tokens = _parse(d)
+    qc.check_listen_allowed(with_tokens)
+    assert with_tokens.tokens[0].sha256 == "ab" * 32
 
 
 def test_parse_listen() -> None:
