@@ -11,6 +11,7 @@ per line), never a traceback.
 from __future__ import annotations
 
 import argparse
+import importlib
 import json
 import math
 import os
@@ -199,6 +200,16 @@ def _num(v: float) -> float | None:
     return float(v) if np.isfinite(v) else None
 
 
+def _load(path: str) -> Config:
+    """load_config plus the loopback rule, every problem naming the file."""
+    cfg = load_config(path)
+    try:
+        check_listen_allowed(cfg)
+    except ConfigError as e:
+        raise ConfigError(e.problems, source=str(path)) from None
+    return cfg
+
+
 def _config_error(e: ConfigError) -> int:
     print(str(e), file=sys.stderr)
     return 2
@@ -209,7 +220,7 @@ def _config_error(e: ConfigError) -> int:
 
 def _app() -> Any:
     try:
-        from service import app
+        app = importlib.import_module("service.app")
     except ImportError as e:
         raise CliError(f"the running service is not available in this install ({e})") from None
     return app
@@ -227,8 +238,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 def cmd_serve(args: argparse.Namespace) -> int:
     try:
-        cfg = load_config(args.config)
-        check_listen_allowed(cfg)
+        cfg = _load(args.config)
     except ConfigError as e:
         return _config_error(e)
     return int(_app().run_service(cfg, announce=lambda s: print(s, flush=True)))
@@ -248,8 +258,7 @@ def _source_fs(src: Any, cfg: Config, ch: str) -> tuple[float, str]:
 
 def cmd_check(args: argparse.Namespace) -> int:
     try:
-        cfg = load_config(args.config)
-        check_listen_allowed(cfg)
+        cfg = _load(args.config)
     except ConfigError as e:
         return _config_error(e)
     out: list[str] = [f"{args.config}: OK"]
@@ -428,7 +437,7 @@ def _channel_result(g: _Group, j: int, row: int, rec: Recording, unit: str | Non
     an = g.analyzer
     assert an is not None
     spec, grid = an.spec, an.grid
-    u = an.unit if unit is None else unit
+    u = an.unit if unit is None else resolve_unit(unit)
     lines = grid.lines
     spectrum = an.spectrum(u, amplitude)[j, : lines + 1]
     band_values = an.bands(u)[j]
@@ -488,8 +497,9 @@ def _table(r: dict[str, Any]) -> str:
     out += [f"  note: {n}" for n in r["notes"]]
     if r["bands"]:
         out.append(f"  bands ({u} rms)")
-        out += [f"    {b['name']:<20} {_fmt(b['lo_hz'], 6):>9}-{_fmt(b['hi_hz'], 6):<9} Hz "
-                f"{_fmt(b['value']):>11}" for b in r["bands"]]
+        for b in r["bands"]:
+            edges = f"{_fmt(b['lo_hz'], 6)}-{_fmt(b['hi_hz'], 6)} Hz"
+            out.append(f"    {b['name']:<20} {edges:>18} {_fmt(b['value']):>11}")
     if r["peaks"]:
         out.append(f"  peaks ({u} {a})")
         out += [f"    {p['frequency_hz']:12.3f} Hz {_fmt(p['amplitude']):>11}" for p in r["peaks"]]
