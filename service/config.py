@@ -21,9 +21,10 @@ import difflib
 import ipaddress
 import os
 import tomllib
+import types
 from collections.abc import Iterable, Mapping
 from pathlib import Path
-from typing import Annotated, Any, Literal, get_args
+from typing import Annotated, Any, Literal, Union, get_args, get_origin
 
 from pydantic import AfterValidator, BaseModel, ConfigDict, Field, ValidationError, create_model
 
@@ -60,6 +61,7 @@ __all__ = [
     "channel_ids",
     "channel_settings",
     "check_listen_allowed",
+    "describe_settings",
     "effective_analysis",
     "load_config",
     "parse_config",
@@ -399,6 +401,48 @@ class Config(_Model):
     tones: list[ToneConfig] = Field(default_factory=list, description="[[tones]]")
     alarms: list[AlarmConfig] = Field(default_factory=list, description="[[alarms]]")
     tokens: list[TokenConfig] = Field(default_factory=list, description="[[tokens]]")
+
+
+def describe_settings() -> list[tuple[str, str, str, str]]:
+    """Every setting as (table and key, type, default, help text), for docs and ``--help``."""
+    tables: list[tuple[str, type[BaseModel]]] = [
+        ("[service]", ServiceSettings),
+        ("[analysis]", AnalysisSettings),
+        ('[[sources]] kind="tcp"', TcpSourceConfig),
+        ('[[sources]] kind="udp"', UdpSourceConfig),
+        ('[[sources]] kind="file"', FileSourceConfig),
+        ('[[sources]] kind="simulated"', SimulatedSourceConfig),
+        ("[[channels]]", ChannelConfig),
+        ("[[channels]] analysis", AnalysisOverride),
+        ("[[bands]]", BandConfig),
+        ("[[tones]]", ToneConfig),
+        ("[[alarms]]", AlarmConfig),
+        ("[[tokens]]", TokenConfig),
+    ]
+    rows = []
+    for table, model in tables:
+        for name, f in model.model_fields.items():
+            if name == "analysis" and model is ChannelConfig:
+                continue  # its keys follow as "[[channels]] analysis ..."
+            if f.is_required():
+                default = "required"
+            else:
+                default = repr(f.get_default(call_default_factory=True))
+            rows.append((f"{table} {name}", _type_text(f.annotation), default, f.description or ""))
+    return rows
+
+
+def _type_text(ann: Any) -> str:
+    origin, args = get_origin(ann), get_args(ann)
+    if origin is Literal:
+        return " | ".join(repr(a) for a in args)
+    if origin is Annotated:
+        return _type_text(args[0])
+    if origin in (Union, types.UnionType):
+        return " | ".join(_type_text(a) for a in args if a is not type(None)) + " (optional)"
+    if origin is list:
+        return f"list of {_type_text(args[0])}"
+    return str(getattr(ann, "__name__", ann))
 
 
 MODELS: tuple[type[BaseModel], ...] = (

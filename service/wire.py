@@ -260,6 +260,9 @@ class FrameDecoder:
     ``skipped_bytes`` discarded while resynchronising. A rejection is counted once per
     rejected header or payload, plus once per run of bytes found where no frame starts, so
     one corrupted frame between good ones counts 1. ``reasons`` holds the latest reasons.
+    A frame cut off inside its payload is only recognised once as many bytes as its header
+    claimed have arrived (then its payload CRC fails and the scan resumes inside it), so
+    the frame after it is delayed, not lost.
     The same bytes cut into any chunks give the same frames and counters.
     """
 

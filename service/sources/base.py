@@ -109,7 +109,7 @@ class QueuedSource(ABC):
 
     async def start(self) -> None:
         """Bind / open and start producing; raises if the source cannot be set up."""
-        if self._started:
+        if self._started or self._closed:
             return
         self._started = True
         try:

@@ -524,3 +524,16 @@ def test_simulated_source_built_from_config() -> None:
     src = make_source(_parse(d).sources[0])
     assert isinstance(src, Source)
     assert (src.id, src.channel_ids, src.fs) == ("demo", ("p1-de-h", "f1-gb-h"), 12800.0)
+
+
+def test_settings_reference_lists_every_key_with_help() -> None:
+    rows = {key: (kind, default, text) for key, kind, default, text in qc.describe_settings()}
+    assert rows["[analysis] window"][:2] == (
+        "'rectangular' | 'hann' | 'hamming' | 'blackman-harris' | 'flattop' | 'kaiser'",
+        "'hann'",
+    )
+    assert rows['[[sources]] kind="tcp" listen'][1] == "required"
+    assert rows["[[channels]] analysis fmax_hz"][:2] == ("float (optional)", "None")
+    assert all(len(text) > 5 for _, _, text in rows.values())
+    n_fields = sum(len(m.model_fields) for m in qc.MODELS if m is not qc.Config)
+    assert len(rows) == n_fields - 1  # every field but [[channels]].analysis, listed by key
