@@ -184,6 +184,10 @@ class FileSource(QueuedSource):
         if not poll_s > 0 or not block_s > 0:
             raise ValueError(f"poll_s={poll_s!r} and block_s={block_s!r} must be > 0 (s)")
         super().__init__(source_id, channel_ids, fs, queue_blocks=queue_blocks, clock=clock)
+        # present from the start, so metric series are stable
+        self.counters.extra.update(
+            dict.fromkeys(("truncations", "rotations", "deletions", "partial_bytes"), 0)
+        )
         self.path, self.fmt, self.follow = Path(path), fmt, follow
         self.replay_speed, self.poll_s, self.start_at = replay_speed, poll_s, start_at
         self.block_s, self.max_read_bytes = block_s, max_read_bytes

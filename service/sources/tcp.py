@@ -56,6 +56,8 @@ class TcpSource(QueuedSource):
         if fmt not in TCP_FORMATS:
             raise ValueError(f"format={fmt!r} is not one of {', '.join(map(repr, TCP_FORMATS))}")
         super().__init__(source_id, channel_ids, fs, queue_blocks=queue_blocks, clock=clock)
+        # present from the start, so metric series are stable
+        self.counters.extra.update(dict.fromkeys(("refused", "partial_bytes"), 0))
         self.host, self.port, self.fmt = host, port, fmt
         self.read_bytes = read_bytes
         self.address: tuple[str, int] | None = None

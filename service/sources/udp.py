@@ -51,6 +51,8 @@ class UdpSource(QueuedSource):
         clock: Callable[[], int] = time.time_ns,
     ) -> None:
         super().__init__(source_id, channel_ids, fs, queue_blocks=queue_blocks, clock=clock)
+        # present from the start, so metric series are stable
+        self.counters.extra.update(dict.fromkeys(("late",), 0))
         self.host, self.port = host, port
         self.late_window = max(1, round(late_window_s * fs))
         self.address: tuple[str, int] | None = None
