@@ -74,19 +74,25 @@ class Service:
 
 
 def demo_config(
-    *, listen: str | None = None, data_dir: str | None = None, speed: float | None = None
+    *, listen: str | None = None, data_dir: str | None = None, speed: float | None = None,
+    fault_start_s: float | None = None, fault_ramp_s: float | None = None,
 ) -> Config:
-    """The built-in demo: the invented pumping station from ``service/examples/demo.toml``."""
+    """The built-in demo: the invented pumping station from ``service/examples/demo.toml``.
+
+    ``speed`` paces the simulation (×real time); ``fault_start_s``/``fault_ramp_s`` move
+    and stretch the scripted bearing fault (plant seconds)."""
     text = resources.files("service").joinpath("examples/demo.toml").read_text(encoding="utf-8")
     data = tomllib.loads(text)
     if listen is not None:
         data.setdefault("service", {})["listen"] = listen
     if data_dir is not None:
         data.setdefault("service", {})["data_dir"] = data_dir
-    if speed is not None:
-        for s in data.get("sources", []):
-            if s.get("kind") == "simulated":
-                s["speed"] = speed
+    for s in data.get("sources", []):
+        if s.get("kind") == "simulated":
+            for key, value in (("speed", speed), ("fault_start_s", fault_start_s),
+                               ("fault_ramp_s", fault_ramp_s)):
+                if value is not None:
+                    s[key] = value
     return parse_config(data, source="built-in demo")
 
 

@@ -295,6 +295,13 @@ class SimulatedSourceConfig(_SourceBase):
         default_factory=list,
         description="Channel ids to keep; empty = every channel of the scenario.",
     )
+    seed: int = Field(1, ge=0, description="Random seed of the simulated noise and impacts.")
+    fault_start_s: float = Field(
+        30.0, ge=0, le=1e6, description="Plant time at which the scripted fault starts, s."
+    )
+    fault_ramp_s: float = Field(
+        180.0, gt=0, le=1e6, description="Time the scripted fault takes to reach full severity, s."
+    )
 
 
 SOURCE_KINDS: tuple[str, ...] = get_args(SourceKind)

@@ -71,7 +71,9 @@ def make_source(cfg: SourceConfig, *, clock: Callable[[], int] = time.time_ns) -
     if isinstance(cfg, SimulatedSourceConfig):
         from .simulated import SimulatedSource, build_scenario
 
-        kwargs: dict[str, object] = {}
+        kwargs: dict[str, object] = {
+            "seed": cfg.seed, "fault_start_s": cfg.fault_start_s, "fault_ramp_s": cfg.fault_ramp_s,
+        }
         if cfg.sample_rate_hz is not None:
             kwargs["fs"] = cfg.sample_rate_hz
         if cfg.channels:
