@@ -19,6 +19,7 @@ import select
 import socket
 import sys
 import time
+import typing
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import IO, Any
@@ -772,9 +773,16 @@ def _recording_options(p: argparse.ArgumentParser, format_flag: str) -> None:
                    help="channel count (raw files; text takes it from the columns)")
 
 
+class _Parser(argparse.ArgumentParser):
+    """argparse with usage errors as one line (the reason and where to find help)."""
+
+    def error(self, message: str) -> typing.NoReturn:
+        self.exit(2, f"{self.prog}: error: {message} (see {self.prog} --help)\n")
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of ``quaver`` (every option carries help text with its unit)."""
-    ap = argparse.ArgumentParser(
+    ap = _Parser(
         prog="quaver",
         description="quaver: continuous machinery-vibration monitoring (spectra, bands, tones, "
         "alarms). A monitoring aid, not a machine-protection or safety system.",
