@@ -11,6 +11,7 @@ falls behind, the source's bounded queue drops its oldest blocks and counts them
 from __future__ import annotations
 
 import asyncio
+import collections
 import logging
 import time
 from collections.abc import Callable, Sequence
@@ -75,6 +76,63 @@ class ChannelState:
         }
 
 
+class WaveformRing:
+    """The last ``seconds`` of a source's samples in engineering units, for alarm evidence.
+
+    Sample k of the stream lives at column k mod L while end − L ≤ k < end. A gap empties
+    the ring (a snippet never joins samples from either side of a gap)."""
+
+    def __init__(self, channels: int, fs: float, seconds: float) -> None:
+        self.length = max(1, int(round(fs * seconds)))
+        self.buf = np.zeros((channels, self.length), dtype=np.float32)
+        self.start = 0  # first valid stream index
+        self.end = 0  # one past the last stored index
+
+    def append(self, x: np.ndarray, first_index: int) -> None:
+        if first_index != self.end:
+            self.start = self.end = first_index
+        n = x.shape[1]
+        if n >= self.length:
+            x, first_index = x[:, n - self.length :], first_index + n - self.length
+            n = self.length
+        pos = first_index % self.length
+        head = min(n, self.length - pos)
+        self.buf[:, pos : pos + head] = x[:, :head]
+        self.buf[:, : n - head] = x[:, head:]
+        self.end = first_index + n
+        self.start = max(self.start, self.end - self.length)
+
+    def snippet(self, row: int, lo: int, hi: int) -> tuple[np.ndarray, int]:
+        """Samples [max(lo, start), min(hi, end)) of one channel and the first one's index."""
+        lo, hi = max(lo, self.start), min(hi, self.end)
+        if hi <= lo:
+            return np.zeros(0, np.float32), lo
+        idx = np.arange(lo, hi) % self.length
+        return self.buf[row, idx].copy(), lo
+
+
+@dataclass
+class EvidenceRequest:
+    """Keep the waveform around ``center_index`` (samples before/after) for an event."""
+
+    event_id: int
+    channel: str
+    center_index: int
+    before: int
+    after: int
+    spectrum: dict[str, object]
+
+
+@dataclass
+class Evidence:
+    event_id: int
+    channel: str
+    spectrum: dict[str, object]
+    waveform: np.ndarray  # float32, engineering units
+    fs: float
+    t0_ns: int
+
+
 @dataclass
 class ChannelGroup:
     """Channels of one source that share analysis settings: one vectorised Analyzer."""
@@ -94,6 +152,10 @@ class SourcePipeline:
     make_groups: Callable[[float], list[ChannelGroup]]  # built at the stream's sample rate
     groups: list[ChannelGroup] = field(default_factory=list)
     fs: float | None = None
+    evidence_s: tuple[float, float] = (3.0, 3.0)  # waveform kept before / after an event
+    ring: WaveformRing | None = None
+    requests: collections.deque[EvidenceRequest] = field(default_factory=collections.deque)
+    ready: collections.deque[Evidence] = field(default_factory=collections.deque)
     seq: int = 0
     blocks: int = 0
     latency_s: float = 0.0
@@ -128,6 +190,7 @@ class SourcePipeline:
                 log.warning("source %s: sample rate %g → %g Hz; analysis restarts",
                             block.source_id, self.fs, block.fs)
             self.groups, self.fs = self.make_groups(block.fs), block.fs
+            self.ring = WaveformRing(len(block.channel_ids), block.fs, sum(self.evidence_s) + 1.0)
         states = [self.channels[c] for c in block.channel_ids]
         x = block.data
         gap = self._next_index is not None and block.first_index != self._next_index
@@ -163,6 +226,9 @@ class SourcePipeline:
             if overrun:
                 st.overrun_until = now + OVERRUN_HOLD_S
         x = x * sens  # raw units → engineering units
+        if self.ring is not None:
+            self.ring.append(x, block.first_index)
+            self._complete_evidence(block)
         frames: list[SpectralFrame] = []
         for g in self.groups:
             an = g.analyzer
@@ -183,6 +249,30 @@ class SourcePipeline:
             elif st.status in ("overrun", "no-data") and st.frames:
                 st.status = "ok"
         return frames
+
+    def request_evidence(self, event_id: int, channel: str, center_index: int,
+                         spectrum: dict[str, object]) -> None:
+        """Ask for the waveform around ``center_index`` (called from the event loop)."""
+        fs = self.fs or 0.0
+        self.requests.append(EvidenceRequest(
+            event_id, channel, center_index, int(self.evidence_s[0] * fs),
+            int(self.evidence_s[1] * fs), spectrum))
+
+    def _complete_evidence(self, block: SampleBlock, *, force: bool = False) -> None:
+        ring = self.ring
+        if ring is None:
+            return
+        rows = {c: i for i, c in enumerate(block.channel_ids)}
+        for _ in range(len(self.requests)):
+            req = self.requests.popleft()
+            if not force and ring.end < req.center_index + req.after and ring.start <= req.center_index:
+                self.requests.append(req)  # not due yet
+                continue
+            wave, first = ring.snippet(rows[req.channel], req.center_index - req.before,
+                                       req.center_index + req.after)
+            t0_ns = int(block.t0_ns + (first - block.first_index) * 1e9 / block.fs)
+            self.ready.append(Evidence(req.event_id, req.channel, req.spectrum, wave,
+                                       block.fs, t0_ns))
 
     def _frames(self, g: ChannelGroup, block: SampleBlock, new: int) -> list[SpectralFrame]:
         an = g.analyzer
@@ -206,7 +296,8 @@ class SourcePipeline:
                 st.status = "ok"
             self.seq += 1
             out.append(SpectralFrame(
-                channel=cid, profile=g.profile, seq=self.seq, t_ns=t_ns, fs=an.grid.fs,
+                channel=cid, profile=g.profile, seq=self.seq, t_ns=t_ns, end_index=end,
+                fs=an.grid.fs,
                 n=an.grid.n, df_hz=an.grid.df_hz, f0_hz=0.0, lines=lines,
                 fmax_hz=an.grid.fmax_hz, window=spec.window, enbw_bins=an.info.enbw_bins,
                 averaging=spec.averaging, averages=an.count, input_unit=spec.input_unit,

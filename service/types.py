@@ -108,3 +108,4 @@ class SpectralFrame:
     bands: tuple[BandValue, ...]
     tones: tuple[ToneValue, ...]
     peaks: tuple[ToneValue, ...]
+    end_index: int = 0  # stream index just after the newest frame's last sample
