@@ -17,7 +17,7 @@ from fastapi.staticfiles import StaticFiles
 
 from .. import __version__
 from ..hub import Hub
-from . import channels, health, stream, windows
+from . import channels, health, metrics, stream, windows
 
 
 def create_app(hub: Hub, *, lifespan_hooks: tuple[Callable[[], Any], Callable[[], Any]] | None = None) -> FastAPI:
@@ -45,6 +45,7 @@ def create_app(hub: Hub, *, lifespan_hooks: tuple[Callable[[], Any], Callable[[]
     app.include_router(channels.router, prefix="/api/v1")
     app.include_router(stream.router, prefix="/api/v1")
     app.include_router(windows.router, prefix="/api/v1")
+    app.include_router(metrics.router)
     web_dir = Path(web.__file__).parent  # the installed package's files, not the working dir
     app.mount("/static", StaticFiles(directory=web_dir), name="static")
 
