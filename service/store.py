@@ -438,7 +438,8 @@ class Store:
 
     def maintain(self, now_ns: int | None = None) -> Future[dict[str, Any]]:
         """Apply the retention limits now; ``now_ns`` defaults to the newest data time in the
-        store. Resolves to {"now_ns", "deleted": {what: rows}, "db_bytes"}."""
+        store. Resolves to {"now_ns", "deleted": {what: rows} by age, "deleted_for_size": {what:
+        rows}, "db_bytes"}."""
         return self._submit(lambda c: self._maintain(c, now_ns), durable=False, alone=True)
 
     # -- reads (any thread) ---------------------------------------------------------------
@@ -807,8 +808,9 @@ class Store:
                     "DELETE FROM events WHERE t_ns < ?", (int(now_ns) - round(ret.events_s * _NS),)
                 ).rowcount
             c.execute("COMMIT")
-        c.execute("PRAGMA incremental_vacuum").fetchall()  # one page per step
+        _vacuum(c)
         size = self._size(c)
+        for_size: dict[str, int] = {}
         if ret.max_db_bytes is not None:
             victims = [
                 f"trend_{self.tiers_s[0]}s",
@@ -822,8 +824,8 @@ class Store:
                 if n == 0:
                     victims.pop(0)
                     continue
-                deleted[victims[0]] = deleted.get(victims[0], 0) + n
-                c.execute("PRAGMA incremental_vacuum").fetchall()  # one page per step
+                for_size[victims[0]] = for_size.get(victims[0], 0) + n
+                _vacuum(c)
                 size = self._size(c)
             if size > ret.max_db_bytes:
                 self._error(
@@ -832,7 +834,12 @@ class Store:
                 )
         c.execute("PRAGMA wal_checkpoint(TRUNCATE)")
         self.db_bytes = size
-        return {"now_ns": now_ns, "deleted": deleted, "db_bytes": size}
+        return {
+            "now_ns": now_ns,
+            "deleted": deleted,
+            "deleted_for_size": for_size,
+            "db_bytes": size,
+        }
 
     def _drop_tier(self, c: sqlite3.Connection, step_s: int, before_ns: int) -> int:
         """Delete a tier's buckets starting before ``before_ns``; remember that it is gone."""
@@ -869,6 +876,12 @@ class Store:
     def _size(c: sqlite3.Connection) -> int:
         pages = c.execute("PRAGMA page_count").fetchone()[0]
         return int(pages) * int(c.execute("PRAGMA page_size").fetchone()[0])
+
+
+def _vacuum(c: sqlite3.Connection) -> None:
+    # Each step of this pragma frees one page; executescript steps it to the end, whereas
+    # execute() stops after the first step of a statement that returns no columns.
+    c.executescript("PRAGMA incremental_vacuum;")
 
 
 def _write_state(c: sqlite3.Connection, state: str) -> None:
