@@ -11,7 +11,7 @@ Threads
     writes share one transaction; each runs in its own SAVEPOINT, so one bad write fails
     only its own future. Reads run on the calling thread on that thread's own connection
     (call them through ``asyncio.to_thread``); in WAL mode readers see the last committed
-    state and never wait for the writer (https://www.sqlite.org/wal.html §2.2).
+    state and never wait for the writer (https://www.sqlite.org/wal.html, "Concurrency").
 
 Durability
     The database is in WAL mode. With ``synchronous=FULL`` the WAL is fsynced at every
@@ -461,7 +461,8 @@ class Store:
         only ids below it (pass the last id of a page to get the next); ``limit`` 1…1000."""
         if not 1 <= int(limit) <= EVENT_LIMIT_MAX:
             raise ValueError(f"limit={limit!r} must be in 1…{EVENT_LIMIT_MAX}")
-        where, args = [], []
+        where: list[str] = []
+        args: list[int | str] = []
         if since_ns is not None:
             where.append("e.t_ns >= ?")
             args.append(int(since_ns))
@@ -676,11 +677,13 @@ class Store:
         self._conn = c
         return c
 
-    def _error(self, text: str) -> None:
+    def _error(self, text: str, *, failing: bool = True) -> None:
+        """Count and keep a write error; ``failing`` marks the store unhealthy until the next
+        successful commit (not for one bad write in a batch that committed)."""
         self.write_errors += 1
         self.last_error = text
         self.last_error_ns = time.time_ns()
-        self._failing = True
+        self._failing = self._failing or failing
 
     def _run(self) -> None:
         next_maintenance = time.monotonic() + self.maintenance_s
@@ -697,21 +700,30 @@ class Store:
                     batch.append(self._q.get_nowait())
                 except queue.Empty:
                     break
-            tasks: list[_Task] = []
-            for item in batch:
-                if item is _STOP:
-                    stop = True
-                elif isinstance(item, tuple):  # runs in its own transactions
-                    self._execute(tasks)
-                    tasks = []
-                    self._execute_alone(item[0])
-                else:
-                    tasks.append(item)
-            self._execute(tasks)
-            if time.monotonic() >= next_maintenance:
-                next_maintenance = time.monotonic() + self.maintenance_s
-                fut: Future[Any] = Future()
-                self._execute_alone(_Task(lambda c: self._maintain(c, None), fut, False))
+            stop = _STOP in batch
+            try:
+                self._handle([t for t in batch if t is not _STOP])
+                if time.monotonic() >= next_maintenance:
+                    next_maintenance = time.monotonic() + self.maintenance_s
+                    fut: Future[Any] = Future()
+                    self._execute_alone(_Task(lambda c: self._maintain(c, None), fut, False))
+            except Exception as e:  # the writer must outlive any one batch
+                self._error(f"store writer: {e!r}")
+                for item in batch:
+                    task = item[0] if isinstance(item, tuple) else item
+                    if isinstance(task, _Task):
+                        _settle(task.future, exc=StoreError(self.last_error))
+
+    def _handle(self, batch: list[Any]) -> None:
+        tasks: list[_Task] = []
+        for item in batch:
+            if isinstance(item, tuple):  # runs alone, in its own transactions
+                self._execute(tasks)
+                tasks = []
+                self._execute_alone(item[0])
+            else:
+                tasks.append(item)
+        self._execute(tasks)
 
     def _connection(self) -> sqlite3.Connection | None:
         if self._conn is None and time.monotonic() - self._last_open_try >= REOPEN_S:
@@ -760,9 +772,9 @@ class Store:
                 _settle(t.future, exc=err)
             return
         self._failing = False
-        for t, r, e in results:
-            if e is not None:
-                self._error(f"write to {self.path} failed: {e}")
+        for t, r, task_error in results:
+            if task_error is not None:
+                self._error(f"write to {self.path} failed: {task_error}", failing=False)
                 _settle(t.future, exc=StoreError(self.last_error))
             else:
                 _settle(t.future, r)
@@ -776,7 +788,10 @@ class Store:
             r = t.fn(c)
         except Exception as e:
             if c.in_transaction:
-                c.execute("ROLLBACK")
+                try:
+                    c.execute("ROLLBACK")
+                except sqlite3.Error:
+                    pass
             self._error(f"maintenance of {self.path} failed: {e}")
             _settle(t.future, exc=StoreError(self.last_error))
         else:

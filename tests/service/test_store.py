@@ -315,6 +315,8 @@ def test_evidence_round_trip_is_exact_float32(store: Store) -> None:
                                    "values": [1.0]}, None, 1.0, T0)
     with pytest.raises(StoreError, match="FOREIGN KEY"):
         fut.result(WAIT_S)
+    h = store.health()  # one bad write is counted, but the store itself is fine
+    assert (h["ok"], h["write_errors"]) == (True, 1) and "FOREIGN KEY" in h["last_error"]
     with pytest.raises(ValueError, match="waveform must be 1-D"):
         store.put_evidence(1, {"f0_hz": 0, "df_hz": 1, "unit": "g", "amplitude": "rms",
                                "values": [1.0]}, np.zeros((2, 3)), 1.0, T0)
