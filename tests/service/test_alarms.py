@@ -35,29 +35,64 @@ S = 1_000_000_000  # ns per s
 T0 = 1_700_000_000 * S  # an arbitrary epoch time so that times look real
 
 
-def frame(ch: str, t_s: float, overall: float = 0.0, bands: dict[str, float] | None = None,
-          tones: dict[str, float] | None = None) -> SpectralFrame:
+def frame(
+    ch: str,
+    t_s: float,
+    overall: float = 0.0,
+    bands: dict[str, float] | None = None,
+    tones: dict[str, float] | None = None,
+) -> SpectralFrame:
     return SpectralFrame(
-        channel=ch, profile="p", seq=0, t_ns=T0 + round(t_s * S), fs=12800.0, n=4096,
-        df_hz=3.125, f0_hz=0.0, lines=1600, fmax_hz=5000.0, window="hann", enbw_bins=1.5,
-        averaging="linear", averages=4, input_unit="g", unit="mm/s", amplitude="rms",
-        lowcut_hz=2.0, power=np.zeros(1601, np.float32), overall=overall,
+        channel=ch,
+        profile="p",
+        seq=0,
+        t_ns=T0 + round(t_s * S),
+        fs=12800.0,
+        n=4096,
+        df_hz=3.125,
+        f0_hz=0.0,
+        lines=1600,
+        fmax_hz=5000.0,
+        window="hann",
+        enbw_bins=1.5,
+        averaging="linear",
+        averages=4,
+        input_unit="g",
+        unit="mm/s",
+        amplitude="rms",
+        lowcut_hz=2.0,
+        power=np.zeros(1601, np.float32),
+        overall=overall,
         bands=tuple(BandValue(k, 10.0, 1000.0, v) for k, v in (bands or {}).items()),
-        tones=tuple(ToneValue(k, 24.7, v) for k, v in (tones or {}).items()), peaks=(),
+        tones=tuple(ToneValue(k, 24.7, v) for k, v in (tones or {}).items()),
+        peaks=(),
     )
 
 
 def overall_rule(ch: str = "m1", **kw: object) -> Rule:
     args: dict[str, object] = dict(
-        id=rule_id(ch, "overall"), channel=ch, kind="overall", name="overall", alert=1.0,
-        danger=2.0, hysteresis=0.1, on_delay_s=3.0, off_delay_s=5.0, unit="mm/s",
+        id=rule_id(ch, "overall"),
+        channel=ch,
+        kind="overall",
+        name="overall",
+        alert=1.0,
+        danger=2.0,
+        hysteresis=0.1,
+        on_delay_s=3.0,
+        off_delay_s=5.0,
+        unit="mm/s",
     )
     args.update(kw)
     return Rule(**args)  # type: ignore[arg-type]
 
 
-def run(engine: AlarmEngine, series: list[float], ch: str = "m1", start_s: int = 0,
-        status: dict[int, str] | None = None) -> list[AlarmEvent]:
+def run(
+    engine: AlarmEngine,
+    series: list[float],
+    ch: str = "m1",
+    start_s: int = 0,
+    status: dict[int, str] | None = None,
+) -> list[AlarmEvent]:
     """One frame per second: value series[i] at t = start_s + i s."""
     out = []
     for i, v in enumerate(series):
@@ -67,26 +102,34 @@ def run(engine: AlarmEngine, series: list[float], ch: str = "m1", start_s: int =
 
 
 def summary(events: list[AlarmEvent]) -> list[tuple[object, ...]]:
-    return [((e.t_ns - T0) / S, e.kind, e.from_state, e.to_state,
-             None if e.level is None else round(e.level, 9)) for e in events]
+    return [
+        (
+            (e.t_ns - T0) / S,
+            e.kind,
+            e.from_state,
+            e.to_state,
+            None if e.level is None else round(e.level, 9),
+        )
+        for e in events
+    ]
 
 
 # alert 1.0, danger 2.0, h = 0.1 → alert clears below 0.9, danger below 1.8; on 3 s, off 5 s.
 SERIES = (
-    [0.5] * 5            # t 0-4   normal
-    + [1.2] * 2          # t 5-6   above alert, but only for 2 s ...
-    + [0.95]             # t 7     below alert (above 0.9): the on-delay starts again
-    + [1.2] * 4          # t 8-11  above alert since 8 → ALERT at 8 + 3 = 11
-    + [0.95] * 3         # t 12-14 between 0.9 and 1.0: hysteresis band, stays ALERT
-    + [2.5] * 2          # t 15-16 above danger ...
-    + [1.9]              # t 17    below danger (above 1.8): danger on-delay starts again
-    + [2.5] * 4          # t 18-21 above danger since 18 → DANGER at 21
-    + [1.85] * 4         # t 22-25 between 1.8 and 2.0: stays DANGER
-    + [1.5] * 6          # t 26-31 below 1.8 since 26 → ALERT at 26 + 5 = 31
-    + [0.95] * 2         # t 32-33 hysteresis band of alert: stays ALERT
-    + [0.5] * 3          # t 34-36 below 0.9 ...
-    + [0.92]             # t 37    back above 0.9: the off-delay starts again
-    + [0.5] * 7          # t 38-44 below 0.9 since 38 → NORMAL at 43
+    [0.5] * 5  # t 0-4   normal
+    + [1.2] * 2  # t 5-6   above alert, but only for 2 s ...
+    + [0.95]  # t 7     below alert (above 0.9): the on-delay starts again
+    + [1.2] * 4  # t 8-11  above alert since 8 → ALERT at 8 + 3 = 11
+    + [0.95] * 3  # t 12-14 between 0.9 and 1.0: hysteresis band, stays ALERT
+    + [2.5] * 2  # t 15-16 above danger ...
+    + [1.9]  # t 17    below danger (above 1.8): danger on-delay starts again
+    + [2.5] * 4  # t 18-21 above danger since 18 → DANGER at 21
+    + [1.85] * 4  # t 22-25 between 1.8 and 2.0: stays DANGER
+    + [1.5] * 6  # t 26-31 below 1.8 since 26 → ALERT at 26 + 5 = 31
+    + [0.95] * 2  # t 32-33 hysteresis band of alert: stays ALERT
+    + [0.5] * 3  # t 34-36 below 0.9 ...
+    + [0.92]  # t 37    back above 0.9: the off-delay starts again
+    + [0.5] * 7  # t 38-44 below 0.9 since 38 → NORMAL at 43
 )
 EXPECTED = [  # (t s, kind, from, to, level crossed)
     (11.0, "transition", "normal", "alert", 1.0),
@@ -140,10 +183,21 @@ def test_latch_holds_until_acknowledged() -> None:
     assert "latched until acknowledged" in events[1].message
     (view,) = engine.active()
     assert (view.state, view.peak, view.latched, view.acked, view.level) == (
-        AlarmState.LATCHED, AlarmState.ALERT, True, False, 1.0)
+        AlarmState.LATCHED,
+        AlarmState.ALERT,
+        True,
+        False,
+        1.0,
+    )
     ack = engine.ack("m1.overall", "r.okafor", "checked coupling", t_ns=T0 + 10 * S)
     assert (ack.kind, ack.from_state, ack.to_state, ack.acked_by, ack.note, ack.latched) == (
-        "ack", "latched", "normal", "r.okafor", "checked coupling", False)
+        "ack",
+        "latched",
+        "normal",
+        "r.okafor",
+        "checked coupling",
+        False,
+    )
     assert engine.active() == []
     with pytest.raises(AckRefused, match="'m1.overall' is normal; there is nothing to ack"):
         engine.ack("m1.overall", "r.okafor", t_ns=T0 + 11 * S)
@@ -153,7 +207,10 @@ def test_latched_alarm_rises_again_and_ack_while_high_skips_the_latch() -> None:
     engine = AlarmEngine([overall_rule(latch=True, on_delay_s=0.0, off_delay_s=0.0)])
     events = run(engine, [1.5, 0.5, 2.5])  # alert, latched, then danger from the latch
     assert [(e.from_state, e.to_state) for e in events] == [
-        ("normal", "alert"), ("alert", "latched"), ("latched", "danger")]
+        ("normal", "alert"),
+        ("alert", "latched"),
+        ("latched", "danger"),
+    ]
     ack = engine.ack("m1.overall", "j.varga", t_ns=T0 + 3 * S)
     assert (ack.from_state, ack.to_state, ack.level) == ("danger", "danger", 2.0)
     assert engine.view("m1.overall").acked
@@ -162,7 +219,9 @@ def test_latched_alarm_rises_again_and_ack_while_high_skips_the_latch() -> None:
     events = run(engine, [1.5, 0.5], start_s=4)
     # acknowledged while high: clears straight to normal, no latch
     assert [(e.from_state, e.to_state, e.latched) for e in events] == [
-        ("danger", "alert", False), ("alert", "normal", False)]
+        ("danger", "alert", False),
+        ("alert", "normal", False),
+    ]
 
 
 def test_escalation_needs_a_new_acknowledgement() -> None:
@@ -171,7 +230,9 @@ def test_escalation_needs_a_new_acknowledgement() -> None:
     engine.ack("m1.overall", "j.varga", t_ns=T0 + S)
     events = run(engine, [2.5, 0.5], start_s=2)
     assert [(e.from_state, e.to_state) for e in events] == [
-        ("alert", "danger"), ("danger", "latched")]
+        ("alert", "danger"),
+        ("danger", "latched"),
+    ]
     assert not engine.view("m1.overall").acked
 
 
@@ -232,16 +293,26 @@ def test_nan_is_skipped_without_moving_any_timer() -> None:
 
 
 def test_band_and_tone_rules_pick_their_value_by_name() -> None:
-    band = Rule(id=rule_id("m1", "band", "Bearing Env"), channel="m1", kind="band",
-                name="Bearing Env", alert=0.4, danger=0.9)
-    tone = Rule(id=rule_id("m1", "tone", "1X"), channel="m1", kind="tone", name="1X",
-                alert=2.0, danger=4.0)
+    band = Rule(
+        id=rule_id("m1", "band", "Bearing Env"),
+        channel="m1",
+        kind="band",
+        name="Bearing Env",
+        alert=0.4,
+        danger=0.9,
+    )
+    tone = Rule(
+        id=rule_id("m1", "tone", "1X"), channel="m1", kind="tone", name="1X", alert=2.0, danger=4.0
+    )
     assert (band.id, tone.id) == ("m1.band.bearing-env", "m1.tone.1x")
     engine = AlarmEngine([band, tone])
-    ev = engine.evaluate(frame("m1", 0, overall=9.0, bands={"Bearing Env": 0.5, "x": 9.0},
-                               tones={"1X": 4.5}))
+    ev = engine.evaluate(
+        frame("m1", 0, overall=9.0, bands={"Bearing Env": 0.5, "x": 9.0}, tones={"1X": 4.5})
+    )
     assert {(e.rule, e.to_state) for e in ev} == {
-        ("m1.band.bearing-env", "alert"), ("m1.tone.1x", "danger")}
+        ("m1.band.bearing-env", "alert"),
+        ("m1.tone.1x", "danger"),
+    }
     # a frame without the band is a missing value (NaN): skipped
     assert engine.evaluate(frame("m1", 1, tones={"1X": 4.5})) == []
 
@@ -250,8 +321,13 @@ def test_baseline_rule_learns_a_median_and_fires_at_twice_it() -> None:
     rng = np.random.default_rng(7)
     learn = rng.uniform(0.8, 1.2, 10).tolist()
     median = float(np.median(learn))  # numpy.median as the reference
-    rule = overall_rule(alert=None, danger=None, on_delay_s=0.0, off_delay_s=0.0,
-                        baseline={"learn_s": 10, "alert_factor": 2.0, "danger_factor": 4.0})
+    rule = overall_rule(
+        alert=None,
+        danger=None,
+        on_delay_s=0.0,
+        off_delay_s=0.0,
+        baseline={"learn_s": 10, "alert_factor": 2.0, "danger_factor": 4.0},
+    )
     engine = AlarmEngine([rule])
     events = run(engine, learn + [2.2 * median])  # t 0-9 learning; t 10 is 2.2 × baseline
     assert engine.view("m1.overall").alert == pytest.approx(2 * median, rel=1e-15)
@@ -266,20 +342,25 @@ def test_baseline_rule_learns_a_median_and_fires_at_twice_it() -> None:
 
 
 def test_baseline_in_db_and_no_alarm_while_learning() -> None:
-    rule = overall_rule(alert=None, danger=None, on_delay_s=0.0,
-                        baseline=Baseline(learn_s=5, alert_db=6, danger_db=12))
+    rule = overall_rule(
+        alert=None,
+        danger=None,
+        on_delay_s=0.0,
+        baseline=Baseline(learn_s=5, alert_db=6, danger_db=12),
+    )
     engine = AlarmEngine([rule])
     events = run(engine, [1.0, 50.0, 1.0, 1.0, 1.0])  # a spike while learning raises nothing
     assert events == [] and engine.view("m1.overall").learning
     run(engine, [1.0], start_s=5)
     # +6 dB as an amplitude ratio is 10^(6/20) (IEC 60027-3 field-quantity level)
-    assert engine.view("m1.overall").alert == pytest.approx(10 ** 0.3, rel=1e-12)
-    assert engine.view("m1.overall").danger == pytest.approx(10 ** 0.6, rel=1e-12)
+    assert engine.view("m1.overall").alert == pytest.approx(10**0.3, rel=1e-12)
+    assert engine.view("m1.overall").danger == pytest.approx(10**0.6, rel=1e-12)
 
 
 def test_baseline_learning_keeps_a_bounded_evenly_spaced_sample() -> None:
-    rule = overall_rule(alert=None, danger=None, baseline={"learn_s": 1e6, "alert_factor": 2,
-                                                           "danger_factor": 4})
+    rule = overall_rule(
+        alert=None, danger=None, baseline={"learn_s": 1e6, "alert_factor": 2, "danger_factor": 4}
+    )
     engine = AlarmEngine([rule])
     run(engine, list(np.arange(5000.0)))
     learn = engine.snapshot()["alarms"]["m1.overall"]["learn"]
@@ -292,8 +373,13 @@ def test_snapshot_restore_resumes_identically() -> None:
     rules = [
         overall_rule("m1"),
         overall_rule("m2", latch=True, on_delay_s=0.0, off_delay_s=1.0),
-        overall_rule("m3", alert=None, danger=None, on_delay_s=1.0,
-                     baseline={"learn_s": 30, "alert_factor": 2, "danger_factor": 4}),
+        overall_rule(
+            "m3",
+            alert=None,
+            danger=None,
+            on_delay_s=1.0,
+            baseline={"learn_s": 30, "alert_factor": 2, "danger_factor": 4},
+        ),
     ]
     rng = np.random.default_rng(3)
     noise = rng.uniform(0.9, 1.1, 60)
@@ -341,12 +427,14 @@ def test_restore_refuses_another_version_and_bad_states() -> None:
 
 def test_transition_table_refuses_invalid_transitions() -> None:
     assert check_transition("normal", "alert") == (AlarmState.NORMAL, AlarmState.ALERT)
-    assert check_transition("latched", "normal", "ack") == (
-        AlarmState.LATCHED, AlarmState.NORMAL)
+    assert check_transition("latched", "normal", "ack") == (AlarmState.LATCHED, AlarmState.NORMAL)
     with pytest.raises(InvalidTransition, match="latched -> normal by value is not an allowed"):
         check_transition("latched", "normal", "value")
-    with pytest.raises(InvalidTransition, match="normal -> latched by value .* from normal: "
-                                                "alert \\(by value\\), danger \\(by value\\)"):
+    with pytest.raises(
+        InvalidTransition,
+        match="normal -> latched by value .* from normal: "
+        "alert \\(by value\\), danger \\(by value\\)",
+    ):
         check_transition(AlarmState.NORMAL, AlarmState.LATCHED)
     with pytest.raises(InvalidTransition, match="alert -> alert"):
         check_transition("alert", "alert")
@@ -372,13 +460,25 @@ def test_rule_checks_its_arguments() -> None:
 
 
 CONFIG = {
-    "sources": [{"id": "s", "kind": "tcp", "listen": "127.0.0.1:9101", "format": "f32le",
-                 "sample_rate_hz": 12800, "channels": ["p1-de-h", "p1-de-v", "fan-h"]}],
+    "sources": [
+        {
+            "id": "s",
+            "kind": "tcp",
+            "listen": "127.0.0.1:9101",
+            "format": "f32le",
+            "sample_rate_hz": 12800,
+            "channels": ["p1-de-h", "p1-de-v", "fan-h"],
+        }
+    ],
     "analysis": {"fmax_hz": 5000, "lines": 1600},
-    "channels": [{"id": "fan-h", "analysis": {"unit": "acceleration"}},
-                 {"id": "p1-de-h", "speed_rpm": 1480}],
-    "bands": [{"channel": "p1-de-h", "name": "Bearing HF", "lo_hz": 1000, "hi_hz": 3000},
-              {"channel": "*", "name": "overall", "lo_hz": 10, "hi_hz": 1000}],
+    "channels": [
+        {"id": "fan-h", "analysis": {"unit": "acceleration"}},
+        {"id": "p1-de-h", "speed_rpm": 1480},
+    ],
+    "bands": [
+        {"channel": "p1-de-h", "name": "Bearing HF", "lo_hz": 1000, "hi_hz": 3000},
+        {"channel": "*", "name": "overall", "lo_hz": 10, "hi_hz": 1000},
+    ],
     "tones": [{"channel": "*", "name": "1X", "order": 1}],
     "alarms": [
         {"channel": "*", "overall": True, "alert": 2.8, "danger": 4.5},
@@ -393,7 +493,10 @@ def test_rules_from_config_expands_star_and_lets_a_channel_entry_win() -> None:
     cfg = parse_config(CONFIG, env={})
     rules = {r.id: r for r in rules_from_config(cfg)}
     assert sorted(rules) == [
-        "fan-h.overall", "p1-de-h.band.bearing-hf", "p1-de-h.overall", "p1-de-h.tone.1x",
+        "fan-h.overall",
+        "p1-de-h.band.bearing-hf",
+        "p1-de-h.overall",
+        "p1-de-h.tone.1x",
         "p1-de-v.overall",
     ]  # the band and the order tone exist only on p1-de-h (the only channel with a speed)
     assert (rules["fan-h.overall"].alert, rules["fan-h.overall"].on_delay_s) == (0.5, 2.0)
@@ -403,7 +506,9 @@ def test_rules_from_config_expands_star_and_lets_a_channel_entry_win() -> None:
     assert rules["p1-de-h.band.bearing-hf"].name == "Bearing HF"
     # the running channels may be given (e.g. a simulated source listing none)
     assert [r.id for r in rules_from_config(cfg, ["p1-de-v", "fan-h"])] == [
-        "p1-de-v.overall", "fan-h.overall"]
+        "p1-de-v.overall",
+        "fan-h.overall",
+    ]
 
 
 def test_rules_from_config_errors_name_the_entry() -> None:

@@ -33,9 +33,17 @@ WAIT_S = 60  # upper bound for a future; never reached unless something is broke
 
 def event(i: int, ch: str = "m1", t_s: float | None = None) -> AlarmEvent:
     return AlarmEvent(
-        t_ns=T0 + round((i if t_s is None else t_s) * S), channel=ch, rule=f"{ch}.overall",
-        kind="transition", from_state="normal", to_state="alert", value=1.0 + i, level=1.0,
-        unit="mm/s", message=f"event {i}", latched=i % 2 == 1,
+        t_ns=T0 + round((i if t_s is None else t_s) * S),
+        channel=ch,
+        rule=f"{ch}.overall",
+        kind="transition",
+        from_state="normal",
+        to_state="alert",
+        value=1.0 + i,
+        level=1.0,
+        unit="mm/s",
+        message=f"event {i}",
+        latched=i % 2 == 1,
     )
 
 
@@ -49,7 +57,8 @@ def store(tmp_path: Path):  # type: ignore[no-untyped-def]
 
 def test_committed_events_get_increasing_ids_and_are_visible_elsewhere(store: Store) -> None:
     stored = store.put_events([event(0), event(1)], alarm_state={"version": 1, "n": 2}).result(
-        WAIT_S)
+        WAIT_S
+    )
     stored += store.put_events([event(2, "m2")]).result(WAIT_S)
     assert [e.id for e in stored] == [1, 2, 3]
     assert [e.message for e in stored] == ["event 0", "event 1", "event 2"]
@@ -101,8 +110,12 @@ for i in range(100_000):
 def test_sigkill_loses_no_committed_event(tmp_path: Path) -> None:
     db = tmp_path / "q.db"
     proc = subprocess.Popen(
-        [sys.executable, "-c", KILLED_WRITER, str(db)], cwd=REPO, stdout=subprocess.PIPE,
-        stderr=subprocess.PIPE, text=True, env={**os.environ, "PYTHONPATH": str(REPO)},
+        [sys.executable, "-c", KILLED_WRITER, str(db)],
+        cwd=REPO,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        env={**os.environ, "PYTHONPATH": str(REPO)},
     )
     assert proc.stdout is not None
     lines = []
@@ -179,7 +192,9 @@ def test_trend_tiers_match_numpy_on_a_synthetic_series(tmp_path: Path) -> None:
     with closing(sqlite3.connect(st.path)) as c:
         fine = c.execute(
             "SELECT t_ns / ? * ?, SUM(sum), MIN(min), MAX(max), SUM(count) FROM trend "
-            "WHERE step_s = 10 GROUP BY 1 ORDER BY 1", (3600 * S, 3600 * S)).fetchall()
+            "WHERE step_s = 10 GROUP BY 1 ORDER BY 1",
+            (3600 * S, 3600 * S),
+        ).fetchall()
         hour = c.execute(
             "SELECT t_ns, sum, min, max, count FROM trend WHERE step_s = 3600 ORDER BY t_ns"
         ).fetchall()
@@ -235,8 +250,19 @@ def test_retention_by_age_drops_old_rows_per_tier(tmp_path: Path) -> None:
     _fill(st, 12)  # one value a minute for 12 h: 720 raw buckets, 720 1-min, 12 1-h
     ids = st.put_events([event(0, t_s=0), event(1, t_s=11 * 3600)]).result(WAIT_S)
     for e in ids:
-        st.put_evidence(e.id, {"f0_hz": 0, "df_hz": 1, "unit": "g", "amplitude": "rms",  # type: ignore[arg-type]
-                               "values": [1.0]}, None, 1.0, e.t_ns).result(WAIT_S)
+        st.put_evidence(
+            e.id,
+            {
+                "f0_hz": 0,
+                "df_hz": 1,
+                "unit": "g",
+                "amplitude": "rms",  # type: ignore[arg-type]
+                "values": [1.0],
+            },
+            None,
+            1.0,
+            e.t_ns,
+        ).result(WAIT_S)
     now = T0 + 12 * 3600 * S  # the newest data is at 11:59; "now" = 12:00
     report = st.maintain(now).result(WAIT_S)
     assert report["deleted"] == {"trend_10s": 660, "trend_60s": 360, "evidence": 1}
@@ -251,7 +277,10 @@ def test_retention_by_age_drops_old_rows_per_tier(tmp_path: Path) -> None:
     assert [e["has_evidence"] for e in st.events()] == [True, False]  # events stay
     # the default "now" is the newest data time (11:59 here): nothing more to drop
     assert st.maintain().result(WAIT_S)["deleted"] == {
-        "trend_10s": 0, "trend_60s": 0, "evidence": 0}
+        "trend_10s": 0,
+        "trend_60s": 0,
+        "evidence": 0,
+    }
     st.close()
 
 
@@ -266,8 +295,7 @@ def test_retention_by_size_drops_the_oldest_raw_rows_first(tmp_path: Path) -> No
         counts = dict(c.execute("SELECT step_s, COUNT(*) FROM trend GROUP BY step_s").fetchall())
     assert counts == {10: 12960, 60: 2160, 3600: 36}
     limit = full * 3 // 4
-    st = Store(db, retention=Retention(raw_s=None, minute_s=None, hour_s=None,
-                                       max_db_bytes=limit))
+    st = Store(db, retention=Retention(raw_s=None, minute_s=None, hour_s=None, max_db_bytes=limit))
     st.start()
     report = st.maintain().result(WAIT_S)
     assert report["db_bytes"] <= limit < full
@@ -289,9 +317,18 @@ def test_evidence_round_trip_is_exact_float32(store: Store) -> None:
     (ev,) = store.put_events([event(0)]).result(WAIT_S)
     store.put_evidence(
         ev.id,  # type: ignore[arg-type]
-        {"f0_hz": 0.0, "df_hz": 3.125, "unit": "mm/s", "amplitude": "rms", "values": spec,
-         "window": "hann", "lines": 1600},
-        wave, 25600.0, T0 - 2 * S,
+        {
+            "f0_hz": 0.0,
+            "df_hz": 3.125,
+            "unit": "mm/s",
+            "amplitude": "rms",
+            "values": spec,
+            "window": "hann",
+            "lines": 1600,
+        },
+        wave,
+        25600.0,
+        T0 - 2 * S,
     ).result(WAIT_S)
     got = store.get_evidence(ev.id)  # type: ignore[arg-type]
     assert got is not None
@@ -299,27 +336,53 @@ def test_evidence_round_trip_is_exact_float32(store: Store) -> None:
     assert np.array_equal(got["spectrum"]["values"], spec)
     assert np.array_equal(got["waveform"], wave) and got["waveform"].dtype == np.float32
     assert {k: v for k, v in got["spectrum"].items() if k != "values"} == {
-        "f0_hz": 0.0, "df_hz": 3.125, "unit": "mm/s", "amplitude": "rms", "window": "hann",
-        "lines": 1600}
+        "f0_hz": 0.0,
+        "df_hz": 3.125,
+        "unit": "mm/s",
+        "amplitude": "rms",
+        "window": "hann",
+        "lines": 1600,
+    }
     assert (got["fs"], got["t0_ns"]) == (25600.0, T0 - 2 * S)
     assert store.events()[0]["has_evidence"]
     # values given as Python floats are stored as float32 (rounded once, like numpy)
-    store.put_evidence(ev.id, {"f0_hz": 0, "df_hz": 1, "unit": "g", "amplitude": "peak",  # type: ignore[arg-type]
-                               "values": [0.1, 0.2]}, None, 1.0, T0).result(WAIT_S)
+    store.put_evidence(
+        ev.id,
+        {
+            "f0_hz": 0,
+            "df_hz": 1,
+            "unit": "g",
+            "amplitude": "peak",  # type: ignore[arg-type]
+            "values": [0.1, 0.2],
+        },
+        None,
+        1.0,
+        T0,
+    ).result(WAIT_S)
     again = store.get_evidence(ev.id)  # type: ignore[arg-type]
     assert again is not None and again["waveform"] is None
     assert np.array_equal(again["spectrum"]["values"], np.float32([0.1, 0.2]))
     assert store.get_evidence(12345) is None
     # evidence for an event that does not exist fails its future (foreign key), not the caller
-    fut = store.put_evidence(999, {"f0_hz": 0, "df_hz": 1, "unit": "g", "amplitude": "rms",
-                                   "values": [1.0]}, None, 1.0, T0)
+    fut = store.put_evidence(
+        999,
+        {"f0_hz": 0, "df_hz": 1, "unit": "g", "amplitude": "rms", "values": [1.0]},
+        None,
+        1.0,
+        T0,
+    )
     with pytest.raises(StoreError, match="FOREIGN KEY"):
         fut.result(WAIT_S)
     h = store.health()  # one bad write is counted, but the store itself is fine
     assert (h["ok"], h["write_errors"]) == (True, 1) and "FOREIGN KEY" in h["last_error"]
     with pytest.raises(ValueError, match="waveform must be 1-D"):
-        store.put_evidence(1, {"f0_hz": 0, "df_hz": 1, "unit": "g", "amplitude": "rms",
-                               "values": [1.0]}, np.zeros((2, 3)), 1.0, T0)
+        store.put_evidence(
+            1,
+            {"f0_hz": 0, "df_hz": 1, "unit": "g", "amplitude": "rms", "values": [1.0]},
+            np.zeros((2, 3)),
+            1.0,
+            T0,
+        )
 
 
 def test_unopenable_folder_is_reported_in_health_not_raised(tmp_path: Path) -> None:
@@ -364,10 +427,12 @@ def test_read_only_data_folder_is_reported_in_health(tmp_path: Path) -> None:
 def test_disk_full_fails_the_write_keeps_running_and_recovers(store: Store) -> None:
     store.put_events([event(0)]).result(WAIT_S)
     # a full disk, simulated with SQLite's own page limit on the writer's connection
-    pages = store._submit(lambda c: c.execute("PRAGMA page_count").fetchone()[0],
-                          durable=False).result(WAIT_S)
-    store._submit(lambda c: c.execute(f"PRAGMA max_page_count = {pages}").fetchall(),
-                  durable=False).result(WAIT_S)
+    pages = store._submit(
+        lambda c: c.execute("PRAGMA page_count").fetchone()[0], durable=False
+    ).result(WAIT_S)
+    store._submit(
+        lambda c: c.execute(f"PRAGMA max_page_count = {pages}").fetchall(), durable=False
+    ).result(WAIT_S)
     big = {"version": 1, "blob": "x" * 200_000}
     fut = store.put_events([event(1)], alarm_state=big)
     with pytest.raises(StoreError, match="database or disk is full"):
@@ -375,8 +440,9 @@ def test_disk_full_fails_the_write_keeps_running_and_recovers(store: Store) -> N
     h = store.health()
     assert not h["ok"] and "full" in h["last_error"] and h["write_errors"] == 1
     assert [e["id"] for e in store.events()] == [1]  # nothing of the failed batch
-    store._submit(lambda c: c.execute("PRAGMA max_page_count = 1073741823").fetchall(),
-                  durable=False).result(WAIT_S)
+    store._submit(
+        lambda c: c.execute("PRAGMA max_page_count = 1073741823").fetchall(), durable=False
+    ).result(WAIT_S)
     (ok,) = store.put_events([event(2)]).result(WAIT_S)
     assert store.health()["ok"] and ok.id == 2  # the failed batch's id 2 was never committed
 
