@@ -8,42 +8,71 @@ import asyncio
 import functools
 import logging
 import signal
+import time
 import tomllib
 from collections.abc import Callable
 from importlib import resources
+from pathlib import Path
+
 import uvicorn
 
+from .alarms import AlarmEngine, AlarmEvent, rules_from_config
 from .api import create_app
 from .config import Config, parse_config, parse_listen
 from .hub import Hub
 from .pipeline import SourcePipeline, build_groups, channel_states
 from .sources import make_source
+from .spectra import spectrum_values
+from .store import Retention, Store
+from .types import SpectralFrame
 
 log = logging.getLogger("quaver")
 
 
 class Service:
-    """Sources, one pipeline task each, and the hub they publish to."""
+    """Sources, one pipeline task each, the alarm engine, the store and the hub.
+
+    Order of work for every block's frames (on the event loop): latest spectra to the hub,
+    trend values to the store, alarm evaluation; alarm events are committed to the store
+    *before* they are announced, then the waveform around each raising event is requested
+    from the source's pipeline and stored as evidence with the spectrum of that moment.
+    """
 
     def __init__(self, cfg: Config) -> None:
         self.cfg = cfg
         self.hub = Hub()
         self.pipelines: list[SourcePipeline] = []
         self.tasks: list[asyncio.Task[None]] = []
+        self.store_errors = 0
+        all_ids: list[str] = []
         for src_cfg in cfg.sources:
             source = make_source(src_cfg)
             ids = list(source.channel_ids)
+            all_ids += ids
             states = channel_states(cfg, src_cfg.id, ids)
             self.hub.channels.update(states)
             self.hub.sources[src_cfg.id] = source
             self.pipelines.append(SourcePipeline(
-                source, states, self.hub.publish,
+                source, states, self.on_frames,
                 make_groups=functools.partial(build_groups, cfg, src_cfg.id, ids, states=states),
+                evidence_s=(cfg.service.evidence_before_s, cfg.service.evidence_after_s),
             ))
+        self.alarms = AlarmEngine(rules_from_config(cfg, channels=all_ids))
+        max_bytes = None if cfg.service.max_db_mb is None else int(cfg.service.max_db_mb * 2**20)
+        self.store = Store(Path(cfg.service.data_dir) / "quaver.db",
+                           trend_step_s=cfg.service.trend_step_s,
+                           retention=Retention(max_db_bytes=max_bytes))
 
+    # -- lifecycle ---------------------------------------------------------------------
     async def start(self) -> None:
-        """Open every source first (a port that cannot be bound fails the start-up), then
-        start one pipeline task per source."""
+        """Open the store and restore alarm state, open every source (a port that cannot be
+        bound fails the start-up), then start one pipeline task per source."""
+        Path(self.cfg.service.data_dir).mkdir(parents=True, exist_ok=True)
+        self.store.start()
+        state = await asyncio.to_thread(self.store.load_alarm_state)
+        if state:
+            self.alarms.restore(state)
+            log.info("restored %d active/latched alarms", len(self.alarms.active()))
         for p in self.pipelines:
             start = getattr(p.source, "start", None)
             if start is not None:
@@ -68,9 +97,72 @@ class Service:
             close = getattr(p.source, "aclose", None)
             if close is not None:
                 await close()
+            self._store_evidence(p, force=True)
+        await asyncio.to_thread(self.store.close)
 
     def app(self):  # type: ignore[no-untyped-def]
-        return create_app(self.hub, lifespan_hooks=(self.start, self.stop))
+        return create_app(self.hub, config=self.cfg, service=self,
+                          lifespan_hooks=(self.start, self.stop))
+
+    # -- per block ---------------------------------------------------------------------
+    async def on_frames(self, p: SourcePipeline, frames: list[SpectralFrame],
+                        latency_s: float) -> None:
+        self._store_evidence(p)
+        if not frames:
+            return
+        self.hub.publish(frames, latency_s)
+        events = []
+        for f in frames:
+            values = {"overall": f.overall}
+            values.update({f"band:{b.name}": b.value for b in f.bands})
+            values.update({f"tone:{t.name}": t.value for t in f.tones})
+            self.store.record_many(f.channel, f.t_ns, values)
+            st = self.hub.channels[f.channel]
+            for e in self.alarms.evaluate(f, st.status, fault=st.fault):
+                events.append((e, f))
+        if events:
+            await self._commit_and_announce(p, events)
+
+    async def _commit_and_announce(self, p: SourcePipeline,
+                                   events: list[tuple[AlarmEvent, SpectralFrame]]) -> None:
+        evs = [e for e, _ in events]
+        try:
+            stored = await asyncio.wrap_future(
+                self.store.put_events(evs, alarm_state=self.alarms.snapshot()))
+        except Exception as e:  # the store failing must not stop monitoring
+            self.store_errors += 1
+            log.error("could not store %d alarm events: %s", len(evs), e)
+            stored = evs
+        for e, (_, frame) in zip(stored, events, strict=True):
+            log.info("alarm event %s: %s", e.id, e.message)
+            self.hub.publish_event(e.as_dict())
+            if e.raises and e.id is not None:
+                values, unit, amp = spectrum_values(frame)
+                p.request_evidence(e.id, frame.channel, frame.end_index, {
+                    "f0_hz": frame.f0_hz, "df_hz": frame.df_hz, "unit": unit,
+                    "amplitude": amp, "values": values, "t_ns": frame.t_ns,
+                    "channel": frame.channel, "window": frame.window,
+                    "averages": frame.averages, "input_unit": frame.input_unit,
+                })
+
+    def _store_evidence(self, p: SourcePipeline, *, force: bool = False) -> None:
+        if force and p.requests and p.ring is not None:
+            p.complete_all()
+        while p.ready:
+            ev = p.ready.popleft()
+            self.store.put_evidence(ev.event_id, ev.spectrum, ev.waveform, ev.fs, ev.t0_ns)
+
+    async def acknowledge(self, rule: str, who: str, note: str) -> dict[str, object]:
+        ev = self.alarms.ack(rule, who, note, t_ns=time.time_ns())
+        stored = await asyncio.wrap_future(
+            self.store.put_events([ev], alarm_state=self.alarms.snapshot()))
+        d = stored[0].as_dict()
+        log.info("alarm %s acknowledged by %s", rule, who)
+        self.hub.publish_event(d)
+        return d
+
+
+DEMO_OPERATOR_TOKEN = "quaver-demo-operator"  # matches the hash in examples/demo.toml
 
 
 def demo_config(

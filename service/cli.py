@@ -234,7 +234,20 @@ def cmd_demo(args: argparse.Namespace) -> int:
         check_listen_allowed(cfg)
     except ConfigError as e:
         return _config_error(e)
-    return int(app.run_service(cfg, announce=lambda s: print(s, flush=True)))
+    host, _ = parse_listen(cfg.service.listen)
+    if host not in ("127.0.0.1", "localhost", "::1"):
+        # The demo's operator token is published in its config: never serve it off this box.
+        print(f"quaver demo: listens on loopback only (its token is public), not {host!r}",
+              file=sys.stderr)
+        return 2
+    token = getattr(app, "DEMO_OPERATOR_TOKEN", None)
+
+    def announce(s: str) -> None:
+        print(s, flush=True)
+        if token:
+            print(f"demo operator token (to acknowledge alarms): {token}", flush=True)
+
+    return int(app.run_service(cfg, announce=announce))
 
 
 def cmd_serve(args: argparse.Namespace) -> int:

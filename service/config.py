@@ -142,6 +142,26 @@ class ServiceSettings(_Model):
         description="HTTP address host:port for REST, WebSocket, /metrics and the dashboard. "
         "A non-loopback host is refused unless [[tokens]] are configured. Env: QUAVER_LISTEN.",
     )
+    trend_step_s: float = Field(
+        10.0, ge=1, le=3600, description="Trend bucket length, s (mean/min/max kept per bucket)."
+    )
+    evidence_before_s: float = Field(
+        3.0, ge=0, le=60, description="Waveform kept before an alarm transition, s."
+    )
+    evidence_after_s: float = Field(
+        3.0, ge=0, le=60, description="Waveform kept after an alarm transition, s."
+    )
+    max_db_mb: float | None = Field(
+        None, gt=0, description="Size limit of the store, MiB; oldest trend detail goes first."
+    )
+    cors_origins: list[str] = Field(
+        default_factory=list,
+        description="Browser origins (scheme://host:port) allowed to call the API from other "
+        "pages; empty = same origin only (CORS off).",
+    )
+    max_body_bytes: int = Field(
+        65536, ge=1024, le=16 * 2**20, description="Largest request body accepted, bytes."
+    )
     data_dir: str = Field(
         "quaver-data",
         description="Folder for trends, events and evidence (SQLite); a relative path is "
@@ -369,8 +389,23 @@ class AlarmConfig(_Model):
     band: str | None = Field(None, description="Band name watched.")
     tone: str | None = Field(None, description="Tone name watched.")
     overall: bool = Field(False, description="Watch the overall RMS over lowcut_hz…fmax_hz.")
-    alert: float = _d("Alert (first) level, in the channel's display unit and amplitude.")
-    danger: float = _d("Danger (second) level, same unit; must exceed alert.")
+    alert: float | None = Field(
+        None, gt=0,
+        description="Alert (first) level, in the channel's display unit and amplitude "
+        "(bands and overall: RMS). Required unless baseline_learn_s is set.",
+    )
+    danger: float | None = Field(
+        None, gt=0, description="Danger (second) level, same unit; must exceed alert."
+    )
+    baseline_learn_s: float | None = Field(
+        None, gt=0, le=365 * 86400,
+        description="Relative levels: learn the median of the first baseline_learn_s seconds "
+        "of good data, then alert/danger at a factor or dB over it.",
+    )
+    alert_factor: float | None = Field(None, gt=1, description="Alert at this × the baseline.")
+    danger_factor: float | None = Field(None, gt=1, description="Danger at this × the baseline.")
+    alert_db: float | None = Field(None, gt=0, description="Alert at this many dB over baseline.")
+    danger_db: float | None = Field(None, gt=0, description="Danger at this many dB over baseline.")
     hysteresis: float = Field(
         0.05,
         ge=0,
@@ -910,8 +945,19 @@ class _Checker:
             if (a.band is not None) + (a.tone is not None) + a.overall != 1:
                 self.add(f"{w}: give exactly one of band, tone or overall = true")
                 continue
-            if not a.alert < a.danger:
-                self.add(f"{w}.danger: {a.danger:g} must be above alert {a.alert:g}")
+            if a.baseline_learn_s is None:
+                if a.alert is None or a.danger is None:
+                    self.add(f"{w}: give alert and danger levels (or baseline_learn_s)")
+                elif not a.alert < a.danger:
+                    self.add(f"{w}.danger: {a.danger:g} must be above alert {a.alert:g}")
+            else:
+                if a.alert is not None or a.danger is not None:
+                    self.add(f"{w}: give either absolute alert/danger or baseline_learn_s, not both")
+                factors = (a.alert_factor, a.danger_factor)
+                dbs = (a.alert_db, a.danger_db)
+                if not (all(v is not None for v in factors) ^ all(v is not None for v in dbs)):
+                    self.add(f"{w}: with baseline_learn_s give alert_factor and danger_factor, "
+                             "or alert_db and danger_db")
             if self.open_ended:
                 continue
             for key, name, lookup in (("band", a.band, bands_for), ("tone", a.tone, tones_for)):

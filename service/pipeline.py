@@ -14,7 +14,7 @@ import asyncio
 import collections
 import logging
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Awaitable, Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
@@ -148,7 +148,7 @@ class ChannelGroup:
 class SourcePipeline:
     source: object  # a Source: id, channel_ids, fs, counters, async iteration, aclose()
     channels: dict[str, ChannelState]
-    publish: Callable[[list[SpectralFrame], float], None]
+    publish: Callable[[SourcePipeline, list[SpectralFrame], float], Awaitable[None]]
     make_groups: Callable[[float], list[ChannelGroup]]  # built at the stream's sample rate
     groups: list[ChannelGroup] = field(default_factory=list)
     fs: float | None = None
@@ -166,6 +166,7 @@ class SourcePipeline:
         sid = getattr(self.source, "id", "source")
         self._executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix=f"dsp-{sid}")
         self._last_drops = 0
+        self._last_block: SampleBlock | None = None
 
     async def run(self) -> None:
         """Consume the source until it ends or the task is cancelled."""
@@ -175,8 +176,7 @@ class SourcePipeline:
                 t0 = time.perf_counter()
                 frames = await loop.run_in_executor(self._executor, self.process, block)
                 self.latency_s = time.perf_counter() - t0
-                if frames:
-                    self.publish(frames, self.latency_s)
+                await self.publish(self, frames, self.latency_s)
         finally:
             self._executor.shutdown(wait=False, cancel_futures=True)
 
@@ -227,6 +227,7 @@ class SourcePipeline:
                 st.overrun_until = now + OVERRUN_HOLD_S
         x = x * sens  # raw units → engineering units
         if self.ring is not None:
+            self._last_block = block
             self.ring.append(x, block.first_index)
             self._complete_evidence(block)
         frames: list[SpectralFrame] = []
@@ -257,6 +258,12 @@ class SourcePipeline:
         self.requests.append(EvidenceRequest(
             event_id, channel, center_index, int(self.evidence_s[0] * fs),
             int(self.evidence_s[1] * fs), spectrum))
+
+    def complete_all(self) -> None:
+        """Complete every pending request with what the ring holds (at shut-down)."""
+        if self.ring is None or self._last_block is None:
+            return
+        self._complete_evidence(self._last_block, force=True)
 
     def _complete_evidence(self, block: SampleBlock, *, force: bool = False) -> None:
         ring = self.ring

@@ -1,0 +1,48 @@
+"""GET /api/v1/channels/{id}/trend: stored band/overall/tone values over time.
+
+Reads the store through a worker thread; never blocks the event loop."""
+
+from __future__ import annotations
+
+import asyncio
+import time
+from typing import Annotated, Any
+
+from fastapi import APIRouter, HTTPException, Query, Request
+
+from .deps import ChannelDep
+from .security import Reader
+
+router = APIRouter(tags=["trends"])
+
+_NS = 1_000_000_000
+
+
+@router.get(
+    "/channels/{channel_id}/trend",
+    summary="Trend of one value: overall, band:<name> or tone:<name>",
+)
+async def get_trend(
+    request: Request, channel: ChannelDep, _: Reader,
+    name: Annotated[str, Query(max_length=200, description="overall | band:<name> | tone:<name>")] = "overall",
+    since: Annotated[float | None, Query(description="start, s since the Unix epoch; default: 1 h ago")] = None,
+    until: Annotated[float | None, Query(description="end, s since the Unix epoch; default: now")] = None,
+    step: Annotated[int | None, Query(ge=1, le=31 * 86400, description="bucket, s; default: the finest kept")] = None,
+) -> dict[str, Any]:
+    store = request.app.state.service.store
+    now = time.time()
+    until_s = now if until is None else until
+    since_s = until_s - 3600 if since is None else since
+    if not since_s < until_s:
+        raise HTTPException(422, f"since={since_s:g} must be before until={until_s:g}")
+    since_ns, until_ns = int(since_s * _NS), int(until_s * _NS)
+    points = await asyncio.to_thread(store.trend, channel.id, name, since_ns, until_ns, step)
+    used = await asyncio.to_thread(store.trend_step, since_ns, step)
+    names = await asyncio.to_thread(store.trend_names, channel.id)
+    if not points and name not in names and names:
+        raise HTTPException(404, f"no trend {name!r} on {channel.id!r}; have: {', '.join(names)}")
+    return {
+        "channel": channel.id, "name": name, "step_s": used, "since": since_s, "until": until_s,
+        "points": [{"t_ns": t, "mean": m, "min": lo, "max": hi, "count": n}
+                   for t, m, lo, hi, n in points],
+    }
