@@ -311,11 +311,12 @@ class FilterBank:
                 self._work = np.empty((self.channels, p_count, n), dtype=np.float32)
             # Reused buffer: the FFT input is not freshly allocated (and page-faulted) each push.
             windowed = np.multiply(frames, self._w32, out=self._work[:, :p_count])
-            spectra = scipy.fft.rfft(windowed, axis=-1, workers=1)
             if self._kernel.shape[2]:
                 tones = self._tones(windowed)
             else:
                 tones = np.zeros((self.channels, p_count, 0), dtype=np.complex64)
+            # The windowed frames are our scratch: let the FFT reuse them (after the tones).
+            spectra = scipy.fft.rfft(windowed, axis=-1, workers=1, overwrite_x=True)
             start = self._tail_start + hop * np.arange(p_count, dtype=np.int64)
         else:
             spectra = np.zeros((self.channels, 0, self.grid.bins), dtype=np.complex64)
