@@ -1,0 +1,406 @@
+"""The dashboard in a real browser against the demo service: loads cleanly, draws live
+spectra, shows the REST values and states, recovers from a restart, handles alarms.
+
+Drives headless Chromium through Playwright; knows only the public API and the page."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import struct
+import time
+from typing import Any
+
+import numpy as np
+import pytest
+import scipy.signal
+from conftest import OPERATOR_TOKEN, VIEWER_TOKEN, PageLog, Service, screenshot, wait_for
+
+pytestmark = pytest.mark.browser
+
+STATE_WORDS = {"OK", "ALERT", "DANGER", "SENSOR FAULT", "LATCHED", "NO DATA", "GAP", "OVERRUN"}
+# REST channel status → the word the dashboard must show when no alarm is active.
+STATUS_WORD = {"ok": "OK", "no-data": "NO DATA", "gap": "GAP", "sensor-fault": "SENSOR FAULT",
+               "overrun": "OVERRUN"}
+# Routes of the API contract that a service may not have yet (the page hides what needs them).
+OPTIONAL_ROUTES = ["alarms", "events?limit=1", "channels/p1-de-h/trend?name=overall",
+                   "windows/hann/response?n=4096&span_bins=8"]
+
+
+def half_unit(text: str) -> float:
+    """Half a unit in the last displayed digit of a fixed-notation number ("5.80" → 0.005)."""
+    decimals = len(text.split(".")[1]) if "." in text else 0
+    return 0.5 * 10.0**-decimals
+
+
+def fmt3(v: float) -> str:
+    """The dashboard's rule for values: 3 significant digits, fixed notation (fmt.js fmtVal)."""
+    digits = max(0, 2 - math.floor(math.log10(abs(v))))
+    return f"{v:.{min(digits, 6)}f}"
+
+
+def open_page(pg: Any, url: str) -> None:
+    pg.goto(url, wait_until="domcontentloaded")
+
+
+def cards_filled(pg: Any) -> bool:
+    vals = pg.eval_on_selector_all(".card .overall", "els => els.map(e => e.textContent)")
+    return bool(vals) and all(v not in ("", "—") for v in vals)
+
+
+def canvas_digest(pg: Any, selector: str) -> dict[str, Any]:
+    """Hash of a canvas's pixels and the count of dark (trace-coloured) pixels in it."""
+    return pg.eval_on_selector(selector, """c => {
+        const d = c.getContext('2d').getImageData(0, 0, c.width, c.height).data;
+        let dark = 0, h = 2166136261 >>> 0;
+        for (let i = 0; i < d.length; i += 4) {
+            if (d[i] + d[i + 1] + d[i + 2] < 3 * 110) dark++;
+            h = Math.imul(h ^ d[i] ^ (d[i + 1] << 8) ^ (d[i + 2] << 16), 16777619) >>> 0;
+        }
+        return {hash: h, dark, w: c.width, h: c.height};
+    }""")
+
+
+# --- loading ---------------------------------------------------------------------------------
+
+
+def test_page_loads_without_console_errors(demo: Service, page: tuple[Any, PageLog]) -> None:
+    pg, log = page
+    open_page(pg, demo.base_url + "/")
+    wait_for(lambda: cards_filled(pg), "every channel card to show an overall value")
+    # let a few polls/stream messages and the event probes happen
+    n0 = len(log.console)
+    wait_for(lambda: pg.evaluate("window.quaver && window.quaver.live.conn") in ("live", "polling"),
+             "the live link")
+    time.sleep(3)  # a few refresh cycles' worth of messages; nothing is asserted on time
+    assert not log.errors, f"uncaught errors in the page: {log.errors}"
+    # The browser logs a failed request as a console error. Requests to contract routes this
+    # service does not have yet are expected (the page probes them and hides what needs them).
+    missing = [r.split("?")[0] for r in OPTIONAL_ROUTES if not demo.has_route(r)]
+    allowed_ws = not demo.has_stream()
+    unexpected = []
+    for text, url in log.console_errors():
+        if "404" in text and any(f"/api/v1/{m}" in url for m in missing):
+            continue
+        if allowed_ws and "/api/v1/stream" in text and "WebSocket" in text:
+            continue
+        unexpected.append((text, url))
+    assert not unexpected, f"console errors: {unexpected}"
+    assert len(log.console) >= n0
+    # the cautions are on the page
+    foot = pg.inner_text("#cautions")
+    assert "not a machine-protection or safety system" in foot
+    assert "qualified people" in foot
+    screenshot(pg, "overview", full_page=True)
+
+
+def test_channels_grouped_by_machine(demo: Service, page: tuple[Any, PageLog]) -> None:
+    pg, _ = page
+    open_page(pg, demo.base_url + "/")
+    wait_for(lambda: cards_filled(pg), "channel cards")
+    rest = demo.get("channels")
+    shown = pg.eval_on_selector_all(
+        ".machine", "els => els.map(m => [m.dataset.machine, [...m.querySelectorAll('.card')].map(c => c.dataset.channel)])")
+    expected: dict[str, list[str]] = {}
+    for c in rest:
+        expected.setdefault(c["machine"], []).append(c["id"])
+    assert dict(shown) == expected
+
+
+# --- values and states -------------------------------------------------------------------------
+
+
+def test_overall_on_screen_matches_rest(demo: Service, page: tuple[Any, PageLog]) -> None:
+    """Each card shows the overall of the very frame the service reported (matched by seq),
+    to display rounding; and a steady channel agrees with an independent REST read."""
+    pg, _ = page
+    seen: dict[tuple[str, int], float] = {}
+
+    def on_response(resp: Any) -> None:
+        if resp.url.endswith("/api/v1/channels") and resp.status == 200:
+            try:
+                for c in resp.json():
+                    if c["latest"]:
+                        seen[(c["id"], c["latest"]["seq"])] = c["latest"]["overall"]
+            except Exception:  # a response body can be gone once the page navigates
+                pass
+
+    def on_ws(ws: Any) -> None:
+        def frame(payload: Any) -> None:
+            if isinstance(payload, str):
+                m = json.loads(payload)
+                if m.get("kind") == "status" and (m.get("latest") or {}).get("seq") is not None:
+                    seen[(m.get("id") or m["channel"], m["latest"]["seq"])] = m["latest"]["overall"]
+
+        ws.on("framereceived", frame)
+
+    pg.on("response", on_response)
+    pg.on("websocket", on_ws)
+    open_page(pg, demo.base_url + "/")
+    wait_for(lambda: cards_filled(pg), "channel cards")
+
+    def read() -> list[dict[str, Any]]:
+        return pg.eval_on_selector_all(".card", """els => els.map(c => {
+            const o = c.querySelector('.overall');
+            return {id: c.dataset.channel, text: o.textContent, seq: Number(o.dataset.seq), unit: c.querySelector('.unit').textContent};
+        })""")
+
+    def all_matched() -> list[dict[str, Any]] | None:
+        cards = read()
+        return cards if all((c["id"], c["seq"]) in seen for c in cards) else None
+
+    cards = wait_for(all_matched, "cards whose frames the page was seen receiving")
+    rest = {c["id"]: c for c in demo.get("channels")}
+    for c in cards:
+        want = seen[(c["id"], c["seq"])]
+        shown = float(c["text"])
+        assert abs(shown - want) <= half_unit(c["text"]) * (1 + 1e-9), (c, want)
+        assert c["text"] == fmt3(want)
+        assert c["unit"] == f"{rest[c['id']]['latest']['unit']} RMS"
+    # An independent read of a channel the demo keeps steady (pump 2: no growing fault).
+    # Frame-to-frame scatter of an 8-frame exponential average is well under 5 % there.
+    text = pg.eval_on_selector('.card[data-channel="p2-de-h"] .overall', "e => e.textContent")
+    now = demo.get("channels")
+    p2 = next(c for c in now if c["id"] == "p2-de-h")["latest"]["overall"]
+    assert abs(float(text) - p2) <= 0.05 * p2
+
+
+def test_state_is_shown_as_text_and_shape(demo: Service, page: tuple[Any, PageLog]) -> None:
+    pg, _ = page
+    open_page(pg, demo.base_url + "/")
+    wait_for(lambda: cards_filled(pg), "channel cards")
+    wait_for(lambda: all(pg.eval_on_selector_all(".card", "els => els.map(e => e.dataset.state !== 'unknown')")),
+             "a state on every card")
+    badges = pg.eval_on_selector_all(".card", """els => els.map(c => ({
+        id: c.dataset.channel, word: c.querySelector('.badge .word').textContent,
+        shape: !!c.querySelector('.badge svg.glyph path, .badge svg.glyph circle, .badge svg.glyph rect'),
+        title: c.querySelector('.badge').title}))""")
+    rest = {c["id"]: c for c in demo.get("channels")}
+    alarms = demo.get("alarms") if demo.has_route("alarms") else []
+    for b in badges:
+        assert b["word"] in STATE_WORDS, b
+        assert b["shape"], f"{b['id']}: the state has no shape"
+        assert b["title"], f"{b['id']}: the state has no explanation"
+        active = [a for a in alarms if a["channel"] == b["id"] and a["state"] != "normal"]
+        if not active:
+            assert b["word"] == STATUS_WORD[rest[b["id"]]["status"]], (b, rest[b["id"]]["status"])
+    # The channel page says it too.
+    open_page(pg, demo.base_url + "/#/channel/p2-de-h")
+    wait_for(lambda: pg.inner_text("#ch-badge").strip() in STATE_WORDS, "the channel's state word")
+
+
+# --- the spectrum --------------------------------------------------------------------------------
+
+
+def test_spectrum_draws_and_changes(demo: Service, page: tuple[Any, PageLog]) -> None:
+    pg, log = page
+    open_page(pg, demo.base_url + "/#/channel/p1-de-h")
+    first = wait_for(lambda: (d := canvas_digest(pg, "#spec"))["dark"] > 2000 and d,
+                     "the spectrum trace to be drawn")
+    # a live spectrum changes: wait for different pixels (bounded)
+    wait_for(lambda: canvas_digest(pg, "#spec")["hash"] != first["hash"], "the spectrum to change")
+    # the spectrogram fills with rows
+    wait_for(lambda: canvas_digest(pg, "#sgram")["dark"] > 200, "the spectrogram to show rows")
+    assert not log.errors, log.errors
+    screenshot(pg, "channel", full_page=True)
+
+
+def test_spectrum_zoom_pan_and_keys(demo: Service, page: tuple[Any, PageLog]) -> None:
+    """Wheel zooms in about the cursor, keys pan and reset; the view stays inside 0…Fmax."""
+    pg, _ = page
+    open_page(pg, demo.base_url + "/#/channel/p2-de-h")
+    wait_for(lambda: canvas_digest(pg, "#spec")["dark"] > 2000, "the spectrum")
+    spec = demo.get("channels/p2-de-h/spectrum")
+    fmax = spec["f0_hz"] + (len(spec["values"]) - 1) * spec["df_hz"]
+    # the page exposes no view API; read it back through the hover read-out instead
+    box = pg.locator("#spec").bounding_box()
+    x, y = box["x"] + box["width"] * 0.5, box["y"] + box["height"] * 0.5
+    pg.mouse.move(x, y)
+    before = wait_for(lambda: pg.inner_text("#readout"), "a hover read-out")
+    f_before = float(before.split(" ")[0].replace("k", "")) * (1000 if "kHz" in before.split("·")[0] else 1)
+    for _ in range(6):
+        pg.mouse.wheel(0, -240)
+    pg.mouse.move(x + 40, y)
+    after = pg.inner_text("#readout")
+    f_after = float(after.split(" ")[0]) * (1000 if "kHz" in after.split("·")[0] else 1)
+    # zoomed in: 40 px now spans far fewer Hz than the whole-range 40 px would
+    whole_40px = fmax / (box["width"] - 72) * 40
+    assert 0 < f_after - f_before < whole_40px / 2, (before, after)
+    pg.focus("#spec")
+    pg.keyboard.press("0")
+    pg.keyboard.press("l")
+    pg.wait_for_function("() => document.querySelector('[data-ya=lin]').getAttribute('aria-pressed') === 'true'")
+    pg.keyboard.press("l")
+    pg.wait_for_function("() => document.querySelector('[data-ya=log]').getAttribute('aria-pressed') === 'true'")
+
+
+# --- reconnection -------------------------------------------------------------------------------
+
+
+def test_reconnects_after_service_restart(own_service: Any, page: tuple[Any, PageLog]) -> None:
+    svc: Service = own_service()
+    svc.wait_all_channels()
+    pg, _ = page
+    open_page(pg, svc.base_url + "/")
+    wait_for(lambda: cards_filled(pg), "channel cards")
+    wait_for(lambda: pg.get_attribute("#conn", "data-conn") in ("live", "polling"), "the live link")
+    svc.stop()
+    wait_for(lambda: pg.get_attribute("#conn", "data-conn") == "reconnecting", "the reconnecting state", 20)
+    assert "reconnecting" in pg.inner_text("#conn")
+    assert pg.is_visible("#banner") and "reconnecting" in pg.inner_text("#banner")
+    screenshot(pg, "reconnecting", full_page=True)
+    seq_before = pg.get_attribute('.card[data-channel="p2-de-h"] .overall', "data-seq")
+    svc.start()
+    wait_for(lambda: pg.get_attribute("#conn", "data-conn") in ("live", "polling"), "recovery", 30)
+    assert not pg.is_visible("#banner")
+    # and values flow again
+    wait_for(lambda: pg.get_attribute('.card[data-channel="p2-de-h"] .overall', "data-seq") != seq_before,
+             "a fresh value after the restart", 20)
+
+
+# --- the line filter (window response computed in the browser) -----------------------------------
+
+
+def _dtft_db(w: np.ndarray, nu: np.ndarray) -> np.ndarray:
+    n = w.size
+    k = np.arange(n)
+    W = np.exp(-2j * np.pi * np.outer(nu, k) / n) @ w
+    return 20 * np.log10(np.maximum(np.abs(W) / w.sum(), 1e-300))
+
+
+@pytest.mark.parametrize("window,scipy_name", [
+    ("hann", "hann"), ("hamming", "hamming"), ("blackman-harris", "blackmanharris"),
+    ("flattop", "flattop"), ("rectangular", "boxcar"), ("kaiser", ("kaiser", 8.6)),
+])
+def test_line_filter_matches_scipy_window(demo: Service, page: tuple[Any, PageLog], window: str,
+                                          scipy_name: Any) -> None:
+    """The browser's line-filter response equals the transform of scipy's periodic window."""
+    pg, _ = page
+    open_page(pg, demo.base_url + "/#/")
+    n, span, ppl = 512, 6, 8
+    got = pg.evaluate(f"""async () => {{
+        const m = await import('/static/winresp.js');
+        const r = m.windowResponse({json.dumps(window)}, {n}, {span}, {ppl});
+        return {{off: Array.from(r.offset_bins), db: Array.from(r.gain_db), enbw: m.enbwBins({json.dumps(window)}, {n})}};
+    }}""")
+    w = scipy.signal.get_window(scipy_name, n, fftbins=True)  # scipy.signal.get_window
+    nu = np.asarray(got["off"])
+    assert np.allclose(nu, np.arange(-span * ppl, span * ppl + 1) / ppl)
+    want = _dtft_db(w, nu)
+    db = np.asarray(got["db"])
+    keep = want > -140  # below that both are rounding noise
+    assert np.max(np.abs(db[keep] - want[keep])) < 1e-6
+    assert got["enbw"] == pytest.approx(n * np.sum(w**2) / np.sum(w) ** 2, rel=1e-12)
+
+
+def test_line_filter_dialog_hann_figures(demo: Service, page: tuple[Any, PageLog]) -> None:
+    """The dialog's figures for the demo's Hann window agree with Harris 1978, Table 1:
+    ENBW 1.50 bins, 3 dB bandwidth 1.44 bins, scalloping loss 1.42 dB, highest sidelobe −32 dB."""
+    pg, _ = page
+    open_page(pg, demo.base_url + "/#/channel/p1-de-h")
+    wait_for(lambda: canvas_digest(pg, "#spec")["dark"] > 2000, "the spectrum")
+    wait_for(lambda: "hann" in pg.inner_text("#ch-facts"), "the analysis facts")
+    pg.click("#btn-filter")
+    pg.wait_for_selector("#dlg-filter[open]")
+    wait_for(lambda: "ENBW" in pg.inner_text("#flt-facts"), "the filter figures")
+    facts = dict(zip(pg.eval_on_selector_all("#flt-facts dt", "e => e.map(x => x.textContent)"),
+                     pg.eval_on_selector_all("#flt-facts dd", "e => e.map(x => x.textContent)"), strict=True))
+    assert facts["ENBW"].startswith("1.50 lines")  # Harris 1978 Table 1: 1.50 bins
+    assert float(facts["−3 dB width"].split()[0]) == pytest.approx(1.44, abs=0.01)  # Harris 1978: 1.44
+    assert float(facts["scalloping loss"].split()[0]) == pytest.approx(1.42, abs=0.01)  # Harris 1978: 1.42
+    assert float(facts["highest sidelobe"].split()[0]) == pytest.approx(-31.5, abs=0.5)  # Harris 1978: −32
+    assert canvas_digest(pg, "#flt-plot")["dark"] > 300
+    screenshot(pg, "line-filter")
+
+
+# --- the binary spectrum message -----------------------------------------------------------------
+
+
+@pytest.mark.parametrize("pad", [0, 1, 2, 3])
+def test_binary_spectrum_decoding(demo: Service, page: tuple[Any, PageLog], pad: int) -> None:
+    """A stream message (u32 LE header length, JSON header, float32 LE values) decodes to the
+    same numbers whatever the header length's alignment (the wire format in issue 4/README)."""
+    pg, _ = page
+    open_page(pg, demo.base_url + "/#/")
+    rng = np.random.default_rng(5)
+    values = rng.standard_normal(6401).astype("<f4")
+    header = {"kind": "spectrum", "channel": "p1-de-h", "seq": 7, "timestamp_ns": 1, "f0_hz": 0.0,
+              "df_hz": 0.78125, "unit": "mm/s", "amplitude": "rms", "count": values.size, "missed": 0,
+              "pad": "x" * pad}
+    hb = json.dumps(header).encode()
+    msg = struct.pack("<I", len(hb)) + hb + values.tobytes()
+    got = pg.evaluate("""async (b) => {
+        const m = await import('/static/live.js');
+        const u = Uint8Array.from(atob(b), c => c.charCodeAt(0));
+        const r = m.decodeSpectrum(u.buffer);
+        return {h: r.header, v: Array.from(r.values)};
+    }""", __import__("base64").b64encode(msg).decode())
+    assert got["h"]["count"] == values.size and got["h"]["df_hz"] == 0.78125
+    assert np.array_equal(np.asarray(got["v"], dtype="<f4"), values)
+
+
+# --- alarms (need the alarm API) -----------------------------------------------------------------
+
+
+def test_alarm_appears_and_ack_needs_operator_token(own_service: Any, page: tuple[Any, PageLog]) -> None:
+    """The demo's growing fault raises an alarm; acknowledging without a token is refused
+    (401), a viewer token is refused (403), the operator token succeeds."""
+    svc: Service = own_service(speed=6.0, tokens=True)
+    if not svc.has_route("alarms"):
+        pytest.skip("GET /api/v1/alarms is not served yet (issue 4); un-skips by itself")
+    svc.wait_all_channels()
+    pg, log = page
+    open_page(pg, svc.base_url + "/")
+    sel = "#ov-alarm-list li[data-state=alert], #ov-alarm-list li[data-state=danger]"
+    wait_for(lambda: pg.query_selector(sel), "an alarm from the demo's growing fault", 50)
+    rest = svc.get("alarms")
+    rule = pg.get_attribute(sel, "data-rule")
+    assert any(a["rule"] == rule and a["state"] in ("alert", "danger") for a in rest), (rule, rest)
+    word = pg.inner_text(f'#ov-alarm-list li[data-rule="{rule}"] .badge .word')
+    assert word in ("ALERT", "DANGER")
+    screenshot(pg, "alarm", full_page=True)
+
+    pg.click(f'#ov-alarm-list li[data-rule="{rule}"] [data-ack]')
+    pg.wait_for_selector("#dlg-ack[open]")
+    assert pg.is_visible("#ack-token")  # asked for, once
+    pg.fill("#ack-note", "web test: seen")
+    pg.click("#ack-submit")
+    wait_for(lambda: "401" in pg.inner_text("#ack-msg"), "the refusal without a token")
+    pg.fill("#ack-token", VIEWER_TOKEN)
+    pg.click("#ack-submit")
+    wait_for(lambda: "403" in pg.inner_text("#ack-msg"), "the refusal of a viewer token")
+    assert not any(a["rule"] == rule and a.get("acked") for a in svc.get("alarms"))
+    pg.fill("#ack-token", OPERATOR_TOKEN)
+    pg.click("#ack-submit")
+    wait_for(lambda: not pg.is_visible("#dlg-ack"), "the dialog to close after success")
+    wait_for(lambda: all(a.get("acked") or a["state"] == "normal" for a in svc.get("alarms") if a["rule"] == rule),
+             "the acknowledgement at the service")
+    assert pg.evaluate("sessionStorage.getItem('quaver.operator-token')") == OPERATOR_TOKEN
+    assert hashlib.sha256(OPERATOR_TOKEN.encode()).hexdigest()  # the token the config holds
+    assert not log.errors, log.errors
+
+
+def test_event_log_and_evidence(own_service: Any, page: tuple[Any, PageLog]) -> None:
+    """An alarm's raising event is in the log; its evidence shows the spectrum kept then."""
+    svc: Service = own_service(speed=6.0)
+    if not svc.has_route("events?limit=1"):
+        pytest.skip("GET /api/v1/events is not served yet (issue 4); un-skips by itself")
+    svc.wait_all_channels()
+    pg, log = page
+
+    def raising() -> dict[str, Any] | None:
+        evs = svc.get("events", limit=50)["events"]
+        return next((e for e in evs if e["to_state"] in ("alert", "danger")), None)
+
+    ev = wait_for(raising, "a raising event", 50)
+    open_page(pg, svc.base_url + "/#/events")
+    pg.wait_for_selector(f'tr[data-event="{ev["id"]}"] [data-evidence]', timeout=15000)
+    pg.click(f'tr[data-event="{ev["id"]}"] [data-evidence]')
+    pg.wait_for_selector("#dlg-evidence[open]")
+    wait_for(lambda: canvas_digest(pg, "#ev-spec")["dark"] > 1000, "the evidence spectrum")
+    links = pg.eval_on_selector_all("#ev-downloads a", "e => e.map(a => a.getAttribute('href'))")
+    assert any("format=wav" in h for h in links) and any("format=csv" in h for h in links)
+    assert svc.client.get(links[0]).status_code == 200
+    screenshot(pg, "evidence")
+    assert not log.errors, log.errors

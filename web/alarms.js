@@ -1,0 +1,148 @@
+// Alarms and events on screen: the active/latched alarm list, event-log rows, and the
+// acknowledge dialog (asks for an operator token once per browser session).
+
+import { ApiError, ackAlarm, token } from "./api.js";
+import { esc, fmtAge, fmtDateTime, fmtVal, unitLabel } from "./fmt.js";
+import { STATES, alarmStateKey, badge, glyph } from "./states.js";
+
+const RANK = { danger: 3, alert: 2, latched: 1, ok: 0 };
+
+/** What an alarm watches, in words: "bearing band", "overall", "1x tone". */
+export function what(a) {
+  if (a.kind === "overall") return "overall";
+  return `${a.name} ${a.kind}`;
+}
+
+/** HTML for the alarm list (most severe, then oldest first). */
+export function alarmListHtml(alarms, { showChannel = true } = {}) {
+  if (!alarms.length) return `<li class="none"><span></span><span class="hint">${glyph("ok")} No active or latched alarms.</span></li>`;
+  const now = Date.now();
+  const sorted = [...alarms].sort((x, y) => RANK[alarmStateKey(y)] - RANK[alarmStateKey(x)] || (x.since_ns ?? 0) - (y.since_ns ?? 0));
+  return sorted.map((a) => {
+    const k = alarmStateKey(a);
+    const level = k === "danger" ? a.danger : k === "alert" ? a.alert : null;
+    const since = a.since_ns ? `since ${fmtDateTime(a.since_ns)} (${fmtAge((now - a.since_ns / 1e6) / 1000)})` : "";
+    const ackTxt = a.acked ? `acknowledged${a.acked_by ? ` by ${esc(a.acked_by)}` : ""}` : "not acknowledged";
+    const chan = showChannel ? `<a href="#/channel/${encodeURIComponent(a.channel)}">${esc(a.channel)}</a> · ` : "";
+    return `<li data-rule="${esc(a.rule)}" data-state="${k}" class="${a.acked ? "acked" : ""}">
+      ${badge(k)}
+      <span class="what">${chan}${esc(what(a))}</span>
+      <span class="acts">${a.acked ? "" : `<button class="small" data-ack="${esc(a.rule)}">Acknowledge</button>`}</span>
+      <span class="sub">${fmtVal(a.value)} ${esc(unitLabel(a.unit || ""))}${level ? ` ≥ ${k} ${fmtVal(level)}` : ""}
+        · alert ${fmtVal(a.alert)} / danger ${fmtVal(a.danger)} · ${since} · <b>${ackTxt}</b>${a.note ? ` — “${esc(a.note)}”` : ""}</span>
+    </li>`;
+  }).join("");
+}
+
+const STATE_OF = { normal: "ok", alert: "alert", danger: "danger", latched: "latched", ok: "ok", "sensor-fault": "fault" };
+
+/** One event-log row. `raises` events (into alert/danger) get an evidence button. */
+export function eventRowHtml(ev, { showChannel = true } = {}) {
+  const to = STATE_OF[ev.to_state] ?? "ok";
+  const from = STATE_OF[ev.from_state] ?? "ok";
+  const raising = (RANK[to] ?? 0) > (RANK[from] ?? 0) && (to === "alert" || to === "danger");
+  const name = ev.rule?.startsWith(`${ev.channel}.`) ? ev.rule.slice(ev.channel.length + 1) : ev.rule;
+  const change = ev.kind === "ack"
+    ? `acknowledged`
+    : `<span class="${STATES[from].cls}">${glyph(from, 12)} ${esc(ev.from_state)}</span> → <span class="${STATES[to].cls}">${glyph(to, 12)} <b>${esc(ev.to_state)}</b></span>`;
+  return `<tr data-event="${ev.id}">
+    <td class="t">${fmtDateTime(ev.t_ns)}</td>
+    ${showChannel ? `<td><a href="#/channel/${encodeURIComponent(ev.channel)}">${esc(ev.channel)}</a></td>` : ""}
+    <td>${esc(name)}</td>
+    <td>${change}</td>
+    <td>${ev.value === null || ev.value === undefined ? "" : `${fmtVal(ev.value)}${ev.level ? ` / ${fmtVal(ev.level)}` : ""} ${esc(unitLabel(ev.unit || ""))}`}</td>
+    <td><span class="msg">${esc(ev.message || "")}${ev.acked_by ? ` — by ${esc(ev.acked_by)}` : ""}${ev.note ? `: “${esc(ev.note)}”` : ""}</span></td>
+    <td>${raising ? `<button class="small" data-evidence="${ev.id}">Evidence</button>` : ""}</td>
+  </tr>`;
+}
+
+export function eventHeadHtml({ showChannel = true } = {}) {
+  return `<tr><th>time</th>${showChannel ? "<th>channel</th>" : ""}<th>rule</th><th>change</th><th>value / level</th><th>message</th><th></th></tr>`;
+}
+
+// --- the acknowledge dialog -------------------------------------------------------------
+let ctxRef = null;
+let pending = null;
+
+export function setupAck(ctx) {
+  ctxRef = ctx;
+  const dlg = document.getElementById("dlg-ack");
+  const form = document.getElementById("ack-form");
+  const msg = document.getElementById("ack-msg");
+  const tokIn = document.getElementById("ack-token");
+  document.getElementById("ack-forget").addEventListener("click", () => {
+    token.set("");
+    showTokenRow();
+  });
+  form.addEventListener("submit", async (e) => {
+    if (e.submitter?.value === "cancel") return;
+    e.preventDefault();
+    if (!pending) return;
+    const typed = tokIn.value.trim();
+    const tok = typed || token.get();
+    const btn = document.getElementById("ack-submit");
+    btn.disabled = true;
+    msg.className = "ack-msg";
+    msg.textContent = "sending…";
+    try {
+      await ackAlarm(pending.rule, document.getElementById("ack-note").value, tok);
+      if (typed) token.set(typed);
+      msg.className = "ack-msg ok";
+      msg.textContent = "Acknowledged.";
+      ctx.live.refreshPlant();
+      setTimeout(() => dlg.open && dlg.close("done"), 700);
+    } catch (err) {
+      msg.textContent = ackError(err);
+      if (err instanceof ApiError && err.status === 401) {
+        token.set("");
+        showTokenRow();
+        tokIn.focus();
+      }
+    } finally {
+      btn.disabled = false;
+    }
+  });
+  document.addEventListener("click", (e) => {
+    const b = e.target.closest("[data-ack]");
+    if (!b) return;
+    e.preventDefault();
+    const rule = b.dataset.ack;
+    const a = (ctx.store.alarms || []).find((x) => x.rule === rule) || { rule };
+    openAck(a);
+  });
+}
+
+function ackError(err) {
+  if (!(err instanceof ApiError)) return "The service is not reachable; nothing was acknowledged.";
+  switch (err.status) {
+    case 401: return "Refused (401): a valid operator token is needed. Enter it below.";
+    case 403: return "Refused (403): this token may not acknowledge alarms (operator role needed).";
+    case 404: return `Refused (404): ${err.detail}`;
+    case 409: return `Nothing to acknowledge (409): ${err.detail}`;
+    default: return `Refused (${err.status}): ${err.detail}`;
+  }
+}
+
+function showTokenRow() {
+  const have = !!token.get();
+  document.getElementById("ack-token-row").hidden = have;
+  document.getElementById("ack-forget").hidden = !have;
+  document.getElementById("ack-token").value = "";
+}
+
+export function openAck(a) {
+  pending = a;
+  const dlg = document.getElementById("dlg-ack");
+  const k = alarmStateKey(a);
+  document.getElementById("ack-what").innerHTML = a.channel
+    ? `${badge(k)} <b>${esc(a.channel)}</b> · ${esc(what(a))} — ${fmtVal(a.value)} ${esc(unitLabel(a.unit || ""))}`
+    : esc(a.rule);
+  document.getElementById("ack-note").value = "";
+  const msg = document.getElementById("ack-msg");
+  msg.textContent = "";
+  msg.className = "ack-msg";
+  showTokenRow();
+  dlg.showModal();
+  (token.get() ? document.getElementById("ack-note") : document.getElementById("ack-token")).focus();
+  void ctxRef;
+}

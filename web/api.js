@@ -1,0 +1,76 @@
+// REST access to the quaver service: JSON GETs with time-outs, which optional routes the
+// service has, the operator token for acknowledgements. Knows nothing about the page.
+
+export const API = "/api/v1";
+
+export class ApiError extends Error {
+  constructor(status, detail, url) {
+    super(`${status} ${detail}`);
+    this.status = status;
+    this.detail = detail;
+    this.url = url;
+  }
+}
+
+/** GET a JSON resource; throws ApiError for an HTTP error, TypeError when unreachable. */
+export async function getJSON(path, { timeoutMs = 6000, signal } = {}) {
+  const ctl = new AbortController();
+  const timer = setTimeout(() => ctl.abort(), timeoutMs);
+  signal?.addEventListener("abort", () => ctl.abort(), { once: true });
+  try {
+    const r = await fetch(path.startsWith("/") ? path : `${API}/${path}`, { signal: ctl.signal, cache: "no-store" });
+    if (!r.ok) throw new ApiError(r.status, await detailOf(r), path);
+    return await r.json();
+  } catch (e) {
+    if (e.name === "AbortError") throw new TypeError(`timed out: ${path}`);
+    throw e;
+  } finally {
+    clearTimeout(timer);
+  }
+}
+
+async function detailOf(r) {
+  try {
+    const j = await r.json();
+    if (typeof j.detail === "string") return j.detail;
+    if (Array.isArray(j.detail)) return j.detail.map((d) => d.msg ?? JSON.stringify(d)).join("; ");
+    return JSON.stringify(j);
+  } catch {
+    return r.statusText || "error";
+  }
+}
+
+/** True when an error means "this service has no such route" (FastAPI's generic 404). */
+export function isMissingRoute(e) {
+  return e instanceof ApiError && e.status === 404 && e.detail === "Not Found";
+}
+
+// Which optional routes answer. null = not yet known, true/false once probed.
+export const features = { alarms: null, events: null, trend: null, windowResponse: null };
+
+const TOKEN_KEY = "quaver.operator-token";
+export const token = {
+  get: () => sessionStorage.getItem(TOKEN_KEY) || "",
+  set: (t) => (t ? sessionStorage.setItem(TOKEN_KEY, t) : sessionStorage.removeItem(TOKEN_KEY)),
+};
+
+/**
+ * Acknowledge an alarm rule. Returns the event; throws ApiError with status 401 (no or wrong
+ * token), 403 (token without the operator role), 404, 409 (not active / already acknowledged).
+ */
+export async function ackAlarm(rule, note, tok) {
+  const headers = { "Content-Type": "application/json" };
+  if (tok) headers.Authorization = `Bearer ${tok}`;
+  const url = `${API}/alarms/${encodeURIComponent(rule)}/ack`;
+  const r = await fetch(url, { method: "POST", headers, body: JSON.stringify({ note: note || "" }) });
+  if (!r.ok) throw new ApiError(r.status, await detailOf(r), url);
+  return r.json();
+}
+
+/** Query string from an object, skipping null/undefined/"" values. */
+export function qs(params) {
+  const p = new URLSearchParams();
+  for (const [k, v] of Object.entries(params)) if (v !== null && v !== undefined && v !== "") p.set(k, String(v));
+  const s = p.toString();
+  return s ? `?${s}` : "";
+}

@@ -1,0 +1,225 @@
+// Band values as horizontal bars against their alert and danger levels, and the
+// third-octave bands as a small bar spectrum. Canvas only; callers hand in plain rows.
+
+import { fmtHz, fmtVal, unitLabel } from "./fmt.js";
+import { Scale, Surface, logTicks, pal } from "./plot.js";
+
+/**
+ * Rows: [{name, lo_hz, hi_hz, value, alert, danger, state}] in one unit (RMS). A row's bar
+ * spans 0…1.3 × danger when it has levels; rows without levels share one scale.
+ */
+export class BandBars {
+  constructor(canvas, { compact = false } = {}) {
+    this.canvas = canvas;
+    this.compact = compact;
+    this.rows = [];
+    this.unit = "";
+    this.stale = false;
+    this.rowH = compact ? 17 : 34;
+    this.surface = new Surface(canvas, (ctx, w, h) => this._draw(ctx, w, h));
+  }
+
+  setRows(rows, unit) {
+    const n = this.rows.length;
+    this.rows = rows;
+    this.unit = unit;
+    if (rows.length !== n) this.canvas.style.height = `${Math.max(1, rows.length) * this.rowH + (this.compact ? 2 : 10)}px`;
+    this.surface.invalidate();
+  }
+
+  setStale(s) {
+    if (s !== this.stale) {
+      this.stale = s;
+      this.surface.invalidate();
+    }
+  }
+
+  _draw(ctx, w, h) {
+    ctx.fillStyle = pal.panel;
+    ctx.fillRect(0, 0, w, h);
+    const rows = this.rows;
+    if (!rows.length) {
+      ctx.fillStyle = pal["ink-3"];
+      ctx.font = `italic 12px ${pal.font}`;
+      ctx.textBaseline = "top";
+      ctx.fillText("no bands yet", this.compact ? 0 : 10, 4);
+      return;
+    }
+    let shared = 0;
+    for (const r of rows) if (!(r.danger > 0) && r.value > shared) shared = r.value;
+    shared = shared > 0 ? shared * 1.2 : 1;
+    const c = this.compact;
+    const padL = c ? 0 : 10, padR = c ? 0 : 10;
+    const nameW = c ? 74 : 0;
+    const valW = c ? 50 : 0;
+    const x0 = padL + nameW, x1 = w - padR - valW;
+    rows.forEach((r, i) => {
+      const top = (c ? 1 : 5) + i * this.rowH;
+      const max = r.danger > 0 ? r.danger * 1.3 : shared;
+      const trackY = c ? top + 5 : top + 18;
+      const trackH = c ? 7 : 9;
+      const abn = r.state === "alert" || r.state === "danger";
+      ctx.textBaseline = "middle";
+      // labels
+      if (c) {
+        ctx.font = `11.5px ${pal.font}`;
+        ctx.fillStyle = pal["ink-2"];
+        ctx.textAlign = "left";
+        ctx.fillText(clip(ctx, r.name, nameW - 6), 0, trackY + trackH / 2);
+        ctx.font = `${abn ? "700 " : ""}11.5px ${pal.mono}`;
+        ctx.fillStyle = this.stale ? pal["ink-3"] : pal.ink;
+        ctx.textAlign = "right";
+        ctx.fillText(fmtVal(r.value), w, trackY + trackH / 2);
+      } else {
+        ctx.font = `600 12px ${pal.font}`;
+        ctx.fillStyle = pal.ink;
+        ctx.textAlign = "left";
+        ctx.fillText(r.name, padL, top + 7);
+        const nw = ctx.measureText(r.name).width;
+        ctx.font = `11px ${pal.font}`;
+        ctx.fillStyle = pal["ink-3"];
+        const range = Number.isFinite(r.lo_hz) ? `${fmtHz(r.lo_hz, false)}–${fmtHz(r.hi_hz)}` : "";
+        ctx.fillText(range + (r.danger > 0 ? "" : "  · no limits"), padL + nw + 8, top + 7);
+        ctx.textAlign = "right";
+        ctx.font = `${abn ? "700 " : ""}12px ${pal.mono}`;
+        ctx.fillStyle = this.stale ? pal["ink-3"] : pal.ink;
+        const word = r.state === "danger" ? "DANGER " : r.state === "alert" ? "ALERT " : "";
+        ctx.fillText(`${word}${fmtVal(r.value)}`, w - padR, top + 7);
+      }
+      // track and bar
+      ctx.fillStyle = pal.plot;
+      ctx.fillRect(x0, trackY, x1 - x0, trackH);
+      ctx.strokeStyle = pal.line || pal.grid;
+      ctx.strokeStyle = pal.axis;
+      ctx.lineWidth = 1;
+      ctx.strokeRect(x0 + 0.5, trackY + 0.5, x1 - x0 - 1, trackH - 1);
+      const frac = Number.isFinite(r.value) ? Math.max(0, Math.min(1, r.value / max)) : 0;
+      ctx.fillStyle = this.stale ? pal.grid : r.state === "danger" ? pal.danger : r.state === "alert" ? pal.alert : pal["trace-2"];
+      ctx.fillRect(x0 + 1, trackY + 1, (x1 - x0 - 2) * frac, trackH - 2);
+      if (r.value > max) {
+        // over the scale: an arrow head at the end
+        ctx.fillStyle = pal.ink;
+        ctx.beginPath();
+        ctx.moveTo(x1 + 1, trackY + trackH / 2);
+        ctx.lineTo(x1 - 5, trackY - 1);
+        ctx.lineTo(x1 - 5, trackY + trackH + 1);
+        ctx.fill();
+      }
+      // levels: alert dashed-thin, danger solid-thick, both neutral ink; letters above
+      for (const [lvl, tag, lw] of [[r.alert, "A", 1.5], [r.danger, "D", 2.5]]) {
+        if (!(lvl > 0)) continue;
+        const x = x0 + (x1 - x0) * (lvl / max);
+        ctx.strokeStyle = pal.ink;
+        ctx.lineWidth = lw;
+        ctx.beginPath();
+        ctx.moveTo(x, trackY - 3);
+        ctx.lineTo(x, trackY + trackH + 3);
+        ctx.stroke();
+        if (!c) {
+          ctx.font = `600 9px ${pal.font}`;
+          ctx.fillStyle = pal["ink-2"];
+          ctx.textAlign = "center";
+          ctx.textBaseline = "top";
+          ctx.fillText(`${tag} ${fmtVal(lvl, 2)}`, x, trackY + trackH + 3);
+        }
+      }
+    });
+    if (!c) {
+      ctx.font = `11px ${pal.font}`;
+      ctx.fillStyle = pal["ink-3"];
+      ctx.textAlign = "right";
+      ctx.textBaseline = "bottom";
+    }
+  }
+}
+
+function clip(ctx, s, w) {
+  if (ctx.measureText(s).width <= w) return s;
+  while (s.length > 1 && ctx.measureText(s + "…").width > w) s = s.slice(0, -1);
+  return s + "…";
+}
+
+/** Third-octave band values (RMS) as vertical bars on a log amplitude axis. */
+export class ThirdsChart {
+  constructor(canvas) {
+    this.rows = [];
+    this.unit = "";
+    this.surface = new Surface(canvas, (ctx, w, h) => this._draw(ctx, w, h));
+  }
+  setRows(rows, unit) {
+    this.rows = rows;
+    this.unit = unit;
+    this.surface.invalidate();
+  }
+  _draw(ctx, w, h) {
+    ctx.fillStyle = pal.panel;
+    ctx.fillRect(0, 0, w, h);
+    const rows = this.rows.filter((r) => Number.isFinite(r.value));
+    if (!rows.length) return;
+    const L = 44, R = w - 10, T = 6, B = h - 18;
+    let mx = 0;
+    for (const r of rows) mx = Math.max(mx, r.value);
+    const top = 10 ** Math.ceil(Math.log10(mx || 1));
+    const ys = new Scale(true).set(top / 1e3, top, B, T);
+    ctx.fillStyle = pal.plot;
+    ctx.fillRect(L, T, R - L, B - T);
+    ctx.font = `10px ${pal.mono}`;
+    ctx.fillStyle = pal["ink-3"];
+    ctx.textAlign = "right";
+    ctx.textBaseline = "middle";
+    for (const v of logTicks(ys.lo, ys.hi, 1).major) {
+      const y = ys.px(v);
+      ctx.strokeStyle = pal.grid;
+      ctx.beginPath();
+      ctx.moveTo(L, Math.round(y) + 0.5);
+      ctx.lineTo(R, Math.round(y) + 0.5);
+      ctx.stroke();
+      ctx.fillText(fmtVal(v, 1), L - 4, y);
+    }
+    const bw = (R - L) / rows.length;
+    ctx.textAlign = "center";
+    ctx.textBaseline = "top";
+    rows.forEach((r, i) => {
+      const y = Math.max(T, Math.min(B, ys.px(Math.max(r.value, ys.lo))));
+      ctx.fillStyle = r.state === "danger" ? pal.danger : r.state === "alert" ? pal.alert : pal["trace-2"];
+      ctx.fillRect(L + i * bw + 1, y, Math.max(1, bw - 2), B - y);
+      const label = r.name.replace(/^third /, "").replace(/ kHz$/, "k").replace(/ Hz$/, "");
+      if (i % Math.max(1, Math.ceil(34 / bw)) === 0) {
+        ctx.fillStyle = pal["ink-3"];
+        ctx.fillText(label, L + (i + 0.5) * bw, B + 3);
+      }
+    });
+    ctx.strokeStyle = pal.axis;
+    ctx.strokeRect(L + 0.5, T + 0.5, R - L - 1, B - T - 1);
+    ctx.textAlign = "left";
+    ctx.textBaseline = "top";
+    ctx.fillStyle = pal["ink-3"];
+    ctx.font = `10px ${pal.font}`;
+    ctx.fillText(unitLabel(this.unit, "rms"), L + 4, T + 2);
+  }
+}
+
+/**
+ * Rows for BandBars from a bands message: named bands (not third-octave) with the levels and
+ * state of their alarm rule when the service has one (`levels(channel, kind, name)`).
+ */
+export function bandRows(levels, channelId, msg) {
+  const named = [];
+  const thirds = [];
+  for (const b of msg?.bands || []) {
+    const rule = levels(channelId, "band", b.name);
+    let state = "ok";
+    if (rule && rule.state && rule.rule) state = rule.state === "latched" ? "latched" : rule.state === "normal" ? "ok" : rule.state;
+    else if (rule?.danger > 0 && b.value >= rule.danger) state = "danger";
+    else if (rule?.alert > 0 && b.value >= rule.alert) state = "alert";
+    const row = { ...b, unit: msg.unit, alert: rule?.alert ?? null, danger: rule?.danger ?? null, state };
+    (b.name.startsWith("third ") ? thirds : named).push(row);
+  }
+  return { named, thirds };
+}
+
+/** The few bands worth a glance, in a stable order: abnormal first, then those with limits. */
+export function topBands(named, n = 3) {
+  const rank = (r) => (r.state === "danger" ? 0 : r.state === "alert" ? 1 : r.danger > 0 ? 2 : 3);
+  return named.map((r, i) => [rank(r), i, r]).sort((a, b) => a[0] - b[0] || a[1] - b[1]).slice(0, n).map((x) => x[2]);
+}

@@ -1,0 +1,424 @@
+// One channel in depth: live spectrum with its interactions, spectrogram, band bars,
+// tones and peaks, trend, and this channel's alarms and events.
+
+import { API, ApiError, features, getJSON, isMissingRoute, qs } from "./api.js";
+import { AMP_CHOICES, UNIT_CHOICES, ampLabel, esc, fmtClock, fmtHz, fmtVal, unitLabel } from "./fmt.js";
+import { STATES, badge } from "./states.js";
+import { SpectrumPlot } from "./spectrum.js";
+import { Spectrogram } from "./spectrogram.js";
+import { BandBars, ThirdsChart, bandRows } from "./bars.js";
+import { TrendChart } from "./trend.js";
+import { alarmListHtml, eventHeadHtml, eventRowHtml } from "./alarms.js";
+import { openFilter } from "./filterview.js";
+
+const BEARING = /^(bpfo|bpfi|bsf|ftf)/i;
+const RANGES = { hour: 3600e3, day: 86400e3, month: 30 * 86400e3 };
+const STALE_AFTER_MS = 5000;
+
+export function mount(root, ctx, id) {
+  const chan = () => ctx.store.channels.find((c) => c.id === id);
+  const prefs = JSON.parse(localStorage.getItem("quaver.view") || "{}");
+  const st = {
+    unit: "", amplitude: "", hold: false, meta: null, lastSpec: 0, lastT: 0, range: prefs.range || "hour",
+    trendName: ctx.FRAME, tones: null,
+  };
+  root.innerHTML = `
+    <div class="ch-head">
+      <h1 id="ch-id">${esc(id)}</h1><span class="desc" id="ch-desc"></span><span id="ch-badge"></span><span class="hint" id="ch-fault"></span>
+      <div class="big"><span class="overall" id="ch-overall" data-role="overall">—</span><span class="unit" id="ch-unit"></span></div>
+    </div>
+    <dl class="facts" id="ch-facts"></dl>
+    <div class="toolbar" role="toolbar" aria-label="spectrum display">
+      <label>Unit <select id="sel-unit"><option value="">channel's</option>${UNIT_CHOICES.map((u) => `<option value="${u}">${esc(unitLabel(u))}</option>`).join("")}</select></label>
+      <label>Amplitude <select id="sel-amp"><option value="">channel's</option>${AMP_CHOICES.map((a) => `<option value="${a}">${ampLabel(a)}</option>`).join("")}</select></label>
+      <span class="seg" role="group" aria-label="amplitude scale"><button data-ya="lin">lin</button><button data-ya="log">log</button></span>
+      <span class="seg" role="group" aria-label="frequency scale"><button data-xa="lin">lin Hz</button><button data-xa="log">log Hz</button></span>
+      <span class="toggles">
+        <label title="band regions with their alert (A) and danger (D) levels (key B)"><input type="checkbox" data-show="bands" checked>bands</label>
+        <label title="running-speed harmonics 1X, 2X, … (key H)"><input type="checkbox" data-show="harmonics" checked>1X…</label>
+        <label title="bearing defect frequencies from tones named bpfo/bpfi/bsf/ftf (key D)"><input type="checkbox" data-show="bearing" checked>bearing</label>
+        <label title="largest peaks labelled (key P)"><input type="checkbox" data-show="peaks" checked>peaks</label>
+      </span>
+      <button id="btn-reset" title="show the whole spectrum (key 0, or double-click)">Whole range</button>
+      <button id="btn-hold" aria-pressed="false" title="freeze the spectrum and spectrogram (key Space)">Hold</button>
+      <button id="btn-filter" title="the band-pass filter that one line of this spectrum is">Line filter…</button>
+    </div>
+    <div class="ch-grid">
+      <div>
+        <figure class="panel"><figcaption>Spectrum <span class="hint">wheel: zoom · drag: pan · shift+wheel or ↑↓: amplitude · ← →, + −, 0 · L/F: log · click: pick a line</span><span class="readout" id="readout"></span></figcaption>
+          <canvas id="spec" class="plot-spec" tabindex="0" aria-label="averaged spectrum of ${esc(id)}; use the arrow keys, plus and minus to move and zoom"></canvas></figure>
+        <figure class="panel"><figcaption>Spectrogram <span class="hint">newest at the top; same frequency axis as above</span></figcaption><canvas id="sgram" class="plot-sgram"></canvas></figure>
+        <figure class="panel"><figcaption>Trend
+            <select id="sel-trend" aria-label="value to trend"></select>
+            <span class="seg" role="group" aria-label="period">${Object.keys(RANGES).map((r) => `<button data-range="${r}">${r === "month" ? "30 days" : `1 ${r}`}</button>`).join("")}</span>
+            <span class="hint" id="trend-note"></span></figcaption>
+          <canvas id="trend" class="plot-trend"></canvas></figure>
+      </div>
+      <div>
+        <section class="panel"><header>Bands <span class="hint" id="bands-unit"></span></header><canvas id="bars" class="plot-bars"></canvas>
+          <header>Third-octave bands</header><canvas id="thirds" class="plot-thirds"></canvas></section>
+        <section class="panel" id="ch-alarms-panel" hidden><header>Alarms on this channel</header><ul class="alarms" id="ch-alarms"></ul></section>
+        <section class="panel"><header>Tones and peaks <span class="hint" id="tones-unit"></span></header><table class="tones" id="tones"></table></section>
+        <section class="panel" id="ch-events-panel" hidden><header>Events <a class="hint" href="#/events?channel=${encodeURIComponent(id)}">full log</a></header>
+          <table class="events"><thead>${eventHeadHtml({ showChannel: false })}</thead><tbody id="ch-events"></tbody></table></section>
+      </div>
+    </div>`;
+
+  const $ = (s) => root.querySelector(s);
+  const readout = $("#readout");
+  const sg = new Spectrogram($("#sgram"), { rows: 200 });
+  const plot = new SpectrumPlot($("#spec"), {
+    onView: (v) => sg.setView(v),
+    onHover: (info) => {
+      readout.textContent = info
+        ? `${fmtHz(info.f)} · ${info.order !== null ? `${info.order.toFixed(2)}X · ` : ""}${fmtVal(info.v)} ${unitLabel(info.unit, info.amplitude)}`
+        : "";
+    },
+    onPick: ({ q, f }) => {
+      readout.textContent = `picked line ${q} at ${fmtHz(f)} — “Line filter…” shows its response`;
+    },
+    onKey: (e) => key(e),
+  });
+  plot.logAmp = prefs.logAmp ?? true;
+  plot.logFreq = prefs.logFreq ?? false;
+  for (const k of Object.keys(plot.show)) if (prefs[`show_${k}`] === false) plot.show[k] = false;
+  const bars = new BandBars($("#bars"));
+  const thirds = new ThirdsChart($("#thirds"));
+  const trend = new TrendChart($("#trend"));
+
+  function savePrefs() {
+    const p = { logAmp: plot.logAmp, logFreq: plot.logFreq, range: st.range };
+    for (const [k, v] of Object.entries(plot.show)) p[`show_${k}`] = v;
+    localStorage.setItem("quaver.view", JSON.stringify(p));
+  }
+
+  function syncToolbar() {
+    for (const b of root.querySelectorAll("[data-ya]")) b.setAttribute("aria-pressed", String((b.dataset.ya === "log") === plot.logAmp));
+    for (const b of root.querySelectorAll("[data-xa]")) b.setAttribute("aria-pressed", String((b.dataset.xa === "log") === plot.logFreq));
+    for (const i of root.querySelectorAll("[data-show]")) i.checked = plot.show[i.dataset.show];
+    for (const b of root.querySelectorAll("[data-range]")) b.setAttribute("aria-pressed", String(b.dataset.range === st.range));
+    $("#btn-hold").setAttribute("aria-pressed", String(st.hold));
+    $("#btn-hold").textContent = st.hold ? "Held — resume" : "Hold";
+  }
+
+  function subscribe() {
+    ctx.live.subscribe({ channels: [id], kinds: ["spectrum", "bands", "tones", "status", "alarms"], max_rate_hz: 10, unit: st.unit || undefined, amplitude: st.amplitude || undefined });
+  }
+
+  function key(e) {
+    const k = e.key.toLowerCase();
+    const toggles = { b: "bands", h: "harmonics", d: "bearing", p: "peaks" };
+    if (k === "l") plot.setLogAmp(!plot.logAmp);
+    else if (k === "f") plot.setLogFreq(!plot.logFreq);
+    else if (toggles[k]) plot.setShow(toggles[k], !plot.show[toggles[k]]);
+    else if (k === " ") setHold(!st.hold);
+    else return;
+    e.preventDefault();
+    savePrefs();
+    syncToolbar();
+  }
+
+  function setHold(h) {
+    st.hold = h;
+    syncToolbar();
+    staleCheck();
+  }
+
+  // --- toolbar wiring ---------------------------------------------------------------
+  $("#sel-unit").addEventListener("change", (e) => {
+    st.unit = e.target.value;
+    sg.clear();
+    plot.top = null;
+    subscribe();
+    loadMeta();
+  });
+  $("#sel-amp").addEventListener("change", (e) => {
+    st.amplitude = e.target.value;
+    sg.clear();
+    subscribe();
+    loadMeta();
+  });
+  root.querySelector(".toolbar").addEventListener("click", (e) => {
+    const b = e.target.closest("button");
+    if (!b) return;
+    if (b.dataset.ya) plot.setLogAmp(b.dataset.ya === "log");
+    if (b.dataset.xa) plot.setLogFreq(b.dataset.xa === "log");
+    savePrefs();
+    syncToolbar();
+  });
+  root.querySelector(".toolbar").addEventListener("change", (e) => {
+    const s = e.target.dataset.show;
+    if (s) {
+      plot.setShow(s, e.target.checked);
+      savePrefs();
+    }
+  });
+  $("#btn-reset").addEventListener("click", () => plot.resetView());
+  $("#btn-hold").addEventListener("click", () => setHold(!st.hold));
+  $("#btn-filter").addEventListener("click", () => {
+    const m = st.meta;
+    const c = chan();
+    if (!m || !c) return;
+    const q = plot.selected ?? plot.peaks?.[0]?.q ?? Math.round(m.lines / 2);
+    openFilter({ window: m.window, n: Math.round(c.sample_rate_hz / m.df_hz), df: m.df_hz, q, f: m.f0_hz + q * m.df_hz, enbw_bins: m.enbw_bins, channel: id });
+  });
+  root.querySelector("#sel-trend").addEventListener("change", (e) => {
+    st.trendName = e.target.value;
+    loadTrend();
+  });
+  for (const b of root.querySelectorAll("[data-range]")) {
+    b.addEventListener("click", () => {
+      st.range = b.dataset.range;
+      savePrefs();
+      syncToolbar();
+      loadTrend();
+    });
+  }
+
+  // --- data ---------------------------------------------------------------------------
+  async function loadMeta() {
+    try {
+      const j = await getJSON(`${API}/channels/${encodeURIComponent(id)}/spectrum${qs({ unit: st.unit, amplitude: st.amplitude })}`);
+      const { values, ...meta } = j;
+      st.meta = meta;
+      if (!st.lastSpec) onSpectrum({ header: { ...meta, kind: "spectrum" }, values: Float32Array.from(values, (v) => v ?? NaN) });
+      renderFacts();
+    } catch (e) {
+      if (e instanceof ApiError && e.status === 503) setTimeout(loadMeta, 1000);
+    }
+  }
+
+  function onSpectrum({ header: h, values }) {
+    if (h.channel !== id) return;
+    st.lastSpec = Date.now();
+    st.lastT = h.timestamp_ns;
+    if (st.hold) return;
+    const d = { f0: h.f0_hz, df: h.df_hz, values, unit: h.unit, amplitude: h.amplitude, t_ns: h.timestamp_ns, lowcut_hz: st.meta?.lowcut_hz };
+    plot.setData(d);
+    sg.push(d);
+    if (!plot.view) plot.resetView();
+    if (sg.view === null) plot._viewChanged();
+    staleCheck();
+  }
+
+  function onBands(m) {
+    if (m.channel !== id) return;
+    const { named, thirds: th } = bandRows(ctx.levels, id, m);
+    bars.setRows(named, m.unit);
+    thirds.setRows(th, m.unit);
+    plot.setBands(named);
+    $("#bands-unit").textContent = `${unitLabel(m.unit, "rms")} · A = alert, D = danger`;
+    fillTrendNames(named);
+  }
+
+  function onTones(m) {
+    if (m.channel !== id) return;
+    st.tones = m;
+    plot.setServerPeaks(m);
+    plot.setMarkers({ speedHz: (chan()?.speed_rpm || 0) / 60, bearing: (m.tones || []).filter((t) => BEARING.test(t.name)).map((t) => ({ name: t.name, f: t.frequency_hz })) });
+    const sp = (chan()?.speed_rpm || 0) / 60;
+    const ord = (f) => (sp > 0 && Number.isFinite(f) ? `${(f / sp).toFixed(2)}X` : "");
+    const rows = [`<tr><th>name</th><th>frequency</th><th>order</th><th>amplitude</th></tr>`];
+    for (const t of m.tones || []) rows.push(`<tr><td>${esc(t.name)}</td><td>${fmtHz(t.frequency_hz)}</td><td>${ord(t.frequency_hz)}</td><td>${fmtVal(t.amplitude)}</td></tr>`);
+    if ((m.peaks || []).length) rows.push(`<tr class="sep"><td colspan="4">largest peaks</td></tr>`);
+    for (const p of (m.peaks || []).slice(0, 6)) rows.push(`<tr><td></td><td>${fmtHz(p.frequency_hz)}</td><td>${ord(p.frequency_hz)}</td><td>${fmtVal(p.amplitude)}</td></tr>`);
+    $("#tones").innerHTML = rows.join("");
+    $("#tones-unit").textContent = unitLabel(m.unit, m.amplitude);
+  }
+
+  function renderHead() {
+    const c = chan();
+    if (!c) {
+      $("#ch-desc").textContent = ctx.store.channels.length ? "no such channel" : "";
+      return;
+    }
+    $("#ch-desc").textContent = c.description || "";
+    const k = ctx.channelState(c);
+    const bh = badge(k);
+    if ($("#ch-badge").dataset.k !== k) {
+      $("#ch-badge").innerHTML = bh;
+      $("#ch-badge").dataset.k = k;
+    }
+    $("#ch-fault").textContent = c.fault || "";
+    const L = c.latest;
+    const o = $("#ch-overall");
+    o.textContent = L ? fmtVal(L.overall) : "—";
+    if (L) {
+      o.dataset.seq = L.seq;
+      o.dataset.value = L.overall;
+    }
+    $("#ch-unit").textContent = L ? `${unitLabel(L.unit, "rms")} overall` : "";
+    renderFacts();
+  }
+
+  function renderFacts() {
+    const c = chan();
+    const m = st.meta;
+    const f = [];
+    if (c?.speed_rpm) f.push(["speed", `${fmtVal(c.speed_rpm, 4)} r/min · 1X ${fmtHz(c.speed_rpm / 60)}`]);
+    if (m) {
+      f.push(["lines", `${m.lines} · Fmax ${fmtHz(m.fmax_hz)} · Δf ${fmtHz(m.df_hz)}`]);
+      f.push(["window", `${m.window} · ENBW ${fmtVal(m.enbw_bins)} lines`]);
+      f.push(["averaging", `${m.averaging ?? ""} ${m.averages}`]);
+      f.push(["overall band", `${fmtHz(m.lowcut_hz)}–${fmtHz(m.fmax_hz)}`]);
+    }
+    if (c) f.push(["sample rate", `${fmtVal(c.sample_rate_hz, 5)} Hz`]);
+    if (c) f.push(["status", c.status]);
+    f.push(["updated", st.lastT ? fmtClock(st.lastT) : "—"]);
+    const h = f.map(([k, v]) => `<div><dt>${esc(k)}</dt><dd>${esc(v)}</dd></div>`).join("");
+    const el = $("#ch-facts");
+    if (el.dataset.h !== h) {
+      el.innerHTML = h;
+      el.dataset.h = h;
+    }
+  }
+
+  function staleCheck() {
+    let s = "";
+    if (ctx.store.conn === "reconnecting") s = `no contact since ${new Date(ctx.store.downSince).toLocaleTimeString([], { hour12: false })}`;
+    else if (st.hold) s = `held at ${fmtClock(st.lastT)}`;
+    else if (st.lastSpec && Date.now() - st.lastSpec > STALE_AFTER_MS) s = `no new spectrum for ${Math.round((Date.now() - st.lastSpec) / 1000)} s`;
+    plot.setStale(s);
+    bars.setStale(ctx.store.conn === "reconnecting");
+  }
+
+  function renderAlarms() {
+    const al = ctx.store.alarms;
+    $("#ch-alarms-panel").hidden = al === null;
+    if (al === null) return;
+    const h = alarmListHtml(ctx.alarmsFor(id), { showChannel: false });
+    const ul = $("#ch-alarms");
+    if (ul.dataset.h !== h) {
+      ul.innerHTML = h;
+      ul.dataset.h = h;
+    }
+  }
+
+  let evBusy = false;
+  async function loadEvents() {
+    $("#ch-events-panel").hidden = features.events !== true;
+    if (features.events !== true || evBusy) return;
+    evBusy = true;
+    try {
+      const j = await getJSON(`${API}/events${qs({ channel: id, limit: 10 })}`);
+      st.events = j.events || [];
+      const h = st.events.map((ev) => eventRowHtml(ev, { showChannel: false })).join("") || `<tr><td colspan="6" class="empty">No events on this channel.</td></tr>`;
+      const tb = $("#ch-events");
+      if (tb && tb.dataset.h !== h) {
+        tb.innerHTML = h;
+        tb.dataset.h = h;
+      }
+    } catch {
+      /* keep */
+    } finally {
+      evBusy = false;
+    }
+  }
+
+  // --- trend --------------------------------------------------------------------------
+  let trendNames = "";
+  function fillTrendNames(named) {
+    const names = named.map((b) => b.name).filter((n) => n !== "overall" || features.trend !== true);
+    const key = names.join("|");
+    if (key === trendNames) return;
+    trendNames = key;
+    const sel = $("#sel-trend");
+    sel.innerHTML = `<option value="${esc(ctx.FRAME)}">overall (to Fmax)</option>` + names.map((n) => `<option value="${esc(n)}"${n === st.trendName ? " selected" : ""}>${esc(n)} band</option>`).join("");
+    sel.value = st.trendName;
+  }
+
+  let trendBusy = false;
+  let trendAt = 0;
+  async function loadTrend() {
+    const span = RANGES[st.range];
+    const nowMs = st.lastT ? st.lastT / 1e6 : Date.now();
+    const isFrame = st.trendName === ctx.FRAME;
+    const rule = isFrame ? ctx.levels(id, "overall", "overall") : ctx.levels(id, "band", st.trendName);
+    const unit = ctx.store.bands.get(id)?.unit || chan()?.latest?.unit || "";
+    const evs = (st.events || []).filter((e) => e.kind !== "ack" && (isFrame ? e.rule === `${id}.overall` : e.rule?.endsWith(`.${slug(st.trendName)}`)))
+      .map((e) => ({ t_ms: e.t_ns / 1e6, state: e.to_state, text: `${e.from_state} → ${e.to_state} ${fmtVal(e.value)}` }));
+    const base = { range: [nowMs - span, nowMs], unit, alert: rule?.alert, danger: rule?.danger, events: evs };
+    if (features.trend !== false && !trendBusy) {
+      trendBusy = true;
+      trendAt = Date.now();
+      try {
+        const name = isFrame ? "overall" : st.trendName;
+        const stepS = Math.max(1, Math.round(span / 1000 / 600));
+        const j = await getJSON(`${API}/channels/${encodeURIComponent(id)}/trend${qs({ name, since: Math.round((nowMs - span) * 1e6), until: Math.round(nowMs * 1e6), step: stepS })}`);
+        features.trend = true;
+        const pts = (j.points || []).map((p) => ({ t_ms: p.t_ns / 1e6, mean: p.mean, min: p.min, max: p.max }));
+        trend.set({ ...base, points: pts, note: "" });
+        $("#trend-note").textContent = `stored history, ${stepS} s steps`;
+        return;
+      } catch (e) {
+        if (isMissingRoute(e)) features.trend = false;
+        else if (!(e instanceof TypeError) && !(e instanceof ApiError && e.status >= 500)) features.trend = features.trend ?? true;
+      } finally {
+        trendBusy = false;
+      }
+    }
+    if (features.trend === false) {
+      const pts = ctx.history(id, st.trendName).map(([t, v]) => ({ t_ms: t, mean: v }));
+      // Only this session's values: show the part of the period that holds them.
+      const have = pts.length ? nowMs - pts[0].t_ms : 0;
+      const shown = Math.min(span, Math.max(5 * 60e3, have * 1.1));
+      trend.set({ ...base, range: [nowMs - shown, nowMs], points: pts, note: "" });
+      $("#trend-note").textContent = "this service keeps no history yet: values since this page opened";
+    }
+  }
+
+  // --- events from the app ----------------------------------------------------------
+  const on = {
+    spectrum: (e) => onSpectrum(e.detail),
+    bands: (e) => onBands(e.detail),
+    tones: (e) => onTones(e.detail),
+    channels: () => {
+      renderHead();
+      if (st.tones) onTones(st.tones);
+    },
+    alarms: () => {
+      renderAlarms();
+      renderHead();
+      const m = ctx.store.bands.get(id);
+      if (m) onBands(m);
+    },
+    conn: () => {
+      staleCheck();
+      if (ctx.store.conn !== "reconnecting" && !st.meta) loadMeta();
+    },
+    "alarm-event": () => loadEvents(),
+    features: () => loadEvents(),
+    tick: () => {
+      staleCheck();
+      renderFacts();
+      if (Date.now() - trendAt > (features.trend === false ? 2000 : 15000)) loadTrend();
+      if (!(tickN++ % 5)) loadEvents();
+    },
+  };
+  let tickN = 0;
+  for (const [k, f] of Object.entries(on)) ctx.app.addEventListener(k, f);
+  syncToolbar();
+  subscribe();
+  loadMeta();
+  renderHead();
+  renderAlarms();
+  const m0 = ctx.store.bands.get(id);
+  if (m0) onBands(m0);
+  if (ctx.store.tones.get(id)) onTones(ctx.store.tones.get(id));
+  loadEvents().then(loadTrend);
+  void STATES;
+  return {
+    unmount() {
+      for (const [k, f] of Object.entries(on)) ctx.app.removeEventListener(k, f);
+      plot.surface.dispose();
+      sg.surface.dispose();
+      bars.surface.dispose();
+      thirds.surface.dispose();
+      trend.surface.dispose();
+    },
+  };
+}
+
+function slug(name) {
+  return name.toLowerCase().replace(/[^a-z0-9._-]+/g, "-").replace(/^-+|-+$/g, "") || "x";
+}

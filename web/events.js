@@ -1,0 +1,109 @@
+// The alarms-and-events view: every active or latched alarm with its acknowledgement, and
+// the event log, newest first, paged and filterable by channel.
+
+import { API, features, getJSON, qs } from "./api.js";
+import { esc } from "./fmt.js";
+import { alarmListHtml, eventHeadHtml, eventRowHtml } from "./alarms.js";
+
+export function mount(root, ctx) {
+  const params = new URLSearchParams(location.hash.split("?")[1] || "");
+  let channel = params.get("channel") || "";
+  root.innerHTML = `
+    <div class="ch-head"><h1>Alarms and events</h1></div>
+    <section class="panel" id="ev-alarms-panel"><header>Active and latched alarms</header><ul class="alarms" id="ev-alarms"></ul></section>
+    <section class="panel" id="ev-log-panel"><header>Event log
+        <label class="hint">channel <select id="ev-channel"><option value="">all</option></select></label>
+        <span class="hint" id="ev-count"></span></header>
+      <table class="events"><thead>${eventHeadHtml()}</thead><tbody id="ev-rows"></tbody></table>
+      <div class="pager"><button id="ev-older" hidden>Older events</button><span class="hint" id="ev-state"></span></div>
+    </section>`;
+  const $ = (s) => root.querySelector(s);
+  let events = [];
+  let nextBefore = null;
+  let busy = false;
+
+  ctx.live.subscribe({ channels: "*", kinds: ["status", "alarms"], max_rate_hz: 1 });
+
+  function renderAlarms() {
+    const al = ctx.store.alarms;
+    $("#ev-alarms-panel").hidden = al === null;
+    if (al === null) return;
+    const h = alarmListHtml(al);
+    const ul = $("#ev-alarms");
+    if (ul.dataset.h !== h) {
+      ul.innerHTML = h;
+      ul.dataset.h = h;
+    }
+  }
+
+  function fillChannels() {
+    const sel = $("#ev-channel");
+    const ids = ctx.store.channels.map((c) => c.id);
+    if (sel.dataset.ids === ids.join(",")) return;
+    sel.dataset.ids = ids.join(",");
+    sel.innerHTML = `<option value="">all</option>` + ids.map((i) => `<option value="${esc(i)}">${esc(i)}</option>`).join("");
+    sel.value = channel;
+  }
+
+  function renderEvents() {
+    $("#ev-rows").innerHTML = events.map((e) => eventRowHtml(e)).join("") || `<tr><td colspan="7" class="empty">No events${channel ? ` on ${esc(channel)}` : ""}.</td></tr>`;
+    $("#ev-older").hidden = nextBefore === null || nextBefore === undefined;
+    $("#ev-count").textContent = `${events.length} shown`;
+  }
+
+  /** Newest page (refresh) or the next older page (`older`). */
+  async function load(older = false) {
+    if (features.events === false) {
+      $("#ev-log-panel").hidden = true;
+      return;
+    }
+    if (busy) return;
+    busy = true;
+    try {
+      const j = await getJSON(`${API}/events${qs({ channel, limit: 50, before_id: older ? nextBefore : null })}`);
+      const page = j.events || [];
+      if (older) events = events.concat(page);
+      else {
+        // keep older pages already loaded; merge the newest page in front
+        const seen = new Set(page.map((e) => e.id));
+        events = page.concat(events.filter((e) => !seen.has(e.id) && e.id < (page[page.length - 1]?.id ?? Infinity)));
+      }
+      if (older || nextBefore === null) nextBefore = j.next_before_id ?? null;
+      renderEvents();
+      $("#ev-state").textContent = "";
+    } catch (e) {
+      $("#ev-state").textContent = `could not load events: ${e.message}`;
+    } finally {
+      busy = false;
+    }
+  }
+
+  $("#ev-channel").addEventListener("change", (e) => {
+    channel = e.target.value;
+    events = [];
+    nextBefore = null;
+    history.replaceState(null, "", `#/events${channel ? `?channel=${encodeURIComponent(channel)}` : ""}`);
+    load();
+  });
+  $("#ev-older").addEventListener("click", () => load(true));
+
+  let n = 0;
+  const on = {
+    alarms: renderAlarms,
+    channels: fillChannels,
+    "alarm-event": () => load(),
+    features: () => load(),
+    tick: () => {
+      if (!(n++ % 5)) load();
+    },
+  };
+  for (const [k, f] of Object.entries(on)) ctx.app.addEventListener(k, f);
+  renderAlarms();
+  fillChannels();
+  load();
+  return {
+    unmount() {
+      for (const [k, f] of Object.entries(on)) ctx.app.removeEventListener(k, f);
+    },
+  };
+}

@@ -1,0 +1,145 @@
+// The evidence dialog: the spectrum kept when an alarm was raised, drawn against the live
+// one, the waveform around the moment, and download links (WAV, CSV, NPY).
+
+import { API, getJSON, qs } from "./api.js";
+import { esc, fmtDateTime, fmtHz, fmtVal, unitLabel } from "./fmt.js";
+import { SpectrumPlot } from "./spectrum.js";
+import { Scale, Surface, linTicks, pal } from "./plot.js";
+
+let plot = null;
+let wave = null;
+let waveData = null;
+let timer = 0;
+let current = null;
+
+export function setupEvidence(ctx) {
+  const dlg = document.getElementById("dlg-evidence");
+  const readout = document.getElementById("ev-readout");
+  plot = new SpectrumPlot(document.getElementById("ev-spec"), {
+    onHover: (i) => {
+      readout.textContent = i ? `${fmtHz(i.f)} · then ${fmtVal(i.v)} · now ${fmtVal(i.then)} ${unitLabel(i.unit, i.amplitude)}` : "";
+    },
+  });
+  plot.show.peaks = true;
+  wave = new Surface(document.getElementById("ev-wave"), drawWave);
+  dlg.addEventListener("close", () => {
+    clearInterval(timer);
+    current = null;
+  });
+  document.addEventListener("click", (e) => {
+    const b = e.target.closest("[data-evidence]");
+    if (!b) return;
+    e.preventDefault();
+    openEvidence(b.dataset.evidence, ctx);
+  });
+}
+
+export async function openEvidence(eventId, ctx) {
+  const dlg = document.getElementById("dlg-evidence");
+  const what = document.getElementById("ev-what");
+  current = eventId;
+  what.textContent = "loading…";
+  document.getElementById("ev-downloads").innerHTML = "";
+  document.getElementById("ev-wave-fig").hidden = true;
+  plot.setOverlay(null);
+  plot.data = null;
+  plot.view = null;
+  plot.surface.invalidate();
+  if (!dlg.open) dlg.showModal();
+  let ev;
+  try {
+    ev = await getJSON(`${API}/events/${encodeURIComponent(eventId)}/evidence?format=json`, { timeoutMs: 15000 });
+  } catch (e) {
+    what.textContent = `No evidence for event ${eventId}: ${e.message}`;
+    return;
+  }
+  if (current !== eventId) return;
+  const e = ev.event || {};
+  what.innerHTML = `<b>${esc(e.channel)}</b> · ${esc(e.rule)} · ${esc(e.from_state)} → <b>${esc(e.to_state)}</b> at ${fmtDateTime(e.t_ns)} · value ${fmtVal(e.value)} / level ${fmtVal(e.level)} ${esc(unitLabel(e.unit || ""))}`;
+  const s = ev.spectrum;
+  if (s?.values) {
+    plot.setData({ f0: s.f0_hz, df: s.df_hz, values: Float32Array.from(s.values, (v) => v ?? NaN), unit: s.unit, amplitude: s.amplitude, t_ns: e.t_ns });
+    plot.resetView(false);
+    const ch = ctx.store.channels.find((c) => c.id === e.channel);
+    plot.setMarkers({ speedHz: (ch?.speed_rpm || 0) / 60, bearing: [] });
+    const refresh = async () => {
+      try {
+        const now = await getJSON(`${API}/channels/${encodeURIComponent(e.channel)}/spectrum${qs({ unit: s.unit, amplitude: s.amplitude })}`);
+        if (current === eventId) plot.setOverlay({ f0: now.f0_hz, df: now.df_hz, values: Float32Array.from(now.values, (v) => v ?? NaN), label: "now" });
+      } catch {
+        /* the live one is optional */
+      }
+    };
+    refresh();
+    clearInterval(timer);
+    timer = setInterval(refresh, 2000);
+  }
+  const wf = ev.waveform;
+  waveData = null;
+  if (wf?.samples?.length) {
+    waveData = { fs: wf.fs, t0_ns: wf.t0_ns, samples: Float32Array.from(wf.samples, (v) => v ?? NaN), unit: wf.unit || "", event_ns: e.t_ns };
+    document.getElementById("ev-wave-fig").hidden = false;
+    wave.invalidate();
+  }
+  const base = `${API}/events/${encodeURIComponent(eventId)}/evidence`;
+  document.getElementById("ev-downloads").innerHTML =
+    `Download: <a href="${base}?format=wav" download>waveform (WAV)</a> <a href="${base}?format=csv" download>CSV</a> <a href="${base}?format=npy" download>NPY</a>` +
+    (wf?.url ? ` <a href="${esc(wf.url)}" download>waveform</a>` : "");
+}
+
+function drawWave(ctx, w, h) {
+  ctx.fillStyle = pal.panel;
+  ctx.fillRect(0, 0, w, h);
+  const d = waveData;
+  if (!d) return;
+  const L = 58, R = w - 14, T = 8, B = h - 22;
+  ctx.fillStyle = pal.plot;
+  ctx.fillRect(L, T, R - L, B - T);
+  const n = d.samples.length;
+  const dur = n / d.fs;
+  const t0 = (d.t0_ns - d.event_ns) / 1e9;
+  let mx = 0;
+  for (const v of d.samples) if (Math.abs(v) > mx) mx = Math.abs(v);
+  mx = mx || 1;
+  const xs = new Scale(false).set(t0, t0 + dur, L, R);
+  const ys = new Scale(false).set(-mx * 1.05, mx * 1.05, B, T);
+  ctx.font = `11px ${pal.mono}`;
+  ctx.fillStyle = pal["ink-2"];
+  ctx.textAlign = "center";
+  ctx.textBaseline = "top";
+  for (const t of linTicks(t0, t0 + dur, 8)) {
+    const x = Math.round(xs.px(t)) + 0.5;
+    ctx.strokeStyle = t === 0 ? pal.ink : pal.grid;
+    ctx.beginPath();
+    ctx.moveTo(x, T);
+    ctx.lineTo(x, B);
+    ctx.stroke();
+    ctx.fillText(`${t > 0 ? "+" : ""}${+t.toFixed(3)} s`, x, B + 4);
+  }
+  // min/max per pixel column
+  const W = Math.floor(R - L);
+  ctx.strokeStyle = pal.trace;
+  ctx.beginPath();
+  for (let p = 0; p < W; p++) {
+    const a = Math.floor((p / W) * n), b = Math.max(a + 1, Math.floor(((p + 1) / W) * n));
+    let lo = Infinity, hi = -Infinity;
+    for (let k = a; k < b && k < n; k++) {
+      const v = d.samples[k];
+      if (v < lo) lo = v;
+      if (v > hi) hi = v;
+    }
+    ctx.moveTo(L + p + 0.5, ys.px(hi));
+    ctx.lineTo(L + p + 0.5, ys.px(lo) + 0.5);
+  }
+  ctx.stroke();
+  ctx.strokeStyle = pal.axis;
+  ctx.strokeRect(L + 0.5, T + 0.5, R - L - 1, B - T - 1);
+  ctx.fillStyle = pal["ink-3"];
+  ctx.textAlign = "right";
+  ctx.textBaseline = "middle";
+  ctx.fillText(fmtVal(mx), L - 6, ys.px(mx));
+  ctx.fillText(fmtVal(-mx), L - 6, ys.px(-mx));
+  ctx.textAlign = "left";
+  ctx.textBaseline = "top";
+  ctx.fillText(`${d.unit} · ${fmtVal(d.fs, 5)} samples/s · 0 s = the event`, L + 4, T + 2);
+}

@@ -1,0 +1,156 @@
+// The "line filter" dialog: the band-pass response of one spectrum line for the configured
+// window, in dB against offset in lines (and in Hz), from the service or computed here.
+
+import { API, getJSON, isMissingRoute, qs } from "./api.js";
+import { esc, fmtHz, fmtVal } from "./fmt.js";
+import { Scale, Surface, linTicks, pal, plateText } from "./plot.js";
+import { enbwBins, responseFigures, windowResponse } from "./winresp.js";
+
+let cur = null; // {window, n, df, q, f, enbw_bins}
+let data = null; // {offset_bins, gain_db, figs, source}
+let surface = null;
+let serviceHasRoute = null;
+
+export function setupFilter() {
+  surface = new Surface(document.getElementById("flt-plot"), draw);
+  document.getElementById("flt-span").addEventListener("change", () => cur && load());
+}
+
+/** Open the dialog for one line: {window, n, df, q, f, enbw_bins}. */
+export function openFilter(args) {
+  cur = args;
+  const dlg = document.getElementById("dlg-filter");
+  document.getElementById("flt-title").textContent = `Line filter — line ${args.q} at ${fmtHz(args.f)}`;
+  document.getElementById("flt-what").textContent =
+    `Each line of the spectrum is the output of a band-pass filter: the ${args.window} window's transform centred on the line. ` +
+    `A sine ν lines away from the centre reads the gain below on this line (leakage). N = ${args.n} samples, Δf = ${fmtHz(args.df)}.`;
+  dlg.showModal();
+  load();
+}
+
+async function load() {
+  const span = Number(document.getElementById("flt-span").value);
+  const { window: win, n } = cur;
+  let r = null, source = "";
+  if (serviceHasRoute !== false) {
+    try {
+      const j = await getJSON(`${API}/windows/${encodeURIComponent(win)}/response${qs({ n, span_bins: span })}`);
+      r = { offset_bins: Float64Array.from(j.offset_bins), gain_db: Float64Array.from(j.gain_db, (v) => v ?? -300) };
+      serviceHasRoute = true;
+      source = "response from the service";
+    } catch (e) {
+      if (isMissingRoute(e)) serviceHasRoute = false;
+    }
+  }
+  if (!r) {
+    r = windowResponse(win, n, span, span <= 8 ? 32 : 16);
+    source = "computed in this browser from the window's samples";
+  }
+  const figs = responseFigures(r.offset_bins, r.gain_db);
+  const enbw = cur.enbw_bins ?? enbwBins(win, n);
+  data = { ...r, figs, source, enbw, span };
+  document.getElementById("flt-source").textContent = source;
+  const f = [
+    ["window", `${win}, N = ${n}`],
+    ["ENBW", `${fmtVal(enbw)} lines = ${fmtHz(enbw * cur.df)}`],
+    ["−3 dB width", `${fmtVal(figs.bw3)} lines = ${fmtHz(figs.bw3 * cur.df)}`],
+    ["−6 dB width", `${fmtVal(figs.bw6)} lines`],
+    ["scalloping loss", `${fmtVal(figs.scallop)} dB (a sine half a line off centre)`],
+    ["highest sidelobe", Number.isFinite(figs.sidelobe) ? `${figs.sidelobe.toFixed(1)} dB` : "beyond the span"],
+    ["passband of this line", `${fmtHz(cur.f - (figs.bw3 * cur.df) / 2)} … ${fmtHz(cur.f + (figs.bw3 * cur.df) / 2)} (−3 dB)`],
+  ];
+  document.getElementById("flt-facts").innerHTML = f.map(([k, v]) => `<div><dt>${esc(k)}</dt><dd>${esc(v)}</dd></div>`).join("");
+  surface.invalidate();
+}
+
+function draw(ctx, w, h) {
+  ctx.fillStyle = pal.panel;
+  ctx.fillRect(0, 0, w, h);
+  if (!data) return;
+  const L = 52, R = w - 14, T = 26, B = h - 30;
+  ctx.fillStyle = pal.plot;
+  ctx.fillRect(L, T, R - L, B - T);
+  const { offset_bins: o, gain_db: g, span, figs } = data;
+  let floor = -40;
+  for (const v of g) if (v > -200) floor = Math.min(floor, v);
+  floor = Math.max(-160, Math.floor(floor / 20) * 20);
+  const xs = new Scale(false).set(-span, span, L, R);
+  const ys = new Scale(false).set(floor, 5, B, T);
+  ctx.lineWidth = 1;
+  ctx.font = `11px ${pal.mono}`;
+  // neighbouring line centres
+  for (let k = -span; k <= span; k++) {
+    const x = Math.round(xs.px(k)) + 0.5;
+    ctx.strokeStyle = k === 0 ? pal.axis : pal.grid;
+    ctx.beginPath();
+    ctx.moveTo(x, T);
+    ctx.lineTo(x, B);
+    ctx.stroke();
+  }
+  ctx.textAlign = "right";
+  ctx.textBaseline = "middle";
+  for (const v of linTicks(floor, 0, Math.floor((B - T) / 34))) {
+    const y = Math.round(ys.px(v)) + 0.5;
+    ctx.strokeStyle = pal.grid;
+    ctx.beginPath();
+    ctx.moveTo(L, y);
+    ctx.lineTo(R, y);
+    ctx.stroke();
+    ctx.fillStyle = pal["ink-2"];
+    ctx.fillText(`${v}`, L - 6, y);
+  }
+  ctx.textAlign = "center";
+  ctx.textBaseline = "top";
+  const every = span <= 8 ? 1 : span <= 16 ? 2 : 4;
+  for (let k = -span; k <= span; k += every) {
+    ctx.fillStyle = pal["ink-2"];
+    ctx.fillText(`${k > 0 ? "+" : ""}${k}`, xs.px(k), B + 4);
+    ctx.fillStyle = pal["ink-3"];
+    ctx.textBaseline = "bottom";
+    if (k % (every * 2) === 0) ctx.fillText(fmtHz(cur.f + k * cur.df, false), xs.px(k), T - 4);
+    ctx.textBaseline = "top";
+  }
+  // ENBW: the rectangle of equal noise power
+  ctx.fillStyle = pal.region;
+  ctx.fillRect(xs.px(-data.enbw / 2), ys.px(0), xs.px(data.enbw / 2) - xs.px(-data.enbw / 2), B - ys.px(0));
+  // −3 dB level and highest sidelobe
+  for (const [lvl, dash, label] of [[-3.0103, [4, 3], "−3 dB"], [figs.sidelobe, [2, 3], `sidelobe ${figs.sidelobe.toFixed(1)} dB`]]) {
+    if (!Number.isFinite(lvl) || lvl < floor) continue;
+    const y = ys.px(lvl);
+    ctx.strokeStyle = pal.mark;
+    ctx.setLineDash(dash);
+    ctx.beginPath();
+    ctx.moveTo(L, y);
+    ctx.lineTo(R, y);
+    ctx.stroke();
+    ctx.setLineDash([]);
+    ctx.font = `10.5px ${pal.font}`;
+    plateText(ctx, label, R - 4, y, { align: "right", fg: pal.mark, bg: pal.plot, pad: 2 });
+  }
+  // the response
+  ctx.save();
+  ctx.beginPath();
+  ctx.rect(L, T, R - L, B - T);
+  ctx.clip();
+  ctx.strokeStyle = pal.trace;
+  ctx.lineWidth = 1.4;
+  ctx.beginPath();
+  for (let i = 0; i < o.length; i++) {
+    const y = ys.px(Math.max(g[i], floor - 10));
+    if (i) ctx.lineTo(xs.px(o[i]), y);
+    else ctx.moveTo(xs.px(o[i]), y);
+  }
+  ctx.stroke();
+  ctx.restore();
+  ctx.strokeStyle = pal.axis;
+  ctx.strokeRect(L + 0.5, T + 0.5, R - L - 1, B - T - 1);
+  ctx.font = `11px ${pal.font}`;
+  ctx.fillStyle = pal["ink-3"];
+  ctx.textAlign = "left";
+  ctx.textBaseline = "bottom";
+  ctx.fillText("dB", 6, T - 4);
+  ctx.textAlign = "right";
+  ctx.fillText("Hz", R, T - 16);
+  ctx.textBaseline = "bottom";
+  ctx.fillText("offset from the line centre, lines   (shaded: ENBW)", R, h - 1);
+}

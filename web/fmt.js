@@ -1,0 +1,96 @@
+// Number, unit, frequency and time formatting shared by every view.
+// Pure functions: no DOM, no network.
+
+/** A value with 3 significant digits in fixed notation (exponent only below 1e-3 or at 1e6+). */
+export function fmtVal(v, sig = 3) {
+  if (v === null || v === undefined || !Number.isFinite(v)) return "—";
+  const a = Math.abs(v);
+  if (a === 0) return "0";
+  if (a < 1e-3 || a >= 1e6) return v.toExponential(sig - 1);
+  const digits = Math.max(0, sig - 1 - Math.floor(Math.log10(a)));
+  return v.toFixed(Math.min(digits, 6));
+}
+
+/** Frequency in Hz, e.g. "148.4 Hz", "2.35 kHz". */
+export function fmtHz(f, withUnit = true) {
+  if (!Number.isFinite(f)) return "—";
+  const a = Math.abs(f);
+  let s;
+  if (a >= 1000) s = (f / 1000).toFixed(a >= 10000 ? 1 : 2) + (withUnit ? " kHz" : "k");
+  else if (a >= 100) s = f.toFixed(1) + (withUnit ? " Hz" : "");
+  else if (a >= 10) s = f.toFixed(2) + (withUnit ? " Hz" : "");
+  else s = f.toFixed(3) + (withUnit ? " Hz" : "");
+  return s;
+}
+
+/** An axis tick label for a frequency (short: "500", "1k", "2.5k"). */
+export function tickHz(f) {
+  if (f >= 1000) {
+    const k = f / 1000;
+    return (Number.isInteger(k) ? k.toFixed(0) : fmtVal(k, 3).replace(/0+$/, "").replace(/\.$/, "")) + "k";
+  }
+  if (f >= 1) return Number.isInteger(f) ? String(f) : String(+f.toPrecision(3));
+  return String(+f.toPrecision(2));
+}
+
+/** Amplitude type as shown next to a unit. */
+export function ampLabel(a) {
+  return { rms: "RMS", peak: "pk", "peak-to-peak": "pk-pk" }[a] ?? (a || "");
+}
+
+/** "mm/s RMS", "g pk". */
+export function unitLabel(unit, amplitude) {
+  const u = unit === "m/s2" ? "m/s²" : unit === "um" ? "µm" : unit;
+  return amplitude ? `${u} ${ampLabel(amplitude)}` : u;
+}
+
+/** Local wall time of a ns timestamp, "14:03:07". */
+export function fmtClock(t_ns) {
+  if (!t_ns) return "—";
+  const d = new Date(Number(t_ns) / 1e6);
+  return d.toLocaleTimeString([], { hour: "2-digit", minute: "2-digit", second: "2-digit", hour12: false });
+}
+
+/** Local date and time of a ns timestamp, "2026-12-02 14:03:07". */
+export function fmtDateTime(t_ns) {
+  if (!t_ns) return "—";
+  const d = new Date(Number(t_ns) / 1e6);
+  const p = (n) => String(n).padStart(2, "0");
+  return `${d.getFullYear()}-${p(d.getMonth() + 1)}-${p(d.getDate())} ${p(d.getHours())}:${p(d.getMinutes())}:${p(d.getSeconds())}`;
+}
+
+/** A duration in seconds as "45 s", "3 min", "2 h 5 min", "4 d". */
+export function fmtAge(s) {
+  if (!Number.isFinite(s)) return "—";
+  s = Math.max(0, s);
+  if (s < 90) return `${Math.round(s)} s`;
+  if (s < 5400) return `${Math.round(s / 60)} min`;
+  if (s < 172800) return `${Math.floor(s / 3600)} h ${Math.round((s % 3600) / 60)} min`;
+  return `${Math.round(s / 86400)} d`;
+}
+
+// Same-quantity unit factors: value_in_b = value_in_a * factor. Between quantities
+// (acceleration ↔ velocity ↔ displacement) the ratio depends on frequency, so none here.
+const UNIT_BASE = {
+  "mm/s": ["velocity", 1], "in/s": ["velocity", 25.4],
+  "m/s2": ["acceleration", 1], g: ["acceleration", 9.80665], // ISO 80000-3: standard gravity
+  um: ["displacement", 1], mil: ["displacement", 25.4], // 1 mil = 25.4 µm (exact)
+};
+const AMP_FACTOR = { rms: 1, peak: Math.SQRT2, "peak-to-peak": 2 * Math.SQRT2 }; // sine wave
+
+/** Factor that turns an RMS value in unit `from` into `toAmp` in unit `to`, or null. */
+export function convertFactor(from, to, toAmp = "rms", fromAmp = "rms") {
+  const a = UNIT_BASE[from], b = UNIT_BASE[to];
+  if (!a || !b || a[0] !== b[0]) return null;
+  const af = AMP_FACTOR[toAmp] / AMP_FACTOR[fromAmp];
+  if (!Number.isFinite(af)) return null;
+  return (a[1] / b[1]) * af;
+}
+
+export const UNIT_CHOICES = ["mm/s", "in/s", "g", "m/s2", "um", "mil"];
+export const AMP_CHOICES = ["rms", "peak", "peak-to-peak"];
+
+/** Escape text for insertion into HTML. */
+export function esc(s) {
+  return String(s ?? "").replace(/[&<>"']/g, (c) => ({ "&": "&amp;", "<": "&lt;", ">": "&gt;", '"': "&quot;", "'": "&#39;" }[c]));
+}

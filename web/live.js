@@ -1,0 +1,259 @@
+// The live link to the service: a WebSocket subscription for the open view (binary spectra,
+// JSON bands/tones/alarms/status), REST polling when the socket cannot open, and a slow
+// plant-wide poll of channels and alarms. Emits DOM events; knows nothing about drawing.
+
+import { API, features, getJSON, isMissingRoute } from "./api.js";
+
+const PLANT_POLL_MS = 2000;
+const DOWN_POLL_MS = 1000;
+const WS_RETRY_MAX_MS = 8000;
+const WS_ABSENT_RETRY_MS = 20000; // the service answers REST but has no socket route
+
+/**
+ * Decode a binary spectrum message: u32 LE header length L, L bytes of UTF-8 JSON, then
+ * `count` float32 LE values. Returns {header, values: Float32Array}.
+ */
+export function decodeSpectrum(buf) {
+  const dv = new DataView(buf);
+  const L = dv.getUint32(0, true);
+  const header = JSON.parse(new TextDecoder().decode(new Uint8Array(buf, 4, L)));
+  const off = 4 + L;
+  const count = header.count ?? Math.floor((buf.byteLength - off) / 4);
+  let values;
+  if (off % 4 === 0) values = new Float32Array(buf, off, count);
+  else values = new Float32Array(buf.slice(off, off + 4 * count)); // typed arrays need alignment
+  return { header, values };
+}
+
+export class Live extends EventTarget {
+  constructor() {
+    super();
+    this.serviceUp = null; // null until the first answer
+    this.wsOpen = false;
+    this.ws = null;
+    this.sub = null;
+    this.channels = [];
+    this.alarms = null; // null = unknown or the service has no alarm route
+    this.downSince = 0;
+    this.attempts = 0;
+    this._wsTimer = 0;
+    this._wsBackoff = 500;
+    this._due = new Map(); // poll key → next time (ms)
+    this._busy = new Set();
+    this._plantTimer = 0;
+  }
+
+  get conn() {
+    if (this.serviceUp === null) return "connecting";
+    if (!this.serviceUp) return "reconnecting";
+    return this.wsOpen ? "live" : "polling";
+  }
+
+  start() {
+    this._plant();
+    this._openSocket();
+    setInterval(() => this._pollTick(), 100);
+  }
+
+  /** Change what the open view wants: {channels: [...] | "*", kinds: [...], max_rate_hz, unit, amplitude}. */
+  subscribe(sub) {
+    this.sub = sub;
+    this._due.clear();
+    if (this.wsOpen) this._send({ subscribe: sub });
+  }
+
+  /** Ask for the plant poll now (e.g. after an acknowledgement). */
+  refreshPlant() {
+    clearTimeout(this._plantTimer);
+    this._plantTimer = setTimeout(() => this._plant(), 0);
+  }
+
+  _emit(type, detail) {
+    this.dispatchEvent(new CustomEvent(type, { detail }));
+  }
+
+  _setUp(up) {
+    const before = this.conn;
+    if (up) {
+      this.serviceUp = true;
+      this.attempts = 0;
+    } else {
+      if (this.serviceUp !== false) this.downSince = Date.now();
+      this.serviceUp = false;
+      this.attempts += 1;
+    }
+    if (this.conn !== before || !up) this._emit("conn", { conn: this.conn, downSince: this.downSince, attempts: this.attempts });
+    if (up && before === "reconnecting" && !this.ws) this._openSocketSoon(0);
+  }
+
+  // --- plant-wide poll: every channel's status and latest overall, and the alarms -----
+  async _plant() {
+    clearTimeout(this._plantTimer);
+    let ok = false;
+    try {
+      const ch = await getJSON(`${API}/channels`, { timeoutMs: 4000 });
+      this.channels = ch;
+      ok = true;
+      this._setUp(true);
+      this._emit("channels", ch);
+      if (features.alarms !== false) {
+        try {
+          const al = await getJSON(`${API}/alarms`, { timeoutMs: 4000 });
+          features.alarms = true;
+          this.alarms = Array.isArray(al) ? al : al.alarms ?? [];
+        } catch (e) {
+          if (isMissingRoute(e)) features.alarms = false;
+          else if (!(e instanceof TypeError)) console.warn("alarms:", e.message);
+          if (features.alarms === false) this.alarms = null;
+        }
+        this._emit("alarms", this.alarms);
+      }
+    } catch (e) {
+      if (!(e instanceof TypeError)) console.warn("channels:", e.message);
+      this._setUp(false);
+    }
+    this._plantTimer = setTimeout(() => this._plant(), ok ? PLANT_POLL_MS : DOWN_POLL_MS);
+  }
+
+  // --- WebSocket -------------------------------------------------------------------
+  _openSocketSoon(ms) {
+    clearTimeout(this._wsTimer);
+    this._wsTimer = setTimeout(() => this._openSocket(), ms);
+  }
+
+  _openSocket() {
+    if (this.ws) return;
+    const url = `${location.protocol === "https:" ? "wss" : "ws"}://${location.host}${API}/stream`;
+    let opened = false;
+    let ws;
+    try {
+      ws = new WebSocket(url);
+    } catch {
+      this._openSocketSoon(WS_ABSENT_RETRY_MS);
+      return;
+    }
+    ws.binaryType = "arraybuffer";
+    this.ws = ws;
+    ws.onopen = () => {
+      opened = true;
+      this.wsOpen = true;
+      this._wsBackoff = 500;
+      this._setUp(true);
+      this._emit("conn", { conn: this.conn });
+      if (this.sub) this._send({ subscribe: this.sub });
+    };
+    ws.onmessage = (ev) => this._onMessage(ev.data);
+    ws.onclose = () => {
+      this.ws = null;
+      const wasOpen = this.wsOpen;
+      this.wsOpen = false;
+      if (wasOpen) {
+        // The stream broke: say so at once, then let REST tell whether the service is up.
+        this._setUp(false);
+        this.refreshPlant();
+        this._openSocketSoon(this._wsBackoff);
+      } else if (this.serviceUp) {
+        this._emit("conn", { conn: this.conn });
+        this._openSocketSoon(WS_ABSENT_RETRY_MS); // REST works, the socket does not: poll
+      } else {
+        this._openSocketSoon(this._wsBackoff);
+      }
+      this._wsBackoff = Math.min(WS_RETRY_MAX_MS, this._wsBackoff * 2);
+      void opened;
+    };
+    ws.onerror = () => {}; // onclose follows and decides
+  }
+
+  _send(obj) {
+    try {
+      this.ws?.send(JSON.stringify(obj));
+    } catch {
+      /* closing; onclose handles it */
+    }
+  }
+
+  _onMessage(data) {
+    if (data instanceof ArrayBuffer) {
+      const m = decodeSpectrum(data);
+      this._emit("spectrum", m);
+      return;
+    }
+    let m;
+    try {
+      m = JSON.parse(data);
+    } catch {
+      return;
+    }
+    switch (m.kind) {
+      case "bands":
+      case "tones":
+        this._emit(m.kind, m);
+        break;
+      case "alarm":
+      case "alarms":
+        this._emit("alarm", m);
+        this.refreshPlant();
+        break;
+      case "status": {
+        const i = this.channels.findIndex((c) => c.id === (m.id ?? m.channel));
+        if (i >= 0) this.channels[i] = { ...this.channels[i], ...m, id: this.channels[i].id };
+        this._emit("channels", this.channels);
+        break;
+      }
+      case "error":
+        console.warn("service says:", m.message ?? m.detail ?? m);
+        break;
+      default:
+        break;
+    }
+  }
+
+  // --- REST polling of the open view when there is no socket ------------------------
+  _pollTick() {
+    if (this.wsOpen || !this.serviceUp || !this.sub) return;
+    const s = this.sub;
+    const now = performance.now();
+    const list = s.channels === "*" ? this.channels.map((c) => c.id) : s.channels || [];
+    const one = list.length <= 2;
+    for (const ch of list) {
+      const hasData = this.channels.find((c) => c.id === ch)?.latest;
+      if (!hasData) continue;
+      if (s.kinds.includes("spectrum") && one) {
+        const period = 1000 / Math.min(s.max_rate_hz || 4, 5);
+        this._poll(`s:${ch}`, now, period, async () => {
+          const q = new URLSearchParams({ format: "json" });
+          if (s.unit) q.set("unit", s.unit);
+          if (s.amplitude) q.set("amplitude", s.amplitude);
+          const j = await getJSON(`${API}/channels/${encodeURIComponent(ch)}/spectrum?${q}`);
+          const { values, ...header } = j;
+          header.kind = "spectrum";
+          header.count = values.length;
+          this._emit("spectrum", { header, values: Float32Array.from(values, (v) => v ?? NaN) });
+        });
+      }
+      if (s.kinds.includes("bands")) {
+        this._poll(`b:${ch}`, now, one ? 1000 : 2000, async () => {
+          const j = await getJSON(`${API}/channels/${encodeURIComponent(ch)}/bands`);
+          this._emit("bands", { kind: "bands", ...j });
+        });
+      }
+      if (s.kinds.includes("tones") && one) {
+        this._poll(`t:${ch}`, now, 1000, async () => {
+          const j = await getJSON(`${API}/channels/${encodeURIComponent(ch)}/tones`);
+          this._emit("tones", { kind: "tones", ...j });
+        });
+      }
+    }
+  }
+
+  _poll(key, now, period, fn) {
+    if (this._busy.has(key) || (this._due.get(key) ?? 0) > now) return;
+    this._busy.add(key);
+    this._due.set(key, now + period);
+    fn()
+      .catch((e) => {
+        if (e instanceof TypeError) this.refreshPlant(); // unreachable: let the plant poll decide
+      })
+      .finally(() => this._busy.delete(key));
+  }
+}

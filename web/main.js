@@ -1,0 +1,265 @@
+// The dashboard shell: shared state fed by the live link, the header (connection and alarm
+// summary), the channel sidebar, and the router that mounts one view at a time.
+
+import { API, features, getJSON, isMissingRoute } from "./api.js";
+import { Live } from "./live.js";
+import { loadPalette } from "./plot.js";
+import { STATES, alarmStateKey, badge, channelStateKey, glyph } from "./states.js";
+import { esc, fmtClock, fmtVal } from "./fmt.js";
+import * as overview from "./overview.js";
+import * as channel from "./channel.js";
+import * as eventsView from "./events.js";
+import { setupAck } from "./alarms.js";
+import { setupEvidence } from "./evidence.js";
+import { setupFilter } from "./filterview.js";
+
+const HISTORY_MS = 3600e3;
+/** History key of the frame overall (lowcut…Fmax), apart from any band that is called "overall". */
+export const FRAME = "(frame overall)";
+
+/** Everything the views share. Views read it and listen to `app` events. */
+export const app = new EventTarget();
+const store = {
+  channels: [],
+  alarms: null, // active/latched alarm entries, or null when the service has no alarm route
+  rules: new Map(), // "channel|kind|name" → last alarm entry seen (remembers levels)
+  bands: new Map(), // channel → latest bands message
+  tones: new Map(), // channel → latest tones message
+  hist: new Map(), // channel → Map(name → [[t_ms, value], ...]) for this browser session
+  conn: "connecting",
+  downSince: 0,
+};
+const live = new Live();
+const ctx = {
+  store,
+  live,
+  app,
+  nav: (hash) => (location.hash = hash),
+  levels,
+  channelState,
+  alarmsFor,
+  history,
+  FRAME,
+};
+
+/** Levels and state of one rule: {alert, danger, unit, state, rule, acked} or null. */
+function levels(channelId, kind, name) {
+  return store.rules.get(`${channelId}|${kind}|${kind === "overall" ? "overall" : name}`) ?? null;
+}
+
+function alarmsFor(channelId) {
+  return (store.alarms || []).filter((a) => a.channel === channelId);
+}
+
+function channelState(c) {
+  return channelStateKey(c.status, alarmsFor(c.id));
+}
+
+function history(channelId, name) {
+  return store.hist.get(channelId)?.get(name) ?? [];
+}
+
+function remember(channelId, name, t_ms, v) {
+  if (!Number.isFinite(v) || !t_ms) return;
+  let m = store.hist.get(channelId);
+  if (!m) store.hist.set(channelId, (m = new Map()));
+  let a = m.get(name);
+  if (!a) m.set(name, (a = []));
+  const last = a[a.length - 1];
+  if (last && t_ms - last[0] < 1000) return;
+  a.push([t_ms, v]);
+  while (a.length && a[0][0] < t_ms - HISTORY_MS) a.shift();
+}
+
+// --- live feeds -------------------------------------------------------------------------
+live.addEventListener("channels", (e) => {
+  store.channels = e.detail;
+  for (const c of store.channels) {
+    if (c.latest) remember(c.id, FRAME, c.latest.timestamp_ns / 1e6, c.latest.overall);
+  }
+  renderSide();
+  app.dispatchEvent(new CustomEvent("channels", { detail: store.channels }));
+});
+
+live.addEventListener("alarms", (e) => {
+  const list = e.detail;
+  store.alarms = list === null ? null : list.filter((a) => a.state !== "normal" || a.latched);
+  for (const a of list || []) store.rules.set(`${a.channel}|${a.kind}|${a.kind === "overall" ? "overall" : a.name}`, a);
+  // A rule that left the active list is back to normal: keep its levels, drop its state.
+  if (list) {
+    const act = new Set(list.map((a) => a.rule));
+    for (const [k, r] of store.rules) if (!act.has(r.rule) && r.state !== "normal") store.rules.set(k, { ...r, state: "normal", latched: false });
+  }
+  document.getElementById("nav-events").hidden = features.events === false && list === null;
+  renderAlarmSummary();
+  renderSide();
+  app.dispatchEvent(new CustomEvent("alarms", { detail: store.alarms }));
+});
+
+live.addEventListener("bands", (e) => {
+  const m = e.detail;
+  store.bands.set(m.channel, m);
+  const t = (m.timestamp_ns ?? 0) / 1e6;
+  for (const b of m.bands || []) if (!b.name.startsWith("third ")) remember(m.channel, b.name, t, b.value);
+  // Some services put levels on the bands themselves.
+  for (const b of m.bands || []) {
+    if (b.alert !== undefined || b.danger !== undefined) {
+      const k = `${m.channel}|band|${b.name}`;
+      store.rules.set(k, { ...(store.rules.get(k) || { state: "normal" }), channel: m.channel, kind: "band", name: b.name, alert: b.alert, danger: b.danger, unit: m.unit });
+    }
+  }
+  app.dispatchEvent(new CustomEvent("bands", { detail: m }));
+});
+live.addEventListener("tones", (e) => {
+  store.tones.set(e.detail.channel, e.detail);
+  app.dispatchEvent(new CustomEvent("tones", { detail: e.detail }));
+});
+live.addEventListener("spectrum", (e) => app.dispatchEvent(new CustomEvent("spectrum", { detail: e.detail })));
+live.addEventListener("alarm", (e) => app.dispatchEvent(new CustomEvent("alarm-event", { detail: e.detail })));
+live.addEventListener("conn", (e) => {
+  store.conn = e.detail.conn;
+  if (e.detail.downSince) store.downSince = e.detail.downSince;
+  renderConn(e.detail);
+  app.dispatchEvent(new CustomEvent("conn", { detail: e.detail }));
+});
+
+// --- header ------------------------------------------------------------------------------
+function renderConn(d) {
+  const el = document.getElementById("conn");
+  const conn = d.conn;
+  el.dataset.conn = conn;
+  const text = {
+    connecting: "connecting…",
+    live: "live",
+    polling: "live (polling)",
+    reconnecting: "reconnecting…",
+  }[conn];
+  el.querySelector(".conn-text").textContent = text;
+  el.title = {
+    live: "Streaming from the service over a WebSocket.",
+    polling: "The service's stream is not available; values are fetched every second or so.",
+    reconnecting: "The service does not answer; trying again.",
+    connecting: "",
+  }[conn];
+  const b = document.getElementById("banner");
+  if (conn === "reconnecting") {
+    b.hidden = false;
+    b.textContent = `No contact with the service since ${new Date(store.downSince || Date.now()).toLocaleTimeString([], { hour12: false })} — reconnecting` +
+      (d.attempts > 1 ? ` (attempt ${d.attempts})` : "") + ". Values on screen are not live.";
+  } else {
+    b.hidden = true;
+  }
+  document.body.classList.toggle("is-stale", conn === "reconnecting");
+}
+
+function renderAlarmSummary() {
+  const el = document.getElementById("alarm-sum");
+  if (store.alarms === null) {
+    el.innerHTML = "";
+    return;
+  }
+  const n = { danger: 0, alert: 0, latched: 0 };
+  let unacked = 0;
+  for (const a of store.alarms) {
+    const k = alarmStateKey(a);
+    if (k in n) n[k]++;
+    if (!a.acked) unacked++;
+  }
+  const parts = Object.entries(n).filter(([, c]) => c).map(([k, c]) => `<a href="#/events" title="${STATES[k].help}">${badge(k, ` <span class="num">${c}</span>`)}</a>`);
+  el.innerHTML = parts.length
+    ? parts.join("") + (unacked ? `<span class="hint">${unacked} not acknowledged</span>` : "")
+    : `<span class="hint">${glyph("ok")} no active alarms</span>`;
+}
+
+// --- sidebar -----------------------------------------------------------------------------
+let sideKey = "";
+function renderSide() {
+  const el = document.getElementById("side");
+  const cur = currentChannel();
+  const groups = groupByMachine(store.channels);
+  const html = [];
+  for (const [machine, chans] of groups) {
+    html.push(`<h3><span>${esc(machine)}</span></h3>`);
+    for (const c of chans) {
+      const k = channelState(c);
+      const abn = STATES[k].rank >= STATES.latched.rank;
+      html.push(`<a class="ch ${abn ? "abn" : ""} ${STATES[k].cls}" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${esc(c.id)}" data-state="${k}" title="${esc(c.description)} — ${STATES[k].word}"${c.id === cur ? ' aria-current="page"' : ""}>${glyph(k)}<span>${esc(c.id)}</span><span class="v">${c.latest ? fmtVal(c.latest.overall) : STATES[k].word.toLowerCase()}</span></a>`);
+    }
+  }
+  const s = html.join("");
+  if (s !== sideKey) {
+    el.innerHTML = s;
+    sideKey = s;
+  }
+}
+
+export function groupByMachine(chans) {
+  const m = new Map();
+  for (const c of chans) {
+    const k = c.machine || "(no machine)";
+    if (!m.has(k)) m.set(k, []);
+    m.get(k).push(c);
+  }
+  return m;
+}
+
+// --- router ------------------------------------------------------------------------------
+let view = null;
+function currentChannel() {
+  const m = /^#\/channel\/(.+)$/.exec(location.hash);
+  return m ? decodeURIComponent(m[1]) : null;
+}
+
+function route() {
+  view?.unmount?.();
+  const main = document.getElementById("main");
+  main.innerHTML = "";
+  const ch = currentChannel();
+  let which = "plant";
+  if (ch) {
+    which = "channel";
+    view = channel.mount(main, ctx, ch);
+  } else if (location.hash.startsWith("#/events")) {
+    which = "events";
+    view = eventsView.mount(main, ctx);
+  } else {
+    view = overview.mount(main, ctx);
+  }
+  for (const a of document.querySelectorAll("[data-nav]")) {
+    if (a.dataset.nav === which) a.setAttribute("aria-current", "page");
+    else a.removeAttribute("aria-current");
+  }
+  sideKey = "";
+  renderSide();
+}
+
+async function probeEvents() {
+  try {
+    await getJSON(`${API}/events?limit=1`);
+    features.events = true;
+  } catch (e) {
+    if (isMissingRoute(e)) features.events = false;
+  }
+  document.getElementById("nav-events").hidden = !(features.events || features.alarms);
+  app.dispatchEvent(new CustomEvent("features"));
+}
+
+function init() {
+  loadPalette();
+  setupAck(ctx);
+  setupEvidence(ctx);
+  setupFilter(ctx);
+  for (const d of document.querySelectorAll("dialog")) {
+    d.addEventListener("click", (e) => {
+      if (e.target.closest("[data-close]")) d.close();
+    });
+  }
+  window.addEventListener("hashchange", route);
+  route();
+  live.start();
+  probeEvents();
+  setInterval(() => app.dispatchEvent(new CustomEvent("tick")), 1000);
+  window.quaver = { live, store, version: 1 }; // for people poking around in devtools
+}
+
+init();

@@ -1,0 +1,250 @@
+// The plant view: every channel grouped by machine, each with its state (word + shape),
+// overall value, a short history and its main bands; active alarms and recent events beside.
+
+import { API, features, getJSON } from "./api.js";
+import { esc, fmtAge, fmtHz, fmtVal, unitLabel } from "./fmt.js";
+import { STATES, badge, glyph } from "./states.js";
+import { BandBars, bandRows, topBands } from "./bars.js";
+import { Surface, pal } from "./plot.js";
+import { alarmListHtml, eventHeadHtml, eventRowHtml } from "./alarms.js";
+import { groupByMachine } from "./main.js";
+
+const SPARK_MS = 10 * 60e3;
+
+class Spark {
+  constructor(canvas, get) {
+    this.get = get;
+    this.surface = new Surface(canvas, (ctx, w, h) => this._draw(ctx, w, h));
+  }
+  _draw(ctx, w, h) {
+    const { pts, alert, danger, stale } = this.get();
+    ctx.fillStyle = pal.panel;
+    ctx.fillRect(0, 0, w, h);
+    ctx.fillStyle = pal.plot;
+    ctx.fillRect(0, 0, w, h);
+    if (pts.length < 2) return;
+    const t1 = pts[pts.length - 1][0], t0 = t1 - SPARK_MS;
+    let mx = 0;
+    for (const p of pts) if (p[0] >= t0) mx = Math.max(mx, p[1]);
+    if (danger > 0 && danger < mx * 2) mx = Math.max(mx, danger);
+    mx = mx * 1.1 || 1;
+    const X = (t) => ((t - t0) / SPARK_MS) * (w - 2) + 1;
+    const Y = (v) => h - 2 - (v / mx) * (h - 4);
+    for (const [lvl, dash] of [[alert, [3, 2]], [danger, []]]) {
+      if (!(lvl > 0) || lvl > mx) continue;
+      ctx.strokeStyle = pal["ink-3"];
+      ctx.setLineDash(dash);
+      ctx.lineWidth = 1;
+      ctx.beginPath();
+      ctx.moveTo(0, Math.round(Y(lvl)) + 0.5);
+      ctx.lineTo(w, Math.round(Y(lvl)) + 0.5);
+      ctx.stroke();
+      ctx.setLineDash([]);
+    }
+    ctx.strokeStyle = stale ? pal["ink-3"] : pal.trace;
+    ctx.lineWidth = 1.2;
+    ctx.beginPath();
+    let started = false;
+    for (const [t, v] of pts) {
+      if (t < t0) continue;
+      if (!started) ctx.moveTo(X(t), Y(v));
+      else ctx.lineTo(X(t), Y(v));
+      started = true;
+    }
+    ctx.stroke();
+  }
+}
+
+export function mount(root, ctx) {
+  root.innerHTML = `
+    <div class="ov" id="ov">
+      <div>
+        <div class="ch-head"><h1>Plant</h1><span class="hint" id="ov-sum"></span></div>
+        <div id="ov-machines"></div>
+      </div>
+      <aside id="ov-side">
+        <section class="panel" id="ov-alarms" hidden><header>Active and latched alarms</header><ul class="alarms" id="ov-alarm-list"></ul></section>
+        <section class="panel" id="ov-events" hidden><header>Recent events <a class="hint" href="#/events">full log</a></header><table class="events"><thead>${eventHeadHtml()}</thead><tbody id="ov-event-rows"></tbody></table></section>
+      </aside>
+    </div>`;
+  const cards = new Map(); // channel → {el, bars, spark, ...}
+  let ids = "";
+  let disposed = false;
+
+  ctx.live.subscribe({ channels: "*", kinds: ["bands", "status", "alarms"], max_rate_hz: 1 });
+
+  function build() {
+    const m = document.getElementById("ov-machines");
+    for (const c of cards.values()) {
+      c.bars.surface.dispose();
+      c.spark.surface.dispose();
+    }
+    cards.clear();
+    const html = [];
+    for (const [machine, chans] of groupByMachine(ctx.store.channels)) {
+      html.push(`<section class="machine" data-machine="${esc(machine)}"><h2><span class="mglyph"></span>${esc(machine)} <span class="count">${chans.length} channel${chans.length > 1 ? "s" : ""}</span></h2><div class="cards">`);
+      for (const c of chans) {
+        html.push(`<a class="card" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${esc(c.id)}" data-state="unknown">
+          <div class="row1"><span class="id">${esc(c.id)}</span><span class="st"></span></div>
+          <div class="desc" title="${esc(c.description)}">${esc(c.description || "")}</div>
+          <div class="headline"><span class="overall" data-role="overall">—</span><span class="unit"></span><span class="what"></span></div>
+          <canvas class="spark" aria-hidden="true"></canvas>
+          <canvas class="minibars" aria-hidden="true"></canvas>
+          <div class="note"></div>
+        </a>`);
+      }
+      html.push(`</div></section>`);
+    }
+    m.innerHTML = html.join("");
+    for (const el of m.querySelectorAll(".card")) {
+      const id = el.dataset.channel;
+      const entry = {
+        el, id, stateKey: "", bars: new BandBars(el.querySelector(".minibars"), { compact: true }),
+        overall: el.querySelector(".overall"), unit: el.querySelector(".unit"), what: el.querySelector(".what"),
+        st: el.querySelector(".st"), note: el.querySelector(".note"),
+      };
+      entry.spark = new Spark(el.querySelector(".spark"), () => {
+        const rule = ctx.levels(id, "overall", "overall");
+        return { pts: ctx.history(id, ctx.FRAME), alert: rule?.alert, danger: rule?.danger, stale: ctx.store.conn === "reconnecting" };
+      });
+      cards.set(id, entry);
+    }
+  }
+
+  function update() {
+    const chans = ctx.store.channels;
+    const key = chans.map((c) => c.id).join(",");
+    if (key !== ids) {
+      ids = key;
+      build();
+    }
+    const stale = ctx.store.conn === "reconnecting";
+    let nAbn = 0;
+    for (const c of chans) {
+      const e = cards.get(c.id);
+      if (!e) continue;
+      const k = ctx.channelState(c);
+      if (STATES[k].rank >= STATES.latched.rank) nAbn++;
+      if (k !== e.stateKey) {
+        e.stateKey = k;
+        e.el.dataset.state = k;
+        e.st.innerHTML = badge(k);
+      }
+      const L = c.latest;
+      e.overall.textContent = L ? fmtVal(L.overall) : "—";
+      if (L) {
+        e.overall.dataset.seq = L.seq;
+        e.overall.dataset.value = L.overall;
+      }
+      e.unit.textContent = L ? unitLabel(L.unit, "rms") : "";
+      e.what.textContent = L ? `overall to ${fmtHz(L.fmax_hz)}` : "";
+      e.el.classList.toggle("stale", stale);
+      const notes = [];
+      if (c.fault) notes.push(`${glyph("fault", 12)} ${esc(c.fault)}`);
+      if (c.status === "no-data") notes.push(c.counters?.samples ? "no samples arriving" : "no samples yet");
+      const al = ctx.alarmsFor(c.id).filter((a) => a.state !== "normal" || a.latched);
+      if (al.length) notes.push(al.map((a) => `${a.kind === "overall" ? "overall" : esc(a.name)} ${esc(a.state)}${a.acked ? " (ack)" : ""}`).join(", "));
+      const nh = notes.join(" · ");
+      if (e.note.innerHTML !== nh) e.note.innerHTML = nh;
+      const { named } = bandRows(ctx.levels, c.id, ctx.store.bands.get(c.id));
+      e.bars.setStale(stale);
+      e.bars.setRows(topBands(named, 3), ctx.store.bands.get(c.id)?.unit || "");
+      e.spark.surface.invalidate();
+    }
+    for (const sec of document.querySelectorAll(".machine")) {
+      let worst = "ok";
+      for (const card of sec.querySelectorAll(".card")) {
+        const k = card.dataset.state;
+        if ((STATES[k]?.rank ?? -1) > STATES[worst].rank) worst = k;
+      }
+      const g = sec.querySelector(".mglyph");
+      const gh = `<span class="${STATES[worst].cls}" title="worst state: ${STATES[worst].word}">${glyph(worst)}</span>`;
+      if (g.innerHTML !== gh) g.innerHTML = gh;
+    }
+    const machines = groupByMachine(chans).size;
+    document.getElementById("ov-sum").textContent = chans.length
+      ? `${chans.length} channels on ${machines} machine${machines > 1 ? "s" : ""} · ${nAbn ? `${nAbn} need${nAbn > 1 ? "" : "s"} attention` : "all normal"}`
+      : "waiting for the service…";
+  }
+
+  function renderAlarms() {
+    const al = ctx.store.alarms;
+    const box = document.getElementById("ov-alarms");
+    box.hidden = al === null;
+    if (al !== null) {
+      const h = alarmListHtml(al);
+      const ul = document.getElementById("ov-alarm-list");
+      if (ul.dataset.h !== h) {
+        ul.innerHTML = h;
+        ul.dataset.h = h;
+      }
+    }
+    document.getElementById("ov").classList.toggle("no-alarms", al === null && features.events !== true);
+  }
+
+  let evBusy = false;
+  async function loadEvents() {
+    if (features.events !== true || evBusy || disposed) {
+      document.getElementById("ov-events").hidden = features.events !== true;
+      return;
+    }
+    evBusy = true;
+    try {
+      const j = await getJSON(`${API}/events?limit=12`);
+      const rows = (j.events || []).map((ev) => eventRowHtml(ev)).join("") || `<tr><td colspan="7" class="empty">No events yet.</td></tr>`;
+      const tb = document.getElementById("ov-event-rows");
+      if (tb && tb.dataset.h !== rows) {
+        tb.innerHTML = rows;
+        tb.dataset.h = rows;
+      }
+      document.getElementById("ov-events").hidden = false;
+    } catch {
+      /* keep what is shown */
+    } finally {
+      evBusy = false;
+    }
+    renderAlarms();
+  }
+
+  const on = {
+    channels: () => update(),
+    alarms: () => {
+      renderAlarms();
+      update();
+    },
+    bands: () => {
+      if (!pendingBands) {
+        pendingBands = true;
+        requestAnimationFrame(() => {
+          pendingBands = false;
+          update();
+        });
+      }
+    },
+    conn: () => update(),
+    tick: (() => {
+      let n = 0;
+      return () => {
+        if (n++ % 5 === 0) loadEvents();
+      };
+    })(),
+    "alarm-event": () => loadEvents(),
+    features: () => loadEvents(),
+  };
+  let pendingBands = false;
+  for (const [k, f] of Object.entries(on)) ctx.app.addEventListener(k, f);
+  update();
+  renderAlarms();
+  loadEvents();
+  void fmtAge;
+  return {
+    unmount() {
+      disposed = true;
+      for (const [k, f] of Object.entries(on)) ctx.app.removeEventListener(k, f);
+      for (const c of cards.values()) {
+        c.bars.surface.dispose();
+        c.spark.surface.dispose();
+      }
+    },
+  };
+}

@@ -1,0 +1,146 @@
+// Canvas plumbing shared by the plots: device-pixel sizing, redraw on animation frames,
+// scales and tick choice, the palette read from CSS. No data, no network.
+
+/** Colours and fonts, read once from CSS custom properties so app.css stays the one palette. */
+export const pal = {};
+export function loadPalette() {
+  const cs = getComputedStyle(document.documentElement);
+  for (const k of ["bg", "panel", "plot", "grid", "grid-2", "axis", "ink", "ink-2", "ink-3", "trace", "trace-2", "region",
+    "alert", "alert-ink", "danger", "danger-ink", "fault", "mark", "select"]) {
+    pal[k] = cs.getPropertyValue(`--${k}`).trim() || "#888";
+  }
+  pal.font = cs.getPropertyValue("--font-ui").trim() || "system-ui, sans-serif";
+  pal.mono = cs.getPropertyValue("--font-num").trim() || pal.font;
+}
+
+/**
+ * Keep a canvas sized to its CSS box in device pixels and redraw on animation frames only.
+ * `draw(ctx, w, h)` gets a context scaled to CSS pixels. Call `invalidate()` after a change.
+ */
+export class Surface {
+  constructor(canvas, draw) {
+    this.canvas = canvas;
+    this.ctx = canvas.getContext("2d", { alpha: false });
+    this.drawFn = draw;
+    this.w = 0;
+    this.h = 0;
+    this.dpr = 1;
+    this._pending = false;
+    this.onResize = null;
+    this._ro = new ResizeObserver((entries) => {
+      const r = entries[0].contentRect;
+      this._resize(r.width, r.height);
+    });
+    this._ro.observe(canvas);
+  }
+
+  _resize(w, h) {
+    const dpr = window.devicePixelRatio || 1;
+    w = Math.max(1, Math.floor(w));
+    h = Math.max(1, Math.floor(h));
+    if (w === this.w && h === this.h && dpr === this.dpr) return;
+    this.w = w;
+    this.h = h;
+    this.dpr = dpr;
+    this.canvas.width = Math.round(w * dpr);
+    this.canvas.height = Math.round(h * dpr);
+    this.onResize?.(w, h);
+    this.invalidate();
+  }
+
+  invalidate() {
+    if (this._pending) return;
+    this._pending = true;
+    requestAnimationFrame(() => {
+      this._pending = false;
+      if (!this.w || !this.h || !this.canvas.isConnected) return;
+      this.ctx.setTransform(this.dpr, 0, 0, this.dpr, 0, 0);
+      this.drawFn(this.ctx, this.w, this.h);
+    });
+  }
+
+  dispose() {
+    this._ro.disconnect();
+  }
+}
+
+/** Linear or logarithmic map from a value range [lo, hi] to a pixel range [p0, p1]. */
+export class Scale {
+  constructor(log = false) {
+    this.log = log;
+    this.lo = 0;
+    this.hi = 1;
+    this.p0 = 0;
+    this.p1 = 1;
+  }
+  set(lo, hi, p0, p1) {
+    this.lo = lo;
+    this.hi = hi;
+    this.p0 = p0;
+    this.p1 = p1;
+    this._a = this.log ? Math.log10(lo) : lo;
+    this._k = (p1 - p0) / ((this.log ? Math.log10(hi) : hi) - this._a);
+    return this;
+  }
+  px(v) {
+    return this.p0 + ((this.log ? Math.log10(v) : v) - this._a) * this._k;
+  }
+  val(p) {
+    const t = this._a + (p - this.p0) / this._k;
+    return this.log ? 10 ** t : t;
+  }
+}
+
+/** "Nice" linear ticks covering [lo, hi], about `n` of them (steps 1, 2, 2.5, 5 × 10^k). */
+export function linTicks(lo, hi, n = 6) {
+  const span = hi - lo;
+  if (!(span > 0)) return [lo];
+  const raw = span / Math.max(1, n);
+  const mag = 10 ** Math.floor(Math.log10(raw));
+  const step = [1, 2, 2.5, 5, 10].map((m) => m * mag).find((s) => s >= raw) ?? 10 * mag;
+  const out = [];
+  for (let v = Math.ceil(lo / step - 1e-9) * step; v <= hi + step * 1e-9; v += step) out.push(+v.toPrecision(12));
+  return out;
+}
+
+/** Log ticks on [lo, hi]: decades always; 2 and 5 between them when `px` per decade allows. */
+export function logTicks(lo, hi, pxPerDecade = 200) {
+  const major = [];
+  const minor = [];
+  const mults = pxPerDecade > 240 ? [2, 3, 5] : pxPerDecade > 90 ? [2, 5] : [];
+  for (let e = Math.floor(Math.log10(lo)); e <= Math.ceil(Math.log10(hi)); e++) {
+    const d = 10 ** e;
+    if (d >= lo * (1 - 1e-9) && d <= hi * (1 + 1e-9)) major.push(+d.toPrecision(12));
+    for (const m of [2, 3, 4, 5, 6, 7, 8, 9]) {
+      const v = +(m * d).toPrecision(12);
+      if (v < lo || v > hi) continue;
+      if (mults.includes(m)) major.push(v);
+      else minor.push(v);
+    }
+  }
+  return { major: major.sort((a, b) => a - b), minor };
+}
+
+/** Round `v` up to a nice number (1, 2, 2.5, 5 × 10^k). */
+export function niceCeil(v) {
+  if (!(v > 0)) return 1;
+  const mag = 10 ** Math.floor(Math.log10(v));
+  for (const m of [1, 1.2, 1.5, 2, 2.5, 3, 4, 5, 6, 8, 10]) if (m * mag >= v * (1 - 1e-12)) return m * mag;
+  return 10 * mag;
+}
+
+/** Draw text with a plate behind it (for labels over traces). */
+export function plateText(ctx, text, x, y, { align = "left", base = "middle", fg, bg, pad = 3 } = {}) {
+  ctx.textAlign = align;
+  ctx.textBaseline = base;
+  const m = ctx.measureText(text);
+  const w = m.width + 2 * pad;
+  const h = 15;
+  let x0 = align === "left" ? x - pad : align === "right" ? x - m.width - pad : x - w / 2;
+  let y0 = base === "middle" ? y - h / 2 : base === "top" ? y - 2 : y - h + 2;
+  ctx.fillStyle = bg;
+  ctx.fillRect(x0, y0, w, h);
+  ctx.fillStyle = fg;
+  ctx.fillText(text, x, y);
+  return { x0, y0, w, h };
+}

@@ -1,0 +1,687 @@
+// The spectrum plot: one averaged spectrum (plus an optional second one for comparison)
+// drawn min/max per pixel column, with band regions and their levels, order and bearing
+// markers, labelled peaks, a hover read-out and zoom/pan by mouse and keyboard.
+// Gets data from its caller; knows nothing about the network.
+
+import { fmtHz, fmtVal, tickHz, unitLabel, convertFactor } from "./fmt.js";
+import { Scale, Surface, linTicks, logTicks, niceCeil, pal, plateText } from "./plot.js";
+
+export const MARGIN = { l: 58, r: 14, t: 24, b: 30 };
+const LOG_DECADES = 4;
+const MAX_PEAK_LABELS = 6;
+const MAX_HARMONICS = 10;
+const WIDE_BAND = 0.12; // a band wider than this share of the view is drawn as a bracket, not a fill
+
+/** Bins of one spectrum in [qa, qb] (inclusive) whose frequencies fall in [fa, fb). */
+function binRange(f0, df, n, fa, fb) {
+  let qa = Math.ceil((fa - f0) / df - 1e-9);
+  let qb = Math.ceil((fb - f0) / df - 1e-9) - 1;
+  if (qa < 0) qa = 0;
+  if (qb > n - 1) qb = n - 1;
+  return [qa, qb];
+}
+
+/**
+ * Column extremes of `values` for pixel columns 0…W−1 under x scale `xs` (frequency → px).
+ * Returns {x: Float32Array, lo, hi, count} with one entry per column that holds a bin
+ * (single-bin columns are placed at the bin's own x). Cost O(bins in view + W).
+ */
+export function columnExtremes(values, f0, df, xs, W) {
+  const n = values.length;
+  const x = new Float32Array(W);
+  const lo = new Float32Array(W);
+  const hi = new Float32Array(W);
+  let c = 0;
+  for (let p = 0; p < W; p++) {
+    const fa = xs.val(xs.p0 + p);
+    const fb = xs.val(xs.p0 + p + 1);
+    const [qa, qb] = binRange(f0, df, n, fa, fb);
+    if (qb < qa) continue;
+    let mn = Infinity;
+    let mx = -Infinity;
+    for (let q = qa; q <= qb; q++) {
+      const v = values[q];
+      if (v < mn) mn = v;
+      if (v > mx) mx = v;
+    }
+    if (!(mx >= mn)) continue; // all NaN
+    x[c] = qa === qb ? xs.px(f0 + qa * df) : xs.p0 + p + 0.5;
+    lo[c] = mn;
+    hi[c] = mx;
+    c++;
+  }
+  return { x, lo, hi, count: c };
+}
+
+export class SpectrumPlot {
+  /**
+   * @param canvas  the <canvas> to draw in (focusable for keyboard use)
+   * @param opts    {onView(view), onHover(info|null), onPick({q, f})}
+   */
+  constructor(canvas, opts = {}) {
+    this.canvas = canvas;
+    this.opts = opts;
+    this.data = null; // {f0, df, values, unit, amplitude, t_ns}
+    this.overlay = null; // {f0, df, values, label}
+    this.logAmp = true;
+    this.logFreq = false;
+    this.view = null; // {lo, hi} Hz
+    this.decades = LOG_DECADES;
+    this.yGain = 1; // manual y zoom for linear amplitude
+    this.top = null; // auto top of the y axis, held with hysteresis
+    this._lowSince = 0;
+    this.bands = []; // [{name, lo_hz, hi_hz, value, unit, alert, danger, state}]
+    this.speedHz = null;
+    this.bearing = []; // [{name, f}]
+    this.show = { bands: true, harmonics: true, bearing: true, peaks: true };
+    this.hover = null; // {x, y}
+    this.selected = null; // bin index
+    this.stale = "";
+    this.xs = new Scale(false);
+    this.ys = new Scale(true);
+    this.surface = new Surface(canvas, (ctx, w, h) => this._draw(ctx, w, h));
+    this._bind();
+  }
+
+  // --- inputs -----------------------------------------------------------------------
+  setData(d) {
+    const first = !this.data || this.data.values.length !== d.values.length || this.data.df !== d.df || this.data.unit !== d.unit || this.data.amplitude !== d.amplitude;
+    this.data = d;
+    if (first) {
+      this.top = null;
+      if (!this.view) this.resetView(false);
+      else this._clampView();
+    }
+    this.surface.invalidate();
+  }
+  setOverlay(o) {
+    this.overlay = o;
+    this.surface.invalidate();
+  }
+  setBands(bands) {
+    this.bands = bands || [];
+    this.surface.invalidate();
+  }
+  setMarkers({ speedHz, bearing }) {
+    this.speedHz = speedHz > 0 ? speedHz : null;
+    this.bearing = bearing || [];
+    this.surface.invalidate();
+  }
+  setShow(k, on) {
+    this.show[k] = on;
+    this.surface.invalidate();
+  }
+  /** The service's interpolated peaks {peaks: [{frequency_hz, amplitude}], unit, amplitude}. */
+  setServerPeaks(m) {
+    this.serverPeaks = m;
+  }
+  setStale(text) {
+    if (text === this.stale) return;
+    this.stale = text;
+    this.surface.invalidate();
+  }
+  setLogAmp(on) {
+    this.logAmp = on;
+    this.top = null;
+    this.surface.invalidate();
+    this._viewChanged();
+  }
+  setLogFreq(on) {
+    this.logFreq = on;
+    this._clampView();
+    this.surface.invalidate();
+    this._viewChanged();
+  }
+
+  /** Full frequency range of the data: [first line > 0 (log) or f0, last line]. */
+  fullRange() {
+    const d = this.data;
+    if (!d) return [0, 1];
+    const last = d.f0 + (d.values.length - 1) * d.df;
+    const first = this.logFreq ? Math.max(d.df, d.f0, (d.lowcut_hz || 0) * 0.5) : d.f0;
+    return [first, last];
+  }
+
+  resetView(notify = true) {
+    const [a, b] = this.fullRange();
+    this.view = { lo: a, hi: b };
+    this.decades = LOG_DECADES;
+    this.yGain = 1;
+    this.top = null;
+    this.surface.invalidate();
+    if (notify) this._viewChanged();
+  }
+
+  _clampView() {
+    if (!this.data || !this.view) return;
+    const [a, b] = this.fullRange();
+    let { lo, hi } = this.view;
+    const minSpan = 8 * this.data.df;
+    if (hi - lo < minSpan) hi = lo + minSpan;
+    if (lo < a) [lo, hi] = [a, Math.min(b, hi + (a - lo))];
+    if (hi > b) [lo, hi] = [Math.max(a, lo - (hi - b)), b];
+    if (this.logFreq && lo <= 0) lo = a;
+    this.view = { lo, hi };
+  }
+
+  _viewChanged() {
+    this.opts.onView?.({ ...this.view, logFreq: this.logFreq, plotLeft: MARGIN.l, plotRight: MARGIN.r, yTop: this.top, decades: this.decades, logAmp: this.logAmp });
+  }
+
+  /** Zoom the x axis by `k` (<1 = in) about frequency `f`. */
+  zoom(k, f) {
+    if (!this.view || !this.data) return;
+    const { lo, hi } = this.view;
+    if (f === undefined) f = this.logFreq ? Math.sqrt(lo * hi) : (lo + hi) / 2;
+    if (this.logFreq) {
+      const L = Math.log10(f);
+      this.view = { lo: 10 ** (L - (L - Math.log10(lo)) * k), hi: 10 ** (L + (Math.log10(hi) - L) * k) };
+    } else {
+      this.view = { lo: f - (f - lo) * k, hi: f + (hi - f) * k };
+    }
+    this._clampView();
+    this.surface.invalidate();
+    this._viewChanged();
+  }
+
+  /** Pan by a fraction of the visible width (positive = to higher frequency). */
+  pan(frac) {
+    if (!this.view) return;
+    const { lo, hi } = this.view;
+    if (this.logFreq) {
+      const r = (Math.log10(hi) - Math.log10(lo)) * frac;
+      this.view = { lo: lo * 10 ** r, hi: hi * 10 ** r };
+    } else {
+      const d = (hi - lo) * frac;
+      this.view = { lo: lo + d, hi: hi + d };
+    }
+    this._clampView();
+    this.surface.invalidate();
+    this._viewChanged();
+  }
+
+  /** Y zoom: >1 magnifies amplitudes (fewer decades in log, smaller top in linear). */
+  yZoom(k) {
+    if (this.logAmp) this.decades = Math.min(9, Math.max(1, this.decades / k));
+    else this.yGain = Math.min(1000, Math.max(0.01, this.yGain * k));
+    this.surface.invalidate();
+    this._viewChanged();
+  }
+
+  // --- interaction ------------------------------------------------------------------
+  _bind() {
+    const c = this.canvas;
+    let drag = null;
+    c.addEventListener("wheel", (e) => {
+      if (!this.data) return;
+      e.preventDefault();
+      const k = Math.exp(Math.sign(e.deltaY) * Math.min(Math.abs(e.deltaY), 200) * 0.0025);
+      if (e.shiftKey || e.altKey) this.yZoom(1 / k);
+      else this.zoom(k, this.xs.val(e.offsetX));
+    }, { passive: false });
+    c.addEventListener("pointerdown", (e) => {
+      if (e.button !== 0) return;
+      c.setPointerCapture(e.pointerId);
+      drag = { x: e.offsetX, moved: false, view: { ...this.view } };
+    });
+    c.addEventListener("pointermove", (e) => {
+      this.hover = { x: e.offsetX, y: e.offsetY };
+      if (drag && this.data) {
+        const dx = e.offsetX - drag.x;
+        if (Math.abs(dx) > 3) drag.moved = true;
+        if (drag.moved) {
+          this.view = { ...drag.view };
+          this.pan(-dx / Math.max(1, this.xs.p1 - this.xs.p0));
+          c.style.cursor = "grabbing";
+        }
+      }
+      this.surface.invalidate();
+    });
+    c.addEventListener("pointerup", (e) => {
+      if (drag && !drag.moved && this.data) this._pick(e.offsetX);
+      drag = null;
+      c.style.cursor = "";
+    });
+    c.addEventListener("pointerleave", () => {
+      this.hover = null;
+      this.opts.onHover?.(null);
+      this.surface.invalidate();
+    });
+    c.addEventListener("dblclick", () => this.resetView());
+    c.addEventListener("keydown", (e) => {
+      if (e.ctrlKey || e.metaKey || e.altKey) return;
+      const act = {
+        ArrowLeft: () => this.pan(-0.15), ArrowRight: () => this.pan(0.15),
+        ArrowUp: () => this.yZoom(1.25), ArrowDown: () => this.yZoom(0.8),
+        "+": () => this.zoom(0.7), "=": () => this.zoom(0.7), "-": () => this.zoom(1 / 0.7), _: () => this.zoom(1 / 0.7),
+        0: () => this.resetView(), Home: () => this.resetView(),
+      }[e.key];
+      if (act) {
+        e.preventDefault();
+        act();
+      } else {
+        this.opts.onKey?.(e);
+      }
+    });
+  }
+
+  _pick(x) {
+    const hit = this._hit(x);
+    if (!hit) return;
+    this.selected = hit.q;
+    this.opts.onPick?.({ q: hit.q, f: hit.f });
+    this.surface.invalidate();
+  }
+
+  /** The bin under pixel x: the largest in the pixel column when several share it. */
+  _hit(x) {
+    const d = this.data;
+    if (!d || x < this.xs.p0 || x > this.xs.p1) return null;
+    const n = d.values.length;
+    let [qa, qb] = binRange(d.f0, d.df, n, this.xs.val(x - 0.5), this.xs.val(x + 0.5));
+    if (qb < qa) {
+      const q = Math.min(n - 1, Math.max(0, Math.round((this.xs.val(x) - d.f0) / d.df)));
+      qa = qb = q;
+    }
+    let q = qa;
+    for (let i = qa + 1; i <= qb; i++) if (d.values[i] > d.values[q]) q = i;
+    return { q, f: d.f0 + q * d.df, v: d.values[q] };
+  }
+
+  // --- drawing ----------------------------------------------------------------------
+  _yRange(ext) {
+    let mx = 0;
+    for (let i = 0; i < ext.count; i++) if (ext.hi[i] > mx) mx = ext.hi[i];
+    const now = performance.now();
+    // Hold the axis: rise at once, fall only after the peak has stayed low for 3 s.
+    const want = this.logAmp ? 10 ** Math.ceil(Math.log10(mx > 0 ? mx * 1.05 : 1)) : niceCeil(mx * 1.08);
+    if (this.top === null || want > this.top) {
+      this.top = want;
+      this._lowSince = 0;
+    } else if (want < this.top * (this.logAmp ? 0.5 : 0.45)) {
+      if (!this._lowSince) this._lowSince = now;
+      else if (now - this._lowSince > 3000) {
+        this.top = want;
+        this._lowSince = 0;
+      }
+    } else this._lowSince = 0;
+    if (this.logAmp) return [this.top / 10 ** this.decades, this.top];
+    return [0, this.top / this.yGain];
+  }
+
+  _draw(ctx, w, h) {
+    const L = MARGIN.l, R = w - MARGIN.r, T = MARGIN.t, B = h - MARGIN.b;
+    ctx.fillStyle = pal.panel;
+    ctx.fillRect(0, 0, w, h);
+    ctx.fillStyle = pal.plot;
+    ctx.fillRect(L, T, R - L, B - T);
+    ctx.font = `11px ${pal.font}`;
+    const d = this.data;
+    if (!d || !this.view || R - L < 20 || B - T < 20) {
+      ctx.fillStyle = pal["ink-3"];
+      ctx.textAlign = "center";
+      ctx.textBaseline = "middle";
+      ctx.fillText(this.stale || "waiting for the first spectrum…", (L + R) / 2, (T + B) / 2);
+      return;
+    }
+    this.xs = new Scale(this.logFreq).set(this.view.lo, this.view.hi, L, R);
+    const W = Math.floor(R - L);
+    const ext = columnExtremes(d.values, d.f0, d.df, this.xs, W);
+    const [ylo, yhi] = this._yRange(ext);
+    this.ys = new Scale(this.logAmp).set(this.logAmp ? ylo : 0, yhi, B, T);
+    const ys = this.ys, xs = this.xs;
+    const yOf = (v) => {
+      const y = this.logAmp ? (v > 0 ? ys.px(v) : B + 10) : ys.px(v);
+      return y < T - 4 ? T - 4 : y > B + 4 ? B + 4 : y;
+    };
+
+    ctx.save();
+    ctx.beginPath();
+    ctx.rect(L, T - 4, R - L, B - T + 8);
+    ctx.clip();
+    if (this.show.bands) this._drawBands(ctx, T, B, yOf);
+    this._drawGrid(ctx, L, R, T, B);
+    if (this.show.harmonics) this._drawHarmonics(ctx, T, B);
+    this._occupied = [];
+    if (this.show.bearing) this._drawBearing(ctx, T, B);
+    if (this.overlay) {
+      const o = this.overlay;
+      const oe = columnExtremes(o.values, o.f0, o.df, xs, W);
+      this._trace(ctx, oe, yOf, pal["trace-2"], 1.1, [4, 2]);
+    }
+    this._trace(ctx, ext, yOf, this.stale ? pal["ink-3"] : pal.trace, 1.1);
+    this._drawDots(ctx, d, yOf);
+    ctx.restore();
+
+    this._drawAxes(ctx, L, R, T, B);
+    if (this.show.peaks) this._drawPeaks(ctx, d, yOf, L, R, T);
+    this._drawSelected(ctx, d, T, B);
+    this._drawHover(ctx, d, L, R, T, B, yOf);
+    if (this.stale) {
+      ctx.font = `600 12px ${pal.font}`;
+      plateText(ctx, this.stale, R - 6, T + 12, { align: "right", fg: pal.ink, bg: pal.panel });
+    }
+  }
+
+  _trace(ctx, e, yOf, color, width, dash) {
+    if (!e.count) return;
+    ctx.strokeStyle = color;
+    ctx.lineWidth = width;
+    ctx.lineJoin = "round";
+    ctx.setLineDash(dash || []);
+    ctx.beginPath();
+    let prevY = yOf(e.hi[0]);
+    ctx.moveTo(e.x[0], prevY);
+    for (let i = 0; i < e.count; i++) {
+      const a = yOf(e.hi[i]);
+      const b = yOf(e.lo[i]);
+      // Enter each column at the end nearer the previous one, so the line stays continuous.
+      if (Math.abs(prevY - a) < Math.abs(prevY - b)) {
+        ctx.lineTo(e.x[i], a);
+        if (b !== a) ctx.lineTo(e.x[i], b);
+        prevY = b;
+      } else {
+        ctx.lineTo(e.x[i], b);
+        if (b !== a) ctx.lineTo(e.x[i], a);
+        prevY = a;
+      }
+    }
+    ctx.stroke();
+    ctx.setLineDash([]);
+  }
+
+  /** When zoomed in far enough to tell the lines apart, mark each line with a dot. */
+  _drawDots(ctx, d, yOf) {
+    const xs = this.xs;
+    if ((xs.px(this.view.lo + d.df) - xs.px(this.view.lo)) < 7) return;
+    const [qa, qb] = binRange(d.f0, d.df, d.values.length, this.view.lo, this.view.hi);
+    ctx.fillStyle = pal.trace;
+    for (let q = qa; q <= qb; q++) {
+      ctx.beginPath();
+      ctx.arc(xs.px(d.f0 + q * d.df), yOf(d.values[q]), 2, 0, 2 * Math.PI);
+      ctx.fill();
+    }
+  }
+
+  _drawGrid(ctx, L, R, T, B) {
+    const xs = this.xs, ys = this.ys;
+    ctx.lineWidth = 1;
+    const vline = (x, c) => {
+      ctx.strokeStyle = c;
+      ctx.beginPath();
+      ctx.moveTo(Math.round(x) + 0.5, T);
+      ctx.lineTo(Math.round(x) + 0.5, B);
+      ctx.stroke();
+    };
+    const hline = (y, c) => {
+      ctx.strokeStyle = c;
+      ctx.beginPath();
+      ctx.moveTo(L, Math.round(y) + 0.5);
+      ctx.lineTo(R, Math.round(y) + 0.5);
+      ctx.stroke();
+    };
+    this._xt = this.logFreq
+      ? logTicks(this.view.lo, this.view.hi, (R - L) / Math.log10(this.view.hi / this.view.lo))
+      : { major: linTicks(this.view.lo, this.view.hi, Math.max(2, Math.floor((R - L) / 90))), minor: [] };
+    for (const f of this._xt.minor) vline(xs.px(f), pal["grid-2"]);
+    for (const f of this._xt.major) vline(xs.px(f), pal.grid);
+    this._yt = this.logAmp
+      ? logTicks(ys.lo, ys.hi, (B - T) / Math.log10(ys.hi / ys.lo))
+      : { major: linTicks(ys.lo, ys.hi, Math.max(2, Math.floor((B - T) / 45))), minor: [] };
+    if (this.logAmp) this._yt.major = this._yt.major.filter((v) => Math.abs(Math.log10(v) - Math.round(Math.log10(v))) < 1e-9 || (B - T) / this.decades > 110);
+    for (const v of this._yt.minor) if (this.decades <= 3) hline(ys.px(v), pal["grid-2"]);
+    for (const v of this._yt.major) hline(ys.px(v), pal.grid);
+  }
+
+  _drawAxes(ctx, L, R, T, B) {
+    const d = this.data;
+    ctx.strokeStyle = pal.axis;
+    ctx.lineWidth = 1;
+    ctx.strokeRect(L + 0.5, T + 0.5, R - L - 1, B - T - 1);
+    ctx.fillStyle = pal["ink-2"];
+    ctx.font = `11px ${pal.mono}`;
+    ctx.textBaseline = "top";
+    ctx.textAlign = "center";
+    let lastX = -1e9;
+    for (const f of this._xt.major) {
+      const x = this.xs.px(f);
+      const s = tickHz(f);
+      const half = ctx.measureText(s).width / 2 + 4;
+      if (x - half < lastX || x < L - 2 || x > R + 2) continue;
+      ctx.fillText(s, x, B + 5);
+      lastX = x + half;
+    }
+    ctx.textAlign = "right";
+    ctx.textBaseline = "middle";
+    for (const v of this._yt.major) {
+      const y = this.ys.px(v);
+      if (y < T - 1 || y > B + 1) continue;
+      ctx.fillText(fmtVal(v, 2), L - 6, y);
+    }
+    ctx.font = `11px ${pal.font}`;
+    ctx.fillStyle = pal["ink-3"];
+    ctx.textAlign = "right";
+    ctx.textBaseline = "top";
+    ctx.fillText("Hz", L - 6, B + 5);
+    ctx.textAlign = "left";
+    ctx.textBaseline = "top";
+    ctx.fillText(unitLabel(d.unit, d.amplitude) + (this.logAmp ? "  (log)" : ""), 4, 5);
+  }
+
+  _drawBands(ctx, T, B, yOf) {
+    const d = this.data;
+    const xs = this.xs;
+    for (const b of this.bands) {
+      if (!(b.lo_hz < b.hi_hz) || b.hi_hz < this.view.lo || b.lo_hz > this.view.hi) continue;
+      const x0 = Math.max(xs.p0, xs.px(Math.max(b.lo_hz, this.logFreq ? this.view.lo : -Infinity)));
+      const x1 = Math.min(xs.p1, xs.px(b.hi_hz));
+      if (x1 - x0 < 1) continue;
+      const abn = b.state === "danger" || b.state === "alert";
+      const wide = x1 - x0 > (xs.p1 - xs.p0) * WIDE_BAND;
+      ctx.fillStyle = b.state === "danger" ? pal.danger : b.state === "alert" ? pal.alert : pal.region;
+      if (!wide) {
+        ctx.globalAlpha = abn ? 0.16 : 1;
+        ctx.fillRect(x0, T, x1 - x0, B - T);
+        ctx.globalAlpha = 1;
+      } else {
+        // a wide band (e.g. an overall range): a bracket along the top instead of a fill
+        if (!abn) ctx.fillStyle = pal["ink-3"];
+        ctx.fillRect(x0, T, x1 - x0, 2);
+        ctx.fillRect(x0, T, 1.5, 12);
+        ctx.fillRect(x1 - 1.5, T, 1.5, 12);
+      }
+      ctx.fillStyle = b.state === "danger" ? pal["danger-ink"] : b.state === "alert" ? pal["alert-ink"] : pal["ink-3"];
+      ctx.font = `10px ${pal.font}`;
+      ctx.textAlign = "left";
+      ctx.textBaseline = "top";
+      if (x1 - x0 > ctx.measureText(b.name).width + 4) ctx.fillText(b.name, x0 + 3, T + (wide ? 5 : 3));
+      // Levels: a band's RMS reaches its level when one line in the band reaches it, so the
+      // level is drawn across the band in the spectrum's unit (same quantity only).
+      const k = convertFactor(b.unit, d.unit, d.amplitude, "rms");
+      if (k === null) continue;
+      for (const [lvl, dash, wdt, tag] of [[b.alert, [5, 3], 1, "A"], [b.danger, [], 1.6, "D"]]) {
+        if (!(lvl > 0)) continue;
+        const y = yOf(lvl * k);
+        if (y <= T - 4 || y >= B + 4) continue;
+        ctx.strokeStyle = pal.ink;
+        ctx.lineWidth = wdt;
+        ctx.setLineDash(dash);
+        ctx.beginPath();
+        ctx.moveTo(x0, y);
+        ctx.lineTo(x1, y);
+        ctx.stroke();
+        ctx.setLineDash([]);
+        if (x1 - x0 > 12) {
+          ctx.fillStyle = pal.ink;
+          ctx.font = `600 9px ${pal.font}`;
+          ctx.textBaseline = "bottom";
+          ctx.fillText(tag, x0 + 2, y - 1);
+        }
+      }
+    }
+  }
+
+  _vmark(ctx, f, T, B, dash) {
+    const x = this.xs.px(f);
+    if (x < this.xs.p0 || x > this.xs.p1) return null;
+    ctx.strokeStyle = pal.mark;
+    ctx.lineWidth = 1;
+    ctx.setLineDash(dash);
+    ctx.beginPath();
+    ctx.moveTo(Math.round(x) + 0.5, T);
+    ctx.lineTo(Math.round(x) + 0.5, B);
+    ctx.stroke();
+    ctx.setLineDash([]);
+    return x;
+  }
+
+  _drawHarmonics(ctx, T, B) {
+    const f1 = this.speedHz;
+    if (!f1) return;
+    const spacing = this.xs.px(this.view.hi) - this.xs.px(this.view.hi - f1);
+    if (spacing < 4) return;
+    ctx.font = `10px ${pal.font}`;
+    for (let k = 1; k <= MAX_HARMONICS && k * f1 <= this.view.hi; k++) {
+      if (k * f1 < this.view.lo) continue;
+      const x = this._vmark(ctx, k * f1, T, B, [1, 3]);
+      if (x === null) continue;
+      const left = k === 1 ? Infinity : x - this.xs.px((k - 1) * f1);
+      if (k > 1 && left < 22 && k % 2) continue;
+      ctx.fillStyle = pal.mark;
+      ctx.textAlign = "center";
+      ctx.textBaseline = "bottom";
+      ctx.fillText(`${k}X`, x, T - 3);
+    }
+  }
+
+  _drawBearing(ctx, T, B) {
+    ctx.font = `10px ${pal.font}`;
+    let row = 0;
+    for (const t of this.bearing) {
+      if (!(t.f > 0)) continue;
+      const spacing = this.xs.px(this.view.hi) - this.xs.px(this.view.hi - t.f);
+      const maxK = spacing < 14 ? 1 : 5;
+      for (let k = 1; k <= maxK; k++) {
+        const f = k * t.f;
+        if (f < this.view.lo || f > this.view.hi) continue;
+        const x = this._vmark(ctx, f, T + 14, B, [6, 3]);
+        if (x === null) continue;
+        const label = (k > 1 ? `${k}×` : "") + t.name.toUpperCase();
+        const r = plateText(ctx, label, x, T + 15 + 13 * row, { align: "center", base: "top", fg: pal.mark, bg: pal.plot, pad: 2 });
+        this._occupied.push({ x: r.x0 + r.w / 2, y: r.y0 + r.h / 2, w: r.w });
+      }
+      row = (row + 1) % 3;
+    }
+  }
+
+  /** The largest local maxima in view, at least 44 px apart, labelled with f and value. */
+  _drawPeaks(ctx, d, yOf, L, R, T) {
+    const v = d.values;
+    const [qa, qb] = binRange(d.f0, d.df, v.length, this.view.lo, this.view.hi);
+    const cand = [];
+    for (let q = Math.max(1, qa); q <= Math.min(v.length - 2, qb); q++) {
+      if (v[q] > v[q - 1] && v[q] >= v[q + 1] && v[q] > 0) cand.push(q);
+    }
+    cand.sort((a, b) => v[b] - v[a]);
+    const chosen = [];
+    const floor = this.logAmp ? this.ys.lo * 3 : this.ys.hi * 0.04;
+    for (const q of cand) {
+      if (chosen.length >= MAX_PEAK_LABELS || v[q] < floor) break;
+      const x = this.xs.px(d.f0 + q * d.df);
+      if (chosen.every((c) => Math.abs(c.x - x) > 44)) chosen.push({ q, x });
+    }
+    ctx.font = `10.5px ${pal.mono}`;
+    const placed = [...(this._occupied || [])];
+    for (const { q, x } of chosen) {
+      // Interpolated frequency: parabola through the log magnitudes (Gaussian fit).
+      const a = Math.log(v[q - 1] || 1e-30), b = Math.log(v[q]), c = Math.log(v[q + 1] || 1e-30);
+      const den = a - 2 * b + c;
+      const delta = den < 0 ? Math.max(-0.5, Math.min(0.5, (0.5 * (a - c)) / den)) : 0;
+      let f = d.f0 + (q + delta) * d.df;
+      let amp = v[q];
+      // Prefer the service's interpolated peak when it is this one (same line ±1).
+      const sp = this.serverPeaks;
+      const near = sp?.peaks?.find((p) => Math.abs(p.frequency_hz - (d.f0 + q * d.df)) <= 1.01 * d.df);
+      if (near) {
+        f = near.frequency_hz;
+        if (sp.unit === d.unit && sp.amplitude === d.amplitude) amp = near.amplitude;
+      }
+      const y = yOf(v[q]);
+      ctx.fillStyle = pal.ink;
+      ctx.beginPath();
+      ctx.moveTo(x, y - 3);
+      ctx.lineTo(x - 4, y - 10);
+      ctx.lineTo(x + 4, y - 10);
+      ctx.closePath();
+      ctx.fill();
+      const ord = this.speedHz && f / this.speedHz < 40 ? ` ${(f / this.speedHz).toFixed(2)}X` : "";
+      const text = `${fmtHz(f, false)}${ord} · ${fmtVal(amp)}`;
+      const tw = ctx.measureText(text).width + 6;
+      let ty = Math.max(T + 8, y - 18);
+      let tx = Math.min(R - tw / 2 - 2, Math.max(L + tw / 2 + 2, x));
+      for (let tries = 0; tries < 6 && placed.some((p) => Math.abs(p.x - tx) < (p.w + tw) / 2 && Math.abs(p.y - ty) < 15); tries++) ty += 15;
+      placed.push({ x: tx, y: ty, w: tw });
+      plateText(ctx, text, tx, ty, { align: "center", fg: pal.ink, bg: pal.plot, pad: 3 });
+    }
+    this.peaks = chosen.map(({ q }) => ({ q, f: d.f0 + q * d.df, v: v[q] }));
+  }
+
+  _drawSelected(ctx, d, T, B) {
+    if (this.selected === null || this.selected >= d.values.length) return;
+    const x = this.xs.px(d.f0 + this.selected * d.df);
+    if (x < this.xs.p0 || x > this.xs.p1) return;
+    ctx.fillStyle = pal.select;
+    ctx.beginPath();
+    ctx.moveTo(x, B);
+    ctx.lineTo(x - 5, B + 7);
+    ctx.lineTo(x + 5, B + 7);
+    ctx.closePath();
+    ctx.fill();
+  }
+
+  _drawHover(ctx, d, L, R, T, B, yOf) {
+    if (!this.hover) return;
+    const hit = this._hit(this.hover.x);
+    if (!hit) {
+      this.opts.onHover?.(null);
+      return;
+    }
+    const x = this.xs.px(hit.f);
+    const y = yOf(hit.v);
+    ctx.strokeStyle = pal.ink;
+    ctx.lineWidth = 1;
+    ctx.setLineDash([2, 2]);
+    ctx.beginPath();
+    ctx.moveTo(Math.round(x) + 0.5, T);
+    ctx.lineTo(Math.round(x) + 0.5, B);
+    ctx.stroke();
+    ctx.setLineDash([]);
+    ctx.beginPath();
+    ctx.arc(x, y, 3.5, 0, 2 * Math.PI);
+    ctx.stroke();
+    const info = {
+      f: hit.f, q: hit.q, v: hit.v, unit: d.unit, amplitude: d.amplitude,
+      order: this.speedHz ? hit.f / this.speedHz : null,
+      then: this.overlay ? this.overlay.values[Math.round((hit.f - this.overlay.f0) / this.overlay.df)] : undefined,
+    };
+    const lines = [`${fmtHz(hit.f)}  (line ${hit.q})`];
+    if (info.order !== null) lines.push(`order ${info.order.toFixed(2)}X`);
+    lines.push(`${fmtVal(hit.v)} ${unitLabel(d.unit, d.amplitude)}`);
+    if (info.then !== undefined) lines.push(`${this.overlay.label || "other"} ${fmtVal(info.then)}`);
+    ctx.font = `11px ${pal.mono}`;
+    const tw = Math.max(...lines.map((s) => ctx.measureText(s).width)) + 12;
+    const th = lines.length * 15 + 8;
+    let bx = x + 12;
+    if (bx + tw > R) bx = x - 12 - tw;
+    const by = Math.max(T + 2, Math.min(B - th - 2, this.hover.y - th - 8));
+    ctx.fillStyle = pal.panel;
+    ctx.strokeStyle = pal.axis;
+    ctx.fillRect(bx, by, tw, th);
+    ctx.strokeRect(bx + 0.5, by + 0.5, tw - 1, th - 1);
+    ctx.fillStyle = pal.ink;
+    ctx.textAlign = "left";
+    ctx.textBaseline = "top";
+    lines.forEach((s, i) => ctx.fillText(s, bx + 6, by + 5 + i * 15));
+    this.opts.onHover?.(info);
+  }
+}
