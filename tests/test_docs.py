@@ -83,8 +83,11 @@ def code_spans(text: str) -> list[str]:
 def lines_in_context(text: str) -> Iterator[tuple[str, str]]:
     """(line, context) pairs: the context is the line with its enclosing headings."""
     headings: dict[int, str] = {}
+    inside = False
     for line in text.splitlines():
-        m = re.match(r"^(#{1,6})\s+(.*)$", line)
+        if FENCE.match(line.strip()):
+            inside = not inside
+        m = None if inside else re.match(r"^(#{1,6})\s+(.*)$", line)
         if m:
             level = len(m.group(1))
             headings = {k: v for k, v in headings.items() if k < level}
@@ -337,6 +340,9 @@ def test_made_up_cli_option_is_reported():
     # under a heading that names the subcommand, the short option is enough
     text += "\n\n### `quaver frob`\n\n| `-z N` | how much |\n"
     assert missing_cli(text, ap) == []
+    # a shell comment in a fenced block is not a heading
+    fenced = "## `quaver other`\n\n```sh\n# quaver frob is run like this\n-z 3\n```\n"
+    assert "quaver frob -z/--zz-made-up" in missing_cli(fenced, ap)
     # `quaver frobnicate` is not `quaver frob`
     assert "quaver frob" in missing_cli("`quaver frobnicate`", ap)
 
