@@ -36,6 +36,7 @@ from .types import (
     InputUnit,
     LinearEnd,
     OutputUnit,
+    WindowName,
     check_choice,
 )
 from .windows import DEFAULT_KAISER_BETA, check_window
@@ -69,7 +70,9 @@ class ToneDef:
         if self.hz is not None:
             return float(self.hz)
         if speed_hz is None or not speed_hz > 0:
-            raise ValueError(f"tone {self.name!r} is in orders but the channel has no running speed")
+            raise ValueError(
+                f"tone {self.name!r} is in orders but the channel has no running speed"
+            )
         return float(self.order) * speed_hz  # type: ignore[arg-type]
 
 
@@ -83,7 +86,7 @@ class AnalysisSpec:
     """
 
     grid: FrameGrid
-    window: str = "hann"
+    window: WindowName = "hann"
     beta: float = DEFAULT_KAISER_BETA
     averaging: AveragingMode = "exponential"
     averages: float = 8
@@ -137,8 +140,12 @@ class _EdgePlan:
         empty[:, :-1] = np.diff(starts, axis=1) == 0
         offset = q * np.arange(c_count)[:, None]
         return cls(
-            starts=(starts + offset).ravel(), empty=empty, row=np.arange(c_count)[:, None],
-            unsort=np.argsort(order, axis=1), flat_i=i + offset, frac=pos - i,
+            starts=(starts + offset).ravel(),
+            empty=empty,
+            row=np.arange(c_count)[:, None],
+            unsort=np.argsort(order, axis=1),
+            flat_i=i + offset,
+            frac=pos - i,
         )
 
 
@@ -176,8 +183,9 @@ class Analyzer:
         self.lowcut_hz = max(spec.lowcut_hz, self.info.mainlobe_halfwidth_bins * self.grid.df_hz)
         # Power spectrum scaling 2/S1² (Heinzel 2002 §9), DC and Nyquist lines not doubled;
         # applied at read-out to the averaged |X|² (see push).
-        self._line_scale = power_spectrum(np.ones(self.grid.bins, np.complex64), self.info.s1,
-                                          self.grid.n).astype(np.float64)[: self.q]
+        self._line_scale = power_spectrum(
+            np.ones(self.grid.bins, np.complex64), self.info.s1, self.grid.n
+        ).astype(np.float64)[: self.q]
         self._peak_hold = spec.averaging == "peak-hold"
         self._power_cache: dict[tuple[str, int], np.ndarray] = {}  # read-outs share one power
         self.avg = Averager(spec.averaging, spec.averages, linear_end=spec.linear_end)
@@ -197,8 +205,11 @@ class Analyzer:
         for c in range(self.channels):
             sc = None if not np.isfinite(s[c]) else float(s[c])
             for b, band in enumerate(self.spec.bands):
-                self._edges[c, b] = (np.nan, np.nan) if (band.basis == "order" and sc is None) \
+                self._edges[c, b] = (
+                    (np.nan, np.nan)
+                    if (band.basis == "order" and sc is None)
                     else band.edges_hz(sc)
+                )
         tone_hz = np.zeros((self.channels, len(self.spec.tones)))
         for c in range(self.channels):
             sc = None if not np.isfinite(s[c]) else float(s[c])
@@ -240,8 +251,12 @@ class Analyzer:
         v = self._views.get(u)
         if v is None:
             wts = unit_power_weights(self.f_hz, self.spec.input_unit, u, lowcut_hz=self.lowcut_hz)
-            tw = unit_power_weights(np.nan_to_num(self.tone_hz, nan=0.0), self.spec.input_unit, u,
-                                    lowcut_hz=self.lowcut_hz)
+            tw = unit_power_weights(
+                np.nan_to_num(self.tone_hz, nan=0.0),
+                self.spec.input_unit,
+                u,
+                lowcut_hz=self.lowcut_hz,
+            )
             v = _Views(u, (wts * self._line_scale).astype(np.float32), tw)
             self._views[u] = v
         return v
@@ -338,7 +353,8 @@ class Analyzer:
         return np.where(np.isnan(self._edges[..., 0]), np.nan, out)
 
     def tones(self, unit: str | None = None, amplitude: str | None = None) -> np.ndarray:
-        """Tracked-tone amplitudes (float64 [C, T]) at their exact frequencies; NaN if unresolved."""
+        """Tracked-tone amplitudes (float64 [C, T]) at their exact frequencies; NaN if unresolved.
+        """
         v = self._view(unit)
         p = self.tone_avg.value
         if p is None or not self.spec.tones:
@@ -358,8 +374,13 @@ class Analyzer:
         # Interpolate on the acceleration spectrum, whose peak shape is exactly the window's,
         # then weight each peak at its interpolated frequency and re-rank in the asked unit.
         acc = find_peaks(
-            self.power("m/s2"), self.grid.df_hz, self.spec.window, self.grid.n,  # type: ignore[arg-type]
-            count=max(4 * k, k + 8), min_hz=self.lowcut_hz, beta=self.spec.beta,
+            self.power("m/s2"),
+            self.grid.df_hz,
+            self.spec.window,
+            self.grid.n,  # type: ignore[arg-type]
+            count=max(4 * k, k + 8),
+            min_hz=self.lowcut_hz,
+            beta=self.spec.beta,
         )
         f = acc.frequency_hz
         wts = unit_power_weights(np.nan_to_num(f, nan=0.0), "m/s2", u, lowcut_hz=self.lowcut_hz)
@@ -367,7 +388,9 @@ class Analyzer:
         order = np.argsort(np.where(np.isnan(power), -np.inf, -power), axis=1, kind="stable")[:, :k]
         take = np.take_along_axis
         amp = amplitude_from_power(take(power, order, 1), amplitude or self.spec.amplitude)  # type: ignore[arg-type]
-        return Peaks(frequency_hz=take(f, order, 1), amplitude_rms=amp, line=take(acc.line, order, 1))
+        return Peaks(
+            frequency_hz=take(f, order, 1), amplitude_rms=amp, line=take(acc.line, order, 1)
+        )
 
     @property
     def unit(self) -> OutputUnit:
@@ -375,4 +398,3 @@ class Analyzer:
 
     def quantity(self, unit: str | None = None) -> str:
         return quantity_of(resolve_unit(unit or self.spec.unit))
-

@@ -42,9 +42,9 @@ class Averager:
 
     :attr:`value` has the trailing shape of the frames; it is float64 for linear averages
     (long sums) and keeps the frames' dtype for exponential and peak hold, whose result
-    is a convex combination or a maximum and so loses nothing to float32 rounding; :attr:`count` is the
-    number of frames in the current average (for exponential: frames since reset, capped
-    at ``averages``).
+    is a convex combination or a maximum and so loses nothing to float32 rounding;
+    :attr:`count` is the number of frames in the current average (for exponential: frames
+    since reset, capped at ``averages``).
     """
 
     def __init__(

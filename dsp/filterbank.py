@@ -27,7 +27,8 @@ from .windows import DEFAULT_KAISER_BETA, WindowInfo, check_window, get_window, 
 
 __all__ = ["FrameBatch", "FrameGrid", "FilterBank", "FMAX_RATIO"]
 
-FMAX_RATIO = 2.56  # fs = 2.56·Fmax and N = 2.56·lines (common practice: leaves room for the anti-alias roll-off)
+# fs = 2.56·Fmax and N = 2.56·lines (common practice: leaves room for the anti-alias roll-off)
+FMAX_RATIO = 2.56
 
 
 @dataclass(frozen=True)
@@ -292,9 +293,7 @@ class FilterBank:
         if x.ndim == 1 and self.channels == 1:
             x = x[None, :]
         if x.ndim != 2 or x.shape[0] != self.channels:
-            raise ValueError(
-                f"block has shape {np.shape(block)}; expected ({self.channels}, n)"
-            )
+            raise ValueError(f"block has shape {np.shape(block)}; expected ({self.channels}, n)")
         if x.dtype != np.float32:
             x = x.astype(np.float32)
         if first_index is not None and first_index != self._next_index:

@@ -7,7 +7,6 @@ from __future__ import annotations
 import asyncio
 import functools
 import logging
-import signal
 import time
 import tomllib
 from collections.abc import Callable
@@ -52,16 +51,24 @@ class Service:
             states = channel_states(cfg, src_cfg.id, ids)
             self.hub.channels.update(states)
             self.hub.sources[src_cfg.id] = source
-            self.pipelines.append(SourcePipeline(
-                source, states, self.on_frames,
-                make_groups=functools.partial(build_groups, cfg, src_cfg.id, ids, states=states),
-                evidence_s=(cfg.service.evidence_before_s, cfg.service.evidence_after_s),
-            ))
+            self.pipelines.append(
+                SourcePipeline(
+                    source,
+                    states,
+                    self.on_frames,
+                    make_groups=functools.partial(
+                        build_groups, cfg, src_cfg.id, ids, states=states
+                    ),
+                    evidence_s=(cfg.service.evidence_before_s, cfg.service.evidence_after_s),
+                )
+            )
         self.alarms = AlarmEngine(rules_from_config(cfg, channels=all_ids))
         max_bytes = None if cfg.service.max_db_mb is None else int(cfg.service.max_db_mb * 2**20)
-        self.store = Store(Path(cfg.service.data_dir) / "quaver.db",
-                           trend_step_s=cfg.service.trend_step_s,
-                           retention=Retention(max_db_bytes=max_bytes))
+        self.store = Store(
+            Path(cfg.service.data_dir) / "quaver.db",
+            trend_step_s=cfg.service.trend_step_s,
+            retention=Retention(max_db_bytes=max_bytes),
+        )
 
     # -- lifecycle ---------------------------------------------------------------------
     async def start(self) -> None:
@@ -101,12 +108,14 @@ class Service:
         await asyncio.to_thread(self.store.close)
 
     def app(self):  # type: ignore[no-untyped-def]
-        return create_app(self.hub, config=self.cfg, service=self,
-                          lifespan_hooks=(self.start, self.stop))
+        return create_app(
+            self.hub, config=self.cfg, service=self, lifespan_hooks=(self.start, self.stop)
+        )
 
     # -- per block ---------------------------------------------------------------------
-    async def on_frames(self, p: SourcePipeline, frames: list[SpectralFrame],
-                        latency_s: float) -> None:
+    async def on_frames(
+        self, p: SourcePipeline, frames: list[SpectralFrame], latency_s: float
+    ) -> None:
         self._store_evidence(p)
         if not frames:
             return
@@ -123,27 +132,40 @@ class Service:
         if events:
             await self._commit_and_announce(p, events)
 
-    async def _commit_and_announce(self, p: SourcePipeline,
-                                   events: list[tuple[AlarmEvent, SpectralFrame]]) -> None:
+    async def _commit_and_announce(
+        self, p: SourcePipeline, events: list[tuple[AlarmEvent, SpectralFrame]]
+    ) -> None:
         evs = [e for e, _ in events]
         try:
             stored = await asyncio.wrap_future(
-                self.store.put_events(evs, alarm_state=self.alarms.snapshot()))
-        except Exception as e:  # the store failing must not stop monitoring
+                self.store.put_events(evs, alarm_state=self.alarms.snapshot())
+            )
+        except Exception as err:  # the store failing must not stop monitoring
             self.store_errors += 1
-            log.error("could not store %d alarm events: %s", len(evs), e)
+            log.error("could not store %d alarm events: %s", len(evs), err)
             stored = evs
         for e, (_, frame) in zip(stored, events, strict=True):
             log.info("alarm event %s: %s", e.id, e.message)
             self.hub.publish_event(e.as_dict())
             if e.raises and e.id is not None:
                 values, unit, amp = spectrum_values(frame)
-                p.request_evidence(e.id, frame.channel, frame.end_index, {
-                    "f0_hz": frame.f0_hz, "df_hz": frame.df_hz, "unit": unit,
-                    "amplitude": amp, "values": values, "t_ns": frame.t_ns,
-                    "channel": frame.channel, "window": frame.window,
-                    "averages": frame.averages, "input_unit": frame.input_unit,
-                })
+                p.request_evidence(
+                    e.id,
+                    frame.channel,
+                    frame.end_index,
+                    {
+                        "f0_hz": frame.f0_hz,
+                        "df_hz": frame.df_hz,
+                        "unit": unit,
+                        "amplitude": amp,
+                        "values": values,
+                        "t_ns": frame.t_ns,
+                        "channel": frame.channel,
+                        "window": frame.window,
+                        "averages": frame.averages,
+                        "input_unit": frame.input_unit,
+                    },
+                )
 
     def _store_evidence(self, p: SourcePipeline, *, force: bool = False) -> None:
         if force and p.requests and p.ring is not None:
@@ -155,7 +177,8 @@ class Service:
     async def acknowledge(self, rule: str, who: str, note: str) -> dict[str, object]:
         ev = self.alarms.ack(rule, who, note, t_ns=time.time_ns())
         stored = await asyncio.wrap_future(
-            self.store.put_events([ev], alarm_state=self.alarms.snapshot()))
+            self.store.put_events([ev], alarm_state=self.alarms.snapshot())
+        )
         d = stored[0].as_dict()
         log.info("alarm %s acknowledged by %s", rule, who)
         self.hub.publish_event(d)
@@ -166,8 +189,12 @@ DEMO_OPERATOR_TOKEN = "quaver-demo-operator"  # matches the hash in examples/dem
 
 
 def demo_config(
-    *, listen: str | None = None, data_dir: str | None = None, speed: float | None = None,
-    fault_start_s: float | None = None, fault_ramp_s: float | None = None,
+    *,
+    listen: str | None = None,
+    data_dir: str | None = None,
+    speed: float | None = None,
+    fault_start_s: float | None = None,
+    fault_ramp_s: float | None = None,
 ) -> Config:
     """The built-in demo: the invented pumping station from ``service/examples/demo.toml``.
 
@@ -181,34 +208,36 @@ def demo_config(
         data.setdefault("service", {})["data_dir"] = data_dir
     for s in data.get("sources", []):
         if s.get("kind") == "simulated":
-            for key, value in (("speed", speed), ("fault_start_s", fault_start_s),
-                               ("fault_ramp_s", fault_ramp_s)):
+            for key, value in (
+                ("speed", speed),
+                ("fault_start_s", fault_start_s),
+                ("fault_ramp_s", fault_ramp_s),
+            ):
                 if value is not None:
                     s[key] = value
     return parse_config(data, source="built-in demo")
 
 
-async def serve(cfg: Config, *, announce: Callable[[str], None] = print,
-                started: asyncio.Event | None = None) -> None:
+async def serve(
+    cfg: Config, *, announce: Callable[[str], None] = print, started: asyncio.Event | None = None
+) -> None:
     """Run the HTTP server and the pipelines until cancelled or signalled."""
     host, port = parse_listen(cfg.service.listen)
     service = Service(cfg)
-    config = uvicorn.Config(service.app(), host=host, port=port, log_level="warning",
-                            access_log=False, lifespan="on")
+    config = uvicorn.Config(
+        service.app(), host=host, port=port, log_level="warning", access_log=False, lifespan="on"
+    )
+    # uvicorn catches SIGINT/SIGTERM, shuts down gracefully (the lifespan stops the
+    # pipelines and closes the store), then re-raises the signal.
     server = uvicorn.Server(config)
-    server.install_signal_handlers = lambda: None  # type: ignore[method-assign]
-    loop = asyncio.get_running_loop()
-    for sig in (signal.SIGINT, signal.SIGTERM):
-        try:
-            loop.add_signal_handler(sig, lambda: setattr(server, "should_exit", True))
-        except (NotImplementedError, RuntimeError):  # not the main thread
-            pass
     task = asyncio.create_task(server.serve())
     while not server.started and not task.done():
         await asyncio.sleep(0.02)
     if server.started:
-        announce(f"quaver: {len(service.hub.channels)} channels; open http://{host}:{port}/ "
-                 f"(API under /api/v1, docs at /docs); Ctrl-C stops")
+        announce(
+            f"quaver: {len(service.hub.channels)} channels; open http://{host}:{port}/ "
+            f"(API under /api/v1, docs at /docs); Ctrl-C stops"
+        )
         if started is not None:
             started.set()
     await task
@@ -216,7 +245,9 @@ async def serve(cfg: Config, *, announce: Callable[[str], None] = print,
 
 def run_service(cfg: Config, *, announce: Callable[[str], None] = print) -> int:
     """Blocking entry point for ``quaver serve`` and ``quaver demo``; returns an exit code."""
-    logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    logging.basicConfig(
+        level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s: %(message)s"
+    )
     try:
         asyncio.run(serve(cfg, announce=announce))
     except KeyboardInterrupt:

@@ -142,8 +142,8 @@ class ServiceSettings(_Model):
         description="HTTP address host:port for REST, WebSocket, /metrics and the dashboard. "
         "A non-loopback host is refused unless [[tokens]] are configured. Env: QUAVER_LISTEN.",
     )
-    trend_step_s: float = Field(
-        10.0, ge=1, le=3600, description="Trend bucket length, s (mean/min/max kept per bucket)."
+    trend_step_s: int = Field(
+        10, ge=1, le=3600, description="Trend bucket length, s (mean/min/max kept per bucket)."
     )
     evidence_before_s: float = Field(
         3.0, ge=0, le=60, description="Waveform kept before an alarm transition, s."
@@ -952,7 +952,9 @@ class _Checker:
                     self.add(f"{w}.danger: {a.danger:g} must be above alert {a.alert:g}")
             else:
                 if a.alert is not None or a.danger is not None:
-                    self.add(f"{w}: give either absolute alert/danger or baseline_learn_s, not both")
+                    self.add(
+                        f"{w}: give either absolute alert/danger or baseline_learn_s, not both"
+                    )
                 factors = (a.alert_factor, a.danger_factor)
                 dbs = (a.alert_db, a.danger_db)
                 if not (all(v is not None for v in factors) ^ all(v is not None for v in dbs)):

@@ -23,11 +23,18 @@ class Subscriber:
     are dropped and counted too — a client that far behind should re-read /alarms).
     """
 
-    def __init__(self, channels: frozenset[str] | None = None, max_events: int = 256,
-                 kinds: frozenset[str] | None = None) -> None:
+    def __init__(
+        self,
+        channels: frozenset[str] | None = None,
+        max_events: int = 256,
+        kinds: frozenset[str] | None = None,
+    ) -> None:
         self.channels = channels  # None = every channel
-        self.kinds = kinds if kinds is not None else frozenset(
-            {"spectrum", "bands", "tones", "alarms", "status"})
+        self.kinds = (
+            kinds
+            if kinds is not None
+            else frozenset({"spectrum", "bands", "tones", "alarms", "status"})
+        )
         self.max_events = max_events
         self.frames: dict[str, SpectralFrame] = {}
         self.events: collections.deque[dict[str, object]] = collections.deque()

@@ -63,14 +63,24 @@ class ChannelState:
 
     def as_dict(self) -> dict[str, object]:
         return {
-            "id": self.id, "source": self.source_id, "machine": self.machine,
-            "description": self.description, "sample_rate_hz": self.fs,
-            "input_unit": self.input_unit, "sensitivity": self.sensitivity,
-            "speed_rpm": self.speed_rpm, "status": self.status, "fault": self.fault,
+            "id": self.id,
+            "source": self.source_id,
+            "machine": self.machine,
+            "description": self.description,
+            "sample_rate_hz": self.fs,
+            "input_unit": self.input_unit,
+            "sensitivity": self.sensitivity,
+            "speed_rpm": self.speed_rpm,
+            "status": self.status,
+            "fault": self.fault,
             "counters": {
-                "samples": self.samples, "gaps": self.gaps, "frames": self.frames,
-                "nonfinite_blocks": self.nonfinite_blocks, "flat_blocks": self.flat_blocks,
-                "clipped_blocks": self.clipped_blocks, "sensor_faults": self.sensor_faults,
+                "samples": self.samples,
+                "gaps": self.gaps,
+                "frames": self.frames,
+                "nonfinite_blocks": self.nonfinite_blocks,
+                "flat_blocks": self.flat_blocks,
+                "clipped_blocks": self.clipped_blocks,
+                "sensor_faults": self.sensor_faults,
             },
             "notes": list(self.notes),
         }
@@ -187,8 +197,12 @@ class SourcePipeline:
         self.blocks += 1
         if block.fs != self.fs:  # first block, or the producer changed its rate
             if self.fs is not None:
-                log.warning("source %s: sample rate %g → %g Hz; analysis restarts",
-                            block.source_id, self.fs, block.fs)
+                log.warning(
+                    "source %s: sample rate %g → %g Hz; analysis restarts",
+                    block.source_id,
+                    self.fs,
+                    block.fs,
+                )
             self.groups, self.fs = self.make_groups(block.fs), block.fs
             self.ring = WaveformRing(len(block.channel_ids), block.fs, sum(self.evidence_s) + 1.0)
         states = [self.channels[c] for c in block.channel_ids]
@@ -210,11 +224,16 @@ class SourcePipeline:
             st.last_block_ns = block.t0_ns
             if gap:
                 st.gaps += 1
-            clipped = st.clip_level is not None and bool(
-                np.any(np.abs(x[c]) >= st.clip_level)
+            clipped = st.clip_level is not None and bool(np.any(np.abs(x[c]) >= st.clip_level))
+            reason = (
+                "non-finite samples (NaN/inf)"
+                if not finite[c]
+                else "flat line"
+                if flat[c]
+                else "clipping"
+                if clipped
+                else ""
             )
-            reason = ("non-finite samples (NaN/inf)" if not finite[c] else
-                      "flat line" if flat[c] else "clipping" if clipped else "")
             if reason:
                 st.nonfinite_blocks += not finite[c]
                 st.flat_blocks += bool(flat[c])
@@ -251,13 +270,21 @@ class SourcePipeline:
                 st.status = "ok"
         return frames
 
-    def request_evidence(self, event_id: int, channel: str, center_index: int,
-                         spectrum: dict[str, object]) -> None:
+    def request_evidence(
+        self, event_id: int, channel: str, center_index: int, spectrum: dict[str, object]
+    ) -> None:
         """Ask for the waveform around ``center_index`` (called from the event loop)."""
         fs = self.fs or 0.0
-        self.requests.append(EvidenceRequest(
-            event_id, channel, center_index, int(self.evidence_s[0] * fs),
-            int(self.evidence_s[1] * fs), spectrum))
+        self.requests.append(
+            EvidenceRequest(
+                event_id,
+                channel,
+                center_index,
+                int(self.evidence_s[0] * fs),
+                int(self.evidence_s[1] * fs),
+                spectrum,
+            )
+        )
 
     def complete_all(self) -> None:
         """Complete every pending request with what the ring holds (at shut-down)."""
@@ -272,14 +299,20 @@ class SourcePipeline:
         rows = {c: i for i, c in enumerate(block.channel_ids)}
         for _ in range(len(self.requests)):
             req = self.requests.popleft()
-            if not force and ring.end < req.center_index + req.after and ring.start <= req.center_index:
+            if (
+                not force
+                and ring.end < req.center_index + req.after
+                and ring.start <= req.center_index
+            ):
                 self.requests.append(req)  # not due yet
                 continue
-            wave, first = ring.snippet(rows[req.channel], req.center_index - req.before,
-                                       req.center_index + req.after)
+            wave, first = ring.snippet(
+                rows[req.channel], req.center_index - req.before, req.center_index + req.after
+            )
             t0_ns = int(block.t0_ns + (first - block.first_index) * 1e9 / block.fs)
-            self.ready.append(Evidence(req.event_id, req.channel, req.spectrum, wave,
-                                       block.fs, t0_ns))
+            self.ready.append(
+                Evidence(req.event_id, req.channel, req.spectrum, wave, block.fs, t0_ns)
+            )
 
     def _frames(self, g: ChannelGroup, block: SampleBlock, new: int) -> list[SpectralFrame]:
         an = g.analyzer
@@ -302,34 +335,57 @@ class SourcePipeline:
             if st.status in ("gap", "no-data"):
                 st.status = "ok"
             self.seq += 1
-            out.append(SpectralFrame(
-                channel=cid, profile=g.profile, seq=self.seq, t_ns=t_ns, end_index=end,
-                fs=an.grid.fs,
-                n=an.grid.n, df_hz=an.grid.df_hz, f0_hz=0.0, lines=lines,
-                fmax_hz=an.grid.fmax_hz, window=spec.window, enbw_bins=an.info.enbw_bins,
-                averaging=spec.averaging, averages=an.count, input_unit=spec.input_unit,
-                unit=unit, amplitude=spec.amplitude, lowcut_hz=an.lowcut_hz,
-                power=power_in[c], overall=float(bands[c, -1]),
-                bands=tuple(
-                    BandValue(b.name, float(edges[c, i, 0]), float(edges[c, i, 1]),
-                              float(bands[c, i]))
-                    for i, b in enumerate(g.bands)
-                ),
-                tones=tuple(
-                    ToneValue(t.name, float(tone_hz[c, i]), float(tones[c, i]))
-                    for i, t in enumerate(spec.tones)
-                ),
-                peaks=tuple(
-                    ToneValue("", float(f), float(a))
-                    for f, a in zip(peaks.frequency_hz[c], peaks.amplitude_rms[c], strict=True)
-                    if np.isfinite(f)
-                ),
-            ))
+            out.append(
+                SpectralFrame(
+                    channel=cid,
+                    profile=g.profile,
+                    seq=self.seq,
+                    t_ns=t_ns,
+                    end_index=end,
+                    fs=an.grid.fs,
+                    n=an.grid.n,
+                    df_hz=an.grid.df_hz,
+                    f0_hz=0.0,
+                    lines=lines,
+                    fmax_hz=an.grid.fmax_hz,
+                    window=spec.window,
+                    enbw_bins=an.info.enbw_bins,
+                    averaging=spec.averaging,
+                    averages=an.count,
+                    input_unit=spec.input_unit,
+                    unit=unit,
+                    amplitude=spec.amplitude,
+                    lowcut_hz=an.lowcut_hz,
+                    power=power_in[c],
+                    overall=float(bands[c, -1]),
+                    bands=tuple(
+                        BandValue(
+                            b.name, float(edges[c, i, 0]), float(edges[c, i, 1]), float(bands[c, i])
+                        )
+                        for i, b in enumerate(g.bands)
+                    ),
+                    tones=tuple(
+                        ToneValue(t.name, float(tone_hz[c, i]), float(tones[c, i]))
+                        for i, t in enumerate(spec.tones)
+                    ),
+                    peaks=tuple(
+                        ToneValue("", float(f), float(a))
+                        for f, a in zip(peaks.frequency_hz[c], peaks.amplitude_rms[c], strict=True)
+                        if np.isfinite(f)
+                    ),
+                )
+            )
         return out
 
 
-def build_groups(cfg: Config, source_id: str, channel_ids: Sequence[str], fs: float, *,
-                 states: dict[str, ChannelState]) -> list[ChannelGroup]:
+def build_groups(
+    cfg: Config,
+    source_id: str,
+    channel_ids: Sequence[str],
+    fs: float,
+    *,
+    states: dict[str, ChannelState],
+) -> list[ChannelGroup]:
     """Group a source's channels by identical analysis set-up; one Analyzer per group."""
     keyed: dict[str, list[int]] = {}
     specs: dict[str, tuple[object, tuple[Band, ...], tuple[str, ...]]] = {}
@@ -338,10 +394,13 @@ def build_groups(cfg: Config, source_id: str, channel_ids: Sequence[str], fs: fl
         settings = effective_analysis(cfg, cid)
         bands = tuple(bands_for(cfg, cid))
         tones = tuple(tones_for(cfg, cid))
-        res = analysis_spec(settings, fs, input_unit=ch.input_unit,
-                            bands=bands + (Band(OVERALL, settings.lowcut_hz,
-                                                min(settings.fmax_hz, fs / 2.56)),),
-                            tones=tones)
+        res = analysis_spec(
+            settings,
+            fs,
+            input_unit=ch.input_unit,
+            bands=bands + (Band(OVERALL, settings.lowcut_hz, min(settings.fmax_hz, fs / 2.56)),),
+            tones=tones,
+        )
         key = repr((res.spec, ch.input_unit))
         keyed.setdefault(key, []).append(row)
         specs[key] = (res.spec, bands, res.notes)
@@ -350,24 +409,33 @@ def build_groups(cfg: Config, source_id: str, channel_ids: Sequence[str], fs: fl
     for key, rows in keyed.items():
         spec, bands, _ = specs[key]
         ids = tuple(channel_ids[r] for r in rows)
-        speed = np.array([
-            (channel_settings(cfg, c).speed_rpm or np.nan) / 60.0 for c in ids
-        ])
-        groups.append(ChannelGroup(
-            profile="default", rows=np.array(rows), channel_ids=ids,
-            analyzer=Analyzer(spec, len(ids), speed_hz=speed),  # type: ignore[arg-type]
-            bands=bands,
-        ))
+        speed = np.array([(channel_settings(cfg, c).speed_rpm or np.nan) / 60.0 for c in ids])
+        groups.append(
+            ChannelGroup(
+                profile="default",
+                rows=np.array(rows),
+                channel_ids=ids,
+                analyzer=Analyzer(spec, len(ids), speed_hz=speed),  # type: ignore[arg-type]
+                bands=bands,
+            )
+        )
     return groups
 
 
-def channel_states(cfg: Config, source_id: str, channel_ids: Sequence[str]) -> dict[str, ChannelState]:
+def channel_states(
+    cfg: Config, source_id: str, channel_ids: Sequence[str]
+) -> dict[str, ChannelState]:
     out = {}
     for cid in channel_ids:
         ch = channel_settings(cfg, cid)
         out[cid] = ChannelState(
-            id=cid, source_id=source_id, machine=ch.machine, description=ch.description,
-            input_unit=ch.input_unit, sensitivity=ch.sensitivity, speed_rpm=ch.speed_rpm,
+            id=cid,
+            source_id=source_id,
+            machine=ch.machine,
+            description=ch.description,
+            input_unit=ch.input_unit,
+            sensitivity=ch.sensitivity,
+            speed_rpm=ch.speed_rpm,
             clip_level=ch.clip_level,
         )
     return out

@@ -19,6 +19,7 @@ import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import BinaryIO
 
 import numpy as np
 import scipy.io.wavfile
@@ -303,7 +304,7 @@ def read_recording(
 
 
 def write_wav(
-    path: str | os.PathLike[str], data: np.ndarray, fs: float, fmt: str = "f32le"
+    path: str | os.PathLike[str] | BinaryIO, data: np.ndarray, fs: float, fmt: str = "f32le"
 ) -> None:
     """Write float ``[C, n]`` samples as a WAV file at ``fs`` Hz.
 

@@ -51,8 +51,16 @@ class SourceCounters:
         d: dict[str, object] = {
             k: getattr(self, k)
             for k in (
-                "samples", "blocks", "bytes", "gaps", "malformed", "connections",
-                "disconnects", "partial_frames", "drops", "last_error",
+                "samples",
+                "blocks",
+                "bytes",
+                "gaps",
+                "malformed",
+                "connections",
+                "disconnects",
+                "partial_frames",
+                "drops",
+                "last_error",
             )
         }
         d.update(self.extra)

@@ -6,15 +6,15 @@ from __future__ import annotations
 
 from collections.abc import AsyncIterator, Callable
 from contextlib import asynccontextmanager
+from pathlib import Path
 from typing import Any
 
-from pathlib import Path
-
-import web
 from fastapi import FastAPI, Request
 from fastapi.middleware.cors import CORSMiddleware
 from fastapi.responses import FileResponse, JSONResponse
 from fastapi.staticfiles import StaticFiles
+
+import web
 
 from .. import __version__
 from ..config import Config
@@ -57,9 +57,12 @@ def create_app(
     app.state.alarms = getattr(service, "alarms", None)
     app.state.store = getattr(service, "store", None)
     if config.service.cors_origins:
-        app.add_middleware(CORSMiddleware, allow_origins=config.service.cors_origins,
-                           allow_methods=["GET", "POST"], allow_headers=["Authorization",
-                                                                         "Content-Type"])
+        app.add_middleware(
+            CORSMiddleware,
+            allow_origins=config.service.cors_origins,
+            allow_methods=["GET", "POST"],
+            allow_headers=["Authorization", "Content-Type"],
+        )
     limit = config.service.max_body_bytes
 
     @app.middleware("http")
@@ -70,9 +73,9 @@ def create_app(
         if declared is None and request.method in ("POST", "PUT", "PATCH"):
             body = await request.body()  # chunked: read (bounded by the server) and check
             if len(body) > limit:
-                return JSONResponse({"detail": f"request body over {limit} bytes"},
-                                    status_code=413)
+                return JSONResponse({"detail": f"request body over {limit} bytes"}, status_code=413)
         return await call_next(request)
+
     app.include_router(health.router, prefix="/api/v1")
     app.include_router(channels.router, prefix="/api/v1")
     app.include_router(stream.router, prefix="/api/v1")

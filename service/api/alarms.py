@@ -27,29 +27,35 @@ def _service(request: Request) -> Any:
 
 
 @router.get("/alarms", summary="Active and latched alarms (all rules with all=true)")
-def list_alarms(request: Request, _: Reader,
-                all: Annotated[bool, Query(description="include rules in normal state")] = False,
-                ) -> list[dict[str, Any]]:
+def list_alarms(
+    request: Request,
+    _: Reader,
+    all: Annotated[bool, Query(description="include rules in normal state")] = False,
+) -> list[dict[str, Any]]:
     engine = _service(request).alarms
     views = engine.views() if all else engine.active()
     return [v.as_dict() for v in views]
 
 
 @router.post(
-    "/alarms/{rule}/ack", summary="Acknowledge an alarm (operator role)",
-    responses={401: {"description": "no or unknown token"},
-               403: {"description": "the token's role is below operator"},
-               404: {"description": "no such alarm rule"},
-               409: {"description": "the alarm is not active or already acknowledged"}},
+    "/alarms/{rule}/ack",
+    summary="Acknowledge an alarm (operator role)",
+    responses={
+        401: {"description": "no or unknown token"},
+        403: {"description": "the token's role is below operator"},
+        404: {"description": "no such alarm rule"},
+        409: {"description": "the alarm is not active or already acknowledged"},
+    },
 )
 async def ack_alarm(
     request: Request,
     who: Operator,
     rule: Annotated[str, Path(max_length=200)],
-    body: Annotated[AckBody, Body()] = AckBody(),
+    body: Annotated[AckBody | None, Body()] = None,
 ) -> dict[str, Any]:
     try:
-        return await _service(request).acknowledge(rule, who.name, body.note)  # type: ignore[no-any-return]
+        note = body.note if body is not None else ""
+        return await _service(request).acknowledge(rule, who.name, note)  # type: ignore[no-any-return]
     except UnknownAlarm as e:
         raise HTTPException(404, str(e)) from None
     except AckRefused as e:
@@ -58,21 +64,24 @@ async def ack_alarm(
 
 @router.get("/events", summary="The event log, newest first, paged by id")
 async def list_events(
-    request: Request, _: Reader,
-    since: Annotated[int | None, Query(description="only events at/after this time, ns since epoch")] = None,
+    request: Request,
+    _: Reader,
+    since: Annotated[
+        int | None, Query(description="only events at/after this time, ns since epoch")
+    ] = None,
     channel: Annotated[str | None, Query(max_length=64)] = None,
     limit: Annotated[int, Query(ge=1, le=1000)] = 100,
     before_id: Annotated[int | None, Query(ge=1, description="page: ids below this")] = None,
 ) -> dict[str, Any]:
     store = _service(request).store
     rows = await asyncio.to_thread(store.events, since, channel, limit, before_id)
-    return {"events": rows,
-            "next_before_id": rows[-1]["id"] if len(rows) == limit else None}
+    return {"events": rows, "next_before_id": rows[-1]["id"] if len(rows) == limit else None}
 
 
 @router.get("/events/{event_id}", summary="One event")
-async def get_event(request: Request, _: Reader,
-                    event_id: Annotated[int, Path(ge=1)]) -> dict[str, Any]:
+async def get_event(
+    request: Request, _: Reader, event_id: Annotated[int, Path(ge=1)]
+) -> dict[str, Any]:
     row = await asyncio.to_thread(_service(request).store.event, event_id)
     if row is None:
         raise HTTPException(404, f"no event {event_id}")
@@ -82,16 +91,26 @@ async def get_event(request: Request, _: Reader,
 @router.get(
     "/events/{event_id}/evidence",
     summary="Spectrum and waveform kept for an event (JSON, CSV, WAV or NPY)",
-    responses={200: {"content": {"application/json": {}, "text/csv": {}, "audio/wav": {},
-                                 "application/octet-stream": {}}},
-               404: {"description": "no such event, or no evidence kept for it"}},
+    responses={
+        200: {
+            "content": {
+                "application/json": {},
+                "text/csv": {},
+                "audio/wav": {},
+                "application/octet-stream": {},
+            }
+        },
+        404: {"description": "no such event, or no evidence kept for it"},
+    },
 )
 async def get_evidence(
-    request: Request, _: Reader,
+    request: Request,
+    _: Reader,
     event_id: Annotated[int, Path(ge=1)],
     format: Annotated[Literal["json", "csv", "wav", "npy"], Query()] = "json",
-    part: Annotated[Literal["spectrum", "waveform"], Query(
-        description="csv/npy: which array")] = "waveform",
+    part: Annotated[
+        Literal["spectrum", "waveform"], Query(description="csv/npy: which array")
+    ] = "waveform",
 ) -> Any:
     ev = await asyncio.to_thread(_service(request).store.get_evidence, event_id)
     if ev is None:
@@ -103,30 +122,49 @@ async def get_evidence(
     name = f"quaver-event-{event_id}"
     if format == "json":
         return {
-            "event_id": event_id, "t0_ns": ev["t0_ns"], "fs": ev["fs"],
-            "spectrum": {**{k: v for k, v in spec.items() if k != "values"},
-                         "values": values.tolist()},
-            "waveform": {"fs": ev["fs"], "t0_ns": ev["t0_ns"], "unit": spec.get("input_unit", ""),
-                         "samples": wave.tolist()},
+            "event_id": event_id,
+            "t0_ns": ev["t0_ns"],
+            "fs": ev["fs"],
+            "spectrum": {
+                **{k: v for k, v in spec.items() if k != "values"},
+                "values": values.tolist(),
+            },
+            "waveform": {
+                "fs": ev["fs"],
+                "t0_ns": ev["t0_ns"],
+                "unit": spec.get("input_unit", ""),
+                "samples": wave.tolist(),
+            },
         }
     if format == "wav":
         from ..recording import write_wav
 
         buf = io.BytesIO()
         write_wav(buf, wave[None, :], ev["fs"], "f32le")  # float WAV keeps engineering units
-        return Response(buf.getvalue(), media_type="audio/wav",
-                        headers={"Content-Disposition": f'attachment; filename="{name}.wav"'})
+        return Response(
+            buf.getvalue(),
+            media_type="audio/wav",
+            headers={"Content-Disposition": f'attachment; filename="{name}.wav"'},
+        )
     arr = values if part == "spectrum" else wave
     if format == "npy":
         buf = io.BytesIO()
         np.save(buf, arr, allow_pickle=False)
-        return Response(buf.getvalue(), media_type="application/octet-stream",
-                        headers={"Content-Disposition": f'attachment; filename="{name}-{part}.npy"'})
+        return Response(
+            buf.getvalue(),
+            media_type="application/octet-stream",
+            headers={"Content-Disposition": f'attachment; filename="{name}-{part}.npy"'},
+        )
     if part == "spectrum":
         f = spec["f0_hz"] + spec["df_hz"] * np.arange(values.size)
-        text = "frequency_hz,value\n" + "".join(f"{a:.6g},{b:.7g}\n" for a, b in zip(f, values))
+        rows = zip(f, values, strict=True)
+        text = "frequency_hz,value\n" + "".join(f"{a:.6g},{b:.7g}\n" for a, b in rows)
     else:
         t = np.arange(wave.size) / ev["fs"]
-        text = "time_s,value\n" + "".join(f"{a:.7g},{b:.7g}\n" for a, b in zip(t, wave))
-    return Response(text, media_type="text/csv",
-                    headers={"Content-Disposition": f'attachment; filename="{name}-{part}.csv"'})
+        rows = zip(t, wave, strict=True)
+        text = "time_s,value\n" + "".join(f"{a:.7g},{b:.7g}\n" for a, b in rows)
+    return Response(
+        text,
+        media_type="text/csv",
+        headers={"Content-Disposition": f'attachment; filename="{name}-{part}.csv"'},
+    )

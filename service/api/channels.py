@@ -17,8 +17,9 @@ from .deps import ChannelDep, FrameDep, HubDep
 
 router = APIRouter(tags=["channels"])
 
-UnitQ = Literal["g", "m/s2", "mm/s", "in/s", "um", "mil", "acceleration", "velocity",
-                "displacement"]
+UnitQ = Literal[
+    "g", "m/s2", "mm/s", "in/s", "um", "mil", "acceleration", "velocity", "displacement"
+]
 AmplitudeQ = Literal["peak", "rms", "peak-to-peak"]
 assert set(UnitQ.__args__) == set(OUTPUT_UNITS + QUANTITIES)  # type: ignore[attr-defined]
 assert set(AmplitudeQ.__args__) == set(AMPLITUDES)  # type: ignore[attr-defined]
@@ -30,8 +31,13 @@ def _num(v: float) -> float | None:
 
 
 def _stamp(frame: SpectralFrame) -> dict[str, Any]:
-    return {"channel": frame.channel, "profile": frame.profile, "seq": frame.seq,
-            "timestamp_ns": frame.t_ns, "timestamp": _iso(frame.t_ns)}
+    return {
+        "channel": frame.channel,
+        "profile": frame.profile,
+        "seq": frame.seq,
+        "timestamp_ns": frame.t_ns,
+        "timestamp": _iso(frame.t_ns),
+    }
 
 
 def _iso(t_ns: int) -> str:
@@ -43,8 +49,13 @@ def _summary(hub: Any, cid: str) -> dict[str, Any]:
     d = st.as_dict()
     f = hub.latest.get(cid)
     if f is not None:
-        d["latest"] = {**_stamp(f), "unit": f.unit, "overall": _num(f.overall),
-                       "fmax_hz": f.fmax_hz, "lines": f.lines}
+        d["latest"] = {
+            **_stamp(f),
+            "unit": f.unit,
+            "overall": _num(f.overall),
+            "fmax_hz": f.fmax_hz,
+            "lines": f.lines,
+        }
     else:
         d["latest"] = None
     return d
@@ -63,47 +74,75 @@ def get_channel(channel: ChannelDep, hub: HubDep) -> dict[str, Any]:
 @router.get(
     "/channels/{channel_id}/spectrum",
     summary="Latest averaged spectrum in any unit and amplitude type",
-    responses={200: {"content": {"application/json": {}, "text/csv": {},
-                                 "application/octet-stream": {}}},
-               404: {"description": "unknown channel"},
-               503: {"description": "no spectrum yet"}},
+    responses={
+        200: {"content": {"application/json": {}, "text/csv": {}, "application/octet-stream": {}}},
+        404: {"description": "unknown channel"},
+        503: {"description": "no spectrum yet"},
+    },
 )
 def get_spectrum(
     frame: FrameDep,
-    unit: Annotated[UnitQ | None, Query(description="Unit or quantity; default: the channel's")] = None,
+    unit: Annotated[
+        UnitQ | None, Query(description="Unit or quantity; default: the channel's")
+    ] = None,
     amplitude: Annotated[AmplitudeQ | None, Query(description="peak | rms | peak-to-peak")] = None,
-    format: Annotated[Literal["json", "csv", "npy"], Query(description="json | csv | npy")] = "json",
+    format: Annotated[
+        Literal["json", "csv", "npy"], Query(description="json | csv | npy")
+    ] = "json",
 ) -> Any:
     values, u, a = spectrum_values(frame, unit, amplitude)
     if format == "csv":
         return Response(to_csv(frame, values, u, a), media_type="text/csv")
     if format == "npy":
-        return Response(to_npy(values), media_type="application/octet-stream",
-                        headers={"X-Quaver-F0-Hz": str(frame.f0_hz),
-                                 "X-Quaver-Df-Hz": repr(frame.df_hz),
-                                 "X-Quaver-Unit": u, "X-Quaver-Amplitude": a})
+        return Response(
+            to_npy(values),
+            media_type="application/octet-stream",
+            headers={
+                "X-Quaver-F0-Hz": str(frame.f0_hz),
+                "X-Quaver-Df-Hz": repr(frame.df_hz),
+                "X-Quaver-Unit": u,
+                "X-Quaver-Amplitude": a,
+            },
+        )
     return {
-        **_stamp(frame), "f0_hz": frame.f0_hz, "df_hz": frame.df_hz, "lines": frame.lines,
-        "fmax_hz": frame.fmax_hz, "unit": u, "amplitude": a, "averages": frame.averages,
-        "averaging": frame.averaging, "window": frame.window, "enbw_bins": frame.enbw_bins,
-        "lowcut_hz": frame.lowcut_hz, "values": values.tolist(),
+        **_stamp(frame),
+        "f0_hz": frame.f0_hz,
+        "df_hz": frame.df_hz,
+        "lines": frame.lines,
+        "fmax_hz": frame.fmax_hz,
+        "unit": u,
+        "amplitude": a,
+        "averages": frame.averages,
+        "averaging": frame.averaging,
+        "window": frame.window,
+        "enbw_bins": frame.enbw_bins,
+        "lowcut_hz": frame.lowcut_hz,
+        "values": values.tolist(),
     }
 
 
 def bands_payload(frame: SpectralFrame) -> dict[str, Any]:
     return {
-        **_stamp(frame), "unit": frame.unit, "amplitude": "rms",
+        **_stamp(frame),
+        "unit": frame.unit,
+        "amplitude": "rms",
         "overall": _num(frame.overall),
-        "bands": [{"name": b.name, "lo_hz": _num(b.lo_hz), "hi_hz": _num(b.hi_hz),
-                   "value": _num(b.value)} for b in frame.bands],
+        "bands": [
+            {"name": b.name, "lo_hz": _num(b.lo_hz), "hi_hz": _num(b.hi_hz), "value": _num(b.value)}
+            for b in frame.bands
+        ],
     }
 
 
 def tones_payload(frame: SpectralFrame) -> dict[str, Any]:
     return {
-        **_stamp(frame), "unit": frame.unit, "amplitude": frame.amplitude,
-        "tones": [{"name": t.name, "frequency_hz": _num(t.frequency_hz), "amplitude": _num(t.value)}
-                  for t in frame.tones],
+        **_stamp(frame),
+        "unit": frame.unit,
+        "amplitude": frame.amplitude,
+        "tones": [
+            {"name": t.name, "frequency_hz": _num(t.frequency_hz), "amplitude": _num(t.value)}
+            for t in frame.tones
+        ],
         "peaks": [{"frequency_hz": p.frequency_hz, "amplitude": p.value} for p in frame.peaks],
     }
 

@@ -16,8 +16,17 @@ from prometheus_client.registry import Collector
 router = APIRouter(tags=["metrics"])
 
 STATUSES = ("ok", "no-data", "gap", "sensor-fault", "overrun")
-SOURCE_COUNTERS = ("samples", "blocks", "bytes", "gaps", "malformed", "connections",
-                   "disconnects", "partial_frames", "drops")
+SOURCE_COUNTERS = (
+    "samples",
+    "blocks",
+    "bytes",
+    "gaps",
+    "malformed",
+    "connections",
+    "disconnects",
+    "partial_frames",
+    "drops",
+)
 ALARM_LEVEL = {"normal": 0, "alert": 1, "danger": 2}
 
 
@@ -27,15 +36,24 @@ class _ServiceCollector(Collector):
 
     def collect(self) -> Iterator[Metric]:
         hub = self.state.hub
-        overall = GaugeMetricFamily("quaver_overall", "Overall RMS over lowcut…Fmax, display unit",
-                                    labels=["channel", "unit"])
-        band = GaugeMetricFamily("quaver_band", "Band RMS value, display unit",
-                                 labels=["channel", "band", "unit"])
-        tone = GaugeMetricFamily("quaver_tone", "Tracked tone amplitude, display unit",
-                                 labels=["channel", "tone", "unit"])
-        age = GaugeMetricFamily("quaver_spectrum_timestamp_seconds",
-                                "Time of the latest spectrum, s since the Unix epoch",
-                                labels=["channel"])
+        overall = GaugeMetricFamily(
+            "quaver_overall",
+            "Overall RMS over lowcut…Fmax, display unit",
+            labels=["channel", "unit"],
+        )
+        band = GaugeMetricFamily(
+            "quaver_band", "Band RMS value, display unit", labels=["channel", "band", "unit"]
+        )
+        tone = GaugeMetricFamily(
+            "quaver_tone",
+            "Tracked tone amplitude, display unit",
+            labels=["channel", "tone", "unit"],
+        )
+        age = GaugeMetricFamily(
+            "quaver_spectrum_timestamp_seconds",
+            "Time of the latest spectrum, s since the Unix epoch",
+            labels=["channel"],
+        )
         for cid, f in hub.latest.items():
             if math.isfinite(f.overall):
                 overall.add_metric([cid, f.unit], f.overall)
@@ -48,12 +66,17 @@ class _ServiceCollector(Collector):
             age.add_metric([cid], f.t_ns / 1e9)
         yield from (overall, band, tone, age)
 
-        status = GaugeMetricFamily("quaver_channel_status", "1 for the channel's current status",
-                                   labels=["channel", "status"])
-        faults = CounterMetricFamily("quaver_channel_sensor_faults",
-                                     "Transitions into sensor fault", labels=["channel"])
-        gaps = CounterMetricFamily("quaver_channel_gaps", "Gaps seen on the channel",
-                                   labels=["channel"])
+        status = GaugeMetricFamily(
+            "quaver_channel_status",
+            "1 for the channel's current status",
+            labels=["channel", "status"],
+        )
+        faults = CounterMetricFamily(
+            "quaver_channel_sensor_faults", "Transitions into sensor fault", labels=["channel"]
+        )
+        gaps = CounterMetricFamily(
+            "quaver_channel_gaps", "Gaps seen on the channel", labels=["channel"]
+        )
         for cid, st in hub.channels.items():
             for s in STATUSES:
                 status.add_metric([cid, s], 1.0 if st.status == s else 0.0)
@@ -61,17 +84,21 @@ class _ServiceCollector(Collector):
             gaps.add_metric([cid], st.gaps)
         yield from (status, faults, gaps)
 
-        fams = {k: CounterMetricFamily(f"quaver_source_{k}", f"Source counter: {k}",
-                                       labels=["source"]) for k in SOURCE_COUNTERS}
+        fams = {
+            k: CounterMetricFamily(f"quaver_source_{k}", f"Source counter: {k}", labels=["source"])
+            for k in SOURCE_COUNTERS
+        }
         for sid, src in hub.sources.items():
             c = getattr(src, "counters", None)
             for k in SOURCE_COUNTERS:
                 fams[k].add_metric([sid], float(getattr(c, k, 0) if c is not None else 0))
         yield from fams.values()
 
-        lat = GaugeMetricFamily("quaver_frame_latency_seconds",
-                                "Processing time of the latest block that produced a frame",
-                                labels=["channel"])
+        lat = GaugeMetricFamily(
+            "quaver_frame_latency_seconds",
+            "Processing time of the latest block that produced a frame",
+            labels=["channel"],
+        )
         for cid, v in hub.latency_s.items():
             lat.add_metric([cid], v)
         yield lat
@@ -81,16 +108,23 @@ class _ServiceCollector(Collector):
 
         alarms = getattr(self.state, "alarms", None)
         if alarms is not None:
-            level = GaugeMetricFamily("quaver_alarm_level",
-                                      "Alarm level per rule: 0 normal, 1 alert, 2 danger",
-                                      labels=["channel", "rule"])
-            latched = GaugeMetricFamily("quaver_alarm_latched", "1 while latched, unacknowledged",
-                                        labels=["channel", "rule"])
+            level = GaugeMetricFamily(
+                "quaver_alarm_level",
+                "Alarm level per rule: 0 normal, 1 alert, 2 danger",
+                labels=["channel", "rule"],
+            )
+            latched = GaugeMetricFamily(
+                "quaver_alarm_latched",
+                "1 while latched, unacknowledged",
+                labels=["channel", "rule"],
+            )
             for v in alarms.views():
                 d = v.as_dict()
                 level.add_metric([d["channel"], d["rule"]], ALARM_LEVEL.get(str(d["state"]), 0))
-                latched.add_metric([d["channel"], d["rule"]],
-                                   1.0 if d.get("latched") and not d.get("acked") else 0.0)
+                latched.add_metric(
+                    [d["channel"], d["rule"]],
+                    1.0 if d.get("latched") and not d.get("acked") else 0.0,
+                )
             yield from (level, latched)
         store = getattr(self.state, "store", None)
         if store is not None:
@@ -102,10 +136,15 @@ class _ServiceCollector(Collector):
                     yield m
 
 
-@router.get("/metrics", include_in_schema=True, summary="Prometheus text exposition",
-            response_class=Response)
+@router.get(
+    "/metrics",
+    include_in_schema=True,
+    summary="Prometheus text exposition",
+    response_class=Response,
+)
 def metrics(request: Request) -> Response:
     registry = CollectorRegistry(auto_describe=False)
     registry.register(_ServiceCollector(request.app.state))
-    return Response(generate_latest(registry),
-                    media_type="text/plain; version=0.0.4; charset=utf-8")
+    return Response(
+        generate_latest(registry), media_type="text/plain; version=0.0.4; charset=utf-8"
+    )

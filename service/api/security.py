@@ -43,8 +43,11 @@ def require(role: str):  # type: ignore[no-untyped-def]
         cfg: Config = request.app.state.config
         who = principal(request)
         if who is None:
-            detail = ("no token given; send Authorization: Bearer <token>"
-                      if not request.headers.get("authorization") else "token not recognised")
+            detail = (
+                "no token given; send Authorization: Bearer <token>"
+                if not request.headers.get("authorization")
+                else "token not recognised"
+            )
             if not cfg.tokens:
                 detail = "no tokens are configured, so nobody may do this; add [[tokens]]"
             raise HTTPException(401, detail, headers={"WWW-Authenticate": "Bearer"})

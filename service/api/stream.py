@@ -69,15 +69,27 @@ class Subscription(BaseModel):
         return v
 
 
-def encode_spectrum(frame: SpectralFrame, unit: str | None, amplitude: str | None,
-                    missed: int) -> bytes:
+def encode_spectrum(
+    frame: SpectralFrame, unit: str | None, amplitude: str | None, missed: int
+) -> bytes:
     values, u, a = spectrum_values(frame, unit, amplitude)
-    header = json.dumps({
-        "kind": "spectrum", "channel": frame.channel, "profile": frame.profile,
-        "seq": frame.seq, "timestamp_ns": frame.t_ns, "f0_hz": frame.f0_hz,
-        "df_hz": frame.df_hz, "unit": u, "amplitude": a, "averages": frame.averages,
-        "count": int(values.size), "missed": missed,
-    }, separators=(",", ":")).encode()
+    header = json.dumps(
+        {
+            "kind": "spectrum",
+            "channel": frame.channel,
+            "profile": frame.profile,
+            "seq": frame.seq,
+            "timestamp_ns": frame.t_ns,
+            "f0_hz": frame.f0_hz,
+            "df_hz": frame.df_hz,
+            "unit": u,
+            "amplitude": a,
+            "averages": frame.averages,
+            "count": int(values.size),
+            "missed": missed,
+        },
+        separators=(",", ":"),
+    ).encode()
     header += b" " * (-(4 + len(header)) % 4)
     return struct.pack("<I", len(header)) + header + values.astype("<f4").tobytes()
 
@@ -86,7 +98,7 @@ class _Session:
     def __init__(self, ws: WebSocket, hub: Hub) -> None:
         self.ws, self.hub = ws, hub
         self.sub = hub.subscribe(None)
-        self.spec = Subscription()
+        self.spec = Subscription.model_validate({})
         self.last_sent: dict[str, float] = {}
         self.held_back = 0
 
@@ -132,10 +144,15 @@ class _Session:
         while True:
             now = time.monotonic()
             if "status" in self.spec.kinds and now >= next_status:
-                await self.send_json({"kind": "status", "channels": [
-                    {"id": st.id, "status": st.status, "fault": st.fault}
-                    for st in self.hub.channels.values()
-                ]})
+                await self.send_json(
+                    {
+                        "kind": "status",
+                        "channels": [
+                            {"id": st.id, "status": st.status, "fault": st.fault}
+                            for st in self.hub.channels.values()
+                        ],
+                    }
+                )
                 next_status = now + STATUS_PERIOD_S
             try:
                 item = await asyncio.wait_for(self.sub.queue.get(), timeout=STATUS_PERIOD_S)
@@ -157,8 +174,9 @@ class _Session:
         kinds = self.spec.kinds
         missed = self.sub.missed + self.held_back
         if "spectrum" in kinds:
-            await self.ws.send_bytes(encode_spectrum(frame, self.spec.unit, self.spec.amplitude,
-                                                     missed))
+            await self.ws.send_bytes(
+                encode_spectrum(frame, self.spec.unit, self.spec.amplitude, missed)
+            )
         if "bands" in kinds:
             await self.send_json({"kind": "bands", **bands_payload(frame)})
         if "tones" in kinds:
@@ -174,8 +192,14 @@ async def stream(ws: WebSocket) -> None:
     await ws.accept()
     session = _Session(ws, hub)
     try:
-        await session.send_json({"kind": "hello", "version": __version__,
-                                 "channels": list(hub.channels), "kinds": list(KINDS)})
+        await session.send_json(
+            {
+                "kind": "hello",
+                "version": __version__,
+                "channels": list(hub.channels),
+                "kinds": list(KINDS),
+            }
+        )
         recv = asyncio.create_task(session.receive_loop())
         send = asyncio.create_task(session.send_loop())
         done, pending = await asyncio.wait({recv, send}, return_when=asyncio.FIRST_COMPLETED)

@@ -23,11 +23,21 @@ _NS = 1_000_000_000
     summary="Trend of one value: overall, band:<name> or tone:<name>",
 )
 async def get_trend(
-    request: Request, channel: ChannelDep, _: Reader,
-    name: Annotated[str, Query(max_length=200, description="overall | band:<name> | tone:<name>")] = "overall",
-    since: Annotated[float | None, Query(description="start, s since the Unix epoch; default: 1 h ago")] = None,
-    until: Annotated[float | None, Query(description="end, s since the Unix epoch; default: now")] = None,
-    step: Annotated[int | None, Query(ge=1, le=31 * 86400, description="bucket, s; default: the finest kept")] = None,
+    request: Request,
+    channel: ChannelDep,
+    _: Reader,
+    name: Annotated[
+        str, Query(max_length=200, description="overall | band:<name> | tone:<name>")
+    ] = "overall",
+    since: Annotated[
+        float | None, Query(description="start, s since the Unix epoch; default: 1 h ago")
+    ] = None,
+    until: Annotated[
+        float | None, Query(description="end, s since the Unix epoch; default: now")
+    ] = None,
+    step: Annotated[
+        int | None, Query(ge=1, le=31 * 86400, description="bucket, s; default: the finest kept")
+    ] = None,
 ) -> dict[str, Any]:
     store = request.app.state.service.store
     now = time.time()
@@ -42,7 +52,12 @@ async def get_trend(
     if not points and name not in names and names:
         raise HTTPException(404, f"no trend {name!r} on {channel.id!r}; have: {', '.join(names)}")
     return {
-        "channel": channel.id, "name": name, "step_s": used, "since": since_s, "until": until_s,
-        "points": [{"t_ns": t, "mean": m, "min": lo, "max": hi, "count": n}
-                   for t, m, lo, hi, n in points],
+        "channel": channel.id,
+        "name": name,
+        "step_s": used,
+        "since": since_s,
+        "until": until_s,
+        "points": [
+            {"t_ns": t, "mean": m, "min": lo, "max": hi, "count": n} for t, m, lo, hi, n in points
+        ],
     }

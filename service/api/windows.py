@@ -15,8 +15,9 @@ router = APIRouter(tags=["windows"])
 WindowP = Literal["rectangular", "hann", "hamming", "blackman-harris", "flattop", "kaiser"]
 
 
-@router.get("/windows/{window}/response",
-            summary="One spectrum line's filter response for a window, in dB")
+@router.get(
+    "/windows/{window}/response", summary="One spectrum line's filter response for a window, in dB"
+)
 def window_response(
     window: WindowP,
     n: Annotated[int, Query(ge=16, le=262144, description="frame length, samples")] = 4096,
@@ -24,13 +25,17 @@ def window_response(
     points_per_bin: Annotated[int, Query(ge=1, le=64)] = 16,
     beta: Annotated[float, Query(ge=0, le=50, description="Kaiser β")] = 8.6,
 ) -> dict[str, Any]:
-    nu, gain_db = bin_response(window, n, span_bins=span_bins, points_per_bin=points_per_bin,
-                               beta=beta)
+    nu, gain_db = bin_response(
+        window, n, span_bins=span_bins, points_per_bin=points_per_bin, beta=beta
+    )
     info = window_info(window, n, beta=beta)
     return {
-        "window": window, "n": n, "offset_bins": nu.tolist(),
+        "window": window,
+        "n": n,
+        "offset_bins": nu.tolist(),
         "gain_db": [max(g, -300.0) for g in gain_db.tolist()],
-        "coherent_gain": info.coherent_gain, "enbw_bins": info.enbw_bins,
+        "coherent_gain": info.coherent_gain,
+        "enbw_bins": info.enbw_bins,
         "scalloping_loss_db": info.scalloping_loss_db,
         "highest_sidelobe_db": info.highest_sidelobe_db,
     }
