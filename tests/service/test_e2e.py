@@ -104,6 +104,8 @@ CONFIG: dict[str, Any] = {
         _tcp("sensor", "f32le", ["sf-nan", "sf-flat", "sf-ok"]),
         _tcp("bad", "framed", ["bad-a", "bad-b"]),
         _tcp("ws", "framed", ["ws-a"], fs=WS_FS),
+        _tcp("ws2", "framed", ["ws2-a"]),
+        _tcp("hf", "framed", ["hf-flat", "hf-ok"], fs=25600.0),
     ],
     "channels": [{"id": "ws-a", "analysis": {"fmax_hz": 10000.0, "lines": WS_LINES}}],
     "bands": [{"name": "b100", "lo_hz": 100.0, "hi_hz": 150.0},
@@ -296,7 +298,7 @@ def test_udp_datagrams_with_a_late_one(svc: RunningService) -> None:
     svc.assert_healthy()
 
 
-# --- 4. a followed file, appended then truncated --------------------------------------------
+# --- 4. a followed file, appended, truncated, then rotated ------------------------------
 
 
 def _append_csv(path: Path, x: np.ndarray, chunk: int) -> None:
@@ -306,7 +308,7 @@ def _append_csv(path: Path, x: np.ndarray, chunk: int) -> None:
             fh.write("".join(f"{a:.9g},{b:.9g}\n" for a, b in x[:, k:k + chunk].T))
 
 
-def test_file_tail_growth_and_truncation(svc: RunningService) -> None:
+def test_file_tail_growth_truncation_and_rotation(svc: RunningService) -> None:
     path = svc.config_path.parent / "tail.csv"
     n = int(3 * FS)
     _append_csv(path, signal(n, seed=404), chunk=int(0.5 * FS))
@@ -325,6 +327,17 @@ def test_file_tail_growth_and_truncation(svc: RunningService) -> None:
     assert "truncation" in counters["last_error"]
     assert svc.channel("tail-b")["counters"]["gaps"] == 1
     assert second["seq"] > first["seq"] and second["averages"] == frames_in(n)
+    check_tones_and_bands(svc, ("tail-a", "tail-b"), tol_db=0.05)
+
+    # rotation: the file is renamed away and a new one starts under the same name
+    path.rename(path.with_name("tail.csv.1"))
+    _append_csv(path, signal(n, seed=406), chunk=int(0.5 * FS))
+    third = spectrum_after(svc, "tail-a", samples=3 * n, frames=3 * frames_in(n),
+                           what="the rows of the new file after the rotation")
+    counters = svc.source("tail")["counters"]
+    assert (counters["rotations"], counters["gaps"], counters["malformed"]) == (1, 2, 0)
+    assert svc.channel("tail-b")["counters"]["gaps"] == 2
+    assert third["seq"] > second["seq"] and third["averages"] == frames_in(n)
     check_tones_and_bands(svc, ("tail-a", "tail-b"), tol_db=0.05)
     svc.assert_healthy()
 
@@ -390,6 +403,27 @@ def test_nan_and_flat_line_are_sensor_faults_per_channel(svc: RunningService) ->
     # the healthy neighbour's analysis is untouched by the NaN in the same blocks
     tones = by_name(svc.get("channels/sf-ok/tones")["tones"])
     assert abs(db(tones["t1"]["amplitude"], 1.0)) <= 0.02  # issue 2 tolerance
+    svc.assert_healthy()
+
+
+@pytest.mark.xfail(strict=True, reason="service/pipeline.py SourcePipeline.process only calls "
+                   "a block flat when it holds >= 0.05*fs samples, so a producer sending short "
+                   "frames or datagrams (here 10 ms at 25.6 kHz) never shows a flat line")
+def test_flat_line_in_short_frames_is_a_sensor_fault(svc: RunningService) -> None:
+    fs = 25600.0
+    n = int(fs)  # one second, in 10-ms frames of 256 samples (common for low-latency links)
+    x = signal(n, seed=909, fs=fs, amps=((1.0, 0.2), (1.0, 0.2)))
+    x[0, :] = 0.25  # a stuck output: a flat line
+    with tcp_producer(svc.ports["hf"]) as sock:
+        for f in framed(x, 0, fs=fs):
+            sock.sendall(f)
+        svc.wait(lambda: svc.channel("hf-ok")["counters"]["samples"] == n or None,
+                 "one second on hf-ok")
+    flat, ok = svc.channel("hf-flat"), svc.channel("hf-ok")
+    assert ok["counters"]["flat_blocks"] == 0 and ok["counters"]["sensor_faults"] == 0
+    # counters, not the held status: a second of a stuck output is a fault (DESIGN.md)
+    assert flat["counters"]["flat_blocks"] >= 1, flat
+    assert flat["counters"]["sensor_faults"] == 1, flat
     svc.assert_healthy()
 
 
@@ -684,3 +718,33 @@ def test_websocket_spectra_equal_rest_and_a_stalled_client_delays_no_one(
         finally:
             stalled.close()
     svc.assert_healthy()
+
+
+@pytest.mark.xfail(strict=True, reason="service/api/stream.py _Session._send_frame drops a "
+                   "frame that arrives within 1/max_rate_hz of the last one sent instead of "
+                   "deferring it, so after a burst the client keeps a stale spectrum until "
+                   "another frame comes (DESIGN.md: a slow client skips to the newest frame)")
+def test_websocket_rate_limit_still_delivers_the_newest_frame(svc: RunningService) -> None:
+    x = signal(N_FRAME + 2 * HOP, seed=808, amps=((1.0, 0.2),))
+    # three blocks, each completing one analysis frame: published within moments of each other
+    blocks = [encode_frame(x[:, :N_FRAME], "f32le", FS, 0),
+              encode_frame(x[:, N_FRAME:N_FRAME + HOP], "f32le", FS, N_FRAME),
+              encode_frame(x[:, N_FRAME + HOP:], "f32le", FS, N_FRAME + HOP)]
+    with connect(ws_url(svc), proxy=None, open_timeout=10, compression=None) as ws, \
+            tcp_producer(svc.ports["ws2"]) as producer:
+        assert json.loads(ws.recv(timeout=10))["kind"] == "hello"
+        subscribe(ws, channels=["ws2-a"], kinds=["spectrum"], max_rate_hz=1)
+        for b in blocks:
+            producer.sendall(b)
+        spec = spectrum_after(svc, "ws2-a", samples=x.shape[1], frames=3, what="three frames")
+        last = spec["seq"]
+        seqs = []
+        for _ in range(10):  # at 1 frame/s the newest must come within a few seconds
+            try:
+                header, _ = next_spectrum(ws, "ws2-a", timeout_s=4.0)
+            except TimeoutError:
+                break
+            seqs.append(header["seq"])
+            if header["seq"] == last:
+                break
+        assert seqs and seqs[-1] == last, (seqs, last)
