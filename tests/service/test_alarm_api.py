@@ -9,6 +9,7 @@ import contextlib
 import csv
 import hashlib
 import io
+import itertools
 import json
 import math
 import os
@@ -94,8 +95,9 @@ def frame_t_ns(block: int) -> int:
     return T0_NS + (block + 1) * BLOCK_NS
 
 
-def sine_blocks(rms: tuple[float, float], first_block: int, count: int,
-                rng: np.random.Generator) -> np.ndarray:
+def sine_blocks(
+    rms: tuple[float, float], first_block: int, count: int, rng: np.random.Generator
+) -> np.ndarray:
     """float32 [2, count·BLOCK]: a 100 Hz sine per channel with the given RMS (g), plus
     noise. A sine of peak A reads A/√2 RMS (common practice), so peak = RMS·√2."""
     k = np.arange(first_block * BLOCK, (first_block + count) * BLOCK)
@@ -125,8 +127,11 @@ class Plant:
         frames = []
         for j in range(x.shape[1] // BLOCK):
             b = self.next_block + j
-            frames.append(encode_frame(x[:, j * BLOCK:(j + 1) * BLOCK], "f32le", FS, b * BLOCK,
-                                       block_t_ns(b)))
+            frames.append(
+                encode_frame(
+                    x[:, j * BLOCK : (j + 1) * BLOCK], "f32le", FS, b * BLOCK, block_t_ns(b)
+                )
+            )
         self.sock.sendall(b"".join(frames))
         self.chunks.append(x)
         self.next_block += x.shape[1] // BLOCK
@@ -134,8 +139,9 @@ class Plant:
     def send_malformed(self) -> None:
         """One frame whose payload does not match its CRC (must be rejected and counted)."""
         x = sine_blocks((0.3, 0.3), self.next_block, 1, np.random.default_rng(99))
-        bad = bytearray(encode_frame(x, "f32le", FS, self.next_block * BLOCK,
-                                     block_t_ns(self.next_block)))
+        bad = bytearray(
+            encode_frame(x, "f32le", FS, self.next_block * BLOCK, block_t_ns(self.next_block))
+        )
         bad[-1] ^= 0xFF
         self.sock.sendall(bytes(bad))
 
@@ -226,13 +232,23 @@ def free_ports(n: int) -> list[int]:
             s.close()
 
 
-def config_text(http_port: int, tcp_port: int, data_dir: Path, *, listen_host: str = LOOPBACK,
-                tokens: bool = True) -> str:
-    toks = "".join(
-        f'\n[[tokens]]\nname = "{name}"\nrole = "{role}"\n'
-        f'sha256 = "{hashlib.sha256(tok.encode()).hexdigest()}"\n'
-        for role, (name, tok) in TOKENS.items()
-    ) if tokens else ""
+def config_text(
+    http_port: int,
+    tcp_port: int,
+    data_dir: Path,
+    *,
+    listen_host: str = LOOPBACK,
+    tokens: bool = True,
+) -> str:
+    toks = (
+        "".join(
+            f'\n[[tokens]]\nname = "{name}"\nrole = "{role}"\n'
+            f'sha256 = "{hashlib.sha256(tok.encode()).hexdigest()}"\n'
+            for role, (name, tok) in TOKENS.items()
+        )
+        if tokens
+        else ""
+    )
     alarms = "".join(
         f'\n[[alarms]]\nchannel = "{ch}"\nband = "b"\nalert = {ALERT}\ndanger = {DANGER}\n'
         f"hysteresis = {HYST}\non_delay_s = {ON_S}\noff_delay_s = {OFF_S}\n"
@@ -285,16 +301,21 @@ hi_hz = {BAND[1]}
 
 
 def _env() -> dict[str, str]:
-    env = {k: v for k, v in os.environ.items()
-           if not k.startswith("QUAVER_") and k.lower() not in ("http_proxy", "https_proxy",
-                                                                 "all_proxy")}
+    env = {
+        k: v
+        for k, v in os.environ.items()
+        if not k.startswith("QUAVER_")
+        and k.lower() not in ("http_proxy", "https_proxy", "all_proxy")
+    }
     env["PYTHONPATH"] = os.pathsep.join(filter(None, [str(REPO), env.get("PYTHONPATH")]))
     env["PYTHONUNBUFFERED"] = "1"
     return env
 
 
-LAUNCH = ("import sys, service.app, service.config; "
-          "sys.exit(service.app.run_service(service.config.load_config(sys.argv[1])))")
+LAUNCH = (
+    "import sys, service.app, service.config; "
+    "sys.exit(service.app.run_service(service.config.load_config(sys.argv[1])))"
+)
 
 
 @dataclass
@@ -328,8 +349,9 @@ class Svc:
         deadline = time.monotonic() + timeout_s
         for _ in range(int(timeout_s / POLL_S) + 1):
             if not self.alive():
-                pytest.fail(f"service exited ({self.proc.returncode}) waiting for {what}\n"
-                            f"{self.log_tail()}")
+                pytest.fail(
+                    f"service exited ({self.proc.returncode}) waiting for {what}\n{self.log_tail()}"
+                )
             got = probe()
             if got is not None and got is not False:
                 return got  # type: ignore[return-value]
@@ -360,8 +382,10 @@ class Svc:
         """Wait until the alarm engine has evaluated the frame that ``block`` completes, on
         both channels (then /alarms, /spectrum and /bands show that frame)."""
         t = frame_t_ns(block)
-        self.wait(lambda: all((a["value_ns"] or 0) >= t - CLOCK_NS for a in self.alarms().values()),
-                  f"the frame of block {block} to be evaluated")
+        self.wait(
+            lambda: all((a["value_ns"] or 0) >= t - CLOCK_NS for a in self.alarms().values()),
+            f"the frame of block {block} to be evaluated",
+        )
 
 
 def start_service(workdir: Path, data_dir: Path) -> Svc:
@@ -374,11 +398,23 @@ def start_service(workdir: Path, data_dir: Path) -> Svc:
         cfg.write_text(config_text(http_port, tcp_port, data_dir), encoding="utf-8")
         log_path = workdir / f"service-{http_port}.log"
         with open(log_path, "wb") as log:
-            proc = subprocess.Popen([sys.executable, "-c", LAUNCH, str(cfg)], cwd=workdir,
-                                    env=_env(), stdout=log, stderr=subprocess.STDOUT)
+            proc = subprocess.Popen(
+                [sys.executable, "-c", LAUNCH, str(cfg)],
+                cwd=workdir,
+                env=_env(),
+                stdout=log,
+                stderr=subprocess.STDOUT,
+            )
         base = f"http://{LOOPBACK}:{http_port}"
-        svc = Svc(proc, base, http_port, tcp_port, data_dir, log_path,
-                  httpx.Client(base_url=base, timeout=10.0, trust_env=False))
+        svc = Svc(
+            proc,
+            base,
+            http_port,
+            tcp_port,
+            data_dir,
+            log_path,
+            httpx.Client(base_url=base, timeout=10.0, trust_env=False),
+        )
         deadline = time.monotonic() + START_TIMEOUT_S
         for _ in range(int(START_TIMEOUT_S / POLL_S) + 1):
             if not svc.alive() or time.monotonic() > deadline:
@@ -471,8 +507,10 @@ def _script(svc: Svc) -> Run:
     x = np.concatenate(parts, axis=1)
     ref = {ch: reference_band(x[c]) for c, ch in enumerate(CHANNELS)}
     ref_t = np.array([frame_t_ns(p + 3) for p in range(ref["m1"].size)], dtype=np.int64)
-    predicted = {RULE1: reference_events(ref_t, ref["m1"], latch=False),
-                 RULE2: reference_events(ref_t, ref["m2"], latch=True)}
+    predicted = {
+        RULE1: reference_events(ref_t, ref["m1"], latch=False),
+        RULE2: reference_events(ref_t, ref["m2"], latch=True),
+    }
     # stop right at every predicted raising event of m1 to read /spectrum at that moment
     stops = {(t - T0_NS) // BLOCK_NS - 1: z for t, a, z in predicted[RULE1] if raises(a, z)}
     plant = Plant(svc.tcp_port, seed=0)
@@ -483,27 +521,42 @@ def _script(svc: Svc) -> Run:
     ends = [s + c for s, (c, _, _) in zip(seg_start, SEGMENTS, strict=True)]
     try:
         for stop in sorted(set(stops) | set(e - 1 for e in ends)):
-            plant.send_samples(x[:, sent * BLOCK:(stop + 1) * BLOCK])
+            plant.send_samples(x[:, sent * BLOCK : (stop + 1) * BLOCK])
             sent = stop + 1
             svc.evaluated(stop)
             if stop in stops:
                 for _ in range(3):  # the reference may be a frame early: step block by block
                     if svc.alarms()[RULE1]["state"] == stops[stop]:
                         break
-                    plant.send_samples(x[:, sent * BLOCK:(sent + 1) * BLOCK])
+                    plant.send_samples(x[:, sent * BLOCK : (sent + 1) * BLOCK])
                     sent += 1
                     svc.evaluated(sent - 1)
                 since = svc.alarms()[RULE1]["since_ns"]
-                ev = svc.wait(lambda since=since: next(
-                    (e for e in svc.events(channel="m1") if e["t_ns"] == since
-                     and e["rule"] == RULE1), None),
-                    "the raising event in /events")
+                ev = svc.wait(
+                    lambda since=since: next(
+                        (
+                            e
+                            for e in svc.events(channel="m1")
+                            if e["t_ns"] == since and e["rule"] == RULE1
+                        ),
+                        None,
+                    ),
+                    "the raising event in /events",
+                )
                 at_event[(RULE1, ev["from_state"], ev["to_state"])] = {
-                    "spectrum": svc.get("channels/m1/spectrum"), "event": ev}
+                    "spectrum": svc.get("channels/m1/spectrum"),
+                    "event": ev,
+                }
             if sent in ends:
-                stages.append(Stage(sent - 1, svc.alarms(), svc.get("alarms"),
-                                    svc.get("channels/m1/bands"),
-                                    svc.client.get("/metrics").text))
+                stages.append(
+                    Stage(
+                        sent - 1,
+                        svc.alarms(),
+                        svc.get("alarms"),
+                        svc.get("channels/m1/bands"),
+                        svc.client.get("/metrics").text,
+                    )
+                )
     finally:
         plant.close()
     assert sent == blocks
@@ -515,7 +568,6 @@ def run(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Run]:
     work = tmp_path_factory.mktemp("alarm-api")
     with running(work, work / "data") as svc:
         yield _script(svc)
-
 
 
 def ref_at(run: Run, channel: str, t_ns: int) -> float:
@@ -585,7 +637,12 @@ def test_latched_alarm_needs_an_operator_to_acknowledge(run: Run) -> None:
     assert evs[-1]["latched"] and evs[-1]["value"] < ALERT * (1 - HYST)
     # it stays latched while the value is low (stages 2-4: m2 at 0.3 g)
     assert [st.alarms[RULE2]["state"] for st in run.stages] == [
-        "normal", "alert", "latched", "latched", "latched"]
+        "normal",
+        "alert",
+        "latched",
+        "latched",
+        "latched",
+    ]
     a = svc.alarms()[RULE2]
     assert (a["state"], a["latched"], a["acked"], a["peak"]) == ("latched", True, False, "alert")
     assert a["value"] == pytest.approx(0.30, rel=0.01)
@@ -606,7 +663,11 @@ def test_latched_alarm_needs_an_operator_to_acknowledge(run: Run) -> None:
     assert r.status_code == 200, r.text
     ack = r.json()
     assert (ack["kind"], ack["rule"], ack["from_state"], ack["to_state"]) == (
-        "ack", RULE2, "latched", "normal")
+        "ack",
+        RULE2,
+        "latched",
+        "normal",
+    )
     assert (ack["acked_by"], ack["note"]) == (TOKENS["operator"][0], note)
     stored = svc.get(f"events/{ack['id']}")
     assert {k: stored[k] for k in ack} == ack  # committed as announced
@@ -634,8 +695,10 @@ def test_evidence_is_the_spectrum_and_waveform_of_the_moment(run: Run) -> None:
     for (_, _, to), seen in run.at_event.items():
         ev, then = seen["event"], seen["spectrum"]
         rms = SEGMENTS[1 if to == "alert" else 2][1]
-        svc.wait(lambda ev=ev: svc.get(f"events/{ev['id']}")["has_evidence"],
-                 f"evidence of event {ev['id']}")
+        svc.wait(
+            lambda ev=ev: svc.get(f"events/{ev['id']}")["has_evidence"],
+            f"evidence of event {ev['id']}",
+        )
         base = f"/api/v1/events/{ev['id']}/evidence"
         j = svc.get(f"events/{ev['id']}/evidence")
         spec = j["spectrum"]
@@ -645,7 +708,11 @@ def test_evidence_is_the_spectrum_and_waveform_of_the_moment(run: Run) -> None:
         got = np.asarray(spec["values"], dtype=np.float32)
         np.testing.assert_array_equal(got, np.asarray(then["values"], dtype=np.float32))
         assert (spec["f0_hz"], spec["df_hz"], spec["unit"], spec["amplitude"]) == (
-            0.0, FS / N_FRAME, "g", "rms")
+            0.0,
+            FS / N_FRAME,
+            "g",
+            "rms",
+        )
         # a sine on a line centre reads its RMS on that line (Heinzel et al. 2002, §9)
         assert got[int(F_HZ / (FS / N_FRAME))] == pytest.approx(rms, rel=0.01)
 
@@ -656,10 +723,9 @@ def test_evidence_is_the_spectrum_and_waveform_of_the_moment(run: Run) -> None:
         t0 = j["t0_ns"]
         assert abs(t0 - (ev["t_ns"] - round(BEFORE_S * 1e9))) <= CLOCK_NS
         k0 = round((t0 - T0_NS) * FS / 1e9)
-        np.testing.assert_array_equal(wave, run.samples[0, k0:k0 + wave.size])
+        np.testing.assert_array_equal(wave, run.samples[0, k0 : k0 + wave.size])
         # RMS of a sine of peak A is A/√2 (common practice); we sent peak rms·√2
-        assert float(np.sqrt(np.mean(wave.astype(np.float64) ** 2))) == pytest.approx(
-            rms, rel=0.01)
+        assert float(np.sqrt(np.mean(wave.astype(np.float64) ** 2))) == pytest.approx(rms, rel=0.01)
 
         r = svc.client.get(base, params={"format": "wav"})
         assert r.status_code == 200 and r.headers["content-type"] == "audio/wav"
@@ -712,20 +778,24 @@ def test_trend_buckets_match_the_band_values_sent(run: Run) -> None:
         assert p["max"] == pytest.approx(v.max(), rel=1e-3)
     # a coarser step aggregates the 1 s buckets: counts add, mean weighted by count
     for step in (10, 60):
-        coarse = svc.get("channels/m1/trend", name="band:b", since=since, until=since + 60,
-                         step=step)
+        coarse = svc.get(
+            "channels/m1/trend", name="band:b", since=since, until=since + 60, step=step
+        )
         assert coarse["step_s"] == step
         assert len(coarse["points"]) == -(-done_s // step)
         for c in coarse["points"]:
             group = [p for p in pts if c["t_ns"] <= p["t_ns"] < c["t_ns"] + step * 10**9]
             n = sum(p["count"] for p in group)
             assert c["count"] == n
-            assert c["mean"] == pytest.approx(sum(p["mean"] * p["count"] for p in group) / n,
-                                              rel=1e-9)
+            assert c["mean"] == pytest.approx(
+                sum(p["mean"] * p["count"] for p in group) / n, rel=1e-9
+            )
             assert c["min"] == min(p["min"] for p in group)
             assert c["max"] == max(p["max"] for p in group)
-    r = svc.client.get("/api/v1/channels/m1/trend",
-                       params={"name": "band:nope", "since": since, "until": since + 60})
+    r = svc.client.get(
+        "/api/v1/channels/m1/trend",
+        params={"name": "band:nope", "since": since, "until": since + 60},
+    )
     assert r.status_code == 404 and "band:b" in r.json()["detail"]
 
 
@@ -747,13 +817,14 @@ def _one(samples: dict[str, list[tuple[dict[str, str], float]]], name: str, **la
 
 
 def test_metrics_parse_and_carry_bands_alarm_levels_and_counters(run: Run) -> None:
-    for st, (l1, l2, latched2) in zip(run.stages, [(0, 0, 0), (1, 1, 1), (2, 0, 1)],
-                                      strict=False):
+    for st, (l1, l2, latched2) in zip(run.stages, [(0, 0, 0), (1, 1, 1), (2, 0, 1)], strict=False):
         m = _samples(st.metrics)
         band = _one(m, "quaver_band", channel="m1", band="b")
         assert band == st.bands["bands"][0]["value"]  # the same frame as /bands
-        assert st.bands["unit"] == "g" and _one(m, "quaver_band", channel="m1", band="b",
-                                                unit="g") == band
+        assert (
+            st.bands["unit"] == "g"
+            and _one(m, "quaver_band", channel="m1", band="b", unit="g") == band
+        )
         assert _one(m, "quaver_alarm_level", channel="m1", rule=RULE1) == l1
         assert _one(m, "quaver_alarm_level", channel="m2", rule=RULE2) == l2
         assert _one(m, "quaver_alarm_latched", channel="m2", rule=RULE2) == latched2
@@ -774,8 +845,11 @@ def test_body_limit_bad_queries_and_unknown_channels(run: Run) -> None:
     svc, c = run.svc, run.svc.client
     events_before = svc.events()
     big = json.dumps({"note": "x" * MAX_BODY})
-    r = c.post(f"/api/v1/alarms/{RULE1}/ack", content=big,
-               headers={**bearer("operator"), "Content-Type": "application/json"})
+    r = c.post(
+        f"/api/v1/alarms/{RULE1}/ack",
+        content=big,
+        headers={**bearer("operator"), "Content-Type": "application/json"},
+    )
     assert r.status_code == 413 and str(MAX_BODY) in r.json()["detail"]
     assert svc.events() == events_before
     for path, params, name in (
@@ -790,8 +864,13 @@ def test_body_limit_bad_queries_and_unknown_channels(run: Run) -> None:
         assert [d["loc"] for d in r.json()["detail"]] == [["query", name]]
     r = c.get("/api/v1/channels/m1/trend", params={"since": 2e9, "until": 1e9})
     assert r.status_code == 422 and "since" in r.json()["detail"]
-    for path in ("channels/nope", "channels/nope/spectrum", "channels/nope/bands",
-                 "channels/nope/trend", "events/987654"):
+    for path in (
+        "channels/nope",
+        "channels/nope/spectrum",
+        "channels/nope/bands",
+        "channels/nope/trend",
+        "events/987654",
+    ):
         r = c.get(f"/api/v1/{path}")
         assert r.status_code == 404, path
     assert "nope" in c.get("/api/v1/channels/nope/spectrum").json()["detail"]
@@ -816,9 +895,14 @@ def test_websocket_from_a_foreign_origin_gets_nothing(run: Run) -> None:
     assert refused
 
 
-@pytest.mark.xfail(strict=True, raises=InvalidStatus, reason=(
-    "service/api/security.py check_websocket closes before accepting; per the ASGI spec the "
-    "server then answers HTTP 403, so the client never sees close code 1008 or its reason"))
+@pytest.mark.xfail(
+    strict=True,
+    raises=InvalidStatus,
+    reason=(
+        "service/api/security.py check_websocket closes before accepting; per the ASGI spec the "
+        "server then answers HTTP 403, so the client never sees close code 1008 or its reason"
+    ),
+)
 def test_websocket_from_a_foreign_origin_is_closed_with_1008(run: Run) -> None:
     with ws_connect(_ws_url(run.svc), origin="http://evil.example", open_timeout=10) as ws:
         with pytest.raises(ConnectionClosed) as e:
@@ -838,3 +922,144 @@ def test_check_refuses_an_open_listen_without_tokens(
         assert r.returncode == code, (host, tokens, r.stdout, r.stderr)
         if code:
             assert "service.listen" in r.stderr and "tokens" in r.stderr
+
+
+# --- 3. restart and kill -9 ---------------------------------------------------------------------
+
+
+class Toggler(threading.Thread):
+    """Sends a band level that swings across both levels every 6 s of plant time (m1 and m2
+    together), as fast as the socket takes it, until told to stop or the peer is gone."""
+
+    def __init__(self, plant: Plant, cycles: int) -> None:
+        super().__init__(name="toggler", daemon=True)
+        self.plant, self.cycles = plant, cycles
+        self.stop = threading.Event()
+        self.error: BaseException | None = None
+
+    def run(self) -> None:
+        try:
+            for _ in range(self.cycles):
+                for rms in ((1.3, 1.3), (0.3, 0.3)):
+                    if self.stop.is_set():
+                        return
+                    self.plant.send(rms, 60)
+        except OSError as e:  # the service was killed under us
+            self.error = e
+
+
+@pytest.mark.slow
+def test_restart_and_kill_keep_events_and_alarm_state(tmp_path: Path) -> None:
+    data = tmp_path / "data"
+    db = data / "quaver.db"
+    # A: m2 latches unacknowledged; m1 reaches danger and is acknowledged while high; the
+    # data stops before the danger event's evidence window is complete
+    svc = start_service(tmp_path / "a", data)
+    try:
+        plant = Plant(svc.tcp_port, seed=1)
+        plant.send((0.3, 0.3), 40)
+        plant.send((0.7, 0.7), 50)
+        plant.send((0.7, 0.3), 50)
+        plant.send((1.3, 0.3), 20)  # not yet on_delay past the step
+        for _ in range(20):  # then block by block until m1 goes to danger (bounded)
+            svc.evaluated(plant.next_block - 1)
+            if svc.alarms()[RULE1]["state"] == "danger":
+                break
+            plant.send((1.3, 0.3), 1)
+        danger_block = plant.next_block - 1
+        plant.close()
+        note = "known resonance, watching it"
+        r = svc.client.post(
+            f"/api/v1/alarms/{RULE1}/ack", json={"note": note}, headers=bearer("operator")
+        )
+        assert r.status_code == 200, r.text
+        events_a, alarms_a = svc.events(), svc.alarms()
+    finally:
+        # uvicorn shuts down gracefully on SIGTERM, then re-raises it (service/app.py)
+        assert stop_service(svc, signal.SIGTERM) in (0, -signal.SIGTERM), svc.log_tail()
+    assert [(e["rule"], e["kind"], e["from_state"], e["to_state"]) for e in events_a] == [
+        (RULE1, "transition", "normal", "alert"),
+        (RULE2, "transition", "normal", "alert"),
+        (RULE2, "transition", "alert", "latched"),
+        (RULE1, "transition", "alert", "danger"),
+        (RULE1, "ack", "danger", "danger"),
+    ]
+    assert events_a[3]["t_ns"] == pytest.approx(frame_t_ns(danger_block), abs=CLOCK_NS)
+    assert not events_a[3]["has_evidence"]  # its waveform window was still open
+    a1, a2 = alarms_a[RULE1], alarms_a[RULE2]
+    assert (a1["state"], a1["acked"], a1["acked_by"], a1["note"]) == (
+        "danger",
+        True,
+        TOKENS["operator"][0],
+        note,
+    )
+    assert (a2["state"], a2["latched"], a2["acked"]) == ("latched", True, False)
+
+    # B: the same data_dir after an orderly stop: every event, and the alarm state as it was
+    svc = start_service(tmp_path / "b", data)
+    toggler: Toggler | None = None
+    try:
+        events_b = svc.events()
+        # the orderly stop kept the open evidence with what it had: BEFORE_S of waveform
+        assert events_b[3]["has_evidence"]
+        wave = svc.get(f"events/{events_b[3]['id']}/evidence")["waveform"]["samples"]
+        assert round(BEFORE_S * FS) <= len(wave) < round((BEFORE_S + AFTER_S) * FS)
+        assert [{**e, "has_evidence": None} for e in events_b] == [
+            {**e, "has_evidence": None} for e in events_a
+        ]
+        events_a = events_b
+        assert svc.alarms() == alarms_a  # state, latch, acknowledgement (who, when, note)
+        assert [a["rule"] for a in svc.get("alarms")] == [RULE1, RULE2]  # both still active
+        # then kill -9 while the alarms keep changing (plant time goes on)
+        toggler = Toggler(Plant(svc.tcp_port, seed=2, first_block=danger_block + 1), cycles=60)
+        toggler.start()
+
+        def eight_more() -> list[dict[str, Any]] | None:
+            ev = svc.events()
+            return ev if len(ev) >= len(events_a) + 8 else None
+
+        seen = svc.wait(eight_more, "alarm transitions while toggling", timeout_s=60)
+        evaluated_ns = svc.alarms()[RULE1]["value_ns"]
+        svc.proc.send_signal(signal.SIGKILL)  # right after reading what was visible
+        # the kill came while frames (and their transitions) were still being worked through
+        assert evaluated_ns < frame_t_ns(toggler.plant.next_block - 1)
+    finally:
+        if toggler is not None:
+            toggler.stop.set()
+        assert stop_service(svc, signal.SIGKILL) == -signal.SIGKILL
+        if toggler is not None:
+            toggler.join(timeout=STOP_TIMEOUT_S)
+            toggler.plant.close()
+    assert seen[: len(events_a)] == events_a
+    for rule in (RULE1, RULE2):  # each rule's events chain on from its restored state
+        chain = [e for e in seen if e["rule"] == rule]
+        assert all(b["from_state"] == a["to_state"] for a, b in itertools.pairwise(chain))
+    assert len(transitions(seen[len(events_a) :], RULE1)) >= 2
+
+    # C: after the kill every event that had been visible is still there, unchanged
+    svc = start_service(tmp_path / "c", data)
+    try:
+        after = svc.events()
+        ids = [e["id"] for e in after]
+        assert ids == sorted(set(ids))
+        by_id = {e["id"]: e for e in after}
+        for e in seen:
+            kept = by_id.get(e["id"])
+            assert kept is not None, f"event {e['id']} visible before the kill is gone"
+            assert {k: v for k, v in kept.items() if k != "has_evidence"} == {
+                k: v for k, v in e.items() if k != "has_evidence"
+            }
+            assert kept["has_evidence"] or not e["has_evidence"]
+        # the alarm state restored is the one the newest committed event of each rule left
+        alarms = svc.alarms()
+        for rule in (RULE1, RULE2):
+            last = [e for e in after if e["rule"] == rule][-1]
+            assert alarms[rule]["state"] == last["to_state"], (rule, last, alarms[rule])
+        # https://www.sqlite.org/pragma.html#pragma_integrity_check
+        with contextlib.closing(
+            sqlite3.connect(f"{db.resolve().as_uri()}?mode=ro", uri=True)
+        ) as conn:
+            assert conn.execute("PRAGMA integrity_check").fetchall() == [("ok",)]
+            assert conn.execute("SELECT COUNT(*) FROM events").fetchone()[0] == len(after)
+    finally:
+        assert stop_service(svc, signal.SIGTERM) in (0, -signal.SIGTERM), svc.log_tail()
