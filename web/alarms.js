@@ -21,17 +21,24 @@ export function alarmListHtml(alarms, { showChannel = true } = {}) {
   return sorted.map((a) => {
     const k = alarmStateKey(a);
     const level = k === "danger" ? a.danger : k === "alert" ? a.alert : null;
-    const since = a.since_ns ? `since ${fmtDateTime(a.since_ns)} (${fmtAge((now - a.since_ns / 1e6) / 1000)})` : "";
+    const sinceS = (now - (a.since_ns ?? 0) / 1e6) / 1000;
+    const since = a.since_ns ? `since ${fmtSince(a.since_ns)}${sinceS >= 1 ? ` (${fmtAge(sinceS)})` : ""}` : "";
     const ackTxt = a.acked ? `acknowledged${a.acked_by ? ` by ${esc(a.acked_by)}` : ""}` : "not acknowledged";
     const chan = showChannel ? `<a href="#/channel/${encodeURIComponent(a.channel)}">${esc(a.channel)}</a> · ` : "";
     return `<li data-rule="${esc(a.rule)}" data-state="${k}" class="${a.acked ? "acked" : ""}">
       ${badge(k)}
       <span class="what">${chan}${esc(what(a))}</span>
       <span class="acts">${a.acked ? "" : `<button class="small" data-ack="${esc(a.rule)}">Acknowledge</button>`}</span>
-      <span class="sub">${fmtVal(a.value)} ${esc(unitLabel(a.unit || ""))}${level ? ` ≥ ${k} ${fmtVal(level)}` : ""}
-        · alert ${fmtVal(a.alert)} / danger ${fmtVal(a.danger)} · ${since} · <b>${ackTxt}</b>${a.note ? ` — “${esc(a.note)}”` : ""}</span>
+      <span class="sub">${fmtVal(a.value)} ${esc(unitLabel(a.unit || ""))}${level ? ` ≥ ${k} level ${fmtVal(level)}` : k === "latched" ? ` (cleared; was ${esc(a.peak || "raised")})` : ""}
+        · ${since} · <b>${ackTxt}</b>${a.note ? ` — “${esc(a.note)}”` : ""}</span>
     </li>`;
   }).join("");
+}
+
+/** Time of day for today, date and time otherwise. */
+function fmtSince(t_ns) {
+  const s = fmtDateTime(t_ns);
+  return new Date(t_ns / 1e6).toDateString() === new Date().toDateString() ? s.slice(11) : s;
 }
 
 const STATE_OF = { normal: "ok", alert: "alert", danger: "danger", latched: "latched", ok: "ok", "sensor-fault": "fault" };
@@ -40,7 +47,7 @@ const STATE_OF = { normal: "ok", alert: "alert", danger: "danger", latched: "lat
 export function eventRowHtml(ev, { showChannel = true } = {}) {
   const to = STATE_OF[ev.to_state] ?? "ok";
   const from = STATE_OF[ev.from_state] ?? "ok";
-  const raising = (RANK[to] ?? 0) > (RANK[from] ?? 0) && (to === "alert" || to === "danger");
+  const raising = ev.has_evidence ?? ((RANK[to] ?? 0) > (RANK[from] ?? 0) && (to === "alert" || to === "danger"));
   const name = ev.rule?.startsWith(`${ev.channel}.`) ? ev.rule.slice(ev.channel.length + 1) : ev.rule;
   const change = ev.kind === "ack"
     ? `acknowledged`
@@ -54,6 +61,24 @@ export function eventRowHtml(ev, { showChannel = true } = {}) {
     <td><span class="msg">${esc(ev.message || "")}${ev.acked_by ? ` — by ${esc(ev.acked_by)}` : ""}${ev.note ? `: “${esc(ev.note)}”` : ""}</span></td>
     <td>${raising ? `<button class="small" data-evidence="${ev.id}">Evidence</button>` : ""}</td>
   </tr>`;
+}
+
+/** A compact event entry for narrow side panels (the full log uses table rows). */
+export function eventItemHtml(ev, { showChannel = true } = {}) {
+  const to = STATE_OF[ev.to_state] ?? "ok";
+  const from = STATE_OF[ev.from_state] ?? "ok";
+  const raising = ev.has_evidence ?? ((RANK[to] ?? 0) > (RANK[from] ?? 0) && (to === "alert" || to === "danger"));
+  const name = ev.rule?.startsWith(`${ev.channel}.`) ? ev.rule.slice(ev.channel.length + 1) : ev.rule;
+  const change = ev.kind === "ack"
+    ? `acknowledged${ev.acked_by ? ` by ${esc(ev.acked_by)}` : ""}`
+    : `<span class="${STATES[from].cls}">${glyph(from, 12)}</span> ${esc(ev.from_state)} → <span class="${STATES[to].cls}">${glyph(to, 12)}</span> <b>${esc(ev.to_state)}</b>`;
+  const val = ev.value === null || ev.value === undefined ? "" : ` · ${fmtVal(ev.value)}${ev.level ? ` / ${fmtVal(ev.level)}` : ""} ${esc(unitLabel(ev.unit || ""))}`;
+  return `<li data-event="${ev.id}">
+    <span class="t">${fmtSince(ev.t_ns)}</span>
+    <span class="what">${showChannel ? `<a href="#/channel/${encodeURIComponent(ev.channel)}">${esc(ev.channel)}</a> · ` : ""}${esc(name)}</span>
+    <span class="acts">${raising ? `<button class="small" data-evidence="${ev.id}">Evidence</button>` : ""}</span>
+    <span class="sub">${change}${val}${ev.note ? ` — “${esc(ev.note)}”` : ""}</span>
+  </li>`;
 }
 
 export function eventHeadHtml({ showChannel = true } = {}) {

@@ -8,12 +8,13 @@ import { SpectrumPlot } from "./spectrum.js";
 import { Spectrogram } from "./spectrogram.js";
 import { BandBars, ThirdsChart, bandRows } from "./bars.js";
 import { TrendChart } from "./trend.js";
-import { alarmListHtml, eventHeadHtml, eventRowHtml } from "./alarms.js";
+import { alarmListHtml, eventItemHtml } from "./alarms.js";
 import { openFilter } from "./filterview.js";
 
 const BEARING = /^(bpfo|bpfi|bsf|ftf)/i;
 const RANGES = { hour: 3600e3, day: 86400e3, month: 30 * 86400e3 };
 const STALE_AFTER_MS = 5000;
+const TREND_STEPS_S = [10, 60, 300, 600, 1800, 3600, 7200, 21600, 86400];
 
 export function mount(root, ctx, id) {
   const chan = () => ctx.store.channels.find((c) => c.id === id);
@@ -60,7 +61,7 @@ export function mount(root, ctx, id) {
         <section class="panel" id="ch-alarms-panel" hidden><header>Alarms on this channel</header><ul class="alarms" id="ch-alarms"></ul></section>
         <section class="panel"><header>Tones and peaks <span class="hint" id="tones-unit"></span></header><table class="tones" id="tones"></table></section>
         <section class="panel" id="ch-events-panel" hidden><header>Events <a class="hint" href="#/events?channel=${encodeURIComponent(id)}">full log</a></header>
-          <table class="events"><thead>${eventHeadHtml({ showChannel: false })}</thead><tbody id="ch-events"></tbody></table></section>
+          <ul class="evlist" id="ch-events"></ul></section>
       </div>
     </div>`;
 
@@ -70,9 +71,9 @@ export function mount(root, ctx, id) {
   const plot = new SpectrumPlot($("#spec"), {
     onView: (v) => sg.setView(v),
     onHover: (info) => {
-      readout.textContent = info
+      setText(readout, info
         ? `${fmtHz(info.f)} · ${info.order !== null ? `${info.order.toFixed(2)}X · ` : ""}${fmtVal(info.v)} ${unitLabel(info.unit, info.amplitude)}`
-        : "";
+        : "");
     },
     onPick: ({ q, f }) => {
       readout.textContent = `picked line ${q} at ${fmtHz(f)} — “Line filter…” shows its response`;
@@ -201,53 +202,80 @@ export function mount(root, ctx, id) {
     staleCheck();
   }
 
-  function onBands(m) {
+  // Text and bars change at the stream's rate (up to 10/s); people read them at ~2/s, and
+  // every DOM change costs layout and paint. Spectra stay at full rate; these are throttled.
+  const TEXT_PERIOD_MS = 500;
+  let bandsAt = 0, tonesAt = 0;
+
+  function onBands(m, force = false) {
     if (m.channel !== id) return;
     const { named, thirds: th } = bandRows(ctx.levels, id, m);
+    plot.setBands(named);
+    const now = performance.now();
+    if (!force && now - bandsAt < TEXT_PERIOD_MS / 2) return;
+    bandsAt = now;
     bars.setRows(named, m.unit);
     thirds.setRows(th, m.unit);
-    plot.setBands(named);
-    $("#bands-unit").textContent = `${unitLabel(m.unit, "rms")} · A = alert, D = danger`;
+    setText($("#bands-unit"), `${unitLabel(m.unit, "rms")} · A = alert, D = danger`);
     fillTrendNames(named);
   }
 
-  function onTones(m) {
+  let toneKey = "";
+  function onTones(m, force = false) {
     if (m.channel !== id) return;
     st.tones = m;
     plot.setServerPeaks(m);
     plot.setMarkers({ speedHz: (chan()?.speed_rpm || 0) / 60, bearing: (m.tones || []).filter((t) => BEARING.test(t.name)).map((t) => ({ name: t.name, f: t.frequency_hz })) });
+    const now = performance.now();
+    if (!force && now - tonesAt < TEXT_PERIOD_MS) return;
+    tonesAt = now;
     const sp = (chan()?.speed_rpm || 0) / 60;
-    const ord = (f) => (sp > 0 && Number.isFinite(f) ? `${(f / sp).toFixed(2)}X` : "");
-    const rows = [`<tr><th>name</th><th>frequency</th><th>order</th><th>amplitude</th></tr>`];
-    for (const t of m.tones || []) rows.push(`<tr><td>${esc(t.name)}</td><td>${fmtHz(t.frequency_hz)}</td><td>${ord(t.frequency_hz)}</td><td>${fmtVal(t.amplitude)}</td></tr>`);
-    if ((m.peaks || []).length) rows.push(`<tr class="sep"><td colspan="4">largest peaks</td></tr>`);
-    for (const p of (m.peaks || []).slice(0, 6)) rows.push(`<tr><td></td><td>${fmtHz(p.frequency_hz)}</td><td>${ord(p.frequency_hz)}</td><td>${fmtVal(p.amplitude)}</td></tr>`);
-    $("#tones").innerHTML = rows.join("");
-    $("#tones-unit").textContent = unitLabel(m.unit, m.amplitude);
+    const ord = (f) => (sp > 0 && Number.isFinite(f) && f / sp < 100 ? `${(f / sp).toFixed(2)}X` : "");
+    const tones = m.tones || [];
+    const peaks = (m.peaks || []).slice(0, 6);
+    const key = tones.map((t) => t.name).join("|") + `/${peaks.length}`;
+    const table = $("#tones");
+    if (key !== toneKey) {
+      // the table's shape changed: build it once, then only its cells' text changes
+      toneKey = key;
+      const row = (name) => `<tr><td>${esc(name)}</td><td></td><td></td><td></td></tr>`;
+      table.innerHTML = `<tr><th>name</th><th>frequency</th><th>order</th><th>amplitude</th></tr>` +
+        tones.map((t) => row(t.name)).join("") +
+        (peaks.length ? `<tr class="sep"><td colspan="4">largest peaks</td></tr>` : "") + peaks.map(() => row("")).join("");
+    }
+    const rows = table.querySelectorAll("tr:not(.sep)");
+    [...tones.map((t) => [t.frequency_hz, t.amplitude]), ...peaks.map((p) => [p.frequency_hz, p.amplitude])].forEach(([f, a], i) => {
+      const c = rows[i + 1]?.cells;
+      if (!c) return;
+      setText(c[1], fmtHz(f));
+      setText(c[2], ord(f));
+      setText(c[3], fmtVal(a));
+    });
+    setText($("#tones-unit"), unitLabel(m.unit, m.amplitude));
   }
 
   function renderHead() {
     const c = chan();
     if (!c) {
-      $("#ch-desc").textContent = ctx.store.channels.length ? "no such channel" : "";
+      setText($("#ch-desc"), ctx.store.channels.length ? "no such channel" : "");
       return;
     }
-    $("#ch-desc").textContent = c.description || "";
+    setText($("#ch-desc"), c.description || "");
     const k = ctx.channelState(c);
     const bh = badge(k);
     if ($("#ch-badge").dataset.k !== k) {
       $("#ch-badge").innerHTML = bh;
       $("#ch-badge").dataset.k = k;
     }
-    $("#ch-fault").textContent = c.fault || "";
+    setText($("#ch-fault"), c.fault || "");
     const L = c.latest;
     const o = $("#ch-overall");
-    o.textContent = L ? fmtVal(L.overall) : "—";
+    setText(o, L ? fmtVal(L.overall) : "—");
     if (L) {
       o.dataset.seq = L.seq;
       o.dataset.value = L.overall;
     }
-    $("#ch-unit").textContent = L ? `${unitLabel(L.unit, "rms")} overall` : "";
+    setText($("#ch-unit"), L ? `${unitLabel(L.unit, "rms")} overall` : "");
     renderFacts();
   }
 
@@ -302,7 +330,7 @@ export function mount(root, ctx, id) {
     try {
       const j = await getJSON(`${API}/events${qs({ channel: id, limit: 10 })}`);
       st.events = j.events || [];
-      const h = st.events.map((ev) => eventRowHtml(ev, { showChannel: false })).join("") || `<tr><td colspan="6" class="empty">No events on this channel.</td></tr>`;
+      const h = st.events.map((ev) => eventItemHtml(ev, { showChannel: false })).join("") || `<li class="empty">No events on this channel.</li>`;
       const tb = $("#ch-events");
       if (tb && tb.dataset.h !== h) {
         tb.innerHTML = h;
@@ -318,7 +346,7 @@ export function mount(root, ctx, id) {
   // --- trend --------------------------------------------------------------------------
   let trendNames = "";
   function fillTrendNames(named) {
-    const names = named.map((b) => b.name).filter((n) => n !== "overall" || features.trend !== true);
+    const names = named.map((b) => b.name);
     const key = names.join("|");
     if (key === trendNames) return;
     trendNames = key;
@@ -329,42 +357,76 @@ export function mount(root, ctx, id) {
 
   let trendBusy = false;
   let trendAt = 0;
+  let trendAgain = false;
   async function loadTrend() {
+    if (trendBusy) {
+      trendAgain = true; // a choice changed meanwhile: load once more when this one ends
+      return;
+    }
+    trendBusy = true;
+    trendAt = Date.now();
+    try {
+      await loadTrendNow();
+    } finally {
+      trendBusy = false;
+    }
+    if (trendAgain) {
+      trendAgain = false;
+      loadTrend();
+    }
+  }
+
+  async function loadTrendNow() {
     const span = RANGES[st.range];
     const nowMs = st.lastT ? st.lastT / 1e6 : Date.now();
     const isFrame = st.trendName === ctx.FRAME;
     const rule = isFrame ? ctx.levels(id, "overall", "overall") : ctx.levels(id, "band", st.trendName);
     const unit = ctx.store.bands.get(id)?.unit || chan()?.latest?.unit || "";
-    const evs = (st.events || []).filter((e) => e.kind !== "ack" && (isFrame ? e.rule === `${id}.overall` : e.rule?.endsWith(`.${slug(st.trendName)}`)))
-      .map((e) => ({ t_ms: e.t_ns / 1e6, state: e.to_state, text: `${e.from_state} → ${e.to_state} ${fmtVal(e.value)}` }));
-    const base = { range: [nowMs - span, nowMs], unit, alert: rule?.alert, danger: rule?.danger, events: evs };
-    if (features.trend !== false && !trendBusy) {
-      trendBusy = true;
-      trendAt = Date.now();
+    const ruleId = isFrame ? `${id}.overall` : `${id}.band.${slug(st.trendName)}`;
+    let evList = st.events || [];
+    if (features.events === true) {
       try {
-        const name = isFrame ? "overall" : st.trendName;
-        const stepS = Math.max(1, Math.round(span / 1000 / 600));
-        const j = await getJSON(`${API}/channels/${encodeURIComponent(id)}/trend${qs({ name, since: Math.round((nowMs - span) * 1e6), until: Math.round(nowMs * 1e6), step: stepS })}`);
+        evList = (await getJSON(`${API}/events${qs({ channel: id, since: Math.round((nowMs - span) * 1e6), limit: 500 })}`)).events || [];
+      } catch {
+        /* markers are a bonus */
+      }
+    }
+    const evs = evList.filter((e) => e.kind === "transition" && e.rule === ruleId)
+      .map((e) => ({ t_ms: e.t_ns / 1e6, state: e.to_state, text: `${e.from_state} → ${e.to_state} at ${fmtVal(e.value)}` }));
+    const base = { range: [nowMs - span, nowMs], unit, alert: rule?.alert, danger: rule?.danger, events: evs };
+    if (features.trend !== false) {
+      const name = isFrame ? "overall" : `band:${st.trendName}`;
+      // about 600 points or fewer, on steps a store keeping 10 s / 1 min / 1 h buckets can give
+      const stepS = TREND_STEPS_S.find((x) => (span / 1000) / x <= 600) ?? 86400;
+      const url = (step) => `${API}/channels/${encodeURIComponent(id)}/trend${qs({ name, since: (nowMs - span) / 1000, until: nowMs / 1000, step })}`;
+      try {
+        let j;
+        try {
+          j = await getJSON(url(stepS));
+        } catch (e) {
+          if (!(e instanceof ApiError) || e.status === 404) throw e;
+          j = await getJSON(url(null)); // the service did not like the step: let it choose
+        }
         features.trend = true;
         const pts = (j.points || []).map((p) => ({ t_ms: p.t_ns / 1e6, mean: p.mean, min: p.min, max: p.max }));
-        trend.set({ ...base, points: pts, note: "" });
-        $("#trend-note").textContent = `stored history, ${stepS} s steps`;
+        trend.set({ ...base, points: pts });
+        $("#trend-note").textContent = `stored history, ${fmtStep(j.step_s ?? stepS)} steps`;
         return;
       } catch (e) {
         if (isMissingRoute(e)) features.trend = false;
-        else if (!(e instanceof TypeError) && !(e instanceof ApiError && e.status >= 500)) features.trend = features.trend ?? true;
-      } finally {
-        trendBusy = false;
+        else if (e instanceof ApiError && e.status === 404) {
+          trend.set({ ...base, points: [] });
+          $("#trend-note").textContent = "nothing stored under this name yet";
+          return;
+        } else return; // unreachable or failing: keep what is drawn
       }
     }
-    if (features.trend === false) {
-      const pts = ctx.history(id, st.trendName).map(([t, v]) => ({ t_ms: t, mean: v }));
-      // Only this session's values: show the part of the period that holds them.
-      const have = pts.length ? nowMs - pts[0].t_ms : 0;
-      const shown = Math.min(span, Math.max(5 * 60e3, have * 1.1));
-      trend.set({ ...base, range: [nowMs - shown, nowMs], points: pts, note: "" });
-      $("#trend-note").textContent = "this service keeps no history yet: values since this page opened";
-    }
+    const pts = ctx.history(id, st.trendName).map(([t, v]) => ({ t_ms: t, mean: v }));
+    // Only this session's values: show the part of the period that holds them.
+    const have = pts.length ? nowMs - pts[0].t_ms : 0;
+    const shown = Math.min(span, Math.max(5 * 60e3, have * 1.1));
+    trend.set({ ...base, range: [nowMs - shown, nowMs], points: pts });
+    $("#trend-note").textContent = "this service keeps no history: values since this page opened";
   }
 
   // --- events from the app ----------------------------------------------------------
@@ -374,13 +436,13 @@ export function mount(root, ctx, id) {
     tones: (e) => onTones(e.detail),
     channels: () => {
       renderHead();
-      if (st.tones) onTones(st.tones);
+      if (st.tones) onTones(st.tones, true);
     },
     alarms: () => {
       renderAlarms();
       renderHead();
       const m = ctx.store.bands.get(id);
-      if (m) onBands(m);
+      if (m) onBands(m, true);
     },
     conn: () => {
       staleCheck();
@@ -417,6 +479,15 @@ export function mount(root, ctx, id) {
       trend.surface.dispose();
     },
   };
+}
+
+/** Set text only when it differs (an unchanged DOM costs nothing to lay out). */
+function setText(el, text) {
+  if (el && el.textContent !== text) el.textContent = text;
+}
+
+function fmtStep(s) {
+  return s >= 3600 ? `${s / 3600} h` : s >= 60 ? `${s / 60} min` : `${s} s`;
 }
 
 function slug(name) {

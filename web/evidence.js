@@ -46,19 +46,22 @@ export async function openEvidence(eventId, ctx) {
   plot.view = null;
   plot.surface.invalidate();
   if (!dlg.open) dlg.showModal();
-  let ev;
+  let ev, e;
   try {
-    ev = await getJSON(`${API}/events/${encodeURIComponent(eventId)}/evidence?format=json`, { timeoutMs: 15000 });
-  } catch (e) {
-    what.textContent = `No evidence for event ${eventId}: ${e.message}`;
+    [ev, e] = await Promise.all([
+      getJSON(`${API}/events/${encodeURIComponent(eventId)}/evidence?format=json`, { timeoutMs: 20000 }),
+      getJSON(`${API}/events/${encodeURIComponent(eventId)}`),
+    ]);
+  } catch (err) {
+    what.textContent = `No evidence for event ${eventId}: ${err.detail ?? err.message}`;
     return;
   }
   if (current !== eventId) return;
-  const e = ev.event || {};
-  what.innerHTML = `<b>${esc(e.channel)}</b> · ${esc(e.rule)} · ${esc(e.from_state)} → <b>${esc(e.to_state)}</b> at ${fmtDateTime(e.t_ns)} · value ${fmtVal(e.value)} / level ${fmtVal(e.level)} ${esc(unitLabel(e.unit || ""))}`;
+  what.innerHTML = `<b>${esc(e.channel)}</b> · ${esc(e.rule)} · ${esc(e.from_state)} → <b>${esc(e.to_state)}</b> at ${fmtDateTime(e.t_ns)} · value ${fmtVal(e.value)} / level ${fmtVal(e.level)} ${esc(unitLabel(e.unit || ""))}` +
+    (e.message ? `<br><span class="hint">${esc(e.message)}</span>` : "");
   const s = ev.spectrum;
   if (s?.values) {
-    plot.setData({ f0: s.f0_hz, df: s.df_hz, values: Float32Array.from(s.values, (v) => v ?? NaN), unit: s.unit, amplitude: s.amplitude, t_ns: e.t_ns });
+    plot.setData({ f0: s.f0_hz, df: s.df_hz, values: Float32Array.from(s.values, (v) => v ?? NaN), unit: s.unit, amplitude: s.amplitude, t_ns: s.t_ns ?? e.t_ns });
     plot.resetView(false);
     const ch = ctx.store.channels.find((c) => c.id === e.channel);
     plot.setMarkers({ speedHz: (ch?.speed_rpm || 0) / 60, bearing: [] });
@@ -82,9 +85,9 @@ export async function openEvidence(eventId, ctx) {
     wave.invalidate();
   }
   const base = `${API}/events/${encodeURIComponent(eventId)}/evidence`;
-  document.getElementById("ev-downloads").innerHTML =
-    `Download: <a href="${base}?format=wav" download>waveform (WAV)</a> <a href="${base}?format=csv" download>CSV</a> <a href="${base}?format=npy" download>NPY</a>` +
-    (wf?.url ? ` <a href="${esc(wf.url)}" download>waveform</a>` : "");
+  const link = (q, label) => `<a href="${base}?${q}" download>${label}</a>`;
+  document.getElementById("ev-downloads").innerHTML = `Download: waveform ${link("format=wav", "WAV")} · ${link("format=csv&part=waveform", "CSV")} · ${link("format=npy&part=waveform", "NPY")}` +
+    ` — spectrum then ${link("format=csv&part=spectrum", "CSV")} · ${link("format=npy&part=spectrum", "NPY")}`;
 }
 
 function drawWave(ctx, w, h) {

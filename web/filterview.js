@@ -34,8 +34,8 @@ async function load() {
   let r = null, source = "";
   if (serviceHasRoute !== false) {
     try {
-      const j = await getJSON(`${API}/windows/${encodeURIComponent(win)}/response${qs({ n, span_bins: span })}`);
-      r = { offset_bins: Float64Array.from(j.offset_bins), gain_db: Float64Array.from(j.gain_db, (v) => v ?? -300) };
+      const j = await getJSON(`${API}/windows/${encodeURIComponent(win)}/response${qs({ n, span_bins: span, points_per_bin: span <= 8 ? 32 : 16 })}`);
+      r = { offset_bins: Float64Array.from(j.offset_bins), gain_db: Float64Array.from(j.gain_db, (v) => v ?? -300), info: j };
       serviceHasRoute = true;
       source = "response from the service";
     } catch (e) {
@@ -47,7 +47,10 @@ async function load() {
     source = "computed in this browser from the window's samples";
   }
   const figs = responseFigures(r.offset_bins, r.gain_db);
-  const enbw = cur.enbw_bins ?? enbwBins(win, n);
+  // The service computes the window's figures exactly (not from the plotted grid): prefer them.
+  if (Number.isFinite(r.info?.scalloping_loss_db)) figs.scallop = r.info.scalloping_loss_db;
+  if (Number.isFinite(r.info?.highest_sidelobe_db)) figs.sidelobe = r.info.highest_sidelobe_db;
+  const enbw = r.info?.enbw_bins ?? cur.enbw_bins ?? enbwBins(win, n);
   data = { ...r, figs, source, enbw, span };
   document.getElementById("flt-source").textContent = source;
   const f = [
@@ -107,7 +110,7 @@ function draw(ctx, w, h) {
     ctx.fillText(`${k > 0 ? "+" : ""}${k}`, xs.px(k), B + 4);
     ctx.fillStyle = pal["ink-3"];
     ctx.textBaseline = "bottom";
-    if (k % (every * 2) === 0) ctx.fillText(fmtHz(cur.f + k * cur.df, false), xs.px(k), T - 4);
+    if (k % (every * 2) === 0 && Math.abs(k) < span) ctx.fillText(fmtHz(cur.f + k * cur.df, false), xs.px(k), T - 4);
     ctx.textBaseline = "top";
   }
   // ENBW: the rectangle of equal noise power
@@ -150,7 +153,7 @@ function draw(ctx, w, h) {
   ctx.textBaseline = "bottom";
   ctx.fillText("dB", 6, T - 4);
   ctx.textAlign = "right";
-  ctx.fillText("Hz", R, T - 16);
+  ctx.fillText("Hz", R, T - 4);
   ctx.textBaseline = "bottom";
   ctx.fillText("offset from the line centre, lines   (shaded: ENBW)", R, h - 1);
 }

@@ -48,7 +48,8 @@ export function unitLabel(unit, amplitude) {
 export function fmtClock(t_ns) {
   if (!t_ns) return "—";
   const d = new Date(Number(t_ns) / 1e6);
-  return d.toLocaleTimeString([], { hour: "2-digit", minute: "2-digit", second: "2-digit", hour12: false });
+  const p = (n) => String(n).padStart(2, "0");
+  return `${p(d.getHours())}:${p(d.getMinutes())}:${p(d.getSeconds())}`;
 }
 
 /** Local date and time of a ns timestamp, "2026-12-02 14:03:07". */

@@ -98,7 +98,7 @@ export class Live extends EventTarget {
       this._emit("channels", ch);
       if (features.alarms !== false) {
         try {
-          const al = await getJSON(`${API}/alarms`, { timeoutMs: 4000 });
+          const al = await getJSON(`${API}/alarms?all=true`, { timeoutMs: 4000 });
           features.alarms = true;
           this.alarms = Array.isArray(al) ? al : al.alarms ?? [];
         } catch (e) {
@@ -195,13 +195,22 @@ export class Live extends EventTarget {
         this.refreshPlant();
         break;
       case "status": {
-        const i = this.channels.findIndex((c) => c.id === (m.id ?? m.channel));
-        if (i >= 0) this.channels[i] = { ...this.channels[i], ...m, id: this.channels[i].id };
-        this._emit("channels", this.channels);
+        // {"kind": "status", "channels": [{id, status, fault}]} about once a second
+        let changed = false;
+        for (const u of m.channels || [m]) {
+          const i = this.channels.findIndex((c) => c.id === (u.id ?? u.channel));
+          if (i < 0) continue;
+          const c = this.channels[i];
+          if (c.status !== u.status || (u.fault ?? c.fault) !== c.fault) {
+            this.channels[i] = { ...c, status: u.status, fault: u.fault ?? c.fault };
+            changed = true;
+          }
+        }
+        if (changed) this._emit("channels", this.channels);
         break;
       }
       case "error":
-        console.warn("service says:", m.message ?? m.detail ?? m);
+        console.warn("the service refused the subscription:", m.reason ?? m.message ?? m);
         break;
       default:
         break;

@@ -3,7 +3,7 @@
 
 import { API, features, getJSON, isMissingRoute } from "./api.js";
 import { Live } from "./live.js";
-import { loadPalette } from "./plot.js";
+import { Surface, loadPalette } from "./plot.js";
 import { STATES, alarmStateKey, badge, channelStateKey, glyph } from "./states.js";
 import { esc, fmtClock, fmtVal } from "./fmt.js";
 import * as overview from "./overview.js";
@@ -39,6 +39,7 @@ const ctx = {
   channelState,
   alarmsFor,
   history,
+  seedHistory,
   FRAME,
 };
 
@@ -57,6 +58,15 @@ function channelState(c) {
 
 function history(channelId, name) {
   return store.hist.get(channelId)?.get(name) ?? [];
+}
+
+/** Put stored points (older than what this session saw) in front of a history. */
+function seedHistory(channelId, name, pts) {
+  let m = store.hist.get(channelId);
+  if (!m) store.hist.set(channelId, (m = new Map()));
+  const a = m.get(name) || [];
+  const first = a.length ? a[0][0] : Infinity;
+  m.set(name, pts.filter((p) => p[0] < first).concat(a));
 }
 
 function remember(channelId, name, t_ms, v) {
@@ -259,7 +269,7 @@ function init() {
   live.start();
   probeEvents();
   setInterval(() => app.dispatchEvent(new CustomEvent("tick")), 1000);
-  window.quaver = { live, store, version: 1 }; // for people poking around in devtools
+  window.quaver = { live, store, Surface, version: 1 }; // for people poking around in devtools
 }
 
 init();

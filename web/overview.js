@@ -1,12 +1,12 @@
 // The plant view: every channel grouped by machine, each with its state (word + shape),
 // overall value, a short history and its main bands; active alarms and recent events beside.
 
-import { API, features, getJSON } from "./api.js";
-import { esc, fmtAge, fmtHz, fmtVal, unitLabel } from "./fmt.js";
+import { API, features, getJSON, isMissingRoute, qs } from "./api.js";
+import { esc, fmtHz, fmtVal, unitLabel } from "./fmt.js";
 import { STATES, badge, glyph } from "./states.js";
 import { BandBars, bandRows, topBands } from "./bars.js";
 import { Surface, pal } from "./plot.js";
-import { alarmListHtml, eventHeadHtml, eventRowHtml } from "./alarms.js";
+import { alarmListHtml, eventItemHtml } from "./alarms.js";
 import { groupByMachine } from "./main.js";
 
 const SPARK_MS = 10 * 60e3;
@@ -64,7 +64,7 @@ export function mount(root, ctx) {
       </div>
       <aside id="ov-side">
         <section class="panel" id="ov-alarms" hidden><header>Active and latched alarms</header><ul class="alarms" id="ov-alarm-list"></ul></section>
-        <section class="panel" id="ov-events" hidden><header>Recent events <a class="hint" href="#/events">full log</a></header><table class="events"><thead>${eventHeadHtml()}</thead><tbody id="ov-event-rows"></tbody></table></section>
+        <section class="panel" id="ov-events" hidden><header>Recent events <a class="hint" href="#/events">full log</a></header><ul class="evlist" id="ov-event-rows"></ul></section>
       </aside>
     </div>`;
   const cards = new Map(); // channel → {el, bars, spark, ...}
@@ -111,12 +111,31 @@ export function mount(root, ctx) {
     }
   }
 
+  /** Fill the sparklines with the stored last ten minutes, when the service keeps trends. */
+  async function seedSparks() {
+    if (features.trend === false) return;
+    for (const c of ctx.store.channels) {
+      if (disposed || !c.latest) continue;
+      const until = c.latest.timestamp_ns / 1e9;
+      try {
+        const j = await getJSON(`${API}/channels/${encodeURIComponent(c.id)}/trend${qs({ name: "overall", since: until - SPARK_MS / 1000, until, step: 10 })}`);
+        features.trend = true;
+        ctx.seedHistory(c.id, ctx.FRAME, (j.points || []).map((p) => [p.t_ns / 1e6, p.mean]));
+        cards.get(c.id)?.spark.surface.invalidate();
+      } catch (e) {
+        if (isMissingRoute(e)) features.trend = false;
+        return;
+      }
+    }
+  }
+
   function update() {
     const chans = ctx.store.channels;
     const key = chans.map((c) => c.id).join(",");
     if (key !== ids) {
       ids = key;
       build();
+      seedSparks();
     }
     const stale = ctx.store.conn === "reconnecting";
     let nAbn = 0;
@@ -191,7 +210,7 @@ export function mount(root, ctx) {
     evBusy = true;
     try {
       const j = await getJSON(`${API}/events?limit=12`);
-      const rows = (j.events || []).map((ev) => eventRowHtml(ev)).join("") || `<tr><td colspan="7" class="empty">No events yet.</td></tr>`;
+      const rows = (j.events || []).map((ev) => eventItemHtml(ev)).join("") || `<li class="empty">No events yet.</li>`;
       const tb = document.getElementById("ov-event-rows");
       if (tb && tb.dataset.h !== rows) {
         tb.innerHTML = rows;
@@ -236,7 +255,6 @@ export function mount(root, ctx) {
   update();
   renderAlarms();
   loadEvents();
-  void fmtAge;
   return {
     unmount() {
       disposed = true;

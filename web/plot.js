@@ -55,7 +55,10 @@ export class Surface {
       this._pending = false;
       if (!this.w || !this.h || !this.canvas.isConnected) return;
       this.ctx.setTransform(this.dpr, 0, 0, this.dpr, 0, 0);
+      const t0 = performance.now();
       this.drawFn(this.ctx, this.w, this.h);
+      // Opt-in draw timing for performance checks: set Surface.stats = [] in devtools.
+      if (Surface.stats) Surface.stats.push([this.canvas.id || this.canvas.className, performance.now() - t0]);
     });
   }
 
@@ -63,6 +66,7 @@ export class Surface {
     this._ro.disconnect();
   }
 }
+Surface.stats = null;
 
 /** Linear or logarithmic map from a value range [lo, hi] to a pixel range [p0, p1]. */
 export class Scale {

@@ -10,7 +10,7 @@ export const MARGIN = { l: 58, r: 14, t: 24, b: 30 };
 const LOG_DECADES = 4;
 const MAX_PEAK_LABELS = 6;
 const MAX_HARMONICS = 10;
-const WIDE_BAND = 0.12; // a band wider than this share of the view is drawn as a bracket, not a fill
+const WIDE_RATIO = 1.6; // a band with hi/lo above this (over ~2/3 octave) gets a bracket, not a fill
 
 /** Bins of one spectrum in [qa, qb] (inclusive) whose frequencies fall in [fa, fb). */
 function binRange(f0, df, n, fa, fb) {
@@ -347,7 +347,7 @@ export class SpectrumPlot {
     if (this.overlay) {
       const o = this.overlay;
       const oe = columnExtremes(o.values, o.f0, o.df, xs, W);
-      this._trace(ctx, oe, yOf, pal["trace-2"], 1.1, [4, 2]);
+      this._trace(ctx, oe, yOf, pal["trace-2"], 2.2);
     }
     this._trace(ctx, ext, yOf, this.stale ? pal["ink-3"] : pal.trace, 1.1);
     this._drawDots(ctx, d, yOf);
@@ -477,15 +477,16 @@ export class SpectrumPlot {
       const x1 = Math.min(xs.p1, xs.px(b.hi_hz));
       if (x1 - x0 < 1) continue;
       const abn = b.state === "danger" || b.state === "alert";
-      const wide = x1 - x0 > (xs.p1 - xs.p0) * WIDE_BAND;
+      const wide = b.hi_hz > WIDE_RATIO * Math.max(b.lo_hz, 1e-9);
       ctx.fillStyle = b.state === "danger" ? pal.danger : b.state === "alert" ? pal.alert : pal.region;
-      if (!wide) {
-        ctx.globalAlpha = abn ? 0.16 : 1;
+      if (!wide || abn) {
+        ctx.globalAlpha = abn ? (wide ? 0.09 : 0.16) : 1;
         ctx.fillRect(x0, T, x1 - x0, B - T);
         ctx.globalAlpha = 1;
-      } else {
+      }
+      if (wide) {
         // a wide band (e.g. an overall range): a bracket along the top instead of a fill
-        if (!abn) ctx.fillStyle = pal["ink-3"];
+        ctx.fillStyle = abn ? (b.state === "danger" ? pal.danger : pal.alert) : pal["ink-3"];
         ctx.fillRect(x0, T, x1 - x0, 2);
         ctx.fillRect(x0, T, 1.5, 12);
         ctx.fillRect(x1 - 1.5, T, 1.5, 12);
@@ -495,10 +496,10 @@ export class SpectrumPlot {
       ctx.textAlign = "left";
       ctx.textBaseline = "top";
       if (x1 - x0 > ctx.measureText(b.name).width + 4) ctx.fillText(b.name, x0 + 3, T + (wide ? 5 : 3));
-      // Levels: a band's RMS reaches its level when one line in the band reaches it, so the
-      // level is drawn across the band in the spectrum's unit (same quantity only).
+      // Levels: a narrow band's RMS reaches its level when one line in it reaches the level,
+      // so the level is drawn across the band in the spectrum's unit (same quantity only).
       const k = convertFactor(b.unit, d.unit, d.amplitude, "rms");
-      if (k === null) continue;
+      if (k === null || wide) continue; // a wide band's RMS sums many lines: no per-line level
       for (const [lvl, dash, wdt, tag] of [[b.alert, [5, 3], 1, "A"], [b.danger, [], 1.6, "D"]]) {
         if (!(lvl > 0)) continue;
         const y = yOf(lvl * k);
@@ -539,7 +540,7 @@ export class SpectrumPlot {
     const f1 = this.speedHz;
     if (!f1) return;
     const spacing = this.xs.px(this.view.hi) - this.xs.px(this.view.hi - f1);
-    if (spacing < 4) return;
+    if (spacing < 8) return;
     ctx.font = `10px ${pal.font}`;
     for (let k = 1; k <= MAX_HARMONICS && k * f1 <= this.view.hi; k++) {
       if (k * f1 < this.view.lo) continue;
