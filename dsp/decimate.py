@@ -1,4 +1,4 @@
-"""Streaming decimation: anti-alias FIR stages of factor 2–10, chains planned from (fs, Fmax), shared taps.
+"""Streaming decimation: anti-alias FIR stages of 2–10, chains planned from (fs, Fmax), shared taps.
 
 Knows nothing about sources, files, asyncio, the service or its config; numpy and scipy only.
 
@@ -414,7 +414,8 @@ class Decimator:
     fs_out − fs_out/2.56, ``ripple_db`` and ``atten_db`` as stated. Arithmetic is float64.
 
     Example: 1 s of a 1 V-peak 100 Hz sine at 10 240 Hz, decimated by 4 to 2560 Hz; once
-    settled the output is the same sine, delayed by ``delay_in`` input samples.
+    settled the output is the same sine, delayed by ``delay_in`` input samples, within the
+    passband ripple (±0.05 dB, i.e. ±0.6 %).
 
     >>> import numpy as np
     >>> d = Decimator(1, 4, 10240.0)
@@ -422,7 +423,7 @@ class Decimator:
     >>> y = d.push(x)
     >>> k = np.arange(d.first_settled_index, y.shape[1])
     >>> ref = np.sin(2 * np.pi * 100 * d.content_index(k) / 10240.0)
-    >>> y.shape, bool(np.abs(y[0, k] - ref).max() < 1e-3)
+    >>> y.shape, bool(np.abs(y[0, k] - ref).max() < 0.006)
     ((1, 2560), True)
     """
 
@@ -481,7 +482,7 @@ class Decimator:
         return k_out * self.factor + self.phase
 
     def content_index(self, k_out: int | np.ndarray) -> int | np.ndarray:
-        """Input index that output ``k_out`` stands for: k′·R + phase − delay_in (a multiple of R)."""
+        """Input index output ``k_out`` stands for: k′·R + phase − delay_in (a multiple of R)."""
         return self.index_in(k_out) - self.delay_in
 
     @property
@@ -513,7 +514,7 @@ class Decimator:
         self._next_in = k0
         # The buffer starts span − 1 samples before the next output's input; those before
         # k0 are the zeros a restarted filter sees.
-        zeros = self._span - 1 - (self.index_in(self._next_out) - k0)
+        zeros = self._span - 1 - (self._next_out * self.factor + self.phase - k0)
         self._lo, self._hi = 0, zeros
         self._buf[:, :zeros] = 0.0
         self._settled_out = _ceil_div(int(settled_from) + self.taps.size - 1 - self.phase,
