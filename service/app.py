@@ -5,8 +5,10 @@ Owns start-up and shut-down order; the pieces it wires know nothing about each o
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import functools
 import logging
+import signal
 import time
 import tomllib
 from collections.abc import Callable
@@ -227,9 +229,17 @@ async def serve(
     config = uvicorn.Config(
         service.app(), host=host, port=port, log_level="warning", access_log=False, lifespan="on"
     )
-    # uvicorn catches SIGINT/SIGTERM, shuts down gracefully (the lifespan stops the
-    # pipelines and closes the store), then re-raises the signal.
     server = uvicorn.Server(config)
+    # SIGINT/SIGTERM ask for a graceful stop (the lifespan stops the pipelines and closes
+    # the store) and the process then exits 0. uvicorn's own handling would re-raise the
+    # signal after shutting down, which a service manager reads as a crash.
+    server.capture_signals = contextlib.nullcontext  # type: ignore[method-assign,assignment]
+    loop = asyncio.get_running_loop()
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        try:
+            loop.add_signal_handler(sig, lambda: setattr(server, "should_exit", True))
+        except (NotImplementedError, RuntimeError):  # not the main thread (tests)
+            pass
     task = asyncio.create_task(server.serve())
     while not server.started and not task.done():
         await asyncio.sleep(0.02)
