@@ -33,6 +33,7 @@ import scipy.signal
 from prometheus_client.parser import text_string_to_metric_families
 from websockets.exceptions import ConnectionClosed, InvalidStatus
 from websockets.sync.client import connect as ws_connect
+from websockets.typing import Origin
 
 from service.wire import encode_frame
 
@@ -109,14 +110,13 @@ def sine_blocks(
 
 
 class Plant:
-    """Our producer on the service's framed TCP source; keeps every sample it sent."""
+    """Our producer on the service's framed TCP source: block b carries samples b·BLOCK… and
+    the header time T0 + b·BLOCK/fs (the plant clock)."""
 
     def __init__(self, port: int, seed: int, first_block: int = 0) -> None:
         self.sock = socket.create_connection((LOOPBACK, port), timeout=10)
         self.rng = np.random.default_rng(seed)
         self.next_block = first_block
-        self.first_block = first_block
-        self.chunks: list[np.ndarray] = []
 
     def send(self, rms: tuple[float, float], count: int) -> None:
         """Send ``count`` blocks of sines with RMS ``rms`` (m1, m2), one frame per block."""
@@ -133,7 +133,6 @@ class Plant:
                 )
             )
         self.sock.sendall(b"".join(frames))
-        self.chunks.append(x)
         self.next_block += x.shape[1] // BLOCK
 
     def send_malformed(self) -> None:
@@ -144,10 +143,6 @@ class Plant:
         )
         bad[-1] ^= 0xFF
         self.sock.sendall(bytes(bad))
-
-    @property
-    def samples(self) -> np.ndarray:
-        return np.concatenate(self.chunks, axis=1)
 
     def close(self) -> None:
         with contextlib.suppress(OSError):
@@ -160,11 +155,14 @@ class Plant:
 def reference_band(x: np.ndarray) -> np.ndarray:
     """Band-b RMS (g) after every frame of one channel's samples ``x`` (stream from index 0).
 
-    Hann (periodic) window; PS = 2|X|²/S1² and band RMS = √(Σ w_q·PS_q / ENBW_bins), ENBW_bins
-    = N·S2/S1² (Heinzel et al. 2002, §9–10; Harris 1978 Table 1: Hann 1.5 bins), lines
-    straddling a band edge counted by the share of their width inside it (README, bands);
-    exponential average of powers y += (x − y)/min(k, averages) (README, [analysis]
-    averaging; Heinzel et al. 2002 §8: average powers, not magnitudes).
+    Frames of N samples every hop from index 0, periodic Hann window (scipy.signal.get_window);
+    PS = 2|X|²/S1² and band RMS = √(Σ s_q·PS_q / ENBW_bins) with ENBW_bins = N·S2/S1²
+    (Heinzel et al. 2002, §9–10; README "What it computes"; Harris 1978 Table 1: Hann 1.5
+    bins); s_q is the share of line q's width inside the band (common practice: the split
+    documented in dsp/bands.band_weights — it only matters for frames that straddle an
+    amplitude step); powers, not magnitudes, averaged (Heinzel et al. 2002 §8) exponentially,
+    y += (x − y)/min(k, averages) with averages = 2 (common practice; the start-up as
+    dsp/averaging.py documents it).
     """
     w = scipy.signal.get_window("hann", N_FRAME)  # scipy.signal: periodic by default
     s1, s2 = w.sum(), (w**2).sum()
@@ -378,6 +376,22 @@ class Svc:
                 break
         return out[::-1]
 
+    def event_at(self, rule: str, t_ns: int) -> dict[str, Any]:
+        """Wait for the event of ``rule`` at ``t_ns`` to show in /events (it is committed
+        before it is announced, so this is the moment a client could first see it)."""
+
+        def probe() -> dict[str, Any] | None:
+            channel = rule.split(".")[0]
+            hits = [e for e in self.events(channel=channel) if e["rule"] == rule]
+            return next((e for e in hits if e["t_ns"] == t_ns), None)
+
+        return self.wait(probe, f"the {rule} event at {t_ns} in /events")
+
+    def wait_evidence(self, event_id: int) -> None:
+        self.wait(
+            lambda: self.get(f"events/{event_id}")["has_evidence"], f"evidence of event {event_id}"
+        )
+
     def evaluated(self, block: int) -> None:
         """Wait until the alarm engine has evaluated the frame that ``block`` completes, on
         both channels (then /alarms, /spectrum and /bands show that frame)."""
@@ -531,18 +545,7 @@ def _script(svc: Svc) -> Run:
                     plant.send_samples(x[:, sent * BLOCK : (sent + 1) * BLOCK])
                     sent += 1
                     svc.evaluated(sent - 1)
-                since = svc.alarms()[RULE1]["since_ns"]
-                ev = svc.wait(
-                    lambda since=since: next(
-                        (
-                            e
-                            for e in svc.events(channel="m1")
-                            if e["t_ns"] == since and e["rule"] == RULE1
-                        ),
-                        None,
-                    ),
-                    "the raising event in /events",
-                )
+                ev = svc.event_at(RULE1, svc.alarms()[RULE1]["since_ns"])
                 at_event[(RULE1, ev["from_state"], ev["to_state"])] = {
                     "spectrum": svc.get("channels/m1/spectrum"),
                     "event": ev,
@@ -695,10 +698,7 @@ def test_evidence_is_the_spectrum_and_waveform_of_the_moment(run: Run) -> None:
     for (_, _, to), seen in run.at_event.items():
         ev, then = seen["event"], seen["spectrum"]
         rms = SEGMENTS[1 if to == "alert" else 2][1]
-        svc.wait(
-            lambda ev=ev: svc.get(f"events/{ev['id']}")["has_evidence"],
-            f"evidence of event {ev['id']}",
-        )
+        svc.wait_evidence(ev["id"])
         base = f"/api/v1/events/{ev['id']}/evidence"
         j = svc.get(f"events/{ev['id']}/evidence")
         spec = j["spectrum"]
@@ -876,6 +876,9 @@ def test_body_limit_bad_queries_and_unknown_channels(run: Run) -> None:
     assert "nope" in c.get("/api/v1/channels/nope/spectrum").json()["detail"]
 
 
+EVIL = Origin("http://evil.example")  # a page from elsewhere, in a browser on this machine
+
+
 def _ws_url(svc: Svc) -> str:
     return f"ws://{LOOPBACK}:{svc.http_port}/api/v1/stream"
 
@@ -886,7 +889,7 @@ def test_websocket_from_a_foreign_origin_gets_nothing(run: Run) -> None:
         assert hello["kind"] == "hello" and hello["channels"] == list(CHANNELS)
     refused = False
     try:
-        with ws_connect(_ws_url(run.svc), origin="http://evil.example", open_timeout=10) as ws:
+        with ws_connect(_ws_url(run.svc), origin=EVIL, open_timeout=10) as ws:
             ws.recv(timeout=10)
     except InvalidStatus as e:  # handshake refused (an ASGI close before accept is a 403)
         refused = e.response.status_code == 403
@@ -904,7 +907,7 @@ def test_websocket_from_a_foreign_origin_gets_nothing(run: Run) -> None:
     ),
 )
 def test_websocket_from_a_foreign_origin_is_closed_with_1008(run: Run) -> None:
-    with ws_connect(_ws_url(run.svc), origin="http://evil.example", open_timeout=10) as ws:
+    with ws_connect(_ws_url(run.svc), origin=EVIL, open_timeout=10) as ws:
         with pytest.raises(ConnectionClosed) as e:
             ws.recv(timeout=10)
     assert e.value.rcvd is not None
