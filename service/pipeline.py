@@ -30,6 +30,7 @@ from .types import BandValue, SampleBlock, SpectralFrame, ToneValue
 log = logging.getLogger("quaver.pipeline")
 
 OVERALL = "_overall"  # internal band: RMS over lowcut_hz … fmax_hz in the display unit
+FLAT_MIN_S = 0.05  # identical samples for this long = a flat (dead) sensor; our choice
 FAULT_HOLD_S = 2.0  # a sensor fault is held this long after the last bad block (common practice)
 OVERRUN_HOLD_S = 5.0
 
@@ -177,6 +178,8 @@ class SourcePipeline:
         self._executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix=f"dsp-{sid}")
         self._last_drops = 0
         self._last_block: SampleBlock | None = None
+        self._flat_run: np.ndarray | None = None
+        self._flat_last: np.ndarray | None = None
 
     async def run(self) -> None:
         """Consume the source until it ends or the task is cancelled."""
@@ -216,8 +219,7 @@ class SourcePipeline:
         finite = np.isfinite(x).all(axis=1)
         if not finite.all():
             x = np.where(np.isfinite(x), x, 0.0).astype(np.float32)
-        ptp = np.ptp(x, axis=1) if x.shape[1] else np.zeros(x.shape[0])
-        flat = (ptp == 0) & (x.shape[1] >= 0.05 * block.fs)
+        flat = self._flat_line(x, block.fs, gap)
         for c, st in enumerate(states):
             st.fs = block.fs
             st.samples += block.n
@@ -270,6 +272,26 @@ class SourcePipeline:
                 st.status = "ok"
         return frames
 
+    def _flat_line(self, x: np.ndarray, fs: float, gap: bool) -> np.ndarray:
+        """Per channel: has the signal held one exact value for FLAT_MIN_S or longer?
+
+        The run of identical samples is carried across blocks (short frames or datagrams
+        each hold too few samples to tell), and restarts after a gap."""
+        c_count, n = x.shape
+        if self._flat_run is None or self._flat_run.size != c_count or gap:
+            self._flat_run = np.zeros(c_count, dtype=np.int64)
+            self._flat_last = np.full(c_count, np.nan, dtype=np.float32)
+        if n:
+            last = x[:, -1]
+            differs = x != last[:, None]
+            any_differs = differs.any(axis=1)
+            # samples after the last one that differs from the block's final value
+            trailing = np.where(any_differs, np.argmax(differs[:, ::-1], axis=1), n)
+            continues = ~any_differs & (last == self._flat_last)
+            self._flat_run = np.where(continues, self._flat_run + n, trailing)
+            self._flat_last = last.copy()
+        return self._flat_run >= FLAT_MIN_S * fs  # type: ignore[no-any-return]
+
     def request_evidence(
         self, event_id: int, channel: str, center_index: int, spectrum: dict[str, object]
     ) -> None:
@@ -309,7 +331,8 @@ class SourcePipeline:
             wave, first = ring.snippet(
                 rows[req.channel], req.center_index - req.before, req.center_index + req.after
             )
-            t0_ns = int(block.t0_ns + (first - block.first_index) * 1e9 / block.fs)
+            # integer ns plus a rounded offset: a float64 near today's epoch is 256 ns coarse
+            t0_ns = block.t0_ns + round((first - block.first_index) * 1e9 / block.fs)
             self.ready.append(
                 Evidence(req.event_id, req.channel, req.spectrum, wave, block.fs, t0_ns)
             )
@@ -327,7 +350,7 @@ class SourcePipeline:
         peaks = an.peaks()
         end = an.last_end_index or 0
         # Time of the newest frame's end, from the block's own clock.
-        t_ns = int(block.t0_ns + (end - block.first_index) * 1e9 / block.fs)
+        t_ns = block.t0_ns + round((end - block.first_index) * 1e9 / block.fs)
         out = []
         for c, cid in enumerate(g.channel_ids):
             st = self.channels[cid]

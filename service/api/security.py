@@ -78,11 +78,13 @@ async def check_websocket(ws: WebSocket) -> bool:
         host = ws.headers.get("host", "")
         allowed = {o.rstrip("/") for o in cfg.service.cors_origins}
         if urlsplit(origin).netloc != host and origin.rstrip("/") not in allowed:
+            await ws.accept()  # accept, then close: the client sees code 1008 and the reason
             await ws.close(code=1008, reason="origin not allowed")
             return False
     if not loopback_only(cfg):
         token = ws.query_params.get("token") or _bearer(ws.headers.get("authorization"))
         if authenticate(token, cfg.tokens) is None:
+            await ws.accept()
             await ws.close(code=1008, reason="a viewer token is required")
             return False
     return True

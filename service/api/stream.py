@@ -101,6 +101,7 @@ class _Session:
         self.spec = Subscription.model_validate({})
         self.last_sent: dict[str, float] = {}
         self.held_back = 0
+        self.held: dict[str, SpectralFrame] = {}  # newest frame per channel held by the rate
 
     def apply(self, spec: Subscription) -> None:
         self.spec = spec
@@ -154,9 +155,14 @@ class _Session:
                     }
                 )
                 next_status = now + STATUS_PERIOD_S
+            timeout = STATUS_PERIOD_S
+            if self.held:
+                timeout = min(timeout, max(0.0, min(self._due(c) for c in self.held) - now))
             try:
-                item = await asyncio.wait_for(self.sub.queue.get(), timeout=STATUS_PERIOD_S)
+                item = await asyncio.wait_for(self.sub.queue.get(), timeout=timeout)
             except TimeoutError:
+                for channel in [c for c in self.held if self._due(c) <= time.monotonic()]:
+                    await self._send_frame(self.held.pop(channel))
                 continue
             if isinstance(item, SpectralFrame):
                 await self._send_frame(item)
@@ -164,12 +170,20 @@ class _Session:
                 if "alarms" in self.spec.kinds:
                     await self.send_json({"kind": "alarm", **item})
 
+    def _due(self, channel: str) -> float:
+        """When the next frame of ``channel`` may go out under the rate limit (monotonic s)."""
+        return self.last_sent.get(channel, -1e9) + 0.999 / self.spec.max_rate_hz
+
     async def _send_frame(self, frame: SpectralFrame) -> None:
         now = time.monotonic()
-        min_gap = 1.0 / self.spec.max_rate_hz
-        if now - self.last_sent.get(frame.channel, -1e9) < min_gap * 0.999:
-            self.held_back += 1
+        if now < self._due(frame.channel):
+            # Too soon: hold it as the channel's newest and send it when the interval is up
+            # (a frame it replaces counts as missed).
+            if self.held.pop(frame.channel, None) is not None:
+                self.held_back += 1
+            self.held[frame.channel] = frame
             return
+        self.held.pop(frame.channel, None)
         self.last_sent[frame.channel] = now
         kinds = self.spec.kinds
         missed = self.sub.missed + self.held_back

@@ -898,14 +898,6 @@ def test_websocket_from_a_foreign_origin_gets_nothing(run: Run) -> None:
     assert refused
 
 
-@pytest.mark.xfail(
-    strict=True,
-    raises=InvalidStatus,
-    reason=(
-        "service/api/security.py check_websocket closes before accepting; per the ASGI spec the "
-        "server then answers HTTP 403, so the client never sees close code 1008 or its reason"
-    ),
-)
 def test_websocket_from_a_foreign_origin_is_closed_with_1008(run: Run) -> None:
     with ws_connect(_ws_url(run.svc), origin=EVIL, open_timeout=10) as ws:
         with pytest.raises(ConnectionClosed) as e:

@@ -406,9 +406,6 @@ def test_nan_and_flat_line_are_sensor_faults_per_channel(svc: RunningService) ->
     svc.assert_healthy()
 
 
-@pytest.mark.xfail(strict=True, reason="service/pipeline.py SourcePipeline.process only calls "
-                   "a block flat when it holds >= 0.05*fs samples, so a producer sending short "
-                   "frames or datagrams (here 10 ms at 25.6 kHz) never shows a flat line")
 def test_flat_line_in_short_frames_is_a_sensor_fault(svc: RunningService) -> None:
     fs = 25600.0
     n = int(fs)  # one second, in 10-ms frames of 256 samples (common for low-latency links)
@@ -720,10 +717,6 @@ def test_websocket_spectra_equal_rest_and_a_stalled_client_delays_no_one(
     svc.assert_healthy()
 
 
-@pytest.mark.xfail(strict=True, reason="service/api/stream.py _Session._send_frame drops a "
-                   "frame that arrives within 1/max_rate_hz of the last one sent instead of "
-                   "deferring it, so after a burst the client keeps a stale spectrum until "
-                   "another frame comes (DESIGN.md: a slow client skips to the newest frame)")
 def test_websocket_rate_limit_still_delivers_the_newest_frame(svc: RunningService) -> None:
     x = signal(N_FRAME + 2 * HOP, seed=808, amps=((1.0, 0.2),))
     # three blocks, each completing one analysis frame: published within moments of each other
