@@ -24,7 +24,9 @@ Indices and time (one stage, factor R, taps h[0…N−1], N odd)
     * the phase is global: after a gap at input index k₀ the next output is the first k′
       with k′·R + phase ≥ k₀, so output indices keep meaning the same input indices and the
       gap shows downstream as a jump in the output index (``FilterBank`` restarts on it).
-    Blocks of any length give the same outputs as one block (streaming equals batch).
+    Blocks of any length give the same outputs as one block (streaming equals batch), to a
+    few float32 roundings: sgemm may round the R-term sums differently for another block
+    width; the filter state and the phase are carried exactly.
 
 Anti-alias specification (stated, designed with margin, tested)
     Fmax_out = fs_out/2.56 (the trade's ratio, ``FMAX_RATIO``). The whole chain's response
@@ -112,9 +114,10 @@ def _meets(h: np.ndarray, fs: float, pass_hz: float, stop_hz: float, ripple_db: 
     fstop = np.linspace(stop_hz, fs / 2, 16 * n + 256)
     _, hp = scipy.signal.freqz(h, worN=fp, fs=fs)
     _, hs = scipy.signal.freqz(h, worN=fstop, fs=fs)
-    gp = 20.0 * np.log10(np.abs(hp))
-    return bool(np.all(np.isfinite(gp)) and gp.max() - gp.min() <= ripple_db
-                and 20.0 * np.log10(np.abs(hs).max()) <= -atten_db)
+    with np.errstate(divide="ignore"):
+        gp = 20.0 * np.log10(np.abs(hp))
+        return bool(np.all(np.isfinite(gp)) and gp.max() - gp.min() <= ripple_db
+                    and 20.0 * np.log10(np.abs(hs).max()) <= -atten_db)
 
 
 @functools.lru_cache(maxsize=128)
@@ -214,6 +217,7 @@ class StagePlan:
 
     @property
     def fs_out(self) -> float:
+        """Output rate in Hz, fs/factor."""
         return self.fs / self.factor
 
     def taps(self) -> np.ndarray:
@@ -248,6 +252,7 @@ class ChainPlan:
 
     @property
     def factors(self) -> tuple[int, ...]:
+        """Each stage's decimation factor, first stage first (product = ``factor``)."""
         return tuple(s.factor for s in self.stages)
 
 
@@ -273,7 +278,7 @@ def _min_stages(r: int) -> int:
     k = 0
     while MAX_FACTOR**k < r:
         k += 1
-    while not _factorizations(r, k):  # e.g. 7·7·7·... needs no more, but 2**k·... may
+    while not _factorizations(r, k):  # e.g. 98 = 2·7·7 < 10² still needs three stages
         k += 1
     return k
 
@@ -626,7 +631,7 @@ class DecimationChain:
     (same unit, DC gain 1). ``factor``, ``phase`` and
     ``delay_in`` are the chain's (module docstring); ``response(f_hz)`` is the product of
     the stage responses, each from ``scipy.signal.freqz`` at its own input rate. A plan
-    with no stages passes blocks through (as float32).
+    with no stages passes blocks through (a float32 block is returned as is, not copied).
     """
 
     def __init__(self, channels: int, plan: ChainPlan) -> None:
@@ -660,14 +665,18 @@ class DecimationChain:
 
     @property
     def next_index(self) -> int:
+        """Output index of the next output sample."""
         return self.stages[-1].next_index if self.stages else self._next_in
 
     @property
     def next_input_index(self) -> int:
+        """Input index expected for the next sample pushed."""
         return self.stages[0].next_input_index if self.stages else self._next_in
 
     @property
     def first_settled_index(self) -> int:
+        """First output index whose inputs, through every stage, all came after the last
+        reset: earlier outputs still carry the zeros a restarted filter starts from."""
         return self.stages[-1].first_settled_index if self.stages else self._settled
 
     def _restart(self, next_input_index: int, settled_from: int) -> None:
@@ -709,7 +718,8 @@ class MultiRate:
     tap further down; the ripple budget is split over the longest path, so every name's
     chain meets ``ripple_db`` and ``atten_db`` as in :class:`ChainPlan`.
 
-    ``push(block)`` returns ``{name: float32 [C, m]}`` at each name's ``fs_out``.
+    ``push(block)`` returns ``{name: float32 [C, m]}`` at each name's ``fs_out``, in the
+    block's unit (DC gain 1); a name with R = 1 gets the block itself (as float32).
     """
 
     def __init__(self, channels: int, fs_in: float, fmax_hz: Mapping[str, float], *,
@@ -772,6 +782,7 @@ class MultiRate:
         return sum(len(c.stages) for c in self._nodes.values())
 
     def fs_out(self, name: str) -> float:
+        """Output rate of ``name`` in Hz."""
         return self._paths[self._name(name)].fs_out
 
     def _name(self, name: str) -> str:
@@ -797,15 +808,18 @@ class MultiRate:
         return self._paths[self._name(name)].response(f_hz)
 
     def next_index(self, name: str) -> int:
+        """Output index of ``name``'s next output sample."""
         r = self._tap[self._name(name)]
         return self._next_in if r == 1 else self._nodes[r].next_index
 
     def first_settled_index(self, name: str) -> int:
+        """First output index of ``name`` not reached by the zeros after the last reset."""
         r = self._tap[self._name(name)]
         return self._settled if r == 1 else self._nodes[r].first_settled_index
 
     @property
     def next_input_index(self) -> int:
+        """Input index expected for the next sample pushed."""
         return self._next_in
 
     def reset(self, next_input_index: int | None = None) -> None:
