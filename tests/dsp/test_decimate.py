@@ -376,6 +376,9 @@ def test_plan_chain_without_decimation_is_a_pass_through():
     (51200.0, 600.0, 32, r"= 33.3333 is not an integer; 33 has a prime factor above 7"),
 ])
 def test_plan_chain_reports_the_next_higher_fmax(fs_in, fmax, factor, note):
+    # Issue 8: where fs/(2.56·Fmax) is not an integer (or needs a stage above 10), take the
+    # largest usable R, i.e. the next higher Fmax = fs/(2.56·R), and say so. Expected R by
+    # hand: 44.4 → 44 = 4·11 → 42 = 6·7; 37.5 → 37 (prime) → 36; 11 → 10; 33.3 → 33 = 3·11 → 32.
     plan = plan_chain(fs_in, fmax)
     assert plan.factor == factor and plan.fmax_asked_hz == fmax
     assert plan.fmax_hz == pytest.approx(fs_in / factor / 2.56) and plan.fmax_hz > fmax
