@@ -48,23 +48,16 @@ class SourceCounters:
     extra: dict[str, int] = field(default_factory=dict)
 
     def as_dict(self) -> dict[str, object]:
-        d: dict[str, object] = {
-            k: getattr(self, k)
-            for k in (
-                "samples",
-                "blocks",
-                "bytes",
-                "gaps",
-                "malformed",
-                "connections",
-                "disconnects",
-                "partial_frames",
-                "drops",
-                "last_error",
-            )
-        }
+        d: dict[str, object] = {k: getattr(self, k) for k in (*COUNTER_NAMES, "last_error")}
         d.update(self.extra)
         return d
+
+
+# The numeric counters of SourceCounters, in the order they are reported.
+COUNTER_NAMES: tuple[str, ...] = (
+    "samples", "blocks", "bytes", "gaps", "malformed", "connections", "disconnects",
+    "partial_frames", "drops",
+)
 
 
 @dataclass(frozen=True, slots=True)

@@ -13,20 +13,12 @@ from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
 from prometheus_client.registry import Collector
 
+from ..types import COUNTER_NAMES
+
 router = APIRouter(tags=["metrics"])
 
 STATUSES = ("ok", "no-data", "gap", "sensor-fault", "overrun")
-SOURCE_COUNTERS = (
-    "samples",
-    "blocks",
-    "bytes",
-    "gaps",
-    "malformed",
-    "connections",
-    "disconnects",
-    "partial_frames",
-    "drops",
-)
+SOURCE_COUNTERS = COUNTER_NAMES
 ALARM_LEVEL = {"normal": 0, "alert": 1, "danger": 2}
 
 
