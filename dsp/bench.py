@@ -292,7 +292,8 @@ def format_report(report: dict[str, object]) -> str:
              f"{'Msamples/s':>11} {'×realtime':>10} {'welch ×rfft':>12} {'loop ×rfft':>11}"]
     for c in report["cases"]:  # type: ignore[attr-defined]
         lines.append(
-            f"{c['name']:>6} {c['frames']:>7} {1e3 * c['engine_s']:>10.1f} {1e3 * c['rfft_s']:>8.1f}"
+            f"{c['name']:>6} {c['frames']:>7} {1e3 * c['engine_s']:>10.1f}"
+            f" {1e3 * c['rfft_s']:>8.1f}"
             f" {c['ratio']:>6.2f} {c['samples_per_s'] / 1e6:>11.2f} {c['realtime_factor']:>10.1f}"
             f" {c['welch_ratio'] or float('nan'):>12.1f} {c['loop_ratio'] or float('nan'):>11.1f}"
         )

@@ -59,6 +59,7 @@ import numpy as np
 import scipy.signal
 from numpy.lib.stride_tricks import as_strided
 
+from .buffer import SampleBuffer
 from .filterbank import FMAX_RATIO
 
 __all__ = [
@@ -482,8 +483,7 @@ class Decimator:
         g = np.zeros(self._span, dtype=np.float32)
         g[self._span - n :] = self.taps[::-1]
         self._g = g.reshape(self._j, r)  # [J, R]
-        self._buf = np.zeros((self.channels, max(4 * self._span, 8192)), dtype=np.float32)
-        self._lo = self._hi = 0
+        self._held = SampleBuffer(self.channels, max(4 * self._span, 8192))
         self.resets = -1
         self._restart(0, 0)
 
@@ -531,8 +531,7 @@ class Decimator:
         # The buffer starts span − 1 samples before the next output's input; those before
         # k0 are the zeros a restarted filter sees.
         zeros = self._span - 1 - (self._next_out * self.factor + self.phase - k0)
-        self._lo, self._hi = 0, zeros
-        self._buf[:, :zeros] = 0.0
+        self._held.clear(zeros)
         self._settled_out = _ceil_div(int(settled_from) + self.taps.size - 1 - self.phase,
                                       self.factor)
         self.resets += 1
@@ -543,31 +542,17 @@ class Decimator:
         k0 = self._next_in if next_input_index is None else int(next_input_index)
         self._restart(k0, k0)
 
-    def _append(self, x: np.ndarray) -> None:
-        k = x.shape[1]
-        held = self._hi - self._lo
-        if self._hi + k > self._buf.shape[1]:
-            if held + k > self._buf.shape[1]:
-                grown = np.empty((self.channels, 2 * (held + k)), dtype=np.float32)
-                grown[:, :held] = self._buf[:, self._lo : self._hi]
-                self._buf = grown
-            else:
-                self._buf[:, :held] = self._buf[:, self._lo : self._hi]
-            self._lo, self._hi = 0, held
-        self._buf[:, self._hi : self._hi + k] = x
-        self._hi += k
-
     def _run(self, x: np.ndarray) -> np.ndarray:
         """Push ``[C, n]``; return the float32 outputs ``[C, m]`` (a new array)."""
-        self._append(x)
+        self._held.append(x)
         self._next_in += x.shape[1]
         r, j = self.factor, self._j
-        held = self._hi - self._lo
+        held = self._held.held
         m = (held - self._span) // r + 1 if held >= self._span else 0
         if m == 0:
             return np.zeros((self.channels, 0), dtype=np.float32)
         rows = m + j - 1
-        xb = self._buf[:, self._lo : self._lo + rows * r].reshape(self.channels, rows, r)
+        xb = self._held.view(rows * r).reshape(self.channels, rows, r)
         z = np.matmul(self._g, xb.transpose(0, 2, 1))  # [C, J, rows]
         if m > 1:
             # y[c, i] = Σ_j z[c, j, i + j]: a view whose last axis walks the diagonal. Its
@@ -580,7 +565,7 @@ class Decimator:
             y = z[:, 0, 0:1].copy()
             for jj in range(1, j):
                 y += z[:, jj, jj : jj + 1]
-        self._lo += m * r
+        self._held.consume(m * r)
         self._next_out += m
         return y
 

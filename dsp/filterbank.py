@@ -22,6 +22,7 @@ import numpy as np
 import scipy.fft
 from numpy.lib.stride_tricks import sliding_window_view
 
+from .buffer import SampleBuffer
 from .tones import tone_kernel
 from .windows import DEFAULT_KAISER_BETA, WindowInfo, check_window, get_window, window_info
 
@@ -182,14 +183,10 @@ class FilterBank:
         self.w = get_window(window, grid.n, beta=beta)  # type: ignore[arg-type]
         self.info: WindowInfo = window_info(window, grid.n, beta=beta)  # type: ignore[arg-type]
         self._w32 = self.w.astype(np.float32)
-        # Samples not yet consumed live in _buf[:, _lo:_hi]; a block is appended after them
-        # and the region is moved to the front only when the buffer's end is reached, so
-        # each sample is copied about once (no concatenation per push).
-        self._buf = np.empty((self.channels, 4 * grid.n), dtype=np.float32)
-        self._lo = self._hi = 0
+        self._held = SampleBuffer(self.channels, 4 * grid.n)  # samples towards frames
         self._work = np.empty((self.channels, 0, grid.n), dtype=np.float32)
         self._next_index = 0  # stream index of the sample after the last one pushed
-        self._tail_start = 0  # stream index of _buf[:, _lo]
+        self._tail_start = 0  # stream index of the first held sample
         self.frames_out = 0
         self.resets = 0
         self._tone_hz = np.zeros((self.channels, 0))
@@ -259,29 +256,15 @@ class FilterBank:
     @property
     def pending(self) -> int:
         """Samples held towards the next frame."""
-        return self._hi - self._lo
+        return self._held.held
 
     def reset(self, next_index: int | None = None) -> None:
         """Discard the partial frame (a gap); assembly restarts at ``next_index``."""
-        self._lo = self._hi = 0
+        self._held.clear()
         if next_index is not None:
             self._next_index = int(next_index)
         self._tail_start = self._next_index
         self.resets += 1
-
-    def _append(self, x: np.ndarray) -> None:
-        k = x.shape[1]
-        held = self._hi - self._lo
-        if self._hi + k > self._buf.shape[1]:
-            if held + k > self._buf.shape[1]:  # a block bigger than the buffer: grow it
-                grown = np.empty((self.channels, 2 * (held + k)), dtype=np.float32)
-                grown[:, :held] = self._buf[:, self._lo : self._hi]
-                self._buf = grown
-            else:
-                self._buf[:, :held] = self._buf[:, self._lo : self._hi]
-            self._lo, self._hi = 0, held
-        self._buf[:, self._hi : self._hi + k] = x
-        self._hi += k
 
     def push(self, block: np.ndarray, first_index: int | None = None) -> FrameBatch:
         """Append ``block`` (float32[C, n], any n ≥ 0) and return the frames it completed.
@@ -299,8 +282,8 @@ class FilterBank:
         if first_index is not None and first_index != self._next_index:
             self.reset(first_index)
         self._next_index += x.shape[1]
-        self._append(x)
-        buf = self._buf[:, self._lo : self._hi]
+        self._held.append(x)
+        buf = self._held.view()
         n, hop = self.grid.n, self.grid.hop
         length = buf.shape[1]
         p_count = (length - n) // hop + 1 if length >= n else 0
@@ -322,7 +305,7 @@ class FilterBank:
             tones = np.zeros((self.channels, 0, self._kernel.shape[2] // 2), dtype=np.complex64)
             start = np.zeros(0, dtype=np.int64)
         consumed = p_count * hop
-        self._lo += consumed
+        self._held.consume(consumed)
         self._tail_start += consumed
         self.frames_out += p_count
         return FrameBatch(start=start, spectra=spectra, tones=tones)
