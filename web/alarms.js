@@ -1,5 +1,5 @@
-// Alarms and events on screen: the active/latched alarm list, event-log rows, and the
-// acknowledge dialog (asks for an operator token once per browser session).
+// Alarms and events on screen: alarm lists, event rows, and the acknowledge dialog (asks
+// for an operator token once per browser session). Knows no view layout and no plotting.
 
 import { ApiError, ackAlarm, token } from "./api.js";
 import { esc, fmtAge, fmtDateTime, fmtVal, unitLabel } from "./fmt.js";
@@ -86,11 +86,9 @@ export function eventHeadHtml({ showChannel = true } = {}) {
 }
 
 // --- the acknowledge dialog -------------------------------------------------------------
-let ctxRef = null;
 let pending = null;
 
 export function setupAck(ctx) {
-  ctxRef = ctx;
   const dlg = document.getElementById("dlg-ack");
   const form = document.getElementById("ack-form");
   const msg = document.getElementById("ack-msg");
@@ -169,5 +167,4 @@ export function openAck(a) {
   showTokenRow();
   dlg.showModal();
   (token.get() ? document.getElementById("ack-note") : document.getElementById("ack-token")).focus();
-  void ctxRef;
 }

@@ -1,9 +1,9 @@
-// One channel in depth: live spectrum with its interactions, spectrogram, band bars,
-// tones and peaks, trend, and this channel's alarms and events.
+// One channel in depth: live spectrum, spectrogram, band bars, tones and peaks, trend, and
+// this channel's alarms and events. Gets data from the shell's events; draws through the plots.
 
 import { API, ApiError, features, getJSON, isMissingRoute, qs } from "./api.js";
-import { AMP_CHOICES, UNIT_CHOICES, ampLabel, esc, fmtClock, fmtHz, fmtVal, unitLabel } from "./fmt.js";
-import { STATES, badge } from "./states.js";
+import { AMP_CHOICES, UNIT_CHOICES, ampLabel, esc, fmtClock, fmtHz, fmtHzAt, fmtVal, unitLabel } from "./fmt.js";
+import { badge } from "./states.js";
 import { SpectrumPlot } from "./spectrum.js";
 import { Spectrogram } from "./spectrogram.js";
 import { BandBars, ThirdsChart, bandRows } from "./bars.js";
@@ -30,8 +30,8 @@ export function mount(root, ctx, id) {
     </div>
     <dl class="facts" id="ch-facts"></dl>
     <div class="toolbar" role="toolbar" aria-label="spectrum display">
-      <label>Unit <select id="sel-unit"><option value="">channel's</option>${UNIT_CHOICES.map((u) => `<option value="${u}">${esc(unitLabel(u))}</option>`).join("")}</select></label>
-      <label>Amplitude <select id="sel-amp"><option value="">channel's</option>${AMP_CHOICES.map((a) => `<option value="${a}">${ampLabel(a)}</option>`).join("")}</select></label>
+      <label>Unit <select id="sel-unit"><option value="">as analysed</option>${UNIT_CHOICES.map((u) => `<option value="${u}">${esc(unitLabel(u))}</option>`).join("")}</select></label>
+      <label>Amplitude <select id="sel-amp"><option value="">as analysed</option>${AMP_CHOICES.map((a) => `<option value="${a}">${ampLabel(a)}</option>`).join("")}</select></label>
       <span class="seg" role="group" aria-label="amplitude scale"><button data-ya="lin">lin</button><button data-ya="log">log</button></span>
       <span class="seg" role="group" aria-label="frequency scale"><button data-xa="lin">lin Hz</button><button data-xa="log">log Hz</button></span>
       <span class="toggles">
@@ -67,12 +67,13 @@ export function mount(root, ctx, id) {
 
   const $ = (s) => root.querySelector(s);
   const readout = $("#readout");
+  const specCanvas = $("#spec");
   const sg = new Spectrogram($("#sgram"), { rows: 200 });
   const plot = new SpectrumPlot($("#spec"), {
     onView: (v) => sg.setView(v),
     onHover: (info) => {
       setText(readout, info
-        ? `${fmtHz(info.f)} · ${info.order !== null ? `${info.order.toFixed(2)}X · ` : ""}${fmtVal(info.v)} ${unitLabel(info.unit, info.amplitude)}`
+        ? `${fmtHzAt(info.f, st.meta?.df_hz ?? plot.data?.df ?? 1)} (line ${info.q}) · ${info.order !== null ? `${info.order.toFixed(2)}X · ` : ""}${fmtVal(info.v)} ${unitLabel(info.unit, info.amplitude)}`
         : "");
     },
     onPick: ({ q, f }) => {
@@ -165,6 +166,7 @@ export function mount(root, ctx, id) {
   });
   root.querySelector("#sel-trend").addEventListener("change", (e) => {
     st.trendName = e.target.value;
+    trendChosen = true;
     loadTrend();
   });
   for (const b of root.querySelectorAll("[data-range]")) {
@@ -196,6 +198,7 @@ export function mount(root, ctx, id) {
     if (st.hold) return;
     const d = { f0: h.f0_hz, df: h.df_hz, values, unit: h.unit, amplitude: h.amplitude, t_ns: h.timestamp_ns, lowcut_hz: st.meta?.lowcut_hz };
     plot.setData(d);
+    specCanvas.dataset.seq = h.seq; // which frame is on screen (for people and tests)
     sg.push(d);
     if (!plot.view) plot.resetView();
     if (sg.view === null) plot._viewChanged();
@@ -233,11 +236,11 @@ export function mount(root, ctx, id) {
     const ord = (f) => (sp > 0 && Number.isFinite(f) && f / sp < 100 ? `${(f / sp).toFixed(2)}X` : "");
     const tones = m.tones || [];
     const peaks = (m.peaks || []).slice(0, 6);
-    const key = tones.map((t) => t.name).join("|") + `/${peaks.length}`;
+    const shape = tones.map((t) => t.name).join("|") + `/${peaks.length}`;
     const table = $("#tones");
-    if (key !== toneKey) {
+    if (shape !== toneKey) {
       // the table's shape changed: build it once, then only its cells' text changes
-      toneKey = key;
+      toneKey = shape;
       const row = (name) => `<tr><td>${esc(name)}</td><td></td><td></td><td></td></tr>`;
       table.innerHTML = `<tr><th>name</th><th>frequency</th><th>order</th><th>amplitude</th></tr>` +
         tones.map((t) => row(t.name)).join("") +
@@ -256,6 +259,9 @@ export function mount(root, ctx, id) {
 
   function renderHead() {
     const c = chan();
+    const u0 = c?.latest?.unit;
+    const opt = $("#sel-unit").options[0];
+    if (u0 && opt.textContent !== `${unitLabel(u0)} (channel)`) opt.textContent = `${unitLabel(u0)} (channel)`;
     if (!c) {
       setText($("#ch-desc"), ctx.store.channels.length ? "no such channel" : "");
       return;
@@ -345,11 +351,21 @@ export function mount(root, ctx, id) {
 
   // --- trend --------------------------------------------------------------------------
   let trendNames = "";
+  let trendChosen = false;
   function fillTrendNames(named) {
+    if (!trendChosen) {
+      // Until someone picks, show what most likely matters: the worst band with alarm levels.
+      const ranked = named.filter((b) => b.danger > 0).sort((a, b) => rankOf(b.state) - rankOf(a.state));
+      if (ranked.length && ranked[0].name !== st.trendName) {
+        st.trendName = ranked[0].name;
+        trendNames = "";
+        trendAt = 0; // load it on the next tick
+      }
+    }
     const names = named.map((b) => b.name);
-    const key = names.join("|");
-    if (key === trendNames) return;
-    trendNames = key;
+    const joined = names.join("|");
+    if (joined === trendNames) return;
+    trendNames = joined;
     const sel = $("#sel-trend");
     sel.innerHTML = `<option value="${esc(ctx.FRAME)}">overall (to Fmax)</option>` + names.map((n) => `<option value="${esc(n)}"${n === st.trendName ? " selected" : ""}>${esc(n)} band</option>`).join("");
     sel.value = st.trendName;
@@ -468,7 +484,6 @@ export function mount(root, ctx, id) {
   if (m0) onBands(m0);
   if (ctx.store.tones.get(id)) onTones(ctx.store.tones.get(id));
   loadEvents().then(loadTrend);
-  void STATES;
   return {
     unmount() {
       for (const [k, f] of Object.entries(on)) ctx.app.removeEventListener(k, f);
@@ -479,6 +494,10 @@ export function mount(root, ctx, id) {
       trend.surface.dispose();
     },
   };
+}
+
+function rankOf(state) {
+  return { danger: 3, alert: 2, latched: 1 }[state] ?? 0;
 }
 
 /** Set text only when it differs (an unchanged DOM costs nothing to lay out). */

@@ -1,5 +1,5 @@
-// The alarms-and-events view: every active or latched alarm with its acknowledgement, and
-// the event log, newest first, paged and filterable by channel.
+// The alarms-and-events view: active/latched alarms with acknowledgement, and the event log
+// (newest first, paged, by channel). No plotting; alarm markup comes from alarms.js.
 
 import { API, features, getJSON, qs } from "./api.js";
 import { esc } from "./fmt.js";

@@ -1,5 +1,5 @@
-// The evidence dialog: the spectrum kept when an alarm was raised, drawn against the live
-// one, the waveform around the moment, and download links (WAV, CSV, NPY).
+// The evidence dialog: the spectrum kept when an alarm was raised against the live one, the
+// waveform around it, downloads. Reads only the events and spectrum routes; no shared state.
 
 import { API, getJSON, qs } from "./api.js";
 import { esc, fmtDateTime, fmtHz, fmtVal, unitLabel } from "./fmt.js";

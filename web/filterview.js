@@ -1,5 +1,5 @@
-// The "line filter" dialog: the band-pass response of one spectrum line for the configured
-// window, in dB against offset in lines (and in Hz), from the service or computed here.
+// The "line filter" dialog: one spectrum line's band-pass response for the window, in dB
+// against offset in lines and Hz, from the service or winresp.js. Knows no view or live data.
 
 import { API, getJSON, isMissingRoute, qs } from "./api.js";
 import { esc, fmtHz, fmtVal } from "./fmt.js";

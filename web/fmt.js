@@ -23,6 +23,13 @@ export function fmtHz(f, withUnit = true) {
   return s;
 }
 
+/** A line's frequency in Hz to the resolution of its spacing `df` (up to 3 decimals). */
+export function fmtHzAt(f, df) {
+  if (!Number.isFinite(f)) return "—";
+  const frac = String(df).split(".")[1] || "";
+  return `${f.toFixed(Math.min(3, frac.length))} Hz`;
+}
+
 /** An axis tick label for a frequency (short: "500", "1k", "2.5k"). */
 export function tickHz(f) {
   if (f >= 1000) {

@@ -1,6 +1,5 @@
-// The live link to the service: a WebSocket subscription for the open view (binary spectra,
-// JSON bands/tones/alarms/status), REST polling when the socket cannot open, and a slow
-// plant-wide poll of channels and alarms. Emits DOM events; knows nothing about drawing.
+// The live link: WebSocket subscription (binary spectra, JSON the rest), REST polling when the
+// socket cannot open, reconnection, the plant-wide poll. Emits events; knows nothing of drawing.
 
 import { API, features, getJSON, isMissingRoute } from "./api.js";
 
@@ -124,7 +123,6 @@ export class Live extends EventTarget {
   _openSocket() {
     if (this.ws) return;
     const url = `${location.protocol === "https:" ? "wss" : "ws"}://${location.host}${API}/stream`;
-    let opened = false;
     let ws;
     try {
       ws = new WebSocket(url);
@@ -135,7 +133,6 @@ export class Live extends EventTarget {
     ws.binaryType = "arraybuffer";
     this.ws = ws;
     ws.onopen = () => {
-      opened = true;
       this.wsOpen = true;
       this._wsBackoff = 500;
       this._setUp(true);
@@ -159,7 +156,6 @@ export class Live extends EventTarget {
         this._openSocketSoon(this._wsBackoff);
       }
       this._wsBackoff = Math.min(WS_RETRY_MAX_MS, this._wsBackoff * 2);
-      void opened;
     };
     ws.onerror = () => {}; // onclose follows and decides
   }

@@ -1,11 +1,11 @@
-// The dashboard shell: shared state fed by the live link, the header (connection and alarm
-// summary), the channel sidebar, and the router that mounts one view at a time.
+// The dashboard shell: shared state fed by the live link, header, channel sidebar, router.
+// Knows no plot internals; views get data through `app` events and the `ctx` it hands them.
 
 import { API, features, getJSON, isMissingRoute } from "./api.js";
 import { Live } from "./live.js";
 import { Surface, loadPalette } from "./plot.js";
 import { STATES, alarmStateKey, badge, channelStateKey, glyph } from "./states.js";
-import { esc, fmtClock, fmtVal } from "./fmt.js";
+import { esc, fmtVal } from "./fmt.js";
 import * as overview from "./overview.js";
 import * as channel from "./channel.js";
 import * as eventsView from "./events.js";

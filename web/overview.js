@@ -1,5 +1,5 @@
-// The plant view: every channel grouped by machine, each with its state (word + shape),
-// overall value, a short history and its main bands; active alarms and recent events beside.
+// The plant view: channels by machine with state (word + shape), overall, history, main bands;
+// alarms and events beside. Reads the shell's state and the events/trend routes; no plot code.
 
 import { API, features, getJSON, isMissingRoute, qs } from "./api.js";
 import { esc, fmtHz, fmtVal, unitLabel } from "./fmt.js";

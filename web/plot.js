@@ -140,8 +140,8 @@ export function plateText(ctx, text, x, y, { align = "left", base = "middle", fg
   const m = ctx.measureText(text);
   const w = m.width + 2 * pad;
   const h = 15;
-  let x0 = align === "left" ? x - pad : align === "right" ? x - m.width - pad : x - w / 2;
-  let y0 = base === "middle" ? y - h / 2 : base === "top" ? y - 2 : y - h + 2;
+  const x0 = align === "left" ? x - pad : align === "right" ? x - m.width - pad : x - w / 2;
+  const y0 = base === "middle" ? y - h / 2 : base === "top" ? y - 2 : y - h + 2;
   ctx.fillStyle = bg;
   ctx.fillRect(x0, y0, w, h);
   ctx.fillStyle = fg;

@@ -1,6 +1,5 @@
-// The scrolling spectrogram: the last few hundred spectra of one channel as rows of grey
-// intensity (log amplitude), newest at the top, sharing the spectrum plot's frequency view.
-// Keeps raw rows so a zoom or a new scale re-renders exactly; draws on animation frames.
+// The scrolling spectrogram: recent spectra of one channel as rows of grey (log amplitude),
+// newest on top, on the spectrum plot's frequency view. Gets data from its caller; no network.
 
 import { fmtHz, fmtVal } from "./fmt.js";
 import { MARGIN, columnExtremes } from "./spectrum.js";

@@ -1,9 +1,7 @@
-// The spectrum plot: one averaged spectrum (plus an optional second one for comparison)
-// drawn min/max per pixel column, with band regions and their levels, order and bearing
-// markers, labelled peaks, a hover read-out and zoom/pan by mouse and keyboard.
-// Gets data from its caller; knows nothing about the network.
+// The spectrum plot: min/max per pixel column, bands and levels, order and bearing markers,
+// peaks, hover read-out, zoom/pan by mouse and keys. Gets data from its caller; no network.
 
-import { fmtHz, fmtVal, tickHz, unitLabel, convertFactor } from "./fmt.js";
+import { fmtHz, fmtHzAt, fmtVal, tickHz, unitLabel, convertFactor } from "./fmt.js";
 import { Scale, Surface, linTicks, logTicks, niceCeil, pal, plateText } from "./plot.js";
 
 export const MARGIN = { l: 58, r: 14, t: 24, b: 30 };
@@ -619,7 +617,7 @@ export class SpectrumPlot {
       const text = `${fmtHz(f, false)}${ord} · ${fmtVal(amp)}`;
       const tw = ctx.measureText(text).width + 6;
       let ty = Math.max(T + 8, y - 18);
-      let tx = Math.min(R - tw / 2 - 2, Math.max(L + tw / 2 + 2, x));
+      const tx = Math.min(R - tw / 2 - 2, Math.max(L + tw / 2 + 2, x));
       for (let tries = 0; tries < 6 && placed.some((p) => Math.abs(p.x - tx) < (p.w + tw) / 2 && Math.abs(p.y - ty) < 15); tries++) ty += 15;
       placed.push({ x: tx, y: ty, w: tw });
       plateText(ctx, text, tx, ty, { align: "center", fg: pal.ink, bg: pal.plot, pad: 3 });
@@ -665,7 +663,7 @@ export class SpectrumPlot {
       order: this.speedHz ? hit.f / this.speedHz : null,
       then: this.overlay ? this.overlay.values[Math.round((hit.f - this.overlay.f0) / this.overlay.df)] : undefined,
     };
-    const lines = [`${fmtHz(hit.f)}  (line ${hit.q})`];
+    const lines = [`${fmtHzAt(hit.f, d.df)}  (line ${hit.q})`];
     if (info.order !== null) lines.push(`order ${info.order.toFixed(2)}X`);
     lines.push(`${fmtVal(hit.v)} ${unitLabel(d.unit, d.amplitude)}`);
     if (info.then !== undefined) lines.push(`${this.overlay.label || "other"} ${fmtVal(info.then)}`);

@@ -1,5 +1,5 @@
-// The equivalent band-pass filter of one spectrum line, computed in the browser from the
-// window's samples (used when the service has no /windows route). Pure maths, no DOM.
+// The equivalent band-pass filter of one spectrum line, computed from the window's samples
+// (when the service has no /windows route). Pure maths: no DOM, no network.
 //
 // For periodic (DFT-even) window samples w[k], k = 0…N−1, a sine ν lines away from a line's
 // centre reads |W(ν)|/|W(0)| on that line, W(ν) = Σ w[k]·exp(−2πi·ν·k/N) (Harris 1978).

@@ -40,6 +40,12 @@ def fmt3(v: float) -> str:
     return f"{v:.{min(digits, 6)}f}"
 
 
+def readout_hz(text: str) -> float:
+    """Frequency from the spectrum read-out ("148.4 Hz (line 47) · …" or "2.35 kHz …")."""
+    num, unit = text.split()[:2]
+    return float(num) * (1000.0 if unit == "kHz" else 1.0)
+
+
 def open_page(pg: Any, url: str) -> None:
     pg.goto(url, wait_until="domcontentloaded")
 
@@ -218,12 +224,12 @@ def test_spectrum_zoom_pan_and_keys(demo: Service, page: tuple[Any, PageLog]) ->
     x, y = box["x"] + box["width"] * 0.5, box["y"] + box["height"] * 0.5
     pg.mouse.move(x, y)
     before = wait_for(lambda: pg.inner_text("#readout"), "a hover read-out")
-    f_before = float(before.split(" ")[0].replace("k", "")) * (1000 if "kHz" in before.split("·")[0] else 1)
+    f_before = readout_hz(before)
     for _ in range(6):
         pg.mouse.wheel(0, -240)
     pg.mouse.move(x + 40, y)
     after = pg.inner_text("#readout")
-    f_after = float(after.split(" ")[0]) * (1000 if "kHz" in after.split("·")[0] else 1)
+    f_after = readout_hz(after)
     # zoomed in: 40 px now spans far fewer Hz than the whole-range 40 px would
     whole_40px = fmax / (box["width"] - 72) * 40
     assert 0 < f_after - f_before < whole_40px / 2, (before, after)
@@ -233,6 +239,54 @@ def test_spectrum_zoom_pan_and_keys(demo: Service, page: tuple[Any, PageLog]) ->
     pg.wait_for_function("() => document.querySelector('[data-ya=lin]').getAttribute('aria-pressed') === 'true'")
     pg.keyboard.press("l")
     pg.wait_for_function("() => document.querySelector('[data-ya=log]').getAttribute('aria-pressed') === 'true'")
+
+
+def test_hover_reads_the_frame_on_screen(demo: Service, page: tuple[Any, PageLog]) -> None:
+    """Held still, the hover read-out gives the value of the very frame the service sent for
+    that line (decoded here from the captured stream or REST reply), to display rounding."""
+    pg, _ = page
+    frames: dict[int, tuple[float, float, np.ndarray]] = {}
+
+    def on_ws(ws: Any) -> None:
+        def frame(payload: Any) -> None:
+            if isinstance(payload, bytes | bytearray):
+                (n,) = struct.unpack_from("<I", payload, 0)
+                h = json.loads(payload[4:4 + n])
+                v = np.frombuffer(bytes(payload[4 + n:4 + n + 4 * h["count"]]), dtype="<f4")
+                if h["channel"] == "p2-de-h":
+                    frames[h["seq"]] = (h["f0_hz"], h["df_hz"], v)
+
+        ws.on("framereceived", frame)
+
+    def on_response(resp: Any) -> None:
+        if "/channels/p2-de-h/spectrum" in resp.url and resp.status == 200:
+            try:
+                j = resp.json()
+                frames[j["seq"]] = (j["f0_hz"], j["df_hz"], np.asarray(j["values"], dtype="<f4"))
+            except Exception:  # body gone after navigation
+                pass
+
+    pg.on("websocket", on_ws)
+    pg.on("response", on_response)
+    open_page(pg, demo.base_url + "/#/channel/p2-de-h")
+    wait_for(lambda: canvas_digest(pg, "#spec")["dark"] > 2000, "the spectrum")
+    pg.click("#btn-hold")
+    seq = int(wait_for(lambda: pg.get_attribute("#spec", "data-seq"), "the frame's seq"))
+    wait_for(lambda: seq in frames, "the held frame among those the page received")
+    f0, df, values = frames[seq]
+    box = pg.locator("#spec").bounding_box()
+    checked = 0
+    for frac in (0.05, 0.2, 0.5, 0.8):
+        pg.mouse.move(box["x"] + 58 + (box["width"] - 72) * frac, box["y"] + box["height"] / 2)
+        text = wait_for(lambda: pg.inner_text("#readout"), "a hover read-out")
+        q = int(text.split("(line ")[1].split(")")[0])
+        shown = text.split(" · ")[-1].split()[0]
+        assert readout_hz(text) == pytest.approx(f0 + q * df, abs=0.0005)
+        assert abs(float(shown) - float(values[q])) <= half_unit(shown) * (1 + 1e-6), (text, values[q])
+        assert text.endswith("mm/s RMS")
+        checked += 1
+    assert pg.get_attribute("#spec", "data-seq") == str(seq)  # held: still the same frame
+    assert checked == 4
 
 
 # --- reconnection -------------------------------------------------------------------------------
@@ -292,6 +346,18 @@ def test_line_filter_matches_scipy_window(demo: Service, page: tuple[Any, PageLo
     keep = want > -140  # below that both are rounding noise
     assert np.max(np.abs(db[keep] - want[keep])) < 1e-6
     assert got["enbw"] == pytest.approx(n * np.sum(w**2) / np.sum(w) ** 2, rel=1e-12)
+
+
+def test_unknown_window_is_named(demo: Service, page: tuple[Any, PageLog]) -> None:
+    """A window outside the catalogue is refused with its name and the allowed ones."""
+    pg, _ = page
+    open_page(pg, demo.base_url + "/#/")
+    msg = pg.evaluate("""async () => {
+        const m = await import('/static/winresp.js');
+        try { m.windowSamples('hanning', 64); return ''; } catch (e) { return e.message; }
+    }""")
+    assert msg == ('window="hanning" is not one of rectangular, hann, hamming, blackman-harris, '
+                   'flattop, kaiser')
 
 
 def test_line_filter_dialog_hann_figures(demo: Service, page: tuple[Any, PageLog]) -> None:
