@@ -355,6 +355,10 @@ export class SpectrumPlot {
     if (this.show.peaks) this._drawPeaks(ctx, d, yOf, L, R, T);
     this._drawSelected(ctx, d, T, B);
     this._drawHover(ctx, d, L, R, T, B, yOf);
+    if (this.show.bands && this._levelsHidden) {
+      ctx.font = `11px ${pal.font}`;
+      plateText(ctx, `band limits are in ${this._levelsHidden}: show that unit to see them`, L + 6, B - 10, { fg: pal["ink-2"], bg: pal.plot });
+    }
     if (this.stale) {
       ctx.font = `600 12px ${pal.font}`;
       plateText(ctx, this.stale, R - 6, T + 12, { align: "right", fg: pal.ink, bg: pal.panel });
@@ -468,6 +472,7 @@ export class SpectrumPlot {
 
   _drawBands(ctx, T, B, yOf) {
     const d = this.data;
+    this._levelsHidden = "";
     const xs = this.xs;
     for (const b of this.bands) {
       if (!(b.lo_hz < b.hi_hz) || b.hi_hz < this.view.lo || b.lo_hz > this.view.hi) continue;
@@ -497,6 +502,7 @@ export class SpectrumPlot {
       // Levels: a narrow band's RMS reaches its level when one line in it reaches the level,
       // so the level is drawn across the band in the spectrum's unit (same quantity only).
       const k = convertFactor(b.unit, d.unit, d.amplitude, "rms");
+      if (k === null && !wide && (b.alert > 0 || b.danger > 0)) this._levelsHidden = b.unit;
       if (k === null || wide) continue; // a wide band's RMS sums many lines: no per-line level
       for (const [lvl, dash, wdt, tag] of [[b.alert, [5, 3], 1, "A"], [b.danger, [], 1.6, "D"]]) {
         if (!(lvl > 0)) continue;
