@@ -32,7 +32,8 @@ export function columnExtremes(values, f0, df, xs, W) {
   let c = 0;
   for (let p = 0; p < W; p++) {
     const fa = xs.val(xs.p0 + p);
-    const fb = xs.val(xs.p0 + p + 1);
+    // the last column also takes a line lying exactly on the right edge (e.g. at Fmax)
+    const fb = p === W - 1 ? xs.val(xs.p0 + W) + 1e-6 * df : xs.val(xs.p0 + p + 1);
     const [qa, qb] = binRange(f0, df, n, fa, fb);
     if (qb < qa) continue;
     let mn = Infinity;

@@ -28,8 +28,13 @@ START_TIMEOUT_S = 25.0
 STOP_TIMEOUT_S = 5.0
 POLL_S = 0.1
 CHROMIUM_ARGS = [
-    "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-    "--disable-background-networking", "--disable-component-update", "--disable-sync",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-quic",
+    "--no-first-run",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
 ]
 # The operator token the alarm test configures (its SHA-256 goes in the config).
 OPERATOR_TOKEN = "web-test-operator-7c1d"
@@ -58,8 +63,12 @@ def free_port() -> int:
 
 
 def _env() -> dict[str, str]:
-    env = {k: v for k, v in os.environ.items()
-           if not k.startswith("QUAVER_") and k.lower() not in ("http_proxy", "https_proxy", "all_proxy")}
+    env = {
+        k: v
+        for k, v in os.environ.items()
+        if not k.startswith("QUAVER_")
+        and k.lower() not in ("http_proxy", "https_proxy", "all_proxy")
+    }
     env["PYTHONPATH"] = os.pathsep.join(filter(None, [str(REPO), env.get("PYTHONPATH")]))
     env["PYTHONUNBUFFERED"] = "1"
     return env
@@ -68,18 +77,27 @@ def _env() -> dict[str, str]:
 def _service_code(port: int, data_dir: Path, speed: float | None, tokens: bool) -> str:
     """Python for ``python -c``: the built-in demo on ``port`` (optionally faster, with tokens)."""
     if not tokens:
-        return ("import service.app as a; "
-                f"raise SystemExit(a.run_service(a.demo_config(listen='{LOOPBACK}:{port}', "
-                f"data_dir={str(data_dir)!r}, speed={speed!r})))")
+        return (
+            "import service.app as a; "
+            f"raise SystemExit(a.run_service(a.demo_config(listen='{LOOPBACK}:{port}', "
+            f"data_dir={str(data_dir)!r}, speed={speed!r})))"
+        )
     toks = [
-        {"name": "web-test-operator", "role": "operator",
-         "sha256": hashlib.sha256(OPERATOR_TOKEN.encode()).hexdigest()},
-        {"name": "web-test-viewer", "role": "viewer",
-         "sha256": hashlib.sha256(VIEWER_TOKEN.encode()).hexdigest()},
+        {
+            "name": "web-test-operator",
+            "role": "operator",
+            "sha256": hashlib.sha256(OPERATOR_TOKEN.encode()).hexdigest(),
+        },
+        {
+            "name": "web-test-viewer",
+            "role": "viewer",
+            "sha256": hashlib.sha256(VIEWER_TOKEN.encode()).hexdigest(),
+        },
     ]
     return (
         "import service.app as a, service.config as c; "
-        f"cfg = a.demo_config(listen='{LOOPBACK}:{port}', data_dir={str(data_dir)!r}, speed={speed!r}); "
+        f"cfg = a.demo_config(listen='{LOOPBACK}:{port}', data_dir={str(data_dir)!r}, "
+        f"speed={speed!r}); "
         f"cfg = cfg.model_copy(update={{'tokens': [c.TokenConfig(**t) for t in {toks!r}]}}); "
         "raise SystemExit(a.run_service(cfg))"
     )
@@ -108,11 +126,21 @@ class Service:
     def start(self) -> None:
         with open(self.log_path, "ab") as log:
             self.proc = subprocess.Popen(
-                [sys.executable, "-c", _service_code(self.port, self.data_dir, self.speed, self.tokens)],
-                cwd=self.data_dir, env=_env(), stdout=log, stderr=subprocess.STDOUT,
+                [
+                    sys.executable,
+                    "-c",
+                    _service_code(self.port, self.data_dir, self.speed, self.tokens),
+                ],
+                cwd=self.data_dir,
+                env=_env(),
+                stdout=log,
+                stderr=subprocess.STDOUT,
             )
-        wait_for(self._healthy, f"the service on port {self.port} to answer /health\n{self.log_tail()}",
-                 START_TIMEOUT_S)
+        wait_for(
+            self._healthy,
+            f"the service on port {self.port} to answer /health\n{self.log_tail()}",
+            START_TIMEOUT_S,
+        )
 
     def _healthy(self) -> bool:
         if self.proc is not None and self.proc.poll() is not None:
@@ -124,6 +152,7 @@ class Service:
 
     def wait_all_channels(self) -> list[dict[str, Any]]:
         """Wait until every channel has a spectrum (so the page never meets a 503)."""
+
         def probe() -> list[dict[str, Any]] | None:
             ch = self.get("channels")
             return ch if ch and all(c["latest"] for c in ch) else None
@@ -164,15 +193,16 @@ class Service:
         from websockets.sync.client import connect
 
         try:
-            with connect(f"ws://{LOOPBACK}:{self.port}/api/v1/stream", open_timeout=3,
-                         proxy=None):
+            with connect(f"ws://{LOOPBACK}:{self.port}/api/v1/stream", open_timeout=3, proxy=None):
                 return True
         except (InvalidHandshake, OSError, TimeoutError):
             return False
 
     def log_tail(self, n: int = 30) -> str:
         try:
-            return "service log:\n" + "\n".join(self.log_path.read_text(errors="replace").splitlines()[-n:])
+            return "service log:\n" + "\n".join(
+                self.log_path.read_text(errors="replace").splitlines()[-n:]
+            )
         except OSError:
             return "(no service log)"
 
@@ -239,14 +269,24 @@ def browser(chromium_path: Path, tmp_path_factory: pytest.TempPathFactory) -> It
             pytest.fail(f"playwright is not installed: {e}")
         pytest.skip(f"playwright is not installed: {e}")
     home = tmp_path_factory.mktemp("chromium")
-    env = {**os.environ, "XDG_CONFIG_HOME": str(home / "config"), "XDG_CACHE_HOME": str(home / "cache")}
+    env = {
+        **os.environ,
+        "XDG_CONFIG_HOME": str(home / "config"),
+        "XDG_CACHE_HOME": str(home / "cache"),
+    }
     with sync_playwright() as pw:
         ctx = pw.chromium.launch_persistent_context(
-            str(home / "profile"), executable_path=str(chromium_path), headless=True,
-            args=CHROMIUM_ARGS, env=env, viewport={"width": 1440, "height": 900},
+            str(home / "profile"),
+            executable_path=str(chromium_path),
+            headless=True,
+            args=CHROMIUM_ARGS,
+            env=env,
+            viewport={"width": 1440, "height": 900},
         )
         # Loopback only: anything else the page might ask for is refused.
-        ctx.route(lambda url: not url.startswith(f"http://{LOOPBACK}:"), lambda route: route.abort())
+        ctx.route(
+            lambda url: not url.startswith(f"http://{LOOPBACK}:"), lambda route: route.abort()
+        )
         try:
             yield ctx
         finally:
@@ -261,7 +301,9 @@ class PageLog:
     errors: list[str] = field(default_factory=list)
 
     def console_errors(self) -> list[tuple[str, str]]:
-        return [(m.text, (m.location or {}).get("url", "")) for m in self.console if m.type == "error"]
+        return [
+            (m.text, (m.location or {}).get("url", "")) for m in self.console if m.type == "error"
+        ]
 
 
 @pytest.fixture
