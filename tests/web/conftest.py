@@ -269,7 +269,7 @@ def browser(chromium_path: Path, tmp_path_factory: pytest.TempPathFactory) -> It
             pytest.fail(f"playwright is not installed: {e}")
         pytest.skip(f"playwright is not installed: {e}")
     home = tmp_path_factory.mktemp("chromium")
-    env = {
+    env: dict[str, str | float | bool] = {
         **os.environ,
         "XDG_CONFIG_HOME": str(home / "config"),
         "XDG_CACHE_HOME": str(home / "cache"),
