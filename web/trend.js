@@ -43,8 +43,9 @@ export class TrendChart {
     const xs = new Scale(false).set(t0, t1, L, R);
     let mx = 0;
     for (const p of this.points) if (p.t_ms >= t0) mx = Math.max(mx, p.max ?? p.mean);
-    if (this.danger > 0 && this.danger < mx * 3) mx = Math.max(mx, this.danger);
-    else if (this.alert > 0 && this.alert < mx * 3) mx = Math.max(mx, this.alert);
+    // Show the levels when the values come near them (or when there are no values yet).
+    if (this.danger > 0 && (mx === 0 || this.danger < mx * 3)) mx = Math.max(mx, this.danger);
+    else if (this.alert > 0 && (mx === 0 || this.alert < mx * 3)) mx = Math.max(mx, this.alert);
     const top = niceCeil((mx || 1) * 1.1);
     const ys = new Scale(false).set(0, top, B, T);
     // grid and axes
