@@ -388,7 +388,11 @@ class AlarmConfig(_Model):
     channel: str = Field("*", description="Channel id, or '*' for every channel.")
     band: str | None = Field(None, description="Band name watched.")
     tone: str | None = Field(None, description="Tone name watched.")
-    overall: bool = Field(False, description="Watch the overall RMS over lowcut_hz…fmax_hz.")
+    overall: bool = Field(
+        False,
+        description="Watch the channel's overall RMS: over its band named 'overall' if it has "
+        "one, else over lowcut_hz…fmax_hz.",
+    )
     alert: float | None = Field(
         None, gt=0,
         description="Alert (first) level, in the channel's display unit and amplitude "

@@ -29,7 +29,7 @@ from .types import BandValue, SampleBlock, SpectralFrame, ToneValue
 
 log = logging.getLogger("quaver.pipeline")
 
-OVERALL = "_overall"  # internal band: RMS over lowcut_hz … fmax_hz in the display unit
+OVERALL = "_overall"  # internal band: the channel's overall value (see overall_band)
 FLAT_MIN_S = 0.05  # identical samples for this long = a flat (dead) sensor; our choice
 FAULT_HOLD_S = 2.0  # a sensor fault is held this long after the last bad block (common practice)
 OVERRUN_HOLD_S = 5.0
@@ -381,6 +381,8 @@ class SourcePipeline:
                     lowcut_hz=an.lowcut_hz,
                     power=power_in[c],
                     overall=float(bands[c, -1]),
+                    overall_lo_hz=float(edges[c, -1, 0]),
+                    overall_hi_hz=float(edges[c, -1, 1]),
                     bands=tuple(
                         BandValue(
                             b.name, float(edges[c, i, 0]), float(edges[c, i, 1]), float(bands[c, i])
@@ -399,6 +401,15 @@ class SourcePipeline:
                 )
             )
         return out
+
+
+def overall_band(bands: Sequence[Band], lowcut_hz: float, fmax_hz: float) -> Band:
+    """The band the channel's *overall* value covers: its band named "overall" when it has
+    one (e.g. velocity 10–1000 Hz, as severity standards define it), else lowcut…Fmax."""
+    named = next((b for b in bands if b.name == "overall"), None)
+    if named is not None:
+        return Band(OVERALL, named.lo, named.hi, named.basis)
+    return Band(OVERALL, lowcut_hz, fmax_hz)
 
 
 def build_groups(
@@ -421,7 +432,8 @@ def build_groups(
             settings,
             fs,
             input_unit=ch.input_unit,
-            bands=bands + (Band(OVERALL, settings.lowcut_hz, min(settings.fmax_hz, fs / 2.56)),),
+            bands=bands
+            + (overall_band(bands, settings.lowcut_hz, min(settings.fmax_hz, fs / 2.56)),),
             tones=tones,
         )
         key = repr((res.spec, ch.input_unit))

@@ -110,3 +110,5 @@ class SpectralFrame:
     tones: tuple[ToneValue, ...]
     peaks: tuple[ToneValue, ...]
     end_index: int = 0  # stream index just after the newest frame's last sample
+    overall_lo_hz: float = float("nan")  # the band the overall covers, Hz
+    overall_hi_hz: float = float("nan")

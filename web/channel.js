@@ -294,7 +294,10 @@ export function mount(root, ctx, id) {
       f.push(["lines", `${m.lines} · Fmax ${fmtHz(m.fmax_hz)} · Δf ${fmtHz(m.df_hz)}`]);
       f.push(["window", `${m.window} · ENBW ${fmtVal(m.enbw_bins)} lines`]);
       f.push(["averaging", `${m.averaging ?? ""} ${m.averages}`]);
-      f.push(["overall band", `${fmtHz(m.lowcut_hz)}–${fmtHz(m.fmax_hz)}`]);
+      const L = c?.latest;
+      f.push(["overall band", L?.overall_lo_hz != null
+        ? `${fmtHz(L.overall_lo_hz)}–${fmtHz(L.overall_hi_hz)}`
+        : `${fmtHz(m.lowcut_hz)}–${fmtHz(m.fmax_hz)}`]);
     }
     if (c) f.push(["sample rate", `${fmtVal(c.sample_rate_hz, 5)} Hz`]);
     if (c) f.push(["status", c.status]);

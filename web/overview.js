@@ -156,7 +156,8 @@ export function mount(root, ctx) {
         e.overall.dataset.value = L.overall;
       }
       e.unit.textContent = L ? unitLabel(L.unit, "rms") : "";
-      e.what.textContent = L ? `overall to ${fmtHz(L.fmax_hz)}` : "";
+      e.what.textContent = !L ? "" : L.overall_lo_hz != null
+        ? `overall ${fmtHz(L.overall_lo_hz)}–${fmtHz(L.overall_hi_hz)}` : `overall to ${fmtHz(L.fmax_hz)}`;
       e.el.classList.toggle("stale", stale);
       const notes = [];
       if (c.fault) notes.push(`${glyph("fault", 12)} ${esc(c.fault)}`);

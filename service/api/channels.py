@@ -53,6 +53,8 @@ def _summary(hub: Any, cid: str) -> dict[str, Any]:
             **_stamp(f),
             "unit": f.unit,
             "overall": _num(f.overall),
+            "overall_lo_hz": _num(f.overall_lo_hz),
+            "overall_hi_hz": _num(f.overall_hi_hz),
             "fmax_hz": f.fmax_hz,
             "lines": f.lines,
         }
@@ -127,6 +129,8 @@ def bands_payload(frame: SpectralFrame) -> dict[str, Any]:
         "unit": frame.unit,
         "amplitude": "rms",
         "overall": _num(frame.overall),
+        "overall_lo_hz": _num(frame.overall_lo_hz),
+        "overall_hi_hz": _num(frame.overall_hi_hz),
         "bands": [
             {"name": b.name, "lo_hz": _num(b.lo_hz), "hi_hz": _num(b.hi_hz), "value": _num(b.value)}
             for b in frame.bands

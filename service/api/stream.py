@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import asyncio
 import json
+import logging
 import struct
 import time
 from typing import Any
@@ -40,6 +41,10 @@ from ..types import SpectralFrame
 from .channels import bands_payload, tones_payload
 
 router = APIRouter()
+log = logging.getLogger("quaver.stream")
+# What a send or receive raises when the client has gone (uvicorn's ClientDisconnected is
+# an OSError; starlette raises RuntimeError after a close).
+_CLIENT_GONE = (WebSocketDisconnect, RuntimeError, OSError)
 
 KINDS = ("spectrum", "bands", "tones", "alarms", "status")
 MAX_MESSAGE_BYTES = 4096  # a subscription is small; anything bigger is refused
@@ -216,14 +221,21 @@ async def stream(ws: WebSocket) -> None:
         )
         recv = asyncio.create_task(session.receive_loop())
         send = asyncio.create_task(session.send_loop())
-        done, pending = await asyncio.wait({recv, send}, return_when=asyncio.FIRST_COMPLETED)
+        _, pending = await asyncio.wait({recv, send}, return_when=asyncio.FIRST_COMPLETED)
         for t in pending:
             t.cancel()
-        for t in done:
-            exc = t.exception()
-            if exc is not None and not isinstance(exc, WebSocketDisconnect | RuntimeError):
-                raise exc
-    except WebSocketDisconnect:
+        # Collect both outcomes (so no task exception goes unretrieved); a client that went
+        # away mid-send is an ordinary end of the session, anything else is logged.
+        for outcome in await asyncio.gather(recv, send, return_exceptions=True):
+            if isinstance(outcome, asyncio.CancelledError) or not isinstance(
+                outcome, BaseException
+            ):
+                continue
+            if isinstance(outcome, _CLIENT_GONE):
+                log.debug("stream client left: %r", outcome)
+            else:
+                log.warning("stream session ended by %r", outcome)
+    except _CLIENT_GONE:
         pass
     finally:
         hub.unsubscribe(session.sub)

@@ -46,8 +46,11 @@ async def get_trend(
     if not since_s < until_s:
         raise HTTPException(422, f"since={since_s:g} must be before until={until_s:g}")
     since_ns, until_ns = int(since_s * _NS), int(until_s * _NS)
-    points = await asyncio.to_thread(store.trend, channel.id, name, since_ns, until_ns, step)
-    used = await asyncio.to_thread(store.trend_step, since_ns, step)
+    try:
+        points = await asyncio.to_thread(store.trend, channel.id, name, since_ns, until_ns, step)
+        used = await asyncio.to_thread(store.trend_step, since_ns, step)
+    except ValueError as e:  # e.g. a step that is not a multiple of the stored step
+        raise HTTPException(422, f"step: {e}") from None
     names = await asyncio.to_thread(store.trend_names, channel.id)
     if not points and name not in names and names:
         raise HTTPException(404, f"no trend {name!r} on {channel.id!r}; have: {', '.join(names)}")
