@@ -104,7 +104,11 @@ class ConfigError(ValueError):
 
 
 class _Model(BaseModel):
-    model_config = ConfigDict(extra="forbid", validate_default=True, allow_inf_nan=False)
+    # strict: a TOML string or bool is never coerced into a number (sensitivity = true is an
+    # error, not 1.0); TOML integers still fill float fields.
+    model_config = ConfigDict(
+        extra="forbid", validate_default=True, allow_inf_nan=False, strict=True
+    )
 
 
 def _d(text: str) -> Any:

@@ -107,6 +107,7 @@ def decode_raw(buf: bytes, fmt: str, channels: int) -> tuple[np.ndarray, bytes]:
     Returns ``(data, leftover)``: ``data`` is float32 ``[channels, n]`` holding the sample
     values unscaled (raw units), n = len(buf) // (channels × sample size); ``leftover`` is
     the trailing bytes of an incomplete sample frame, to be prepended to the next call.
+    f64 samples beyond ±3.4e38 decode as ±inf (non-finite: a sensor fault downstream).
     """
     check_raw_format(fmt)
     if channels < 1:
@@ -115,7 +116,10 @@ def decode_raw(buf: bytes, fmt: str, channels: int) -> tuple[np.ndarray, bytes]:
     n = len(buf) // frame_bytes
     used = n * frame_bytes
     flat = np.frombuffer(buf, dtype=_DTYPES[fmt], count=n * channels)
-    data = flat.reshape(n, channels).T.astype(np.float32)  # astype copies: no view on buf
+    # f64 values beyond float32's range become ±inf and signalling NaNs quiet NaNs; the
+    # pipeline then flags the channel (sensor fault). Bad input is never an exception here.
+    with np.errstate(over="ignore", invalid="ignore"):
+        data = flat.reshape(n, channels).T.astype(np.float32)  # astype copies: no view on buf
     return data, bytes(buf[used:])
 
 

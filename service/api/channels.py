@@ -13,7 +13,7 @@ from dsp.types import AMPLITUDES, OUTPUT_UNITS, QUANTITIES
 
 from ..spectra import spectrum_values, to_csv, to_npy
 from ..types import SpectralFrame
-from .deps import ChannelDep, FrameDep, HubDep
+from .deps import ChannelDep, HubDep, get_frame
 
 router = APIRouter(tags=["channels"])
 
@@ -40,8 +40,13 @@ def _stamp(frame: SpectralFrame) -> dict[str, Any]:
     }
 
 
-def _iso(t_ns: int) -> str:
-    return np.datetime_as_string(np.datetime64(t_ns, "ns"), unit="ms") + "Z"
+def _iso(t_ns: int) -> str | None:
+    """ISO 8601 UTC of a time in ns since the epoch; None outside datetime64[ns]'s range
+    (a producer's header clock can be anything; the ns value is still reported)."""
+    try:
+        return np.datetime_as_string(np.datetime64(int(t_ns), "ns"), unit="ms") + "Z"
+    except (OverflowError, ValueError):
+        return None
 
 
 def _summary(hub: Any, cid: str) -> dict[str, Any]:
@@ -83,7 +88,8 @@ def get_channel(channel: ChannelDep, hub: HubDep) -> dict[str, Any]:
     },
 )
 def get_spectrum(
-    frame: FrameDep,
+    channel: ChannelDep,
+    hub: HubDep,
     unit: Annotated[
         UnitQ | None, Query(description="Unit or quantity; default: the channel's")
     ] = None,
@@ -92,6 +98,9 @@ def get_spectrum(
         Literal["json", "csv", "npy"], Query(description="json | csv | npy")
     ] = "json",
 ) -> Any:
+    # Looked up here, not as a dependency, so that bad query values are a 422 even before
+    # the channel's first spectrum (a dependency's 503 would come first).
+    frame = get_frame(channel.id, hub)
     values, u, a = spectrum_values(frame, unit, amplitude)
     if format == "csv":
         return Response(to_csv(frame, values, u, a), media_type="text/csv")
@@ -152,10 +161,10 @@ def tones_payload(frame: SpectralFrame) -> dict[str, Any]:
 
 
 @router.get("/channels/{channel_id}/bands", summary="Latest band RMS values and the overall")
-def get_bands(frame: FrameDep) -> dict[str, Any]:
-    return bands_payload(frame)
+def get_bands(channel: ChannelDep, hub: HubDep) -> dict[str, Any]:
+    return bands_payload(get_frame(channel.id, hub))
 
 
 @router.get("/channels/{channel_id}/tones", summary="Tracked tones and the largest peaks")
-def get_tones(frame: FrameDep) -> dict[str, Any]:
-    return tones_payload(frame)
+def get_tones(channel: ChannelDep, hub: HubDep) -> dict[str, Any]:
+    return tones_payload(get_frame(channel.id, hub))

@@ -29,7 +29,8 @@ def get_channel(channel_id: ChannelId, hub: HubDep) -> ChannelState:
     return st
 
 
-def get_frame(channel_id: ChannelId, hub: HubDep) -> SpectralFrame:
+def get_frame(channel_id: str, hub: Hub) -> SpectralFrame:
+    """The channel's latest frame: 404 for an unknown channel, 503 before its first one."""
     get_channel(channel_id, hub)
     frame = hub.latest.get(channel_id)
     if frame is None:
@@ -40,4 +41,3 @@ def get_frame(channel_id: ChannelId, hub: HubDep) -> SpectralFrame:
 
 
 ChannelDep = Annotated[ChannelState, Depends(get_channel)]
-FrameDep = Annotated[SpectralFrame, Depends(get_frame)]

@@ -391,11 +391,6 @@ def test_decode_datagram_raises_only_wire_error(case: bytes | tuple[str | None, 
 F64_SNAN = struct.unpack("<d", bytes.fromhex("010000000000f07f"))[0]  # IEEE 754: a signalling NaN
 
 
-@pytest.mark.xfail(strict=True, reason="service/wire.py:118 decode_raw: the float64 → float32 "
-                   "cast of a value beyond ±3.4e38 or of a signalling NaN emits RuntimeWarning "
-                   "('overflow'/'invalid value encountered in cast'), so FrameDecoder.feed and "
-                   "decode_datagram raise under -W error; cast inside np.errstate(over='ignore', "
-                   "invalid='ignore') and document that such samples become ±inf/NaN")
 @pytest.mark.parametrize("value", [1e300, -1e300, F64_SNAN], ids=["big", "-big", "snan"])
 def test_f64_samples_decode_without_a_warning(value: float) -> None:
     payload = struct.pack("<2d", value, 1.0)  # one channel, two samples (README layout)
@@ -979,11 +974,6 @@ COERCED = {
 }
 
 
-@pytest.mark.xfail(strict=True, reason="service/config.py:107 _Model.model_config is pydantic's "
-                   "lax mode: a TOML bool or string is coerced into a number or bool "
-                   "(sensitivity = true reads as 1.0, speed_rpm = \"1480\" as 1480, latch = 1 "
-                   "as true) instead of a ConfigError; add strict=True to the ConfigDict "
-                   "(strict floats still take TOML integers)")
 @pytest.mark.parametrize("key", sorted(COERCED))
 def test_wrong_toml_types_are_not_coerced(tmp_path: Path, key: str) -> None:
     path = tmp_path / "quaver.toml"

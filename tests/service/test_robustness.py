@@ -363,13 +363,6 @@ def test_timestamps_going_backwards_are_accepted(svc: RunningService) -> None:
     svc.assert_healthy()
 
 
-@pytest.mark.xfail(strict=True, reason="service/api/channels.py:44 _iso: np.datetime64(t_ns, 'ns') "
-                   "raises OverflowError when a frame's time passes 2**63-1 ns (a header near "
-                   "the end of the i64 range, service/pipeline.py:353 adds the block's "
-                   "duration), so GET /channels, /channels/{id}, /spectrum, /bands and /tones "
-                   "answer 500 from then on; treat header times outside datetime64[ns] (or "
-                   "implausible ones) as unknown in the sources (arrival time) or as malformed, "
-                   "and make _iso total")
 def test_header_times_at_the_end_of_the_i64_range_keep_the_api_up(
     quaver_service_factory: Callable[[dict[str, Any]], RunningService],
 ) -> None:
@@ -540,11 +533,6 @@ def test_since_after_until_is_422(svc: RunningService, http_channel: str) -> Non
     assert r.json()["detail"] == "since=2000 must be before until=1000"
 
 
-@pytest.mark.xfail(strict=True, reason="service/api/channels.py get_spectrum: FrameDep "
-                   "(service/api/deps.py get_frame) runs before FastAPI validates the query, so "
-                   "a bad unit/amplitude/format on a channel without a spectrum yet answers 503 "
-                   "+ Retry-After (a client retries a request that can never succeed) instead of "
-                   "422; take ChannelDep and look the frame up in the handler body")
 def test_bad_query_on_a_channel_without_data_is_422(svc: RunningService) -> None:
     assert svc.channel("idle-a")["latest"] is None  # nothing was ever sent to it
     r = svc.client.get("/api/v1/channels/idle-a/spectrum", params={"unit": "furlong/s"})
