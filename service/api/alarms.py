@@ -13,6 +13,7 @@ from fastapi import APIRouter, Body, HTTPException, Path, Query, Request, Respon
 from pydantic import BaseModel, Field
 
 from ..alarms import AckRefused, UnknownAlarm
+from .deps import I64_MAX
 from .security import Operator, Reader
 
 router = APIRouter(tags=["alarms"])
@@ -67,20 +68,24 @@ async def list_events(
     request: Request,
     _: Reader,
     since: Annotated[
-        int | None, Query(description="only events at/after this time, ns since epoch")
+        int | None,
+        Query(ge=-I64_MAX, le=I64_MAX, description="only events at/after this time, ns"),
     ] = None,
     channel: Annotated[str | None, Query(max_length=64)] = None,
     limit: Annotated[int, Query(ge=1, le=1000)] = 100,
-    before_id: Annotated[int | None, Query(ge=1, description="page: ids below this")] = None,
+    before_id: Annotated[
+        int | None, Query(ge=1, le=I64_MAX, description="page: ids below this")
+    ] = None,
 ) -> dict[str, Any]:
     store = _service(request).store
     rows = await asyncio.to_thread(store.events, since, channel, limit, before_id)
     return {"events": rows, "next_before_id": rows[-1]["id"] if len(rows) == limit else None}
 
 
-@router.get("/events/{event_id}", summary="One event")
+@router.get("/events/{event_id}", summary="One event",
+            responses={404: {"description": "no such event"}})
 async def get_event(
-    request: Request, _: Reader, event_id: Annotated[int, Path(ge=1)]
+    request: Request, _: Reader, event_id: Annotated[int, Path(ge=1, le=I64_MAX)]
 ) -> dict[str, Any]:
     row = await asyncio.to_thread(_service(request).store.event, event_id)
     if row is None:
@@ -106,7 +111,7 @@ async def get_event(
 async def get_evidence(
     request: Request,
     _: Reader,
-    event_id: Annotated[int, Path(ge=1)],
+    event_id: Annotated[int, Path(ge=1, le=I64_MAX)],
     format: Annotated[Literal["json", "csv", "wav", "npy"], Query()] = "json",
     part: Annotated[
         Literal["spectrum", "waveform"], Query(description="csv/npy: which array")

@@ -13,7 +13,7 @@ from dsp.types import AMPLITUDES, OUTPUT_UNITS, QUANTITIES
 
 from ..spectra import spectrum_values, to_csv, to_npy
 from ..types import SpectralFrame
-from .deps import ChannelDep, HubDep, get_frame
+from .deps import NO_FRAME, NOT_FOUND, ChannelDep, HubDep, get_frame
 
 router = APIRouter(tags=["channels"])
 
@@ -73,7 +73,8 @@ def list_channels(hub: HubDep) -> list[dict[str, Any]]:
     return [_summary(hub, cid) for cid in hub.channels]
 
 
-@router.get("/channels/{channel_id}", summary="One channel's state and counters")
+@router.get("/channels/{channel_id}", summary="One channel's state and counters",
+            responses=NOT_FOUND)
 def get_channel(channel: ChannelDep, hub: HubDep) -> dict[str, Any]:
     return _summary(hub, channel.id)
 
@@ -160,11 +161,13 @@ def tones_payload(frame: SpectralFrame) -> dict[str, Any]:
     }
 
 
-@router.get("/channels/{channel_id}/bands", summary="Latest band RMS values and the overall")
+@router.get("/channels/{channel_id}/bands", summary="Latest band RMS values and the overall",
+            responses=NO_FRAME)
 def get_bands(channel: ChannelDep, hub: HubDep) -> dict[str, Any]:
     return bands_payload(get_frame(channel.id, hub))
 
 
-@router.get("/channels/{channel_id}/tones", summary="Tracked tones and the largest peaks")
+@router.get("/channels/{channel_id}/tones", summary="Tracked tones and the largest peaks",
+            responses=NO_FRAME)
 def get_tones(channel: ChannelDep, hub: HubDep) -> dict[str, Any]:
     return tones_payload(get_frame(channel.id, hub))

@@ -4,9 +4,10 @@ No routes here; no I/O beyond reading the hub."""
 
 from __future__ import annotations
 
-from typing import Annotated
+from typing import Annotated, Any, NoReturn
 
 from fastapi import Depends, HTTPException, Path, Request
+from fastapi.exceptions import RequestValidationError
 
 from ..hub import Hub
 from ..pipeline import ChannelState
@@ -40,4 +41,19 @@ def get_frame(channel_id: str, hub: Hub) -> SpectralFrame:
     return frame
 
 
+I64_MAX = 2**63 - 1  # SQLite integers; ids and ns times beyond are refused with 422
+NOT_FOUND: dict[int | str, dict[str, Any]] = {404: {"description": "unknown channel"}}
+NO_FRAME: dict[int | str, dict[str, Any]] = {
+    404: {"description": "unknown channel"},
+    503: {"description": "no spectrum yet (Retry-After: 1)"},
+}
+
 ChannelDep = Annotated[ChannelState, Depends(get_channel)]
+
+
+def invalid_query(param: str, msg: str) -> NoReturn:
+    """A 422 in FastAPI's own shape (detail: [{loc, msg, type}]), as its OpenAPI says."""
+    raise RequestValidationError(
+        [{"loc": ("query", param), "msg": msg, "type": "value_error", "input": None}]
+    )
+

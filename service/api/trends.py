@@ -10,17 +10,21 @@ from typing import Annotated, Any
 
 from fastapi import APIRouter, HTTPException, Query, Request
 
-from .deps import ChannelDep
+from .deps import ChannelDep, invalid_query
 from .security import Reader
 
 router = APIRouter(tags=["trends"])
 
 _NS = 1_000_000_000
+MAX_S = 9.2e9  # times in s whose ns still fit a signed 64-bit integer
+
+
 
 
 @router.get(
     "/channels/{channel_id}/trend",
     summary="Trend of one value: overall, band:<name> or tone:<name>",
+    responses={404: {"description": "unknown channel, or no such trend on it"}},
 )
 async def get_trend(
     request: Request,
@@ -30,10 +34,12 @@ async def get_trend(
         str, Query(max_length=200, description="overall | band:<name> | tone:<name>")
     ] = "overall",
     since: Annotated[
-        float | None, Query(description="start, s since the Unix epoch; default: 1 h ago")
+        float | None,
+        Query(ge=-MAX_S, le=MAX_S, description="start, s since the Unix epoch; default: 1 h ago"),
     ] = None,
     until: Annotated[
-        float | None, Query(description="end, s since the Unix epoch; default: now")
+        float | None,
+        Query(ge=-MAX_S, le=MAX_S, description="end, s since the Unix epoch; default: now"),
     ] = None,
     step: Annotated[
         int | None, Query(ge=1, le=31 * 86400, description="bucket, s; default: the finest kept")
@@ -44,13 +50,13 @@ async def get_trend(
     until_s = now if until is None else until
     since_s = until_s - 3600 if since is None else since
     if not since_s < until_s:
-        raise HTTPException(422, f"since={since_s:g} must be before until={until_s:g}")
+        invalid_query("since", f"since={since_s:g} must be before until={until_s:g}")
     since_ns, until_ns = int(since_s * _NS), int(until_s * _NS)
     try:
         points = await asyncio.to_thread(store.trend, channel.id, name, since_ns, until_ns, step)
         used = await asyncio.to_thread(store.trend_step, since_ns, step)
     except ValueError as e:  # e.g. a step that is not a multiple of the stored step
-        raise HTTPException(422, f"step: {e}") from None
+        invalid_query("step", str(e))
     names = await asyncio.to_thread(store.trend_names, channel.id)
     if not points and name not in names and names:
         raise HTTPException(404, f"no trend {name!r} on {channel.id!r}; have: {', '.join(names)}")

@@ -10,7 +10,10 @@ from fastapi import APIRouter, Query
 
 from dsp.windows import bin_response, window_info
 
+from .deps import invalid_query
+
 router = APIRouter(tags=["windows"])
+MAX_WORK = 2e8  # n × points evaluated: about a second of one core
 
 WindowP = Literal["rectangular", "hann", "hamming", "blackman-harris", "flattop", "kaiser"]
 
@@ -25,6 +28,12 @@ def window_response(
     points_per_bin: Annotated[int, Query(ge=1, le=64)] = 16,
     beta: Annotated[float, Query(ge=0, le=50, description="Kaiser β")] = 8.6,
 ) -> dict[str, Any]:
+    points = (2 * span_bins * points_per_bin + 1) * n
+    if points > MAX_WORK:  # the direct DTFT costs n multiply-adds per point shown
+        invalid_query(
+            "n", f"n·points = {points:.3g} is over {MAX_WORK:.0e}; ask for fewer lines or a "
+            "smaller n (the line's shape hardly changes with n beyond a few thousand)"
+        )
     nu, gain_db = bin_response(
         window, n, span_bins=span_bins, points_per_bin=points_per_bin, beta=beta
     )
