@@ -6,12 +6,12 @@ from __future__ import annotations
 import asyncio
 import os
 import struct
-from collections.abc import Callable, Coroutine
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pytest
+from sourcekit import CLOCK_NS, FS, joined, run, until
 
 from service import wire
 from service.recording import write_wav
@@ -19,33 +19,15 @@ from service.sources import FileSource, make_source
 from service.sources.base import GAP_SAMPLES
 from service.types import SampleBlock
 
-CLOCK_NS = 1_700_000_000_000_000_000
-FS = 1000.0
-
-
-def run(coro: Coroutine[Any, Any, None], timeout_s: float = 5.0) -> None:
-    async def bounded() -> None:
-        async with asyncio.timeout(timeout_s):
-            await coro
-
-    asyncio.run(bounded())
-
-
-async def until(cond: Callable[[], bool]) -> None:
-    while not cond():
-        await asyncio.sleep(0.005)
-
 
 async def take(src: FileSource, n_samples: int) -> list[SampleBlock]:
+    """As sourcekit.take, but the blocks must end exactly at ``n_samples``."""
     out: list[SampleBlock] = []
     while sum(b.n for b in out) < n_samples:
         out.append(await src.__anext__())
     assert sum(b.n for b in out) == n_samples
     return out
 
-
-def joined(blocks: list[SampleBlock]) -> np.ndarray:
-    return np.concatenate([b.data for b in blocks], axis=1)
 
 
 def contiguous(blocks: list[SampleBlock], first: int) -> bool:

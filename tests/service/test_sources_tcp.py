@@ -6,43 +6,16 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import itertools
-from collections.abc import Callable, Coroutine
 from typing import Any
 
 import numpy as np
 import pytest
+from sourcekit import CLOCK_NS, FS, joined, run, take, until
 
 from service import wire
 from service.sources import TcpSource, make_source
 from service.sources.base import GAP_SAMPLES, Source
 from service.types import SampleBlock
-
-CLOCK_NS = 1_700_000_000_000_000_000  # a fixed wall clock for the sources under test
-FS = 1000.0
-
-
-def run(coro: Coroutine[Any, Any, None], timeout_s: float = 5.0) -> None:
-    async def bounded() -> None:
-        async with asyncio.timeout(timeout_s):
-            await coro
-
-    asyncio.run(bounded())
-
-
-async def until(cond: Callable[[], bool]) -> None:
-    while not cond():
-        await asyncio.sleep(0.005)
-
-
-async def take(src: Source, n_samples: int) -> list[SampleBlock]:
-    out: list[SampleBlock] = []
-    while sum(b.n for b in out) < n_samples:
-        out.append(await src.__anext__())
-    return out
-
-
-def joined(blocks: list[SampleBlock]) -> np.ndarray:
-    return np.concatenate([b.data for b in blocks], axis=1)
 
 
 def contiguous(blocks: list[SampleBlock]) -> bool:

@@ -3,30 +3,14 @@
 from __future__ import annotations
 
 import asyncio
-from collections.abc import Callable, Coroutine
 from typing import Any
 
 import numpy as np
+from sourcekit import CLOCK_NS, FS, run, until
 
 from service import wire
 from service.sources import UdpSource, make_source
 from service.types import SampleBlock
-
-CLOCK_NS = 1_700_000_000_000_000_000
-FS = 1000.0
-
-
-def run(coro: Coroutine[Any, Any, None], timeout_s: float = 5.0) -> None:
-    async def bounded() -> None:
-        async with asyncio.timeout(timeout_s):
-            await coro
-
-    asyncio.run(bounded())
-
-
-async def until(cond: Callable[[], bool]) -> None:
-    while not cond():
-        await asyncio.sleep(0.005)
 
 
 class Sender:
