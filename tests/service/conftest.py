@@ -7,7 +7,6 @@ from __future__ import annotations
 
 import contextlib
 import math
-import os
 import signal
 import socket
 import subprocess
@@ -20,6 +19,8 @@ from typing import Any, TypeVar
 
 import httpx
 import pytest
+
+from tests.proc import child_env
 
 REPO = Path(__file__).resolve().parents[2]
 LOOPBACK = "127.0.0.1"
@@ -185,14 +186,6 @@ def _stop(proc: subprocess.Popen[bytes]) -> None:
             proc.wait(timeout=STOP_TIMEOUT_S)
 
 
-def _env() -> dict[str, str]:
-    env = {k: v for k, v in os.environ.items()
-           if not k.startswith("QUAVER_") and k.lower() not in ("http_proxy", "https_proxy",
-                                                                 "all_proxy")}
-    env["PYTHONPATH"] = os.pathsep.join(filter(None, [str(REPO), env.get("PYTHONPATH")]))
-    env["PYTHONUNBUFFERED"] = "1"
-    return env
-
 
 @contextlib.contextmanager
 def run_service(doc: dict[str, Any], workdir: Path) -> Iterator[RunningService]:
@@ -226,7 +219,7 @@ def run_service(doc: dict[str, Any], workdir: Path) -> Iterator[RunningService]:
         with open(log_path, "wb") as log:
             proc = subprocess.Popen(
                 [sys.executable, "-m", "service", "serve", "-c", str(config_path)],
-                cwd=workdir, env=_env(), stdout=log, stderr=subprocess.STDOUT,
+                cwd=workdir, env=child_env(), stdout=log, stderr=subprocess.STDOUT,
             )
         base_url = f"http://{LOOPBACK}:{http_port}"
         client = httpx.Client(base_url=base_url, timeout=10.0, trust_env=False)
@@ -262,7 +255,7 @@ def _wait_up(svc: RunningService) -> bool:
 def run_cli(*argv: str, timeout_s: float = 60.0) -> subprocess.CompletedProcess[str]:
     """Run ``python -m service ARGV`` (the ``quaver`` command) from the repository, with the
     same clean environment as the service; bounded by ``timeout_s``."""
-    return subprocess.run([sys.executable, "-m", "service", *argv], cwd=REPO, env=_env(),
+    return subprocess.run([sys.executable, "-m", "service", *argv], cwd=REPO, env=child_env(),
                           capture_output=True, text=True, timeout=timeout_s, check=False)
 
 

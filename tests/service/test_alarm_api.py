@@ -12,7 +12,6 @@ import io
 import itertools
 import json
 import math
-import os
 import signal
 import socket
 import sqlite3
@@ -36,6 +35,7 @@ from websockets.sync.client import connect as ws_connect
 from websockets.typing import Origin
 
 from service.wire import encode_frame
+from tests.proc import child_env
 
 T = TypeVar("T")
 REPO = Path(__file__).resolve().parents[2]
@@ -298,17 +298,6 @@ hi_hz = {BAND[1]}
 {alarms}{toks}"""
 
 
-def _env() -> dict[str, str]:
-    env = {
-        k: v
-        for k, v in os.environ.items()
-        if not k.startswith("QUAVER_")
-        and k.lower() not in ("http_proxy", "https_proxy", "all_proxy")
-    }
-    env["PYTHONPATH"] = os.pathsep.join(filter(None, [str(REPO), env.get("PYTHONPATH")]))
-    env["PYTHONUNBUFFERED"] = "1"
-    return env
-
 
 LAUNCH = (
     "import sys, service.app, service.config; "
@@ -415,7 +404,7 @@ def start_service(workdir: Path, data_dir: Path) -> Svc:
             proc = subprocess.Popen(
                 [sys.executable, "-c", LAUNCH, str(cfg)],
                 cwd=workdir,
-                env=_env(),
+                env=child_env(),
                 stdout=log,
                 stderr=subprocess.STDOUT,
             )

@@ -20,6 +20,8 @@ from typing import Any, TypeVar
 import httpx
 import pytest
 
+from tests.proc import child_env
+
 REPO = Path(__file__).resolve().parents[2]
 ARTIFACTS = REPO / "test-artifacts"
 LOOPBACK = "127.0.0.1"
@@ -61,17 +63,6 @@ def free_port() -> int:
         s.bind((LOOPBACK, 0))
         return int(s.getsockname()[1])
 
-
-def _env() -> dict[str, str]:
-    env = {
-        k: v
-        for k, v in os.environ.items()
-        if not k.startswith("QUAVER_")
-        and k.lower() not in ("http_proxy", "https_proxy", "all_proxy")
-    }
-    env["PYTHONPATH"] = os.pathsep.join(filter(None, [str(REPO), env.get("PYTHONPATH")]))
-    env["PYTHONUNBUFFERED"] = "1"
-    return env
 
 
 def _service_code(port: int, data_dir: Path, speed: float | None, tokens: bool) -> str:
@@ -132,7 +123,7 @@ class Service:
                     _service_code(self.port, self.data_dir, self.speed, self.tokens),
                 ],
                 cwd=self.data_dir,
-                env=_env(),
+                env=child_env(),
                 stdout=log,
                 stderr=subprocess.STDOUT,
             )
