@@ -21,7 +21,8 @@ from .alarms import AlarmEngine, AlarmEvent, rules_from_config
 from .api import create_app
 from .config import Config, parse_config, parse_listen
 from .hub import Hub
-from .pipeline import SourcePipeline, build_groups, channel_states
+from .pipeline import SourcePipeline, channel_states
+from .profiles import ProfileBank
 from .sources import make_source
 from .spectra import spectrum_values
 from .store import Retention, Store
@@ -58,9 +59,7 @@ class Service:
                     source,
                     states,
                     self.on_frames,
-                    make_groups=functools.partial(
-                        build_groups, cfg, src_cfg.id, ids, states=states
-                    ),
+                    make_bank=functools.partial(ProfileBank, cfg, ids),
                     evidence_s=(cfg.service.evidence_before_s, cfg.service.evidence_after_s),
                 )
             )

@@ -45,6 +45,8 @@ __all__ = [
     "AlarmConfig",
     "AnalysisOverride",
     "AnalysisSettings",
+    "DEFAULT_PROFILE",
+    "ProfileSettings",
     "BandConfig",
     "ChannelConfig",
     "Config",
@@ -66,6 +68,8 @@ __all__ = [
     "load_config",
     "parse_config",
     "parse_listen",
+    "profile_names",
+    "profiles_of",
     "source_of",
     "tones_for",
 ]
@@ -228,16 +232,20 @@ class AnalysisSettings(_Model):
     peaks: int = Field(8, ge=0, le=256, description="Number of spectral peaks reported.")
 
 
-def _override_model() -> type[BaseModel]:
+def _override_model(name: str, scope: str) -> type[BaseModel]:
     fields: dict[str, Any] = {}
-    for name, f in AnalysisSettings.model_fields.items():
+    for key, f in AnalysisSettings.model_fields.items():
         ann = Annotated[(f.annotation, *f.metadata)] if f.metadata else f.annotation
-        help_text = f"{f.description} Overrides [analysis] for this channel."
-        fields[name] = (ann | None, Field(None, description=help_text))  # type: ignore[operator]
-    return create_model("AnalysisOverride", __base__=_Model, **fields)
+        help_text = f"{f.description} Overrides [analysis] {scope}."
+        fields[key] = (ann | None, Field(None, description=help_text))  # type: ignore[operator]
+    return create_model(name, __base__=_Model, **fields)
 
 
-AnalysisOverride = _override_model()
+AnalysisOverride = _override_model("AnalysisOverride", "for this channel")
+ProfileSettings = _override_model(
+    "ProfileSettings", "(and the channel's own overrides) in this profile"
+)
+DEFAULT_PROFILE = "default"  # the one profile of a config without [profiles]
 
 
 # --- [[sources]] ------------------------------------------------------------------------
@@ -364,10 +372,22 @@ class ChannelConfig(_Model):
     analysis: AnalysisOverride = Field(  # type: ignore[valid-type]
         default_factory=AnalysisOverride, description="Per-channel analysis overrides."
     )
+    profiles: list[Id] | None = Field(
+        None,
+        description="Analysis profiles this channel runs, by name from [profiles]; the first "
+        "is its primary one (what REST and the stream give when no profile is asked for). "
+        "Default: every profile, in file order.",
+    )
+
+
+_PROFILE_HELP = (
+    "Profile name, or '*' for every profile of the channel whose fmax_hz covers it."
+)
 
 
 class BandConfig(_Model):
     channel: str = Field("*", description="Channel id, or '*' for every channel.")
+    profile: str = Field("*", description=_PROFILE_HELP)
     name: Name = _d("Band name (unique per channel); for an octave set, the name prefix.")
     lo_hz: float | None = Field(None, ge=0, description="Lower edge, Hz.")
     hi_hz: float | None = Field(None, gt=0, description="Upper edge, Hz.")
@@ -383,6 +403,7 @@ class BandConfig(_Model):
 
 class ToneConfig(_Model):
     channel: str = Field("*", description="Channel id, or '*' for every channel.")
+    profile: str = Field("*", description=_PROFILE_HELP)
     name: Name = _d("Tone name (unique per channel), e.g. '1X' or 'mesh'.")
     hz: float | None = Field(None, gt=0, description="Fixed frequency, Hz.")
     order: float | None = Field(None, gt=0, description="Order of running speed.")
@@ -390,6 +411,12 @@ class ToneConfig(_Model):
 
 class AlarmConfig(_Model):
     channel: str = Field("*", description="Channel id, or '*' for every channel.")
+    profile: str | None = Field(
+        None,
+        description="Profile whose value is watched; default: the channel's first profile "
+        "that has the band or tone (overall: its primary profile); '*': every profile "
+        "that has it.",
+    )
     band: str | None = Field(None, description="Band name watched.")
     tone: str | None = Field(None, description="Tone name watched.")
     overall: bool = Field(
@@ -445,6 +472,11 @@ class Config(_Model):
         default_factory=lambda: AnalysisSettings.model_validate({}),
         description="Analysis defaults for every channel.",
     )
+    profiles: dict[Id, ProfileSettings] = Field(  # type: ignore[valid-type]
+        default_factory=dict,
+        description="[profiles.<name>]: named analyses each channel may run side by side "
+        "(e.g. wide and narrow); without any, every channel runs one profile, 'default'.",
+    )
     sources: list[SourceConfig] = Field(default_factory=list, description="[[sources]]")
     channels: list[ChannelConfig] = Field(default_factory=list, description="[[channels]]")
     bands: list[BandConfig] = Field(default_factory=list, description="[[bands]]")
@@ -464,6 +496,7 @@ def describe_settings() -> list[tuple[str, str, str, str]]:
         ('[[sources]] kind="simulated"', SimulatedSourceConfig),
         ("[[channels]]", ChannelConfig),
         ("[[channels]] analysis", AnalysisOverride),
+        ("[profiles.<name>]", ProfileSettings),
         ("[[bands]]", BandConfig),
         ("[[tones]]", ToneConfig),
         ("[[alarms]]", AlarmConfig),
@@ -500,6 +533,7 @@ MODELS: tuple[type[BaseModel], ...] = (
     ServiceSettings,
     AnalysisSettings,
     AnalysisOverride,
+    ProfileSettings,
     TcpSourceConfig,
     UdpSourceConfig,
     FileSourceConfig,
@@ -531,11 +565,32 @@ def channel_settings(cfg: Config, channel_id: str) -> ChannelConfig:
     return entry if entry is not None else ChannelConfig.model_validate({"id": channel_id})
 
 
-def effective_analysis(cfg: Config, channel_id: str) -> AnalysisSettings:
-    """``[analysis]`` with the channel's own ``analysis`` overrides applied."""
+def profile_names(cfg: Config) -> list[str]:
+    """Every analysis profile name, in file order (``["default"]`` without [profiles])."""
+    return list(cfg.profiles) or [DEFAULT_PROFILE]
+
+
+def profiles_of(cfg: Config, channel_id: str) -> list[str]:
+    """The profiles ``channel_id`` runs, its primary one first."""
+    own = channel_settings(cfg, channel_id).profiles
+    return list(own) if own else profile_names(cfg)
+
+
+def _primary(cfg: Config, channel_id: str, profile: str | None) -> str:
+    return profiles_of(cfg, channel_id)[0] if profile is None else profile
+
+
+def effective_analysis(
+    cfg: Config, channel_id: str, profile: str | None = None
+) -> AnalysisSettings:
+    """``[analysis]``, then the channel's own ``analysis`` overrides, then those of
+    ``profile`` (default: the channel's primary profile) — the later wins."""
     override: BaseModel = channel_settings(cfg, channel_id).analysis
-    over = override.model_dump(exclude_none=True)
-    return cfg.analysis.model_copy(update=over)
+    out = cfg.analysis.model_copy(update=override.model_dump(exclude_none=True))
+    prof: BaseModel | None = cfg.profiles.get(_primary(cfg, channel_id, profile))
+    if prof is not None:
+        out = out.model_copy(update=prof.model_dump(exclude_none=True))
+    return out
 
 
 def _expand_band(b: BandConfig) -> list[Band]:
@@ -551,34 +606,73 @@ def _is_order_band(b: BandConfig) -> bool:
     return b.lo_order is not None or b.hi_order is not None
 
 
-def bands_for(cfg: Config, channel_id: str) -> list[Band]:
-    """The bands of one channel, in file order, as :class:`dsp.bands.Band` (Hz or orders).
+def _top_hz(hz: float | None, order: float | None, speed_rpm: float | None) -> float | None:
+    """Highest frequency (Hz) a band edge or tone reaches; None if it has no speed to use."""
+    if hz is not None:
+        return hz
+    return None if order is None or speed_rpm is None else order * speed_rpm / 60.0
+
+
+def _covers(fmax_hz: float, top_hz: float | None) -> bool:
+    return top_hz is None or top_hz <= fmax_hz * (1 + 1e-9)
+
+
+def _applies(item_profile: str, profile: str, fmax_hz: float, top_hz: float | None) -> bool:
+    """Does a band/tone given for ``item_profile`` belong to ``profile`` (Fmax ``fmax_hz``)?"""
+    if item_profile == "*":
+        return _covers(fmax_hz, top_hz)
+    return item_profile == profile
+
+
+def bands_for(cfg: Config, channel_id: str, profile: str | None = None) -> list[Band]:
+    """The bands of one channel's profile (default: its primary one), in file order, as
+    :class:`dsp.bands.Band` (Hz or orders).
 
     ``"*"`` bands apply to every channel except where the channel has a band of the same
     name of its own; ``"*"`` order bands skip channels without ``speed_rpm``; an octave set
     becomes one band per IEC 61260-1 band, named ``"<name> <mid-band>"`` (e.g. "thirds 1 kHz").
+    A band with ``profile = "*"`` goes to each profile whose fmax_hz reaches its upper edge.
     """
-    has_speed = channel_settings(cfg, channel_id).speed_rpm is not None
-    own = [b for b in cfg.bands if b.channel == channel_id]
-    own_names = {band.name for b in own for band in _expand_band(b)}
+    profile = _primary(cfg, channel_id, profile)
+    rpm = channel_settings(cfg, channel_id).speed_rpm
+    fmax = effective_analysis(cfg, channel_id, profile).fmax_hz
+
+    def expand(b: BandConfig) -> list[Band]:
+        return [
+            band
+            for band in _expand_band(b)
+            if _applies(
+                b.profile, profile, fmax,
+                _top_hz(band.hi if band.basis == "hz" else None,
+                        band.hi if band.basis == "order" else None, rpm),
+            )
+        ]
+
+    own_names = {band.name for b in cfg.bands if b.channel == channel_id for band in expand(b)}
     out: list[Band] = []
     for b in cfg.bands:
         if b.channel == channel_id:
-            out += _expand_band(b)
-        elif b.channel == "*" and (has_speed or not _is_order_band(b)):
-            out += [band for band in _expand_band(b) if band.name not in own_names]
+            out += expand(b)
+        elif b.channel == "*" and (rpm is not None or not _is_order_band(b)):
+            out += [band for band in expand(b) if band.name not in own_names]
     return out
 
 
-def tones_for(cfg: Config, channel_id: str) -> list[ToneDef]:
-    """The tracked tones of one channel (same ``"*"`` rules as :func:`bands_for`)."""
-    has_speed = channel_settings(cfg, channel_id).speed_rpm is not None
-    own_names = {t.name for t in cfg.tones if t.channel == channel_id}
+def tones_for(cfg: Config, channel_id: str, profile: str | None = None) -> list[ToneDef]:
+    """The tracked tones of one channel's profile (same rules as :func:`bands_for`)."""
+    profile = _primary(cfg, channel_id, profile)
+    rpm = channel_settings(cfg, channel_id).speed_rpm
+    fmax = effective_analysis(cfg, channel_id, profile).fmax_hz
+    mine = [
+        t for t in cfg.tones
+        if _applies(t.profile, profile, fmax, _top_hz(t.hz, t.order, rpm))
+    ]
+    own_names = {t.name for t in mine if t.channel == channel_id}
     return [
         ToneDef(t.name, hz=t.hz, order=t.order)
-        for t in cfg.tones
+        for t in mine
         if t.channel == channel_id
-        or (t.channel == "*" and t.name not in own_names and (has_speed or t.order is None))
+        or (t.channel == "*" and t.name not in own_names and (rpm is not None or t.order is None))
     ]
 
 
@@ -657,6 +751,8 @@ def parse_config(
 def _path(loc: Iterable[int | str]) -> str:
     out = ""
     for part in loc:
+        if part == "[key]":  # pydantic's marker for a table key that failed, e.g. a profile name
+            continue
         out += f"[{part}]" if isinstance(part, int) else (f".{part}" if out else str(part))
     return out
 
@@ -729,6 +825,7 @@ class _Checker:
     def run(self) -> list[str]:
         self.sources()
         self.channels()
+        self.profiles()
         self.analysis()
         before = len(self.problems)
         self.bands()
@@ -811,39 +908,89 @@ class _Checker:
             if c.sensitivity == 0:
                 self.add(f"channels[{j}].sensitivity: must not be 0")
 
-    def where(self, ch: str, field: str) -> str:
+    def profiles(self) -> None:
+        names = profile_names(self.cfg)
+        listed = ", ".join(map(repr, names))
+        self.profiles_ok = True
+        for j, c in enumerate(self.cfg.channels):
+            seen: set[str] = set()
+            for k, name in enumerate(c.profiles or ()):
+                if name not in names:
+                    self.add(f"channels[{j}].profiles[{k}]: {name!r} is not a profile "
+                             f"(profiles: {listed})")
+                    self.profiles_ok = False
+                elif name in seen:
+                    self.add(f"channels[{j}].profiles[{k}]: {name!r} is listed twice")
+                seen.add(name)
+            if c.profiles is not None and not c.profiles:
+                self.add(f"channels[{j}].profiles: give at least one profile, or leave it out")
+                self.profiles_ok = False
+
+    def profile_known(self, where: str, name: str | None, ch: str) -> bool:
+        """Is ``name`` ('*', None or a profile) valid for channel ``ch`` ('*' = any)?"""
+        if name is None or name == "*":
+            return True
+        names = profile_names(self.cfg)
+        if name not in names:
+            listed = ", ".join(map(repr, names))
+            self.add(f"{where}: {name!r} is not a profile (profiles: {listed})")
+            return False
+        if ch != "*" and self.profiles_ok and name not in profiles_of(self.cfg, ch):
+            runs = ", ".join(map(repr, profiles_of(self.cfg, ch)))
+            self.add(f"{where}: channel {ch!r} does not run profile {name!r} (it runs {runs})")
+            return False
+        return True
+
+    def channel_profiles(self, ch: str) -> list[str]:
+        return profiles_of(self.cfg, ch) if self.profiles_ok else profile_names(self.cfg)[:1]
+
+    def where(self, ch: str, field: str, profile: str | None = None) -> str:
+        prof = self.cfg.profiles.get(profile) if profile is not None else None
+        if prof is not None and getattr(prof, field) is not None:
+            return f"profiles.{profile}.{field}"
         j = self.entry_index.get(ch)
         if j is not None and getattr(self.cfg.channels[j].analysis, field) is not None:
             return f"channels[{j}].analysis.{field}"
         return f"analysis.{field}"
 
     def analysis(self) -> None:
-        for ch in [*self.channel_source, *(c.id for c in self.cfg.channels)]:
-            a = effective_analysis(self.cfg, ch)
-            if a.lines % 25:
-                self.add(
-                    f"{self.where(ch, 'lines')}: 2.56·{a.lines} = {a.lines * 2.56:g} "
-                    "samples is not an integer; use a multiple of 25 (e.g. 400, 800, "
-                    "1600, 3200, 6400)"
-                )
-            fs = self.fs_of(ch)
-            if fs is not None and a.fmax_hz * FRAME_RATIO > fs * (1 + 1e-9):
-                src = self.cfg.sources[self.channel_source[ch]]
-                self.add(
-                    f"{self.where(ch, 'fmax_hz')}: {_fmt_hz(a.fmax_hz)} needs a sample "
-                    f"rate of at least 2.56·fmax = {_fmt_hz(a.fmax_hz * FRAME_RATIO)}; "
-                    f"source {src.id!r} runs at {_fmt_hz(fs)}"
-                )
-            if a.output_unit is not None and QUANTITY_OF_UNIT[a.output_unit] != a.unit:
-                self.add(
-                    f"{self.where(ch, 'output_unit')}: {a.output_unit!r} is not a unit "
-                    f"of {a.unit} (unit = {a.unit!r})"
-                )
-            if a.lowcut_hz >= a.fmax_hz:
-                self.add(
-                    f"{self.where(ch, 'lowcut_hz')}: {_fmt_hz(a.lowcut_hz)} must be "
-                    f"below fmax_hz {_fmt_hz(a.fmax_hz)}"
-                )
+        pairs = [
+            (ch, prof)
+            for ch in dict.fromkeys([*self.channel_source, *(c.id for c in self.cfg.channels)])
+            for prof in self.channel_profiles(ch)
+        ]
+        for ch, prof in pairs:
+            self.analysis_of(ch, prof)
+
+    def analysis_of(self, ch: str, prof: str) -> None:
+        def where(field: str) -> str:
+            return self.where(ch, field, prof)
+
+        a = effective_analysis(self.cfg, ch, prof)
+        if a.lines % 25:
+            self.add(
+                f"{where('lines')}: 2.56·{a.lines} = {a.lines * 2.56:g} "
+                "samples is not an integer; use a multiple of 25 (e.g. 400, 800, "
+                "1600, 3200, 6400)"
+            )
+        fs = self.fs_of(ch)
+        if fs is not None and a.fmax_hz * FRAME_RATIO > fs * (1 + 1e-9):
+            src = self.cfg.sources[self.channel_source[ch]]
+            self.add(
+                f"{where('fmax_hz')}: {_fmt_hz(a.fmax_hz)} needs a sample "
+                f"rate of at least 2.56·fmax = {_fmt_hz(a.fmax_hz * FRAME_RATIO)}; "
+                f"source {src.id!r} runs at {_fmt_hz(fs)}"
+            )
+        if a.output_unit is not None and QUANTITY_OF_UNIT[a.output_unit] != a.unit:
+            self.add(
+                f"{where('output_unit')}: {a.output_unit!r} is not a unit "
+                f"of {a.unit} (unit = {a.unit!r})"
+            )
+        if a.lowcut_hz >= a.fmax_hz:
+            self.add(
+                f"{where('lowcut_hz')}: {_fmt_hz(a.lowcut_hz)} must be "
+                f"below fmax_hz {_fmt_hz(a.fmax_hz)}"
+            )
 
     def edges(
         self, where: str, lo: float | None, hi: float | None, lo_key: str, hi_key: str
@@ -865,35 +1012,49 @@ class _Checker:
         elif ch == "*" and targets and all(s is None for s in speeds):
             self.add(f"{where}: no channel has speed_rpm, so orders cannot be placed")
 
-    def above_fmax(self, where: str, ch: str, hz: float | None, order: float | None) -> None:
+    def above_fmax(
+        self, where: str, ch: str, hz: float | None, order: float | None, profile: str = "*"
+    ) -> None:
+        """A band edge or tone above Fmax: with ``profile = "*"`` it must fit at least one of
+        the channel's profiles, else the named profile."""
         over = []
         for t in self.targets(ch):
-            fmax = effective_analysis(self.cfg, t).fmax_hz
-            rpm = channel_settings(self.cfg, t).speed_rpm
-            f = hz if hz is not None else (order * rpm / 60 if order and rpm else None)
-            if f is not None and f > fmax * (1 + 1e-9):
+            mine = self.channel_profiles(t)
+            profs = mine if profile == "*" else [profile] if profile in mine else []
+            if not profs:
+                continue
+            top = _top_hz(hz, order, channel_settings(self.cfg, t).speed_rpm)
+            fmax = max(effective_analysis(self.cfg, t, p).fmax_hz for p in profs)
+            if not _covers(fmax, top):
                 over.append(f"{t!r} ({_fmt_hz(fmax)})")
         if over:
             value = _fmt_hz(hz) if hz is not None else f"order {order:g}"
-            self.add(f"{where}: {value} is above fmax_hz of channel {', '.join(over)}")
+            of = "any profile of" if profile == "*" and len(self.cfg.profiles) > 1 else (
+                f"profile {profile!r} of" if profile != "*" else "")
+            self.add(f"{where}: {value} is above fmax_hz of {of} channel {', '.join(over)}"
+                     .replace("of  channel", "of channel"))
 
     def names(
-        self, table: str, scope: dict[tuple[str, str], int], j: int, ch: str, names: list[str]
+        self, table: str, scope: dict[tuple[str, str, str], int], j: int, ch: str,
+        profile: str, names: list[str],
     ) -> None:
         for name in names:
-            if (ch, name) in scope:
+            key = (ch, profile, name)
+            if key in scope:
                 self.add(
-                    f"{table}[{j}].name: {name!r} repeats {table}[{scope[(ch, name)]}] "
-                    f"on channel {ch!r}"
+                    f"{table}[{j}].name: {name!r} repeats {table}[{scope[key]}] "
+                    f"on channel {ch!r}" + ("" if profile == "*" else f", profile {profile!r}")
                 )
-            scope.setdefault((ch, name), j)
+            scope.setdefault(key, j)
 
     def bands(self) -> None:
-        scope: dict[tuple[str, str], int] = {}
+        scope: dict[tuple[str, str, str], int] = {}
         fractions = ", ".join(map(str, OCTAVE_FRACTIONS))
         for j, b in enumerate(self.cfg.bands):
             w = f"bands[{j}]"
             if not self.known(b.channel, f"{w}.channel"):
+                continue
+            if not self.profile_known(f"{w}.profile", b.profile, b.channel):
                 continue
             has_hz = b.lo_hz is not None or b.hi_hz is not None
             has_order = _is_order_band(b)
@@ -921,19 +1082,23 @@ class _Checker:
                         f"{w}: no 1/{b.octave}-octave band lies within {b.lo_hz:g}-{b.hi_hz:g} Hz"
                     )
                     continue
-                self.above_fmax(f"{w}.hi_hz", b.channel, b.hi_hz, None)
+                self.above_fmax(f"{w}.hi_hz", b.channel, b.hi_hz, None, b.profile)
             else:
                 if not self.edges(w, b.lo_order, b.hi_order, "lo_order", "hi_order"):
                     continue
                 self.speed_needed(f"{w}.lo_order", b.channel)
-                self.above_fmax(f"{w}.hi_order", b.channel, None, b.hi_order)
-            self.names("bands", scope, j, b.channel, [x.name for x in _expand_band(b)])
+                self.above_fmax(f"{w}.hi_order", b.channel, None, b.hi_order, b.profile)
+            self.names(
+                "bands", scope, j, b.channel, b.profile, [x.name for x in _expand_band(b)]
+            )
 
     def tones(self) -> None:
-        scope: dict[tuple[str, str], int] = {}
+        scope: dict[tuple[str, str, str], int] = {}
         for j, t in enumerate(self.cfg.tones):
             w = f"tones[{j}]"
             if not self.known(t.channel, f"{w}.channel"):
+                continue
+            if not self.profile_known(f"{w}.profile", t.profile, t.channel):
                 continue
             if (t.hz is None) == (t.order is None):
                 self.add(f"{w}: give exactly one of hz or order")
@@ -941,14 +1106,17 @@ class _Checker:
             if t.order is not None:
                 self.speed_needed(f"{w}.order", t.channel)
             self.above_fmax(
-                f"{w}.{'hz' if t.hz is not None else 'order'}", t.channel, t.hz, t.order
+                f"{w}.{'hz' if t.hz is not None else 'order'}", t.channel, t.hz, t.order,
+                t.profile,
             )
-            self.names("tones", scope, j, t.channel, [t.name])
+            self.names("tones", scope, j, t.channel, t.profile, [t.name])
 
     def alarms(self) -> None:
         for j, a in enumerate(self.cfg.alarms):
             w = f"alarms[{j}]"
             if not self.known(a.channel, f"{w}.channel"):
+                continue
+            if not self.profile_known(f"{w}.profile", a.profile, a.channel):
                 continue
             if (a.band is not None) + (a.tone is not None) + a.overall != 1:
                 self.add(f"{w}: give exactly one of band, tone or overall = true")
@@ -973,14 +1141,24 @@ class _Checker:
             for key, name, lookup in (("band", a.band, bands_for), ("tone", a.tone, tones_for)):
                 if name is None:
                     continue
-                have = {t: [x.name for x in lookup(self.cfg, t)] for t in self.targets(a.channel)}
+                have = {
+                    t: [x.name for p in self.watched_profiles(t, a.profile)
+                        for x in lookup(self.cfg, t, p)]
+                    for t in self.targets(a.channel)
+                }
                 if not any(name in names for names in have.values()):
                     listed = sorted({n for names in have.values() for n in names})
                     on = "any channel" if a.channel == "*" else f"channel {a.channel!r}"
+                    if a.profile not in (None, "*"):
+                        on += f", profile {a.profile!r}"
                     self.add(
                         f"{w}.{key}: {name!r} is not a {key} of {on} "
                         f"({key}s: {', '.join(map(repr, listed)) or 'none'})"
                     )
+
+    def watched_profiles(self, ch: str, profile: str | None) -> list[str]:
+        mine = self.channel_profiles(ch)
+        return mine if profile in (None, "*") else [p for p in mine if p == profile]
 
     def tokens(self) -> None:
         seen: dict[str, int] = {}

@@ -20,16 +20,13 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from dsp.analyzer import Analyzer
-from dsp.bands import Band
-
-from .config import Config, bands_for, channel_settings, effective_analysis, tones_for
-from .profiles import analysis_spec
+from .config import Config, channel_settings, profiles_of
+from .profiles import OVERALL, ChannelGroup, ProfileBank, overall_band
 from .types import BandValue, SampleBlock, SpectralFrame, ToneValue
 
 log = logging.getLogger("quaver.pipeline")
 
-OVERALL = "_overall"  # internal band: the channel's overall value (see overall_band)
+__all__ = ["OVERALL", "ChannelGroup", "ChannelState", "SourcePipeline", "overall_band"]
 FLAT_MIN_S = 0.05  # identical samples for this long = a flat (dead) sensor; our choice
 FAULT_HOLD_S = 2.0  # a sensor fault is held this long after the last bad block (common practice)
 OVERRUN_HOLD_S = 5.0
@@ -61,6 +58,8 @@ class ChannelState:
     sensor_faults: int = 0  # transitions into sensor fault
     last_block_ns: int = 0
     notes: tuple[str, ...] = ()
+    profiles: tuple[str, ...] = ("default",)  # analysis profiles, the primary one first
+    profile_info: dict[str, dict[str, object]] = field(default_factory=dict)  # at the stream's fs
 
     def as_dict(self) -> dict[str, object]:
         return {
@@ -84,6 +83,10 @@ class ChannelState:
                 "sensor_faults": self.sensor_faults,
             },
             "notes": list(self.notes),
+            "profiles": [
+                self.profile_info.get(p, {"name": p, "primary": i == 0})
+                for i, p in enumerate(self.profiles)
+            ],
         }
 
 
@@ -145,23 +148,12 @@ class Evidence:
 
 
 @dataclass
-class ChannelGroup:
-    """Channels of one source that share analysis settings: one vectorised Analyzer."""
-
-    profile: str
-    rows: np.ndarray  # indices of these channels in the source's blocks
-    channel_ids: tuple[str, ...]
-    analyzer: Analyzer
-    bands: tuple[Band, ...]  # user bands, in order (the analyzer also has OVERALL last)
-
-
-@dataclass
 class SourcePipeline:
     source: object  # a Source: id, channel_ids, fs, counters, async iteration, aclose()
     channels: dict[str, ChannelState]
     publish: Callable[[SourcePipeline, list[SpectralFrame], float], Awaitable[None]]
-    make_groups: Callable[[float], list[ChannelGroup]]  # built at the stream's sample rate
-    groups: list[ChannelGroup] = field(default_factory=list)
+    make_bank: Callable[[float], ProfileBank]  # built at the stream's sample rate
+    bank: ProfileBank | None = None
     fs: float | None = None
     evidence_s: tuple[float, float] = (3.0, 3.0)  # waveform kept before / after an event
     ring: WaveformRing | None = None
@@ -206,7 +198,12 @@ class SourcePipeline:
                     self.fs,
                     block.fs,
                 )
-            self.groups, self.fs = self.make_groups(block.fs), block.fs
+            self.bank, self.fs = self.make_bank(block.fs), block.fs
+            for cid, plans in self.bank.plans.items():
+                st = self.channels[cid]
+                st.profile_info = {p.name: p.as_dict() for p in plans}
+                st.notes = tuple(f"{p.name}: {n}" if len(plans) > 1 else n
+                                 for p in plans for n in p.notes)
             self.ring = WaveformRing(len(block.channel_ids), block.fs, sum(self.evidence_s) + 1.0)
         states = [self.channels[c] for c in block.channel_ids]
         x = block.data
@@ -252,14 +249,12 @@ class SourcePipeline:
             self.ring.append(x, block.first_index)
             self._complete_evidence(block)
         frames: list[SpectralFrame] = []
-        for g in self.groups:
-            an = g.analyzer
-            new = an.push(x[g.rows], first_index=block.first_index)
-            if gap:
-                for cid in g.channel_ids:
-                    self.channels[cid].status = "gap"
-            if new:
-                frames += self._frames(g, block, new)
+        if gap:
+            for st in states:
+                st.status = "gap"
+        if self.bank is not None:
+            for g, new in self.bank.push(x, block.first_index):
+                frames += self._frames(g, block, new, self.bank.end_index(g))
         for st in states:
             if now < st.fault_until:
                 st.status = "sensor-fault"
@@ -337,7 +332,9 @@ class SourcePipeline:
                 Evidence(req.event_id, req.channel, req.spectrum, wave, block.fs, t0_ns)
             )
 
-    def _frames(self, g: ChannelGroup, block: SampleBlock, new: int) -> list[SpectralFrame]:
+    def _frames(
+        self, g: ChannelGroup, block: SampleBlock, new: int, end: int
+    ) -> list[SpectralFrame]:
         an = g.analyzer
         spec = an.spec
         lines = an.grid.lines
@@ -348,13 +345,13 @@ class SourcePipeline:
         tones = an.tones()
         tone_hz = an.tone_hz
         peaks = an.peaks()
-        end = an.last_end_index or 0
-        # Time of the newest frame's end, from the block's own clock.
+        # Time of the newest frame's end (an input-stream index), from the block's own clock.
         t_ns = block.t0_ns + round((end - block.first_index) * 1e9 / block.fs)
         out = []
         for c, cid in enumerate(g.channel_ids):
             st = self.channels[cid]
-            st.frames += new
+            if g.primary[c]:
+                st.frames += new
             if st.status in ("gap", "no-data"):
                 st.status = "ok"
             self.seq += 1
@@ -362,6 +359,7 @@ class SourcePipeline:
                 SpectralFrame(
                     channel=cid,
                     profile=g.profile,
+                    primary=g.primary[c],
                     seq=self.seq,
                     t_ns=t_ns,
                     end_index=end,
@@ -403,60 +401,6 @@ class SourcePipeline:
         return out
 
 
-def overall_band(bands: Sequence[Band], lowcut_hz: float, fmax_hz: float) -> Band:
-    """The band the channel's *overall* value covers: its band named "overall" when it has
-    one (e.g. velocity 10–1000 Hz, as severity standards define it), else lowcut…Fmax."""
-    named = next((b for b in bands if b.name == "overall"), None)
-    if named is not None:
-        return Band(OVERALL, named.lo, named.hi, named.basis)
-    return Band(OVERALL, lowcut_hz, fmax_hz)
-
-
-def build_groups(
-    cfg: Config,
-    source_id: str,
-    channel_ids: Sequence[str],
-    fs: float,
-    *,
-    states: dict[str, ChannelState],
-) -> list[ChannelGroup]:
-    """Group a source's channels by identical analysis set-up; one Analyzer per group."""
-    keyed: dict[str, list[int]] = {}
-    specs: dict[str, tuple[object, tuple[Band, ...], tuple[str, ...]]] = {}
-    for row, cid in enumerate(channel_ids):
-        ch = channel_settings(cfg, cid)
-        settings = effective_analysis(cfg, cid)
-        bands = tuple(bands_for(cfg, cid))
-        tones = tuple(tones_for(cfg, cid))
-        res = analysis_spec(
-            settings,
-            fs,
-            input_unit=ch.input_unit,
-            bands=bands
-            + (overall_band(bands, settings.lowcut_hz, min(settings.fmax_hz, fs / 2.56)),),
-            tones=tones,
-        )
-        key = repr((res.spec, ch.input_unit))
-        keyed.setdefault(key, []).append(row)
-        specs[key] = (res.spec, bands, res.notes)
-        states[cid].notes = res.notes
-    groups = []
-    for key, rows in keyed.items():
-        spec, bands, _ = specs[key]
-        ids = tuple(channel_ids[r] for r in rows)
-        speed = np.array([(channel_settings(cfg, c).speed_rpm or np.nan) / 60.0 for c in ids])
-        groups.append(
-            ChannelGroup(
-                profile="default",
-                rows=np.array(rows),
-                channel_ids=ids,
-                analyzer=Analyzer(spec, len(ids), speed_hz=speed),  # type: ignore[arg-type]
-                bands=bands,
-            )
-        )
-    return groups
-
-
 def channel_states(
     cfg: Config, source_id: str, channel_ids: Sequence[str]
 ) -> dict[str, ChannelState]:
@@ -472,5 +416,6 @@ def channel_states(
             sensitivity=ch.sensitivity,
             speed_rpm=ch.speed_rpm,
             clip_level=ch.clip_level,
+            profiles=tuple(profiles_of(cfg, cid)),
         )
     return out

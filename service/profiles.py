@@ -1,16 +1,39 @@
-"""Turn validated config settings into dsp analysis specs (one per channel group).
+"""Turn validated config settings into dsp analyses: specs, decimation chains, profile banks.
 
-Knows the config models and the dsp API; no I/O, no asyncio."""
+Knows the config models and the dsp API; no I/O, no asyncio, no channel state.
+
+A channel may run several named analysis *profiles* (e.g. ``wide`` up to 5 kHz and
+``narrow`` up to 500 Hz with 0.3 Hz lines) from its one stream. A profile whose Fmax is
+below fs/2.56 runs on a decimated copy of the stream (``dsp.decimate``: FIR stages of 2–10,
+≤ 0.1 dB ripple to Fmax, ≥ 80 dB rejection of everything that would fold into the band).
+Every profile of every channel of a source shares one decimation tree (``MultiRate``), and
+channels of a source whose profile set-ups are identical share one vectorised Analyzer.
+"""
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field
 
-from dsp.analyzer import AnalysisSpec, ToneDef
+import numpy as np
+
+from dsp.analyzer import AnalysisSpec, Analyzer, ToneDef, resolve_unit
 from dsp.bands import Band
+from dsp.decimate import MultiRate, plan_chain
 from dsp.filterbank import FMAX_RATIO, FrameGrid
 
-from .config import AnalysisSettings
+from .config import (
+    AnalysisSettings,
+    Config,
+    bands_for,
+    channel_settings,
+    effective_analysis,
+    profiles_of,
+    tones_for,
+)
+
+OVERALL = "_overall"  # internal band: the channel's overall value (see overall_band)
 
 
 @dataclass(frozen=True)
@@ -27,11 +50,12 @@ def analysis_spec(
     bands: list[Band] | tuple[Band, ...] = (),
     tones: list[ToneDef] | tuple[ToneDef, ...] = (),
 ) -> SpecResult:
-    """The :class:`AnalysisSpec` for a stream sampled at ``fs`` Hz with these settings.
+    """The :class:`AnalysisSpec` for samples at ``fs`` Hz (after any decimation).
 
-    The frame is N = 2.56·lines samples at the source rate. When fs ≠ 2.56·fmax_hz the
-    lines keep their count, so the line spacing is fs/N and the usable band is fs/2.56;
-    a note says so (streaming decimation to honour any Fmax is a later addition).
+    The frame is N = 2.56·lines samples at ``fs``. When fs ≠ 2.56·fmax_hz the lines keep
+    their count, so the line spacing is fs/N and the usable band is fs/2.56; a note says so
+    (:class:`ProfileBank` decimates first, so this only happens when no integer chain
+    reaches the asked Fmax exactly).
     """
     notes: list[str] = []
     grid = FrameGrid.from_fmax(fs / FMAX_RATIO, settings.lines, overlap=settings.overlap)
@@ -59,3 +83,215 @@ def analysis_spec(
         peaks=settings.peaks,
     )
     return SpecResult(spec, tuple(notes))
+
+
+def overall_band(bands: Sequence[Band], lowcut_hz: float, fmax_hz: float) -> Band:
+    """The band the channel's *overall* value covers: its band named "overall" when it has
+    one (e.g. velocity 10–1000 Hz, as severity standards define it), else lowcut…Fmax."""
+    named = next((b for b in bands if b.name == "overall"), None)
+    if named is not None:
+        return Band(OVERALL, named.lo, named.hi, named.basis)
+    return Band(OVERALL, lowcut_hz, fmax_hz)
+
+
+@dataclass(frozen=True)
+class ProfilePlan:
+    """What one profile of one channel runs on a stream of ``fs_in`` Hz.
+
+    ``factor`` = fs_in/fs_hz is the decimation (1 = none; ``stages`` its factors, first
+    first); ``fmax_hz`` = fs_hz/2.56 is the usable Fmax (≥ the asked ``fmax_asked_hz``;
+    ``notes`` say why when they differ). Frequencies in Hz.
+    """
+
+    channel: str
+    name: str
+    primary: bool
+    settings: AnalysisSettings
+    spec: AnalysisSpec
+    bands: tuple[Band, ...]  # user bands (the spec also holds OVERALL, last)
+    fs_in: float
+    factor: int
+    stages: tuple[int, ...]
+    notes: tuple[str, ...]
+
+    @property
+    def fs_hz(self) -> float:
+        return self.spec.grid.fs
+
+    @property
+    def fmax_hz(self) -> float:
+        return self.spec.grid.fs / FMAX_RATIO
+
+    def as_dict(self) -> dict[str, object]:
+        g, s = self.spec.grid, self.spec
+        return {
+            "name": self.name,
+            "primary": self.primary,
+            "fmax_hz": self.fmax_hz,
+            "fmax_asked_hz": self.settings.fmax_hz,
+            "lines": g.lines,
+            "df_hz": g.df_hz,
+            "n": g.n,
+            "hop": g.hop,
+            "frame_s": g.n / g.fs,
+            "sample_rate_hz": g.fs,
+            "decimation": self.factor,
+            "stages": list(self.stages),
+            "window": s.window,
+            "averaging": s.averaging,
+            "averages": s.averages,
+            "unit": resolve_unit(s.unit),
+            "amplitude": s.amplitude,
+            "bands": [b.name for b in self.bands],
+            "tones": [t.name for t in s.tones],
+            "notes": list(self.notes),
+        }
+
+
+def plan_profiles(cfg: Config, channel_id: str, fs_in: float) -> list[ProfilePlan]:
+    """The profiles of one channel (primary first) on a stream of ``fs_in`` Hz.
+
+    Raises ValueError when a profile's Fmax is above fs_in/2.56."""
+    ch = channel_settings(cfg, channel_id)
+    out = []
+    for i, name in enumerate(profiles_of(cfg, channel_id)):
+        settings = effective_analysis(cfg, channel_id, name)
+        chain = plan_chain(fs_in, settings.fmax_hz)
+        exact = not chain.note or chain.note.startswith("no decimation: fs_in = 2.56")
+        fs = chain.fs_out
+        bands = tuple(bands_for(cfg, channel_id, name))
+        tones = tuple(tones_for(cfg, channel_id, name))
+        overall = overall_band(bands, settings.lowcut_hz, min(settings.fmax_hz, fs / FMAX_RATIO))
+        res = analysis_spec(
+            settings, fs, input_unit=ch.input_unit, bands=(*bands, overall), tones=tones
+        )
+        notes = res.notes if exact else (chain.note,)
+        out.append(
+            ProfilePlan(
+                channel=channel_id, name=name, primary=i == 0, settings=settings,
+                spec=res.spec, bands=bands, fs_in=float(fs_in), factor=chain.factor,
+                stages=chain.factors, notes=tuple(notes),
+            )
+        )
+    return out
+
+
+@dataclass
+class ChannelGroup:
+    """Channels of one source that run one profile with identical set-ups: one Analyzer.
+
+    ``rows`` index the source's blocks; ``tap`` names the decimated stream the analyzer
+    reads (None: the input itself) and ``tap_rows`` index that stream's rows.
+    """
+
+    profile: str
+    rows: np.ndarray
+    channel_ids: tuple[str, ...]
+    analyzer: Analyzer
+    bands: tuple[Band, ...]  # user bands, in order (the analyzer also has OVERALL last)
+    primary: tuple[bool, ...] = ()  # per channel: is this profile the channel's primary one
+    tap: str | None = None
+    tap_rows: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.intp))
+    plan: ProfilePlan | None = None
+
+
+class ProfileBank:
+    """Every profile of a source's channels at one input rate ``fs_in`` (Hz).
+
+    ``push(x, first_index)`` takes ``[C, n]`` samples in engineering units (rows in the
+    source's channel order) and returns the groups that produced new frames, with how many.
+    Decimated outputs still reached by the zeros after a (re)start are not analysed, so no
+    frame holds the chain's start-up transient; output indices keep meaning input indices,
+    so a gap upstream is a gap for every profile. :meth:`end_index` maps a group's newest
+    frame back to the input stream (group delay removed) for time stamps and evidence.
+    """
+
+    def __init__(self, cfg: Config, channel_ids: Sequence[str], fs_in: float) -> None:
+        self.fs_in = float(fs_in)
+        self.plans: dict[str, list[ProfilePlan]] = {
+            cid: plan_profiles(cfg, cid, fs_in) for cid in channel_ids
+        }
+        # one decimated stream per factor, over the rows that need it
+        taps: dict[int, list[int]] = {}
+        for row, cid in enumerate(channel_ids):
+            for p in self.plans[cid]:
+                if p.factor > 1 and row not in taps.setdefault(p.factor, []):
+                    taps[p.factor].append(row)
+        self.rates: MultiRate | None = None
+        self._dec_rows = np.zeros(0, dtype=np.intp)
+        self._pos: dict[int, int] = {}
+        if taps:
+            dec_rows = sorted({r for rows in taps.values() for r in rows})
+            self._dec_rows = np.array(dec_rows, dtype=np.intp)
+            self._pos = {r: i for i, r in enumerate(dec_rows)}
+            # an Fmax that gives exactly fs_in/R stands for the factor R
+            fmax = {f"x{r}": self.fs_in / r / FMAX_RATIO for r in taps}
+            self.rates = MultiRate(len(dec_rows), self.fs_in, fmax)
+        keyed: dict[str, list[int]] = {}
+        plan_of: dict[str, ProfilePlan] = {}
+        for row, cid in enumerate(channel_ids):
+            input_unit = channel_settings(cfg, cid).input_unit
+            for p in self.plans[cid]:
+                key = repr((p.name, p.spec, input_unit, p.factor))
+                keyed.setdefault(key, []).append(row)
+                plan_of[key] = p
+        self.groups: list[ChannelGroup] = []
+        for key, rows in keyed.items():
+            p = plan_of[key]
+            ids = tuple(channel_ids[r] for r in rows)
+            speed = np.array(
+                [(channel_settings(cfg, c).speed_rpm or math.nan) / 60.0 for c in ids]
+            )
+            tap = None if p.factor == 1 else f"x{p.factor}"
+            self.groups.append(
+                ChannelGroup(
+                    profile=p.name,
+                    rows=np.array(rows, dtype=np.intp),
+                    channel_ids=ids,
+                    analyzer=Analyzer(p.spec, len(ids), speed_hz=speed),
+                    bands=p.bands,
+                    primary=tuple(
+                        next(q.primary for q in self.plans[c] if q.name == p.name) for c in ids
+                    ),
+                    tap=tap,
+                    tap_rows=np.array([self._pos[r] for r in rows] if tap else rows,
+                                      dtype=np.intp),
+                    plan=p,
+                )
+            )
+
+    @property
+    def decimation_stages(self) -> int:
+        """Decimation stages run per push (shared stages counted once)."""
+        return 0 if self.rates is None else self.rates.stage_count
+
+    def push(self, x: np.ndarray, first_index: int) -> list[tuple[ChannelGroup, int]]:
+        """Analyse one block ``[C, n]`` whose first sample has stream index ``first_index``."""
+        taps: dict[str, tuple[np.ndarray, int]] = {}
+        if self.rates is not None:
+            out = self.rates.push(x[self._dec_rows], first_index=first_index)
+            for name, y in out.items():
+                k0 = self.rates.next_index(name) - y.shape[1]
+                settled = self.rates.first_settled_index(name)
+                if k0 < settled:  # drop the start-up transient after a (re)start
+                    y, k0 = y[:, min(settled - k0, y.shape[1]):], settled
+                taps[name] = (y, k0)
+        done = []
+        for g in self.groups:
+            if g.tap is None:
+                new = g.analyzer.push(x[g.rows], first_index=first_index)
+            else:
+                y, k0 = taps[g.tap]
+                if not y.shape[1]:
+                    continue
+                new = g.analyzer.push(y[g.tap_rows], first_index=k0)
+            if new:
+                done.append((g, new))
+        return done
+
+    def end_index(self, g: ChannelGroup) -> int:
+        """Input-stream index just after the content of ``g``'s newest frame."""
+        end = g.analyzer.last_end_index or 0
+        if g.tap is None or self.rates is None:
+            return int(end)
+        return int(self.rates.content_index(g.tap, end))

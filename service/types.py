@@ -109,6 +109,7 @@ class SpectralFrame:
     bands: tuple[BandValue, ...]
     tones: tuple[ToneValue, ...]
     peaks: tuple[ToneValue, ...]
-    end_index: int = 0  # stream index just after the newest frame's last sample
+    end_index: int = 0  # input-stream index just after the newest frame's content
+    primary: bool = True  # is ``profile`` the channel's primary (first) profile
     overall_lo_hz: float = float("nan")  # the band the overall covers, Hz
     overall_hi_hz: float = float("nan")
