@@ -758,6 +758,22 @@ def cmd_feed(args: argparse.Namespace) -> int:
 
 
 def cmd_bench(args: argparse.Namespace) -> int:
+    if args.service:
+        from . import loadbench
+
+        if args.repeats is not None:
+            raise CliError("--repeats applies to the engine benchmark, not --service", 2)
+        steps = None
+        if args.channels is not None:
+            try:
+                steps = [int(c) for c in args.channels.split(",")]
+            except ValueError:
+                raise CliError(f"--channels {args.channels!r}: expected counts like 32,64,128",
+                               2) from None
+            if any(c < 1 for c in steps):
+                raise CliError(f"--channels {args.channels!r}: counts must be >= 1", 2)
+        return int(loadbench.main(short=args.short, as_json=args.json, steps=steps,
+                                  step_s=args.seconds))
     from dsp import bench
 
     argv: list[str] = []
@@ -914,15 +930,25 @@ def build_parser() -> argparse.ArgumentParser:
                    help="failed connection attempts in a row before giving up (default 10)")
     p.set_defaults(func=cmd_feed)
 
-    p = sub.add_parser("bench", help="benchmark the spectral engine against a bare rfft",
+    p = sub.add_parser("bench", help="benchmark the spectral engine against a bare rfft, or "
+                       "(--service) load a running service",
                        description="Engine throughput and cost relative to the bare batched "
-                       "rfft of the same frames (dsp.bench).")
-    p.add_argument("--short", action="store_true", help="quick run: 1 and 8 channels, 0.5 s")
+                       "rfft of the same frames (dsp.bench); with --service, a load benchmark of "
+                       "a real service started on 127.0.0.1 (service.loadbench).")
+    p.add_argument("--service", action="store_true",
+                   help="load-test a real service in a child process: ingest headroom over TCP "
+                   "at real time, sample-to-WebSocket latency, fan-out to 50 clients, memory "
+                   "after 10^4 and 10^6 frames (several minutes)")
+    p.add_argument("--short", action="store_true", help="quick run: 1 and 8 channels, 0.5 s "
+                   "(with --service: the CI-sized run, 16 and 32 channels, 10 clients, memory "
+                   "after 10^3 and 10^5 frames, under a minute)")
     p.add_argument("--json", action="store_true", help="print the report as JSON")
     p.add_argument("--channels", default=None, metavar="LIST",
-                   help="comma-separated channel counts (default 1,8,64)")
+                   help="comma-separated channel counts (default 1,8,64; with --service the "
+                   "headroom steps, default 32,64,128,192,256)")
     p.add_argument("--seconds", type=_positive(float), default=None, metavar="S",
-                   help="signal length per case, s (default 2)")
+                   help="signal length per case, s (default 2; with --service the real-time "
+                   "span of each headroom step, default 20)")
     p.add_argument("--repeats", type=_positive(int), default=None, metavar="N",
                    help="best of this many runs (default 5)")
     p.set_defaults(func=cmd_bench)
