@@ -49,7 +49,7 @@ from typing import Any, Literal, get_args
 from dsp.analyzer import resolve_unit
 from dsp.types import check_choice
 
-from .config import Config, bands_for, channel_ids, effective_analysis, tones_for
+from .config import Config, bands_for, channel_ids, effective_analysis, profiles_of, tones_for
 from .types import SpectralFrame
 
 __all__ = [
@@ -238,6 +238,8 @@ class Rule:
     latch: bool = False
     unit: str = ""
     baseline: Baseline | None = None
+    profile: str = ""  # analysis profile watched; "" = the channel's primary one
+    primary: bool = True  # is ``profile`` the channel's primary profile
 
     def __post_init__(self) -> None:
         check_choice("kind", self.kind, RULE_KINDS)
@@ -260,6 +262,12 @@ class Rule:
             if not (math.isfinite(v) and v >= 0):
                 raise ValueError(f"rule {self.id!r}: {k}={v!r} must be >= 0 seconds")
 
+    def watches(self, frame: SpectralFrame) -> bool:
+        """Is ``frame`` (of this rule's channel) from the profile this rule watches?"""
+        if self.profile == frame.profile:
+            return True
+        return self.primary and frame.primary and self.profile in ("", frame.profile)
+
     def pick(self, frame: SpectralFrame) -> float:
         """This rule's value in ``frame`` (NaN when the frame lacks it)."""
         if self.kind == "overall":
@@ -280,12 +288,15 @@ def _slug(name: str) -> str:
     return re.sub(r"[^a-z0-9._-]+", "-", name.lower()).strip("-") or "x"
 
 
-def rule_id(channel: str, kind: str, name: str = "") -> str:
+def rule_id(channel: str, kind: str, name: str = "", profile: str = "") -> str:
     """Stable url-safe rule id: ``"<channel>.overall"`` or ``"<channel>.<kind>.<slug>"``
     where slug is the name lower-cased with runs of other characters replaced by ``-``
-    (e.g. band "thirds 1 kHz" on p1-de-h → ``"p1-de-h.band.thirds-1-khz"``)."""
+    (e.g. band "thirds 1 kHz" on p1-de-h → ``"p1-de-h.band.thirds-1-khz"``). A rule on a
+    profile other than the channel's primary one names it after the channel
+    (``"p1-de-h.narrow.band.1x"``); give ``profile`` only in that case."""
     check_choice("kind", kind, RULE_KINDS)
-    return f"{channel}.overall" if kind == "overall" else f"{channel}.{kind}.{_slug(name)}"
+    head = f"{channel}.{profile}" if profile else channel
+    return f"{head}.overall" if kind == "overall" else f"{head}.{kind}.{_slug(name)}"
 
 
 # Keys the lead may add to AlarmConfig for relative levels; read with getattr so that this
@@ -306,7 +317,7 @@ def rules_from_config(cfg: Config, channels: Sequence[str] | None = None) -> lis
     exist, a repeated rule, or two names that give the same id.
     """
     chans = list(channels) if channels is not None else channel_ids(cfg)
-    chosen: dict[tuple[str, str, str], tuple[int, Rule]] = {}
+    chosen: dict[tuple[str, str, str, str], tuple[int, Rule]] = {}
     for j, a in enumerate(cfg.alarms):
         kind: str = "band" if a.band is not None else "tone" if a.tone is not None else "overall"
         name = a.band if a.band is not None else a.tone if a.tone is not None else "overall"
@@ -321,18 +332,20 @@ def rules_from_config(cfg: Config, channels: Sequence[str] | None = None) -> lis
         baseline = None
         if learn_s is not None:
             baseline = Baseline(learn_s, **{k: getattr(a, k, None) for k in _BASELINE_KEYS})
-        for ch in targets:
-            if kind != "overall":
-                have = [x.name for x in (bands_for if kind == "band" else tones_for)(cfg, ch)]
-                if name not in have:
-                    if a.channel == "*":
-                        continue
-                    raise ValueError(
-                        f"alarms[{j}].{kind}: {name!r} is not a {kind} of channel {ch!r}"
-                    )
-            settings = effective_analysis(cfg, ch)
+        for ch, prof in _watched(cfg, targets, a.profile, kind, name):
+            if prof is None:
+                if a.channel == "*":
+                    continue
+                on = "" if a.profile in (None, "*") else f", profile {a.profile!r}"
+                raise ValueError(
+                    f"alarms[{j}].{kind}: {name!r} is not a {kind} of channel {ch!r}{on}"
+                )
+            primary = prof == profiles_of(cfg, ch)[0]
+            settings = effective_analysis(cfg, ch, prof)
             rule = Rule(
-                id=rule_id(ch, kind, name),
+                id=rule_id(ch, kind, name, "" if primary else prof),
+                profile=prof,
+                primary=primary,
                 channel=ch,
                 kind=kind,  # type: ignore[arg-type]
                 name=name,
@@ -345,13 +358,14 @@ def rules_from_config(cfg: Config, channels: Sequence[str] | None = None) -> lis
                 unit=resolve_unit(settings.output_unit or settings.unit),
                 baseline=baseline,
             )
-            key = (ch, kind, name)
+            key = (ch, prof, kind, name)
             if key in chosen:
                 i, _ = chosen[key]
                 own, prev_own = a.channel != "*", cfg.alarms[i].channel != "*"
                 if own == prev_own:
                     raise ValueError(
-                        f"alarms[{j}]: repeats alarms[{i}] ({kind} {name!r} on {ch!r})"
+                        f"alarms[{j}]: repeats alarms[{i}] ({kind} {name!r} on {ch!r}"
+                        + ("" if primary else f", profile {prof!r}") + ")"
                     )
                 if not own:
                     continue  # the channel's own entry wins
@@ -366,6 +380,33 @@ def rules_from_config(cfg: Config, channels: Sequence[str] | None = None) -> lis
             )
         seen[r.id] = r
     return rules
+
+
+def _watched(
+    cfg: Config, targets: Sequence[str], profile: str | None, kind: str, name: str
+) -> list[tuple[str, str | None]]:
+    """(channel, profile) pairs an alarm entry watches; profile None: the value is missing.
+
+    ``profile`` None: the channel's first profile that has the value (overall: its primary
+    one); ``"*"``: every profile that has it; a name: that profile (skipped on channels that
+    do not run it)."""
+    out: list[tuple[str, str | None]] = []
+    for ch in targets:
+        mine = profiles_of(cfg, ch)
+        if profile not in (None, "*"):
+            if profile not in mine:
+                continue
+            mine = [profile]
+        if kind == "overall":
+            have = mine
+        else:
+            lookup = bands_for if kind == "band" else tones_for
+            have = [p for p in mine if name in [x.name for x in lookup(cfg, ch, p)]]
+        if not have:
+            out.append((ch, None))
+        else:
+            out += [(ch, p) for p in (have if profile == "*" else have[:1])]
+    return out
 
 
 # --- events and views -------------------------------------------------------------------
@@ -432,6 +473,7 @@ class AlarmView:
     channel: str
     kind: str
     name: str
+    profile: str
     state: AlarmState
     peak: AlarmState
     since_ns: int | None
@@ -560,6 +602,8 @@ class AlarmEngine:
         if frame.channel in self._faulted:
             return events
         for a in self._by_channel.get(frame.channel, ()):
+            if not a.rule.watches(frame):
+                continue
             ev = self._step(a, a.rule.pick(frame), frame.t_ns, frame.unit)
             if ev is not None:
                 events.append(ev)
@@ -793,7 +837,8 @@ class AlarmEngine:
     @staticmethod
     def _what(a: _Alarm) -> str:
         r = a.rule
-        return f"{r.channel} overall" if r.kind == "overall" else f"{r.channel} {r.kind} {r.name}"
+        head = r.channel if r.primary else f"{r.channel} {r.profile}"
+        return f"{head} overall" if r.kind == "overall" else f"{head} {r.kind} {r.name}"
 
     def _message(
         self, a: _Alarm, before: AlarmState, after: AlarmState, v: float, level: float, unit: str
@@ -821,6 +866,7 @@ class AlarmEngine:
             channel=r.channel,
             kind=r.kind,
             name=r.name,
+            profile=r.profile,
             state=a.state,
             peak=a.peak,
             since_ns=a.since_ns,

@@ -25,7 +25,7 @@ from .pipeline import SourcePipeline, channel_states
 from .profiles import ProfileBank
 from .sources import make_source
 from .spectra import spectrum_values
-from .store import Retention, Store
+from .store import Retention, Store, trend_key
 from .types import SpectralFrame
 
 log = logging.getLogger("quaver")
@@ -126,6 +126,8 @@ class Service:
             values = {"overall": f.overall}
             values.update({f"band:{b.name}": b.value for b in f.bands})
             values.update({f"tone:{t.name}": t.value for t in f.tones})
+            if not f.primary:
+                values = {trend_key(f.profile, False, k): v for k, v in values.items()}
             self.store.record_many(f.channel, f.t_ns, values)
             st = self.hub.channels[f.channel]
             for e in self.alarms.evaluate(f, st.status, fault=st.fault):
@@ -162,6 +164,7 @@ class Service:
                         "values": values,
                         "t_ns": frame.t_ns,
                         "channel": frame.channel,
+                        "profile": frame.profile,
                         "window": frame.window,
                         "averages": frame.averages,
                         "input_unit": frame.input_unit,

@@ -15,9 +15,12 @@ from .types import SpectralFrame
 
 
 class Subscriber:
-    """One client's pending items: the newest frame per channel, and alarm events in order.
+    """One client's pending items: the newest frame per channel and profile, and alarm
+    events in order.
 
-    A frame that arrives before the previous one of its channel was taken replaces it
+    ``profiles`` None takes each channel's primary profile only; a set takes those names
+    (``"*"`` in it: every profile). A frame that arrives before the previous one of its
+    channel and profile was taken replaces it
     (``missed`` counts the replaced ones): a slow client skips to the newest frame and the
     publisher never waits. Events are kept in order up to ``max_events`` (then the oldest
     are dropped and counted too — a client that far behind should re-read /alarms).
@@ -28,15 +31,17 @@ class Subscriber:
         channels: frozenset[str] | None = None,
         max_events: int = 256,
         kinds: frozenset[str] | None = None,
+        profiles: frozenset[str] | None = None,
     ) -> None:
         self.channels = channels  # None = every channel
+        self.profiles = profiles
         self.kinds = (
             kinds
             if kinds is not None
             else frozenset({"spectrum", "bands", "tones", "alarms", "status"})
         )
         self.max_events = max_events
-        self.frames: dict[str, SpectralFrame] = {}
+        self.frames: dict[tuple[str, str], SpectralFrame] = {}
         self.events: collections.deque[dict[str, object]] = collections.deque()
         self.missed = 0
         self._wake = asyncio.Event()
@@ -47,9 +52,15 @@ class Subscriber:
             return
         if not self.kinds & {"spectrum", "bands", "tones"}:
             return
-        if frame.channel in self.frames:
+        if self.profiles is None:
+            if not frame.primary:
+                return
+        elif "*" not in self.profiles and frame.profile not in self.profiles:
+            return
+        key = (frame.channel, frame.profile)
+        if key in self.frames:
             self.missed += 1
-        self.frames[frame.channel] = frame
+        self.frames[key] = frame
         self._wake.set()
 
     def offer_event(self, event: dict[str, object]) -> None:
@@ -72,14 +83,15 @@ class Subscriber:
             await self._wake.wait()
         if self.events:
             return self.events.popleft()
-        channel = next(iter(self.frames))
-        return self.frames.pop(channel)
+        key = next(iter(self.frames))
+        return self.frames.pop(key)
 
 
 @dataclass
 class Hub:
     channels: dict[str, ChannelState] = field(default_factory=dict)
-    latest: dict[str, SpectralFrame] = field(default_factory=dict)
+    latest: dict[str, SpectralFrame] = field(default_factory=dict)  # primary profile's
+    by_profile: dict[tuple[str, str], SpectralFrame] = field(default_factory=dict)
     sources: dict[str, object] = field(default_factory=dict)
     subscribers: set[Subscriber] = field(default_factory=set)
     started_ns: int = field(default_factory=time.time_ns)
@@ -88,7 +100,9 @@ class Hub:
 
     def publish(self, frames: Iterable[SpectralFrame], latency_s: float = 0.0) -> None:
         for f in frames:
-            self.latest[f.channel] = f
+            self.by_profile[(f.channel, f.profile)] = f
+            if f.primary:
+                self.latest[f.channel] = f
             self.frames_published += 1
             self.latency_s[f.channel] = latency_s
             for s in self.subscribers:
@@ -103,6 +117,12 @@ class Hub:
         sub = Subscriber(frozenset(channels) if channels is not None else None, max_queue)
         self.subscribers.add(sub)
         return sub
+
+    def frame(self, channel: str, profile: str | None = None) -> SpectralFrame | None:
+        """The newest frame of ``channel``'s ``profile`` (default: its primary one)."""
+        if profile is None:
+            return self.latest.get(channel)
+        return self.by_profile.get((channel, profile))
 
     def unsubscribe(self, sub: Subscriber) -> None:
         self.subscribers.discard(sub)

@@ -126,6 +126,13 @@ _EVENT_COLS = (
 )
 
 
+def trend_key(profile: str, primary: bool, name: str) -> str:
+    """The series name of value ``name`` (overall, band:<n>, tone:<n>) of an analysis
+    profile: the name itself for the channel's primary profile, ``"<profile>/<name>"``
+    for any other."""
+    return name if primary else f"{profile}/{name}"
+
+
 class StoreError(Exception):
     """The database could not be written or read; the message says which file and why."""
 

@@ -13,7 +13,7 @@ from dsp.types import AMPLITUDES, OUTPUT_UNITS, QUANTITIES
 
 from ..spectra import spectrum_values, to_csv, to_npy
 from ..types import SpectralFrame
-from .deps import NO_FRAME, NOT_FOUND, ChannelDep, HubDep, get_frame
+from .deps import NO_FRAME, NOT_FOUND, ChannelDep, HubDep, ProfileQ, get_frame
 
 router = APIRouter(tags=["channels"])
 
@@ -65,6 +65,11 @@ def _summary(hub: Any, cid: str) -> dict[str, Any]:
         }
     else:
         d["latest"] = None
+    for p in d["profiles"]:
+        pf = hub.by_profile.get((cid, p["name"]))
+        p["latest"] = None if pf is None else {
+            **_stamp(pf), "unit": pf.unit, "overall": _num(pf.overall), "averages": pf.averages
+        }
     return d
 
 
@@ -84,13 +89,14 @@ def get_channel(channel: ChannelDep, hub: HubDep) -> dict[str, Any]:
     summary="Latest averaged spectrum in any unit and amplitude type",
     responses={
         200: {"content": {"application/json": {}, "text/csv": {}, "application/octet-stream": {}}},
-        404: {"description": "unknown channel"},
+        404: {"description": "unknown channel or profile"},
         503: {"description": "no spectrum yet"},
     },
 )
 def get_spectrum(
     channel: ChannelDep,
     hub: HubDep,
+    profile: ProfileQ = None,
     unit: Annotated[
         UnitQ | None, Query(description="Unit or quantity; default: the channel's")
     ] = None,
@@ -101,7 +107,7 @@ def get_spectrum(
 ) -> Any:
     # Looked up here, not as a dependency, so that bad query values are a 422 even before
     # the channel's first spectrum (a dependency's 503 would come first).
-    frame = get_frame(channel.id, hub)
+    frame = get_frame(channel.id, hub, profile)
     values, u, a = spectrum_values(frame, unit, amplitude)
     if format == "csv":
         return Response(to_csv(frame, values, u, a), media_type="text/csv")
@@ -114,6 +120,7 @@ def get_spectrum(
                 "X-Quaver-Df-Hz": repr(frame.df_hz),
                 "X-Quaver-Unit": u,
                 "X-Quaver-Amplitude": a,
+                "X-Quaver-Profile": frame.profile,
             },
         )
     return {
@@ -129,6 +136,8 @@ def get_spectrum(
         "window": frame.window,
         "enbw_bins": frame.enbw_bins,
         "lowcut_hz": frame.lowcut_hz,
+        "sample_rate_hz": frame.fs,
+        "n": frame.n,
         "values": values.tolist(),
     }
 
@@ -163,11 +172,11 @@ def tones_payload(frame: SpectralFrame) -> dict[str, Any]:
 
 @router.get("/channels/{channel_id}/bands", summary="Latest band RMS values and the overall",
             responses=NO_FRAME)
-def get_bands(channel: ChannelDep, hub: HubDep) -> dict[str, Any]:
-    return bands_payload(get_frame(channel.id, hub))
+def get_bands(channel: ChannelDep, hub: HubDep, profile: ProfileQ = None) -> dict[str, Any]:
+    return bands_payload(get_frame(channel.id, hub, profile))
 
 
 @router.get("/channels/{channel_id}/tones", summary="Tracked tones and the largest peaks",
             responses=NO_FRAME)
-def get_tones(channel: ChannelDep, hub: HubDep) -> dict[str, Any]:
-    return tones_payload(get_frame(channel.id, hub))
+def get_tones(channel: ChannelDep, hub: HubDep, profile: ProfileQ = None) -> dict[str, Any]:
+    return tones_payload(get_frame(channel.id, hub, profile))

@@ -6,7 +6,7 @@ from __future__ import annotations
 
 from typing import Annotated, Any, NoReturn
 
-from fastapi import Depends, HTTPException, Path, Request
+from fastapi import Depends, HTTPException, Path, Query, Request
 from fastapi.exceptions import RequestValidationError
 
 from ..hub import Hub
@@ -30,13 +30,30 @@ def get_channel(channel_id: ChannelId, hub: HubDep) -> ChannelState:
     return st
 
 
-def get_frame(channel_id: str, hub: Hub) -> SpectralFrame:
-    """The channel's latest frame: 404 for an unknown channel, 503 before its first one."""
-    get_channel(channel_id, hub)
-    frame = hub.latest.get(channel_id)
+def check_profile(st: ChannelState, profile: str | None) -> str:
+    """The profile asked for (default: the channel's primary one); 404 if it has no such."""
+    if profile is None:
+        return st.profiles[0]
+    if profile not in st.profiles:
+        raise HTTPException(
+            404,
+            f"channel {st.id!r} has no profile {profile!r} "
+            f"(profiles: {', '.join(map(repr, st.profiles))})",
+        )
+    return profile
+
+
+def get_frame(channel_id: str, hub: Hub, profile: str | None = None) -> SpectralFrame:
+    """The latest frame of a channel's profile (default: its primary one): 404 for an
+    unknown channel or profile, 503 before its first frame."""
+    name = check_profile(get_channel(channel_id, hub), profile)
+    frame = hub.by_profile.get((channel_id, name))
     if frame is None:
         raise HTTPException(
-            503, f"channel {channel_id!r} has no spectrum yet", headers={"Retry-After": "1"}
+            503,
+            f"channel {channel_id!r} has no spectrum yet"
+            + ("" if profile is None else f" in profile {name!r}"),
+            headers={"Retry-After": "1"},
         )
     return frame
 
@@ -44,11 +61,15 @@ def get_frame(channel_id: str, hub: Hub) -> SpectralFrame:
 I64_MAX = 2**63 - 1  # SQLite integers; ids and ns times beyond are refused with 422
 NOT_FOUND: dict[int | str, dict[str, Any]] = {404: {"description": "unknown channel"}}
 NO_FRAME: dict[int | str, dict[str, Any]] = {
-    404: {"description": "unknown channel"},
+    404: {"description": "unknown channel or profile"},
     503: {"description": "no spectrum yet (Retry-After: 1)"},
 }
 
 ChannelDep = Annotated[ChannelState, Depends(get_channel)]
+ProfileQ = Annotated[
+    str | None,
+    Query(max_length=64, description="Analysis profile; default: the channel's primary one"),
+]
 
 
 def invalid_query(param: str, msg: str) -> NoReturn:

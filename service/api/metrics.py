@@ -30,32 +30,34 @@ class _ServiceCollector(Collector):
         hub = self.state.hub
         overall = GaugeMetricFamily(
             "quaver_overall",
-            "Overall RMS over lowcut…Fmax, display unit",
-            labels=["channel", "unit"],
+            "Overall RMS (band 'overall', else lowcut…Fmax), display unit",
+            labels=["channel", "profile", "unit"],
         )
         band = GaugeMetricFamily(
-            "quaver_band", "Band RMS value, display unit", labels=["channel", "band", "unit"]
+            "quaver_band",
+            "Band RMS value, display unit",
+            labels=["channel", "profile", "band", "unit"],
         )
         tone = GaugeMetricFamily(
             "quaver_tone",
             "Tracked tone amplitude, display unit",
-            labels=["channel", "tone", "unit"],
+            labels=["channel", "profile", "tone", "unit"],
         )
         age = GaugeMetricFamily(
             "quaver_spectrum_timestamp_seconds",
             "Time of the latest spectrum, s since the Unix epoch",
-            labels=["channel"],
+            labels=["channel", "profile"],
         )
-        for cid, f in hub.latest.items():
+        for (cid, prof), f in hub.by_profile.items():
             if math.isfinite(f.overall):
-                overall.add_metric([cid, f.unit], f.overall)
+                overall.add_metric([cid, prof, f.unit], f.overall)
             for b in f.bands:
                 if math.isfinite(b.value):
-                    band.add_metric([cid, b.name, f.unit], b.value)
+                    band.add_metric([cid, prof, b.name, f.unit], b.value)
             for t in f.tones:
                 if math.isfinite(t.value):
-                    tone.add_metric([cid, t.name, f.unit], t.value)
-            age.add_metric([cid], f.t_ns / 1e9)
+                    tone.add_metric([cid, prof, t.name, f.unit], t.value)
+            age.add_metric([cid, prof], f.t_ns / 1e9)
         yield from (overall, band, tone, age)
 
         status = GaugeMetricFamily(

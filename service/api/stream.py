@@ -5,13 +5,16 @@ Reads the hub through a bounded subscriber queue; a slow client only ever delays
 Protocol
 --------
 The client sends a text message ``{"subscribe": {"channels": [...] | "*", "kinds": [...],
-"max_rate_hz": 10, "unit": "mm/s", "amplitude": "rms"}}`` (it may send another at any
-time to change its subscription). ``kinds`` ⊆ spectrum, bands, tones, alarms, status.
+"profiles": [...] | "*", "max_rate_hz": 10, "unit": "mm/s", "amplitude": "rms"}}`` (it may
+send another at any time to change its subscription). ``kinds`` ⊆ spectrum, bands, tones,
+alarms, status. Without ``profiles`` a client gets each channel's primary profile; with a
+list, those profiles of every subscribed channel that runs them; ``"*"``: every profile.
+The rate limit holds per channel and profile.
 
 The server sends:
 
 * binary spectrum messages: bytes 0–3 a little-endian u32 header length L, then L bytes of
-  UTF-8 JSON ``{"kind": "spectrum", "channel", "seq", "timestamp_ns", "f0_hz", "df_hz",
+  UTF-8 JSON ``{"kind": "spectrum", "channel", "profile", "seq", "timestamp_ns", "f0_hz", "df_hz",
   "unit", "amplitude", "averages", "count", "missed"}``, then ``count`` little-endian
   float32 values (the header is padded with spaces so the values start 4-byte aligned);
 * text JSON messages ``{"kind": "hello" | "bands" | "tones" | "alarm" | "status" | "error",
@@ -53,6 +56,9 @@ STATUS_PERIOD_S = 1.0
 
 class Subscription(BaseModel):
     channels: list[str] | str = Field("*", description="channel ids, or '*' for all")
+    profiles: list[str] | str | None = Field(
+        None, description="profile names, or '*' for all; default: each channel's primary"
+    )
     kinds: list[str] = Field(default_factory=lambda: list(KINDS))
     max_rate_hz: float = Field(10.0, gt=0, le=100, description="per channel, messages/s")
     unit: str | None = None
@@ -63,6 +69,13 @@ class Subscription(BaseModel):
     def _channels(cls, v: list[str] | str) -> list[str] | str:
         if isinstance(v, str) and v != "*":
             raise ValueError("channels must be a list of ids or '*'")
+        return v
+
+    @field_validator("profiles")
+    @classmethod
+    def _profiles(cls, v: list[str] | str | None) -> list[str] | str | None:
+        if isinstance(v, str) and v != "*":
+            raise ValueError("profiles must be a list of names or '*'")
         return v
 
     @field_validator("kinds")
@@ -104,9 +117,10 @@ class _Session:
         self.ws, self.hub = ws, hub
         self.sub = hub.subscribe(None)
         self.spec = Subscription.model_validate({})
-        self.last_sent: dict[str, float] = {}
+        self.last_sent: dict[tuple[str, str], float] = {}
         self.held_back = 0
-        self.held: dict[str, SpectralFrame] = {}  # newest frame per channel held by the rate
+        # newest frame per (channel, profile) held back by the rate limit
+        self.held: dict[tuple[str, str], SpectralFrame] = {}
 
     def apply(self, spec: Subscription) -> None:
         self.spec = spec
@@ -114,7 +128,16 @@ class _Session:
         unknown = sorted(set(chans or ()) - set(self.hub.channels))
         if unknown:
             raise ValueError(f"unknown channels {unknown}")
+        profs = None if spec.profiles is None else frozenset(
+            ["*"] if spec.profiles == "*" else spec.profiles
+        )
+        if profs is not None and "*" not in profs:
+            known = {p for st in self.hub.channels.values() for p in st.profiles}
+            bad = sorted(profs - known)
+            if bad:
+                raise ValueError(f"unknown profiles {bad}; known: {sorted(known)}")
         self.sub.channels = chans
+        self.sub.profiles = profs
         self.sub.kinds = frozenset(spec.kinds)
 
     async def receive_loop(self) -> None:
@@ -166,8 +189,8 @@ class _Session:
             try:
                 item = await asyncio.wait_for(self.sub.queue.get(), timeout=timeout)
             except TimeoutError:
-                for channel in [c for c in self.held if self._due(c) <= time.monotonic()]:
-                    await self._send_frame(self.held.pop(channel))
+                for key in [k for k in self.held if self._due(k) <= time.monotonic()]:
+                    await self._send_frame(self.held.pop(key))
                 continue
             if isinstance(item, SpectralFrame):
                 await self._send_frame(item)
@@ -175,21 +198,23 @@ class _Session:
                 if "alarms" in self.spec.kinds:
                     await self.send_json({"kind": "alarm", **item})
 
-    def _due(self, channel: str) -> float:
-        """When the next frame of ``channel`` may go out under the rate limit (monotonic s)."""
-        return self.last_sent.get(channel, -1e9) + 0.999 / self.spec.max_rate_hz
+    def _due(self, key: tuple[str, str]) -> float:
+        """When the next frame of (channel, profile) may go out under the rate limit
+        (monotonic s)."""
+        return self.last_sent.get(key, -1e9) + 0.999 / self.spec.max_rate_hz
 
     async def _send_frame(self, frame: SpectralFrame) -> None:
         now = time.monotonic()
-        if now < self._due(frame.channel):
-            # Too soon: hold it as the channel's newest and send it when the interval is up
-            # (a frame it replaces counts as missed).
-            if self.held.pop(frame.channel, None) is not None:
+        key = (frame.channel, frame.profile)
+        if now < self._due(key):
+            # Too soon: hold it as the newest of its channel and profile and send it when
+            # the interval is up (a frame it replaces counts as missed).
+            if self.held.pop(key, None) is not None:
                 self.held_back += 1
-            self.held[frame.channel] = frame
+            self.held[key] = frame
             return
-        self.held.pop(frame.channel, None)
-        self.last_sent[frame.channel] = now
+        self.held.pop(key, None)
+        self.last_sent[key] = now
         kinds = self.spec.kinds
         missed = self.sub.missed + self.held_back
         if "spectrum" in kinds:
@@ -216,6 +241,7 @@ async def stream(ws: WebSocket) -> None:
                 "kind": "hello",
                 "version": __version__,
                 "channels": list(hub.channels),
+                "profiles": {cid: list(st.profiles) for cid, st in hub.channels.items()},
                 "kinds": list(KINDS),
             }
         )

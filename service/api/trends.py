@@ -10,12 +10,14 @@ from typing import Annotated, Any
 
 from fastapi import APIRouter, HTTPException, Query, Request
 
-from .deps import ChannelDep, invalid_query
+from ..store import trend_key
+from .deps import ChannelDep, ProfileQ, check_profile, invalid_query
 from .security import Reader
 
 router = APIRouter(tags=["trends"])
 
 _NS = 1_000_000_000
+
 MAX_S = 9.2e9  # times in s whose ns still fit a signed 64-bit integer
 
 
@@ -44,8 +46,13 @@ async def get_trend(
     step: Annotated[
         int | None, Query(ge=1, le=31 * 86400, description="bucket, s; default: the finest kept")
     ] = None,
+    profile: ProfileQ = None,
 ) -> dict[str, Any]:
     store = request.app.state.service.store
+    prof = check_profile(channel, profile)
+    shown = name
+    if prof != channel.profiles[0]:
+        name = trend_key(prof, False, name)
     now = time.time()
     until_s = now if until is None else until
     since_s = until_s - 3600 if since is None else since
@@ -62,7 +69,8 @@ async def get_trend(
         raise HTTPException(404, f"no trend {name!r} on {channel.id!r}; have: {', '.join(names)}")
     return {
         "channel": channel.id,
-        "name": name,
+        "profile": prof,
+        "name": shown,
         "step_s": used,
         "since": since_s,
         "until": until_s,
