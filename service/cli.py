@@ -54,7 +54,7 @@ from .config import (
     parse_listen,
     tones_for,
 )
-from .profiles import analysis_spec
+from .profiles import analysis_spec, plan_profiles
 from .recording import RECORDING_FORMATS, Recording, load_recording
 from .wire import RAW_FORMATS, encode_frame, encode_raw
 
@@ -291,23 +291,24 @@ def cmd_check(args: argparse.Namespace) -> int:
     for cid in ids:
         src = next(s for s in cfg.sources if cid in s.channels)
         fs, how = _source_fs(src, cfg, cid)
-        ch = channel_settings(cfg, cid)
-        settings = effective_analysis(cfg, cid)
-        bands, tones = bands_for(cfg, cid), tones_for(cfg, cid)
         try:
-            res = analysis_spec(settings, fs, input_unit=ch.input_unit, bands=bands, tones=tones)
+            plans = plan_profiles(cfg, cid, fs)
         except ValueError as e:
             problems.append(f"channels {cid!r}: {e}")
             continue
-        g, spec = res.spec.grid, res.spec
-        unit = resolve_unit(settings.output_unit or settings.unit)
-        out.append(
-            f"  {cid} ({src.id}): fs {fs:g} Hz{how}, Fmax {g.fmax_hz:g} Hz, {g.lines} lines, "
-            f"df {g.df_hz:g} Hz, {spec.window}, N {g.n}, hop {g.hop}, "
-            f"{spec.averaging} {spec.averages:g}, {unit} {spec.amplitude}, "
-            f"{len(bands)} band(s), {len(tones)} tone(s)"
-        )
-        out += [f"    note: {n}" for n in res.notes]
+        out.append(f"  {cid} ({src.id}): fs {fs:g} Hz{how}")
+        for p in plans:
+            g, spec = p.spec.grid, p.spec
+            dec = f"decimated x{p.factor} ({'*'.join(map(str, p.stages))}) to {g.fs:g} Hz, " if (
+                p.factor > 1) else ""
+            out.append(
+                f"    {p.name}{' (primary)' if p.primary and len(plans) > 1 else ''}: "
+                f"{dec}Fmax {p.fmax_hz:g} Hz, {g.lines} lines, "
+                f"df {g.df_hz:g} Hz, {spec.window}, N {g.n}, hop {g.hop}, "
+                f"{spec.averaging} {spec.averages:g}, {resolve_unit(spec.unit)} {spec.amplitude}, "
+                f"{len(p.bands)} band(s), {len(spec.tones)} tone(s)"
+            )
+            out += [f"      note: {n}" for n in p.notes]
     out.append(f"alarms: {len(cfg.alarms)}")
     print("\n".join(out))
     if problems:
