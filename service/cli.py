@@ -296,19 +296,24 @@ def cmd_check(args: argparse.Namespace) -> int:
         except ValueError as e:
             problems.append(f"channels {cid!r}: {e}")
             continue
-        out.append(f"  {cid} ({src.id}): fs {fs:g} Hz{how}")
+        head = f"  {cid} ({src.id}): fs {fs:g} Hz{how}"
+        if len(plans) > 1:
+            out.append(head)
         for p in plans:
             g, spec = p.spec.grid, p.spec
             dec = f"decimated x{p.factor} ({'*'.join(map(str, p.stages))}) to {g.fs:g} Hz, " if (
                 p.factor > 1) else ""
-            out.append(
-                f"    {p.name}{' (primary)' if p.primary and len(plans) > 1 else ''}: "
+            what = (
                 f"{dec}Fmax {p.fmax_hz:g} Hz, {g.lines} lines, "
                 f"df {g.df_hz:g} Hz, {spec.window}, N {g.n}, hop {g.hop}, "
                 f"{spec.averaging} {spec.averages:g}, {resolve_unit(spec.unit)} {spec.amplitude}, "
                 f"{len(p.bands)} band(s), {len(spec.tones)} tone(s)"
             )
-            out += [f"      note: {n}" for n in p.notes]
+            if len(plans) == 1:
+                out.append(f"{head}, {what}")
+            else:
+                out.append(f"    {p.name}{' (primary)' if p.primary else ''}: {what}")
+            out += [f"    note: {n}" for n in p.notes]
     out.append(f"alarms: {len(cfg.alarms)}")
     print("\n".join(out))
     if problems:

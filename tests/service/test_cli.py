@@ -65,7 +65,7 @@ id = "p1-de-h"
 """
 
 
-def test_check_minimal_config_reports_a_note_for_a_mismatched_fmax(
+def test_check_minimal_config_decimates_to_the_next_higher_fmax(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
     p = tmp_path / "q.toml"
@@ -73,8 +73,11 @@ def test_check_minimal_config_reports_a_note_for_a_mismatched_fmax(
     assert cli.main(["check", "-c", str(p)]) == 0
     out = capsys.readouterr().out
     assert "p1-de-v (line-a)" in out
-    # the source rate decides: 12800/2.56 = 5000 Hz is what the spectrum reaches
-    assert "note: fmax_hz=2000 with a 12800 Hz stream" in out
+    # 12800/(2.56·2000) = 2.5 is not an integer: the chain decimates by 2 (stages of 2–10)
+    # to 6400 Hz, whose Fmax 6400/2.56 = 2500 Hz is the next higher one (common practice)
+    assert "decimated x2 (2) to 6400 Hz, Fmax 2500 Hz, 1600 lines, df 1.5625 Hz" in out
+    assert ("note: fs_in/(2.56·Fmax) = 2.5 is not an integer: decimating by 2 to 6400 Hz "
+            "gives the next higher Fmax, 2500 Hz (asked 2000 Hz)") in out
 
 
 @pytest.mark.parametrize(
