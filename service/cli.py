@@ -29,6 +29,7 @@ from pydantic import ValidationError
 
 from dsp.analyzer import Analyzer, ToneDef, resolve_unit
 from dsp.bands import Band
+from dsp.decimate import DecimationChain, plan_chain
 from dsp.filterbank import FMAX_RATIO
 from dsp.types import (
     AMPLITUDES,
@@ -52,6 +53,7 @@ from .config import (
     effective_analysis,
     load_config,
     parse_listen,
+    profiles_of,
     tones_for,
 )
 from .profiles import analysis_spec, plan_profiles
@@ -338,6 +340,7 @@ class _Group:
     tones: list[ToneDef]
     analyzer: Analyzer | None = None
     notes: tuple[str, ...] = ()
+    decimator: DecimationChain | None = None  # when Fmax is below fs/2.56
 
 
 _OPTION_OF = {
@@ -379,8 +382,8 @@ def _plan(args: argparse.Namespace, rec: Recording) -> list[_Group]:
     cli_bands = list(args.band or [])
     cli_tones = list(args.tone or [])
     if args.config is None:
-        if args.channel is not None:
-            raise CliError("--channel needs -c/--config", 2)
+        if args.channel is not None or args.profile is not None:
+            raise CliError(f"{'--channel' if args.channel else '--profile'} needs -c/--config", 2)
         base = {"fmax_hz": rec.fs / FMAX_RATIO}
         return [_Group(list(range(rec.data.shape[0])), None, _settings(base, over),
                        args.input_unit or "g",
@@ -407,13 +410,19 @@ def _plan(args: argparse.Namespace, rec: Recording) -> list[_Group]:
             groups[cid].rows.append(row)
             continue
         ch = channel_settings(cfg, cid)
-        base = effective_analysis(cfg, cid).model_dump()
+        if args.profile is not None and args.profile not in profiles_of(cfg, cid):
+            runs = ", ".join(map(repr, profiles_of(cfg, cid)))
+            raise CliError(f"--profile {args.profile!r}: channel {cid!r} of {args.config} "
+                           f"has no such profile (profiles: {runs})", 2)
+        base = effective_analysis(cfg, cid, args.profile).model_dump()
         # A recording's mean spectrum is what an analyst wants; the config's live averaging
         # applies only when asked for on the command line.
         base.pop("averaging")
         base.pop("averages")
-        bands = {b.name: b for b in bands_for(cfg, cid)} | {b.name: b for b in cli_bands}
-        tones = {t.name: t for t in tones_for(cfg, cid)} | {t.name: t for t in cli_tones}
+        bands = {b.name: b for b in bands_for(cfg, cid, args.profile)} | {
+            b.name: b for b in cli_bands}
+        tones = {t.name: t for t in tones_for(cfg, cid, args.profile)} | {
+            t.name: t for t in cli_tones}
         groups[cid] = _Group(
             [row], cid, _settings(base, over), args.input_unit or ch.input_unit,
             ch.sensitivity if args.sensitivity is None else args.sensitivity,
@@ -434,10 +443,21 @@ def _build(g: _Group, args: argparse.Namespace, rec: Recording) -> None:
                        f"{FMAX_RATIO * args.fmax:g} Hz; the recording runs at {fs:g} Hz", 2)
     if not (math.isfinite(g.sensitivity) and g.sensitivity != 0):
         raise CliError(f"--sensitivity {g.sensitivity!r} must be a finite non-zero number", 2)
+    # Fmax below fs/2.56: the service's decimation chain first (dsp.decimate)
+    chain = plan_chain(fs, min(s.fmax_hz, fs / FMAX_RATIO))
+    notes: tuple[str, ...] = ()
+    if chain.factor > 1:
+        g.decimator = DecimationChain(len(g.rows), chain)
+        fs = chain.fs_out
+        if chain.note:
+            notes = (chain.note,)
     overall = Band(OVERALL, s.lowcut_hz, min(s.fmax_hz, fs / FMAX_RATIO))
     res = analysis_spec(s, fs, input_unit=g.input_unit, bands=[*g.bands, overall], tones=g.tones)
     spec, grid = res.spec, res.spec.grid
-    frames = _frames_in(rec.data.shape[1], grid.n, grid.hop)
+    available = rec.data.shape[1]
+    if g.decimator is not None:  # outputs after the chain's start-up transient
+        available = max(0, available // chain.factor - g.decimator.first_settled_index)
+    frames = _frames_in(available, grid.n, grid.hop)
     if frames == 0:
         raise CliError(f"the recording holds {rec.data.shape[1]} samples per channel, fewer "
                        f"than one frame of N = {grid.n} ({grid.lines} lines); use fewer --lines")
@@ -449,7 +469,7 @@ def _build(g: _Group, args: argparse.Namespace, rec: Recording) -> None:
     # linear: the mean of the first `averages` frames (all of them by default), then held.
     spec = spec.with_(averaging=mode, averages=averages, linear_end="hold")
     g.analyzer = Analyzer(spec, len(g.rows), speed_hz=np.full(len(g.rows), g.speed_hz))
-    g.notes = res.notes
+    g.notes = notes or res.notes
 
 
 def _channel_result(g: _Group, j: int, row: int, rec: Recording, unit: str | None,
@@ -471,6 +491,7 @@ def _channel_result(g: _Group, j: int, row: int, rec: Recording, unit: str | Non
         "channel": rec.channel_names[row],
         "config_channel": g.config_channel,
         "fs_hz": grid.fs,
+        "decimation": 1 if g.decimator is None else g.decimator.plan.factor,
         "df_hz": grid.df_hz,
         "f0_hz": 0.0,
         "lines": lines,
@@ -537,6 +558,20 @@ def _read(path: str, fmt: str | None, channels: int | None, fs: float | None) ->
         raise CliError(f"{path}: no such file") from None
 
 
+def _push(g: _Group, x: np.ndarray) -> None:
+    assert g.analyzer is not None
+    dec = g.decimator
+    if dec is None:
+        g.analyzer.push(x)
+        return
+    y = dec.push(x)
+    k0, settled = dec.next_index - y.shape[1], dec.first_settled_index
+    if k0 < settled:  # the chain's start-up transient is not analysed (as in the service)
+        y = y[:, min(settled - k0, y.shape[1]):]
+    if y.shape[1]:
+        g.analyzer.push(y)
+
+
 def cmd_analyze(args: argparse.Namespace) -> int:
     """Offline analysis through the service's own engine set-up; see the subcommand help."""
     rec = _read(args.file, args.format, args.channels, args.rate)
@@ -555,7 +590,7 @@ def cmd_analyze(args: argparse.Namespace) -> int:
     for start in range(0, n_total, chunk):
         for g in groups:
             x = rec.data[g.rows, start : start + chunk]
-            g.analyzer.push((x * np.float32(g.sensitivity)).astype(np.float32, copy=False))  # type: ignore[union-attr]
+            _push(g, (x * np.float32(g.sensitivity)).astype(np.float32, copy=False))
         if progress:
             progress.update(min(start + chunk, n_total))
     if progress:
@@ -868,13 +903,17 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--channel", default=None, metavar="ID",
                    help="config channel whose settings apply to every recording channel "
                    "(default: a text header's names, or the config's only channel)")
+    p.add_argument("--profile", default=None, metavar="NAME",
+                   help="the config channel's analysis profile to apply (default: its primary "
+                   "one)")
     p.add_argument("--sensitivity", type=float, default=None, metavar="UNITS",
                    help="input units (g or m/s2) per raw sample unit; for WAV per full scale "
                    "(default 1, or the config channel's)")
     p.add_argument("--input-unit", choices=INPUT_UNITS, default=None,
                    help="acceleration unit of the samples after --sensitivity (default g)")
     p.add_argument("--fmax", type=_positive(float), default=None, metavar="HZ",
-                   help="highest frequency shown, Hz (default fs/2.56; at most fs/2.56)")
+                   help="highest frequency shown, Hz (default fs/2.56; at most fs/2.56; below "
+                   "it the recording is decimated first, as the service does)")
     p.add_argument("--lines", type=int, default=None, metavar="LINES",
                    help="spectral lines, a multiple of 25 (frame N = 2.56*lines samples; "
                    "default 1600)")

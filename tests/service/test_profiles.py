@@ -325,3 +325,52 @@ def test_alarm_rules_resolve_the_profile_they_watch() -> None:
         "a.narrow.band.1x": ("a", "narrow", False, "band", "1x"),
         "b.narrow.overall": ("b", "narrow", False, "overall", "overall"),
     }
+
+
+# --- offline: `quaver analyze` decimates like the service ------------------------------------
+
+
+def test_analyze_decimates_below_fs_over_2_56_and_takes_a_config_profile(
+    tmp_path: Any, capsys: pytest.CaptureFixture[str]
+) -> None:
+    import json
+
+    import scipy.io.wavfile
+
+    from service import cli
+
+    fs = 51200
+    t = np.arange(int(24 * fs)) / fs
+    x = (np.sin(2 * np.pi * 123.4567 * t) + 0.1 * np.sin(2 * np.pi * 4321.0 * t))
+    wav = tmp_path / "tone.wav"
+    scipy.io.wavfile.write(wav, fs, x.astype(np.float32))  # float WAV: ±1 full scale = 1 g
+    assert cli.main(["analyze", str(wav), "--json", "--fmax", "500", "--lines", "1600",
+                     "--unit", "g", "--amplitude", "peak", "--tone", "t:123.4567"]) == 0
+    (r,) = json.loads(capsys.readouterr().out)["channels"]
+    # 51200/(2.56·500) = 40 = 10·4 (dsp.decimate.plan_chain), fs′ = 1280 Hz, df = fs′/N
+    assert (r["decimation"], r["fs_hz"], r["df_hz"], r["fmax_hz"]) == (40, 1280.0, 0.3125, 500.0)
+    (tone,) = r["tones"]
+    # tracked tone within ±0.05 dB of the true 1 g peak after decimation (issue 8)
+    assert abs(20 * math.log10(tone["amplitude"])) <= 0.05
+    # the 4321 Hz tone lies far above the new Nyquist (640 Hz) and would fold to
+    # 4321 − 3·1280 = 481 Hz; the chain rejects it ≥ 80 dB (issue 8), so nothing near 481 Hz
+    # (nor anywhere clear of the 123 Hz tone's Hann skirts) reaches −80 dB of its 0.1 g
+    spec = np.array(r["spectrum"])
+    f = np.arange(spec.size) * r["df_hz"]
+    assert spec[np.abs(f - 481.0) < 3.0].max() < 0.1 * 10 ** (-80 / 20)
+    assert spec[np.abs(f - 123.4567) > 50.0].max() < 0.1 * 10 ** (-80 / 20)
+
+    cfg = tmp_path / "q.toml"
+    cfg.write_text(
+        '[analysis]\nfmax_hz = 20000\nlines = 3200\nunit = "acceleration"\n'
+        'output_unit = "g"\namplitude = "peak"\n'
+        '[profiles.wide]\n[profiles.narrow]\nfmax_hz = 500\nlines = 800\n'
+        '[[sources]]\nid = "s"\nkind = "tcp"\nlisten = "127.0.0.1:9101"\nformat = "f32le"\n'
+        'sample_rate_hz = 51200\nchannels = ["a"]\n'
+        '[[tones]]\nname = "t"\nhz = 123.4567\n', encoding="utf-8")
+    assert cli.main(["analyze", str(wav), "-c", str(cfg), "--profile", "narrow", "--json"]) == 0
+    (r,) = json.loads(capsys.readouterr().out)["channels"]
+    assert (r["decimation"], r["lines"], r["df_hz"]) == (40, 800, 0.625)
+    assert abs(20 * math.log10(r["tones"][0]["amplitude"])) <= 0.05
+    assert cli.main(["analyze", str(wav), "-c", str(cfg), "--profile", "zoom"]) == 2
+    assert "--profile 'zoom': channel 'a' of" in capsys.readouterr().err
