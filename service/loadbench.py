@@ -550,6 +550,15 @@ class Feeder:
 # --- WebSocket clients --------------------------------------------------------------------------
 
 
+def _ws_options() -> dict[str, Any]:
+    """Client options: no proxy (loopback; websockets >= 15 would read *_proxy variables);
+    permessage-deflate stays offered, as browsers offer it."""
+    import websockets
+
+    major = int(str(getattr(websockets, "__version__", "12")).split(".")[0])
+    return {"open_timeout": 15.0, "max_size": 1 << 24, **({"proxy": None} if major >= 15 else {})}
+
+
 def parse_spectrum_header(msg: bytes) -> dict[str, Any]:
     """The JSON header of a binary spectrum message (u32 length, then the JSON)."""
     (length,) = struct.unpack_from("<I", msg)
@@ -582,7 +591,7 @@ class LatencyClient:
         from websockets.sync.client import connect
 
         try:
-            with connect(self.url, open_timeout=10.0, max_size=1 << 24) as ws:
+            with connect(self.url, **_ws_options()) as ws:
                 sub = {"channels": [self.channel], "kinds": ["spectrum"], "max_rate_hz": 100}
                 ws.send(json.dumps({"subscribe": sub}))
                 self._ready.set()
@@ -612,7 +621,7 @@ async def _fanout(url: str, channel_sets: list[list[str]], seconds: float,
 
     async def client(log: dict[str, Any]) -> None:
         try:
-            async with connect(url, open_timeout=15.0, max_size=1 << 24) as ws:
+            async with connect(url, **_ws_options()) as ws:
                 sub = {"channels": log["channels"], "kinds": ["spectrum"], "max_rate_hz": rate_hz}
                 await ws.send(json.dumps({"subscribe": sub}))
                 pending[0] -= 1
@@ -887,7 +896,8 @@ def fanout(plan: BenchPlan, svc: Service, feeder: Feeder, headroom: int) -> dict
     a, b = alone["service_cpu_ms_per_frame"], with_clients["service_cpu_ms_per_frame"]
     return {
         "clients": plan.fanout_clients, "channels_per_client": k, "channels_fed": len(chans),
-        "subscription": {"kinds": ["spectrum"], "max_rate_hz": plan.fanout_rate_hz},
+        "subscription": {"kinds": ["spectrum"], "max_rate_hz": plan.fanout_rate_hz,
+                         "permessage_deflate": "offered (as browsers do)"},
         "all_connected": connected,
         "received_per_client": [c["received"] for c in clients],
         "clients_kept_up": len(kept_up),
