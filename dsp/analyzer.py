@@ -120,18 +120,19 @@ class _EdgePlan:
 
     Band edges sit at positions ``pos`` [C, 2B] in cumulative line widths from 0 Hz. The
     spectrum is cut at the sorted integer parts by one ``np.add.reduceat``; a cumulative
-    sum of the segments gives Σ_{q<i} P[q] at each edge, plus the fractional line."""
+    sum of the segments gives Σ_{q<i} P[q] at each edge, plus the fractional line. All
+    indices are flat, so a read-out is a handful of whole-array operations."""
 
     starts: np.ndarray  # flat reduceat indices, [C·(2B+1)]
-    empty: np.ndarray  # [C, 2B+1] segments that are empty runs
-    row: np.ndarray  # [C, 1]
-    unsort: np.ndarray  # [C, 2B] sorted position of each edge
+    empty: np.ndarray  # flat indices of segments that are empty runs
+    at_cum: np.ndarray  # [C, 2B] flat index into the [C, 2B] cumulative sums, per edge
     flat_i: np.ndarray  # [C, 2B] flat index of each edge's line
     frac: np.ndarray  # [C, 2B] fraction of that line below the edge
+    unresolved: np.ndarray  # flat indices into [C, B] of bands without edges (NaN)
 
     @classmethod
-    def build(cls, pos: np.ndarray, q: int) -> _EdgePlan:
-        c_count = pos.shape[0]
+    def build(cls, pos: np.ndarray, q: int, unresolved: np.ndarray) -> _EdgePlan:
+        c_count, e_count = pos.shape
         i = np.minimum(pos.astype(np.intp), q - 1)
         order = np.argsort(i, axis=1, kind="stable")
         srt = np.take_along_axis(i, order, 1)
@@ -139,13 +140,14 @@ class _EdgePlan:
         empty = np.zeros(starts.shape, dtype=bool)
         empty[:, :-1] = np.diff(starts, axis=1) == 0
         offset = q * np.arange(c_count)[:, None]
+        unsort = np.argsort(order, axis=1)
         return cls(
             starts=(starts + offset).ravel(),
-            empty=empty,
-            row=np.arange(c_count)[:, None],
-            unsort=np.argsort(order, axis=1),
+            empty=np.flatnonzero(empty),
+            at_cum=unsort + e_count * np.arange(c_count)[:, None],
             flat_i=i + offset,
             frac=pos - i,
+            unresolved=np.flatnonzero(unresolved),
         )
 
 
@@ -186,7 +188,11 @@ class Analyzer:
         self._line_scale = power_spectrum(
             np.ones(self.grid.bins, np.complex64), self.info.s1, self.grid.n
         ).astype(np.float64)[: self.q]
-        self._peak_hold = spec.averaging == "peak-hold"
+        # Exponential averages fold each push's frames into one weighted sum inside the
+        # filter bank (FilterBank.push_power); linear ones average the interleaved squares
+        # (re², im²) of every frame and add the pairs at read-out.
+        self._folded = spec.averaging == "exponential"
+        self._pairs = spec.averaging == "linear"
         self._power_cache: dict[tuple[str, int], np.ndarray] = {}  # read-outs share one power
         self.avg = Averager(spec.averaging, spec.averages, linear_end=spec.linear_end)
         self.tone_avg = Averager(spec.averaging, spec.averages, linear_end=spec.linear_end)
@@ -219,6 +225,7 @@ class Analyzer:
         self._edge_plan = _EdgePlan.build(
             self._line_position(np.nan_to_num(self._edges, nan=0.0)).reshape(self.channels, -1),
             self.q,
+            np.isnan(self._edges[..., 0]),
         )
         self._tone_valid = np.isfinite(tone_hz)
         new_tones = np.where(self._tone_valid, tone_hz, 0.0)
@@ -277,17 +284,29 @@ class Analyzer:
         """
         if first_index is not None and first_index != self.bank.next_index:
             self.reset(first_index)
-        batch = self.bank.push(block)
-        if batch.count:
-            # |X|² in place on the interleaved (re, im) floats; the pair sum and the scaling
-            # 2/S1² are linear, so they wait until read-out (once per push, not per frame).
-            v = batch.spectra[..., : self.q].view(np.float32)
-            np.square(v, out=v)
-            self.avg.update(v[..., 0::2] + v[..., 1::2] if self._peak_hold else v)
-            if batch.tones.shape[2]:
-                self.tone_avg.update(tone_power(batch.tones, self.info.s1))
-            self.last_start = int(batch.start[-1])
-        return batch.count
+        if self._folded:
+            # Σ_p a_p·|X_p|² of the new frames with the average's own weights: one array
+            # per push instead of [C, P, N/2+1] spectra (the scaling 2/S1² waits for read-out).
+            n_new = self.bank.frames_ready(np.shape(block)[-1])
+            weights, _ = self.avg.frame_weights(n_new)
+            folded = self.bank.push_power(block, weights, lines=self.q)
+            count, start, tones = folded.count, folded.start, folded.tones
+            if count:
+                self.avg.update_weighted(folded.power, count)
+        else:
+            batch = self.bank.push(block)
+            count, start, tones = batch.count, batch.start, batch.tones
+            if count:
+                # |X|² in place on the interleaved (re, im) floats; for a linear average the
+                # pair sum and the scaling 2/S1² wait until read-out (once, not per frame).
+                v = batch.spectra[..., : self.q].view(np.float32)
+                np.square(v, out=v)
+                self.avg.update(v if self._pairs else v[..., 0::2] + v[..., 1::2])
+        if count:
+            if tones.shape[2]:
+                self.tone_avg.update(tone_power(tones, self.info.s1))
+            self.last_start = int(start[-1])
+        return count
 
     # -- read-outs ---------------------------------------------------------------------
     @property
@@ -315,7 +334,7 @@ class Analyzer:
         p = self.avg.value
         if p is None:
             return np.zeros((self.channels, self.q))
-        if not self._peak_hold:
+        if self._pairs:
             p = p[:, 0::2] + p[:, 1::2]
         out = p * v.weights
         out.setflags(write=False)
@@ -326,7 +345,7 @@ class Analyzer:
 
     def spectrum(self, unit: str | None = None, amplitude: str | None = None) -> np.ndarray:
         """Averaged amplitude spectrum, float32 [C, Q], in ``unit`` as ``amplitude`` type."""
-        p32 = self.power(unit).astype(np.float32)
+        p32 = self.power(unit).astype(np.float32, copy=False)  # sqrt makes the new array
         return amplitude_from_power(p32, amplitude or self.spec.amplitude)  # type: ignore[arg-type]
 
     def psd(self, unit: str | None = None) -> np.ndarray:
@@ -342,15 +361,19 @@ class Analyzer:
             return np.full((self.channels, len(self.spec.bands)), np.nan)
         # Σ_q weight_bq·P_q as a difference of the cumulative sum taken at the band edges, a
         # fractional line counted pro rata — equal to dsp.bands.band_weights, at O(Q) cost.
-        p = self.power(unit)
+        p = self.power(unit).reshape(-1)
         e = self._edge_plan
-        seg = np.add.reduceat(p.ravel(), e.starts, dtype=np.float64).reshape(self.channels, -1)
+        seg = np.add.reduceat(p, e.starts, dtype=np.float64)
         seg[e.empty] = 0.0  # reduceat gives p[i] for an empty run
-        cum = np.cumsum(seg[:, :-1], axis=1)[e.row, e.unsort]  # Σ_{q<i} p[q] at each edge
-        at = cum + e.frac * p.ravel()[e.flat_i]
-        at = at.reshape(self.channels, -1, 2)
-        out = np.sqrt(np.maximum(at[..., 1] - at[..., 0], 0.0) / self.info.enbw_bins)
-        return np.where(np.isnan(self._edges[..., 0]), np.nan, out)
+        cum = np.cumsum(seg.reshape(self.channels, -1)[:, :-1], axis=1)  # Σ_{q<i} p[q]
+        at = cum.take(e.at_cum)  # at each edge, in band order (lo, hi, lo, hi, …)
+        at += e.frac * p.take(e.flat_i)
+        ms = at[:, 1::2] - at[:, 0::2]
+        np.maximum(ms, 0.0, out=ms)
+        ms /= self.info.enbw_bins
+        out = np.sqrt(ms, out=ms)
+        out.reshape(-1)[e.unresolved] = np.nan
+        return out
 
     def tones(self, unit: str | None = None, amplitude: str | None = None) -> np.ndarray:
         """Tracked-tone amplitudes (float64 [C, T]) at their exact frequencies; NaN if unresolved.

@@ -104,6 +104,38 @@ class Averager:
         else:
             self._update_linear(x)
 
+    def frame_weights(self, p_count: int) -> tuple[np.ndarray, float]:
+        """Exponential averaging of the next ``p_count`` frames as one weighted sum.
+
+        Returns ``(a, d)``, float64 weights a[P] and a decay d (dimensionless), such that
+        folding frames x_0…x_{P−1} in order gives y ← d·y + Σ_p a_p·x_p. Pass the sum to
+        :meth:`update_weighted`.
+        """
+        if self.mode != "exponential":
+            raise ValueError(f"frame weights need averaging='exponential', not {self.mode!r}")
+        if int(p_count) != p_count or p_count < 0:
+            raise ValueError(f"p_count={p_count!r} must be a whole number of frames >= 0")
+        return self._exp_weights(int(p_count))
+
+    def update_weighted(self, total: np.ndarray, p_count: int) -> None:
+        """Fold ``p_count`` frames given as their weighted sum Σ_p a_p·x_p ([C, ...]), with
+        the weights a from :meth:`frame_weights` (``p_count``) called in the current state.
+
+        Same result as :meth:`update` on the frames themselves, up to rounding. ``total``
+        becomes the average's storage when there is no average yet (it is not copied).
+        """
+        if self.mode != "exponential":
+            raise ValueError(f"a weighted sum needs averaging='exponential', not {self.mode!r}")
+        if p_count <= 0:
+            return
+        _, decay = self._exp_weights(int(p_count))
+        if self._sum is None or decay == 0.0:
+            self._sum = total
+        else:
+            self._sum *= decay  # a Python float keeps the float32 loop (NEP 50)
+            self._sum += total
+        self._seen += int(p_count)
+
     def _exp_weights(self, p_count: int) -> tuple[np.ndarray, float]:
         """Weights of P new frames and the decay of the old value (cached once steady)."""
         steady = self._seen >= self.averages

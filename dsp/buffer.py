@@ -31,6 +31,29 @@ class SampleBuffer:
         hi = self._hi if length is None else self._lo + int(length)
         return self._buf[:, self._lo : hi]
 
+    def frames(self, n: int, hop: int, count: int) -> np.ndarray:
+        """``count`` overlapping frames ``[C, count, n]`` of the held samples, ``hop`` apart,
+        the first starting at the first held sample: a read-only strided view (no copy),
+        valid until the next :meth:`append`. Needs ``(count − 1)·hop + n <= held``."""
+        if count < 0 or (count and (count - 1) * hop + n > self.held):
+            raise ValueError(
+                f"{count} frames of {n} samples, {hop} apart, need more than "
+                f"the {self.held} samples held"
+            )
+        b = self._buf
+        step = b.strides[1]
+        # The ndarray constructor on the buffer's memory: a strided view at a fraction of the
+        # cost of sliding_window_view (which matters for one channel, a few frames a push).
+        v: np.ndarray = np.ndarray(
+            (self.channels, count, n),
+            dtype=np.float32,
+            buffer=b,
+            offset=self._lo * step,
+            strides=(b.strides[0], hop * step, step),
+        )
+        v.flags.writeable = False
+        return v
+
     def append(self, x: np.ndarray) -> None:
         """Add ``x`` ([C, k], cast to float32) after the held samples."""
         k = x.shape[1]

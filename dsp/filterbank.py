@@ -10,8 +10,17 @@ Grid (for N-point frames, hop H, sample rate fs):
 
 All ready frames of all channels go through one batched ``scipy.fft.rfft`` per push.
 Tracked tones (any frequency, not only line centres) are the same sum evaluated at the
-tone's frequency f: X(f) = Σ_k w[k]·x[k]·e^(−2πi·f·k/fs), done as one matrix product of
-the frames with a (window × complex exponential) kernel.
+tone's frequency f: X(f) = Σ_k w[k]·x[k]·e^(−2πi·f·k/fs), done as matrix products with a
+(window × complex exponential) kernel. When the hop divides N (e.g. 75 % overlap), a frame
+is N/H consecutive hop-long blocks, so X(f) = Σ_j Σ_m x[k₀ + jH + m]·K_j[m] with K_j the
+j-th hop-long piece of the kernel: each block of raw samples is multiplied once by all
+N/H pieces (one matrix product, no windowed copy) and each frame sums N/H of those partial
+products; the partial products of the blocks shared with the next push's frames are kept.
+
+:meth:`FilterBank.push_power` is the path for an exponential average: only the weighted
+sum Σ_p a_p·|X_p|² of the new frames is needed, so √a_p is folded into each frame's window
+and the frames are windowed, transformed, squared and summed a few channels at a time,
+while they are in cache, with no [C, P, N/2+1] spectrum array for all channels.
 """
 
 from __future__ import annotations
@@ -20,16 +29,26 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.fft
-from numpy.lib.stride_tricks import sliding_window_view
 
 from .buffer import SampleBuffer
 from .tones import tone_kernel
 from .windows import DEFAULT_KAISER_BETA, WindowInfo, check_window, get_window, window_info
 
-__all__ = ["FrameBatch", "FrameGrid", "FilterBank", "FMAX_RATIO"]
+__all__ = ["FrameBatch", "FrameGrid", "FilterBank", "FMAX_RATIO", "PowerBatch"]
 
 # fs = 2.56·Fmax and N = 2.56·lines (common practice: leaves room for the anti-alias roll-off)
 FMAX_RATIO = 2.56
+
+# push_power works on about this many windowed frames at a time (all frames of a push, a
+# few channels at a time): 24 frames of 8192 samples and their rfft are about 2 MB, so
+# each stage reads what the previous one left in cache.
+_CHUNK_FRAMES = 24
+# pocketfft transforms _FFT_LANES frames at once in SIMD lanes and the rest one by one,
+# about twice as slowly each (scipy's x86-64 wheels: 4 float32 lanes, SSE). push_power
+# hands it whole groups: a chunk of 1 channel × 3 frames is padded with a zero frame.
+_FFT_LANES = 4
+# Up to this many hop-long blocks, tracked tones go block by block (BLAS gemv).
+_GEMV_ROWS = 4
 
 
 @dataclass(frozen=True)
@@ -142,6 +161,25 @@ class FrameBatch:
         return int(self.start.size)
 
 
+@dataclass(frozen=True)
+class PowerBatch:
+    """Frames completed by one :meth:`FilterBank.push_power`, folded over frames.
+
+    ``start``: int64[P] as in :class:`FrameBatch`.
+    ``power``: float32[C, L], Σ_p a_p·|X[c, p, q]|² for the lines q < L, with X as in
+    :class:`FrameBatch` (unscaled) and a_p the frame weights passed in; a new array.
+    ``tones``: complex64[C, P, T], as in :class:`FrameBatch` (not weighted).
+    """
+
+    start: np.ndarray
+    power: np.ndarray
+    tones: np.ndarray
+
+    @property
+    def count(self) -> int:
+        return int(self.start.size)
+
+
 class FilterBank:
     """Streaming short-time DFT of C channels on a :class:`FrameGrid`.
 
@@ -184,14 +222,20 @@ class FilterBank:
         self.info: WindowInfo = window_info(window, grid.n, beta=beta)  # type: ignore[arg-type]
         self._w32 = self.w.astype(np.float32)
         self._held = SampleBuffer(self.channels, 4 * grid.n)  # samples towards frames
-        self._work = np.empty((self.channels, 0, grid.n), dtype=np.float32)
+        self._work = np.empty((self.channels, 0, grid.n), dtype=np.float32)  # push's frames
+        self._chunk = np.zeros((0, grid.n), dtype=np.float32)  # push_power's few channels
         self._next_index = 0  # stream index of the sample after the last one pushed
         self._tail_start = 0  # stream index of the first held sample
         self.frames_out = 0
         self.resets = 0
+        # Tones by hop-long blocks (see the module docstring) when the hop divides N.
+        self._per_frame = grid.n // grid.hop if grid.n % grid.hop == 0 else 0  # blocks/frame
         self._tone_hz = np.zeros((self.channels, 0))
         self._kernel = np.zeros((1, grid.n, 0), dtype=np.float32)  # [G, n, 2T], G groups
         self._tone_group = np.zeros(self.channels, dtype=np.intp)  # channel → kernel group
+        self._group_rows: list[np.ndarray] = [np.arange(self.channels)]
+        self._partial: np.ndarray | None = None  # [C, N/H − 1, N/H, 2T] kept block products
+        self._tables: dict[tuple[int, bytes], np.ndarray] = {}  # push_power window tables
         if tone_hz is not None:
             self.set_tones(tone_hz)
 
@@ -204,9 +248,10 @@ class FilterBank:
     def set_tones(self, tone_hz: np.ndarray) -> None:
         """Track tones at ``tone_hz`` (Hz): shape (T,) for all channels or (C, T) per channel.
 
-        Each must lie in [0, fs/2]. The kernel K[k, t] = cos(2π·f·k/fs),
-        K[k, T+t] = −sin(2π·f·k/fs) (``dsp.tones.tone_kernel`` with no window) is applied to
-        the windowed frames, the same ones the rfft sees.
+        Each must lie in [0, fs/2]. The kernel K[k, t] = w[k]·cos(2π·f·k/fs),
+        K[k, T+t] = −w[k]·sin(2π·f·k/fs) (``dsp.tones.tone_kernel``) is applied to the raw
+        samples in hop-long blocks when the hop divides N; otherwise the same kernel without
+        the window is applied to the windowed frames, the ones the rfft sees.
         """
         f = np.asarray(tone_hz, dtype=np.float64)
         if f.ndim == 1:
@@ -219,33 +264,87 @@ class FilterBank:
             raise ValueError(f"tone frequencies must lie in [0, fs/2 = {self.grid.fs / 2:g}] Hz")
         if np.array_equal(f, self._tone_hz):
             return
+        self._partial = None
+        n, hop = self.grid.n, self.grid.hop
         if f.size == 0:
-            self._kernel = np.zeros((1, self.grid.n, 0), dtype=np.float32)
+            self._kernel = np.zeros((1, n, 0), dtype=np.float32)
             self._tone_group = np.zeros(self.channels, dtype=np.intp)
+            self._group_rows = [np.arange(self.channels)]
             self._tone_hz = f.copy()
             return
         # Channels that track the same frequencies (same machine, same speed) share one
         # kernel, so their frames go through one large matrix product instead of C small ones.
         rows, group = np.unique(f, axis=0, return_inverse=True)
-        # The kernel goes onto windowed frames, so it carries no window of its own.
-        self._kernel = tone_kernel(rows, self.grid.n, self.grid.fs, "rectangular")
         self._tone_group = group.reshape(-1)
+        self._group_rows = [np.flatnonzero(self._tone_group == g) for g in range(rows.shape[0])]
         self._tone_hz = f.copy()
+        t = rows.shape[1]
+        # Columns (Re, Im) per tone, interleaved, so a product's rows view as complex64.
+        pairs = np.arange(2 * t).reshape(2, t).T.ravel()
+        if self._per_frame:
+            # K_j[m] = K[jH + m] for the N/H hop-long pieces j, side by side: [G, H, N/H·2T].
+            k = tone_kernel(rows, n, self.grid.fs, self.window, beta=self.beta)  # type: ignore[arg-type]
+            g_count = k.shape[0]
+            k = k[..., pairs].reshape(g_count, self._per_frame, hop, 2 * t).transpose(0, 2, 1, 3)
+            self._kernel = np.ascontiguousarray(k.reshape(g_count, hop, self._per_frame * 2 * t))
+        else:
+            # The kernel goes onto windowed frames, so it carries no window of its own.
+            k = tone_kernel(rows, n, self.grid.fs, "rectangular")
+            self._kernel = np.ascontiguousarray(k[..., pairs])
 
-    def _tones(self, windowed: np.ndarray) -> np.ndarray:
-        c_count, p_count, n = windowed.shape
-        t = self._kernel.shape[2] // 2
-        ri = np.empty((c_count, p_count, 2 * t), dtype=np.float32)
-        for g in range(self._kernel.shape[0]):
-            sel = np.flatnonzero(self._tone_group == g)
-            if sel.size == c_count:
-                ri = (windowed.reshape(-1, n) @ self._kernel[g]).reshape(c_count, p_count, 2 * t)
-            else:
-                ri[sel] = windowed[sel] @ self._kernel[g]
-        out = np.empty((c_count, p_count, t), dtype=np.complex64)
-        out.real = ri[..., :t]
-        out.imag = ri[..., t:]
-        return out
+    @property
+    def _tone_count(self) -> int:
+        return self._kernel.shape[2] // (2 * (self._per_frame or 1))
+
+    def _products(self, a: np.ndarray) -> np.ndarray:
+        """a [C', M, L] (rows of channels ``sel``) @ each channel's kernel → float32 [C', M, W]."""
+        c, m, length = a.shape
+        kernel = self._kernel
+        if len(self._group_rows) > 1:
+            y = np.empty((c, m, kernel.shape[2]), dtype=np.float32)
+            for g, sel in enumerate(self._group_rows):
+                y[sel] = a[sel] @ kernel[g]
+            return y
+        if c * m > _GEMV_ROWS:
+            return (a.reshape(-1, length) @ kernel[0]).reshape(c, m, -1)
+        # A few rows: one matrix-vector product each beats a matrix product that first
+        # repacks the whole kernel (measured ~1.7× for 2–3 rows of 2048).
+        y = np.empty((c * m, kernel.shape[2]), dtype=np.float32)
+        for i, row in enumerate(a.reshape(-1, length)):
+            np.dot(row, kernel[0], out=y[i])
+        return y.reshape(c, m, -1)
+
+    def _tones_direct(self, windowed: np.ndarray) -> np.ndarray:
+        """X(f) of windowed frames ``[C, P, N]`` (all channels) by the unwindowed kernel."""
+        ri = self._products(windowed)  # [C, P, 2T] as (Re, Im) pairs
+        return ri.view(np.complex64)
+
+    def _tones_blocks(self, p_count: int) -> np.ndarray:
+        """X(f) of the next ``p_count`` frames from hop-long blocks of the held raw samples.
+
+        Block b (samples bH…bH+H−1 of the held ones) times the pieces [K_0 … K_{R}],
+        R = N/H − 1, gives y[b, j]; frame p is Σ_j y[p + j, j]. The products of the last R
+        blocks (the next push's first R) are kept, so each block is multiplied once."""
+        hop, r1 = self.grid.hop, self._per_frame
+        c = self.channels
+        need = p_count + r1 - 1  # blocks that the new frames cover
+        kept = self._partial
+        first = 0 if kept is None else kept.shape[1]
+        blocks = self._held.view(need * hop)[:, first * hop :]
+        # One contiguous copy of the new samples (a quarter of the frames' size at 75 %
+        # overlap) makes them one [C·blocks, H] matrix for BLAS.
+        a = np.ascontiguousarray(blocks).reshape(c, need - first, hop)
+        y = self._products(a)  # [C, blocks, R + 1 pieces · 2T]
+        if first:
+            y = np.concatenate((kept, y), axis=1)  # type: ignore[arg-type]
+        self._partial = y[:, p_count:need]
+        # diag[c, p, j, :] = y[c, p + j, j·2T : (j+1)·2T]: a strided view, summed over j.
+        w2 = y.shape[2] // r1
+        sc, sb, se = y.strides
+        diag: np.ndarray = np.ndarray(
+            (c, p_count, r1, w2), dtype=np.float32, buffer=y, strides=(sc, sb, sb + w2 * se, se)
+        )
+        return diag.sum(axis=2).view(np.complex64)
 
     # -- stream ------------------------------------------------------------------------
     @property
@@ -258,13 +357,47 @@ class FilterBank:
         """Samples held towards the next frame."""
         return self._held.held
 
+    def frames_ready(self, samples: int) -> int:
+        """Frames that ``samples`` more samples (with no gap) would complete."""
+        length = self._held.held + int(samples)
+        return (length - self.grid.n) // self.grid.hop + 1 if length >= self.grid.n else 0
+
     def reset(self, next_index: int | None = None) -> None:
         """Discard the partial frame (a gap); assembly restarts at ``next_index``."""
         self._held.clear()
+        self._partial = None
         if next_index is not None:
             self._next_index = int(next_index)
         self._tail_start = self._next_index
         self.resets += 1
+
+    def _as_block(self, block: np.ndarray) -> np.ndarray:
+        x = np.asarray(block)
+        if x.ndim == 1 and self.channels == 1:
+            x = x[None, :]
+        if x.ndim != 2 or x.shape[0] != self.channels:
+            raise ValueError(f"block has shape {np.shape(block)}; expected ({self.channels}, n)")
+        return x
+
+    def _accept(self, x: np.ndarray, first_index: int | None) -> int:
+        """Append ``x`` [C, n] (after a gap check); return the number of frames now complete."""
+        if first_index is not None and first_index != self._next_index:
+            self.reset(first_index)
+        self._next_index += x.shape[1]
+        self._held.append(x)  # casts to float32
+        return self.frames_ready(0)
+
+    def _consume(self, p_count: int) -> np.ndarray:
+        """Drop the samples no later frame needs; return the frames' start indices."""
+        hop = self.grid.hop
+        start = self._tail_start + hop * np.arange(p_count, dtype=np.int64)
+        self._held.consume(p_count * hop)
+        self._tail_start += p_count * hop
+        self.frames_out += p_count
+        return start
+
+    def _tones_empty(self, p_count: int) -> np.ndarray:
+        return np.zeros((self.channels, p_count, self._tone_count), dtype=np.complex64)
 
     def push(self, block: np.ndarray, first_index: int | None = None) -> FrameBatch:
         """Append ``block`` (float32[C, n], any n ≥ 0) and return the frames it completed.
@@ -272,40 +405,105 @@ class FilterBank:
         ``first_index`` (optional) is the stream index of ``block[:, 0]``; a value other
         than :attr:`next_index` is a gap and restarts frame assembly there.
         """
-        x = np.asarray(block)
-        if x.ndim == 1 and self.channels == 1:
-            x = x[None, :]
-        if x.ndim != 2 or x.shape[0] != self.channels:
-            raise ValueError(f"block has shape {np.shape(block)}; expected ({self.channels}, n)")
-        if x.dtype != np.float32:
-            x = x.astype(np.float32)
+        p_count = self._accept(self._as_block(block), first_index)
+        if not p_count:
+            spectra = np.zeros((self.channels, 0, self.grid.bins), dtype=np.complex64)
+            return FrameBatch(start=self._consume(0), spectra=spectra, tones=self._tones_empty(0))
+        n = self.grid.n
+        frames = self._held.frames(n, self.grid.hop, p_count)
+        if self._work.shape[1] < p_count:
+            self._work = np.empty((self.channels, p_count, n), dtype=np.float32)
+        # Reused buffer: the FFT input is not freshly allocated (and page-faulted) each push.
+        windowed = np.multiply(frames, self._w32, out=self._work[:, :p_count])
+        if not self._kernel.shape[2]:
+            tones = self._tones_empty(p_count)
+        elif self._per_frame:
+            tones = self._tones_blocks(p_count)
+        else:
+            tones = self._tones_direct(windowed)
+        # The windowed frames are our scratch: let the FFT reuse them (after the tones).
+        spectra = scipy.fft.rfft(windowed, axis=-1, workers=1, overwrite_x=True)
+        return FrameBatch(start=self._consume(p_count), spectra=spectra, tones=tones)
+
+    def _window_table(self, weights: np.ndarray) -> np.ndarray:
+        """[P, N] float32: √a_p·w[k], cached (steady-state weights repeat every push)."""
+        key = (weights.size, weights.tobytes())
+        table = self._tables.get(key)
+        if table is None:
+            table = (np.sqrt(weights)[:, None] * self.w).astype(np.float32)
+            if len(self._tables) > 16:
+                self._tables.clear()
+            self._tables[key] = table
+        return table
+
+    def push_power(
+        self,
+        block: np.ndarray,
+        weights: np.ndarray,
+        *,
+        lines: int | None = None,
+        first_index: int | None = None,
+    ) -> PowerBatch:
+        """Append ``block`` like :meth:`push`; return the completed frames folded over frames.
+
+        ``weights`` (P non-negative numbers, P = :meth:`frames_ready` of the block's length,
+        after any gap) are the frames' weights a_p: the result's ``power`` is
+        Σ_p a_p·|X[c, p, q]|² (float32, unscaled |X|² as in :class:`FrameBatch`) for the
+        first ``lines`` lines (default: ``grid.analysis_bins``). Equal to squaring
+        ``push(block).spectra`` and summing with those weights, to float32 rounding; the
+        spectra of all channels are never held at once.
+        """
+        q = self.grid.analysis_bins if lines is None else int(lines)
+        if not (1 <= q <= self.grid.bins):
+            raise ValueError(f"lines={lines!r} must be in [1, {self.grid.bins}]")
+        a = np.asarray(weights, dtype=np.float64).reshape(-1)
+        x = self._as_block(block)
         if first_index is not None and first_index != self._next_index:
             self.reset(first_index)
-        self._next_index += x.shape[1]
-        self._held.append(x)
-        buf = self._held.view()
-        n, hop = self.grid.n, self.grid.hop
-        length = buf.shape[1]
-        p_count = (length - n) // hop + 1 if length >= n else 0
-        if p_count:
-            frames = sliding_window_view(buf, n, axis=1)[:, : (p_count - 1) * hop + 1 : hop]
+        p_count = self.frames_ready(x.shape[1])
+        if a.size != p_count or (a.size and not (np.all(np.isfinite(a)) and a.min() >= 0)):
+            raise ValueError(
+                f"weights has {a.size} values; the block completes {p_count} frames, "
+                "each needs a finite weight >= 0"
+            )
+        self._accept(x, None)
+        c_count = self.channels
+        if not p_count:
+            power = np.zeros((c_count, q), dtype=np.float32)
+            return PowerBatch(start=self._consume(0), power=power, tones=self._tones_empty(0))
+        power = np.empty((c_count, q), dtype=np.float32)
+        n = self.grid.n
+        frames = self._held.frames(n, self.grid.hop, p_count)
+        if not self._kernel.shape[2]:
+            tones = self._tones_empty(p_count)
+        elif self._per_frame:
+            tones = self._tones_blocks(p_count)
+        else:  # the hop does not divide N: tones on windowed frames, as push does
             if self._work.shape[1] < p_count:
-                self._work = np.empty((self.channels, p_count, n), dtype=np.float32)
-            # Reused buffer: the FFT input is not freshly allocated (and page-faulted) each push.
-            windowed = np.multiply(frames, self._w32, out=self._work[:, :p_count])
-            if self._kernel.shape[2]:
-                tones = self._tones(windowed)
-            else:
-                tones = np.zeros((self.channels, p_count, 0), dtype=np.complex64)
-            # The windowed frames are our scratch: let the FFT reuse them (after the tones).
-            spectra = scipy.fft.rfft(windowed, axis=-1, workers=1, overwrite_x=True)
-            start = self._tail_start + hop * np.arange(p_count, dtype=np.int64)
-        else:
-            spectra = np.zeros((self.channels, 0, self.grid.bins), dtype=np.complex64)
-            tones = np.zeros((self.channels, 0, self._kernel.shape[2] // 2), dtype=np.complex64)
-            start = np.zeros(0, dtype=np.int64)
-        consumed = p_count * hop
-        self._held.consume(consumed)
-        self._tail_start += consumed
-        self.frames_out += p_count
-        return FrameBatch(start=start, spectra=spectra, tones=tones)
+                self._work = np.empty((c_count, p_count, n), dtype=np.float32)
+            tones = self._tones_direct(np.multiply(frames, self._w32, out=self._work[:, :p_count]))
+        table = self._window_table(a)
+        # Channels per chunk: about _CHUNK_FRAMES frames, whole groups of lanes.
+        step = max(1, _CHUNK_FRAMES // p_count)
+        while step > 1 and (step * p_count) % _FFT_LANES:
+            step -= 1
+        step = min(step, c_count)
+        rows = -(-step * p_count // _FFT_LANES) * _FFT_LANES
+        if self._chunk.shape[0] < rows:
+            self._chunk = np.zeros((rows, n), dtype=np.float32)
+        sums = np.empty((step, 2 * q), dtype=np.float32)
+        for c0 in range(0, c_count, step):
+            c1 = min(c_count, c0 + step)
+            used = (c1 - c0) * p_count
+            pad = -(-used // _FFT_LANES) * _FFT_LANES
+            work = self._chunk[:used].reshape(c1 - c0, p_count, n)
+            np.multiply(frames[c0:c1], table, out=work)
+            if pad > used:
+                self._chunk[used:pad] = 0.0  # the FFT may have left anything there
+            spec = scipy.fft.rfft(self._chunk[:pad], axis=-1, workers=1, overwrite_x=True)
+            # Σ_p of re² and im² in one pass over the interleaved floats, then the pairs.
+            v = spec[:used, :q].view(np.float32).reshape(c1 - c0, p_count, 2 * q)
+            sm = sums[: c1 - c0]
+            np.einsum("cpq,cpq->cq", v, v, out=sm)
+            np.add(sm[:, 0::2], sm[:, 1::2], out=power[c0:c1])
+        return PowerBatch(start=self._consume(p_count), power=power, tones=tones)

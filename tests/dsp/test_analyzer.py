@@ -135,3 +135,32 @@ def test_spec_errors():
         _spec(bands=(Band("a", 1, 2), Band("a", 3, 4)))
     with pytest.raises(ValueError, match=r"tone 't': give exactly one of hz or order"):
         ToneDef("t")
+
+
+def test_exponential_average_equals_the_per_frame_definition():
+    # The fused exponential path (weighted sums of |X|² inside the filter bank) against the
+    # definitions in float64: PS = 2|X|²/S1², DC not doubled (Heinzel 2002 §9), and
+    # y_k = y_{k-1} + (PS_k − y_{k-1})/min(k, N) one frame at a time; tones likewise at
+    # their own frequency, X(f) = Σ w[k]·x[k]·e^(−2πi·f·k/fs).
+    n_eq = 3.5
+    spec = _spec(averaging="exponential", averages=n_eq, unit="g", input_unit="g",
+                 tones=(ToneDef("a", hz=123.4), ToneDef("b", hz=640.0)))
+    an = Analyzer(spec, 3)
+    x = _sines(2560.0, 4, [(1.0, 123.4, 0.0), (0.3, 640.0, 1.0)], channels=3, noise=0.2, seed=5)
+    for part in np.split(x, [700, 2000, 2001, 5100, 8000], axis=1):
+        an.push(part)
+    g, w = an.grid, an.bank.w
+    starts = np.arange(0, x.shape[1] - g.n + 1, g.hop)
+    assert an.count == 4 and an.last_end_index == starts[-1] + g.n
+    frames = x[:, starts[:, None] + np.arange(g.n)].astype(np.float64)  # [C, P, N]
+    ps = 2 * np.abs(np.fft.rfft(w * frames, axis=-1)[..., : an.q]) ** 2 / w.sum() ** 2
+    ps[..., 0] /= 2
+    k = np.arange(g.n)
+    kern = w * np.exp(-2j * np.pi * np.array([[123.4], [640.0]]) * k / g.fs)  # [T, N]
+    tp = 2 * np.abs(frames @ kern.T) ** 2 / w.sum() ** 2  # [C, P, T]
+    y, yt = np.zeros((3, an.q)), np.zeros((3, 2))
+    for i in range(starts.size):
+        y += (ps[:, i] - y) / min(i + 1, n_eq)
+        yt += (tp[:, i] - yt) / min(i + 1, n_eq)
+    np.testing.assert_allclose(an.power("g"), y, rtol=1e-5, atol=1e-7 * y.max())
+    np.testing.assert_allclose(an.tones("g"), np.sqrt(yt), rtol=1e-5)

@@ -77,3 +77,29 @@ def test_averager_errors():
         Averager("exponential", 0.5)
     with pytest.raises(ValueError, match=r"averages=2.5 must be a whole number"):
         Averager("linear", 2.5)
+
+
+@pytest.mark.parametrize("n_eq", [1, 4.5, 8])
+def test_weighted_sum_equals_per_frame_recursion(n_eq):
+    # frame_weights + update_weighted fold a push's frames as one weighted sum; reference:
+    # y_k = y_{k-1} + (x_k − y_{k-1})/min(k, N), one frame at a time (the class docstring).
+    x = _frames(p=31)
+    ref = np.zeros((2, 5))
+    for k in range(1, x.shape[1] + 1):
+        ref += (x[:, k - 1] - ref) / min(k, n_eq)
+    a = Averager("exponential", n_eq)
+    for part in np.split(x, [1, 3, 4, 11, 12, 20], axis=1):  # pushes of 1, 2, 1, 7, 1, 8, 11
+        weights, decay = a.frame_weights(part.shape[1])
+        assert weights.shape == (part.shape[1],) and 0.0 <= decay < 1.0
+        a.update_weighted(np.einsum("p,cpq->cq", weights, part), part.shape[1])
+    np.testing.assert_allclose(a.value, ref, rtol=1e-12)
+    assert a.count == int(np.ceil(n_eq))
+
+
+def test_weighted_sum_errors():
+    with pytest.raises(ValueError, match=r"need averaging='exponential', not 'linear'"):
+        Averager("linear", 4).frame_weights(2)
+    with pytest.raises(ValueError, match=r"sum needs averaging='exponential', not 'peak-hold'"):
+        Averager("peak-hold").update_weighted(np.zeros((1, 3)), 2)
+    with pytest.raises(ValueError, match=r"p_count=-1 must be a whole number of frames >= 0"):
+        Averager("exponential", 4).frame_weights(-1)

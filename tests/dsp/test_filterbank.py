@@ -127,3 +127,92 @@ def test_bad_blocks_are_refused():
     with pytest.raises(ValueError, match=r"tone frequencies must lie in \[0, fs/2 = 50\] Hz"):
         fb.set_tones(np.array([60.0]))
     assert fb.pending == 0
+
+
+def _dft64(fb, x, start, f_hz):
+    """X(f) = Σ w[k]·x[start+k]·e^(−2πi·f·k/fs) in float64, straight from the definition."""
+    k = np.arange(fb.grid.n)
+    seg = x[start : start + fb.grid.n].astype(np.float64)
+    return np.sum(fb.w * seg * np.exp(-2j * np.pi * f_hz * k / fb.grid.fs))
+
+
+@pytest.mark.parametrize("overlap", [0.0, 0.5, 0.75, 0.875])
+def test_block_tones_equal_the_float64_dft(overlap):
+    # Hop divides N: tones come from hop-long blocks of raw samples, products kept across
+    # pushes. Reference: the definition evaluated directly in float64 for every frame.
+    fs, n = 4096.0, 1024
+    grid = FrameGrid.from_n(n, fs, overlap=overlap)
+    assert n % grid.hop == 0
+    f_tone = np.array([[101.37, 640.0, 1999.9], [333.3, 1000.01, 12.5], [101.37, 640.0, 1999.9]])
+    fb = FilterBank(grid, 3, "hann", tone_hz=f_tone)  # two kernel groups
+    x = _signal(c=3, n=9000, fs=fs, seed=7)
+    parts = [fb.push(p) for p in np.split(x, [100, 1500, 1501, 4000, 7777], axis=1)]
+    starts = np.concatenate([p.start for p in parts])
+    tones = np.concatenate([p.tones for p in parts], axis=1)
+    assert starts.size == (x.shape[1] - n) // grid.hop + 1
+    scale = np.abs(tones).max()
+    for c in range(3):
+        for i, s in enumerate(starts):
+            ref = np.array([_dft64(fb, x[c], s, f) for f in f_tone[c]])
+            np.testing.assert_allclose(tones[c, i], ref, rtol=0, atol=2e-6 * scale)
+
+
+def test_block_tones_restart_after_a_gap_and_a_new_tone_set():
+    fs, n = 2048.0, 256
+    grid = FrameGrid.from_n(n, fs, overlap=0.75)
+    fb = FilterBank(grid, 1, "flattop", tone_hz=np.array([300.3]))
+    x = _signal(c=1, n=3000, fs=fs, seed=8)[0]
+    fb.push(x[None, :1000], first_index=0)
+    after = fb.push(x[None, 1000:2000], first_index=5000)  # a gap: kept products are dropped
+    assert after.start[0] == 5000
+    np.testing.assert_allclose(after.tones[0, 0, 0], _dft64(fb, x[1000:], 0, 300.3),
+                               rtol=2e-6)  # definition, float64
+    fb.set_tones(np.array([77.7, 500.0]))
+    b = fb.push(x[None, 2000:])
+    i0 = int(b.start[0]) - 5000 + 1000
+    ref = [_dft64(fb, x, i0, f) for f in (77.7, 500.0)]
+    np.testing.assert_allclose(b.tones[0, 0], ref, rtol=0, atol=2e-6 * np.abs(ref).max())
+
+
+@pytest.mark.parametrize("channels,overlap,window", [(1, 0.75, "hann"), (7, 0.75, "kaiser"),
+                                                     (5, 0.6, "hann"), (64, 0.5, "flattop")])
+def test_push_power_equals_the_weighted_sum_of_push(channels, overlap, window):
+    # The fused path (window with √a_p folded in, a few channels at a time, padded FFT
+    # batches) against the straightforward one: push's spectra, |X|² and Σ_p a_p·|X|² in
+    # float64 (and its tones unchanged).
+    n, fs = 512, 4096.0
+    grid = FrameGrid(fs=fs, n=n, hop=FrameGrid.hop_for(n, overlap), keep=200)
+    tones = np.linspace(50.0, 1500.0, 3)
+    ref_bank = FilterBank(grid, channels, window, tone_hz=tones)
+    fast = FilterBank(grid, channels, window, tone_hz=tones)
+    rng = np.random.default_rng(9)
+    x = rng.normal(size=(channels, 12_000)).astype(np.float32)
+    x += np.sin(2 * np.pi * 321.0 * np.arange(x.shape[1]) / fs).astype(np.float32)
+    for part in np.split(x, [300, 2000, 2100, 6000, 6001, 9000], axis=1):
+        p = fast.frames_ready(part.shape[1])
+        a = rng.uniform(0.0, 1.0, p)
+        if p:
+            a[0] = 0.0  # a frame that counts for nothing
+        got = fast.push_power(part, a, lines=150)
+        ref = ref_bank.push(part)
+        assert got.count == ref.count == p
+        np.testing.assert_array_equal(got.start, ref.start)
+        want = np.einsum("p,cpq->cq", a, np.abs(ref.spectra[..., :150].astype(np.complex128)) ** 2)
+        np.testing.assert_allclose(got.power, want, rtol=2e-5, atol=1e-6 * want.max(initial=0))
+        np.testing.assert_allclose(got.tones, ref.tones, rtol=0,
+                                   atol=1e-5 * np.abs(ref.tones).max(initial=1))
+        assert got.power.shape == (channels, 150) and got.power.dtype == np.float32
+    assert fast.pending == ref_bank.pending and fast.frames_out == ref_bank.frames_out
+
+
+def test_push_power_errors():
+    fb = FilterBank(FrameGrid.from_n(64, 100.0, overlap=0.5), 2)
+    with pytest.raises(ValueError, match=r"weights has 1 values; the block completes 2 frames"):
+        fb.push_power(np.zeros((2, 96), np.float32), [1.0])
+    with pytest.raises(ValueError, match=r"each needs a finite weight >= 0"):
+        fb.push_power(np.zeros((2, 64), np.float32), [-1.0])
+    with pytest.raises(ValueError, match=r"lines=40 must be in \[1, 33\]"):
+        fb.push_power(np.zeros((2, 10), np.float32), [], lines=40)
+    with pytest.raises(ValueError, match=r"block has shape \(3, 10\); expected \(2, n\)"):
+        fb.push_power(np.zeros((3, 10), np.float32), [])
+    assert fb.pending == 0 and fb.frames_ready(64) == 1
