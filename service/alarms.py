@@ -27,8 +27,12 @@ Semantics (``common practice`` for two-level vibration alarms, made precise here
   and pending on/off delays and baseline learning restart from the first good frame after
   the fault: data around a fault is suspect, so a transition must re-qualify for its full
   delay on good data. One ``"sensor-fault"`` event marks entry and one marks exit, per channel.
-* NaN (or a value missing from the frame, or an older ``t_ns`` than already seen) is
-  skipped: that frame neither advances nor resets any timer.
+* NaN (or a value missing from the frame) is skipped: that frame neither advances nor
+  resets any timer.
+* Time running backwards: a frame up to CLOCK_JITTER_NS older than the last one is taken
+  at the last one's time (arrival-time stamps of a bursty producer); further back is a
+  clock step, after which pending on/off delays and baseline learning restart on the new
+  clock, so an alarm is never frozen until the old time comes round again.
 * Relative levels: alert/danger = factor × the median of the values seen during the first
   ``learn_s`` seconds of good data (×2 alert, ×4 danger or +6 dB / +12 dB over the
   baseline are ``common practice`` starting points). No transitions while learning.
@@ -75,6 +79,9 @@ RuleKind = Literal["band", "tone", "overall"]
 EventKind = Literal["transition", "ack", "sensor-fault"]
 ChannelStatus = Literal["ok", "no-data", "gap", "sensor-fault", "overrun"]
 Cause = Literal["value", "ack"]
+# Frame times that run back by at most this are jitter (arrival-time stamps of a producer
+# sending in bursts) and hold still; further back is a clock step (our choice).
+CLOCK_JITTER_NS = 1_000_000_000
 RULE_KINDS: tuple[str, ...] = get_args(RuleKind)
 EVENT_KINDS: tuple[str, ...] = get_args(EventKind)
 CHANNEL_STATUSES: tuple[str, ...] = get_args(ChannelStatus)  # as in service.pipeline
@@ -772,8 +779,13 @@ class AlarmEngine:
 
     # -- internals -----------------------------------------------------------------------
     def _step(self, a: _Alarm, v: float, t_ns: int, unit: str) -> AlarmEvent | None:
-        if not math.isfinite(v) or (a.value_ns is not None and t_ns < a.value_ns):
+        if not math.isfinite(v):
             return None
+        if a.value_ns is not None and t_ns < a.value_ns:
+            if a.value_ns - t_ns <= CLOCK_JITTER_NS:
+                t_ns = a.value_ns  # arrival-time jitter: time holds still
+            else:  # the clock stepped back: pending delays (and learning) restart on it
+                a.reset_pending()
         a.value, a.value_ns = v, int(t_ns)
         if a.rule.baseline is not None and a.base is None and not a.learn_value(v, t_ns):
             return None

@@ -28,6 +28,7 @@ Real-time contract
 from __future__ import annotations
 
 import asyncio
+import logging
 import time
 from abc import ABC, abstractmethod
 from collections.abc import Callable, Sequence
@@ -37,6 +38,12 @@ import numpy as np
 
 from ..types import SampleBlock, SourceCounters
 from ..wire import Frame
+
+log = logging.getLogger("quaver.sources")
+
+# A header clock that falls behind the samples' own pace by more than this has stepped back
+# (e.g. a producer's clock corrected by NTP); our choice, well above network jitter.
+CLOCK_STEP_BACK_NS = 1_000_000_000
 
 __all__ = ["GAP_SAMPLES", "QueuedSource", "Source"]
 
@@ -99,6 +106,7 @@ class QueuedSource(ABC):
         self._started = False
         self._closed = False
         self._tasks: set[asyncio.Task[None]] = set()
+        self._last_header: tuple[int, int] | None = None  # (t_ns, first_index) of the last
 
     @property
     def fs(self) -> float | None:
@@ -218,6 +226,28 @@ class QueuedSource(ABC):
         self.counters.extra[key] = self.counters.extra.get(key, 0) + by
 
     # --- framed input (TCP and UDP) ----------------------------------------------------
+
+    def _frame_t0_ns(self, frame: Frame) -> int:
+        """The time of a frame's first sample: its header's, or the arrival time if it has none.
+
+        A header time more than CLOCK_STEP_BACK_NS behind the previous header's time plus the
+        samples in between is a clock step back: counted (``clock_steps_back``), reported in
+        ``last_error`` and logged. The frames still carry the producer's new time (trends show
+        the overlap; the alarm engine restarts its pending delays on the new clock)."""
+        if not frame.t_ns:
+            return self._arrival_t0_ns(frame.n)
+        prev = self._last_header
+        if prev is not None:
+            expected = prev[0] + round((frame.first_index - prev[1]) * 1e9 / frame.fs)
+            if frame.t_ns < expected - CLOCK_STEP_BACK_NS:
+                back_s = (expected - frame.t_ns) / 1e9
+                self._bump("clock_steps_back")
+                self._error(f"header clock stepped back {back_s:.6g} s at sample index "
+                            f"{frame.first_index}; frames follow the new clock")
+                log.warning("source %s: header clock stepped back %.6g s at sample index %d",
+                            self.id, back_s, frame.first_index)
+        self._last_header = (frame.t_ns, frame.first_index)
+        return frame.t_ns
 
     def _frame_problem(self, frame: Frame) -> str | None:
         """Why a decoded frame does not fit this source, or None."""

@@ -172,8 +172,7 @@ class TcpSource(QueuedSource):
                 if self._next_index is not None and frame.first_index != self._next_index:
                     self.counters.gaps += 1
                 self._next_index = frame.first_index + frame.n
-                t0 = frame.t_ns or self._arrival_t0_ns(frame.n)
-                self._emit(frame.data, frame.first_index, t0)
+                self._emit(frame.data, frame.first_index, self._frame_t0_ns(frame))
             if decoder.malformed != seen:
                 self.counters.malformed += decoder.malformed - seen
                 seen = decoder.malformed

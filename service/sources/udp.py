@@ -102,7 +102,7 @@ class UdpSource(QueuedSource):
                 return
             self.counters.gaps += 1
         self._expected = k + frame.n
-        self._emit(frame.data, k, frame.t_ns or self._arrival_t0_ns(frame.n))
+        self._emit(frame.data, k, self._frame_t0_ns(frame))
 
     def _status_extra(self) -> dict[str, object]:
         addr = f"{self.address[0]}:{self.address[1]}" if self.address else None

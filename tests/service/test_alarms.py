@@ -292,6 +292,22 @@ def test_nan_is_skipped_without_moving_any_timer() -> None:
     assert engine.view("m1.overall").value == 1.5
 
 
+def test_time_running_backwards_neither_freezes_nor_rushes_an_alarm() -> None:
+    engine = AlarmEngine([overall_rule(on_delay_s=2.0, off_delay_s=0.0)])
+    # arrival-time jitter: a frame 0.3 s older than the last is taken at the last one's time
+    # and its value counts: the dip below the level restarts the delay (above again from 2)
+    out = []
+    for t, v in ((0.0, 1.5), (1.5, 1.5), (1.2, 0.5), (2.0, 1.5), (3.9, 1.5), (4.0, 1.5)):
+        out += engine.evaluate(frame("m1", t, overall=v))
+    assert summary(out) == [(4.0, "transition", "normal", "alert", 1.0)]
+    engine = AlarmEngine([overall_rule(on_delay_s=2.0, off_delay_s=0.0)])
+    # the clock steps back an hour at t = 1: the pending delay restarts on the new clock and
+    # the alarm fires 2 s later on it, not an hour later when the old time comes round
+    out = run(engine, [1.5, 1.5])
+    out += run(engine, [1.5, 1.5, 1.5, 1.5], start_s=-3600)
+    assert summary(out) == [(-3598.0, "transition", "normal", "alert", 1.0)]
+
+
 def test_band_and_tone_rules_pick_their_value_by_name() -> None:
     band = Rule(
         id=rule_id("m1", "band", "Bearing Env"),

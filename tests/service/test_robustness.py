@@ -327,7 +327,7 @@ def test_faster_than_real_time_is_processed_or_counted(svc: RunningService) -> N
 # --- time running backwards in the frame headers ------------------------------------------
 
 
-def test_timestamps_going_backwards_are_accepted(svc: RunningService) -> None:
+def test_timestamps_going_backwards_are_flagged_and_followed(svc: RunningService) -> None:
     x = tones(N_TOTAL, seed=31, amps=(1.0,))
     half = N_TOTAL // 2  # 10240 = N_FRAME + 16·HOP: a frame ends exactly here
     t_first = 1_700_000_000_000_000_000  # 2023-11-14, ns since the Unix epoch
@@ -347,6 +347,10 @@ def test_timestamps_going_backwards_are_accepted(svc: RunningService) -> None:
         after = spectrum_after(svc, "clock-a", samples=N_TOTAL, what="the second half")
     c = counters(svc, "clock")
     assert (c["samples"], c["gaps"], c["malformed"]) == (N_TOTAL, 0, 0), c
+    # the step back is flagged once, with how far it went (service/sources/base.py)
+    assert c["clock_steps_back"] == 1, c
+    assert c["last_error"] == (f"header clock stepped back 3600 s at sample index {half}; "
+                               "frames follow the new clock")
     # the indices run on, so the average runs on across the jump in time
     assert after["averages"] == frames_in(N_TOTAL) and after["seq"] > before["seq"]
     # a frame's time is the producer's header time of its last sample's block plus the
