@@ -78,6 +78,7 @@ START_TIMEOUT_S = 30.0  # the child must answer /health within this
 STOP_TIMEOUT_S = 5.0  # SIGTERM, then SIGKILL after this
 START_ATTEMPTS = 3  # a probed free port can be taken before the child binds it
 DRAIN_S = 2.0  # after the last send, every expected frame must be counted within this
+DRAIN_WAIT_S = 30.0  # ... and is waited for this long, so that the counts are final
 HTTP_TIMEOUT_S = 10.0
 WARMUP_S = 1.0  # latency samples from the first second of a step are left out (FFT plans)
 FANOUT_CHANNELS_PER_CLIENT = 8
@@ -757,10 +758,17 @@ def _feed_step(plan: BenchPlan, svc: Service, feeder: Feeder, sources: list[str]
     t_last = time.monotonic()
     after = before
     drained = None
-    while time.monotonic() - t_last < DRAIN_S + 3.0:  # bounded: report the drain time
+    # Wait for the backlog (bounded) so that the counts are final, and time it; once a block
+    # was dropped the frames can never all arrive: then only the queues are waited for.
+    while time.monotonic() - t_last < DRAIN_WAIT_S:
         after = _counters(svc)
         if all(after.frames[c] >= want[c] for c in chans):
             drained = time.monotonic() - t_last
+            break
+        if any(after.drops[s] > before.drops[s] for s in sources) and not any(
+                after.queued[s] for s in sources):
+            time.sleep(0.5)  # the block taken last is still being analysed
+            after = _counters(svc)
             break
         time.sleep(0.05)
     frames_fed = sum(want[c] - expected_frames(n0[c.rsplit("-c", 1)[0]], plan.n, plan.hop)
