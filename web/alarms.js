@@ -7,10 +7,25 @@ import { STATES, alarmStateKey, badge, glyph } from "./states.js";
 
 const RANK = { danger: 3, alert: 2, latched: 1, ok: 0 };
 
-/** What an alarm watches, in words: "bearing band", "overall", "1x tone". */
+/**
+ * The analysis profile an alarm rule (or event) watches when it is not its channel's primary
+ * one, else "". The service names such rules `<channel>.<profile>.<kind>…` and primary ones
+ * `<channel>.<kind>…`; the rule id decides, so no channel list is needed.
+ */
+export function ruleProfile(a) {
+  const p = a?.profile;
+  if (!p || !a.rule || !a.channel) return "";
+  const head = `${a.channel}.${p}.`;
+  if (!a.rule.startsWith(head)) return "";
+  const rest = a.rule.slice(head.length);
+  return (a.kind === "overall" ? rest === "overall" : rest.startsWith(`${a.kind}.`)) ? p : "";
+}
+
+/** What an alarm watches, in words: "bearing band", "overall", "1x tone", "1x band · narrow". */
 export function what(a) {
-  if (a.kind === "overall") return "overall";
-  return `${a.name} ${a.kind}`;
+  const p = ruleProfile(a);
+  const w = a.kind === "overall" ? "overall" : `${a.name} ${a.kind}`;
+  return p ? `${w} · ${p}` : w;
 }
 
 /** HTML for the alarm list (most severe, then oldest first). */

@@ -201,13 +201,14 @@ export class ThirdsChart {
 
 /**
  * Rows for BandBars from a bands message: named bands (not third-octave) with the levels and
- * state of their alarm rule when the service has one (`levels(channel, kind, name)`).
+ * state of their alarm rule when the service has one (`levels(channel, kind, name, profile)`;
+ * the rule watches the message's analysis profile).
  */
 export function bandRows(levels, channelId, msg) {
   const named = [];
   const thirds = [];
   for (const b of msg?.bands || []) {
-    const rule = levels(channelId, "band", b.name);
+    const rule = levels(channelId, "band", b.name, msg.profile);
     let state = "ok";
     if (rule && rule.state && rule.rule) state = rule.state === "latched" ? "latched" : rule.state === "normal" ? "ok" : rule.state;
     else if (rule?.danger > 0 && b.value >= rule.danger) state = "danger";

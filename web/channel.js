@@ -1,8 +1,9 @@
-// One channel in depth: live spectrum, spectrogram, band bars, tones and peaks, trend, and
-// this channel's alarms and events. Gets data from the shell's events; draws through the plots.
+// One channel in depth, for one of its analysis profiles: live spectrum, spectrogram, band
+// bars, tones and peaks, trend, and this channel's alarms and events. Gets data from the
+// shell's events; draws through the plots.
 
 import { API, ApiError, features, getJSON, isMissingRoute, qs } from "./api.js";
-import { AMP_CHOICES, UNIT_CHOICES, ampLabel, esc, fmtClock, fmtHz, fmtHzAt, fmtVal, unitLabel } from "./fmt.js";
+import { AMP_CHOICES, UNIT_CHOICES, ampLabel, esc, fmtClock, fmtHz, fmtHzAt, fmtHzExact, fmtVal, unitLabel } from "./fmt.js";
 import { badge } from "./states.js";
 import { SpectrumPlot } from "./spectrum.js";
 import { Spectrogram } from "./spectrogram.js";
@@ -16,19 +17,45 @@ const RANGES = { hour: 3600e3, day: 86400e3, month: 30 * 86400e3 };
 const STALE_AFTER_MS = 5000;
 const TREND_STEPS_S = [10, 60, 300, 600, 1800, 3600, 7200, 21600, 86400];
 
-export function mount(root, ctx, id) {
+/** The hash of a channel's view: `#/channel/<id>`, or `…?profile=<name>` off its primary profile. */
+export function channelHash(id, profile = "") {
+  return `#/channel/${encodeURIComponent(id)}${profile ? `?profile=${encodeURIComponent(profile)}` : ""}`;
+}
+
+/**
+ * Mount the channel view of channel `id` in `root`. `profile`: the analysis profile to show
+ * ("" = the channel's primary one). Returns {unmount(), probe} (probe: what is on screen).
+ */
+export function mount(root, ctx, id, { profile = "" } = {}) {
   const chan = () => ctx.store.channels.find((c) => c.id === id);
   const prefs = JSON.parse(localStorage.getItem("quaver.view") || "{}");
   const st = {
     unit: "", amplitude: "", hold: false, meta: null, lastSpec: 0, lastT: 0, range: prefs.range || "hour",
     trendName: ctx.FRAME, tones: null,
+    profile, // "" = the primary profile; else the name of the one shown
+    fresh: true, // the next spectrum starts a new frequency axis
+    profileNote: "",
   };
+  // The channel's analysis profiles (primary first) as /channels describes them; [] when the
+  // service has none. `cur` is the name of the one shown (null while unknown).
+  const profiles = () => chan()?.profiles ?? [];
+  const primaryName = () => profiles()[0]?.name ?? ctx.live.profiles?.[id]?.[0] ?? null;
+  const cur = () => st.profile || primaryName();
+  const curProfile = () => profiles().find((p) => p.name === cur()) ?? null;
+  // A message is this view's when it is of this channel and of the profile shown (a service
+  // without profiles sends none: take it).
+  const mine = (m) => m.channel === id && (m.profile === undefined || cur() === null || m.profile === cur());
   root.innerHTML = `
     <div class="ch-head">
       <h1 id="ch-id">${esc(id)}</h1><span class="desc" id="ch-desc"></span><span id="ch-badge"></span><span class="hint" id="ch-fault"></span>
       <div class="big"><span class="overall" id="ch-overall" data-role="overall">—</span><span class="unit" id="ch-unit"></span></div>
     </div>
     <dl class="facts" id="ch-facts"></dl>
+    <div class="toolbar profile-pick" id="profile-pick" hidden>
+      <span class="lbl" id="profile-lbl" title="the channel's analysis profiles: each has its own Fmax, lines and bands; everything below follows the one chosen">Analysis profile</span>
+      <span class="seg" role="group" aria-labelledby="profile-lbl" id="seg-profile"></span>
+      <span class="hint">spectrum, bands, tones and trend below are the chosen profile's; the other views show the primary one</span>
+    </div>
     <div class="toolbar" role="toolbar" aria-label="spectrum display">
       <label>Unit <select id="sel-unit"><option value="">as analysed</option>${UNIT_CHOICES.map((u) => `<option value="${u}">${esc(unitLabel(u))}</option>`).join("")}</select></label>
       <label>Amplitude <select id="sel-amp"><option value="">as analysed</option>${AMP_CHOICES.map((a) => `<option value="${a}">${ampLabel(a)}</option>`).join("")}</select></label>
@@ -47,7 +74,8 @@ export function mount(root, ctx, id) {
     <div class="ch-grid">
       <div>
         <figure class="panel"><figcaption>Spectrum <span class="hint">wheel: zoom · drag: pan · shift+wheel or ↑↓: amplitude · ← →, + −, 0 · L/F: log · click: pick a line</span><span class="readout" id="readout"></span></figcaption>
-          <canvas id="spec" class="plot-spec" tabindex="0" aria-label="averaged spectrum of ${esc(id)}; use the arrow keys, plus and minus to move and zoom"></canvas></figure>
+          <canvas id="spec" class="plot-spec" tabindex="0" aria-label="averaged spectrum of ${esc(id)}; use the arrow keys, plus and minus to move and zoom"></canvas>
+          <p class="spec-cap" id="spec-cap" aria-live="polite"></p></figure>
         <figure class="panel"><figcaption>Spectrogram <span class="hint">newest at the top; same frequency axis as above</span></figcaption><canvas id="sgram" class="plot-sgram"></canvas></figure>
         <figure class="panel"><figcaption>Trend
             <select id="sel-trend" aria-label="value to trend"></select>
@@ -57,7 +85,7 @@ export function mount(root, ctx, id) {
       </div>
       <div>
         <section class="panel"><header>Bands <span class="hint" id="bands-unit"></span></header><canvas id="bars" class="plot-bars"></canvas>
-          <header>Third-octave bands</header><canvas id="thirds" class="plot-thirds"></canvas></section>
+          <header id="thirds-head">Third-octave bands</header><canvas id="thirds" class="plot-thirds"></canvas></section>
         <section class="panel" id="ch-alarms-panel" hidden><header>Alarms on this channel</header><ul class="alarms" id="ch-alarms"></ul></section>
         <section class="panel"><header>Tones and peaks <span class="hint" id="tones-unit"></span></header><table class="tones" id="tones"></table></section>
         <section class="panel" id="ch-events-panel" hidden><header>Events <a class="hint" href="#/events?channel=${encodeURIComponent(id)}">full log</a></header>
@@ -104,7 +132,108 @@ export function mount(root, ctx, id) {
   }
 
   function subscribe() {
-    ctx.live.subscribe({ channels: [id], kinds: ["spectrum", "bands", "tones", "status", "alarms"], max_rate_hz: 10, unit: st.unit || undefined, amplitude: st.amplitude || undefined });
+    const p = cur();
+    ctx.live.subscribe({ channels: [id], kinds: ["spectrum", "bands", "tones", "status", "alarms"], max_rate_hz: 10, unit: st.unit || undefined, amplitude: st.amplitude || undefined, profiles: p ? [p] : undefined });
+  }
+
+  // --- analysis profiles ------------------------------------------------------------------
+  /** Show profile `name` ("" or the primary's name: the primary one); keeps it in the URL. */
+  function setProfile(name) {
+    const p = name && name !== primaryName() ? name : "";
+    if (p === st.profile) return;
+    st.profile = p;
+    window.history.replaceState(null, "", channelHash(id, p));
+    // Everything drawn belongs to the old profile: start again from its latest messages.
+    st.meta = null;
+    st.lastSpec = 0;
+    st.tones = null;
+    st.bands = null;
+    st.hold = false;
+    st.fresh = true;
+    plot.data = null;
+    plot.view = null;
+    plot.selected = null;
+    plot.top = null;
+    plot.setBands([]);
+    plot.setServerPeaks(null);
+    plot.setMarkers({ speedHz: (chan()?.speed_rpm || 0) / 60, bearing: [] });
+    sg.clear();
+    for (const k of ["seq", "profile", "f0Hz", "dfHz"]) delete specCanvas.dataset[k];
+    bars.setRows([], "");
+    thirds.setRows([], "");
+    toneKey = "";
+    $("#tones").innerHTML = "";
+    readout.textContent = "";
+    bandsAt = tonesAt = 0;
+    trendNames = "";
+    const have = curProfile()?.bands;
+    if (st.trendName !== ctx.FRAME && have && !have.includes(st.trendName)) {
+      st.trendName = ctx.FRAME;
+      trendChosen = false;
+    }
+    syncToolbar();
+    renderProfiles();
+    renderHead();
+    subscribe();
+    loadMeta();
+    loadTrend();
+    const b = ctx.bandsOf(id, cur());
+    if (b && mine(b)) onBands(b, true);
+    const t = ctx.tonesOf(id, cur());
+    if (t && mine(t)) onTones(t, true);
+  }
+
+  let profBtnKey = "";
+  /** The profile buttons (only when the channel has more than one) and the URL's choice checked. */
+  function renderProfiles() {
+    const list = profiles();
+    if (list.length && st.profile) {
+      if (st.profile === primaryName()) {
+        st.profile = ""; // the primary one is the default: keep the URL plain
+        window.history.replaceState(null, "", channelHash(id));
+      } else if (!list.some((p) => p.name === st.profile)) {
+        st.profileNote = `no profile “${st.profile}” on this channel; showing ${primaryName()}`;
+        setProfile("");
+        return;
+      }
+    }
+    const pick = $("#profile-pick");
+    pick.hidden = list.length < 2;
+    const key = list.map((p) => `${p.name}:${profileSummary(p)}`).join("|");
+    const seg = $("#seg-profile");
+    if (key !== profBtnKey) {
+      profBtnKey = key;
+      seg.innerHTML = list.map((p) => `<button data-profile="${esc(p.name)}" title="${esc(profileSummary(p))}">${esc(p.name)}</button>`).join("");
+    }
+    for (const b of seg.querySelectorAll("[data-profile]")) b.setAttribute("aria-pressed", String(b.dataset.profile === cur()));
+    renderCaption();
+  }
+
+  /** Under the spectrum: what the profile shown analyses (Fmax, lines, Δf, decimation). */
+  function renderCaption() {
+    const P = curProfile();
+    const m = st.meta;
+    const fmax = P?.fmax_hz ?? m?.fmax_hz;
+    const df = P?.df_hz ?? m?.df_hz;
+    const lines = P?.lines ?? m?.lines;
+    const el = $("#spec-cap");
+    if (fmax === undefined || df === undefined) {
+      setText(el, st.profileNote);
+      return;
+    }
+    const parts = [];
+    if (P && profiles().length > 1) parts.push(`${P.name} profile${P.primary ? " (primary)" : ""}`);
+    parts.push(`Fmax ${fmtHzExact(fmax)}`, `${lines} lines`, `Δf ${fmtHzExact(df)}`);
+    if (P?.frame_s) parts.push(`${+P.frame_s.toPrecision(3)} s per transform`);
+    const R = P?.decimation ?? 1;
+    if (R > 1) parts.push(`decimated ×${R} (analysed at ${fmtHzExact(P.sample_rate_hz)})`);
+    if (P?.fmax_asked_hz && Math.abs(P.fmax_asked_hz - fmax) > 1e-9 * fmax) parts.push(`${fmtHzExact(P.fmax_asked_hz)} asked`);
+    setText(el, parts.join(" · ") + (st.profileNote ? ` — ${st.profileNote}` : ""));
+    el.dataset.profile = P?.name ?? "";
+    el.dataset.fmaxHz = fmax;
+    el.dataset.dfHz = df;
+    el.dataset.lines = lines;
+    el.dataset.decimation = R;
   }
 
   function key(e) {
@@ -140,7 +269,13 @@ export function mount(root, ctx, id) {
     subscribe();
     loadMeta();
   });
-  root.querySelector(".toolbar").addEventListener("click", (e) => {
+  $("#seg-profile").addEventListener("click", (e) => {
+    const b = e.target.closest("button[data-profile]");
+    if (!b) return;
+    st.profileNote = "";
+    setProfile(b.dataset.profile);
+  });
+  root.querySelector('[role="toolbar"]').addEventListener("click", (e) => {
     const b = e.target.closest("button");
     if (!b) return;
     if (b.dataset.ya) plot.setLogAmp(b.dataset.ya === "log");
@@ -148,7 +283,7 @@ export function mount(root, ctx, id) {
     savePrefs();
     syncToolbar();
   });
-  root.querySelector(".toolbar").addEventListener("change", (e) => {
+  root.querySelector('[role="toolbar"]').addEventListener("change", (e) => {
     const s = e.target.dataset.show;
     if (s) {
       plot.setShow(s, e.target.checked);
@@ -162,7 +297,8 @@ export function mount(root, ctx, id) {
     const c = chan();
     if (!m || !c) return;
     const q = plot.selected ?? plot.peaks?.[0]?.q ?? Math.round(m.lines / 2);
-    openFilter({ window: m.window, n: Math.round(c.sample_rate_hz / m.df_hz), df: m.df_hz, q, f: m.f0_hz + q * m.df_hz, enbw_bins: m.enbw_bins, channel: id });
+    const n = m.n ?? curProfile()?.n ?? Math.round((m.sample_rate_hz ?? c.sample_rate_hz) / m.df_hz);
+    openFilter({ window: m.window, n, df: m.df_hz, q, f: m.f0_hz + q * m.df_hz, enbw_bins: m.enbw_bins, channel: id });
   });
   root.querySelector("#sel-trend").addEventListener("change", (e) => {
     st.trendName = e.target.value;
@@ -180,27 +316,44 @@ export function mount(root, ctx, id) {
 
   // --- data ---------------------------------------------------------------------------
   async function loadMeta() {
+    const asked = st.profile;
+    const again = () => setTimeout(() => asked === st.profile && loadMeta(), 1000);
     try {
-      const j = await getJSON(`${API}/channels/${encodeURIComponent(id)}/spectrum${qs({ unit: st.unit, amplitude: st.amplitude })}`);
+      const j = await getJSON(`${API}/channels/${encodeURIComponent(id)}/spectrum${qs({ unit: st.unit, amplitude: st.amplitude, profile: asked })}`);
+      if (asked !== st.profile) return; // the profile changed meanwhile
       const { values, ...meta } = j;
+      if (!mine(meta)) return again(); // not the profile's yet (its name was still unknown)
       st.meta = meta;
       if (!st.lastSpec) onSpectrum({ header: { ...meta, kind: "spectrum" }, values: Float32Array.from(values, (v) => v ?? NaN) });
       renderFacts();
+      renderCaption();
     } catch (e) {
-      if (e instanceof ApiError && e.status === 503) setTimeout(loadMeta, 1000);
+      if (asked !== st.profile) return;
+      if (e instanceof ApiError && e.status === 503) again();
+      else if (e instanceof ApiError && e.status === 404 && asked && /profile/i.test(e.detail)) {
+        st.profileNote = e.detail; // e.g. an old link naming a profile this channel no longer runs
+        setProfile("");
+      }
     }
   }
 
   function onSpectrum({ header: h, values }) {
-    if (h.channel !== id) return;
+    if (!mine(h)) return;
     st.lastSpec = Date.now();
     st.lastT = h.timestamp_ns;
     if (st.hold) return;
-    const d = { f0: h.f0_hz, df: h.df_hz, values, unit: h.unit, amplitude: h.amplitude, t_ns: h.timestamp_ns, lowcut_hz: st.meta?.lowcut_hz };
+    const d = { f0: h.f0_hz, df: h.df_hz, values, unit: h.unit, amplitude: h.amplitude, t_ns: h.timestamp_ns, lowcut_hz: st.meta?.lowcut_hz, seq: h.seq, profile: h.profile ?? "" };
     plot.setData(d);
-    specCanvas.dataset.seq = h.seq; // which frame is on screen (for people and tests)
+    // which frame is on screen, of which profile, on which lines (for people and tests)
+    specCanvas.dataset.seq = h.seq;
+    specCanvas.dataset.profile = h.profile ?? "";
+    specCanvas.dataset.f0Hz = h.f0_hz;
+    specCanvas.dataset.dfHz = h.df_hz;
     sg.push(d);
-    if (!plot.view) plot.resetView();
+    if (st.fresh || !plot.view) {
+      st.fresh = false;
+      plot.resetView(); // a new axis: the whole range, and the spectrogram follows
+    }
     if (sg.view === null) plot._viewChanged();
     staleCheck();
   }
@@ -211,7 +364,8 @@ export function mount(root, ctx, id) {
   let bandsAt = 0, tonesAt = 0;
 
   function onBands(m, force = false) {
-    if (m.channel !== id) return;
+    if (!mine(m)) return;
+    st.bands = m;
     const { named, thirds: th } = bandRows(ctx.levels, id, m);
     plot.setBands(named);
     const now = performance.now();
@@ -219,13 +373,14 @@ export function mount(root, ctx, id) {
     bandsAt = now;
     bars.setRows(named, m.unit);
     thirds.setRows(th, m.unit);
+    $("#thirds-head").hidden = $("#thirds").hidden = !th.length; // e.g. a narrow profile has none
     setText($("#bands-unit"), `${unitLabel(m.unit, "rms")} · A = alert, D = danger`);
     fillTrendNames(named);
   }
 
   let toneKey = "";
   function onTones(m, force = false) {
-    if (m.channel !== id) return;
+    if (!mine(m)) return;
     st.tones = m;
     plot.setServerPeaks(m);
     plot.setMarkers({ speedHz: (chan()?.speed_rpm || 0) / 60, bearing: (m.tones || []).filter((t) => BEARING.test(t.name)).map((t) => ({ name: t.name, f: t.frequency_hz })) });
@@ -274,14 +429,16 @@ export function mount(root, ctx, id) {
       $("#ch-badge").dataset.k = k;
     }
     setText($("#ch-fault"), c.fault || "");
-    const L = c.latest;
+    const P = curProfile();
+    const L = P && !P.primary ? P.latest : c.latest; // the overall of the profile shown
     const o = $("#ch-overall");
     setText(o, L ? fmtVal(L.overall) : "—");
     if (L) {
       o.dataset.seq = L.seq;
       o.dataset.value = L.overall;
     }
-    setText($("#ch-unit"), L ? `${unitLabel(L.unit, "rms")} overall` : "");
+    setText($("#ch-unit"), L ? `${unitLabel(L.unit, "rms")} overall${P && !P.primary ? ` (${P.name})` : ""}` : "");
+    renderProfiles();
     renderFacts();
   }
 
@@ -291,10 +448,10 @@ export function mount(root, ctx, id) {
     const f = [];
     if (c?.speed_rpm) f.push(["speed", `${fmtVal(c.speed_rpm, 4)} r/min · 1X ${fmtHz(c.speed_rpm / 60)}`]);
     if (m) {
-      f.push(["lines", `${m.lines} · Fmax ${fmtHz(m.fmax_hz)} · Δf ${fmtHz(m.df_hz)}`]);
+      f.push(["lines", `${m.lines} · Fmax ${fmtHzExact(m.fmax_hz)} · Δf ${fmtHzExact(m.df_hz)}`]);
       f.push(["window", `${m.window} · ENBW ${fmtVal(m.enbw_bins)} lines`]);
       f.push(["averaging", `${m.averaging ?? ""} ${m.averages}`]);
-      const L = c?.latest;
+      const L = curProfile()?.primary === false ? ctx.bandsOf(id, cur()) : c?.latest;
       f.push(["overall band", L?.overall_lo_hz != null
         ? `${fmtHz(L.overall_lo_hz)}–${fmtHz(L.overall_hi_hz)}`
         : `${fmtHz(m.lowcut_hz)}–${fmtHz(m.fmax_hz)}`]);
@@ -396,12 +553,16 @@ export function mount(root, ctx, id) {
   }
 
   async function loadTrendNow() {
+    const asked = st.profile;
+    const prof = cur();
     const span = RANGES[st.range];
     const nowMs = st.lastT ? st.lastT / 1e6 : Date.now();
     const isFrame = st.trendName === ctx.FRAME;
-    const rule = isFrame ? ctx.levels(id, "overall", "overall") : ctx.levels(id, "band", st.trendName);
-    const unit = ctx.store.bands.get(id)?.unit || chan()?.latest?.unit || "";
-    const ruleId = isFrame ? `${id}.overall` : `${id}.band.${slug(st.trendName)}`;
+    const rule = isFrame ? ctx.levels(id, "overall", "overall", prof) : ctx.levels(id, "band", st.trendName, prof);
+    const unit = ctx.bandsOf(id, prof)?.unit || curProfile()?.unit || chan()?.latest?.unit || "";
+    // rule ids name a profile other than the primary one (README, HTTP API)
+    const head = ctx.profileKey(id, prof) ? `${id}.${ctx.profileKey(id, prof)}` : id;
+    const ruleId = isFrame ? `${head}.overall` : `${head}.band.${slug(st.trendName)}`;
     let evList = st.events || [];
     if (features.events === true) {
       try {
@@ -417,7 +578,7 @@ export function mount(root, ctx, id) {
       const name = isFrame ? "overall" : `band:${st.trendName}`;
       // about 600 points or fewer, on steps a store keeping 10 s / 1 min / 1 h buckets can give
       const stepS = TREND_STEPS_S.find((x) => (span / 1000) / x <= 600) ?? 86400;
-      const url = (step) => `${API}/channels/${encodeURIComponent(id)}/trend${qs({ name, since: (nowMs - span) / 1000, until: nowMs / 1000, step })}`;
+      const url = (step) => `${API}/channels/${encodeURIComponent(id)}/trend${qs({ name, since: (nowMs - span) / 1000, until: nowMs / 1000, step, profile: asked })}`;
       try {
         let j;
         try {
@@ -426,12 +587,14 @@ export function mount(root, ctx, id) {
           if (!(e instanceof ApiError) || e.status === 404) throw e;
           j = await getJSON(url(null)); // the service did not like the step: let it choose
         }
+        if (asked !== st.profile) return; // the profile changed meanwhile; loadTrend runs again
         features.trend = true;
         const pts = (j.points || []).map((p) => ({ t_ms: p.t_ns / 1e6, mean: p.mean, min: p.min, max: p.max }));
         trend.set({ ...base, points: pts });
         $("#trend-note").textContent = `stored history, ${fmtStep(j.step_s ?? stepS)} steps`;
         return;
       } catch (e) {
+        if (asked !== st.profile) return;
         if (isMissingRoute(e)) features.trend = false;
         else if (e instanceof ApiError && e.status === 404) {
           trend.set({ ...base, points: [] });
@@ -440,7 +603,7 @@ export function mount(root, ctx, id) {
         } else return; // unreachable or failing: keep what is drawn
       }
     }
-    const pts = ctx.history(id, st.trendName).map(([t, v]) => ({ t_ms: t, mean: v }));
+    const pts = ctx.history(id, st.trendName, prof).map(([t, v]) => ({ t_ms: t, mean: v }));
     // Only this session's values: show the part of the period that holds them.
     const have = pts.length ? nowMs - pts[0].t_ms : 0;
     const shown = Math.min(span, Math.max(5 * 60e3, have * 1.1));
@@ -460,7 +623,7 @@ export function mount(root, ctx, id) {
     alarms: () => {
       renderAlarms();
       renderHead();
-      const m = ctx.store.bands.get(id);
+      const m = ctx.bandsOf(id, cur());
       if (m) onBands(m, true);
     },
     conn: () => {
@@ -483,11 +646,23 @@ export function mount(root, ctx, id) {
   loadMeta();
   renderHead();
   renderAlarms();
-  const m0 = ctx.store.bands.get(id);
+  renderProfiles();
+  const m0 = ctx.bandsOf(id, cur());
   if (m0) onBands(m0);
-  if (ctx.store.tones.get(id)) onTones(ctx.store.tones.get(id));
+  const t0 = ctx.tonesOf(id, cur());
+  if (t0) onTones(t0);
   loadEvents().then(loadTrend);
   return {
+    /** What is on screen, for people in devtools and for the tests (window.quaver.view). */
+    probe: {
+      profile: () => cur(),
+      spectrum: () => {
+        const d = plot.data;
+        return d && { seq: d.seq, profile: d.profile, f0_hz: d.f0, df_hz: d.df, unit: d.unit, amplitude: d.amplitude, values: Array.from(d.values) };
+      },
+      view: () => plot.view && { ...plot.view },
+      bands: () => st.bands && { profile: st.bands.profile, names: (st.bands.bands || []).map((b) => b.name) },
+    },
     unmount() {
       for (const [k, f] of Object.entries(on)) ctx.app.removeEventListener(k, f);
       plot.surface.dispose();
@@ -497,6 +672,12 @@ export function mount(root, ctx, id) {
       trend.surface.dispose();
     },
   };
+}
+
+/** One profile in a line (a button's tooltip): "Fmax 500 Hz · 1600 lines · Δf 0.3125 Hz · decimated ×10". */
+function profileSummary(p) {
+  if (p.fmax_hz === undefined) return `${p.name}: no spectrum yet`;
+  return `Fmax ${fmtHzExact(p.fmax_hz)} · ${p.lines} lines · Δf ${fmtHzExact(p.df_hz)}${p.decimation > 1 ? ` · decimated ×${p.decimation}` : ""}`;
 }
 
 function rankOf(state) {

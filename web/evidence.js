@@ -67,7 +67,7 @@ export async function openEvidence(eventId, ctx) {
     plot.setMarkers({ speedHz: (ch?.speed_rpm || 0) / 60, bearing: [] });
     const refresh = async () => {
       try {
-        const now = await getJSON(`${API}/channels/${encodeURIComponent(e.channel)}/spectrum${qs({ unit: s.unit, amplitude: s.amplitude })}`);
+        const now = await getJSON(`${API}/channels/${encodeURIComponent(e.channel)}/spectrum${qs({ unit: s.unit, amplitude: s.amplitude, profile: e.profile || s.profile })}`);
         if (current === eventId) plot.setOverlay({ f0: now.f0_hz, df: now.df_hz, values: Float32Array.from(now.values, (v) => v ?? NaN), label: "now" });
       } catch {
         /* the live one is optional */

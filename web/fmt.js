@@ -23,6 +23,12 @@ export function fmtHz(f, withUnit = true) {
   return s;
 }
 
+/** A frequency as given, to 6 significant digits: "0.3125 Hz", "500 Hz", "5 kHz", "1.28 kHz". */
+export function fmtHzExact(f) {
+  if (!Number.isFinite(f)) return "—";
+  return Math.abs(f) >= 1000 ? `${+(f / 1000).toPrecision(6)} kHz` : `${+f.toPrecision(6)} Hz`;
+}
+
 /** A line's frequency in Hz to the resolution of its spacing `df` (up to 3 decimals). */
 export function fmtHzAt(f, df) {
   if (!Number.isFinite(f)) return "—";

@@ -32,6 +32,7 @@ export class Live extends EventTarget {
     this.ws = null;
     this.sub = null;
     this.channels = [];
+    this.profiles = {}; // channel → its analysis profile names, primary first (from the stream's hello)
     this.alarms = null; // null = unknown or the service has no alarm route
     this.downSince = 0;
     this.attempts = 0;
@@ -54,7 +55,10 @@ export class Live extends EventTarget {
     setInterval(() => this._pollTick(), 100);
   }
 
-  /** Change what the open view wants: {channels: [...] | "*", kinds: [...], max_rate_hz, unit, amplitude}. */
+  /**
+   * Change what the open view wants: {channels: [...] | "*", kinds: [...], max_rate_hz, unit,
+   * amplitude, profiles: [names] | "*" (omitted: each channel's primary profile)}.
+   */
   subscribe(sub) {
     this.sub = sub;
     this._due.clear();
@@ -181,6 +185,9 @@ export class Live extends EventTarget {
       return;
     }
     switch (m.kind) {
+      case "hello":
+        if (m.profiles && typeof m.profiles === "object") this.profiles = m.profiles;
+        break;
       case "bands":
       case "tones":
         this._emit(m.kind, m);
@@ -220,6 +227,13 @@ export class Live extends EventTarget {
     const now = performance.now();
     const list = s.channels === "*" ? this.channels.map((c) => c.id) : s.channels || [];
     const one = list.length <= 2;
+    // REST serves one profile per request: the one asked for when it is a single name
+    const profile = Array.isArray(s.profiles) && s.profiles.length === 1 ? s.profiles[0] : "";
+    const pq = (q) => {
+      if (profile) q.set("profile", profile);
+      const t = q.toString();
+      return t ? `?${t}` : "";
+    };
     for (const ch of list) {
       const hasData = this.channels.find((c) => c.id === ch)?.latest;
       if (!hasData) continue;
@@ -229,7 +243,7 @@ export class Live extends EventTarget {
           const q = new URLSearchParams({ format: "json" });
           if (s.unit) q.set("unit", s.unit);
           if (s.amplitude) q.set("amplitude", s.amplitude);
-          const j = await getJSON(`${API}/channels/${encodeURIComponent(ch)}/spectrum?${q}`);
+          const j = await getJSON(`${API}/channels/${encodeURIComponent(ch)}/spectrum${pq(q)}`);
           const { values, ...header } = j;
           header.kind = "spectrum";
           header.count = values.length;
@@ -238,13 +252,13 @@ export class Live extends EventTarget {
       }
       if (s.kinds.includes("bands")) {
         this._poll(`b:${ch}`, now, one ? 1000 : 2000, async () => {
-          const j = await getJSON(`${API}/channels/${encodeURIComponent(ch)}/bands`);
+          const j = await getJSON(`${API}/channels/${encodeURIComponent(ch)}/bands${pq(new URLSearchParams())}`);
           this._emit("bands", { kind: "bands", ...j });
         });
       }
       if (s.kinds.includes("tones") && one) {
         this._poll(`t:${ch}`, now, 1000, async () => {
-          const j = await getJSON(`${API}/channels/${encodeURIComponent(ch)}/tones`);
+          const j = await getJSON(`${API}/channels/${encodeURIComponent(ch)}/tones${pq(new URLSearchParams())}`);
           this._emit("tones", { kind: "tones", ...j });
         });
       }

@@ -9,7 +9,7 @@ import { esc, fmtVal } from "./fmt.js";
 import * as overview from "./overview.js";
 import * as channel from "./channel.js";
 import * as eventsView from "./events.js";
-import { setupAck } from "./alarms.js";
+import { ruleProfile, setupAck } from "./alarms.js";
 import { setupEvidence } from "./evidence.js";
 import { setupFilter } from "./filterview.js";
 
@@ -22,10 +22,10 @@ export const app = new EventTarget();
 const store = {
   channels: [],
   alarms: null, // active/latched alarm entries, or null when the service has no alarm route
-  rules: new Map(), // "channel|kind|name" → last alarm entry seen (remembers levels)
-  bands: new Map(), // channel → latest bands message
-  tones: new Map(), // channel → latest tones message
-  hist: new Map(), // channel → Map(name → [[t_ms, value], ...]) for this browser session
+  rules: new Map(), // "channel|profile|kind|name" → last alarm entry seen (remembers levels); profile "" = primary
+  bands: new Map(), // channel → latest bands message of its primary profile; "channel|profile" → of another
+  tones: new Map(), // the same for tones messages
+  hist: new Map(), // channel → Map(name → [[t_ms, value], ...]) for this browser session ("profile/name" off the primary)
   conn: "connecting",
   downSince: 0,
 };
@@ -36,6 +36,9 @@ const ctx = {
   app,
   nav: (hash) => (location.hash = hash),
   levels,
+  profileKey,
+  bandsOf,
+  tonesOf,
   channelState,
   alarmsFor,
   history,
@@ -43,9 +46,36 @@ const ctx = {
   FRAME,
 };
 
-/** Levels and state of one rule: {alert, danger, unit, state, rule, acked} or null. */
-function levels(channelId, kind, name) {
-  return store.rules.get(`${channelId}|${kind}|${kind === "overall" ? "overall" : name}`) ?? null;
+/** Levels and state of one rule: {alert, danger, unit, state, rule, acked} or null.
+ *  `profile`: the analysis profile the value comes from (omitted or primary: the primary one). */
+function levels(channelId, kind, name, profile = "") {
+  return store.rules.get(ruleKey(channelId, profileKey(channelId, profile), kind, name)) ?? null;
+}
+
+function ruleKey(channelId, pk, kind, name) {
+  return `${channelId}|${pk}|${kind}|${kind === "overall" ? "overall" : name}`;
+}
+
+/** A channel's primary analysis profile: the first of /channels' `profiles`, else the stream's hello. */
+function primaryOf(channelId) {
+  const c = store.channels.find((x) => x.id === channelId);
+  return c?.profiles?.[0]?.name ?? live.profiles?.[channelId]?.[0] ?? null;
+}
+
+/** "" for a channel's primary profile (or a service without profiles), else the profile's name. */
+function profileKey(channelId, profile) {
+  if (!profile) return "";
+  const p = primaryOf(channelId);
+  return p === null || profile === p ? "" : profile;
+}
+
+const msgKey = (channelId, pk) => (pk ? `${channelId}|${pk}` : channelId);
+/** The latest bands / tones message of a channel's profile (default: the primary one). */
+function bandsOf(channelId, profile = "") {
+  return store.bands.get(msgKey(channelId, profileKey(channelId, profile)));
+}
+function tonesOf(channelId, profile = "") {
+  return store.tones.get(msgKey(channelId, profileKey(channelId, profile)));
 }
 
 function alarmsFor(channelId) {
@@ -56,9 +86,12 @@ function channelState(c) {
   return channelStateKey(c.status, alarmsFor(c.id));
 }
 
-function history(channelId, name) {
-  return store.hist.get(channelId)?.get(name) ?? [];
+/** This session's values of `name` (FRAME or a band) of a channel's profile (default: primary). */
+function history(channelId, name, profile = "") {
+  return store.hist.get(channelId)?.get(histKey(profileKey(channelId, profile), name)) ?? [];
 }
+
+const histKey = (pk, name) => (pk ? `${pk}/${name}` : name);
 
 /** Put stored points (older than what this session saw) in front of a history. */
 function seedHistory(channelId, name, pts) {
@@ -94,7 +127,7 @@ live.addEventListener("channels", (e) => {
 live.addEventListener("alarms", (e) => {
   const list = e.detail;
   store.alarms = list === null ? null : list.filter((a) => a.state !== "normal" || a.latched);
-  for (const a of list || []) store.rules.set(`${a.channel}|${a.kind}|${a.kind === "overall" ? "overall" : a.name}`, a);
+  for (const a of list || []) store.rules.set(ruleKey(a.channel, ruleProfile(a), a.kind, a.name), a);
   // A rule that left the active list is back to normal: keep its levels, drop its state.
   if (list) {
     const act = new Set(list.map((a) => a.rule));
@@ -108,20 +141,22 @@ live.addEventListener("alarms", (e) => {
 
 live.addEventListener("bands", (e) => {
   const m = e.detail;
-  store.bands.set(m.channel, m);
+  const pk = profileKey(m.channel, m.profile);
+  store.bands.set(msgKey(m.channel, pk), m);
   const t = (m.timestamp_ns ?? 0) / 1e6;
-  for (const b of m.bands || []) if (!b.name.startsWith("third ")) remember(m.channel, b.name, t, b.value);
+  for (const b of m.bands || []) if (!b.name.startsWith("third ")) remember(m.channel, histKey(pk, b.name), t, b.value);
+  if (pk) remember(m.channel, histKey(pk, FRAME), t, m.overall); // the primary's comes with /channels
   // Some services put levels on the bands themselves.
   for (const b of m.bands || []) {
     if (b.alert !== undefined || b.danger !== undefined) {
-      const k = `${m.channel}|band|${b.name}`;
+      const k = ruleKey(m.channel, pk, "band", b.name);
       store.rules.set(k, { ...(store.rules.get(k) || { state: "normal" }), channel: m.channel, kind: "band", name: b.name, alert: b.alert, danger: b.danger, unit: m.unit });
     }
   }
   app.dispatchEvent(new CustomEvent("bands", { detail: m }));
 });
 live.addEventListener("tones", (e) => {
-  store.tones.set(e.detail.channel, e.detail);
+  store.tones.set(msgKey(e.detail.channel, profileKey(e.detail.channel, e.detail.profile)), e.detail);
   app.dispatchEvent(new CustomEvent("tones", { detail: e.detail }));
 });
 live.addEventListener("spectrum", (e) => app.dispatchEvent(new CustomEvent("spectrum", { detail: e.detail })));
@@ -215,20 +250,25 @@ export function groupByMachine(chans) {
 
 // --- router ------------------------------------------------------------------------------
 let view = null;
+/** The channel view's hash: `#/channel/<id>` or `#/channel/<id>?profile=<name>`. */
+function channelRoute() {
+  const m = /^#\/channel\/([^?]+)(?:\?(.*))?$/.exec(location.hash);
+  return m ? { id: decodeURIComponent(m[1]), profile: new URLSearchParams(m[2] || "").get("profile") || "" } : null;
+}
+
 function currentChannel() {
-  const m = /^#\/channel\/(.+)$/.exec(location.hash);
-  return m ? decodeURIComponent(m[1]) : null;
+  return channelRoute()?.id ?? null;
 }
 
 function route() {
   view?.unmount?.();
   const main = document.getElementById("main");
   main.innerHTML = "";
-  const ch = currentChannel();
+  const ch = channelRoute();
   let which = "plant";
   if (ch) {
     which = "channel";
-    view = channel.mount(main, ctx, ch);
+    view = channel.mount(main, ctx, ch.id, { profile: ch.profile });
   } else if (location.hash.startsWith("#/events")) {
     which = "events";
     view = eventsView.mount(main, ctx);
@@ -239,6 +279,7 @@ function route() {
     if (a.dataset.nav === which) a.setAttribute("aria-current", "page");
     else a.removeAttribute("aria-current");
   }
+  window.quaver.view = view?.probe ?? null;
   sideKey = "";
   renderSide();
 }
@@ -264,12 +305,14 @@ function init() {
       if (e.target.closest("[data-close]")) d.close();
     });
   }
+  // for people poking around in devtools (and the browser tests): `view` is what the open
+  // view chooses to show of itself (the channel view: its profile and the spectrum on screen)
+  window.quaver = { live, store, Surface, view: null, version: 1 };
   window.addEventListener("hashchange", route);
   route();
   live.start();
   probeEvents();
   setInterval(() => app.dispatchEvent(new CustomEvent("tick")), 1000);
-  window.quaver = { live, store, Surface, version: 1 }; // for people poking around in devtools
 }
 
 init();

@@ -6,7 +6,7 @@ import { esc, fmtHz, fmtVal, unitLabel } from "./fmt.js";
 import { STATES, badge, glyph } from "./states.js";
 import { BandBars, bandRows, topBands } from "./bars.js";
 import { Surface, pal } from "./plot.js";
-import { alarmListHtml, eventItemHtml } from "./alarms.js";
+import { alarmListHtml, eventItemHtml, ruleProfile } from "./alarms.js";
 import { groupByMachine } from "./main.js";
 
 const SPARK_MS = 10 * 60e3;
@@ -163,7 +163,7 @@ export function mount(root, ctx) {
       if (c.fault) notes.push(`${glyph("fault", 12)} ${esc(c.fault)}`);
       if (c.status === "no-data") notes.push(c.counters?.samples ? "no samples arriving" : "no samples yet");
       const al = ctx.alarmsFor(c.id).filter((a) => a.state !== "normal" || a.latched);
-      if (al.length) notes.push(al.map((a) => `${a.kind === "overall" ? "overall" : esc(a.name)} ${esc(a.state)}${a.acked ? " (ack)" : ""}`).join(", "));
+      if (al.length) notes.push(al.map((a) => `${a.kind === "overall" ? "overall" : esc(a.name)}${ruleProfile(a) ? ` (${esc(ruleProfile(a))})` : ""} ${esc(a.state)}${a.acked ? " (ack)" : ""}`).join(", "));
       const nh = notes.join(" · ");
       if (e.note.innerHTML !== nh) e.note.innerHTML = nh;
       const { named } = bandRows(ctx.levels, c.id, ctx.store.bands.get(c.id));

@@ -64,7 +64,6 @@ def free_port() -> int:
         return int(s.getsockname()[1])
 
 
-
 def _service_code(port: int, data_dir: Path, speed: float | None, tokens: bool) -> str:
     """Python for ``python -c``: the built-in demo on ``port`` (optionally faster, with tokens)."""
     if not tokens:
