@@ -520,6 +520,13 @@ class Feeder:
                 s.close()
         self.socks.clear()
 
+    def restart(self, sid: str) -> bool:
+        """Jump ``sid``'s index by one block (a gap) unless nothing was sent yet; True if so."""
+        if not self.log.next_index[sid]:
+            return False
+        self.log.next_index[sid] += self.block
+        return True
+
     def send_block(self, sid: str) -> None:
         k = self.log.next_index[sid]
         t_ns = self.base_ns + round(k * 1e9 / self.fs)
@@ -742,8 +749,14 @@ class _QueueWatch:
 
 def _feed_step(plan: BenchPlan, svc: Service, feeder: Feeder, sources: list[str],
                seconds: float) -> dict[str, Any]:
-    """Feed ``sources`` in real time for ``seconds``; check counters; CPU and RSS figures."""
+    """Feed ``sources`` in real time for ``seconds``; check counters; CPU and RSS figures.
+
+    A source fed before restarts with a one-block jump in its index (a gap the service
+    counts once per channel), so frame assembly starts afresh at the step's first sample
+    whatever an earlier step dropped: then each channel must gain exactly
+    floor((n − N)/hop) + 1 frames for the n samples of the step."""
     chans = [c for sid in sources for c in _channel_ids(sid, plan.per_source)]
+    restart_gaps = plan.per_source * sum(feeder.restart(sid) for sid in sources)
     before = _counters(svc)
     n0 = {sid: feeder.log.next_index[sid] for sid in sources}
     cpu0, proc0, wall0 = svc.cpu_s(), os.times(), time.monotonic()
@@ -753,7 +766,7 @@ def _feed_step(plan: BenchPlan, svc: Service, feeder: Feeder, sources: list[str]
     cpu = svc.cpu_s() - cpu0
     proc1 = os.times()
     bench_cpu = (proc1.user - proc0.user) + (proc1.system - proc0.system)
-    want = {c: expected_frames(feeder.log.next_index[sid], plan.n, plan.hop)
+    want = {c: expected_frames(feeder.log.next_index[sid] - n0[sid], plan.n, plan.hop)
             for sid in sources for c in _channel_ids(sid, plan.per_source)}
     t_last = time.monotonic()
     after = before
@@ -762,7 +775,7 @@ def _feed_step(plan: BenchPlan, svc: Service, feeder: Feeder, sources: list[str]
     # was dropped the frames can never all arrive: then only the queues are waited for.
     while time.monotonic() - t_last < DRAIN_WAIT_S:
         after = _counters(svc)
-        if all(after.frames[c] >= want[c] for c in chans):
+        if all(after.frames[c] - before.frames[c] >= want[c] for c in chans):
             drained = time.monotonic() - t_last
             break
         if any(after.drops[s] > before.drops[s] for s in sources) and not any(
@@ -771,20 +784,20 @@ def _feed_step(plan: BenchPlan, svc: Service, feeder: Feeder, sources: list[str]
             after = _counters(svc)
             break
         time.sleep(0.05)
-    frames_fed = sum(want[c] - expected_frames(n0[c.rsplit("-c", 1)[0]], plan.n, plan.hop)
-                     for c in chans)
+    frames_fed = sum(want.values())
     frames_got = sum(after.frames[c] - before.frames[c] for c in chans)
     drops = sum(after.drops[s] - before.drops[s] for s in sources)
-    gaps = sum(after.gaps[c] - before.gaps[c] for c in chans)
+    gaps = sum(after.gaps[c] - before.gaps[c] for c in chans) - restart_gaps
     overrun = [c for c in after.overrun if c in set(chans)]
-    exact = all(after.frames[c] == want[c] for c in chans)
+    exact = all(after.frames[c] - before.frames[c] == want[c] for c in chans)
     passed = (drops == 0 and gaps == 0 and not overrun and exact and drained is not None
               and drained <= DRAIN_S)
     return {
         "channels": len(chans), "sources": len(sources), "seconds": round(fed["wall_s"], 3),
         "blocks": fed["blocks"],
         "samples": {sid: [n0[sid], feeder.log.next_index[sid]] for sid in sources},
-        "passed": passed, "drops": drops, "gaps": gaps, "overrun_channels": len(overrun),
+        "passed": passed, "drops": drops, "gaps": gaps, "restart_gaps": restart_gaps,
+        "overrun_channels": len(overrun),
         "frames_expected": frames_fed, "frames_counted": frames_got, "frames_exact": exact,
         "drain_s": None if drained is None else round(drained, 3),
         "max_queued_blocks": watch.max_queued,
@@ -868,6 +881,7 @@ def fanout(plan: BenchPlan, svc: Service, feeder: Feeder, headroom: int) -> dict
                               start_new_session=True)
     try:
         connected = _read_line(worker, 40.0).strip() == "connected"
+        sent_before = {sid: len(feeder.log.sends[sid]) for sid in sources}
         with_clients = _feed_step(plan, svc, feeder, sources, plan.fanout_s)
         try:
             out, _ = worker.communicate(timeout=plan.fanout_s + 20.0)
@@ -876,9 +890,11 @@ def fanout(plan: BenchPlan, svc: Service, feeder: Feeder, headroom: int) -> dict
         result = json.loads(out.strip().splitlines()[-1]) if out.strip() else {"logs": []}
     finally:
         _stop_child(worker)
-    block_ends: dict[str, list[int]] = {sid: [e for e, _ in feeder.log.sends[sid]]
-                                        for sid in sources}
-    expected = {sid: newest_frame_ends(ends, plan.n, plan.hop) for sid, ends in block_ends.items()}
+    expected = {}
+    for sid in sources:  # the newest frame end after each block of the step with the clients
+        start = with_clients["samples"][sid][0]
+        ends = [e - start for e, _ in feeder.log.sends[sid][sent_before[sid]:]]
+        expected[sid] = [start + e for e in newest_frame_ends(ends, plan.n, plan.hop)]
     # Dropped blocks mean frames never made (and frame assembly restarting elsewhere): the
     # end-index check needs a run without drops or gaps; the service's `missed` is kept anyway.
     checkable = with_clients["drops"] == 0 and with_clients["gaps"] == 0
