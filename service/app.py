@@ -25,7 +25,7 @@ from .pipeline import SourcePipeline, channel_states
 from .profiles import ProfileBank
 from .sources import make_source
 from .spectra import spectrum_values
-from .store import Retention, Store, trend_key
+from .store import Retention, Store, StoreError, trend_key
 from .types import SpectralFrame
 
 log = logging.getLogger("quaver")
@@ -75,9 +75,19 @@ class Service:
     async def start(self) -> None:
         """Open the store and restore alarm state, open every source (a port that cannot be
         bound fails the start-up), then start one pipeline task per source."""
-        Path(self.cfg.service.data_dir).mkdir(parents=True, exist_ok=True)
+        try:
+            Path(self.cfg.service.data_dir).mkdir(parents=True, exist_ok=True)
+        except OSError as e:  # the store reports it below; monitoring starts anyway
+            log.error("data folder %s: %s", self.cfg.service.data_dir, e)
         self.store.start()
-        state = await asyncio.to_thread(self.store.load_alarm_state)
+        try:
+            state = await asyncio.to_thread(self.store.load_alarm_state)
+        except StoreError as e:
+            # A store that cannot be read must not stop monitoring: start with every alarm
+            # normal, say so, and let /health and /metrics show the store's state.
+            self.store_errors += 1
+            log.error("alarm state not restored (%s); monitoring starts without it", e)
+            state = None
         if state:
             self.alarms.restore(state)
             log.info("restored %d active/latched alarms", len(self.alarms.active()))

@@ -123,11 +123,17 @@ class _ServiceCollector(Collector):
         store = getattr(self.state, "store", None)
         if store is not None:
             h = store.health()
-            for key in ("events", "write_errors"):
-                if key in h and isinstance(h[key], int | float):
-                    m = CounterMetricFamily(f"quaver_store_{key}", f"Store counter: {key}")
-                    m.add_metric([], float(h[key]))
-                    yield m
+            ok = GaugeMetricFamily(
+                "quaver_store_ok", "1 while the store writes; 0 when it cannot (see /health)"
+            )
+            ok.add_metric([], 1.0 if h["ok"] else 0.0)
+            yield ok
+            for key, what in (("write_errors", "Failed store writes"),
+                              ("events_written", "Alarm events committed"),
+                              ("trend_buckets_written", "Trend buckets committed")):
+                m = CounterMetricFamily(f"quaver_store_{key}", what)
+                m.add_metric([], float(h[key]))
+                yield m
 
 
 @router.get(

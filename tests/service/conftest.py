@@ -188,8 +188,13 @@ def _stop(proc: subprocess.Popen[bytes]) -> None:
 
 
 @contextlib.contextmanager
-def run_service(doc: dict[str, Any], workdir: Path) -> Iterator[RunningService]:
+def run_service(
+    doc: dict[str, Any], workdir: Path, wrap: Callable[[list[str]], list[str]] | None = None
+) -> Iterator[RunningService]:
     """Start ``python -m service serve -c FILE`` for the config ``doc`` and stop it after.
+
+    ``wrap`` (optional) turns that command into the one actually run (e.g. inside a mount
+    namespace); the wrapper must pass SIGTERM on to the service.
 
     ``doc`` is the config as dicts (see :func:`to_toml`) without ``[service]``; every TCP or
     UDP source whose ``listen`` is ``"auto"`` gets a free loopback port. Waits (at most
@@ -217,8 +222,9 @@ def run_service(doc: dict[str, Any], workdir: Path) -> Iterator[RunningService]:
         config_path.write_text(to_toml(full), encoding="utf-8")
         log_path = workdir / f"service-{attempt}.log"
         with open(log_path, "wb") as log:
+            command = [sys.executable, "-m", "service", "serve", "-c", str(config_path)]
             proc = subprocess.Popen(
-                [sys.executable, "-m", "service", "serve", "-c", str(config_path)],
+                wrap(command) if wrap is not None else command,
                 cwd=workdir, env=child_env(), stdout=log, stderr=subprocess.STDOUT,
             )
         base_url = f"http://{LOOPBACK}:{http_port}"
