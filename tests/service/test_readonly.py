@@ -51,7 +51,8 @@ for step in fill free; do
     sleep 0.05; i=$((i+1))
   done
   [ -e "$trigger.$step" ] || break
-  if [ $step = fill ]; then cat /dev/zero > "$data/filler" 2>/dev/null; else rm -f "$data/filler"; fi
+  if [ $step = fill ]; then cat /dev/zero > "$data/filler" 2>/dev/null
+  else rm -f "$data/filler"; fi
   touch "$trigger.$step.done"
 done
 wait $pid
