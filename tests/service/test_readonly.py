@@ -126,10 +126,28 @@ def feed(sock: socket.socket, first: int, n: int, amp: float) -> int:
     return first + n
 
 
-def test_a_read_only_data_folder_is_reported_and_monitoring_goes_on(tmp_path: Path) -> None:
+def monitoring_goes_on(svc: RunningService, k: int, amp: float) -> None:
+    """Every sample up to index ``k`` taken, band b reads the tone of peak ``amp`` and its
+    alarm is in danger, whatever the store is doing."""
+    svc.wait(lambda: svc.channel("a")["counters"]["samples"] == k or None, "all samples")
+    # band RMS of a sine: A/√2 (REFERENCES.md); the exponential average has settled
+    assert svc.get("channels/a/bands")["bands"][0]["value"] == pytest.approx(
+        amp / math.sqrt(2), rel=0.02)
+    alarms = svc.wait(lambda: [a for a in svc.get("alarms") if a["state"] == "danger"]
+                      or None, "the alarm in danger")
+    assert [a["rule"] for a in alarms] == ["a.band.b"]
+    assert metric(svc, "quaver_store_ok") == 0.0
+
+
+@pytest.fixture
+def namespaces() -> None:
     why = namespaces_work()
     if why is not None:
         pytest.skip(why)
+
+
+@pytest.mark.usefixtures("namespaces")
+def test_a_read_only_data_folder_is_reported_and_monitoring_goes_on(tmp_path: Path) -> None:
     with service_in_namespace(tmp_path, "ro") as (svc, _), \
             socket.create_connection((LOOPBACK, svc.ports["s"]), timeout=10) as sock:
         store = degraded(svc)["store"]  # the store cannot even open its database
@@ -137,21 +155,13 @@ def test_a_read_only_data_folder_is_reported_and_monitoring_goes_on(tmp_path: Pa
         # SQLite's words for a database it cannot create (sqlite.org/rescode.html)
         assert "unable to open database file" in store["last_error"], store
         k = feed(sock, 0, int(8 * FS), 2.0)  # 1.41 g RMS in band b: over danger (1.0)
-        svc.wait(lambda: svc.channel("a")["counters"]["samples"] == k or None, "all samples")
-        # band RMS of a sine: A/√2 (REFERENCES.md); the exponential average has settled
-        assert svc.get("channels/a/bands")["bands"][0]["value"] == pytest.approx(
-            2.0 / math.sqrt(2), rel=0.02)
-        alarms = svc.wait(lambda: svc.get("alarms") or None, "the alarm")
-        assert [(a["rule"], a["state"]) for a in alarms] == [("a.band.b", "danger")]
-        assert metric(svc, "quaver_store_ok") == 0.0
+        monitoring_goes_on(svc, k, 2.0)
         assert metric(svc, "quaver_store_write_errors_total") >= 1
         assert svc.alive()
 
 
+@pytest.mark.usefixtures("namespaces")
 def test_a_full_disk_keeps_monitoring_loses_nothing_stored_and_recovers(tmp_path: Path) -> None:
-    why = namespaces_work()
-    if why is not None:
-        pytest.skip(why)
     with service_in_namespace(tmp_path, "full") as (svc, trigger), \
             socket.create_connection((LOOPBACK, svc.ports["s"]), timeout=10) as sock:
         k = feed(sock, 0, int(8 * FS), 0.8)  # 0.57 g RMS in band b: over alert (0.5)
@@ -165,14 +175,7 @@ def test_a_full_disk_keeps_monitoring_loses_nothing_stored_and_recovers(tmp_path
         assert not store["ok"] and store["write_errors"] >= 1
         # SQLite's words for ENOSPC (sqlite.org/rescode.html: SQLITE_FULL)
         assert "database or disk is full" in store["last_error"], store
-        # monitoring goes on: every sample taken, the values follow, the alarm escalates
-        svc.wait(lambda: svc.channel("a")["counters"]["samples"] == k or None, "all samples")
-        assert svc.get("channels/a/bands")["bands"][0]["value"] == pytest.approx(
-            2.0 / math.sqrt(2), rel=0.02)
-        alarms = svc.wait(lambda: [a for a in svc.get("alarms") if a["state"] == "danger"]
-                          or None, "the escalation")
-        assert [a["rule"] for a in alarms] == ["a.band.b"]
-        assert metric(svc, "quaver_store_ok") == 0.0
+        monitoring_goes_on(svc, k, 2.0)  # every sample, the values follow, the escalation
         # what was stored before is all still there
         assert [e["id"] for e in svc.get("events")["events"]] == [e["id"] for e in first]
 
