@@ -151,13 +151,26 @@ class ProfilePlan:
 def plan_profiles(cfg: Config, channel_id: str, fs_in: float) -> list[ProfilePlan]:
     """The profiles of one channel (primary first) on a stream of ``fs_in`` Hz.
 
-    Raises ValueError when a profile's Fmax is above fs_in/2.56."""
+    A profile whose Fmax is above fs_in/2.56 (possible only where the config could not know
+    the rate, e.g. a WAV file's) runs undecimated to fs_in/2.56, with a note saying so."""
     ch = channel_settings(cfg, channel_id)
     out = []
     for i, name in enumerate(profiles_of(cfg, channel_id)):
         settings = effective_analysis(cfg, channel_id, name)
-        chain = plan_chain(fs_in, settings.fmax_hz)
-        exact = not chain.note or chain.note.startswith("no decimation: fs_in = 2.56")
+        top = fs_in / FMAX_RATIO
+        if settings.fmax_hz > top * (1 + 1e-9):
+            # a stream slower than the config expected (a WAV file's own rate): show what
+            # it holds rather than refuse to run
+            chain = plan_chain(fs_in, top)
+            notes: tuple[str, ...] = (
+                f"fmax_hz={settings.fmax_hz:g} is above this {fs_in:g} Hz stream's "
+                f"fs/2.56 = {top:g} Hz; the spectrum reaches {top:g} Hz",
+            )
+            exact = False
+        else:
+            chain = plan_chain(fs_in, settings.fmax_hz)
+            exact = not chain.note or chain.note.startswith("no decimation: fs_in = 2.56")
+            notes = (chain.note,)
         fs = chain.fs_out
         bands = tuple(bands_for(cfg, channel_id, name))
         tones = tuple(tones_for(cfg, channel_id, name))
@@ -165,7 +178,8 @@ def plan_profiles(cfg: Config, channel_id: str, fs_in: float) -> list[ProfilePla
         res = analysis_spec(
             settings, fs, input_unit=ch.input_unit, bands=(*bands, overall), tones=tones
         )
-        notes = res.notes if exact else (chain.note,)
+        if exact:
+            notes = res.notes
         out.append(
             ProfilePlan(
                 channel=channel_id, name=name, primary=i == 0, settings=settings,

@@ -153,6 +153,18 @@ def test_a_non_integer_ratio_decimates_to_the_next_higher_fmax_and_says_so() -> 
     assert n.notes and "next higher Fmax, 500 Hz (asked 450 Hz)" in n.notes[0]
 
 
+def test_a_stream_slower_than_the_config_expects_runs_to_its_own_fmax() -> None:
+    # a WAV file's rate is only known when it is opened: 8 kHz against fmax_hz 5000
+    cfg = parse_config(base(), env={})
+    wide, narrow = plan_profiles(cfg, "a", 8000.0)
+    assert (wide.factor, wide.fmax_hz) == (1, 3125.0)  # 8000/2.56 (common practice)
+    assert wide.notes == ("fmax_hz=5000 is above this 8000 Hz stream's fs/2.56 = 3125 Hz; "
+                          "the spectrum reaches 3125 Hz",)
+    # 8000/(2.56·500) = 6.25: decimated by 6 to 1333.3 Hz, Fmax 520.8 Hz, said in the note
+    assert (narrow.factor, round(narrow.fmax_hz, 1)) == (6, 520.8)
+    assert "next higher Fmax" in narrow.notes[0]
+
+
 def run_bank(bank: ProfileBank, x: np.ndarray, blocks: list[int], first: int = 0) -> None:
     k = 0
     for size in blocks:
