@@ -291,8 +291,7 @@ class Analyzer:
             weights, _ = self.avg.frame_weights(n_new)
             folded = self.bank.push_power(block, weights, lines=self.q)
             count, start, tones = folded.count, folded.start, folded.tones
-            if count:
-                self.avg.update_weighted(folded.power, count)
+            self.avg.update_weighted(folded.power, count)
         else:
             batch = self.bank.push(block)
             count, start, tones = batch.count, batch.start, batch.tones

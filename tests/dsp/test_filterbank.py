@@ -136,15 +136,20 @@ def _dft64(fb, x, start, f_hz):
     return np.sum(fb.w * seg * np.exp(-2j * np.pi * f_hz * k / fb.grid.fs))
 
 
-@pytest.mark.parametrize("overlap", [0.0, 0.5, 0.75, 0.875])
-def test_block_tones_equal_the_float64_dft(overlap):
-    # Hop divides N: tones come from hop-long blocks of raw samples, products kept across
-    # pushes. Reference: the definition evaluated directly in float64 for every frame.
+@pytest.mark.parametrize("overlap,window,rank", [
+    (0.0, "hann", 1), (0.5, "hann", 2), (0.75, "hann", 3), (0.875, "hann", 3),
+    (0.75, "rectangular", 1), (0.875, "blackman-harris", 7), (0.75, "kaiser", 4),
+    (0.75, "flattop", 4)])
+def test_block_tones_equal_the_float64_dft(overlap, window, rank):
+    # Hop divides N: tones come from hop-long blocks of raw samples against a basis of the
+    # window's pieces (rank: a cosine sum of m terms spans 2m − 1 functions, Harris 1978),
+    # products kept across pushes. Reference: the definition in float64 for every frame.
     fs, n = 4096.0, 1024
     grid = FrameGrid.from_n(n, fs, overlap=overlap)
     assert n % grid.hop == 0
     f_tone = np.array([[101.37, 640.0, 1999.9], [333.3, 1000.01, 12.5], [101.37, 640.0, 1999.9]])
-    fb = FilterBank(grid, 3, "hann", tone_hz=f_tone)  # two kernel groups
+    fb = FilterBank(grid, 3, window, tone_hz=f_tone)  # two kernel groups
+    assert fb._window_basis[0].shape[0] == rank
     x = _signal(c=3, n=9000, fs=fs, seed=7)
     parts = [fb.push(p) for p in np.split(x, [100, 1500, 1501, 4000, 7777], axis=1)]
     starts = np.concatenate([p.start for p in parts])
