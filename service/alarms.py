@@ -591,6 +591,41 @@ class AlarmEngine:
             self._by_channel.setdefault(r.channel, []).append(a)
         self._faulted: set[str] = set()
 
+    def replace_rules(self, rules: Iterable[Rule]) -> dict[str, list[str]]:
+        """Swap in a new rule set (a config reload); returns the rule ids ``added``,
+        ``changed``, ``removed`` and ``kept``.
+
+        A rule whose id stays keeps its state (active, latched, acknowledged) and meets its
+        new definition at the next frame; if its definition changed, pending on/off delays
+        restart (and a changed baseline is learned again). A removed rule is dropped with
+        its state, active or not; the caller says so."""
+        new = list(rules)
+        ids = [r.id for r in new]
+        if len(set(ids)) != len(ids):
+            twice = sorted({i for i in ids if ids.count(i) > 1})
+            raise ValueError(f"rule ids given twice: {', '.join(twice)}")
+        out: dict[str, list[str]] = {"added": [], "changed": [], "removed": [], "kept": []}
+        alarms: dict[str, _Alarm] = {}
+        by_channel: dict[str, list[_Alarm]] = {}
+        for r in new:
+            a = self._alarms.get(r.id)
+            if a is None:
+                a = _Alarm(r)
+                out["added"].append(r.id)
+            elif a.rule != r:
+                if a.rule.baseline != r.baseline:
+                    a.base = None
+                a.rule = r
+                a.reset_pending()
+                out["changed"].append(r.id)
+            else:
+                out["kept"].append(r.id)
+            alarms[r.id] = a
+            by_channel.setdefault(r.channel, []).append(a)
+        out["removed"] = [i for i in self._alarms if i not in alarms]
+        self._alarms, self._by_channel = alarms, by_channel
+        return out
+
     @property
     def rules(self) -> list[Rule]:
         return [a.rule for a in self._alarms.values()]

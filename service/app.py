@@ -14,12 +14,20 @@ import tomllib
 from collections.abc import Callable
 from importlib import resources
 from pathlib import Path
+from typing import Any
 
 import uvicorn
 
 from .alarms import AlarmEngine, AlarmEvent, rules_from_config
 from .api import create_app
-from .config import Config, parse_config, parse_listen
+from .config import (
+    Config,
+    ConfigError,
+    check_listen_allowed,
+    load_config,
+    parse_config,
+    parse_listen,
+)
 from .hub import Hub
 from .pipeline import SourcePipeline, channel_states
 from .profiles import ProfileBank
@@ -31,6 +39,14 @@ from .types import SpectralFrame
 log = logging.getLogger("quaver")
 
 
+class ReloadRefused(Exception):
+    """A reload that changed nothing: ``status`` (409 or 422), ``reason``, ``problems``."""
+
+    def __init__(self, status: int, reason: str, problems: list[str] | None = None) -> None:
+        super().__init__(reason)
+        self.status, self.reason, self.problems = status, reason, list(problems or [])
+
+
 class Service:
     """Sources, one pipeline task each, the alarm engine, the store and the hub.
 
@@ -40,8 +56,10 @@ class Service:
     from the source's pipeline and stored as evidence with the spectrum of that moment.
     """
 
-    def __init__(self, cfg: Config) -> None:
+    def __init__(self, cfg: Config, config_path: str | Path | None = None) -> None:
         self.cfg = cfg
+        self.config_path = None if config_path is None else Path(config_path)
+        self.http_app: Any = None
         self.hub = Hub()
         self.pipelines: list[SourcePipeline] = []
         self.tasks: list[asyncio.Task[None]] = []
@@ -63,6 +81,7 @@ class Service:
                     evidence_s=(cfg.service.evidence_before_s, cfg.service.evidence_after_s),
                 )
             )
+        self.channel_ids = all_ids
         self.alarms = AlarmEngine(rules_from_config(cfg, channels=all_ids))
         max_bytes = None if cfg.service.max_db_mb is None else int(cfg.service.max_db_mb * 2**20)
         self.store = Store(
@@ -119,9 +138,70 @@ class Service:
         await asyncio.to_thread(self.store.close)
 
     def app(self):  # type: ignore[no-untyped-def]
-        return create_app(
+        self.http_app = create_app(
             self.hub, config=self.cfg, service=self, lifespan_hooks=(self.start, self.stop)
         )
+        return self.http_app
+
+    # -- configuration reload ----------------------------------------------------------
+    async def reload(self) -> dict[str, Any]:
+        """Re-read the config file and apply its ``[[alarms]]`` and ``[[tokens]]``.
+
+        Everything else (sources, channels, analysis, profiles, bands, tones, service) needs
+        a restart: if any of it changed, or the file is not valid, nothing is applied
+        (:class:`ReloadRefused` says why). Alarm rules that stay keep their state; the new
+        alarm state is committed to the store before the reload answers."""
+        if self.config_path is None:
+            raise ReloadRefused(409, "this service was started without a config file (the "
+                                "demo has none); there is nothing to reload")
+        try:
+            new = await asyncio.to_thread(load_config, self.config_path)
+            check_listen_allowed(new)
+        except ConfigError as e:
+            raise ReloadRefused(422, f"{self.config_path}: nothing applied", e.problems) from None
+        live = {"alarms", "tokens"}
+        before, after = self.cfg.model_dump(exclude=live), new.model_dump(exclude=live)
+        fixed = [k for k in before if before[k] != after.get(k)]
+        if fixed:
+            raise ReloadRefused(
+                409, f"changes to {', '.join(fixed)} need a restart; nothing applied"
+            )
+        try:
+            rules = rules_from_config(new, channels=self.channel_ids)
+        except ValueError as e:
+            raise ReloadRefused(422, f"{self.config_path}: nothing applied", [str(e)]) from None
+        active = {v.rule for v in self.alarms.active()}
+        diff = self.alarms.replace_rules(rules)
+        self.cfg = self.cfg.model_copy(update={"alarms": new.alarms, "tokens": new.tokens})
+        if self.http_app is not None:
+            self.http_app.state.config = self.cfg
+        try:
+            await asyncio.wrap_future(self.store.put_events([], alarm_state=self.alarms.snapshot()))
+        except Exception as err:  # the store failing must not undo the reload
+            self.store_errors += 1
+            log.error("could not store the alarm state after a reload: %s", err)
+        dropped = sorted(active & set(diff["removed"]))
+        log.info(
+            "config reloaded from %s: alarm rules +%d ~%d -%d (%d kept), %d token(s)%s",
+            self.config_path, len(diff["added"]), len(diff["changed"]), len(diff["removed"]),
+            len(diff["kept"]), len(new.tokens),
+            f"; active alarms dropped with their rules: {', '.join(dropped)}" if dropped else "",
+        )
+        return {
+            "config": str(self.config_path),
+            "alarm_rules": {k: diff[k] for k in ("added", "changed", "removed")},
+            "alarm_rules_kept": len(diff["kept"]),
+            "active_alarms_dropped": dropped,
+            "tokens": len(new.tokens),
+        }
+
+    async def reload_logged(self) -> None:
+        """SIGHUP: reload, and log (rather than raise) why it was refused."""
+        try:
+            await self.reload()
+        except ReloadRefused as e:
+            log.error("config reload refused: %s%s", e.reason,
+                      "".join(f"\n  {p}" for p in e.problems))
 
     # -- per block ---------------------------------------------------------------------
     async def on_frames(
@@ -233,11 +313,16 @@ def demo_config(
 
 
 async def serve(
-    cfg: Config, *, announce: Callable[[str], None] = print, started: asyncio.Event | None = None
+    cfg: Config,
+    *,
+    announce: Callable[[str], None] = print,
+    started: asyncio.Event | None = None,
+    config_path: str | Path | None = None,
 ) -> None:
-    """Run the HTTP server and the pipelines until cancelled or signalled."""
+    """Run the HTTP server and the pipelines until cancelled or signalled (SIGHUP: reload
+    the config file's alarms and tokens)."""
     host, port = parse_listen(cfg.service.listen)
-    service = Service(cfg)
+    service = Service(cfg, config_path)
     config = uvicorn.Config(
         service.app(), host=host, port=port, log_level="warning", access_log=False, lifespan="on"
     )
@@ -247,9 +332,20 @@ async def serve(
     # signal after shutting down, which a service manager reads as a crash.
     server.capture_signals = contextlib.nullcontext  # type: ignore[method-assign,assignment]
     loop = asyncio.get_running_loop()
-    for sig in (signal.SIGINT, signal.SIGTERM):
+    reloads: set[asyncio.Task[None]] = set()
+
+    def on_hup() -> None:
+        task = asyncio.create_task(service.reload_logged())
+        reloads.add(task)
+        task.add_done_callback(reloads.discard)
+
+    for sig, handler in (
+        (signal.SIGINT, lambda: setattr(server, "should_exit", True)),
+        (signal.SIGTERM, lambda: setattr(server, "should_exit", True)),
+        (signal.SIGHUP, on_hup),
+    ):
         try:
-            loop.add_signal_handler(sig, lambda: setattr(server, "should_exit", True))
+            loop.add_signal_handler(sig, handler)
         except (NotImplementedError, RuntimeError):  # not the main thread (tests)
             pass
     task = asyncio.create_task(server.serve())
@@ -265,13 +361,19 @@ async def serve(
     await task
 
 
-def run_service(cfg: Config, *, announce: Callable[[str], None] = print) -> int:
-    """Blocking entry point for ``quaver serve`` and ``quaver demo``; returns an exit code."""
+def run_service(
+    cfg: Config,
+    *,
+    announce: Callable[[str], None] = print,
+    config_path: str | Path | None = None,
+) -> int:
+    """Blocking entry point for ``quaver serve`` and ``quaver demo``; returns an exit code.
+    ``config_path`` is the file ``cfg`` came from (what a reload re-reads)."""
     logging.basicConfig(
         level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s: %(message)s"
     )
     try:
-        asyncio.run(serve(cfg, announce=announce))
+        asyncio.run(serve(cfg, announce=announce, config_path=config_path))
     except KeyboardInterrupt:
         pass
     except OSError as e:  # e.g. the port is taken

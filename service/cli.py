@@ -257,7 +257,8 @@ def cmd_serve(args: argparse.Namespace) -> int:
         cfg = _load(args.config)
     except ConfigError as e:
         return _config_error(e)
-    return int(_app().run_service(cfg, announce=lambda s: print(s, flush=True)))
+    return int(_app().run_service(cfg, announce=lambda s: print(s, flush=True),
+                                  config_path=args.config))
 
 
 def _source_fs(src: Any, cfg: Config, ch: str) -> tuple[float, str]:

@@ -456,7 +456,9 @@ class AlarmConfig(_Model):
 
 class TokenConfig(_Model):
     name: Name = _d("Who holds the token (for logs).")
-    role: Role = _d("viewer (read) | operator (also acknowledge alarms) | admin.")
+    role: Role = _d(
+        "viewer (read) | operator (also acknowledge alarms) | admin (also reload the config)."
+    )
     sha256: Annotated[str, AfterValidator(str.lower)] = Field(
         pattern=SHA256_PATTERN,
         description="Hex SHA-256 of the token (the token itself is never stored); "

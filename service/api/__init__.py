@@ -19,7 +19,7 @@ import web
 from .. import __version__
 from ..config import Config
 from ..hub import Hub
-from . import alarms, channels, health, metrics, security, stream, trends, windows
+from . import admin, alarms, channels, health, metrics, security, stream, trends, windows
 
 
 def create_app(
@@ -82,6 +82,7 @@ def create_app(
     app.include_router(windows.router, prefix="/api/v1")
     app.include_router(alarms.router, prefix="/api/v1")
     app.include_router(trends.router, prefix="/api/v1")
+    app.include_router(admin.router, prefix="/api/v1")
     app.include_router(metrics.router)
     app.state.check_websocket = security.check_websocket
     web_dir = Path(web.__file__).parent  # the installed package's files, not the working dir

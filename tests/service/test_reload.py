@@ -1,0 +1,163 @@
+"""Reloading the config of a running service (POST /api/v1/admin/reload and SIGHUP): alarm
+levels and tokens change live, alarm state is kept, anything else is refused untouched.
+
+Talks to the service only through its config file, signals and HTTP API."""
+
+from __future__ import annotations
+
+import copy
+import hashlib
+import math
+import signal
+import socket
+import tomllib
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import httpx
+import numpy as np
+import pytest
+from conftest import RunningService, run_service, to_toml
+
+from service.wire import encode_frame
+
+LOOPBACK = "127.0.0.1"
+FS = 2560.0  # Hz = 2.56 × 1 kHz (common practice)
+BLOCK = 256
+
+
+def token(name: str, role: str) -> dict[str, str]:
+    return {"name": name, "role": role,
+            "sha256": hashlib.sha256(f"tok-{name}".encode()).hexdigest()}
+
+
+def auth(name: str) -> dict[str, str]:
+    return {"Authorization": f"Bearer tok-{name}"}
+
+
+CONFIG: dict[str, Any] = {
+    "analysis": {"fmax_hz": 1000.0, "lines": 400, "averaging": "exponential", "averages": 2,
+                 "unit": "acceleration", "output_unit": "g", "amplitude": "peak"},
+    "sources": [{"id": "s", "kind": "tcp", "listen": "auto", "format": "framed",
+                 "sample_rate_hz": FS, "channels": ["a"]}],
+    "bands": [{"name": "b", "lo_hz": 100.0, "hi_hz": 150.0}],
+    "alarms": [{"channel": "a", "band": "b", "alert": 0.5, "danger": 1.0, "latch": True}],
+    "tokens": [token("ada", "admin"), token("otto", "operator")],
+}
+
+
+@pytest.fixture(scope="module")
+def svc(tmp_path_factory: pytest.TempPathFactory) -> Iterator[RunningService]:
+    with run_service(copy.deepcopy(CONFIG), tmp_path_factory.mktemp("reload")) as s:
+        x = (0.8 * np.sin(2 * np.pi * 123.0 * np.arange(int(6 * FS)) / FS))[None, :]
+        with socket.create_connection((LOOPBACK, s.ports["s"]), timeout=10) as sock:
+            for k in range(0, x.shape[1], BLOCK):  # 0.57 g RMS in band b: over alert 0.5
+                sock.sendall(encode_frame(x[:, k:k + BLOCK].astype(np.float32), "f32le", FS, k))
+        s.wait(lambda: s.channel("a")["counters"]["samples"] == x.shape[1] or None,
+               "every sample taken")
+        s.wait(lambda: s.get("alarms") or None, "the alert")
+        yield s
+
+
+def rewrite(svc: RunningService, **changes: Any) -> None:
+    """Write the running service's config file again with some top-level tables replaced."""
+    written = tomllib.loads(svc.config_path.read_text(encoding="utf-8"))
+    doc = {**copy.deepcopy(CONFIG), "service": written["service"], "sources": written["sources"]}
+    doc.update(copy.deepcopy(changes))
+    svc.config_path.write_text(to_toml(doc), encoding="utf-8")
+
+
+def reload(svc: RunningService, who: str | None = "ada") -> httpx.Response:
+    return svc.client.post("/api/v1/admin/reload", headers=auth(who) if who else None)
+
+
+def alarm(svc: RunningService) -> dict[str, Any]:
+    (a,) = svc.get("alarms", all="true")
+    return a  # type: ignore[no-any-return]
+
+
+def test_only_an_admin_may_reload(svc: RunningService) -> None:
+    assert reload(svc, None).status_code == 401
+    assert reload(svc, "nobody").status_code == 401
+    r = reload(svc, "otto")
+    assert r.status_code == 403 and "this needs 'admin'" in r.json()["detail"]
+
+
+def test_new_levels_apply_live_and_the_alarm_keeps_its_state(svc: RunningService) -> None:
+    assert (alarm(svc)["state"], alarm(svc)["alert"]) == ("alert", 0.5)
+    rewrite(svc, alarms=[{"channel": "a", "band": "b", "alert": 0.4, "danger": 0.55,
+                          "latch": True}])
+    r = reload(svc)
+    assert r.status_code == 200, r.text
+    body = r.json()
+    assert body["alarm_rules"] == {"added": [], "changed": ["a.band.b"], "removed": []}
+    assert (body["by"], body["tokens"], body["active_alarms_dropped"]) == ("ada", 2, [])
+    a = alarm(svc)
+    # the rule keeps its state (still active) and now holds the new levels
+    assert (a["state"], a["alert"], a["danger"]) == ("alert", 0.4, 0.55)
+    # its value (0.57 g RMS, A/√2 of 0.8 g: REFERENCES.md) is over the new danger level: the
+    # next frame escalates
+    x = (0.8 * np.sin(2 * np.pi * 123.0 * np.arange(int(6 * FS), int(8 * FS)) / FS))[None, :]
+    with socket.create_connection((LOOPBACK, svc.ports["s"]), timeout=10) as sock:
+        for k in range(0, x.shape[1], BLOCK):
+            sock.sendall(encode_frame(x[:, k:k + BLOCK].astype(np.float32), "f32le", FS,
+                                      int(6 * FS) + k))
+    a = svc.wait(lambda: alarm(svc) if alarm(svc)["state"] == "danger" else None, "danger")
+    assert a["value"] == pytest.approx(0.8 / math.sqrt(2), rel=0.02)
+
+
+def test_tokens_rotate_without_a_restart(svc: RunningService) -> None:
+    rewrite(svc, tokens=[token("ada", "admin"), token("olga", "operator")],
+            alarms=[{"channel": "a", "band": "b", "alert": 0.4, "danger": 0.55, "latch": True}])
+    assert reload(svc).status_code == 200
+    ack = svc.client.post("/api/v1/alarms/a.band.b/ack", headers=auth("otto"))
+    assert ack.status_code == 401  # the old operator token is gone
+    ack = svc.client.post("/api/v1/alarms/a.band.b/ack", headers=auth("olga"))
+    assert ack.status_code == 200 and ack.json()["acked_by"] == "olga"
+
+
+def test_a_change_that_needs_a_restart_is_refused_and_nothing_applied(
+    svc: RunningService,
+) -> None:
+    before = alarm(svc)
+    rewrite(svc, bands=[{"name": "b", "lo_hz": 90.0, "hi_hz": 150.0}],
+            alarms=[{"channel": "a", "band": "b", "alert": 0.3, "danger": 0.6}])
+    r = reload(svc)
+    assert r.status_code == 409
+    assert r.json()["detail"] == "changes to bands need a restart; nothing applied"
+    assert (alarm(svc)["alert"], alarm(svc)["danger"]) == (before["alert"], before["danger"])
+
+
+def test_an_invalid_file_is_refused_with_its_problems(svc: RunningService) -> None:
+    rewrite(svc, alarms=[{"channel": "a", "band": "b", "alert": 2.0, "danger": 1.0}])
+    r = reload(svc)
+    assert r.status_code == 422
+    detail = r.json()["detail"]
+    assert detail["reason"].endswith("nothing applied")
+    assert detail["problems"] == ["alarms[0].danger: 1 must be above alert 2"]
+
+
+def test_sighup_reloads_too(svc: RunningService) -> None:
+    rewrite(svc, tokens=[token("ada", "admin"), token("olga", "operator")],
+            alarms=[{"channel": "a", "band": "b", "alert": 0.45, "danger": 0.9, "latch": True}])
+    svc.proc.send_signal(signal.SIGHUP)
+    a = svc.wait(lambda: alarm(svc) if alarm(svc)["alert"] == 0.45 else None, "the reload")
+    assert a["danger"] == 0.9
+    assert svc.alive()
+
+
+def test_the_demo_has_no_file_to_reload(tmp_path: Path) -> None:
+    from fastapi.testclient import TestClient
+
+    from service.app import DEMO_OPERATOR_TOKEN, Service, demo_config
+
+    cfg = demo_config(data_dir=str(tmp_path))
+    admin = {"name": "root", "role": "admin", "sha256": hashlib.sha256(b"adm").hexdigest()}
+    cfg = cfg.model_copy(update={"tokens": [*cfg.tokens, type(cfg.tokens[0])(**admin)]})
+    with TestClient(Service(cfg).app()) as client:
+        r = client.post("/api/v1/admin/reload", headers={"Authorization": "Bearer adm"})
+        assert r.status_code == 409 and "without a config file" in r.json()["detail"]
+        r = client.post("/api/v1/admin/reload",
+                        headers={"Authorization": f"Bearer {DEMO_OPERATOR_TOKEN}"})
+        assert r.status_code == 403
