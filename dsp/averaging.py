@@ -142,12 +142,15 @@ class Averager:
         key = p_count
         if steady and key in self._weights:
             return self._weights[key]
-        k = self._seen + 1 + np.arange(p_count, dtype=np.float64)
-        alpha = 1.0 / np.minimum(k, self.averages)
-        keep = 1.0 - alpha
-        # y_P = y_0·Π(1−α_j) + Σ_p α_p·Π_{j>p}(1−α_j)·x_p  — weights from a suffix product.
-        suffix = np.append(np.cumprod(keep[::-1])[::-1][1:], 1.0)
-        out = (alpha * suffix, float(np.prod(keep)))
+        # y_P = y_0·Π(1−α_j) + Σ_p α_p·Π_{j>p}(1−α_j)·x_p — weights from a suffix product,
+        # in plain floats: a push brings a few frames, and array calls would cost more.
+        weights = [0.0] * p_count
+        suffix = 1.0
+        for p in range(p_count - 1, -1, -1):
+            alpha = 1.0 / min(self._seen + 1 + p, self.averages)
+            weights[p] = alpha * suffix
+            suffix *= 1.0 - alpha
+        out = (np.array(weights), suffix)
         if steady:
             self._weights[key] = out
         return out
