@@ -159,7 +159,8 @@ def test_an_unknown_profile_is_a_404_naming_the_profiles(fed: Any) -> None:
     for path in ("spectrum", "bands", "tones", "trend"):
         r = httpx.get(f"{svc.base_url}/api/v1/channels/a/{path}", params={"profile": "zoom"})
         assert r.status_code == 404, (path, r.text)
-        assert r.json()["detail"] == "channel 'a' has no profile 'zoom' (profiles: 'wide', 'narrow')"
+        assert r.json()["detail"] == (
+            "channel 'a' has no profile 'zoom' (profiles: 'wide', 'narrow')")
 
 
 def test_websocket_clients_get_the_profile_they_asked_for(fed: Any) -> None:
@@ -199,3 +200,18 @@ def test_metrics_carry_the_profile_label(fed: Any) -> None:
     assert float(line.rsplit(" ", 1)[1]) == pytest.approx(A_1X / math.sqrt(2), rel=5e-3)
     assert any(ln.startswith("quaver_band{") and 'profile="wide"' in ln and 'band="hf"' in ln
                for ln in text.splitlines())
+
+
+def test_a_subscription_naming_an_unknown_profile_gets_an_error(fed: Any) -> None:
+    svc, _, _ = fed
+    url = f"ws://{LOOPBACK}:{svc.http_port}/api/v1/stream"
+    with connect(url, proxy=None, open_timeout=10) as ws:
+        assert json.loads(ws.recv(timeout=10))["kind"] == "hello"
+        for bad, reason in ((["zoom"], "unknown profiles ['zoom']; known: ['narrow', 'wide']"),
+                            ("narrow", "profiles must be a list of names or '*'")):
+            ws.send(json.dumps({"subscribe": {"channels": ["a"], "profiles": bad}}))
+            for _ in range(20):  # status messages may come first
+                msg = json.loads(ws.recv(timeout=10))
+                if msg["kind"] == "error":
+                    break
+            assert msg["kind"] == "error" and reason in msg["reason"], msg
