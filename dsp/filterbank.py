@@ -461,14 +461,16 @@ class FilterBank:
         return FrameBatch(start=self._consume(p_count), spectra=spectra, tones=tones)
 
     def _window_table(self, weights: np.ndarray) -> np.ndarray:
-        """[P, N] float32: √a_p·w[k], cached (steady-state weights repeat every push)."""
+        """[P, N] float32: √a_p·w[k], cached for a few frames a push (steady-state weights
+        repeat every push; a long block's table is made once and not kept)."""
         key = (weights.size, weights.tobytes())
         table = self._tables.get(key)
         if table is None:
             table = np.sqrt(weights).astype(np.float32)[:, None] * self._w32
-            if len(self._tables) > 16:
-                self._tables.clear()
-            self._tables[key] = table
+            if weights.size <= 16:
+                if len(self._tables) > 16:
+                    self._tables.clear()
+                self._tables[key] = table
         return table
 
     def push_power(
