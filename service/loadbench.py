@@ -245,6 +245,7 @@ class BenchPlan:
     fanout_channels: int = 64
     fanout_s: float = 15.0
     fanout_rate_hz: float = 50.0  # subscription limit; frames come at ~10 Hz per channel
+    fanout_deflate: bool = True  # clients offer permessage-deflate, as browsers do
     mem_channels: int = 4
     mem_lines: int = 400
     mem_block: int = 65536  # samples per channel per framed block
@@ -558,13 +559,15 @@ class Feeder:
 # --- WebSocket clients --------------------------------------------------------------------------
 
 
-def _ws_options() -> dict[str, Any]:
+def _ws_options(deflate: bool = True) -> dict[str, Any]:
     """Client options: no proxy (loopback; websockets >= 15 would read *_proxy variables);
-    permessage-deflate stays offered, as browsers offer it."""
+    permessage-deflate offered unless ``deflate`` is false (browsers offer it)."""
     import websockets
 
     major = int(str(getattr(websockets, "__version__", "12")).split(".")[0])
-    return {"open_timeout": 15.0, "max_size": 1 << 24, **({"proxy": None} if major >= 15 else {})}
+    return {"open_timeout": 15.0, "max_size": 1 << 24,
+            **({"proxy": None} if major >= 15 else {}),
+            **({} if deflate else {"compression": None})}
 
 
 def parse_spectrum_header(msg: bytes) -> dict[str, Any]:
@@ -618,7 +621,7 @@ class LatencyClient:
 
 
 async def _fanout(url: str, channel_sets: list[list[str]], seconds: float,
-                  rate_hz: float) -> list[dict[str, Any]]:
+                  rate_hz: float, deflate: bool = True) -> list[dict[str, Any]]:
     from websockets.asyncio.client import connect
 
     logs: list[dict[str, Any]] = [{"channels": cs, "frames": {c: [] for c in cs}, "missed": 0,
@@ -629,7 +632,7 @@ async def _fanout(url: str, channel_sets: list[list[str]], seconds: float,
 
     async def client(log: dict[str, Any]) -> None:
         try:
-            async with connect(url, **_ws_options()) as ws:
+            async with connect(url, **_ws_options(deflate)) as ws:
                 sub = {"channels": log["channels"], "kinds": ["spectrum"], "max_rate_hz": rate_hz}
                 await ws.send(json.dumps({"subscribe": sub}))
                 pending[0] -= 1
@@ -668,7 +671,8 @@ def _fanout_worker(argv: Sequence[str]) -> int:
     every client has subscribed, then, after ``seconds``, one JSON line with the logs."""
     job = json.loads(argv[0])
     t0 = os.times()
-    logs = asyncio.run(_fanout(job["url"], job["channel_sets"], job["seconds"], job["rate_hz"]))
+    logs = asyncio.run(_fanout(job["url"], job["channel_sets"], job["seconds"], job["rate_hz"],
+                               job.get("deflate", True)))
     t1 = os.times()
     print(json.dumps({"logs": logs, "cpu_s": (t1.user - t0.user) + (t1.system - t0.system)}),
           flush=True)
@@ -874,7 +878,8 @@ def fanout(plan: BenchPlan, svc: Service, feeder: Feeder, headroom: int) -> dict
     _say(f"fan-out: {len(chans)} channels, without clients, {plan.fanout_s:g} s")
     alone = _feed_step(plan, svc, feeder, sources, plan.fanout_s)
     job = {"url": svc.base.replace("http://", "ws://") + "/api/v1/stream",
-           "channel_sets": sets, "seconds": plan.fanout_s + 2.0, "rate_hz": plan.fanout_rate_hz}
+           "channel_sets": sets, "seconds": plan.fanout_s + 2.0, "rate_hz": plan.fanout_rate_hz,
+           "deflate": plan.fanout_deflate}
     _say(f"fan-out: {len(chans)} channels, {plan.fanout_clients} clients x {k} channels")
     worker = subprocess.Popen([sys.executable, "-m", "service.loadbench", json.dumps(job)],
                               cwd=REPO, env=_child_env(), stdout=subprocess.PIPE, text=True,
@@ -921,7 +926,8 @@ def fanout(plan: BenchPlan, svc: Service, feeder: Feeder, headroom: int) -> dict
     return {
         "clients": plan.fanout_clients, "channels_per_client": k, "channels_fed": len(chans),
         "subscription": {"kinds": ["spectrum"], "max_rate_hz": plan.fanout_rate_hz,
-                         "permessage_deflate": "offered (as browsers do)"},
+                         "permessage_deflate": "offered (as browsers do)" if plan.fanout_deflate
+                         else "not offered"},
         "all_connected": connected,
         "received_per_client": [c["received"] for c in clients],
         "clients_kept_up": len(kept_up),
