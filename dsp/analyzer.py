@@ -192,6 +192,7 @@ class Analyzer:
         # filter bank (FilterBank.push_power); linear ones average the interleaved squares
         # (re², im²) of every frame and add the pairs at read-out.
         self._folded = spec.averaging == "exponential"
+        self._tone_scale = 2.0 / self.info.s1**2  # tone power, as dsp.tones.tone_power
         self._pairs = spec.averaging == "linear"
         self._power_cache: dict[tuple[str, int], np.ndarray] = {}  # read-outs share one power
         self.avg = Averager(spec.averaging, spec.averages, linear_end=spec.linear_end)
@@ -302,7 +303,13 @@ class Analyzer:
                 np.square(v, out=v)
                 self.avg.update(v if self._pairs else v[..., 0::2] + v[..., 1::2])
         if count:
-            if tones.shape[2]:
+            if tones.shape[2] and self._folded:
+                # Σ_p a_p·tone_power(X_p), as one product over frames (float64).
+                tw, _ = self.tone_avg.frame_weights(count)
+                sq = np.square(tones.view(np.float32), dtype=np.float64)  # [C, P, (re², im²)]
+                tot = np.matmul(tw * self._tone_scale, sq)
+                self.tone_avg.update_weighted(tot[:, 0::2] + tot[:, 1::2], count)
+            elif tones.shape[2]:
                 self.tone_avg.update(tone_power(tones, self.info.s1))
             self.last_start = int(start[-1])
         return count
@@ -363,7 +370,8 @@ class Analyzer:
         p = self.power(unit).reshape(-1)
         e = self._edge_plan
         seg = np.add.reduceat(p, e.starts, dtype=np.float64)
-        seg[e.empty] = 0.0  # reduceat gives p[i] for an empty run
+        if e.empty.size:
+            seg[e.empty] = 0.0  # reduceat gives p[i] for an empty run
         cum = np.cumsum(seg.reshape(self.channels, -1)[:, :-1], axis=1)  # Σ_{q<i} p[q]
         at = cum.take(e.at_cum)  # at each edge, in band order (lo, hi, lo, hi, …)
         at += e.frac * p.take(e.flat_i)
@@ -371,7 +379,8 @@ class Analyzer:
         np.maximum(ms, 0.0, out=ms)
         ms /= self.info.enbw_bins
         out = np.sqrt(ms, out=ms)
-        out.reshape(-1)[e.unresolved] = np.nan
+        if e.unresolved.size:
+            out.reshape(-1)[e.unresolved] = np.nan
         return out
 
     def tones(self, unit: str | None = None, amplitude: str | None = None) -> np.ndarray:
