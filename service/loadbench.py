@@ -1117,9 +1117,30 @@ def main(*, short: bool = False, as_json: bool = False,
         plan.steps = tuple(sorted(set(int(c) for c in steps)))
     if step_s:
         plan.step_s = float(step_s)
-    report = run(plan)
+    with _interrupts():
+        report = run(plan)
     print(json.dumps(report, indent=1) if as_json else format_report(report))
     return 0
+
+
+@contextlib.contextmanager
+def _interrupts() -> Iterator[None]:
+    """SIGINT and SIGTERM raise KeyboardInterrupt in the main thread while the bench runs, so
+    the ``finally`` blocks stop the child processes (a shell may start us with SIGINT
+    ignored; a service manager sends SIGTERM)."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+
+    def stop(signum: int, frame: object) -> None:
+        raise KeyboardInterrupt
+
+    old = {sig: signal.signal(sig, stop) for sig in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        yield
+    finally:
+        for sig, handler in old.items():
+            signal.signal(sig, handler)
 
 
 if __name__ == "__main__":  # the fan-out client process (see fanout)
