@@ -322,6 +322,7 @@ _OPENER = urllib.request.build_opener(urllib.request.ProxyHandler({}))  # loopba
 
 
 def http_json(base: str, path: str) -> Any:
+    """GET ``base + path`` without proxies (time-out HTTP_TIMEOUT_S s) and decode its JSON."""
     with _OPENER.open(f"{base}{path}", timeout=HTTP_TIMEOUT_S) as r:
         return json.loads(r.read())
 
