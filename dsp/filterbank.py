@@ -55,6 +55,37 @@ _FFT_LANES = 4
 _GEMV_ROWS = 4
 
 
+def _pocketfft_r2c() -> object | None:
+    """scipy's own pocketfft entry point, which can write into a given array (scipy.fft.rfft
+    always allocates a new one), if it is there and agrees bit for bit with scipy.fft.rfft.
+    """
+    try:
+        from scipy.fft._pocketfft import pypocketfft
+
+        x = np.random.default_rng(0).standard_normal((4, 64)).astype(np.float32)
+        out = np.empty((4, 33), dtype=np.complex64)
+        pypocketfft.r2c(x, (1,), True, 0, out, 1)
+        if np.array_equal(out, scipy.fft.rfft(x, axis=-1, workers=1)):
+            return pypocketfft.r2c  # type: ignore[no-any-return]
+    except Exception:  # any change in that private module: the public path
+        pass
+    return None
+
+
+_R2C = _pocketfft_r2c()
+
+
+def _rfft_into(x: np.ndarray, out: np.ndarray) -> np.ndarray:
+    """rfft of the rows of float32 ``x`` [M, N] into complex64 ``out`` [M, N/2 + 1], one thread.
+
+    Writing into a reused array saves the allocation and its first touch (7 % of an
+    8192-point rfft of 12 rows, measured) and scipy.fft's per-call overhead (~7 µs)."""
+    if _R2C is not None:
+        return _R2C(x, (1,), True, 0, out, 1)  # type: ignore[operator, no-any-return]
+    out[...] = scipy.fft.rfft(x, axis=-1, workers=1, overwrite_x=True)
+    return out
+
+
 @dataclass(frozen=True)
 class FrameGrid:
     """Frame length ``n`` (samples), hop ``hop`` (samples) and sample rate ``fs`` (Hz)."""
@@ -228,6 +259,7 @@ class FilterBank:
         self._held = SampleBuffer(self.channels, 4 * grid.n)  # samples towards frames
         self._work = np.empty((self.channels, 0, grid.n), dtype=np.float32)  # push's frames
         self._chunk = np.zeros((0, grid.n), dtype=np.float32)  # push_power's few channels
+        self._spec = np.empty((0, grid.bins), dtype=np.complex64)  # and their rfft
         self._next_index = 0  # stream index of the sample after the last one pushed
         self._tail_start = 0  # stream index of the first held sample
         self.frames_out = 0
@@ -532,6 +564,7 @@ class FilterBank:
         rows = -(-step * p_count // _FFT_LANES) * _FFT_LANES
         if self._chunk.shape[0] < rows:
             self._chunk = np.zeros((rows, n), dtype=np.float32)
+            self._spec = np.empty((rows, self.grid.bins), dtype=np.complex64)
         sums = np.empty((step, 2 * q), dtype=np.float32)
         for c0 in range(0, c_count, step):
             c1 = min(c_count, c0 + step)
@@ -541,7 +574,7 @@ class FilterBank:
             np.multiply(frames[c0:c1], table, out=work)
             if pad > used:
                 self._chunk[used:pad] = 0.0  # the FFT may have left anything there
-            spec = scipy.fft.rfft(self._chunk[:pad], axis=-1, workers=1, overwrite_x=True)
+            spec = _rfft_into(self._chunk[:pad], self._spec[:pad])
             # Σ_p of re² and im² on the interleaved floats, then the pairs. Squaring in place
             # and adding frames beats one einsum (whose loop here is not vectorised): 23 vs
             # 29 µs for 12 frames, measured.

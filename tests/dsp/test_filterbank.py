@@ -210,6 +210,25 @@ def test_push_power_equals_the_weighted_sum_of_push(channels, overlap, window):
     assert fast.pending == ref_bank.pending and fast.frames_out == ref_bank.frames_out
 
 
+@pytest.mark.parametrize("private_path", [True, False])
+def test_rfft_into_a_reused_array_equals_scipy_rfft(monkeypatch, private_path):
+    # Reference: scipy.fft.rfft. The fused path writes into its own array through
+    # pocketfft's entry point when scipy has it, else through the public function.
+    import scipy.fft
+
+    from dsp import filterbank
+
+    if not private_path:
+        monkeypatch.setattr(filterbank, "_R2C", None)
+    elif filterbank._R2C is None:
+        pytest.skip("this scipy has no pocketfft entry point that writes into an array")
+    x = np.random.default_rng(6).normal(size=(5, 1024)).astype(np.float32)
+    out = np.full((5, 513), np.nan, np.complex64)
+    got = filterbank._rfft_into(x, out)
+    assert got is out or np.shares_memory(got, out)
+    np.testing.assert_array_equal(out, scipy.fft.rfft(x, axis=-1))
+
+
 def test_push_power_errors():
     fb = FilterBank(FrameGrid.from_n(64, 100.0, overlap=0.5), 2)
     with pytest.raises(ValueError, match=r"weights has 1 values; the block completes 2 frames"):
