@@ -96,6 +96,19 @@ class _ServiceCollector(Collector):
         for cid, v in hub.latency_s.items():
             lat.add_metric([cid], v)
         yield lat
+        subs = list(hub.subscribers)
+        clients = GaugeMetricFamily("quaver_stream_clients", "WebSocket stream clients")
+        clients.add_metric([], float(len(subs)))
+        pending = GaugeMetricFamily(
+            "quaver_stream_pending", "Frames and events waiting in the stream clients' queues"
+        )
+        pending.add_metric([], float(sum(s.pending() for s in subs)))
+        missed = GaugeMetricFamily(
+            "quaver_stream_missed",
+            "Frames and events the connected clients skipped (slow or rate-limited)",
+        )
+        missed.add_metric([], float(sum(s.missed for s in subs)))
+        yield from (clients, pending, missed)
         pub = CounterMetricFamily("quaver_frames_published", "Spectral frames published")
         pub.add_metric([], hub.frames_published)
         yield pub

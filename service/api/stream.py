@@ -20,6 +20,11 @@ The server sends:
 * text JSON messages ``{"kind": "hello" | "bands" | "tones" | "alarm" | "status" | "error",
   ...}`` whose fields match the REST resources.
 
+Until its first ``subscribe`` a client gets alarm events and status only. Each frame's
+spectrum (per unit and amplitude) and its bands/tones texts are encoded once and shared by
+every client that gets them; messages are not compressed (float32 spectra barely shrink and
+compressing them per client cost more than the rest of the stream).
+
 ``missed`` counts the frames this client skipped (its queue was full or its rate limit
 held them back). Each client has its own bounded queue; when it is full the oldest frame
 is dropped — the engine and the other clients never wait for it.
@@ -28,6 +33,7 @@ is dropped — the engine and the other clients never wait for it.
 from __future__ import annotations
 
 import asyncio
+import collections
 import json
 import logging
 import struct
@@ -87,10 +93,54 @@ class Subscription(BaseModel):
         return v
 
 
+class _Encoded:
+    """Per-frame work shared by every client that gets the frame in the same view: the
+    spectrum's values as little-endian float32 bytes, and the bands/tones JSON texts (a
+    spectrum costs a conversion and a copy; fifty clients pay for it once)."""
+
+    SIZE = 1024  # frames kept (several per channel and profile; a small LRU)
+
+    def __init__(self) -> None:
+        self._values: collections.OrderedDict[tuple[object, ...], tuple[bytes, int, str, str]]
+        self._values = collections.OrderedDict()
+        self._texts: collections.OrderedDict[tuple[object, ...], str] = collections.OrderedDict()
+
+    @staticmethod
+    def _key(frame: SpectralFrame, *extra: object) -> tuple[object, ...]:
+        return (frame.channel, frame.profile, frame.seq, id(frame), *extra)
+
+    def values(
+        self, frame: SpectralFrame, unit: str | None, amplitude: str | None
+    ) -> tuple[bytes, int, str, str]:
+        key = self._key(frame, unit, amplitude)
+        got = self._values.get(key)
+        if got is None:
+            values, u, a = spectrum_values(frame, unit, amplitude)
+            got = (values.astype("<f4").tobytes(), int(values.size), u, a)
+            self._values[key] = got
+            if len(self._values) > self.SIZE:
+                self._values.popitem(last=False)
+        return got
+
+    def text(self, frame: SpectralFrame, kind: str) -> str:
+        key = self._key(frame, kind)
+        got = self._texts.get(key)
+        if got is None:
+            payload = bands_payload(frame) if kind == "bands" else tones_payload(frame)
+            got = json.dumps({"kind": kind, **payload}, separators=(",", ":"))
+            self._texts[key] = got
+            if len(self._texts) > self.SIZE:
+                self._texts.popitem(last=False)
+        return got
+
+
+_shared = _Encoded()
+
+
 def encode_spectrum(
     frame: SpectralFrame, unit: str | None, amplitude: str | None, missed: int
 ) -> bytes:
-    values, u, a = spectrum_values(frame, unit, amplitude)
+    data, count, u, a = _shared.values(frame, unit, amplitude)
     header = json.dumps(
         {
             "kind": "spectrum",
@@ -103,20 +153,23 @@ def encode_spectrum(
             "unit": u,
             "amplitude": a,
             "averages": frame.averages,
-            "count": int(values.size),
+            "count": count,
             "missed": missed,
         },
         separators=(",", ":"),
     ).encode()
     header += b" " * (-(4 + len(header)) % 4)
-    return struct.pack("<I", len(header)) + header + values.astype("<f4").tobytes()
+    return b"".join((struct.pack("<I", len(header)), header, data))
 
 
 class _Session:
     def __init__(self, ws: WebSocket, hub: Hub) -> None:
         self.ws, self.hub = ws, hub
+        # Until the client subscribes it gets alarm events and status only, never a firehose
+        # of every channel's spectra.
+        self.spec = Subscription.model_validate({"kinds": ["alarms", "status"]})
         self.sub = hub.subscribe(None)
-        self.spec = Subscription.model_validate({})
+        self.sub.kinds = frozenset(self.spec.kinds)
         self.last_sent: dict[tuple[str, str], float] = {}
         self.held_back = 0
         # newest frame per (channel, profile) held back by the rate limit
@@ -222,9 +275,9 @@ class _Session:
                 encode_spectrum(frame, self.spec.unit, self.spec.amplitude, missed)
             )
         if "bands" in kinds:
-            await self.send_json({"kind": "bands", **bands_payload(frame)})
+            await self.ws.send_text(_shared.text(frame, "bands"))
         if "tones" in kinds:
-            await self.send_json({"kind": "tones", **tones_payload(frame)})
+            await self.ws.send_text(_shared.text(frame, "tones"))
 
 
 @router.websocket("/stream")

@@ -111,7 +111,7 @@ def fed(quaver_service_factory: Callable[[dict[str, Any]], RunningService]
         seen_narrow = spectra(narrow_ws, want=5)
         seen_default = spectra(default_ws, want=5)
     svc.wait(lambda: svc.channel("a")["counters"]["samples"] == x.shape[1] or None,
-             "every sample taken")
+             "every sample taken", timeout_s=60.0)
     return svc, seen_narrow, seen_default
 
 
