@@ -142,8 +142,10 @@ def _dft64(fb, x, start, f_hz):
     (0.75, "flattop", 4)])
 def test_block_tones_equal_the_float64_dft(overlap, window, rank):
     # Hop divides N: tones come from hop-long blocks of raw samples against a basis of the
-    # window's pieces (rank: a cosine sum of m terms spans 2m − 1 functions, Harris 1978),
-    # products kept across pushes. Reference: the definition in float64 for every frame.
+    # window's pieces, products kept across pushes. Reference: the definition in float64
+    # for every frame. Expected rank: a cosine sum of m terms spans 2m − 1 functions
+    # (1, cos, sin of each harmonic), capped by the number of pieces; Hann has m = 2 and
+    # Blackman-Harris m = 4 (Harris 1978), scipy's flattop m = 5; Kaiser is no cosine sum.
     fs, n = 4096.0, 1024
     grid = FrameGrid.from_n(n, fs, overlap=overlap)
     assert n % grid.hop == 0
