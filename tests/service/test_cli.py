@@ -104,15 +104,17 @@ def test_check_bad_config_prints_the_key_path(
 
 def _fake_app(monkeypatch: pytest.MonkeyPatch) -> dict[str, list[Any]]:
     """Stand in for service.app so serve/demo wiring is seen without running a server."""
-    calls: dict[str, list[Any]] = {"demo_config": [], "run_service": []}
+    calls: dict[str, list[Any]] = {"demo_config": [], "run_service": [], "config_path": []}
 
     def demo_config(**kw: Any) -> Any:
         calls["demo_config"].append(kw)
         return parse_config({"service": {"listen": kw["listen"] or "127.0.0.1:8750"},
                                   "sources": [{"id": "s", "kind": "simulated"}]}, env={})
 
-    def run_service(cfg: Any, *, announce: Callable[[str], None] = print) -> int:
+    def run_service(cfg: Any, *, announce: Callable[[str], None] = print,
+                    config_path: Any = None) -> int:
         calls["run_service"].append(cfg)
+        calls["config_path"].append(config_path)
         announce("started")
         return 0
 
@@ -139,6 +141,7 @@ def test_serve_with_a_bad_config_exits_2_without_starting(
     p.write_text(GOOD)
     assert cli.main(["serve", "-c", str(p)]) == 0
     assert [c.service.listen for c in calls["run_service"]] == ["127.0.0.1:8750"]
+    assert calls["config_path"] == [str(p)]  # what a reload re-reads
 
 
 def test_demo_passes_its_options_to_the_service(
