@@ -867,6 +867,21 @@ def headroom_and_latency(plan: BenchPlan, svc: Service, feeder: Feeder) -> dict[
     }
 
 
+def _stream_metrics(svc: Service) -> dict[str, float] | str:
+    """The hub's stream queues from /metrics: clients, frames/events pending, missed."""
+    try:
+        with _OPENER.open(f"{svc.base}/metrics", timeout=HTTP_TIMEOUT_S) as r:
+            text = r.read().decode()
+    except OSError as e:
+        return f"could not read /metrics: {e}"
+    out = {}
+    for line in text.splitlines():
+        for name in ("clients", "pending", "missed"):
+            if line.startswith(f"quaver_stream_{name} "):
+                out[name] = float(line.split()[1])
+    return out
+
+
 def fanout(plan: BenchPlan, svc: Service, feeder: Feeder, headroom: int) -> dict[str, Any]:
     """Phase 3: the same feed without, then with ``fanout_clients`` WebSocket clients, on
     ``fanout_channels`` or, if fewer passed the headroom search, ``headroom`` channels (so
@@ -889,6 +904,7 @@ def fanout(plan: BenchPlan, svc: Service, feeder: Feeder, headroom: int) -> dict
         connected = _read_line(worker, 40.0).strip() == "connected"
         sent_before = {sid: len(feeder.log.sends[sid]) for sid in sources}
         with_clients = _feed_step(plan, svc, feeder, sources, plan.fanout_s)
+        queues = _stream_metrics(svc)  # while the clients are still connected
         try:
             out, _ = worker.communicate(timeout=plan.fanout_s + 20.0)
         except subprocess.TimeoutExpired:
@@ -937,7 +953,7 @@ def fanout(plan: BenchPlan, svc: Service, feeder: Feeder, headroom: int) -> dict
         "unsubscribed_frames": sum(c["unsubscribed_frames"] for c in clients),
         "per_client": clients,
         "client_process_cpu_s": result.get("cpu_s"),
-        "hub_queues": "not exposed by the API; each message's `missed` is the client's count",
+        "hub_queues": queues,
         "without_clients": alone, "with_clients": with_clients,
         "cpu_per_frame_ratio": round(b / a, 3) if a and b else None,
     }
@@ -1099,7 +1115,8 @@ def format_report(r: dict[str, Any]) -> str:
             f"{100 * a['service_cpu_share']:.0f} % → {100 * b['service_cpu_share']:.0f} %; "
             f"drops {a['drops']} / {b['drops']}; client process CPU "
             f"{_f(f['client_process_cpu_s'], '.1f')} s",
-            f"  hub queues: {f['hub_queues']}"]
+            f"  hub queues (/metrics, at the end of the step): {f['hub_queues']} — at most one "
+            "frame per subscribed channel waits per client, so pending cannot grow"]
     mm = r["memory"]
     pts = ", ".join(f"{p['frames']} frames: {p['rss_mb']:.1f} MiB" for p in mm["points"])
     out += ["", f"4. memory (VmRSS) of a {mm['channels']}-channel service at {mm['lines']} lines "
