@@ -447,6 +447,34 @@ def test_disk_full_fails_the_write_keeps_running_and_recovers(store: Store) -> N
     assert store.health()["ok"] and ok.id == 2  # the failed batch's id 2 was never committed
 
 
+def test_trend_series_created_in_a_failed_write_are_written_again(store: Store) -> None:
+    store.record("m1", "overall", T0, 1.0)
+    store.flush_trends().result(WAIT_S)  # series m1/overall exists; its id is cached
+    pages = store._submit(
+        lambda c: c.execute("PRAGMA page_count").fetchone()[0], durable=False
+    ).result(WAIT_S)
+    store._submit(  # room for the new series rows, not for their trend rows
+        lambda c: c.execute(f"PRAGMA max_page_count = {pages + 100}").fetchall(), durable=False
+    ).result(WAIT_S)
+    # many new series at once: the series are inserted, then the trend rows fill the disk
+    # and the whole write is rolled back
+    for k in range(400):
+        store.record_many(f"c{k}", T0 + 20 * S, {f"band:{j}": float(j) for j in range(20)})
+    with pytest.raises(StoreError, match="database or disk is full"):
+        store.flush_trends().result(WAIT_S)
+    store._submit(
+        lambda c: c.execute("PRAGMA max_page_count = 1073741823").fetchall(), durable=False
+    ).result(WAIT_S)
+    # the same series again: their rows were rolled back, so they are created anew and the
+    # values land under the right names (no id remembered from the failed write)
+    store.record_many("c7", T0 + 40 * S, {"band:3": 3.5})
+    store.record("m1", "overall", T0 + 40 * S, 2.0)
+    store.flush_trends().result(WAIT_S)
+    assert [p[1:] for p in store.trend("c7", "band:3", T0, T0 + 60 * S, 10)] == [
+        (3.5, 3.5, 3.5, 1)]
+    assert [p[1] for p in store.trend("m1", "overall", T0, T0 + 60 * S, 10)] == [1.0, 2.0]
+
+
 def test_writes_after_close_fail_their_future(tmp_path: Path) -> None:
     st = Store(tmp_path / "q.db")
     st.start()
