@@ -4,6 +4,7 @@ Pure functions over frames; knows nothing about HTTP, sockets or the engine's st
 
 from __future__ import annotations
 
+import functools
 import io
 
 import numpy as np
@@ -26,10 +27,22 @@ def spectrum_values(
     """
     u = resolve_unit(unit or frame.unit)
     a = check_choice("amplitude", amplitude or frame.amplitude, AMPLITUDES)
-    f = frame.f0_hz + frame.df_hz * np.arange(frame.power.size)
-    w = unit_power_weights(f, frame.input_unit, u, lowcut_hz=frame.lowcut_hz)  # type: ignore[arg-type]
-    vals = amplitude_from_power(frame.power * w.astype(np.float32), a)  # type: ignore[arg-type]
-    return vals.astype(np.float32), u, a
+    w = _weights(frame.f0_hz, frame.df_hz, int(frame.power.size), frame.input_unit, u,
+                 frame.lowcut_hz)
+    vals = amplitude_from_power(frame.power * w, a)  # type: ignore[arg-type]
+    return vals.astype(np.float32, copy=False), u, a
+
+
+@functools.lru_cache(maxsize=256)
+def _weights(
+    f0_hz: float, df_hz: float, q: int, input_unit: str, unit: str, lowcut_hz: float
+) -> np.ndarray:
+    """float32 power weights input_unit² → unit² on f = f0 + q·df (read-only, cached: every
+    frame of a channel and profile has the same lines, so they are computed once)."""
+    f = f0_hz + df_hz * np.arange(q)
+    w = unit_power_weights(f, input_unit, unit, lowcut_hz=lowcut_hz).astype(np.float32)  # type: ignore[arg-type]
+    w.setflags(write=False)
+    return w
 
 
 def frequencies(frame: SpectralFrame) -> np.ndarray:
