@@ -18,6 +18,7 @@ from pathlib import Path
 from typing import Any, TypeVar
 
 import httpx
+import numpy as np
 import pytest
 
 from tests.proc import child_env
@@ -83,6 +84,40 @@ def to_toml(doc: dict[str, Any]) -> str:
             raise TypeError(f"top-level {name!r} must be a table or an array of tables")
         out.append("")
     return "\n".join(out)
+
+
+# --- a one-channel service for fault and admin tests --------------------------------------
+
+SMALL_FS = 2560.0  # Hz = 2.56 × 1 kHz (common practice: fs = 2.56·Fmax)
+
+
+def one_band_config(**tables: Any) -> dict[str, Any]:
+    """A config (as dicts, see :func:`run_service`) with one framed TCP source ``s`` of one
+    channel ``a`` at SMALL_FS, peak g, band ``b`` = 100–150 Hz and an alarm on it at 0.5 g
+    (alert) and 1.0 g (danger) RMS; ``tables`` replace or add top-level entries."""
+    doc: dict[str, Any] = {
+        "analysis": {"fmax_hz": 1000.0, "lines": 400, "averaging": "exponential",
+                     "averages": 2, "unit": "acceleration", "output_unit": "g",
+                     "amplitude": "peak"},
+        "sources": [{"id": "s", "kind": "tcp", "listen": "auto", "format": "framed",
+                     "sample_rate_hz": SMALL_FS, "channels": ["a"]}],
+        "bands": [{"name": "b", "lo_hz": 100.0, "hi_hz": 150.0}],
+        "alarms": [{"channel": "a", "band": "b", "alert": 0.5, "danger": 1.0}],
+    }
+    doc.update(tables)
+    return doc
+
+
+def feed_tone(sock: socket.socket, first: int, n: int, amp: float, block: int = 256) -> int:
+    """Send ``n`` samples of a 123 Hz sine of peak ``amp`` g (inside band b) as framed
+    blocks, stream indices from ``first``; returns the next index."""
+    from service.wire import encode_frame
+
+    t = (first + np.arange(n)) / SMALL_FS
+    x = (amp * np.sin(2 * np.pi * 123.0 * t))[None, :].astype(np.float32)
+    for k in range(0, n, block):
+        sock.sendall(encode_frame(x[:, k:k + block], "f32le", SMALL_FS, first + k))
+    return first + n
 
 
 # --- polling -------------------------------------------------------------------------------

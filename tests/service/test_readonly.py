@@ -19,15 +19,10 @@ from pathlib import Path
 from typing import Any
 
 import httpx
-import numpy as np
 import pytest
-from conftest import RunningService, run_service, wait_for
-
-from service.wire import encode_frame
+from conftest import SMALL_FS, RunningService, feed_tone, one_band_config, run_service, wait_for
 
 LOOPBACK = "127.0.0.1"
-FS = 2560.0  # Hz = 2.56 × 1 kHz (common practice)
-BLOCK = 256
 
 # Runs the service (the arguments after the first three) in a private mount namespace:
 #   mode "ro":   DATA is a read-only bind mount from the start;
@@ -71,21 +66,6 @@ def namespaces_work() -> str | None:
     return None
 
 
-CONFIG: dict[str, Any] = {
-    "analysis": {"fmax_hz": 1000.0, "lines": 400, "averaging": "exponential", "averages": 2,
-                 "unit": "acceleration", "output_unit": "g", "amplitude": "peak"},
-    "sources": [{"id": "s", "kind": "tcp", "listen": "auto", "format": "framed",
-                 "sample_rate_hz": FS, "channels": ["a"]}],
-    "bands": [{"name": "b", "lo_hz": 100.0, "hi_hz": 150.0}],
-    "alarms": [{"channel": "a", "band": "b", "alert": 0.5, "danger": 1.0}],
-}
-
-
-def tone(n: int, first: int, amp: float) -> np.ndarray:
-    t = (first + np.arange(n)) / FS
-    return (amp * np.sin(2 * np.pi * 123.0 * t))[None, :].astype(np.float32)
-
-
 @contextlib.contextmanager
 def service_in_namespace(workdir: Path, mode: str) -> Iterator[tuple[RunningService, Path]]:
     data = workdir / "quaver-data"  # the service's data_dir (relative to its config)
@@ -96,7 +76,7 @@ def service_in_namespace(workdir: Path, mode: str) -> Iterator[tuple[RunningServ
         return ["unshare", "--user", "--map-root-user", "--mount", "sh", "-c",
                 NAMESPACE_SCRIPT, "sh", mode, str(data), str(trigger), *command]
 
-    with run_service(CONFIG, workdir, wrap=wrap) as svc:
+    with run_service(one_band_config(), workdir, wrap=wrap) as svc:
         yield svc, trigger
 
 
@@ -117,13 +97,6 @@ def metric(svc: RunningService, name: str) -> float:
     text = httpx.get(f"{svc.base_url}/metrics", timeout=10).text
     line = next(ln for ln in text.splitlines() if ln.startswith(f"{name} "))
     return float(line.split()[1])
-
-
-def feed(sock: socket.socket, first: int, n: int, amp: float) -> int:
-    x = tone(n, first, amp)
-    for k in range(0, n, BLOCK):
-        sock.sendall(encode_frame(x[:, k:k + BLOCK], "f32le", FS, first + k))
-    return first + n
 
 
 def monitoring_goes_on(svc: RunningService, k: int, amp: float) -> None:
@@ -154,7 +127,7 @@ def test_a_read_only_data_folder_is_reported_and_monitoring_goes_on(tmp_path: Pa
         assert (store["ok"], store["open"]) == (False, False)
         # SQLite's words for a database it cannot create (sqlite.org/rescode.html)
         assert "unable to open database file" in store["last_error"], store
-        k = feed(sock, 0, int(8 * FS), 2.0)  # 1.41 g RMS in band b: over danger (1.0)
+        k = feed_tone(sock, 0, int(8 * SMALL_FS), 2.0)  # 1.41 g RMS in band b: over danger (1.0)
         monitoring_goes_on(svc, k, 2.0)
         assert metric(svc, "quaver_store_write_errors_total") >= 1
         assert svc.alive()
@@ -164,13 +137,13 @@ def test_a_read_only_data_folder_is_reported_and_monitoring_goes_on(tmp_path: Pa
 def test_a_full_disk_keeps_monitoring_loses_nothing_stored_and_recovers(tmp_path: Path) -> None:
     with service_in_namespace(tmp_path, "full") as (svc, trigger), \
             socket.create_connection((LOOPBACK, svc.ports["s"]), timeout=10) as sock:
-        k = feed(sock, 0, int(8 * FS), 0.8)  # 0.57 g RMS in band b: over alert (0.5)
+        k = feed_tone(sock, 0, int(8 * SMALL_FS), 0.8)  # 0.57 g RMS in band b: over alert (0.5)
         first = svc.wait(lambda: svc.get("events")["events"] or None, "the stored event")
         assert [e["to_state"] for e in first] == ["alert"]
         assert svc.health()["status"] == "ok" and metric(svc, "quaver_store_ok") == 1.0
 
         step(trigger, "fill")  # the file system is full
-        k = feed(sock, k, int(8 * FS), 2.0)  # 1.41 g RMS: over danger (1.0)
+        k = feed_tone(sock, k, int(8 * SMALL_FS), 2.0)  # 1.41 g RMS: over danger (1.0)
         store = degraded(svc)["store"]
         assert not store["ok"] and store["write_errors"] >= 1
         # SQLite's words for ENOSPC (sqlite.org/rescode.html: SQLITE_FULL)
@@ -180,7 +153,7 @@ def test_a_full_disk_keeps_monitoring_loses_nothing_stored_and_recovers(tmp_path
         assert [e["id"] for e in svc.get("events")["events"]] == [e["id"] for e in first]
 
         step(trigger, "free")  # room again: the next writes succeed
-        k = feed(sock, k, int(4 * FS), 0.1)  # quiet: the alarm clears (a new event)
+        k = feed_tone(sock, k, int(4 * SMALL_FS), 0.1)  # quiet: the alarm clears (a new event)
         svc.wait(lambda: svc.health()["status"] == "ok" or None, "the store to recover", 20.0)
         assert metric(svc, "quaver_store_ok") == 1.0
         assert svc.alive()

@@ -16,15 +16,10 @@ from pathlib import Path
 from typing import Any
 
 import httpx
-import numpy as np
 import pytest
-from conftest import RunningService, run_service, to_toml
-
-from service.wire import encode_frame
+from conftest import SMALL_FS, RunningService, feed_tone, one_band_config, run_service, to_toml
 
 LOOPBACK = "127.0.0.1"
-FS = 2560.0  # Hz = 2.56 × 1 kHz (common practice)
-BLOCK = 256
 
 
 def token(name: str, role: str) -> dict[str, str]:
@@ -36,25 +31,18 @@ def auth(name: str) -> dict[str, str]:
     return {"Authorization": f"Bearer tok-{name}"}
 
 
-CONFIG: dict[str, Any] = {
-    "analysis": {"fmax_hz": 1000.0, "lines": 400, "averaging": "exponential", "averages": 2,
-                 "unit": "acceleration", "output_unit": "g", "amplitude": "peak"},
-    "sources": [{"id": "s", "kind": "tcp", "listen": "auto", "format": "framed",
-                 "sample_rate_hz": FS, "channels": ["a"]}],
-    "bands": [{"name": "b", "lo_hz": 100.0, "hi_hz": 150.0}],
-    "alarms": [{"channel": "a", "band": "b", "alert": 0.5, "danger": 1.0, "latch": True}],
-    "tokens": [token("ada", "admin"), token("otto", "operator")],
-}
+CONFIG = one_band_config(
+    alarms=[{"channel": "a", "band": "b", "alert": 0.5, "danger": 1.0, "latch": True}],
+    tokens=[token("ada", "admin"), token("otto", "operator")],
+)
 
 
 @pytest.fixture(scope="module")
 def svc(tmp_path_factory: pytest.TempPathFactory) -> Iterator[RunningService]:
     with run_service(copy.deepcopy(CONFIG), tmp_path_factory.mktemp("reload")) as s:
-        x = (0.8 * np.sin(2 * np.pi * 123.0 * np.arange(int(6 * FS)) / FS))[None, :]
         with socket.create_connection((LOOPBACK, s.ports["s"]), timeout=10) as sock:
-            for k in range(0, x.shape[1], BLOCK):  # 0.57 g RMS in band b: over alert 0.5
-                sock.sendall(encode_frame(x[:, k:k + BLOCK].astype(np.float32), "f32le", FS, k))
-        s.wait(lambda: s.channel("a")["counters"]["samples"] == x.shape[1] or None,
+            n = feed_tone(sock, 0, int(6 * SMALL_FS), 0.8)  # 0.57 g RMS: over alert 0.5
+        s.wait(lambda: s.channel("a")["counters"]["samples"] == n or None,
                "every sample taken")
         s.wait(lambda: s.get("alarms") or None, "the alert")
         yield s
@@ -98,11 +86,8 @@ def test_new_levels_apply_live_and_the_alarm_keeps_its_state(svc: RunningService
     assert (a["state"], a["alert"], a["danger"]) == ("alert", 0.4, 0.55)
     # its value (0.57 g RMS, A/√2 of 0.8 g: REFERENCES.md) is over the new danger level: the
     # next frame escalates
-    x = (0.8 * np.sin(2 * np.pi * 123.0 * np.arange(int(6 * FS), int(8 * FS)) / FS))[None, :]
     with socket.create_connection((LOOPBACK, svc.ports["s"]), timeout=10) as sock:
-        for k in range(0, x.shape[1], BLOCK):
-            sock.sendall(encode_frame(x[:, k:k + BLOCK].astype(np.float32), "f32le", FS,
-                                      int(6 * FS) + k))
+        feed_tone(sock, int(6 * SMALL_FS), int(2 * SMALL_FS), 0.8)
     a = svc.wait(lambda: alarm(svc) if alarm(svc)["state"] == "danger" else None, "danger")
     assert a["value"] == pytest.approx(0.8 / math.sqrt(2), rel=0.02)
 
