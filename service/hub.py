@@ -77,10 +77,25 @@ class Subscriber:
     def pending(self) -> int:
         return len(self.frames) + len(self.events)
 
-    async def get(self) -> SpectralFrame | dict[str, object]:
-        while not (self.events or self.frames):
-            self._wake.clear()
-            await self._wake.wait()
+    async def get(self, timeout: float | None = None) -> SpectralFrame | dict[str, object]:
+        """The next event (first) or frame; waits at most ``timeout`` s (TimeoutError).
+
+        Returns at once, without any task or timer, while items are pending; the time-out
+        is a plain timer on the wake-up (asyncio.wait_for would wrap every call in a task,
+        which the stream paid for once per message)."""
+        if not (self.events or self.frames):
+            handle = None
+            if timeout is not None:
+                handle = asyncio.get_running_loop().call_later(timeout, self._wake.set)
+            try:
+                while not (self.events or self.frames):
+                    self._wake.clear()
+                    if handle is not None and handle.when() <= asyncio.get_running_loop().time():
+                        raise TimeoutError
+                    await self._wake.wait()
+            finally:
+                if handle is not None:
+                    handle.cancel()
         if self.events:
             return self.events.popleft()
         key = next(iter(self.frames))

@@ -240,7 +240,7 @@ class _Session:
             if self.held:
                 timeout = min(timeout, max(0.0, min(self._due(c) for c in self.held) - now))
             try:
-                item = await asyncio.wait_for(self.sub.queue.get(), timeout=timeout)
+                item = await self.sub.queue.get(timeout=timeout)
             except TimeoutError:
                 for key in [k for k in self.held if self._due(k) <= time.monotonic()]:
                     await self._send_frame(self.held.pop(key))
