@@ -107,7 +107,9 @@ class _Encoded:
 
     @staticmethod
     def _key(frame: SpectralFrame, *extra: object) -> tuple[object, ...]:
-        return (frame.channel, frame.profile, frame.seq, id(frame), *extra)
+        # unique within one service: a channel belongs to one source, whose pipeline numbers
+        # its frames (one cache per app, so two services in a process never meet)
+        return (frame.channel, frame.profile, frame.seq, *extra)
 
     def values(
         self, frame: SpectralFrame, unit: str | None, amplitude: str | None
@@ -133,14 +135,17 @@ class _Encoded:
                 self._texts.popitem(last=False)
         return got
 
+    def spectrum(
+        self, frame: SpectralFrame, unit: str | None, amplitude: str | None, missed: int
+    ) -> bytes:
+        """The binary spectrum message (module docstring) with this client's ``missed``."""
+        data, count, u, a = self.values(frame, unit, amplitude)
+        return _spectrum_message(frame, u, a, count, missed, data)
 
-_shared = _Encoded()
 
-
-def encode_spectrum(
-    frame: SpectralFrame, unit: str | None, amplitude: str | None, missed: int
+def _spectrum_message(
+    frame: SpectralFrame, u: str, a: str, count: int, missed: int, data: bytes
 ) -> bytes:
-    data, count, u, a = _shared.values(frame, unit, amplitude)
     header = json.dumps(
         {
             "kind": "spectrum",
@@ -163,8 +168,8 @@ def encode_spectrum(
 
 
 class _Session:
-    def __init__(self, ws: WebSocket, hub: Hub) -> None:
-        self.ws, self.hub = ws, hub
+    def __init__(self, ws: WebSocket, hub: Hub, encoded: _Encoded) -> None:
+        self.ws, self.hub, self.encoded = ws, hub, encoded
         # Until the client subscribes it gets alarm events and status only, never a firehose
         # of every channel's spectra.
         self.spec = Subscription.model_validate({"kinds": ["alarms", "status"]})
@@ -272,12 +277,12 @@ class _Session:
         missed = self.sub.missed + self.held_back
         if "spectrum" in kinds:
             await self.ws.send_bytes(
-                encode_spectrum(frame, self.spec.unit, self.spec.amplitude, missed)
+                self.encoded.spectrum(frame, self.spec.unit, self.spec.amplitude, missed)
             )
         if "bands" in kinds:
-            await self.ws.send_text(_shared.text(frame, "bands"))
+            await self.ws.send_text(self.encoded.text(frame, "bands"))
         if "tones" in kinds:
-            await self.ws.send_text(_shared.text(frame, "tones"))
+            await self.ws.send_text(self.encoded.text(frame, "tones"))
 
 
 @router.websocket("/stream")
@@ -287,7 +292,10 @@ async def stream(ws: WebSocket) -> None:
     if check is not None and not await check(ws):
         return
     await ws.accept()
-    session = _Session(ws, hub)
+    encoded = getattr(ws.app.state, "encoded", None)
+    if encoded is None:  # one per app, shared by all its clients
+        encoded = ws.app.state.encoded = _Encoded()
+    session = _Session(ws, hub, encoded)
     try:
         await session.send_json(
             {
