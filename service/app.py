@@ -218,7 +218,7 @@ class Service:
             values.update({f"band:{b.name}": b.value for b in f.bands})
             values.update({f"tone:{t.name}": t.value for t in f.tones})
             if not f.primary:
-                values = {trend_key(f.profile, False, k): v for k, v in values.items()}
+                values = {trend_key(f.profile, k): v for k, v in values.items()}
             self.store.record_many(f.channel, f.t_ns, values)
             st = self.hub.channels[f.channel]
             for e in self.alarms.evaluate(f, st.status, fault=st.fault):

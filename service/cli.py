@@ -56,7 +56,7 @@ from .config import (
     profiles_of,
     tones_for,
 )
-from .profiles import analysis_spec, plan_profiles
+from .profiles import analysis_spec, plan_profiles, settled
 from .recording import RECORDING_FORMATS, Recording, load_recording
 from .wire import RAW_FORMATS, encode_frame, encode_raw
 
@@ -565,10 +565,8 @@ def _push(g: _Group, x: np.ndarray) -> None:
     if dec is None:
         g.analyzer.push(x)
         return
-    y = dec.push(x)
-    k0, settled = dec.next_index - y.shape[1], dec.first_settled_index
-    if k0 < settled:  # the chain's start-up transient is not analysed (as in the service)
-        y = y[:, min(settled - k0, y.shape[1]):]
+    # the chain's start-up transient is not analysed (as in the service)
+    y, _ = settled(dec.push(x), dec.next_index, dec.first_settled_index)
     if y.shape[1]:
         g.analyzer.push(y)
 

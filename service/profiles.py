@@ -94,6 +94,17 @@ def overall_band(bands: Sequence[Band], lowcut_hz: float, fmax_hz: float) -> Ban
     return Band(OVERALL, lowcut_hz, fmax_hz)
 
 
+def settled(y: np.ndarray, next_index: int, first_settled: int) -> tuple[np.ndarray, int]:
+    """The outputs ``y`` [C, m] of a decimation chain that are clear of its start-up
+    transient, and the output index of the first of them: the chain's outputs are indices
+    next_index − m … next_index − 1, and those before ``first_settled`` are still reached by
+    the zeros the chain started from after a (re)start."""
+    k0 = next_index - y.shape[1]
+    if k0 < first_settled:
+        return y[:, min(first_settled - k0, y.shape[1]):], first_settled
+    return y, k0
+
+
 @dataclass(frozen=True)
 class ProfilePlan:
     """What one profile of one channel runs on a stream of ``fs_in`` Hz.
@@ -158,19 +169,15 @@ def plan_profiles(cfg: Config, channel_id: str, fs_in: float) -> list[ProfilePla
     for i, name in enumerate(profiles_of(cfg, channel_id)):
         settings = effective_analysis(cfg, channel_id, name)
         top = fs_in / FMAX_RATIO
+        chain = plan_chain(fs_in, min(settings.fmax_hz, top))
+        notes: tuple[str, ...] = ()
         if settings.fmax_hz > top * (1 + 1e-9):
             # a stream slower than the config expected (a WAV file's own rate): show what
             # it holds rather than refuse to run
-            chain = plan_chain(fs_in, top)
-            notes: tuple[str, ...] = (
-                f"fmax_hz={settings.fmax_hz:g} is above this {fs_in:g} Hz stream's "
-                f"fs/2.56 = {top:g} Hz; the spectrum reaches {top:g} Hz",
-            )
-            exact = False
-        else:
-            chain = plan_chain(fs_in, settings.fmax_hz)
-            exact = not chain.note or chain.note.startswith("no decimation: fs_in = 2.56")
-            notes = (chain.note,)
+            notes = (f"fmax_hz={settings.fmax_hz:g} is above this {fs_in:g} Hz stream's "
+                     f"fs/2.56 = {top:g} Hz; the spectrum reaches {top:g} Hz",)
+        elif abs(chain.fmax_hz - settings.fmax_hz) > 1e-6 * settings.fmax_hz:
+            notes = (chain.note,)  # why the usable Fmax is the next higher one
         fs = chain.fs_out
         bands = tuple(bands_for(cfg, channel_id, name))
         tones = tuple(tones_for(cfg, channel_id, name))
@@ -178,13 +185,11 @@ def plan_profiles(cfg: Config, channel_id: str, fs_in: float) -> list[ProfilePla
         res = analysis_spec(
             settings, fs, input_unit=ch.input_unit, bands=(*bands, overall), tones=tones
         )
-        if exact:
-            notes = res.notes
         out.append(
             ProfilePlan(
                 channel=channel_id, name=name, primary=i == 0, settings=settings,
                 spec=res.spec, bands=bands, fs_in=float(fs_in), factor=chain.factor,
-                stages=chain.factors, notes=tuple(notes),
+                stages=chain.factors, notes=notes,
             )
         )
     return out
@@ -285,11 +290,9 @@ class ProfileBank:
         if self.rates is not None:
             out = self.rates.push(x[self._dec_rows], first_index=first_index)
             for name, y in out.items():
-                k0 = self.rates.next_index(name) - y.shape[1]
-                settled = self.rates.first_settled_index(name)
-                if k0 < settled:  # drop the start-up transient after a (re)start
-                    y, k0 = y[:, min(settled - k0, y.shape[1]):], settled
-                taps[name] = (y, k0)
+                taps[name] = settled(
+                    y, self.rates.next_index(name), self.rates.first_settled_index(name)
+                )
         done = []
         for g in self.groups:
             if g.tap is None:

@@ -126,11 +126,10 @@ _EVENT_COLS = (
 )
 
 
-def trend_key(profile: str, primary: bool, name: str) -> str:
+def trend_key(profile: str, name: str) -> str:
     """The series name of value ``name`` (overall, band:<n>, tone:<n>) of an analysis
-    profile: the name itself for the channel's primary profile, ``"<profile>/<name>"``
-    for any other."""
-    return name if primary else f"{profile}/{name}"
+    profile other than the channel's primary one (whose series are the names themselves)."""
+    return f"{profile}/{name}"
 
 
 class StoreError(Exception):

@@ -52,7 +52,7 @@ async def get_trend(
     prof = check_profile(channel, profile)
     shown = name
     if prof != channel.profiles[0]:
-        name = trend_key(prof, False, name)
+        name = trend_key(prof, name)
     now = time.time()
     until_s = now if until is None else until
     since_s = until_s - 3600 if since is None else since
