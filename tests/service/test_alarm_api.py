@@ -36,6 +36,7 @@ from websockets.typing import Origin
 
 from service.wire import encode_frame
 from tests.proc import child_env
+from tests.service.conftest import free_ports
 
 T = TypeVar("T")
 REPO = Path(__file__).resolve().parents[2]
@@ -215,19 +216,6 @@ def reference_events(t_ns: np.ndarray, v: np.ndarray, *, latch: bool) -> list[tu
 
 
 # --- running the real service ---------------------------------------------------------------------
-
-
-def free_ports(n: int) -> list[int]:
-    socks = []
-    try:
-        for _ in range(n):
-            s = socket.socket()
-            s.bind((LOOPBACK, 0))
-            socks.append(s)
-        return [s.getsockname()[1] for s in socks]
-    finally:
-        for s in socks:
-            s.close()
 
 
 def config_text(

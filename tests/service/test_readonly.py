@@ -20,7 +20,15 @@ from typing import Any
 
 import httpx
 import pytest
-from conftest import SMALL_FS, RunningService, feed_tone, one_band_config, run_service, wait_for
+
+from tests.service.conftest import (
+    SMALL_FS,
+    RunningService,
+    feed_tone,
+    one_band_config,
+    run_service,
+    wait_for,
+)
 
 LOOPBACK = "127.0.0.1"
 

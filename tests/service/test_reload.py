@@ -17,7 +17,15 @@ from typing import Any
 
 import httpx
 import pytest
-from conftest import SMALL_FS, RunningService, feed_tone, one_band_config, run_service, to_toml
+
+from tests.service.conftest import (
+    SMALL_FS,
+    RunningService,
+    feed_tone,
+    one_band_config,
+    run_service,
+    to_toml,
+)
 
 LOOPBACK = "127.0.0.1"
 

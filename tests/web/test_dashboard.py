@@ -15,7 +15,8 @@ from typing import Any
 import numpy as np
 import pytest
 import scipy.signal
-from conftest import OPERATOR_TOKEN, VIEWER_TOKEN, PageLog, Service, screenshot, wait_for
+
+from tests.web.conftest import OPERATOR_TOKEN, VIEWER_TOKEN, PageLog, Service, screenshot, wait_for
 
 pytestmark = pytest.mark.browser
 

@@ -10,7 +10,8 @@ from typing import Any
 
 import numpy as np
 import pytest
-from conftest import PageLog, Service, wait_for
+
+from tests.web.conftest import PageLog, Service, wait_for
 
 pytestmark = pytest.mark.browser
 
