@@ -62,6 +62,19 @@ export class Surface {
     });
   }
 
+  // Keep `owner.hover` ({x, y} in CSS pixels, or null off the canvas) and redraw on moves.
+  trackHover(owner) {
+    owner.hover = null;
+    this.canvas.addEventListener("pointermove", (e) => {
+      owner.hover = { x: e.offsetX, y: e.offsetY };
+      this.invalidate();
+    });
+    this.canvas.addEventListener("pointerleave", () => {
+      owner.hover = null;
+      this.invalidate();
+    });
+  }
+
   dispose() {
     this._ro.disconnect();
   }

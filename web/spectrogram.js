@@ -25,14 +25,7 @@ export class Spectrogram {
     this.surface = new Surface(canvas, (ctx, w, h) => this._draw(ctx, w, h));
     this.surface.onResize = () => (this.dirtyAll = true);
     this._lut = null;
-    canvas.addEventListener("pointermove", (e) => {
-      this.hover = { x: e.offsetX, y: e.offsetY };
-      this.surface.invalidate();
-    });
-    canvas.addEventListener("pointerleave", () => {
-      this.hover = null;
-      this.surface.invalidate();
-    });
+    this.surface.trackHover(this);
   }
 
   clear() {

@@ -18,14 +18,7 @@ export class TrendChart {
     this.note = "";
     this.hover = null;
     this.surface = new Surface(canvas, (ctx, w, h) => this._draw(ctx, w, h));
-    canvas.addEventListener("pointermove", (e) => {
-      this.hover = { x: e.offsetX, y: e.offsetY };
-      this.surface.invalidate();
-    });
-    canvas.addEventListener("pointerleave", () => {
-      this.hover = null;
-      this.surface.invalidate();
-    });
+    this.surface.trackHover(this);
   }
 
   set(d) {
