@@ -67,6 +67,7 @@ class ToneDef:
             raise ValueError(f"tone {self.name!r}: frequency/order must be a positive number")
 
     def frequency_hz(self, speed_hz: float | None) -> float:
+        """The tone's frequency in Hz: ``hz`` as given, or ``order`` × ``speed_hz`` (Hz)."""
         if self.hz is not None:
             return float(self.hz)
         if speed_hz is None or not speed_hz > 0:
@@ -111,6 +112,7 @@ class AnalysisSpec:
             raise ValueError(f"band names repeat: {sorted(n for n in names if names.count(n) > 1)}")
 
     def with_(self, **changes: object) -> AnalysisSpec:
+        """A copy with the named fields changed (same units as the constructor's)."""
         return replace(self, **changes)  # type: ignore[arg-type]
 
 
@@ -322,6 +324,7 @@ class Analyzer:
 
     @property
     def ready(self) -> bool:
+        """True once at least one frame is in the average (read-outs are then defined)."""
         return self.avg.value is not None
 
     @property
@@ -425,7 +428,9 @@ class Analyzer:
 
     @property
     def unit(self) -> OutputUnit:
+        """The default output unit of the read-outs (``spec.unit``, resolved)."""
         return resolve_unit(self.spec.unit)
 
     def quantity(self, unit: str | None = None) -> str:
+        """"acceleration", "velocity" or "displacement": what ``unit`` (default: ours) measures."""
         return quantity_of(resolve_unit(unit or self.spec.unit))

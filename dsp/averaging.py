@@ -74,6 +74,7 @@ class Averager:
 
     @property
     def count(self) -> int:
+        """Frames in the current average (an exponential one counts up to ``averages``)."""
         if self.mode == "exponential":
             return int(min(self._seen, np.ceil(self.averages)))
         return self._seen

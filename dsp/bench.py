@@ -262,6 +262,7 @@ def run_decimation_case(channels: int, *, seconds: float = 2.0,
 
 
 def format_decimation(section: dict[str, object]) -> str:
+    """The narrow-vs-wide section as a text table (ms of one core per second of input)."""
     lines = [f"narrow vs wide profile — {section['setup']}",
              f"{'case':>6} {'wide ms/s':>10} {'narrow ms/s':>12} {'decimation ms/s':>16} "
              f"{'narrow/wide':>12}"]
@@ -307,6 +308,7 @@ def run(channel_counts: tuple[int, ...] = (1, 8, 64), *, seconds: float = 2.0,
 
 
 def format_report(report: dict[str, object]) -> str:
+    """The engine section as a text table (times in ms of CPU, ratios to the bare rfft)."""
     lines = [f"quaver engine benchmark — {report['setup']}",
              f"{'case':>6} {'frames':>7} {'engine ms':>10} {'rfft ms':>8} {'×rfft':>6} "
              f"{'Msamples/s':>11} {'×realtime':>10} {'welch ×rfft':>12} {'loop ×rfft':>11}"]
@@ -323,6 +325,7 @@ def format_report(report: dict[str, object]) -> str:
 
 
 def main(argv: list[str] | None = None) -> int:
+    """``quaver bench`` / ``python -m dsp.bench``: print the report (``--json``: as JSON); 0."""
     ap = argparse.ArgumentParser(prog="quaver bench", description=__doc__.splitlines()[0])
     ap.add_argument("--channels", default="1,8,64", help="comma-separated channel counts")
     ap.add_argument("--seconds", type=float, default=2.0, help="signal length per case, s")

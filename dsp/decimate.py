@@ -597,12 +597,16 @@ class _Path:
         self.fs_out = fs_in / factor
 
     def index_in(self, k_out: int | np.ndarray) -> int | np.ndarray:
+        """Input-stream index of the input sample at which output sample ``k_out`` is taken."""
         return k_out * self.factor + self.phase
 
     def content_index(self, k_out: int | np.ndarray) -> int | np.ndarray:
+        """Input-stream index whose content output sample ``k_out`` carries:
+        :meth:`index_in` less the chain's group delay in input samples."""
         return self.index_in(k_out) - self.delay_in
 
     def response(self, f_hz: np.ndarray | float) -> np.ndarray:
+        """Complex response (dimensionless; 1 = unity gain) of the path at ``f_hz`` (Hz)."""
         h = np.ones(np.shape(f_hz), dtype=np.complex128)
         for s in self.path:
             h = h * s.response(f_hz)

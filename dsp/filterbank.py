@@ -162,14 +162,17 @@ class FrameGrid:
 
     @property
     def frame_s(self) -> float:
+        """Frame length N/fs in seconds."""
         return self.n / self.fs
 
     @property
     def hop_s(self) -> float:
+        """Hop H/fs in seconds."""
         return self.hop / self.fs
 
     @property
     def overlap(self) -> float:
+        """Overlap 1 − H/N as a fraction in [0, 1)."""
         return 1.0 - self.hop / self.n
 
     def frequencies(self) -> np.ndarray:
@@ -193,6 +196,7 @@ class FrameBatch:
 
     @property
     def count(self) -> int:
+        """Frames completed by the push."""
         return int(self.start.size)
 
 
@@ -212,6 +216,7 @@ class PowerBatch:
 
     @property
     def count(self) -> int:
+        """Frames completed by the push."""
         return int(self.start.size)
 
 
