@@ -21,9 +21,11 @@ class Subscriber:
     ``profiles`` None takes each channel's primary profile only; a set takes those names
     (``"*"`` in it: every profile). A frame that arrives before the previous one of its
     channel and profile was taken replaces it
-    (``missed`` counts the replaced ones): a slow client skips to the newest frame and the
-    publisher never waits. Events are kept in order up to ``max_events`` (then the oldest
-    are dropped and counted too — a client that far behind should re-read /alarms).
+    (``missed`` counts the replaced ones; the stream session adds the frames its rate limit
+    held back and then replaced, so ``missed`` is every frame the client did not get): a slow
+    client skips to the newest frame and the publisher never waits. Events are kept in order
+    up to ``max_events`` (then the oldest are dropped and counted too — a client that far
+    behind should re-read /alarms).
     """
 
     def __init__(

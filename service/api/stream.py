@@ -25,9 +25,12 @@ spectrum (per unit and amplitude) and its bands/tones texts are encoded once and
 every client that gets them; messages are not compressed (float32 spectra barely shrink and
 compressing them per client cost more than the rest of the stream).
 
-``missed`` counts the frames this client skipped (its queue was full or its rate limit
-held them back). Each client has its own bounded queue; when it is full the oldest frame
-is dropped — the engine and the other clients never wait for it.
+``missed`` counts the frames this client skipped: a newer frame of the same channel and
+profile replaced them while they waited in its queue or were held back by its rate limit.
+A held frame goes out as soon as its interval is up, before anything newer of its channel
+and profile; every frame published after the subscription is either sent or counted. Each
+client's queue keeps the newest frame per channel and profile, so it is bounded; the engine
+and the other clients never wait for it.
 """
 
 from __future__ import annotations
@@ -176,8 +179,8 @@ class _Session:
         self.sub = hub.subscribe(None)
         self.sub.kinds = frozenset(self.spec.kinds)
         self.last_sent: dict[tuple[str, str], float] = {}
-        self.held_back = 0
-        # newest frame per (channel, profile) held back by the rate limit
+        # newest frame per (channel, profile) held back by the rate limit; a held frame that a
+        # newer one replaces is counted in ``self.sub.missed`` (so /metrics sees it too)
         self.held: dict[tuple[str, str], SpectralFrame] = {}
 
     def apply(self, spec: Subscription) -> None:
@@ -247,8 +250,11 @@ class _Session:
             try:
                 item = await self.sub.queue.get(timeout=timeout)
             except TimeoutError:
-                for key in [k for k in self.held if self._due(k) <= time.monotonic()]:
-                    await self._send_frame(self.held.pop(key))
+                item = None
+            # Held frames whose interval is up go out first, whether or not the wait timed
+            # out: while the queue never runs dry (a burst after a stall) no time-out comes.
+            await self._send_due()
+            if item is None:
                 continue
             if isinstance(item, SpectralFrame):
                 await self._send_frame(item)
@@ -261,23 +267,39 @@ class _Session:
         (monotonic s)."""
         return self.last_sent.get(key, -1e9) + 0.999 / self.spec.max_rate_hz
 
-    async def _send_frame(self, frame: SpectralFrame) -> None:
+    async def _send_due(self) -> None:
+        """Send every held frame whose rate-limit interval is up."""
         now = time.monotonic()
+        for key in [k for k in self.held if self._due(k) <= now]:
+            await self._send(self.held.pop(key))
+
+    async def _send_frame(self, frame: SpectralFrame) -> None:
+        """Send ``frame`` now, or hold it as the newest of its channel and profile until the
+        rate limit lets it go. Every frame this client does not get is counted in ``missed``."""
         key = (frame.channel, frame.profile)
-        if now < self._due(key):
-            # Too soon: hold it as the newest of its channel and profile and send it when
-            # the interval is up (a frame it replaces counts as missed).
-            if self.held.pop(key, None) is not None:
-                self.held_back += 1
+        older = self.held.pop(key, None)
+        if older is not None:
+            if time.monotonic() < self._due(key):
+                # still too soon: the newer frame takes the older one's place, which is skipped
+                self.sub.missed += 1
+                self.held[key] = frame
+                return
+            # The older one's interval is up (it came due while the loop was busy): it goes
+            # first and ``frame`` waits its own turn below (sending ``frame`` alone would skip
+            # ``older`` although this client keeps up with the rate limit).
+            await self._send(older)
+        if time.monotonic() < self._due(key):
             self.held[key] = frame
             return
-        self.held.pop(key, None)
-        self.last_sent[key] = now
+        await self._send(frame)
+
+    async def _send(self, frame: SpectralFrame) -> None:
+        """Send ``frame``'s messages (the subscribed kinds) and start its rate-limit interval."""
+        self.last_sent[(frame.channel, frame.profile)] = time.monotonic()
         kinds = self.spec.kinds
-        missed = self.sub.missed + self.held_back
         if "spectrum" in kinds:
             await self.ws.send_bytes(
-                self.encoded.spectrum(frame, self.spec.unit, self.spec.amplitude, missed)
+                self.encoded.spectrum(frame, self.spec.unit, self.spec.amplitude, self.sub.missed)
             )
         if "bands" in kinds:
             await self.ws.send_text(self.encoded.text(frame, "bands"))
