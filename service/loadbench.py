@@ -61,6 +61,7 @@ from .wire import encode_frame
 __all__ = [
     "BenchPlan",
     "FrameTemplate",
+    "end_index_differences",
     "expected_frames",
     "format_report",
     "latencies_ns",
@@ -82,6 +83,7 @@ DRAIN_WAIT_S = 30.0  # ... and is waited for this long, so that the counts are f
 HTTP_TIMEOUT_S = 10.0
 WARMUP_S = 1.0  # latency samples from the first second of a step are left out (FFT plans)
 FANOUT_CHANNELS_PER_CLIENT = 8
+FANOUT_SETTLE_S = 1.0  # after a step drained, its last frames reach the clients within this
 BLAS_ENV = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
 HEADER_FIRST_INDEX = 16  # byte offsets in the framed header (README, "Framed TCP and UDP")
 HEADER_T_NS = 24
@@ -114,17 +116,26 @@ def newest_frame_ends(block_ends: Sequence[int], n: int, hop: int) -> list[int]:
     return out
 
 
-def skipped_frames(received_ends: Sequence[int], expected_ends: Sequence[int]) -> int:
-    """How many of ``expected_ends`` between the first and the last received one are missing
-    from ``received_ends`` (a received end that is not expected counts as skipped too)."""
+def end_index_differences(received_ends: Sequence[int],
+                          expected_ends: Sequence[int]) -> tuple[int, int]:
+    """(missing, unexpected): how many of ``expected_ends`` (sorted) between the first and the
+    last received one are not in ``received_ends``, and how many distinct received ends are
+    not expected at all. Frames before the first or after the last received one are not
+    counted (a client may start or stop mid-stream)."""
     got = sorted(set(int(e) for e in received_ends))
     if not got:
-        return 0
+        return 0, 0
     exp = list(expected_ends)
     lo = bisect.bisect_left(exp, got[0])
     hi = bisect.bisect_right(exp, got[-1])
     window = set(exp[lo:hi])
-    return len(window - set(got)) + len(set(got) - window)
+    return len(window - set(got)), len(set(got) - window)
+
+
+def skipped_frames(received_ends: Sequence[int], expected_ends: Sequence[int]) -> int:
+    """How many of ``expected_ends`` between the first and the last received one are missing
+    from ``received_ends`` (a received end that is not expected counts as skipped too)."""
+    return sum(end_index_differences(received_ends, expected_ends))
 
 
 def percentile(values: Sequence[float], q: float) -> float:
@@ -661,7 +672,15 @@ async def _fanout(url: str, channel_sets: list[list[str]], seconds: float,
     with contextlib.suppress(TimeoutError):
         await asyncio.wait_for(connected.wait(), 30.0)
     print("connected", flush=True)
-    await asyncio.sleep(seconds)
+    # Listen until the parent says the step has drained (a line or EOF on stdin), at most
+    # ``seconds``: a fixed span cut off the last frames of a step that drained late, and the
+    # clients' received counts then differed for no reason of their own.
+    loop = asyncio.get_running_loop()
+    told = asyncio.Event()
+    threading.Thread(target=lambda: (sys.stdin.readline(), loop.call_soon_threadsafe(told.set)),
+                     name="stop-line", daemon=True).start()
+    with contextlib.suppress(TimeoutError):
+        await asyncio.wait_for(told.wait(), seconds)
     stop.set()
     await asyncio.wait(tasks, timeout=5.0)
     return logs
@@ -669,7 +688,8 @@ async def _fanout(url: str, channel_sets: list[list[str]], seconds: float,
 
 def _fanout_worker(argv: Sequence[str]) -> int:
     """Entry of the fan-out client process: argv[0] is a JSON job; prints ``connected`` once
-    every client has subscribed, then, after ``seconds``, one JSON line with the logs."""
+    every client has subscribed, then, when a line or EOF comes on stdin (at most ``seconds``
+    s later), one JSON line with the logs."""
     job = json.loads(argv[0])
     t0 = os.times()
     logs = asyncio.run(_fanout(job["url"], job["channel_sets"], job["seconds"], job["rate_hz"],
@@ -894,19 +914,22 @@ def fanout(plan: BenchPlan, svc: Service, feeder: Feeder, headroom: int) -> dict
     _say(f"fan-out: {len(chans)} channels, without clients, {plan.fanout_s:g} s")
     alone = _feed_step(plan, svc, feeder, sources, plan.fanout_s)
     job = {"url": svc.base.replace("http://", "ws://") + "/api/v1/stream",
-           "channel_sets": sets, "seconds": plan.fanout_s + 2.0, "rate_hz": plan.fanout_rate_hz,
+           "channel_sets": sets, "seconds": plan.fanout_s + DRAIN_WAIT_S + FANOUT_SETTLE_S + 5.0,
+           "rate_hz": plan.fanout_rate_hz,
            "deflate": plan.fanout_deflate}
     _say(f"fan-out: {len(chans)} channels, {plan.fanout_clients} clients x {k} channels")
     worker = subprocess.Popen([sys.executable, "-m", "service.loadbench", json.dumps(job)],
-                              cwd=REPO, env=_child_env(), stdout=subprocess.PIPE, text=True,
+                              cwd=REPO, env=_child_env(), stdin=subprocess.PIPE,
+                              stdout=subprocess.PIPE, text=True,
                               start_new_session=True)
     try:
         connected = _read_line(worker, 40.0).strip() == "connected"
         sent_before = {sid: len(feeder.log.sends[sid]) for sid in sources}
         with_clients = _feed_step(plan, svc, feeder, sources, plan.fanout_s)
         queues = _stream_metrics(svc)  # while the clients are still connected
+        time.sleep(FANOUT_SETTLE_S)  # the step's last frames on their way to the clients
         try:
-            out, _ = worker.communicate(timeout=plan.fanout_s + 20.0)
+            out, _ = worker.communicate(input="stop\n", timeout=20.0)
         except subprocess.TimeoutExpired:
             out = ""
         result = json.loads(out.strip().splitlines()[-1]) if out.strip() else {"logs": []}
@@ -922,7 +945,7 @@ def fanout(plan: BenchPlan, svc: Service, feeder: Feeder, headroom: int) -> dict
     checkable = with_clients["drops"] == 0 and with_clients["gaps"] == 0
     clients = []
     for log in result["logs"]:
-        skipped = 0
+        missing = unexpected = 0
         seq_back = 0
         foreign = sum(len(v) for c, v in log["frames"].items() if c not in log["channels"])
         for cid, pairs in log["frames"].items():
@@ -930,15 +953,27 @@ def fanout(plan: BenchPlan, svc: Service, feeder: Feeder, headroom: int) -> dict
                 continue
             sid = cid.rsplit("-c", 1)[0]
             ends = [index_of_time(t, feeder.base_ns, plan.fs_hz) for t, _ in pairs]
-            skipped += skipped_frames(ends, expected[sid])
+            m, u = end_index_differences(ends, expected[sid])
+            missing += m
+            unexpected += u
             seqs = [s for _, s in pairs]
             seq_back += sum(1 for a, b in zip(seqs, seqs[1:], strict=False) if b <= a)
+        want = sum(len(expected[c.rsplit("-c", 1)[0]]) for c in log["channels"])
         clients.append({"received": log["received"], "missed_reported": log["missed"],
-                        "skipped_by_end_index": skipped if checkable else None,
+                        "expected": want if checkable else None,
+                        "skipped_by_end_index": missing + unexpected if checkable else None,
+                        "missing_by_end_index": missing if checkable else None,
+                        "unexpected_end_index": unexpected if checkable else None,
                         "seq_not_rising": seq_back,
                         "unsubscribed_frames": foreign,
                         "error": log["error"]})
     kept_up = [c for c in clients if c["missed_reported"] == 0 and not c["error"]]
+    # The service counts in `missed` every frame a client did not get since it subscribed (the
+    # clients subscribe before the step), so a frame missing between a client's first and
+    # last one beyond its `missed`, or an end that was never produced, is the service's fault.
+    uncounted = [c for c in clients if checkable and not c["error"] and (
+        c["missing_by_end_index"] > c["missed_reported"] or c["unexpected_end_index"]
+        or c["seq_not_rising"])]
     a, b = alone["service_cpu_ms_per_frame"], with_clients["service_cpu_ms_per_frame"]
     return {
         "clients": plan.fanout_clients, "channels_per_client": k, "channels_fed": len(chans),
@@ -950,6 +985,7 @@ def fanout(plan: BenchPlan, svc: Service, feeder: Feeder, headroom: int) -> dict
         "clients_kept_up": len(kept_up),
         "kept_up_clients_with_skips": (sum(1 for c in kept_up if c["skipped_by_end_index"])
                                        if checkable else None),
+        "clients_with_uncounted_skips": len(uncounted) if checkable else None,
         "unsubscribed_frames": sum(c["unsubscribed_frames"] for c in clients),
         "per_client": clients,
         "client_process_cpu_s": result.get("cpu_s"),
@@ -1096,19 +1132,24 @@ def format_report(r: dict[str, Any]) -> str:
                                                     if lat["client_error"] else "")]
     f = r["fanout"]
     rec = f["received_per_client"]
+    want = [c["expected"] for c in f["per_client"] if c.get("expected") is not None]
     skips = f["kept_up_clients_with_skips"]
+    uncounted = f.get("clients_with_uncounted_skips")
     if skips is None:
-        skips = "not checkable (the service dropped blocks)"
+        skips = uncounted = "not checkable (the service dropped blocks)"
     a, b = f["without_clients"], f["with_clients"]
     out += ["", f"3. WebSocket fan-out: {f['clients']} clients x {f['channels_per_client']} "
                 f"channels ({f['subscription']['kinds'][0]}, limit "
                 f"{f['subscription']['max_rate_hz']:g}/s) on {f['channels_fed']} channels fed "
                 f"at real time",
             f"  frames received per client: min {min(rec, default=0)}, median "
-            f"{_f(percentile(rec, 50) if rec else None, '.0f')}, max {max(rec, default=0)}; "
+            f"{_f(percentile(rec, 50) if rec else None, '.0f')}, max {max(rec, default=0)} "
+            f"(produced for its channels: {_f(max(want, default=None))}); "
             f"clients that kept up (missed = 0): {f['clients_kept_up']}/{f['clients']}, of "
             f"which with skipped frames: {skips}; "
             f"frames of channels not subscribed: {f['unsubscribed_frames']}",
+            f"  clients whose frames by end index disagree with the service (skipped more than "
+            f"their `missed`, an end never produced, or seq not rising): {uncounted}",
             f"  service CPU per analysis frame: {_f(a['service_cpu_ms_per_frame'], '.4f')} ms "
             f"without, {_f(b['service_cpu_ms_per_frame'], '.4f')} ms with the clients "
             f"(ratio {_f(f['cpu_per_frame_ratio'], '.2f')}); service CPU "

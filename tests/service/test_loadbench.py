@@ -18,6 +18,7 @@ import pytest
 from service.cli import main as cli_main
 from service.loadbench import (
     FrameTemplate,
+    end_index_differences,
     expected_frames,
     latencies_ns,
     newest_frame_ends,
@@ -67,6 +68,17 @@ def test_skipped_frames_counts_holes_between_first_and_last_received():
     assert skipped_frames([10, 60], expected) == 4
     assert skipped_frames([20, 25, 30], expected) == 1  # 25 was never produced
     assert skipped_frames([], expected) == 0
+
+
+def test_end_index_differences_split_missing_from_never_produced():
+    expected = [10, 20, 30, 40, 50, 60]
+    assert end_index_differences([20, 40, 50], expected) == (1, 0)  # 30 missing
+    assert end_index_differences([20, 25, 30], expected) == (0, 1)  # 25 was never produced
+    assert end_index_differences([10, 10, 60], expected) == (4, 0)  # a repeat is no hole
+    assert end_index_differences([60, 10], expected) == (4, 0)  # arrival order is not used
+    assert end_index_differences([], expected) == (0, 0)
+    # the frames before the first and after the last received one are not counted
+    assert end_index_differences([30, 40], expected) == (0, 0)
 
 
 def test_percentile_matches_numpy():
@@ -223,10 +235,14 @@ def test_short_run_fanout_clients_get_frames_and_skip_none_unreported(report):
         if clean:
             # every frame a client did not get between its first and last is in its `missed`
             assert c["skipped_by_end_index"] <= c["missed_reported"]
+            assert c["skipped_by_end_index"] == (c["missing_by_end_index"]
+                                                 + c["unexpected_end_index"])
+            assert c["unexpected_end_index"] == 0
             if c["missed_reported"] == 0:
                 assert c["skipped_by_end_index"] == 0
         else:  # dropped blocks: frames never made, the end-index check is not possible
             assert c["skipped_by_end_index"] is None
+    assert fan["clients_with_uncounted_skips"] == (0 if clean else None)
     for phase in ("without_clients", "with_clients"):
         st = fan[phase]
         want = sum(16 * frames_for(n1 - n0, N_FRAME, HOP) for n0, n1 in st["samples"].values())
