@@ -650,7 +650,8 @@ def test_websocket_spectra_equal_rest_and_a_stalled_client_delays_no_one(
                 sent += WS_HOP
             header, values = next_spectrum(ws, "ws-a")
             # the next frame must not fall under the 100/s rate limit, or it is held back
-            # for good (stream.py): pause well past 10 ms (a pause, not a timing check)
+            # until its interval is up and REST may have moved on (stream.py): pause well
+            # past 10 ms (a pause, not a timing check)
             time.sleep(0.05)
             rest = svc.get("channels/ws-a/spectrum", unit=header["unit"],
                            amplitude=header["amplitude"])
