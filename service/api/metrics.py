@@ -4,12 +4,13 @@ Reads the hub (and the alarm engine and store, when the service has them) at scr
 
 from __future__ import annotations
 
+import gc
 import math
 from collections.abc import Iterator
 from typing import Any
 
 from fastapi import APIRouter, Request, Response
-from prometheus_client import CollectorRegistry, generate_latest
+from prometheus_client import CollectorRegistry, GCCollector, ProcessCollector, generate_latest
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
 from prometheus_client.registry import Collector
 
@@ -112,6 +113,13 @@ class _ServiceCollector(Collector):
         pub = CounterMetricFamily("quaver_frames_published", "Spectral frames published")
         pub.add_metric([], hub.frames_published)
         yield pub
+        frozen = GaugeMetricFamily(
+            "quaver_gc_frozen_objects",
+            "Objects kept out of Python's full collections (the start-up heap, frozen once "
+            "serving)",
+        )
+        frozen.add_metric([], float(gc.get_freeze_count()))
+        yield frozen
 
         alarms = getattr(self.state, "alarms", None)
         if alarms is not None:
@@ -158,6 +166,10 @@ class _ServiceCollector(Collector):
 def metrics(request: Request) -> Response:
     registry = CollectorRegistry(auto_describe=False)
     registry.register(_ServiceCollector(request.app.state))
+    # prometheus_client's own: python_gc_* (collections per generation) and process_*
+    # (resident memory, CPU seconds, open files) for a service that runs for months.
+    GCCollector(registry=registry)
+    ProcessCollector(registry=registry)
     return Response(
         generate_latest(registry), media_type="text/plain; version=0.0.4; charset=utf-8"
     )
