@@ -196,26 +196,15 @@ def _kth_per_row(rows: np.ndarray, value: np.ndarray, n_rows: int, count: int) -
 
 def _top_per_row(rows: np.ndarray, value: np.ndarray, n_rows: int, count: int) -> np.ndarray:
     """[n_rows, count] indices into ``value`` of each row's ``count`` largest, largest first
-    (ties: the lower index first), −1 where a row has fewer; ``rows`` is non-decreasing."""
+    (ties: the lower index first), −1 where a row has fewer; ``rows`` is non-decreasing.
+
+    One stable sort of all the values: meant for the few that are left after ranking."""
     out = np.full((n_rows, count), -1, dtype=np.intp)
-    if not rows.size:
-        return out
-    start, dense = _by_row(rows, value, n_rows)
-    if dense.shape[1] > count:
-        # the count-th largest of each row; everything above it, and as many of the values
-        # equal to it as are still needed, the lower positions first
-        kth = np.partition(dense, dense.shape[1] - count, axis=1)[:, dense.shape[1] - count]
-        above = dense > kth[:, None]
-        equal = (dense == kth[:, None]) & (dense > -np.inf)  # −inf pads the rows
-        need = count - above.sum(axis=1)
-        chosen = above | (equal & (np.cumsum(equal, axis=1) <= need[:, None]))
-    else:
-        chosen = dense > -np.inf
-    r, c = np.divmod(np.flatnonzero(chosen), dense.shape[1])
-    order = np.lexsort((-dense[r, c], r))  # stable: equal values keep position order
-    r, c = r[order], c[order]
+    order = np.lexsort((-value, rows))  # stable: equal values keep index order
+    r = rows[order]
     rank = np.arange(r.size) - np.searchsorted(r, r)
-    out[r, rank] = start[r] + c
+    keep = rank < count
+    out[r[keep], rank[keep]] = order[keep]
     return out
 
 
