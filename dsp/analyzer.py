@@ -41,7 +41,7 @@ from .types import (
 )
 from .windows import DEFAULT_KAISER_BETA, check_window
 
-__all__ = ["AnalysisSpec", "Analyzer", "ToneDef", "resolve_unit"]
+__all__ = ["AnalysisSpec", "Analyzer", "ToneDef", "resolve_unit", "spectrum_peaks"]
 
 
 def resolve_unit(unit: str) -> OutputUnit:
@@ -403,27 +403,11 @@ class Analyzer:
 
         ``amplitude_rms`` of the result is converted to ``amplitude`` type in place of RMS.
         """
-        k = self.spec.peaks if count is None else count
-        u = resolve_unit(unit or self.spec.unit)
-        # Interpolate on the acceleration spectrum, whose peak shape is exactly the window's,
-        # then weight each peak at its interpolated frequency and re-rank in the asked unit.
-        acc = find_peaks(
-            self.power("m/s2"),
-            self.grid.df_hz,
-            self.spec.window,
-            self.grid.n,  # type: ignore[arg-type]
-            count=max(4 * k, k + 8),
-            min_hz=self.lowcut_hz,
+        return spectrum_peaks(
+            self.power("m/s2"), "m/s2", self.grid.df_hz, self.spec.window, self.grid.n,
+            unit=unit or self.spec.unit, amplitude=amplitude or self.spec.amplitude,
+            count=self.spec.peaks if count is None else count, lowcut_hz=self.lowcut_hz,
             beta=self.spec.beta,
-        )
-        f = acc.frequency_hz
-        wts = unit_power_weights(np.nan_to_num(f, nan=0.0), "m/s2", u, lowcut_hz=self.lowcut_hz)
-        power = np.where(np.isfinite(f), acc.amplitude_rms**2 * wts, np.nan)
-        order = np.argsort(np.where(np.isnan(power), -np.inf, -power), axis=1, kind="stable")[:, :k]
-        take = np.take_along_axis
-        amp = amplitude_from_power(take(power, order, 1), amplitude or self.spec.amplitude)  # type: ignore[arg-type]
-        return Peaks(
-            frequency_hz=take(f, order, 1), amplitude_rms=amp, line=take(acc.line, order, 1)
         )
 
     @property
@@ -434,3 +418,46 @@ class Analyzer:
     def quantity(self, unit: str | None = None) -> str:
         """"acceleration", "velocity" or "displacement": what ``unit`` (default: ours) measures."""
         return quantity_of(resolve_unit(unit or self.spec.unit))
+
+
+def spectrum_peaks(
+    power: np.ndarray,
+    input_unit: str,
+    df_hz: float,
+    window: str,
+    n: int,
+    *,
+    unit: str,
+    amplitude: str,
+    count: int,
+    lowcut_hz: float,
+    beta: float = DEFAULT_KAISER_BETA,
+) -> Peaks:
+    """The ``count`` largest peaks of acceleration power spectra, ranked in ``unit``.
+
+    ``power`` is [C, Q] (or [Q]) in ``input_unit``² RMS² per line (an acceleration unit) on
+    f[q] = q·df_hz Hz, from ``n``-sample frames under ``window``. Peaks are interpolated on
+    the acceleration spectrum, whose peak shape is exactly the window's
+    (``dsp.tones.find_peaks``, 4·count of them), then each is weighted to ``unit`` at its
+    interpolated frequency (``unit_power_weights``, lines below ``lowcut_hz`` Hz read 0 for
+    velocity and displacement), re-ranked, and given as ``amplitude`` (peak, RMS or
+    peak-to-peak) in ``unit``. What :meth:`Analyzer.peaks` returns, for spectra already read
+    out (the service computes them only when a client asks)."""
+    u = resolve_unit(unit)
+    acc = find_peaks(
+        power, df_hz, window, n,  # type: ignore[arg-type]
+        count=max(4 * count, count + 8), min_hz=lowcut_hz, beta=beta,
+    )
+    f = acc.frequency_hz
+    wts = unit_power_weights(
+        np.nan_to_num(f, nan=0.0), input_unit, u, lowcut_hz=lowcut_hz  # type: ignore[arg-type]
+    )
+    p = np.where(np.isfinite(f), acc.amplitude_rms**2 * wts, np.nan)
+    axis = p.ndim - 1
+    order = np.argsort(np.where(np.isnan(p), -np.inf, -p), axis=axis, kind="stable")
+    order = order[..., :count]
+    take = np.take_along_axis
+    amp = amplitude_from_power(take(p, order, axis), amplitude)  # type: ignore[arg-type]
+    return Peaks(
+        frequency_hz=take(f, order, axis), amplitude_rms=amp, line=take(acc.line, order, axis)
+    )

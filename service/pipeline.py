@@ -12,7 +12,9 @@ from __future__ import annotations
 
 import asyncio
 import collections
+import functools
 import logging
+import math
 import time
 from collections.abc import Awaitable, Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
@@ -20,9 +22,11 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from dsp.analyzer import Analyzer, spectrum_peaks
+
 from .config import Config, channel_settings, profiles_of
 from .profiles import OVERALL, ChannelGroup, ProfileBank, overall_band
-from .types import BandValue, SampleBlock, SpectralFrame, ToneValue
+from .types import BandValue, FramePeaks, PushPeaks, SampleBlock, SpectralFrame, ToneValue
 
 log = logging.getLogger("quaver.pipeline")
 
@@ -344,9 +348,17 @@ class SourcePipeline:
         edges = an.band_edges_hz
         tones = an.tones()
         tone_hz = an.tone_hz
-        peaks = an.peaks()
+        # Peaks only when a client reads them (PushPeaks), for every channel of the push at
+        # once, from the same spectra: what an.peaks() gives, up to float32 rounding.
+        peaks = PushPeaks(functools.partial(_peak_rows, power_in, an))
         # Time of the newest frame's end (an input-stream index), from the block's own clock.
         t_ns = block.t0_ns + round((end - block.first_index) * 1e9 / block.fs)
+        # Plain floats of every channel at once: indexing numpy arrays value by value cost
+        # more than the rest of a frame (~6 µs a band).
+        band_names = [b.name for b in g.bands]
+        tone_names = [t.name for t in spec.tones]
+        bands_l, edges_l = bands.tolist(), edges.tolist()
+        tones_l, tone_hz_l = tones.tolist(), tone_hz.tolist()
         out = []
         for c, cid in enumerate(g.channel_ids):
             st = self.channels[cid]
@@ -378,27 +390,36 @@ class SourcePipeline:
                     amplitude=spec.amplitude,
                     lowcut_hz=an.lowcut_hz,
                     power=power_in[c],
-                    overall=float(bands[c, -1]),
-                    overall_lo_hz=float(edges[c, -1, 0]),
-                    overall_hi_hz=float(edges[c, -1, 1]),
+                    overall=bands_l[c][-1],
+                    overall_lo_hz=edges_l[c][-1][0],
+                    overall_hi_hz=edges_l[c][-1][1],
                     bands=tuple(
-                        BandValue(
-                            b.name, float(edges[c, i, 0]), float(edges[c, i, 1]), float(bands[c, i])
-                        )
-                        for i, b in enumerate(g.bands)
+                        BandValue(name, lo_hi[0], lo_hi[1], v)
+                        # the analyzer's last band is the overall one, not a configured band
+                        for name, lo_hi, v in zip(band_names, edges_l[c], bands_l[c], strict=False)
                     ),
                     tones=tuple(
-                        ToneValue(t.name, float(tone_hz[c, i]), float(tones[c, i]))
-                        for i, t in enumerate(spec.tones)
+                        ToneValue(name, f, v)
+                        for name, f, v in zip(tone_names, tone_hz_l[c], tones_l[c], strict=True)
                     ),
-                    peaks=tuple(
-                        ToneValue("", float(f), float(a))
-                        for f, a in zip(peaks.frequency_hz[c], peaks.amplitude_rms[c], strict=True)
-                        if np.isfinite(f)
-                    ),
+                    peaks=FramePeaks(peaks, c),
                 )
             )
         return out
+
+
+def _peak_rows(power_in: np.ndarray, an: Analyzer) -> list[tuple[ToneValue, ...]]:
+    """Each channel's peaks (``dsp.analyzer.spectrum_peaks``) from its input-unit power
+    spectrum ``power_in`` [C, lines + 1], as the analyzer ``an`` would find them."""
+    spec = an.spec
+    pk = spectrum_peaks(
+        power_in, spec.input_unit, an.grid.df_hz, spec.window, an.grid.n, unit=spec.unit,
+        amplitude=spec.amplitude, count=spec.peaks, lowcut_hz=an.lowcut_hz, beta=spec.beta,
+    )
+    return [
+        tuple(ToneValue("", f, a) for f, a in zip(fs, amps, strict=True) if math.isfinite(f))
+        for fs, amps in zip(pk.frequency_hz.tolist(), pk.amplitude_rms.tolist(), strict=True)
+    ]
 
 
 def channel_states(

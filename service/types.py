@@ -4,7 +4,10 @@ Plain data only: no I/O, no asyncio, no engine state."""
 
 from __future__ import annotations
 
+import threading
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
+from typing import NamedTuple, overload
 
 import numpy as np
 
@@ -60,19 +63,78 @@ COUNTER_NAMES: tuple[str, ...] = (
 )
 
 
-@dataclass(frozen=True, slots=True)
-class BandValue:
+# Named tuples, not frozen dataclasses: every frame makes dozens of them on the analysis
+# threads, and a frozen dataclass costs over twice as much to make (~750 vs ~340 ns).
+class BandValue(NamedTuple):
     name: str
     lo_hz: float
     hi_hz: float
     value: float  # RMS in the frame's display unit (NaN if unresolved)
 
 
-@dataclass(frozen=True, slots=True)
-class ToneValue:
+class ToneValue(NamedTuple):
     name: str
     frequency_hz: float
     value: float  # in the frame's display unit and amplitude type
+
+
+class PushPeaks:
+    """The peaks of the channels analysed together in one push, found for all of them the
+    first time any is read.
+
+    Most frames' peaks are never read (only ``/tones`` and the stream's ``tones`` messages
+    show them), and finding them for every push was a quarter of the analysis threads' time
+    (quaver bench --service, profiled). ``compute`` returns one tuple per channel; it runs
+    once, under a lock, on whichever thread reads first."""
+
+    __slots__ = ("_compute", "_rows", "_lock")
+
+    def __init__(self, compute: Callable[[], list[tuple[ToneValue, ...]]]) -> None:
+        self._compute: Callable[[], list[tuple[ToneValue, ...]]] | None = compute
+        self._rows: list[tuple[ToneValue, ...]] | None = None
+        self._lock = threading.Lock()
+
+    def row(self, c: int) -> tuple[ToneValue, ...]:
+        rows = self._rows
+        if rows is None:
+            with self._lock:
+                if self._rows is None:
+                    assert self._compute is not None
+                    self._rows, self._compute = self._compute(), None
+                rows = self._rows
+        return rows[c]
+
+
+class FramePeaks(Sequence[ToneValue]):
+    """One channel's row of a :class:`PushPeaks`: reads like a tuple of ToneValue."""
+
+    __slots__ = ("_push", "_c")
+
+    def __init__(self, push: PushPeaks, c: int) -> None:
+        self._push, self._c = push, c
+
+    @overload
+    def __getitem__(self, i: int) -> ToneValue: ...
+    @overload
+    def __getitem__(self, i: slice) -> tuple[ToneValue, ...]: ...
+    def __getitem__(self, i: int | slice) -> ToneValue | tuple[ToneValue, ...]:
+        return self._push.row(self._c)[i]
+
+    def __len__(self) -> int:
+        return len(self._push.row(self._c))
+
+    def __iter__(self) -> Iterator[ToneValue]:
+        return iter(self._push.row(self._c))
+
+    def __eq__(self, other: object) -> bool:
+        if isinstance(other, (tuple, FramePeaks)):
+            return tuple(self) == tuple(other)
+        return NotImplemented
+
+    __hash__ = None  # type: ignore[assignment]
+
+    def __repr__(self) -> str:
+        return f"FramePeaks({tuple(self)!r})"
 
 
 @dataclass(frozen=True, slots=True)
@@ -108,7 +170,7 @@ class SpectralFrame:
     overall: float
     bands: tuple[BandValue, ...]
     tones: tuple[ToneValue, ...]
-    peaks: tuple[ToneValue, ...]
+    peaks: Sequence[ToneValue]  # a tuple, or a FramePeaks found when first read
     end_index: int = 0  # input-stream index just after the newest frame's content
     primary: bool = True  # is ``profile`` the channel's primary (first) profile
     overall_lo_hz: float = float("nan")  # the band the overall covers, Hz
