@@ -141,15 +141,27 @@ class _Encoded:
     def spectrum(
         self, frame: SpectralFrame, unit: str | None, amplitude: str | None, missed: int
     ) -> bytes:
-        """The binary spectrum message (module docstring) with this client's ``missed``."""
+        """The binary spectrum message (module docstring) with this client's ``missed``.
+
+        The header's JSON up to ``"missed":`` is made once per frame and view (it was one
+        json.dumps per client and message); only the count and the padding are per client."""
+        key = self._key(frame, unit, amplitude, "head")
+        head = self._texts.get(key)
         data, count, u, a = self.values(frame, unit, amplitude)
-        return _spectrum_message(frame, u, a, count, missed, data)
+        if head is None:
+            head = _spectrum_header(frame, u, a, count)
+            self._texts[key] = head
+            if len(self._texts) > self.SIZE:
+                self._texts.popitem(last=False)
+        header = f"{head}{int(missed)}}}".encode()
+        header += b" " * (-(4 + len(header)) % 4)
+        return b"".join((struct.pack("<I", len(header)), header, data))
 
 
-def _spectrum_message(
-    frame: SpectralFrame, u: str, a: str, count: int, missed: int, data: bytes
-) -> bytes:
-    header = json.dumps(
+def _spectrum_header(frame: SpectralFrame, u: str, a: str, count: int) -> str:
+    """The spectrum message's JSON header without its last member's value and the closing
+    brace: ``{"kind":"spectrum",…,"count":N,"missed":`` (``missed`` is per client)."""
+    text = json.dumps(
         {
             "kind": "spectrum",
             "channel": frame.channel,
@@ -162,12 +174,12 @@ def _spectrum_message(
             "amplitude": a,
             "averages": frame.averages,
             "count": count,
-            "missed": missed,
+            "missed": 0,
         },
         separators=(",", ":"),
-    ).encode()
-    header += b" " * (-(4 + len(header)) % 4)
-    return b"".join((struct.pack("<I", len(header)), header, data))
+    )
+    assert text.endswith(',"missed":0}')
+    return text[: -len("0}")]
 
 
 class _Session:

@@ -194,3 +194,24 @@ def test_bursts_stalls_and_a_slow_loop_never_lose_a_frame_uncounted(monkeypatch,
     assert 0 < client.missed < blocks * len(CHANNELS)
     for c in CHANNELS:
         assert client.received(c)[-1] == client.published[c][-1]  # the newest always arrives
+
+
+@pytest.mark.parametrize("missed", [0, 7, 12345678901])
+def test_spectrum_message_layout_for_any_missed(missed: int) -> None:
+    # The header's JSON is made once per frame and spliced with each client's ``missed``;
+    # the message must still be what stream.py's docstring says: u32 little-endian header
+    # length, the JSON header padded with spaces so the values start 4-byte aligned, then
+    # ``count`` little-endian float32 values.
+    enc = stream._Encoded()
+    f = frame(CHANNELS[0], 41, 123456)
+    first = enc.spectrum(f, "g", "rms", 0)
+    msg = enc.spectrum(f, "g", "rms", missed)
+    (length,) = struct.unpack_from("<I", msg)
+    assert (4 + length) % 4 == 0
+    head = json.loads(msg[4 : 4 + length])
+    assert head == {"kind": "spectrum", "channel": CHANNELS[0], "profile": "default", "seq": 41,
+                    "timestamp_ns": 123456, "f0_hz": 0.0, "df_hz": 3.125, "unit": "g",
+                    "amplitude": "rms", "averages": 8, "count": 101, "missed": missed}
+    values = np.frombuffer(msg[4 + length :], dtype="<f4")
+    np.testing.assert_array_equal(values, np.zeros(101, np.float32))
+    assert msg[4 + length :] == first[len(first) - 4 * 101 :]
