@@ -121,10 +121,14 @@ class _EdgePlan:
     """Precomputed index work for band sums (fixed until the band edges change).
 
     Band edges sit at positions ``pos`` [C, 2B] in cumulative line widths from 0 Hz. The
-    spectrum is cut at the sorted integer parts by one ``np.add.reduceat``; a cumulative
-    sum of the segments gives Σ_{q<i} P[q] at each edge, plus the fractional line. All
-    indices are flat, so a read-out is a handful of whole-array operations."""
+    spectrum, cut to the lines ``lo…hi−1`` that hold an edge or lie between two (a band's
+    sum is a difference of two cumulative sums, so lines below the lowest edge cancel), is
+    cut at the sorted integer parts by one ``np.add.reduceat``; a cumulative sum of the
+    segments gives Σ_{lo≤q<i} P[q] at each edge, plus the fractional line. All indices are
+    flat, so a read-out is a handful of whole-array operations."""
 
+    lo: int  # first line kept
+    hi: int  # one past the last line kept
     starts: np.ndarray  # flat reduceat indices, [C·(2B+1)]
     empty: np.ndarray  # flat indices of segments that are empty runs
     at_cum: np.ndarray  # [C, 2B] flat index into the [C, 2B] cumulative sums, per edge
@@ -136,19 +140,24 @@ class _EdgePlan:
     def build(cls, pos: np.ndarray, q: int, unresolved: np.ndarray) -> _EdgePlan:
         c_count, e_count = pos.shape
         i = np.minimum(pos.astype(np.intp), q - 1)
+        lo, hi = (int(i.min()), int(i.max()) + 1) if i.size else (0, 1)
+        i = i - lo  # lines from lo on
+        width = hi - lo
         order = np.argsort(i, axis=1, kind="stable")
         srt = np.take_along_axis(i, order, 1)
         starts = np.concatenate((np.zeros((c_count, 1), np.intp), srt), axis=1)
         empty = np.zeros(starts.shape, dtype=bool)
         empty[:, :-1] = np.diff(starts, axis=1) == 0
-        offset = q * np.arange(c_count)[:, None]
+        offset = width * np.arange(c_count)[:, None]
         unsort = np.argsort(order, axis=1)
         return cls(
+            lo=lo,
+            hi=hi,
             starts=(starts + offset).ravel(),
             empty=np.flatnonzero(empty),
             at_cum=unsort + e_count * np.arange(c_count)[:, None],
             flat_i=i + offset,
-            frac=pos - i,
+            frac=pos - lo - i,
             unresolved=np.flatnonzero(unresolved),
         )
 
@@ -369,13 +378,14 @@ class Analyzer:
         if self.avg.value is None or not self.spec.bands:
             return np.full((self.channels, len(self.spec.bands)), np.nan)
         # Σ_q weight_bq·P_q as a difference of the cumulative sum taken at the band edges, a
-        # fractional line counted pro rata — equal to dsp.bands.band_weights, at O(Q) cost.
-        p = self.power(unit).reshape(-1)
+        # fractional line counted pro rata — equal to dsp.bands.band_weights, at O(Q) cost,
+        # over the lines between the lowest and the highest edge only.
         e = self._edge_plan
+        p = self.power(unit)[:, e.lo : e.hi].reshape(-1)
         seg = np.add.reduceat(p, e.starts, dtype=np.float64)
         if e.empty.size:
             seg[e.empty] = 0.0  # reduceat gives p[i] for an empty run
-        cum = np.cumsum(seg.reshape(self.channels, -1)[:, :-1], axis=1)  # Σ_{q<i} p[q]
+        cum = np.cumsum(seg.reshape(self.channels, -1)[:, :-1], axis=1)  # Σ_{lo≤q<i} p[q]
         at = cum.take(e.at_cum)  # at each edge, in band order (lo, hi, lo, hi, …)
         at += e.frac * p.take(e.flat_i)
         ms = at[:, 1::2] - at[:, 0::2]
