@@ -89,6 +89,27 @@ def test_bands_equal_the_band_weight_matrix():
     np.testing.assert_allclose(an.bands("g"), ref, rtol=1e-6)
 
 
+def test_bands_with_edges_that_differ_by_channel_equal_the_band_weight_matrix():
+    # Order bands follow each channel's own speed, so each channel has its own edges (one
+    # with no speed: NaN); the sums, over the lines between the lowest and the highest edge
+    # of all channels, must still equal dsp.bands.band_rms with band_weights channel by
+    # channel. A band from 0 Hz and one up to Fmax stretch that range to the whole spectrum.
+    bands = (Band("1x", 0.8, 1.2, "order"), Band("3x", 2.5, 3.5, "order"),
+             Band("wide", 5.0, 6.5, "order"), Band("fixed", 300.0, 320.5))
+    for extra in ((), (Band("dc", 0.0, 3.0), Band("top", 990.0, 1000.0))):
+        spec = _spec(bands=bands + extra, unit="g")
+        an = Analyzer(spec, 4, speed_hz=np.array([24.75, 49.3, np.nan, 7.77]))
+        an.push(np.random.default_rng(5).normal(size=(4, 30000)).astype(np.float32))
+        got = an.bands("g")
+        for c in range(4):
+            ok = np.isfinite(an.band_edges_hz[c, :, 0])
+            w = band_weights(an.band_edges_hz[c, ok], 0.0, an.grid.df_hz, an.q)
+            ref = band_rms(an.power("g")[c], w, an.info.enbw_bins)
+            np.testing.assert_allclose(got[c, ok], ref, rtol=1e-6)
+            assert np.isnan(got[c, ~ok]).all()
+        assert np.isnan(got[2, :3]).all() and np.isfinite(got[2, 3:]).all()
+
+
 def test_white_noise_band_power():
     # White noise of variance σ² has band power σ²·(hi−lo)/(fs/2) (REFERENCES.md, Parseval).
     fs, sigma = 2560.0, 0.7
