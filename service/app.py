@@ -182,6 +182,12 @@ class Service:
         except Exception as err:  # the store failing must not undo the reload
             self.store_errors += 1
             log.error("could not store the alarm state after a reload: %s", err)
+        if gc.get_freeze_count():
+            # The config and rules just replaced were frozen with the start-up heap: a frozen
+            # object in a reference cycle is never collected, so thaw, collect (one full
+            # collection, ~0.1 s, on a rare admin action) and freeze again.
+            gc.unfreeze()
+            _freeze_start_up_heap()
         dropped = sorted(active & set(diff["removed"]))
         log.info(
             "config reloaded from %s: alarm rules +%d ~%d -%d (%d kept), %d token(s)%s",

@@ -100,6 +100,21 @@ def test_new_levels_apply_live_and_the_alarm_keeps_its_state(svc: RunningService
     assert a["value"] == pytest.approx(0.8 / math.sqrt(2), rel=0.02)
 
 
+def test_a_reload_freezes_the_heap_again(svc: RunningService) -> None:
+    # The replaced config and rules were frozen with the start-up heap (service.app): after a
+    # reload the heap is thawed, collected and frozen again, so nothing stale stays frozen.
+    def frozen() -> float:
+        text = svc.client.get("/metrics", headers=auth("ada")).text
+        return float(next(ln.split()[1] for ln in text.splitlines()
+                          if ln.startswith("quaver_gc_frozen_objects ")))
+
+    times = svc.log_tail(400).count("heap frozen")
+    assert times >= 1 and frozen() > 20_000
+    assert reload(svc).status_code == 200
+    svc.wait(lambda: svc.log_tail(400).count("heap frozen") > times or None, "a new freeze")
+    assert frozen() > 20_000
+
+
 def test_tokens_rotate_without_a_restart(svc: RunningService) -> None:
     rewrite(svc, tokens=[token("ada", "admin"), token("olga", "operator")],
             alarms=[{"channel": "a", "band": "b", "alert": 0.4, "danger": 0.55, "latch": True}])
