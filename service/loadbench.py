@@ -249,7 +249,7 @@ class BenchPlan:
     per_source: int = 16  # channels per TCP source
     block_s: float = 0.1  # samples per framed block, s
     queue_blocks: int = 20  # the sources' hand-over queue: 2 s of blocks
-    steps: tuple[int, ...] = (32, 64, 128, 192, 256)
+    steps: tuple[int, ...] = (32, 64, 128, 192, 256, 384, 512)
     step_s: float = 20.0
     refine: int = 1
     fanout_clients: int = 50
