@@ -448,11 +448,12 @@ def spectrum_peaks(
     ``power`` is [C, Q] (or [Q]) in ``input_unit``² RMS² per line (an acceleration unit) on
     f[q] = q·df_hz Hz, from ``n``-sample frames under ``window``. Peaks are interpolated on
     the acceleration spectrum, whose peak shape is exactly the window's
-    (``dsp.tones.find_peaks``, 4·count of them), then each is weighted to ``unit`` at its
-    interpolated frequency (``unit_power_weights``, lines below ``lowcut_hz`` Hz read 0 for
-    velocity and displacement), re-ranked, and given as ``amplitude`` (peak, RMS or
-    peak-to-peak) in ``unit``. What :meth:`Analyzer.peaks` returns, for spectra already read
-    out (the service computes them only when a client asks)."""
+    (``dsp.tones.find_peaks``, max(4·count, count + 8) of them), then each is weighted to
+    ``unit`` at its interpolated frequency (``unit_power_weights``, lines below
+    ``lowcut_hz`` Hz read 0 for velocity and displacement), re-ranked, and given as
+    ``amplitude`` (peak, RMS or peak-to-peak) in ``unit``. What :meth:`Analyzer.peaks`
+    returns, for spectra already read out (the service computes them only when a client
+    asks)."""
     u = resolve_unit(unit)
     acc = find_peaks(
         power, df_hz, window, n,  # type: ignore[arg-type]

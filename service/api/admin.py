@@ -9,7 +9,7 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Depends, HTTPException, Request
 
 from ..auth import Principal
-from .security import require
+from .security import require, role_responses
 
 router = APIRouter(tags=["admin"])
 
@@ -20,8 +20,7 @@ Admin = Annotated[Principal, Depends(require("admin"))]
     "/admin/reload",
     summary="Re-read the config file; apply its [[alarms]] and [[tokens]] (admin role)",
     responses={
-        401: {"description": "no or unknown token"},
-        403: {"description": "the token's role is below admin"},
+        **role_responses("admin"),
         409: {"description": "started without a config file, or a change needs a restart; "
               "nothing applied"},
         422: {"description": "the config file is not valid; nothing applied (problems listed)"},

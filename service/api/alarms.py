@@ -14,7 +14,7 @@ from pydantic import BaseModel, Field
 
 from ..alarms import AckRefused, UnknownAlarm
 from .deps import I64_MAX
-from .security import Operator, Reader
+from .security import Operator, Reader, role_responses
 
 router = APIRouter(tags=["alarms"])
 
@@ -42,8 +42,7 @@ def list_alarms(
     "/alarms/{rule}/ack",
     summary="Acknowledge an alarm (operator role)",
     responses={
-        401: {"description": "no or unknown token"},
-        403: {"description": "the token's role is below operator"},
+        **role_responses("operator"),
         404: {"description": "no such alarm rule"},
         409: {"description": "the alarm is not active or already acknowledged"},
     },

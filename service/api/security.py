@@ -36,6 +36,14 @@ def principal(request: Request) -> Principal | None:
     return authenticate(_bearer(request.headers.get("authorization")), cfg.tokens)
 
 
+def role_responses(role: str) -> dict[int | str, dict[str, str]]:
+    """The OpenAPI responses of a route guarded by :func:`require` (``role``)."""
+    return {
+        401: {"description": "no or unknown token"},
+        403: {"description": f"the token's role is below {role}"},
+    }
+
+
 def require(role: str):  # type: ignore[no-untyped-def]
     """Dependency: 401 without a valid token, 403 when its role is below ``role``."""
 
