@@ -11,17 +11,23 @@ from __future__ import annotations
 
 import re
 import socket
+import subprocess
+import sys
 from pathlib import Path
 
 import httpx
 import pytest
 
+from tests.proc import child_env
 from tests.service.conftest import (
+    REPO,
     SMALL_FS,
     RunningService,
     feed_tone,
+    free_ports,
     one_band_config,
     run_service,
+    to_toml,
 )
 
 LOOPBACK = "127.0.0.1"
@@ -75,13 +81,35 @@ def test_process_figures_for_a_long_run(svc: RunningService) -> None:
         assert f'python_gc_objects_uncollectable_total{{generation="{gen}"}}' in m
 
 
+# Runs service.app.serve() (not run_service) for the config file argv[1] until it serves,
+# then prints the collector's freeze count and exits at once.
+IN_PROCESS = """
+import asyncio, gc, os, sys
+from service.app import serve
+from service.config import load_config
+
+async def main():
+    started = asyncio.Event()
+    task = asyncio.create_task(serve(load_config(sys.argv[1]), announce=lambda _: None,
+                                     started=started))
+    await asyncio.wait_for(started.wait(), 20.0)
+    print(gc.get_freeze_count(), flush=True)
+    os._exit(0)
+
+asyncio.run(main())
+"""
+
+
 def test_in_process_services_do_not_freeze(tmp_path: Path) -> None:
     # serve() only freezes when asked (run_service, the service's own process): tests run
     # several services in one process, and freezing theirs would keep their garbage.
-    import gc
-    import inspect
-
-    from service.app import serve
-
-    assert inspect.signature(serve).parameters["freeze_heap"].default is False
-    assert gc.get_freeze_count() == 0
+    http, tcp = free_ports(2)
+    doc = {**one_band_config(), "service": {"listen": f"{LOOPBACK}:{http}",
+                                            "data_dir": str(tmp_path / "data")}}
+    doc["sources"] = [{**doc["sources"][0], "listen": f"{LOOPBACK}:{tcp}"}]
+    path = tmp_path / "quaver.toml"
+    path.write_text(to_toml(doc), encoding="utf-8")
+    done = subprocess.run([sys.executable, "-c", IN_PROCESS, str(path)], cwd=REPO,
+                          env=child_env(), capture_output=True, text=True, timeout=60)
+    assert done.returncode == 0, done.stderr[-2000:]
+    assert done.stdout.split() == ["0"]
