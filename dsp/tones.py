@@ -170,28 +170,20 @@ def find_peaks(
     return Peaks(frequency_hz=freq, amplitude_rms=amp, line=line)
 
 
-def _by_row(rows: np.ndarray, value: np.ndarray, n_rows: int) -> tuple[np.ndarray, np.ndarray]:
-    """(start [n_rows + 1], dense [n_rows, most]): ``value`` laid out one row per row (−inf
-    after a row's own values); ``rows`` is non-decreasing, row i's values are
-    value[start[i]:start[i + 1]]."""
+def _kth_per_row(rows: np.ndarray, value: np.ndarray, n_rows: int, count: int) -> np.ndarray:
+    """[n_rows] the ``count``-th largest of each row's values (−inf where a row has fewer);
+    ``rows`` is non-decreasing, so row i's values are a run of ``value``."""
     start = np.searchsorted(rows, np.arange(n_rows + 1))
-    most = max(1, int(np.diff(start).max()))
+    most = int(np.diff(start).max()) if rows.size else 0
+    if most < count:
+        return np.full(n_rows, -np.inf)
+    # One row of the values per row (−inf after its own): value i goes to flat index
+    # i + rows[i]·most − start[rows[i]] (a 1-D put; 2-D fancy assignment costs several
+    # times more), then a partition finds each row's count-th largest.
     dense = np.full((n_rows, most), -np.inf)
-    # value i goes to row rows[i], column i − start[rows[i]]: flat index i + rows[i]·most −
-    # start[rows[i]] (a 1-D put; 2-D fancy assignment costs several times more)
     shift = np.arange(n_rows) * most - start[:-1]
     dense.reshape(-1)[np.arange(rows.size) + shift[rows]] = value
-    return start, dense
-
-
-def _kth_per_row(rows: np.ndarray, value: np.ndarray, n_rows: int, count: int) -> np.ndarray:
-    """[n_rows] the ``count``-th largest of each row's values (−inf where a row has fewer)."""
-    if not rows.size:
-        return np.full(n_rows, -np.inf)
-    _, dense = _by_row(rows, value, n_rows)
-    if dense.shape[1] < count:
-        return np.full(n_rows, -np.inf)
-    return np.partition(dense, dense.shape[1] - count, axis=1)[:, dense.shape[1] - count]
+    return np.partition(dense, most - count, axis=1)[:, most - count]
 
 
 def _top_per_row(rows: np.ndarray, value: np.ndarray, n_rows: int, count: int) -> np.ndarray:
