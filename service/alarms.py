@@ -22,11 +22,16 @@ Semantics (``common practice`` for two-level vibration alarms, made precise here
   return to NORMAL (one ``"ack"`` event, latched → normal). An alarm acknowledged while its
   value is still high returns straight to NORMAL when the value clears. Escalating to a
   higher state clears an earlier acknowledgement (the new level needs its own).
-* Sensor fault (channel status ``"sensor-fault"``): the channel's rules are frozen — no
-  transitions, active alarms stay as they are (a fault says nothing about the machine) —
-  and pending on/off delays and baseline learning restart from the first good frame after
-  the fault: data around a fault is suspect, so a transition must re-qualify for its full
-  delay on good data. One ``"sensor-fault"`` event marks entry and one marks exit, per channel.
+* Data quality (``service.quality``): while a channel is ``sensor-fault``, ``no-signal`` or
+  ``failed`` its value rules are suspended — no transitions, active and latched alarms stay
+  as they are (a fault says nothing about the machine), their views show the value as null
+  and the channel as not live — and pending on/off delays and baseline learning restart
+  from the first good frame after it: data around a fault is suspect, so a transition must
+  re-qualify for its full delay on good data. The channel's state changes themselves are
+  ``"status"`` events, made by the service (``service.app``), not here.
+* Loss of signal: a ``"signal"`` rule per channel (``loss_of_signal`` in the config) goes to
+  its level (ALERT or DANGER) as soon as the channel is ``no-signal`` or ``failed`` — the
+  channel's ``stale_after_s`` is its on-delay — and back (or to LATCHED) when frames return.
 * NaN (or a value missing from the frame) is skipped: that frame neither advances nor
   resets any timer.
 * Time running backwards: a frame up to CLOCK_JITTER_NS older than the last one is taken
@@ -53,7 +58,16 @@ from typing import Any, Literal, get_args
 from dsp.analyzer import resolve_unit
 from dsp.types import check_choice
 
-from .config import Config, bands_for, channel_ids, effective_analysis, profiles_of, tones_for
+from .config import (
+    Config,
+    bands_for,
+    channel_ids,
+    channel_settings,
+    effective_analysis,
+    profiles_of,
+    tones_for,
+)
+from .quality import CHANNEL_STATUSES, SUSPENDING
 from .types import SpectralFrame
 
 __all__ = [
@@ -75,16 +89,14 @@ __all__ = [
     "rules_from_config",
 ]
 
-RuleKind = Literal["band", "tone", "overall"]
-EventKind = Literal["transition", "ack", "sensor-fault"]
-ChannelStatus = Literal["ok", "no-data", "gap", "sensor-fault", "overrun"]
+RuleKind = Literal["band", "tone", "overall", "signal"]
+EventKind = Literal["transition", "ack", "status"]
 Cause = Literal["value", "ack"]
 # Frame times that run back by at most this are jitter (arrival-time stamps of a producer
 # sending in bursts) and hold still; further back is a clock step (our choice).
 CLOCK_JITTER_NS = 1_000_000_000
 RULE_KINDS: tuple[str, ...] = get_args(RuleKind)
 EVENT_KINDS: tuple[str, ...] = get_args(EventKind)
-CHANNEL_STATUSES: tuple[str, ...] = get_args(ChannelStatus)  # as in service.pipeline
 CAUSES: tuple[str, ...] = get_args(Cause)
 SNAPSHOT_VERSION = 1
 LEARN_MAX = 2048  # baseline values kept; beyond that every other one is dropped (even spacing)
@@ -254,7 +266,10 @@ class Rule:
             raise ValueError(f"rule id {self.id!r} is not url-safe (letters, digits, . _ -)")
         if isinstance(self.baseline, Mapping):
             object.__setattr__(self, "baseline", Baseline(**self.baseline))
-        if self.baseline is None:
+        if self.kind == "signal":
+            if self.baseline is not None or (self.alert is None) == (self.danger is None):
+                raise ValueError(f"rule {self.id!r}: a signal rule has one level, alert or danger")
+        elif self.baseline is None:
             a, d = self.alert, self.danger
             if a is None or d is None or not (math.isfinite(a) and math.isfinite(d) and 0 < a < d):
                 raise ValueError(
@@ -277,6 +292,8 @@ class Rule:
 
     def pick(self, frame: SpectralFrame) -> float:
         """This rule's value in ``frame`` (NaN when the frame lacks it)."""
+        if self.kind == "signal":
+            return math.nan  # not a value of the frame: see AlarmEngine.set_channel_status
         if self.kind == "overall":
             return float(frame.overall)
         items = frame.bands if self.kind == "band" else frame.tones
@@ -378,6 +395,10 @@ def rules_from_config(cfg: Config, channels: Sequence[str] | None = None) -> lis
                     continue  # the channel's own entry wins
             chosen[key] = (j, rule)
     rules = [r for _, r in chosen.values()]
+    for ch in chans:
+        level = channel_settings(cfg, ch).loss_of_signal
+        if level != "off":
+            rules.append(signal_rule(ch, level))
     seen: dict[str, Rule] = {}
     for r in rules:
         if r.id in seen:
@@ -387,6 +408,22 @@ def rules_from_config(cfg: Config, channels: Sequence[str] | None = None) -> lis
             )
         seen[r.id] = r
     return rules
+
+
+def signal_rule(channel: str, level: str) -> Rule:
+    """The loss-of-signal rule of ``channel`` at ``level`` (``"alert"`` or ``"danger"``).
+
+    Its levels hold 1 (the channel is not delivering) in the slot of its level; the value
+    it watches is 1 while the channel is ``no-signal`` or ``failed``, 0 otherwise."""
+    return Rule(
+        id=f"{channel}.signal",
+        channel=channel,
+        kind="signal",
+        name="loss of signal",
+        alert=1.0 if level == "alert" else None,
+        danger=1.0 if level == "danger" else None,
+        hysteresis=0.0,
+    )
 
 
 def _watched(
@@ -426,11 +463,12 @@ class AlarmEvent:
     ``id`` is None until the store assigns it (a monotonically increasing integer, see
     ``service.store.Store.put_events``). ``t_ns``: ns since the Unix epoch (the frame's
     time, or the time given to :meth:`AlarmEngine.ack`). ``kind``: ``"transition"`` (state
-    change by value), ``"ack"`` or ``"sensor-fault"`` (``from_state``/``to_state`` are then
-    ``"ok"``/``"sensor-fault"``). ``value`` (the rule's value then) and ``level`` (the
+    change by value), ``"ack"`` or ``"status"`` (a channel's data-quality state changed:
+    ``from_state``/``to_state`` are then states of ``service.quality``, the message says
+    why). ``value`` (the rule's value then) and ``level`` (the
     threshold crossed: a level when raising, level·(1 − h) when clearing; for an ack the
     level of the acknowledged state) are in ``unit``; None when not applicable. ``rule`` is a
-    rule id, or ``"<channel>.sensor-fault"``. ``latched``: the alarm now holds until
+    rule id, or ``"<channel>.status"``. ``latched``: the alarm now holds until
     acknowledged.
     """
 
@@ -497,7 +535,9 @@ class AlarmView:
     acked_ns: int | None
     note: str
     learning: bool
-    suspended: bool  # the channel is in sensor fault
+    suspended: bool  # the channel is not live (sensor fault, no signal, failed): rule frozen
+    # the channel's suspending status, or "ok" (gap and overrun do not suspend rules)
+    channel_status: str = "ok"
 
     def as_dict(self) -> dict[str, Any]:
         d = {f.name: getattr(self, f.name) for f in fields(self)}
@@ -533,6 +573,8 @@ class _Alarm:
     @property
     def levels(self) -> tuple[float, float] | None:
         r = self.rule
+        if r.kind == "signal":
+            return None  # not a value with levels: see AlarmEngine._signal
         if r.baseline is None:
             return float(r.alert), float(r.danger)  # type: ignore[arg-type]
         if self.base is None:
@@ -589,7 +631,7 @@ class AlarmEngine:
             a = _Alarm(r)
             self._alarms[r.id] = a
             self._by_channel.setdefault(r.channel, []).append(a)
-        self._faulted: set[str] = set()
+        self._suspended: dict[str, str] = {}  # channel → its suspending status
 
     def replace_rules(self, rules: Iterable[Rule]) -> dict[str, list[str]]:
         """Swap in a new rule set (a config reload); returns the rule ids ``added``,
@@ -634,17 +676,17 @@ class AlarmEngine:
     def evaluate(
         self, frame: SpectralFrame, channel_status: str = "ok", *, fault: str = ""
     ) -> list[AlarmEvent]:
-        """Run the rules of ``frame.channel`` on this frame at ``frame.t_ns``.
+        """Run the value rules of ``frame.channel`` on this frame at ``frame.t_ns``.
 
-        ``channel_status`` is the channel's status (one of :data:`CHANNEL_STATUSES`); only
-        ``"sensor-fault"`` changes anything (see :meth:`set_channel_status`; ``fault`` is its
-        reason for the event message). Returns the events in the order they happened.
-        """
+        ``channel_status`` is the channel's data-quality state (one of
+        :data:`~service.quality.CHANNEL_STATUSES`): a suspending one (sensor fault, no
+        signal, failed) evaluates nothing (see :meth:`set_channel_status`). Returns the
+        events in the order they happened."""
         events = self.set_channel_status(frame.channel, channel_status, frame.t_ns, fault=fault)
-        if frame.channel in self._faulted:
+        if frame.channel in self._suspended:
             return events
         for a in self._by_channel.get(frame.channel, ()):
-            if not a.rule.watches(frame):
+            if a.rule.kind == "signal" or not a.rule.watches(frame):
                 continue
             ev = self._step(a, a.rule.pick(frame), frame.t_ns, frame.unit)
             if ev is not None:
@@ -654,42 +696,58 @@ class AlarmEngine:
     def set_channel_status(
         self, channel: str, status: str, t_ns: int, *, fault: str = ""
     ) -> list[AlarmEvent]:
-        """Tell the engine a channel's status without a frame (e.g. no frames during a fault).
+        """Tell the engine a channel's data-quality state (on every change, frame or none).
 
-        Entering ``"sensor-fault"`` suspends the channel's rules and gives one
-        ``"sensor-fault"`` event; leaving it (any other status) gives one more. Pending
-        delays and baseline learning restart on both edges (module docstring).
-        """
+        A suspending state (sensor fault, no signal, failed) freezes the channel's value
+        rules; pending delays and baseline learning restart on both edges (module
+        docstring). The channel's ``"signal"`` rule goes to its level while the channel is
+        ``no-signal`` or ``failed`` and clears when it is not; its events are returned."""
         check_choice("channel_status", status, CHANNEL_STATUSES)
-        faulted = status == "sensor-fault"
-        if faulted == (channel in self._faulted):
-            return []
         rules = self._by_channel.get(channel, [])
-        for a in rules:
-            a.reset_pending()
-        n = f"{len(rules)} alarm rule{'s' if len(rules) != 1 else ''}"
-        if faulted:
-            self._faulted.add(channel)
-            msg = f"{channel}: sensor fault{f' ({fault})' if fault else ''}; {n} suspended"
-            states = ("ok", "sensor-fault")
+        suspended = status in SUSPENDING
+        was = self._suspended.get(channel)
+        events: list[AlarmEvent] = []
+        if suspended != (was is not None):
+            for a in rules:
+                a.reset_pending()
+        if suspended:
+            self._suspended[channel] = status
         else:
-            self._faulted.discard(channel)
-            msg = f"{channel}: sensor fault cleared; {n} resume"
-            states = ("sensor-fault", "ok")
-        return [
-            AlarmEvent(
-                t_ns=int(t_ns),
-                channel=channel,
-                rule=f"{channel}.sensor-fault",
-                kind="sensor-fault",
-                from_state=states[0],
-                to_state=states[1],
-                value=None,
-                level=None,
-                unit="",
-                message=msg,
-            )
-        ]
+            self._suspended.pop(channel, None)
+        lost = status in ("no-signal", "failed")
+        for a in rules:
+            if a.rule.kind == "signal":
+                ev = self._signal(a, lost, int(t_ns), fault)
+                if ev is not None:
+                    events.append(ev)
+        return events
+
+    def _signal(self, a: _Alarm, lost: bool, t_ns: int, cause: str) -> AlarmEvent | None:
+        """The loss-of-signal rule ``a``: to its level when ``lost``, back when not."""
+        a.value, a.value_ns = (1.0 if lost else 0.0), t_ns
+        level = _A if a.rule.alert is not None else _D
+        before = a.state
+        if lost and before.rank < level.rank:
+            after = level
+            a.acked, a.acked_by, a.acked_ns, a.note = False, "", None, ""
+            a.peak = after if after.rank > a.peak.rank else a.peak
+            msg = f"{a.rule.channel}: LOSS OF SIGNAL ({after.value.upper()})"
+            msg += f": {cause}" if cause else ""
+        elif not lost and before.rank > 0:
+            after = _L if a.rule.latch and not a.acked else _N
+            msg = f"{a.rule.channel}: signal back"
+            msg += "; latched until acknowledged" if after is _L else ""
+        else:
+            return None
+        check_transition(before, after, "value")
+        a.state, a.since_ns = after, t_ns
+        if after is _N:
+            a.clear_ack()
+        return AlarmEvent(
+            t_ns=t_ns, channel=a.rule.channel, rule=a.rule.id, kind="transition",
+            from_state=before.value, to_state=after.value, value=a.value, level=1.0,
+            unit="", message=msg, latched=a.latched,
+        )
 
     def ack(self, rule_id: str, who: str, note: str = "", *, t_ns: int) -> AlarmEvent:
         """Acknowledge the active alarm of ``rule_id`` at ``t_ns``; return the ``"ack"`` event.
@@ -774,7 +832,7 @@ class AlarmEngine:
                 "learn_stride": a.learn_stride,
                 "learn_count": a.learn_count,
             }
-        return {"version": SNAPSHOT_VERSION, "alarms": alarms, "faulted": sorted(self._faulted)}
+        return {"version": SNAPSHOT_VERSION, "alarms": alarms, "suspended": dict(self._suspended)}
 
     def restore(self, snapshot: Mapping[str, Any]) -> None:
         """Resume from :meth:`snapshot` output (e.g. after a restart).
@@ -810,7 +868,13 @@ class AlarmEngine:
             if a.rule.baseline is not None and same_baseline:
                 a.base, a.learn_start_ns, a.learn = s["base"], s["learn_start_ns"], list(s["learn"])
                 a.learn_stride, a.learn_count = int(s["learn_stride"]), int(s["learn_count"])
-        self._faulted = set(snapshot.get("faulted", ()))
+        # "faulted" (a list of channels in sensor fault) is how older snapshots said it
+        suspended = snapshot.get("suspended")
+        if suspended is None:
+            suspended = dict.fromkeys(snapshot.get("faulted", ()), "sensor-fault")
+        self._suspended = {
+            c: s for c, s in dict(suspended).items() if s in SUSPENDING
+        }
 
     # -- internals -----------------------------------------------------------------------
     def _step(self, a: _Alarm, v: float, t_ns: int, unit: str) -> AlarmEvent | None:
@@ -899,6 +963,8 @@ class AlarmEngine:
         return f"{self._what(a)}: {word}, {v:.4g} {u} < {level:.4g} {u}{tail}"
 
     def _state_level(self, a: _Alarm) -> float | None:
+        if a.rule.kind == "signal":
+            return 1.0 if a.state.rank or a.state is _L else None
         levels = a.levels
         state = a.peak if a.state is _L else a.state
         if levels is None or state.rank == 0:
@@ -917,11 +983,12 @@ class AlarmEngine:
             state=a.state,
             peak=a.peak,
             since_ns=a.since_ns,
-            value=a.value,
+            # a value from before the channel stopped being live is not shown as current
+            value=None if r.channel in self._suspended and r.kind != "signal" else a.value,
             value_ns=a.value_ns,
             level=self._state_level(a),
-            alert=levels[0] if levels else None,
-            danger=levels[1] if levels else None,
+            alert=levels[0] if levels else r.alert if r.kind == "signal" else None,
+            danger=levels[1] if levels else r.danger if r.kind == "signal" else None,
             unit=r.unit,
             latch=r.latch,
             latched=a.latched,
@@ -929,6 +996,7 @@ class AlarmEngine:
             acked_by=a.acked_by,
             acked_ns=a.acked_ns,
             note=a.note,
-            learning=levels is None,
-            suspended=r.channel in self._faulted,
+            learning=levels is None and r.kind != "signal",
+            suspended=r.channel in self._suspended and r.kind != "signal",
+            channel_status=self._suspended.get(r.channel, "ok"),
         )

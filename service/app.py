@@ -12,7 +12,7 @@ import logging
 import signal
 import time
 import tomllib
-from collections.abc import Callable
+from collections.abc import Callable, Iterable
 from importlib import resources
 from pathlib import Path
 from typing import Any
@@ -31,14 +31,19 @@ from .config import (
     parse_listen,
 )
 from .hub import Hub
-from .pipeline import SourcePipeline, channel_states
+from .pipeline import ChannelState, SourcePipeline, channel_states
 from .profiles import ProfileBank
+from .quality import Inputs, derive
 from .sources import make_source
 from .spectra import spectrum_values
 from .store import Retention, Store, StoreError, trend_key
 from .types import SpectralFrame
 
 log = logging.getLogger("quaver")
+WATCH_PERIOD_S = 0.25  # how often every channel's state is derived again (our choice)
+RESTART_FIRST_S = 1.0  # back-off before a failed pipeline runs again, doubled each time …
+RESTART_MAX_S = 30.0  # … up to this (our choice)
+RESTART_STABLE_S = 60.0  # a pipeline that ran this long before failing starts over at 1 s
 
 
 class ReloadRefused(Exception):
@@ -66,12 +71,13 @@ class Service:
         self.pipelines: list[SourcePipeline] = []
         self.tasks: list[asyncio.Task[None]] = []
         self.store_errors = 0
+        self.status_changes: dict[str, int] = {}  # transitions into each state, for /metrics
         all_ids: list[str] = []
         for src_cfg in cfg.sources:
             source = make_source(src_cfg)
             ids = list(source.channel_ids)
             all_ids += ids
-            states = channel_states(cfg, src_cfg.id, ids)
+            states = channel_states(cfg, src_cfg.id, ids, fs=source.fs)
             self.hub.channels.update(states)
             self.hub.sources[src_cfg.id] = source
             self.pipelines.append(
@@ -80,10 +86,14 @@ class Service:
                     states,
                     self.on_frames,
                     make_bank=functools.partial(ProfileBank, cfg, ids),
+                    cfg=cfg,
                     evidence_s=(cfg.service.evidence_before_s, cfg.service.evidence_after_s),
                 )
             )
         self.channel_ids = all_ids
+        self.by_source = {p.source.id: p for p in self.pipelines}
+        self.hub.pipelines.update(self.by_source)
+        self.started_mono = time.monotonic()
         self.alarms = AlarmEngine(rules_from_config(cfg, channels=all_ids))
         max_bytes = None if cfg.service.max_db_mb is None else int(cfg.service.max_db_mb * 2**20)
         self.store = Store(
@@ -116,17 +126,101 @@ class Service:
             start = getattr(p.source, "start", None)
             if start is not None:
                 await start()
+        self.started_mono = time.monotonic()
+        for st in self.hub.channels.values():
+            st.status_since_ns = time.time_ns()
         for p in self.pipelines:
-            self.tasks.append(asyncio.create_task(self._run(p), name=f"pipeline-{p.source.id}"))  # type: ignore[attr-defined]
+            self.tasks.append(asyncio.create_task(self._run(p), name=f"pipeline-{p.source.id}"))
+        self.tasks.append(asyncio.create_task(self._watch(), name="quality-watch"))
 
     async def _run(self, p: SourcePipeline) -> None:
-        try:
-            await p.run()
-            log.info("source %s ended", p.source.id)  # type: ignore[attr-defined]
-        except asyncio.CancelledError:
-            raise
-        except Exception:  # a source failing must not take the service down
-            log.exception("source %s failed", p.source.id)  # type: ignore[attr-defined]
+        """Run one source's pipeline; if it raises, report it (``failed``) and run it again
+        after a back-off of 1, 2, 4 … 30 s (a source failing must not take the service
+        down, nor leave its channels looking healthy)."""
+        backoff_s = RESTART_FIRST_S
+        while True:
+            t0 = time.monotonic()
+            try:
+                await p.run()
+                log.info("source %s ended", p.source.id)
+                return
+            except asyncio.CancelledError:
+                raise
+            except Exception as err:
+                p.failures += 1
+                p.failed = f"{type(err).__name__}: {err}"[:500]
+                log.exception("source %s failed (failure %d); restarting in %g s",
+                              p.source.id, p.failures, backoff_s)
+            await self._refresh_quality(p.channels.values())
+            if time.monotonic() - t0 > RESTART_STABLE_S:
+                backoff_s = RESTART_FIRST_S  # it had run well for a while: start over
+            await asyncio.sleep(backoff_s)
+            backoff_s = min(backoff_s * 2, RESTART_MAX_S)
+            p.reset_analysis()
+            p.failed = ""
+            for st in p.channels.values():
+                st.last_frame_mono = None
+            p.started_mono = time.monotonic()
+            log.info("source %s: pipeline restarted", p.source.id)
+
+    async def _watch(self) -> None:
+        """Derive every channel's state a few times a second, so that a producer that goes
+        silent is seen within its channel's ``stale_after_s`` (plus this period)."""
+        while True:
+            await asyncio.sleep(WATCH_PERIOD_S)
+            try:
+                await self._refresh_quality(self.hub.channels.values())
+            except Exception:  # the watch must outlive any one bad pass
+                log.exception("channel state watch failed")
+
+    async def _refresh_quality(
+        self, channels: Iterable[ChannelState], frames: dict[str, SpectralFrame] | None = None
+    ) -> None:
+        """Derive the state of ``channels`` (service.quality) and, for each that changed,
+        make a ``status`` event and tell the alarm engine (loss-of-signal transitions);
+        commit the events, then announce them."""
+        now, now_ns = time.monotonic(), time.time_ns()
+        events: list[tuple[AlarmEvent, SpectralFrame | None]] = []
+        connected: dict[str, object] = {}
+        for st in channels:
+            p = self.by_source[st.source_id]
+            if (st.status == "ok" and st.data_status == "ok" and not p.failed
+                    and st.last_frame_mono is not None
+                    and now - st.last_frame_mono <= st.stale_after_s):
+                continue  # the common case, kept cheap: it runs for every block
+            started = max(self.started_mono, p.started_mono)
+            if p.source.id not in connected:
+                connected[p.source.id] = p.source.status().get("connected")
+            link = connected[p.source.id]
+            status, cause = derive(Inputs(
+                data_status=st.data_status,
+                fault=st.data_fault,
+                frame_age_s=None if st.last_frame_mono is None else now - st.last_frame_mono,
+                since_start_s=now - started,
+                stale_after_s=st.stale_after_s,
+                failed=p.failed,
+                connected=link if isinstance(link, bool) else None,
+            ))
+            changed = status != st.status
+            if not changed and cause == st.fault:
+                continue
+            before = st.status
+            st.status, st.fault = status, cause
+            if not changed:
+                continue
+            st.status_since_ns, st.status_changes = now_ns, st.status_changes + 1
+            self.status_changes[status] = self.status_changes.get(status, 0) + 1
+            msg = f"{st.id}: {status}" + (f" ({cause})" if cause else f" (was {before})")
+            (log.info if status == "ok" else log.warning)("channel %s", msg)
+            events.append((AlarmEvent(
+                t_ns=now_ns, channel=st.id, rule=f"{st.id}.status", kind="status",
+                from_state=before, to_state=status, value=None, level=None, unit="",
+                message=msg,
+            ), None))
+            for e in self.alarms.set_channel_status(st.id, status, now_ns, fault=cause):
+                events.append((e, None))
+        if events:
+            await self._commit_and_announce(None, events)
 
     async def stop(self) -> None:
         for t in self.tasks:
@@ -216,10 +310,15 @@ class Service:
         self, p: SourcePipeline, frames: list[SpectralFrame], latency_s: float
     ) -> None:
         self._store_evidence(p)
+        now = time.monotonic()
+        for f in frames:
+            p.channels[f.channel].last_frame_mono = now
+        # every block: a fault seen by the worker is a state (and an event) at once
+        await self._refresh_quality(p.channels.values())
         if not frames:
             return
         self.hub.publish(frames, latency_s)
-        events = []
+        events: list[tuple[AlarmEvent, SpectralFrame | None]] = []
         for f in frames:
             values = {"overall": f.overall}
             values.update({f"band:{b.name}": b.value for b in f.bands})
@@ -234,7 +333,7 @@ class Service:
             await self._commit_and_announce(p, events)
 
     async def _commit_and_announce(
-        self, p: SourcePipeline, events: list[tuple[AlarmEvent, SpectralFrame]]
+        self, p: SourcePipeline | None, events: list[tuple[AlarmEvent, SpectralFrame | None]]
     ) -> None:
         evs = [e for e, _ in events]
         try:
@@ -248,7 +347,7 @@ class Service:
         for e, (_, frame) in zip(stored, events, strict=True):
             log.info("alarm event %s: %s", e.id, e.message)
             self.hub.publish_event(e.as_dict())
-            if e.raises and e.id is not None:
+            if e.raises and e.id is not None and p is not None and frame is not None:
                 values, unit, amp = spectrum_values(frame)
                 p.request_evidence(
                     e.id,

@@ -369,6 +369,25 @@ class ChannelConfig(_Model):
         description="Raw sample magnitude at which the sensor chain clips "
         "(raw units); |x| >= clip_level is a sensor fault.",
     )
+    range: float | None = Field(
+        None,
+        gt=0,
+        description="Largest plausible |sample| in input_unit (after sensitivity): the "
+        "sensor's measuring range. A sample beyond it (or NaN/inf) is a sensor fault and "
+        "never reaches the analysis. Default: 2000 g (19613.3 m/s2).",
+    )
+    stale_after_s: float | None = Field(
+        None,
+        gt=0,
+        le=86400,
+        description="No new analysed spectrum for this long and the channel is no-signal, s. "
+        "Default: max(5 s, 3 hops, one frame + 2 hops) of its slowest profile.",
+    )
+    loss_of_signal: Literal["alert", "danger", "off"] = Field(
+        "alert",
+        description="Level of the channel's loss-of-signal alarm (rule '<channel>.signal'), "
+        "raised while the channel is no-signal or its source failed; 'off': none.",
+    )
     analysis: AnalysisOverride = Field(  # type: ignore[valid-type]
         default_factory=AnalysisOverride, description="Per-channel analysis overrides."
     )

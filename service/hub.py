@@ -10,7 +10,7 @@ import time
 from collections.abc import Iterable
 from dataclasses import dataclass, field
 
-from .pipeline import ChannelState
+from .pipeline import ChannelState, SourcePipeline
 from .types import SpectralFrame
 
 
@@ -110,6 +110,7 @@ class Hub:
     latest: dict[str, SpectralFrame] = field(default_factory=dict)  # primary profile's
     by_profile: dict[tuple[str, str], SpectralFrame] = field(default_factory=dict)
     sources: dict[str, object] = field(default_factory=dict)
+    pipelines: dict[str, SourcePipeline] = field(default_factory=dict)  # by source id
     subscribers: set[Subscriber] = field(default_factory=set)
     started_ns: int = field(default_factory=time.time_ns)
     frames_published: int = 0

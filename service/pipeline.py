@@ -25,15 +25,21 @@ import numpy as np
 from dsp.analyzer import Analyzer, spectrum_peaks
 
 from .config import Config, channel_settings, profiles_of
-from .profiles import OVERALL, ChannelGroup, ProfileBank, overall_band
+from .profiles import OVERALL, ChannelGroup, ProfileBank, ProfilePlan, overall_band, plan_profiles
+from .quality import (
+    DEFAULT_RANGE,
+    FAULT_HOLD_S,
+    OVERRUN_HOLD_S,
+    STALE_MIN_S,
+    default_stale_after_s,
+)
+from .sources.base import Source
 from .types import BandValue, FramePeaks, PushPeaks, SampleBlock, SpectralFrame, ToneValue
 
 log = logging.getLogger("quaver.pipeline")
 
 __all__ = ["OVERALL", "ChannelGroup", "ChannelState", "SourcePipeline", "overall_band"]
 FLAT_MIN_S = 0.05  # identical samples for this long = a flat (dead) sensor; our choice
-FAULT_HOLD_S = 2.0  # a sensor fault is held this long after the last bad block (common practice)
-OVERRUN_HOLD_S = 5.0
 
 
 @dataclass
@@ -48,19 +54,32 @@ class ChannelState:
     sensitivity: float
     speed_rpm: float | None
     clip_level: float | None
+    range: float = float("inf")  # largest plausible |sample|, input units (sensor's range)
+    stale_after_s: float = 5.0  # no new frame for this long: no-signal
+    loss_of_signal: str = "alert"  # the loss-of-signal alarm's level, or "off"
     fs: float = 0.0
-    status: str = "no-data"  # ok | no-data | gap | sensor-fault | overrun
-    fault: str = ""  # why the sensor is in fault, empty when ok
+    # The channel's data-quality state (service.quality), derived on the event loop from
+    # what the worker saw (data_status) and when the latest frame came; ``fault`` says why.
+    status: str = "no-signal"
+    fault: str = "waiting for the first spectrum"
+    status_since_ns: int = 0
+    status_changes: int = 0
+    # Written by the source's worker thread: what the latest blocks showed.
+    data_status: str = "ok"  # ok | sensor-fault | gap | overrun
+    data_fault: str = ""
+    settling: bool = False  # analysis restarted after a sensor fault, no clean frame yet
     fault_until: float = 0.0  # monotonic seconds
     overrun_until: float = 0.0
     samples: int = 0
     gaps: int = 0
     frames: int = 0
     nonfinite_blocks: int = 0
+    range_blocks: int = 0
     flat_blocks: int = 0
     clipped_blocks: int = 0
     sensor_faults: int = 0  # transitions into sensor fault
     last_block_ns: int = 0
+    last_frame_mono: float | None = None  # monotonic s when its latest frame arrived
     notes: tuple[str, ...] = ()
     profiles: tuple[str, ...] = ("default",)  # analysis profiles, the primary one first
     profile_info: dict[str, dict[str, object]] = field(default_factory=dict)  # at the stream's fs
@@ -77,11 +96,17 @@ class ChannelState:
             "speed_rpm": self.speed_rpm,
             "status": self.status,
             "fault": self.fault,
+            "status_since_ns": self.status_since_ns,
+            "range": self.range if math.isfinite(self.range) else None,
+            "stale_after_s": self.stale_after_s,
+            "loss_of_signal": self.loss_of_signal,
             "counters": {
                 "samples": self.samples,
                 "gaps": self.gaps,
                 "frames": self.frames,
+                "status_changes": self.status_changes,
                 "nonfinite_blocks": self.nonfinite_blocks,
+                "range_blocks": self.range_blocks,
                 "flat_blocks": self.flat_blocks,
                 "clipped_blocks": self.clipped_blocks,
                 "sensor_faults": self.sensor_faults,
@@ -153,10 +178,11 @@ class Evidence:
 
 @dataclass
 class SourcePipeline:
-    source: object  # a Source: id, channel_ids, fs, counters, async iteration, aclose()
+    source: Source
     channels: dict[str, ChannelState]
     publish: Callable[[SourcePipeline, list[SpectralFrame], float], Awaitable[None]]
     make_bank: Callable[[float], ProfileBank]  # built at the stream's sample rate
+    cfg: Config | None = None  # for each channel's stale_after_s once the plans are known
     bank: ProfileBank | None = None
     fs: float | None = None
     evidence_s: tuple[float, float] = (3.0, 3.0)  # waveform kept before / after an event
@@ -165,13 +191,15 @@ class SourcePipeline:
     ready: collections.deque[Evidence] = field(default_factory=collections.deque)
     seq: int = 0
     blocks: int = 0
+    restarts: int = 0  # analysis restarts after a sensor fault
+    failures: int = 0  # times run() raised; the service restarts it (service.app)
+    failed: str = ""  # the latest failure's text while it is being restarted
     latency_s: float = 0.0
     _next_index: int | None = None
     _executor: ThreadPoolExecutor = field(init=False)
 
     def __post_init__(self) -> None:
-        sid = getattr(self.source, "id", "source")
-        self._executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix=f"dsp-{sid}")
+        self.started_mono = time.monotonic()  # when this run of the pipeline began
         self._last_drops = 0
         self._last_block: SampleBlock | None = None
         self._flat_run: np.ndarray | None = None
@@ -180,14 +208,24 @@ class SourcePipeline:
     async def run(self) -> None:
         """Consume the source until it ends or the task is cancelled."""
         loop = asyncio.get_running_loop()
+        self._executor = ThreadPoolExecutor(
+            max_workers=1, thread_name_prefix=f"dsp-{self.source.id}"
+        )
         try:
-            async for block in self.source:  # type: ignore[attr-defined]
+            async for block in self.source:
                 t0 = time.perf_counter()
                 frames = await loop.run_in_executor(self._executor, self.process, block)
                 self.latency_s = time.perf_counter() - t0
                 await self.publish(self, frames, self.latency_s)
         finally:
             self._executor.shutdown(wait=False, cancel_futures=True)
+
+    def reset_analysis(self) -> None:
+        """Forget the engine's state (before running again after a failure): the next block
+        builds a new profile bank, as at the first block."""
+        self.bank, self.fs, self._next_index = None, None, None
+        self._flat_run = self._flat_last = None
+        self.requests.clear()
 
     # -- worker thread -----------------------------------------------------------------
     def process(self, block: SampleBlock) -> list[SpectralFrame]:
@@ -208,19 +246,30 @@ class SourcePipeline:
                 st.profile_info = {p.name: p.as_dict() for p in plans}
                 st.notes = tuple(f"{p.name}: {n}" if len(plans) > 1 else n
                                  for p in plans for n in p.notes)
+                if self.cfg is not None:
+                    st.stale_after_s = stale_after_s(self.cfg, cid, plans)
             self.ring = WaveformRing(len(block.channel_ids), block.fs, sum(self.evidence_s) + 1.0)
         states = [self.channels[c] for c in block.channel_ids]
         x = block.data
         gap = self._next_index is not None and block.first_index != self._next_index
         self._next_index = block.first_index + block.n
-        drops = int(getattr(getattr(self.source, "counters", None), "drops", 0))
+        drops = self.source.counters.drops
         overrun = drops > self._last_drops
         self._last_drops = drops
         sens = np.array([s.sensitivity for s in states], dtype=np.float32)[:, None]
-        finite = np.isfinite(x).all(axis=1)
-        if not finite.all():
-            x = np.where(np.isfinite(x), x, 0.0).astype(np.float32)
+        # One pass finds NaN/inf and values beyond the sensor's range (NaN compares false);
+        # such samples become 0 before anything else sees them, so no average, decimator or
+        # ring holds them, and nothing overflows on the way (1e20 g squared is inf in float32).
+        limit = np.array([s.range / abs(s.sensitivity) if s.sensitivity else np.inf
+                          for s in states], dtype=np.float64)[:, None]
+        good = np.abs(x) <= limit
+        in_range = good.all(axis=1)
+        finite = in_range.copy()
+        if not in_range.all():
+            finite = np.isfinite(x).all(axis=1)
+            x = np.where(good, x, 0.0).astype(np.float32)
         flat = self._flat_line(x, block.fs, gap)
+        restart = False
         for c, st in enumerate(states):
             st.fs = block.fs
             st.samples += block.n
@@ -231,6 +280,8 @@ class SourcePipeline:
             reason = (
                 "non-finite samples (NaN/inf)"
                 if not finite[c]
+                else f"values beyond the sensor's range (|x| > {st.range:g} {st.input_unit})"
+                if not in_range[c]
                 else "flat line"
                 if flat[c]
                 else "clipping"
@@ -239,12 +290,21 @@ class SourcePipeline:
             )
             if reason:
                 st.nonfinite_blocks += not finite[c]
+                st.range_blocks += bool(finite[c] and not in_range[c])
                 st.flat_blocks += bool(flat[c])
                 st.clipped_blocks += clipped
-                if st.status != "sensor-fault":
+                if st.data_status != "sensor-fault":
                     st.sensor_faults += 1
                     log.warning("channel %s: sensor fault: %s", st.id, reason)
-                st.fault, st.fault_until = reason, now + FAULT_HOLD_S
+                st.data_status, st.data_fault = "sensor-fault", reason
+                st.fault_until, st.settling = now + FAULT_HOLD_S, False
+            elif st.data_status == "sensor-fault" and not st.settling and now >= st.fault_until:
+                # The fault is over: restart the analysis so that no average still holds the
+                # zeros that stood in for the bad samples (the source's other channels restart
+                # with it, as at a gap; their values stay exact).
+                restart = st.settling = True
+                st.data_fault = "analysis restarting after a sensor fault"
+                log.info("channel %s: sensor fault cleared; analysis restarts", st.id)
             if overrun:
                 st.overrun_until = now + OVERRUN_HOLD_S
         x = x * sens  # raw units → engineering units
@@ -255,20 +315,22 @@ class SourcePipeline:
         frames: list[SpectralFrame] = []
         if gap:
             for st in states:
-                st.status = "gap"
+                if st.data_status != "sensor-fault":
+                    st.data_status = "gap"
+        if restart and self.fs is not None:
+            self.bank = self.make_bank(self.fs)
+            self.restarts += 1
         if self.bank is not None:
             for g, new in self.bank.push(x, block.first_index):
                 frames += self._frames(g, block, new, self.bank.end_index(g))
         for st in states:
-            if now < st.fault_until:
-                st.status = "sensor-fault"
-            elif st.status == "sensor-fault":
-                st.status, st.fault = "ok", ""
-                log.info("channel %s: sensor fault cleared", st.id)
-            elif now < st.overrun_until:
-                st.status = "overrun"
-            elif st.status in ("overrun", "no-data") and st.frames:
-                st.status = "ok"
+            if st.data_status == "sensor-fault":
+                if now < st.fault_until or st.settling:
+                    continue
+            if now < st.overrun_until:
+                st.data_status, st.data_fault = "overrun", ""
+            elif st.data_status != "gap":
+                st.data_status, st.data_fault = "ok", ""
         return frames
 
     def _flat_line(self, x: np.ndarray, fs: float, gap: bool) -> np.ndarray:
@@ -364,8 +426,11 @@ class SourcePipeline:
             st = self.channels[cid]
             if g.primary[c]:
                 st.frames += new
-            if st.status in ("gap", "no-data"):
-                st.status = "ok"
+            if st.settling:  # the first frame since the analysis restarted: clean again
+                st.settling = False
+                st.data_status, st.data_fault = "ok", ""
+            elif st.data_status == "gap":
+                st.data_status = "ok"
             self.seq += 1
             out.append(
                 SpectralFrame(
@@ -403,6 +468,7 @@ class SourcePipeline:
                         for name, f, v in zip(tone_names, tone_hz_l[c], tones_l[c], strict=True)
                     ),
                     peaks=FramePeaks(peaks, c),
+                    quality="sensor-fault" if st.data_status == "sensor-fault" else "ok",
                 )
             )
         return out
@@ -423,12 +489,15 @@ def _peak_rows(power_in: np.ndarray, an: Analyzer) -> list[tuple[ToneValue, ...]
 
 
 def channel_states(
-    cfg: Config, source_id: str, channel_ids: Sequence[str]
+    cfg: Config, source_id: str, channel_ids: Sequence[str], fs: float | None = None
 ) -> dict[str, ChannelState]:
+    """The channels of one source as configured; ``fs`` (Hz), when the config gives it, sets
+    the default ``stale_after_s`` before the first block (it is set again from the plans
+    when the stream's rate is known)."""
     out = {}
     for cid in channel_ids:
         ch = channel_settings(cfg, cid)
-        out[cid] = ChannelState(
+        st = ChannelState(
             id=cid,
             source_id=source_id,
             machine=ch.machine,
@@ -437,6 +506,22 @@ def channel_states(
             sensitivity=ch.sensitivity,
             speed_rpm=ch.speed_rpm,
             clip_level=ch.clip_level,
+            range=ch.range if ch.range is not None else DEFAULT_RANGE[ch.input_unit],
+            loss_of_signal=ch.loss_of_signal,
             profiles=tuple(profiles_of(cfg, cid)),
         )
+        st.stale_after_s = stale_after_s(cfg, cid, plan_profiles(cfg, cid, fs) if fs else [])
+        out[cid] = st
     return out
+
+
+def stale_after_s(cfg: Config, channel_id: str, plans: Sequence[ProfilePlan]) -> float:
+    """The channel's ``stale_after_s``: as configured, else from its profiles' frame and hop
+    times (``service.quality.default_stale_after_s``; 5 s while they are not known)."""
+    given = channel_settings(cfg, channel_id).stale_after_s
+    if given is not None:
+        return given
+    if not plans:
+        return STALE_MIN_S
+    g = [p.spec.grid for p in plans]
+    return default_stale_after_s(max(x.hop / x.fs for x in g), max(x.n / x.fs for x in g))

@@ -175,3 +175,6 @@ class SpectralFrame:
     primary: bool = True  # is ``profile`` the channel's primary (first) profile
     overall_lo_hz: float = float("nan")  # the band the overall covers, Hz
     overall_hi_hz: float = float("nan")
+    # "sensor-fault" when the channel's latest blocks held bad samples (zeroed before the
+    # analysis; the values are not to be trusted), else "ok" (service.quality)
+    quality: str = "ok"

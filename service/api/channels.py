@@ -4,6 +4,7 @@ Reads the hub's latest frames; never touches an engine."""
 
 from __future__ import annotations
 
+import time
 from typing import Annotated, Any, Literal
 
 import numpy as np
@@ -11,6 +12,7 @@ from fastapi import APIRouter, Query, Response
 
 from dsp.types import AMPLITUDES, OUTPUT_UNITS, QUANTITIES
 
+from ..pipeline import ChannelState
 from ..spectra import spectrum_values, to_csv, to_npy
 from ..types import SpectralFrame
 from .deps import NO_FRAME, NOT_FOUND, ChannelDep, HubDep, ProfileQ, get_frame
@@ -37,6 +39,19 @@ def _stamp(frame: SpectralFrame) -> dict[str, Any]:
         "seq": frame.seq,
         "timestamp_ns": frame.t_ns,
         "timestamp": _iso(frame.t_ns),
+        "quality": frame.quality,
+    }
+
+
+def _now_state(st: ChannelState) -> dict[str, Any]:
+    """The channel's data-quality state now, beside a frame's values: a number is never
+    shown without it (a frame can be the last one before the channel went silent)."""
+    age = None if st.last_frame_mono is None else time.monotonic() - st.last_frame_mono
+    return {
+        "status": st.status,
+        "status_cause": st.fault,
+        "age_s": None if age is None else round(age, 3),
+        "live": st.status == "ok",
     }
 
 
@@ -52,6 +67,7 @@ def _iso(t_ns: int) -> str | None:
 def _summary(hub: Any, cid: str) -> dict[str, Any]:
     st = hub.channels[cid]
     d = st.as_dict()
+    d.update(_now_state(st))
     f = hub.latest.get(cid)
     if f is not None:
         d["latest"] = {
@@ -125,6 +141,7 @@ def get_spectrum(
         )
     return {
         **_stamp(frame),
+        **_now_state(channel),
         "f0_hz": frame.f0_hz,
         "df_hz": frame.df_hz,
         "lines": frame.lines,
@@ -173,10 +190,10 @@ def tones_payload(frame: SpectralFrame) -> dict[str, Any]:
 @router.get("/channels/{channel_id}/bands", summary="Latest band RMS values and the overall",
             responses=NO_FRAME)
 def get_bands(channel: ChannelDep, hub: HubDep, profile: ProfileQ = None) -> dict[str, Any]:
-    return bands_payload(get_frame(channel.id, hub, profile))
+    return {**bands_payload(get_frame(channel.id, hub, profile)), **_now_state(channel)}
 
 
 @router.get("/channels/{channel_id}/tones", summary="Tracked tones and the largest peaks",
             responses=NO_FRAME)
 def get_tones(channel: ChannelDep, hub: HubDep, profile: ProfileQ = None) -> dict[str, Any]:
-    return tones_payload(get_frame(channel.id, hub, profile))
+    return {**tones_payload(get_frame(channel.id, hub, profile)), **_now_state(channel)}

@@ -18,22 +18,39 @@ router = APIRouter(tags=["health"])
 
 @router.get("/health", summary="Service health, store state, source counters and channel states")
 def health(hub: HubDep, request: Request) -> dict[str, Any]:
-    """``status`` is ``ok``, or ``degraded`` while the store cannot write (monitoring, alarms
-    and the API go on; trends, events and evidence are not being kept — see ``store``)."""
+    """``status`` is ``ok``, or ``degraded`` while any channel is not ``ok`` (``not_ok`` lists
+    them with their state, cause and since when), a source's pipeline has failed, or the
+    store cannot write (monitoring, alarms and the API go on; trends, events and evidence
+    are not being kept — see ``store``)."""
     states = Counter(st.status for st in hub.channels.values())
+    not_ok = [
+        {"channel": st.id, "status": st.status, "cause": st.fault,
+         "since_ns": st.status_since_ns}
+        for st in hub.channels.values() if st.status != "ok"
+    ]
     sources = {}
     for sid, src in hub.sources.items():
         status = getattr(src, "status", None)
         sources[sid] = status() if callable(status) else {}
+        p = hub.pipelines.get(sid)
+        if p is not None:
+            sources[sid]["pipeline"] = {
+                "state": "failed" if p.failed else "running",
+                "error": p.failed,
+                "failures": p.failures,
+                "analysis_restarts": p.restarts,
+            }
     store = getattr(request.app.state, "store", None)
     store_health = store.health() if store is not None else None
-    degraded = store_health is not None and not store_health["ok"]
+    store_failing = store_health is not None and not store_health["ok"]
+    failed = any(p.failed for p in hub.pipelines.values())
     return {
-        "status": "degraded" if degraded else "ok",
+        "status": "degraded" if store_failing or not_ok or failed else "ok",
         "store": store_health,
         "version": __version__,
         "uptime_s": round((time.time_ns() - hub.started_ns) / 1e9, 3),
         "channels": dict(states),
+        "not_ok": not_ok,
         "frames_published": hub.frames_published,
         "sources": sources,
     }

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import gc
 import math
+import time
 from collections.abc import Iterator
 from typing import Any
 
@@ -14,13 +15,12 @@ from prometheus_client import CollectorRegistry, GCCollector, ProcessCollector, 
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
 from prometheus_client.registry import Collector
 
+from ..quality import CHANNEL_STATUSES
 from ..types import COUNTER_NAMES
 
 router = APIRouter(tags=["metrics"])
 
-STATUSES = ("ok", "no-data", "gap", "sensor-fault", "overrun")
 SOURCE_COUNTERS = COUNTER_NAMES
-ALARM_LEVEL = {"normal": 0, "alert": 1, "danger": 2}
 
 
 class _ServiceCollector(Collector):
@@ -72,12 +72,40 @@ class _ServiceCollector(Collector):
         gaps = CounterMetricFamily(
             "quaver_channel_gaps", "Gaps seen on the channel", labels=["channel"]
         )
+        changes = CounterMetricFamily(
+            "quaver_channel_status_changes",
+            "Changes of the channel's data-quality state (each is an event)",
+            labels=["channel"],
+        )
+        stale = GaugeMetricFamily(
+            "quaver_channel_frame_age_seconds",
+            "Time since the channel's latest analysed spectrum arrived (absent before the "
+            "first); no-signal beyond the channel's stale_after_s",
+            labels=["channel"],
+        )
+        now = time.monotonic()
         for cid, st in hub.channels.items():
-            for s in STATUSES:
+            for s in CHANNEL_STATUSES:
                 status.add_metric([cid, s], 1.0 if st.status == s else 0.0)
             faults.add_metric([cid], st.sensor_faults)
             gaps.add_metric([cid], st.gaps)
-        yield from (status, faults, gaps)
+            changes.add_metric([cid], st.status_changes)
+            if st.last_frame_mono is not None:
+                stale.add_metric([cid], max(0.0, now - st.last_frame_mono))
+        yield from (status, faults, gaps, changes, stale)
+        failures = CounterMetricFamily(
+            "quaver_source_pipeline_failures",
+            "Times the source's pipeline raised (it is restarted with back-off)",
+            labels=["source"],
+        )
+        failed = GaugeMetricFamily(
+            "quaver_source_pipeline_failed", "1 while the source's pipeline is failed",
+            labels=["source"],
+        )
+        for sid, p in hub.pipelines.items():
+            failures.add_metric([sid], p.failures)
+            failed.add_metric([sid], 1.0 if p.failed else 0.0)
+        yield from (failures, failed)
 
         fams = {
             k: CounterMetricFamily(f"quaver_source_{k}", f"Source counter: {k}", labels=["source"])
@@ -135,7 +163,7 @@ class _ServiceCollector(Collector):
             )
             for v in alarms.views():
                 d = v.as_dict()
-                level.add_metric([d["channel"], d["rule"]], ALARM_LEVEL.get(str(d["state"]), 0))
+                level.add_metric([d["channel"], d["rule"]], v.state.rank)
                 latched.add_metric(
                     [d["channel"], d["rule"]],
                     1.0 if d.get("latched") and not d.get("acked") else 0.0,

@@ -250,7 +250,8 @@ class _Session:
                     {
                         "kind": "status",
                         "channels": [
-                            {"id": st.id, "status": st.status, "fault": st.fault}
+                            {"id": st.id, "status": st.status, "fault": st.fault,
+                             "since_ns": st.status_since_ns}
                             for st in self.hub.channels.values()
                         ],
                     }

@@ -206,9 +206,15 @@ class RunningService:
         return wait_for(checked, what, timeout_s, on_fail=self.log_tail)
 
     def assert_healthy(self) -> None:
-        """The process is still running and /health answers ``ok``."""
+        """The process is still running, /health answers, its store writes and no source's
+        pipeline has failed. (Its ``status`` also reads ``degraded`` while any channel is not
+        ok — e.g. no-signal after a test's producer left — which tests check themselves.)"""
         assert self.alive(), f"the service exited ({self.proc.returncode})\n{self.log_tail()}"
-        assert self.health()["status"] == "ok"
+        h = self.health()
+        assert h["store"]["ok"], h["store"]
+        failed = {s: v["pipeline"] for s, v in h["sources"].items()
+                  if v.get("pipeline", {}).get("state") == "failed"}
+        assert not failed, failed
 
 
 def _stop(proc: subprocess.Popen[bytes]) -> None:

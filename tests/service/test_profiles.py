@@ -336,6 +336,9 @@ def test_alarm_rules_resolve_the_profile_they_watch() -> None:
         "a.band.1x": ("a", "wide", True, "band", "1x"),
         "a.narrow.band.1x": ("a", "narrow", False, "band", "1x"),
         "b.narrow.overall": ("b", "narrow", False, "overall", "overall"),
+        # every channel's loss-of-signal rule (loss_of_signal = "alert" by default)
+        "a.signal": ("a", "", True, "signal", "loss of signal"),
+        "b.signal": ("b", "", True, "signal", "loss of signal"),
     }
 
 
