@@ -27,6 +27,7 @@ from service.alarms import (
     check_transition,
     rule_id,
     rules_from_config,
+    signal_rule,
 )
 from service.config import parse_config
 from service.types import BandValue, SpectralFrame, ToneValue
@@ -244,7 +245,7 @@ def test_ack_of_unknown_alarm_raises() -> None:
         engine.view("nope")
 
 
-def test_sensor_fault_suspends_the_channel_and_reports_entry_and_exit_once() -> None:
+def test_sensor_fault_suspends_the_channel_without_events_of_its_own() -> None:
     engine = AlarmEngine([overall_rule("m1"), overall_rule("m2")])
     out: list[AlarmEvent] = []
     for t in range(12):
@@ -255,28 +256,66 @@ def test_sensor_fault_suspends_the_channel_and_reports_entry_and_exit_once() -> 
     m2 = [e for e in out if e.channel == "m2"]
     # m1: above alert since 0, pending at the fault (t 2); no transition while faulted
     # (it would have reached ALERT at 3); the on-delay restarts at the first good frame
-    # (t 6) → ALERT at 9. m2 is untouched: ALERT at 3.
-    assert summary(m1) == [
-        (2.0, "sensor-fault", "ok", "sensor-fault", None),
-        (6.0, "sensor-fault", "sensor-fault", "ok", None),
-        (9.0, "transition", "normal", "alert", 1.0),
-    ]
-    assert m1[0].rule == "m1.sensor-fault" and "1 alarm rule suspended" in m1[0].message
+    # (t 6) → ALERT at 9. m2 is untouched: ALERT at 3. The state changes themselves are
+    # the service's "status" events (service.app), not the engine's.
+    assert summary(m1) == [(9.0, "transition", "normal", "alert", 1.0)]
     assert summary(m2) == [(3.0, "transition", "normal", "alert", 1.0)]
 
 
-def test_sensor_fault_keeps_an_active_alarm_active() -> None:
+@pytest.mark.parametrize("status", ["sensor-fault", "no-signal", "failed"])
+def test_a_suspending_state_keeps_an_active_alarm_and_hides_its_value(status: str) -> None:
     engine = AlarmEngine([overall_rule(on_delay_s=0.0, off_delay_s=0.0)])
     run(engine, [1.5])
-    events = run(engine, [0.1, 0.1], start_s=1, status={1: "sensor-fault", 2: "sensor-fault"})
-    assert [e.kind for e in events] == ["sensor-fault"]
-    assert engine.view("m1.overall").state is AlarmState.ALERT
-    assert engine.view("m1.overall").suspended
+    events = run(engine, [0.1, 0.1], start_s=1, status={1: status, 2: status})
+    assert events == []  # a fault says nothing about the machine: no clearing on bad data
+    view = engine.view("m1.overall")
+    assert view.state is AlarmState.ALERT
+    assert view.suspended and view.channel_status == status
+    assert view.value is None  # not the last good one (1.5) shown as if current
+    run(engine, [1.5], start_s=3)  # live again: the value is shown again
+    assert engine.view("m1.overall").value == 1.5 and not engine.view("m1.overall").suspended
+
+
+@pytest.mark.parametrize("status", ["gap", "overrun"])
+def test_gap_and_overrun_frames_are_still_evaluated(status: str) -> None:
+    engine = AlarmEngine([overall_rule(on_delay_s=0.0)])
+    events = run(engine, [1.5], status={0: status})
+    assert summary(events) == [(0.0, "transition", "normal", "alert", 1.0)]
+
+
+def test_loss_of_signal_rule_goes_to_its_level_and_back() -> None:
+    engine = AlarmEngine(
+        [overall_rule("m1"), signal_rule("m1", "danger"), signal_rule("m2", "alert")]
+    )
+    t = 10 * 10**9
+    assert engine.set_channel_status("m1", "sensor-fault", t) == []  # not a loss of signal
+    (lost,) = engine.set_channel_status("m1", "no-signal", t + 1, fault="no new spectrum")
+    assert (lost.rule, lost.kind, lost.from_state, lost.to_state) == (
+        "m1.signal", "transition", "normal", "danger")
+    assert lost.raises and "LOSS OF SIGNAL" in lost.message and "no new spectrum" in lost.message
+    assert engine.set_channel_status("m1", "failed", t + 2) == []  # still lost: no new event
+    assert engine.view("m1.signal").danger == 1.0 and engine.view("m1.signal").alert is None
+    (back,) = engine.set_channel_status("m1", "ok", t + 3)
+    assert (back.from_state, back.to_state) == ("danger", "normal")
+    (other,) = engine.set_channel_status("m2", "failed", t + 4)
+    assert other.to_state == "alert"
+    # frames never move a signal rule
+    assert engine.evaluate(frame("m2", 20, 5.0), "ok") != []  # m2 is back: that clears it
+    assert engine.view("m2.signal").state is AlarmState.NORMAL
+
+
+def test_a_signal_rule_needs_exactly_one_level() -> None:
+    with pytest.raises(ValueError, match="a signal rule has one level"):
+        Rule(id="m1.signal", channel="m1", kind="signal", name="x", alert=1.0, danger=2.0)
 
 
 def test_channel_status_outside_the_closed_set_is_refused() -> None:
     engine = AlarmEngine([overall_rule()])
-    with pytest.raises(ValueError, match="channel_status='faulty' is not one of 'ok', 'no-data'"):
+    with pytest.raises(
+        ValueError,
+        match="channel_status='faulty' is not one of 'ok', 'no-signal', 'sensor-fault', 'gap', "
+        "'overrun', 'failed'",
+    ):
         engine.evaluate(frame("m1", 0, 1.0), "faulty")
 
 
@@ -510,11 +549,16 @@ def test_rules_from_config_expands_star_and_lets_a_channel_entry_win() -> None:
     rules = {r.id: r for r in rules_from_config(cfg)}
     assert sorted(rules) == [
         "fan-h.overall",
+        "fan-h.signal",
         "p1-de-h.band.bearing-hf",
         "p1-de-h.overall",
+        "p1-de-h.signal",
         "p1-de-h.tone.1x",
         "p1-de-v.overall",
-    ]  # the band and the order tone exist only on p1-de-h (the only channel with a speed)
+        "p1-de-v.signal",
+    ]  # the band and the order tone exist only on p1-de-h (the only channel with a speed);
+    # every channel has its loss-of-signal rule (loss_of_signal = "alert" by default)
+    assert rules["fan-h.signal"].kind == "signal" and rules["fan-h.signal"].alert == 1.0
     assert (rules["fan-h.overall"].alert, rules["fan-h.overall"].on_delay_s) == (0.5, 2.0)
     assert rules["fan-h.overall"].unit == "g"  # unit = acceleration → g
     assert rules["p1-de-v.overall"].unit == "mm/s"  # velocity default
@@ -524,7 +568,15 @@ def test_rules_from_config_expands_star_and_lets_a_channel_entry_win() -> None:
     assert [r.id for r in rules_from_config(cfg, ["p1-de-v", "fan-h"])] == [
         "p1-de-v.overall",
         "fan-h.overall",
+        "p1-de-v.signal",
+        "fan-h.signal",
     ]
+    off = json.loads(json.dumps(CONFIG))
+    listed = {ch["id"] for ch in off["channels"]}
+    off["channels"] += [{"id": c} for c in off["sources"][0]["channels"] if c not in listed]
+    for ch in off["channels"]:
+        ch["loss_of_signal"] = "off"
+    assert not [r for r in rules_from_config(parse_config(off, env={})) if r.kind == "signal"]
 
 
 def test_rules_from_config_errors_name_the_entry() -> None:
