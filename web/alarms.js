@@ -3,7 +3,7 @@
 
 import { ApiError, ackAlarm, token } from "./api.js";
 import { esc, fmtAge, fmtDateTime, fmtVal, unitLabel } from "./fmt.js";
-import { STATES, alarmStateKey, badge, glyph } from "./states.js";
+import { STATES, STATUS_TO_STATE, alarmStateKey, badge, glyph } from "./states.js";
 
 const RANK = { danger: 3, alert: 2, latched: 1, ok: 0 };
 
@@ -24,7 +24,7 @@ export function ruleProfile(a) {
 /** What an alarm watches, in words: "bearing band", "overall", "1x tone", "1x band · narrow". */
 export function what(a) {
   const p = ruleProfile(a);
-  const w = a.kind === "overall" ? "overall" : `${a.name} ${a.kind}`;
+  const w = a.kind === "overall" ? "overall" : a.kind === "signal" ? "loss of signal" : `${a.name} ${a.kind}`;
   return p ? `${w} · ${p}` : w;
 }
 
@@ -44,7 +44,7 @@ export function alarmListHtml(alarms, { showChannel = true } = {}) {
       ${badge(k)}
       <span class="what">${chan}${esc(what(a))}</span>
       <span class="acts">${a.acked ? "" : `<button class="small" data-ack="${esc(a.rule)}">Acknowledge</button>`}</span>
-      <span class="sub">${fmtVal(a.value)} ${esc(unitLabel(a.unit || ""))}${level ? ` ≥ ${k} level ${fmtVal(level)}` : k === "latched" ? ` (cleared; was ${esc(a.peak || "raised")})` : ""}
+      <span class="sub">${a.kind === "signal" ? "no new spectra" : a.suspended ? `channel not live (${esc(a.channel_status)}); value not current` : `${fmtVal(a.value)} ${esc(unitLabel(a.unit || ""))}${level ? ` ≥ ${k} level ${fmtVal(level)}` : k === "latched" ? ` (cleared; was ${esc(a.peak || "raised")})` : ""}`}
         · ${since} · <b>${ackTxt}</b>${a.note ? ` — “${esc(a.note)}”` : ""}</span>
     </li>`;
   }).join("");
@@ -56,13 +56,14 @@ function fmtSince(t_ns) {
   return new Date(t_ns / 1e6).toDateString() === new Date().toDateString() ? s.slice(11) : s;
 }
 
-const STATE_OF = { normal: "ok", alert: "alert", danger: "danger", latched: "latched", ok: "ok", "sensor-fault": "fault" };
+// alarm states, and the data-quality states of "status" events
+const STATE_OF = { normal: "ok", alert: "alert", danger: "danger", latched: "latched", ...STATUS_TO_STATE };
 
 /** One event-log row. `raises` events (into alert/danger) get an evidence button. */
 export function eventRowHtml(ev, { showChannel = true } = {}) {
   const to = STATE_OF[ev.to_state] ?? "ok";
   const from = STATE_OF[ev.from_state] ?? "ok";
-  const raising = ev.has_evidence ?? ((RANK[to] ?? 0) > (RANK[from] ?? 0) && (to === "alert" || to === "danger"));
+  const raising = ev.has_evidence ?? (ev.kind === "transition" && !ev.rule?.endsWith(".signal") && (RANK[to] ?? 0) > (RANK[from] ?? 0) && (to === "alert" || to === "danger"));
   const name = ev.rule?.startsWith(`${ev.channel}.`) ? ev.rule.slice(ev.channel.length + 1) : ev.rule;
   const change = ev.kind === "ack"
     ? `acknowledged`
@@ -82,7 +83,7 @@ export function eventRowHtml(ev, { showChannel = true } = {}) {
 export function eventItemHtml(ev, { showChannel = true } = {}) {
   const to = STATE_OF[ev.to_state] ?? "ok";
   const from = STATE_OF[ev.from_state] ?? "ok";
-  const raising = ev.has_evidence ?? ((RANK[to] ?? 0) > (RANK[from] ?? 0) && (to === "alert" || to === "danger"));
+  const raising = ev.has_evidence ?? (ev.kind === "transition" && !ev.rule?.endsWith(".signal") && (RANK[to] ?? 0) > (RANK[from] ?? 0) && (to === "alert" || to === "danger"));
   const name = ev.rule?.startsWith(`${ev.channel}.`) ? ev.rule.slice(ev.channel.length + 1) : ev.rule;
   const change = ev.kind === "ack"
     ? `acknowledged${ev.acked_by ? ` by ${esc(ev.acked_by)}` : ""}`

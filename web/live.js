@@ -198,14 +198,14 @@ export class Live extends EventTarget {
         this.refreshPlant();
         break;
       case "status": {
-        // {"kind": "status", "channels": [{id, status, fault}]} about once a second
+        // {"kind": "status", "channels": [{id, status, fault, since_ns}]} about once a second
         let changed = false;
         for (const u of m.channels || [m]) {
           const i = this.channels.findIndex((c) => c.id === (u.id ?? u.channel));
           if (i < 0) continue;
           const c = this.channels[i];
           if (c.status !== u.status || (u.fault ?? c.fault) !== c.fault) {
-            this.channels[i] = { ...c, status: u.status, fault: u.fault ?? c.fault };
+            this.channels[i] = { ...c, status: u.status, fault: u.fault ?? c.fault, status_since_ns: u.since_ns ?? c.status_since_ns };
             changed = true;
           }
         }

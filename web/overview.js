@@ -2,8 +2,8 @@
 // alarms and events beside. Reads the shell's state and the events/trend routes; no plot code.
 
 import { API, features, getJSON, isMissingRoute, qs } from "./api.js";
-import { esc, fmtHz, fmtVal, unitLabel } from "./fmt.js";
-import { STATES, badge, glyph } from "./states.js";
+import { esc, fmtClock, fmtHz, fmtVal, unitLabel } from "./fmt.js";
+import { STATES, STATUS_TO_STATE, badge, glyph, isLive } from "./states.js";
 import { BandBars, bandRows, topBands } from "./bars.js";
 import { Surface, pal } from "./plot.js";
 import { alarmListHtml, eventItemHtml, ruleProfile } from "./alarms.js";
@@ -158,10 +158,17 @@ export function mount(root, ctx) {
       e.unit.textContent = L ? unitLabel(L.unit, "rms") : "";
       e.what.textContent = !L ? "" : L.overall_lo_hz != null
         ? `overall ${fmtHz(L.overall_lo_hz)}–${fmtHz(L.overall_hi_hz)}` : `overall to ${fmtHz(L.fmax_hz)}`;
-      e.el.classList.toggle("stale", stale);
+      const live = isLive(c.status);
+      e.el.classList.toggle("stale", stale || !live);
+      e.el.dataset.live = live ? "yes" : "no";
       const notes = [];
-      if (c.fault) notes.push(`${glyph("fault", 12)} ${esc(c.fault)}`);
-      if (c.status === "no-data") notes.push(c.counters?.samples ? "no samples arriving" : "no samples yet");
+      if (!live) {
+        // never a bare healthy number: say what the channel is, since when, and how old the value is
+        const since = c.status_since_ns ? ` since ${fmtClock(c.status_since_ns)}` : "";
+        const old = L ? ` · value from ${fmtClock(L.timestamp_ns)}` : "";
+        notes.push(`<span class="notlive">${esc(STATES[k].word)}${since}${old}</span>`);
+      }
+      if (c.fault) notes.push(`${glyph(STATUS_TO_STATE[c.status] || "fault", 12)} ${esc(c.fault)}`);
       const al = ctx.alarmsFor(c.id).filter((a) => a.state !== "normal" || a.latched);
       if (al.length) notes.push(al.map((a) => `${a.kind === "overall" ? "overall" : esc(a.name)}${ruleProfile(a) ? ` (${esc(ruleProfile(a))})` : ""} ${esc(a.state)}${a.acked ? " (ack)" : ""}`).join(", "));
       const nh = notes.join(" · ");

@@ -5,16 +5,23 @@
 export const STATES = {
   danger: { word: "DANGER", shape: "diamond", cls: "s-danger", rank: 7, help: "a value is at or above its danger level" },
   alert: { word: "ALERT", shape: "triangle", cls: "s-alert", rank: 6, help: "a value is at or above its alert level" },
-  fault: { word: "SENSOR FAULT", shape: "slashed", cls: "s-fault", rank: 5, help: "the signal is not trustworthy (non-finite, flat or clipped); its alarms are frozen" },
+  failed: { word: "FAILED", shape: "slashed", cls: "s-fault", rank: 5.5, live: false, help: "the source's pipeline failed and is being restarted; values are not live" },
+  fault: { word: "SENSOR FAULT", shape: "slashed", cls: "s-fault", rank: 5, live: false, help: "the signal is not trustworthy (non-finite, beyond the sensor's range, flat or clipped); its alarms are frozen" },
+  nosignal: { word: "NO SIGNAL", shape: "dashed", cls: "s-nodata", rank: 4.5, live: false, help: "no new spectrum for longer than the channel's stale_after_s; the value shown is old" },
   latched: { word: "LATCHED", shape: "hollow-triangle", cls: "s-latched", rank: 4, help: "the value has cleared but the alarm waits for an acknowledgement" },
-  nodata: { word: "NO DATA", shape: "dashed", cls: "s-nodata", rank: 3, help: "no samples are arriving" },
   gap: { word: "GAP", shape: "square", cls: "s-quality", rank: 2, help: "samples were lost; the spectrum is being rebuilt" },
   overrun: { word: "OVERRUN", shape: "square", cls: "s-quality", rank: 2, help: "the analysis fell behind and dropped blocks" },
   ok: { word: "OK", shape: "ring", cls: "s-ok", rank: 0, help: "running, no alarm" },
   unknown: { word: "…", shape: "dashed", cls: "s-nodata", rank: -1, help: "waiting for the service" },
 };
 
-const STATUS_TO_STATE = { ok: "ok", "no-data": "nodata", gap: "gap", "sensor-fault": "fault", overrun: "overrun" };
+// The service's data-quality states (service/quality.py) → the keys above.
+export const STATUS_TO_STATE = { ok: "ok", "no-signal": "nosignal", gap: "gap", "sensor-fault": "fault", overrun: "overrun", failed: "failed" };
+
+/** Is a channel status one whose values are live (new and trustworthy)? */
+export function isLive(status) {
+  return STATES[STATUS_TO_STATE[status]]?.live !== false;
+}
 
 /** The state key of an alarm entry from /api/v1/alarms. */
 export function alarmStateKey(a) {
@@ -24,9 +31,11 @@ export function alarmStateKey(a) {
   return "ok";
 }
 
-/** Worst state of a channel: its status combined with its active alarms. */
+/** Worst state of a channel: its status combined with its active alarms. A channel
+ *  whose values are not live shows that first: an alarm it holds is then not current. */
 export function channelStateKey(status, alarms) {
   let key = STATUS_TO_STATE[status] ?? "unknown";
+  if (!isLive(status)) return key;
   for (const a of alarms || []) {
     const k = alarmStateKey(a);
     if (STATES[k].rank > STATES[key].rank) key = k;
