@@ -694,14 +694,16 @@ class AlarmEngine:
         return events
 
     def set_channel_status(
-        self, channel: str, status: str, t_ns: int, *, fault: str = ""
+        self, channel: str, status: str, t_ns: int, *, fault: str = "", lost: bool | None = None
     ) -> list[AlarmEvent]:
         """Tell the engine a channel's data-quality state (on every change, frame or none).
 
         A suspending state (sensor fault, no signal, failed) freezes the channel's value
         rules; pending delays and baseline learning restart on both edges (module
-        docstring). The channel's ``"signal"`` rule goes to its level while the channel is
-        ``no-signal`` or ``failed`` and clears when it is not; its events are returned."""
+        docstring). The channel's ``"signal"`` rule goes to its level while the signal is
+        ``lost`` (default: the channel is ``no-signal`` or ``failed``; the service says
+        when, see ``service.quality.is_lost``) and clears when it is not; its events are
+        returned."""
         check_choice("channel_status", status, CHANNEL_STATUSES)
         rules = self._by_channel.get(channel, [])
         suspended = status in SUSPENDING
@@ -714,7 +716,8 @@ class AlarmEngine:
             self._suspended[channel] = status
         else:
             self._suspended.pop(channel, None)
-        lost = status in ("no-signal", "failed")
+        if lost is None:
+            lost = status in ("no-signal", "failed")
         for a in rules:
             if a.rule.kind == "signal":
                 ev = self._signal(a, lost, int(t_ns), fault)

@@ -33,7 +33,7 @@ from .config import (
 from .hub import Hub
 from .pipeline import ChannelState, SourcePipeline, channel_states
 from .profiles import ProfileBank
-from .quality import Inputs, derive
+from .quality import Inputs, derive, is_lost
 from .sources import make_source
 from .spectra import spectrum_values
 from .store import Retention, Store, StoreError, trend_key
@@ -190,9 +190,13 @@ class Service:
                 continue  # the common case, kept cheap: it runs for every block
             started = max(self.started_mono, p.started_mono)
             if p.source.id not in connected:
-                connected[p.source.id] = p.source.status().get("connected")
+                # a TCP source knows whether a producer is connected; others cannot tell
+                info = p.source.status()
+                connected[p.source.id] = (
+                    info.get("producer") is not None if info.get("kind") == "tcp" else None
+                )
             link = connected[p.source.id]
-            status, cause = derive(Inputs(
+            inputs = Inputs(
                 data_status=st.data_status,
                 fault=st.data_fault,
                 frame_age_s=None if st.last_frame_mono is None else now - st.last_frame_mono,
@@ -200,14 +204,22 @@ class Service:
                 stale_after_s=st.stale_after_s,
                 failed=p.failed,
                 connected=link if isinstance(link, bool) else None,
-            ))
+            )
+            status, cause = derive(inputs)
+            lost = is_lost(inputs)
             changed = status != st.status
-            if not changed and cause == st.fault:
+            if not changed and cause == st.fault and lost == st.lost:
                 continue
             before = st.status
             st.status, st.fault = status, cause
             if not changed:
+                if lost != st.lost:  # e.g. no data yet, and now for longer than stale_after_s
+                    st.lost = lost
+                    for e in self.alarms.set_channel_status(st.id, status, now_ns,
+                                                            fault=cause, lost=lost):
+                        events.append((e, None))
                 continue
+            st.lost = lost
             st.status_since_ns, st.status_changes = now_ns, st.status_changes + 1
             self.status_changes[status] = self.status_changes.get(status, 0) + 1
             msg = f"{st.id}: {status}" + (f" ({cause})" if cause else f" (was {before})")
@@ -217,7 +229,8 @@ class Service:
                 from_state=before, to_state=status, value=None, level=None, unit="",
                 message=msg,
             ), None))
-            for e in self.alarms.set_channel_status(st.id, status, now_ns, fault=cause):
+            for e in self.alarms.set_channel_status(st.id, status, now_ns, fault=cause,
+                                                    lost=lost):
                 events.append((e, None))
         if events:
             await self._commit_and_announce(None, events)

@@ -63,6 +63,7 @@ class ChannelState:
     status: str = "no-signal"
     fault: str = "waiting for the first spectrum"
     status_since_ns: int = 0
+    lost: bool = False  # the loss-of-signal condition (service.quality.is_lost)
     status_changes: int = 0
     # Written by the source's worker thread: what the latest blocks showed.
     data_status: str = "ok"  # ok | sensor-fault | gap | overrun

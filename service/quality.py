@@ -71,6 +71,14 @@ class Inputs:
     connected: bool | None = None  # the source's producer, when the source can tell
 
 
+def is_lost(i: Inputs) -> bool:
+    """Is the channel's signal lost (the loss-of-signal alarm's condition): its source
+    failed, or no new frame for longer than ``stale_after_s`` (counted from the start while
+    there has been none)?"""
+    waited = i.since_start_s if i.frame_age_s is None else i.frame_age_s
+    return bool(i.failed) or waited > i.stale_after_s
+
+
 def derive(i: Inputs) -> tuple[str, str]:
     """The channel's state and its cause (a short sentence; empty for ``ok``)."""
     if i.failed:
