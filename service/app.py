@@ -219,16 +219,20 @@ class Service:
                                                             fault=cause, lost=lost):
                         events.append((e, None))
                 continue
+            # The first spectrum after the start, in time, is not news: no event for it
+            # (a plant of 1000 channels would log 1000 of them at every start).
+            first_in_time = st.status_changes == 0 and before == "no-signal" and not st.lost
             st.lost = lost
             st.status_since_ns, st.status_changes = now_ns, st.status_changes + 1
             self.status_changes[status] = self.status_changes.get(status, 0) + 1
             msg = f"{st.id}: {status}" + (f" ({cause})" if cause else f" (was {before})")
             (log.info if status == "ok" else log.warning)("channel %s", msg)
-            events.append((AlarmEvent(
-                t_ns=now_ns, channel=st.id, rule=f"{st.id}.status", kind="status",
-                from_state=before, to_state=status, value=None, level=None, unit="",
-                message=msg,
-            ), None))
+            if not first_in_time:
+                events.append((AlarmEvent(
+                    t_ns=now_ns, channel=st.id, rule=f"{st.id}.status", kind="status",
+                    from_state=before, to_state=status, value=None, level=None, unit="",
+                    message=msg,
+                ), None))
             for e in self.alarms.set_channel_status(st.id, status, now_ns, fault=cause,
                                                     lost=lost):
                 events.append((e, None))
