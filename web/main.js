@@ -4,7 +4,7 @@
 import { API, features, getJSON, isMissingRoute } from "./api.js";
 import { Live } from "./live.js";
 import { Surface, loadPalette } from "./plot.js";
-import { STATES, alarmStateKey, badge, channelStateKey, glyph } from "./states.js";
+import { STATES, alarmStateKey, badge, channelStateKey, glyph, isLive } from "./states.js";
 import { esc, fmtVal } from "./fmt.js";
 import * as overview from "./overview.js";
 import * as channel from "./channel.js";
@@ -228,7 +228,7 @@ function renderSide() {
     for (const c of chans) {
       const k = channelState(c);
       const abn = STATES[k].rank >= STATES.latched.rank;
-      html.push(`<a class="ch ${abn ? "abn" : ""} ${STATES[k].cls}" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${esc(c.id)}" data-state="${k}" title="${esc(c.description)} — ${STATES[k].word}"${c.id === cur ? ' aria-current="page"' : ""}>${glyph(k)}<span>${esc(c.id)}</span><span class="v">${c.latest ? fmtVal(c.latest.overall) : STATES[k].word.toLowerCase()}</span></a>`);
+      html.push(`<a class="ch ${abn ? "abn" : ""} ${STATES[k].cls}" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${esc(c.id)}" data-state="${k}" title="${esc(c.description)} — ${STATES[k].word}"${c.id === cur ? ' aria-current="page"' : ""}>${glyph(k)}<span>${esc(c.id)}</span><span class="v">${c.latest && isLive(c.status) ? fmtVal(c.latest.overall) : STATES[k].word.toLowerCase()}</span></a>`);
     }
   }
   const s = html.join("");
