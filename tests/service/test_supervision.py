@@ -193,3 +193,38 @@ def test_no_mixture_of_bad_blocks_stops_a_later_good_signal_being_analysed_exact
     assert math.isfinite(band)
     assert abs(20 * math.log10(band / (0.8 / math.sqrt(2)))) < 0.1, (chaos, band)
     assert got["a"].quality == "ok"
+
+
+# --- the state rule itself ----------------------------------------------------------------------
+
+from service.quality import CHANNEL_STATUSES, Inputs, derive, is_lost  # noqa: E402
+
+AGES = st.one_of(st.none(), st.floats(0, 1e6, allow_nan=False))
+
+
+@given(
+    data_status=st.sampled_from(["ok", "sensor-fault", "gap", "overrun"]),
+    frame_age_s=AGES,
+    since_start_s=st.floats(0, 1e6, allow_nan=False),
+    stale_after_s=st.floats(0.01, 1e4, allow_nan=False),
+    failed=st.sampled_from(["", "OverflowError: x"]),
+    connected=st.sampled_from([None, True, False]),
+)
+def test_a_channel_never_reads_ok_while_its_latest_frame_is_stale(
+    data_status: str, frame_age_s: float | None, since_start_s: float, stale_after_s: float,
+    failed: str, connected: bool | None,
+) -> None:
+    i = Inputs(data_status, "why", frame_age_s, since_start_s, stale_after_s, failed, connected)
+    status, cause = derive(i)
+    assert status in CHANNEL_STATUSES
+    if status == "ok":
+        assert frame_age_s is not None and frame_age_s <= stale_after_s
+        assert not failed and data_status in ("ok",) and cause == ""
+    else:
+        assert cause  # a not-ok state always says why
+    if failed:
+        assert status == "failed" and is_lost(i)
+    if frame_age_s is not None and frame_age_s > stale_after_s:
+        assert status in ("no-signal", "failed") and is_lost(i)
+    assert is_lost(i) == (status == "failed" or (status == "no-signal" and (
+        (since_start_s if frame_age_s is None else frame_age_s) > stale_after_s)))
