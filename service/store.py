@@ -47,6 +47,7 @@ Trends
 from __future__ import annotations
 
 import json
+import logging
 import math
 import queue
 import sqlite3
@@ -62,6 +63,9 @@ from typing import Any
 import numpy as np
 
 from .alarms import AlarmEvent
+from .schema import SchemaError, migrate
+
+log = logging.getLogger("quaver.store")
 
 __all__ = ["Retention", "Store", "StoreError", "TREND_STEPS_S"]
 
@@ -72,34 +76,6 @@ REOPEN_S = 5.0
 BATCH_MAX = 512
 EVENT_LIMIT_MAX = 1000
 _F32 = np.dtype("<f4")
-
-SCHEMA = """
-CREATE TABLE IF NOT EXISTS meta(key TEXT PRIMARY KEY, value TEXT NOT NULL);
-CREATE TABLE IF NOT EXISTS events(
-    id INTEGER PRIMARY KEY AUTOINCREMENT,
-    t_ns INTEGER NOT NULL, channel TEXT NOT NULL, rule TEXT NOT NULL, kind TEXT NOT NULL,
-    from_state TEXT NOT NULL, to_state TEXT NOT NULL, value REAL, level REAL,
-    unit TEXT NOT NULL, message TEXT NOT NULL, latched INTEGER NOT NULL,
-    acked_by TEXT NOT NULL, note TEXT NOT NULL);
-CREATE INDEX IF NOT EXISTS events_t ON events(t_ns);
-CREATE INDEX IF NOT EXISTS events_channel ON events(channel, id);
-CREATE TABLE IF NOT EXISTS alarm_state(
-    k INTEGER PRIMARY KEY CHECK (k = 1), saved_ns INTEGER NOT NULL, json TEXT NOT NULL);
-CREATE TABLE IF NOT EXISTS evidence(
-    event_id INTEGER PRIMARY KEY REFERENCES events(id) ON DELETE CASCADE,
-    t0_ns INTEGER NOT NULL, fs REAL NOT NULL, f0_hz REAL NOT NULL, df_hz REAL NOT NULL,
-    unit TEXT NOT NULL, amplitude TEXT NOT NULL, spectrum BLOB NOT NULL, waveform BLOB,
-    meta TEXT NOT NULL);
-CREATE INDEX IF NOT EXISTS evidence_t ON evidence(t0_ns);
-CREATE TABLE IF NOT EXISTS series(
-    id INTEGER PRIMARY KEY, channel TEXT NOT NULL, name TEXT NOT NULL, UNIQUE(channel, name));
-CREATE TABLE IF NOT EXISTS trend(
-    step_s INTEGER NOT NULL, series INTEGER NOT NULL, t_ns INTEGER NOT NULL,
-    sum REAL NOT NULL, min REAL NOT NULL, max REAL NOT NULL, count INTEGER NOT NULL,
-    PRIMARY KEY(step_s, series, t_ns)) WITHOUT ROWID;
-CREATE INDEX IF NOT EXISTS trend_age ON trend(step_s, t_ns);
-CREATE TABLE IF NOT EXISTS trend_floor(step_s INTEGER PRIMARY KEY, t_ns INTEGER NOT NULL);
-"""
 
 _MERGE = """
 INSERT INTO trend(step_s, series, t_ns, sum, min, max, count) VALUES (?, ?, ?, ?, ?, ?, ?)
@@ -682,9 +658,12 @@ class Store:
                 raise StoreError(f"cannot use WAL mode on {self.path} (journal_mode={mode})")
             c.execute("PRAGMA foreign_keys = ON")
             c.execute("PRAGMA synchronous = FULL")
-            c.executescript(SCHEMA)
+            ran = migrate(c)
+            if ran:
+                log.info("store %s: schema steps %s run (now at %d)", self.path,
+                         ", ".join(map(str, ran)), ran[-1])
             self._sync = "FULL"
-        except (OSError, sqlite3.Error, StoreError) as e:
+        except (OSError, sqlite3.Error, StoreError, SchemaError) as e:
             if c is not None:
                 c.close()
             self._error(f"cannot open {self.path}: {e}")
