@@ -38,6 +38,7 @@ from .types import (
     OutputUnit,
     WindowName,
     check_choice,
+    check_index_span,
 )
 from .windows import DEFAULT_KAISER_BETA, check_window
 
@@ -293,7 +294,14 @@ class Analyzer:
         """Feed samples ``[C, n]``; returns the number of new frames folded into the averages.
 
         A ``first_index`` other than the next expected one is a gap: see :meth:`reset`.
+        Every sample's index must fit int64 (``dsp.types.check_index_span``): a block that
+        would run past it raises ValueError and changes nothing.
         """
+        n = int(np.shape(block)[-1])
+        if first_index is not None:  # refused before the reset below changes anything
+            first_index = check_index_span(first_index, n)
+        else:
+            check_index_span(self.bank.next_index, n)
         if first_index is not None and first_index != self.bank.next_index:
             self.reset(first_index)
         if self._folded:

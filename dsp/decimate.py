@@ -61,6 +61,7 @@ from numpy.lib.stride_tricks import as_strided
 
 from .buffer import SampleBuffer
 from .filterbank import FMAX_RATIO
+from .types import check_index_span
 
 __all__ = [
     "MIN_FACTOR",
@@ -396,6 +397,14 @@ def plan_chain(fs_in: float, fmax_hz: float, *, ripple_db: float = RIPPLE_DB,
 # -- streaming --------------------------------------------------------------------------
 
 
+def _span(x: np.ndarray, first_index: int | None, next_index: int) -> int | None:
+    """``first_index`` as an int (None: the stream goes on from ``next_index``) once every
+    index of ``x`` [C, n] is known to fit int64 (``dsp.types.check_index_span``); raises
+    before the caller changes any state."""
+    k = check_index_span(next_index if first_index is None else first_index, x.shape[1])
+    return None if first_index is None else k
+
+
 def _as_block(block: np.ndarray, channels: int) -> np.ndarray:
     x = np.asarray(block)
     if x.ndim == 1 and channels == 1:
@@ -577,6 +586,7 @@ class Decimator:
         :attr:`next_input_index` is a gap and calls :meth:`reset` there first.
         """
         x = _as_block(block, self.channels)
+        first_index = _span(x, first_index, self._next_in)
         if first_index is not None and first_index != self._next_in:
             self.reset(first_index)
         return self._run(x)
@@ -689,6 +699,7 @@ class DecimationChain:
     def push(self, block: np.ndarray, first_index: int | None = None) -> np.ndarray:
         """As :meth:`Decimator.push`, through every stage."""
         x = _as_block(block, self.channels)
+        first_index = _span(x, first_index, self.next_input_index)
         if first_index is not None and first_index != self.next_input_index:
             self.reset(first_index)
         return self._run(x).astype(np.float32, copy=False)
@@ -829,6 +840,7 @@ class MultiRate:
         A ``first_index`` other than :attr:`next_input_index` is a gap: see :meth:`reset`.
         """
         x = _as_block(block, self.channels)
+        first_index = _span(x, first_index, self._next_in)
         if first_index is not None and first_index != self._next_in:
             self.reset(first_index)
         self._next_in += x.shape[1]

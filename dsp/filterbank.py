@@ -35,6 +35,7 @@ import scipy.fft
 
 from .buffer import SampleBuffer
 from .tones import tone_kernel
+from .types import check_index_span
 from .windows import DEFAULT_KAISER_BETA, WindowInfo, check_window, get_window, window_info
 
 __all__ = ["FrameBatch", "FrameGrid", "FilterBank", "FMAX_RATIO", "PowerBatch"]
@@ -461,8 +462,16 @@ class FilterBank:
             raise ValueError(f"block has shape {np.shape(block)}; expected ({self.channels}, n)")
         return x
 
+    def _check_span(self, x: np.ndarray, first_index: int | None) -> int | None:
+        """``first_index`` as an int (None: the stream goes on), after checking that every
+        index of ``x`` fits int64 — before any state changes (see ``check_index_span``)."""
+        k = self._next_index if first_index is None else first_index
+        k = check_index_span(k, x.shape[1])
+        return None if first_index is None else k
+
     def _accept(self, x: np.ndarray, first_index: int | None) -> int:
         """Append ``x`` [C, n] (after a gap check); return the number of frames now complete."""
+        first_index = self._check_span(x, first_index)
         if first_index is not None and first_index != self._next_index:
             self.reset(first_index)
         self._next_index += x.shape[1]
@@ -542,6 +551,7 @@ class FilterBank:
             raise ValueError(f"lines={lines!r} must be in [1, {self.grid.bins}]")
         a = np.asarray(weights, dtype=np.float64).reshape(-1)
         x = self._as_block(block)
+        first_index = self._check_span(x, first_index)
         if first_index is not None and first_index != self._next_index:
             self.reset(first_index)
         p_count = self.frames_ready(x.shape[1])

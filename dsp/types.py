@@ -1,6 +1,7 @@
-"""Closed option sets shared by the dsp modules, each with a run-time check.
+"""Closed option sets shared by the dsp modules, each with a run-time check, and the range of
+stream sample indices.
 
-Holds names only; knows nothing about streams, files, the service or its config."""
+Holds names and limits only; knows nothing about streams, files, the service or its config."""
 
 from __future__ import annotations
 
@@ -24,6 +25,10 @@ OUTPUT_UNITS: tuple[str, ...] = get_args(OutputUnit)
 
 T = TypeVar("T", bound=str)
 
+# Stream sample indices are signed 64-bit: frame starts come back as int64 arrays.
+INDEX_MIN = -(2**63)
+INDEX_MAX = 2**63 - 1
+
 
 def check_choice(name: str, value: object, allowed: tuple[str, ...]) -> str:
     """Return ``value`` if it is one of ``allowed``; else raise ValueError naming both.
@@ -34,3 +39,20 @@ def check_choice(name: str, value: object, allowed: tuple[str, ...]) -> str:
         listed = ", ".join(repr(a) for a in allowed)
         raise ValueError(f"{name}={value!r} is not one of {listed}")
     return value
+
+
+def check_index_span(first_index: int, n: int) -> int:
+    """Return ``first_index`` as an int if samples ``first_index … first_index + n − 1`` and
+    the index just after them all fit a signed 64-bit stream index, i.e.
+    INDEX_MIN ≤ first_index and first_index + n ≤ INDEX_MAX; else raise ValueError.
+
+    Streaming stages call it before they change any state, so a refused block leaves them
+    as they were (the samples already pushed keep their frames and averages).
+    """
+    k = int(first_index)
+    if k < INDEX_MIN or k + int(n) > INDEX_MAX:
+        raise ValueError(
+            f"first_index={k} with {int(n)} samples: stream indices must stay within int64 "
+            f"(first_index >= {INDEX_MIN}, first_index + n <= {INDEX_MAX})"
+        )
+    return k

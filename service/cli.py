@@ -52,6 +52,7 @@ from .config import (
     check_listen_allowed,
     effective_analysis,
     load_config,
+    open_source_warnings,
     parse_listen,
     profiles_of,
     tones_for,
@@ -318,6 +319,7 @@ def cmd_check(args: argparse.Namespace) -> int:
                 out.append(f"    {p.name}{' (primary)' if p.primary else ''}: {what}")
             out += [f"    note: {n}" for n in p.notes]
     out.append(f"alarms: {len(cfg.alarms)}")
+    out += [f"warning: {w}" for w in open_source_warnings(cfg)]
     print("\n".join(out))
     if problems:
         return _config_error(ConfigError(problems, source=str(args.config)))

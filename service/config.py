@@ -66,6 +66,7 @@ __all__ = [
     "describe_settings",
     "effective_analysis",
     "load_config",
+    "open_source_warnings",
     "parse_config",
     "parse_listen",
     "profile_names",
@@ -266,6 +267,26 @@ class _SourceBase(_Model):
     )
 
 
+def _valid_cidrs(items: list[str] | None) -> list[str] | None:
+    from .sources.base import parse_networks  # the sources judge peers by the same rule
+
+    parse_networks(items)
+    return items
+
+
+Cidrs = Annotated[list[str] | None, AfterValidator(_valid_cidrs)]
+_ALLOW_FROM_HELP = (
+    "Peers allowed to feed this source: IP networks in CIDR form (e.g. ['10.1.2.0/24', "
+    "'127.0.0.1']); others are refused unread and counted in `refused_peers`. Default: "
+    "any host that can reach the port."
+)
+_MAX_FRAME_HELP = (
+    "Largest framed payload accepted, bytes; a header declaring more is malformed at once "
+    "(counted, the decoder resynchronises). Default: about 1 s of this source's data, "
+    "channels × sample_rate_hz × 8 bytes, at least 64 KiB and at most 16 MiB."
+)
+
+
 class TcpSourceConfig(_SourceBase):
     kind: Literal["tcp"] = _d("Source kind.")
     listen: Listen = _d("host:port quaver listens on for one producer at a time.")
@@ -273,12 +294,24 @@ class TcpSourceConfig(_SourceBase):
         "Sample format: raw interleaved little-endian s16le | s32le | f32le | f64le, or "
         "framed (quaver's header per frame, see service/wire.py)."
     )
+    idle_timeout_s: float = Field(
+        10.0,
+        gt=0,
+        le=3600,
+        description="A producer that sends nothing for this long is dropped (counted in "
+        "`idle_drops`, logged) and its slot freed; a new connection replaces a producer "
+        "silent this long at once, s.",
+    )
+    max_frame_bytes: int | None = Field(None, ge=1024, le=16 * 2**20, description=_MAX_FRAME_HELP)
+    allow_from: Cidrs = Field(None, description=_ALLOW_FROM_HELP)
 
 
 class UdpSourceConfig(_SourceBase):
     kind: Literal["udp"] = _d("Source kind.")
     listen: Listen = _d("host:port quaver receives framed datagrams on.")
     format: Literal["framed"] = Field("framed", description="Datagrams are framed: one frame each.")
+    max_frame_bytes: int | None = Field(None, ge=1024, le=16 * 2**20, description=_MAX_FRAME_HELP)
+    allow_from: Cidrs = Field(None, description=_ALLOW_FROM_HELP)
 
 
 class FileSourceConfig(_SourceBase):
@@ -695,6 +728,29 @@ def tones_for(cfg: Config, channel_id: str, profile: str | None = None) -> list[
         if t.channel == channel_id
         or (t.channel == "*" and t.name not in own_names and (rpm is not None or t.order is None))
     ]
+
+
+def open_source_warnings(cfg: Config) -> list[str]:
+    """One line per TCP/UDP source that listens on a non-loopback address without
+    ``allow_from`` (any host that reaches the port may feed it): warnings, not errors."""
+    out = []
+    for i, s in enumerate(cfg.sources):
+        if not isinstance(s, TcpSourceConfig | UdpSourceConfig) or s.allow_from is not None:
+            continue
+        host, _ = parse_listen(s.listen)
+        if host == "localhost":
+            continue
+        try:
+            loopback = ipaddress.ip_address(host).is_loopback
+        except ValueError:
+            loopback = False  # a host name may resolve to anything
+        if not loopback:
+            out.append(
+                f"sources[{i}] ({s.id}): listens on {s.listen!r}, not a loopback address, "
+                "without allow_from: any host that can reach the port may feed it; set "
+                "allow_from = [\"<network>/<bits>\", ...]"
+            )
+    return out
 
 
 def check_listen_allowed(cfg: Config) -> None:

@@ -22,7 +22,9 @@ offset  size   type    field
 5       1      u8      sample format: 0 = s16le, 1 = s32le, 2 = f32le, 3 = f64le
 6       2      u16     channel count C, 1…4096
 8       8      f64     sample rate fs in Hz (finite, > 0)
-16      8      u64     index of the payload's first sample since the stream began
+16      8      u64     index of the payload's first sample since the stream began; a
+                       receiver takes indices as signed 64-bit: first index + sample
+                       count must not exceed 2⁶³−1, or the frame is malformed
 24      8      i64     wall time of the first sample, ns since the Unix epoch; 0 = unknown
                        (the receiver uses arrival time)
 32      4      u32     payload length in bytes: a non-zero multiple of C × sample size,
@@ -35,7 +37,19 @@ A frame whose first sample index is not the previous frame's first index plus it
 count marks a gap. :class:`FrameDecoder` rejects a bad header or payload with a reason,
 counts it, and resynchronises by scanning for the next magic; it never raises on bad input
 and, because both header and payload carry a CRC, a good frame that follows garbage or a
-cut-off frame is still found.
+cut-off frame is still found. A receiver may set a lower payload limit than 16 MiB (the
+sources' ``max_frame_bytes``); a header declaring more is malformed at once, so a bad
+length never makes the receiver wait for data that will not come.
+
+Mistaken formats
+----------------
+:func:`framed_header_at` tells whether bytes hold a framed header (magic *and* a matching
+header CRC: 2⁻³² odds for raw data that happens to start with the magic), so a raw source
+can refuse framed data. :func:`implausible_count` counts float samples beyond ±1e15 raw
+units (infinities included; NaN is not counted: a data acquisition that marks a dropout
+with NaN is a sensor fault, reported per channel downstream). No sensor chain gives such
+values, while other bytes read as f32/f64 (integers, headers, text) give them in large
+shares; raw sources reject a block in which they exceed ``IMPLAUSIBLE_SHARE``.
 """
 
 from __future__ import annotations
@@ -60,13 +74,19 @@ __all__ = [
     "VERSION",
     "Frame",
     "FrameDecoder",
+    "IMPLAUSIBLE_ABS",
+    "IMPLAUSIBLE_SHARE",
+    "INDEX_MAX",
     "RawFormat",
     "WireError",
     "check_raw_format",
     "decode_datagram",
     "decode_raw",
+    "default_max_frame_bytes",
     "encode_frame",
     "encode_raw",
+    "framed_header_at",
+    "implausible_count",
 ]
 
 RawFormat = Literal["s16le", "s32le", "f32le", "f64le"]
@@ -85,6 +105,9 @@ MAGIC = b"QVRF"
 VERSION = 1
 MAX_PAYLOAD_BYTES = 16 * 1024 * 1024
 MAX_CHANNELS = 4096
+INDEX_MAX = 2**63 - 1  # stream indices are signed 64-bit downstream (dsp.types.INDEX_MAX)
+IMPLAUSIBLE_ABS = 1e15  # raw units; far beyond any ADC count or physical value (our choice)
+IMPLAUSIBLE_SHARE = 0.01  # a raw block with more such values than this share is rejected
 _HEAD = struct.Struct("<4sBBHdQqII")  # everything the header CRC covers
 HEADER_SIZE = _HEAD.size + 4  # 44, as documented above; a change here is a new version
 
@@ -168,7 +191,7 @@ class Frame:
 def encode_frame(data: np.ndarray, fmt: str, fs: float, first_index: int, t_ns: int = 0) -> bytes:
     """One framed-format frame holding ``data`` (float ``[C, n]``, raw units, n >= 1).
 
-    ``fs`` in Hz, ``first_index`` in samples (0 … 2⁶⁴−1), ``t_ns`` in ns since the Unix
+    ``fs`` in Hz, ``first_index`` in samples (0 … 2⁶³−1−n), ``t_ns`` in ns since the Unix
     epoch or 0 for unknown. Raises ValueError for inputs the format cannot carry.
     """
     payload = encode_raw(data, fmt)
@@ -181,8 +204,10 @@ def encode_frame(data: np.ndarray, fmt: str, fs: float, first_index: int, t_ns: 
         raise ValueError(f"payload of {len(payload)} bytes exceeds {MAX_PAYLOAD_BYTES}")
     if not (math.isfinite(fs) and fs > 0):
         raise ValueError(f"fs={fs!r} must be a finite number > 0 (Hz)")
-    if not 0 <= first_index < 2**64:
-        raise ValueError(f"first_index={first_index!r} must be in [0, 2**64)")
+    if not 0 <= first_index <= INDEX_MAX - n:
+        raise ValueError(
+            f"first_index={first_index!r} must be in [0, 2**63 - 1 - n] (n = {n} samples)"
+        )
     head = _HEAD.pack(
         MAGIC,
         VERSION,
@@ -230,7 +255,39 @@ def _parse_header(head: bytes, max_payload_bytes: int) -> _Header | str:
         return f"payload length {length} is not a non-zero multiple of {frame_bytes} bytes"
     if length > max_payload_bytes:
         return f"payload length {length} exceeds the maximum {max_payload_bytes}"
+    n = length // frame_bytes
+    if first + n > INDEX_MAX:
+        return (
+            f"first sample index {first} with {n} samples runs past 2**63-1 "
+            "(indices are signed 64-bit)"
+        )
     return _Header(fmt, channels, fs, first, t_ns, length, pcrc)
+
+
+MIN_FRAME_LIMIT = 64 * 1024  # floor of the default payload limit, bytes (our choice)
+
+
+def default_max_frame_bytes(channels: int, fs: float) -> int:
+    """The default payload limit of a framed source: about 1 s of its data in the widest
+    sample format (8 bytes), ``channels`` × ``fs`` (Hz) × 8, at least MIN_FRAME_LIMIT and
+    at most MAX_PAYLOAD_BYTES."""
+    return max(MIN_FRAME_LIMIT, min(MAX_PAYLOAD_BYTES, math.ceil(channels * fs * 8)))
+
+
+def framed_header_at(buf: bytes | bytearray, pos: int = 0) -> bool:
+    """True if ``buf[pos:]`` starts with a framed-format header: the magic and a header CRC
+    that matches (the rest of the header is not judged). Needs HEADER_SIZE bytes from pos."""
+    if len(buf) - pos < HEADER_SIZE or buf[pos : pos + 4] != MAGIC:
+        return False
+    (hcrc,) = struct.unpack_from("<I", buf, pos + _HEAD.size)
+    return zlib.crc32(bytes(buf[pos : pos + _HEAD.size])) == hcrc
+
+
+def implausible_count(data: np.ndarray) -> int:
+    """Samples of ``data`` beyond ±IMPLAUSIBLE_ABS raw units, infinities included (NaN is
+    not counted: see the module docstring)."""
+    with np.errstate(invalid="ignore"):
+        return int(np.count_nonzero(np.abs(data) > IMPLAUSIBLE_ABS))
 
 
 def _frame(h: _Header, payload: bytes) -> Frame:

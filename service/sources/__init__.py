@@ -49,10 +49,14 @@ def make_source(cfg: SourceConfig, *, clock: Callable[[], int] = time.time_ns) -
                 port,
                 cfg.format,
                 queue_blocks=cfg.queue_blocks,
+                idle_timeout_s=cfg.idle_timeout_s,
+                max_frame_bytes=cfg.max_frame_bytes,
+                allow_from=cfg.allow_from,
                 clock=clock,
             )
         return UdpSource(
-            cfg.id, cfg.channels, fs, host, port, queue_blocks=cfg.queue_blocks, clock=clock
+            cfg.id, cfg.channels, fs, host, port, queue_blocks=cfg.queue_blocks,
+            max_frame_bytes=cfg.max_frame_bytes, allow_from=cfg.allow_from, clock=clock,
         )
     if isinstance(cfg, FileSourceConfig):
         return FileSource(

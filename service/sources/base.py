@@ -14,6 +14,9 @@ Real-time contract
   block leaves a jump in ``first_index``, so the pipeline sees a gap.
 * **Bad input** (malformed frames or rows, disconnects, truncation, rotation) is counted in
   ``counters`` with the latest reason in ``counters.last_error``; it never ends the stream.
+  Warnings about repeated bad input are logged at most once per ``LOG_EVERY_S`` per kind.
+* **Who may feed.** Network sources take ``allow_from`` (CIDRs; None = anyone): a peer
+  outside it is refused before any byte is read, counted in ``extra["refused_peers"]``.
 * **Sample index.** ``first_index`` counts samples since the source began. Any block whose
   ``first_index`` is not the previous block's ``first_index + n`` follows a gap; sources
   add ``GAP_SAMPLES`` to the index when a stream restarts (reconnect, truncation,
@@ -28,6 +31,7 @@ Real-time contract
 from __future__ import annotations
 
 import asyncio
+import ipaddress
 import logging
 import time
 from abc import ABC, abstractmethod
@@ -45,7 +49,39 @@ log = logging.getLogger("quaver.sources")
 # (e.g. a producer's clock corrected by NTP); our choice, well above network jitter.
 CLOCK_STEP_BACK_NS = 1_000_000_000
 
-__all__ = ["GAP_SAMPLES", "QueuedSource", "Source"]
+__all__ = ["GAP_SAMPLES", "QueuedSource", "Source", "parse_networks", "peer_allowed"]
+
+LOG_EVERY_S = 10.0  # a repeated warning of one kind is logged at most this often (our choice)
+
+Network = ipaddress.IPv4Network | ipaddress.IPv6Network
+
+
+def parse_networks(cidrs: Sequence[str] | None) -> tuple[Network, ...] | None:
+    """``allow_from`` as networks (a bare address is a /32 or /128); None = anyone.
+    Raises ValueError naming a bad entry."""
+    if cidrs is None:
+        return None
+    out = []
+    for c in cidrs:
+        try:
+            out.append(ipaddress.ip_network(c, strict=False))
+        except ValueError as e:
+            raise ValueError(f"{c!r} is not an IP network in CIDR form: {e}") from None
+    return tuple(out)
+
+
+def peer_allowed(host: object, networks: tuple[Network, ...] | None) -> bool:
+    """Is the peer address ``host`` (text) inside one of ``networks`` (None: anyone)?
+    IPv4-mapped IPv6 peers (a dual-stack listener) are judged by their IPv4 address."""
+    if networks is None:
+        return True
+    try:
+        ip = ipaddress.ip_address(str(host).split("%", 1)[0])
+    except ValueError:
+        return False
+    if isinstance(ip, ipaddress.IPv6Address) and ip.ipv4_mapped is not None:
+        ip = ip.ipv4_mapped
+    return any(ip in n for n in networks)
 
 GAP_SAMPLES = 1  # index jump marking a restarted stream
 
@@ -107,6 +143,7 @@ class QueuedSource(ABC):
         self._closed = False
         self._tasks: set[asyncio.Task[None]] = set()
         self._last_header: tuple[int, int] | None = None  # (t_ns, first_index) of the last
+        self._logged: dict[str, float] = {}  # warning kind → monotonic time last logged
 
     @property
     def fs(self) -> float | None:
@@ -221,6 +258,18 @@ class QueuedSource(ABC):
 
     def _error(self, text: str) -> None:
         self.counters.last_error = text
+
+    def _warn(self, kind: str, text: str) -> None:
+        """``text`` as last_error, and logged unless a ``kind`` warning was within LOG_EVERY_S."""
+        self._error(text)
+        now = time.monotonic()
+        if now - self._logged.get(kind, -LOG_EVERY_S) >= LOG_EVERY_S:
+            self._logged[kind] = now
+            log.warning("source %s: %s", self.id, text)
+
+    def _refuse_peer(self, peer: str) -> None:
+        self._bump("refused_peers")
+        self._warn("refused_peers", f"refused {peer}: not in allow_from")
 
     def _bump(self, key: str, by: int = 1) -> None:
         self.counters.extra[key] = self.counters.extra.get(key, 0) + by

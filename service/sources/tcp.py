@@ -5,13 +5,28 @@ Knows nothing about the engine, the pipeline, the config file or HTTP.
 * **One active producer.** While a producer is connected, another connection to the same
   source is closed at once, counted in ``counters.extra["refused"]`` and logged; the
   first producer is not disturbed. Producers may come and go over time.
+* **Idle producers.** A producer that sends nothing for ``idle_timeout_s`` is dropped
+  (``extra["idle_drops"]``, logged), which frees the slot; a connection arriving when the
+  held producer has been silent that long replaces it at once. So a client that connects
+  and sends nothing, or one that vanished without closing, cannot lock the source.
+* **allow_from** (CIDRs, None = anyone): other peers are closed before any byte is read
+  (``extra["refused_peers"]``).
 * **Raw formats** carry no index: samples are numbered on arrival. A new connection after
   one that delivered samples starts ``GAP_SAMPLES`` further on and counts a gap, so frame
   assembly restarts instead of stitching two unrelated streams. ``t0_ns`` is the arrival
   time minus the duration of the samples in the block.
+* **Wrong format.** A raw source refuses a connection whose bytes hold a framed-format
+  header (magic and header CRC; the first one is looked for before any sample is taken):
+  the connection is closed, ``malformed`` and ``extra["wrong_format"]`` count it and
+  ``last_error`` says "this looks like framed data on a raw source". A raw f32le/f64le
+  block (one read) in which more than ``IMPLAUSIBLE_SHARE`` of the values lie beyond
+  ±1e15 (``service.wire.implausible_count``) is rejected and counted in ``malformed`` and
+  ``extra["implausible_blocks"]``; its samples' indices are skipped, so the pipeline sees
+  a gap rather than stitching the good samples on either side together.
 * **Framed format**: index and time come from each header (``t_ns`` 0 → arrival time as
   above); an index other than the previous frame's end is a gap. Frames whose channel
-  count or sample rate differ from the configuration are rejected and counted.
+  count or sample rate differ from the configuration are rejected and counted; a header
+  declaring a payload over ``max_frame_bytes`` is malformed at once (no wait for it).
 * **Disconnects** are not errors: a producer leaving in the middle of a sample or frame
   counts one ``partial_frames`` (the held bytes are in ``extra["partial_bytes"]``).
 """
@@ -24,8 +39,19 @@ import logging
 import time
 from collections.abc import Callable, Sequence
 
-from ..wire import RAW_FORMATS, FrameDecoder, decode_raw
-from .base import GAP_SAMPLES, QueuedSource
+from ..wire import (
+    HEADER_SIZE,
+    IMPLAUSIBLE_ABS,
+    IMPLAUSIBLE_SHARE,
+    MAGIC,
+    RAW_FORMATS,
+    FrameDecoder,
+    decode_raw,
+    default_max_frame_bytes,
+    framed_header_at,
+    implausible_count,
+)
+from .base import GAP_SAMPLES, QueuedSource, parse_networks, peer_allowed
 
 __all__ = ["TcpSource"]
 
@@ -36,7 +62,9 @@ TCP_FORMATS: tuple[str, ...] = (*RAW_FORMATS, "framed")
 class TcpSource(QueuedSource):
     """Listens on ``host:port`` for one producer at a time; ``fmt`` is a raw format or
     ``"framed"``; ``fs`` in Hz is the configured sample rate. ``address`` gives the bound
-    (host, port) after ``start()`` (useful with port 0)."""
+    (host, port) after ``start()`` (useful with port 0). ``idle_timeout_s`` (s),
+    ``max_frame_bytes`` (payload bytes; None: ``wire.default_max_frame_bytes``) and
+    ``allow_from`` (CIDRs; None: anyone) as in the module docstring."""
 
     kind = "tcp"
 
@@ -51,13 +79,27 @@ class TcpSource(QueuedSource):
         *,
         queue_blocks: int = 256,
         read_bytes: int = 1 << 16,
+        idle_timeout_s: float = 10.0,
+        max_frame_bytes: int | None = None,
+        allow_from: Sequence[str] | None = None,
         clock: Callable[[], int] = time.time_ns,
     ) -> None:
         if fmt not in TCP_FORMATS:
             raise ValueError(f"format={fmt!r} is not one of {', '.join(map(repr, TCP_FORMATS))}")
+        if not idle_timeout_s > 0:
+            raise ValueError(f"idle_timeout_s={idle_timeout_s!r} must be > 0 (s)")
         super().__init__(source_id, channel_ids, fs, queue_blocks=queue_blocks, clock=clock)
         # present from the start, so metric series are stable
-        self.counters.extra.update(dict.fromkeys(("refused", "partial_bytes"), 0))
+        self.counters.extra.update(dict.fromkeys(
+            ("refused", "partial_bytes", "idle_drops", "refused_peers")
+            + (("wrong_format", "implausible_blocks") if fmt != "framed" else ()), 0))
+        self.idle_timeout_s = float(idle_timeout_s)
+        self.max_frame_bytes = (
+            default_max_frame_bytes(len(self.channel_ids), fs)
+            if max_frame_bytes is None else int(max_frame_bytes)
+        )
+        self.allow_from = parse_networks(allow_from)
+        self._allow_text = None if allow_from is None else list(allow_from)
         self.host, self.port, self.fmt = host, port, fmt
         self.read_bytes = read_bytes
         self.address: tuple[str, int] | None = None
@@ -68,6 +110,8 @@ class TcpSource(QueuedSource):
         self._next_index: int | None = None  # framed: expected first index of the next frame
         self._raw_index = 0  # raw: index of the next sample
         self._delivered = False  # raw: samples since the last restart
+        self._last_rx = 0.0  # loop time of the producer's connect or latest bytes
+        self._handler: asyncio.Task[object] | None = None  # the held producer's handler
 
     async def _start(self) -> None:
         self._server = await asyncio.start_server(self._on_connect, self.host, self.port)
@@ -93,6 +137,18 @@ class TcpSource(QueuedSource):
         if self._closed:
             writer.close()
             return
+        if not peer_allowed(_peer_host(writer), self.allow_from):
+            self._refuse_peer(peer)
+            writer.transport.abort()
+            return
+        loop = asyncio.get_running_loop()
+        silent_s = loop.time() - self._last_rx
+        if self._writer is not None and silent_s >= self.idle_timeout_s:
+            # the held producer is idle or dead: drop it and take the newcomer
+            self._idle_drop(silent_s)
+            self._writer.transport.abort()
+            if self._handler is not None:
+                await asyncio.wait({self._handler}, timeout=2.0)
         if self._writer is not None:
             self._bump("refused")
             self._error(f"refused {peer}: producer {self.peer} is connected")
@@ -104,14 +160,16 @@ class TcpSource(QueuedSource):
         task = asyncio.current_task()
         if task is not None:  # so aclose() can wait for it
             self._handlers.add(task)
-        self._writer, self.peer = writer, peer
+        self._writer, self.peer, self._handler = writer, peer, task
+        self._last_rx = loop.time()
         self.counters.connections += 1
         self.state = "connected"
         log.info("source %s: producer %s connected", self.id, peer)
         try:
             await self._serve(reader)
         finally:
-            self._writer, self.peer = None, None
+            if self._writer is writer:
+                self._writer, self.peer, self._handler = None, None, None
             self.counters.disconnects += 1
             if not self._closed:
                 self.state = "listening"
@@ -135,14 +193,57 @@ class TcpSource(QueuedSource):
                 + ("frame" if self.fmt == "framed" else "sample")
             )
 
+    def _idle_drop(self, silent_s: float) -> None:
+        self._bump("idle_drops")
+        self._error(f"dropped producer {self.peer}: nothing received for {silent_s:.3g} s "
+                    f"(idle_timeout_s = {self.idle_timeout_s:g})")
+        log.warning("source %s: dropped idle producer %s after %.3g s without data",
+                    self.id, self.peer, silent_s)
+
     async def _read(self, reader: asyncio.StreamReader) -> bytes:
         try:
-            chunk = await reader.read(self.read_bytes)
+            async with asyncio.timeout(self.idle_timeout_s):
+                chunk = await reader.read(self.read_bytes)
+        except TimeoutError:
+            if self._writer is not None and not self._closed:
+                self._idle_drop(asyncio.get_running_loop().time() - self._last_rx)
+            return b""
         except (ConnectionError, OSError) as e:
             self._error(f"connection from {self.peer}: {e}")
             return b""
+        self._last_rx = asyncio.get_running_loop().time()
         self.counters.bytes += len(chunk)
         return chunk
+
+    def _looks_framed(self, buf: bytes) -> bool:
+        """Does ``buf`` hold a framed-format header? If so, count and report the mistake."""
+        pos = buf.find(MAGIC)
+        while pos >= 0:
+            if framed_header_at(buf, pos):
+                self.counters.malformed += 1
+                self._bump("wrong_format")
+                self._warn("wrong_format",
+                           f"refused {self.peer}: this looks like framed data on a raw source "
+                           f"(a framed header at byte {self.counters.bytes - len(buf) + pos} "
+                           f"of the stream); this source reads raw {self.fmt}: send raw "
+                           f"{self.fmt} (quaver feed --format {self.fmt}) or configure "
+                           'format = "framed"')
+                return True
+            pos = buf.find(MAGIC, pos + 1)
+        return False
+
+    def _implausible(self, data: object, n_values: int) -> bool:
+        """Is this raw float block implausible for the format? If so, count and report it."""
+        bad = implausible_count(data)  # type: ignore[arg-type]
+        if bad <= IMPLAUSIBLE_SHARE * n_values:
+            return False
+        self.counters.malformed += 1
+        self._bump("implausible_blocks")
+        self._warn("implausible",
+                   f"from {self.peer}: {bad} of {n_values} values beyond ±{IMPLAUSIBLE_ABS:g} "
+                   f"(or infinite): implausible as {self.fmt} samples; block rejected. Is the "
+                   "producer sending another format (s16le/s32le, f32 vs f64, framed)?")
+        return True
 
     async def _serve_raw(self, reader: asyncio.StreamReader) -> int:
         if self._delivered:  # a new stream: leave a visible jump
@@ -150,9 +251,21 @@ class TcpSource(QueuedSource):
             self.counters.gaps += 1
             self._delivered = False
         rest = b""
+        head = True  # the stream's first HEADER_SIZE bytes are held and checked first
+        check_values = self.fmt in ("f32le", "f64le")
         while chunk := await self._read(reader):
-            data, rest = decode_raw(rest + chunk, self.fmt, len(self.channel_ids))
+            buf = rest + chunk
+            if head and len(buf) < HEADER_SIZE and buf[:4] == MAGIC[: len(buf)]:
+                rest = buf  # it may be a framed header: wait for all of it before deciding
+                continue
+            if self._looks_framed(buf):
+                return 0  # the connection closes; the samples it gave before are kept
+            head = False
+            data, rest = decode_raw(buf, self.fmt, len(self.channel_ids))
             n = data.shape[1]
+            if n and check_values and self._implausible(data, data.size):
+                self._raw_index += n  # the rejected samples' indices: a gap downstream
+                continue
             if n:
                 self._emit(data, self._raw_index, self._arrival_t0_ns(n))
                 self._raw_index += n
@@ -160,7 +273,7 @@ class TcpSource(QueuedSource):
         return len(rest)
 
     async def _serve_framed(self, reader: asyncio.StreamReader) -> int:
-        decoder = FrameDecoder()
+        decoder = FrameDecoder(max_payload_bytes=self.max_frame_bytes)
         seen = 0
         while chunk := await self._read(reader):
             for frame in decoder.feed(chunk):
@@ -181,7 +294,14 @@ class TcpSource(QueuedSource):
 
     def _status_extra(self) -> dict[str, object]:
         addr = f"{self.address[0]}:{self.address[1]}" if self.address else None
-        return {"listen": addr, "format": self.fmt, "producer": self.peer}
+        return {"listen": addr, "format": self.fmt, "producer": self.peer,
+                "idle_timeout_s": self.idle_timeout_s, "max_frame_bytes": self.max_frame_bytes,
+                "allow_from": self._allow_text}
+
+
+def _peer_host(writer: asyncio.StreamWriter) -> object:
+    peer = writer.get_extra_info("peername")
+    return peer[0] if isinstance(peer, tuple) and peer else peer
 
 
 def _peer_text(writer: asyncio.StreamWriter) -> str:

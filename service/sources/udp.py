@@ -12,8 +12,10 @@ Datagrams are handed on as they arrive (no reorder buffer, so no added latency).
 * further back than ``late_window`` samples — the producer restarted: a gap, accepted.
 
 A datagram that is not exactly one valid frame, or whose channel count or sample rate
-differ from the configuration, is rejected and counted in ``counters.malformed``. A UDP
-source expects one producer; several senders interleave and show up as gaps and drops.
+differ from the configuration, or whose payload exceeds ``max_frame_bytes``, is rejected
+and counted in ``counters.malformed``. A UDP source expects one producer; several senders
+interleave and show up as gaps and drops. With ``allow_from`` (CIDRs), datagrams from
+other addresses are dropped unread and counted in ``extra["refused_peers"]``.
 """
 
 from __future__ import annotations
@@ -23,8 +25,8 @@ import logging
 import time
 from collections.abc import Callable, Sequence
 
-from ..wire import Frame, WireError, decode_datagram
-from .base import QueuedSource
+from ..wire import Frame, WireError, decode_datagram, default_max_frame_bytes
+from .base import QueuedSource, parse_networks, peer_allowed
 
 __all__ = ["UdpSource"]
 
@@ -48,11 +50,19 @@ class UdpSource(QueuedSource):
         *,
         late_window_s: float = 10.0,
         queue_blocks: int = 256,
+        max_frame_bytes: int | None = None,
+        allow_from: Sequence[str] | None = None,
         clock: Callable[[], int] = time.time_ns,
     ) -> None:
         super().__init__(source_id, channel_ids, fs, queue_blocks=queue_blocks, clock=clock)
         # present from the start, so metric series are stable
-        self.counters.extra.update(dict.fromkeys(("late",), 0))
+        self.counters.extra.update(dict.fromkeys(("late", "refused_peers"), 0))
+        self.max_frame_bytes = (
+            default_max_frame_bytes(len(self.channel_ids), fs)
+            if max_frame_bytes is None else int(max_frame_bytes)
+        )
+        self.allow_from = parse_networks(allow_from)
+        self._allow_text = None if allow_from is None else list(allow_from)
         self.host, self.port = host, port
         self.late_window = max(1, round(late_window_s * fs))
         self.address: tuple[str, int] | None = None
@@ -76,9 +86,13 @@ class UdpSource(QueuedSource):
     def _on_datagram(self, datagram: bytes, addr: object) -> None:
         if self._closed:
             return
+        if not peer_allowed(addr[0] if isinstance(addr, tuple) and addr else addr,
+                            self.allow_from):
+            self._refuse_peer(_addr_text(addr))
+            return
         self.counters.bytes += len(datagram)
         try:
-            frame = decode_datagram(datagram)
+            frame = decode_datagram(datagram, self.max_frame_bytes)
         except WireError as e:
             self._reject(f"datagram from {_addr_text(addr)}: {e}")
             return
@@ -106,7 +120,8 @@ class UdpSource(QueuedSource):
 
     def _status_extra(self) -> dict[str, object]:
         addr = f"{self.address[0]}:{self.address[1]}" if self.address else None
-        return {"listen": addr, "format": "framed", "next_index": self._expected}
+        return {"listen": addr, "format": "framed", "next_index": self._expected,
+                "max_frame_bytes": self.max_frame_bytes, "allow_from": self._allow_text}
 
 
 class _Receiver(asyncio.DatagramProtocol):

@@ -82,11 +82,12 @@ def test_frame_round_trip_every_format(fmt: str) -> None:
         x = rng.integers(-hi, hi, size=(3, 100)).astype(np.float64)
     else:
         x = rng.standard_normal((3, 100))
-    fr = wire.decode_datagram(wire.encode_frame(x, fmt, 25600.0, 2**63 + 5, -3))
+    top = 2**63 - 1 - 100  # the last start a frame of 100 samples may have (module docstring)
+    fr = wire.decode_datagram(wire.encode_frame(x, fmt, 25600.0, top, -3))
     assert (fr.channels, fr.fs, fr.first_index, fr.t_ns, fr.fmt, fr.n) == (
         3,
         25600.0,
-        2**63 + 5,
+        top,
         -3,
         fmt,
         100,
@@ -192,10 +193,11 @@ def _raw_header(
     fs: float = 100.0,
     length: int = 4,
     payload: bytes = b"\0\0\0\0",
+    first: int = 0,
 ) -> bytes:
-    head = LAYOUT.pack(b"QVRF", version, code, channels, fs, 0, 0, length, zlib.crc32(payload), 0)[
-        :40
-    ]
+    head = LAYOUT.pack(
+        b"QVRF", version, code, channels, fs, first, 0, length, zlib.crc32(payload), 0
+    )[:40]
     return head + struct.pack("<I", zlib.crc32(head)) + payload
 
 
@@ -209,6 +211,10 @@ def _raw_header(
         ({"fs": -1.0}, "sample rate -1.0 Hz"),
         ({"length": 6, "payload": b"\0" * 6}, "payload length 6 is not a non-zero multiple of 4"),
         ({"length": 0, "payload": b""}, "payload length 0 is not a non-zero multiple"),
+        # the header's u64 index beyond what a signed 64-bit stream index holds (issue 13)
+        ({"first": 2**63}, "first sample index 9223372036854775808 with 1 samples runs past"),
+        ({"first": 2**64 - 1}, "first sample index 18446744073709551615 with 1 samples runs"),
+        ({"first": 2**63 - 1}, "first sample index 9223372036854775807 with 1 samples runs"),
     ],
 )
 def test_bad_header_fields_rejected_with_reason(kw: dict[str, object], reason: str) -> None:
@@ -219,6 +225,30 @@ def test_bad_header_fields_rejected_with_reason(kw: dict[str, object], reason: s
     dec = wire.FrameDecoder()
     assert len(dec.feed(bad + good)) == 1
     assert dec.malformed == 1 and reason in dec.last_reason
+
+
+def test_index_at_the_top_of_int64_is_accepted_and_one_past_it_refused() -> None:
+    ok = _raw_header(first=2**63 - 2)  # one sample: its index and the next both fit
+    assert wire.decode_datagram(ok).first_index == 2**63 - 2
+    x = np.zeros((1, 10))
+    assert wire.decode_datagram(wire.encode_frame(x, "f32le", 1.0, 2**63 - 11)).n == 10
+    with pytest.raises(ValueError, match=r"first_index=9223372036854775798 must be in"):
+        wire.encode_frame(x, "f32le", 1.0, 2**63 - 10)
+
+
+def test_framed_header_is_recognised_only_with_its_crc() -> None:
+    (f,) = _good_frames(1)
+    assert wire.framed_header_at(f) and wire.framed_header_at(b"xy" + f, 2)
+    assert not wire.framed_header_at(f[: wire.HEADER_SIZE - 1])
+    broken = bytearray(f)
+    broken[10] ^= 1  # the magic is still there, the header CRC no longer matches
+    assert not wire.framed_header_at(bytes(broken))
+    assert not wire.framed_header_at(b"QVRF" + bytes(60))
+
+
+def test_implausible_count_counts_huge_and_infinite_not_nan() -> None:
+    x = np.array([[0.0, 1e15, -1.0000001e15, np.inf, -np.inf, np.nan, 3e38]], dtype=np.float32)
+    assert wire.implausible_count(x) == 4  # -1.0000001e15, ±inf and 3e38; not 1e15 nor NaN
 
 
 def test_oversize_payload_rejected_without_waiting_for_it() -> None:
