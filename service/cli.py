@@ -20,6 +20,8 @@ import socket
 import sys
 import time
 import typing
+import urllib.error
+import urllib.request
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import IO, Any
@@ -78,6 +80,8 @@ FEED_FORMATS: tuple[str, ...] = (*RAW_FORMATS, "framed")
 FRAMED_PAYLOAD = "f32le"  # sample format inside framed frames
 FEED_BACKOFF_S = (0.2, 5.0)  # first reconnect delay, cap; doubled per failed attempt
 FEED_EOF_WAIT_S = 3.0  # after the last block: wait this long for the receiver to close
+FEED_ASK_TIMEOUT_S = 3.0  # asking the service which format the target source reads
+TOKEN_ENV = "QUAVER_TOKEN"  # a viewer token for feed's question to the service, if it needs one
 
 
 class CliError(Exception):
@@ -775,8 +779,79 @@ def feed_recording(
     return index, max(link.connections - 1, 0)
 
 
+def _wildcard(host: str) -> bool:
+    return host in ("", "0.0.0.0", "::", "[::]")
+
+
+def find_source(sources: dict[str, Any], host: str, port: int) -> tuple[str, dict[str, Any]] | None:
+    """The entry of ``/api/v1/health``'s ``sources`` listening on ``host:port``: same port and
+    the same host, a wildcard listen, or else the only source on that port."""
+    on_port = []
+    for sid, st in sources.items():
+        listen = st.get("listen") if isinstance(st, dict) else None
+        if not isinstance(listen, str) or ":" not in listen:
+            continue
+        lhost, _, lport = listen.rpartition(":")
+        if lport.isdigit() and int(lport) == port:
+            on_port.append((sid, st, lhost.strip("[]")))
+    exact = [(sid, st) for sid, st, h in on_port if h == host or _wildcard(h)]
+    if len(exact) == 1:
+        return exact[0]
+    return (on_port[0][0], on_port[0][1]) if len(on_port) == 1 else None
+
+
+def ask_source(api: str, host: str, port: int,
+               token: str | None) -> tuple[str, dict[str, Any]] | str:
+    """The service's status of the source at ``host:port`` (from ``GET api/v1/health``), or
+    why it could not be known."""
+    url = api.rstrip("/") + "/api/v1/health"
+    req = urllib.request.Request(url, headers={"Accept": "application/json"})
+    if token:
+        req.add_header("Authorization", f"Bearer {token}")
+    try:
+        with urllib.request.urlopen(req, timeout=FEED_ASK_TIMEOUT_S) as r:  # noqa: S310 - http(s) only
+            doc = json.loads(r.read(1 << 22))
+    except urllib.error.HTTPError as e:
+        need = f" (set {TOKEN_ENV} to a viewer token)" if e.code in (401, 403) else ""
+        return f"{url} answered {e.code}{need}"
+    except (OSError, ValueError) as e:
+        return f"no answer from {url} ({e})"
+    sources = doc.get("sources") if isinstance(doc, dict) else None
+    if not isinstance(sources, dict):
+        return f"{url} lists no sources"
+    found = find_source(sources, host, port)
+    if found is None:
+        return f"the service at {api} has no source listening on {host}:{port}"
+    return found
+
+
+def check_feed_target(api: str, host: str, port: int, fmt: str, token: str | None,
+                      say: Callable[[str], None] = _say) -> None:
+    """Refuse (CliError) to send ``fmt`` to a source that reads another format; warn when
+    the service cannot tell."""
+    got = ask_source(api, host, port, token)
+    if isinstance(got, str):
+        say(f"feed: warning: cannot check which format {host}:{port} reads: {got}; sending "
+            f"{fmt} unchecked (--api names the service's HTTP address)")
+        return
+    sid, st = got
+    kind, want = st.get("kind"), st.get("format")
+    if kind != "tcp":
+        raise CliError(f"{host}:{port} is source {sid!r} of kind {kind!r}; quaver feed sends "
+                       "over TCP to a kind = \"tcp\" source")
+    if want != fmt:
+        hint = (" (it would read the frame headers as samples)" if fmt == "framed" else
+                " (it would look for frame headers in raw samples)" if want == "framed" else "")
+        raise CliError(f"source {sid!r} at {host}:{port} reads {want}, not {fmt}{hint}; "
+                       f"send with --format {want}, or change the source's format")
+    say(f"feed: source {sid!r} at {host}:{port} reads {want}: matches")
+
+
 def cmd_feed(args: argparse.Namespace) -> int:
     host, port = parse_listen(args.to)
+    if args.api != "none":
+        api = args.api or f"http://{host if not _wildcard(host) else '127.0.0.1'}:8750"
+        check_feed_target(api, host, port, args.format, os.environ.get(TOKEN_ENV) or None)
     rec = _read(args.file, args.file_format, args.channels, args.rate)
     for p in rec.problems:
         _say(f"{args.file}: {p}")
@@ -974,6 +1049,11 @@ def build_parser() -> argparse.ArgumentParser:
                    "+-1 full scale as s16le counts) (default 1)")
     p.add_argument("--retries", type=_positive(int, allow_zero=True), default=10, metavar="N",
                    help="failed connection attempts in a row before giving up (default 10)")
+    p.add_argument("--api", default=None, metavar="URL",
+                   help="the service's HTTP address, asked (GET /api/v1/health) which format "
+                   "the --to source reads before anything is sent: a mismatch is an error, no "
+                   "answer a warning; 'none' skips the check (default http://HOST:8750 with "
+                   f"the --to host; a viewer token, if needed, from ${TOKEN_ENV})")
     p.set_defaults(func=cmd_feed)
 
     p = sub.add_parser("bench", help="benchmark the spectral engine against a bare rfft, or "

@@ -299,8 +299,7 @@ class TcpSourceConfig(_SourceBase):
         gt=0,
         le=3600,
         description="A producer that sends nothing for this long is dropped (counted in "
-        "`idle_drops`, logged) and its slot freed; a new connection replaces a producer "
-        "silent this long at once, s.",
+        "`idle_drops`, logged), so the next producer can connect, s.",
     )
     max_frame_bytes: int | None = Field(None, ge=1024, le=16 * 2**20, description=_MAX_FRAME_HELP)
     allow_from: Cidrs = Field(None, description=_ALLOW_FROM_HELP)

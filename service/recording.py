@@ -104,6 +104,13 @@ class TextParser:
             return [f.strip() for f in line.replace(";", ",").split(",")]
         return line.split()
 
+    def skip_line(self, why: str) -> None:
+        """Count the next line as malformed and skipped, ``why`` in the report (e.g. a line
+        too long to hold, dropped by the caller)."""
+        self.line_no += 1
+        self._seen_content = True
+        self._problem(f"line {self.line_no}: {why}")
+
     def parse(self, text: str) -> np.ndarray:
         """Parse complete lines of ``text``; return the good rows as float32 ``[C, n]``."""
         lines = text.splitlines()

@@ -20,6 +20,14 @@ Following (``follow=True``), every ``poll_s`` seconds:
   or mid-line at that moment are dropped and counted in ``partial_frames``.
 * Limits: a writer that truncates and then writes past the old length between two polls
   is seen as growth. Reads happen on the event loop, at most ``max_read_bytes`` per step.
+* **Only regular files.** A FIFO, device, socket or directory at the path is refused
+  (opening a FIFO would block the event loop until a writer came; a device could be read
+  for ever): ``extra["refused_files"]`` counts each one once, ``last_error`` says what it
+  is, it is logged, and the path is watched until a regular file replaces it. Files are
+  opened non-blocking and checked again after opening, so a swap in between is caught.
+* **Text lines are bounded.** A CSV/text line is held at most ``MAX_LINE_BYTES`` waiting
+  for its newline; a longer one is malformed (counted once, with its line number), and
+  everything up to the next newline is skipped.
 
 ``start_at="end"`` skips what an existing file already holds (like ``tail -f``); a file
 that appears later is always read from its beginning. Timestamps: arrival time minus the
@@ -35,9 +43,11 @@ Replay (``follow=False``) reads the whole recording with :func:`service.recordin
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import logging
 import math
 import os
+import stat
 import struct
 import time
 from collections.abc import Awaitable, Callable, Sequence
@@ -57,6 +67,22 @@ log = logging.getLogger(__name__)
 FILE_FORMATS: tuple[str, ...] = (*RAW_FORMATS, "csv", "wav")
 START_AT: tuple[str, ...] = ("end", "beginning")
 _MAX_WAV_HEADER = 1 << 20
+MAX_LINE_BYTES = 1 << 20  # a text line longer than this is malformed (our choice: 4096
+# channels of 17-character numbers fit 16 times over)
+_SPECIAL = (
+    (stat.S_ISFIFO, "a FIFO (named pipe)"),
+    (stat.S_ISCHR, "a character device"),
+    (stat.S_ISBLK, "a block device"),
+    (stat.S_ISSOCK, "a socket"),
+    (stat.S_ISDIR, "a directory"),
+)
+
+
+def not_regular(mode: int) -> str:
+    """What a file of ``mode`` is if not a regular file ("a FIFO (named pipe)", …), else ""."""
+    if stat.S_ISREG(mode):
+        return ""
+    return next((what for test, what in _SPECIAL if test(mode)), "not a regular file")
 _WAV_FORMATS = {  # (format tag, bits) → (raw format, full scale or None for float)
     (1, 16): ("s16le", 2.0**15),
     (1, 32): ("s32le", 2.0**31),
@@ -119,6 +145,7 @@ class _Decoder:
         self.parser = TextParser(columns=channels) if fmt == "csv" else None
         self.wav: WavInfo | None = None
         self.failed = ""  # set: this file cannot be read; wait for the next one
+        self.skipping = False  # text: inside an over-long line, dropping bytes up to "\n"
 
     def take_wav(self, info: WavInfo) -> None:
         self.wav = info
@@ -126,11 +153,9 @@ class _Decoder:
     def feed(self, chunk: bytes) -> np.ndarray | None:
         if self.failed:
             return None
-        buf = self.held + chunk
         if self.parser is not None:
-            cut = buf.rfind(b"\n") + 1
-            self.held = buf[cut:]
-            return self.parser.parse(buf[:cut].decode("utf-8", errors="replace")) if cut else None
+            return self._text(chunk, self.parser)
+        buf = self.held + chunk
         fmt, scale = self.fmt, None
         if self.fmt == "wav":
             if self.wav is None:
@@ -145,6 +170,22 @@ class _Decoder:
             fmt, scale = self.wav.fmt, self.wav.full_scale
         data, self.held = decode_raw(buf, fmt, self.channels)
         return data if scale is None else (data / np.float32(scale)).astype(np.float32)
+
+    def _text(self, chunk: bytes, parser: TextParser) -> np.ndarray | None:
+        if self.skipping:  # the rest of an over-long line
+            nl = chunk.find(b"\n")
+            if nl < 0:
+                return None
+            chunk, self.skipping = chunk[nl + 1 :], False
+        buf = self.held + chunk
+        cut = buf.rfind(b"\n") + 1
+        rows = parser.parse(buf[:cut].decode("utf-8", errors="replace")) if cut else None
+        self.held = buf[cut:]
+        if len(self.held) > MAX_LINE_BYTES:
+            self.held, self.skipping = b"", True
+            parser.skip_line(f"longer than {MAX_LINE_BYTES} bytes without a newline; skipped "
+                             "up to the next newline (is this a text file?)")
+        return rows
 
 
 class FileSource(QueuedSource):
@@ -200,11 +241,17 @@ class FileSource(QueuedSource):
         self._skip_existing = False
         self._seen_malformed = 0
         self._replayed = 0
+        self._refused: tuple[int, int] | None = None  # (dev, inode) of a refused special file
+        self.counters.extra["refused_files"] = 0
 
     # --- lifecycle -------------------------------------------------------------------
 
     async def _start(self) -> None:
         if not self.follow:
+            with contextlib.suppress(FileNotFoundError):  # load_recording reports that
+                what = not_regular(os.stat(self.path).st_mode)
+                if what:  # a FIFO would block the reading thread until a writer came
+                    raise ValueError(f"{self.path} is {what}, not a regular file")
             rec = await asyncio.to_thread(
                 load_recording, self.path, fmt=self.fmt, channels=len(self.channel_ids), fs=self._fs
             )
@@ -280,12 +327,38 @@ class FileSource(QueuedSource):
         if self._fh is None:
             if st is None:
                 self.state = "waiting for file"
+                self._refused = None
                 return False
-            self._open()
+            if not_regular(st.st_mode):
+                self._refuse(st)
+                return False
+            if not self._open():
+                return False
         return self._read_some()
 
-    def _open(self) -> None:
-        self._fh = open(self.path, "rb")  # noqa: SIM115 - held across polls, closed in _close_file
+    def _refuse(self, st: os.stat_result) -> None:
+        """Refuse the special file ``st`` at the path (once per file)."""
+        self.state = "unusable file"
+        if self._refused == (st.st_dev, st.st_ino):
+            return
+        self._refused = (st.st_dev, st.st_ino)
+        self._bump("refused_files")
+        text = (f"{self.path} is {not_regular(st.st_mode)}, not a regular file: not read; "
+                "waiting for a regular file at this path")
+        self._error(text)
+        log.warning("source %s: %s", self.id, text)
+
+    def _open(self) -> bool:
+        """Open the path (non-blocking: a FIFO swapped in since the stat cannot hang the
+        loop); False if what was opened is not a regular file."""
+        fd = os.open(self.path, os.O_RDONLY | os.O_NONBLOCK | os.O_CLOEXEC)
+        st = os.fstat(fd)
+        if not_regular(st.st_mode):
+            os.close(fd)
+            self._refuse(st)
+            return False
+        self._refused = None
+        self._fh = os.fdopen(fd, "rb")
         self._pos = 0
         self._decoder = _Decoder(self.fmt, len(self.channel_ids))
         self._seen_malformed = 0
@@ -294,6 +367,7 @@ class FileSource(QueuedSource):
             self._skip_existing = False
             self._seek_end()
         log.info("source %s: following %s from byte %d", self.id, self.path, self._pos)
+        return True
 
     def _seek_end(self) -> None:
         fh = self._fh
@@ -309,6 +383,9 @@ class FileSource(QueuedSource):
                     pos = lo + cut + 1
                     break
                 pos = lo
+                if size - pos > MAX_LINE_BYTES:  # the last line is over-long already
+                    pos, self._decoder.skipping = size, True
+                    break
         elif self.fmt == "wav":
             fh.seek(0)
             info = parse_wav_header(fh.read(min(size, _MAX_WAV_HEADER)))

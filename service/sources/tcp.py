@@ -6,9 +6,9 @@ Knows nothing about the engine, the pipeline, the config file or HTTP.
   source is closed at once, counted in ``counters.extra["refused"]`` and logged; the
   first producer is not disturbed. Producers may come and go over time.
 * **Idle producers.** A producer that sends nothing for ``idle_timeout_s`` is dropped
-  (``extra["idle_drops"]``, logged), which frees the slot; a connection arriving when the
-  held producer has been silent that long replaces it at once. So a client that connects
-  and sends nothing, or one that vanished without closing, cannot lock the source.
+  (``extra["idle_drops"]``, logged), which frees the slot for the next one. So a client
+  that connects and sends nothing, or one that vanished without closing, holds the source
+  for at most ``idle_timeout_s``.
 * **allow_from** (CIDRs, None = anyone): other peers are closed before any byte is read
   (``extra["refused_peers"]``).
 * **Raw formats** carry no index: samples are numbered on arrival. A new connection after
@@ -111,7 +111,6 @@ class TcpSource(QueuedSource):
         self._raw_index = 0  # raw: index of the next sample
         self._delivered = False  # raw: samples since the last restart
         self._last_rx = 0.0  # loop time of the producer's connect or latest bytes
-        self._handler: asyncio.Task[object] | None = None  # the held producer's handler
 
     async def _start(self) -> None:
         self._server = await asyncio.start_server(self._on_connect, self.host, self.port)
@@ -141,14 +140,6 @@ class TcpSource(QueuedSource):
             self._refuse_peer(peer)
             writer.transport.abort()
             return
-        loop = asyncio.get_running_loop()
-        silent_s = loop.time() - self._last_rx
-        if self._writer is not None and silent_s >= self.idle_timeout_s:
-            # the held producer is idle or dead: drop it and take the newcomer
-            self._idle_drop(silent_s)
-            self._writer.transport.abort()
-            if self._handler is not None:
-                await asyncio.wait({self._handler}, timeout=2.0)
         if self._writer is not None:
             self._bump("refused")
             self._error(f"refused {peer}: producer {self.peer} is connected")
@@ -160,16 +151,15 @@ class TcpSource(QueuedSource):
         task = asyncio.current_task()
         if task is not None:  # so aclose() can wait for it
             self._handlers.add(task)
-        self._writer, self.peer, self._handler = writer, peer, task
-        self._last_rx = loop.time()
+        self._writer, self.peer = writer, peer
+        self._last_rx = asyncio.get_running_loop().time()
         self.counters.connections += 1
         self.state = "connected"
         log.info("source %s: producer %s connected", self.id, peer)
         try:
             await self._serve(reader)
         finally:
-            if self._writer is writer:
-                self._writer, self.peer, self._handler = None, None, None
+            self._writer, self.peer = None, None
             self.counters.disconnects += 1
             if not self._closed:
                 self.state = "listening"
