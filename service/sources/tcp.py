@@ -15,8 +15,8 @@ Knows nothing about the engine, the pipeline, the config file or HTTP.
   one that delivered samples starts ``GAP_SAMPLES`` further on and counts a gap, so frame
   assembly restarts instead of stitching two unrelated streams. ``t0_ns`` is the arrival
   time minus the duration of the samples in the block.
-* **Wrong format.** A raw source refuses a connection whose bytes hold a framed-format
-  header (magic and header CRC; the first one is looked for before any sample is taken):
+* **Wrong format.** A raw source refuses a connection whose first bytes (the first read,
+  at least a header's worth) hold a framed-format header (magic and header CRC):
   the connection is closed, ``malformed`` and ``extra["wrong_format"]`` count it and
   ``last_error`` says "this looks like framed data on a raw source". A raw f32le/f64le
   block (one read) in which more than ``IMPLAUSIBLE_SHARE`` of the values lie beyond
@@ -206,7 +206,9 @@ class TcpSource(QueuedSource):
         return chunk
 
     def _looks_framed(self, buf: bytes) -> bool:
-        """Does ``buf`` hold a framed-format header? If so, count and report the mistake."""
+        """Does ``buf`` (a stream's first bytes) hold a framed-format header? If so, count
+        and report the mistake. Framed bytes arriving later are left to the value checks
+        below and the pipeline's sensor checks."""
         pos = buf.find(MAGIC)
         while pos >= 0:
             if framed_header_at(buf, pos):
@@ -214,8 +216,8 @@ class TcpSource(QueuedSource):
                 self._bump("wrong_format")
                 self._warn("wrong_format",
                            f"refused {self.peer}: this looks like framed data on a raw source "
-                           f"(a framed header at byte {self.counters.bytes - len(buf) + pos} "
-                           f"of the stream); this source reads raw {self.fmt}: send raw "
+                           f"(a framed header at byte {pos} of the connection); this source "
+                           f"reads raw {self.fmt}: send raw "
                            f"{self.fmt} (quaver feed --format {self.fmt}) or configure "
                            'format = "framed"')
                 return True
@@ -248,8 +250,8 @@ class TcpSource(QueuedSource):
             if head and len(buf) < HEADER_SIZE and buf[:4] == MAGIC[: len(buf)]:
                 rest = buf  # it may be a framed header: wait for all of it before deciding
                 continue
-            if self._looks_framed(buf):
-                return 0  # the connection closes; the samples it gave before are kept
+            if head and self._looks_framed(buf):
+                return 0  # the connection closes before any sample is taken
             head = False
             data, rest = decode_raw(buf, self.fmt, len(self.channel_ids))
             n = data.shape[1]
