@@ -369,3 +369,77 @@ def test_make_source_builds_file_source_from_config(tmp_path: Path) -> None:
         False,
         3.0,
     )
+
+
+# --- special files and over-long lines (issue 13: never block the loop, never hold unbounded) --
+
+
+def test_overlong_line_is_counted_once_skipped_and_numbered(tmp_path: Path) -> None:
+    from service.sources.filetail import MAX_LINE_BYTES
+
+    async def go(tmp: Path) -> None:
+        p = tmp / "a.csv"
+        p.write_text("")
+        src = tail(p, "csv", max_read_bytes=1 << 16)
+        await src.start()
+        append(p, b"1,2\n" + b"9" * (MAX_LINE_BYTES + 10))  # row 1, then line 2 far too long
+        (a,) = await take(src, 1)
+        await until(lambda: src.counters.malformed == 1)
+        assert src.counters.last_error.endswith(
+            f"line 2: longer than {MAX_LINE_BYTES} bytes without a newline; skipped up to the "
+            "next newline (is this a text file?)")
+        assert len(src._decoder.held) <= MAX_LINE_BYTES
+        append(p, b"9" * MAX_LINE_BYTES + b"99\n3,4\nx,1\n")  # its end, a row, a bad row
+        (b,) = await take(src, 1)
+        np.testing.assert_array_equal(joined([a, b]), [[1.0, 3.0], [2.0, 4.0]])
+        await until(lambda: src.counters.malformed == 2)
+        assert src.counters.last_error.endswith("line 4: 'x' is not a number")  # still counted
+        assert contiguous([a, b], 0)
+        await src.aclose()
+
+    run(go(tmp_path))
+
+
+def test_start_at_end_inside_an_overlong_line_skips_to_its_newline(tmp_path: Path) -> None:
+    from service.sources.filetail import MAX_LINE_BYTES
+
+    async def go(tmp: Path) -> None:
+        p = tmp / "a.csv"
+        p.write_bytes(b"0,0\n" + b"7" * (MAX_LINE_BYTES + 70000))
+        src = tail(p, "csv", start_at="end")
+        await src.start()
+        await until(lambda: src.status()["position_bytes"] == p.stat().st_size)
+        append(p, b"77\n5,6\n")
+        (a,) = await take(src, 1)
+        np.testing.assert_array_equal(a.data, [[5.0], [6.0]])
+        assert src.counters.malformed == 0  # what was there before following began
+        await src.aclose()
+
+    run(go(tmp_path))
+
+
+@pytest.mark.parametrize("follow", [True, False])
+def test_fifo_is_refused_without_blocking(tmp_path: Path, follow: bool) -> None:
+    async def go(tmp: Path) -> None:
+        p = tmp / "a.csv"
+        os.mkfifo(p)
+        src = tail(p, "csv", follow=follow)
+        if not follow:  # a replay cannot start from it
+            with pytest.raises(ValueError, match=r"a\.csv is a FIFO \(named pipe\), not a regular"):
+                await src.start()
+            return
+        await src.start()
+        await until(lambda: src.counters.extra["refused_files"] == 1)
+        assert "is a FIFO (named pipe), not a regular file" in src.counters.last_error
+        assert src.status()["state"] == "unusable file"
+        for _ in range(5):  # polls go on (the loop is not blocked), counted once
+            await asyncio.sleep(0.02)
+        assert src.counters.extra["refused_files"] == 1
+        p.unlink()
+        p.write_text("1,2\n")
+        (a,) = await take(src, 1)
+        np.testing.assert_array_equal(a.data, [[1.0], [2.0]])
+        assert src.status()["state"] == "following"
+        await src.aclose()
+
+    run(go(tmp_path))

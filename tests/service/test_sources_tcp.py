@@ -261,3 +261,59 @@ def test_make_source_builds_tcp_from_config() -> None:
     assert (src.fmt, src.fs, src.channel_ids, src.port) == ("s32le", 12800.0, ("a", "b"), 0)
     with pytest.raises(ValueError, match=r"format='u8' is not one of 's16le', 's32le'"):
         TcpSource("x", ["a"], FS, "127.0.0.1", 0, "u8")
+
+
+# --- the wrong format on a raw source (issue 13) ---------------------------------------------
+
+
+@pytest.mark.parametrize("chunk", [1, 5, 0])  # the header byte by byte, cut, or whole
+def test_raw_source_refuses_a_framed_stream_however_it_arrives(chunk: int) -> None:
+    frame = wire.encode_frame(known(2, 64), "f32le", FS, 0)
+
+    async def go() -> None:
+        src = await started("f32le")
+        closed: bytes | str
+        try:
+            reader, writer = await send(src, frame * 3, chunk=chunk, close=False)
+            closed = await asyncio.wait_for(reader.read(1), 5)
+            writer.close()
+        except ConnectionError as e:  # reset: the source closed with our bytes unread
+            closed = type(e).__name__
+        assert closed in (b"", "ConnectionResetError", "BrokenPipeError")
+        await until(lambda: src.counters.disconnects == 1)
+        c = src.counters
+        assert (c.samples, c.malformed, c.extra["wrong_format"]) == (0, 1, 1)
+        assert "this looks like framed data on a raw source" in c.last_error
+        # raw bytes that merely start with the magic (no header CRC) are samples
+        x = np.frombuffer(wire.MAGIC * 32, dtype="<f4").reshape(-1, 2).T.copy()
+        await send(src, wire.encode_raw(x, "f32le"))
+        blocks = await take(src, x.shape[1])
+        np.testing.assert_array_equal(joined(blocks), x)
+        await src.aclose()
+
+    run(go())
+
+
+def test_raw_f32_block_of_implausible_values_is_rejected_as_a_gap() -> None:
+    good = known(2, 100)
+    bad = good.copy()
+    bad[:, :3] = 1e16  # 6 of 200 values: 3 % > 1 %
+    few = good.copy()
+    few[0, 0] = 1e16  # 1 of 200: 0.5 %, a sensor's business, passed on
+
+    async def go() -> None:
+        src = await started("f32le")
+        for k, x in enumerate((good, bad, few), start=1):
+            _, writer = await send(src, wire.encode_raw(x, "f32le"), close=False)
+            # one write of 800 bytes on loopback is one read, decoded as one block
+            await until(lambda k=k: src.counters.bytes == 800 * k)
+            writer.close()
+            await until(lambda k=k: src.counters.disconnects == k)
+        blocks = await take(src, 200)
+        np.testing.assert_array_equal(joined(blocks), np.concatenate([good, few], axis=1))
+        c = src.counters
+        assert (c.malformed, c.extra["implausible_blocks"], c.samples) == (1, 1, 200)
+        assert "6 of 200 values beyond ±1e+15" in c.last_error
+        await src.aclose()
+
+    run(go())
