@@ -111,11 +111,19 @@ class _ServiceCollector(Collector):
             k: CounterMetricFamily(f"quaver_source_{k}", f"Source counter: {k}", labels=["source"])
             for k in SOURCE_COUNTERS
         }
+        # each kind's own counters (refused, idle_drops, refused_peers, wrong_format, ...)
+        extra = CounterMetricFamily(
+            "quaver_source_extra", "Source counter of its kind (see /api/v1/health counters)",
+            labels=["source", "counter"],
+        )
         for sid, src in hub.sources.items():
             c = getattr(src, "counters", None)
             for k in SOURCE_COUNTERS:
                 fams[k].add_metric([sid], float(getattr(c, k, 0) if c is not None else 0))
+            for k, v in sorted(getattr(c, "extra", {}).items()):
+                extra.add_metric([sid, k], float(v))
         yield from fams.values()
+        yield extra
 
         lat = GaugeMetricFamily(
             "quaver_frame_latency_seconds",

@@ -348,6 +348,8 @@ def test_tcp_peer_outside_allow_from_is_refused_and_counted(lim: RunningService)
     assert (c["connections"], c["samples"], c["bytes"]) == (0, 0, 0), c
     assert f"refused {LOOPBACK}:" in c["last_error"] and "not in allow_from" in c["last_error"]
     assert lim.source("deny")["allow_from"] == ["192.0.2.0/24", "10.0.0.0/8"]
+    metrics = lim.client.get("/metrics").text
+    assert 'quaver_source_extra_total{counter="refused_peers",source="deny"} 1.0' in metrics
     with producer(lim.ports["allow"]) as sock:
         for f in tone_frames(0):
             sock.sendall(f)
