@@ -826,9 +826,9 @@ def ask_source(api: str, host: str, port: int,
 
 
 def check_feed_target(api: str, host: str, port: int, fmt: str, token: str | None,
-                      say: Callable[[str], None] = _say) -> None:
-    """Refuse (CliError) to send ``fmt`` to a source that reads another format; warn when
-    the service cannot tell."""
+                      channels: int, fs: float, say: Callable[[str], None] = _say) -> None:
+    """Refuse (CliError) to send ``fmt``, ``channels`` channels at ``fs`` Hz to a source
+    that reads another format, channel count or rate; warn when the service cannot tell."""
     got = ask_source(api, host, port, token)
     if isinstance(got, str):
         say(f"feed: warning: cannot check which format {host}:{port} reads: {got}; sending "
@@ -844,15 +844,26 @@ def check_feed_target(api: str, host: str, port: int, fmt: str, token: str | Non
                 " (it would look for frame headers in raw samples)" if want == "framed" else "")
         raise CliError(f"source {sid!r} at {host}:{port} reads {want}, not {fmt}{hint}; "
                        f"send with --format {want}, or change the source's format")
-    say(f"feed: source {sid!r} at {host}:{port} reads {want}: matches")
+    names, rate = st.get("channels"), st.get("fs")
+    if isinstance(names, list) and len(names) != channels:
+        raise CliError(f"source {sid!r} at {host}:{port} takes {len(names)} channel(s) "
+                       f"({', '.join(map(str, names))}); the recording has {channels}"
+                       + (" (raw samples would be de-interleaved wrongly)" if want != "framed"
+                          else ""))
+    if isinstance(rate, int | float) and abs(rate - fs) > 1e-9 * rate:
+        raise CliError(f"source {sid!r} at {host}:{port} runs at {rate:g} Hz; the recording "
+                       f"is {fs:g} Hz (resample it, or use --rate for a raw or text file)")
+    say(f"feed: source {sid!r} at {host}:{port} reads {want}, {channels} channel(s) at "
+        f"{fs:g} Hz: matches")
 
 
 def cmd_feed(args: argparse.Namespace) -> int:
     host, port = parse_listen(args.to)
+    rec = _read(args.file, args.file_format, args.channels, args.rate)
     if args.api != "none":
         api = args.api or f"http://{host if not _wildcard(host) else '127.0.0.1'}:8750"
-        check_feed_target(api, host, port, args.format, os.environ.get(TOKEN_ENV) or None)
-    rec = _read(args.file, args.file_format, args.channels, args.rate)
+        check_feed_target(api, host, port, args.format, os.environ.get(TOKEN_ENV) or None,
+                          rec.data.shape[0], rec.fs)
     for p in rec.problems:
         _say(f"{args.file}: {p}")
     passes = 1 if args.loop is None else args.loop
@@ -1050,8 +1061,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--retries", type=_positive(int, allow_zero=True), default=10, metavar="N",
                    help="failed connection attempts in a row before giving up (default 10)")
     p.add_argument("--api", default=None, metavar="URL",
-                   help="the service's HTTP address, asked (GET /api/v1/health) which format "
-                   "the --to source reads before anything is sent: a mismatch is an error, no "
+                   help="the service's HTTP address, asked (GET /api/v1/health) which format, "
+                   "channel count and rate the --to source takes before anything is sent: a "
+                   "mismatch is an error, no "
                    "answer a warning; 'none' skips the check (default http://HOST:8750 with "
                    f"the --to host; a viewer token, if needed, from ${TOKEN_ENV})")
     p.set_defaults(func=cmd_feed)

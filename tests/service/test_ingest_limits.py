@@ -323,7 +323,19 @@ def test_feed_checks_the_format_and_warns_when_it_cannot(
     samples = counters(svc, "raw")["samples"]
     ok = quaver_cli("feed", str(wav), "--to", to, "--speed", "0", "--api", svc.base_url)
     assert ok.returncode == 0, ok.stderr
-    assert "source 'raw' at" in ok.stderr and "reads f32le: matches" in ok.stderr
+    assert "source 'raw' at" in ok.stderr
+    assert "reads f32le, 1 channel(s) at 2560 Hz: matches" in ok.stderr
+    two = tmp_path / "two.wav"
+    scipy.io.wavfile.write(two, int(SMALL_FS), np.vstack([tone(1280), tone(1280)]).T)
+    wrong = quaver_cli("feed", str(two), "--to", to, "--speed", "0", "--api", svc.base_url)
+    assert wrong.returncode != 0
+    assert "takes 1 channel(s) (raw-a); the recording has 2 (raw samples would be " in (
+        wrong.stderr)
+    fast = tmp_path / "fast.wav"
+    scipy.io.wavfile.write(fast, 2 * int(SMALL_FS), tone(1280)[0])
+    wrong = quaver_cli("feed", str(fast), "--to", to, "--speed", "0", "--api", svc.base_url)
+    assert wrong.returncode != 0
+    assert "runs at 2560 Hz; the recording is 5120 Hz" in wrong.stderr
     (nobody,) = free_ports(1)
     blind = quaver_cli("feed", str(wav), "--to", to, "--speed", "0",
                        "--api", f"http://{LOOPBACK}:{nobody}")
