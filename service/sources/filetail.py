@@ -25,6 +25,10 @@ Following (``follow=True``), every ``poll_s`` seconds:
   for ever): ``extra["refused_files"]`` counts each one once, ``last_error`` says what it
   is, it is logged, and the path is watched until a regular file replaces it. Files are
   opened non-blocking and checked again after opening, so a swap in between is caught.
+* **Wrong format.** A raw file whose first bytes hold a framed-format header is unusable
+  ("this looks like framed data on a raw source"; ``malformed``). A raw f32le/f64le read
+  with more than ``IMPLAUSIBLE_SHARE`` of its values beyond ±1e15 is rejected as for TCP
+  (``malformed``, ``extra["implausible_blocks"]``; its indices become a gap).
 * **Text lines are bounded.** A CSV/text line is held at most ``MAX_LINE_BYTES`` waiting
   for its newline; a longer one is malformed (counted once, with its line number), and
   everything up to the next newline is skipped.
@@ -58,7 +62,17 @@ from typing import BinaryIO
 import numpy as np
 
 from ..recording import TextParser, load_recording
-from ..wire import RAW_FORMATS, SAMPLE_SIZES, decode_raw
+from ..wire import (
+    HEADER_SIZE,
+    IMPLAUSIBLE_ABS,
+    IMPLAUSIBLE_SHARE,
+    MAGIC,
+    RAW_FORMATS,
+    SAMPLE_SIZES,
+    decode_raw,
+    framed_header_at,
+    implausible_count,
+)
 from .base import GAP_SAMPLES, QueuedSource
 
 __all__ = ["FILE_FORMATS", "FileSource"]
@@ -146,6 +160,7 @@ class _Decoder:
         self.wav: WavInfo | None = None
         self.failed = ""  # set: this file cannot be read; wait for the next one
         self.skipping = False  # text: inside an over-long line, dropping bytes up to "\n"
+        self.head = fmt in RAW_FORMATS  # raw: the file's first bytes, not yet judged
 
     def take_wav(self, info: WavInfo) -> None:
         self.wav = info
@@ -156,6 +171,17 @@ class _Decoder:
         if self.parser is not None:
             return self._text(chunk, self.parser)
         buf = self.held + chunk
+        if self.head:  # a raw file that starts with a framed header is the wrong format
+            if len(buf) < HEADER_SIZE and buf[:4] == MAGIC[: len(buf)]:
+                self.held = buf
+                return None
+            self.head = False
+            if framed_header_at(buf):
+                self.failed = (f"this looks like framed data on a raw source (a framed header "
+                               f"at byte 0); this source reads raw {self.fmt}: configure the "
+                               "format the file was written in")
+                self.held = b""
+                return None
         fmt, scale = self.fmt, None
         if self.fmt == "wav":
             if self.wav is None:
@@ -243,6 +269,8 @@ class FileSource(QueuedSource):
         self._replayed = 0
         self._refused: tuple[int, int] | None = None  # (dev, inode) of a refused special file
         self.counters.extra["refused_files"] = 0
+        if fmt in ("f32le", "f64le"):
+            self.counters.extra["implausible_blocks"] = 0
 
     # --- lifecycle -------------------------------------------------------------------
 
@@ -398,6 +426,7 @@ class FileSource(QueuedSource):
         else:
             frame = len(self.channel_ids) * SAMPLE_SIZES[self.fmt]
             pos = size - size % frame
+            self._decoder.head = pos == 0
         fh.seek(pos)
         self._pos = pos
 
@@ -438,12 +467,30 @@ class FileSource(QueuedSource):
             self.counters.malformed += dec.parser.malformed - self._seen_malformed
             self._seen_malformed = dec.parser.malformed
             self._error(f"{self.path}: {dec.parser.last_problem}")
-        if data is not None and data.shape[1]:
+        if data is not None and data.shape[1] and self._implausible(data):
+            self._index += data.shape[1]  # the rejected samples' indices: a gap downstream
+        elif data is not None and data.shape[1]:
             n = data.shape[1]
             self._emit(data, self._index, self._arrival_t0_ns(n))
             self._index += n
             self._delivered = True
         return len(chunk) == self.max_read_bytes
+
+    def _implausible(self, data: np.ndarray) -> bool:
+        """A raw f32le/f64le block with more than IMPLAUSIBLE_SHARE of its values beyond
+        ±IMPLAUSIBLE_ABS is another format's bytes: counted, reported, not emitted."""
+        if self.fmt not in ("f32le", "f64le"):
+            return False
+        bad = implausible_count(data)
+        if bad <= IMPLAUSIBLE_SHARE * data.size:
+            return False
+        self.counters.malformed += 1
+        self._bump("implausible_blocks")
+        self._warn("implausible",
+                   f"{self.path}: {bad} of {data.size} values beyond ±{IMPLAUSIBLE_ABS:g} (or "
+                   f"infinite) near byte {self._pos}: implausible as {self.fmt} samples; block "
+                   "rejected. Was the file written in another format?")
+        return True
 
     def _restart(self, reason: str) -> None:
         self._bump(reason)

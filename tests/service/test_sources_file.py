@@ -443,3 +443,45 @@ def test_fifo_is_refused_without_blocking(tmp_path: Path, follow: bool) -> None:
         await src.aclose()
 
     run(go(tmp_path))
+
+
+def test_raw_file_holding_framed_data_is_unusable(tmp_path: Path) -> None:
+    async def go(tmp: Path) -> None:
+        p = tmp / "a.raw"
+        p.write_bytes(b"")
+        src = tail(p, "f32le")
+        await src.start()
+        frame = wire.encode_frame(known(2, 64), "f32le", FS, 0)
+        append(p, frame[:3])  # could be a header: held until there is enough to judge
+        await until(lambda: src.status()["position_bytes"] == 3)
+        assert src.counters.malformed == 0
+        append(p, frame[3:] + frame)
+        await until(lambda: src.counters.malformed == 1)
+        assert "this looks like framed data on a raw source" in src.counters.last_error
+        assert (src.status()["state"], src.counters.samples) == ("unusable file", 0)
+        await src.aclose()
+
+    run(go(tmp_path))
+
+
+def test_raw_float_read_of_implausible_values_is_rejected_as_a_gap(tmp_path: Path) -> None:
+    async def go(tmp: Path) -> None:
+        p = tmp / "a.raw"
+        p.write_bytes(b"")
+        src = tail(p, "f32le")
+        await src.start()
+        good = known(2, 100)
+        junk = np.full((2, 50), 3e20, dtype=np.float32)  # s16 or framed bytes read as f32 do this
+        for x in (good, junk, good):
+            append(p, wire.encode_raw(x, "f32le"))
+            # each piece read on its own (one read, one block) before the next comes
+            await until(lambda n=p.stat().st_size: src.status()["position_bytes"] == n)
+        a, b = await take(src, 100), await take(src, 100)
+        np.testing.assert_array_equal(joined(a + b), np.concatenate([good, good], axis=1))
+        assert contiguous(a, 0) and contiguous(b, 150)  # the junk's 50 indices skipped
+        c = src.counters
+        assert (c.malformed, c.extra["implausible_blocks"], c.samples) == (1, 1, 200)
+        assert "100 of 100 values beyond ±1e+15" in c.last_error
+        await src.aclose()
+
+    run(go(tmp_path))
