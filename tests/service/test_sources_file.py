@@ -472,10 +472,12 @@ def test_raw_float_read_of_implausible_values_is_rejected_as_a_gap(tmp_path: Pat
         await src.start()
         good = known(2, 100)
         junk = np.full((2, 50), 3e20, dtype=np.float32)  # s16 or framed bytes read as f32 do this
+        size = 0
         for x in (good, junk, good):
             append(p, wire.encode_raw(x, "f32le"))
+            size += x.size * 4
             # each piece read on its own (one read, one block) before the next comes
-            await until(lambda n=p.stat().st_size: src.status()["position_bytes"] == n)
+            await until(lambda n=size: src.status()["position_bytes"] == n)
         a, b = await take(src, 100), await take(src, 100)
         np.testing.assert_array_equal(joined(a + b), np.concatenate([good, good], axis=1))
         assert contiguous(a, 0) and contiguous(b, 150)  # the junk's 50 indices skipped
