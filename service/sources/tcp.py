@@ -39,6 +39,8 @@ import logging
 import time
 from collections.abc import Callable, Sequence
 
+import numpy as np
+
 from ..wire import (
     HEADER_SIZE,
     IMPLAUSIBLE_ABS,
@@ -224,9 +226,9 @@ class TcpSource(QueuedSource):
             pos = buf.find(MAGIC, pos + 1)
         return False
 
-    def _implausible(self, data: object, n_values: int) -> bool:
+    def _implausible(self, data: np.ndarray, n_values: int) -> bool:
         """Is this raw float block implausible for the format? If so, count and report it."""
-        bad = implausible_count(data)  # type: ignore[arg-type]
+        bad = implausible_count(data)
         if bad <= IMPLAUSIBLE_SHARE * n_values:
             return False
         self.counters.malformed += 1
