@@ -21,6 +21,8 @@ import numpy as np
 import pytest
 import scipy.io.wavfile
 
+from service.config import ConfigError, parse_config
+from service.sources import make_source
 from service.wire import MAGIC, encode_frame
 
 if TYPE_CHECKING:
@@ -465,3 +467,34 @@ def test_fifo_at_a_followed_path_is_refused_and_the_service_answers(tmp_path: Pa
         part.rename(fifo)
         wait_frames(svc, "f-a", 0, N_GOOD, "spectra from the regular file")
         svc.assert_healthy()
+
+
+# --- the settings themselves ------------------------------------------------------------------
+
+
+@pytest.mark.parametrize(("key", "value", "problem"), [
+    ("idle_timeout_s", 0, "sources[0].idle_timeout_s: "),
+    ("idle_timeout_s", 3601, "sources[0].idle_timeout_s: "),
+    ("max_frame_bytes", 1023, "sources[0].max_frame_bytes: "),
+    ("max_frame_bytes", 16 * 2**20 + 1, "sources[0].max_frame_bytes: "),
+    ("allow_from", ["10.0.0.0/8", "nope"], "sources[0].allow_from: 'nope' is not an IP network"),
+    ("allow_from", "10.0.0.0/8", "sources[0].allow_from: "),
+])
+def test_source_limit_settings_are_checked(key: str, value: Any, problem: str) -> None:
+    doc = {"analysis": ANALYSIS, "sources": [{**_src("s"), "listen": "127.0.0.1:9", key: value}]}
+    with pytest.raises(ConfigError) as e:
+        parse_config(doc)
+    assert any(p.startswith(problem) for p in e.value.problems), e.value.problems
+
+
+def test_source_limit_defaults() -> None:
+    doc = {"analysis": ANALYSIS, "sources": [
+        {**_src("t"), "listen": "127.0.0.1:9"},
+        {**_src("u", "udp"), "listen": "127.0.0.1:9", "channels": ["u1", "u2", "u3", "u4"],
+         "sample_rate_hz": 51200.0},
+    ]}
+    t, u = (make_source(s) for s in parse_config(doc).sources)
+    st, su = t.status(), u.status()
+    assert (st["idle_timeout_s"], st["allow_from"]) == (10.0, None)
+    assert st["max_frame_bytes"] == 64 * 1024  # 1 ch × 2560 Hz × 8 B = 20 480 B: the floor
+    assert su["max_frame_bytes"] == 4 * 51200 * 8  # about 1 s of f64 data
