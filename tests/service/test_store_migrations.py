@@ -79,7 +79,8 @@ def test_a_database_from_before_migrations_is_upgraded_with_nothing_lost(tmp_pat
         assert [e["value"] for e in events] == [3.5, 2.5, 1.5]
         assert store.load_alarm_state() == SNAPSHOT
         pts = store.trend("m1", "overall", T0, T0 + 60 * S, step_s=10)
-        assert [(p[1], p[2], p[3], p[4]) for p in pts] == [(2.0, 1.0, 3.0, 2)] * 6  # mean, min, max, n
+        # (mean, min, max, count) of each 10 s bucket, as written
+        assert [(p[1], p[2], p[3], p[4]) for p in pts] == [(2.0, 1.0, 3.0, 2)] * 6
     c = sqlite3.connect(path)
     assert schema_version(c) == len(MIGRATIONS)
     indexes = {r[0] for r in c.execute("SELECT name FROM sqlite_master WHERE type = 'index'")}
