@@ -27,6 +27,7 @@ from .config import (
     ConfigError,
     check_listen_allowed,
     load_config,
+    open_source_warnings,
     parse_config,
     parse_listen,
 )
@@ -110,6 +111,8 @@ class Service:
             Path(self.cfg.service.data_dir).mkdir(parents=True, exist_ok=True)
         except OSError as e:  # the store reports it below; monitoring starts anyway
             log.error("data folder %s: %s", self.cfg.service.data_dir, e)
+        for warning in open_source_warnings(self.cfg):
+            log.warning("%s", warning)
         self.store.start()
         try:
             state = await asyncio.to_thread(self.store.load_alarm_state)

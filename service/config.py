@@ -265,6 +265,13 @@ class _SourceBase(_Model):
         description="Blocks held for the pipeline; "
         "when full the oldest is dropped and counted in `drops`.",
     )
+    stale_after_s: float | None = Field(
+        None,
+        gt=0,
+        le=86400,
+        description="stale_after_s for every channel of this source that does not set its "
+        "own, s (see [[channels]]).",
+    )
 
 
 def _valid_cidrs(items: list[str] | None) -> list[str] | None:

@@ -24,7 +24,7 @@ import numpy as np
 
 from dsp.analyzer import Analyzer, spectrum_peaks
 
-from .config import Config, channel_settings, profiles_of
+from .config import Config, channel_settings, profiles_of, source_of
 from .profiles import OVERALL, ChannelGroup, ProfileBank, ProfilePlan, overall_band, plan_profiles
 from .quality import (
     DEFAULT_RANGE,
@@ -517,9 +517,13 @@ def channel_states(
 
 
 def stale_after_s(cfg: Config, channel_id: str, plans: Sequence[ProfilePlan]) -> float:
-    """The channel's ``stale_after_s``: as configured, else from its profiles' frame and hop
+    """The channel's ``stale_after_s``: as configured (the channel's own, else its source's),
+    else from its profiles' frame and hop
     times (``service.quality.default_stale_after_s``; 5 s while they are not known)."""
     given = channel_settings(cfg, channel_id).stale_after_s
+    if given is None:
+        src = source_of(cfg, channel_id)
+        given = None if src is None else src.stale_after_s
     if given is not None:
         return given
     if not plans:

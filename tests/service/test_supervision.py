@@ -137,15 +137,17 @@ def _two_channel_cfg() -> Any:
 
 
 def _tone(first: int, n: int, amp: float) -> np.ndarray:
-    t = (np.arange(n) + (first % 100_000)) / FS  # phase is irrelevant to the band value
-    return (amp * np.sin(2 * np.pi * 123.0 * t)).astype(np.float32)
+    """A 123 Hz sine at stream index ``first`` onward, phase-continuous at any index: the
+    phase in cycles is k·123/2560 mod 1, taken exactly in integers (Python's are unbounded)."""
+    k = (first * 123) % 2560 + np.arange(n, dtype=np.int64) * 123
+    return (amp * np.sin(2 * np.pi * (k % 2560) / 2560.0)).astype(np.float32)
 
 
 BAD = st.sampled_from(["nan", "inf", "huge", "flat", "jump", "jump-far", "good"])
 
 
 @settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
-@given(st.lists(BAD, min_size=1, max_size=12), st.integers(0, I64_MAX // 2))
+@given(st.lists(BAD, min_size=1, max_size=12), st.integers(0, I64_MAX - 10**6))
 def test_no_mixture_of_bad_blocks_stops_a_later_good_signal_being_analysed_exactly(
     chaos: list[str], far: int
 ) -> None:
@@ -228,3 +230,20 @@ def test_a_channel_never_reads_ok_while_its_latest_frame_is_stale(
         assert status in ("no-signal", "failed") and is_lost(i)
     assert is_lost(i) == (status == "failed" or (status == "no-signal" and (
         (since_start_s if frame_age_s is None else frame_age_s) > stale_after_s)))
+
+
+def test_stale_after_s_comes_from_the_channel_then_its_source_then_the_profiles() -> None:
+    from service.pipeline import channel_states
+    from service.quality import default_stale_after_s
+
+    doc = one_band_config(channels=[{"id": "a", "stale_after_s": 7.5}])
+    doc["sources"][0].update(channels=["a", "b"], listen=f"{LOOPBACK}:1")
+    states = channel_states(parse_config(doc, env={}), "s", ["a", "b"], fs=SMALL_FS)
+    # b: 400 lines at 2560 Hz → N = 1024 (0.4 s), hop N/4 (75 % overlap, the default)
+    assert states["a"].stale_after_s == 7.5
+    assert states["b"].stale_after_s == default_stale_after_s(0.1, 0.4) == 5.0
+    doc["sources"][0]["stale_after_s"] = 12.0
+    states = channel_states(parse_config(doc, env={}), "s", ["a", "b"], fs=SMALL_FS)
+    assert (states["a"].stale_after_s, states["b"].stale_after_s) == (7.5, 12.0)
+    # a slow profile sets a longer default: one frame + 2 hops, 3 hops, at least 5 s
+    assert default_stale_after_s(2.0, 8.0) == 12.0 and default_stale_after_s(3.0, 4.0) == 10.0
