@@ -454,29 +454,24 @@ def spectrum_peaks(
     """The ``count`` largest peaks of acceleration power spectra, ranked in ``unit``.
 
     ``power`` is [C, Q] (or [Q]) in ``input_unit``² RMS² per line (an acceleration unit) on
-    f[q] = q·df_hz Hz, from ``n``-sample frames under ``window``. Peaks are interpolated on
-    the acceleration spectrum, whose peak shape is exactly the window's
-    (``dsp.tones.find_peaks``, max(4·count, count + 8) of them), then each is weighted to
-    ``unit`` at its interpolated frequency (``unit_power_weights``, lines below
-    ``lowcut_hz`` Hz read 0 for velocity and displacement), re-ranked, and given as
-    ``amplitude`` (peak, RMS or peak-to-peak) in ``unit``. What :meth:`Analyzer.peaks`
+    f[q] = q·df_hz Hz, from ``n``-sample frames under ``window``. Every local maximum at or
+    above ``lowcut_hz`` is interpolated on the acceleration spectrum, whose peak shape is
+    exactly the window's (``dsp.tones.find_peaks``), weighted to ``unit`` at its
+    interpolated frequency (``unit_power_weights``), and the ``count`` largest in ``unit``
+    are given as ``amplitude`` (peak, RMS or peak-to-peak) in ``unit``. What :meth:`Analyzer.peaks`
     returns, for spectra already read out (the service computes them only when a client
     asks)."""
     u = resolve_unit(unit)
-    acc = find_peaks(
+
+    def weight(f_hz: np.ndarray) -> np.ndarray:
+        return unit_power_weights(f_hz, input_unit, u, lowcut_hz=lowcut_hz)  # type: ignore[arg-type]
+
+    pk = find_peaks(
         power, df_hz, window, n,  # type: ignore[arg-type]
-        count=max(4 * count, count + 8), min_hz=lowcut_hz, beta=beta,
-    )
-    f = acc.frequency_hz
-    wts = unit_power_weights(
-        np.nan_to_num(f, nan=0.0), input_unit, u, lowcut_hz=lowcut_hz  # type: ignore[arg-type]
-    )
-    p = np.where(np.isfinite(f), acc.amplitude_rms**2 * wts, np.nan)
-    axis = p.ndim - 1
-    order = np.argsort(np.where(np.isnan(p), -np.inf, -p), axis=axis, kind="stable")
-    order = order[..., :count]
-    take = np.take_along_axis
-    amp = amplitude_from_power(take(p, order, axis), amplitude)  # type: ignore[arg-type]
-    return Peaks(
-        frequency_hz=take(f, order, axis), amplitude_rms=amp, line=take(acc.line, order, axis)
-    )
+        count=count, min_hz=lowcut_hz, beta=beta, weight=weight,
+    ) if count else None
+    if pk is None:  # no peaks asked for
+        shape = (*np.shape(power)[:-1], 0)
+        return Peaks(np.zeros(shape), np.zeros(shape), np.zeros(shape, dtype=np.int64))
+    amp = amplitude_from_power(pk.amplitude_rms**2, amplitude)  # type: ignore[arg-type]
+    return Peaks(frequency_hz=pk.frequency_hz, amplitude_rms=amp, line=pk.line)

@@ -13,6 +13,7 @@ peak A exactly on a line reads A²/2 there. A sine δ lines off a line's centre 
 from __future__ import annotations
 
 import functools
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -86,6 +87,7 @@ def find_peaks(
     min_hz: float = 0.0,
     max_hz: float | None = None,
     beta: float = DEFAULT_KAISER_BETA,
+    weight: Callable[[np.ndarray], np.ndarray] | None = None,
 ) -> Peaks:
     """The ``count`` largest peaks of each channel of a power spectrum, with interpolation.
 
@@ -105,6 +107,12 @@ def find_peaks(
 
     Exact for one noise-free sine; other tones and the negative-frequency image bias the
     estimate by their leakage onto lines q and q+s. Peaks are ranked by ``amplitude_rms``.
+
+    ``weight`` (optional) maps frequencies in Hz to a power factor ≥ 0 that is monotone
+    between its breaks (e.g. ``dsp.scaling.unit_power_weights`` to velocity): each peak's
+    amplitude_rms is then √(amplitude_rms² · weight(frequency)), and the ranking is by that
+    — every peak is a candidate, so the result is the definition's in the weighted unit, not
+    a re-ranking of the largest unweighted ones.
 
     Example: a 1 m/s² RMS sine at 1003.7 Hz, fs = 25 600 Hz, N = 4096 (df = 6.25 Hz), Hann:
     find_peaks(...) gives frequency_hz ≈ 1003.70 and amplitude_rms ≈ 1.000, where the highest
@@ -150,20 +158,32 @@ def find_peaks(
         # Rank roughly, then interpolate exactly only the peaks that can make the top count.
         ranker = _ranker(*_window_key(window, n, beta))
         rough = np.sqrt(pk) * ranker.factor(r)
-        kth = _kth_per_row(rows, rough, n_ch, count)
-        sure = rough >= kth[rows] * ((1.0 - ranker.eps) / (1.0 + ranker.eps) * (1.0 - 1e-12))
+        lo_f = hi_f = 1.0
+        if weight is not None:
+            # the interpolated frequency lies within half a line of the peak line, where a
+            # weight monotone between breaks is bounded by its values at the two ends
+            q_line = (flat % width + 1).astype(np.float64)
+            w_ends = np.sqrt(np.stack([np.asarray(weight((q_line + h) * df_hz), np.float64)
+                                       for h in (-0.5, 0.5)]))
+            lo_f, hi_f = w_ends.min(axis=0), w_ends.max(axis=0)
+        kth = _kth_per_row(rows, rough * lo_f, n_ch, count)
+        sure = rough * hi_f >= kth[rows] * (
+            (1.0 - ranker.eps) / (1.0 + ranker.eps) * (1.0 - 1e-12))
         keep = np.flatnonzero(sure)
         r, pk, lf, rt, rows, flat = r[keep], pk[keep], lf[keep], rt[keep], rows[keep], flat[keep]
         delta_pk = np.interp(r, r_tab, d_tab)  # clips to [0, ½]
         a_pk = np.sqrt(pk) / np.interp(delta_pk, d_tab, g_tab)
         offset = np.where(rt >= lf, delta_pk, -delta_pk)
+        q_all = flat - rows * width + 1
+        f_all = (q_all + offset) * df_hz
+        if weight is not None:
+            a_pk = a_pk * np.sqrt(np.asarray(weight(f_all), np.float64))
         top = _top_per_row(rows, a_pk, n_ch, count)  # indices into the peaks, by rank
         got = top >= 0
         pick = top[got]
-        q_pk = flat[pick] - rows[pick] * width + 1
-        freq[got] = (q_pk + offset[pick]) * df_hz
+        freq[got] = f_all[pick]
         amp[got] = a_pk[pick]
-        line[got] = q_pk
+        line[got] = q_all[pick]
 
     if p.ndim == 1:
         freq, amp, line = freq[0], amp[0], line[0]
