@@ -40,9 +40,11 @@ from .types import (
     check_choice,
     check_index_span,
 )
-from .windows import DEFAULT_KAISER_BETA, check_window
+from .windows import DEFAULT_KAISER_BETA, check_window, window_info
 
-__all__ = ["AnalysisSpec", "Analyzer", "ToneDef", "resolve_unit", "spectrum_peaks"]
+__all__ = [
+    "AnalysisSpec", "Analyzer", "ToneDef", "low_limit_hz", "resolve_unit", "spectrum_peaks",
+]
 
 
 def resolve_unit(unit: str) -> OutputUnit:
@@ -115,6 +117,21 @@ class AnalysisSpec:
     def with_(self, **changes: object) -> AnalysisSpec:
         """A copy with the named fields changed (same units as the constructor's)."""
         return replace(self, **changes)  # type: ignore[arg-type]
+
+
+def low_limit_hz(spec: AnalysisSpec) -> float:
+    """The low-frequency limit in Hz: max(``lowcut_hz``, h·Δf), h the window's main-lobe
+    half-width in lines (``WindowInfo.mainlobe_halfwidth_bins``: Hann 2, flat-top 5, ...).
+
+    Lines below it hold the leakage of DC (a sensor's offset) through the window's main
+    lobe, and integration to velocity or displacement (÷ω, ÷ω²) would magnify whatever is
+    there without bound. So, in every unit: bands and the overall are summed from this
+    limit up (a band wholly below it reads NaN), tracked tones below it read NaN, no peak is
+    looked for below it, and the velocity/displacement spectrum reads 0 there (the
+    acceleration spectrum shows the lines as they are). See docs/low-frequency.md.
+    """
+    info = window_info(spec.window, spec.grid.n, beta=spec.beta)
+    return max(float(spec.lowcut_hz), info.mainlobe_halfwidth_bins * spec.grid.df_hz)
 
 
 @dataclass(frozen=True)
@@ -192,9 +209,8 @@ class Analyzer:
         self.info = self.bank.info
         self.q = self.grid.analysis_bins  # lines kept: DC … Fmax
         self.f_hz = self.grid.frequencies()[: self.q]
-        # Lines inside the window's main lobe around DC carry leaked DC; integrating them
-        # would blow up, so the cut is never below the main lobe's half-width.
-        self.lowcut_hz = max(spec.lowcut_hz, self.info.mainlobe_halfwidth_bins * self.grid.df_hz)
+        # The low-frequency limit (docs/low-frequency.md): lines below it are not measured.
+        self.lowcut_hz = low_limit_hz(spec)
         # Power spectrum scaling 2/S1² (Heinzel 2002 §9), DC and Nyquist lines not doubled;
         # applied at read-out to the averaged |X|² (see push).
         self._line_scale = power_spectrum(
@@ -221,14 +237,20 @@ class Analyzer:
             s = np.broadcast_to(np.asarray(speed_hz, dtype=np.float64), (self.channels,)).copy()
         self.speed_hz = s
         self._edges = np.zeros((self.channels, len(self.spec.bands), 2))
+        f_low = self.lowcut_hz
+        masked = np.zeros((self.channels, len(self.spec.bands)), dtype=bool)
         for c in range(self.channels):
             sc = None if not np.isfinite(s[c]) else float(s[c])
             for b, band in enumerate(self.spec.bands):
-                self._edges[c, b] = (
-                    (np.nan, np.nan)
-                    if (band.basis == "order" and sc is None)
-                    else band.edges_hz(sc)
-                )
+                if band.basis == "order" and sc is None:
+                    self._edges[c, b] = (np.nan, np.nan)
+                    continue
+                lo, hi = band.edges_hz(sc)
+                # A band is measured above the low-frequency limit only; one wholly below it
+                # keeps its edges and reads NaN (band_masked says why).
+                masked[c, b] = hi <= f_low
+                self._edges[c, b] = (lo, hi) if masked[c, b] else (max(lo, f_low), hi)
+        self._band_masked = masked
         tone_hz = np.zeros((self.channels, len(self.spec.tones)))
         for c in range(self.channels):
             sc = None if not np.isfinite(s[c]) else float(s[c])
@@ -236,11 +258,14 @@ class Analyzer:
                 f = np.nan if (tone.order is not None and sc is None) else tone.frequency_hz(sc)
                 tone_hz[c, t] = f if (np.isfinite(f) and f <= self.grid.fs / 2) else np.nan
         self._edge_plan = _EdgePlan.build(
-            self._line_position(np.nan_to_num(self._edges, nan=0.0)).reshape(self.channels, -1),
+            self._line_position(
+                np.where(masked[..., None], 0.0, np.nan_to_num(self._edges, nan=0.0))
+            ).reshape(self.channels, -1),
             self.q,
-            np.isnan(self._edges[..., 0]),
+            np.isnan(self._edges[..., 0]) | masked,
         )
         self._tone_valid = np.isfinite(tone_hz)
+        self._tone_masked = self._tone_valid & (np.nan_to_num(tone_hz, nan=0.0) < f_low)
         new_tones = np.where(self._tone_valid, tone_hz, 0.0)
         if not np.array_equal(new_tones, self.bank.tone_hz):
             self.bank.set_tones(new_tones)
@@ -263,8 +288,19 @@ class Analyzer:
 
     @property
     def band_edges_hz(self) -> np.ndarray:
-        """Band edges in Hz, [C, B, 2]; NaN for order bands without a running speed."""
+        """Band edges in Hz, [C, B, 2], as measured: a lower edge below the low-frequency
+        limit reads as the limit; NaN for order bands without a running speed."""
         return self._edges
+
+    @property
+    def band_masked(self) -> np.ndarray:
+        """[C, B] bool: the band lies wholly below the low-frequency limit (reads NaN)."""
+        return self._band_masked
+
+    @property
+    def tone_masked(self) -> np.ndarray:
+        """[C, T] bool: the tone lies below the low-frequency limit (reads NaN)."""
+        return self._tone_masked
 
     def _view(self, unit: str | None) -> _Views:
         u = resolve_unit(unit or self.spec.unit)
@@ -379,9 +415,11 @@ class Analyzer:
         return psd_from_power(self.power(unit), self.info.enbw_hz(self.grid.fs))
 
     def bands(self, unit: str | None = None) -> np.ndarray:
-        """Band RMS values in ``unit`` (float64 [C, B]): Σ power·weights / ENBW_bins, square-rooted.
+        """Band RMS values in ``unit`` (float64 [C, B]): Σ power·weights / ENBW_bins, square-rooted,
+        over the band's measured edges (:attr:`band_edges_hz`).
 
-        NaN for an order band on a channel without a running speed.
+        NaN for an order band on a channel without a running speed, and for a band wholly
+        below the low-frequency limit.
         """
         if self.avg.value is None or not self.spec.bands:
             return np.full((self.channels, len(self.spec.bands)), np.nan)
@@ -405,14 +443,14 @@ class Analyzer:
         return out
 
     def tones(self, unit: str | None = None, amplitude: str | None = None) -> np.ndarray:
-        """Tracked-tone amplitudes (float64 [C, T]) at their exact frequencies; NaN if unresolved.
-        """
+        """Tracked-tone amplitudes (float64 [C, T]) at their exact frequencies; NaN if
+        unresolved (no speed, above Nyquist) or below the low-frequency limit."""
         v = self._view(unit)
         p = self.tone_avg.value
         if p is None or not self.spec.tones:
             return np.full((self.channels, len(self.spec.tones)), np.nan)
         a = amplitude_from_power(p * v.tone_weights, amplitude or self.spec.amplitude)  # type: ignore[arg-type]
-        return np.where(self._tone_valid, a, np.nan)
+        return np.where(self._tone_valid & ~self._tone_masked, a, np.nan)
 
     def peaks(
         self, unit: str | None = None, amplitude: str | None = None, count: int | None = None

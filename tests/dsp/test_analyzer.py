@@ -53,7 +53,7 @@ def test_tracked_tone_exact_at_any_frequency(window):
     fs = 2560.0
     freqs = 300.0 + rng.uniform(0, 400, 3)
     amps = np.array([1.0, 0.3, 0.05])
-    x = _sines(fs, 6, [(a, f, rng.uniform(0, 6)) for a, f in zip(amps, freqs)])
+    x = _sines(fs, 6, [(a, f, rng.uniform(0, 6)) for a, f in zip(amps, freqs, strict=True)])
     spec = _spec(window=window, unit="g", amplitude="peak",
                  tones=tuple(ToneDef(f"t{i}", hz=float(f)) for i, f in enumerate(freqs)))
     an = Analyzer(spec, 1)
@@ -237,3 +237,58 @@ def test_peaks_are_the_largest_local_maxima_for_every_window_and_line_count(wind
             top = sorted(got[:3])
             np.testing.assert_allclose([t[0] for t in top], tones_hz, atol=0.05 * df)
             np.testing.assert_allclose([t[1] for t in top], amps / np.sqrt(2), rtol=0.02)
+
+
+WINDOWS = ["rectangular", "hann", "hamming", "blackman-harris", "flattop", "kaiser"]
+
+
+@pytest.mark.parametrize("window", WINDOWS)
+def test_dc_offset_does_not_reach_the_overall_in_any_unit(window):
+    # Regression (issue 14, item 3): 5 g DC + a 1 g-peak sine at 100.3 Hz read an
+    # acceleration overall of 2.769 g (the DC's main lobe summed in); the low-frequency
+    # limit now applies to every unit. Expected: RMS of a sine = A/√2 (docs/references.md);
+    # in velocity and displacement the DC must change nothing (the sine alone is the
+    # reference: integrating line by line bends a sine's main lobe by 1/f², a bias of its
+    # own, 0.05-0.8 % here, that the DC has no part in).
+    grid = FrameGrid.from_fmax(5000, 1600, overlap=0.75)
+    sine = _sines(grid.fs, 4, [(1.0, 100.3, 0.4)])
+    values = []
+    for dc in (0.0, 5.0):
+        an = Analyzer(_spec(grid=grid, window=window, bands=(Band("overall", 2.0, 5000.0),)), 1)
+        an.push((dc + sine).astype(np.float32))
+        assert an.band_edges_hz[0, 0, 0] == pytest.approx(an.lowcut_hz)
+        values.append({u: an.bands(u)[0, 0] for u in ("g", "m/s2", "mm/s", "in/s", "um", "mil")})
+    assert values[1]["g"] == pytest.approx(1 / np.sqrt(2), rel=1e-3)
+    assert values[1]["m/s2"] == pytest.approx(G_N / np.sqrt(2), rel=1e-3)
+    for unit, value in values[0].items():
+        if window == "kaiser" and unit in ("um", "mil"):
+            # Kaiser's sidelobes (−63 dB at β 8.6) carry DC past the main lobe, and double
+            # integration magnifies them (100/9 Hz)⁴ ≈ 1.5e4 times: +6 % here. Documented in
+            # docs/low-frequency.md (remove the offset, or raise lowcut_hz).
+            continue
+        assert values[1][unit] == pytest.approx(value, rel=1e-3), unit
+
+
+@pytest.mark.parametrize("window", WINDOWS)
+def test_tones_and_bands_below_the_low_frequency_limit_read_nan(window):
+    # Regression (issue 14, item 4): a 1 g tone at 12 Hz under a flat-top at 3.125 Hz lines
+    # (limit 5 lines = 15.6 Hz) read 0.0 mm/s instead of "not measured". Below the limit a
+    # tone and a band read NaN in every unit; above it a tone reads its value (1 g RMS at
+    # f is g_n/(2πf) m/s RMS).
+    grid = FrameGrid.from_fmax(5000, 1600, overlap=0.75)
+    spec = _spec(grid=grid, window=window,
+                 tones=(ToneDef("1x", order=1.0), ToneDef("hi", hz=40.0)),
+                 bands=(Band("low", 1.0, 2.5), Band("part", 1.0, 60.0)))
+    an = Analyzer(spec, 1, speed_hz=np.array([12.0]))
+    x = _sines(grid.fs, 3, [(np.sqrt(2), 12.0, 0.1), (np.sqrt(2), 40.0, 0.2)])
+    an.push(x)
+    limit = an.lowcut_hz
+    assert an.tone_hz[0, 0] == pytest.approx(12.0)
+    assert an.tone_masked[0].tolist() == [12.0 < limit, False]
+    for unit in ("g", "mm/s", "um"):
+        t = an.tones(unit)[0]
+        assert np.isnan(t[0]) == (12.0 < limit)
+        assert np.isnan(an.bands(unit)[0, 0])
+        assert an.band_masked[0].tolist() == [True, False]
+    assert an.tones("mm/s")[0, 1] == pytest.approx(1e3 * G_N / (2 * np.pi * 40.0), rel=2e-3)
+    assert an.band_edges_hz[0, 1].tolist() == [limit, 60.0]
