@@ -1,7 +1,8 @@
 """The ``quaver`` console script: demo, serve, check, analyze, feed and bench.
 
 Knows the config, recordings, wire formats and the engine's public API; holds no server code
-(the running service is ``service.app``) and no DSP of its own (``analyze`` is the engine).
+(the running service is ``service.app``) and no DSP of its own (``analyze`` feeds the
+service's ``SourcePipeline`` and reads its frames as the REST API does).
 
 Exit codes: 0 done; 1 a run-time failure (file, network); 2 bad usage or a bad config;
 130 interrupted. Every error is one readable line on stderr (a config error: one problem
@@ -11,6 +12,7 @@ per line), never a traceback.
 from __future__ import annotations
 
 import argparse
+import functools
 import importlib
 import json
 import math
@@ -24,14 +26,14 @@ import urllib.error
 import urllib.request
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from types import SimpleNamespace
 from typing import IO, Any
 
 import numpy as np
 from pydantic import ValidationError
 
-from dsp.analyzer import Analyzer, ToneDef, resolve_unit
+from dsp.analyzer import ToneDef, resolve_unit
 from dsp.bands import Band
-from dsp.decimate import DecimationChain, plan_chain
 from dsp.filterbank import FMAX_RATIO
 from dsp.types import (
     AMPLITUDES,
@@ -48,19 +50,21 @@ from .config import (
     Config,
     ConfigError,
     SimulatedSourceConfig,
-    bands_for,
     channel_ids,
     channel_settings,
     check_listen_allowed,
     effective_analysis,
     load_config,
     open_source_warnings,
+    parse_config,
     parse_listen,
     profiles_of,
-    tones_for,
 )
-from .profiles import analysis_spec, plan_profiles, settled
+from .pipeline import ChannelState, SourcePipeline, channel_states
+from .profiles import ProfileBank, plan_profiles
 from .recording import RECORDING_FORMATS, Recording, load_recording
+from .spectra import band_items, overall_item, peak_items, spectrum_values, tone_items
+from .types import SampleBlock, SpectralFrame
 from .wire import RAW_FORMATS, encode_frame, encode_raw
 
 __all__ = [
@@ -74,7 +78,6 @@ __all__ = [
 ]
 
 DEFAULT_LISTEN = "127.0.0.1:8750"
-OVERALL = "_overall"  # internal band: lowcut_hz … Fmax, as the service's pipeline computes it
 CHUNK_S = 1.0  # analyze pushes the recording through the engine this many seconds at a time
 FEED_FORMATS: tuple[str, ...] = (*RAW_FORMATS, "framed")
 FRAMED_PAYLOAD = "f32le"  # sample format inside framed frames
@@ -331,24 +334,12 @@ def cmd_check(args: argparse.Namespace) -> int:
 
 
 # --- analyze --------------------------------------------------------------------------------
-
-
-@dataclass
-class _Group:
-    """Recording rows analysed with one set-up (one engine instance)."""
-
-    rows: list[int]
-    config_channel: str | None
-    settings: AnalysisSettings
-    input_unit: str
-    sensitivity: float
-    speed_hz: float
-    bands: list[Band]
-    tones: list[ToneDef]
-    analyzer: Analyzer | None = None
-    notes: tuple[str, ...] = ()
-    decimator: DecimationChain | None = None  # when Fmax is below fs/2.56
-
+#
+# `quaver analyze` runs the recording through the service's own path: a config (the -c file's
+# channel, or one made from the options) with the command-line options merged into its
+# analysis settings, then service.pipeline.SourcePipeline.process block by block (sensor
+# checks, gaps, ProfileBank: decimation and every profile, frames) and the REST payload
+# helpers of service.spectra for the values. Nothing here computes a number of its own.
 
 _OPTION_OF = {
     "fmax_hz": "--fmax", "lines": "--lines", "window": "--window", "overlap": "--overlap",
@@ -356,6 +347,18 @@ _OPTION_OF = {
     "output_unit": "--unit", "amplitude": "--amplitude", "lowcut_hz": "--lowcut",
     "peaks": "--peaks",
 }
+RECORDING_SOURCE = "recording"  # the source id analyze gives the recording
+MAX_AVERAGES = 100_000  # AnalysisSettings.averages' upper bound
+
+
+@dataclass
+class _Run:
+    """Recording rows analysed as one source of the service (one SourcePipeline)."""
+
+    rows: list[int]
+    ids: list[str]  # the config's channel id of each row
+    cfg: Config
+    config_channel: str | None
 
 
 def _settings(base: dict[str, Any], over: dict[str, Any]) -> AnalysisSettings:
@@ -368,7 +371,7 @@ def _settings(base: dict[str, Any], over: dict[str, Any]) -> AnalysisSettings:
                        2) from None
 
 
-def _cli_overrides(args: argparse.Namespace) -> dict[str, Any]:
+def _cli_overrides(args: argparse.Namespace, rec: Recording) -> dict[str, Any]:
     over: dict[str, Any] = {}
     for key, value in (("fmax_hz", args.fmax), ("lines", args.lines), ("window", args.window),
                        ("overlap", args.overlap), ("amplitude", args.amplitude),
@@ -380,22 +383,133 @@ def _cli_overrides(args: argparse.Namespace) -> dict[str, Any]:
             over.update(unit=args.unit, output_unit=None)
         else:
             over.update(unit=QUANTITY_OF_UNIT[args.unit], output_unit=args.unit)
+    # A recording's mean spectrum is what an analyst wants: linear over every frame (an
+    # upper bound of the frame count; the average is the mean of the frames there are) and
+    # held. The config's live averaging applies only when asked for on the command line.
+    mode = args.averaging or "linear"
+    over["averaging"] = mode
+    if args.averages is not None:
+        over["averages"] = args.averages
+    elif mode == "linear":
+        over["averages"] = max(1, min(rec.data.shape[1], MAX_AVERAGES))
+    over["linear_end"] = "hold"
     return over
 
 
-def _plan(args: argparse.Namespace, rec: Recording) -> list[_Group]:
-    """One group per distinct set-up: all rows alike without a config; by config channel with."""
-    over = _cli_overrides(args)
-    cli_bands = list(args.band or [])
-    cli_tones = list(args.tone or [])
+def _check_fmax(args: argparse.Namespace, rec: Recording) -> None:
+    if args.fmax is not None and args.fmax > rec.fs / FMAX_RATIO * (1 + 1e-9):
+        raise CliError(f"--fmax {args.fmax:g} Hz needs a sample rate of at least 2.56*fmax = "
+                       f"{FMAX_RATIO * args.fmax:g} Hz; the recording runs at {rec.fs:g} Hz", 2)
+
+
+def _cli_items(args: argparse.Namespace, channel: str, fmax_hz: float
+               ) -> tuple[list[dict[str, Any]], list[dict[str, Any]]]:
+    bands, tones = [], []
+    for b in args.band or []:
+        if b.hi > fmax_hz * (1 + 1e-9):
+            raise CliError(f"--band {b.name}:{b.lo:g}:{b.hi:g}: {b.hi:g} Hz is above Fmax "
+                           f"{fmax_hz:g} Hz", 2)
+        bands.append({"channel": channel, "name": b.name, "lo_hz": b.lo, "hi_hz": b.hi})
+    for t in args.tone or []:
+        if t.hz > fmax_hz * (1 + 1e-9):
+            raise CliError(f"--tone {t.name}:{t.hz:g}: {t.hz:g} Hz is above Fmax {fmax_hz:g} Hz",
+                           2)
+        tones.append({"channel": channel, "name": t.name, "hz": t.hz})
+    return bands, tones
+
+
+def _source(ids: list[str], fs: float) -> dict[str, Any]:
+    # a source entry only names the channels and their rate: nothing is ever opened
+    return {"id": RECORDING_SOURCE, "kind": "tcp", "listen": "127.0.0.1:9", "format": "f32le",
+            "sample_rate_hz": fs, "channels": ids}
+
+
+def _validated(doc: dict[str, Any], source: str, over: dict[str, Any]) -> Config:
+    """parse_config with the options' names in place of the settings they override."""
+    try:
+        return parse_config(doc, env={}, source=source)
+    except ConfigError as e:
+        problems = []
+        for p in e.problems:
+            path, sep, rest = p.partition(": ")
+            key = path.rsplit(".", 1)[-1]
+            if sep and key in over and key in _OPTION_OF and ".analysis." in f".{path}":
+                p = f"{_OPTION_OF[key]}: {rest}"
+            problems.append(p)
+        raise CliError("; ".join(problems), 2) from None
+
+
+def _plain_run(args: argparse.Namespace, rec: Recording, over: dict[str, Any]) -> _Run:
+    """Every recording channel with the options' settings (no config file)."""
+    if args.channel is not None or args.profile is not None:
+        raise CliError(f"{'--channel' if args.channel else '--profile'} needs -c/--config", 2)
+    s = _settings({"fmax_hz": rec.fs / FMAX_RATIO}, over)
+    rows = list(range(rec.data.shape[0]))
+    ids = [f"ch{r + 1}" for r in rows]
+    sens = 1.0 if args.sensitivity is None else args.sensitivity
+    bands, tones = _cli_items(args, "*", s.fmax_hz)
+    doc = {
+        "analysis": s.model_dump(),
+        "sources": [_source(ids, rec.fs)],
+        "channels": [{"id": i, "input_unit": args.input_unit or "g", "sensitivity": sens}
+                     for i in ids],
+        "bands": bands,
+        "tones": tones,
+    }
+    return _Run(rows, ids, _validated(doc, "the command-line options", over), None)
+
+
+def _config_run(args: argparse.Namespace, cfg: Config, row: int, cid: str,
+                over: dict[str, Any], fs: float) -> _Run:
+    """One recording row as config channel ``cid``, its profile (--profile or the primary
+    one) only, the options merged over the profile's settings (the later wins)."""
+    runs = profiles_of(cfg, cid)
+    if args.profile is not None and args.profile not in runs:
+        raise CliError(f"--profile {args.profile!r}: channel {cid!r} of {args.config} "
+                       f"has no such profile (profiles: {', '.join(map(repr, runs))})", 2)
+    prof = args.profile or runs[0]
+    base = effective_analysis(cfg, cid, prof).model_dump()
+    s = _settings(base, over)
+    ch = channel_settings(cfg, cid)
+    settings = s.model_dump()
+    channel = {**ch.model_dump(exclude={"analysis", "profiles"}), "analysis": settings}
+    if args.input_unit is not None:
+        channel["input_unit"] = args.input_unit
+    if args.sensitivity is not None:
+        channel["sensitivity"] = args.sensitivity
+    has_speed = ch.speed_rpm is not None
+    cli_bands, cli_tones = _cli_items(args, cid, s.fmax_hz)
+    cli_names = {b["name"] for b in cli_bands} | {t["name"] for t in cli_tones}
+
+    def keep(item: Any, is_order: bool) -> bool:
+        if item.channel not in ("*", cid) or item.profile not in ("*", prof):
+            return False
+        if item.channel == cid and item.name in cli_names:
+            return False  # the option's band or tone of that name replaces it
+        return has_speed or not is_order  # a '*' order item skips a channel without speed
+
+    doc: dict[str, Any] = {
+        "analysis": cfg.analysis.model_dump(),
+        "sources": [_source([cid], fs)],
+        "channels": [channel],
+        "bands": [b.model_dump(exclude_none=True) for b in cfg.bands
+                  if keep(b, b.lo_order is not None or b.hi_order is not None)] + cli_bands,
+        "tones": [t.model_dump(exclude_none=True) for t in cfg.tones
+                  if keep(t, t.order is not None)] + cli_tones,
+    }
+    if cfg.profiles:  # the one profile, under its own name, with the merged settings
+        doc["profiles"] = {prof: settings}
+        channel["profiles"] = [prof]
+    return _Run([row], [cid], _validated(doc, f"{args.config} with the command-line options",
+                                         over), cid)
+
+
+def _plan(args: argparse.Namespace, rec: Recording) -> list[_Run]:
+    """The runs: all rows alike without a config; one per row, as its config channel, with."""
+    _check_fmax(args, rec)
+    over = _cli_overrides(args, rec)
     if args.config is None:
-        if args.channel is not None or args.profile is not None:
-            raise CliError(f"{'--channel' if args.channel else '--profile'} needs -c/--config", 2)
-        base = {"fmax_hz": rec.fs / FMAX_RATIO}
-        return [_Group(list(range(rec.data.shape[0])), None, _settings(base, over),
-                       args.input_unit or "g",
-                       1.0 if args.sensitivity is None else args.sensitivity,
-                       math.nan, cli_bands, cli_tones)]
+        return [_plain_run(args, rec, over)]
     cfg = load_config(args.config)
     known = list(dict.fromkeys([*channel_ids(cfg), *(c.id for c in cfg.channels)]))
     listed = ", ".join(map(repr, known)) or "none"
@@ -411,120 +525,73 @@ def _plan(args: argparse.Namespace, rec: Recording) -> list[_Group]:
     else:
         raise CliError(f"{args.config} has several channels; choose one with --channel "
                        f"(channels: {listed})", 2)
-    groups: dict[str, _Group] = {}
-    for row, cid in enumerate(chosen):
-        if cid in groups:
-            groups[cid].rows.append(row)
-            continue
-        ch = channel_settings(cfg, cid)
-        if args.profile is not None and args.profile not in profiles_of(cfg, cid):
-            runs = ", ".join(map(repr, profiles_of(cfg, cid)))
-            raise CliError(f"--profile {args.profile!r}: channel {cid!r} of {args.config} "
-                           f"has no such profile (profiles: {runs})", 2)
-        base = effective_analysis(cfg, cid, args.profile).model_dump()
-        # A recording's mean spectrum is what an analyst wants; the config's live averaging
-        # applies only when asked for on the command line.
-        base.pop("averaging")
-        base.pop("averages")
-        bands = {b.name: b for b in bands_for(cfg, cid, args.profile)} | {
-            b.name: b for b in cli_bands}
-        tones = {t.name: t for t in tones_for(cfg, cid, args.profile)} | {
-            t.name: t for t in cli_tones}
-        groups[cid] = _Group(
-            [row], cid, _settings(base, over), args.input_unit or ch.input_unit,
-            ch.sensitivity if args.sensitivity is None else args.sensitivity,
-            (ch.speed_rpm or math.nan) / 60.0, list(bands.values()), list(tones.values()),
-        )
-    return list(groups.values())
+    return [_config_run(args, cfg, row, cid, over, rec.fs) for row, cid in enumerate(chosen)]
 
 
-def _frames_in(n_samples: int, n: int, hop: int) -> int:
-    return 0 if n_samples < n else (n_samples - n) // hop + 1
+async def _no_publish(*_: object) -> None:  # frames are read back, not published
+    return None
 
 
-def _build(g: _Group, args: argparse.Namespace, rec: Recording) -> None:
-    s = g.settings
-    fs = rec.fs
-    if args.fmax is not None and args.fmax > fs / FMAX_RATIO * (1 + 1e-9):
-        raise CliError(f"--fmax {args.fmax:g} Hz needs a sample rate of at least 2.56*fmax = "
-                       f"{FMAX_RATIO * args.fmax:g} Hz; the recording runs at {fs:g} Hz", 2)
-    if not (math.isfinite(g.sensitivity) and g.sensitivity != 0):
-        raise CliError(f"--sensitivity {g.sensitivity!r} must be a finite non-zero number", 2)
-    # Fmax below fs/2.56: the service's decimation chain first (dsp.decimate)
-    chain = plan_chain(fs, min(s.fmax_hz, fs / FMAX_RATIO))
-    notes: tuple[str, ...] = ()
-    if chain.factor > 1:
-        g.decimator = DecimationChain(len(g.rows), chain)
-        fs = chain.fs_out
-        if chain.note:
-            notes = (chain.note,)
-    overall = Band(OVERALL, s.lowcut_hz, min(s.fmax_hz, fs / FMAX_RATIO))
-    res = analysis_spec(s, fs, input_unit=g.input_unit, bands=[*g.bands, overall], tones=g.tones)
-    spec, grid = res.spec, res.spec.grid
-    available = rec.data.shape[1]
-    if g.decimator is not None:  # outputs after the chain's start-up transient
-        available = max(0, available // chain.factor - g.decimator.first_settled_index)
-    frames = _frames_in(available, grid.n, grid.hop)
-    if frames == 0:
-        raise CliError(f"the recording holds {rec.data.shape[1]} samples per channel, fewer "
-                       f"than one frame of N = {grid.n} ({grid.lines} lines); use fewer --lines")
-    mode = args.averaging or "linear"
-    if args.averages is not None:
-        averages: float = args.averages
-    else:
-        averages = frames if mode == "linear" else s.averages
-    # linear: the mean of the first `averages` frames (all of them by default), then held.
-    spec = spec.with_(averaging=mode, averages=averages, linear_end="hold")
-    g.analyzer = Analyzer(spec, len(g.rows), speed_hz=np.full(len(g.rows), g.speed_hz))
-    g.notes = notes or res.notes
+def _analyse(run: _Run, rec: Recording, progress: Callable[[int], None]
+             ) -> tuple[dict[str, SpectralFrame], dict[str, ChannelState]]:
+    """Feed the run's rows to a SourcePipeline in CHUNK_S blocks; the newest primary frame
+    of each channel, and the channels' states (sensor checks, counters, notes)."""
+    states = channel_states(run.cfg, RECORDING_SOURCE, run.ids)
+    pipe = SourcePipeline(
+        SimpleNamespace(id=RECORDING_SOURCE), states, _no_publish,
+        make_bank=functools.partial(ProfileBank, run.cfg, run.ids),
+    )
+    latest: dict[str, SpectralFrame] = {}
+    n_total = rec.data.shape[1]
+    chunk = max(1, int(round(CHUNK_S * rec.fs)))
+    ids = tuple(run.ids)
+    for start in range(0, n_total, chunk):
+        x = np.ascontiguousarray(rec.data[run.rows, start : start + chunk], dtype=np.float32)
+        for f in pipe.process(SampleBlock(RECORDING_SOURCE, ids, x, start, 0, rec.fs)):
+            if f.primary:
+                latest[f.channel] = f
+        progress(min(start + chunk, n_total))
+    return latest, states
 
 
-def _channel_result(g: _Group, j: int, row: int, rec: Recording, unit: str | None,
-                    amplitude: str) -> dict[str, Any]:
-    an = g.analyzer
-    assert an is not None
-    spec, grid = an.spec, an.grid
-    u = an.unit if unit is None else resolve_unit(unit)
-    lines = grid.lines
-    spectrum = an.spectrum(u, amplitude)[j, : lines + 1]
-    band_values = an.bands(u)[j]
-    edges = an.band_edges_hz[j]
-    named = [i for i, b in enumerate(spec.bands) if b.name != OVERALL]
-    i_overall = next(i for i, b in enumerate(spec.bands) if b.name == OVERALL)
-    tone_values = an.tones(u, amplitude)[j]
-    tone_hz = an.tone_hz[j]
-    peaks = an.peaks(u, amplitude)
+def _channel_result(name: str, run: _Run, frame: SpectralFrame, st: ChannelState
+                    ) -> dict[str, Any]:
+    info = st.profile_info.get(frame.profile, {})
+    values, unit, amp = spectrum_values(frame)
+    overall = overall_item(frame)
     return {
-        "channel": rec.channel_names[row],
-        "config_channel": g.config_channel,
-        "fs_hz": grid.fs,
-        "decimation": 1 if g.decimator is None else g.decimator.plan.factor,
-        "df_hz": grid.df_hz,
-        "f0_hz": 0.0,
-        "lines": lines,
-        "fmax_hz": grid.fmax_hz,
-        "n": grid.n,
-        "hop": grid.hop,
-        "window": spec.window,
-        "averaging": spec.averaging,
-        "averages": an.count,
-        "input_unit": spec.input_unit,
-        "sensitivity": g.sensitivity,
-        "unit": u,
-        "amplitude": amplitude,
-        "lowcut_hz": an.lowcut_hz,
-        "overall": _num(band_values[i_overall]),
-        "overall_band_hz": [_num(edges[i_overall, 0]), _num(edges[i_overall, 1])],
+        "channel": name,
+        "config_channel": run.config_channel,
+        "profile": frame.profile,
+        "fs_hz": frame.fs,
+        "decimation": info.get("decimation", 1),
+        "df_hz": frame.df_hz,
+        "f0_hz": frame.f0_hz,
+        "lines": frame.lines,
+        "fmax_hz": frame.fmax_hz,
+        "n": frame.n,
+        "hop": info.get("hop"),
+        "window": frame.window,
+        "averaging": frame.averaging,
+        "averages": frame.averages,
+        "input_unit": frame.input_unit,
+        "sensitivity": st.sensitivity,
+        "unit": unit,
+        "amplitude": amp,
+        "lowcut_hz": frame.lowcut_hz,
+        "overall": overall["overall"],
+        "overall_band_hz": [overall["overall_lo_hz"], overall["overall_hi_hz"]],
+        **({"overall_reason": overall["overall_reason"]} if "overall_reason" in overall else {}),
         "band_amplitude": "rms",
-        "bands": [{"name": spec.bands[i].name, "lo_hz": _num(edges[i, 0]),
-                   "hi_hz": _num(edges[i, 1]), "value": _num(band_values[i])} for i in named],
-        "tones": [{"name": t.name, "frequency_hz": _num(tone_hz[i]),
-                   "amplitude": _num(tone_values[i])} for i, t in enumerate(spec.tones)],
-        "peaks": [{"frequency_hz": float(f), "amplitude": float(a)}
-                  for f, a in zip(peaks.frequency_hz[j], peaks.amplitude_rms[j], strict=True)
-                  if np.isfinite(f)],
-        "notes": list(g.notes),
-        "spectrum": [float(v) for v in spectrum],
+        "bands": band_items(frame),
+        "tones": tone_items(frame),
+        "peaks": peak_items(frame),
+        "status": st.status,
+        "fault": st.fault,
+        "counters": {"nonfinite_blocks": st.nonfinite_blocks, "flat_blocks": st.flat_blocks,
+                     "clipped_blocks": st.clipped_blocks, "gaps": st.gaps},
+        "notes": list(st.notes),
+        "spectrum": [_num(v) for v in values.tolist()],
     }
 
 
@@ -540,21 +607,27 @@ def _table(r: dict[str, Any]) -> str:
         f"{r['channel']}{cfg}: fs {r['fs_hz']:g} Hz, Fmax {r['fmax_hz']:g} Hz, {r['lines']} "
         f"lines, df {r['df_hz']:g} Hz, {r['window']}, N {r['n']}, hop {r['hop']}, "
         f"{r['averaging']} average of {r['averages']} frame(s)",
-        f"  overall {_fmt(lo, 4)}-{_fmt(hi, 5)} Hz: {_fmt(r['overall'])} {u} rms",
+        f"  overall {_fmt(lo, 4)}-{_fmt(hi, 5)} Hz: {_fmt(r['overall'])} {u} rms"
+        + (f" ({r['overall_reason']})" if r.get("overall_reason") else ""),
+        f"  low-frequency limit {r['lowcut_hz']:g} Hz (nothing below it is measured)",
     ]
+    if r["status"] != "ok":
+        out.append(f"  status: {r['status']}" + (f" ({r['fault']})" if r["fault"] else ""))
     out += [f"  note: {n}" for n in r["notes"]]
     if r["bands"]:
         out.append(f"  bands ({u} rms)")
         for b in r["bands"]:
             edges = f"{_fmt(b['lo_hz'], 6)}-{_fmt(b['hi_hz'], 6)} Hz"
-            out.append(f"    {b['name']:<20} {edges:>18} {_fmt(b['value']):>11}")
+            why = f"  ({b['reason']})" if "reason" in b else ""
+            out.append(f"    {b['name']:<20} {edges:>18} {_fmt(b['value']):>11}{why}")
     if r["peaks"]:
         out.append(f"  peaks ({u} {a})")
         out += [f"    {p['frequency_hz']:12.3f} Hz {_fmt(p['amplitude']):>11}" for p in r["peaks"]]
     if r["tones"]:
         out.append(f"  tones ({u} {a})")
         out += [f"    {t['name']:<20} {_fmt(t['frequency_hz'], 8):>12} Hz "
-                f"{_fmt(t['amplitude']):>11}" for t in r["tones"]]
+                f"{_fmt(t['amplitude']):>11}" + (f"  ({t['reason']})" if "reason" in t else "")
+                for t in r["tones"]]
     return "\n".join(out)
 
 
@@ -565,52 +638,44 @@ def _read(path: str, fmt: str | None, channels: int | None, fs: float | None) ->
         raise CliError(f"{path}: no such file") from None
 
 
-def _push(g: _Group, x: np.ndarray) -> None:
-    assert g.analyzer is not None
-    dec = g.decimator
-    if dec is None:
-        g.analyzer.push(x)
-        return
-    # the chain's start-up transient is not analysed (as in the service)
-    y, _ = settled(dec.push(x), dec.next_index, dec.first_settled_index)
-    if y.shape[1]:
-        g.analyzer.push(y)
-
-
 def cmd_analyze(args: argparse.Namespace) -> int:
-    """Offline analysis through the service's own engine set-up; see the subcommand help."""
+    """Offline analysis through the service's own pipeline; see the subcommand help."""
     rec = _read(args.file, args.format, args.channels, args.rate)
+    if args.sensitivity is not None and not (math.isfinite(args.sensitivity)
+                                             and args.sensitivity != 0):
+        raise CliError(f"--sensitivity {args.sensitivity!r} must be a finite non-zero number", 2)
     try:
-        groups = _plan(args, rec)
+        runs = _plan(args, rec)
     except ConfigError as e:
         return _config_error(e)
-    for g in groups:
-        _build(g, args, rec)
     for p in rec.problems:
         _say(f"{args.file}: {p}")
     n_total = rec.data.shape[1]
     chunk = max(1, int(round(CHUNK_S * rec.fs)))
-    progress = Progress(f"analyze {os.path.basename(str(args.file))}", n_total) \
+    progress = Progress(f"analyze {os.path.basename(str(args.file))}", n_total * len(runs)) \
         if n_total > chunk else None
-    for start in range(0, n_total, chunk):
-        for g in groups:
-            x = rec.data[g.rows, start : start + chunk]
-            _push(g, (x * np.float32(g.sensitivity)).astype(np.float32, copy=False))
-        if progress:
-            progress.update(min(start + chunk, n_total))
+    results: list[dict[str, Any]] = [{} for _ in range(rec.data.shape[0])]
+    for i, run in enumerate(runs):
+        def step(done: int, before: int = i * n_total) -> None:
+            if progress:
+                progress.update(before + done)
+
+        latest, states = _analyse(run, rec, step)
+        for row, cid in zip(run.rows, run.ids, strict=True):
+            frame = latest.get(cid)
+            if frame is None:
+                info = next(iter(states[cid].profile_info.values()), {})
+                raise CliError(f"the recording holds {n_total} samples per channel, fewer than "
+                               f"one frame of N = {info.get('n')} ({info.get('lines')} lines) "
+                               f"at {info.get('sample_rate_hz')} Hz; use fewer --lines")
+            results[row] = _channel_result(rec.channel_names[row], run, frame, states[cid])
     if progress:
         progress.close()
-    results: list[dict[str, Any]] = [{} for _ in range(rec.data.shape[0])]
-    for g in groups:
-        amp = g.settings.amplitude
-        unit = g.settings.output_unit or g.settings.unit
-        for j, row in enumerate(g.rows):
-            results[row] = _channel_result(g, j, row, rec, unit, amp)
     if args.json:
         doc = {"file": str(args.file), "format": rec.fmt, "fs_hz": rec.fs,
                "samples": int(n_total), "duration_s": n_total / rec.fs,
                "problems": rec.problems, "channels": results}
-        print(json.dumps(doc))
+        print(json.dumps(doc, allow_nan=False))  # strict JSON: a value not measured is null
     else:
         head = (f"{args.file}: {rec.data.shape[0]} channel(s), {rec.fs:g} Hz, "
                 f"{n_total / rec.fs:.3f} s ({n_total} samples), {rec.fmt}")
@@ -977,11 +1042,15 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser(
         "analyze", help="analyse a recording offline with the service's engine",
-        description="Analyse a recording with the same engine and set-up rules as the running "
-        "service, in 1 s chunks. Averaging defaults to linear over the whole recording (the mean "
-        "spectrum of every frame), also with -c. The spectrum lists lines q = 0..lines at "
-        "f = q*df Hz. Bands and the overall (lowcut..Fmax) are RMS; peaks and tracked tones are "
-        "in --amplitude. Samples are multiplied by --sensitivity before analysis.",
+        description="Analyse a recording through the running service's own pipeline (sensor "
+        "checks, decimation, profile, bands, tones, peaks), in 1 s blocks, with the command-line "
+        "options merged over the settings (of the -c config channel's profile, if given). "
+        "Averaging defaults to linear over the whole recording (the mean spectrum of every "
+        "frame), also with -c. The spectrum lists lines q = 0..lines at f = q*df Hz. Bands and "
+        "the overall (the band named 'overall', else lowcut..Fmax; never below the "
+        "low-frequency limit) are RMS; peaks and tracked tones are in --amplitude; a value "
+        "that cannot be measured is null with a reason. Samples are multiplied by "
+        "--sensitivity before analysis.",
     )
     _recording_options(p, "--format")
     p.add_argument("-c", "--config", default=None, metavar="FILE",

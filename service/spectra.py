@@ -62,3 +62,67 @@ def to_npy(values: np.ndarray) -> bytes:
     buf = io.BytesIO()
     np.save(buf, np.asarray(values, dtype=np.float32), allow_pickle=False)
     return buf.getvalue()
+
+
+def _num(v: float) -> float | None:
+    """JSON has no NaN: a value that was not measured is null (with a reason beside it)."""
+    return float(v) if np.isfinite(v) else None
+
+
+def band_reason(frame: SpectralFrame, lo_hz: float, hi_hz: float) -> str:
+    """Why a band (or the overall) of ``frame`` has no value; '' when it has one."""
+    if not (np.isfinite(lo_hz) and np.isfinite(hi_hz)):
+        return "order band: the channel has no running speed"
+    if hi_hz <= frame.lowcut_hz:
+        return f"below the low-frequency limit ({frame.lowcut_hz:g} Hz)"
+    return "not measured"
+
+
+def tone_reason(frame: SpectralFrame, frequency_hz: float) -> str:
+    """Why a tracked tone of ``frame`` has no value; '' when it has one."""
+    if not np.isfinite(frequency_hz):
+        return "order tone without a running speed, or above fs/2"
+    if frequency_hz < frame.lowcut_hz:
+        return f"below the low-frequency limit ({frame.lowcut_hz:g} Hz)"
+    return "not measured"
+
+
+def overall_item(frame: SpectralFrame) -> dict[str, object]:
+    """The frame's overall (RMS in its unit) over the band it covers, as JSON fields."""
+    out: dict[str, object] = {
+        "overall": _num(frame.overall),
+        "overall_lo_hz": _num(frame.overall_lo_hz),
+        "overall_hi_hz": _num(frame.overall_hi_hz),
+    }
+    if out["overall"] is None:
+        out["overall_reason"] = band_reason(frame, frame.overall_lo_hz, frame.overall_hi_hz)
+    return out
+
+
+def band_items(frame: SpectralFrame) -> list[dict[str, object]]:
+    """Each band as JSON: name, measured edges (Hz), RMS value, and a reason when null."""
+    out: list[dict[str, object]] = []
+    for b in frame.bands:
+        d: dict[str, object] = {"name": b.name, "lo_hz": _num(b.lo_hz), "hi_hz": _num(b.hi_hz),
+                                "value": _num(b.value)}
+        if d["value"] is None:
+            d["reason"] = band_reason(frame, b.lo_hz, b.hi_hz)
+        out.append(d)
+    return out
+
+
+def tone_items(frame: SpectralFrame) -> list[dict[str, object]]:
+    """Each tracked tone as JSON: name, frequency (Hz), amplitude, and a reason when null."""
+    out: list[dict[str, object]] = []
+    for t in frame.tones:
+        d: dict[str, object] = {"name": t.name, "frequency_hz": _num(t.frequency_hz),
+                                "amplitude": _num(t.value)}
+        if d["amplitude"] is None:
+            d["reason"] = tone_reason(frame, t.frequency_hz)
+        out.append(d)
+    return out
+
+
+def peak_items(frame: SpectralFrame) -> list[dict[str, object]]:
+    """The frame's largest peaks as JSON: interpolated frequency (Hz) and amplitude."""
+    return [{"frequency_hz": p.frequency_hz, "amplitude": p.value} for p in frame.peaks]

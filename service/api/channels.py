@@ -13,7 +13,15 @@ from fastapi import APIRouter, Query, Response
 from dsp.types import AMPLITUDES, OUTPUT_UNITS, QUANTITIES
 
 from ..pipeline import ChannelState
-from ..spectra import spectrum_values, to_csv, to_npy
+from ..spectra import (
+    band_items,
+    overall_item,
+    peak_items,
+    spectrum_values,
+    to_csv,
+    to_npy,
+    tone_items,
+)
 from ..types import SpectralFrame
 from .deps import NO_FRAME, NOT_FOUND, ChannelDep, HubDep, ProfileQ, get_frame
 
@@ -164,13 +172,9 @@ def bands_payload(frame: SpectralFrame) -> dict[str, Any]:
         **_stamp(frame),
         "unit": frame.unit,
         "amplitude": "rms",
-        "overall": _num(frame.overall),
-        "overall_lo_hz": _num(frame.overall_lo_hz),
-        "overall_hi_hz": _num(frame.overall_hi_hz),
-        "bands": [
-            {"name": b.name, "lo_hz": _num(b.lo_hz), "hi_hz": _num(b.hi_hz), "value": _num(b.value)}
-            for b in frame.bands
-        ],
+        **overall_item(frame),
+        "lowcut_hz": frame.lowcut_hz,
+        "bands": band_items(frame),
     }
 
 
@@ -179,11 +183,9 @@ def tones_payload(frame: SpectralFrame) -> dict[str, Any]:
         **_stamp(frame),
         "unit": frame.unit,
         "amplitude": frame.amplitude,
-        "tones": [
-            {"name": t.name, "frequency_hz": _num(t.frequency_hz), "amplitude": _num(t.value)}
-            for t in frame.tones
-        ],
-        "peaks": [{"frequency_hz": p.frequency_hz, "amplitude": p.value} for p in frame.peaks],
+        "lowcut_hz": frame.lowcut_hz,
+        "tones": tone_items(frame),
+        "peaks": peak_items(frame),
     }
 
 

@@ -285,7 +285,7 @@ def test_analyze_with_a_config_channel(tmp_path: Path, capsys: pytest.CaptureFix
         (["--window", "hanning"], r"--window: invalid choice: 'hanning' \(choose from .*'hann'"),
         (["--unit", "furlong"], r"--unit: invalid choice: 'furlong' \(choose from .*'mm/s'"),
         (["--band", "x:200:100"], r"--band: 'x:200:100': need 0 <= LO_HZ < HI_HZ"),
-        (["--lines", "1601"], r"2\.56×1601 = 4098\.56 samples, not an integer"),
+        (["--lines", "1601"], r"--lines: 2\.56·1601 = 4098\.56 samples is not an integer"),
         (["--fmax", "6000"], r"--fmax 6000 Hz needs a sample rate of at least 2\.56\*fmax = 15360"),
         (["--overlap", "1.5"], r"--overlap: Input should be less than 1"),
         (["--format", "mp3"], r"--format: invalid choice: 'mp3'"),
