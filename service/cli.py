@@ -481,21 +481,38 @@ def _config_run(args: argparse.Namespace, cfg: Config, row: int, cid: str,
     cli_bands, cli_tones = _cli_items(args, cid, s.fmax_hz)
     cli_names = {b["name"] for b in cli_bands} | {t["name"] for t in cli_tones}
 
-    def keep(item: Any, is_order: bool) -> bool:
+    def keep(item: Any, is_order: bool, top: float | None) -> bool:
         if item.channel not in ("*", cid) or item.profile not in ("*", prof):
             return False
         if item.channel == cid and item.name in cli_names:
             return False  # the option's band or tone of that name replaces it
-        return has_speed or not is_order  # a '*' order item skips a channel without speed
+        if is_order and not has_speed:
+            return False  # a '*' order item skips a channel without speed
+        # a profile = "*" item goes to the profiles whose Fmax reaches it (config.bands_for)
+        return item.profile != "*" or top is None or top <= s.fmax_hz * (1 + 1e-9)
 
+    rps = (ch.speed_rpm or 0.0) / 60.0
+    bands = []
+    for b in cfg.bands:
+        if b.octave is not None:  # a set: its bands up to Fmax (bands_for drops the rest)
+            item = b.model_dump(exclude_none=True)
+            if b.profile == "*" and b.hi_hz is not None and b.hi_hz > s.fmax_hz:
+                item["hi_hz"] = s.fmax_hz
+            if keep(b, False, None) and (b.lo_hz or 0.0) < s.fmax_hz:
+                bands.append(item)
+            continue
+        is_order = b.hi_order is not None
+        top = b.hi_order * rps if b.hi_order is not None else b.hi_hz
+        if keep(b, is_order, top):
+            bands.append(b.model_dump(exclude_none=True))
+    tones = [t.model_dump(exclude_none=True) for t in cfg.tones
+             if keep(t, t.order is not None, t.hz if t.hz is not None else (t.order or 0) * rps)]
     doc: dict[str, Any] = {
         "analysis": cfg.analysis.model_dump(),
         "sources": [_source([cid], fs)],
         "channels": [channel],
-        "bands": [b.model_dump(exclude_none=True) for b in cfg.bands
-                  if keep(b, b.lo_order is not None or b.hi_order is not None)] + cli_bands,
-        "tones": [t.model_dump(exclude_none=True) for t in cfg.tones
-                  if keep(t, t.order is not None)] + cli_tones,
+        "bands": bands + cli_bands,
+        "tones": tones + cli_tones,
     }
     if cfg.profiles:  # the one profile, under its own name, with the merged settings
         doc["profiles"] = {prof: settings}
