@@ -61,7 +61,7 @@ from .config import (
     profiles_of,
 )
 from .pipeline import ChannelState, SourcePipeline, channel_states
-from .profiles import ProfileBank, plan_profiles
+from .profiles import ProfileBank, plan_profiles, plan_warnings
 from .recording import RECORDING_FORMATS, Recording, load_recording
 from .spectra import band_items, overall_item, peak_items, spectrum_values, tone_items
 from .types import SampleBlock, SpectralFrame
@@ -299,6 +299,7 @@ def cmd_check(args: argparse.Namespace) -> int:
     ids = channel_ids(cfg)
     out.append(f"channels: {len(ids)}")
     problems: list[str] = []
+    warnings = 0
     for cid in ids:
         src = next(s for s in cfg.sources if cid in s.channels)
         fs, how = _source_fs(src, cfg, cid)
@@ -325,8 +326,15 @@ def cmd_check(args: argparse.Namespace) -> int:
             else:
                 out.append(f"    {p.name}{' (primary)' if p.primary else ''}: {what}")
             out += [f"    note: {n}" for n in p.notes]
+            warned = plan_warnings(p, channel_settings(cfg, cid).speed_rpm)
+            warnings += len(warned)
+            out += [f"    warning: {w}" for w in warned]
     out.append(f"alarms: {len(cfg.alarms)}")
-    out += [f"warning: {w}" for w in open_source_warnings(cfg)]
+    source_warnings = open_source_warnings(cfg)
+    out += [f"warning: {w}" for w in source_warnings]
+    warnings += len(source_warnings)
+    if warnings:
+        out[0] = f"{args.config}: OK, with {warnings} warning(s) below"
     print("\n".join(out))
     if problems:
         return _config_error(ConfigError(problems, source=str(args.config)))

@@ -18,10 +18,11 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from dsp.analyzer import AnalysisSpec, Analyzer, ToneDef, resolve_unit
+from dsp.analyzer import AnalysisSpec, Analyzer, ToneDef, low_limit_hz, resolve_unit
 from dsp.bands import Band
 from dsp.decimate import MultiRate, plan_chain
 from dsp.filterbank import FMAX_RATIO, FrameGrid
+from dsp.windows import window_info
 
 from .config import (
     AnalysisSettings,
@@ -152,11 +153,58 @@ class ProfilePlan:
             "averaging": s.averaging,
             "averages": s.averages,
             "unit": resolve_unit(s.unit),
+            "low_limit_hz": low_limit_hz(s),
             "amplitude": s.amplitude,
             "bands": [b.name for b in self.bands],
             "tones": [t.name for t in s.tones],
             "notes": list(self.notes),
         }
+
+
+def min_band_lines(spec: AnalysisSpec) -> float:
+    """The narrowest band, in lines, that reads a sine at its centre within 0.15 dB under
+    ``spec``'s window: max(3, main-lobe half-width + 1) lines (rectangular, Hann, Hamming 3;
+    Kaiser β 8.6 3.9; Blackman-Harris 5; flat-top 6). Measured with dsp.analyzer.Analyzer
+    (a sine mid-band, band widths of 1-12 lines; table in docs/low-frequency.md)."""
+    info = window_info(spec.window, spec.grid.n, beta=spec.beta)
+    return max(3.0, info.mainlobe_halfwidth_bins + 1.0)
+
+
+def plan_warnings(plan: ProfilePlan, speed_rpm: float | None) -> list[str]:
+    """What ``plan`` cannot measure as configured, for ``quaver check``: bands and tracked
+    tones (orders at ``speed_rpm``) below the low-frequency limit (they read null, or from
+    the limit up), and bands too narrow for the line spacing (they read a sine low)."""
+    spec = plan.spec
+    f_low = low_limit_hz(spec)
+    df = spec.grid.df_hz
+    speed_hz = None if speed_rpm is None else speed_rpm / 60.0
+    why = (f"the low-frequency limit {f_low:g} Hz (max(lowcut_hz {spec.lowcut_hz:g}, "
+           f"{spec.window}'s main lobe at {df:g} Hz lines))")
+    need = min_band_lines(spec)
+    out = []
+    for b in plan.bands:
+        if b.basis == "order" and speed_hz is None:
+            continue
+        lo, hi = b.edges_hz(speed_hz)
+        at = "" if b.basis == "hz" else f" at {speed_rpm:g} r/min"
+        if hi <= f_low:
+            out.append(f"band {b.name!r} ({lo:g}-{hi:g} Hz{at}) lies below {why}: "
+                       "it reads null")
+        elif lo < f_low:
+            out.append(f"band {b.name!r} ({lo:g}-{hi:g} Hz{at}) starts below {why}: it is "
+                       f"measured over {f_low:g}-{hi:g} Hz")
+        elif (hi - lo) / df < need:
+            out.append(f"band {b.name!r} ({lo:g}-{hi:g} Hz{at}) is {(hi - lo) / df:.2g} "
+                       f"lines wide, under the {need:g} lines {spec.window} needs: a sine in "
+                       "it reads low (more lines, or a wider band)")
+    for t in spec.tones:
+        if t.order is not None and speed_hz is None:
+            continue
+        f = t.frequency_hz(speed_hz)
+        if f < f_low:
+            at = "" if t.order is None else f" (order {t.order:g} at {speed_rpm:g} r/min)"
+            out.append(f"tone {t.name!r} at {f:g} Hz{at} lies below {why}: it reads null")
+    return out
 
 
 def plan_profiles(cfg: Config, channel_id: str, fs_in: float) -> list[ProfilePlan]:

@@ -555,3 +555,30 @@ def test_feed_into_quaver_tcp_source(tmp_path: Path, fmt: str) -> None:
     assert blocks[0].first_index == 0
     assert [b.first_index for b in blocks[1:]] == list(np.cumsum([b.n for b in blocks])[:-1])
     np.testing.assert_array_equal(np.concatenate([b.data for b in blocks], axis=1), x)
+
+
+def test_check_warns_of_what_cannot_be_measured(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # Regression (issue 14, items 4 and 5): check called these OK. Flat-top at 3.125 Hz lines
+    # masks up to 5 lines = 15.625 Hz (its main-lobe half-width, Harris 1978), where 1X at
+    # 720 r/min (12 Hz) lies; third-octave bands at 20-31.5 Hz (IEC 61260-1 base ten) are
+    # 1.5-2.3 lines wide there, under the 6 lines flat-top needs.
+    p = tmp_path / "q.toml"
+    p.write_text(GOOD.replace('window = "hann"', 'window = "flattop"')
+                 .replace('id = "p1-de-h"', 'id = "p1-de-h"\nspeed_rpm = 720')
+                 + '\n[[tones]]\nchannel = "p1-de-h"\nname = "1X"\norder = 1\n'
+                 + '\n[[bands]]\nchannel = "p1-de-h"\nname = "low"\nlo_hz = 1\nhi_hz = 10\n'
+                 + '\n[[bands]]\nchannel = "p1-de-h"\nname = "t"\noctave = 3\nlo_hz = 17'
+                 + '\nhi_hz = 36\n')
+    assert cli.main(["check", "-c", str(p)]) == 0
+    out = capsys.readouterr().out
+    assert out.startswith(f"{p}: OK, with 5 warning(s) below")
+    assert ("warning: tone '1X' at 12 Hz (order 1 at 720 r/min) lies below the low-frequency "
+            "limit 15.625 Hz") in out
+    assert "warning: band 'low' (1-10 Hz) lies below the low-frequency limit" in out
+    assert "warning: band 't 20 Hz' (17.7828-22.3872 Hz) is 1.5 lines wide, under the 6" in out
+    assert "warning: band 't 25 Hz' (22.3872-28.1838 Hz) is 1.9 lines wide, under the 6" in out
+    assert "warning: band 't 31.5 Hz' (28.1838-35.4813 Hz) is 2.3 lines wide" in out
+    # the other channel has none of these: no warning under it
+    assert out.split("  p1-de-v (line-a)")[1].count("warning") == 0

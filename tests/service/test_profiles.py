@@ -389,3 +389,32 @@ def test_analyze_decimates_below_fs_over_2_56_and_takes_a_config_profile(
     assert abs(20 * math.log10(r["tones"][0]["amplitude"])) <= 0.05
     assert cli.main(["analyze", str(wav), "-c", str(cfg), "--profile", "zoom"]) == 2
     assert "--profile 'zoom': channel 'a' of" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("window", ["rectangular", "hann", "hamming", "blackman-harris",
+                                    "flattop", "kaiser"])
+def test_min_band_lines_is_where_a_mid_band_sine_reads_true(window: str) -> None:
+    # What `quaver check` warns about (issue 14, item 5): a band narrower than
+    # min_band_lines reads a sine at its centre low; from there on it reads it within
+    # 0.15 dB (RMS of a sine A/√2, docs/references.md). Third-octave bands of 1.5 lines
+    # read -1.47 dB with Hann (the issue's 20 Hz band).
+    from dsp.analyzer import AnalysisSpec, Analyzer
+    from dsp.bands import Band
+    from dsp.filterbank import FrameGrid
+    from service.profiles import min_band_lines
+
+    grid = FrameGrid.from_fmax(1000, 400, overlap=0.75)
+    spec = AnalysisSpec(grid=grid, window=window, averaging="linear", averages=1000, unit="g")
+    need = min_band_lines(spec)
+    k = np.arange(int(grid.fs * 20))
+    f0 = 300.37
+    x = (np.sqrt(2) * np.sin(2 * np.pi * f0 * k / grid.fs))[None].astype(np.float32)
+
+    def reads_db(lines: float) -> float:
+        band = Band("b", f0 - lines * grid.df_hz / 2, f0 + lines * grid.df_hz / 2)
+        an = Analyzer(spec.with_(bands=(band,)), 1)
+        an.push(x)
+        return float(20 * np.log10(an.bands()[0, 0]))
+
+    assert reads_db(need) > -0.15 and reads_db(need + 2) > -0.15
+    assert reads_db(1.5) < -0.2
