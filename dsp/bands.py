@@ -3,11 +3,11 @@ from a narrowband power spectrum, and ISO 20816-style severity zones.
 
 Knows nothing about streams, I/O, alarms or the service; numpy only.
 
-Spectrum convention (the whole engine's; Heinzel et al. 2002, §9): ``power[..., q]`` is a
-one-sided *power spectrum* in rms² per line, PS = 2|X_q|²/S1² with the DC line (and a
-Nyquist line) not doubled, on the grid f[q] = f0_hz + q·df_hz, q = 0…Q−1. A sine of RMS a
-spreads its power over a few lines so that Σ_q power[q] = a²·ENBW, with ENBW in bins
-(N·S2/S1², :func:`dsp.windows.window_info` ``.enbw_bins``). Therefore
+Spectrum convention (the whole engine's; Heinzel et al. 2002, §9; docs/references.md):
+``power[..., q]`` is a one-sided *power spectrum* in rms² per line, PS = 2|X_q|²/S1² with
+the DC line (and a Nyquist line) not doubled, on the grid f[q] = f0_hz + q·df_hz, q = 0…Q−1.
+A sine of RMS a spreads its power over a few lines so that Σ_q power[q] = a²·ENBW, with ENBW
+in bins (N·S2/S1², :func:`dsp.windows.window_info` ``.enbw_bins``). Therefore
 
     band power = Σ_q weight[q]·power[q] / ENBW_bins        (rms²)
 
@@ -180,7 +180,8 @@ def octave_bands(fraction: int, lo_hz: float, hi_hz: float) -> list[OctaveBand]:
     ``nominal_hz``: for b = 1 and 3 the nominal mid-band of the standard's annex (25, 31.5,
     40, … 20000 Hz for thirds; every third of those for octaves), continued outside
     25 Hz–20 kHz by powers of ten (R10 preferred numbers); for b = 6, 12, 24 the exact
-    mid-band rounded to 3 significant figures.
+    mid-band rounded to 3 significant figures — our own choice: the standard's annex lists
+    nominal values for octave and third-octave bands only (from memory; docs/references.md).
 
     >>> [b.label for b in octave_bands(1, 20, 20000)][:3]
     ['31.5 Hz', '63 Hz', '125 Hz']
@@ -312,9 +313,10 @@ def overall_rms(
 
 SeverityPreset = Literal["group1-rigid", "group1-flexible", "group2-rigid", "group2-flexible"]
 
-# Zone boundaries A/B, B/C, C/D in mm/s RMS (broadband velocity), ISO 20816-1:2016 /
-# ISO 10816-3. From memory, not read in the standard: users must confirm them against
-# their copy. Group 1: 300 kW–50 MW; group 2: 15–300 kW; rigid / flexible support.
+# Zone boundaries A/B, B/C, C/D in mm/s RMS (broadband velocity) of ISO 10816-3:2009,
+# Annex A — from memory, not read in the standard: users must confirm them against their
+# copy. ISO 20816-3:2022 replaced it with tables of its own, which these are not taken
+# from (docs/references.md). Group 1: 300 kW–50 MW; group 2: 15–300 kW; rigid / flexible.
 SEVERITY_PRESETS: dict[str, tuple[float, float, float]] = {
     "group1-rigid": (2.3, 4.5, 7.1),
     "group1-flexible": (3.5, 7.1, 11.0),
@@ -328,8 +330,8 @@ _ZONES = np.array(["A", "B", "C", "D"])
 def severity_zone(v_rms_mm_s: float | ArrayLike, preset: str) -> str | np.ndarray:
     """ISO 20816-style zone 'A'…'D' of broadband velocity RMS ``v_rms_mm_s`` (mm/s).
 
-    ``preset`` is a key of :data:`SEVERITY_PRESETS` (boundaries from memory of
-    ISO 20816-1 / ISO 10816-3: confirm them against your copy of the standard). A value
+    ``preset`` is a key of :data:`SEVERITY_PRESETS` (boundaries of ISO 10816-3:2009, from
+    memory: confirm them against your copy of the standard). A value
     equal to a boundary belongs to the upper zone (A/B = 2.3 mm/s reads 'B'). A scalar
     gives a str; an array gives an array of one-character str of the same shape. Values
     must be finite and >= 0 (mask faulted channels first). Measure over
@@ -349,5 +351,6 @@ def severity_zone(v_rms_mm_s: float | ArrayLike, preset: str) -> str | np.ndarra
 
 def severity_range_hz(slow: bool) -> tuple[float, float]:
     """Frequency range in Hz for the severity velocity RMS: (2, 1000) for machines running
-    120–600 r/min (``slow=True``), (10, 1000) above 600 r/min (ISO 20816-1, from memory)."""
+    120–600 r/min (``slow=True``), (10, 1000) above 600 r/min (ISO 20816-1:2016, from
+    memory)."""
     return (2.0, 1000.0) if slow else (10.0, 1000.0)

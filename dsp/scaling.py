@@ -2,7 +2,8 @@
 
 Knows nothing about streams or the service; pure functions on arrays.
 
-Conventions (Heinzel et al. 2002, §9), with S1 = Σw, S2 = Σw² of the window:
+Conventions (Heinzel et al. 2002, §9; docs/references.md), with S1 = Σw, S2 = Σw² of the
+window:
 
 * power spectrum  PS[q]  = 2·|X[q]|²/S1²   in unit²  (RMS²; DC and Nyquist not doubled)
 * PSD[q]                 = PS[q]/ENBW_Hz   in unit²/Hz, ENBW_Hz = fs·S2/S1²

@@ -2,12 +2,13 @@
 
 Knows nothing about streams, I/O, alarms or the service; numpy and scipy only.
 
-Spectrum convention (Heinzel et al. 2002, §9): the one-sided power spectrum of a frame x
-windowed by w is ``power[q] = 2·|X[q]|²/S1²`` in rms² (DC and Nyquist not doubled), with
-``X = rfft(w·x)``, ``S1 = Σ w[k]`` and lines at ``f[q] = q·df_hz``, ``df_hz = fs/N``. A sine of
-peak A exactly on a line reads A²/2 there. A sine δ lines off a line's centre reads
-``A²/2·g(δ)²`` on it, where ``g(ν) = |W(ν)|/|W(0)|`` is the window's normalised transform
-(``dsp.windows.transform_magnitude``); :func:`find_peaks` undoes that loss for any window.
+Spectrum convention (Heinzel et al. 2002, §9; docs/references.md): the one-sided power
+spectrum of a frame x windowed by w is ``power[q] = 2·|X[q]|²/S1²`` in rms² (DC and Nyquist
+not doubled), with ``X = rfft(w·x)``, ``S1 = Σ w[k]`` and lines at ``f[q] = q·df_hz``,
+``df_hz = fs/N``. A sine of peak A exactly on a line reads A²/2 there. A sine δ lines off a
+line's centre reads ``A²/2·g(δ)²`` on it, where ``g(ν) = |W(ν)|/|W(0)|`` is the window's
+normalised transform (``dsp.windows.transform_magnitude``); :func:`find_peaks` undoes that
+loss for any window.
 """
 
 from __future__ import annotations

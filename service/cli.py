@@ -1113,8 +1113,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--amplitude", choices=AMPLITUDES, default=None,
                    help="amplitude type of the spectrum, peaks and tones (default rms)")
     p.add_argument("--lowcut", type=_positive(float, allow_zero=True), default=None,
-                   metavar="HZ", help="low-frequency cut for integration and the overall, Hz "
-                   "(default 2)")
+                   metavar="HZ", help="low-frequency cut for integration and every value, Hz "
+                   "(default 2; the window's main lobe can raise it: docs/low-frequency.md)")
     p.add_argument("--band", type=_argtype(parse_band), action="append", metavar="NAME:LO:HI",
                    help="a band, edges in Hz (repeatable), e.g. overall:10:1000")
     p.add_argument("--tone", type=_argtype(parse_tone), action="append", metavar="NAME:HZ",

@@ -294,7 +294,7 @@ def test_user_check_can_fail(dockerfile):
 
 
 def test_exposes_the_default_port(dockerfile):
-    assert default_port() == 8750  # DESIGN.md "Interfaces (contract)": 127.0.0.1:8750
+    assert default_port() == 8750  # the design notes, "Interfaces (contract)": 127.0.0.1:8750
     assert check_expose(dockerfile, default_port()) == []
     assert check_expose(dockerfile, 9999) == ["EXPOSE ['8750'] is not the service's port 9999"]
 

@@ -253,7 +253,7 @@ def test_the_walk_covers_describe_settings():
 
 
 def test_the_app_serves_the_routes_the_design_names():
-    # DESIGN.md "Interfaces (contract)": health, channels, spectrum, bands, tones, the
+    # the design notes, "Interfaces (contract)": health, channels, spectrum, bands, tones, the
     # WebSocket stream and /metrics; the walk must see included routers and WebSockets.
     paths = {normalise(p) for p in app_paths(create_app(Hub()))}
     assert {
@@ -377,3 +377,67 @@ def test_route_rule_on_prose():
         "All under `/api/v1/`; try <http://127.0.0.1:8750/api/v1/health>, scrape /metrics."
     )
     assert [normalise(p) for p in found] == ["/api/v1", "/api/v1/health", "/metrics"]
+
+
+# --- citations of Markdown files ------------------------------------------------------------
+#
+# Tests, docstrings and docs cite the project's own Markdown files (docs/references.md for
+# published sources). A cited file must be in the repository: a path outside it (absolute,
+# or climbing out with ../) or a file that does not exist fails.
+
+MD_CITATION = re.compile(r"(?<![\w/.-])((?:\.\./|/|~/)?[\w.-]+(?:/[\w.-]+)*\.md)\b")
+CITING = ("dsp", "service", "tests", "web")
+THIS = Path(__file__).resolve()
+
+
+def bad_citations(text: str, where: Path) -> list[str]:
+    """Markdown files ``text`` (the file ``where``) cites that are not in the repository."""
+    out = []
+    for m in MD_CITATION.finditer(text):
+        token_start = max(text.rfind(c, 0, m.start()) for c in " \t\n(<[\"'") + 1
+        if "://" in text[token_start:m.start()]:
+            continue  # part of a URL
+        # "README.md/DEVELOPERS.md" names two files: each is checked
+        for cited in (c if c.endswith(".md") else f"{c}.md" for c in m.group(1).split(".md/")):
+            if cited.startswith(("/", "../", "~/")):
+                out.append(f"{where.relative_to(REPO)}: {cited} is outside the repository")
+            elif not ((REPO / cited).is_file() or (where.parent / cited).resolve().is_file()):
+                out.append(f"{where.relative_to(REPO)}: {cited} does not exist")
+    return out
+
+
+def _citing_files() -> Iterator[Path]:
+    for folder in CITING:
+        for p in sorted((REPO / folder).rglob("*")):
+            # this file's own examples of bad citations are checked by test_citation_rule
+            if p.suffix in (".py", ".js", ".md", ".html") and p.is_file() and p != THIS:
+                yield p
+    for p in sorted(REPO.glob("*.md")):
+        yield p
+    yield from sorted((REPO / "docs").glob("*.md"))
+
+
+def test_every_cited_markdown_file_is_in_the_repository():
+    problems = [b for p in _citing_files() for b in bad_citations(p.read_text("utf-8"), p)]
+    assert problems == []
+    # the references file tests and docstrings cite is there, with the sources they name
+    refs = (REPO / "docs/references.md").read_text("utf-8")
+    for source in ("Harris 1978", "Heinzel", "IEC 61260-1", "Randall and Antoni 2011",
+                   "ISO 20816-1", "ISO 10816-3", "scipy.signal.welch", "Kaiser and Schafer"):
+        assert source in refs, source
+
+
+@pytest.mark.parametrize(("text", "found"), [
+    ("# see docs/references.md", []),
+    ("# see docs/refs-missing.md", ["tests/x.py: docs/refs-missing.md does not exist"]),
+    ("# values in " + "../shared/" + "REFERENCES.md",
+     ["tests/x.py: ../shared/REFERENCES.md is outside the repository"]),
+    ("# values in " + "/work/shared/" + "REFERENCES.md",
+     ["tests/x.py: /work/shared/REFERENCES.md is outside the repository"]),
+    ("# (README.md, DEVELOPERS.md)", []),
+    ("# README.md/DEVELOPERS.md", []),
+    ("# README.md/NOTES.md", ["tests/x.py: NOTES.md does not exist"]),
+    ("# https://example.org/a/b.md", []),
+])
+def test_citation_rule(text, found):
+    assert bad_citations(text, REPO / "tests" / "x.py") == found

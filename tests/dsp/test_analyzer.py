@@ -29,7 +29,7 @@ def _spec(**kw):
 
 
 def test_one_g_rms_at_100_hz_reads_15_608_mm_s():
-    # REFERENCES.md [calc]: 1 g RMS at 100 Hz = 15.608 mm/s RMS = 24.84 µm RMS.
+    # docs/references.md [computed]: 1 g RMS at 100 Hz = 15.608 mm/s RMS = 24.84 µm RMS.
     spec = _spec(bands=(Band("b", 80, 120),), tones=(ToneDef("t", hz=100.0),))
     an = Analyzer(spec, 1)
     an.push(_sines(2560.0, 8, [(np.sqrt(2), 100.0, 0.3)]))
@@ -111,7 +111,7 @@ def test_bands_with_edges_that_differ_by_channel_equal_the_band_weight_matrix():
 
 
 def test_white_noise_band_power():
-    # White noise of variance σ² has band power σ²·(hi−lo)/(fs/2) (REFERENCES.md, Parseval).
+    # White noise of variance σ² has band power σ²·(hi−lo)/(fs/2) (docs/references.md, Parseval).
     fs, sigma = 2560.0, 0.7
     spec = _spec(bands=(Band("mid", 200, 600),), unit="g", window="hann")
     an = Analyzer(spec, 1)

@@ -1,9 +1,10 @@
 """Checks of dsp.bands against IEC 61260-1, Heinzel et al. 2002 §9, scipy.signal and ISO 20816.
 
-Each expected number says where it comes from; see /work/shared/REFERENCES.md."""
+Each expected number says where it comes from; see docs/references.md."""
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import get_args
 
 import numpy as np
@@ -311,9 +312,9 @@ def test_band_validation(args: tuple[object, ...], match: str) -> None:
         Band(*args)  # type: ignore[arg-type]
 
 
-# --- severity zones (ISO 20816-1 / ISO 10816-3, from memory) --------------------------------
+# --- severity zones (ISO 10816-3:2009 boundaries, from memory) ------------------------------
 
-# ISO 20816-1:2016 / ISO 10816-3, A/B, B/C, C/D in mm/s RMS — from memory (REFERENCES.md)
+# ISO 10816-3:2009, Annex A, A/B, B/C, C/D in mm/s RMS — from memory (docs/references.md)
 ISO_BOUNDARIES = {
     "group1-rigid": (2.3, 4.5, 7.1),
     "group1-flexible": (3.5, 7.1, 11.0),
@@ -353,3 +354,23 @@ def test_severity_errors_and_range() -> None:
     # ISO 20816-1 (from memory): 10–1000 Hz above 600 r/min, 2–1000 Hz for 120–600 r/min
     assert severity_range_hz(slow=False) == (10.0, 1000.0)
     assert severity_range_hz(slow=True) == (2.0, 1000.0)
+
+
+def test_the_presets_name_the_edition_their_values_come_from():
+    # Regression (issue 14, item 8): the presets were attributed to ISO 20816-1:2016 while
+    # their values are ISO 10816-3's zone tables (from memory; docs/references.md). The
+    # comment beside them, the docstring and the references must name that edition and say
+    # "from memory"; the 1/6-1/24-octave labels must say what they are based on.
+    import inspect
+
+    import dsp.bands as mod
+
+    src = inspect.getsource(mod)
+    note = src[: src.index("SEVERITY_PRESETS: dict")].rsplit("\n\n", 1)[-1]
+    assert "ISO 10816-3:2009" in note and "from memory" in note and "20816-1" not in note
+    assert "ISO 10816-3:2009" in (mod.severity_zone.__doc__ or "")
+    refs = (Path(__file__).resolve().parents[2] / "docs/references.md").read_text("utf-8")
+    section = refs[refs.index("## ISO 20816-1:2016 and ISO 10816-3:2009"):]
+    assert "[from memory]" in section.split("\n## ")[0]
+    doc = " ".join((mod.octave_bands.__doc__ or "").split())
+    assert "3 significant figures — our own choice" in doc and "from memory" in doc

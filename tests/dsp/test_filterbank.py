@@ -60,7 +60,7 @@ def test_psd_equals_scipy_welch(window, scipy_window):
 @settings(max_examples=40, deadline=None)
 @given(st.lists(st.integers(min_value=0, max_value=3000), min_size=1, max_size=12))
 def test_streaming_equals_batch(cuts):
-    # Streaming equals batch (STYLE.md): any split points give identical frames.
+    # Streaming equals batch (our style rule): any split points give identical frames.
     x = _signal(c=2, n=9000)
     grid = FrameGrid.from_n(512, 4096.0, overlap=0.6)
     one = FilterBank(grid, 2, "hann", tone_hz=np.array([123.4, 987.65]))

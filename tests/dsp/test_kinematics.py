@@ -11,8 +11,8 @@ from dsp.kinematics import BearingOrders, bearing_frequencies, gear_mesh_hz, sid
 
 
 def test_worked_example() -> None:
-    # REFERENCES.md, Randall & Antoni 2011 formulas [calc]: n = 8, d = 10, D = 50, φ = 0,
-    # 3000 r/min → BPFO 160, BPFI 240, FTF 20, BSF 120 Hz.
+    # Randall & Antoni 2011 formulas, worked example (computed; docs/references.md):
+    # n = 8, d = 10, D = 50, φ = 0, 3000 r/min → BPFO 160, BPFI 240, FTF 20, BSF 120 Hz.
     b = bearing_frequencies(8, 10.0, 50.0, 0.0, 3000 / 60)
     assert b.bpfo_hz == pytest.approx(160.0, rel=1e-12)
     assert b.bpfi_hz == pytest.approx(240.0, rel=1e-12)
@@ -36,7 +36,7 @@ def test_contact_angle_shrinks_the_effective_ratio() -> None:
 
 
 def test_identities_for_random_geometries() -> None:
-    # Randall & Antoni 2011 (REFERENCES.md): BPFO + BPFI = n·fr and BPFO = n·FTF. Also the
+    # Randall & Antoni 2011 (docs/references.md): BPFO + BPFI = n·fr and BPFO = n·FTF. Also the
     # kinematic facts that the inner race passes the elements at n·(fr − FTF), and that
     # BSF = (D/2d)·4·BPFO·BPFI/(n²·fr), which ties BSF to the other two formulas.
     rng = np.random.default_rng(1)

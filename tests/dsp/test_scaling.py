@@ -1,4 +1,4 @@
-"""Scaling, units and integration against the definitions in REFERENCES.md."""
+"""Scaling, units and integration against the definitions in docs/references.md."""
 
 import numpy as np
 import pytest
@@ -14,7 +14,7 @@ from dsp.windows import get_window
 
 
 def test_one_g_at_100_hz():
-    # REFERENCES.md [calc]: 1 g RMS at 100 Hz is 15.608 mm/s RMS and 24.84 µm RMS
+    # docs/references.md [computed]: 1 g RMS at 100 Hz is 15.608 mm/s RMS and 24.84 µm RMS
     # (v = a/(2πf), d = a/(2πf)², g_n = 9.80665 m/s², 3rd CGPM 1901).
     f = np.array([100.0])
     assert np.sqrt(unit_power_weights(f, "g", "mm/s"))[0] == pytest.approx(15.608, abs=5e-4)
@@ -34,7 +34,7 @@ def test_lowcut_zeroes_dc_and_sub_hz():
 
 
 def test_amplitude_types_of_a_sine():
-    # RMS of a sine of peak A is A/√2 (REFERENCES.md, other facts).
+    # RMS of a sine of peak A is A/√2 (docs/references.md, units and constants).
     a = 2.0
     ps = np.array([a * a / 2])
     assert amplitude_from_power(ps, "rms")[0] == pytest.approx(a / np.sqrt(2))

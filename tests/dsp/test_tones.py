@@ -85,7 +85,7 @@ def test_every_window_interpolates_exactly_for_one_clean_sine(window: str) -> No
 
 
 def test_flattop_highest_line_is_already_within_002_db() -> None:
-    # scipy's flattop loses at most 0.0098 dB half a line off centre (REFERENCES.md,
+    # scipy's flattop loses at most 0.0098 dB half a line off centre (docs/references.md,
     # Heinzel 2002 / calc), so the raw highest line is within ±0.02 dB with no correction;
     # the corrected amplitude must not be worse.
     rng = np.random.default_rng(11)
@@ -100,7 +100,7 @@ def test_flattop_highest_line_is_already_within_002_db() -> None:
 
 
 def test_hann_half_line_scalloping_is_1_4236_db_and_is_undone() -> None:
-    # A sine exactly half-way between lines reads 1.4236 dB low on Hann (REFERENCES.md,
+    # A sine exactly half-way between lines reads 1.4236 dB low on Hann (docs/references.md,
     # Harris 1978 Table 1: 1.42 dB; 1.4236 dB calc). Tolerance 0.001 dB covers the image
     # leakage 1000 lines away.
     q0 = 1000

@@ -6,13 +6,14 @@ import scipy.signal
 
 from dsp.windows import bin_response, get_window, transform_magnitude, window_info
 
-# Harris 1978, Table 1 (figures recomputed in REFERENCES.md [calc]); the table gives
+# Harris 1978, Table 1 (figures recomputed in docs/references.md [computed]); the table gives
 # 2–3 significant figures, so the tolerances follow the table's last digit.
 HARRIS = {
     #                  CG     ENBW   scallop  sidelobe
     "rectangular": (1.00, 1.000, 3.92, -13.3),
     "hann": (0.50, 1.500, 1.42, -31.5),
-    "hamming": (0.54, 1.363, 1.75, -42.7),  # scalloping 1.75 [calc]; the table's 1.78 is [memory]
+    # Hamming scalloping 1.75 computed; the table's 1.78 is from memory
+    "hamming": (0.54, 1.363, 1.75, -42.7),
     "blackman-harris": (0.359, 2.004, 0.83, -92.0),
 }
 
@@ -28,8 +29,8 @@ def test_harris_table_1(name):
 
 
 def test_scipy_flattop_figures():
-    # Heinzel et al. 2002 conventions; scipy flattop (D'Antona & Ferrero) figures [calc]
-    # in REFERENCES.md: NENBW 3.7702 bins, half-bin scalloping 0.0098 dB, sidelobes −93.0 dB.
+    # Heinzel et al. 2002 conventions; scipy flattop (D'Antona & Ferrero) figures computed
+    # in docs/references.md: NENBW 3.7702 bins, half-bin scalloping 0.0098 dB, sidelobes −93.0 dB.
     info = window_info("flattop", 4096)
     assert info.enbw_bins == pytest.approx(3.7702, abs=5e-4)
     assert info.scalloping_loss_db == pytest.approx(0.0098, abs=5e-4)
@@ -37,7 +38,7 @@ def test_scipy_flattop_figures():
 
 
 def test_half_bin_reads_low_by_scalloping():
-    # REFERENCES.md [calc]: a sine half a bin off centre reads low by 3.9224 dB
+    # docs/references.md [computed]: a sine half a bin off centre reads low by 3.9224 dB
     # (rectangular), 1.4236 dB (Hann), 0.0098 dB (scipy flattop).
     for name, loss in [("rectangular", 3.9224), ("hann", 1.4236), ("flattop", 0.0098)]:
         n = 1024
@@ -96,3 +97,23 @@ def test_window_errors():
         get_window("kaiser", 64, beta=-1)
     with pytest.raises(ValueError, match=r"span_bins=0"):
         bin_response("hann", 64, span_bins=0)
+
+
+def test_the_documented_kaiser_sidelobe_is_the_computed_one():
+    # Regression (issue 14, item 8): DEFAULT_KAISER_BETA was documented as "sidelobes near
+    # −69 dB"; the samples give −63.3 dB, and Kaiser & Schafer 1980's rule
+    # β ≈ 0.12438·(A + 6.3) (from memory, docs/references.md) gives 62.8 dB. Every dB figure
+    # written beside the constant must be within 0.6 dB of the computed sidelobe.
+    import inspect
+    import re
+
+    import dsp.windows as mod
+
+    src = inspect.getsource(mod)
+    block = src[: src.index("DEFAULT_KAISER_BETA =")].rsplit("\n\n", 1)[-1]
+    figures = [float(x.replace("−", "-")) for x in re.findall(r"([−-]?\d+(?:\.\d+)?) dB", block)]
+    computed = window_info("kaiser", 4096, beta=8.6).highest_sidelobe_db
+    rule = -(8.6 / 0.12438 - 6.3)
+    assert computed == pytest.approx(-63.3, abs=0.05)
+    assert computed == pytest.approx(rule, abs=0.6)
+    assert figures and all(abs(abs(f) - abs(computed)) < 0.6 for f in figures), figures

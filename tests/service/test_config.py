@@ -12,7 +12,7 @@ import pytest
 from service import config as qc
 from service.config import ConfigError, parse_config
 
-# The contract shape, verbatim from the service issue (DESIGN.md "Config").
+# The contract shape, verbatim from the service issue (the design notes, "Config").
 CONTRACT = """\
 [service]
 listen = "127.0.0.1:8750"

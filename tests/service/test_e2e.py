@@ -147,7 +147,7 @@ def check_tones_and_bands(svc: RunningService, ids: tuple[str, str], tol_db: flo
         assert abs(db(tones["t1"]["amplitude"], a1)) <= tol_db, (cid, tones)
         assert abs(db(tones["t2"]["amplitude"], a2)) <= tol_db, (cid, tones)
         bands = by_name(svc.get(f"channels/{cid}/bands")["bands"])
-        # a sine inside a band reads its RMS A/√2 within 0.5 % (REFERENCES.md, issue 2)
+        # a sine inside a band reads its RMS A/√2 within 0.5 % (docs/references.md, issue 2)
         assert bands["b100"]["value"] == pytest.approx(a1 / math.sqrt(2), rel=5e-3), (cid, bands)
         assert bands["b456"]["value"] == pytest.approx(a2 / math.sqrt(2), rel=5e-3), (cid, bands)
 
@@ -193,7 +193,7 @@ def test_tcp_raw_stream_matches_theory_and_offline_analyze(
     source = svc.source("raw")["counters"]
     assert (source["samples"], source["gaps"], source["malformed"]) == (N_TOTAL, 0, 0)
 
-    # velocity view of the same frame: v = a·g_n/(2πf) line by line (REFERENCES.md)
+    # velocity view of the same frame: v = a·g_n/(2πf) line by line (docs/references.md)
     a = np.array(spec["values"])
     vel = svc.get("channels/raw-a/spectrum", unit="mm/s")
     assert vel["seq"] == spec["seq"] and vel["unit"] == "mm/s" and vel["amplitude"] == "peak"
@@ -203,7 +203,7 @@ def test_tcp_raw_stream_matches_theory_and_offline_analyze(
         f_line = q * DF
         assert v[q] == pytest.approx(a[q] * G_N * 1000.0 / (2 * np.pi * f_line), rel=1e-5)
     rms = svc.get("channels/raw-a/spectrum", amplitude="rms")
-    # RMS of a sine of peak A is A/√2 (REFERENCES.md), line by line
+    # RMS of a sine of peak A is A/√2 (docs/references.md), line by line
     np.testing.assert_allclose(np.array(rms["values"]), a / math.sqrt(2), rtol=1e-6, atol=1e-12)
 
     # the same samples through `quaver analyze` give the same spectrum, bands and tones
@@ -222,7 +222,7 @@ def test_tcp_raw_stream_matches_theory_and_offline_analyze(
         assert s_live.shape == s_ref.shape
         big = s_ref > 1e-3 * s_ref.max()
         assert big.sum() >= 2 * 7  # at least the two tones' main lobes
-        # streaming equals offline within float32 rounding (STYLE.md: streaming equals batch)
+        # streaming equals offline within float32 rounding (our style rule: streaming equals batch)
         np.testing.assert_allclose(s_live[big], s_ref[big], rtol=1e-4)
         np.testing.assert_allclose(s_live, s_ref, rtol=1e-3, atol=1e-6 * s_ref.max())
         live_bands = by_name(svc.get(f"channels/{cid}/bands")["bands"])
@@ -256,7 +256,7 @@ def test_tcp_framed_gap_is_counted_and_analysis_restarts(svc: RunningService) ->
         ch = svc.channel(cid)
         assert ch["counters"]["gaps"] == 1, ch
         assert ch["status"] == "ok", ch
-    # no frame straddles the gap: the average holds only frames after it (DESIGN.md)
+    # no frame straddles the gap: the average holds only frames after it (the design notes)
     assert after["averages"] == frames_in(half) == before["averages"]
     assert after["seq"] > before["seq"]
     check_tones_and_bands(svc, ("fr-a", "fr-b"), tol_db=0.02)
@@ -418,7 +418,7 @@ def test_flat_line_in_short_frames_is_a_sensor_fault(svc: RunningService) -> Non
                  "one second on hf-ok")
     flat, ok = svc.channel("hf-flat"), svc.channel("hf-ok")
     assert ok["counters"]["flat_blocks"] == 0 and ok["counters"]["sensor_faults"] == 0
-    # counters, not the held status: a second of a stuck output is a fault (DESIGN.md)
+    # counters, not the held status: a second of a stuck output is a fault (the design notes)
     assert flat["counters"]["flat_blocks"] >= 1, flat
     assert flat["counters"]["sensor_faults"] == 1, flat
     svc.assert_healthy()

@@ -248,7 +248,7 @@ def test_random_blocks_equal_one_block_for_every_profile() -> None:
         g1, g2 = group(one, prof), group(many, prof)
         assert g1.analyzer.count == g2.analyzer.count > 0
         assert one.end_index(g1) == many.end_index(g2)
-        # streaming equals batch to float32 rounding (STYLE.md; dsp/decimate.py docstring)
+        # streaming equals batch to float32 rounding (our style rule; dsp/decimate.py docstring)
         np.testing.assert_allclose(g2.analyzer.power(), g1.analyzer.power(), rtol=1e-4,
                                    atol=1e-7 * float(g1.analyzer.power().max()))
 

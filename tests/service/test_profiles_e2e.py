@@ -143,7 +143,7 @@ def test_narrow_and_wide_read_the_same_tones(fed: Any) -> None:
         assert abs(db(wide[name]["amplitude"], amp)) <= 0.02, wide
         assert abs(db(narrow[name]["amplitude"], wide[name]["amplitude"])) <= 0.05, narrow
     bands = by_name(svc.get("channels/a/bands", profile="narrow")["bands"])
-    # a sine inside a band reads A/√2 within 0.5 % (REFERENCES.md, issue 2)
+    # a sine inside a band reads A/√2 within 0.5 % (docs/references.md, issue 2)
     assert bands["1x"]["value"] == pytest.approx(A_1X / math.sqrt(2), rel=5e-3)
     spec = svc.get("channels/a/spectrum", profile="narrow")
     assert (spec["profile"], spec["df_hz"], spec["lines"]) == ("narrow", 0.3125, 1600)
@@ -188,7 +188,7 @@ def test_an_alarm_on_the_narrow_profile_fires_and_trends_are_kept_per_profile(fe
     wide = svc.wait(lambda: trend(), "a wide trend point")
     assert (narrow["profile"], wide["profile"]) == ("narrow", "wide")
     for doc in (narrow, wide):
-        # band RMS of a 1 g peak sine: A/√2 within 0.5 % (REFERENCES.md)
+        # band RMS of a 1 g peak sine: A/√2 within 0.5 % (docs/references.md)
         assert doc["points"][-1]["mean"] == pytest.approx(A_1X / math.sqrt(2), rel=5e-3)
 
 

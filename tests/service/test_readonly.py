@@ -111,7 +111,7 @@ def monitoring_goes_on(svc: RunningService, k: int, amp: float) -> None:
     """Every sample up to index ``k`` taken, band b reads the tone of peak ``amp`` and its
     alarm is in danger, whatever the store is doing."""
     svc.wait(lambda: svc.channel("a")["counters"]["samples"] == k or None, "all samples")
-    # band RMS of a sine: A/√2 (REFERENCES.md); the exponential average has settled
+    # band RMS of a sine: A/√2 (docs/references.md); the exponential average has settled
     assert svc.get("channels/a/bands")["bands"][0]["value"] == pytest.approx(
         amp / math.sqrt(2), rel=0.02)
     alarms = svc.wait(lambda: [a for a in svc.get("alarms") if a["state"] == "danger"]

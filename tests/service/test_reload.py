@@ -93,7 +93,7 @@ def test_new_levels_apply_live_and_the_alarm_keeps_its_state(svc: RunningService
     a = alarm(svc)
     # the rule keeps its state (still active) and now holds the new levels
     assert (a["state"], a["alert"], a["danger"]) == ("alert", 0.4, 0.55)
-    # its value (0.57 g RMS, A/√2 of 0.8 g: REFERENCES.md) is over the new danger level: the
+    # its value (0.57 g RMS, A/√2 of 0.8 g: docs/references.md) is over the new danger level: the
     # next frame escalates
     with socket.create_connection((LOOPBACK, svc.ports["s"]), timeout=10) as sock:
         feed_tone(sock, int(6 * SMALL_FS), int(2 * SMALL_FS), 0.8)

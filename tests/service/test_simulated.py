@@ -76,7 +76,8 @@ def _assert_peak_at(f: np.ndarray, p: np.ndarray, want_hz: float, what: str) -> 
 # --- helpers against outside figures ------------------------------------------------------
 
 def test_velocity_conversion_matches_reference_value() -> None:
-    # 1 g RMS at 100 Hz is 15.608 mm/s RMS (REFERENCES.md "Other facts", [calc]); peak = √2·RMS
+    # 1 g RMS at 100 Hz is 15.608 mm/s RMS (docs/references.md "Units and constants",
+    # computed); peak = √2·RMS
     assert g_peak_for_velocity(15.608, 100.0) == pytest.approx(math.sqrt(2.0), rel=5e-5)
 
 
@@ -89,7 +90,7 @@ def test_noise_level_gives_asked_velocity_overall() -> None:
 
 def test_bearing_geometry_worked_example() -> None:
     # Randall & Antoni 2011 formulas; n = 8, d = 10, D = 50, φ = 0, 3000 r/min →
-    # BPFO 160, BPFI 240, FTF 20, BSF 120 Hz (REFERENCES.md worked example, [calc])
+    # BPFO 160, BPFI 240, FTF 20, BSF 120 Hz (docs/references.md, worked example)
     b = BearingGeometry(8, 10.0, 50.0, 0.0).frequencies(3000 / 60)
     assert (b.bpfo_hz, b.bpfi_hz, b.ftf_hz, b.bsf_hz) == pytest.approx((160, 240, 20, 120))
 
