@@ -5,7 +5,8 @@ import { fmtHz, fmtVal, unitLabel } from "./fmt.js";
 import { Scale, Surface, logTicks, pal } from "./plot.js";
 
 /**
- * Rows: [{name, lo_hz, hi_hz, value, alert, danger, state}] in one unit (RMS). A row's bar
+ * Rows: [{name, lo_hz, hi_hz, value, alert, danger, state, via}] in one unit (RMS); `via`
+ * names the profile a value comes from when it is not the one on screen. A row's bar
  * spans 0…1.3 × danger when it has levels; rows without levels share one scale.
  */
 export class BandBars {
@@ -65,7 +66,7 @@ export class BandBars {
         ctx.font = `11.5px ${pal.font}`;
         ctx.fillStyle = pal["ink-2"];
         ctx.textAlign = "left";
-        ctx.fillText(clip(ctx, r.name, nameW - 6), 0, trackY + trackH / 2);
+        ctx.fillText(clip(ctx, r.via ? `${r.name} · ${r.via}` : r.name, nameW - 6), 0, trackY + trackH / 2);
         ctx.font = `${abn ? "700 " : ""}11.5px ${pal.mono}`;
         ctx.fillStyle = this.stale ? pal["ink-3"] : pal.ink;
         ctx.textAlign = "right";
@@ -74,8 +75,9 @@ export class BandBars {
         ctx.font = `600 12px ${pal.font}`;
         ctx.fillStyle = pal.ink;
         ctx.textAlign = "left";
-        ctx.fillText(r.name, padL, top + 7);
-        const nw = ctx.measureText(r.name).width;
+        const label = r.via ? `${r.name} · ${r.via}` : r.name; // watched on another profile
+        ctx.fillText(label, padL, top + 7);
+        const nw = ctx.measureText(label).width;
         ctx.font = `11px ${pal.font}`;
         ctx.fillStyle = pal["ink-3"];
         const range = Number.isFinite(r.lo_hz) ? `${fmtHz(r.lo_hz, false)}–${fmtHz(r.hi_hz)}` : "";
@@ -200,23 +202,46 @@ export class ThirdsChart {
 }
 
 /**
- * Rows for BandBars from a bands message: named bands (not third-octave) with the levels and
- * state of their alarm rule when the service has one (`levels(channel, kind, name, profile)`;
- * the rule watches the message's analysis profile).
+ * Rows for BandBars from a bands message: every band, with the levels and state of the alarm
+ * rule that watches it, whichever profile the message is of (`ctx`: the views' shared
+ * context — levels, rulesFor, bandsOf, profileKey). A row watched on another profile shows
+ * that profile's value and names it (`via`), so a bar never reads "no limits" for a band an
+ * alarm watches.
  */
-export function bandRows(levels, channelId, msg) {
+export function bandRows(ctx, channelId, msg) {
   const named = [];
   const thirds = [];
+  const here = ctx.profileKey ? ctx.profileKey(channelId, msg?.profile) : "";
   for (const b of msg?.bands || []) {
-    const rule = levels(channelId, "band", b.name, msg.profile);
+    const { rule, value, via } = watcher(ctx, channelId, b, msg, here);
     let state = "ok";
     if (rule && rule.state && rule.rule) state = rule.state === "latched" ? "latched" : rule.state === "normal" ? "ok" : rule.state;
-    else if (rule?.danger > 0 && b.value >= rule.danger) state = "danger";
-    else if (rule?.alert > 0 && b.value >= rule.alert) state = "alert";
-    const row = { ...b, unit: msg.unit, alert: rule?.alert ?? null, danger: rule?.danger ?? null, state };
+    else if (rule?.danger > 0 && value >= rule.danger) state = "danger";
+    else if (rule?.alert > 0 && value >= rule.alert) state = "alert";
+    const row = { ...b, value, via, unit: msg.unit, alert: rule?.alert ?? null, danger: rule?.danger ?? null, state };
     (b.name.startsWith("third ") ? thirds : named).push(row);
   }
   return { named, thirds };
+}
+
+/** The rule that watches band `b` of `msg`, and the value it watches: a band rule on the
+ *  message's profile; for the band named "overall", the overall rule (the channel's overall
+ *  is that band's value); else such a rule on another profile, with that profile's value. */
+function watcher(ctx, channelId, b, msg, here) {
+  const isOverall = b.name === "overall";
+  const own = ctx.levels(channelId, "band", b.name, msg.profile)
+    ?? (isOverall ? ctx.levels(channelId, "overall", "overall", msg.profile) : null);
+  if (own || !ctx.rulesFor) return { rule: own, value: b.value, via: "" };
+  const others = [
+    ...ctx.rulesFor(channelId, "band", b.name),
+    ...(isOverall ? ctx.rulesFor(channelId, "overall", "overall") : []),
+  ].filter((x) => x.pk !== here);
+  if (!others.length) return { rule: null, value: b.value, via: "" };
+  const o = others[0];
+  const m2 = ctx.bandsOf ? ctx.bandsOf(channelId, o.pk) : null;
+  const b2 = (m2?.bands || []).find((x) => x.name === b.name);
+  const value = b2 ? b2.value : isOverall && m2 ? m2.overall : NaN;
+  return { rule: o.rule, value: value ?? NaN, via: o.profile };
 }
 
 /** The few bands worth a glance, in a stable order: abnormal first, then those with limits. */

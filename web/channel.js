@@ -366,7 +366,8 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
   function onBands(m, force = false) {
     if (!mine(m)) return;
     st.bands = m;
-    const { named, thirds: th } = bandRows(ctx.levels, id, m);
+    const { named, thirds: th } = bandRows(ctx, id, m);
+    ctx.fetchWatched(id, named); // values of bars watched on another profile
     plot.setBands(named);
     const now = performance.now();
     if (!force && now - bandsAt < TEXT_PERIOD_MS / 2) return;
@@ -437,9 +438,16 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
       o.dataset.seq = L.seq;
       o.dataset.value = L.overall;
     }
-    setText($("#ch-unit"), L ? `${unitLabel(L.unit, "rms")} overall${P && !P.primary ? ` (${P.name})` : ""}` : "");
+    // One overall per channel and profile, always named with the band it covers.
+    setText($("#ch-unit"), L ? `${unitLabel(L.unit, "rms")} overall ${overallBand(L)}${P && !P.primary ? ` (${P.name})` : ""}` : "");
     renderProfiles();
     renderFacts();
+  }
+
+  /** "10–1000 Hz": the band an overall covers, from a frame summary or bands message. */
+  function overallBand(m) {
+    return m?.overall_lo_hz != null && m?.overall_hi_hz != null
+      ? `${fmtHz(m.overall_lo_hz)}–${fmtHz(m.overall_hi_hz)}` : "";
   }
 
   function renderFacts() {
@@ -523,11 +531,12 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
       }
     }
     const names = named.map((b) => b.name);
-    const joined = names.join("|");
+    const band = overallBand(st.bands);
+    const joined = `${band}|${names.join("|")}`;
     if (joined === trendNames) return;
     trendNames = joined;
     const sel = $("#sel-trend");
-    sel.innerHTML = `<option value="${esc(ctx.FRAME)}">overall (to Fmax)</option>` + names.map((n) => `<option value="${esc(n)}"${n === st.trendName ? " selected" : ""}>${esc(n)} band</option>`).join("");
+    sel.innerHTML = `<option value="${esc(ctx.FRAME)}">overall ${esc(band)}</option>` + names.map((n) => `<option value="${esc(n)}"${n === st.trendName ? " selected" : ""}>${esc(n)} band</option>`).join("");
     sel.value = st.trendName;
   }
 
@@ -662,6 +671,7 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
       },
       view: () => plot.view && { ...plot.view },
       bands: () => st.bands && { profile: st.bands.profile, names: (st.bands.bands || []).map((b) => b.name) },
+      bars: () => bars.rows.map((r) => ({ name: r.name, value: r.value, alert: r.alert, danger: r.danger, state: r.state, via: r.via })),
     },
     unmount() {
       for (const [k, f] of Object.entries(on)) ctx.app.removeEventListener(k, f);

@@ -14,7 +14,8 @@ import { setupEvidence } from "./evidence.js";
 import { setupFilter } from "./filterview.js";
 
 const HISTORY_MS = 3600e3;
-/** History key of the frame overall (lowcut…Fmax), apart from any band that is called "overall". */
+/** History key of the channel's overall (over its band named "overall", else lowcut…Fmax, as
+ *  every frame says in overall_lo_hz/overall_hi_hz), apart from a band history of that name. */
 export const FRAME = "(frame overall)";
 
 /** Everything the views share. Views read it and listen to `app` events. */
@@ -36,6 +37,9 @@ const ctx = {
   app,
   nav: (hash) => (location.hash = hash),
   levels,
+  rulesFor,
+  primaryOf,
+  fetchWatched,
   profileKey,
   bandsOf,
   tonesOf,
@@ -50,6 +54,44 @@ const ctx = {
  *  `profile`: the analysis profile the value comes from (omitted or primary: the primary one). */
 function levels(channelId, kind, name, profile = "") {
   return store.rules.get(ruleKey(channelId, profileKey(channelId, profile), kind, name)) ?? null;
+}
+
+/** Every rule of a channel that watches `kind` `name`, on any of its profiles:
+ *  [{pk, profile, rule}] (pk "" and profile = the primary's name for the primary one). */
+function rulesFor(channelId, kind, name) {
+  const out = [];
+  const head = `${channelId}|`;
+  const tail = `|${kind}|${kind === "overall" ? "overall" : name}`;
+  for (const [k, rule] of store.rules) {
+    if (!k.startsWith(head) || !k.endsWith(tail) || k.length < head.length + tail.length) continue;
+    const pk = k.slice(head.length, k.length - tail.length);
+    if (pk.includes("|")) continue;
+    out.push({ pk, profile: pk || primaryOf(channelId) || "", rule });
+  }
+  return out;
+}
+
+/** Bar rows (bandRows) whose value a rule watches on a profile the stream does not bring to
+ *  this view: fetch that profile's bands over REST, at most every WATCHED_MS per profile, and
+ *  keep them as the stream's messages are kept (the views redraw on the "bands" event). */
+const WATCHED_MS = 3000;
+const watchedAt = new Map();
+function fetchWatched(channelId, rows) {
+  const now = Date.now();
+  for (const via of new Set(rows.filter((r) => r.via).map((r) => r.via))) {
+    const k = `${channelId}|${via}`;
+    if (now - (watchedAt.get(k) ?? 0) < WATCHED_MS) continue;
+    watchedAt.set(k, now);
+    getJSON(`${API}/channels/${encodeURIComponent(channelId)}/bands?profile=${encodeURIComponent(via)}`)
+      .then((m) => {
+        const pk = profileKey(channelId, m.profile);
+        const old = store.bands.get(msgKey(channelId, pk));
+        if (old && (old.seq ?? 0) >= (m.seq ?? 0)) return; // the stream's is as new
+        store.bands.set(msgKey(channelId, pk), m);
+        app.dispatchEvent(new CustomEvent("bands", { detail: m }));
+      })
+      .catch(() => {}); // a bar without its value still shows its rule's limits and state
+  }
 }
 
 function ruleKey(channelId, pk, kind, name) {

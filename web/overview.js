@@ -156,8 +156,8 @@ export function mount(root, ctx) {
         e.overall.dataset.value = L.overall;
       }
       e.unit.textContent = L ? unitLabel(L.unit, "rms") : "";
-      e.what.textContent = !L ? "" : L.overall_lo_hz != null
-        ? `overall ${fmtHz(L.overall_lo_hz)}–${fmtHz(L.overall_hi_hz)}` : `overall to ${fmtHz(L.fmax_hz)}`;
+      e.what.textContent = !L || L.overall_lo_hz == null ? "overall" // the band comes with a frame
+        : `overall ${fmtHz(L.overall_lo_hz)}–${fmtHz(L.overall_hi_hz)}`;
       const live = isLive(c.status);
       e.el.classList.toggle("stale", stale || !live);
       e.el.dataset.live = live ? "yes" : "no";
@@ -173,9 +173,11 @@ export function mount(root, ctx) {
       if (al.length) notes.push(al.map((a) => `${a.kind === "overall" ? "overall" : esc(a.name)}${ruleProfile(a) ? ` (${esc(ruleProfile(a))})` : ""} ${esc(a.state)}${a.acked ? " (ack)" : ""}`).join(", "));
       const nh = notes.join(" · ");
       if (e.note.innerHTML !== nh) e.note.innerHTML = nh;
-      const { named } = bandRows(ctx.levels, c.id, ctx.store.bands.get(c.id));
+      const { named } = bandRows(ctx, c.id, ctx.store.bands.get(c.id));
+      const top = topBands(named, 3);
+      ctx.fetchWatched(c.id, top); // values of bars watched on another profile
       e.bars.setStale(stale);
-      e.bars.setRows(topBands(named, 3), ctx.store.bands.get(c.id)?.unit || "");
+      e.bars.setRows(top, ctx.store.bands.get(c.id)?.unit || "");
       e.spark.surface.invalidate();
     }
     for (const sec of document.querySelectorAll(".machine")) {

@@ -92,7 +92,9 @@ def _summary(hub: Any, cid: str) -> dict[str, Any]:
     for p in d["profiles"]:
         pf = hub.by_profile.get((cid, p["name"]))
         p["latest"] = None if pf is None else {
-            **_stamp(pf), "unit": pf.unit, "overall": _num(pf.overall), "averages": pf.averages
+            **_stamp(pf), "unit": pf.unit, "overall": _num(pf.overall),
+            "overall_lo_hz": _num(pf.overall_lo_hz), "overall_hi_hz": _num(pf.overall_hi_hz),
+            "averages": pf.averages,
         }
     return d
 

@@ -232,3 +232,107 @@ def test_alarm_words_name_non_primary_profiles(
     )
     assert got["what"] == words
     assert got["shown"].endswith(words)
+
+
+def bars_on_screen(pg: Any) -> dict[str, dict[str, Any]]:
+    rows = pg.evaluate("window.quaver.view && window.quaver.view.bars && window.quaver.view.bars()")
+    return {r["name"]: r for r in rows or []}
+
+
+def test_every_watched_bar_shows_its_rules_limits_whichever_profile_is_on_screen(
+    demo: Service, page: tuple[Any, PageLog]
+) -> None:
+    # Regression (issue 14, item 6): bars showed only the limits of band rules on the profile
+    # on screen, so the narrow view's "bearing" (watched on the primary profile) and the plant
+    # card's "1x" (watched on narrow) were grey with "no limits". The demo's rules
+    # (service/examples/demo.toml): bearing 0.45/0.9 mm/s on the primary profile, 1x 2.8/4.5
+    # on narrow. A bar watched on another profile shows that rule, that profile's value, and
+    # names the profile.
+    pg, log = page
+    rules = {a["rule"]: a for a in demo.get("alarms", all="true")}  # ids as the API gives them
+    assert rules[f"{CHANNEL}.band.bearing"]["danger"] == 0.9
+    assert rules[f"{CHANNEL}.narrow.band.1x"]["danger"] == 4.5
+    open_channel(pg, demo, "?profile=narrow")
+    wait_for(lambda: (on_screen(pg) or {}).get("profile") == "narrow", "the narrow spectrum")
+
+    def narrow_bars() -> dict[str, dict[str, Any]] | None:
+        rows = bars_on_screen(pg)
+        wide = pg.evaluate(f"window.quaver.store.bands.get('{CHANNEL}')")
+        if "bearing" not in rows or not wide or rows["bearing"]["danger"] is None:
+            return None
+        wide_value = next(b["value"] for b in wide["bands"] if b["name"] == "bearing")
+        return rows if rows["bearing"]["value"] == wide_value else None
+
+    rows = wait_for(narrow_bars, "the bearing bar with the primary profile's rule", 30)
+    assert (rows["bearing"]["alert"], rows["bearing"]["danger"]) == (0.45, 0.9)
+    assert rows["bearing"]["via"] == "wide"
+    assert (rows["1x"]["alert"], rows["1x"]["danger"], rows["1x"]["via"]) == (2.8, 4.5, "")
+
+    open_channel(pg, demo)
+    wait_for(lambda: (on_screen(pg) or {}).get("profile") == "wide", "the wide spectrum")
+    rows = wait_for(lambda: (r := bars_on_screen(pg)).get("1x", {}).get("danger") and r,
+                    "the 1x bar with the narrow profile's rule", 30)
+    assert (rows["1x"]["alert"], rows["1x"]["danger"], rows["1x"]["via"]) == (2.8, 4.5, "narrow")
+    assert rows["bearing"]["via"] == "" and rows["bearing"]["danger"] == 0.9
+    assert not log.errors, log.errors
+
+
+def test_band_rows_take_the_rule_of_any_profile_and_the_overall_rule(
+    demo: Service, page: tuple[Any, PageLog]
+) -> None:
+    # bandRows (web/bars.js) with a made-up context: an `overall = true` rule watches the band
+    # named "overall" (the channel's overall is that band's value); a rule on another profile
+    # brings that profile's value; a band no rule watches has no limits.
+    pg, _ = page
+    pg.goto(demo.base_url + "/#/", wait_until="domcontentloaded")
+    got = pg.evaluate("""async () => {
+        const m = await import('/static/bars.js');
+        const over = {rule: 'c.overall', kind: 'overall', alert: 1, danger: 2, state: 'danger'};
+        const onNarrow = {rule: 'c.narrow.band.1x', kind: 'band', alert: 3, danger: 6,
+                          state: 'alert'};
+        const table = {'|overall|overall': over, 'narrow|band|1x': onNarrow};
+        const ctx = {
+            levels: (ch, kind, name, p) =>
+                table[`${p === 'wide' ? '' : p}|${kind}|${name}`] ?? null,
+            profileKey: (ch, p) => (p === 'wide' ? '' : p),
+            rulesFor: (ch, kind, name) => Object.entries(table)
+                .filter(([k]) => k.endsWith(`|${kind}|${name}`))
+                .map(([k, rule]) => ({pk: k.split('|')[0],
+                                      profile: k.split('|')[0] || 'wide', rule})),
+            bandsOf: (ch, pk) => (pk === 'narrow' ? {bands: [{name: '1x', value: 4}]} : null),
+        };
+        const msg = {profile: 'wide', unit: 'mm/s', bands: [
+            {name: 'overall', lo_hz: 10, hi_hz: 1000, value: 2.5},
+            {name: '1x', lo_hz: 20, hi_hz: 30, value: 0.1},
+            {name: 'other', lo_hz: 40, hi_hz: 50, value: 0.2}]};
+        return m.bandRows(ctx, 'c', msg).named;
+    }""")
+    rows = {r["name"]: r for r in got}
+    assert (rows["overall"]["alert"], rows["overall"]["danger"]) == (1, 2)
+    assert rows["overall"]["state"] == "danger" and rows["overall"]["via"] == ""
+    assert (rows["1x"]["danger"], rows["1x"]["value"], rows["1x"]["via"]) == (6, 4, "narrow")
+    assert rows["1x"]["state"] == "alert"
+    assert rows["other"]["danger"] is None and rows["other"]["state"] == "ok"
+
+
+def test_the_overall_is_named_with_its_band_everywhere(
+    demo: Service, page: tuple[Any, PageLog]
+) -> None:
+    # Regression (issue 14, item 7): the narrow view's headline said "overall (narrow)" for
+    # 2-500 Hz beside the 10-1000 Hz overall the alarms use, and the trend picker said
+    # "overall (to Fmax)". Every overall now names the band REST gives for it.
+    pg, log = page
+    wide = demo.get(f"channels/{CHANNEL}/bands")
+    narrow = demo.get(f"channels/{CHANNEL}/bands", profile="narrow")
+    assert (wide["overall_lo_hz"], wide["overall_hi_hz"]) == (10.0, 1000.0)
+    assert (narrow["overall_lo_hz"], narrow["overall_hi_hz"]) == (2.0, 500.0)
+    open_channel(pg, demo)
+    wait_for(lambda: "10.00 Hz–1.00 kHz" in pg.inner_text("#ch-unit"), "the headline's band")
+    wait_for(lambda: pg.evaluate("(document.querySelector('#sel-trend option') || {}).textContent")
+             == "overall 10.00 Hz–1.00 kHz", "the trend picker's overall with its band")
+    open_channel(pg, demo, "?profile=narrow")
+    wait_for(lambda: pg.inner_text("#ch-unit").endswith("overall 2.000 Hz–500.0 Hz (narrow)"),
+             "the narrow headline's band")
+    wait_for(lambda: pg.evaluate("(document.querySelector('#sel-trend option') || {}).textContent")
+             == "overall 2.000 Hz–500.0 Hz", "the narrow trend picker's overall")
+    assert not log.errors, log.errors
