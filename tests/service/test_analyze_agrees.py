@@ -124,3 +124,66 @@ def test_analyze_equals_the_services_rest_values(
     finally:
         svc.store.close()
     assert compared == sum(len(profiles_of(cfg, c)) for s in cfg.sources for c in s.channels)
+
+
+@pytest.mark.parametrize("window", WINDOWS)
+@pytest.mark.parametrize("lines", [100, 400, 1600, 6400])
+def test_rest_peaks_are_the_largest_local_maxima(window: str, lines: int, tmp_path: Path) -> None:
+    # Regression (issue 14, item 1): /tones of a Hamming channel gave "peaks": [] for a
+    # clean sine. The peaks REST serves (and the stream: the same payload) must be the
+    # definition's on the frame's own spectrum: every local maximum from the low-frequency
+    # limit up, interpolated through the window's transform (Harris 1978; dsp.tones
+    # .find_peaks, checked line by line in tests/dsp/test_tones.py), in the display unit,
+    # largest first.
+    from dsp.scaling import unit_power_weights
+    from dsp.tones import find_peaks
+
+    fs = 12800.0
+    doc = {
+        "service": {"data_dir": str(tmp_path)},
+        "analysis": {"fmax_hz": 5000.0, "lines": lines, "window": window, "unit": "velocity",
+                     "averaging": "linear", "averages": 4, "peaks": 8},
+        "sources": [{"id": "s", "kind": "tcp", "listen": "127.0.0.1:9", "format": "f32le",
+                     "sample_rate_hz": fs, "channels": ["c0"]}],
+    }
+    cfg = load_config(_write(tmp_path, doc))
+    svc = Service(cfg)
+    try:
+        rng = np.random.default_rng(lines + WINDOWS.index(window))
+        n = int(2.56 * lines) * 3
+        k = np.arange(n)
+        tones = rng.uniform(40.0, 4500.0, 4)
+        x = sum(rng.uniform(0.1, 1.5) * np.sin(2 * np.pi * f * k / fs + rng.uniform(0, 6))
+                for f in tones)
+        x = (x + np.sin(2 * np.pi * 1001.3 * k / fs))[None].astype(np.float32)
+        p = svc.pipelines[0]
+        svc.hub.publish(p.process(SampleBlock("s", ("c0",), x, 0, 0, fs)), 0.0)
+        got = TestClient(create_app(svc.hub)).get("/api/v1/channels/c0/tones").json()["peaks"]
+        frame = svc.hub.latest["c0"]
+        power = np.asarray(frame.power)
+        allpk = find_peaks(power, frame.df_hz, frame.window, frame.n,  # type: ignore[arg-type]
+                           count=power.size, min_hz=frame.lowcut_hz)
+        ok = np.isfinite(allpk.frequency_hz)
+        f, a = allpk.frequency_hz[ok], allpk.amplitude_rms[ok]
+        amp = a * np.sqrt(unit_power_weights(f, "g", "mm/s", lowcut_hz=frame.lowcut_hz))
+        order = np.argsort(-amp, kind="stable")[:8]
+        assert len(got) == len(order) >= 1
+        np.testing.assert_allclose([g["frequency_hz"] for g in got], f[order], rtol=1e-9)
+        np.testing.assert_allclose([g["amplitude"] for g in got], amp[order], rtol=1e-6)
+        # the clean 1 g-peak sine at 1001.3 Hz is among them: 1 g = 9.80665 m/s² (CGPM 1901),
+        # RMS A/√2, v = a/(2πf) (docs/references.md); within a line and 2 % (10 % under the
+        # rectangular window, whose sidelobes fall only 6 dB an octave: Harris 1978, so the
+        # other tones' leakage biases the interpolation)
+        near = [g for g in got if abs(g["frequency_hz"] - 1001.3) < frame.df_hz]
+        if all(abs(t - 1001.3) > 4 * frame.df_hz for t in tones):
+            assert near and near[0]["amplitude"] == pytest.approx(
+                9806.65 / np.sqrt(2) / (2 * np.pi * 1001.3),
+                rel=0.1 if window == "rectangular" else 0.02)
+    finally:
+        svc.store.close()
+
+
+def _write(tmp_path: Path, doc: dict[str, Any]) -> Path:
+    path = tmp_path / "q.toml"
+    path.write_text(to_toml(doc), encoding="utf-8")
+    return path
