@@ -25,8 +25,7 @@ import typing
 import urllib.error
 import urllib.request
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass
-from types import SimpleNamespace
+from dataclasses import dataclass, field
 from typing import IO, Any
 
 import numpy as np
@@ -64,7 +63,7 @@ from .pipeline import ChannelState, SourcePipeline, channel_states
 from .profiles import ProfileBank, plan_profiles, plan_warnings
 from .recording import RECORDING_FORMATS, Recording, load_recording
 from .spectra import band_items, overall_item, peak_items, spectrum_values, tone_items
-from .types import SampleBlock, SpectralFrame
+from .types import SampleBlock, SourceCounters, SpectralFrame
 from .wire import RAW_FORMATS, encode_frame, encode_raw
 
 __all__ = [
@@ -557,14 +556,37 @@ async def _no_publish(*_: object) -> None:  # frames are read back, not publishe
     return None
 
 
+@dataclass
+class _RecordingSource:
+    """The recording as the pipeline's source (service.sources.base.Source): it names the
+    channels and the rate; cmd_analyze hands the blocks to SourcePipeline.process itself."""
+
+    id: str
+    channel_ids: tuple[str, ...]
+    fs: float | None
+    counters: SourceCounters = field(default_factory=SourceCounters)
+
+    def __aiter__(self) -> _RecordingSource:
+        return self
+
+    async def __anext__(self) -> SampleBlock:
+        raise StopAsyncIteration
+
+    async def aclose(self) -> None:
+        return None
+
+    def status(self) -> dict[str, object]:
+        return {"id": self.id, "kind": "recording", "counters": self.counters.as_dict()}
+
+
 def _analyse(run: _Run, rec: Recording, progress: Callable[[int], None]
              ) -> tuple[dict[str, SpectralFrame], dict[str, ChannelState]]:
     """Feed the run's rows to a SourcePipeline in CHUNK_S blocks; the newest primary frame
     of each channel, and the channels' states (sensor checks, counters, notes)."""
-    states = channel_states(run.cfg, RECORDING_SOURCE, run.ids)
+    states = channel_states(run.cfg, RECORDING_SOURCE, run.ids, fs=rec.fs)
     pipe = SourcePipeline(
-        SimpleNamespace(id=RECORDING_SOURCE), states, _no_publish,
-        make_bank=functools.partial(ProfileBank, run.cfg, run.ids),
+        _RecordingSource(RECORDING_SOURCE, tuple(run.ids), rec.fs), states, _no_publish,
+        make_bank=functools.partial(ProfileBank, run.cfg, run.ids), cfg=run.cfg,
     )
     latest: dict[str, SpectralFrame] = {}
     n_total = rec.data.shape[1]
@@ -611,10 +633,14 @@ def _channel_result(name: str, run: _Run, frame: SpectralFrame, st: ChannelState
         "bands": band_items(frame),
         "tones": tone_items(frame),
         "peaks": peak_items(frame),
-        "status": st.status,
-        "fault": st.fault,
-        "counters": {"nonfinite_blocks": st.nonfinite_blocks, "flat_blocks": st.flat_blocks,
-                     "clipped_blocks": st.clipped_blocks, "gaps": st.gaps},
+        # the worker thread's view of the samples (service.quality: the rest of a channel's
+        # state is about time, which a recording does not have); frame.quality: the frame's
+        "quality": frame.quality,
+        "status": st.data_status,
+        "fault": st.data_fault,
+        "counters": {"nonfinite_blocks": st.nonfinite_blocks, "range_blocks": st.range_blocks,
+                     "flat_blocks": st.flat_blocks, "clipped_blocks": st.clipped_blocks,
+                     "sensor_faults": st.sensor_faults, "gaps": st.gaps},
         "notes": list(st.notes),
         "spectrum": [_num(v) for v in values.tolist()],
     }

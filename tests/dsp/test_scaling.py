@@ -61,7 +61,8 @@ def test_power_spectrum_matches_scipy_periodogram_and_parseval():
 
 
 def test_unit_errors():
-    with pytest.raises(ValueError, match=r"amplitude='pk' is not one of 'peak', 'rms', 'peak-to-peak'"):
+    with pytest.raises(ValueError,
+                       match=r"amplitude='pk' is not one of 'peak', 'rms', 'peak-to-peak'"):
         amplitude_from_power(np.ones(2), "pk")
     with pytest.raises(ValueError, match=r"unit='furlong/s' is not one of"):
         unit_power_weights(np.ones(2), "g", "furlong/s")
