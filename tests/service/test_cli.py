@@ -582,3 +582,33 @@ def test_check_warns_of_what_cannot_be_measured(
     assert "warning: band 't 31.5 Hz' (28.1838-35.4813 Hz) is 2.3 lines wide" in out
     # the other channel has none of these: no warning under it
     assert out.split("  p1-de-v (line-a)")[1].count("warning") == 0
+
+
+def test_analyze_json_is_strict_with_bad_samples_and_unmeasurable_values(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # NaN/inf and absurd samples go through the service's own sensor checks (they become 0
+    # and are counted); a tone below the low-frequency limit and an order tone without a
+    # speed are null with a reason. The document is strict JSON (RFC 8259 has no NaN).
+    x = _signal()
+    x[1000:1010] = np.nan
+    x[3000] = np.inf
+    x[40000] = 1e30  # a later 1 s block: one reason a block
+    p = tmp_path / "bad.csv"
+    np.savetxt(p, x[:, None], fmt="%.9g", header="de-h", comments="")
+    assert cli.main(["analyze", str(p), "--rate", str(FS), "--json", "--unit", "g",
+                     "--tone", "low:3", "--band", "dc:0.5:4"]) == 0
+    out = capsys.readouterr().out
+
+    def no_constant(name: str) -> None:
+        raise AssertionError(f"{name} in the JSON")
+
+    doc = json.loads(out, parse_constant=no_constant)
+    (ch,) = doc["channels"]
+    assert ch["counters"]["nonfinite_blocks"] >= 1 and ch["counters"]["range_blocks"] >= 1
+    assert ch["counters"]["sensor_faults"] >= 1
+    assert all(v is not None for v in ch["spectrum"])
+    (tone,) = ch["tones"]
+    assert tone["amplitude"] is None and tone["reason"].startswith("below the low-frequency")
+    (band,) = ch["bands"]
+    assert band["value"] is None and "6.25 Hz" in band["reason"]
