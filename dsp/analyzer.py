@@ -500,16 +500,20 @@ def spectrum_peaks(
     returns, for spectra already read out (the service computes them only when a client
     asks)."""
     u = resolve_unit(unit)
+    if not count:  # no peaks asked for
+        shape = (*np.shape(power)[:-1], 0)
+        return Peaks(np.zeros(shape), np.zeros(shape), np.zeros(shape, dtype=np.int64))
+    scale = 1.0
 
     def weight(f_hz: np.ndarray) -> np.ndarray:
         return unit_power_weights(f_hz, input_unit, u, lowcut_hz=lowcut_hz)  # type: ignore[arg-type]
 
+    if quantity_of(u) == "acceleration":  # a constant factor: it ranks nothing differently
+        scale = float(weight(np.ones(1))[0])
     pk = find_peaks(
         power, df_hz, window, n,  # type: ignore[arg-type]
-        count=count, min_hz=lowcut_hz, beta=beta, weight=weight,
-    ) if count else None
-    if pk is None:  # no peaks asked for
-        shape = (*np.shape(power)[:-1], 0)
-        return Peaks(np.zeros(shape), np.zeros(shape), np.zeros(shape, dtype=np.int64))
-    amp = amplitude_from_power(pk.amplitude_rms**2, amplitude)  # type: ignore[arg-type]
+        count=count, min_hz=lowcut_hz, beta=beta,
+        weight=None if quantity_of(u) == "acceleration" else weight,
+    )
+    amp = amplitude_from_power(pk.amplitude_rms**2 * scale, amplitude)  # type: ignore[arg-type]
     return Peaks(frequency_hz=pk.frequency_hz, amplitude_rms=amp, line=pk.line)

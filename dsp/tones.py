@@ -163,10 +163,12 @@ def find_peaks(
         if weight is not None:
             # the interpolated frequency lies within half a line of the peak line, where a
             # weight monotone between breaks is bounded by its values at the two ends
-            q_line = (flat % width + 1).astype(np.float64)
-            w_ends = np.sqrt(np.stack([np.asarray(weight((q_line + h) * df_hz), np.float64)
-                                       for h in (-0.5, 0.5)]))
-            lo_f, hi_f = w_ends.min(axis=0), w_ends.max(axis=0)
+            # (the weight once at every half line, f = (q − ½)·df for q = 0…Q, then indexed)
+            halves = np.sqrt(np.asarray(weight((np.arange(n_lines + 1) - 0.5) * df_hz),
+                                        np.float64))
+            q_line = flat % width + 1
+            w_lo, w_hi = halves.take(q_line), halves.take(q_line + 1)
+            lo_f, hi_f = np.minimum(w_lo, w_hi), np.maximum(w_lo, w_hi)
         kth = _kth_per_row(rows, rough * lo_f, n_ch, count)
         sure = rough * hi_f >= kth[rows] * (
             (1.0 - ranker.eps) / (1.0 + ranker.eps) * (1.0 - 1e-12))
