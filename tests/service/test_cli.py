@@ -582,6 +582,14 @@ def test_check_warns_of_what_cannot_be_measured(
     assert "warning: band 't 31.5 Hz' (28.1838-35.4813 Hz) is 2.3 lines wide" in out
     # the other channel has none of these: no warning under it
     assert out.split("  p1-de-v (line-a)")[1].count("warning") == 0
+    # Hann at the same lines, 1X at 1480 r/min (24.7 Hz): nothing to warn about
+    p.write_text(GOOD.replace('id = "p1-de-h"', 'id = "p1-de-h"\nspeed_rpm = 1480')
+                 + '\n[[tones]]\nchannel = "p1-de-h"\nname = "1X"\norder = 1\n'
+                 + '\n[[bands]]\nchannel = "p1-de-h"\nname = "1X"\nlo_order = 0.8'
+                 + '\nhi_order = 1.2\n')
+    assert cli.main(["check", "-c", str(p)]) == 0
+    out = capsys.readouterr().out
+    assert out.startswith(f"{p}: OK\n") and "warning" not in out
 
 
 def test_analyze_json_is_strict_with_bad_samples_and_unmeasurable_values(
