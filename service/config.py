@@ -228,7 +228,9 @@ class AnalysisSettings(_Model):
     )
     amplitude: Amplitude = Field("rms", description="Amplitude scale: peak | rms | peak-to-peak.")
     lowcut_hz: float = Field(
-        2.0, ge=0, description="Low-frequency cut for integration to velocity/displacement, Hz."
+        2.0, ge=0,
+        description="Lowest frequency measured, Hz, in every unit (integration cut); the "
+        "window's main lobe can raise it (docs/low-frequency.md).",
     )
     peaks: int = Field(8, ge=0, le=256, description="Number of spectral peaks reported.")
 
