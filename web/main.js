@@ -5,7 +5,7 @@ import { API, features, getJSON, isMissingRoute } from "./api.js";
 import { Live } from "./live.js";
 import { Surface, loadPalette } from "./plot.js";
 import { STATES, alarmStateKey, badge, channelStateKey, glyph, isLive } from "./states.js";
-import { esc, fmtVal } from "./fmt.js";
+import { esc, fmtHz, fmtVal } from "./fmt.js";
 import * as overview from "./overview.js";
 import * as channel from "./channel.js";
 import * as eventsView from "./events.js";
@@ -92,6 +92,12 @@ function fetchWatched(channelId, rows) {
       })
       .catch(() => {}); // a bar without its value still shows its rule's limits and state
   }
+}
+
+/** " · overall 10.00 Hz–1.00 kHz": the band the sidebar's number covers (one definition of the
+ *  overall, named with its band wherever it is shown). */
+function overallTitle(L) {
+  return L?.overall_lo_hz != null ? ` · overall ${fmtHz(L.overall_lo_hz)}–${fmtHz(L.overall_hi_hz)}` : "";
 }
 
 function ruleKey(channelId, pk, kind, name) {
@@ -270,7 +276,7 @@ function renderSide() {
     for (const c of chans) {
       const k = channelState(c);
       const abn = STATES[k].rank >= STATES.latched.rank;
-      html.push(`<a class="ch ${abn ? "abn" : ""} ${STATES[k].cls}" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${esc(c.id)}" data-state="${k}" title="${esc(c.description)} — ${STATES[k].word}"${c.id === cur ? ' aria-current="page"' : ""}>${glyph(k)}<span>${esc(c.id)}</span><span class="v">${c.latest && isLive(c.status) ? fmtVal(c.latest.overall) : STATES[k].word.toLowerCase()}</span></a>`);
+      html.push(`<a class="ch ${abn ? "abn" : ""} ${STATES[k].cls}" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${esc(c.id)}" data-state="${k}" title="${esc(c.description)} — ${STATES[k].word}${overallTitle(c.latest)}"${c.id === cur ? ' aria-current="page"' : ""}>${glyph(k)}<span>${esc(c.id)}</span><span class="v">${c.latest && isLive(c.status) ? fmtVal(c.latest.overall) : STATES[k].word.toLowerCase()}</span></a>`);
     }
   }
   const s = html.join("");
