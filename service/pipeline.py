@@ -69,7 +69,10 @@ class ChannelState:
     data_status: str = "ok"  # ok | sensor-fault | gap | overrun
     data_fault: str = ""
     settling: bool = False  # analysis restarted after a sensor fault, no clean frame yet
-    fault_until: float = 0.0  # monotonic seconds
+    # clean samples since the latest bad one: the fault is held for FAULT_HOLD_S of them,
+    # counted in the stream's own samples so that a recording analysed faster than real
+    # time (quaver analyze) holds it exactly as the running service does
+    clean_samples: int = 0
     overrun_until: float = 0.0
     samples: int = 0
     gaps: int = 0
@@ -270,6 +273,7 @@ class SourcePipeline:
             finite = np.isfinite(x).all(axis=1)
             x = np.where(good, x, 0.0).astype(np.float32)
         flat = self._flat_line(x, block.fs, gap)
+        hold = round(FAULT_HOLD_S * block.fs)  # a fault is held this many clean samples
         restart = False
         for c, st in enumerate(states):
             st.fs = block.fs
@@ -298,8 +302,12 @@ class SourcePipeline:
                     st.sensor_faults += 1
                     log.warning("channel %s: sensor fault: %s", st.id, reason)
                 st.data_status, st.data_fault = "sensor-fault", reason
-                st.fault_until, st.settling = now + FAULT_HOLD_S, False
-            elif st.data_status == "sensor-fault" and not st.settling and now >= st.fault_until:
+                st.clean_samples, st.settling = 0, False
+            else:
+                st.clean_samples += block.n
+            if not reason and st.data_status == "sensor-fault" and not st.settling and (
+                st.clean_samples >= hold
+            ):
                 # The fault is over: restart the analysis so that no average still holds the
                 # zeros that stood in for the bad samples (the source's other channels restart
                 # with it, as at a gap; their values stay exact).
@@ -326,7 +334,7 @@ class SourcePipeline:
                 frames += self._frames(g, block, new, self.bank.end_index(g))
         for st in states:
             if st.data_status == "sensor-fault":
-                if now < st.fault_until or st.settling:
+                if st.settling or st.clean_samples < hold:
                     continue
             if now < st.overrun_until:
                 st.data_status, st.data_fault = "overrun", ""
