@@ -22,6 +22,8 @@ from threadpoolctl import threadpool_limits
 
 from .alarms import AlarmEngine, AlarmEvent, rules_from_config
 from .api import create_app
+from .api.edge import head_timeout_protocol
+from .api.stream import revoke_sessions
 from .config import (
     Config,
     ConfigError,
@@ -291,6 +293,12 @@ class Service:
         self.cfg = self.cfg.model_copy(update={"alarms": new.alarms, "tokens": new.tokens})
         if self.http_app is not None:
             self.http_app.state.config = self.cfg
+            # token changes hold at once: the gate reads the new config on every request,
+            # and live WebSocket sessions whose token went away or was demoted are closed
+            revoked = revoke_sessions(self.http_app.state, self.cfg)
+            if revoked:
+                log.info("reload: closed %d stream sessions (token withdrawn or demoted)",
+                         revoked)
         try:
             await asyncio.wrap_future(self.store.put_events([], alarm_state=self.alarms.snapshot()))
         except Exception as err:  # the store failing must not undo the reload
@@ -455,12 +463,24 @@ async def serve(
     (``gc.freeze``), see :func:`_freeze_start_up_heap`."""
     host, port = parse_listen(cfg.service.listen)
     service = Service(cfg, config_path)
+    svc = cfg.service
     config = uvicorn.Config(
         service.app(), host=host, port=port, log_level="warning", access_log=False,
         lifespan="on",
         # float32 spectra barely compress, and deflating them for each client was the
         # stream's largest cost (quaver bench --service: ~820 vs ~420 messages/s)
         ws_per_message_deflate=False,
+        # The edge (README "HTTP edge"): h11 with a request-head time-out (uvicorn has none),
+        # at most max_connections at once (503 beyond), idle keep-alive closed, a request
+        # head at most 16 KiB (h11_max_incomplete_event_size: uvicorn's default, stated),
+        # WebSocket messages at most 64 KiB before the stream's own 4 KiB check.
+        http=head_timeout_protocol(svc.header_timeout_s),
+        limit_concurrency=svc.max_connections,
+        timeout_keep_alive=svc.keep_alive_s,  # type: ignore[arg-type]
+        h11_max_incomplete_event_size=16 * 1024,
+        ws_max_size=64 * 1024,
+        ssl_certfile=svc.tls_cert,
+        ssl_keyfile=svc.tls_key,
     )
     server = uvicorn.Server(config)
     # SIGINT/SIGTERM ask for a graceful stop (the lifespan stops the pipelines and closes
@@ -489,7 +509,8 @@ async def serve(
         await asyncio.sleep(0.02)
     if server.started:
         announce(
-            f"quaver: {len(service.hub.channels)} channels; open http://{host}:{port}/ "
+            f"quaver: {len(service.hub.channels)} channels; open "
+            f"{'https' if svc.tls_cert else 'http'}://{host}:{port}/ "
             f"(API under /api/v1, docs at /docs); Ctrl-C stops"
         )
         if freeze_heap:

@@ -9,9 +9,9 @@ from contextlib import asynccontextmanager
 from pathlib import Path
 from typing import Any
 
-from fastapi import FastAPI, Request
+from fastapi import FastAPI
 from fastapi.middleware.cors import CORSMiddleware
-from fastapi.responses import FileResponse, JSONResponse
+from fastapi.responses import FileResponse
 from fastapi.staticfiles import StaticFiles
 
 import web
@@ -19,7 +19,19 @@ import web
 from .. import __version__
 from ..config import Config
 from ..hub import Hub
-from . import admin, alarms, channels, health, metrics, security, stream, trends, windows
+from . import (
+    admin,
+    alarms,
+    channels,
+    docs,
+    edge,
+    health,
+    metrics,
+    security,
+    stream,
+    trends,
+    windows,
+)
 
 
 def create_app(
@@ -50,12 +62,18 @@ def create_app(
         description="Machinery vibration monitoring: spectra, bands, tones and alarms. "
         "A monitoring aid, not a machine-protection or safety system.",
         lifespan=lifespan,
+        docs_url=None,  # docs.mount: the same pages from installed assets, no CDN
+        redoc_url=None,
     )
     app.state.hub = hub
     app.state.config = config
     app.state.service = service
     app.state.alarms = getattr(service, "alarms", None)
     app.state.store = getattr(service, "store", None)
+    # Outermost first: CORS answers preflights (they carry no token), then the access gate
+    # (Host/Origin, tokens), then the body limit.
+    app.add_middleware(edge.BodyLimit)
+    app.add_middleware(security.AccessGate)
     if config.service.cors_origins:
         app.add_middleware(
             CORSMiddleware,
@@ -63,18 +81,6 @@ def create_app(
             allow_methods=["GET", "POST"],
             allow_headers=["Authorization", "Content-Type"],
         )
-    limit = config.service.max_body_bytes
-
-    @app.middleware("http")
-    async def body_limit(request: Request, call_next: Any) -> Any:
-        declared = request.headers.get("content-length")
-        if declared is not None and (not declared.isdigit() or int(declared) > limit):
-            return JSONResponse({"detail": f"request body over {limit} bytes"}, status_code=413)
-        if declared is None and request.method in ("POST", "PUT", "PATCH"):
-            body = await request.body()  # chunked: read (bounded by the server) and check
-            if len(body) > limit:
-                return JSONResponse({"detail": f"request body over {limit} bytes"}, status_code=413)
-        return await call_next(request)
 
     app.include_router(health.router, prefix="/api/v1")
     app.include_router(channels.router, prefix="/api/v1")
@@ -84,7 +90,7 @@ def create_app(
     app.include_router(trends.router, prefix="/api/v1")
     app.include_router(admin.router, prefix="/api/v1")
     app.include_router(metrics.router)
-    app.state.check_websocket = security.check_websocket
+    docs.mount(app)
     web_dir = Path(web.__file__).parent  # the installed package's files, not the working dir
     app.mount("/static", StaticFiles(directory=web_dir), name="static")
 

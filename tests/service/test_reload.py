@@ -25,6 +25,7 @@ from tests.service.conftest import (
     one_band_config,
     run_service,
     to_toml,
+    with_harness_token,
 )
 
 LOOPBACK = "127.0.0.1"
@@ -61,11 +62,14 @@ def rewrite(svc: RunningService, **changes: Any) -> None:
     written = tomllib.loads(svc.config_path.read_text(encoding="utf-8"))
     doc = {**copy.deepcopy(CONFIG), "service": written["service"], "sources": written["sources"]}
     doc.update(copy.deepcopy(changes))
+    if doc.get("tokens"):
+        doc["tokens"] = with_harness_token(doc["tokens"])
     svc.config_path.write_text(to_toml(doc), encoding="utf-8")
 
 
 def reload(svc: RunningService, who: str | None = "ada") -> httpx.Response:
-    return svc.client.post("/api/v1/admin/reload", headers=auth(who) if who else None)
+    return svc.client.post("/api/v1/admin/reload",
+                           headers=auth(who) if who else {"Authorization": ""})
 
 
 def alarm(svc: RunningService) -> dict[str, Any]:
@@ -89,7 +93,8 @@ def test_new_levels_apply_live_and_the_alarm_keeps_its_state(svc: RunningService
     assert r.status_code == 200, r.text
     body = r.json()
     assert body["alarm_rules"] == {"added": [], "changed": ["a.band.b"], "removed": []}
-    assert (body["by"], body["tokens"], body["active_alarms_dropped"]) == ("ada", 2, [])
+    # three tokens: ada, otto and the harness's viewer (conftest.with_harness_token)
+    assert (body["by"], body["tokens"], body["active_alarms_dropped"]) == ("ada", 3, [])
     a = alarm(svc)
     # the rule keeps its state (still active) and now holds the new levels
     assert (a["state"], a["alert"], a["danger"]) == ("alert", 0.4, 0.55)
@@ -164,7 +169,7 @@ def test_the_demo_has_no_file_to_reload(tmp_path: Path) -> None:
     cfg = demo_config(data_dir=str(tmp_path))
     admin = {"name": "root", "role": "admin", "sha256": hashlib.sha256(b"adm").hexdigest()}
     cfg = cfg.model_copy(update={"tokens": [*cfg.tokens, type(cfg.tokens[0])(**admin)]})
-    with TestClient(Service(cfg).app()) as client:
+    with TestClient(Service(cfg).app(), base_url="http://127.0.0.1") as client:
         r = client.post("/api/v1/admin/reload", headers={"Authorization": "Bearer adm"})
         assert r.status_code == 409 and "without a config file" in r.json()["detail"]
         r = client.post("/api/v1/admin/reload",
