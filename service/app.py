@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import copy
 import functools
 import gc
 import logging
@@ -20,7 +21,7 @@ from typing import Any
 import uvicorn
 from threadpoolctl import threadpool_limits
 
-from .alarms import AlarmEngine, AlarmEvent, rules_from_config
+from .alarms import AckRefused, AlarmEngine, AlarmEvent, UnknownAlarm, rules_from_config
 from .api import create_app
 from .api.edge import head_timeout_protocol
 from .api.stream import revoke_sessions
@@ -369,9 +370,12 @@ class Service:
                 self.store.put_events(evs, alarm_state=self.alarms.snapshot())
             )
         except Exception as err:  # the store failing must not stop monitoring
+            # Nothing is announced that is not committed (README: "events are committed to
+            # the store before they are announced"): the alarm states stay visible through
+            # /alarms and /metrics, and /health says the store is failing.
             self.store_errors += 1
-            log.error("could not store %d alarm events: %s", len(evs), err)
-            stored = evs
+            log.error("could not store %d alarm events (not announced): %s", len(evs), err)
+            return
         for e, (_, frame) in zip(stored, events, strict=True):
             log.info("alarm event %s: %s", e.id, e.message)
             self.hub.publish_event(e.as_dict())
@@ -404,10 +408,25 @@ class Service:
             self.store.put_evidence(ev.event_id, ev.spectrum, ev.waveform, ev.fs, ev.t0_ns)
 
     async def acknowledge(self, rule: str, who: str, note: str) -> dict[str, object]:
-        ev = self.alarms.ack(rule, who, note, t_ns=time.time_ns())
-        stored = await asyncio.wrap_future(
-            self.store.put_events([ev], alarm_state=self.alarms.snapshot())
-        )
+        """Acknowledge ``rule``: the ack event and the alarm state after it are committed
+        first, and only then applied in memory and announced. A store that fails raises
+        :class:`StoreError` and leaves the alarm as it was (the API answers 503), so a retry
+        is not refused as "already acknowledged" and a restart loses nothing announced."""
+        t_ns = time.time_ns()
+        trial = copy.deepcopy(self.alarms)  # the ack on a copy: its event and state after
+        ev = trial.ack(rule, who, note, t_ns=t_ns)  # raises UnknownAlarm / AckRefused
+        try:
+            stored = await asyncio.wrap_future(
+                self.store.put_events([ev], alarm_state=trial.snapshot())
+            )
+        except Exception as err:
+            self.store_errors += 1
+            log.error("acknowledgement of %s by %s not stored, not applied: %s", rule, who, err)
+            raise StoreError(f"the store cannot write ({err}); nothing was acknowledged") from err
+        try:
+            self.alarms.ack(rule, who, note, t_ns=t_ns)
+        except (AckRefused, UnknownAlarm) as err:  # changed while committing (rare): logged
+            log.warning("acknowledgement of %s stored but no longer applies: %s", rule, err)
         d = stored[0].as_dict()
         log.info("alarm %s acknowledged by %s", rule, who)
         self.hub.publish_event(d)

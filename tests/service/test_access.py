@@ -260,3 +260,51 @@ def test_the_table_off_loopback_in_a_network_namespace() -> None:
     assert r.returncode == 0, r.stdout[-3000:] + r.stderr[-2000:]
     # the three tables, the refusal and the details check; this test itself skips inside
     assert "5 passed, 1 skipped" in r.stdout, r.stdout[-1500:]
+
+
+def test_a_chunked_body_is_refused_at_the_limit_not_after_it(
+    without_tokens: RunningService,
+) -> None:
+    """Issue 15 item 8: a chunked body used to be read whole before the 413. Chunks of 64 KiB
+    go out until the service answers; it must answer 413 after about max_body_bytes (64 KiB
+    by default), not after the 64 MiB offered."""
+    chunk = b"x" * 65536
+    sent = 0
+    with socket.create_connection((LOOPBACK, without_tokens.http_port), timeout=10) as s:
+        s.sendall(f"POST /api/v1/alarms/a.band.b/ack HTTP/1.1\r\nHost: {LOOPBACK}\r\n"
+                  "Content-Type: application/json\r\nTransfer-Encoding: chunked\r\n\r\n"
+                  .encode())
+        s.settimeout(0.2)
+        answer = b""
+        for _ in range(1024):  # at most 64 MiB
+            try:
+                s.sendall(b"%x\r\n%s\r\n" % (len(chunk), chunk))
+                sent += len(chunk)
+                answer += s.recv(4096)
+            except TimeoutError:
+                continue
+            except OSError:
+                break
+            if answer:
+                break
+        s.settimeout(10)
+        while b"\r\n\r\n" not in answer:
+            more = s.recv(4096)
+            if not more:
+                break
+            answer += more
+    assert answer.startswith(b"HTTP/1.1 413"), answer[:200]
+    assert sent <= 16 * len(chunk), sent  # a few socket buffers' worth, not the 64 MiB
+
+
+def test_a_request_head_that_never_ends_is_cut_off(tmp_path: Path) -> None:
+    """Issue 15 item 8 (slowloris): a head that trickles in is closed after header_timeout_s."""
+    doc = one_band_config()
+    doc["service"] = {"header_timeout_s": 0.5}
+    with run_service(doc, tmp_path) as svc, socket.create_connection(
+        (LOOPBACK, svc.http_port), timeout=10
+    ) as s:
+        s.sendall(b"GET /api/v1/health/live HTTP/1.1\r\nHost: 127.0.0.1\r\n")
+        s.settimeout(10)  # bounded: the service must close first
+        closed = s.recv(1) == b""  # EOF: the service closed it, and sent nothing
+    assert closed

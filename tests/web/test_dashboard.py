@@ -56,7 +56,10 @@ def readout_hz(text: str) -> float:
 
 
 def open_page(pg: Any, url: str) -> None:
+    """Open the dashboard and wait until it has signed in and mounted its view (web/main.js
+    init sets window.quaver once the service accepted the session's token)."""
     pg.goto(url, wait_until="domcontentloaded")
+    pg.wait_for_function("window.quaver !== undefined", timeout=15000)
 
 
 def cards_filled(pg: Any) -> bool:
@@ -597,7 +600,7 @@ def test_sign_in_ack_with_the_operator_token_and_sign_out(
     sockets: list[Any] = []
     pg.on("websocket", lambda ws: sockets.append(ws))
     try:
-        open_page(pg, svc.base_url + "/")
+        pg.goto(svc.base_url + "/", wait_until="domcontentloaded")
         pg.wait_for_selector("#dlg-signin[open]")
         assert "asks for a token" in pg.inner_text("#signin-why")
         assert not pg.is_visible("#who")
