@@ -15,7 +15,16 @@ import numpy as np
 import pytest
 import scipy.signal
 
-from tests.web.conftest import OPERATOR_TOKEN, VIEWER_TOKEN, PageLog, Service, screenshot, wait_for
+from tests.web.conftest import (
+    DEMO_TOKEN,
+    OPERATOR_TOKEN,
+    VIEWER_TOKEN,
+    PageLog,
+    Service,
+    screenshot,
+    signed_in_as,
+    wait_for,
+)
 
 pytestmark = pytest.mark.browser
 
@@ -399,6 +408,7 @@ window.WebSocket = class {
 def test_falls_back_to_polling_without_a_socket(demo: Service, browser: Any) -> None:
     """When the stream cannot open, the page says so and keeps the spectrum live over REST."""
     pg = browser.new_page()
+    signed_in_as(pg, DEMO_TOKEN)
     errors: list[str] = []
     pg.on("pageerror", lambda e: errors.append(str(e)))
     try:
