@@ -93,8 +93,9 @@ export function mount(root, ctx) {
     channels: fillChannels,
     "alarm-event": () => load(),
     features: () => load(),
+    // events arrive pushed over the stream ("alarm-event"); poll only while it is down
     tick: () => {
-      if (!(n++ % 5)) load();
+      if (!ctx.live.wsOpen && !(n++ % 5)) load();
     },
   };
   for (const [k, f] of Object.entries(on)) ctx.app.addEventListener(k, f);

@@ -690,3 +690,56 @@ def test_event_log_and_evidence(own_service: Any, page: tuple[Any, PageLog]) -> 
     assert svc.client.get(links[0]).status_code == 200
     screenshot(pg, "evidence")
     assert not log.errors, log.errors
+
+
+def test_live_alarm_push_arrives_without_polling(
+    own_service: Any, page: tuple[Any, PageLog]
+) -> None:
+    """Issue 15 item 6: stream alarm messages carried the event's kind ("transition", "ack")
+    instead of "alarm", so the page never heard them and polled /events every 5 s. Now the
+    events page asks /events only after an alarm message arrives: an acknowledgement made
+    elsewhere shows up in its table, and no /events request came before the push."""
+    svc: Service = own_service(speed=6.0)
+    svc.wait_all_channels()
+    active = wait_for(lambda: svc.get("alarms"), "an alarm from the demo's growing fault", 50)
+    pg, log = page
+    seen: list[tuple[str, Any]] = []  # in arrival order: ("push", event) / ("poll", url)
+
+    def on_ws(ws: Any) -> None:
+        def frame(payload: Any) -> None:
+            if isinstance(payload, str):
+                m = json.loads(payload)
+                if m["kind"] == "alarm":
+                    seen.append(("push", m))
+
+        ws.on("framereceived", frame)
+
+    pg.on("websocket", on_ws)
+    pg.on("request", lambda r: "/api/v1/events" in r.url and seen.append(("poll", r.url)))
+    open_page(pg, svc.base_url + "/#/events")
+    wait_for(lambda: pg.get_attribute("#conn", "data-conn") == "live", "the live stream")
+    pg.wait_for_selector("tr[data-event]", timeout=15000)
+    pg.wait_for_load_state("networkidle")  # the first loads are done
+    seen.clear()
+    pg.wait_for_timeout(6000)  # longer than the old 5 s poll
+    assert_fetched_only_after_a_push(seen)
+    seen.clear()
+    unacked = next(a for a in active if not a.get("acked"))
+    r = svc.client.post(f"/api/v1/alarms/{unacked['rule']}/ack", json={"note": "web push"})
+    assert r.status_code == 200, r.text  # the demo harness token is its operator's
+    ev = r.json()
+    pg.wait_for_selector(f'tr[data-event="{ev["id"]}"]', timeout=15000)
+    pushes = [m for kind, m in seen if kind == "push"]
+    assert any(m["id"] == ev["id"] and m["event_kind"] == "ack" for m in pushes), pushes
+    assert_fetched_only_after_a_push(seen)
+    assert not log.errors, log.errors
+
+
+def assert_fetched_only_after_a_push(seen: list[tuple[str, Any]]) -> None:
+    """Each /events request in ``seen`` answers an alarm message before it: at every point
+    there have been at least as many messages as requests (a poll would be one extra)."""
+    pushes = polls = 0
+    for kind, what in seen:
+        pushes += kind == "push"
+        polls += kind == "poll"
+        assert polls <= pushes, f"/events asked with no alarm message to answer: {what}"
