@@ -10,6 +10,7 @@ import hashlib
 import math
 import signal
 import socket
+import ssl
 import subprocess
 import sys
 import time
@@ -288,9 +289,12 @@ def run_service(
                 wrap(command) if wrap is not None else command,
                 cwd=workdir, env=child_env(), stdout=log, stderr=subprocess.STDOUT,
             )
-        base_url = f"http://{LOOPBACK}:{http_port}"
+        cert = service.get("tls_cert")  # HTTPS: the client trusts exactly that certificate
+        base_url = f"{'https' if cert else 'http'}://{LOOPBACK}:{http_port}"
         headers = {"Authorization": f"Bearer {HARNESS_TOKEN}"} if full.get("tokens") else None
-        client = httpx.Client(base_url=base_url, timeout=10.0, trust_env=False, headers=headers)
+        verify: Any = ssl.create_default_context(cafile=cert) if cert else True
+        client = httpx.Client(base_url=base_url, timeout=10.0, trust_env=False, headers=headers,
+                              verify=verify)
         svc = RunningService(proc, base_url, http_port, ports, config_path, log_path, client)
         try:
             up = _wait_up(svc)

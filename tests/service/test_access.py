@@ -308,3 +308,105 @@ def test_a_request_head_that_never_ends_is_cut_off(tmp_path: Path) -> None:
         s.settimeout(10)  # bounded: the service must close first
         closed = s.recv(1) == b""  # EOF: the service closed it, and sent nothing
     assert closed
+
+
+def _self_signed(folder: Path) -> tuple[Path, Path]:
+    """A certificate for 127.0.0.1 (IP SAN) and its key, made here (cryptography.x509)."""
+    import datetime as dt
+    import ipaddress
+
+    from cryptography import x509
+    from cryptography.hazmat.primitives import hashes, serialization
+    from cryptography.hazmat.primitives.asymmetric import ec
+    from cryptography.x509.oid import NameOID
+
+    key = ec.generate_private_key(ec.SECP256R1())
+    name = x509.Name([x509.NameAttribute(NameOID.COMMON_NAME, "quaver test")])
+    now = dt.datetime.now(dt.UTC)
+    cert = (
+        x509.CertificateBuilder().subject_name(name).issuer_name(name)
+        .public_key(key.public_key()).serial_number(x509.random_serial_number())
+        .not_valid_before(now - dt.timedelta(minutes=5))
+        .not_valid_after(now + dt.timedelta(days=1))
+        .add_extension(x509.SubjectAlternativeName(
+            [x509.IPAddress(ipaddress.ip_address(LOOPBACK))]), critical=False)
+        .add_extension(x509.BasicConstraints(ca=True, path_length=None), critical=True)
+        .sign(key, hashes.SHA256())
+    )
+    cert_path, key_path = folder / "cert.pem", folder / "key.pem"
+    cert_path.write_bytes(cert.public_bytes(serialization.Encoding.PEM))
+    key_path.write_bytes(key.private_bytes(serialization.Encoding.PEM,
+                                           serialization.PrivateFormat.PKCS8,
+                                           serialization.NoEncryption()))
+    return cert_path, key_path
+
+
+def test_tls_serves_https_and_wss(tmp_path: Path) -> None:
+    """Issue 15: service.tls_cert/tls_key serve HTTPS and WSS (uvicorn's ssl_certfile)."""
+    import ssl
+
+    cert, key = _self_signed(tmp_path)
+    doc = one_band_config(tokens=TOKENS_CFG)
+    doc["service"] = {"tls_cert": str(cert), "tls_key": str(key)}
+    with run_service(doc, tmp_path / "svc") as svc:
+        assert svc.base_url.startswith("https://")
+        auth = {"Authorization": f"Bearer {PLAIN['viewer'][2]}"}
+        r = svc.client.get("/api/v1/channels", headers=auth)
+        assert r.status_code == 200 and [c["id"] for c in r.json()] == ["a"]
+        assert svc.client.get("/api/v1/channels", headers={"Authorization": ""}).status_code == 401
+        ctx = ssl.create_default_context(cafile=str(cert))
+        url = f"wss://{LOOPBACK}:{svc.http_port}/api/v1/stream"
+        with ws_connect(url, ssl=ctx, additional_headers=auth, open_timeout=10) as ws:
+            assert json.loads(ws.recv(timeout=10))["kind"] == "hello"
+        with pytest.raises(httpx.RemoteProtocolError):  # plain HTTP is not answered
+            httpx.get(f"http://{LOOPBACK}:{svc.http_port}/api/v1/health/live", timeout=10,
+                      trust_env=False)
+
+
+def test_connections_beyond_max_connections_get_503(tmp_path: Path) -> None:
+    """Issue 15 item 8: 2000 held connections were all kept. Beyond max_connections a request
+    gets 503 (uvicorn limit_concurrency); once the held ones go, it is served again."""
+    doc = one_band_config()
+    doc["service"] = {"max_connections": 4}
+    with run_service(doc, tmp_path) as svc:
+        url = "/api/v1/health/live"
+        held = [socket.create_connection((LOOPBACK, svc.http_port), timeout=10)
+                for _ in range(4)]
+        try:
+            with httpx.Client(base_url=svc.base_url, timeout=10, trust_env=False) as c:
+                r = c.get(url)
+            assert r.status_code == 503, r.text
+        finally:
+            for s in held:
+                s.close()
+        for _ in range(100):  # the server notices the closes; bounded
+            with httpx.Client(base_url=svc.base_url, timeout=10, trust_env=False) as c:
+                r = c.get(url)
+            if r.status_code == 200:
+                break
+        assert r.status_code == 200 and r.json() == {"status": "ok"}
+
+
+def test_a_foreign_host_is_refused_on_http_and_websocket(without_tokens: RunningService) -> None:
+    """Issue 15 item 3 (DNS rebinding): Host and Origin both naming another host got 200 and
+    a WebSocket hello, with reads open on loopback. Now 400 / 1008."""
+    evil = "rebind.example"
+    with httpx.Client(base_url=without_tokens.base_url, timeout=10, trust_env=False) as c:
+        r = c.get("/api/v1/channels", headers={"Host": f"{evil}:{without_tokens.http_port}"})
+        assert r.status_code == 400 and r.json()["detail"] == (
+            f"host {evil!r} is not in service.allowed_hosts"
+        )
+        ok = c.get("/api/v1/channels", headers={"Host": f"localhost:{without_tokens.http_port}"})
+        assert ok.status_code == 200
+        r = c.get("/api/v1/channels", headers={"Origin": f"http://{evil}"})
+        assert r.status_code == 403 and r.json()["detail"] == "origin not allowed"
+    # the socket goes to 127.0.0.1; the URL (so Host and Origin) names the rebinding host
+    url = f"ws://{evil}:{without_tokens.http_port}/api/v1/stream"
+    sock = socket.create_connection((LOOPBACK, without_tokens.http_port), timeout=10)
+    with ws_connect(url, sock=sock, open_timeout=10,
+                    origin=f"http://{evil}:{without_tokens.http_port}") as ws:  # type: ignore[arg-type]
+        with pytest.raises(ConnectionClosed) as e:
+            ws.recv(timeout=10)
+    assert e.value.rcvd is not None
+    assert (e.value.rcvd.code, e.value.rcvd.reason) == (
+        1008, f"host {evil!r} is not in service.allowed_hosts")
