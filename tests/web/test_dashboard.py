@@ -743,3 +743,31 @@ def assert_fetched_only_after_a_push(seen: list[tuple[str, Any]]) -> None:
         pushes += kind == "push"
         polls += kind == "poll"
         assert polls <= pushes, f"/events asked with no alarm message to answer: {what}"
+
+
+def test_no_page_asks_anything_beyond_the_service(demo: Service, page: tuple[Any, PageLog]) -> None:
+    """Issue 15 item 10: /docs was blank without internet (Swagger UI from a CDN) and /redoc
+    fetched web fonts. Every page — the dashboard's views and both API docs — now renders
+    with each request going to the service itself (the browser context refuses anything
+    else, so a stray request would also leave a page half drawn)."""
+    pg, log = page
+    base = demo.base_url
+    asked: list[str] = []
+    pg.on("request", lambda r: asked.append(r.url))
+    for path in ("/", "/#/events", "/#/channel/p1-de-h"):
+        open_page(pg, base + path)
+        pg.wait_for_load_state("networkidle")
+    pg.goto(base + "/docs", wait_until="domcontentloaded")
+    pg.wait_for_selector(".swagger-ui .info .title", timeout=15000)
+    assert "quaver" in pg.inner_text(".swagger-ui .info .title")
+    # the operations: the spec was read with the kept token
+    pg.wait_for_selector(".opblock-summary-path", timeout=15000)
+    pg.goto(base + "/redoc", wait_until="domcontentloaded")
+    pg.wait_for_selector("#redoc h1", timeout=30000)
+    assert "quaver" in pg.inner_text("#redoc h1")
+    pg.wait_for_load_state("networkidle")
+    outside = [u for u in asked if not (u.startswith(base + "/") or u.startswith("data:")
+                                         or u.startswith("blob:"))]
+    assert outside == [], outside
+    assert any(u.startswith(base + "/docs-assets/") for u in asked)
+    assert not log.errors, log.errors
