@@ -4,14 +4,17 @@ Reads the hub only; never reaches into sources or engines."""
 
 from __future__ import annotations
 
+import math
 from collections.abc import AsyncIterator, Callable
 from contextlib import asynccontextmanager
 from pathlib import Path
 from typing import Any
 
-from fastapi import FastAPI
+from fastapi import FastAPI, Request
+from fastapi.encoders import jsonable_encoder
+from fastapi.exceptions import RequestValidationError
 from fastapi.middleware.cors import CORSMiddleware
-from fastapi.responses import FileResponse
+from fastapi.responses import FileResponse, JSONResponse
 from fastapi.staticfiles import StaticFiles
 
 import web
@@ -82,6 +85,13 @@ def create_app(
             allow_headers=["Authorization", "Content-Type"],
         )
 
+    @app.exception_handler(RequestValidationError)
+    async def invalid_request(request: Request, exc: RequestValidationError) -> JSONResponse:
+        # FastAPI's own shape ({"detail": [{loc, msg, type, input?}]}), but a value JSON
+        # cannot carry (a body number like 1e999 parses to inf) is given as its text: the
+        # default handler failed to encode it and answered 500.
+        return JSONResponse({"detail": [_json_safe(e) for e in exc.errors()]}, 422)
+
     app.include_router(health.router, prefix="/api/v1")
     app.include_router(channels.router, prefix="/api/v1")
     app.include_router(stream.router, prefix="/api/v1")
@@ -99,3 +109,24 @@ def create_app(
         return FileResponse(web_dir / "index.html", media_type="text/html")
 
     return app
+
+
+def _json_safe(error: Any) -> dict[str, Any]:
+    """One validation error with its ``input``/``ctx`` made JSON-safe (non-finite floats
+    and anything else JSON cannot hold become their text)."""
+    out: dict[str, Any] = {k: error[k] for k in ("type", "loc", "msg") if k in error}
+    for key in ("input", "ctx"):
+        if key in error:
+            out[key] = _finite(jsonable_encoder(error[key], custom_encoder={
+                BaseException: str}))
+    return out
+
+
+def _finite(v: Any) -> Any:
+    if isinstance(v, float) and not math.isfinite(v):
+        return str(v)
+    if isinstance(v, dict):
+        return {k: _finite(x) for k, x in v.items()}
+    if isinstance(v, list):
+        return [_finite(x) for x in v]
+    return v

@@ -44,6 +44,7 @@ def list_alarms(
     summary="Acknowledge an alarm (operator role)",
     responses={
         **role_responses("operator"),
+        400: {"description": "the body could not be read as UTF-8 text"},
         404: {"description": "no such alarm rule"},
         409: {"description": "the alarm is not active or already acknowledged"},
         503: {"description": "the store cannot write; nothing was acknowledged (retry later)"},

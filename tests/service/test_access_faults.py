@@ -136,3 +136,18 @@ def test_depth_is_counted_outside_strings() -> None:
     assert not json_depth_over("[" * 8 + "]" * 8, 8)
     assert not json_depth_over(json.dumps({"subscribe": {"channels": ["[[[[[[[[[["]}}), 8)
     assert not json_depth_over(json.dumps({"a": ["\\\"[[[[[[[[[[["]}), 8)
+
+
+@pytest.mark.parametrize(("body", "shown"), [(b"1e999999", "inf"), (b'{"note": NaN}', "nan")])
+def test_a_body_number_json_cannot_hold_is_422_not_500(
+    tmp_path: Path, body: bytes, shown: str
+) -> None:
+    """A body like 1e999999 parses to inf; FastAPI's own 422 could not encode it and the
+    service answered 500. Now 422 in FastAPI's shape, the value given as its text."""
+    svc = Service(demo_config(data_dir=str(tmp_path)))
+    with TestClient(svc.app(), base_url=BASE, raise_server_exceptions=False) as client:
+        r = client.post("/api/v1/alarms/x/ack", content=body, headers={
+            "Authorization": f"Bearer {OPERATOR}", "Content-Type": "application/json"})
+    assert r.status_code == 422, r.text
+    (err,) = r.json()["detail"]
+    assert err["input"] == shown and err["loc"][0] == "body"
