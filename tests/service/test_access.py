@@ -66,6 +66,7 @@ ROUTES: list[tuple[str, str, str]] = [
     ("GET", "/docs", "public"),
     ("GET", "/redoc", "public"),
     ("GET", "/docs-assets/swagger-ui.css", "public"),
+    ("GET", "/docs-assets/redoc.standalone.js", "public"),
     ("GET", "/openapi.json", "read"),
     ("GET", "/metrics", "metrics"),
     ("GET", "/api/v1/health", "read"),
@@ -86,7 +87,8 @@ ROUTES: list[tuple[str, str, str]] = [
     ("WS", "/api/v1/stream", "ws"),
 ]
 ROUTE_TEMPLATES = {  # the app's path templates the ROUTES above stand for
-    "/api/v1/health/live", "/", "/static", "/docs", "/redoc", "/docs-assets", "/openapi.json",
+    "/api/v1/health/live", "/", "/static", "/docs", "/redoc", "/docs-assets",
+    "/docs-assets/redoc.standalone.js", "/openapi.json",
     "/metrics", "/api/v1/health", "/api/v1/session", "/api/v1/channels",
     "/api/v1/channels/{channel_id}", "/api/v1/channels/{channel_id}/spectrum",
     "/api/v1/channels/{channel_id}/bands", "/api/v1/channels/{channel_id}/tones",

@@ -15,9 +15,10 @@ from typing import Any
 
 import pytest
 from fastapi.testclient import TestClient
+from starlette.websockets import WebSocketDisconnect
 
 from service.alarms import AlarmEvent
-from service.api.stream import MAX_DEPTH, json_depth_over
+from service.api.stream import MAX_DEPTH, MAX_MESSAGE_BYTES, json_depth_over
 from service.app import Service, demo_config
 from service.store import StoreError
 
@@ -98,6 +99,17 @@ def test_stream_alarm_messages_keep_kind_alarm(tmp_path: Path) -> None:
                     break
             assert m["kind"] == "alarm" and m["event_kind"] == "ack"
             assert m["id"] == r.json()["id"] and m["rule"] == rule
+            _closed_for_size(ws)
+
+
+def _closed_for_size(ws: Any) -> None:
+    """Send a message over the stream's size bound: the server closes with 1009. (Ending the
+    session from the server side also lets the test client leave without racing the app.)"""
+    ws.send_text(json.dumps({"subscribe": {"channels": ["x" * MAX_MESSAGE_BYTES]}}))
+    with pytest.raises(WebSocketDisconnect) as e:
+        for _ in range(100):
+            ws.receive_json()
+    assert (e.value.code, e.value.reason) == (1009, f"message over {MAX_MESSAGE_BYTES} bytes")
 
 
 @pytest.mark.parametrize(
@@ -129,6 +141,7 @@ def test_a_bad_subscription_gets_an_error_and_the_session_goes_on(
                 if m["kind"] == "error":
                     break
             assert m["reason"] == f"message nested deeper than {MAX_DEPTH}"
+            _closed_for_size(ws)
 
 
 def test_depth_is_counted_outside_strings() -> None:
