@@ -1292,8 +1292,11 @@ class _Checker:
                 self.add(f"tokens[{j}].name: {t.name!r} repeats tokens[{seen[t.name]}]")
             seen.setdefault(t.name, j)
         svc = self.cfg.service
-        if (svc.tls_cert is None) != (svc.tls_key is None):
-            self.add("service.tls_cert and service.tls_key go together: give both or neither")
+        if svc.tls_cert is not None and svc.tls_key is None:
+            self.add("service.tls_key: missing; tls_cert needs its key (give both or neither)")
+        if svc.tls_key is not None and svc.tls_cert is None:
+            self.add("service.tls_cert: missing; tls_key needs its certificate (give both or "
+                     "neither)")
 
 
 def _cross_check(cfg: Config) -> list[str]:
