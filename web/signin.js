@@ -1,7 +1,7 @@
 // Signing in: the token prompt when the service asks for one, "signed in as <name> (role)"
 // and sign-out in the header. Knows the token store and /session; no view or plot.
 
-import { ApiError, token, whoAmI } from "./api.js";
+import { ApiError, askSignIn, authHeaders, token, whoAmI } from "./api.js";
 
 let shown = false;
 
@@ -16,6 +16,7 @@ export async function signIn() {
   });
   window.addEventListener("quaver-signin", (e) => prompt(e.detail?.reason));
   dlg.addEventListener("cancel", (e) => e.preventDefault()); // no half-empty page behind it
+  document.addEventListener("click", openWithToken);
   window.addEventListener("quaver-token-changed", () => whoAmI().then(renderWho, () => {}));
   try {
     const me = await whoAmI();
@@ -66,4 +67,28 @@ function renderWho(me) {
   const signedIn = !!(me && me.name);
   el.hidden = !signedIn;
   document.getElementById("who-text").textContent = signedIn ? `signed in as ${me.name} (${me.role})` : "";
+}
+
+/** A plain link cannot carry the token: links marked `data-auth` (downloads, the health
+ *  page) are fetched with it and handed to the browser as a blob (saved or opened). */
+async function openWithToken(e) {
+  const a = e.target.closest("a[data-auth]");
+  if (!a || !token.get()) return; // without a token the service asks for none: a plain link
+  e.preventDefault();
+  const r = await fetch(a.href, { headers: authHeaders(), cache: "no-store" });
+  if (r.status === 401) {
+    askSignIn("The service asks for a token.");
+    return;
+  }
+  const url = URL.createObjectURL(await r.blob());
+  const tmp = document.createElement("a");
+  tmp.href = url;
+  if (a.hasAttribute("download")) {
+    const m = /filename="?([^";]+)"?/.exec(r.headers.get("content-disposition") || "");
+    tmp.download = m ? m[1] : a.href.split("/").pop().split("?")[0];
+  } else {
+    tmp.target = "_blank";
+  }
+  tmp.click();
+  setTimeout(() => URL.revokeObjectURL(url), 60000);
 }

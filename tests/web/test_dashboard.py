@@ -9,6 +9,7 @@ import json
 import math
 import struct
 import time
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -688,6 +689,11 @@ def test_event_log_and_evidence(own_service: Any, page: tuple[Any, PageLog]) -> 
     links = pg.eval_on_selector_all("#ev-downloads a", "e => e.map(a => a.getAttribute('href'))")
     assert any("format=wav" in h for h in links) and any("format=csv" in h for h in links)
     assert svc.client.get(links[0]).status_code == 200
+    # the demo asks for a token, which a plain link cannot carry: the page fetches it
+    with pg.expect_download() as got:
+        pg.click('#ev-downloads a[href*="format=wav"]')
+    wav = Path(got.value.path()).read_bytes()
+    assert wav[:4] == b"RIFF" and wav[8:12] == b"WAVE", wav[:16]
     screenshot(pg, "evidence")
     assert not log.errors, log.errors
 
