@@ -164,3 +164,22 @@ def test_a_body_number_json_cannot_hold_is_422_not_500(
     assert r.status_code == 422, r.text
     (err,) = r.json()["detail"]
     assert err["input"] == shown and err["loc"][0] == "body"
+
+
+def test_trend_step_is_rounded_up_to_the_stored_step(tmp_path: Path) -> None:
+    """Issue 15 item 11: a schema-valid step that was not a multiple of trend_step_s was 422;
+    it is now rounded up (the answer's step_s says which was used); since >= until stays
+    422, as the OpenAPI document says."""
+    svc = Service(demo_config(data_dir=str(tmp_path)))
+    base_step = svc.cfg.service.trend_step_s
+    auth = {"Authorization": f"Bearer {OPERATOR}"}
+    with TestClient(svc.app(), base_url=BASE) as client:
+        url = "/api/v1/channels/p1-de-h/trend"
+        r = client.get(url, params={"step": base_step + 1}, headers=auth)
+        assert r.status_code == 200, r.text
+        assert r.json()["step_s"] == 2 * base_step
+        r = client.get(url, params={"since": 10.0, "until": 10.0}, headers=auth)
+        assert r.status_code == 422
+        doc = client.get("/openapi.json", headers=auth).json()
+        says = doc["paths"]["/api/v1/channels/{channel_id}/trend"]["get"]["responses"]["422"]
+        assert "since not before until" in says["description"]
