@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import copy
 import functools
 import gc
 import logging
@@ -20,8 +21,10 @@ from typing import Any
 import uvicorn
 from threadpoolctl import threadpool_limits
 
-from .alarms import AlarmEngine, AlarmEvent, rules_from_config
+from .alarms import AckRefused, AlarmEngine, AlarmEvent, UnknownAlarm, rules_from_config
 from .api import create_app
+from .api.edge import head_timeout_protocol
+from .api.stream import revoke_sessions
 from .config import (
     Config,
     ConfigError,
@@ -291,6 +294,12 @@ class Service:
         self.cfg = self.cfg.model_copy(update={"alarms": new.alarms, "tokens": new.tokens})
         if self.http_app is not None:
             self.http_app.state.config = self.cfg
+            # token changes hold at once: the gate reads the new config on every request,
+            # and live WebSocket sessions whose token went away or was demoted are closed
+            revoked = revoke_sessions(self.http_app.state, self.cfg)
+            if revoked:
+                log.info("reload: closed %d stream sessions (token withdrawn or demoted)",
+                         revoked)
         try:
             await asyncio.wrap_future(self.store.put_events([], alarm_state=self.alarms.snapshot()))
         except Exception as err:  # the store failing must not undo the reload
@@ -361,9 +370,12 @@ class Service:
                 self.store.put_events(evs, alarm_state=self.alarms.snapshot())
             )
         except Exception as err:  # the store failing must not stop monitoring
+            # Nothing is announced that is not committed (README: "events are committed to
+            # the store before they are announced"): the alarm states stay visible through
+            # /alarms and /metrics, and /health says the store is failing.
             self.store_errors += 1
-            log.error("could not store %d alarm events: %s", len(evs), err)
-            stored = evs
+            log.error("could not store %d alarm events (not announced): %s", len(evs), err)
+            return
         for e, (_, frame) in zip(stored, events, strict=True):
             log.info("alarm event %s: %s", e.id, e.message)
             self.hub.publish_event(e.as_dict())
@@ -396,10 +408,25 @@ class Service:
             self.store.put_evidence(ev.event_id, ev.spectrum, ev.waveform, ev.fs, ev.t0_ns)
 
     async def acknowledge(self, rule: str, who: str, note: str) -> dict[str, object]:
-        ev = self.alarms.ack(rule, who, note, t_ns=time.time_ns())
-        stored = await asyncio.wrap_future(
-            self.store.put_events([ev], alarm_state=self.alarms.snapshot())
-        )
+        """Acknowledge ``rule``: the ack event and the alarm state after it are committed
+        first, and only then applied in memory and announced. A store that fails raises
+        :class:`StoreError` and leaves the alarm as it was (the API answers 503), so a retry
+        is not refused as "already acknowledged" and a restart loses nothing announced."""
+        t_ns = time.time_ns()
+        trial = copy.deepcopy(self.alarms)  # the ack on a copy: its event and state after
+        ev = trial.ack(rule, who, note, t_ns=t_ns)  # raises UnknownAlarm / AckRefused
+        try:
+            stored = await asyncio.wrap_future(
+                self.store.put_events([ev], alarm_state=trial.snapshot())
+            )
+        except Exception as err:
+            self.store_errors += 1
+            log.error("acknowledgement of %s by %s not stored, not applied: %s", rule, who, err)
+            raise StoreError(f"the store cannot write ({err}); nothing was acknowledged") from err
+        try:
+            self.alarms.ack(rule, who, note, t_ns=t_ns)
+        except (AckRefused, UnknownAlarm) as err:  # changed while committing (rare): logged
+            log.warning("acknowledgement of %s stored but no longer applies: %s", rule, err)
         d = stored[0].as_dict()
         log.info("alarm %s acknowledged by %s", rule, who)
         self.hub.publish_event(d)
@@ -455,12 +482,24 @@ async def serve(
     (``gc.freeze``), see :func:`_freeze_start_up_heap`."""
     host, port = parse_listen(cfg.service.listen)
     service = Service(cfg, config_path)
+    svc = cfg.service
     config = uvicorn.Config(
         service.app(), host=host, port=port, log_level="warning", access_log=False,
         lifespan="on",
         # float32 spectra barely compress, and deflating them for each client was the
         # stream's largest cost (quaver bench --service: ~820 vs ~420 messages/s)
         ws_per_message_deflate=False,
+        # The edge (README "HTTP edge"): h11 with a request-head time-out (uvicorn has none),
+        # at most max_connections at once (503 beyond), idle keep-alive closed, a request
+        # head at most 16 KiB (h11_max_incomplete_event_size: uvicorn's default, stated),
+        # WebSocket messages at most 64 KiB before the stream's own 4 KiB check.
+        http=head_timeout_protocol(svc.header_timeout_s),
+        limit_concurrency=svc.max_connections,
+        timeout_keep_alive=svc.keep_alive_s,  # type: ignore[arg-type]
+        h11_max_incomplete_event_size=16 * 1024,
+        ws_max_size=64 * 1024,
+        ssl_certfile=svc.tls_cert,
+        ssl_keyfile=svc.tls_key,
     )
     server = uvicorn.Server(config)
     # SIGINT/SIGTERM ask for a graceful stop (the lifespan stops the pipelines and closes
@@ -489,7 +528,8 @@ async def serve(
         await asyncio.sleep(0.02)
     if server.started:
         announce(
-            f"quaver: {len(service.hub.channels)} channels; open http://{host}:{port}/ "
+            f"quaver: {len(service.hub.channels)} channels; open "
+            f"{'https' if svc.tls_cert else 'http'}://{host}:{port}/ "
             f"(API under /api/v1, docs at /docs); Ctrl-C stops"
         )
         if freeze_heap:

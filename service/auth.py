@@ -12,6 +12,7 @@ from dataclasses import dataclass
 from .config import TokenConfig
 
 ROLES = ("viewer", "operator", "admin")  # each role may do what the ones before it may
+# "metrics" (a scraper's token) stands outside that order: it may read /metrics only
 
 
 @dataclass(frozen=True)
@@ -20,6 +21,8 @@ class Principal:
     role: str
 
     def may(self, role: str) -> bool:
+        if self.role not in ROLES:
+            return False
         return ROLES.index(self.role) >= ROLES.index(role)
 
 

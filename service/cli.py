@@ -254,7 +254,9 @@ def cmd_demo(args: argparse.Namespace) -> int:
     def announce(s: str) -> None:
         print(s, flush=True)
         if token:
-            print(f"demo operator token (to acknowledge alarms): {token}", flush=True)
+            # the demo has [[tokens]], so its dashboard asks for one (README "Access")
+            print(f"demo operator token (sign in with it; it may acknowledge alarms): {token}",
+                  flush=True)
 
     return int(app.run_service(cfg, announce=announce))
 

@@ -87,7 +87,7 @@ Id = Annotated[str, Field(pattern=ID_PATTERN)]
 Name = Annotated[str, Field(min_length=1, max_length=64)]
 RawFormat = Literal["s16le", "s32le", "f32le", "f64le"]
 SourceKind = Literal["tcp", "udp", "file", "simulated"]
-Role = Literal["viewer", "operator", "admin"]
+Role = Literal["viewer", "operator", "admin", "metrics"]
 QUANTITY_OF_UNIT = {
     "g": "acceleration",
     "m/s2": "acceleration",
@@ -169,7 +169,44 @@ class ServiceSettings(_Model):
         "pages; empty = same origin only (CORS off).",
     )
     max_body_bytes: int = Field(
-        65536, ge=1024, le=16 * 2**20, description="Largest request body accepted, bytes."
+        65536,
+        ge=1024,
+        le=16 * 2**20,
+        description="Largest request body accepted, bytes; counted while it arrives "
+        "(chunked bodies included), so a bigger one is refused with 413 without being read.",
+    )
+    allowed_hosts: list[str] | None = Field(
+        None,
+        description="Host names (and IP addresses) the HTTP Host header and a browser's "
+        "Origin may name, without port; '*' allows any. Default: localhost, 127.0.0.1, ::1 "
+        "and the listen host (for 0.0.0.0 or :: also this machine's name). A request naming "
+        "another host is refused (400; WebSocket closed with 1008), which defeats DNS "
+        "rebinding.",
+    )
+    max_connections: int = Field(
+        200,
+        ge=1,
+        le=100000,
+        description="Concurrent HTTP and WebSocket connections; beyond it new requests get 503 "
+        "(uvicorn limit_concurrency).",
+    )
+    header_timeout_s: float = Field(
+        10.0,
+        gt=0,
+        le=600,
+        description="Time a client has to send a complete request head (and to send each part "
+        "of a body), s; a slower one is disconnected.",
+    )
+    keep_alive_s: float = Field(
+        5.0, gt=0, le=600, description="Idle time before a kept-alive connection is closed, s."
+    )
+    tls_cert: str | None = Field(
+        None,
+        description="PEM certificate (chain) file: serve HTTPS and WSS instead of HTTP and WS; "
+        "needs tls_key. A relative path is taken from the config file's folder.",
+    )
+    tls_key: str | None = Field(
+        None, description="PEM private key file of tls_cert (unencrypted)."
     )
     data_dir: str = Field(
         "quaver-data",
@@ -517,7 +554,8 @@ class AlarmConfig(_Model):
 class TokenConfig(_Model):
     name: Name = _d("Who holds the token (for logs).")
     role: Role = _d(
-        "viewer (read) | operator (also acknowledge alarms) | admin (also reload the config)."
+        "viewer (read) | operator (also acknowledge alarms) | admin (also reload the config) "
+        "| metrics (GET /metrics only: a scraper's token)."
     )
     sha256: Annotated[str, AfterValidator(str.lower)] = Field(
         pattern=SHA256_PATTERN,
@@ -827,6 +865,10 @@ def parse_config(
     if base_dir is not None:
         if ("service", "data_dir") not in from_env:
             cfg.service.data_dir = str(base_dir / cfg.service.data_dir)
+        if cfg.service.tls_cert is not None:
+            cfg.service.tls_cert = str(base_dir / cfg.service.tls_cert)
+        if cfg.service.tls_key is not None:
+            cfg.service.tls_key = str(base_dir / cfg.service.tls_key)
         for s in cfg.sources:
             if isinstance(s, FileSourceConfig):
                 s.path = str(base_dir / s.path)
@@ -1251,6 +1293,12 @@ class _Checker:
             if t.name in seen:
                 self.add(f"tokens[{j}].name: {t.name!r} repeats tokens[{seen[t.name]}]")
             seen.setdefault(t.name, j)
+        svc = self.cfg.service
+        if svc.tls_cert is not None and svc.tls_key is None:
+            self.add("service.tls_key: missing; tls_cert needs its key (give both or neither)")
+        if svc.tls_key is not None and svc.tls_cert is None:
+            self.add("service.tls_cert: missing; tls_key needs its certificate (give both or "
+                     "neither)")
 
 
 def _cross_check(cfg: Config) -> list[str]:

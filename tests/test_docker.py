@@ -49,7 +49,7 @@ DOCKERFILE = DOCKER / "Dockerfile"
 COMPOSE = DOCKER / "compose.yaml"
 EXAMPLE_CONFIG = DOCKER / "quaver.toml"
 UNIT = DOCKER / "quaver.service"
-HEALTH_PATH = "/api/v1/health"
+HEALTH_PATH = "/api/v1/health/live"  # the one route open without a token (README "Access")
 DATA_DIR = "/var/lib/quaver"  # the one data folder: image VOLUME, compose, config, systemd
 SUBPROCESS_TIMEOUT_S = 30.0
 
@@ -304,9 +304,9 @@ def test_healthcheck_asks_a_route_the_app_serves(dockerfile):
     assert HEALTH_PATH in served
     argv = healthcheck_argv(dockerfile)
     assert check_healthcheck(argv, default_port(), served) == []
-    spoiled = [a.replace("/api/v1/health", "/api/v1/healthz") for a in argv]
+    spoiled = [a.replace(HEALTH_PATH, "/api/v1/healthz") for a in argv]
     assert check_healthcheck(spoiled, default_port(), served) == [
-        "health check asks '/api/v1/healthz', not '/api/v1/health'",
+        f"health check asks '/api/v1/healthz', not {HEALTH_PATH!r}",
         "health check asks '/api/v1/healthz', which the app does not serve",
     ]
 
@@ -320,10 +320,12 @@ def test_health_answers_without_a_token_off_loopback():
     else:  # an app that takes no config yet reads it from its state
         app = create_app(hub)
         app.state.config = cfg
-    with TestClient(app) as client:
+    with TestClient(app, base_url="http://127.0.0.1:8750") as client:  # Docker's own probe
         r = client.get(HEALTH_PATH)
+        details = client.get("/api/v1/health")
     assert r.status_code == 200, r.text
-    assert r.json()["status"] == "ok"
+    assert r.json() == {"status": "ok"}  # no details without a token
+    assert details.status_code == 401
 
 
 class _Health(http.server.BaseHTTPRequestHandler):

@@ -125,16 +125,18 @@ export function setupAck(ctx) {
     msg.textContent = "sending…";
     try {
       await ackAlarm(pending.rule, document.getElementById("ack-note").value, tok);
-      if (typed) token.set(typed);
+      if (typed) {
+        token.set(typed); // acknowledged as the typed token's holder: signed in as them now
+        window.dispatchEvent(new CustomEvent("quaver-token-changed"));
+      }
       msg.className = "ack-msg ok";
       msg.textContent = "Acknowledged.";
       ctx.live.refreshPlant();
       setTimeout(() => dlg.open && dlg.close("done"), 700);
     } catch (err) {
       msg.textContent = ackError(err);
-      if (err instanceof ApiError && err.status === 401) {
-        token.set("");
-        showTokenRow();
+      if (err instanceof ApiError && (err.status === 401 || err.status === 403)) {
+        showTokenRow(true); // another token may do it; the session keeps its own for reading
         tokIn.focus();
       }
     } finally {
@@ -155,15 +157,15 @@ function ackError(err) {
   if (!(err instanceof ApiError)) return "The service is not reachable; nothing was acknowledged.";
   switch (err.status) {
     case 401: return "Refused (401): a valid operator token is needed. Enter it below.";
-    case 403: return "Refused (403): this token may not acknowledge alarms (operator role needed).";
+    case 403: return "Refused (403): this token may not acknowledge alarms (operator role needed). Enter an operator token below.";
     case 404: return `Refused (404): ${err.detail}`;
     case 409: return `Nothing to acknowledge (409): ${err.detail}`;
     default: return `Refused (${err.status}): ${err.detail}`;
   }
 }
 
-function showTokenRow() {
-  const have = !!token.get();
+function showTokenRow(ask = false) {
+  const have = !!token.get() && !ask;
   document.getElementById("ack-token-row").hidden = have;
   document.getElementById("ack-forget").hidden = !have;
   document.getElementById("ack-token").value = "";

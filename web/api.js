@@ -18,7 +18,8 @@ export async function getJSON(path, { timeoutMs = 6000, signal } = {}) {
   const timer = setTimeout(() => ctl.abort(), timeoutMs);
   signal?.addEventListener("abort", () => ctl.abort(), { once: true });
   try {
-    const r = await fetch(path.startsWith("/") ? path : `${API}/${path}`, { signal: ctl.signal, cache: "no-store" });
+    const r = await fetch(path.startsWith("/") ? path : `${API}/${path}`, { signal: ctl.signal, cache: "no-store", headers: authHeaders() });
+    if (r.status === 401) askSignIn("The service asks for a token.");
     if (!r.ok) throw new ApiError(r.status, await detailOf(r), path);
     return await r.json();
   } catch (e) {
@@ -48,19 +49,46 @@ export function isMissingRoute(e) {
 // Which optional routes answer. null = not yet known, true/false once probed.
 export const features = { alarms: null, events: null, trend: null, windowResponse: null };
 
-const TOKEN_KEY = "quaver.operator-token";
+// The token the dashboard signed in with: kept for this browser session only (sessionStorage,
+// so it goes when the tab closes), sent on every request and on the WebSocket. The API docs
+// pages (/docs, /redoc) read the same key.
+const TOKEN_KEY = "quaver.token";
 export const token = {
   get: () => sessionStorage.getItem(TOKEN_KEY) || "",
   set: (t) => (t ? sessionStorage.setItem(TOKEN_KEY, t) : sessionStorage.removeItem(TOKEN_KEY)),
 };
+
+export function authHeaders(tok = token.get()) {
+  return tok ? { Authorization: `Bearer ${tok}` } : {};
+}
+
+/** A browser cannot put Authorization on a WebSocket: the token goes as the subprotocol
+ *  `bearer.<base64url(token)>` next to `quaver` (the one the server selects), never in the URL. */
+export function wsProtocols(tok = token.get()) {
+  if (!tok) return ["quaver"];
+  const bytes = new TextEncoder().encode(tok);
+  const b64 = btoa(String.fromCharCode(...bytes)).replace(/\+/g, "-").replace(/\//g, "_").replace(/=+$/, "");
+  return ["quaver", `bearer.${b64}`];
+}
+
+/** Ask the page to show the sign-in prompt (web/signin.js listens). */
+export function askSignIn(reason) {
+  window.dispatchEvent(new CustomEvent("quaver-signin", { detail: { reason } }));
+}
+
+/** Who the service takes this browser for: {tokens, name, role}; throws ApiError (401: sign in). */
+export async function whoAmI(tok = token.get()) {
+  const r = await fetch(`${API}/session`, { cache: "no-store", headers: authHeaders(tok) });
+  if (!r.ok) throw new ApiError(r.status, await detailOf(r), `${API}/session`);
+  return r.json();
+}
 
 /**
  * Acknowledge an alarm rule. Returns the event; throws ApiError with status 401 (no or wrong
  * token), 403 (token without the operator role), 404, 409 (not active / already acknowledged).
  */
 export async function ackAlarm(rule, note, tok) {
-  const headers = { "Content-Type": "application/json" };
-  if (tok) headers.Authorization = `Bearer ${tok}`;
+  const headers = { "Content-Type": "application/json", ...authHeaders(tok || token.get()) };
   const url = `${API}/alarms/${encodeURIComponent(rule)}/ack`;
   const r = await fetch(url, { method: "POST", headers, body: JSON.stringify({ note: note || "" }) });
   if (!r.ok) throw new ApiError(r.status, await detailOf(r), url);

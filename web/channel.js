@@ -645,7 +645,7 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
       staleCheck();
       renderFacts();
       if (Date.now() - trendAt > (features.trend === false ? 2000 : 15000)) loadTrend();
-      if (!(tickN++ % 5)) loadEvents();
+      if (!ctx.live.wsOpen && !(tickN++ % 5)) loadEvents(); // pushed while the stream is up
     },
   };
   let tickN = 0;

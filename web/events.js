@@ -61,6 +61,7 @@ export function mount(root, ctx) {
     busy = true;
     try {
       const j = await getJSON(`${API}/events${qs({ channel, limit: 50, before_id: older ? nextBefore : null })}`);
+      if (!root.querySelector("#ev-state")) return; // the view was left while this loaded
       const page = j.events || [];
       if (older) events = events.concat(page);
       else {
@@ -72,7 +73,8 @@ export function mount(root, ctx) {
       renderEvents();
       $("#ev-state").textContent = "";
     } catch (e) {
-      $("#ev-state").textContent = `could not load events: ${e.message}`;
+      const st = $("#ev-state");
+      if (st) st.textContent = `could not load events: ${e.message}`;
     } finally {
       busy = false;
     }
@@ -93,8 +95,9 @@ export function mount(root, ctx) {
     channels: fillChannels,
     "alarm-event": () => load(),
     features: () => load(),
+    // events arrive pushed over the stream ("alarm-event"); poll only while it is down
     tick: () => {
-      if (!(n++ % 5)) load();
+      if (!ctx.live.wsOpen && !(n++ % 5)) load();
     },
   };
   for (const [k, f] of Object.entries(on)) ctx.app.addEventListener(k, f);

@@ -85,7 +85,7 @@ export async function openEvidence(eventId, ctx) {
     wave.invalidate();
   }
   const base = `${API}/events/${encodeURIComponent(eventId)}/evidence`;
-  const link = (q, label) => `<a href="${base}?${q}" download>${label}</a>`;
+  const link = (q, label) => `<a href="${base}?${q}" download data-auth>${label}</a>`;
   document.getElementById("ev-downloads").innerHTML = `Download: waveform ${link("format=wav", "WAV")} · ${link("format=csv&part=waveform", "CSV")} · ${link("format=npy&part=waveform", "NPY")}` +
     ` — spectrum then ${link("format=csv&part=spectrum", "CSV")} · ${link("format=npy&part=spectrum", "NPY")}`;
 }

@@ -1,7 +1,7 @@
 // The live link: WebSocket subscription (binary spectra, JSON the rest), REST polling when the
 // socket cannot open, reconnection, the plant-wide poll. Emits events; knows nothing of drawing.
 
-import { API, features, getJSON, isMissingRoute } from "./api.js";
+import { API, askSignIn, features, getJSON, isMissingRoute, wsProtocols } from "./api.js";
 
 const PLANT_POLL_MS = 2000;
 const DOWN_POLL_MS = 1000;
@@ -129,7 +129,7 @@ export class Live extends EventTarget {
     const url = `${location.protocol === "https:" ? "wss" : "ws"}://${location.host}${API}/stream`;
     let ws;
     try {
-      ws = new WebSocket(url);
+      ws = new WebSocket(url, wsProtocols());
     } catch {
       this._openSocketSoon(WS_ABSENT_RETRY_MS);
       return;
@@ -144,8 +144,10 @@ export class Live extends EventTarget {
       if (this.sub) this._send({ subscribe: this.sub });
     };
     ws.onmessage = (ev) => this._onMessage(ev.data);
-    ws.onclose = () => {
+    ws.onclose = (ev) => {
       this.ws = null;
+      // 1008: the service refused this token (withdrawn or demoted by a reload, or none given)
+      if (ev.code === 1008 && /token/.test(ev.reason || "")) askSignIn(`The live stream was closed: ${ev.reason}.`);
       const wasOpen = this.wsOpen;
       this.wsOpen = false;
       if (wasOpen) {

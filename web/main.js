@@ -12,6 +12,7 @@ import * as eventsView from "./events.js";
 import { ruleProfile, setupAck } from "./alarms.js";
 import { setupEvidence } from "./evidence.js";
 import { setupFilter } from "./filterview.js";
+import { signIn } from "./signin.js";
 
 const HISTORY_MS = 3600e3;
 /** History key of the channel's overall (over its band named "overall", else lowcut…Fmax, as
@@ -343,7 +344,8 @@ async function probeEvents() {
   app.dispatchEvent(new CustomEvent("features"));
 }
 
-function init() {
+async function init() {
+  await signIn(); // with tokens configured nothing is read before the service accepts one
   loadPalette();
   setupAck(ctx);
   setupEvidence(ctx);

@@ -4,12 +4,15 @@ Reads the hub only; never reaches into sources or engines."""
 
 from __future__ import annotations
 
+import math
 from collections.abc import AsyncIterator, Callable
 from contextlib import asynccontextmanager
 from pathlib import Path
 from typing import Any
 
 from fastapi import FastAPI, Request
+from fastapi.encoders import jsonable_encoder
+from fastapi.exceptions import RequestValidationError
 from fastapi.middleware.cors import CORSMiddleware
 from fastapi.responses import FileResponse, JSONResponse
 from fastapi.staticfiles import StaticFiles
@@ -19,7 +22,19 @@ import web
 from .. import __version__
 from ..config import Config
 from ..hub import Hub
-from . import admin, alarms, channels, health, metrics, security, stream, trends, windows
+from . import (
+    admin,
+    alarms,
+    channels,
+    docs,
+    edge,
+    health,
+    metrics,
+    security,
+    stream,
+    trends,
+    windows,
+)
 
 
 def create_app(
@@ -50,12 +65,18 @@ def create_app(
         description="Machinery vibration monitoring: spectra, bands, tones and alarms. "
         "A monitoring aid, not a machine-protection or safety system.",
         lifespan=lifespan,
+        docs_url=None,  # docs.mount: the same pages from installed assets, no CDN
+        redoc_url=None,
     )
     app.state.hub = hub
     app.state.config = config
     app.state.service = service
     app.state.alarms = getattr(service, "alarms", None)
     app.state.store = getattr(service, "store", None)
+    # Outermost first: CORS answers preflights (they carry no token), then the access gate
+    # (Host/Origin, tokens), then the body limit.
+    app.add_middleware(edge.BodyLimit)
+    app.add_middleware(security.AccessGate)
     if config.service.cors_origins:
         app.add_middleware(
             CORSMiddleware,
@@ -63,18 +84,13 @@ def create_app(
             allow_methods=["GET", "POST"],
             allow_headers=["Authorization", "Content-Type"],
         )
-    limit = config.service.max_body_bytes
 
-    @app.middleware("http")
-    async def body_limit(request: Request, call_next: Any) -> Any:
-        declared = request.headers.get("content-length")
-        if declared is not None and (not declared.isdigit() or int(declared) > limit):
-            return JSONResponse({"detail": f"request body over {limit} bytes"}, status_code=413)
-        if declared is None and request.method in ("POST", "PUT", "PATCH"):
-            body = await request.body()  # chunked: read (bounded by the server) and check
-            if len(body) > limit:
-                return JSONResponse({"detail": f"request body over {limit} bytes"}, status_code=413)
-        return await call_next(request)
+    @app.exception_handler(RequestValidationError)
+    async def invalid_request(request: Request, exc: RequestValidationError) -> JSONResponse:
+        # FastAPI's own shape ({"detail": [{loc, msg, type, input?}]}), but a value JSON
+        # cannot carry (a body number like 1e999 parses to inf) is given as its text: the
+        # default handler failed to encode it and answered 500.
+        return JSONResponse({"detail": [_json_safe(e) for e in exc.errors()]}, 422)
 
     app.include_router(health.router, prefix="/api/v1")
     app.include_router(channels.router, prefix="/api/v1")
@@ -84,7 +100,7 @@ def create_app(
     app.include_router(trends.router, prefix="/api/v1")
     app.include_router(admin.router, prefix="/api/v1")
     app.include_router(metrics.router)
-    app.state.check_websocket = security.check_websocket
+    docs.mount(app)
     web_dir = Path(web.__file__).parent  # the installed package's files, not the working dir
     app.mount("/static", StaticFiles(directory=web_dir), name="static")
 
@@ -93,3 +109,24 @@ def create_app(
         return FileResponse(web_dir / "index.html", media_type="text/html")
 
     return app
+
+
+def _json_safe(error: Any) -> dict[str, Any]:
+    """One validation error with its ``input``/``ctx`` made JSON-safe (non-finite floats
+    and anything else JSON cannot hold become their text)."""
+    out: dict[str, Any] = {k: error[k] for k in ("type", "loc", "msg") if k in error}
+    for key in ("input", "ctx"):
+        if key in error:
+            out[key] = _finite(jsonable_encoder(error[key], custom_encoder={
+                BaseException: str}))
+    return out
+
+
+def _finite(v: Any) -> Any:
+    if isinstance(v, float) and not math.isfinite(v):
+        return str(v)
+    if isinstance(v, dict):
+        return {k: _finite(x) for k, x in v.items()}
+    if isinstance(v, list):
+        return [_finite(x) for x in v]
+    return v

@@ -1,6 +1,7 @@
-"""POST /api/v1/admin/reload: apply the config file's alarms and tokens without a restart.
+"""POST /api/v1/admin/reload (apply the config file's alarms and tokens without a restart)
+and GET /api/v1/session (who the caller is).
 
-Admin role only; the running Service does the work (``Service.reload``)."""
+Reload is admin only; the running Service does the work (``Service.reload``)."""
 
 from __future__ import annotations
 
@@ -9,7 +10,8 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Depends, HTTPException, Request
 
 from ..auth import Principal
-from .security import require, role_responses
+from ..config import Config
+from .security import Reader, require, role_responses
 
 router = APIRouter(tags=["admin"])
 
@@ -38,3 +40,19 @@ async def reload_config(request: Request, who: Admin) -> dict[str, Any]:
         detail: Any = e.reason if not e.problems else {"reason": e.reason, "problems": e.problems}
         raise HTTPException(e.status, detail) from None
     return {**result, "by": who.name}
+
+
+@router.get(
+    "/session",
+    summary="Who the service takes the caller for (the dashboard's 'signed in as')",
+    responses=role_responses("viewer"),
+)
+def session(request: Request, who: Reader) -> dict[str, Any]:
+    """``tokens``: whether the service asks for tokens at all; ``name`` and ``role`` of the
+    caller's token (null without one, which is only possible while ``tokens`` is false)."""
+    cfg: Config = request.app.state.config
+    return {
+        "tokens": bool(cfg.tokens),
+        "name": who.name if who else None,
+        "role": who.role if who else None,
+    }

@@ -13,6 +13,7 @@ from fastapi import APIRouter, Body, HTTPException, Path, Query, Request, Respon
 from pydantic import BaseModel, Field
 
 from ..alarms import AckRefused, UnknownAlarm
+from ..store import StoreError
 from .deps import I64_MAX
 from .security import Operator, Reader, role_responses
 
@@ -43,8 +44,10 @@ def list_alarms(
     summary="Acknowledge an alarm (operator role)",
     responses={
         **role_responses("operator"),
+        400: {"description": "the body could not be read as UTF-8 text"},
         404: {"description": "no such alarm rule"},
         409: {"description": "the alarm is not active or already acknowledged"},
+        503: {"description": "the store cannot write; nothing was acknowledged (retry later)"},
     },
 )
 async def ack_alarm(
@@ -60,6 +63,8 @@ async def ack_alarm(
         raise HTTPException(404, str(e)) from None
     except AckRefused as e:
         raise HTTPException(409, str(e)) from None
+    except StoreError as e:
+        raise HTTPException(503, str(e), headers={"Retry-After": "5"}) from None
 
 
 @router.get("/events", summary="The event log, newest first, paged by id")

@@ -78,3 +78,10 @@ def invalid_query(param: str, msg: str) -> NoReturn:
         [{"loc": ("query", param), "msg": msg, "type": "value_error", "input": None}]
     )
 
+
+
+def invalid(description: str) -> dict[int | str, dict[str, Any]]:
+    """The OpenAPI 422 of a route whose query has a rule the schema cannot say (one value
+    against another, a product of two): FastAPI's validation-error body, and ``description``."""
+    schema = {"$ref": "#/components/schemas/HTTPValidationError"}
+    return {422: {"description": description, "content": {"application/json": {"schema": schema}}}}

@@ -54,3 +54,10 @@ def health(hub: HubDep, request: Request) -> dict[str, Any]:
         "frames_published": hub.frames_published,
         "sources": sources,
     }
+
+
+@router.get("/health/live", summary="Liveness: the service answers (no token needed, no details)")
+def live() -> dict[str, str]:
+    """Always ``{"status": "ok"}`` while the process serves HTTP; for probes that hold no
+    token. Everything else about the service's health is in ``/health`` (viewer)."""
+    return {"status": "ok"}

@@ -18,7 +18,18 @@ The server sends:
   "unit", "amplitude", "averages", "count", "missed"}``, then ``count`` little-endian
   float32 values (the header is padded with spaces so the values start 4-byte aligned);
 * text JSON messages ``{"kind": "hello" | "bands" | "tones" | "alarm" | "status" | "error",
-  ...}`` whose fields match the REST resources.
+  ...}`` whose fields match the REST resources; an ``alarm`` message is a committed event
+  (as in ``/events``, ``id`` never null) whose own kind (transition, ack, sensor-fault) is
+  in ``event_kind``.
+
+A client message must be at most ``MAX_MESSAGE_BYTES`` (else close 1009) and JSON nested at
+most ``MAX_DEPTH`` deep (checked before parsing); a message that is not a valid
+subscription gets an ``error`` message with the reason and the session goes on with its
+previous subscription; after ``MAX_ERRORS`` such messages the server closes with 1008.
+
+Close codes the server sends: 1008 (policy: host, origin or token refused at the handshake;
+``token withdrawn`` or ``token role lowered`` when /admin/reload removed or demoted the
+session's token; too many bad messages), 1009 (message too big), 1011 (server error).
 
 Until its first ``subscribe`` a client gets alarm events and status only. Each frame's
 spectrum (per unit and amplitude) and its bands/tones texts are encoded once and shared by
@@ -46,11 +57,16 @@ from typing import Any
 from fastapi import APIRouter, WebSocket, WebSocketDisconnect
 from pydantic import BaseModel, Field, ValidationError, field_validator
 
+from dsp.types import AMPLITUDES, OUTPUT_UNITS, QUANTITIES
+
 from .. import __version__
+from ..auth import ROLES, Principal, authenticate
+from ..config import Config
 from ..hub import Hub
 from ..spectra import spectrum_values
 from ..types import SpectralFrame
 from .channels import bands_payload, tones_payload
+from .security import WS_PROTOCOL, ws_offered
 
 router = APIRouter()
 log = logging.getLogger("quaver.stream")
@@ -60,7 +76,10 @@ _CLIENT_GONE = (WebSocketDisconnect, RuntimeError, OSError)
 
 KINDS = ("spectrum", "bands", "tones", "alarms", "status")
 MAX_MESSAGE_BYTES = 4096  # a subscription is small; anything bigger is refused
+MAX_DEPTH = 8  # {"subscribe": {"channels": [...]}} is 3 deep
+MAX_ERRORS = 20  # bad messages tolerated per session before it is closed
 STATUS_PERIOD_S = 1.0
+UNIT_CHOICES = (*OUTPUT_UNITS, *QUANTITIES)
 
 
 class Subscription(BaseModel):
@@ -85,6 +104,20 @@ class Subscription(BaseModel):
     def _profiles(cls, v: list[str] | str | None) -> list[str] | str | None:
         if isinstance(v, str) and v != "*":
             raise ValueError("profiles must be a list of names or '*'")
+        return v
+
+    @field_validator("unit")
+    @classmethod
+    def _unit(cls, v: str | None) -> str | None:
+        if v is not None and v not in UNIT_CHOICES:
+            raise ValueError(f"unit {v!r} is not one of {', '.join(UNIT_CHOICES)}")
+        return v
+
+    @field_validator("amplitude")
+    @classmethod
+    def _amplitude(cls, v: str | None) -> str | None:
+        if v is not None and v not in AMPLITUDES:
+            raise ValueError(f"amplitude {v!r} is not one of {', '.join(AMPLITUDES)}")
         return v
 
     @field_validator("kinds")
@@ -182,9 +215,41 @@ def _spectrum_header(frame: SpectralFrame, u: str, a: str, count: int) -> str:
     return text[: -len("0}")]
 
 
+def json_depth_over(text: str, limit: int) -> bool:
+    """True when the brackets in ``text`` nest deeper than ``limit`` (strings skipped), so
+    json.loads never sees a message deep enough to exhaust the recursion limit."""
+    depth = 0
+    in_str = esc = False
+    for ch in text:
+        if in_str:
+            if esc:
+                esc = False
+            elif ch == "\\":
+                esc = True
+            elif ch == '"':
+                in_str = False
+        elif ch == '"':
+            in_str = True
+        elif ch in "[{":
+            depth += 1
+            if depth > limit:
+                return True
+        elif ch in "]}":
+            depth -= 1
+    return False
+
+
 class _Session:
-    def __init__(self, ws: WebSocket, hub: Hub, encoded: _Encoded) -> None:
+    def __init__(
+        self, ws: WebSocket, hub: Hub, encoded: _Encoded,
+        who: Principal | None = None, token: str | None = None,
+    ) -> None:
         self.ws, self.hub, self.encoded = ws, hub, encoded
+        self.who, self.token = who, token
+        # set by :func:`revoke_sessions`: (code, reason) the session is closed with
+        self.ended: tuple[int, str] | None = None
+        self.tasks: set[asyncio.Task[None]] = set()
+        self.errors = 0
         # Until the client subscribes it gets alarm events and status only, never a firehose
         # of every channel's spectra.
         self.spec = Subscription.model_validate({"kinds": ["alarms", "status"]})
@@ -194,6 +259,12 @@ class _Session:
         # newest frame per (channel, profile) held back by the rate limit; a held frame that a
         # newer one replaces is counted in ``self.sub.missed`` (so /metrics sees it too)
         self.held: dict[tuple[str, str], SpectralFrame] = {}
+
+    def end(self, code: int, reason: str) -> None:
+        """Stop the session's loops; the handler then closes with ``code`` and ``reason``."""
+        self.ended = (code, reason)
+        for t in self.tasks:
+            t.cancel()
 
     def apply(self, spec: Subscription) -> None:
         self.spec = spec
@@ -222,10 +293,14 @@ class _Session:
             data = msg.get("bytes")
             size = len(text.encode()) if text is not None else len(data or b"")
             if size > MAX_MESSAGE_BYTES:
-                await self.ws.close(code=1009, reason=f"message over {MAX_MESSAGE_BYTES} bytes")
+                self.end(1009, f"message over {MAX_MESSAGE_BYTES} bytes")
                 return
             try:
-                body = json.loads(text if text is not None else (data or b"").decode())
+                if text is None:
+                    text = (data or b"").decode()
+                if json_depth_over(text, MAX_DEPTH):
+                    raise ValueError(f"message nested deeper than {MAX_DEPTH}")
+                body = json.loads(text)
                 if not isinstance(body, dict) or "subscribe" not in body:
                     raise ValueError('expected {"subscribe": {...}}')
                 self.apply(Subscription.model_validate(body["subscribe"]))
@@ -234,9 +309,18 @@ class _Session:
                     f"{'.'.join(str(p) for p in err['loc']) or 'subscribe'}: {err['msg']}"
                     for err in e.errors()
                 )
-                await self.send_json({"kind": "error", "reason": reason[:500]})
-            except ValueError as e:
-                await self.send_json({"kind": "error", "reason": str(e)[:500]})
+                await self._refuse(reason)
+            except ValueError as e:  # json.JSONDecodeError and UnicodeDecodeError too
+                await self._refuse(str(e))
+            if self.ended is not None:
+                return
+
+    async def _refuse(self, reason: str) -> None:
+        """Answer a bad message with an error; too many of them end the session."""
+        self.errors += 1
+        await self.send_json({"kind": "error", "reason": reason[:500]})
+        if self.errors >= MAX_ERRORS:
+            self.end(1008, f"{MAX_ERRORS} bad messages")
 
     async def send_json(self, obj: dict[str, Any]) -> None:
         await self.ws.send_text(json.dumps(obj, separators=(",", ":")))
@@ -273,7 +357,9 @@ class _Session:
                 await self._send_frame(item)
             else:  # an alarm event (dict) published by the service
                 if "alarms" in self.spec.kinds:
-                    await self.send_json({"kind": "alarm", **item})
+                    # the documented kind; the event's own (transition, ack, …) goes aside
+                    msg = {**item, "kind": "alarm", "event_kind": item.get("kind")}
+                    await self.send_json(msg)
 
     def _due(self, key: tuple[str, str]) -> float:
         """When the next frame of (channel, profile) may go out under the rate limit
@@ -322,15 +408,17 @@ class _Session:
 
 @router.websocket("/stream")
 async def stream(ws: WebSocket) -> None:
+    # The access gate (security.AccessGate) has checked Host, Origin and token already.
     hub: Hub = ws.app.state.hub
-    check = getattr(ws.app.state, "check_websocket", None)
-    if check is not None and not await check(ws):
-        return
-    await ws.accept()
+    offered = ws_offered(ws.headers)
+    await ws.accept(subprotocol=WS_PROTOCOL if WS_PROTOCOL in offered else None)
     encoded = getattr(ws.app.state, "encoded", None)
     if encoded is None:  # one per app, shared by all its clients
         encoded = ws.app.state.encoded = _Encoded()
-    session = _Session(ws, hub, encoded)
+    state = ws.scope.get("state", {})
+    session = _Session(ws, hub, encoded, state.get("principal"), state.get("token"))
+    sessions = _sessions(ws.app.state)
+    sessions.add(session)
     try:
         await session.send_json(
             {
@@ -343,6 +431,9 @@ async def stream(ws: WebSocket) -> None:
         )
         recv = asyncio.create_task(session.receive_loop())
         send = asyncio.create_task(session.send_loop())
+        session.tasks = {recv, send}
+        if session.ended is not None:  # revoked before the tasks existed
+            session.end(*session.ended)
         _, pending = await asyncio.wait({recv, send}, return_when=asyncio.FIRST_COMPLETED)
         for t in pending:
             t.cancel()
@@ -357,7 +448,41 @@ async def stream(ws: WebSocket) -> None:
                 log.debug("stream client left: %r", outcome)
             else:
                 log.warning("stream session ended by %r", outcome)
+        if session.ended is not None:
+            await ws.close(code=session.ended[0], reason=session.ended[1])
     except _CLIENT_GONE:
         pass
     finally:
+        sessions.discard(session)
         hub.unsubscribe(session.sub)
+
+
+def _sessions(state: Any) -> set[_Session]:
+    got = getattr(state, "stream_sessions", None)
+    if got is None:
+        got = state.stream_sessions = set()
+    return got  # type: ignore[no-any-return]
+
+
+def revoke_sessions(state: Any, cfg: Config) -> int:
+    """After a token change: end every session whose token no longer admits it (close 1008
+    "token withdrawn") or now has a lower role (1008 "token role lowered"). Returns how many.
+
+    A session opened without a token (loopback, no tokens then) ends too once tokens exist."""
+    ended = 0
+    for s in list(_sessions(state)):
+        if s.ended is not None or not cfg.tokens:
+            continue
+        now = authenticate(s.token, cfg.tokens)
+        if now is None or s.who is None or now.name != s.who.name:
+            s.end(1008, "token withdrawn")
+        elif _rank(now) < _rank(s.who):
+            s.end(1008, "token role lowered")
+        else:
+            continue
+        ended += 1
+    return ended
+
+
+def _rank(who: Principal) -> int:
+    return ROLES.index(who.role) if who.role in ROLES else -1

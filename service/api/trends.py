@@ -11,7 +11,7 @@ from typing import Annotated, Any
 from fastapi import APIRouter, HTTPException, Query, Request
 
 from ..store import trend_key
-from .deps import ChannelDep, ProfileQ, check_profile, invalid_query
+from .deps import ChannelDep, ProfileQ, check_profile, invalid, invalid_query
 from .security import Reader
 
 router = APIRouter(tags=["trends"])
@@ -26,7 +26,11 @@ MAX_S = 9.2e9  # times in s whose ns still fit a signed 64-bit integer
 @router.get(
     "/channels/{channel_id}/trend",
     summary="Trend of one value: overall, band:<name> or tone:<name>",
-    responses={404: {"description": "unknown channel, or no such trend on it"}},
+    responses={
+        404: {"description": "unknown channel, or no such trend on it"},
+        **invalid("a value out of its range, or since not before until (an empty or reversed "
+                  "interval)"),
+    },
 )
 async def get_trend(
     request: Request,
@@ -44,7 +48,9 @@ async def get_trend(
         Query(ge=-MAX_S, le=MAX_S, description="end, s since the Unix epoch; default: now"),
     ] = None,
     step: Annotated[
-        int | None, Query(ge=1, le=31 * 86400, description="bucket, s; default: the finest kept")
+        int | None,
+        Query(ge=1, le=31 * 86400, description="bucket, s, rounded up to a multiple of the "
+              "stored step (service.trend_step_s; the answer's step_s); default: the finest kept"),
     ] = None,
     profile: ProfileQ = None,
 ) -> dict[str, Any]:
@@ -59,6 +65,9 @@ async def get_trend(
     if not since_s < until_s:
         invalid_query("since", f"since={since_s:g} must be before until={until_s:g}")
     since_ns, until_ns = int(since_s * _NS), int(until_s * _NS)
+    if step is not None:  # buckets are made of stored ones: round up to a whole number of them
+        base = request.app.state.config.service.trend_step_s
+        step = -(-step // base) * base
     try:
         points = await asyncio.to_thread(store.trend, channel.id, name, since_ns, until_ns, step)
         used = await asyncio.to_thread(store.trend_step, since_ns, step)

@@ -10,7 +10,7 @@ from fastapi import APIRouter, Query
 
 from dsp.windows import bin_response, window_info
 
-from .deps import invalid_query
+from .deps import invalid, invalid_query
 
 router = APIRouter(tags=["windows"])
 MAX_WORK = 2e8  # n × points evaluated: about a second of one core
@@ -19,7 +19,10 @@ WindowP = Literal["rectangular", "hann", "hamming", "blackman-harris", "flattop"
 
 
 @router.get(
-    "/windows/{window}/response", summary="One spectrum line's filter response for a window, in dB"
+    "/windows/{window}/response",
+    summary="One spectrum line's filter response for a window, in dB",
+    responses=invalid("a value out of its range, or n × (2·span_bins·points_per_bin + 1) over "
+                      "2e8 (the work of one request is bounded)"),
 )
 def window_response(
     window: WindowP,

@@ -6,9 +6,11 @@ service's internals."""
 from __future__ import annotations
 
 import contextlib
+import hashlib
 import math
 import signal
 import socket
+import ssl
 import subprocess
 import sys
 import time
@@ -30,7 +32,19 @@ STOP_TIMEOUT_S = 5.0  # SIGTERM, then kill after this
 POLL_S = 0.05
 START_ATTEMPTS = 3  # a free port can be taken between probing and binding: retry with new ones
 
+# With [[tokens]] configured every read needs a viewer token (README "Access"); the harness
+# reads with this one, added to any config that has tokens (see :func:`with_harness_token`).
+HARNESS_TOKEN = "test-harness-viewer-5e1f"
+HARNESS_NAME = "test-harness"
+
 T = TypeVar("T")
+
+
+def with_harness_token(tokens: list[dict[str, str]]) -> list[dict[str, str]]:
+    """``tokens`` plus the harness's viewer token (once)."""
+    entry = {"name": HARNESS_NAME, "role": "viewer",
+             "sha256": hashlib.sha256(HARNESS_TOKEN.encode()).hexdigest()}
+    return [*(t for t in tokens if t.get("name") != HARNESS_NAME), entry]
 
 
 # --- free ports and a small TOML writer ----------------------------------------------------
@@ -230,14 +244,17 @@ def _stop(proc: subprocess.Popen[bytes]) -> None:
 
 @contextlib.contextmanager
 def run_service(
-    doc: dict[str, Any], workdir: Path, wrap: Callable[[list[str]], list[str]] | None = None
+    doc: dict[str, Any], workdir: Path, wrap: Callable[[list[str]], list[str]] | None = None,
+    *, listen_host: str = LOOPBACK,
 ) -> Iterator[RunningService]:
     """Start ``python -m service serve -c FILE`` for the config ``doc`` and stop it after.
 
     ``wrap`` (optional) turns that command into the one actually run (e.g. inside a mount
     namespace); the wrapper must pass SIGTERM on to the service.
 
-    ``doc`` is the config as dicts (see :func:`to_toml`) without ``[service]``; every TCP or
+    ``doc`` is the config as dicts (see :func:`to_toml`); its ``[service]`` (if any) is added
+    to the listen address (``listen_host``, loopback unless a test runs in its own network
+    namespace) and data folder the harness picks; every TCP or
     UDP source whose ``listen`` is ``"auto"`` gets a free loopback port. Waits (at most
     START_TIMEOUT_S) until ``GET /api/v1/health`` answers; retries with fresh ports if a
     probed port was taken meanwhile. Stops with SIGTERM, then kill after STOP_TIMEOUT_S.
@@ -257,8 +274,12 @@ def run_service(
                 ports[s["id"]] = next(tcp_ports if s["kind"] == "tcp" else udp_ports)
                 s["listen"] = f"{LOOPBACK}:{ports[s['id']]}"
             sources.append(s)
-        full = {"service": {"listen": f"{LOOPBACK}:{http_port}", "data_dir": "quaver-data"},
-                **{k: v for k, v in doc.items() if k != "sources"}, "sources": sources}
+        service = {"listen": f"{listen_host}:{http_port}", "data_dir": "quaver-data",
+                   **doc.get("service", {})}
+        full = {**{k: v for k, v in doc.items() if k != "sources"}, "service": service,
+                "sources": sources}
+        if full.get("tokens"):
+            full["tokens"] = with_harness_token(full["tokens"])
         config_path = workdir / "quaver.toml"
         config_path.write_text(to_toml(full), encoding="utf-8")
         log_path = workdir / f"service-{attempt}.log"
@@ -268,8 +289,12 @@ def run_service(
                 wrap(command) if wrap is not None else command,
                 cwd=workdir, env=child_env(), stdout=log, stderr=subprocess.STDOUT,
             )
-        base_url = f"http://{LOOPBACK}:{http_port}"
-        client = httpx.Client(base_url=base_url, timeout=10.0, trust_env=False)
+        cert = service.get("tls_cert")  # HTTPS: the client trusts exactly that certificate
+        base_url = f"{'https' if cert else 'http'}://{LOOPBACK}:{http_port}"
+        headers = {"Authorization": f"Bearer {HARNESS_TOKEN}"} if full.get("tokens") else None
+        verify: Any = ssl.create_default_context(cafile=cert) if cert else True
+        client = httpx.Client(base_url=base_url, timeout=10.0, trust_env=False, headers=headers,
+                              verify=verify)
         svc = RunningService(proc, base_url, http_port, ports, config_path, log_path, client)
         try:
             up = _wait_up(svc)

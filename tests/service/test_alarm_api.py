@@ -404,7 +404,8 @@ def start_service(workdir: Path, data_dir: Path) -> Svc:
             tcp_port,
             data_dir,
             log_path,
-            httpx.Client(base_url=base, timeout=10.0, trust_env=False),
+            # every read needs a token once [[tokens]] exist (README "Access")
+            httpx.Client(base_url=base, timeout=10.0, trust_env=False, headers=bearer("viewer")),
         )
         deadline = time.monotonic() + START_TIMEOUT_S
         for _ in range(int(START_TIMEOUT_S / POLL_S) + 1):
@@ -630,7 +631,7 @@ def test_latched_alarm_needs_an_operator_to_acknowledge(run: Run) -> None:
 
     url = f"/api/v1/alarms/{RULE2}/ack"
     alarms_before, events_before = svc.alarms(), svc.events()
-    r = svc.client.post(url, json={"note": "no token"})
+    r = svc.client.post(url, json={"note": "no token"}, headers={"Authorization": ""})
     assert r.status_code == 401 and r.headers["www-authenticate"] == "Bearer"
     r = svc.client.post(url, json={"note": "bad"}, headers={"Authorization": "Bearer nope-123"})
     assert r.status_code == 401
@@ -862,12 +863,14 @@ def _ws_url(svc: Svc) -> str:
 
 
 def test_websocket_from_a_foreign_origin_gets_nothing(run: Run) -> None:
-    with ws_connect(_ws_url(run.svc), open_timeout=10) as ws:  # no Origin: a plant program
+    # no Origin: a plant program (with a viewer token: tokens are configured)
+    with ws_connect(_ws_url(run.svc), open_timeout=10, additional_headers=bearer("viewer")) as ws:
         hello = json.loads(ws.recv(timeout=10))
         assert hello["kind"] == "hello" and hello["channels"] == list(CHANNELS)
     refused = False
     try:
-        with ws_connect(_ws_url(run.svc), origin=EVIL, open_timeout=10) as ws:
+        with ws_connect(_ws_url(run.svc), origin=EVIL, open_timeout=10,
+                        additional_headers=bearer("viewer")) as ws:
             ws.recv(timeout=10)
     except InvalidStatus as e:  # handshake refused (an ASGI close before accept is a 403)
         refused = e.response.status_code == 403

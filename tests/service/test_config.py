@@ -537,3 +537,15 @@ def test_settings_reference_lists_every_key_with_help() -> None:
     assert all(len(text) > 5 for _, _, text in rows.values())
     n_fields = sum(len(m.model_fields) for m in qc.MODELS if m is not qc.Config)
     assert len(rows) == n_fields - 1  # every field but [[channels]].analysis, listed by key
+
+
+@pytest.mark.parametrize(("given", "problem"), [
+    ({"tls_cert": "c.pem"}, "service.tls_key: missing; tls_cert needs its key"),
+    ({"tls_key": "k.pem"}, "service.tls_cert: missing; tls_key needs its certificate"),
+])
+def test_tls_needs_both_files(given: dict[str, str], problem: str) -> None:
+    d = _base()
+    d["service"] = {**d.get("service", {}), **given}
+    with pytest.raises(ConfigError) as e:
+        _parse(d)
+    assert any(p.startswith(problem) for p in e.value.problems), e.value.problems

@@ -5,8 +5,10 @@ Talks to the service only through its config file, signals and HTTP API."""
 
 from __future__ import annotations
 
+import contextlib
 import copy
 import hashlib
+import json
 import math
 import signal
 import socket
@@ -17,6 +19,8 @@ from typing import Any
 
 import httpx
 import pytest
+from websockets.exceptions import ConnectionClosed
+from websockets.sync.client import connect as ws_connect
 
 from tests.service.conftest import (
     SMALL_FS,
@@ -25,6 +29,7 @@ from tests.service.conftest import (
     one_band_config,
     run_service,
     to_toml,
+    with_harness_token,
 )
 
 LOOPBACK = "127.0.0.1"
@@ -61,11 +66,14 @@ def rewrite(svc: RunningService, **changes: Any) -> None:
     written = tomllib.loads(svc.config_path.read_text(encoding="utf-8"))
     doc = {**copy.deepcopy(CONFIG), "service": written["service"], "sources": written["sources"]}
     doc.update(copy.deepcopy(changes))
+    if doc.get("tokens"):
+        doc["tokens"] = with_harness_token(doc["tokens"])
     svc.config_path.write_text(to_toml(doc), encoding="utf-8")
 
 
 def reload(svc: RunningService, who: str | None = "ada") -> httpx.Response:
-    return svc.client.post("/api/v1/admin/reload", headers=auth(who) if who else None)
+    return svc.client.post("/api/v1/admin/reload",
+                           headers=auth(who) if who else {"Authorization": ""})
 
 
 def alarm(svc: RunningService) -> dict[str, Any]:
@@ -89,7 +97,8 @@ def test_new_levels_apply_live_and_the_alarm_keeps_its_state(svc: RunningService
     assert r.status_code == 200, r.text
     body = r.json()
     assert body["alarm_rules"] == {"added": [], "changed": ["a.band.b"], "removed": []}
-    assert (body["by"], body["tokens"], body["active_alarms_dropped"]) == ("ada", 2, [])
+    # three tokens: ada, otto and the harness's viewer (conftest.with_harness_token)
+    assert (body["by"], body["tokens"], body["active_alarms_dropped"]) == ("ada", 3, [])
     a = alarm(svc)
     # the rule keeps its state (still active) and now holds the new levels
     assert (a["state"], a["alert"], a["danger"]) == ("alert", 0.4, 0.55)
@@ -124,6 +133,43 @@ def test_tokens_rotate_without_a_restart(svc: RunningService) -> None:
     assert ack.status_code == 401  # the old operator token is gone
     ack = svc.client.post("/api/v1/alarms/a.band.b/ack", headers=auth("olga"))
     assert ack.status_code == 200 and ack.json()["acked_by"] == "olga"
+
+
+def test_reload_closes_streams_whose_token_went_or_was_demoted(svc: RunningService) -> None:
+    """Issue 15 item 4: a removed token's WebSocket session used to go on streaming. Now the
+    reload closes it (1008 "token withdrawn"), and one whose role went down (1008 "token
+    role lowered"); an unchanged token's session goes on."""
+    alarms = [{"channel": "a", "band": "b", "alert": 0.4, "danger": 0.55, "latch": True}]
+    rewrite(svc, tokens=[token("ada", "admin"), token("olga", "operator"),
+                         token("otto", "operator")], alarms=alarms)
+    assert reload(svc).status_code == 200
+    url = f"ws://{LOOPBACK}:{svc.http_port}/api/v1/stream"
+    with contextlib.ExitStack() as stack:
+        socks = {who: stack.enter_context(
+                     ws_connect(url, open_timeout=10, additional_headers=auth(who), proxy=None))
+                 for who in ("ada", "olga", "otto")}
+        _streams_end_on_reload(svc, socks, alarms)
+
+
+def _streams_end_on_reload(svc: RunningService, socks: dict[str, Any],
+                           alarms: list[dict[str, Any]]) -> None:
+    try:
+        for ws in socks.values():
+            assert json.loads(ws.recv(timeout=10))["kind"] == "hello"
+        rewrite(svc, tokens=[token("ada", "admin"), token("olga", "viewer")], alarms=alarms)
+        assert reload(svc).status_code == 200
+        closed = {}
+        for who in ("olga", "otto"):
+            with pytest.raises(ConnectionClosed) as e:
+                for _ in range(100):  # status messages once a second until the close
+                    socks[who].recv(timeout=10)
+            assert e.value.rcvd is not None
+            closed[who] = (e.value.rcvd.code, e.value.rcvd.reason)
+        assert closed == {"olga": (1008, "token role lowered"), "otto": (1008, "token withdrawn")}
+        assert json.loads(socks["ada"].recv(timeout=10))["kind"] == "status"  # still open
+    finally:
+        rewrite(svc, tokens=[token("ada", "admin"), token("olga", "operator")], alarms=alarms)
+        assert reload(svc).status_code == 200
 
 
 def test_a_change_that_needs_a_restart_is_refused_and_nothing_applied(
@@ -164,7 +210,7 @@ def test_the_demo_has_no_file_to_reload(tmp_path: Path) -> None:
     cfg = demo_config(data_dir=str(tmp_path))
     admin = {"name": "root", "role": "admin", "sha256": hashlib.sha256(b"adm").hexdigest()}
     cfg = cfg.model_copy(update={"tokens": [*cfg.tokens, type(cfg.tokens[0])(**admin)]})
-    with TestClient(Service(cfg).app()) as client:
+    with TestClient(Service(cfg).app(), base_url="http://127.0.0.1") as client:
         r = client.post("/api/v1/admin/reload", headers={"Authorization": "Bearer adm"})
         assert r.status_code == 409 and "without a config file" in r.json()["detail"]
         r = client.post("/api/v1/admin/reload",

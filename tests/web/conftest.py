@@ -41,6 +41,9 @@ CHROMIUM_ARGS = [
 # The operator token the alarm test configures (its SHA-256 goes in the config).
 OPERATOR_TOKEN = "web-test-operator-7c1d"
 VIEWER_TOKEN = "web-test-viewer-19ab"
+# The demo has [[tokens]] (its operator), so every read needs a token (README "Access"):
+# the harness and the pages use it unless a test signs in itself.
+DEMO_TOKEN = "quaver-demo-operator"  # service/app.py DEMO_OPERATOR_TOKEN
 
 T = TypeVar("T")
 
@@ -107,7 +110,15 @@ class Service:
     client: httpx.Client = field(init=False)
 
     def __post_init__(self) -> None:
-        self.client = httpx.Client(base_url=self.base_url, timeout=5.0, trust_env=False)
+        self.client = httpx.Client(
+            base_url=self.base_url, timeout=5.0, trust_env=False,
+            headers={"Authorization": f"Bearer {self.token}"},
+        )
+
+    @property
+    def token(self) -> str:
+        """The token the harness reads with (the viewer's when the test set its own)."""
+        return VIEWER_TOKEN if self.tokens else DEMO_TOKEN
 
     @property
     def base_url(self) -> str:
@@ -136,7 +147,7 @@ class Service:
         if self.proc is not None and self.proc.poll() is not None:
             pytest.fail(f"the service exited ({self.proc.returncode})\n{self.log_tail()}")
         try:
-            return self.client.get("/api/v1/health").status_code == 200
+            return self.client.get("/api/v1/health/live").status_code == 200
         except httpx.HTTPError:
             return False
 
@@ -183,7 +194,8 @@ class Service:
         from websockets.sync.client import connect
 
         try:
-            with connect(f"ws://{LOOPBACK}:{self.port}/api/v1/stream", open_timeout=3, proxy=None):
+            with connect(f"ws://{LOOPBACK}:{self.port}/api/v1/stream", open_timeout=3, proxy=None,
+                         additional_headers={"Authorization": f"Bearer {self.token}"}):
                 return True
         except (InvalidHandshake, OSError, TimeoutError):
             return False
@@ -298,8 +310,10 @@ class PageLog:
 
 @pytest.fixture
 def page(browser: Any) -> Iterator[tuple[Any, PageLog]]:
-    """A fresh page with its console and page errors recorded."""
+    """A fresh page with its console and page errors recorded, signed in to the demo (its
+    token in sessionStorage, as the sign-in prompt leaves it; see :func:`signed_in_as`)."""
     pg = browser.new_page()
+    signed_in_as(pg, DEMO_TOKEN)
     log = PageLog()
     pg.on("console", lambda m: log.console.append(m))
     pg.on("pageerror", lambda e: log.errors.append(str(e)))
@@ -307,6 +321,14 @@ def page(browser: Any) -> Iterator[tuple[Any, PageLog]]:
         yield pg, log
     finally:
         pg.close()
+
+
+def signed_in_as(pg: Any, token: str) -> None:
+    """Every document the page opens from now on starts with ``token`` kept for the session."""
+    key = "'quaver.token'"
+    pg.add_init_script(
+        f"if (!sessionStorage.getItem({key})) sessionStorage.setItem({key}, {token!r});"
+    )
 
 
 def screenshot(pg: Any, name: str, **kw: Any) -> Path:

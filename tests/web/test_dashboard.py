@@ -5,18 +5,27 @@ Drives headless Chromium through Playwright; knows only the public API and the p
 
 from __future__ import annotations
 
-import hashlib
 import json
 import math
 import struct
 import time
+from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pytest
 import scipy.signal
 
-from tests.web.conftest import OPERATOR_TOKEN, VIEWER_TOKEN, PageLog, Service, screenshot, wait_for
+from tests.web.conftest import (
+    DEMO_TOKEN,
+    OPERATOR_TOKEN,
+    VIEWER_TOKEN,
+    PageLog,
+    Service,
+    screenshot,
+    signed_in_as,
+    wait_for,
+)
 
 pytestmark = pytest.mark.browser
 
@@ -57,7 +66,10 @@ def readout_hz(text: str) -> float:
 
 
 def open_page(pg: Any, url: str) -> None:
+    """Open the dashboard and wait until it has signed in and mounted its view (web/main.js
+    init sets window.quaver once the service accepted the session's token)."""
     pg.goto(url, wait_until="domcontentloaded")
+    pg.wait_for_function("window.quaver !== undefined", timeout=15000)
 
 
 def cards_filled(pg: Any) -> bool:
@@ -397,6 +409,7 @@ window.WebSocket = class {
 def test_falls_back_to_polling_without_a_socket(demo: Service, browser: Any) -> None:
     """When the stream cannot open, the page says so and keeps the spectrum live over REST."""
     pg = browser.new_page()
+    signed_in_as(pg, DEMO_TOKEN)
     errors: list[str] = []
     pg.on("pageerror", lambda e: errors.append(str(e)))
     try:
@@ -581,48 +594,78 @@ def test_binary_spectrum_decoding(demo: Service, page: tuple[Any, PageLog], pad:
 # --- alarms (need the alarm API) -----------------------------------------------------------------
 
 
-def test_alarm_appears_and_ack_needs_operator_token(
-    own_service: Any, page: tuple[Any, PageLog]
+def test_sign_in_ack_with_the_operator_token_and_sign_out(
+    own_service: Any, browser: Any
 ) -> None:
-    """The demo's growing fault raises an alarm; acknowledging without a token is refused
-    (401), a viewer token is refused (403), the operator token succeeds."""
+    """With tokens configured the page asks for one before it reads anything; a wrong token
+    is refused (401), a viewer signs in ("signed in as ... (viewer)") and sees the demo's
+    alarm but may not acknowledge it (403); the operator token does; sign-out asks again.
+    The token rides in a header and in the WebSocket subprotocol, never in a URL."""
     svc: Service = own_service(speed=6.0, tokens=True)
-    if not svc.has_route("alarms"):
-        pytest.skip("GET /api/v1/alarms is not served yet (issue 4); un-skips by itself")
     svc.wait_all_channels()
-    pg, log = page
-    open_page(pg, svc.base_url + "/")
-    sel = "#ov-alarm-list li[data-state=alert], #ov-alarm-list li[data-state=danger]"
-    wait_for(lambda: pg.query_selector(sel), "an alarm from the demo's growing fault", 50)
-    rest = svc.get("alarms")
-    rule = pg.get_attribute(sel, "data-rule")
-    assert any(a["rule"] == rule and a["state"] in ("alert", "danger") for a in rest), (rule, rest)
-    word = pg.inner_text(f'#ov-alarm-list li[data-rule="{rule}"] .badge .word')
-    assert word in ("ALERT", "DANGER")
-    screenshot(pg, "alarm", full_page=True)
+    pg = browser.new_page()  # no token kept: a first visit
+    errors: list[str] = []
+    pg.on("pageerror", lambda e: errors.append(str(e)))
+    urls: list[str] = []
+    pg.on("request", lambda r: urls.append(r.url))
+    sockets: list[Any] = []
+    pg.on("websocket", lambda ws: sockets.append(ws))
+    try:
+        pg.goto(svc.base_url + "/", wait_until="domcontentloaded")
+        pg.wait_for_selector("#dlg-signin[open]")
+        assert "asks for a token" in pg.inner_text("#signin-why")
+        assert not pg.is_visible("#who")
+        pg.fill("#signin-token", "not-a-token")
+        pg.click("#signin-submit")
+        wait_for(lambda: "401" in pg.inner_text("#signin-msg"), "the refusal of a wrong token")
+        assert pg.evaluate("sessionStorage.getItem('quaver.token')") is None
 
-    pg.click(f'#ov-alarm-list li[data-rule="{rule}"] [data-ack]')
-    pg.wait_for_selector("#dlg-ack[open]")
-    assert pg.is_visible("#ack-token")  # asked for, once
-    pg.fill("#ack-note", "web test: seen")
-    pg.click("#ack-submit")
-    wait_for(lambda: "401" in pg.inner_text("#ack-msg"), "the refusal without a token")
-    pg.fill("#ack-token", VIEWER_TOKEN)
-    pg.click("#ack-submit")
-    wait_for(lambda: "403" in pg.inner_text("#ack-msg"), "the refusal of a viewer token")
-    assert not any(a["rule"] == rule and a.get("acked") for a in svc.get("alarms"))
-    pg.fill("#ack-token", OPERATOR_TOKEN)
-    pg.click("#ack-submit")
-    wait_for(lambda: not pg.is_visible("#dlg-ack"), "the dialog to close after success")
-    wait_for(
-        lambda: all(
-            a.get("acked") or a["state"] == "normal" for a in svc.get("alarms") if a["rule"] == rule
-        ),
-        "the acknowledgement at the service",
-    )
-    assert pg.evaluate("sessionStorage.getItem('quaver.operator-token')") == OPERATOR_TOKEN
-    assert hashlib.sha256(OPERATOR_TOKEN.encode()).hexdigest()  # the token the config holds
-    assert not log.errors, log.errors
+        pg.fill("#signin-token", VIEWER_TOKEN)
+        with pg.expect_navigation():
+            pg.click("#signin-submit")
+        pg.wait_for_selector("#who:not([hidden])")
+        assert pg.inner_text("#who-text") == "signed in as web-test-viewer (viewer)"
+        assert pg.evaluate("sessionStorage.getItem('quaver.token')") == VIEWER_TOKEN
+        assert pg.evaluate("localStorage.length") == 0  # the browser session only
+        wait_for(lambda: cards_filled(pg), "the plant cards, read with the token")
+        wait_for(lambda: pg.get_attribute("#conn", "data-conn") == "live", "the live stream")
+
+        sel = "#ov-alarm-list li[data-state=alert], #ov-alarm-list li[data-state=danger]"
+        wait_for(lambda: pg.query_selector(sel), "an alarm from the demo's growing fault", 50)
+        rule = pg.get_attribute(sel, "data-rule")
+        pg.click(f'#ov-alarm-list li[data-rule="{rule}"] [data-ack]')
+        pg.wait_for_selector("#dlg-ack[open]")
+        assert not pg.is_visible("#ack-token")  # signed in: the session's token is used
+        pg.fill("#ack-note", "web test: seen")
+        pg.click("#ack-submit")
+        wait_for(lambda: "403" in pg.inner_text("#ack-msg"), "the refusal of a viewer token")
+        assert not any(a["rule"] == rule and a.get("acked") for a in svc.get("alarms"))
+        assert pg.is_visible("#ack-token")  # another token is asked for
+        pg.fill("#ack-token", OPERATOR_TOKEN)
+        pg.click("#ack-submit")
+        wait_for(lambda: not pg.is_visible("#dlg-ack"), "the dialog to close after success")
+        wait_for(
+            lambda: all(
+                a.get("acked") or a["state"] == "normal"
+                for a in svc.get("alarms")
+                if a["rule"] == rule
+            ),
+            "the acknowledgement at the service",
+        )
+        assert pg.evaluate("sessionStorage.getItem('quaver.token')") == OPERATOR_TOKEN
+        wait_for(lambda: pg.inner_text("#who-text") == "signed in as web-test-operator (operator)",
+                 "the header naming the operator")
+
+        with pg.expect_navigation():
+            pg.click("#signout")
+        pg.wait_for_selector("#dlg-signin[open]")
+        assert pg.evaluate("sessionStorage.getItem('quaver.token')") is None
+        assert not pg.is_visible("#who")
+        assert sockets and all("token" not in ws.url for ws in sockets)
+        assert not [u for u in urls if VIEWER_TOKEN in u or OPERATOR_TOKEN in u]
+        assert not errors, errors
+    finally:
+        pg.close()
 
 
 def test_event_log_and_evidence(own_service: Any, page: tuple[Any, PageLog]) -> None:
@@ -646,5 +689,91 @@ def test_event_log_and_evidence(own_service: Any, page: tuple[Any, PageLog]) -> 
     links = pg.eval_on_selector_all("#ev-downloads a", "e => e.map(a => a.getAttribute('href'))")
     assert any("format=wav" in h for h in links) and any("format=csv" in h for h in links)
     assert svc.client.get(links[0]).status_code == 200
+    # the demo asks for a token, which a plain link cannot carry: the page fetches it
+    with pg.expect_download() as got:
+        pg.click('#ev-downloads a[href*="format=wav"]')
+    wav = Path(got.value.path()).read_bytes()
+    assert wav[:4] == b"RIFF" and wav[8:12] == b"WAVE", wav[:16]
     screenshot(pg, "evidence")
+    assert not log.errors, log.errors
+
+
+def test_live_alarm_push_arrives_without_polling(
+    own_service: Any, page: tuple[Any, PageLog]
+) -> None:
+    """Issue 15 item 6: stream alarm messages carried the event's kind ("transition", "ack")
+    instead of "alarm", so the page never heard them and polled /events every 5 s. Now the
+    events page asks /events only after an alarm message arrives: an acknowledgement made
+    elsewhere shows up in its table, and no /events request came before the push."""
+    svc: Service = own_service(speed=6.0)
+    svc.wait_all_channels()
+    active = wait_for(lambda: svc.get("alarms"), "an alarm from the demo's growing fault", 50)
+    pg, log = page
+    seen: list[tuple[str, Any]] = []  # in arrival order: ("push", event) / ("poll", url)
+
+    def on_ws(ws: Any) -> None:
+        def frame(payload: Any) -> None:
+            if isinstance(payload, str):
+                m = json.loads(payload)
+                if m["kind"] == "alarm":
+                    seen.append(("push", m))
+
+        ws.on("framereceived", frame)
+
+    pg.on("websocket", on_ws)
+    pg.on("request", lambda r: "/api/v1/events" in r.url and seen.append(("poll", r.url)))
+    open_page(pg, svc.base_url + "/#/events")
+    wait_for(lambda: pg.get_attribute("#conn", "data-conn") == "live", "the live stream")
+    pg.wait_for_selector("tr[data-event]", timeout=15000)
+    pg.wait_for_load_state("networkidle")  # the first loads are done
+    seen.clear()
+    pg.wait_for_timeout(6000)  # longer than the old 5 s poll
+    assert_fetched_only_after_a_push(seen)
+    seen.clear()
+    unacked = next(a for a in active if not a.get("acked"))
+    r = svc.client.post(f"/api/v1/alarms/{unacked['rule']}/ack", json={"note": "web push"})
+    assert r.status_code == 200, r.text  # the demo harness token is its operator's
+    ev = r.json()
+    pg.wait_for_selector(f'tr[data-event="{ev["id"]}"]', timeout=15000)
+    pushes = [m for kind, m in seen if kind == "push"]
+    assert any(m["id"] == ev["id"] and m["event_kind"] == "ack" for m in pushes), pushes
+    assert_fetched_only_after_a_push(seen)
+    assert not log.errors, log.errors
+
+
+def assert_fetched_only_after_a_push(seen: list[tuple[str, Any]]) -> None:
+    """Each /events request in ``seen`` answers an alarm message before it: at every point
+    there have been at least as many messages as requests (a poll would be one extra)."""
+    pushes = polls = 0
+    for kind, what in seen:
+        pushes += kind == "push"
+        polls += kind == "poll"
+        assert polls <= pushes, f"/events asked with no alarm message to answer: {what}"
+
+
+def test_no_page_asks_anything_beyond_the_service(demo: Service, page: tuple[Any, PageLog]) -> None:
+    """Issue 15 item 10: /docs was blank without internet (Swagger UI from a CDN) and /redoc
+    fetched web fonts. Every page — the dashboard's views and both API docs — now renders
+    with each request going to the service itself (the browser context refuses anything
+    else, so a stray request would also leave a page half drawn)."""
+    pg, log = page
+    base = demo.base_url
+    asked: list[str] = []
+    pg.on("request", lambda r: asked.append(r.url))
+    for path in ("/", "/#/events", "/#/channel/p1-de-h"):
+        open_page(pg, base + path)
+        pg.wait_for_load_state("networkidle")
+    pg.goto(base + "/docs", wait_until="domcontentloaded")
+    pg.wait_for_selector(".swagger-ui .info .title", timeout=15000)
+    assert "quaver" in pg.inner_text(".swagger-ui .info .title")
+    # the operations: the spec was read with the kept token
+    pg.wait_for_selector(".opblock-summary-path", timeout=15000)
+    pg.goto(base + "/redoc", wait_until="domcontentloaded")
+    pg.wait_for_selector("#redoc h1", timeout=30000)
+    assert "quaver" in pg.inner_text("#redoc h1")
+    pg.wait_for_load_state("networkidle")
+    outside = [u for u in asked if not (u.startswith(base + "/") or u.startswith("data:")
+                                         or u.startswith("blob:"))]
+    assert outside == [], outside
+    assert any(u.startswith(base + "/docs-assets/") for u in asked)
     assert not log.errors, log.errors
