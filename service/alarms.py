@@ -538,6 +538,7 @@ class AlarmView:
     suspended: bool  # the channel is not live (sensor fault, no signal, failed): rule frozen
     # the channel's suspending status, or "ok" (gap and overrun do not suspend rules)
     channel_status: str = "ok"
+    primary: bool = True  # is ``profile`` the channel's primary profile
 
     def as_dict(self) -> dict[str, Any]:
         d = {f.name: getattr(self, f.name) for f in fields(self)}
@@ -1002,4 +1003,5 @@ class AlarmEngine:
             learning=levels is None and r.kind != "signal",
             suspended=r.channel in self._suspended and r.kind != "signal",
             channel_status=self._suspended.get(r.channel, "ok"),
+            primary=r.primary,
         )
