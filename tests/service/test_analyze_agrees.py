@@ -70,7 +70,7 @@ def test_analyze_equals_the_services_rest_values(
     path.write_text(to_toml(doc), encoding="utf-8")
     cfg = load_config(path)
     svc = Service(cfg)
-    client = TestClient(create_app(svc.hub))
+    client = TestClient(create_app(svc.hub), base_url="http://127.0.0.1")  # an allowed Host
     compared = 0
     try:
         for i, (src, p) in enumerate(zip(cfg.sources, svc.pipelines, strict=True)):
@@ -158,7 +158,7 @@ def test_rest_peaks_are_the_largest_local_maxima(window: str, lines: int, tmp_pa
         x = (x + np.sin(2 * np.pi * 1001.3 * k / fs))[None].astype(np.float32)
         p = svc.pipelines[0]
         svc.hub.publish(p.process(SampleBlock("s", ("c0",), x, 0, 0, fs)), 0.0)
-        got = TestClient(create_app(svc.hub)).get("/api/v1/channels/c0/tones").json()["peaks"]
+        got = TestClient(create_app(svc.hub), base_url="http://127.0.0.1").get("/api/v1/channels/c0/tones").json()["peaks"]
         frame = svc.hub.latest["c0"]
         power = np.asarray(frame.power)
         allpk = find_peaks(power, frame.df_hz, frame.window, frame.n,  # type: ignore[arg-type]
