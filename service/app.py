@@ -231,7 +231,7 @@ class Service:
             st.lost = lost
             st.status_since_ns, st.status_changes = now_ns, st.status_changes + 1
             self.status_changes[status] = self.status_changes.get(status, 0) + 1
-            msg = f"{st.id}: {status}" + (f" ({cause})" if cause else f" (was {before})")
+            msg = f"{st.id}: {status}, " + (cause if cause else f"was {before}")
             (log.info if status == "ok" else log.warning)("channel %s", msg)
             if not first_in_time:
                 events.append((AlarmEvent(
