@@ -10,13 +10,13 @@ from pathlib import Path
 
 import pytest
 
-from service.schema import MIGRATIONS, Migration, SchemaError, migrate, schema_version
 from service.store import Store
+from service.store.schema import MIGRATIONS, Migration, SchemaError, migrate, schema_version
 
 S = 1_000_000_000
 
 # The DDL quaver wrote before migrations existed (user_version 0), as it stood then: the
-# fixture database below is built from it, not from service.schema.
+# fixture database below is built from it, not from service.store.schema.
 OLD_DDL = """
 CREATE TABLE IF NOT EXISTS meta(key TEXT PRIMARY KEY, value TEXT NOT NULL);
 CREATE TABLE IF NOT EXISTS events(
