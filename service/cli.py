@@ -64,7 +64,8 @@ from .profiles import ProfileBank, plan_profiles, plan_warnings
 from .recording import RECORDING_FORMATS, Recording, load_recording
 from .spectra import band_items, overall_item, peak_items, spectrum_values, tone_items
 from .types import SampleBlock, SourceCounters, SpectralFrame
-from .wire import RAW_FORMATS, encode_frame, encode_raw
+from .wire import STREAM_FORMATS as FEED_FORMATS
+from .wire import encode_frame, encode_raw
 
 __all__ = [
     "CliError",
@@ -78,7 +79,6 @@ __all__ = [
 
 DEFAULT_LISTEN = "127.0.0.1:8750"
 CHUNK_S = 1.0  # analyze pushes the recording through the engine this many seconds at a time
-FEED_FORMATS: tuple[str, ...] = (*RAW_FORMATS, "framed")
 FRAMED_PAYLOAD = "f32le"  # sample format inside framed frames
 FEED_BACKOFF_S = (0.2, 5.0)  # first reconnect delay, cap; doubled per failed attempt
 FEED_EOF_WAIT_S = 3.0  # after the last block: wait this long for the receiver to close

@@ -41,6 +41,8 @@ from dsp.types import (
 )
 from dsp.windows import DEFAULT_KAISER_BETA
 
+from .wire import FileFormat, StreamFormat
+
 __all__ = [
     "AlarmConfig",
     "AnalysisOverride",
@@ -85,7 +87,6 @@ FRAME_RATIO = 2.56  # fs = 2.56·Fmax and N = 2.56·lines (common practice)
 
 Id = Annotated[str, Field(pattern=ID_PATTERN)]
 Name = Annotated[str, Field(min_length=1, max_length=64)]
-RawFormat = Literal["s16le", "s32le", "f32le", "f64le"]
 SourceKind = Literal["tcp", "udp", "file", "simulated"]
 Role = Literal["viewer", "operator", "admin", "metrics"]
 QUANTITY_OF_UNIT = {
@@ -336,7 +337,7 @@ _MAX_FRAME_HELP = (
 class TcpSourceConfig(_SourceBase):
     kind: Literal["tcp"] = _d("Source kind.")
     listen: Listen = _d("host:port quaver listens on for one producer at a time.")
-    format: Literal["s16le", "s32le", "f32le", "f64le", "framed"] = _d(
+    format: StreamFormat = _d(
         "Sample format: raw interleaved little-endian s16le | s32le | f32le | f64le, or "
         "framed (quaver's header per frame, see service/wire.py)."
     )
@@ -362,7 +363,7 @@ class UdpSourceConfig(_SourceBase):
 class FileSourceConfig(_SourceBase):
     kind: Literal["file"] = _d("Source kind.")
     path: str = _d("File to read; relative paths are taken from the config file's folder.")
-    format: Literal["s16le", "s32le", "f32le", "f64le", "csv", "wav"] = _d(
+    format: FileFormat = _d(
         "Raw s16le | s32le | f32le | f64le, csv (one row per sample, one column per "
         "channel), or wav (integer PCM scaled to ±1 full scale)."
     )

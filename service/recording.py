@@ -24,7 +24,7 @@ from typing import BinaryIO
 import numpy as np
 import scipy.io.wavfile
 
-from .wire import RAW_FORMATS, check_raw_format, decode_raw, encode_raw
+from .wire import FILE_FORMATS, RAW_DTYPES, check_raw_format, decode_raw, encode_raw
 
 __all__ = [
     "RECORDING_FORMATS",
@@ -37,7 +37,7 @@ __all__ = [
     "write_wav",
 ]
 
-RECORDING_FORMATS: tuple[str, ...] = (*RAW_FORMATS, "csv", "wav")
+RECORDING_FORMATS = FILE_FORMATS
 _SUFFIXES = {".wav": "wav", ".csv": "csv", ".txt": "csv", ".tsv": "csv", ".dat": "csv"}
 _WAV_INT_SCALE = {"uint8": 128.0, "int16": 2.0**15, "int32": 2.0**31}
 MAX_PROBLEMS = 100  # problems kept in a Recording; the count keeps going
@@ -328,8 +328,7 @@ def write_wav(
         x = x * 2.0**31
     # encode_raw checks the integer range and rounds; reuse its bytes as the sample array
     raw = encode_raw(x, fmt)
-    dtype = {"s16le": "<i2", "s32le": "<i4", "f32le": "<f4", "f64le": "<f8"}[fmt]
-    samples = np.frombuffer(raw, dtype=dtype).reshape(x.shape[1], x.shape[0])
+    samples = np.frombuffer(raw, dtype=RAW_DTYPES[fmt]).reshape(x.shape[1], x.shape[0])
     rate = int(round(fs))
     if abs(rate - fs) > 1e-9 * fs:
         raise ValueError(f"fs={fs!r}: a WAV header holds a whole number of Hz")

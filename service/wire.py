@@ -69,7 +69,10 @@ __all__ = [
     "MAGIC",
     "MAX_CHANNELS",
     "MAX_PAYLOAD_BYTES",
+    "FILE_FORMATS",
+    "RAW_DTYPES",
     "RAW_FORMATS",
+    "STREAM_FORMATS",
     "SAMPLE_SIZES",
     "VERSION",
     "Frame",
@@ -77,7 +80,9 @@ __all__ = [
     "IMPLAUSIBLE_ABS",
     "IMPLAUSIBLE_SHARE",
     "INDEX_MAX",
+    "FileFormat",
     "RawFormat",
+    "StreamFormat",
     "WireError",
     "check_raw_format",
     "decode_datagram",
@@ -87,18 +92,22 @@ __all__ = [
     "encode_raw",
     "framed_header_at",
     "implausible_count",
+    "restamp_header",
 ]
 
-RawFormat = Literal["s16le", "s32le", "f32le", "f64le"]
+# The one definition of the sample formats; config, recording, sources and cli import them.
+RawFormat = Literal["s16le", "s32le", "f32le", "f64le"]  # in code order (FORMAT_CODES)
+StreamFormat = Literal[RawFormat, "framed"]  # TCP and UDP sources, ``quaver feed``
+FileFormat = Literal[RawFormat, "csv", "wav"]  # file sources, recordings
 RAW_FORMATS: tuple[str, ...] = get_args(RawFormat)
-SAMPLE_SIZES: dict[str, int] = {"s16le": 2, "s32le": 4, "f32le": 4, "f64le": 8}
-_DTYPES: dict[str, np.dtype] = {
-    "s16le": np.dtype("<i2"),
-    "s32le": np.dtype("<i4"),
-    "f32le": np.dtype("<f4"),
-    "f64le": np.dtype("<f8"),
+STREAM_FORMATS: tuple[str, ...] = get_args(StreamFormat)
+FILE_FORMATS: tuple[str, ...] = get_args(FileFormat)
+RAW_DTYPES: dict[str, np.dtype] = {
+    f: np.dtype(d) for f, d in zip(RAW_FORMATS, ("<i2", "<i4", "<f4", "<f8"), strict=True)
 }
-FORMAT_CODES: dict[str, int] = {"s16le": 0, "s32le": 1, "f32le": 2, "f64le": 3}
+_DTYPES = RAW_DTYPES
+SAMPLE_SIZES: dict[str, int] = {f: d.itemsize for f, d in RAW_DTYPES.items()}
+FORMAT_CODES: dict[str, int] = {f: code for code, f in enumerate(RAW_FORMATS)}
 _CODE_FORMATS: dict[int, str] = {v: k for k, v in FORMAT_CODES.items()}
 
 MAGIC = b"QVRF"
@@ -109,6 +118,8 @@ INDEX_MAX = 2**63 - 1  # stream indices are signed 64-bit downstream (dsp.types.
 IMPLAUSIBLE_ABS = 1e15  # raw units; far beyond any ADC count or physical value (our choice)
 IMPLAUSIBLE_SHARE = 0.01  # a raw block with more such values than this share is rejected
 _HEAD = struct.Struct("<4sBBHdQqII")  # everything the header CRC covers
+_AT_INDEX = struct.calcsize("<4sBBHd")  # 16: first-sample index (u64), then its time (i64)
+_INDEX_TIME = struct.Struct("<Qq")
 HEADER_SIZE = _HEAD.size + 4  # 44, as documented above; a change here is a new version
 
 
@@ -232,6 +243,14 @@ class _Header:
     payload_len: int
     payload_crc: int
 
+
+
+def restamp_header(head: bytearray, first_index: int, t_ns: int) -> None:
+    """Rewrite, in place, the first-sample index and time (ns) of a framed header (its first
+    HEADER_SIZE bytes) and its header CRC; the payload and its CRC stay valid, so a sender
+    can encode a block once and send it again at other indices."""
+    _INDEX_TIME.pack_into(head, _AT_INDEX, int(first_index), int(t_ns))
+    struct.pack_into("<I", head, _HEAD.size, zlib.crc32(head[: _HEAD.size]))
 
 def _parse_header(head: bytes, max_payload_bytes: int) -> _Header | str:
     """The header at the start of ``head`` (>= HEADER_SIZE bytes), or the reason it is bad."""

@@ -63,6 +63,7 @@ import numpy as np
 
 from ..recording import TextParser, load_recording
 from ..wire import (
+    FILE_FORMATS,
     HEADER_SIZE,
     IMPLAUSIBLE_ABS,
     IMPLAUSIBLE_SHARE,
@@ -78,7 +79,6 @@ from .base import GAP_SAMPLES, QueuedSource
 __all__ = ["FILE_FORMATS", "FileSource"]
 
 log = logging.getLogger(__name__)
-FILE_FORMATS: tuple[str, ...] = (*RAW_FORMATS, "csv", "wav")
 START_AT: tuple[str, ...] = ("end", "beginning")
 _MAX_WAV_HEADER = 1 << 20
 MAX_LINE_BYTES = 1 << 20  # a text line longer than this is malformed (our choice: 4096

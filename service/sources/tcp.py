@@ -46,7 +46,7 @@ from ..wire import (
     IMPLAUSIBLE_ABS,
     IMPLAUSIBLE_SHARE,
     MAGIC,
-    RAW_FORMATS,
+    STREAM_FORMATS,
     FrameDecoder,
     decode_raw,
     default_max_frame_bytes,
@@ -58,7 +58,7 @@ from .base import GAP_SAMPLES, QueuedSource, parse_networks, peer_allowed
 __all__ = ["TcpSource"]
 
 log = logging.getLogger(__name__)
-TCP_FORMATS: tuple[str, ...] = (*RAW_FORMATS, "framed")
+TCP_FORMATS = STREAM_FORMATS
 
 
 class TcpSource(QueuedSource):
