@@ -1005,7 +1005,7 @@ def cmd_feed(args: argparse.Namespace) -> int:
 
 def cmd_bench(args: argparse.Namespace) -> int:
     if args.service:
-        from . import loadbench
+        import bench as loadbench
 
         if args.repeats is not None:
             raise CliError("--repeats applies to the engine benchmark, not --service", 2)

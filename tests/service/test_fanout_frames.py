@@ -18,8 +18,8 @@ import numpy as np
 import pytest
 
 import service.api.stream as stream
+from bench import newest_frame_ends, skipped_frames
 from service.hub import Hub
-from service.loadbench import newest_frame_ends, skipped_frames
 from service.types import SpectralFrame
 
 RATE_HZ = 50.0  # the load benchmark's fan-out subscription: one frame per 19.98 ms per channel

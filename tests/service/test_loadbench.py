@@ -1,4 +1,4 @@
-"""Tests of ``quaver bench --service`` (service.loadbench): its pure helpers against outside
+"""Tests of ``quaver bench --service`` (the bench package): its pure helpers against outside
 references, and the short run end to end against a real service on loopback.
 
 Knows the load benchmark's report and helpers and the framed wire format; asserts counts and
@@ -15,8 +15,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from service.cli import main as cli_main
-from service.loadbench import (
+from bench import (
     FrameTemplate,
     end_index_differences,
     expected_frames,
@@ -26,6 +25,7 @@ from service.loadbench import (
     search_headroom,
     skipped_frames,
 )
+from service.cli import main as cli_main
 from service.wire import FrameDecoder, decode_datagram
 
 # --- pure helpers ---------------------------------------------------------------------------
