@@ -170,7 +170,7 @@ def headroom_and_latency(plan: BenchPlan, svc: BenchService, feeder: Feeder) -> 
     lat_source = feeder.ids[0]
     lat_channel = _channel_ids(lat_source, plan.per_source)[0]
     steps: list[dict[str, Any]] = []
-    with LatencyClient(svc.base, lat_channel) as client:
+    with LatencyClient(svc.base_url, lat_channel) as client:
 
         def trial(channels: int) -> bool:
             count = max(1, math.ceil(channels / plan.per_source))
@@ -234,7 +234,7 @@ def fanout(plan: BenchPlan, svc: BenchService, feeder: Feeder, headroom: int) ->
     sets = [[chans[(i * k + j) % len(chans)] for j in range(k)] for i in range(plan.fanout_clients)]
     _say(f"fan-out: {len(chans)} channels, without clients, {plan.fanout_s:g} s")
     alone = _feed_step(plan, svc, feeder, sources, plan.fanout_s)
-    job = {"url": svc.base.replace("http://", "ws://") + "/api/v1/stream",
+    job = {"url": svc.base_url.replace("http://", "ws://") + "/api/v1/stream",
            "channel_sets": sets, "seconds": plan.fanout_s + DRAIN_WAIT_S + FANOUT_SETTLE_S + 5.0,
            "rate_hz": plan.fanout_rate_hz,
            "deflate": plan.fanout_deflate}

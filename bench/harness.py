@@ -21,9 +21,9 @@ import sys
 import time
 import urllib.request
 from collections.abc import Callable, Iterator
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeVar
 
 import tomli_w
 
@@ -51,6 +51,9 @@ STOP_TIMEOUT_S = 5.0  # SIGTERM (or the signal asked for), then SIGKILL after th
 START_ATTEMPTS = 3  # a probed free port can be taken before the child binds it
 HTTP_TIMEOUT_S = 10.0
 POLL_S = 0.05
+
+
+C = TypeVar("C", bound="Child")
 
 
 class HarnessError(RuntimeError):
@@ -197,6 +200,11 @@ class Child:
 
     def stop(self, sig: int = signal.SIGTERM) -> int:
         return stop_process(self.proc, sig)
+
+    def promote(self, cls: type[C], **extra: Any) -> C:
+        """This child as an instance of ``cls`` (a dataclass derived from Child, whose own
+        fields come from ``extra``): how the tests and the bench add their own readers."""
+        return cls(**{f.name: getattr(self, f.name) for f in fields(Child)}, **extra)
 
 
 def with_ports(doc: dict[str, Any], listen_host: str = LOOPBACK

@@ -38,32 +38,15 @@ def config_doc(analysis: dict[str, Any], sources: list[dict[str, Any]],
 
 
 @dataclass
-class BenchService:
-    """A running service under test (``bench.harness.Child``) and what the bench reads."""
-
-    child: harness.Child
-
-    @property
-    def pid(self) -> int:
-        return self.child.pid
-
-    @property
-    def base(self) -> str:
-        return self.child.base_url
-
-    @property
-    def ports(self) -> dict[str, int]:
-        return self.child.ports
+class BenchService(harness.Child):
+    """A running service under test and what the bench reads of it."""
 
     def get(self, path: str) -> Any:
-        return self.child.get_json(f"/api/v1/{path}")
+        return self.get_json(f"/api/v1/{path}")
 
     def text(self, path: str) -> str:
         """The body of ``path`` (e.g. ``/metrics``) as text."""
-        return harness.http_get(self.base, path).decode()
-
-    def log_tail(self, lines: int = 20) -> str:
-        return self.child.log_tail(lines)
+        return harness.http_get(self.base_url, path).decode()
 
     def cpu_s(self) -> float:
         return proc_cpu_s(self.pid)
@@ -83,4 +66,4 @@ def run_service(workdir: Path, analysis: dict[str, Any], sources: list[dict[str,
     Ctrl-C reaches the bench, which then stops it."""
     doc = config_doc(analysis, [{**s, "listen": "auto"} for s in sources], speed_rpm)
     with harness.run_service(doc, workdir, new_session=True) as child:
-        yield BenchService(child)
+        yield child.promote(BenchService)

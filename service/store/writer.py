@@ -62,6 +62,15 @@ def _settle(fut: Future[Any], result: Any = None, exc: BaseException | None = No
         pass
 
 
+def _rollback(c: sqlite3.Connection) -> None:
+    """Roll back the open transaction, if any (a failing ROLLBACK leaves nothing to undo)."""
+    if c.in_transaction:
+        try:
+            c.execute("ROLLBACK")
+        except sqlite3.Error:
+            pass
+
+
 def resolved(result: Any = None) -> Future[Any]:
     """A future that has already resolved to ``result`` (a write with nothing to write)."""
     fut: Future[Any] = Future()
@@ -308,11 +317,7 @@ class Writer:
             c.execute("COMMIT")
         except Exception as e:
             self._invalidate()
-            if c.in_transaction:
-                try:
-                    c.execute("ROLLBACK")
-                except sqlite3.Error:
-                    pass
+            _rollback(c)
             self._error(f"write to {self.path} failed: {e}")
             err = StoreError(self.last_error)
             for t in tasks:
@@ -334,11 +339,7 @@ class Writer:
         try:
             r = t.fn(c)
         except Exception as e:
-            if c.in_transaction:
-                try:
-                    c.execute("ROLLBACK")
-                except sqlite3.Error:
-                    pass
+            _rollback(c)
             self._error(f"maintenance of {self.path} failed: {e}")
             _settle(t.future, exc=StoreError(self.last_error))
         else:

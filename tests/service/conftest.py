@@ -7,10 +7,7 @@ from __future__ import annotations
 
 import contextlib
 import hashlib
-import math
-import signal
 import socket
-import ssl
 import subprocess
 import sys
 import time
@@ -23,14 +20,12 @@ import httpx
 import numpy as np
 import pytest
 
-from tests.proc import child_env
+from bench import harness
+from bench.harness import LOOPBACK, child_env, free_ports, to_toml  # noqa: F401 (re-exported)
 
 REPO = Path(__file__).resolve().parents[2]
-LOOPBACK = "127.0.0.1"
 START_TIMEOUT_S = 20.0  # the service must answer /health within this
-STOP_TIMEOUT_S = 5.0  # SIGTERM, then kill after this
 POLL_S = 0.05
-START_ATTEMPTS = 3  # a free port can be taken between probing and binding: retry with new ones
 
 # With [[tokens]] configured every read needs a viewer token (README "Access"); the harness
 # reads with this one, added to any config that has tokens (see :func:`with_harness_token`).
@@ -45,59 +40,6 @@ def with_harness_token(tokens: list[dict[str, str]]) -> list[dict[str, str]]:
     entry = {"name": HARNESS_NAME, "role": "viewer",
              "sha256": hashlib.sha256(HARNESS_TOKEN.encode()).hexdigest()}
     return [*(t for t in tokens if t.get("name") != HARNESS_NAME), entry]
-
-
-# --- free ports and a small TOML writer ----------------------------------------------------
-
-
-def free_ports(n: int, kind: int = socket.SOCK_STREAM) -> list[int]:
-    """``n`` distinct ports free on 127.0.0.1 right now (all probed at once, then released)."""
-    socks = []
-    try:
-        for _ in range(n):
-            s = socket.socket(socket.AF_INET, kind)
-            s.bind((LOOPBACK, 0))
-            socks.append(s)
-        return [s.getsockname()[1] for s in socks]
-    finally:
-        for s in socks:
-            s.close()
-
-
-def _toml_value(v: Any) -> str:
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, int):
-        return str(v)
-    if isinstance(v, float):
-        if not math.isfinite(v):
-            raise ValueError(f"TOML value {v!r} must be finite here")
-        return repr(v)
-    if isinstance(v, str):
-        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
-    if isinstance(v, list | tuple):
-        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
-    if isinstance(v, dict):
-        return "{ " + ", ".join(f"{k} = {_toml_value(x)}" for k, x in v.items()) + " }"
-    raise TypeError(f"cannot write {type(v).__name__} as TOML")
-
-
-def to_toml(doc: dict[str, Any]) -> str:
-    """A TOML document from ``{table: {key: value}}`` and ``{array: [{key: value}, ...]}``;
-    dicts nested inside a table or array entry become inline tables."""
-    out: list[str] = []
-    for name, body in doc.items():
-        if isinstance(body, dict):
-            out.append(f"[{name}]")
-            out += [f"{k} = {_toml_value(v)}" for k, v in body.items()]
-        elif isinstance(body, list):
-            for entry in body:
-                out.append(f"[[{name}]]")
-                out += [f"{k} = {_toml_value(v)}" for k, v in entry.items()]
-        else:
-            raise TypeError(f"top-level {name!r} must be a table or an array of tables")
-        out.append("")
-    return "\n".join(out)
 
 
 # --- a one-channel service for fault and admin tests --------------------------------------
@@ -157,27 +99,15 @@ def wait_for(probe: Callable[[], T | None], what: str, timeout_s: float = 15.0,
 
 
 @dataclass
-class RunningService:
-    """A quaver service in a subprocess: HTTP at ``base_url``; ``ports`` maps each source
-    id with a socket to its port; ``config_path`` is the TOML it was started with."""
+class RunningService(harness.Child):
+    """A quaver service in a subprocess (``bench.harness.Child``): HTTP at ``base_url``
+    through ``client``; ``ports`` maps each source id with a socket to its port;
+    ``config_path`` is the TOML it was started with."""
 
-    proc: subprocess.Popen[bytes]
-    base_url: str
-    http_port: int
-    ports: dict[str, int]
-    config_path: Path
-    log_path: Path
-    client: httpx.Client = field(repr=False)
-
-    def alive(self) -> bool:
-        return self.proc.poll() is None
+    client: httpx.Client = field(default=None, repr=False)  # type: ignore[assignment]
 
     def log_tail(self, lines: int = 40) -> str:
-        try:
-            text = self.log_path.read_text(encoding="utf-8", errors="replace")
-        except OSError:
-            return "(no service log)"
-        return "service log (last lines):\n" + "\n".join(text.splitlines()[-lines:])
+        return "service log (last lines):\n" + super().log_tail(lines)
 
     def get(self, path: str, **params: Any) -> Any:
         """GET ``/api/v1/{path}`` and return its JSON; any status but 200 fails the test."""
@@ -231,97 +161,40 @@ class RunningService:
         assert not failed, failed
 
 
-def _stop(proc: subprocess.Popen[bytes]) -> None:
-    if proc.poll() is None:
-        proc.send_signal(signal.SIGTERM)
-        try:
-            proc.wait(timeout=STOP_TIMEOUT_S)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait(timeout=STOP_TIMEOUT_S)
-
-
-
 @contextlib.contextmanager
 def run_service(
     doc: dict[str, Any], workdir: Path, wrap: Callable[[list[str]], list[str]] | None = None,
     *, listen_host: str = LOOPBACK,
 ) -> Iterator[RunningService]:
-    """Start ``python -m service serve -c FILE`` for the config ``doc`` and stop it after.
+    """Start ``python -m service serve -c FILE`` for the config ``doc`` and stop it after
+    (``bench.harness.start_service``; a service that does not start fails the test).
 
     ``wrap`` (optional) turns that command into the one actually run (e.g. inside a mount
     namespace); the wrapper must pass SIGTERM on to the service.
 
-    ``doc`` is the config as dicts (see :func:`to_toml`); its ``[service]`` (if any) is added
-    to the listen address (``listen_host``, loopback unless a test runs in its own network
-    namespace) and data folder the harness picks; every TCP or
-    UDP source whose ``listen`` is ``"auto"`` gets a free loopback port. Waits (at most
-    START_TIMEOUT_S) until ``GET /api/v1/health`` answers; retries with fresh ports if a
-    probed port was taken meanwhile. Stops with SIGTERM, then kill after STOP_TIMEOUT_S.
+    ``doc`` is the config as dicts (written with :func:`to_toml`); its ``[service]`` (if any)
+    is added to the listen address (``listen_host``, loopback unless a test runs in its own
+    network namespace) and data folder the harness picks; every TCP or UDP source whose
+    ``listen`` is ``"auto"`` gets a free loopback port. Waits (at most START_TIMEOUT_S) until
+    ``GET /api/v1/health`` answers. With [[tokens]] the harness reads with its own viewer
+    token (:data:`HARNESS_TOKEN`).
     """
-    workdir.mkdir(parents=True, exist_ok=True)
-    for attempt in range(1, START_ATTEMPTS + 1):
-        auto = [s for s in doc.get("sources", []) if s.get("listen") == "auto"]
-        tcp = free_ports(1 + sum(s["kind"] == "tcp" for s in auto))
-        udp = free_ports(sum(s["kind"] == "udp" for s in auto), socket.SOCK_DGRAM)
-        http_port, tcp_ports = tcp[0], iter(tcp[1:])
-        udp_ports = iter(udp)
-        ports: dict[str, int] = {}
-        sources = []
-        for s in doc.get("sources", []):
-            s = dict(s)
-            if s.get("listen") == "auto":
-                ports[s["id"]] = next(tcp_ports if s["kind"] == "tcp" else udp_ports)
-                s["listen"] = f"{LOOPBACK}:{ports[s['id']]}"
-            sources.append(s)
-        service = {"listen": f"{listen_host}:{http_port}", "data_dir": "quaver-data",
-                   **doc.get("service", {})}
-        full = {**{k: v for k, v in doc.items() if k != "sources"}, "service": service,
-                "sources": sources}
-        if full.get("tokens"):
-            full["tokens"] = with_harness_token(full["tokens"])
-        config_path = workdir / "quaver.toml"
-        config_path.write_text(to_toml(full), encoding="utf-8")
-        log_path = workdir / f"service-{attempt}.log"
-        with open(log_path, "wb") as log:
-            command = [sys.executable, "-m", "service", "serve", "-c", str(config_path)]
-            proc = subprocess.Popen(
-                wrap(command) if wrap is not None else command,
-                cwd=workdir, env=child_env(), stdout=log, stderr=subprocess.STDOUT,
-            )
-        cert = service.get("tls_cert")  # HTTPS: the client trusts exactly that certificate
-        base_url = f"{'https' if cert else 'http'}://{LOOPBACK}:{http_port}"
-        headers = {"Authorization": f"Bearer {HARNESS_TOKEN}"} if full.get("tokens") else None
-        verify: Any = ssl.create_default_context(cafile=cert) if cert else True
-        client = httpx.Client(base_url=base_url, timeout=10.0, trust_env=False, headers=headers,
-                              verify=verify)
-        svc = RunningService(proc, base_url, http_port, ports, config_path, log_path, client)
-        try:
-            up = _wait_up(svc)
-            if up:
-                yield svc
-                return
-            text = svc.log_tail(200)
-            if attempt == START_ATTEMPTS or "address already in use" not in text.lower():
-                pytest.fail(f"the service did not start (exit {proc.returncode})\n{text}")
-        finally:
-            client.close()
-            _stop(proc)
-
-
-def _wait_up(svc: RunningService) -> bool:
-    """True once /health answers; False if the process exited first; fails on time-out."""
-    deadline = time.monotonic() + START_TIMEOUT_S
-    for _ in range(int(START_TIMEOUT_S / POLL_S) + 1):
-        if not svc.alive():
-            return False
-        with contextlib.suppress(httpx.TransportError):
-            if svc.client.get("/api/v1/health").status_code == 200:
-                return True
-        if time.monotonic() > deadline:
-            break
-        time.sleep(POLL_S)
-    pytest.fail(f"/api/v1/health did not answer within {START_TIMEOUT_S:g} s\n{svc.log_tail()}")
+    if doc.get("tokens"):
+        doc = {**doc, "tokens": with_harness_token(doc["tokens"])}
+    headers = {"Authorization": f"Bearer {HARNESS_TOKEN}"} if doc.get("tokens") else None
+    try:
+        child = harness.start_service(doc, workdir, wrap=wrap, listen_host=listen_host,
+                                      headers=headers, timeout_s=START_TIMEOUT_S)
+    except harness.HarnessError as e:
+        pytest.fail(str(e))
+    verify: Any = child.ssl_context if child.ssl_context is not None else True
+    client = httpx.Client(base_url=child.base_url, timeout=10.0, trust_env=False,
+                          headers=headers, verify=verify)
+    try:
+        yield child.promote(RunningService, client=client)
+    finally:
+        client.close()
+        child.stop()
 
 
 def run_cli(*argv: str, timeout_s: float = 60.0) -> subprocess.CompletedProcess[str]:

@@ -25,9 +25,9 @@ import pytest
 from websockets.exceptions import ConnectionClosed
 from websockets.sync.client import connect as ws_connect
 
+from bench.harness import child_env
 from service.api import create_app
 from service.hub import Hub
-from tests.proc import child_env
 from tests.service.conftest import (
     REPO,
     SMALL_FS,

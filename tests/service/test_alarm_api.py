@@ -34,9 +34,8 @@ from websockets.exceptions import ConnectionClosed, InvalidStatus
 from websockets.sync.client import connect as ws_connect
 from websockets.typing import Origin
 
+from bench import harness
 from service.wire import encode_frame
-from tests.proc import child_env
-from tests.service.conftest import free_ports
 
 T = TypeVar("T")
 REPO = Path(__file__).resolve().parents[2]
@@ -218,73 +217,30 @@ def reference_events(t_ns: np.ndarray, v: np.ndarray, *, latch: bool) -> list[tu
 # --- running the real service ---------------------------------------------------------------------
 
 
-def config_text(
-    http_port: int,
-    tcp_port: int,
-    data_dir: Path,
-    *,
-    listen_host: str = LOOPBACK,
-    tokens: bool = True,
-) -> str:
-    toks = (
-        "".join(
-            f'\n[[tokens]]\nname = "{name}"\nrole = "{role}"\n'
-            f'sha256 = "{hashlib.sha256(tok.encode()).hexdigest()}"\n'
-            for role, (name, tok) in TOKENS.items()
-        )
-        if tokens
-        else ""
-    )
-    alarms = "".join(
-        f'\n[[alarms]]\nchannel = "{ch}"\nband = "b"\nalert = {ALERT}\ndanger = {DANGER}\n'
-        f"hysteresis = {HYST}\non_delay_s = {ON_S}\noff_delay_s = {OFF_S}\n"
-        f"latch = {'true' if latch else 'false'}\n"
-        for ch, latch in (("m1", False), ("m2", True))
-    )
-    return f"""
-[service]
-listen = "{listen_host}:{http_port}"
-data_dir = "{data_dir}"
-trend_step_s = 1
-evidence_before_s = {BEFORE_S}
-evidence_after_s = {AFTER_S}
-max_body_bytes = {MAX_BODY}
-
-[analysis]
-fmax_hz = 1000
-lines = 400
-window = "hann"
-overlap = 0.75
-averaging = "exponential"
-averages = 2
-unit = "acceleration"
-output_unit = "g"
-amplitude = "rms"
-
-[[sources]]
-id = "rig"
-kind = "tcp"
-listen = "{LOOPBACK}:{tcp_port}"
-format = "framed"
-sample_rate_hz = {FS}
-channels = ["m1", "m2"]
-queue_blocks = 100000
-
-[[channels]]
-id = "m1"
-input_unit = "g"
-
-[[channels]]
-id = "m2"
-input_unit = "g"
-
-[[bands]]
-channel = "*"
-name = "b"
-lo_hz = {BAND[0]}
-hi_hz = {BAND[1]}
-{alarms}{toks}"""
-
+def config_doc(data_dir: Path, *, tokens: bool = True) -> dict[str, Any]:
+    """The config of the scripted run (as dicts for ``bench.harness``): one framed TCP source
+    ``rig`` (listen ``auto``) of m1 and m2, band b on every channel and a rule on it per
+    channel (m2 latches), the viewer/operator/admin tokens unless ``tokens`` is false."""
+    doc: dict[str, Any] = {
+        "service": {"data_dir": str(data_dir), "trend_step_s": 1,
+                    "evidence_before_s": BEFORE_S, "evidence_after_s": AFTER_S,
+                    "max_body_bytes": MAX_BODY},
+        "analysis": {"fmax_hz": 1000, "lines": 400, "window": "hann", "overlap": 0.75,
+                     "averaging": "exponential", "averages": 2, "unit": "acceleration",
+                     "output_unit": "g", "amplitude": "rms"},
+        "sources": [{"id": "rig", "kind": "tcp", "listen": "auto", "format": "framed",
+                     "sample_rate_hz": FS, "channels": ["m1", "m2"], "queue_blocks": 100000}],
+        "channels": [{"id": "m1", "input_unit": "g"}, {"id": "m2", "input_unit": "g"}],
+        "bands": [{"channel": "*", "name": "b", "lo_hz": BAND[0], "hi_hz": BAND[1]}],
+        "alarms": [{"channel": ch, "band": "b", "alert": ALERT, "danger": DANGER,
+                    "hysteresis": HYST, "on_delay_s": ON_S, "off_delay_s": OFF_S, "latch": latch}
+                   for ch, latch in (("m1", False), ("m2", True))],
+    }
+    if tokens:
+        doc["tokens"] = [{"name": name, "role": role,
+                          "sha256": hashlib.sha256(tok.encode()).hexdigest()}
+                         for role, (name, tok) in TOKENS.items()]
+    return doc
 
 
 LAUNCH = (
@@ -294,26 +250,17 @@ LAUNCH = (
 
 
 @dataclass
-class Svc:
-    """One service process; ``client`` talks to its HTTP API."""
+class Svc(harness.Child):
+    """One service process (``bench.harness.Child``); ``client`` talks to its HTTP API."""
 
-    proc: subprocess.Popen[bytes]
-    base_url: str
-    http_port: int
-    tcp_port: int
-    data_dir: Path
-    log_path: Path
-    client: httpx.Client = field(repr=False)
+    client: httpx.Client = field(default=None, repr=False)  # type: ignore[assignment]
 
-    def alive(self) -> bool:
-        return self.proc.poll() is None
+    @property
+    def tcp_port(self) -> int:
+        return self.ports["rig"]
 
     def log_tail(self, n: int = 30) -> str:
-        try:
-            lines = self.log_path.read_text(errors="replace").splitlines()
-        except OSError:
-            return "(no log)"
-        return "service log:\n" + "\n".join(lines[-n:])
+        return "service log:\n" + super().log_tail(n)
 
     def get(self, path: str, headers: dict[str, str] | None = None, **params: Any) -> Any:
         r = self.client.get(f"/api/v1/{path}", params=params or None, headers=headers)
@@ -381,58 +328,26 @@ class Svc:
 
 def start_service(workdir: Path, data_dir: Path) -> Svc:
     """Start the real service (``run_service(load_config(path))``) on free loopback ports and
-    wait until /api/v1/health answers; a few tries in case a probed port was taken."""
-    workdir.mkdir(parents=True, exist_ok=True)
-    for attempt in range(3):
-        http_port, tcp_port = free_ports(2)
-        cfg = workdir / f"quaver-{http_port}.toml"
-        cfg.write_text(config_text(http_port, tcp_port, data_dir), encoding="utf-8")
-        log_path = workdir / f"service-{http_port}.log"
-        with open(log_path, "wb") as log:
-            proc = subprocess.Popen(
-                [sys.executable, "-c", LAUNCH, str(cfg)],
-                cwd=workdir,
-                env=child_env(),
-                stdout=log,
-                stderr=subprocess.STDOUT,
-            )
-        base = f"http://{LOOPBACK}:{http_port}"
-        svc = Svc(
-            proc,
-            base,
-            http_port,
-            tcp_port,
-            data_dir,
-            log_path,
-            # every read needs a token once [[tokens]] exist (README "Access")
-            httpx.Client(base_url=base, timeout=10.0, trust_env=False, headers=bearer("viewer")),
+    wait until /api/v1/health answers (``bench.harness``, which retries when a probed port
+    was taken meanwhile)."""
+    try:
+        child = harness.start_service(
+            config_doc(data_dir), workdir, command=lambda path: [sys.executable, "-c", LAUNCH,
+                                                                 str(path)],
+            headers=bearer("viewer"), timeout_s=START_TIMEOUT_S,
         )
-        deadline = time.monotonic() + START_TIMEOUT_S
-        for _ in range(int(START_TIMEOUT_S / POLL_S) + 1):
-            if not svc.alive() or time.monotonic() > deadline:
-                break
-            with contextlib.suppress(httpx.TransportError):
-                if svc.client.get("/api/v1/health").status_code == 200:
-                    return svc
-            time.sleep(POLL_S)
-        tail = svc.log_tail(100)
-        stop_service(svc)
-        if attempt == 2 or "address already in use" not in tail.lower():
-            pytest.fail(f"the service did not start\n{tail}")
-    raise AssertionError("unreachable")
+    except harness.HarnessError as e:
+        pytest.fail(str(e))
+    # every read needs a token once [[tokens]] exist (README "Access")
+    client = httpx.Client(base_url=child.base_url, timeout=10.0, trust_env=False,
+                          headers=bearer("viewer"))
+    return child.promote(Svc, client=client)
 
 
 def stop_service(svc: Svc, sig: int = signal.SIGTERM) -> int:
     """Signal the process (SIGTERM: orderly stop; SIGKILL: no clean-up) and reap it."""
     svc.client.close()
-    if svc.proc.poll() is None:
-        svc.proc.send_signal(sig)
-        try:
-            svc.proc.wait(timeout=STOP_TIMEOUT_S)
-        except subprocess.TimeoutExpired:
-            svc.proc.kill()
-            svc.proc.wait(timeout=STOP_TIMEOUT_S)
-    return svc.proc.returncode
+    return harness.stop_process(svc.proc, sig, STOP_TIMEOUT_S)
 
 
 @contextlib.contextmanager
@@ -893,7 +808,10 @@ def test_check_refuses_an_open_listen_without_tokens(
     cases = (("0.0.0.0", False, 2), ("0.0.0.0", True, 0), (LOOPBACK, False, 0))
     for host, tokens, code in cases:
         path = tmp_path / f"{host}-{tokens}.toml"
-        path.write_text(config_text(8750, 9101, tmp_path / "d", listen_host=host, tokens=tokens))
+        doc = config_doc(tmp_path / "d", tokens=tokens)
+        doc["service"]["listen"] = f"{host}:8750"
+        doc["sources"][0]["listen"] = f"{LOOPBACK}:9101"
+        path.write_text(harness.to_toml(doc))
         r = quaver_cli("check", "-c", str(path))
         assert r.returncode == code, (host, tokens, r.stdout, r.stderr)
         if code:

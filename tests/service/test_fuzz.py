@@ -32,6 +32,7 @@ from typing import Annotated, Any, Literal, Union, get_args, get_origin
 
 import numpy as np
 import pytest
+import tomli_w
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from pydantic import BaseModel
@@ -606,59 +607,9 @@ def out_of_range(kind: str, limits: dict[str, Any], key: str, rnd: random.Random
     return rnd.choice(options)
 
 
-def toml_key(k: str) -> str:
-    return k if re.fullmatch(r"[A-Za-z0-9_-]+", k) else toml_str(k)
-
-
-def toml_str(s: str) -> str:
-    """A TOML basic string (TOML 1.0.0 §String: escape ", \\ and control characters)."""
-    out = []
-    for ch in s:
-        if ch in '"\\':
-            out.append("\\" + ch)
-        elif ord(ch) < 0x20 or ord(ch) == 0x7F:
-            out.append(f"\\u{ord(ch):04X}")
-        else:
-            out.append(ch)
-    return '"' + "".join(out) + '"'
-
-
-def toml_value(v: Any) -> str:
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, int):
-        return str(v)
-    if isinstance(v, float):
-        return "nan" if math.isnan(v) else ("inf" if v > 0 else "-inf") if math.isinf(v) \
-            else repr(v)
-    if isinstance(v, str):
-        return toml_str(v)
-    if isinstance(v, dt.date | dt.time):
-        return v.isoformat()
-    if isinstance(v, list):
-        return "[" + ", ".join(toml_value(x) for x in v) + "]"
-    if isinstance(v, dict):
-        return "{" + ", ".join(f"{toml_key(k)} = {toml_value(x)}" for k, x in v.items()) + "}"
-    raise TypeError(type(v))
-
-
 def toml_text(doc: dict[str, Any]) -> str:
-    """TOML for a document: top-level values, then [tables], then [[arrays of tables]]."""
-    def is_aot(v: Any) -> bool:
-        return isinstance(v, list) and bool(v) and all(isinstance(x, dict) for x in v)
-
-    head = [f"{toml_key(k)} = {toml_value(v)}" for k, v in doc.items()
-            if not isinstance(v, dict) and not is_aot(v)]
-    body = []
-    for k, v in doc.items():
-        if isinstance(v, dict):
-            body += [f"[{toml_key(k)}]", *(f"{toml_key(a)} = {toml_value(b)}"
-                                           for a, b in v.items()), ""]
-        elif is_aot(v):
-            for entry in v:
-                body += [f"[[{toml_key(k)}]]", *(f"{toml_key(a)} = {toml_value(b)}"
-                                                 for a, b in entry.items()), ""]
-    return "\n".join([*head, "", *body])
+    """TOML for a document (tomli-w: top-level values, then tables, then arrays of tables)."""
+    return tomli_w.dumps(doc)
 
 
 def locations(doc: dict[str, Any]) -> list[tuple[Any, ...]]:

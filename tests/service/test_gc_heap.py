@@ -18,7 +18,7 @@ from pathlib import Path
 import httpx
 import pytest
 
-from tests.proc import child_env
+from bench.harness import child_env
 from tests.service.conftest import (
     REPO,
     SMALL_FS,

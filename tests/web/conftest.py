@@ -7,8 +7,6 @@ from __future__ import annotations
 
 import hashlib
 import os
-import signal
-import socket
 import subprocess
 import sys
 import time
@@ -20,7 +18,7 @@ from typing import Any, TypeVar
 import httpx
 import pytest
 
-from tests.proc import child_env
+from bench import harness
 
 REPO = Path(__file__).resolve().parents[2]
 ARTIFACTS = REPO / "test-artifacts"
@@ -62,9 +60,7 @@ def wait_for(probe: Callable[[], T | None | bool], what: str, timeout_s: float =
 
 
 def free_port() -> int:
-    with socket.socket() as s:
-        s.bind((LOOPBACK, 0))
-        return int(s.getsockname()[1])
+    return harness.free_ports(1)[0]
 
 
 def _service_code(port: int, data_dir: Path, speed: float | None, tokens: bool) -> str:
@@ -125,18 +121,9 @@ class Service:
         return f"http://{LOOPBACK}:{self.port}"
 
     def start(self) -> None:
-        with open(self.log_path, "ab") as log:
-            self.proc = subprocess.Popen(
-                [
-                    sys.executable,
-                    "-c",
-                    _service_code(self.port, self.data_dir, self.speed, self.tokens),
-                ],
-                cwd=self.data_dir,
-                env=child_env(),
-                stdout=log,
-                stderr=subprocess.STDOUT,
-            )
+        code = _service_code(self.port, self.data_dir, self.speed, self.tokens)
+        self.proc = harness.launch([sys.executable, "-c", code], self.data_dir, self.log_path,
+                                   append=True)
         wait_for(
             self._healthy,
             f"the service on port {self.port} to answer /health\n{self.log_tail()}",
@@ -162,14 +149,8 @@ class Service:
 
     def stop(self) -> None:
         p, self.proc = self.proc, None
-        if p is None or p.poll() is not None:
-            return
-        p.send_signal(signal.SIGTERM)
-        try:
-            p.wait(timeout=STOP_TIMEOUT_S)
-        except subprocess.TimeoutExpired:
-            p.kill()
-            p.wait(timeout=STOP_TIMEOUT_S)
+        if p is not None:
+            harness.stop_process(p, timeout_s=STOP_TIMEOUT_S)
 
     def get(self, path: str, **params: Any) -> Any:
         r = self.client.get(f"/api/v1/{path}", params=params or None)
@@ -201,12 +182,7 @@ class Service:
             return False
 
     def log_tail(self, n: int = 30) -> str:
-        try:
-            return "service log:\n" + "\n".join(
-                self.log_path.read_text(errors="replace").splitlines()[-n:]
-            )
-        except OSError:
-            return "(no service log)"
+        return "service log:\n" + harness.log_tail(self.log_path, n)
 
     def close(self) -> None:
         self.stop()
