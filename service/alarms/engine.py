@@ -9,7 +9,7 @@ from __future__ import annotations
 import math
 import statistics
 from collections.abc import Iterable, Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from typing import Any
 
 from dsp.types import check_choice
@@ -34,6 +34,9 @@ from .states import (
     check_transition,
 )
 
+_LEARNED = {"learned": True}
+_STATES = tuple(st.value for st in AlarmState)
+
 
 @dataclass
 class _Alarm:
@@ -51,11 +54,43 @@ class _Alarm:
     note: str = ""
     above_ns: list[int | None] = field(default_factory=lambda: [None, None])  # alert, danger
     below_ns: list[int | None] = field(default_factory=lambda: [None, None])
-    base: float | None = None  # learned baseline median
-    learn_start_ns: int | None = None
-    learn: list[float] = field(default_factory=list)
-    learn_stride: int = 1
-    learn_count: int = 0
+    # the baseline learned or being learned: restored only while the rule's baseline
+    # settings are those it was learned with
+    base: float | None = field(default=None, metadata=_LEARNED)  # learned baseline median
+    learn_start_ns: int | None = field(default=None, metadata=_LEARNED)
+    learn: list[float] = field(default_factory=list, metadata=_LEARNED)
+    learn_stride: int = field(default=1, metadata=_LEARNED)
+    learn_count: int = field(default=0, metadata=_LEARNED)
+
+    def saved(self) -> dict[str, Any]:
+        """Every field but the rule, JSON-safe, plus the baseline settings it was learned
+        with (one alarm of :meth:`AlarmEngine.snapshot`)."""
+        out: dict[str, Any] = {}
+        for f in _SAVED:
+            v = getattr(self, f.name)
+            out[f.name] = v.value if isinstance(v, AlarmState) else list(v) if isinstance(
+                v, list) else v
+        out["baseline"] = self.rule.baseline.as_dict() if self.rule.baseline else None
+        return out
+
+    def resume(self, s: Mapping[str, Any]) -> None:
+        """Take the fields :meth:`saved` wrote; the learned ones only if the baseline
+        settings are the same. ValueError for a state outside the closed set."""
+        bl = self.rule.baseline
+        same_baseline = bl is not None and s["baseline"] == bl.as_dict()
+        for f in _SAVED:
+            if f.metadata.get("learned") and not same_baseline:
+                continue
+            v, now = s[f.name], getattr(self, f.name)
+            if isinstance(now, AlarmState):
+                v = AlarmState(check_choice(f.name, v, _STATES))
+            elif isinstance(now, list):
+                v = list(v)
+            elif isinstance(now, bool):
+                v = bool(v)
+            elif isinstance(now, int) and f.default is not None:
+                v = int(v)  # learn_stride, learn_count
+            setattr(self, f.name, v)
 
     @property
     def levels(self) -> tuple[float, float] | None:
@@ -104,6 +139,9 @@ class _Alarm:
             return True
         self.learn_start_ns = None  # an all-zero baseline cannot scale a level: learn again
         return self.learn_value(v, t_ns)
+
+
+_SAVED = tuple(f for f in fields(_Alarm) if f.name != "rule")
 
 
 class AlarmEngine:
@@ -301,27 +339,7 @@ class AlarmEngine:
     def snapshot(self) -> dict[str, Any]:
         """JSON-safe state of every alarm (states, acknowledgements, pending delays, learned
         baselines and baseline learning) and of the faulted channels; see :meth:`restore`."""
-        alarms = {}
-        for rid, a in self._alarms.items():
-            alarms[rid] = {
-                "state": a.state.value,
-                "peak": a.peak.value,
-                "since_ns": a.since_ns,
-                "value": a.value,
-                "value_ns": a.value_ns,
-                "acked": a.acked,
-                "acked_by": a.acked_by,
-                "acked_ns": a.acked_ns,
-                "note": a.note,
-                "above_ns": list(a.above_ns),
-                "below_ns": list(a.below_ns),
-                "baseline": a.rule.baseline.as_dict() if a.rule.baseline else None,
-                "base": a.base,
-                "learn_start_ns": a.learn_start_ns,
-                "learn": list(a.learn),
-                "learn_stride": a.learn_stride,
-                "learn_count": a.learn_count,
-            }
+        alarms = {rid: a.saved() for rid, a in self._alarms.items()}
         return {"version": SNAPSHOT_VERSION, "alarms": alarms, "suspended": dict(self._suspended)}
 
     def restore(self, snapshot: Mapping[str, Any]) -> None:
@@ -337,27 +355,10 @@ class AlarmEngine:
             raise ValueError(
                 f"alarm snapshot version={snapshot.get('version')!r} is not {SNAPSHOT_VERSION}"
             )
-        states = tuple(s.value for s in AlarmState)
         for rid, s in dict(snapshot.get("alarms", {})).items():
             a = self._alarms.get(rid)
-            if a is None:
-                continue
-            a.state = AlarmState(check_choice("state", s["state"], states))
-            a.peak = AlarmState(check_choice("peak", s["peak"], states))
-            a.since_ns, a.value, a.value_ns = s["since_ns"], s["value"], s["value_ns"]
-            a.acked, a.acked_by, a.acked_ns, a.note = (
-                bool(s["acked"]),
-                s["acked_by"],
-                s["acked_ns"],
-                s["note"],
-            )
-            a.above_ns, a.below_ns = list(s["above_ns"]), list(s["below_ns"])
-            same_baseline = s["baseline"] == (
-                a.rule.baseline.as_dict() if a.rule.baseline else None
-            )
-            if a.rule.baseline is not None and same_baseline:
-                a.base, a.learn_start_ns, a.learn = s["base"], s["learn_start_ns"], list(s["learn"])
-                a.learn_stride, a.learn_count = int(s["learn_stride"]), int(s["learn_count"])
+            if a is not None:
+                a.resume(s)
         # "faulted" (a list of channels in sensor fault) is how older snapshots said it
         suspended = snapshot.get("suspended")
         if suspended is None:
