@@ -6,6 +6,8 @@ config's cross-checks share. Pure functions over a validated config; no I/O."""
 
 from __future__ import annotations
 
+from collections.abc import Callable, Sequence
+
 from pydantic import BaseModel
 
 from dsp.analyzer import ToneDef
@@ -14,7 +16,7 @@ from dsp.bands import Band, octave_bands
 from .config.models import AnalysisSettings, BandConfig, Config
 from .config.queries import channel_settings, profiles_of
 
-__all__ = ["bands_for", "effective_analysis", "tones_for"]
+__all__ = ["bands_for", "effective_analysis", "missing_value", "tones_for", "watched"]
 
 
 def _primary(cfg: Config, channel_id: str, profile: str | None) -> str:
@@ -115,3 +117,64 @@ def tones_for(cfg: Config, channel_id: str, profile: str | None = None) -> list[
         if t.channel == channel_id
         or (t.channel == "*" and t.name not in own_names and (rpm is not None or t.order is None))
     ]
+
+
+def _watched_profiles(mine: list[str], profile: str | None) -> list[str]:
+    return mine if profile in (None, "*") else [p for p in mine if p == profile]
+
+
+def watched(
+    cfg: Config, targets: Sequence[str], profile: str | None, kind: str, name: str
+) -> list[tuple[str, str | None]]:
+    """(channel, profile) pairs an alarm entry watches; profile None: the value is missing.
+
+    ``profile`` None: the channel's first profile that has the value (overall: its primary
+    one); ``"*"``: every profile that has it; a name: that profile (skipped on channels that
+    do not run it)."""
+    out: list[tuple[str, str | None]] = []
+    for ch in targets:
+        mine = profiles_of(cfg, ch)
+        if profile not in (None, "*"):
+            if profile not in mine:
+                continue
+            mine = [profile]
+        if kind == "overall":
+            have = mine
+        else:
+            lookup = bands_for if kind == "band" else tones_for
+            have = [p for p in mine if name in [x.name for x in lookup(cfg, ch, p)]]
+        if not have:
+            out.append((ch, None))
+        else:
+            out += [(ch, p) for p in (have if profile == "*" else have[:1])]
+    return out
+
+
+def missing_value(
+    cfg: Config,
+    where: str,
+    channel: str,
+    profile: str | None,
+    kind: str,
+    name: str,
+    targets: Sequence[str],
+    profiles: Callable[[str], list[str]] | None = None,
+) -> str | None:
+    """The problem of an alarm entry (at ``where``) on band or tone ``name`` that none of
+    its ``targets`` has in the profiles it watches (``profiles(ch)``: a channel's profiles,
+    default its configured ones), listing the names there are; None if one has it.
+    The config's cross-checks and :func:`service.alarms.rules_from_config` both ask this."""
+    lookup = bands_for if kind == "band" else tones_for
+    runs = profiles or (lambda ch: profiles_of(cfg, ch))
+    have = {
+        t: [x.name for p in _watched_profiles(runs(t), profile) for x in lookup(cfg, t, p)]
+        for t in targets
+    }
+    if any(name in names for names in have.values()):
+        return None
+    listed = sorted({n for names in have.values() for n in names})
+    on = "any channel" if channel == "*" else f"channel {channel!r}"
+    if profile not in (None, "*"):
+        on += f", profile {profile!r}"
+    return (f"{where}.{kind}: {name!r} is not a {kind} of {on} "
+            f"({kind}s: {', '.join(map(repr, listed)) or 'none'})")

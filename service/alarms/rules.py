@@ -16,9 +16,13 @@ from dsp.analyzer import resolve_unit
 from dsp.types import check_choice
 
 from ..config import Config, channel_ids, channel_settings, profiles_of
-from ..lookups import bands_for, effective_analysis, tones_for
+from ..entries import EntryProblem, check_alarm_entry, check_relative
+from ..lookups import effective_analysis, missing_value, watched
 from ..types import SpectralFrame
 from .states import _ID_RE, RULE_KINDS, RuleKind
+
+# the relative-level keys an [[alarms]] entry and a Baseline share
+_BASELINE_KEYS = ("alert_factor", "danger_factor", "alert_db", "danger_db")
 
 # --- rules ------------------------------------------------------------------------------
 
@@ -41,19 +45,10 @@ class Baseline:
     def __post_init__(self) -> None:
         if not (math.isfinite(self.learn_s) and self.learn_s > 0):
             raise ValueError(f"baseline learn_s={self.learn_s!r} must be > 0 seconds")
-        by_factor = (self.alert_factor, self.danger_factor)
-        by_db = (self.alert_db, self.danger_db)
-        if any(v is not None for v in by_factor) == any(v is not None for v in by_db) or (
-            None in by_factor and None in by_db
-        ):
-            raise ValueError(
-                "baseline: give alert_factor and danger_factor, or alert_db and danger_db"
-            )
-        alert, danger = self.factors
-        if not (math.isfinite(alert) and math.isfinite(danger) and 0 < alert < danger):
-            raise ValueError(
-                f"baseline: alert factor {alert:g} must be > 0 and below danger factor {danger:g}"
-            )
+        try:
+            check_relative(self.alert_factor, self.danger_factor, self.alert_db, self.danger_db)
+        except EntryProblem as e:
+            raise ValueError(f"baseline: {e}") from None
 
     @property
     def factors(self) -> tuple[float, float]:
@@ -102,14 +97,16 @@ class Rule:
         if self.kind == "signal":
             if self.baseline is not None or (self.alert is None) == (self.danger is None):
                 raise ValueError(f"rule {self.id!r}: a signal rule has one level, alert or danger")
-        elif self.baseline is None:
-            a, d = self.alert, self.danger
-            if a is None or d is None or not (math.isfinite(a) and math.isfinite(d) and 0 < a < d):
-                raise ValueError(
-                    f"rule {self.id!r}: need 0 < alert < danger (got alert={a!r}, danger={d!r})"
+        else:  # the same rules as an [[alarms]] entry's (service.entries)
+            bl = self.baseline
+            try:
+                check_alarm_entry(
+                    band=None, tone=None, overall=True, alert=self.alert, danger=self.danger,
+                    baseline_learn_s=None if bl is None else bl.learn_s,
+                    **({} if bl is None else {k: getattr(bl, k) for k in _BASELINE_KEYS}),
                 )
-        elif self.alert is not None or self.danger is not None:
-            raise ValueError(f"rule {self.id!r}: give absolute levels or a baseline, not both")
+            except EntryProblem as e:
+                raise ValueError(f"rule {self.id!r}: {e}") from None
         if not 0 <= self.hysteresis < 1:
             raise ValueError(f"rule {self.id!r}: hysteresis={self.hysteresis!r} must be in [0, 1)")
         for k in ("on_delay_s", "off_delay_s"):
@@ -156,9 +153,6 @@ def rule_id(channel: str, kind: str, name: str = "", profile: str = "") -> str:
     return f"{head}.overall" if kind == "overall" else f"{head}.{kind}.{_slug(name)}"
 
 
-# Keys the lead may add to AlarmConfig for relative levels; read with getattr so that this
-# module works before and after they exist.
-_BASELINE_KEYS = ("alert_factor", "danger_factor", "alert_db", "danger_db")
 
 
 def rules_from_config(cfg: Config, channels: Sequence[str] | None = None) -> list[Rule]:
@@ -168,7 +162,7 @@ def rules_from_config(cfg: Config, channels: Sequence[str] | None = None) -> lis
     pass the pipeline's ids when a simulated source lists none). ``channel = "*"`` applies
     to every channel that has the band/tone (overall: every channel); an entry for one
     channel replaces a ``"*"`` entry for the same value on that channel. Units are each
-    channel's display unit. Relative levels come from optional AlarmConfig keys
+    channel's display unit. Relative levels come from the AlarmConfig keys
     ``baseline_learn_s`` with ``alert_factor``/``danger_factor`` or ``alert_db``/``danger_db``.
     Raises ValueError (with the ``alarms[j]`` path) for a channel or value that does not
     exist, a repeated rule, or two names that give the same id.
@@ -185,18 +179,17 @@ def rules_from_config(cfg: Config, channels: Sequence[str] | None = None) -> lis
         else:
             listed = ", ".join(map(repr, chans)) or "none"
             raise ValueError(f"alarms[{j}].channel: {a.channel!r} is not a channel ({listed})")
-        learn_s = getattr(a, "baseline_learn_s", None)
         baseline = None
-        if learn_s is not None:
-            baseline = Baseline(learn_s, **{k: getattr(a, k, None) for k in _BASELINE_KEYS})
-        for ch, prof in _watched(cfg, targets, a.profile, kind, name):
+        if a.baseline_learn_s is not None:
+            baseline = Baseline(a.baseline_learn_s, **{k: getattr(a, k) for k in _BASELINE_KEYS})
+        if a.channel != "*" and kind != "overall":  # a "*" entry skips channels without it
+            problem = missing_value(cfg, f"alarms[{j}]", a.channel, a.profile, kind, name,
+                                    targets)
+            if problem:
+                raise ValueError(problem)
+        for ch, prof in watched(cfg, targets, a.profile, kind, name):
             if prof is None:
-                if a.channel == "*":
-                    continue
-                on = "" if a.profile in (None, "*") else f", profile {a.profile!r}"
-                raise ValueError(
-                    f"alarms[{j}].{kind}: {name!r} is not a {kind} of channel {ch!r}{on}"
-                )
+                continue
             primary = prof == profiles_of(cfg, ch)[0]
             settings = effective_analysis(cfg, ch, prof)
             rule = Rule(
@@ -257,31 +250,3 @@ def signal_rule(channel: str, level: str) -> Rule:
         danger=1.0 if level == "danger" else None,
         hysteresis=0.0,
     )
-
-
-def _watched(
-    cfg: Config, targets: Sequence[str], profile: str | None, kind: str, name: str
-) -> list[tuple[str, str | None]]:
-    """(channel, profile) pairs an alarm entry watches; profile None: the value is missing.
-
-    ``profile`` None: the channel's first profile that has the value (overall: its primary
-    one); ``"*"``: every profile that has it; a name: that profile (skipped on channels that
-    do not run it)."""
-    out: list[tuple[str, str | None]] = []
-    for ch in targets:
-        mine = profiles_of(cfg, ch)
-        if profile not in (None, "*"):
-            if profile not in mine:
-                continue
-            mine = [profile]
-        if kind == "overall":
-            have = mine
-        else:
-            lookup = bands_for if kind == "band" else tones_for
-            have = [p for p in mine if name in [x.name for x in lookup(cfg, ch, p)]]
-        if not have:
-            out.append((ch, None))
-        else:
-            out += [(ch, p) for p in (have if profile == "*" else have[:1])]
-    return out
-

@@ -8,16 +8,13 @@ from __future__ import annotations
 
 import ipaddress
 
-from dsp.bands import OCTAVE_FRACTIONS
-
 from ..lookups import (
     _covers,
     _expand_band,
     _is_order_band,
     _top_hz,
-    bands_for,
     effective_analysis,
-    tones_for,
+    missing_value,
 )
 from .models import (
     FRAME_RATIO,
@@ -264,18 +261,6 @@ class _Checker:
                 f"below fmax_hz {_fmt_hz(a.fmax_hz)}"
             )
 
-    def edges(
-        self, where: str, lo: float | None, hi: float | None, lo_key: str, hi_key: str
-    ) -> bool:
-        if lo is None or hi is None:
-            missing = lo_key if lo is None else hi_key
-            self.add(f"{where}.{missing}: required with {hi_key if lo is None else lo_key}")
-            return False
-        if not lo < hi:
-            self.add(f"{where}.{hi_key}: {hi:g} must be above {lo_key} {lo:g}")
-            return False
-        return True
-
     def speed_needed(self, where: str, ch: str) -> None:
         targets = self.targets(ch)
         speeds = [channel_settings(self.cfg, t).speed_rpm for t in targets]
@@ -320,44 +305,22 @@ class _Checker:
             scope.setdefault(key, j)
 
     def bands(self) -> None:
+        # each entry's own rules (edges, Hz or orders, octave sets) are its validator's
         scope: dict[tuple[str, str, str], int] = {}
-        fractions = ", ".join(map(str, OCTAVE_FRACTIONS))
         for j, b in enumerate(self.cfg.bands):
             w = f"bands[{j}]"
             if not self.known(b.channel, f"{w}.channel"):
                 continue
             if not self.profile_known(f"{w}.profile", b.profile, b.channel):
                 continue
-            has_hz = b.lo_hz is not None or b.hi_hz is not None
-            has_order = _is_order_band(b)
-            if has_hz == has_order:
+            if b.octave is not None and not _expand_band(b):
                 self.add(
-                    f"{w}: give lo_hz and hi_hz (Hz) or lo_order and hi_order (orders)"
-                    + (", not both" if has_hz else "")
+                    f"{w}: no 1/{b.octave}-octave band lies within {b.lo_hz:g}-{b.hi_hz:g} Hz"
                 )
                 continue
-            if b.octave is not None:
-                if b.octave not in OCTAVE_FRACTIONS:
-                    self.add(f"{w}.octave: {b.octave!r} is not one of {fractions}")
-                    continue
-                if has_order:
-                    self.add(f"{w}.octave: octave sets are in Hz; give lo_hz and hi_hz")
-                    continue
-            if has_hz:
-                if not self.edges(w, b.lo_hz, b.hi_hz, "lo_hz", "hi_hz"):
-                    continue
-                if b.octave is not None and not b.lo_hz:
-                    self.add(f"{w}.lo_hz: an octave set needs lo_hz > 0")
-                    continue
-                if b.octave is not None and not _expand_band(b):
-                    self.add(
-                        f"{w}: no 1/{b.octave}-octave band lies within {b.lo_hz:g}-{b.hi_hz:g} Hz"
-                    )
-                    continue
+            if not _is_order_band(b):
                 self.above_fmax(f"{w}.hi_hz", b.channel, b.hi_hz, None, b.profile)
             else:
-                if not self.edges(w, b.lo_order, b.hi_order, "lo_order", "hi_order"):
-                    continue
                 self.speed_needed(f"{w}.lo_order", b.channel)
                 self.above_fmax(f"{w}.hi_order", b.channel, None, b.hi_order, b.profile)
             self.names(
@@ -372,9 +335,6 @@ class _Checker:
                 continue
             if not self.profile_known(f"{w}.profile", t.profile, t.channel):
                 continue
-            if (t.hz is None) == (t.order is None):
-                self.add(f"{w}: give exactly one of hz or order")
-                continue
             if t.order is not None:
                 self.speed_needed(f"{w}.order", t.channel)
             self.above_fmax(
@@ -384,53 +344,23 @@ class _Checker:
             self.names("tones", scope, j, t.channel, t.profile, [t.name])
 
     def alarms(self) -> None:
+        # each entry's own rules (one value, alert < danger, factor/dB pairs) are its
+        # validator's; here: the channel, profile and value it names exist
         for j, a in enumerate(self.cfg.alarms):
             w = f"alarms[{j}]"
             if not self.known(a.channel, f"{w}.channel"):
                 continue
             if not self.profile_known(f"{w}.profile", a.profile, a.channel):
                 continue
-            if (a.band is not None) + (a.tone is not None) + a.overall != 1:
-                self.add(f"{w}: give exactly one of band, tone or overall = true")
+            if self.open_ended or a.overall:
                 continue
-            if a.baseline_learn_s is None:
-                if a.alert is None or a.danger is None:
-                    self.add(f"{w}: give alert and danger levels (or baseline_learn_s)")
-                elif not a.alert < a.danger:
-                    self.add(f"{w}.danger: {a.danger:g} must be above alert {a.alert:g}")
-            else:
-                if a.alert is not None or a.danger is not None:
-                    self.add(
-                        f"{w}: give either absolute alert/danger or baseline_learn_s, not both"
-                    )
-                factors = (a.alert_factor, a.danger_factor)
-                dbs = (a.alert_db, a.danger_db)
-                if not (all(v is not None for v in factors) ^ all(v is not None for v in dbs)):
-                    self.add(f"{w}: with baseline_learn_s give alert_factor and danger_factor, "
-                             "or alert_db and danger_db")
-            if self.open_ended:
-                continue
-            for key, name, lookup in (("band", a.band, bands_for), ("tone", a.tone, tones_for)):
-                if name is None:
-                    continue
-                have = {
-                    t: [x.name for p in self.watched_profiles(t, a.profile)
-                        for x in lookup(self.cfg, t, p)]
-                    for t in self.targets(a.channel)
-                }
-                if not any(name in names for names in have.values()):
-                    listed = sorted({n for names in have.values() for n in names})
-                    on = "any channel" if a.channel == "*" else f"channel {a.channel!r}"
-                    if a.profile not in (None, "*"):
-                        on += f", profile {a.profile!r}"
-                    self.add(
-                        f"{w}.{key}: {name!r} is not a {key} of {on} "
-                        f"({key}s: {', '.join(map(repr, listed)) or 'none'})"
-                    )
-
-    def watched_profiles(self, ch: str, profile: str | None) -> list[str]:
-        mine = self.channel_profiles(ch)
-        return mine if profile in (None, "*") else [p for p in mine if p == profile]
+            kind, name = ("band", a.band) if a.band is not None else ("tone", a.tone)
+            problem = missing_value(
+                self.cfg, w, a.channel, a.profile, kind, str(name),
+                self.targets(a.channel), self.channel_profiles,
+            )
+            if problem:
+                self.add(problem)
 
     def tokens(self) -> None:
         seen: dict[str, int] = {}

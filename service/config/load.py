@@ -14,6 +14,7 @@ from typing import Any
 
 from pydantic import ValidationError
 
+from ..entries import EntryProblem
 from .checks import _cross_check
 from .models import (
     ENV_OVERRIDES,
@@ -102,6 +103,10 @@ def _pydantic_problems(e: ValidationError, from_env: Mapping[tuple[str, str], st
         if len(loc) >= 3 and loc[0] == "sources" and loc[2] in SOURCE_KINDS:
             del loc[2]
         kind, ctx, value = err["type"], err.get("ctx", {}), err.get("input")
+        entry = ctx.get("error")
+        if isinstance(entry, EntryProblem):  # one entry's own rule (service.entries)
+            problems.append(_path([*loc, entry.key] if entry.key else loc) + ": " + entry.text)
+            continue
         if kind == "literal_error":
             msg = f"{value!r} is not one of {ctx['expected'].replace(' or ', ', ')}"
         elif kind == "union_tag_invalid":

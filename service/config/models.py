@@ -8,8 +8,16 @@ from __future__ import annotations
 
 from typing import Annotated, Any, Literal, get_args
 
-from pydantic import AfterValidator, BaseModel, ConfigDict, Field, create_model
+from pydantic import (
+    AfterValidator,
+    BaseModel,
+    ConfigDict,
+    Field,
+    create_model,
+    model_validator,
+)
 
+from dsp.bands import OCTAVE_FRACTIONS
 from dsp.types import (
     Amplitude,
     AveragingMode,
@@ -20,6 +28,8 @@ from dsp.types import (
     WindowName,
 )
 from dsp.windows import DEFAULT_KAISER_BETA
+
+from ..entries import check_alarm_entry, check_band_entry, check_tone_entry
 
 ENV_OVERRIDES: dict[str, tuple[str, str]] = {
     "QUAVER_LISTEN": ("service", "listen"),
@@ -443,6 +453,13 @@ class BandConfig(_Model):
         description="1/b-octave band set (IEC 61260-1), b in 1, 3, 6, 12, 24, over lo_hz…hi_hz.",
     )
 
+    @model_validator(mode="after")
+    def _entry(self) -> BandConfig:
+        check_band_entry(lo_hz=self.lo_hz, hi_hz=self.hi_hz, lo_order=self.lo_order,
+                         hi_order=self.hi_order, octave=self.octave,
+                         octave_fractions=OCTAVE_FRACTIONS)
+        return self
+
 
 class ToneConfig(_Model):
     channel: str = Field("*", description="Channel id, or '*' for every channel.")
@@ -450,6 +467,11 @@ class ToneConfig(_Model):
     name: Name = _d("Tone name (unique per channel), e.g. '1X' or 'mesh'.")
     hz: float | None = Field(None, gt=0, description="Fixed frequency, Hz.")
     order: float | None = Field(None, gt=0, description="Order of running speed.")
+
+    @model_validator(mode="after")
+    def _entry(self) -> ToneConfig:
+        check_tone_entry(hz=self.hz, order=self.order)
+        return self
 
 
 class AlarmConfig(_Model):
@@ -495,6 +517,16 @@ class AlarmConfig(_Model):
     )
     off_delay_s: float = Field(0.0, ge=0, le=86400, description="Time below before it clears, s.")
     latch: bool = Field(False, description="Stay active until acknowledged.")
+
+    @model_validator(mode="after")
+    def _entry(self) -> AlarmConfig:
+        check_alarm_entry(
+            band=self.band, tone=self.tone, overall=self.overall, alert=self.alert,
+            danger=self.danger, baseline_learn_s=self.baseline_learn_s,
+            alert_factor=self.alert_factor, danger_factor=self.danger_factor,
+            alert_db=self.alert_db, danger_db=self.danger_db,
+        )
+        return self
 
 
 class TokenConfig(_Model):

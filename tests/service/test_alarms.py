@@ -503,9 +503,9 @@ def test_transition_table_refuses_invalid_transitions() -> None:
 def test_rule_checks_its_arguments() -> None:
     with pytest.raises(ValueError, match="kind='peak' is not one of 'band', 'tone', 'overall'"):
         overall_rule(kind="peak")
-    with pytest.raises(ValueError, match="need 0 < alert < danger"):
+    with pytest.raises(ValueError, match=r"rule 'm1.overall': danger: 2 must be above alert 3"):
         overall_rule(alert=3.0)
-    with pytest.raises(ValueError, match="absolute levels or a baseline, not both"):
+    with pytest.raises(ValueError, match="absolute alert/danger or baseline_learn_s, not both"):
         overall_rule(baseline={"learn_s": 5, "alert_factor": 2, "danger_factor": 4})
     with pytest.raises(ValueError, match="give alert_factor and danger_factor, or alert_db"):
         Baseline(learn_s=5, alert_factor=2, danger_db=12)
