@@ -184,9 +184,9 @@ def reference_band(x: np.ndarray) -> np.ndarray:
 
 def reference_events(t_ns: np.ndarray, v: np.ndarray, *, latch: bool) -> list[tuple[int, str, str]]:
     """(t_ns, from, to) from the semantics documented in service/alarms/__init__.py (common
-    practice): a level is reached at value ≥ level and must hold at every frame for on_delay; it clears
-    below level·(1 − h) held for off_delay; the most severe qualified level wins; a latching
-    rule that clears goes to "latched"."""
+    practice): a level is reached at value ≥ level and must hold at every frame for on_delay;
+    it clears below level·(1 − h) held for off_delay; the most severe qualified level wins; a
+    latching rule that clears goes to "latched"."""
     names = {0: "normal", 1: "alert", 2: "danger"}
     levels = (ALERT, DANGER)
     above: list[int | None] = [None, None]
