@@ -17,8 +17,9 @@ that channel.
 
 from __future__ import annotations
 
-from typing import Any
-
+# The config → dsp lookups live in service.lookups, beside the profile plan; these names
+# stay importable from here for code written before the move.
+from ..lookups import bands_for, effective_analysis, tones_for
 from .checks import check_listen_allowed, open_source_warnings
 from .describe import describe_settings
 from .load import load_config, parse_config
@@ -72,10 +73,12 @@ __all__ = [
     "TokenConfig",
     "ToneConfig",
     "UdpSourceConfig",
+    "bands_for",
     "channel_ids",
     "channel_settings",
     "check_listen_allowed",
     "describe_settings",
+    "effective_analysis",
     "load_config",
     "open_source_warnings",
     "parse_config",
@@ -83,17 +86,5 @@ __all__ = [
     "profile_names",
     "profiles_of",
     "source_of",
+    "tones_for",
 ]
-
-_MOVED = {"bands_for", "tones_for", "effective_analysis"}  # now in service.lookups
-
-
-def __getattr__(name: str) -> Any:
-    """``from service.config import bands_for`` (and tones_for, effective_analysis) keeps
-    working for code not yet moved to ``service.lookups``, without this package importing
-    the engine's band and tone definitions."""
-    if name in _MOVED:
-        from .. import lookups
-
-        return getattr(lookups, name)
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
