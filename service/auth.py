@@ -8,11 +8,22 @@ import hashlib
 import hmac
 from collections.abc import Sequence
 from dataclasses import dataclass
-
-from .config import TokenConfig
+from typing import Protocol
 
 ROLES = ("viewer", "operator", "admin")  # each role may do what the ones before it may
 # "metrics" (a scraper's token) stands outside that order: it may read /metrics only
+
+
+class TokenEntry(Protocol):
+    """One ``[[tokens]]`` entry (``service.config.TokenConfig``), as this module reads it:
+    typed structurally so that importing auth does not import the config's models."""
+
+    @property
+    def name(self) -> str: ...
+    @property
+    def role(self) -> str: ...
+    @property
+    def sha256(self) -> str: ...
 
 
 @dataclass(frozen=True)
@@ -31,7 +42,7 @@ def token_hash(token: str) -> str:
     return hashlib.sha256(token.encode("utf-8")).hexdigest()
 
 
-def authenticate(token: str | None, tokens: Sequence[TokenConfig]) -> Principal | None:
+def authenticate(token: str | None, tokens: Sequence[TokenEntry]) -> Principal | None:
     """The holder of ``token``, or None. Every configured hash is compared (in constant
     time, hmac.compare_digest) so the time taken does not tell which entry matched."""
     if not token:

@@ -52,13 +52,13 @@ from .config import (
     channel_ids,
     channel_settings,
     check_listen_allowed,
-    effective_analysis,
     load_config,
     open_source_warnings,
     parse_config,
     parse_listen,
     profiles_of,
 )
+from .lookups import effective_analysis
 from .pipeline import ChannelState, SourcePipeline, channel_states
 from .profiles import ProfileBank, plan_profiles, plan_warnings
 from .recording import RECORDING_FORMATS, Recording, load_recording

@@ -27,12 +27,10 @@ from dsp.windows import window_info
 from .config import (
     AnalysisSettings,
     Config,
-    bands_for,
     channel_settings,
-    effective_analysis,
     profiles_of,
-    tones_for,
 )
+from .lookups import bands_for, effective_analysis, tones_for
 
 OVERALL = "_overall"  # internal band: the channel's overall value (see overall_band)
 

@@ -3,7 +3,7 @@
 
 import { ApiError, ackAlarm, token } from "./api.js";
 import { esc, fmtAge, fmtDateTime, fmtVal, unitLabel } from "./fmt.js";
-import { STATES, STATUS_TO_STATE, alarmStateKey, badge, glyph } from "./states.js";
+import { STATES, alarmStateKey, badge, eventStateKey, glyph } from "./states.js";
 
 const RANK = { danger: 3, alert: 2, latched: 1, ok: 0 };
 
@@ -56,13 +56,10 @@ function fmtSince(t_ns) {
   return new Date(t_ns / 1e6).toDateString() === new Date().toDateString() ? s.slice(11) : s;
 }
 
-// alarm states, and the data-quality states of "status" events
-const STATE_OF = { normal: "ok", alert: "alert", danger: "danger", latched: "latched", ...STATUS_TO_STATE };
-
 /** One event-log row. `raises` events (into alert/danger) get an evidence button. */
 export function eventRowHtml(ev, { showChannel = true } = {}) {
-  const to = STATE_OF[ev.to_state] ?? "ok";
-  const from = STATE_OF[ev.from_state] ?? "ok";
+  const to = eventStateKey(ev.to_state);
+  const from = eventStateKey(ev.from_state);
   const raising = ev.has_evidence ?? (ev.kind === "transition" && !ev.rule?.endsWith(".signal") && (RANK[to] ?? 0) > (RANK[from] ?? 0) && (to === "alert" || to === "danger"));
   const name = ev.rule?.startsWith(`${ev.channel}.`) ? ev.rule.slice(ev.channel.length + 1) : ev.rule;
   const change = ev.kind === "ack"
@@ -81,8 +78,8 @@ export function eventRowHtml(ev, { showChannel = true } = {}) {
 
 /** A compact event entry for narrow side panels (the full log uses table rows). */
 export function eventItemHtml(ev, { showChannel = true } = {}) {
-  const to = STATE_OF[ev.to_state] ?? "ok";
-  const from = STATE_OF[ev.from_state] ?? "ok";
+  const to = eventStateKey(ev.to_state);
+  const from = eventStateKey(ev.from_state);
   const raising = ev.has_evidence ?? (ev.kind === "transition" && !ev.rule?.endsWith(".signal") && (RANK[to] ?? 0) > (RANK[from] ?? 0) && (to === "alert" || to === "danger"));
   const name = ev.rule?.startsWith(`${ev.channel}.`) ? ev.rule.slice(ev.channel.length + 1) : ev.rule;
   const change = ev.kind === "ack"

@@ -4,7 +4,7 @@
 import { API, features, getJSON, isMissingRoute } from "./api.js";
 import { Live } from "./live.js";
 import { Surface, loadPalette } from "./plot.js";
-import { STATES, alarmStateKey, badge, channelStateKey, glyph, isLive } from "./states.js";
+import { STATES, alarmStateKey, badge, channelStateKey, glyph, isLive, loadStates } from "./states.js";
 import { esc, fmtHz, fmtVal } from "./fmt.js";
 import * as overview from "./overview.js";
 import * as channel from "./channel.js";
@@ -346,6 +346,7 @@ async function probeEvents() {
 
 async function init() {
   await signIn(); // with tokens configured nothing is read before the service accepts one
+  await loadStates(); // the state sets and their meanings (GET /api/v1/meta)
   loadPalette();
   setupAck(ctx);
   setupEvidence(ctx);

@@ -1,26 +1,78 @@
 // What state a channel or alarm is in, and how it is shown: a word, a shape and (only
-// when abnormal) a colour class. No network, no DOM beyond returning markup strings.
+// when abnormal) a colour class. The sets of states and what each means come from the
+// service (GET /api/v1/meta, loaded once by loadStates() at start); only the presentation
+// is here. No DOM beyond returning markup strings.
 
-// Ordered most to least severe. `cls` picks the colour in app.css; `shape` the glyph.
+import { API, getJSON } from "./api.js";
+
+// How each state is shown, ordered most to least severe. `cls` picks the colour in app.css;
+// `shape` the glyph; `rank` orders states for "worst of". `help` (the tooltip) is the
+// service's meaning once loadStates() has run; the texts here are for the states only the
+// dashboard has (`latched` as the badge of a held alarm, `unknown` before the first answer).
 export const STATES = {
-  danger: { word: "DANGER", shape: "diamond", cls: "s-danger", rank: 7, help: "a value is at or above its danger level" },
-  alert: { word: "ALERT", shape: "triangle", cls: "s-alert", rank: 6, help: "a value is at or above its alert level" },
-  failed: { word: "FAILED", shape: "slashed", cls: "s-fault", rank: 5.5, live: false, help: "the source's pipeline failed and is being restarted; values are not live" },
-  fault: { word: "SENSOR FAULT", shape: "slashed", cls: "s-fault", rank: 5, live: false, help: "the signal is not trustworthy (non-finite, beyond the sensor's range, flat or clipped); its alarms are frozen" },
-  nosignal: { word: "NO SIGNAL", shape: "dashed", cls: "s-nodata", rank: 4.5, live: false, help: "no new spectrum for longer than the channel's stale_after_s; the value shown is old" },
+  danger: { word: "DANGER", shape: "diamond", cls: "s-danger", rank: 7 },
+  alert: { word: "ALERT", shape: "triangle", cls: "s-alert", rank: 6 },
+  failed: { word: "FAILED", shape: "slashed", cls: "s-fault", rank: 5.5 },
+  fault: { word: "SENSOR FAULT", shape: "slashed", cls: "s-fault", rank: 5 },
+  nosignal: { word: "NO SIGNAL", shape: "dashed", cls: "s-nodata", rank: 4.5 },
   latched: { word: "LATCHED", shape: "hollow-triangle", cls: "s-latched", rank: 4, help: "the value has cleared but the alarm waits for an acknowledgement" },
-  gap: { word: "GAP", shape: "square", cls: "s-quality", rank: 2, help: "samples were lost; the spectrum is being rebuilt" },
-  overrun: { word: "OVERRUN", shape: "square", cls: "s-quality", rank: 2, help: "the analysis fell behind and dropped blocks" },
+  gap: { word: "GAP", shape: "square", cls: "s-quality", rank: 2 },
+  overrun: { word: "OVERRUN", shape: "square", cls: "s-quality", rank: 2 },
   ok: { word: "OK", shape: "ring", cls: "s-ok", rank: 0, help: "running, no alarm" },
   unknown: { word: "…", shape: "dashed", cls: "s-nodata", rank: -1, help: "waiting for the service" },
 };
 
-// The service's data-quality states (service/quality.py) → the keys above.
-export const STATUS_TO_STATE = { ok: "ok", "no-signal": "nosignal", gap: "gap", "sensor-fault": "fault", overrun: "overrun", failed: "failed" };
+// Presentation keys whose name differs from the service's state name (the keys are also the
+// `data-state` attributes app.css styles).
+const SHOWN_AS = { "no-signal": "nosignal", "sensor-fault": "fault", normal: "ok" };
+
+// The service's channel data-quality states → the keys above, and whether each is live.
+// Filled by loadStates(); until then every status shows as "unknown".
+export const STATUS_TO_STATE = {};
+const LIVE = {};
+// alarm states and channel states (the two sets "status" and "transition" events name)
+const EVENT_STATE = {};
+
+/** Load the state sets and their meanings from GET /api/v1/meta (once, at start, after
+ *  sign-in: the route reads like any other). Retries every 2 s until the service answers. */
+export async function loadStates() {
+  for (;;) {
+    try {
+      applyMeta(await getJSON(`${API}/meta`));
+      return;
+    } catch {
+      await new Promise((r) => setTimeout(r, 2000));
+    }
+  }
+}
+
+function applyMeta(meta) {
+  for (const c of meta.channel_statuses) {
+    const key = SHOWN_AS[c.name] ?? c.name;
+    STATUS_TO_STATE[c.name] = key;
+    EVENT_STATE[c.name] = key;
+    LIVE[c.name] = c.live;
+    if (STATES[key]) {
+      STATES[key].live = c.live ? undefined : false;
+      if (key !== "ok") STATES[key].help = c.meaning + (c.suspends_alarms ? "; its alarms are frozen" : "");
+    }
+  }
+  for (const a of meta.alarm_states) {
+    const key = SHOWN_AS[a.name] ?? a.name;
+    EVENT_STATE[a.name] = key;
+    if (STATES[key] && key !== "ok" && key !== "latched") STATES[key].help = a.meaning;
+  }
+}
+
+/** The state key of a "from"/"to" state of an event: an alarm state, or a channel's
+ *  data-quality state for "status" events; "ok" for anything else. */
+export function eventStateKey(name) {
+  return EVENT_STATE[name] ?? "ok";
+}
 
 /** Is a channel status one whose values are live (new and trustworthy)? */
 export function isLive(status) {
-  return STATES[STATUS_TO_STATE[status]]?.live !== false;
+  return LIVE[status] !== false;
 }
 
 /** The state key of an alarm entry from /api/v1/alarms. */

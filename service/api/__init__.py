@@ -29,6 +29,7 @@ from . import (
     docs,
     edge,
     health,
+    meta,
     metrics,
     security,
     stream,
@@ -99,6 +100,7 @@ def create_app(
     app.include_router(alarms.router, prefix="/api/v1")
     app.include_router(trends.router, prefix="/api/v1")
     app.include_router(admin.router, prefix="/api/v1")
+    app.include_router(meta.router, prefix="/api/v1")
     app.include_router(metrics.router)
     docs.mount(app)
     web_dir = Path(web.__file__).parent  # the installed package's files, not the working dir

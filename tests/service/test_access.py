@@ -78,6 +78,7 @@ ROUTES: list[tuple[str, str, str]] = [
     ("GET", "/api/v1/channels/a/tones", "read"),
     ("GET", "/api/v1/channels/a/trend?name=overall", "read"),
     ("GET", "/api/v1/windows/hann/response", "read"),
+    ("GET", "/api/v1/meta", "read"),
     ("GET", "/api/v1/alarms", "read"),
     ("GET", "/api/v1/events", "read"),
     ("GET", "/api/v1/events/1", "read"),
@@ -95,7 +96,7 @@ ROUTE_TEMPLATES = {  # the app's path templates the ROUTES above stand for
     "/api/v1/channels/{channel_id}/trend", "/api/v1/windows/{window}/response",
     "/api/v1/alarms", "/api/v1/events", "/api/v1/events/{event_id}",
     "/api/v1/events/{event_id}/evidence", "/api/v1/alarms/{rule}/ack",
-    "/api/v1/admin/reload", "/api/v1/stream",
+    "/api/v1/admin/reload", "/api/v1/stream", "/api/v1/meta",
 }
 
 

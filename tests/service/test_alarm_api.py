@@ -182,10 +182,10 @@ def reference_band(x: np.ndarray) -> np.ndarray:
 
 
 def reference_events(t_ns: np.ndarray, v: np.ndarray, *, latch: bool) -> list[tuple[int, str, str]]:
-    """(t_ns, from, to) from the semantics documented in service/alarms.py (common practice):
-    a level is reached at value ≥ level and must hold at every frame for on_delay; it clears
-    below level·(1 − h) held for off_delay; the most severe qualified level wins; a latching
-    rule that clears goes to "latched"."""
+    """(t_ns, from, to) from the semantics documented in service/alarms/__init__.py (common
+    practice): a level is reached at value ≥ level and must hold at every frame for on_delay;
+    it clears below level·(1 − h) held for off_delay; the most severe qualified level wins; a
+    latching rule that clears goes to "latched"."""
     names = {0: "normal", 1: "alert", 2: "danger"}
     levels = (ALERT, DANGER)
     above: list[int | None] = [None, None]
@@ -491,7 +491,7 @@ def test_alarm_goes_normal_alert_danger_alert_normal_at_levels_and_delays(run: R
     for e, (t_pred, _, _), t_step, delay, level in zip(
         evs, run.predicted[RULE1], steps, delays, levels, strict=True
     ):
-        # service/alarms.py (common practice): the value must hold past the level for the
+        # service/alarms/__init__.py (common practice): the value must hold past the level for the
         # whole delay, and it cannot have crossed before the amplitude changed
         assert e["t_ns"] >= t_step + delay - CLOCK_NS, e
         # ... at the frame where the documented semantics put it, within one hop + block

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -502,9 +503,9 @@ def test_transition_table_refuses_invalid_transitions() -> None:
 def test_rule_checks_its_arguments() -> None:
     with pytest.raises(ValueError, match="kind='peak' is not one of 'band', 'tone', 'overall'"):
         overall_rule(kind="peak")
-    with pytest.raises(ValueError, match="need 0 < alert < danger"):
+    with pytest.raises(ValueError, match=r"rule 'm1.overall': danger: 2 must be above alert 3"):
         overall_rule(alert=3.0)
-    with pytest.raises(ValueError, match="absolute levels or a baseline, not both"):
+    with pytest.raises(ValueError, match="absolute alert/danger or baseline_learn_s, not both"):
         overall_rule(baseline={"learn_s": 5, "alert_factor": 2, "danger_factor": 4})
     with pytest.raises(ValueError, match="give alert_factor and danger_factor, or alert_db"):
         Baseline(learn_s=5, alert_factor=2, danger_db=12)
@@ -587,3 +588,27 @@ def test_rules_from_config_errors_name_the_entry() -> None:
     cfg = parse_config(CONFIG, env={})
     with pytest.raises(ValueError, match=r"alarms\[3\].channel: 'fan-h' is not a channel"):
         rules_from_config(cfg, ["p1-de-h"])
+
+
+def test_a_snapshot_written_before_the_alarms_package_still_restores() -> None:
+    # data/alarm_snapshot_v1.json: snapshot() and views() of four rules (absolute, latching
+    # and acknowledged in a sensor fault, learning a factor baseline, a learned dB baseline)
+    # as written by the single-module service/alarms.py; the format must stay readable.
+    saved = json.loads((Path(__file__).parent / "data" / "alarm_snapshot_v1.json").read_text())
+    rules = [
+        overall_rule("m1"),
+        overall_rule("m2", latch=True, on_delay_s=0.0, off_delay_s=1.0),
+        overall_rule("m3", alert=None, danger=None, on_delay_s=1.0,
+                     baseline={"learn_s": 30, "alert_factor": 2, "danger_factor": 4}),
+        overall_rule("m4", alert=None, danger=None,
+                     baseline={"learn_s": 5, "alert_db": 6, "danger_db": 12}),
+    ]
+    engine = AlarmEngine(rules)
+    engine.restore(saved["snapshot"])
+    assert [v.as_dict() for v in engine.views()] == saved["views"]
+    assert engine.snapshot() == saved["snapshot"]
+    # and it runs on from there: m2's fault ends with the value low, and the latching alarm
+    # goes straight to normal (not latched): it was acknowledged while the value was high
+    events = engine.evaluate(frame("m2", 29, overall=0.1), "ok")
+    events += engine.evaluate(frame("m2", 30.5, overall=0.1), "ok")
+    assert [(e.from_state, e.to_state) for e in events] == [("danger", "normal")]

@@ -22,7 +22,8 @@ from fastapi.testclient import TestClient
 from service import cli
 from service.api import create_app
 from service.app import Service
-from service.config import channel_settings, effective_analysis, load_config, profiles_of
+from service.config import channel_settings, load_config, profiles_of
+from service.lookups import effective_analysis
 from service.sources.simulated import DEMO_FS
 from service.types import SampleBlock
 from tests.service.conftest import to_toml

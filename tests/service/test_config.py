@@ -357,6 +357,17 @@ BAD = [
         r"tokens\[0\]\.sha256: must be the 64 hex digits of a SHA-256 digest",
     ),
     (_set("bogus", 1), r"bogus: unknown key"),
+    (  # a factor pair plus half a dB pair: the Baseline refused it only at start-up before
+        _append("alarms", {"overall": True, "baseline_learn_s": 60, "alert_factor": 2,
+                           "danger_factor": 4, "alert_db": 6}),
+        r"alarms\[0\]: with baseline_learn_s give alert_factor and danger_factor, or "
+        r"alert_db and danger_db",
+    ),
+    (  # factors the wrong way round: also refused by the config now, not first by Baseline
+        _append("alarms", {"overall": True, "baseline_learn_s": 60, "alert_factor": 4,
+                           "danger_factor": 2}),
+        r"alarms\[0\]\.danger_factor: 2 must be above alert_factor 4",
+    ),
 ]
 
 
@@ -549,3 +560,18 @@ def test_tls_needs_both_files(given: dict[str, str], problem: str) -> None:
     with pytest.raises(ConfigError) as e:
         _parse(d)
     assert any(p.startswith(problem) for p in e.value.problems), e.value.problems
+
+
+def test_an_alarm_entry_and_a_rule_refuse_the_same_levels() -> None:
+    # one rule (service/entries.py) behind both: the config's message and the Rule's agree
+    from service.alarms import Rule
+
+    d = _base()
+    d["alarms"] = [{"channel": "p1-de-h", "overall": True, "alert": 3.0, "danger": 2.0}]
+    with pytest.raises(ConfigError) as e:
+        _parse(d)
+    assert e.value.problems == ["alarms[0].danger: 2 must be above alert 3"]
+    with pytest.raises(ValueError) as r:
+        Rule(id="p1-de-h.overall", channel="p1-de-h", kind="overall", name="overall",
+             alert=3.0, danger=2.0)
+    assert str(r.value) == "rule 'p1-de-h.overall': danger: 2 must be above alert 3"

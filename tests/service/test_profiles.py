@@ -19,12 +19,10 @@ from service.alarms import rules_from_config
 from service.app import demo_config
 from service.config import (
     ConfigError,
-    bands_for,
-    effective_analysis,
     parse_config,
     profiles_of,
-    tones_for,
 )
+from service.lookups import bands_for, effective_analysis, tones_for
 from service.profiles import ProfileBank, plan_profiles
 
 FS = 12800.0  # Hz, the demo's rate: 2.56 × 5 kHz (common practice: fs = 2.56·Fmax)

@@ -60,6 +60,7 @@ GET_ROUTES = [
     "/api/v1/events/{event_id}",
     "/api/v1/events/{event_id}/evidence",
     "/api/v1/windows/{window}/response",
+    "/api/v1/meta",
     "/metrics",
 ]
 

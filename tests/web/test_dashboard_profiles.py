@@ -203,7 +203,7 @@ def rule_view(rule: str, kind: str, name: str, profile: str) -> dict[str, str]:
 
 RULES = [
     # (rule view, words in the alarm list). Rule ids as the service makes them (its alarm
-    # API; service/alarms.py rule_id): <channel>.<profile>.<kind>… for a rule on a
+    # API; service/alarms/rules.py rule_id): <channel>.<profile>.<kind>… for a rule on a
     # non-primary profile, <channel>.<kind>… for a primary one.
     (rule_view("p1-de-h.narrow.band.1x", "band", "1x", "narrow"), "1x band · narrow"),
     (rule_view("p1-de-h.narrow.overall", "overall", "overall", "narrow"), "overall · narrow"),

@@ -1,0 +1,36 @@
+"""Questions asked of a validated config: which channels, which source, which settings and
+profiles a channel has.
+
+Pure functions over the models; nothing about the engine (what a profile analyses is in
+``service.lookups``)."""
+
+from __future__ import annotations
+
+from .models import DEFAULT_PROFILE, ChannelConfig, Config, SourceConfig
+
+
+def channel_ids(cfg: Config) -> list[str]:
+    """Every channel id the sources name, in source order then interleave order."""
+    return [c for s in cfg.sources for c in s.channels]
+
+
+def source_of(cfg: Config, channel_id: str) -> SourceConfig | None:
+    """The source whose ``channels`` list names ``channel_id``, or None."""
+    return next((s for s in cfg.sources if channel_id in s.channels), None)
+
+
+def channel_settings(cfg: Config, channel_id: str) -> ChannelConfig:
+    """The ``[[channels]]`` entry for ``channel_id``, or the defaults if it has none."""
+    entry = next((c for c in cfg.channels if c.id == channel_id), None)
+    return entry if entry is not None else ChannelConfig.model_validate({"id": channel_id})
+
+
+def profile_names(cfg: Config) -> list[str]:
+    """Every analysis profile name, in file order (``["default"]`` without [profiles])."""
+    return list(cfg.profiles) or [DEFAULT_PROFILE]
+
+
+def profiles_of(cfg: Config, channel_id: str) -> list[str]:
+    """The profiles ``channel_id`` runs, its primary one first."""
+    own = channel_settings(cfg, channel_id).profiles
+    return list(own) if own else profile_names(cfg)

@@ -1,0 +1,180 @@
+"""What one channel's profile analyses, from the config: its effective analysis settings,
+its bands (as ``dsp.bands.Band``) and its tracked tones (as ``dsp.analyzer.ToneDef``).
+
+The config → dsp lookups the profile plan (``service.profiles``), the alarm rules and the
+config's cross-checks share. Pure functions over a validated config; no I/O."""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+
+from pydantic import BaseModel
+
+from dsp.analyzer import ToneDef
+from dsp.bands import Band, octave_bands
+
+from .config.models import AnalysisSettings, BandConfig, Config
+from .config.queries import channel_settings, profiles_of
+
+__all__ = ["bands_for", "effective_analysis", "missing_value", "tones_for", "watched"]
+
+
+def _primary(cfg: Config, channel_id: str, profile: str | None) -> str:
+    return profiles_of(cfg, channel_id)[0] if profile is None else profile
+
+
+def effective_analysis(
+    cfg: Config, channel_id: str, profile: str | None = None
+) -> AnalysisSettings:
+    """``[analysis]``, then the channel's own ``analysis`` overrides, then those of
+    ``profile`` (default: the channel's primary profile) — the later wins."""
+    override: BaseModel = channel_settings(cfg, channel_id).analysis
+    out = cfg.analysis.model_copy(update=override.model_dump(exclude_none=True))
+    prof: BaseModel | None = cfg.profiles.get(_primary(cfg, channel_id, profile))
+    if prof is not None:
+        out = out.model_copy(update=prof.model_dump(exclude_none=True))
+    return out
+
+
+def _expand_band(b: BandConfig) -> list[Band]:
+    if b.octave is not None:  # _Checker has made sure 0 < lo_hz < hi_hz
+        sets = octave_bands(b.octave, b.lo_hz or 0.0, b.hi_hz or 0.0)
+        return [ob.as_band(prefix=f"{b.name} ") for ob in sets]
+    if b.lo_order is not None and b.hi_order is not None:
+        return [Band(b.name, b.lo_order, b.hi_order, "order")]
+    return [Band(b.name, b.lo_hz or 0.0, b.hi_hz or 0.0, "hz")]
+
+
+def _is_order_band(b: BandConfig) -> bool:
+    return b.lo_order is not None or b.hi_order is not None
+
+
+def _top_hz(hz: float | None, order: float | None, speed_rpm: float | None) -> float | None:
+    """Highest frequency (Hz) a band edge or tone reaches; None if it has no speed to use."""
+    if hz is not None:
+        return hz
+    return None if order is None or speed_rpm is None else order * speed_rpm / 60.0
+
+
+def _covers(fmax_hz: float, top_hz: float | None) -> bool:
+    return top_hz is None or top_hz <= fmax_hz * (1 + 1e-9)
+
+
+def _applies(item_profile: str, profile: str, fmax_hz: float, top_hz: float | None) -> bool:
+    """Does a band/tone given for ``item_profile`` belong to ``profile`` (Fmax ``fmax_hz``)?"""
+    if item_profile == "*":
+        return _covers(fmax_hz, top_hz)
+    return item_profile == profile
+
+
+def bands_for(cfg: Config, channel_id: str, profile: str | None = None) -> list[Band]:
+    """The bands of one channel's profile (default: its primary one), in file order, as
+    :class:`dsp.bands.Band` (Hz or orders).
+
+    ``"*"`` bands apply to every channel except where the channel has a band of the same
+    name of its own; ``"*"`` order bands skip channels without ``speed_rpm``; an octave set
+    becomes one band per IEC 61260-1 band, named ``"<name> <mid-band>"`` (e.g. "thirds 1 kHz").
+    A band with ``profile = "*"`` goes to each profile whose fmax_hz reaches its upper edge.
+    """
+    profile = _primary(cfg, channel_id, profile)
+    rpm = channel_settings(cfg, channel_id).speed_rpm
+    fmax = effective_analysis(cfg, channel_id, profile).fmax_hz
+
+    def expand(b: BandConfig) -> list[Band]:
+        return [
+            band
+            for band in _expand_band(b)
+            if _applies(
+                b.profile, profile, fmax,
+                _top_hz(band.hi if band.basis == "hz" else None,
+                        band.hi if band.basis == "order" else None, rpm),
+            )
+        ]
+
+    own_names = {band.name for b in cfg.bands if b.channel == channel_id for band in expand(b)}
+    out: list[Band] = []
+    for b in cfg.bands:
+        if b.channel == channel_id:
+            out += expand(b)
+        elif b.channel == "*" and (rpm is not None or not _is_order_band(b)):
+            out += [band for band in expand(b) if band.name not in own_names]
+    return out
+
+
+def tones_for(cfg: Config, channel_id: str, profile: str | None = None) -> list[ToneDef]:
+    """The tracked tones of one channel's profile (same rules as :func:`bands_for`)."""
+    profile = _primary(cfg, channel_id, profile)
+    rpm = channel_settings(cfg, channel_id).speed_rpm
+    fmax = effective_analysis(cfg, channel_id, profile).fmax_hz
+    mine = [
+        t for t in cfg.tones
+        if _applies(t.profile, profile, fmax, _top_hz(t.hz, t.order, rpm))
+    ]
+    own_names = {t.name for t in mine if t.channel == channel_id}
+    return [
+        ToneDef(t.name, hz=t.hz, order=t.order)
+        for t in mine
+        if t.channel == channel_id
+        or (t.channel == "*" and t.name not in own_names and (rpm is not None or t.order is None))
+    ]
+
+
+def _watched_profiles(mine: list[str], profile: str | None) -> list[str]:
+    return mine if profile in (None, "*") else [p for p in mine if p == profile]
+
+
+def watched(
+    cfg: Config, targets: Sequence[str], profile: str | None, kind: str, name: str
+) -> list[tuple[str, str | None]]:
+    """(channel, profile) pairs an alarm entry watches; profile None: the value is missing.
+
+    ``profile`` None: the channel's first profile that has the value (overall: its primary
+    one); ``"*"``: every profile that has it; a name: that profile (skipped on channels that
+    do not run it)."""
+    out: list[tuple[str, str | None]] = []
+    for ch in targets:
+        mine = profiles_of(cfg, ch)
+        if profile not in (None, "*"):
+            if profile not in mine:
+                continue
+            mine = [profile]
+        if kind == "overall":
+            have = mine
+        else:
+            lookup = bands_for if kind == "band" else tones_for
+            have = [p for p in mine if name in [x.name for x in lookup(cfg, ch, p)]]
+        if not have:
+            out.append((ch, None))
+        else:
+            out += [(ch, p) for p in (have if profile == "*" else have[:1])]
+    return out
+
+
+def missing_value(
+    cfg: Config,
+    where: str,
+    channel: str,
+    profile: str | None,
+    kind: str,
+    name: str,
+    targets: Sequence[str],
+    profiles: Callable[[str], list[str]] | None = None,
+) -> str | None:
+    """The problem of an alarm entry (at ``where``) on band or tone ``name`` that none of
+    its ``targets`` has in the profiles it watches (``profiles(ch)``: a channel's profiles,
+    default its configured ones), listing the names there are; None if one has it.
+    The config's cross-checks and :func:`service.alarms.rules_from_config` both ask this."""
+    lookup = bands_for if kind == "band" else tones_for
+    runs = profiles or (lambda ch: profiles_of(cfg, ch))
+    have = {
+        t: [x.name for p in _watched_profiles(runs(t), profile) for x in lookup(cfg, t, p)]
+        for t in targets
+    }
+    if any(name in names for names in have.values()):
+        return None
+    listed = sorted({n for names in have.values() for n in names})
+    on = "any channel" if channel == "*" else f"channel {channel!r}"
+    if profile not in (None, "*"):
+        on += f", profile {profile!r}"
+    return (f"{where}.{kind}: {name!r} is not a {kind} of {on} "
+            f"({kind}s: {', '.join(map(repr, listed)) or 'none'})")
