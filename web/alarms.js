@@ -7,18 +7,9 @@ import { STATES, STATUS_TO_STATE, alarmStateKey, badge, glyph } from "./states.j
 
 const RANK = { danger: 3, alert: 2, latched: 1, ok: 0 };
 
-/**
- * The analysis profile an alarm rule (or event) watches when it is not its channel's primary
- * one, else "". The service names such rules `<channel>.<profile>.<kind>…` and primary ones
- * `<channel>.<kind>…`; the rule id decides, so no channel list is needed.
- */
+/** The analysis profile an alarm rule watches when it is not its channel's primary one, else "". */
 export function ruleProfile(a) {
-  const p = a?.profile;
-  if (!p || !a.rule || !a.channel) return "";
-  const head = `${a.channel}.${p}.`;
-  if (!a.rule.startsWith(head)) return "";
-  const rest = a.rule.slice(head.length);
-  return (a.kind === "overall" ? rest === "overall" : rest.startsWith(`${a.kind}.`)) ? p : "";
+  return a?.primary === false ? a.profile || "" : "";
 }
 
 /** What an alarm watches, in words: "bearing band", "overall", "1x tone", "1x band · narrow". */

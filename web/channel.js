@@ -2,7 +2,7 @@
 // bars, tones and peaks, trend, and this channel's alarms and events. Gets data from the
 // shell's events; draws through the plots.
 
-import { API, ApiError, features, getJSON, isMissingRoute, qs } from "./api.js";
+import { API, ApiError, getJSON, qs } from "./api.js";
 import { AMP_CHOICES, UNIT_CHOICES, ampLabel, esc, fmtClock, fmtHz, fmtHzAt, fmtHzExact, fmtVal, unitLabel } from "./fmt.js";
 import { badge } from "./states.js";
 import { SpectrumPlot } from "./spectrum.js";
@@ -88,7 +88,7 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
           <header id="thirds-head">Third-octave bands</header><canvas id="thirds" class="plot-thirds"></canvas></section>
         <section class="panel" id="ch-alarms-panel" hidden><header>Alarms on this channel</header><ul class="alarms" id="ch-alarms"></ul></section>
         <section class="panel"><header>Tones and peaks <span class="hint" id="tones-unit"></span></header><table class="tones" id="tones"></table></section>
-        <section class="panel" id="ch-events-panel" hidden><header>Events <a class="hint" href="#/events?channel=${encodeURIComponent(id)}">full log</a></header>
+        <section class="panel" id="ch-events-panel"><header>Events <a class="hint" href="#/events?channel=${encodeURIComponent(id)}">full log</a></header>
           <ul class="evlist" id="ch-events"></ul></section>
       </div>
     </div>`;
@@ -498,8 +498,7 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
 
   let evBusy = false;
   async function loadEvents() {
-    $("#ch-events-panel").hidden = features.events !== true;
-    if (features.events !== true || evBusy) return;
+    if (evBusy) return;
     evBusy = true;
     try {
       const j = await getJSON(`${API}/events${qs({ channel: id, limit: 10 })}`);
@@ -573,51 +572,37 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
     const head = ctx.profileKey(id, prof) ? `${id}.${ctx.profileKey(id, prof)}` : id;
     const ruleId = isFrame ? `${head}.overall` : `${head}.band.${slug(st.trendName)}`;
     let evList = st.events || [];
-    if (features.events === true) {
-      try {
-        evList = (await getJSON(`${API}/events${qs({ channel: id, since: Math.round((nowMs - span) * 1e6), limit: 500 })}`)).events || [];
-      } catch {
-        /* markers are a bonus */
-      }
+    try {
+      evList = (await getJSON(`${API}/events${qs({ channel: id, since: Math.round((nowMs - span) * 1e6), limit: 500 })}`)).events || [];
+    } catch {
+      /* markers are a bonus */
     }
     const evs = evList.filter((e) => e.kind === "transition" && e.rule === ruleId)
       .map((e) => ({ t_ms: e.t_ns / 1e6, state: e.to_state, text: `${e.from_state} → ${e.to_state} at ${fmtVal(e.value)}` }));
     const base = { range: [nowMs - span, nowMs], unit, alert: rule?.alert, danger: rule?.danger, events: evs };
-    if (features.trend !== false) {
-      const name = isFrame ? "overall" : `band:${st.trendName}`;
-      // about 600 points or fewer, on steps a store keeping 10 s / 1 min / 1 h buckets can give
-      const stepS = TREND_STEPS_S.find((x) => (span / 1000) / x <= 600) ?? 86400;
-      const url = (step) => `${API}/channels/${encodeURIComponent(id)}/trend${qs({ name, since: (nowMs - span) / 1000, until: nowMs / 1000, step, profile: asked })}`;
+    const name = isFrame ? "overall" : `band:${st.trendName}`;
+    // about 600 points or fewer, on steps a store keeping 10 s / 1 min / 1 h buckets can give
+    const stepS = TREND_STEPS_S.find((x) => (span / 1000) / x <= 600) ?? 86400;
+    const url = (step) => `${API}/channels/${encodeURIComponent(id)}/trend${qs({ name, since: (nowMs - span) / 1000, until: nowMs / 1000, step, profile: asked })}`;
+    try {
+      let j;
       try {
-        let j;
-        try {
-          j = await getJSON(url(stepS));
-        } catch (e) {
-          if (!(e instanceof ApiError) || e.status === 404) throw e;
-          j = await getJSON(url(null)); // the service did not like the step: let it choose
-        }
-        if (asked !== st.profile) return; // the profile changed meanwhile; loadTrend runs again
-        features.trend = true;
-        const pts = (j.points || []).map((p) => ({ t_ms: p.t_ns / 1e6, mean: p.mean, min: p.min, max: p.max }));
-        trend.set({ ...base, points: pts });
-        $("#trend-note").textContent = `stored history, ${fmtStep(j.step_s ?? stepS)} steps`;
-        return;
+        j = await getJSON(url(stepS));
       } catch (e) {
-        if (asked !== st.profile) return;
-        if (isMissingRoute(e)) features.trend = false;
-        else if (e instanceof ApiError && e.status === 404) {
-          trend.set({ ...base, points: [] });
-          $("#trend-note").textContent = "nothing stored under this name yet";
-          return;
-        } else return; // unreachable or failing: keep what is drawn
+        if (!(e instanceof ApiError) || e.status === 404) throw e;
+        j = await getJSON(url(null)); // the service did not like the step: let it choose
       }
+      if (asked !== st.profile) return; // the profile changed meanwhile; loadTrend runs again
+      const pts = (j.points || []).map((p) => ({ t_ms: p.t_ns / 1e6, mean: p.mean, min: p.min, max: p.max }));
+      trend.set({ ...base, points: pts });
+      $("#trend-note").textContent = `stored history, ${fmtStep(j.step_s ?? stepS)} steps`;
+    } catch (e) {
+      if (asked !== st.profile) return;
+      if (e instanceof ApiError && e.status === 404) {
+        trend.set({ ...base, points: [] });
+        $("#trend-note").textContent = "nothing stored under this name yet";
+      } // else unreachable or failing: keep what is drawn
     }
-    const pts = ctx.history(id, st.trendName, prof).map(([t, v]) => ({ t_ms: t, mean: v }));
-    // Only this session's values: show the part of the period that holds them.
-    const have = pts.length ? nowMs - pts[0].t_ms : 0;
-    const shown = Math.min(span, Math.max(5 * 60e3, have * 1.1));
-    trend.set({ ...base, range: [nowMs - shown, nowMs], points: pts });
-    $("#trend-note").textContent = "this service keeps no history: values since this page opened";
   }
 
   // --- events from the app ----------------------------------------------------------
@@ -640,11 +625,10 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
       if (ctx.store.conn !== "reconnecting" && !st.meta) loadMeta();
     },
     "alarm-event": () => loadEvents(),
-    features: () => loadEvents(),
     tick: () => {
       staleCheck();
       renderFacts();
-      if (Date.now() - trendAt > (features.trend === false ? 2000 : 15000)) loadTrend();
+      if (Date.now() - trendAt > 15000) loadTrend();
       if (!ctx.live.wsOpen && !(tickN++ % 5)) loadEvents(); // pushed while the stream is up
     },
   };

@@ -1,7 +1,7 @@
 // The alarms-and-events view: active/latched alarms with acknowledgement, and the event log
 // (newest first, paged, by channel). No plotting; alarm markup comes from alarms.js.
 
-import { API, features, getJSON, qs } from "./api.js";
+import { API, getJSON, qs } from "./api.js";
 import { esc } from "./fmt.js";
 import { alarmListHtml, eventHeadHtml, eventRowHtml } from "./alarms.js";
 
@@ -53,10 +53,6 @@ export function mount(root, ctx) {
 
   /** Newest page (refresh) or the next older page (`older`). */
   async function load(older = false) {
-    if (features.events === false) {
-      $("#ev-log-panel").hidden = true;
-      return;
-    }
     if (busy) return;
     busy = true;
     try {
@@ -94,7 +90,6 @@ export function mount(root, ctx) {
     alarms: renderAlarms,
     channels: fillChannels,
     "alarm-event": () => load(),
-    features: () => load(),
     // events arrive pushed over the stream ("alarm-event"); poll only while it is down
     tick: () => {
       if (!ctx.live.wsOpen && !(n++ % 5)) load();

@@ -1,7 +1,7 @@
 // The dashboard shell: shared state fed by the live link, header, channel sidebar, router.
 // Knows no plot internals; views get data through `app` events and the `ctx` it hands them.
 
-import { API, features, getJSON, isMissingRoute } from "./api.js";
+import { API, getJSON } from "./api.js";
 import { Live } from "./live.js";
 import { Surface, loadPalette } from "./plot.js";
 import { STATES, alarmStateKey, badge, channelStateKey, glyph, isLive } from "./states.js";
@@ -182,7 +182,6 @@ live.addEventListener("alarms", (e) => {
     const act = new Set(list.map((a) => a.rule));
     for (const [k, r] of store.rules) if (!act.has(r.rule) && r.state !== "normal") store.rules.set(k, { ...r, state: "normal", latched: false });
   }
-  document.getElementById("nav-events").hidden = features.events === false && list === null;
   renderAlarmSummary();
   renderSide();
   app.dispatchEvent(new CustomEvent("alarms", { detail: store.alarms }));
@@ -333,17 +332,6 @@ function route() {
   renderSide();
 }
 
-async function probeEvents() {
-  try {
-    await getJSON(`${API}/events?limit=1`);
-    features.events = true;
-  } catch (e) {
-    if (isMissingRoute(e)) features.events = false;
-  }
-  document.getElementById("nav-events").hidden = !(features.events || features.alarms);
-  app.dispatchEvent(new CustomEvent("features"));
-}
-
 async function init() {
   await signIn(); // with tokens configured nothing is read before the service accepts one
   loadPalette();
@@ -361,7 +349,6 @@ async function init() {
   window.addEventListener("hashchange", route);
   route();
   live.start();
-  probeEvents();
   setInterval(() => app.dispatchEvent(new CustomEvent("tick")), 1000);
 }
 

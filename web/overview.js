@@ -1,7 +1,7 @@
 // The plant view: channels by machine with state (word + shape), overall, history, main bands;
 // alarms and events beside. Reads the shell's state and the events/trend routes; no plot code.
 
-import { API, features, getJSON, isMissingRoute, qs } from "./api.js";
+import { API, getJSON, qs } from "./api.js";
 import { esc, fmtClock, fmtHz, fmtVal, unitLabel } from "./fmt.js";
 import { STATES, STATUS_TO_STATE, badge, glyph, isLive } from "./states.js";
 import { BandBars, bandRows, topBands } from "./bars.js";
@@ -111,20 +111,17 @@ export function mount(root, ctx) {
     }
   }
 
-  /** Fill the sparklines with the stored last ten minutes, when the service keeps trends. */
+  /** Fill the sparklines with the stored last ten minutes. */
   async function seedSparks() {
-    if (features.trend === false) return;
     for (const c of ctx.store.channels) {
       if (disposed || !c.latest) continue;
       const until = c.latest.timestamp_ns / 1e9;
       try {
         const j = await getJSON(`${API}/channels/${encodeURIComponent(c.id)}/trend${qs({ name: "overall", since: until - SPARK_MS / 1000, until, step: 10 })}`);
-        features.trend = true;
         ctx.seedHistory(c.id, ctx.FRAME, (j.points || []).map((p) => [p.t_ns / 1e6, p.mean]));
         cards.get(c.id)?.spark.surface.invalidate();
-      } catch (e) {
-        if (isMissingRoute(e)) features.trend = false;
-        return;
+      } catch {
+        return; // unreachable or failing: the sparklines fill from the live values
       }
     }
   }
@@ -208,15 +205,11 @@ export function mount(root, ctx) {
         ul.dataset.h = h;
       }
     }
-    document.getElementById("ov").classList.toggle("no-alarms", al === null && features.events !== true);
   }
 
   let evBusy = false;
   async function loadEvents() {
-    if (features.events !== true || evBusy || disposed) {
-      document.getElementById("ov-events").hidden = features.events !== true;
-      return;
-    }
+    if (evBusy || disposed) return;
     evBusy = true;
     try {
       const j = await getJSON(`${API}/events?limit=12`);
@@ -258,7 +251,6 @@ export function mount(root, ctx) {
       };
     })(),
     "alarm-event": () => loadEvents(),
-    features: () => loadEvents(),
   };
   let pendingBands = false;
   for (const [k, f] of Object.entries(on)) ctx.app.addEventListener(k, f);

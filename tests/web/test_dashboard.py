@@ -90,6 +90,13 @@ def canvas_digest(pg: Any, selector: str) -> dict[str, Any]:
 
 def test_page_loads_without_console_errors(demo: Service, page: tuple[Any, PageLog]) -> None:
     pg, log = page
+    # Every profile of every channel has its first bands (before that the service answers
+    # 503, which the browser logs as a console error): wait_all_channels waits for the
+    # primary profiles only.
+    for c in demo.wait_all_channels():
+        for p in c["profiles"]:
+            path = f"channels/{c['id']}/bands?profile={p['name']}"
+            wait_for(lambda path=path: demo.status(path)[0] == 200, f"{path} to answer 200")
     open_page(pg, demo.base_url + "/")
     wait_for(lambda: cards_filled(pg), "every channel card to show an overall value")
     # let a few polls/stream messages and the event probes happen

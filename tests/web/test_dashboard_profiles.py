@@ -197,20 +197,21 @@ def test_unknown_profile_in_the_url_shows_the_primary(
     assert not log.errors, log.errors
 
 
-def rule_view(rule: str, kind: str, name: str, profile: str) -> dict[str, str]:
-    return {"rule": rule, "channel": "p1-de-h", "kind": kind, "name": name, "profile": profile}
+def rule_view(rule: str, kind: str, name: str, profile: str, primary: bool) -> dict[str, Any]:
+    return {"rule": rule, "channel": "p1-de-h", "kind": kind, "name": name, "profile": profile,
+            "primary": primary}
 
 
 RULES = [
-    # (rule view, words in the alarm list). Rule ids as the service makes them (its alarm
-    # API; service/alarms.py rule_id): <channel>.<profile>.<kind>… for a rule on a
-    # non-primary profile, <channel>.<kind>… for a primary one.
-    (rule_view("p1-de-h.narrow.band.1x", "band", "1x", "narrow"), "1x band · narrow"),
-    (rule_view("p1-de-h.narrow.overall", "overall", "overall", "narrow"), "overall · narrow"),
-    (rule_view("p1-de-h.band.1x", "band", "1x", "wide"), "1x band"),
-    (rule_view("p1-de-h.band.1x", "band", "1x", ""), "1x band"),
+    # (rule view, words in the alarm list). Views as the service makes them (its alarm API;
+    # service/alarms.py AlarmView: `profile` and whether it is the channel's `primary` one).
+    (rule_view("p1-de-h.narrow.band.1x", "band", "1x", "narrow", False), "1x band · narrow"),
+    (rule_view("p1-de-h.narrow.overall", "overall", "overall", "narrow", False),
+     "overall · narrow"),
+    (rule_view("p1-de-h.band.1x", "band", "1x", "wide", True), "1x band"),
+    (rule_view("p1-de-h.band.1x", "band", "1x", "", True), "1x band"),
     # a primary profile that happens to be called "band"
-    (rule_view("p1-de-h.band.bearing", "band", "bearing", "band"), "bearing band"),
+    (rule_view("p1-de-h.band.bearing", "band", "bearing", "band", True), "bearing band"),
 ]
 
 
