@@ -4,6 +4,7 @@
 import { ApiError, ackAlarm, token } from "./api.js";
 import { esc, fmtAge, fmtDateTime, fmtVal, unitLabel } from "./fmt.js";
 import { STATES, STATUS_TO_STATE, alarmStateKey, badge, glyph } from "./states.js";
+import { live, store } from "./shared.js";
 
 const RANK = { danger: 3, alert: 2, latched: 1, ok: 0 };
 
@@ -95,7 +96,7 @@ export function eventHeadHtml({ showChannel = true } = {}) {
 // --- the acknowledge dialog -------------------------------------------------------------
 let pending = null;
 
-export function setupAck(ctx) {
+export function setupAck() {
   const dlg = document.getElementById("dlg-ack");
   const form = document.getElementById("ack-form");
   const msg = document.getElementById("ack-msg");
@@ -122,7 +123,7 @@ export function setupAck(ctx) {
       }
       msg.className = "ack-msg ok";
       msg.textContent = "Acknowledged.";
-      ctx.live.refreshPlant();
+      live.refreshPlant();
       setTimeout(() => dlg.open && dlg.close("done"), 700);
     } catch (err) {
       msg.textContent = ackError(err);
@@ -139,7 +140,7 @@ export function setupAck(ctx) {
     if (!b) return;
     e.preventDefault();
     const rule = b.dataset.ack;
-    const a = (ctx.store.alarms || []).find((x) => x.rule === rule) || { rule };
+    const a = (store.alarms || []).find((x) => x.rule === rule) || { rule };
     openAck(a);
   });
 }

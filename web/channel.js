@@ -11,6 +11,7 @@ import { BandBars, ThirdsChart, bandRows } from "./bars.js";
 import { TrendChart } from "./trend.js";
 import { alarmListHtml, eventItemHtml } from "./alarms.js";
 import { openFilter } from "./filterview.js";
+import { alarmsFor, app, bandsOf, channelState, fetchWatched, FRAME, levels, live, profileKey, store, tonesOf } from "./shared.js";
 
 const BEARING = /^(bpfo|bpfi|bsf|ftf)/i;
 const RANGES = { hour: 3600e3, day: 86400e3, month: 30 * 86400e3 };
@@ -26,12 +27,12 @@ export function channelHash(id, profile = "") {
  * Mount the channel view of channel `id` in `root`. `profile`: the analysis profile to show
  * ("" = the channel's primary one). Returns {unmount(), probe} (probe: what is on screen).
  */
-export function mount(root, ctx, id, { profile = "" } = {}) {
-  const chan = () => ctx.store.channels.find((c) => c.id === id);
+export function mount(root, id, { profile = "" } = {}) {
+  const chan = () => store.channels.find((c) => c.id === id);
   const prefs = JSON.parse(localStorage.getItem("quaver.view") || "{}");
   const st = {
     unit: "", amplitude: "", hold: false, meta: null, lastSpec: 0, lastT: 0, range: prefs.range || "hour",
-    trendName: ctx.FRAME, tones: null,
+    trendName: FRAME, tones: null,
     profile, // "" = the primary profile; else the name of the one shown
     fresh: true, // the next spectrum starts a new frequency axis
     profileNote: "",
@@ -39,7 +40,7 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
   // The channel's analysis profiles (primary first) as /channels describes them; [] when the
   // service has none. `cur` is the name of the one shown (null while unknown).
   const profiles = () => chan()?.profiles ?? [];
-  const primaryName = () => profiles()[0]?.name ?? ctx.live.profiles?.[id]?.[0] ?? null;
+  const primaryName = () => profiles()[0]?.name ?? live.profiles?.[id]?.[0] ?? null;
   const cur = () => st.profile || primaryName();
   const curProfile = () => profiles().find((p) => p.name === cur()) ?? null;
   // A message is this view's when it is of this channel and of the profile shown (a service
@@ -133,7 +134,7 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
 
   function subscribe() {
     const p = cur();
-    ctx.live.subscribe({ channels: [id], kinds: ["spectrum", "bands", "tones", "status", "alarms"], max_rate_hz: 10, unit: st.unit || undefined, amplitude: st.amplitude || undefined, profiles: p ? [p] : undefined });
+    live.subscribe({ channels: [id], kinds: ["spectrum", "bands", "tones", "status", "alarms"], max_rate_hz: 10, unit: st.unit || undefined, amplitude: st.amplitude || undefined, profiles: p ? [p] : undefined });
   }
 
   // --- analysis profiles ------------------------------------------------------------------
@@ -167,8 +168,8 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
     bandsAt = tonesAt = 0;
     trendNames = "";
     const have = curProfile()?.bands;
-    if (st.trendName !== ctx.FRAME && have && !have.includes(st.trendName)) {
-      st.trendName = ctx.FRAME;
+    if (st.trendName !== FRAME && have && !have.includes(st.trendName)) {
+      st.trendName = FRAME;
       trendChosen = false;
     }
     syncToolbar();
@@ -177,9 +178,9 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
     subscribe();
     loadMeta();
     loadTrend();
-    const b = ctx.bandsOf(id, cur());
+    const b = bandsOf(id, cur());
     if (b && mine(b)) onBands(b, true);
-    const t = ctx.tonesOf(id, cur());
+    const t = tonesOf(id, cur());
     if (t && mine(t)) onTones(t, true);
   }
 
@@ -366,8 +367,8 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
   function onBands(m, force = false) {
     if (!mine(m)) return;
     st.bands = m;
-    const { named, thirds: th } = bandRows(ctx, id, m);
-    ctx.fetchWatched(id, named); // values of bars watched on another profile
+    const { named, thirds: th } = bandRows(id, m);
+    fetchWatched(id, named); // values of bars watched on another profile
     plot.setBands(named);
     const now = performance.now();
     if (!force && now - bandsAt < TEXT_PERIOD_MS / 2) return;
@@ -419,11 +420,11 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
     const opt = $("#sel-unit").options[0];
     if (u0 && opt.textContent !== `${unitLabel(u0)} (channel)`) opt.textContent = `${unitLabel(u0)} (channel)`;
     if (!c) {
-      setText($("#ch-desc"), ctx.store.channels.length ? "no such channel" : "");
+      setText($("#ch-desc"), store.channels.length ? "no such channel" : "");
       return;
     }
     setText($("#ch-desc"), c.description || "");
-    const k = ctx.channelState(c);
+    const k = channelState(c);
     const bh = badge(k);
     if ($("#ch-badge").dataset.k !== k) {
       $("#ch-badge").innerHTML = bh;
@@ -459,7 +460,7 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
       f.push(["lines", `${m.lines} · Fmax ${fmtHzExact(m.fmax_hz)} · Δf ${fmtHzExact(m.df_hz)}`]);
       f.push(["window", `${m.window} · ENBW ${fmtVal(m.enbw_bins)} lines`]);
       f.push(["averaging", `${m.averaging ?? ""} ${m.averages}`]);
-      const L = curProfile()?.primary === false ? ctx.bandsOf(id, cur()) : c?.latest;
+      const L = curProfile()?.primary === false ? bandsOf(id, cur()) : c?.latest;
       f.push(["overall band", L?.overall_lo_hz != null
         ? `${fmtHz(L.overall_lo_hz)}–${fmtHz(L.overall_hi_hz)}`
         : `${fmtHz(m.lowcut_hz)}–${fmtHz(m.fmax_hz)}`]);
@@ -477,18 +478,18 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
 
   function staleCheck() {
     let s = "";
-    if (ctx.store.conn === "reconnecting") s = `no contact since ${new Date(ctx.store.downSince).toLocaleTimeString([], { hour12: false })}`;
+    if (store.conn === "reconnecting") s = `no contact since ${new Date(store.downSince).toLocaleTimeString([], { hour12: false })}`;
     else if (st.hold) s = `held at ${fmtClock(st.lastT)}`;
     else if (st.lastSpec && Date.now() - st.lastSpec > STALE_AFTER_MS) s = `no new spectrum for ${Math.round((Date.now() - st.lastSpec) / 1000)} s`;
     plot.setStale(s);
-    bars.setStale(ctx.store.conn === "reconnecting");
+    bars.setStale(store.conn === "reconnecting");
   }
 
   function renderAlarms() {
-    const al = ctx.store.alarms;
+    const al = store.alarms;
     $("#ch-alarms-panel").hidden = al === null;
     if (al === null) return;
-    const h = alarmListHtml(ctx.alarmsFor(id), { showChannel: false });
+    const h = alarmListHtml(alarmsFor(id), { showChannel: false });
     const ul = $("#ch-alarms");
     if (ul.dataset.h !== h) {
       ul.innerHTML = h;
@@ -535,7 +536,7 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
     if (joined === trendNames) return;
     trendNames = joined;
     const sel = $("#sel-trend");
-    sel.innerHTML = `<option value="${esc(ctx.FRAME)}">overall ${esc(band)}</option>` + names.map((n) => `<option value="${esc(n)}"${n === st.trendName ? " selected" : ""}>${esc(n)} band</option>`).join("");
+    sel.innerHTML = `<option value="${esc(FRAME)}">overall ${esc(band)}</option>` + names.map((n) => `<option value="${esc(n)}"${n === st.trendName ? " selected" : ""}>${esc(n)} band</option>`).join("");
     sel.value = st.trendName;
   }
 
@@ -565,11 +566,11 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
     const prof = cur();
     const span = RANGES[st.range];
     const nowMs = st.lastT ? st.lastT / 1e6 : Date.now();
-    const isFrame = st.trendName === ctx.FRAME;
-    const rule = isFrame ? ctx.levels(id, "overall", "overall", prof) : ctx.levels(id, "band", st.trendName, prof);
-    const unit = ctx.bandsOf(id, prof)?.unit || curProfile()?.unit || chan()?.latest?.unit || "";
+    const isFrame = st.trendName === FRAME;
+    const rule = isFrame ? levels(id, "overall", "overall", prof) : levels(id, "band", st.trendName, prof);
+    const unit = bandsOf(id, prof)?.unit || curProfile()?.unit || chan()?.latest?.unit || "";
     // rule ids name a profile other than the primary one (README, HTTP API)
-    const head = ctx.profileKey(id, prof) ? `${id}.${ctx.profileKey(id, prof)}` : id;
+    const head = profileKey(id, prof) ? `${id}.${profileKey(id, prof)}` : id;
     const ruleId = isFrame ? `${head}.overall` : `${head}.band.${slug(st.trendName)}`;
     let evList = st.events || [];
     try {
@@ -617,32 +618,32 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
     alarms: () => {
       renderAlarms();
       renderHead();
-      const m = ctx.bandsOf(id, cur());
+      const m = bandsOf(id, cur());
       if (m) onBands(m, true);
     },
     conn: () => {
       staleCheck();
-      if (ctx.store.conn !== "reconnecting" && !st.meta) loadMeta();
+      if (store.conn !== "reconnecting" && !st.meta) loadMeta();
     },
     "alarm-event": () => loadEvents(),
     tick: () => {
       staleCheck();
       renderFacts();
       if (Date.now() - trendAt > 15000) loadTrend();
-      if (!ctx.live.wsOpen && !(tickN++ % 5)) loadEvents(); // pushed while the stream is up
+      if (!live.wsOpen && !(tickN++ % 5)) loadEvents(); // pushed while the stream is up
     },
   };
   let tickN = 0;
-  for (const [k, f] of Object.entries(on)) ctx.app.addEventListener(k, f);
+  for (const [k, f] of Object.entries(on)) app.addEventListener(k, f);
   syncToolbar();
   subscribe();
   loadMeta();
   renderHead();
   renderAlarms();
   renderProfiles();
-  const m0 = ctx.bandsOf(id, cur());
+  const m0 = bandsOf(id, cur());
   if (m0) onBands(m0);
-  const t0 = ctx.tonesOf(id, cur());
+  const t0 = tonesOf(id, cur());
   if (t0) onTones(t0);
   loadEvents().then(loadTrend);
   return {
@@ -658,7 +659,7 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
       bars: () => bars.rows.map((r) => ({ name: r.name, value: r.value, alert: r.alert, danger: r.danger, state: r.state, via: r.via })),
     },
     unmount() {
-      for (const [k, f] of Object.entries(on)) ctx.app.removeEventListener(k, f);
+      for (const [k, f] of Object.entries(on)) app.removeEventListener(k, f);
       plot.surface.dispose();
       sg.surface.dispose();
       bars.surface.dispose();

@@ -4,8 +4,9 @@
 import { API, getJSON, qs } from "./api.js";
 import { esc } from "./fmt.js";
 import { alarmListHtml, eventHeadHtml, eventRowHtml } from "./alarms.js";
+import { app, live, store } from "./shared.js";
 
-export function mount(root, ctx) {
+export function mount(root) {
   const params = new URLSearchParams(location.hash.split("?")[1] || "");
   let channel = params.get("channel") || "";
   root.innerHTML = `
@@ -22,10 +23,10 @@ export function mount(root, ctx) {
   let nextBefore = null;
   let busy = false;
 
-  ctx.live.subscribe({ channels: "*", kinds: ["status", "alarms"], max_rate_hz: 1 });
+  live.subscribe({ channels: "*", kinds: ["status", "alarms"], max_rate_hz: 1 });
 
   function renderAlarms() {
-    const al = ctx.store.alarms;
+    const al = store.alarms;
     $("#ev-alarms-panel").hidden = al === null;
     if (al === null) return;
     const h = alarmListHtml(al);
@@ -38,7 +39,7 @@ export function mount(root, ctx) {
 
   function fillChannels() {
     const sel = $("#ev-channel");
-    const ids = ctx.store.channels.map((c) => c.id);
+    const ids = store.channels.map((c) => c.id);
     if (sel.dataset.ids === ids.join(",")) return;
     sel.dataset.ids = ids.join(",");
     sel.innerHTML = `<option value="">all</option>` + ids.map((i) => `<option value="${esc(i)}">${esc(i)}</option>`).join("");
@@ -92,16 +93,16 @@ export function mount(root, ctx) {
     "alarm-event": () => load(),
     // events arrive pushed over the stream ("alarm-event"); poll only while it is down
     tick: () => {
-      if (!ctx.live.wsOpen && !(n++ % 5)) load();
+      if (!live.wsOpen && !(n++ % 5)) load();
     },
   };
-  for (const [k, f] of Object.entries(on)) ctx.app.addEventListener(k, f);
+  for (const [k, f] of Object.entries(on)) app.addEventListener(k, f);
   renderAlarms();
   fillChannels();
   load();
   return {
     unmount() {
-      for (const [k, f] of Object.entries(on)) ctx.app.removeEventListener(k, f);
+      for (const [k, f] of Object.entries(on)) app.removeEventListener(k, f);
     },
   };
 }

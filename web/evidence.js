@@ -5,6 +5,7 @@ import { API, getJSON, qs } from "./api.js";
 import { esc, fmtDateTime, fmtHz, fmtVal, unitLabel } from "./fmt.js";
 import { SpectrumPlot } from "./spectrum.js";
 import { Scale, Surface, linTicks, pal } from "./plot.js";
+import { store } from "./shared.js";
 
 let plot = null;
 let wave = null;
@@ -12,7 +13,7 @@ let waveData = null;
 let timer = 0;
 let current = null;
 
-export function setupEvidence(ctx) {
+export function setupEvidence() {
   const dlg = document.getElementById("dlg-evidence");
   const readout = document.getElementById("ev-readout");
   plot = new SpectrumPlot(document.getElementById("ev-spec"), {
@@ -30,11 +31,11 @@ export function setupEvidence(ctx) {
     const b = e.target.closest("[data-evidence]");
     if (!b) return;
     e.preventDefault();
-    openEvidence(b.dataset.evidence, ctx);
+    openEvidence(b.dataset.evidence);
   });
 }
 
-export async function openEvidence(eventId, ctx) {
+export async function openEvidence(eventId) {
   const dlg = document.getElementById("dlg-evidence");
   const what = document.getElementById("ev-what");
   current = eventId;
@@ -63,7 +64,7 @@ export async function openEvidence(eventId, ctx) {
   if (s?.values) {
     plot.setData({ f0: s.f0_hz, df: s.df_hz, values: Float32Array.from(s.values, (v) => v ?? NaN), unit: s.unit, amplitude: s.amplitude, t_ns: s.t_ns ?? e.t_ns });
     plot.resetView(false);
-    const ch = ctx.store.channels.find((c) => c.id === e.channel);
+    const ch = store.channels.find((c) => c.id === e.channel);
     plot.setMarkers({ speedHz: (ch?.speed_rpm || 0) / 60, bearing: [] });
     const refresh = async () => {
       try {

@@ -7,7 +7,7 @@ import { STATES, STATUS_TO_STATE, badge, glyph, isLive } from "./states.js";
 import { BandBars, bandRows, topBands } from "./bars.js";
 import { Surface, pal } from "./plot.js";
 import { alarmListHtml, eventItemHtml, ruleProfile } from "./alarms.js";
-import { groupByMachine } from "./main.js";
+import { alarmsFor, app, channelState, fetchWatched, FRAME, groupByMachine, history, levels, live, seedHistory, store } from "./shared.js";
 
 const SPARK_MS = 10 * 60e3;
 
@@ -55,7 +55,7 @@ class Spark {
   }
 }
 
-export function mount(root, ctx) {
+export function mount(root) {
   root.innerHTML = `
     <div class="ov" id="ov">
       <div>
@@ -71,7 +71,7 @@ export function mount(root, ctx) {
   let ids = "";
   let disposed = false;
 
-  ctx.live.subscribe({ channels: "*", kinds: ["bands", "status", "alarms"], max_rate_hz: 1 });
+  live.subscribe({ channels: "*", kinds: ["bands", "status", "alarms"], max_rate_hz: 1 });
 
   function build() {
     const m = document.getElementById("ov-machines");
@@ -81,7 +81,7 @@ export function mount(root, ctx) {
     }
     cards.clear();
     const html = [];
-    for (const [machine, chans] of groupByMachine(ctx.store.channels)) {
+    for (const [machine, chans] of groupByMachine(store.channels)) {
       html.push(`<section class="machine" data-machine="${esc(machine)}"><h2><span class="mglyph"></span>${esc(machine)} <span class="count">${chans.length} channel${chans.length > 1 ? "s" : ""}</span></h2><div class="cards">`);
       for (const c of chans) {
         html.push(`<a class="card" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${esc(c.id)}" data-state="unknown">
@@ -104,8 +104,8 @@ export function mount(root, ctx) {
         st: el.querySelector(".st"), note: el.querySelector(".note"),
       };
       entry.spark = new Spark(el.querySelector(".spark"), () => {
-        const rule = ctx.levels(id, "overall", "overall");
-        return { pts: ctx.history(id, ctx.FRAME), alert: rule?.alert, danger: rule?.danger, stale: ctx.store.conn === "reconnecting" };
+        const rule = levels(id, "overall", "overall");
+        return { pts: history(id, FRAME), alert: rule?.alert, danger: rule?.danger, stale: store.conn === "reconnecting" };
       });
       cards.set(id, entry);
     }
@@ -113,12 +113,12 @@ export function mount(root, ctx) {
 
   /** Fill the sparklines with the stored last ten minutes. */
   async function seedSparks() {
-    for (const c of ctx.store.channels) {
+    for (const c of store.channels) {
       if (disposed || !c.latest) continue;
       const until = c.latest.timestamp_ns / 1e9;
       try {
         const j = await getJSON(`${API}/channels/${encodeURIComponent(c.id)}/trend${qs({ name: "overall", since: until - SPARK_MS / 1000, until, step: 10 })}`);
-        ctx.seedHistory(c.id, ctx.FRAME, (j.points || []).map((p) => [p.t_ns / 1e6, p.mean]));
+        seedHistory(c.id, FRAME, (j.points || []).map((p) => [p.t_ns / 1e6, p.mean]));
         cards.get(c.id)?.spark.surface.invalidate();
       } catch {
         return; // unreachable or failing: the sparklines fill from the live values
@@ -127,19 +127,19 @@ export function mount(root, ctx) {
   }
 
   function update() {
-    const chans = ctx.store.channels;
+    const chans = store.channels;
     const key = chans.map((c) => c.id).join(",");
     if (key !== ids) {
       ids = key;
       build();
       seedSparks();
     }
-    const stale = ctx.store.conn === "reconnecting";
+    const stale = store.conn === "reconnecting";
     let nAbn = 0;
     for (const c of chans) {
       const e = cards.get(c.id);
       if (!e) continue;
-      const k = ctx.channelState(c);
+      const k = channelState(c);
       if (STATES[k].rank >= STATES.latched.rank) nAbn++;
       if (k !== e.stateKey) {
         e.stateKey = k;
@@ -155,26 +155,26 @@ export function mount(root, ctx) {
       e.unit.textContent = L ? unitLabel(L.unit, "rms") : "";
       e.what.textContent = !L || L.overall_lo_hz == null ? "overall" // the band comes with a frame
         : `overall ${fmtHz(L.overall_lo_hz)}–${fmtHz(L.overall_hi_hz)}`;
-      const live = isLive(c.status);
-      e.el.classList.toggle("stale", stale || !live);
-      e.el.dataset.live = live ? "yes" : "no";
+      const liveValues = isLive(c.status);
+      e.el.classList.toggle("stale", stale || !liveValues);
+      e.el.dataset.live = liveValues ? "yes" : "no";
       const notes = [];
-      if (!live) {
+      if (!liveValues) {
         // never a bare healthy number: say what the channel is, since when, and how old the value is
         const since = c.status_since_ns ? ` since ${fmtClock(c.status_since_ns)}` : "";
         const old = L ? ` · value from ${fmtClock(L.timestamp_ns)}` : "";
         notes.push(`<span class="notlive">${esc(STATES[k].word)}${since}${old}</span>`);
       }
       if (c.fault) notes.push(`${glyph(STATUS_TO_STATE[c.status] || "fault", 12)} ${esc(c.fault)}`);
-      const al = ctx.alarmsFor(c.id).filter((a) => a.state !== "normal" || a.latched);
+      const al = alarmsFor(c.id).filter((a) => a.state !== "normal" || a.latched);
       if (al.length) notes.push(al.map((a) => `${a.kind === "overall" ? "overall" : esc(a.name)}${ruleProfile(a) ? ` (${esc(ruleProfile(a))})` : ""} ${esc(a.state)}${a.acked ? " (ack)" : ""}`).join(", "));
       const nh = notes.join(" · ");
       if (e.note.innerHTML !== nh) e.note.innerHTML = nh;
-      const { named } = bandRows(ctx, c.id, ctx.store.bands.get(c.id));
+      const { named } = bandRows(c.id, store.bands.get(c.id));
       const top = topBands(named, 3);
-      ctx.fetchWatched(c.id, top); // values of bars watched on another profile
+      fetchWatched(c.id, top); // values of bars watched on another profile
       e.bars.setStale(stale);
-      e.bars.setRows(top, ctx.store.bands.get(c.id)?.unit || "");
+      e.bars.setRows(top, store.bands.get(c.id)?.unit || "");
       e.spark.surface.invalidate();
     }
     for (const sec of document.querySelectorAll(".machine")) {
@@ -194,7 +194,7 @@ export function mount(root, ctx) {
   }
 
   function renderAlarms() {
-    const al = ctx.store.alarms;
+    const al = store.alarms;
     const box = document.getElementById("ov-alarms");
     box.hidden = al === null;
     if (al !== null) {
@@ -253,14 +253,14 @@ export function mount(root, ctx) {
     "alarm-event": () => loadEvents(),
   };
   let pendingBands = false;
-  for (const [k, f] of Object.entries(on)) ctx.app.addEventListener(k, f);
+  for (const [k, f] of Object.entries(on)) app.addEventListener(k, f);
   update();
   renderAlarms();
   loadEvents();
   return {
     unmount() {
       disposed = true;
-      for (const [k, f] of Object.entries(on)) ctx.app.removeEventListener(k, f);
+      for (const [k, f] of Object.entries(on)) app.removeEventListener(k, f);
       for (const c of cards.values()) {
         c.bars.surface.dispose();
         c.spark.surface.dispose();

@@ -281,7 +281,7 @@ def test_every_watched_bar_shows_its_rules_limits_whichever_profile_is_on_screen
 def test_band_rows_take_the_rule_of_any_profile_and_the_overall_rule(
     demo: Service, page: tuple[Any, PageLog]
 ) -> None:
-    # bandRows (web/bars.js) with a made-up context: an `overall = true` rule watches the band
+    # bandRows (web/bars.js) with made-up levels and messages: an `overall = true` rule watches the band
     # named "overall" (the channel's overall is that band's value); a rule on another profile
     # brings that profile's value; a band no rule watches has no limits.
     pg, _ = page
@@ -292,7 +292,7 @@ def test_band_rows_take_the_rule_of_any_profile_and_the_overall_rule(
         const onNarrow = {rule: 'c.narrow.band.1x', kind: 'band', alert: 3, danger: 6,
                           state: 'alert'};
         const table = {'|overall|overall': over, 'narrow|band|1x': onNarrow};
-        const ctx = {
+        const look = {
             levels: (ch, kind, name, p) =>
                 table[`${p === 'wide' ? '' : p}|${kind}|${name}`] ?? null,
             profileKey: (ch, p) => (p === 'wide' ? '' : p),
@@ -306,7 +306,7 @@ def test_band_rows_take_the_rule_of_any_profile_and_the_overall_rule(
             {name: 'overall', lo_hz: 10, hi_hz: 1000, value: 2.5},
             {name: '1x', lo_hz: 20, hi_hz: 30, value: 0.1},
             {name: 'other', lo_hz: 40, hi_hz: 50, value: 0.2}]};
-        return m.bandRows(ctx, 'c', msg).named;
+        return m.bandRows('c', msg, look).named;
     }""")
     rows = {r["name"]: r for r in got}
     assert (rows["overall"]["alert"], rows["overall"]["danger"]) == (1, 2)
