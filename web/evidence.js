@@ -4,7 +4,7 @@
 import { API, getJSON, qs } from "./api.js";
 import { esc, fmtDateTime, fmtHz, fmtVal, unitLabel } from "./fmt.js";
 import { SpectrumPlot } from "./spectrum.js";
-import { Scale, Surface, linTicks, pal } from "./plot.js";
+import { Scale, Surface, border, gridX, labelsX, linTicks, pal, plotArea } from "./plot.js";
 import { store } from "./shared.js";
 
 let plot = null;
@@ -92,13 +92,15 @@ export async function openEvidence(eventId) {
 }
 
 function drawWave(ctx, w, h) {
-  ctx.fillStyle = pal.panel;
-  ctx.fillRect(0, 0, w, h);
   const d = waveData;
-  if (!d) return;
   const L = 58, R = w - 14, T = 8, B = h - 22;
-  ctx.fillStyle = pal.plot;
-  ctx.fillRect(L, T, R - L, B - T);
+  const box = { L, R, T, B };
+  if (!d) {
+    ctx.fillStyle = pal.panel;
+    ctx.fillRect(0, 0, w, h);
+    return;
+  }
+  plotArea(ctx, w, h, box);
   const n = d.samples.length;
   const dur = n / d.fs;
   const t0 = (d.t0_ns - d.event_ns) / 1e9;
@@ -107,19 +109,9 @@ function drawWave(ctx, w, h) {
   mx = mx || 1;
   const xs = new Scale(false).set(t0, t0 + dur, L, R);
   const ys = new Scale(false).set(-mx * 1.05, mx * 1.05, B, T);
-  ctx.font = `11px ${pal.mono}`;
-  ctx.fillStyle = pal["ink-2"];
-  ctx.textAlign = "center";
-  ctx.textBaseline = "top";
-  for (const t of linTicks(t0, t0 + dur, 8)) {
-    const x = Math.round(xs.px(t)) + 0.5;
-    ctx.strokeStyle = t === 0 ? pal.ink : pal.grid;
-    ctx.beginPath();
-    ctx.moveTo(x, T);
-    ctx.lineTo(x, B);
-    ctx.stroke();
-    ctx.fillText(`${t > 0 ? "+" : ""}${+t.toFixed(3)} s`, x, B + 4);
-  }
+  const xt = linTicks(t0, t0 + dur, 8);
+  gridX(ctx, xs, xt, box, (t) => (t === 0 ? pal.ink : pal.grid));
+  labelsX(ctx, xs, xt, box, (t) => `${t > 0 ? "+" : ""}${+t.toFixed(3)} s`, { dy: 4 });
   // min/max per pixel column
   const W = Math.floor(R - L);
   ctx.strokeStyle = pal.trace;
@@ -136,8 +128,7 @@ function drawWave(ctx, w, h) {
     ctx.lineTo(L + p + 0.5, ys.px(lo) + 0.5);
   }
   ctx.stroke();
-  ctx.strokeStyle = pal.axis;
-  ctx.strokeRect(L + 0.5, T + 0.5, R - L - 1, B - T - 1);
+  border(ctx, box);
   ctx.fillStyle = pal["ink-3"];
   ctx.textAlign = "right";
   ctx.textBaseline = "middle";

@@ -4,7 +4,7 @@
 import { API, getJSON, qs } from "./api.js";
 import { fmtHz, fmtVal } from "./fmt.js";
 import { html, setHTML } from "./dom.js";
-import { Scale, Surface, linTicks, pal, plateText } from "./plot.js";
+import { Scale, Surface, border, gridX, gridY, labelsY, linTicks, pal, plateText, plotArea } from "./plot.js";
 
 let cur = null; // {window, n, df, q, f, enbw_bins}
 let data = null; // {offset_bins, gain_db, figs, enbw, span}
@@ -79,41 +79,27 @@ function widths(offset, db) {
 }
 
 function draw(ctx, w, h) {
-  ctx.fillStyle = pal.panel;
-  ctx.fillRect(0, 0, w, h);
-  if (!data) return;
   const L = 52, R = w - 14, T = 26, B = h - 30;
-  ctx.fillStyle = pal.plot;
-  ctx.fillRect(L, T, R - L, B - T);
+  const box = { L, R, T, B };
+  if (!data) {
+    ctx.fillStyle = pal.panel;
+    ctx.fillRect(0, 0, w, h);
+    return;
+  }
+  plotArea(ctx, w, h, box);
   const { offset_bins: o, gain_db: g, span, figs } = data;
   let floor = -40;
   for (const v of g) if (v > -200) floor = Math.min(floor, v);
   floor = Math.max(-160, Math.floor(floor / 20) * 20);
   const xs = new Scale(false).set(-span, span, L, R);
   const ys = new Scale(false).set(floor, 5, B, T);
-  ctx.lineWidth = 1;
-  ctx.font = `11px ${pal.mono}`;
   // neighbouring line centres
-  for (let k = -span; k <= span; k++) {
-    const x = Math.round(xs.px(k)) + 0.5;
-    ctx.strokeStyle = k === 0 ? pal.axis : pal.grid;
-    ctx.beginPath();
-    ctx.moveTo(x, T);
-    ctx.lineTo(x, B);
-    ctx.stroke();
-  }
-  ctx.textAlign = "right";
-  ctx.textBaseline = "middle";
-  for (const v of linTicks(floor, 0, Math.floor((B - T) / 34))) {
-    const y = Math.round(ys.px(v)) + 0.5;
-    ctx.strokeStyle = pal.grid;
-    ctx.beginPath();
-    ctx.moveTo(L, y);
-    ctx.lineTo(R, y);
-    ctx.stroke();
-    ctx.fillStyle = pal["ink-2"];
-    ctx.fillText(`${v}`, L - 6, y);
-  }
+  const centres = [];
+  for (let k = -span; k <= span; k++) centres.push(k);
+  gridX(ctx, xs, centres, box, (k) => (k === 0 ? pal.axis : pal.grid));
+  const yt = linTicks(floor, 0, Math.floor((B - T) / 34));
+  gridY(ctx, ys, yt, box);
+  labelsY(ctx, ys, yt, box, (v) => `${v}`);
   ctx.textAlign = "center";
   ctx.textBaseline = "top";
   const every = span <= 8 ? 1 : span <= 16 ? 2 : 4;
@@ -157,8 +143,7 @@ function draw(ctx, w, h) {
   }
   ctx.stroke();
   ctx.restore();
-  ctx.strokeStyle = pal.axis;
-  ctx.strokeRect(L + 0.5, T + 0.5, R - L - 1, B - T - 1);
+  border(ctx, box);
   ctx.font = `11px ${pal.font}`;
   ctx.fillStyle = pal["ink-3"];
   ctx.textAlign = "left";
