@@ -3,8 +3,8 @@
 // shell's events; draws through the plots.
 
 import { API, ApiError, getJSON, qs } from "./api.js";
-import { AMP_CHOICES, UNIT_CHOICES, ampLabel, esc, fmtClock, fmtHz, fmtHzAt, fmtHzExact, fmtVal, unitLabel } from "./fmt.js";
-import { badge } from "./states.js";
+import { AMP_CHOICES, UNIT_CHOICES, ampLabel, fmtClock, fmtHz, fmtHzAt, fmtHzExact, fmtVal, unitLabel } from "./fmt.js";
+import { badge, html, setHTML, updateHTML } from "./dom.js";
 import { SpectrumPlot } from "./spectrum.js";
 import { Spectrogram } from "./spectrogram.js";
 import { BandBars, ThirdsChart, bandRows } from "./bars.js";
@@ -46,9 +46,9 @@ export function mount(root, id, { profile = "" } = {}) {
   // A message is this view's when it is of this channel and of the profile shown (a service
   // without profiles sends none: take it).
   const mine = (m) => m.channel === id && (m.profile === undefined || cur() === null || m.profile === cur());
-  root.innerHTML = `
+  setHTML(root, html`
     <div class="ch-head">
-      <h1 id="ch-id">${esc(id)}</h1><span class="desc" id="ch-desc"></span><span id="ch-badge"></span><span class="hint" id="ch-fault"></span>
+      <h1 id="ch-id">${id}</h1><span class="desc" id="ch-desc"></span><span id="ch-badge"></span><span class="hint" id="ch-fault"></span>
       <div class="big"><span class="overall" id="ch-overall" data-role="overall">—</span><span class="unit" id="ch-unit"></span></div>
     </div>
     <dl class="facts" id="ch-facts"></dl>
@@ -58,8 +58,8 @@ export function mount(root, id, { profile = "" } = {}) {
       <span class="hint">spectrum, bands, tones and trend below are the chosen profile's; the other views show the primary one</span>
     </div>
     <div class="toolbar" role="toolbar" aria-label="spectrum display">
-      <label>Unit <select id="sel-unit"><option value="">as analysed</option>${UNIT_CHOICES.map((u) => `<option value="${u}">${esc(unitLabel(u))}</option>`).join("")}</select></label>
-      <label>Amplitude <select id="sel-amp"><option value="">as analysed</option>${AMP_CHOICES.map((a) => `<option value="${a}">${ampLabel(a)}</option>`).join("")}</select></label>
+      <label>Unit <select id="sel-unit"><option value="">as analysed</option>${UNIT_CHOICES.map((u) => html`<option value="${u}">${unitLabel(u)}</option>`)}</select></label>
+      <label>Amplitude <select id="sel-amp"><option value="">as analysed</option>${AMP_CHOICES.map((a) => html`<option value="${a}">${ampLabel(a)}</option>`)}</select></label>
       <span class="seg" role="group" aria-label="amplitude scale"><button data-ya="lin">lin</button><button data-ya="log">log</button></span>
       <span class="seg" role="group" aria-label="frequency scale"><button data-xa="lin">lin Hz</button><button data-xa="log">log Hz</button></span>
       <span class="toggles">
@@ -75,12 +75,12 @@ export function mount(root, id, { profile = "" } = {}) {
     <div class="ch-grid">
       <div>
         <figure class="panel"><figcaption>Spectrum <span class="hint">wheel: zoom · drag: pan · shift+wheel or ↑↓: amplitude · ← →, + −, 0 · L/F: log · click: pick a line</span><span class="readout" id="readout"></span></figcaption>
-          <canvas id="spec" class="plot-spec" tabindex="0" aria-label="averaged spectrum of ${esc(id)}; use the arrow keys, plus and minus to move and zoom"></canvas>
+          <canvas id="spec" class="plot-spec" tabindex="0" aria-label="averaged spectrum of ${id}; use the arrow keys, plus and minus to move and zoom"></canvas>
           <p class="spec-cap" id="spec-cap" aria-live="polite"></p></figure>
         <figure class="panel"><figcaption>Spectrogram <span class="hint">newest at the top; same frequency axis as above</span></figcaption><canvas id="sgram" class="plot-sgram"></canvas></figure>
         <figure class="panel"><figcaption>Trend
             <select id="sel-trend" aria-label="value to trend"></select>
-            <span class="seg" role="group" aria-label="period">${Object.keys(RANGES).map((r) => `<button data-range="${r}">${r === "month" ? "30 days" : `1 ${r}`}</button>`).join("")}</span>
+            <span class="seg" role="group" aria-label="period">${Object.keys(RANGES).map((r) => html`<button data-range="${r}">${r === "month" ? "30 days" : `1 ${r}`}</button>`)}</span>
             <span class="hint" id="trend-note"></span></figcaption>
           <canvas id="trend" class="plot-trend"></canvas></figure>
       </div>
@@ -92,7 +92,7 @@ export function mount(root, id, { profile = "" } = {}) {
         <section class="panel" id="ch-events-panel"><header>Events <a class="hint" href="#/events?channel=${encodeURIComponent(id)}">full log</a></header>
           <ul class="evlist" id="ch-events"></ul></section>
       </div>
-    </div>`;
+    </div>`);
 
   const $ = (s) => root.querySelector(s);
   const readout = $("#readout");
@@ -163,7 +163,7 @@ export function mount(root, id, { profile = "" } = {}) {
     bars.setRows([], "");
     thirds.setRows([], "");
     toneKey = "";
-    $("#tones").innerHTML = "";
+    setHTML($("#tones"), "");
     readout.textContent = "";
     bandsAt = tonesAt = 0;
     trendNames = "";
@@ -204,7 +204,7 @@ export function mount(root, id, { profile = "" } = {}) {
     const seg = $("#seg-profile");
     if (key !== profBtnKey) {
       profBtnKey = key;
-      seg.innerHTML = list.map((p) => `<button data-profile="${esc(p.name)}" title="${esc(profileSummary(p))}">${esc(p.name)}</button>`).join("");
+      setHTML(seg, list.map((p) => html`<button data-profile="${p.name}" title="${profileSummary(p)}">${p.name}</button>`));
     }
     for (const b of seg.querySelectorAll("[data-profile]")) b.setAttribute("aria-pressed", String(b.dataset.profile === cur()));
     renderCaption();
@@ -398,10 +398,9 @@ export function mount(root, id, { profile = "" } = {}) {
     if (shape !== toneKey) {
       // the table's shape changed: build it once, then only its cells' text changes
       toneKey = shape;
-      const row = (name) => `<tr><td>${esc(name)}</td><td></td><td></td><td></td></tr>`;
-      table.innerHTML = `<tr><th>name</th><th>frequency</th><th>order</th><th>amplitude</th></tr>` +
-        tones.map((t) => row(t.name)).join("") +
-        (peaks.length ? `<tr class="sep"><td colspan="4">largest peaks</td></tr>` : "") + peaks.map(() => row("")).join("");
+      const row = (name) => html`<tr><td>${name}</td><td></td><td></td><td></td></tr>`;
+      setHTML(table, html`<tr><th>name</th><th>frequency</th><th>order</th><th>amplitude</th></tr>${tones.map((t) => row(t.name))}${
+        peaks.length ? html`<tr class="sep"><td colspan="4">largest peaks</td></tr>` : ""}${peaks.map(() => row(""))}`);
     }
     const rows = table.querySelectorAll("tr:not(.sep)");
     [...tones.map((t) => [t.frequency_hz, t.amplitude]), ...peaks.map((p) => [p.frequency_hz, p.amplitude])].forEach(([f, a], i) => {
@@ -425,11 +424,7 @@ export function mount(root, id, { profile = "" } = {}) {
     }
     setText($("#ch-desc"), c.description || "");
     const k = channelState(c);
-    const bh = badge(k);
-    if ($("#ch-badge").dataset.k !== k) {
-      $("#ch-badge").innerHTML = bh;
-      $("#ch-badge").dataset.k = k;
-    }
+    updateHTML($("#ch-badge"), badge(k));
     setText($("#ch-fault"), c.fault || "");
     const P = curProfile();
     const L = P && !P.primary ? P.latest : c.latest; // the overall of the profile shown
@@ -468,12 +463,7 @@ export function mount(root, id, { profile = "" } = {}) {
     if (c) f.push(["sample rate", `${fmtVal(c.sample_rate_hz, 5)} Hz`]);
     if (c) f.push(["status", c.status]);
     f.push(["updated", st.lastT ? fmtClock(st.lastT) : "—"]);
-    const h = f.map(([k, v]) => `<div><dt>${esc(k)}</dt><dd>${esc(v)}</dd></div>`).join("");
-    const el = $("#ch-facts");
-    if (el.dataset.h !== h) {
-      el.innerHTML = h;
-      el.dataset.h = h;
-    }
+    updateHTML($("#ch-facts"), f.map(([k, v]) => html`<div><dt>${k}</dt><dd>${v}</dd></div>`));
   }
 
   function staleCheck() {
@@ -489,12 +479,7 @@ export function mount(root, id, { profile = "" } = {}) {
     const al = store.alarms;
     $("#ch-alarms-panel").hidden = al === null;
     if (al === null) return;
-    const h = alarmListHtml(alarmsFor(id), { showChannel: false });
-    const ul = $("#ch-alarms");
-    if (ul.dataset.h !== h) {
-      ul.innerHTML = h;
-      ul.dataset.h = h;
-    }
+    updateHTML($("#ch-alarms"), alarmListHtml(alarmsFor(id), { showChannel: false }));
   }
 
   let evBusy = false;
@@ -504,12 +489,8 @@ export function mount(root, id, { profile = "" } = {}) {
     try {
       const j = await getJSON(`${API}/events${qs({ channel: id, limit: 10 })}`);
       st.events = j.events || [];
-      const h = st.events.map((ev) => eventItemHtml(ev, { showChannel: false })).join("") || `<li class="empty">No events on this channel.</li>`;
       const tb = $("#ch-events");
-      if (tb && tb.dataset.h !== h) {
-        tb.innerHTML = h;
-        tb.dataset.h = h;
-      }
+      if (tb) updateHTML(tb, st.events.length ? st.events.map((ev) => eventItemHtml(ev, { showChannel: false })) : html`<li class="empty">No events on this channel.</li>`);
     } catch {
       /* keep */
     } finally {
@@ -536,7 +517,7 @@ export function mount(root, id, { profile = "" } = {}) {
     if (joined === trendNames) return;
     trendNames = joined;
     const sel = $("#sel-trend");
-    sel.innerHTML = `<option value="${esc(FRAME)}">overall ${esc(band)}</option>` + names.map((n) => `<option value="${esc(n)}"${n === st.trendName ? " selected" : ""}>${esc(n)} band</option>`).join("");
+    setHTML(sel, html`<option value="${FRAME}">overall ${band}</option>${names.map((n) => html`<option value="${n}"${n === st.trendName ? html` selected` : ""}>${n} band</option>`)}`);
     sel.value = st.trendName;
   }
 

@@ -35,6 +35,11 @@ export function html(strings, ...values) {
   return new Markup(s);
 }
 
+/** Items (each put in by the rules above) with `sep` between them, as one piece of markup. */
+export function join(items, sep) {
+  return new Markup(items.map(part).join(part(sep)));
+}
+
 /** Markup written by the dashboard itself and not built by `html` (the state glyphs). */
 export function trusted(text) {
   return new Markup(String(text));

@@ -2,14 +2,14 @@
 // (newest first, paged, by channel). No plotting; alarm markup comes from alarms.js.
 
 import { API, getJSON, qs } from "./api.js";
-import { esc } from "./fmt.js";
+import { html, setHTML, updateHTML } from "./dom.js";
 import { alarmListHtml, eventHeadHtml, eventRowHtml } from "./alarms.js";
 import { app, live, store } from "./shared.js";
 
 export function mount(root) {
   const params = new URLSearchParams(location.hash.split("?")[1] || "");
   let channel = params.get("channel") || "";
-  root.innerHTML = `
+  setHTML(root, html`
     <div class="ch-head"><h1>Alarms and events</h1></div>
     <section class="panel" id="ev-alarms-panel"><header>Active and latched alarms</header><ul class="alarms" id="ev-alarms"></ul></section>
     <section class="panel" id="ev-log-panel"><header>Event log
@@ -17,7 +17,7 @@ export function mount(root) {
         <span class="hint" id="ev-count"></span></header>
       <table class="events"><thead>${eventHeadHtml()}</thead><tbody id="ev-rows"></tbody></table>
       <div class="pager"><button id="ev-older" hidden>Older events</button><span class="hint" id="ev-state"></span></div>
-    </section>`;
+    </section>`);
   const $ = (s) => root.querySelector(s);
   let events = [];
   let nextBefore = null;
@@ -29,12 +29,7 @@ export function mount(root) {
     const al = store.alarms;
     $("#ev-alarms-panel").hidden = al === null;
     if (al === null) return;
-    const h = alarmListHtml(al);
-    const ul = $("#ev-alarms");
-    if (ul.dataset.h !== h) {
-      ul.innerHTML = h;
-      ul.dataset.h = h;
-    }
+    updateHTML($("#ev-alarms"), alarmListHtml(al));
   }
 
   function fillChannels() {
@@ -42,12 +37,12 @@ export function mount(root) {
     const ids = store.channels.map((c) => c.id);
     if (sel.dataset.ids === ids.join(",")) return;
     sel.dataset.ids = ids.join(",");
-    sel.innerHTML = `<option value="">all</option>` + ids.map((i) => `<option value="${esc(i)}">${esc(i)}</option>`).join("");
+    setHTML(sel, html`<option value="">all</option>${ids.map((i) => html`<option value="${i}">${i}</option>`)}`);
     sel.value = channel;
   }
 
   function renderEvents() {
-    $("#ev-rows").innerHTML = events.map((e) => eventRowHtml(e)).join("") || `<tr><td colspan="7" class="empty">No events${channel ? ` on ${esc(channel)}` : ""}.</td></tr>`;
+    setHTML($("#ev-rows"), events.length ? events.map((e) => eventRowHtml(e)) : html`<tr><td colspan="7" class="empty">No events${channel ? ` on ${channel}` : ""}.</td></tr>`);
     $("#ev-older").hidden = nextBefore === null || nextBefore === undefined;
     $("#ev-count").textContent = `${events.length} shown`;
   }

@@ -2,7 +2,8 @@
 // waveform around it, downloads. Reads only the events and spectrum routes; no shared state.
 
 import { API, getJSON, qs } from "./api.js";
-import { esc, fmtDateTime, fmtHz, fmtVal, unitLabel } from "./fmt.js";
+import { fmtDateTime, fmtHz, fmtVal, unitLabel } from "./fmt.js";
+import { html, setHTML } from "./dom.js";
 import { SpectrumPlot } from "./spectrum.js";
 import { Scale, Surface, border, gridX, labelsX, linTicks, pal, plotArea } from "./plot.js";
 import { store } from "./shared.js";
@@ -40,7 +41,7 @@ export async function openEvidence(eventId) {
   const what = document.getElementById("ev-what");
   current = eventId;
   what.textContent = "loading…";
-  document.getElementById("ev-downloads").innerHTML = "";
+  setHTML(document.getElementById("ev-downloads"), "");
   document.getElementById("ev-wave-fig").hidden = true;
   plot.setOverlay(null);
   plot.data = null;
@@ -58,8 +59,7 @@ export async function openEvidence(eventId) {
     return;
   }
   if (current !== eventId) return;
-  what.innerHTML = `<b>${esc(e.channel)}</b> · ${esc(e.rule)} · ${esc(e.from_state)} → <b>${esc(e.to_state)}</b> at ${fmtDateTime(e.t_ns)} · value ${fmtVal(e.value)} / level ${fmtVal(e.level)} ${esc(unitLabel(e.unit || ""))}` +
-    (e.message ? `<br><span class="hint">${esc(e.message)}</span>` : "");
+  setHTML(what, html`<b>${e.channel}</b> · ${e.rule} · ${e.from_state} → <b>${e.to_state}</b> at ${fmtDateTime(e.t_ns)} · value ${fmtVal(e.value)} / level ${fmtVal(e.level)} ${unitLabel(e.unit || "")}${e.message ? html`<br><span class="hint">${e.message}</span>` : ""}`);
   const s = ev.spectrum;
   if (s?.values) {
     plot.setData({ f0: s.f0_hz, df: s.df_hz, values: Float32Array.from(s.values, (v) => v ?? NaN), unit: s.unit, amplitude: s.amplitude, t_ns: s.t_ns ?? e.t_ns });
@@ -86,9 +86,8 @@ export async function openEvidence(eventId) {
     wave.invalidate();
   }
   const base = `${API}/events/${encodeURIComponent(eventId)}/evidence`;
-  const link = (q, label) => `<a href="${base}?${q}" download data-auth>${label}</a>`;
-  document.getElementById("ev-downloads").innerHTML = `Download: waveform ${link("format=wav", "WAV")} · ${link("format=csv&part=waveform", "CSV")} · ${link("format=npy&part=waveform", "NPY")}` +
-    ` — spectrum then ${link("format=csv&part=spectrum", "CSV")} · ${link("format=npy&part=spectrum", "NPY")}`;
+  const link = (q, label) => html`<a href="${base}?${q}" download data-auth>${label}</a>`;
+  setHTML(document.getElementById("ev-downloads"), html`Download: waveform ${link("format=wav", "WAV")} · ${link("format=csv&part=waveform", "CSV")} · ${link("format=npy&part=waveform", "NPY")} — spectrum then ${link("format=csv&part=spectrum", "CSV")} · ${link("format=npy&part=spectrum", "NPY")}`);
 }
 
 function drawWave(ctx, w, h) {

@@ -2,8 +2,9 @@
 // alarms and events beside. Reads the shell's state and the events/trend routes; no plot code.
 
 import { API, getJSON, qs } from "./api.js";
-import { esc, fmtClock, fmtHz, fmtVal, unitLabel } from "./fmt.js";
-import { STATES, STATUS_TO_STATE, badge, glyph, isLive } from "./states.js";
+import { fmtClock, fmtHz, fmtVal, unitLabel } from "./fmt.js";
+import { STATES, STATUS_TO_STATE, isLive } from "./states.js";
+import { badge, glyph, html, join, setHTML, updateHTML } from "./dom.js";
 import { BandBars, bandRows, topBands } from "./bars.js";
 import { Surface, pal } from "./plot.js";
 import { alarmListHtml, eventItemHtml, ruleProfile } from "./alarms.js";
@@ -56,7 +57,7 @@ class Spark {
 }
 
 export function mount(root) {
-  root.innerHTML = `
+  setHTML(root, html`
     <div class="ov" id="ov">
       <div>
         <div class="ch-head"><h1>Plant</h1><span class="hint" id="ov-sum"></span></div>
@@ -66,7 +67,7 @@ export function mount(root) {
         <section class="panel" id="ov-alarms" hidden><header>Active and latched alarms</header><ul class="alarms" id="ov-alarm-list"></ul></section>
         <section class="panel" id="ov-events" hidden><header>Recent events <a class="hint" href="#/events">full log</a></header><ul class="evlist" id="ov-event-rows"></ul></section>
       </aside>
-    </div>`;
+    </div>`);
   const cards = new Map(); // channel → {el, bars, spark, ...}
   let ids = "";
   let disposed = false;
@@ -80,22 +81,22 @@ export function mount(root) {
       c.spark.surface.dispose();
     }
     cards.clear();
-    const html = [];
+    const parts = [];
     for (const [machine, chans] of groupByMachine(store.channels)) {
-      html.push(`<section class="machine" data-machine="${esc(machine)}"><h2><span class="mglyph"></span>${esc(machine)} <span class="count">${chans.length} channel${chans.length > 1 ? "s" : ""}</span></h2><div class="cards">`);
+      parts.push(html`<section class="machine" data-machine="${machine}"><h2><span class="mglyph"></span>${machine} <span class="count">${chans.length} channel${chans.length > 1 ? "s" : ""}</span></h2><div class="cards">`);
       for (const c of chans) {
-        html.push(`<a class="card" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${esc(c.id)}" data-state="unknown">
-          <div class="row1"><span class="id">${esc(c.id)}</span><span class="st"></span></div>
-          <div class="desc" title="${esc(c.description)}">${esc(c.description || "")}</div>
+        parts.push(html`<a class="card" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${c.id}" data-state="unknown">
+          <div class="row1"><span class="id">${c.id}</span><span class="st"></span></div>
+          <div class="desc" title="${c.description}">${c.description || ""}</div>
           <div class="headline"><span class="overall" data-role="overall">—</span><span class="unit"></span><span class="what"></span></div>
           <canvas class="spark" aria-hidden="true"></canvas>
           <canvas class="minibars" aria-hidden="true"></canvas>
           <div class="note"></div>
         </a>`);
       }
-      html.push(`</div></section>`);
+      parts.push(html`</div></section>`);
     }
-    m.innerHTML = html.join("");
+    setHTML(m, parts);
     for (const el of m.querySelectorAll(".card")) {
       const id = el.dataset.channel;
       const entry = {
@@ -144,7 +145,7 @@ export function mount(root) {
       if (k !== e.stateKey) {
         e.stateKey = k;
         e.el.dataset.state = k;
-        e.st.innerHTML = badge(k);
+        setHTML(e.st, badge(k));
       }
       const L = c.latest;
       e.overall.textContent = L ? fmtVal(L.overall) : "—";
@@ -163,13 +164,12 @@ export function mount(root) {
         // never a bare healthy number: say what the channel is, since when, and how old the value is
         const since = c.status_since_ns ? ` since ${fmtClock(c.status_since_ns)}` : "";
         const old = L ? ` · value from ${fmtClock(L.timestamp_ns)}` : "";
-        notes.push(`<span class="notlive">${esc(STATES[k].word)}${since}${old}</span>`);
+        notes.push(html`<span class="notlive">${STATES[k].word}${since}${old}</span>`);
       }
-      if (c.fault) notes.push(`${glyph(STATUS_TO_STATE[c.status] || "fault", 12)} ${esc(c.fault)}`);
+      if (c.fault) notes.push(html`${glyph(STATUS_TO_STATE[c.status] || "fault", 12)} ${c.fault}`);
       const al = alarmsFor(c.id).filter((a) => a.state !== "normal" || a.latched);
-      if (al.length) notes.push(al.map((a) => `${a.kind === "overall" ? "overall" : esc(a.name)}${ruleProfile(a) ? ` (${esc(ruleProfile(a))})` : ""} ${esc(a.state)}${a.acked ? " (ack)" : ""}`).join(", "));
-      const nh = notes.join(" · ");
-      if (e.note.innerHTML !== nh) e.note.innerHTML = nh;
+      if (al.length) notes.push(al.map((a) => `${a.kind === "overall" ? "overall" : a.name}${ruleProfile(a) ? ` (${ruleProfile(a)})` : ""} ${a.state}${a.acked ? " (ack)" : ""}`).join(", "));
+      updateHTML(e.note, join(notes, " · "));
       const { named } = bandRows(c.id, store.bands.get(c.id));
       const top = topBands(named, 3);
       fetchWatched(c.id, top); // values of bars watched on another profile
@@ -184,8 +184,7 @@ export function mount(root) {
         if ((STATES[k]?.rank ?? -1) > STATES[worst].rank) worst = k;
       }
       const g = sec.querySelector(".mglyph");
-      const gh = `<span class="${STATES[worst].cls}" title="worst state: ${STATES[worst].word}">${glyph(worst)}</span>`;
-      if (g.innerHTML !== gh) g.innerHTML = gh;
+      updateHTML(g, html`<span class="${STATES[worst].cls}" title="worst state: ${STATES[worst].word}">${glyph(worst)}</span>`);
     }
     const machines = groupByMachine(chans).size;
     document.getElementById("ov-sum").textContent = chans.length
@@ -198,12 +197,7 @@ export function mount(root) {
     const box = document.getElementById("ov-alarms");
     box.hidden = al === null;
     if (al !== null) {
-      const h = alarmListHtml(al);
-      const ul = document.getElementById("ov-alarm-list");
-      if (ul.dataset.h !== h) {
-        ul.innerHTML = h;
-        ul.dataset.h = h;
-      }
+      updateHTML(document.getElementById("ov-alarm-list"), alarmListHtml(al));
     }
   }
 
@@ -213,12 +207,9 @@ export function mount(root) {
     evBusy = true;
     try {
       const j = await getJSON(`${API}/events?limit=12`);
-      const rows = (j.events || []).map((ev) => eventItemHtml(ev)).join("") || `<li class="empty">No events yet.</li>`;
+      const evs = j.events || [];
       const tb = document.getElementById("ov-event-rows");
-      if (tb && tb.dataset.h !== rows) {
-        tb.innerHTML = rows;
-        tb.dataset.h = rows;
-      }
+      if (tb) updateHTML(tb, evs.length ? evs.map((ev) => eventItemHtml(ev)) : html`<li class="empty">No events yet.</li>`);
       document.getElementById("ov-events").hidden = false;
     } catch {
       /* keep what is shown */
