@@ -281,9 +281,9 @@ def test_every_watched_bar_shows_its_rules_limits_whichever_profile_is_on_screen
 def test_band_rows_take_the_rule_of_any_profile_and_the_overall_rule(
     demo: Service, page: tuple[Any, PageLog]
 ) -> None:
-    # bandRows (web/bars.js) with made-up levels and messages: an `overall = true` rule watches the band
-    # named "overall" (the channel's overall is that band's value); a rule on another profile
-    # brings that profile's value; a band no rule watches has no limits.
+    # bandRows (web/bars.js) with made-up levels and messages: an `overall = true` rule
+    # watches the band named "overall" (the channel's overall is that band's value); a rule on
+    # another profile brings that profile's value; a band no rule watches has no limits.
     pg, _ = page
     pg.goto(demo.base_url + "/#/", wait_until="domcontentloaded")
     got = pg.evaluate("""async () => {
