@@ -2,23 +2,16 @@
 // for an operator token once per browser session). Knows no view layout and no plotting.
 
 import { ApiError, ackAlarm, token } from "./api.js";
-import { esc, fmtAge, fmtDateTime, fmtVal, unitLabel } from "./fmt.js";
-import { STATES, alarmStateKey, badge, eventStateKey, glyph } from "./states.js";
+import { fmtAge, fmtDateTime, fmtVal, unitLabel } from "./fmt.js";
+import { STATES, alarmStateKey, eventStateKey } from "./states.js";
+import { badge, glyph, html, setHTML } from "./dom.js";
+import { live, store } from "./shared.js";
 
 const RANK = { danger: 3, alert: 2, latched: 1, ok: 0 };
 
-/**
- * The analysis profile an alarm rule (or event) watches when it is not its channel's primary
- * one, else "". The service names such rules `<channel>.<profile>.<kind>…` and primary ones
- * `<channel>.<kind>…`; the rule id decides, so no channel list is needed.
- */
+/** The analysis profile an alarm rule watches when it is not its channel's primary one, else "". */
 export function ruleProfile(a) {
-  const p = a?.profile;
-  if (!p || !a.rule || !a.channel) return "";
-  const head = `${a.channel}.${p}.`;
-  if (!a.rule.startsWith(head)) return "";
-  const rest = a.rule.slice(head.length);
-  return (a.kind === "overall" ? rest === "overall" : rest.startsWith(`${a.kind}.`)) ? p : "";
+  return a?.primary === false ? a.profile || "" : "";
 }
 
 /** What an alarm watches, in words: "bearing band", "overall", "1x tone", "1x band · narrow". */
@@ -28,26 +21,26 @@ export function what(a) {
   return p ? `${w} · ${p}` : w;
 }
 
-/** HTML for the alarm list (most severe, then oldest first). */
+/** Markup for the alarm list (most severe, then oldest first). */
 export function alarmListHtml(alarms, { showChannel = true } = {}) {
-  if (!alarms.length) return `<li class="none"><span></span><span class="hint">${glyph("ok")} No active or latched alarms.</span></li>`;
+  if (!alarms.length) return html`<li class="none"><span></span><span class="hint">${glyph("ok")} No active or latched alarms.</span></li>`;
   const now = Date.now();
   const sorted = [...alarms].sort((x, y) => RANK[alarmStateKey(y)] - RANK[alarmStateKey(x)] || (x.since_ns ?? 0) - (y.since_ns ?? 0));
-  return sorted.map((a) => {
+  return html`${sorted.map((a) => {
     const k = alarmStateKey(a);
     const level = k === "danger" ? a.danger : k === "alert" ? a.alert : null;
     const sinceS = (now - (a.since_ns ?? 0) / 1e6) / 1000;
     const since = a.since_ns ? `since ${fmtSince(a.since_ns)}${sinceS >= 1 ? ` (${fmtAge(sinceS)})` : ""}` : "";
-    const ackTxt = a.acked ? `acknowledged${a.acked_by ? ` by ${esc(a.acked_by)}` : ""}` : "not acknowledged";
-    const chan = showChannel ? `<a href="#/channel/${encodeURIComponent(a.channel)}">${esc(a.channel)}</a> · ` : "";
-    return `<li data-rule="${esc(a.rule)}" data-state="${k}" class="${a.acked ? "acked" : ""}">
+    const ackTxt = a.acked ? `acknowledged${a.acked_by ? ` by ${a.acked_by}` : ""}` : "not acknowledged";
+    const chan = showChannel ? html`<a href="#/channel/${encodeURIComponent(a.channel)}">${a.channel}</a> · ` : "";
+    return html`<li data-rule="${a.rule}" data-state="${k}" class="${a.acked ? "acked" : ""}">
       ${badge(k)}
-      <span class="what">${chan}${esc(what(a))}</span>
-      <span class="acts">${a.acked ? "" : `<button class="small" data-ack="${esc(a.rule)}">Acknowledge</button>`}</span>
-      <span class="sub">${a.kind === "signal" ? "no new spectra" : a.suspended ? `channel not live (${esc(a.channel_status)}); value not current` : `${fmtVal(a.value)} ${esc(unitLabel(a.unit || ""))}${level ? ` ≥ ${k} level ${fmtVal(level)}` : k === "latched" ? ` (cleared; was ${esc(a.peak || "raised")})` : ""}`}
-        · ${since} · <b>${ackTxt}</b>${a.note ? ` — “${esc(a.note)}”` : ""}</span>
+      <span class="what">${chan}${what(a)}</span>
+      <span class="acts">${a.acked ? "" : html`<button class="small" data-ack="${a.rule}">Acknowledge</button>`}</span>
+      <span class="sub">${a.kind === "signal" ? "no new spectra" : a.suspended ? `channel not live (${a.channel_status}); value not current` : `${fmtVal(a.value)} ${unitLabel(a.unit || "")}${level ? ` ≥ ${k} level ${fmtVal(level)}` : k === "latched" ? ` (cleared; was ${a.peak || "raised"})` : ""}`}
+        · ${since} · <b>${ackTxt}</b>${a.note ? ` — “${a.note}”` : ""}</span>
     </li>`;
-  }).join("");
+  })}`;
 }
 
 /** Time of day for today, date and time otherwise. */
@@ -64,15 +57,15 @@ export function eventRowHtml(ev, { showChannel = true } = {}) {
   const name = ev.rule?.startsWith(`${ev.channel}.`) ? ev.rule.slice(ev.channel.length + 1) : ev.rule;
   const change = ev.kind === "ack"
     ? `acknowledged`
-    : `<span class="${STATES[from].cls}">${glyph(from, 12)} ${esc(ev.from_state)}</span> → <span class="${STATES[to].cls}">${glyph(to, 12)} <b>${esc(ev.to_state)}</b></span>`;
-  return `<tr data-event="${ev.id}">
+    : html`<span class="${STATES[from].cls}">${glyph(from, 12)} ${ev.from_state}</span> → <span class="${STATES[to].cls}">${glyph(to, 12)} <b>${ev.to_state}</b></span>`;
+  return html`<tr data-event="${ev.id}">
     <td class="t">${fmtDateTime(ev.t_ns)}</td>
-    ${showChannel ? `<td><a href="#/channel/${encodeURIComponent(ev.channel)}">${esc(ev.channel)}</a></td>` : ""}
-    <td>${esc(name)}</td>
+    ${showChannel ? html`<td><a href="#/channel/${encodeURIComponent(ev.channel)}">${ev.channel}</a></td>` : ""}
+    <td>${name}</td>
     <td>${change}</td>
-    <td>${ev.value === null || ev.value === undefined ? "" : `${fmtVal(ev.value)}${ev.level ? ` / ${fmtVal(ev.level)}` : ""} ${esc(unitLabel(ev.unit || ""))}`}</td>
-    <td><span class="msg">${esc(ev.message || "")}${ev.acked_by ? ` — by ${esc(ev.acked_by)}` : ""}${ev.note ? `: “${esc(ev.note)}”` : ""}</span></td>
-    <td>${raising ? `<button class="small" data-evidence="${ev.id}">Evidence</button>` : ""}</td>
+    <td>${ev.value === null || ev.value === undefined ? "" : `${fmtVal(ev.value)}${ev.level ? ` / ${fmtVal(ev.level)}` : ""} ${unitLabel(ev.unit || "")}`}</td>
+    <td><span class="msg">${ev.message || ""}${ev.acked_by ? ` — by ${ev.acked_by}` : ""}${ev.note ? `: “${ev.note}”` : ""}</span></td>
+    <td>${raising ? html`<button class="small" data-evidence="${ev.id}">Evidence</button>` : ""}</td>
   </tr>`;
 }
 
@@ -83,25 +76,25 @@ export function eventItemHtml(ev, { showChannel = true } = {}) {
   const raising = ev.has_evidence ?? (ev.kind === "transition" && !ev.rule?.endsWith(".signal") && (RANK[to] ?? 0) > (RANK[from] ?? 0) && (to === "alert" || to === "danger"));
   const name = ev.rule?.startsWith(`${ev.channel}.`) ? ev.rule.slice(ev.channel.length + 1) : ev.rule;
   const change = ev.kind === "ack"
-    ? `acknowledged${ev.acked_by ? ` by ${esc(ev.acked_by)}` : ""}`
-    : `<span class="${STATES[from].cls}">${glyph(from, 12)}</span> ${esc(ev.from_state)} → <span class="${STATES[to].cls}">${glyph(to, 12)}</span> <b>${esc(ev.to_state)}</b>`;
-  const val = ev.value === null || ev.value === undefined ? "" : ` · ${fmtVal(ev.value)}${ev.level ? ` / ${fmtVal(ev.level)}` : ""} ${esc(unitLabel(ev.unit || ""))}`;
-  return `<li data-event="${ev.id}">
+    ? `acknowledged${ev.acked_by ? ` by ${ev.acked_by}` : ""}`
+    : html`<span class="${STATES[from].cls}">${glyph(from, 12)}</span> ${ev.from_state} → <span class="${STATES[to].cls}">${glyph(to, 12)}</span> <b>${ev.to_state}</b>`;
+  const val = ev.value === null || ev.value === undefined ? "" : ` · ${fmtVal(ev.value)}${ev.level ? ` / ${fmtVal(ev.level)}` : ""} ${unitLabel(ev.unit || "")}`;
+  return html`<li data-event="${ev.id}">
     <span class="t">${fmtSince(ev.t_ns)}</span>
-    <span class="what">${showChannel ? `<a href="#/channel/${encodeURIComponent(ev.channel)}">${esc(ev.channel)}</a> · ` : ""}${esc(name)}</span>
-    <span class="acts">${raising ? `<button class="small" data-evidence="${ev.id}">Evidence</button>` : ""}</span>
-    <span class="sub">${change}${val}${ev.note ? ` — “${esc(ev.note)}”` : ""}</span>
+    <span class="what">${showChannel ? html`<a href="#/channel/${encodeURIComponent(ev.channel)}">${ev.channel}</a> · ` : ""}${name}</span>
+    <span class="acts">${raising ? html`<button class="small" data-evidence="${ev.id}">Evidence</button>` : ""}</span>
+    <span class="sub">${change}${val}${ev.note ? ` — “${ev.note}”` : ""}</span>
   </li>`;
 }
 
 export function eventHeadHtml({ showChannel = true } = {}) {
-  return `<tr><th>time</th>${showChannel ? "<th>channel</th>" : ""}<th>rule</th><th>change</th><th>value / level</th><th>message</th><th></th></tr>`;
+  return html`<tr><th>time</th>${showChannel ? html`<th>channel</th>` : ""}<th>rule</th><th>change</th><th>value / level</th><th>message</th><th></th></tr>`;
 }
 
 // --- the acknowledge dialog -------------------------------------------------------------
 let pending = null;
 
-export function setupAck(ctx) {
+export function setupAck() {
   const dlg = document.getElementById("dlg-ack");
   const form = document.getElementById("ack-form");
   const msg = document.getElementById("ack-msg");
@@ -128,7 +121,7 @@ export function setupAck(ctx) {
       }
       msg.className = "ack-msg ok";
       msg.textContent = "Acknowledged.";
-      ctx.live.refreshPlant();
+      live.refreshPlant();
       setTimeout(() => dlg.open && dlg.close("done"), 700);
     } catch (err) {
       msg.textContent = ackError(err);
@@ -145,7 +138,7 @@ export function setupAck(ctx) {
     if (!b) return;
     e.preventDefault();
     const rule = b.dataset.ack;
-    const a = (ctx.store.alarms || []).find((x) => x.rule === rule) || { rule };
+    const a = (store.alarms || []).find((x) => x.rule === rule) || { rule };
     openAck(a);
   });
 }
@@ -172,9 +165,9 @@ export function openAck(a) {
   pending = a;
   const dlg = document.getElementById("dlg-ack");
   const k = alarmStateKey(a);
-  document.getElementById("ack-what").innerHTML = a.channel
-    ? `${badge(k)} <b>${esc(a.channel)}</b> · ${esc(what(a))} — ${fmtVal(a.value)} ${esc(unitLabel(a.unit || ""))}`
-    : esc(a.rule);
+  setHTML(document.getElementById("ack-what"), a.channel
+    ? html`${badge(k)} <b>${a.channel}</b> · ${what(a)} — ${fmtVal(a.value)} ${unitLabel(a.unit || "")}`
+    : a.rule);
   document.getElementById("ack-note").value = "";
   const msg = document.getElementById("ack-msg");
   msg.textContent = "";

@@ -1,5 +1,5 @@
-// REST access to the quaver service: JSON GETs with time-outs, which optional routes the
-// service has, the operator token for acknowledgements. Knows nothing about the page.
+// REST access to the quaver service: JSON GETs with time-outs, the token the dashboard signed
+// in with (sent on every request and the WebSocket), acknowledgements. Knows nothing about the page.
 
 export const API = "/api/v1";
 
@@ -40,14 +40,6 @@ async function detailOf(r) {
     return r.statusText || "error";
   }
 }
-
-/** True when an error means "this service has no such route" (FastAPI's generic 404). */
-export function isMissingRoute(e) {
-  return e instanceof ApiError && e.status === 404 && e.detail === "Not Found";
-}
-
-// Which optional routes answer. null = not yet known, true/false once probed.
-export const features = { alarms: null, events: null, trend: null, windowResponse: null };
 
 // The token the dashboard signed in with: kept for this browser session only (sessionStorage,
 // so it goes when the tab closes), sent on every request and on the WebSocket. The API docs

@@ -3,6 +3,7 @@
 
 import { fmtHz, fmtVal, unitLabel } from "./fmt.js";
 import { Scale, Surface, logTicks, pal } from "./plot.js";
+import { bandsOf, levels, profileKey, rulesFor } from "./shared.js";
 
 /**
  * Rows: [{name, lo_hz, hi_hz, value, alert, danger, state, via}] in one unit (RMS); `via`
@@ -201,19 +202,21 @@ export class ThirdsChart {
   }
 }
 
+/** The levels and messages bandRows reads: shared.js's own (a test may hand in others). */
+const SHARED = { levels, rulesFor, bandsOf, profileKey };
+
 /**
  * Rows for BandBars from a bands message: every band, with the levels and state of the alarm
- * rule that watches it, whichever profile the message is of (`ctx`: the views' shared
- * context — levels, rulesFor, bandsOf, profileKey). A row watched on another profile shows
- * that profile's value and names it (`via`), so a bar never reads "no limits" for a band an
- * alarm watches.
+ * rule that watches it, whichever profile the message is of. A row watched on another profile
+ * shows that profile's value and names it (`via`), so a bar never reads "no limits" for a band
+ * an alarm watches.
  */
-export function bandRows(ctx, channelId, msg) {
+export function bandRows(channelId, msg, look = SHARED) {
   const named = [];
   const thirds = [];
-  const here = ctx.profileKey ? ctx.profileKey(channelId, msg?.profile) : "";
+  const here = look.profileKey(channelId, msg?.profile);
   for (const b of msg?.bands || []) {
-    const { rule, value, via } = watcher(ctx, channelId, b, msg, here);
+    const { rule, value, via } = watcher(look, channelId, b, msg, here);
     let state = "ok";
     if (rule && rule.state && rule.rule) state = rule.state === "latched" ? "latched" : rule.state === "normal" ? "ok" : rule.state;
     else if (rule?.danger > 0 && value >= rule.danger) state = "danger";
@@ -227,18 +230,18 @@ export function bandRows(ctx, channelId, msg) {
 /** The rule that watches band `b` of `msg`, and the value it watches: a band rule on the
  *  message's profile; for the band named "overall", the overall rule (the channel's overall
  *  is that band's value); else such a rule on another profile, with that profile's value. */
-function watcher(ctx, channelId, b, msg, here) {
+function watcher({ levels, rulesFor, bandsOf }, channelId, b, msg, here) {
   const isOverall = b.name === "overall";
-  const own = ctx.levels(channelId, "band", b.name, msg.profile)
-    ?? (isOverall ? ctx.levels(channelId, "overall", "overall", msg.profile) : null);
-  if (own || !ctx.rulesFor) return { rule: own, value: b.value, via: "" };
+  const own = levels(channelId, "band", b.name, msg.profile)
+    ?? (isOverall ? levels(channelId, "overall", "overall", msg.profile) : null);
+  if (own) return { rule: own, value: b.value, via: "" };
   const others = [
-    ...ctx.rulesFor(channelId, "band", b.name),
-    ...(isOverall ? ctx.rulesFor(channelId, "overall", "overall") : []),
+    ...rulesFor(channelId, "band", b.name),
+    ...(isOverall ? rulesFor(channelId, "overall", "overall") : []),
   ].filter((x) => x.pk !== here);
   if (!others.length) return { rule: null, value: b.value, via: "" };
   const o = others[0];
-  const m2 = ctx.bandsOf ? ctx.bandsOf(channelId, o.pk) : null;
+  const m2 = bandsOf(channelId, o.pk);
   const b2 = (m2?.bands || []).find((x) => x.name === b.name);
   const value = b2 ? b2.value : isOverall && m2 ? m2.overall : NaN;
   return { rule: o.rule, value: value ?? NaN, via: o.profile };

@@ -2,15 +2,16 @@
 // bars, tones and peaks, trend, and this channel's alarms and events. Gets data from the
 // shell's events; draws through the plots.
 
-import { API, ApiError, features, getJSON, isMissingRoute, qs } from "./api.js";
-import { AMP_CHOICES, UNIT_CHOICES, ampLabel, esc, fmtClock, fmtHz, fmtHzAt, fmtHzExact, fmtVal, unitLabel } from "./fmt.js";
-import { badge } from "./states.js";
+import { API, ApiError, getJSON, qs } from "./api.js";
+import { AMP_CHOICES, UNIT_CHOICES, ampLabel, fmtClock, fmtHz, fmtHzAt, fmtHzExact, fmtVal, unitLabel } from "./fmt.js";
+import { badge, html, setHTML, updateHTML } from "./dom.js";
 import { SpectrumPlot } from "./spectrum.js";
 import { Spectrogram } from "./spectrogram.js";
 import { BandBars, ThirdsChart, bandRows } from "./bars.js";
 import { TrendChart } from "./trend.js";
 import { alarmListHtml, eventItemHtml } from "./alarms.js";
 import { openFilter } from "./filterview.js";
+import { alarmsFor, app, bandsOf, channelState, fetchWatched, FRAME, levels, live, profileKey, store, tonesOf } from "./shared.js";
 
 const BEARING = /^(bpfo|bpfi|bsf|ftf)/i;
 const RANGES = { hour: 3600e3, day: 86400e3, month: 30 * 86400e3 };
@@ -26,12 +27,12 @@ export function channelHash(id, profile = "") {
  * Mount the channel view of channel `id` in `root`. `profile`: the analysis profile to show
  * ("" = the channel's primary one). Returns {unmount(), probe} (probe: what is on screen).
  */
-export function mount(root, ctx, id, { profile = "" } = {}) {
-  const chan = () => ctx.store.channels.find((c) => c.id === id);
+export function mount(root, id, { profile = "" } = {}) {
+  const chan = () => store.channels.find((c) => c.id === id);
   const prefs = JSON.parse(localStorage.getItem("quaver.view") || "{}");
   const st = {
     unit: "", amplitude: "", hold: false, meta: null, lastSpec: 0, lastT: 0, range: prefs.range || "hour",
-    trendName: ctx.FRAME, tones: null,
+    trendName: FRAME, tones: null,
     profile, // "" = the primary profile; else the name of the one shown
     fresh: true, // the next spectrum starts a new frequency axis
     profileNote: "",
@@ -39,15 +40,15 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
   // The channel's analysis profiles (primary first) as /channels describes them; [] when the
   // service has none. `cur` is the name of the one shown (null while unknown).
   const profiles = () => chan()?.profiles ?? [];
-  const primaryName = () => profiles()[0]?.name ?? ctx.live.profiles?.[id]?.[0] ?? null;
+  const primaryName = () => profiles()[0]?.name ?? live.profiles?.[id]?.[0] ?? null;
   const cur = () => st.profile || primaryName();
   const curProfile = () => profiles().find((p) => p.name === cur()) ?? null;
   // A message is this view's when it is of this channel and of the profile shown (a service
   // without profiles sends none: take it).
   const mine = (m) => m.channel === id && (m.profile === undefined || cur() === null || m.profile === cur());
-  root.innerHTML = `
+  setHTML(root, html`
     <div class="ch-head">
-      <h1 id="ch-id">${esc(id)}</h1><span class="desc" id="ch-desc"></span><span id="ch-badge"></span><span class="hint" id="ch-fault"></span>
+      <h1 id="ch-id">${id}</h1><span class="desc" id="ch-desc"></span><span id="ch-badge"></span><span class="hint" id="ch-fault"></span>
       <div class="big"><span class="overall" id="ch-overall" data-role="overall">—</span><span class="unit" id="ch-unit"></span></div>
     </div>
     <dl class="facts" id="ch-facts"></dl>
@@ -57,8 +58,8 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
       <span class="hint">spectrum, bands, tones and trend below are the chosen profile's; the other views show the primary one</span>
     </div>
     <div class="toolbar" role="toolbar" aria-label="spectrum display">
-      <label>Unit <select id="sel-unit"><option value="">as analysed</option>${UNIT_CHOICES.map((u) => `<option value="${u}">${esc(unitLabel(u))}</option>`).join("")}</select></label>
-      <label>Amplitude <select id="sel-amp"><option value="">as analysed</option>${AMP_CHOICES.map((a) => `<option value="${a}">${ampLabel(a)}</option>`).join("")}</select></label>
+      <label>Unit <select id="sel-unit"><option value="">as analysed</option>${UNIT_CHOICES.map((u) => html`<option value="${u}">${unitLabel(u)}</option>`)}</select></label>
+      <label>Amplitude <select id="sel-amp"><option value="">as analysed</option>${AMP_CHOICES.map((a) => html`<option value="${a}">${ampLabel(a)}</option>`)}</select></label>
       <span class="seg" role="group" aria-label="amplitude scale"><button data-ya="lin">lin</button><button data-ya="log">log</button></span>
       <span class="seg" role="group" aria-label="frequency scale"><button data-xa="lin">lin Hz</button><button data-xa="log">log Hz</button></span>
       <span class="toggles">
@@ -74,12 +75,12 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
     <div class="ch-grid">
       <div>
         <figure class="panel"><figcaption>Spectrum <span class="hint">wheel: zoom · drag: pan · shift+wheel or ↑↓: amplitude · ← →, + −, 0 · L/F: log · click: pick a line</span><span class="readout" id="readout"></span></figcaption>
-          <canvas id="spec" class="plot-spec" tabindex="0" aria-label="averaged spectrum of ${esc(id)}; use the arrow keys, plus and minus to move and zoom"></canvas>
+          <canvas id="spec" class="plot-spec" tabindex="0" aria-label="averaged spectrum of ${id}; use the arrow keys, plus and minus to move and zoom"></canvas>
           <p class="spec-cap" id="spec-cap" aria-live="polite"></p></figure>
         <figure class="panel"><figcaption>Spectrogram <span class="hint">newest at the top; same frequency axis as above</span></figcaption><canvas id="sgram" class="plot-sgram"></canvas></figure>
         <figure class="panel"><figcaption>Trend
             <select id="sel-trend" aria-label="value to trend"></select>
-            <span class="seg" role="group" aria-label="period">${Object.keys(RANGES).map((r) => `<button data-range="${r}">${r === "month" ? "30 days" : `1 ${r}`}</button>`).join("")}</span>
+            <span class="seg" role="group" aria-label="period">${Object.keys(RANGES).map((r) => html`<button data-range="${r}">${r === "month" ? "30 days" : `1 ${r}`}</button>`)}</span>
             <span class="hint" id="trend-note"></span></figcaption>
           <canvas id="trend" class="plot-trend"></canvas></figure>
       </div>
@@ -88,10 +89,10 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
           <header id="thirds-head">Third-octave bands</header><canvas id="thirds" class="plot-thirds"></canvas></section>
         <section class="panel" id="ch-alarms-panel" hidden><header>Alarms on this channel</header><ul class="alarms" id="ch-alarms"></ul></section>
         <section class="panel"><header>Tones and peaks <span class="hint" id="tones-unit"></span></header><table class="tones" id="tones"></table></section>
-        <section class="panel" id="ch-events-panel" hidden><header>Events <a class="hint" href="#/events?channel=${encodeURIComponent(id)}">full log</a></header>
+        <section class="panel" id="ch-events-panel"><header>Events <a class="hint" href="#/events?channel=${encodeURIComponent(id)}">full log</a></header>
           <ul class="evlist" id="ch-events"></ul></section>
       </div>
-    </div>`;
+    </div>`);
 
   const $ = (s) => root.querySelector(s);
   const readout = $("#readout");
@@ -133,7 +134,7 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
 
   function subscribe() {
     const p = cur();
-    ctx.live.subscribe({ channels: [id], kinds: ["spectrum", "bands", "tones", "status", "alarms"], max_rate_hz: 10, unit: st.unit || undefined, amplitude: st.amplitude || undefined, profiles: p ? [p] : undefined });
+    live.subscribe({ channels: [id], kinds: ["spectrum", "bands", "tones", "status", "alarms"], max_rate_hz: 10, unit: st.unit || undefined, amplitude: st.amplitude || undefined, profiles: p ? [p] : undefined });
   }
 
   // --- analysis profiles ------------------------------------------------------------------
@@ -162,13 +163,13 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
     bars.setRows([], "");
     thirds.setRows([], "");
     toneKey = "";
-    $("#tones").innerHTML = "";
+    setHTML($("#tones"), "");
     readout.textContent = "";
     bandsAt = tonesAt = 0;
     trendNames = "";
     const have = curProfile()?.bands;
-    if (st.trendName !== ctx.FRAME && have && !have.includes(st.trendName)) {
-      st.trendName = ctx.FRAME;
+    if (st.trendName !== FRAME && have && !have.includes(st.trendName)) {
+      st.trendName = FRAME;
       trendChosen = false;
     }
     syncToolbar();
@@ -177,9 +178,9 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
     subscribe();
     loadMeta();
     loadTrend();
-    const b = ctx.bandsOf(id, cur());
+    const b = bandsOf(id, cur());
     if (b && mine(b)) onBands(b, true);
-    const t = ctx.tonesOf(id, cur());
+    const t = tonesOf(id, cur());
     if (t && mine(t)) onTones(t, true);
   }
 
@@ -203,7 +204,7 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
     const seg = $("#seg-profile");
     if (key !== profBtnKey) {
       profBtnKey = key;
-      seg.innerHTML = list.map((p) => `<button data-profile="${esc(p.name)}" title="${esc(profileSummary(p))}">${esc(p.name)}</button>`).join("");
+      setHTML(seg, list.map((p) => html`<button data-profile="${p.name}" title="${profileSummary(p)}">${p.name}</button>`));
     }
     for (const b of seg.querySelectorAll("[data-profile]")) b.setAttribute("aria-pressed", String(b.dataset.profile === cur()));
     renderCaption();
@@ -366,8 +367,8 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
   function onBands(m, force = false) {
     if (!mine(m)) return;
     st.bands = m;
-    const { named, thirds: th } = bandRows(ctx, id, m);
-    ctx.fetchWatched(id, named); // values of bars watched on another profile
+    const { named, thirds: th } = bandRows(id, m);
+    fetchWatched(id, named); // values of bars watched on another profile
     plot.setBands(named);
     const now = performance.now();
     if (!force && now - bandsAt < TEXT_PERIOD_MS / 2) return;
@@ -397,10 +398,9 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
     if (shape !== toneKey) {
       // the table's shape changed: build it once, then only its cells' text changes
       toneKey = shape;
-      const row = (name) => `<tr><td>${esc(name)}</td><td></td><td></td><td></td></tr>`;
-      table.innerHTML = `<tr><th>name</th><th>frequency</th><th>order</th><th>amplitude</th></tr>` +
-        tones.map((t) => row(t.name)).join("") +
-        (peaks.length ? `<tr class="sep"><td colspan="4">largest peaks</td></tr>` : "") + peaks.map(() => row("")).join("");
+      const row = (name) => html`<tr><td>${name}</td><td></td><td></td><td></td></tr>`;
+      setHTML(table, html`<tr><th>name</th><th>frequency</th><th>order</th><th>amplitude</th></tr>${tones.map((t) => row(t.name))}${
+        peaks.length ? html`<tr class="sep"><td colspan="4">largest peaks</td></tr>` : ""}${peaks.map(() => row(""))}`);
     }
     const rows = table.querySelectorAll("tr:not(.sep)");
     [...tones.map((t) => [t.frequency_hz, t.amplitude]), ...peaks.map((p) => [p.frequency_hz, p.amplitude])].forEach(([f, a], i) => {
@@ -419,16 +419,12 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
     const opt = $("#sel-unit").options[0];
     if (u0 && opt.textContent !== `${unitLabel(u0)} (channel)`) opt.textContent = `${unitLabel(u0)} (channel)`;
     if (!c) {
-      setText($("#ch-desc"), ctx.store.channels.length ? "no such channel" : "");
+      setText($("#ch-desc"), store.channels.length ? "no such channel" : "");
       return;
     }
     setText($("#ch-desc"), c.description || "");
-    const k = ctx.channelState(c);
-    const bh = badge(k);
-    if ($("#ch-badge").dataset.k !== k) {
-      $("#ch-badge").innerHTML = bh;
-      $("#ch-badge").dataset.k = k;
-    }
+    const k = channelState(c);
+    updateHTML($("#ch-badge"), badge(k));
     setText($("#ch-fault"), c.fault || "");
     const P = curProfile();
     const L = P && !P.primary ? P.latest : c.latest; // the overall of the profile shown
@@ -459,7 +455,7 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
       f.push(["lines", `${m.lines} · Fmax ${fmtHzExact(m.fmax_hz)} · Δf ${fmtHzExact(m.df_hz)}`]);
       f.push(["window", `${m.window} · ENBW ${fmtVal(m.enbw_bins)} lines`]);
       f.push(["averaging", `${m.averaging ?? ""} ${m.averages}`]);
-      const L = curProfile()?.primary === false ? ctx.bandsOf(id, cur()) : c?.latest;
+      const L = curProfile()?.primary === false ? bandsOf(id, cur()) : c?.latest;
       f.push(["overall band", L?.overall_lo_hz != null
         ? `${fmtHz(L.overall_lo_hz)}–${fmtHz(L.overall_hi_hz)}`
         : `${fmtHz(m.lowcut_hz)}–${fmtHz(m.fmax_hz)}`]);
@@ -467,49 +463,34 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
     if (c) f.push(["sample rate", `${fmtVal(c.sample_rate_hz, 5)} Hz`]);
     if (c) f.push(["status", c.status]);
     f.push(["updated", st.lastT ? fmtClock(st.lastT) : "—"]);
-    const h = f.map(([k, v]) => `<div><dt>${esc(k)}</dt><dd>${esc(v)}</dd></div>`).join("");
-    const el = $("#ch-facts");
-    if (el.dataset.h !== h) {
-      el.innerHTML = h;
-      el.dataset.h = h;
-    }
+    updateHTML($("#ch-facts"), f.map(([k, v]) => html`<div><dt>${k}</dt><dd>${v}</dd></div>`));
   }
 
   function staleCheck() {
     let s = "";
-    if (ctx.store.conn === "reconnecting") s = `no contact since ${new Date(ctx.store.downSince).toLocaleTimeString([], { hour12: false })}`;
+    if (store.conn === "reconnecting") s = `no contact since ${new Date(store.downSince).toLocaleTimeString([], { hour12: false })}`;
     else if (st.hold) s = `held at ${fmtClock(st.lastT)}`;
     else if (st.lastSpec && Date.now() - st.lastSpec > STALE_AFTER_MS) s = `no new spectrum for ${Math.round((Date.now() - st.lastSpec) / 1000)} s`;
     plot.setStale(s);
-    bars.setStale(ctx.store.conn === "reconnecting");
+    bars.setStale(store.conn === "reconnecting");
   }
 
   function renderAlarms() {
-    const al = ctx.store.alarms;
+    const al = store.alarms;
     $("#ch-alarms-panel").hidden = al === null;
     if (al === null) return;
-    const h = alarmListHtml(ctx.alarmsFor(id), { showChannel: false });
-    const ul = $("#ch-alarms");
-    if (ul.dataset.h !== h) {
-      ul.innerHTML = h;
-      ul.dataset.h = h;
-    }
+    updateHTML($("#ch-alarms"), alarmListHtml(alarmsFor(id), { showChannel: false }));
   }
 
   let evBusy = false;
   async function loadEvents() {
-    $("#ch-events-panel").hidden = features.events !== true;
-    if (features.events !== true || evBusy) return;
+    if (evBusy) return;
     evBusy = true;
     try {
       const j = await getJSON(`${API}/events${qs({ channel: id, limit: 10 })}`);
       st.events = j.events || [];
-      const h = st.events.map((ev) => eventItemHtml(ev, { showChannel: false })).join("") || `<li class="empty">No events on this channel.</li>`;
       const tb = $("#ch-events");
-      if (tb && tb.dataset.h !== h) {
-        tb.innerHTML = h;
-        tb.dataset.h = h;
-      }
+      if (tb) updateHTML(tb, st.events.length ? st.events.map((ev) => eventItemHtml(ev, { showChannel: false })) : html`<li class="empty">No events on this channel.</li>`);
     } catch {
       /* keep */
     } finally {
@@ -536,7 +517,7 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
     if (joined === trendNames) return;
     trendNames = joined;
     const sel = $("#sel-trend");
-    sel.innerHTML = `<option value="${esc(ctx.FRAME)}">overall ${esc(band)}</option>` + names.map((n) => `<option value="${esc(n)}"${n === st.trendName ? " selected" : ""}>${esc(n)} band</option>`).join("");
+    setHTML(sel, html`<option value="${FRAME}">overall ${band}</option>${names.map((n) => html`<option value="${n}"${n === st.trendName ? html` selected` : ""}>${n} band</option>`)}`);
     sel.value = st.trendName;
   }
 
@@ -566,58 +547,44 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
     const prof = cur();
     const span = RANGES[st.range];
     const nowMs = st.lastT ? st.lastT / 1e6 : Date.now();
-    const isFrame = st.trendName === ctx.FRAME;
-    const rule = isFrame ? ctx.levels(id, "overall", "overall", prof) : ctx.levels(id, "band", st.trendName, prof);
-    const unit = ctx.bandsOf(id, prof)?.unit || curProfile()?.unit || chan()?.latest?.unit || "";
+    const isFrame = st.trendName === FRAME;
+    const rule = isFrame ? levels(id, "overall", "overall", prof) : levels(id, "band", st.trendName, prof);
+    const unit = bandsOf(id, prof)?.unit || curProfile()?.unit || chan()?.latest?.unit || "";
     // rule ids name a profile other than the primary one (README, HTTP API)
-    const head = ctx.profileKey(id, prof) ? `${id}.${ctx.profileKey(id, prof)}` : id;
+    const head = profileKey(id, prof) ? `${id}.${profileKey(id, prof)}` : id;
     const ruleId = isFrame ? `${head}.overall` : `${head}.band.${slug(st.trendName)}`;
     let evList = st.events || [];
-    if (features.events === true) {
-      try {
-        evList = (await getJSON(`${API}/events${qs({ channel: id, since: Math.round((nowMs - span) * 1e6), limit: 500 })}`)).events || [];
-      } catch {
-        /* markers are a bonus */
-      }
+    try {
+      evList = (await getJSON(`${API}/events${qs({ channel: id, since: Math.round((nowMs - span) * 1e6), limit: 500 })}`)).events || [];
+    } catch {
+      /* markers are a bonus */
     }
     const evs = evList.filter((e) => e.kind === "transition" && e.rule === ruleId)
       .map((e) => ({ t_ms: e.t_ns / 1e6, state: e.to_state, text: `${e.from_state} → ${e.to_state} at ${fmtVal(e.value)}` }));
     const base = { range: [nowMs - span, nowMs], unit, alert: rule?.alert, danger: rule?.danger, events: evs };
-    if (features.trend !== false) {
-      const name = isFrame ? "overall" : `band:${st.trendName}`;
-      // about 600 points or fewer, on steps a store keeping 10 s / 1 min / 1 h buckets can give
-      const stepS = TREND_STEPS_S.find((x) => (span / 1000) / x <= 600) ?? 86400;
-      const url = (step) => `${API}/channels/${encodeURIComponent(id)}/trend${qs({ name, since: (nowMs - span) / 1000, until: nowMs / 1000, step, profile: asked })}`;
+    const name = isFrame ? "overall" : `band:${st.trendName}`;
+    // about 600 points or fewer, on steps a store keeping 10 s / 1 min / 1 h buckets can give
+    const stepS = TREND_STEPS_S.find((x) => (span / 1000) / x <= 600) ?? 86400;
+    const url = (step) => `${API}/channels/${encodeURIComponent(id)}/trend${qs({ name, since: (nowMs - span) / 1000, until: nowMs / 1000, step, profile: asked })}`;
+    try {
+      let j;
       try {
-        let j;
-        try {
-          j = await getJSON(url(stepS));
-        } catch (e) {
-          if (!(e instanceof ApiError) || e.status === 404) throw e;
-          j = await getJSON(url(null)); // the service did not like the step: let it choose
-        }
-        if (asked !== st.profile) return; // the profile changed meanwhile; loadTrend runs again
-        features.trend = true;
-        const pts = (j.points || []).map((p) => ({ t_ms: p.t_ns / 1e6, mean: p.mean, min: p.min, max: p.max }));
-        trend.set({ ...base, points: pts });
-        $("#trend-note").textContent = `stored history, ${fmtStep(j.step_s ?? stepS)} steps`;
-        return;
+        j = await getJSON(url(stepS));
       } catch (e) {
-        if (asked !== st.profile) return;
-        if (isMissingRoute(e)) features.trend = false;
-        else if (e instanceof ApiError && e.status === 404) {
-          trend.set({ ...base, points: [] });
-          $("#trend-note").textContent = "nothing stored under this name yet";
-          return;
-        } else return; // unreachable or failing: keep what is drawn
+        if (!(e instanceof ApiError) || e.status === 404) throw e;
+        j = await getJSON(url(null)); // the service did not like the step: let it choose
       }
+      if (asked !== st.profile) return; // the profile changed meanwhile; loadTrend runs again
+      const pts = (j.points || []).map((p) => ({ t_ms: p.t_ns / 1e6, mean: p.mean, min: p.min, max: p.max }));
+      trend.set({ ...base, points: pts });
+      $("#trend-note").textContent = `stored history, ${fmtStep(j.step_s ?? stepS)} steps`;
+    } catch (e) {
+      if (asked !== st.profile) return;
+      if (e instanceof ApiError && e.status === 404) {
+        trend.set({ ...base, points: [] });
+        $("#trend-note").textContent = "nothing stored under this name yet";
+      } // else unreachable or failing: keep what is drawn
     }
-    const pts = ctx.history(id, st.trendName, prof).map(([t, v]) => ({ t_ms: t, mean: v }));
-    // Only this session's values: show the part of the period that holds them.
-    const have = pts.length ? nowMs - pts[0].t_ms : 0;
-    const shown = Math.min(span, Math.max(5 * 60e3, have * 1.1));
-    trend.set({ ...base, range: [nowMs - shown, nowMs], points: pts });
-    $("#trend-note").textContent = "this service keeps no history: values since this page opened";
   }
 
   // --- events from the app ----------------------------------------------------------
@@ -632,33 +599,32 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
     alarms: () => {
       renderAlarms();
       renderHead();
-      const m = ctx.bandsOf(id, cur());
+      const m = bandsOf(id, cur());
       if (m) onBands(m, true);
     },
     conn: () => {
       staleCheck();
-      if (ctx.store.conn !== "reconnecting" && !st.meta) loadMeta();
+      if (store.conn !== "reconnecting" && !st.meta) loadMeta();
     },
     "alarm-event": () => loadEvents(),
-    features: () => loadEvents(),
     tick: () => {
       staleCheck();
       renderFacts();
-      if (Date.now() - trendAt > (features.trend === false ? 2000 : 15000)) loadTrend();
-      if (!ctx.live.wsOpen && !(tickN++ % 5)) loadEvents(); // pushed while the stream is up
+      if (Date.now() - trendAt > 15000) loadTrend();
+      if (!live.wsOpen && !(tickN++ % 5)) loadEvents(); // pushed while the stream is up
     },
   };
   let tickN = 0;
-  for (const [k, f] of Object.entries(on)) ctx.app.addEventListener(k, f);
+  for (const [k, f] of Object.entries(on)) app.addEventListener(k, f);
   syncToolbar();
   subscribe();
   loadMeta();
   renderHead();
   renderAlarms();
   renderProfiles();
-  const m0 = ctx.bandsOf(id, cur());
+  const m0 = bandsOf(id, cur());
   if (m0) onBands(m0);
-  const t0 = ctx.tonesOf(id, cur());
+  const t0 = tonesOf(id, cur());
   if (t0) onTones(t0);
   loadEvents().then(loadTrend);
   return {
@@ -674,7 +640,7 @@ export function mount(root, ctx, id, { profile = "" } = {}) {
       bars: () => bars.rows.map((r) => ({ name: r.name, value: r.value, alert: r.alert, danger: r.danger, state: r.state, via: r.via })),
     },
     unmount() {
-      for (const [k, f] of Object.entries(on)) ctx.app.removeEventListener(k, f);
+      for (const [k, f] of Object.entries(on)) app.removeEventListener(k, f);
       plot.surface.dispose();
       sg.surface.dispose();
       bars.surface.dispose();

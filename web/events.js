@@ -1,14 +1,15 @@
 // The alarms-and-events view: active/latched alarms with acknowledgement, and the event log
 // (newest first, paged, by channel). No plotting; alarm markup comes from alarms.js.
 
-import { API, features, getJSON, qs } from "./api.js";
-import { esc } from "./fmt.js";
+import { API, getJSON, qs } from "./api.js";
+import { html, setHTML, updateHTML } from "./dom.js";
 import { alarmListHtml, eventHeadHtml, eventRowHtml } from "./alarms.js";
+import { app, live, store } from "./shared.js";
 
-export function mount(root, ctx) {
+export function mount(root) {
   const params = new URLSearchParams(location.hash.split("?")[1] || "");
   let channel = params.get("channel") || "";
-  root.innerHTML = `
+  setHTML(root, html`
     <div class="ch-head"><h1>Alarms and events</h1></div>
     <section class="panel" id="ev-alarms-panel"><header>Active and latched alarms</header><ul class="alarms" id="ev-alarms"></ul></section>
     <section class="panel" id="ev-log-panel"><header>Event log
@@ -16,47 +17,38 @@ export function mount(root, ctx) {
         <span class="hint" id="ev-count"></span></header>
       <table class="events"><thead>${eventHeadHtml()}</thead><tbody id="ev-rows"></tbody></table>
       <div class="pager"><button id="ev-older" hidden>Older events</button><span class="hint" id="ev-state"></span></div>
-    </section>`;
+    </section>`);
   const $ = (s) => root.querySelector(s);
   let events = [];
   let nextBefore = null;
   let busy = false;
 
-  ctx.live.subscribe({ channels: "*", kinds: ["status", "alarms"], max_rate_hz: 1 });
+  live.subscribe({ channels: "*", kinds: ["status", "alarms"], max_rate_hz: 1 });
 
   function renderAlarms() {
-    const al = ctx.store.alarms;
+    const al = store.alarms;
     $("#ev-alarms-panel").hidden = al === null;
     if (al === null) return;
-    const h = alarmListHtml(al);
-    const ul = $("#ev-alarms");
-    if (ul.dataset.h !== h) {
-      ul.innerHTML = h;
-      ul.dataset.h = h;
-    }
+    updateHTML($("#ev-alarms"), alarmListHtml(al));
   }
 
   function fillChannels() {
     const sel = $("#ev-channel");
-    const ids = ctx.store.channels.map((c) => c.id);
+    const ids = store.channels.map((c) => c.id);
     if (sel.dataset.ids === ids.join(",")) return;
     sel.dataset.ids = ids.join(",");
-    sel.innerHTML = `<option value="">all</option>` + ids.map((i) => `<option value="${esc(i)}">${esc(i)}</option>`).join("");
+    setHTML(sel, html`<option value="">all</option>${ids.map((i) => html`<option value="${i}">${i}</option>`)}`);
     sel.value = channel;
   }
 
   function renderEvents() {
-    $("#ev-rows").innerHTML = events.map((e) => eventRowHtml(e)).join("") || `<tr><td colspan="7" class="empty">No events${channel ? ` on ${esc(channel)}` : ""}.</td></tr>`;
+    setHTML($("#ev-rows"), events.length ? events.map((e) => eventRowHtml(e)) : html`<tr><td colspan="7" class="empty">No events${channel ? ` on ${channel}` : ""}.</td></tr>`);
     $("#ev-older").hidden = nextBefore === null || nextBefore === undefined;
     $("#ev-count").textContent = `${events.length} shown`;
   }
 
   /** Newest page (refresh) or the next older page (`older`). */
   async function load(older = false) {
-    if (features.events === false) {
-      $("#ev-log-panel").hidden = true;
-      return;
-    }
     if (busy) return;
     busy = true;
     try {
@@ -94,19 +86,18 @@ export function mount(root, ctx) {
     alarms: renderAlarms,
     channels: fillChannels,
     "alarm-event": () => load(),
-    features: () => load(),
     // events arrive pushed over the stream ("alarm-event"); poll only while it is down
     tick: () => {
-      if (!ctx.live.wsOpen && !(n++ % 5)) load();
+      if (!live.wsOpen && !(n++ % 5)) load();
     },
   };
-  for (const [k, f] of Object.entries(on)) ctx.app.addEventListener(k, f);
+  for (const [k, f] of Object.entries(on)) app.addEventListener(k, f);
   renderAlarms();
   fillChannels();
   load();
   return {
     unmount() {
-      for (const [k, f] of Object.entries(on)) ctx.app.removeEventListener(k, f);
+      for (const [k, f] of Object.entries(on)) app.removeEventListener(k, f);
     },
   };
 }

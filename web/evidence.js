@@ -2,9 +2,11 @@
 // waveform around it, downloads. Reads only the events and spectrum routes; no shared state.
 
 import { API, getJSON, qs } from "./api.js";
-import { esc, fmtDateTime, fmtHz, fmtVal, unitLabel } from "./fmt.js";
+import { fmtDateTime, fmtHz, fmtVal, unitLabel } from "./fmt.js";
+import { html, setHTML } from "./dom.js";
 import { SpectrumPlot } from "./spectrum.js";
-import { Scale, Surface, linTicks, pal } from "./plot.js";
+import { Scale, Surface, border, gridX, labelsX, linTicks, pal, plotArea } from "./plot.js";
+import { store } from "./shared.js";
 
 let plot = null;
 let wave = null;
@@ -12,7 +14,7 @@ let waveData = null;
 let timer = 0;
 let current = null;
 
-export function setupEvidence(ctx) {
+export function setupEvidence() {
   const dlg = document.getElementById("dlg-evidence");
   const readout = document.getElementById("ev-readout");
   plot = new SpectrumPlot(document.getElementById("ev-spec"), {
@@ -30,16 +32,16 @@ export function setupEvidence(ctx) {
     const b = e.target.closest("[data-evidence]");
     if (!b) return;
     e.preventDefault();
-    openEvidence(b.dataset.evidence, ctx);
+    openEvidence(b.dataset.evidence);
   });
 }
 
-export async function openEvidence(eventId, ctx) {
+export async function openEvidence(eventId) {
   const dlg = document.getElementById("dlg-evidence");
   const what = document.getElementById("ev-what");
   current = eventId;
   what.textContent = "loading…";
-  document.getElementById("ev-downloads").innerHTML = "";
+  setHTML(document.getElementById("ev-downloads"), "");
   document.getElementById("ev-wave-fig").hidden = true;
   plot.setOverlay(null);
   plot.data = null;
@@ -57,13 +59,12 @@ export async function openEvidence(eventId, ctx) {
     return;
   }
   if (current !== eventId) return;
-  what.innerHTML = `<b>${esc(e.channel)}</b> · ${esc(e.rule)} · ${esc(e.from_state)} → <b>${esc(e.to_state)}</b> at ${fmtDateTime(e.t_ns)} · value ${fmtVal(e.value)} / level ${fmtVal(e.level)} ${esc(unitLabel(e.unit || ""))}` +
-    (e.message ? `<br><span class="hint">${esc(e.message)}</span>` : "");
+  setHTML(what, html`<b>${e.channel}</b> · ${e.rule} · ${e.from_state} → <b>${e.to_state}</b> at ${fmtDateTime(e.t_ns)} · value ${fmtVal(e.value)} / level ${fmtVal(e.level)} ${unitLabel(e.unit || "")}${e.message ? html`<br><span class="hint">${e.message}</span>` : ""}`);
   const s = ev.spectrum;
   if (s?.values) {
     plot.setData({ f0: s.f0_hz, df: s.df_hz, values: Float32Array.from(s.values, (v) => v ?? NaN), unit: s.unit, amplitude: s.amplitude, t_ns: s.t_ns ?? e.t_ns });
     plot.resetView(false);
-    const ch = ctx.store.channels.find((c) => c.id === e.channel);
+    const ch = store.channels.find((c) => c.id === e.channel);
     plot.setMarkers({ speedHz: (ch?.speed_rpm || 0) / 60, bearing: [] });
     const refresh = async () => {
       try {
@@ -85,19 +86,20 @@ export async function openEvidence(eventId, ctx) {
     wave.invalidate();
   }
   const base = `${API}/events/${encodeURIComponent(eventId)}/evidence`;
-  const link = (q, label) => `<a href="${base}?${q}" download data-auth>${label}</a>`;
-  document.getElementById("ev-downloads").innerHTML = `Download: waveform ${link("format=wav", "WAV")} · ${link("format=csv&part=waveform", "CSV")} · ${link("format=npy&part=waveform", "NPY")}` +
-    ` — spectrum then ${link("format=csv&part=spectrum", "CSV")} · ${link("format=npy&part=spectrum", "NPY")}`;
+  const link = (q, label) => html`<a href="${base}?${q}" download data-auth>${label}</a>`;
+  setHTML(document.getElementById("ev-downloads"), html`Download: waveform ${link("format=wav", "WAV")} · ${link("format=csv&part=waveform", "CSV")} · ${link("format=npy&part=waveform", "NPY")} — spectrum then ${link("format=csv&part=spectrum", "CSV")} · ${link("format=npy&part=spectrum", "NPY")}`);
 }
 
 function drawWave(ctx, w, h) {
-  ctx.fillStyle = pal.panel;
-  ctx.fillRect(0, 0, w, h);
   const d = waveData;
-  if (!d) return;
   const L = 58, R = w - 14, T = 8, B = h - 22;
-  ctx.fillStyle = pal.plot;
-  ctx.fillRect(L, T, R - L, B - T);
+  const box = { L, R, T, B };
+  if (!d) {
+    ctx.fillStyle = pal.panel;
+    ctx.fillRect(0, 0, w, h);
+    return;
+  }
+  plotArea(ctx, w, h, box);
   const n = d.samples.length;
   const dur = n / d.fs;
   const t0 = (d.t0_ns - d.event_ns) / 1e9;
@@ -106,19 +108,9 @@ function drawWave(ctx, w, h) {
   mx = mx || 1;
   const xs = new Scale(false).set(t0, t0 + dur, L, R);
   const ys = new Scale(false).set(-mx * 1.05, mx * 1.05, B, T);
-  ctx.font = `11px ${pal.mono}`;
-  ctx.fillStyle = pal["ink-2"];
-  ctx.textAlign = "center";
-  ctx.textBaseline = "top";
-  for (const t of linTicks(t0, t0 + dur, 8)) {
-    const x = Math.round(xs.px(t)) + 0.5;
-    ctx.strokeStyle = t === 0 ? pal.ink : pal.grid;
-    ctx.beginPath();
-    ctx.moveTo(x, T);
-    ctx.lineTo(x, B);
-    ctx.stroke();
-    ctx.fillText(`${t > 0 ? "+" : ""}${+t.toFixed(3)} s`, x, B + 4);
-  }
+  const xt = linTicks(t0, t0 + dur, 8);
+  gridX(ctx, xs, xt, box, (t) => (t === 0 ? pal.ink : pal.grid));
+  labelsX(ctx, xs, xt, box, (t) => `${t > 0 ? "+" : ""}${+t.toFixed(3)} s`, { dy: 4 });
   // min/max per pixel column
   const W = Math.floor(R - L);
   ctx.strokeStyle = pal.trace;
@@ -135,8 +127,7 @@ function drawWave(ctx, w, h) {
     ctx.lineTo(L + p + 0.5, ys.px(lo) + 0.5);
   }
   ctx.stroke();
-  ctx.strokeStyle = pal.axis;
-  ctx.strokeRect(L + 0.5, T + 0.5, R - L - 1, B - T - 1);
+  border(ctx, box);
   ctx.fillStyle = pal["ink-3"];
   ctx.textAlign = "right";
   ctx.textBaseline = "middle";

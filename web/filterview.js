@@ -1,15 +1,14 @@
 // The "line filter" dialog: one spectrum line's band-pass response for the window, in dB
-// against offset in lines and Hz, from the service or winresp.js. Knows no view or live data.
+// against offset in lines and Hz, from the service's /windows route. Knows no view or live data.
 
-import { API, getJSON, isMissingRoute, qs } from "./api.js";
-import { esc, fmtHz, fmtVal } from "./fmt.js";
-import { Scale, Surface, linTicks, pal, plateText } from "./plot.js";
-import { enbwBins, responseFigures, windowResponse } from "./winresp.js";
+import { API, getJSON, qs } from "./api.js";
+import { fmtHz, fmtVal } from "./fmt.js";
+import { html, setHTML } from "./dom.js";
+import { Scale, Surface, border, gridX, gridY, labelsY, linTicks, pal, plateText, plotArea } from "./plot.js";
 
 let cur = null; // {window, n, df, q, f, enbw_bins}
-let data = null; // {offset_bins, gain_db, figs, source}
+let data = null; // {offset_bins, gain_db, figs, enbw, span}
 let surface = null;
-let serviceHasRoute = null;
 
 export function setupFilter() {
   surface = new Surface(document.getElementById("flt-plot"), draw);
@@ -28,31 +27,29 @@ export function openFilter(args) {
   load();
 }
 
+/** One line's response for `window` over ±`span` lines (GET /windows/{window}/response):
+ *  {offset_bins, gain_db} as Float64Arrays and the service's figures (enbw_bins,
+ *  scalloping_loss_db, highest_sidelobe_db). Throws ApiError for a window it does not know. */
+export async function lineResponse(window, n, span, pointsPerLine) {
+  const j = await getJSON(`${API}/windows/${encodeURIComponent(window)}/response${qs({ n, span_bins: span, points_per_bin: pointsPerLine })}`);
+  return { ...j, offset_bins: Float64Array.from(j.offset_bins), gain_db: Float64Array.from(j.gain_db, (v) => v ?? -300) };
+}
+
 async function load() {
   const span = Number(document.getElementById("flt-span").value);
   const { window: win, n } = cur;
-  let r = null, source = "";
-  if (serviceHasRoute !== false) {
-    try {
-      const j = await getJSON(`${API}/windows/${encodeURIComponent(win)}/response${qs({ n, span_bins: span, points_per_bin: span <= 8 ? 32 : 16 })}`);
-      r = { offset_bins: Float64Array.from(j.offset_bins), gain_db: Float64Array.from(j.gain_db, (v) => v ?? -300), info: j };
-      serviceHasRoute = true;
-      source = "response from the service";
-    } catch (e) {
-      if (isMissingRoute(e)) serviceHasRoute = false;
-    }
+  let r;
+  try {
+    r = await lineResponse(win, n, span, span <= 8 ? 32 : 16);
+  } catch (e) {
+    document.getElementById("flt-source").textContent = `no response from the service: ${e.detail ?? e.message}`;
+    return;
   }
-  if (!r) {
-    r = windowResponse(win, n, span, span <= 8 ? 32 : 16);
-    source = "computed in this browser from the window's samples";
-  }
-  const figs = responseFigures(r.offset_bins, r.gain_db);
-  // The service computes the window's figures exactly (not from the plotted grid): prefer them.
-  if (Number.isFinite(r.info?.scalloping_loss_db)) figs.scallop = r.info.scalloping_loss_db;
-  if (Number.isFinite(r.info?.highest_sidelobe_db)) figs.sidelobe = r.info.highest_sidelobe_db;
-  const enbw = r.info?.enbw_bins ?? cur.enbw_bins ?? enbwBins(win, n);
-  data = { ...r, figs, source, enbw, span };
-  document.getElementById("flt-source").textContent = source;
+  // Widths are read off the plotted grid; the service gives the rest exactly.
+  const figs = { ...widths(r.offset_bins, r.gain_db), scallop: r.scalloping_loss_db, sidelobe: r.highest_sidelobe_db };
+  const enbw = r.enbw_bins;
+  data = { ...r, figs, enbw, span };
+  document.getElementById("flt-source").textContent = "response from the service";
   const f = [
     ["window", `${win}, N = ${n}`],
     ["ENBW", `${fmtVal(enbw)} lines = ${fmtHz(enbw * cur.df)}`],
@@ -62,46 +59,47 @@ async function load() {
     ["highest sidelobe", Number.isFinite(figs.sidelobe) ? `${figs.sidelobe.toFixed(1)} dB` : "beyond the span"],
     ["passband of this line", `${fmtHz(cur.f - (figs.bw3 * cur.df) / 2)} … ${fmtHz(cur.f + (figs.bw3 * cur.df) / 2)} (−3 dB)`],
   ];
-  document.getElementById("flt-facts").innerHTML = f.map(([k, v]) => `<div><dt>${esc(k)}</dt><dd>${esc(v)}</dd></div>`).join("");
+  setHTML(document.getElementById("flt-facts"), f.map(([k, v]) => html`<div><dt>${k}</dt><dd>${v}</dd></div>`));
   surface.invalidate();
 }
 
+/** −3 dB and −6 dB full widths (lines) of a response sampled symmetrically about 0. */
+function widths(offset, db) {
+  const mid = (offset.length - 1) / 2;
+  const width = (level) => {
+    for (let j = mid; j < offset.length - 1; j++) {
+      if (db[j + 1] < level) {
+        const t = (level - db[j]) / (db[j + 1] - db[j]);
+        return 2 * (offset[j] + t * (offset[j + 1] - offset[j]));
+      }
+    }
+    return NaN;
+  };
+  return { bw3: width(-3.0103), bw6: width(-6.0206) };
+}
+
 function draw(ctx, w, h) {
-  ctx.fillStyle = pal.panel;
-  ctx.fillRect(0, 0, w, h);
-  if (!data) return;
   const L = 52, R = w - 14, T = 26, B = h - 30;
-  ctx.fillStyle = pal.plot;
-  ctx.fillRect(L, T, R - L, B - T);
+  const box = { L, R, T, B };
+  if (!data) {
+    ctx.fillStyle = pal.panel;
+    ctx.fillRect(0, 0, w, h);
+    return;
+  }
+  plotArea(ctx, w, h, box);
   const { offset_bins: o, gain_db: g, span, figs } = data;
   let floor = -40;
   for (const v of g) if (v > -200) floor = Math.min(floor, v);
   floor = Math.max(-160, Math.floor(floor / 20) * 20);
   const xs = new Scale(false).set(-span, span, L, R);
   const ys = new Scale(false).set(floor, 5, B, T);
-  ctx.lineWidth = 1;
-  ctx.font = `11px ${pal.mono}`;
   // neighbouring line centres
-  for (let k = -span; k <= span; k++) {
-    const x = Math.round(xs.px(k)) + 0.5;
-    ctx.strokeStyle = k === 0 ? pal.axis : pal.grid;
-    ctx.beginPath();
-    ctx.moveTo(x, T);
-    ctx.lineTo(x, B);
-    ctx.stroke();
-  }
-  ctx.textAlign = "right";
-  ctx.textBaseline = "middle";
-  for (const v of linTicks(floor, 0, Math.floor((B - T) / 34))) {
-    const y = Math.round(ys.px(v)) + 0.5;
-    ctx.strokeStyle = pal.grid;
-    ctx.beginPath();
-    ctx.moveTo(L, y);
-    ctx.lineTo(R, y);
-    ctx.stroke();
-    ctx.fillStyle = pal["ink-2"];
-    ctx.fillText(`${v}`, L - 6, y);
-  }
+  const centres = [];
+  for (let k = -span; k <= span; k++) centres.push(k);
+  gridX(ctx, xs, centres, box, (k) => (k === 0 ? pal.axis : pal.grid));
+  const yt = linTicks(floor, 0, Math.floor((B - T) / 34));
+  gridY(ctx, ys, yt, box);
+  labelsY(ctx, ys, yt, box, (v) => `${v}`);
   ctx.textAlign = "center";
   ctx.textBaseline = "top";
   const every = span <= 8 ? 1 : span <= 16 ? 2 : 4;
@@ -145,8 +143,7 @@ function draw(ctx, w, h) {
   }
   ctx.stroke();
   ctx.restore();
-  ctx.strokeStyle = pal.axis;
-  ctx.strokeRect(L + 0.5, T + 0.5, R - L - 1, B - T - 1);
+  border(ctx, box);
   ctx.font = `11px ${pal.font}`;
   ctx.fillStyle = pal["ink-3"];
   ctx.textAlign = "left";

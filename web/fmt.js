@@ -104,7 +104,3 @@ export function convertFactor(from, to, toAmp = "rms", fromAmp = "rms") {
 export const UNIT_CHOICES = ["mm/s", "in/s", "g", "m/s2", "um", "mil"];
 export const AMP_CHOICES = ["rms", "peak", "peak-to-peak"];
 
-/** Escape text for insertion into HTML. */
-export function esc(s) {
-  return String(s ?? "").replace(/[&<>"']/g, (c) => ({ "&": "&amp;", "<": "&lt;", ">": "&gt;", '"': "&quot;", "'": "&#39;" }[c]));
-}

@@ -1,7 +1,7 @@
 // The live link: WebSocket subscription (binary spectra, JSON the rest), REST polling when the
 // socket cannot open, reconnection, the plant-wide poll. Emits events; knows nothing of drawing.
 
-import { API, askSignIn, features, getJSON, isMissingRoute, wsProtocols } from "./api.js";
+import { API, askSignIn, getJSON, wsProtocols } from "./api.js";
 
 const PLANT_POLL_MS = 2000;
 const DOWN_POLL_MS = 1000;
@@ -33,7 +33,7 @@ export class Live extends EventTarget {
     this.sub = null;
     this.channels = [];
     this.profiles = {}; // channel → its analysis profile names, primary first (from the stream's hello)
-    this.alarms = null; // null = unknown or the service has no alarm route
+    this.alarms = null; // null until the first answer
     this.downSince = 0;
     this.attempts = 0;
     this._wsTimer = 0;
@@ -99,18 +99,13 @@ export class Live extends EventTarget {
       ok = true;
       this._setUp(true);
       this._emit("channels", ch);
-      if (features.alarms !== false) {
-        try {
-          const al = await getJSON(`${API}/alarms?all=true`, { timeoutMs: 4000 });
-          features.alarms = true;
-          this.alarms = Array.isArray(al) ? al : al.alarms ?? [];
-        } catch (e) {
-          if (isMissingRoute(e)) features.alarms = false;
-          else if (!(e instanceof TypeError)) console.warn("alarms:", e.message);
-          if (features.alarms === false) this.alarms = null;
-        }
-        this._emit("alarms", this.alarms);
+      try {
+        const al = await getJSON(`${API}/alarms?all=true`, { timeoutMs: 4000 });
+        this.alarms = Array.isArray(al) ? al : al.alarms ?? [];
+      } catch (e) {
+        if (!(e instanceof TypeError)) console.warn("alarms:", e.message);
       }
+      this._emit("alarms", this.alarms);
     } catch (e) {
       if (!(e instanceof TypeError)) console.warn("channels:", e.message);
       this._setUp(false);

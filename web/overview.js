@@ -1,13 +1,14 @@
 // The plant view: channels by machine with state (word + shape), overall, history, main bands;
 // alarms and events beside. Reads the shell's state and the events/trend routes; no plot code.
 
-import { API, features, getJSON, isMissingRoute, qs } from "./api.js";
-import { esc, fmtClock, fmtHz, fmtVal, unitLabel } from "./fmt.js";
-import { STATES, STATUS_TO_STATE, badge, glyph, isLive } from "./states.js";
+import { API, getJSON, qs } from "./api.js";
+import { fmtClock, fmtHz, fmtVal, unitLabel } from "./fmt.js";
+import { STATES, STATUS_TO_STATE, isLive } from "./states.js";
+import { badge, glyph, html, join, setHTML, updateHTML } from "./dom.js";
 import { BandBars, bandRows, topBands } from "./bars.js";
 import { Surface, pal } from "./plot.js";
 import { alarmListHtml, eventItemHtml, ruleProfile } from "./alarms.js";
-import { groupByMachine } from "./main.js";
+import { alarmsFor, app, channelState, fetchWatched, FRAME, groupByMachine, history, levels, live, seedHistory, store } from "./shared.js";
 
 const SPARK_MS = 10 * 60e3;
 
@@ -55,8 +56,8 @@ class Spark {
   }
 }
 
-export function mount(root, ctx) {
-  root.innerHTML = `
+export function mount(root) {
+  setHTML(root, html`
     <div class="ov" id="ov">
       <div>
         <div class="ch-head"><h1>Plant</h1><span class="hint" id="ov-sum"></span></div>
@@ -66,12 +67,12 @@ export function mount(root, ctx) {
         <section class="panel" id="ov-alarms" hidden><header>Active and latched alarms</header><ul class="alarms" id="ov-alarm-list"></ul></section>
         <section class="panel" id="ov-events" hidden><header>Recent events <a class="hint" href="#/events">full log</a></header><ul class="evlist" id="ov-event-rows"></ul></section>
       </aside>
-    </div>`;
+    </div>`);
   const cards = new Map(); // channel → {el, bars, spark, ...}
   let ids = "";
   let disposed = false;
 
-  ctx.live.subscribe({ channels: "*", kinds: ["bands", "status", "alarms"], max_rate_hz: 1 });
+  live.subscribe({ channels: "*", kinds: ["bands", "status", "alarms"], max_rate_hz: 1 });
 
   function build() {
     const m = document.getElementById("ov-machines");
@@ -80,22 +81,22 @@ export function mount(root, ctx) {
       c.spark.surface.dispose();
     }
     cards.clear();
-    const html = [];
-    for (const [machine, chans] of groupByMachine(ctx.store.channels)) {
-      html.push(`<section class="machine" data-machine="${esc(machine)}"><h2><span class="mglyph"></span>${esc(machine)} <span class="count">${chans.length} channel${chans.length > 1 ? "s" : ""}</span></h2><div class="cards">`);
+    const parts = [];
+    for (const [machine, chans] of groupByMachine(store.channels)) {
+      parts.push(html`<section class="machine" data-machine="${machine}"><h2><span class="mglyph"></span>${machine} <span class="count">${chans.length} channel${chans.length > 1 ? "s" : ""}</span></h2><div class="cards">`);
       for (const c of chans) {
-        html.push(`<a class="card" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${esc(c.id)}" data-state="unknown">
-          <div class="row1"><span class="id">${esc(c.id)}</span><span class="st"></span></div>
-          <div class="desc" title="${esc(c.description)}">${esc(c.description || "")}</div>
+        parts.push(html`<a class="card" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${c.id}" data-state="unknown">
+          <div class="row1"><span class="id">${c.id}</span><span class="st"></span></div>
+          <div class="desc" title="${c.description}">${c.description || ""}</div>
           <div class="headline"><span class="overall" data-role="overall">—</span><span class="unit"></span><span class="what"></span></div>
           <canvas class="spark" aria-hidden="true"></canvas>
           <canvas class="minibars" aria-hidden="true"></canvas>
           <div class="note"></div>
         </a>`);
       }
-      html.push(`</div></section>`);
+      parts.push(html`</div></section>`);
     }
-    m.innerHTML = html.join("");
+    setHTML(m, parts);
     for (const el of m.querySelectorAll(".card")) {
       const id = el.dataset.channel;
       const entry = {
@@ -104,50 +105,47 @@ export function mount(root, ctx) {
         st: el.querySelector(".st"), note: el.querySelector(".note"),
       };
       entry.spark = new Spark(el.querySelector(".spark"), () => {
-        const rule = ctx.levels(id, "overall", "overall");
-        return { pts: ctx.history(id, ctx.FRAME), alert: rule?.alert, danger: rule?.danger, stale: ctx.store.conn === "reconnecting" };
+        const rule = levels(id, "overall", "overall");
+        return { pts: history(id, FRAME), alert: rule?.alert, danger: rule?.danger, stale: store.conn === "reconnecting" };
       });
       cards.set(id, entry);
     }
   }
 
-  /** Fill the sparklines with the stored last ten minutes, when the service keeps trends. */
+  /** Fill the sparklines with the stored last ten minutes. */
   async function seedSparks() {
-    if (features.trend === false) return;
-    for (const c of ctx.store.channels) {
+    for (const c of store.channels) {
       if (disposed || !c.latest) continue;
       const until = c.latest.timestamp_ns / 1e9;
       try {
         const j = await getJSON(`${API}/channels/${encodeURIComponent(c.id)}/trend${qs({ name: "overall", since: until - SPARK_MS / 1000, until, step: 10 })}`);
-        features.trend = true;
-        ctx.seedHistory(c.id, ctx.FRAME, (j.points || []).map((p) => [p.t_ns / 1e6, p.mean]));
+        seedHistory(c.id, FRAME, (j.points || []).map((p) => [p.t_ns / 1e6, p.mean]));
         cards.get(c.id)?.spark.surface.invalidate();
-      } catch (e) {
-        if (isMissingRoute(e)) features.trend = false;
-        return;
+      } catch {
+        return; // unreachable or failing: the sparklines fill from the live values
       }
     }
   }
 
   function update() {
-    const chans = ctx.store.channels;
+    const chans = store.channels;
     const key = chans.map((c) => c.id).join(",");
     if (key !== ids) {
       ids = key;
       build();
       seedSparks();
     }
-    const stale = ctx.store.conn === "reconnecting";
+    const stale = store.conn === "reconnecting";
     let nAbn = 0;
     for (const c of chans) {
       const e = cards.get(c.id);
       if (!e) continue;
-      const k = ctx.channelState(c);
+      const k = channelState(c);
       if (STATES[k].rank >= STATES.latched.rank) nAbn++;
       if (k !== e.stateKey) {
         e.stateKey = k;
         e.el.dataset.state = k;
-        e.st.innerHTML = badge(k);
+        setHTML(e.st, badge(k));
       }
       const L = c.latest;
       e.overall.textContent = L ? fmtVal(L.overall) : "—";
@@ -158,26 +156,25 @@ export function mount(root, ctx) {
       e.unit.textContent = L ? unitLabel(L.unit, "rms") : "";
       e.what.textContent = !L || L.overall_lo_hz == null ? "overall" // the band comes with a frame
         : `overall ${fmtHz(L.overall_lo_hz)}–${fmtHz(L.overall_hi_hz)}`;
-      const live = isLive(c.status);
-      e.el.classList.toggle("stale", stale || !live);
-      e.el.dataset.live = live ? "yes" : "no";
+      const liveValues = isLive(c.status);
+      e.el.classList.toggle("stale", stale || !liveValues);
+      e.el.dataset.live = liveValues ? "yes" : "no";
       const notes = [];
-      if (!live) {
+      if (!liveValues) {
         // never a bare healthy number: say what the channel is, since when, and how old the value is
         const since = c.status_since_ns ? ` since ${fmtClock(c.status_since_ns)}` : "";
         const old = L ? ` · value from ${fmtClock(L.timestamp_ns)}` : "";
-        notes.push(`<span class="notlive">${esc(STATES[k].word)}${since}${old}</span>`);
+        notes.push(html`<span class="notlive">${STATES[k].word}${since}${old}</span>`);
       }
-      if (c.fault) notes.push(`${glyph(STATUS_TO_STATE[c.status] || "fault", 12)} ${esc(c.fault)}`);
-      const al = ctx.alarmsFor(c.id).filter((a) => a.state !== "normal" || a.latched);
-      if (al.length) notes.push(al.map((a) => `${a.kind === "overall" ? "overall" : esc(a.name)}${ruleProfile(a) ? ` (${esc(ruleProfile(a))})` : ""} ${esc(a.state)}${a.acked ? " (ack)" : ""}`).join(", "));
-      const nh = notes.join(" · ");
-      if (e.note.innerHTML !== nh) e.note.innerHTML = nh;
-      const { named } = bandRows(ctx, c.id, ctx.store.bands.get(c.id));
+      if (c.fault) notes.push(html`${glyph(STATUS_TO_STATE[c.status] || "fault", 12)} ${c.fault}`);
+      const al = alarmsFor(c.id).filter((a) => a.state !== "normal" || a.latched);
+      if (al.length) notes.push(al.map((a) => `${a.kind === "overall" ? "overall" : a.name}${ruleProfile(a) ? ` (${ruleProfile(a)})` : ""} ${a.state}${a.acked ? " (ack)" : ""}`).join(", "));
+      updateHTML(e.note, join(notes, " · "));
+      const { named } = bandRows(c.id, store.bands.get(c.id));
       const top = topBands(named, 3);
-      ctx.fetchWatched(c.id, top); // values of bars watched on another profile
+      fetchWatched(c.id, top); // values of bars watched on another profile
       e.bars.setStale(stale);
-      e.bars.setRows(top, ctx.store.bands.get(c.id)?.unit || "");
+      e.bars.setRows(top, store.bands.get(c.id)?.unit || "");
       e.spark.surface.invalidate();
     }
     for (const sec of document.querySelectorAll(".machine")) {
@@ -187,8 +184,7 @@ export function mount(root, ctx) {
         if ((STATES[k]?.rank ?? -1) > STATES[worst].rank) worst = k;
       }
       const g = sec.querySelector(".mglyph");
-      const gh = `<span class="${STATES[worst].cls}" title="worst state: ${STATES[worst].word}">${glyph(worst)}</span>`;
-      if (g.innerHTML !== gh) g.innerHTML = gh;
+      updateHTML(g, html`<span class="${STATES[worst].cls}" title="worst state: ${STATES[worst].word}">${glyph(worst)}</span>`);
     }
     const machines = groupByMachine(chans).size;
     document.getElementById("ov-sum").textContent = chans.length
@@ -197,35 +193,23 @@ export function mount(root, ctx) {
   }
 
   function renderAlarms() {
-    const al = ctx.store.alarms;
+    const al = store.alarms;
     const box = document.getElementById("ov-alarms");
     box.hidden = al === null;
     if (al !== null) {
-      const h = alarmListHtml(al);
-      const ul = document.getElementById("ov-alarm-list");
-      if (ul.dataset.h !== h) {
-        ul.innerHTML = h;
-        ul.dataset.h = h;
-      }
+      updateHTML(document.getElementById("ov-alarm-list"), alarmListHtml(al));
     }
-    document.getElementById("ov").classList.toggle("no-alarms", al === null && features.events !== true);
   }
 
   let evBusy = false;
   async function loadEvents() {
-    if (features.events !== true || evBusy || disposed) {
-      document.getElementById("ov-events").hidden = features.events !== true;
-      return;
-    }
+    if (evBusy || disposed) return;
     evBusy = true;
     try {
       const j = await getJSON(`${API}/events?limit=12`);
-      const rows = (j.events || []).map((ev) => eventItemHtml(ev)).join("") || `<li class="empty">No events yet.</li>`;
+      const evs = j.events || [];
       const tb = document.getElementById("ov-event-rows");
-      if (tb && tb.dataset.h !== rows) {
-        tb.innerHTML = rows;
-        tb.dataset.h = rows;
-      }
+      if (tb) updateHTML(tb, evs.length ? evs.map((ev) => eventItemHtml(ev)) : html`<li class="empty">No events yet.</li>`);
       document.getElementById("ov-events").hidden = false;
     } catch {
       /* keep what is shown */
@@ -258,17 +242,16 @@ export function mount(root, ctx) {
       };
     })(),
     "alarm-event": () => loadEvents(),
-    features: () => loadEvents(),
   };
   let pendingBands = false;
-  for (const [k, f] of Object.entries(on)) ctx.app.addEventListener(k, f);
+  for (const [k, f] of Object.entries(on)) app.addEventListener(k, f);
   update();
   renderAlarms();
   loadEvents();
   return {
     unmount() {
       disposed = true;
-      for (const [k, f] of Object.entries(on)) ctx.app.removeEventListener(k, f);
+      for (const [k, f] of Object.entries(on)) app.removeEventListener(k, f);
       for (const c of cards.values()) {
         c.bars.surface.dispose();
         c.spark.surface.dispose();

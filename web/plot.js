@@ -161,3 +161,82 @@ export function plateText(ctx, text, x, y, { align = "left", base = "middle", fg
   ctx.fillText(text, x, y);
   return { x0, y0, w, h };
 }
+
+// --- axes: one way to draw a plot's area, grid, tick labels and border -------------------
+// `box` is the plot area in CSS pixels, {L, R, T, B}; grid lines sit on half pixels so they
+// are one pixel wide. Tick labels are 11 px monospace in the secondary ink.
+
+/** The panel, then the plot area's background inside it. */
+export function plotArea(ctx, w, h, { L, R, T, B }) {
+  ctx.fillStyle = pal.panel;
+  ctx.fillRect(0, 0, w, h);
+  ctx.fillStyle = pal.plot;
+  ctx.fillRect(L, T, R - L, B - T);
+}
+
+/** Vertical grid lines at `values` on scale `xs`; `colour` a colour or v → colour. */
+export function gridX(ctx, xs, values, { T, B }, colour = pal.grid) {
+  ctx.lineWidth = 1;
+  for (const v of values) {
+    const x = Math.round(xs.px(v)) + 0.5;
+    ctx.strokeStyle = typeof colour === "function" ? colour(v) : colour;
+    ctx.beginPath();
+    ctx.moveTo(x, T);
+    ctx.lineTo(x, B);
+    ctx.stroke();
+  }
+}
+
+/** Horizontal grid lines at `values` on scale `ys`; `colour` as for gridX. */
+export function gridY(ctx, ys, values, { L, R }, colour = pal.grid) {
+  ctx.lineWidth = 1;
+  for (const v of values) {
+    const y = Math.round(ys.px(v)) + 0.5;
+    ctx.strokeStyle = typeof colour === "function" ? colour(v) : colour;
+    ctx.beginPath();
+    ctx.moveTo(L, y);
+    ctx.lineTo(R, y);
+    ctx.stroke();
+  }
+}
+
+function tickFont(ctx, align, base) {
+  ctx.font = `11px ${pal.mono}`;
+  ctx.fillStyle = pal["ink-2"];
+  ctx.textAlign = align;
+  ctx.textBaseline = base;
+}
+
+/** Labels of y ticks left of the plot area (those inside its height), `fmt(v)` each. */
+export function labelsY(ctx, ys, values, { L, T, B }, fmt) {
+  tickFont(ctx, "right", "middle");
+  for (const v of values) {
+    const y = ys.px(v);
+    if (y < T - 1 || y > B + 1) continue;
+    ctx.fillText(fmt(v), L - 6, y);
+  }
+}
+
+/** Labels of x ticks `dy` below the plot area, `fmt(v)` each. `spaced`: skip a label that
+ *  would touch the one before it or fall outside the plot's width. */
+export function labelsX(ctx, xs, values, { L, R, B }, fmt, { dy = 5, spaced = false } = {}) {
+  tickFont(ctx, "center", "top");
+  let lastX = -1e9;
+  for (const v of values) {
+    const x = xs.px(v);
+    const s = fmt(v);
+    if (spaced) {
+      const half = ctx.measureText(s).width / 2 + 4;
+      if (x - half < lastX || x < L - 2 || x > R + 2) continue;
+      lastX = x + half;
+    }
+    ctx.fillText(s, x, B + dy);
+  }
+}
+
+/** The plot area's border in the axis colour. */
+export function border(ctx, { L, R, T, B }) {
+  ctx.strokeStyle = pal.axis;
+  ctx.lineWidth = 1;
+  ctx.strokeRect(L + 0.5, T + 0.5, R - L - 1, B - T - 1);
+}

@@ -3,7 +3,7 @@
 
 import { fmtHz, fmtVal } from "./fmt.js";
 import { MARGIN, columnExtremes } from "./spectrum.js";
-import { Scale, Surface, pal, plateText } from "./plot.js";
+import { Scale, Surface, border, pal, plateText } from "./plot.js";
 
 function parseHex(c) {
   const m = /^#?([0-9a-f]{6})$/i.exec(c.trim());
@@ -130,8 +130,7 @@ export class Spectrogram {
     const n1 = this.rows - this.head;
     ctx.drawImage(this.off, 0, this.head, W, n1, L, T, R - L, n1 * rowH);
     if (this.head > 0) ctx.drawImage(this.off, 0, 0, W, this.head, L, T + n1 * rowH, R - L, this.head * rowH);
-    ctx.strokeStyle = pal.axis;
-    ctx.strokeRect(L + 0.5, T + 0.5, R - L - 1, H - 1);
+    border(ctx, { L, R, T, B });
 
     // Time axis: seconds before the newest row.
     ctx.font = `11px ${pal.mono}`;

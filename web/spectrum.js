@@ -2,7 +2,7 @@
 // peaks, hover read-out, zoom/pan by mouse and keys. Gets data from its caller; no network.
 
 import { fmtHz, fmtHzAt, fmtVal, tickHz, unitLabel, convertFactor } from "./fmt.js";
-import { Scale, Surface, linTicks, logTicks, niceCeil, pal, plateText } from "./plot.js";
+import { Scale, Surface, border, gridX, plotArea, gridY, labelsX, labelsY, linTicks, logTicks, niceCeil, pal, plateText } from "./plot.js";
 
 export const MARGIN = { l: 58, r: 14, t: 24, b: 30 };
 const LOG_DECADES = 4;
@@ -310,10 +310,7 @@ export class SpectrumPlot {
 
   _draw(ctx, w, h) {
     const L = MARGIN.l, R = w - MARGIN.r, T = MARGIN.t, B = h - MARGIN.b;
-    ctx.fillStyle = pal.panel;
-    ctx.fillRect(0, 0, w, h);
-    ctx.fillStyle = pal.plot;
-    ctx.fillRect(L, T, R - L, B - T);
+    plotArea(ctx, w, h, { L, R, T, B });
     ctx.font = `11px ${pal.font}`;
     const d = this.data;
     if (!d || !this.view || R - L < 20 || B - T < 20) {
@@ -408,59 +405,26 @@ export class SpectrumPlot {
 
   _drawGrid(ctx, L, R, T, B) {
     const xs = this.xs, ys = this.ys;
-    ctx.lineWidth = 1;
-    const vline = (x, c) => {
-      ctx.strokeStyle = c;
-      ctx.beginPath();
-      ctx.moveTo(Math.round(x) + 0.5, T);
-      ctx.lineTo(Math.round(x) + 0.5, B);
-      ctx.stroke();
-    };
-    const hline = (y, c) => {
-      ctx.strokeStyle = c;
-      ctx.beginPath();
-      ctx.moveTo(L, Math.round(y) + 0.5);
-      ctx.lineTo(R, Math.round(y) + 0.5);
-      ctx.stroke();
-    };
+    const box = { L, R, T, B };
     this._xt = this.logFreq
       ? logTicks(this.view.lo, this.view.hi, (R - L) / Math.log10(this.view.hi / this.view.lo))
       : { major: linTicks(this.view.lo, this.view.hi, Math.max(2, Math.floor((R - L) / 90))), minor: [] };
-    for (const f of this._xt.minor) vline(xs.px(f), pal["grid-2"]);
-    for (const f of this._xt.major) vline(xs.px(f), pal.grid);
+    gridX(ctx, xs, this._xt.minor, box, pal["grid-2"]);
+    gridX(ctx, xs, this._xt.major, box);
     this._yt = this.logAmp
       ? logTicks(ys.lo, ys.hi, (B - T) / Math.log10(ys.hi / ys.lo))
       : { major: linTicks(ys.lo, ys.hi, Math.max(2, Math.floor((B - T) / 45))), minor: [] };
     if (this.logAmp) this._yt.major = this._yt.major.filter((v) => Math.abs(Math.log10(v) - Math.round(Math.log10(v))) < 1e-9 || (B - T) / this.decades > 110);
-    for (const v of this._yt.minor) if (this.decades <= 3) hline(ys.px(v), pal["grid-2"]);
-    for (const v of this._yt.major) hline(ys.px(v), pal.grid);
+    if (this.decades <= 3) gridY(ctx, ys, this._yt.minor, box, pal["grid-2"]);
+    gridY(ctx, ys, this._yt.major, box);
   }
 
   _drawAxes(ctx, L, R, T, B) {
     const d = this.data;
-    ctx.strokeStyle = pal.axis;
-    ctx.lineWidth = 1;
-    ctx.strokeRect(L + 0.5, T + 0.5, R - L - 1, B - T - 1);
-    ctx.fillStyle = pal["ink-2"];
-    ctx.font = `11px ${pal.mono}`;
-    ctx.textBaseline = "top";
-    ctx.textAlign = "center";
-    let lastX = -1e9;
-    for (const f of this._xt.major) {
-      const x = this.xs.px(f);
-      const s = tickHz(f);
-      const half = ctx.measureText(s).width / 2 + 4;
-      if (x - half < lastX || x < L - 2 || x > R + 2) continue;
-      ctx.fillText(s, x, B + 5);
-      lastX = x + half;
-    }
-    ctx.textAlign = "right";
-    ctx.textBaseline = "middle";
-    for (const v of this._yt.major) {
-      const y = this.ys.px(v);
-      if (y < T - 1 || y > B + 1) continue;
-      ctx.fillText(fmtVal(v, 2), L - 6, y);
-    }
+    const box = { L, R, T, B };
+    border(ctx, box);
+    labelsX(ctx, this.xs, this._xt.major, box, tickHz, { spaced: true });
+    labelsY(ctx, this.ys, this._yt.major, box, (v) => fmtVal(v, 2));
     ctx.font = `11px ${pal.font}`;
     ctx.fillStyle = pal["ink-3"];
     ctx.textAlign = "right";

@@ -2,7 +2,7 @@
 // and danger levels, and alarm events marked by shape. Canvas only; data comes from the caller.
 
 import { fmtClock, fmtVal, unitLabel } from "./fmt.js";
-import { Scale, Surface, linTicks, niceCeil, pal, plateText } from "./plot.js";
+import { Scale, Surface, border, gridX, gridY, labelsX, labelsY, linTicks, niceCeil, pal, plateText, plotArea } from "./plot.js";
 
 const STEPS_S = [1, 2, 5, 10, 15, 30, 60, 120, 300, 600, 900, 1800, 3600, 7200, 10800, 21600, 43200, 86400, 172800, 604800];
 const L = 58, Rm = 14, T = 20, Bm = 24;
@@ -28,10 +28,8 @@ export class TrendChart {
 
   _draw(ctx, w, h) {
     const R = w - Rm, B = h - Bm;
-    ctx.fillStyle = pal.panel;
-    ctx.fillRect(0, 0, w, h);
-    ctx.fillStyle = pal.plot;
-    ctx.fillRect(L, T, R - L, B - T);
+    const box = { L, R, T, B };
+    plotArea(ctx, w, h, box);
     const [t0, t1] = this.range;
     const xs = new Scale(false).set(t0, t1, L, R);
     let mx = 0;
@@ -42,35 +40,16 @@ export class TrendChart {
     const top = niceCeil((mx || 1) * 1.1);
     const ys = new Scale(false).set(0, top, B, T);
     // grid and axes
-    ctx.font = `11px ${pal.mono}`;
-    ctx.lineWidth = 1;
-    ctx.textAlign = "right";
-    ctx.textBaseline = "middle";
-    for (const v of linTicks(0, top, Math.max(2, Math.floor((B - T) / 36)))) {
-      const y = Math.round(ys.px(v)) + 0.5;
-      ctx.strokeStyle = pal.grid;
-      ctx.beginPath();
-      ctx.moveTo(L, y);
-      ctx.lineTo(R, y);
-      ctx.stroke();
-      ctx.fillStyle = pal["ink-2"];
-      ctx.fillText(fmtVal(v, 2), L - 6, y);
-    }
+    const yt = linTicks(0, top, Math.max(2, Math.floor((B - T) / 36)));
+    gridY(ctx, ys, yt, box);
+    labelsY(ctx, ys, yt, box, (v) => fmtVal(v, 2));
     const spanS = (t1 - t0) / 1000;
     const step = (STEPS_S.find((s) => ((R - L) / spanS) * s >= 80) ?? 2592000) * 1000;
-    ctx.textAlign = "center";
-    ctx.textBaseline = "top";
     const tz = new Date().getTimezoneOffset() * 60e3;
-    for (let t = Math.ceil((t0 - tz) / step) * step + tz; t <= t1; t += step) {
-      const x = Math.round(xs.px(t)) + 0.5;
-      ctx.strokeStyle = pal.grid;
-      ctx.beginPath();
-      ctx.moveTo(x, T);
-      ctx.lineTo(x, B);
-      ctx.stroke();
-      ctx.fillStyle = pal["ink-2"];
-      ctx.fillText(timeLabel(t, step), x, B + 5);
-    }
+    const xt = [];
+    for (let t = Math.ceil((t0 - tz) / step) * step + tz; t <= t1; t += step) xt.push(t);
+    gridX(ctx, xs, xt, box);
+    labelsX(ctx, xs, xt, box, (t) => timeLabel(t, step));
     ctx.save();
     ctx.beginPath();
     ctx.rect(L, T, R - L, B - T);
@@ -126,9 +105,7 @@ export class TrendChart {
       ctx.setLineDash([]);
       shape(ctx, ev.state, x, T + 3);
     }
-    ctx.strokeStyle = pal.axis;
-    ctx.lineWidth = 1;
-    ctx.strokeRect(L + 0.5, T + 0.5, R - L - 1, B - T - 1);
+    border(ctx, box);
     ctx.font = `11px ${pal.font}`;
     ctx.fillStyle = pal["ink-3"];
     ctx.textAlign = "left";

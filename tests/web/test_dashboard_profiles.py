@@ -197,20 +197,21 @@ def test_unknown_profile_in_the_url_shows_the_primary(
     assert not log.errors, log.errors
 
 
-def rule_view(rule: str, kind: str, name: str, profile: str) -> dict[str, str]:
-    return {"rule": rule, "channel": "p1-de-h", "kind": kind, "name": name, "profile": profile}
+def rule_view(rule: str, kind: str, name: str, profile: str, primary: bool) -> dict[str, Any]:
+    return {"rule": rule, "channel": "p1-de-h", "kind": kind, "name": name, "profile": profile,
+            "primary": primary}
 
 
 RULES = [
-    # (rule view, words in the alarm list). Rule ids as the service makes them (its alarm
-    # API; service/alarms/rules.py rule_id): <channel>.<profile>.<kind>… for a rule on a
-    # non-primary profile, <channel>.<kind>… for a primary one.
-    (rule_view("p1-de-h.narrow.band.1x", "band", "1x", "narrow"), "1x band · narrow"),
-    (rule_view("p1-de-h.narrow.overall", "overall", "overall", "narrow"), "overall · narrow"),
-    (rule_view("p1-de-h.band.1x", "band", "1x", "wide"), "1x band"),
-    (rule_view("p1-de-h.band.1x", "band", "1x", ""), "1x band"),
+    # (rule view, words in the alarm list). Views as the service makes them (its alarm API;
+    # service/alarms/events.py AlarmView: `profile` and whether it is the channel's `primary` one).
+    (rule_view("p1-de-h.narrow.band.1x", "band", "1x", "narrow", False), "1x band · narrow"),
+    (rule_view("p1-de-h.narrow.overall", "overall", "overall", "narrow", False),
+     "overall · narrow"),
+    (rule_view("p1-de-h.band.1x", "band", "1x", "wide", True), "1x band"),
+    (rule_view("p1-de-h.band.1x", "band", "1x", "", True), "1x band"),
     # a primary profile that happens to be called "band"
-    (rule_view("p1-de-h.band.bearing", "band", "bearing", "band"), "bearing band"),
+    (rule_view("p1-de-h.band.bearing", "band", "bearing", "band", True), "bearing band"),
 ]
 
 
@@ -280,9 +281,9 @@ def test_every_watched_bar_shows_its_rules_limits_whichever_profile_is_on_screen
 def test_band_rows_take_the_rule_of_any_profile_and_the_overall_rule(
     demo: Service, page: tuple[Any, PageLog]
 ) -> None:
-    # bandRows (web/bars.js) with a made-up context: an `overall = true` rule watches the band
-    # named "overall" (the channel's overall is that band's value); a rule on another profile
-    # brings that profile's value; a band no rule watches has no limits.
+    # bandRows (web/bars.js) with made-up levels and messages: an `overall = true` rule
+    # watches the band named "overall" (the channel's overall is that band's value); a rule on
+    # another profile brings that profile's value; a band no rule watches has no limits.
     pg, _ = page
     pg.goto(demo.base_url + "/#/", wait_until="domcontentloaded")
     got = pg.evaluate("""async () => {
@@ -291,7 +292,7 @@ def test_band_rows_take_the_rule_of_any_profile_and_the_overall_rule(
         const onNarrow = {rule: 'c.narrow.band.1x', kind: 'band', alert: 3, danger: 6,
                           state: 'alert'};
         const table = {'|overall|overall': over, 'narrow|band|1x': onNarrow};
-        const ctx = {
+        const look = {
             levels: (ch, kind, name, p) =>
                 table[`${p === 'wide' ? '' : p}|${kind}|${name}`] ?? null,
             profileKey: (ch, p) => (p === 'wide' ? '' : p),
@@ -305,7 +306,7 @@ def test_band_rows_take_the_rule_of_any_profile_and_the_overall_rule(
             {name: 'overall', lo_hz: 10, hi_hz: 1000, value: 2.5},
             {name: '1x', lo_hz: 20, hi_hz: 30, value: 0.1},
             {name: 'other', lo_hz: 40, hi_hz: 50, value: 0.2}]};
-        return m.bandRows(ctx, 'c', msg).named;
+        return m.bandRows('c', msg, look).named;
     }""")
     rows = {r["name"]: r for r in got}
     assert (rows["overall"]["alert"], rows["overall"]["danger"]) == (1, 2)
