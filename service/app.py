@@ -19,6 +19,7 @@ from pathlib import Path
 from typing import Any
 
 import uvicorn
+from fastapi import FastAPI
 from threadpoolctl import threadpool_limits
 
 from .alarms import AckRefused, AlarmEngine, AlarmEvent, UnknownAlarm, rules_from_config
@@ -70,7 +71,7 @@ class Service:
     def __init__(self, cfg: Config, config_path: str | Path | None = None) -> None:
         self.cfg = cfg
         self.config_path = None if config_path is None else Path(config_path)
-        self.http_app: Any = None
+        self.http_app: FastAPI | None = None
         self.hub = Hub()
         self.pipelines: list[SourcePipeline] = []
         self.tasks: list[asyncio.Task[None]] = []
@@ -256,11 +257,12 @@ class Service:
             self._store_evidence(p, force=True)
         await asyncio.to_thread(self.store.close)
 
-    def app(self):  # type: ignore[no-untyped-def]
-        self.http_app = create_app(
+    def app(self) -> FastAPI:
+        app = create_app(
             self.hub, config=self.cfg, service=self, lifespan_hooks=(self.start, self.stop)
         )
-        return self.http_app
+        self.http_app = app
+        return app
 
     # -- configuration reload ----------------------------------------------------------
     async def reload(self) -> dict[str, Any]:

@@ -360,7 +360,8 @@ class SourcePipeline:
             continues = ~any_differs & (last == self._flat_last)
             self._flat_run = np.where(continues, self._flat_run + n, trailing)
             self._flat_last = last.copy()
-        return self._flat_run >= FLAT_MIN_S * fs  # type: ignore[no-any-return]
+        flat: np.ndarray = self._flat_run >= FLAT_MIN_S * fs
+        return flat
 
     def request_evidence(
         self, event_id: int, channel: str, center_index: int, spectrum: dict[str, object]

@@ -74,7 +74,7 @@ def _iso(t_ns: int) -> str | None:
 
 def _summary(hub: Any, cid: str) -> dict[str, Any]:
     st = hub.channels[cid]
-    d = st.as_dict()
+    d: dict[str, Any] = st.as_dict()
     d.update(_now_state(st))
     f = hub.latest.get(cid)
     if f is not None:

@@ -461,7 +461,7 @@ def _sessions(state: Any) -> set[_Session]:
     got = getattr(state, "stream_sessions", None)
     if got is None:
         got = state.stream_sessions = set()
-    return got  # type: ignore[no-any-return]
+    return got
 
 
 def revoke_sessions(state: Any, cfg: Config) -> int:
