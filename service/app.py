@@ -35,6 +35,7 @@ from .config import (
     parse_config,
     parse_listen,
 )
+from .context import ReloadRefused
 from .hub import Hub
 from .pipeline import ChannelState, SourcePipeline, channel_states
 from .profiles import ProfileBank
@@ -49,14 +50,6 @@ WATCH_PERIOD_S = 0.25  # how often every channel's state is derived again (our c
 RESTART_FIRST_S = 1.0  # back-off before a failed pipeline runs again, doubled each time …
 RESTART_MAX_S = 30.0  # … up to this (our choice)
 RESTART_STABLE_S = 60.0  # a pipeline that ran this long before failing starts over at 1 s
-
-
-class ReloadRefused(Exception):
-    """A reload that changed nothing: ``status`` (409 or 422), ``reason``, ``problems``."""
-
-    def __init__(self, status: int, reason: str, problems: list[str] | None = None) -> None:
-        super().__init__(reason)
-        self.status, self.reason, self.problems = status, reason, list(problems or [])
 
 
 class Service:
@@ -130,9 +123,7 @@ class Service:
             self.alarms.restore(state)
             log.info("restored %d active/latched alarms", len(self.alarms.active()))
         for p in self.pipelines:
-            start = getattr(p.source, "start", None)
-            if start is not None:
-                await start()
+            await p.source.start()
         self.started_mono = time.monotonic()
         for st in self.hub.channels.values():
             st.status_since_ns = time.time_ns()
@@ -251,9 +242,7 @@ class Service:
             t.cancel()
         await asyncio.gather(*self.tasks, return_exceptions=True)
         for p in self.pipelines:
-            close = getattr(p.source, "aclose", None)
-            if close is not None:
-                await close()
+            await p.source.aclose()
             self._store_evidence(p, force=True)
         await asyncio.to_thread(self.store.close)
 

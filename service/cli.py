@@ -574,6 +574,9 @@ class _RecordingSource:
     async def __anext__(self) -> SampleBlock:
         raise StopAsyncIteration
 
+    async def start(self) -> None:
+        return None
+
     async def aclose(self) -> None:
         return None
 

@@ -34,93 +34,20 @@ from .quality import (
     default_stale_after_s,
 )
 from .sources.base import Source
-from .types import BandValue, FramePeaks, PushPeaks, SampleBlock, SpectralFrame, ToneValue
+from .types import (
+    BandValue,
+    ChannelState,
+    FramePeaks,
+    PushPeaks,
+    SampleBlock,
+    SpectralFrame,
+    ToneValue,
+)
 
 log = logging.getLogger("quaver.pipeline")
 
 __all__ = ["OVERALL", "ChannelGroup", "ChannelState", "SourcePipeline", "overall_band"]
 FLAT_MIN_S = 0.05  # identical samples for this long = a flat (dead) sensor; our choice
-
-
-@dataclass
-class ChannelState:
-    """What the service knows about one channel; updated by its source's worker thread."""
-
-    id: str
-    source_id: str
-    machine: str
-    description: str
-    input_unit: str
-    sensitivity: float
-    speed_rpm: float | None
-    clip_level: float | None
-    range: float = float("inf")  # largest plausible |sample|, input units (sensor's range)
-    stale_after_s: float = 5.0  # no new frame for this long: no-signal
-    loss_of_signal: str = "alert"  # the loss-of-signal alarm's level, or "off"
-    fs: float = 0.0
-    # The channel's data-quality state (service.quality), derived on the event loop from
-    # what the worker saw (data_status) and when the latest frame came; ``fault`` says why.
-    status: str = "no-signal"
-    fault: str = "waiting for the first spectrum"
-    status_since_ns: int = 0
-    lost: bool = False  # the loss-of-signal condition (service.quality.is_lost)
-    status_changes: int = 0
-    # Written by the source's worker thread: what the latest blocks showed.
-    data_status: str = "ok"  # ok | sensor-fault | gap | overrun
-    data_fault: str = ""
-    settling: bool = False  # analysis restarted after a sensor fault, no clean frame yet
-    # clean samples since the latest bad one: the fault is held for FAULT_HOLD_S of them,
-    # counted in the stream's own samples so that a recording analysed faster than real
-    # time (quaver analyze) holds it exactly as the running service does
-    clean_samples: int = 0
-    overrun_until: float = 0.0
-    samples: int = 0
-    gaps: int = 0
-    frames: int = 0
-    nonfinite_blocks: int = 0
-    range_blocks: int = 0
-    flat_blocks: int = 0
-    clipped_blocks: int = 0
-    sensor_faults: int = 0  # transitions into sensor fault
-    last_block_ns: int = 0
-    last_frame_mono: float | None = None  # monotonic s when its latest frame arrived
-    notes: tuple[str, ...] = ()
-    profiles: tuple[str, ...] = ("default",)  # analysis profiles, the primary one first
-    profile_info: dict[str, dict[str, object]] = field(default_factory=dict)  # at the stream's fs
-
-    def as_dict(self) -> dict[str, object]:
-        return {
-            "id": self.id,
-            "source": self.source_id,
-            "machine": self.machine,
-            "description": self.description,
-            "sample_rate_hz": self.fs,
-            "input_unit": self.input_unit,
-            "sensitivity": self.sensitivity,
-            "speed_rpm": self.speed_rpm,
-            "status": self.status,
-            "fault": self.fault,
-            "status_since_ns": self.status_since_ns,
-            "range": self.range if math.isfinite(self.range) else None,
-            "stale_after_s": self.stale_after_s,
-            "loss_of_signal": self.loss_of_signal,
-            "counters": {
-                "samples": self.samples,
-                "gaps": self.gaps,
-                "frames": self.frames,
-                "status_changes": self.status_changes,
-                "nonfinite_blocks": self.nonfinite_blocks,
-                "range_blocks": self.range_blocks,
-                "flat_blocks": self.flat_blocks,
-                "clipped_blocks": self.clipped_blocks,
-                "sensor_faults": self.sensor_faults,
-            },
-            "notes": list(self.notes),
-            "profiles": [
-                self.profile_info.get(p, {"name": p, "primary": i == 0})
-                for i, p in enumerate(self.profiles)
-            ],
-        }
 
 
 class WaveformRing:

@@ -21,6 +21,7 @@ import web
 
 from .. import __version__
 from ..config import Config
+from ..context import ServiceContext
 from ..hub import Hub
 from . import (
     admin,
@@ -41,7 +42,7 @@ def create_app(
     hub: Hub,
     *,
     config: Config | None = None,
-    service: Any = None,
+    service: ServiceContext | None = None,
     lifespan_hooks: tuple[Callable[[], Any], Callable[[], Any]] | None = None,
 ) -> FastAPI:
     """A FastAPI app over ``hub``. ``config`` gives tokens, CORS and limits (default: an
@@ -68,11 +69,11 @@ def create_app(
         docs_url=None,  # docs.mount: the same pages from installed assets, no CDN
         redoc_url=None,
     )
+    # Read through the typed dependencies of .deps (and stream's sessions); nothing else.
     app.state.hub = hub
     app.state.config = config
     app.state.service = service
-    app.state.alarms = getattr(service, "alarms", None)
-    app.state.store = getattr(service, "store", None)
+    stream.init_state(app.state)
     # Outermost first: CORS answers preflights (they carry no token), then the access gate
     # (Host/Origin, tokens), then the body limit.
     app.add_middleware(edge.BodyLimit)

@@ -12,7 +12,6 @@ from fastapi import APIRouter, Query, Response
 
 from dsp.types import AMPLITUDES, OUTPUT_UNITS, QUANTITIES
 
-from ..pipeline import ChannelState
 from ..spectra import (
     band_items,
     overall_item,
@@ -22,7 +21,7 @@ from ..spectra import (
     to_npy,
     tone_items,
 )
-from ..types import SpectralFrame
+from ..types import ChannelState, SpectralFrame
 from .deps import NO_FRAME, NOT_FOUND, ChannelDep, HubDep, ProfileQ, get_frame
 
 router = APIRouter(tags=["channels"])
