@@ -243,7 +243,7 @@ class Service:
         await asyncio.gather(*self.tasks, return_exceptions=True)
         for p in self.pipelines:
             await p.source.aclose()
-            self._store_evidence(p, force=True)
+            self._store_evidence(p, final=True)
         await asyncio.to_thread(self.store.close)
 
     def app(self) -> FastAPI:
@@ -391,11 +391,8 @@ class Service:
                     },
                 )
 
-    def _store_evidence(self, p: SourcePipeline, *, force: bool = False) -> None:
-        if force and p.requests and p.ring is not None:
-            p.complete_all()
-        while p.ready:
-            ev = p.ready.popleft()
+    def _store_evidence(self, p: SourcePipeline, *, final: bool = False) -> None:
+        for ev in p.take_evidence(final=final):
             self.store.put_evidence(ev.event_id, ev.spectrum, ev.waveform, ev.fs, ev.t0_ns)
 
     async def acknowledge(self, rule: str, who: str, note: str) -> dict[str, object]:

@@ -11,7 +11,6 @@ falls behind, the source's bounded queue drops its oldest blocks and counts them
 from __future__ import annotations
 
 import asyncio
-import collections
 import functools
 import logging
 import math
@@ -25,6 +24,7 @@ import numpy as np
 from dsp.analyzer import Analyzer, spectrum_peaks
 
 from .config import Config, channel_settings, profiles_of, source_of
+from .evidence import Evidence, EvidenceCapture
 from .profiles import OVERALL, ChannelGroup, ProfileBank, ProfilePlan, overall_band, plan_profiles
 from .quality import (
     DEFAULT_RANGE,
@@ -50,63 +50,6 @@ __all__ = ["OVERALL", "ChannelGroup", "ChannelState", "SourcePipeline", "overall
 FLAT_MIN_S = 0.05  # identical samples for this long = a flat (dead) sensor; our choice
 
 
-class WaveformRing:
-    """The last ``seconds`` of a source's samples in engineering units, for alarm evidence.
-
-    Sample k of the stream lives at column k mod L while end − L ≤ k < end. A gap empties
-    the ring (a snippet never joins samples from either side of a gap)."""
-
-    def __init__(self, channels: int, fs: float, seconds: float) -> None:
-        self.length = max(1, int(round(fs * seconds)))
-        self.buf = np.zeros((channels, self.length), dtype=np.float32)
-        self.start = 0  # first valid stream index
-        self.end = 0  # one past the last stored index
-
-    def append(self, x: np.ndarray, first_index: int) -> None:
-        if first_index != self.end:
-            self.start = self.end = first_index
-        n = x.shape[1]
-        if n >= self.length:
-            x, first_index = x[:, n - self.length :], first_index + n - self.length
-            n = self.length
-        pos = first_index % self.length
-        head = min(n, self.length - pos)
-        self.buf[:, pos : pos + head] = x[:, :head]
-        self.buf[:, : n - head] = x[:, head:]
-        self.end = first_index + n
-        self.start = max(self.start, self.end - self.length)
-
-    def snippet(self, row: int, lo: int, hi: int) -> tuple[np.ndarray, int]:
-        """Samples [max(lo, start), min(hi, end)) of one channel and the first one's index."""
-        lo, hi = max(lo, self.start), min(hi, self.end)
-        if hi <= lo:
-            return np.zeros(0, np.float32), lo
-        idx = np.arange(lo, hi) % self.length
-        return self.buf[row, idx].copy(), lo
-
-
-@dataclass
-class EvidenceRequest:
-    """Keep the waveform around ``center_index`` (samples before/after) for an event."""
-
-    event_id: int
-    channel: str
-    center_index: int
-    before: int
-    after: int
-    spectrum: dict[str, object]
-
-
-@dataclass
-class Evidence:
-    event_id: int
-    channel: str
-    spectrum: dict[str, object]
-    waveform: np.ndarray  # float32, engineering units
-    fs: float
-    t0_ns: int
-
-
 @dataclass
 class SourcePipeline:
     source: Source
@@ -117,9 +60,6 @@ class SourcePipeline:
     bank: ProfileBank | None = None
     fs: float | None = None
     evidence_s: tuple[float, float] = (3.0, 3.0)  # waveform kept before / after an event
-    ring: WaveformRing | None = None
-    requests: collections.deque[EvidenceRequest] = field(default_factory=collections.deque)
-    ready: collections.deque[Evidence] = field(default_factory=collections.deque)
     seq: int = 0
     blocks: int = 0
     restarts: int = 0  # analysis restarts after a sensor fault
@@ -131,8 +71,8 @@ class SourcePipeline:
 
     def __post_init__(self) -> None:
         self.started_mono = time.monotonic()  # when this run of the pipeline began
+        self.evidence = EvidenceCapture(*self.evidence_s)
         self._last_drops = 0
-        self._last_block: SampleBlock | None = None
         self._flat_run: np.ndarray | None = None
         self._flat_last: np.ndarray | None = None
 
@@ -156,7 +96,7 @@ class SourcePipeline:
         builds a new profile bank, as at the first block."""
         self.bank, self.fs, self._next_index = None, None, None
         self._flat_run = self._flat_last = None
-        self.requests.clear()
+        self.evidence.drop_requests()
 
     # -- worker thread -----------------------------------------------------------------
     def process(self, block: SampleBlock) -> list[SpectralFrame]:
@@ -179,7 +119,7 @@ class SourcePipeline:
                                  for p in plans for n in p.notes)
                 if self.cfg is not None:
                     st.stale_after_s = stale_after_s(self.cfg, cid, plans)
-            self.ring = WaveformRing(len(block.channel_ids), block.fs, sum(self.evidence_s) + 1.0)
+            self.evidence.restart(len(block.channel_ids), block.fs)
         states = [self.channels[c] for c in block.channel_ids]
         x = block.data
         gap = self._next_index is not None and block.first_index != self._next_index
@@ -244,10 +184,7 @@ class SourcePipeline:
             if overrun:
                 st.overrun_until = now + OVERRUN_HOLD_S
         x = x * sens  # raw units → engineering units
-        if self.ring is not None:
-            self._last_block = block
-            self.ring.append(x, block.first_index)
-            self._complete_evidence(block)
+        self.evidence.append(x, block)
         frames: list[SpectralFrame] = []
         if gap:
             for st in states:
@@ -294,46 +231,14 @@ class SourcePipeline:
         self, event_id: int, channel: str, center_index: int, spectrum: dict[str, object]
     ) -> None:
         """Ask for the waveform around ``center_index`` (called from the event loop)."""
-        fs = self.fs or 0.0
-        self.requests.append(
-            EvidenceRequest(
-                event_id,
-                channel,
-                center_index,
-                int(self.evidence_s[0] * fs),
-                int(self.evidence_s[1] * fs),
-                spectrum,
-            )
-        )
+        self.evidence.request(event_id, channel, center_index, spectrum, self.fs or 0.0)
 
-    def complete_all(self) -> None:
-        """Complete every pending request with what the ring holds (at shut-down)."""
-        if self.ring is None or self._last_block is None:
-            return
-        self._complete_evidence(self._last_block, force=True)
-
-    def _complete_evidence(self, block: SampleBlock, *, force: bool = False) -> None:
-        ring = self.ring
-        if ring is None:
-            return
-        rows = {c: i for i, c in enumerate(block.channel_ids)}
-        for _ in range(len(self.requests)):
-            req = self.requests.popleft()
-            if (
-                not force
-                and ring.end < req.center_index + req.after
-                and ring.start <= req.center_index
-            ):
-                self.requests.append(req)  # not due yet
-                continue
-            wave, first = ring.snippet(
-                rows[req.channel], req.center_index - req.before, req.center_index + req.after
-            )
-            # integer ns plus a rounded offset: a float64 near today's epoch is 256 ns coarse
-            t0_ns = block.t0_ns + round((first - block.first_index) * 1e9 / block.fs)
-            self.ready.append(
-                Evidence(req.event_id, req.channel, req.spectrum, wave, block.fs, t0_ns)
-            )
+    def take_evidence(self, *, final: bool = False) -> list[Evidence]:
+        """The evidence completed since the last call (called from the event loop);
+        ``final`` (at shut-down): first complete every pending request with what is kept."""
+        if final:
+            self.evidence.finish()
+        return self.evidence.take()
 
     def _frames(
         self, g: ChannelGroup, block: SampleBlock, new: int, end: int
