@@ -11,7 +11,6 @@ falls behind, the source's bounded queue drops its oldest blocks and counts them
 from __future__ import annotations
 
 import asyncio
-import functools
 import logging
 import math
 import time
@@ -21,7 +20,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from dsp.analyzer import Analyzer, spectrum_peaks
+from dsp.analyzer import spectrum_peaks
 
 from .config import Config, channel_settings, profiles_of, source_of
 from .evidence import Evidence, EvidenceCapture
@@ -38,6 +37,7 @@ from .types import (
     BandValue,
     ChannelState,
     FramePeaks,
+    PeakSettings,
     PushPeaks,
     SampleBlock,
     SpectralFrame,
@@ -254,7 +254,11 @@ class SourcePipeline:
         tone_hz = an.tone_hz
         # Peaks only when a client reads them (PushPeaks), for every channel of the push at
         # once, from the same spectra: what an.peaks() gives, up to float32 rounding.
-        peaks = PushPeaks(functools.partial(_peak_rows, power_in, an))
+        peaks = PushPeaks(power_in, PeakSettings(
+            input_unit=spec.input_unit, df_hz=an.grid.df_hz, window=spec.window, n=an.grid.n,
+            unit=spec.unit, amplitude=spec.amplitude, count=spec.peaks,
+            lowcut_hz=an.lowcut_hz, beta=spec.beta,
+        ), _peak_rows)
         # Time of the newest frame's end (an input-stream index), from the block's own clock.
         t_ns = block.t0_ns + round((end - block.first_index) * 1e9 / block.fs)
         # Plain floats of every channel at once: indexing numpy arrays value by value cost
@@ -316,13 +320,13 @@ class SourcePipeline:
         return out
 
 
-def _peak_rows(power_in: np.ndarray, an: Analyzer) -> list[tuple[ToneValue, ...]]:
+def _peak_rows(power_in: np.ndarray, s: PeakSettings) -> list[tuple[ToneValue, ...]]:
     """Each channel's peaks (``dsp.analyzer.spectrum_peaks``) from its input-unit power
-    spectrum ``power_in`` [C, lines + 1], as the analyzer ``an`` would find them."""
-    spec = an.spec
+    spectrum ``power_in`` [C, lines + 1], as the analyzer whose settings ``s`` are would
+    find them."""
     pk = spectrum_peaks(
-        power_in, spec.input_unit, an.grid.df_hz, spec.window, an.grid.n, unit=spec.unit,
-        amplitude=spec.amplitude, count=spec.peaks, lowcut_hz=an.lowcut_hz, beta=spec.beta,
+        power_in, s.input_unit, s.df_hz, s.window, s.n, unit=s.unit,
+        amplitude=s.amplitude, count=s.count, lowcut_hz=s.lowcut_hz, beta=s.beta,
     )
     return [
         tuple(ToneValue("", f, a) for f, a in zip(fs, amps, strict=True) if math.isfinite(f))

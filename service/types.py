@@ -80,19 +80,40 @@ class ToneValue(NamedTuple):
     value: float  # in the frame's display unit and amplitude type
 
 
+@dataclass(frozen=True, slots=True)
+class PeakSettings:
+    """What finding the peaks of a push's spectra needs: the analysis settings of the moment
+    (copied from the analyzer, so that a frame never refers to the live engine)."""
+
+    input_unit: str
+    df_hz: float
+    window: str
+    n: int  # FFT length, samples
+    unit: str
+    amplitude: str
+    count: int  # peaks per channel
+    lowcut_hz: float
+    beta: float  # Kaiser window's beta
+
+
+# Finds one tuple of peaks per channel from the push's input-unit power spectra [C, lines + 1].
+PeakFinder = Callable[[np.ndarray, PeakSettings], list[tuple[ToneValue, ...]]]
+
+
 class PushPeaks:
     """The peaks of the channels analysed together in one push, found for all of them the
     first time any is read.
 
     Most frames' peaks are never read (only ``/tones`` and the stream's ``tones`` messages
     show them), and finding them for every push was a quarter of the analysis threads' time
-    (quaver bench --service, profiled). ``compute`` returns one tuple per channel; it runs
-    once, under a lock, on whichever thread reads first."""
+    (quaver bench --service, profiled). Holds the push's ``power`` spectra and ``settings``
+    (plain data); ``find`` runs once, under a lock, on whichever thread reads first."""
 
-    __slots__ = ("_compute", "_rows", "_lock")
+    __slots__ = ("power", "settings", "_find", "_rows", "_lock")
 
-    def __init__(self, compute: Callable[[], list[tuple[ToneValue, ...]]]) -> None:
-        self._compute: Callable[[], list[tuple[ToneValue, ...]]] | None = compute
+    def __init__(self, power: np.ndarray, settings: PeakSettings, find: PeakFinder) -> None:
+        self.power, self.settings = power, settings
+        self._find = find
         self._rows: list[tuple[ToneValue, ...]] | None = None
         self._lock = threading.Lock()
 
@@ -101,8 +122,7 @@ class PushPeaks:
         if rows is None:
             with self._lock:
                 if self._rows is None:
-                    assert self._compute is not None
-                    self._rows, self._compute = self._compute(), None
+                    self._rows = self._find(self.power, self.settings)
                 rows = self._rows
         return rows[c]
 
