@@ -12,6 +12,7 @@ from fastapi import APIRouter, Query, Response
 
 from dsp.types import AMPLITUDES, OUTPUT_UNITS, QUANTITIES
 
+from ..hub import Hub
 from ..spectra import (
     band_items,
     overall_item,
@@ -71,7 +72,7 @@ def _iso(t_ns: int) -> str | None:
         return None
 
 
-def _summary(hub: Any, cid: str) -> dict[str, Any]:
+def _summary(hub: Hub, cid: str) -> dict[str, Any]:
     st = hub.channels[cid]
     d: dict[str, Any] = st.as_dict()
     d.update(_now_state(st))

@@ -124,8 +124,7 @@ class Progress:
         self.label = label
         self.total = max(int(total), 1)
         self.stream = stream if stream is not None else sys.stderr
-        isatty = getattr(self.stream, "isatty", None)
-        self.tty = bool(isatty and isatty())
+        self.tty = self.stream.isatty()
         self._shown = -1  # last percentage written (terminal) or last quarter (elsewhere, x25)
         self._open = False
 

@@ -9,7 +9,6 @@ import argparse
 import importlib
 import sys
 from types import ModuleType
-from typing import Any
 
 from dsp.analyzer import resolve_unit
 from dsp.filterbank import FMAX_RATIO
@@ -18,6 +17,7 @@ from ..config import (
     Config,
     ConfigError,
     SimulatedSourceConfig,
+    SourceConfig,
     channel_ids,
     channel_settings,
     check_listen_allowed,
@@ -67,7 +67,7 @@ def cmd_serve(args: argparse.Namespace) -> int:
                                   config_path=args.config))
 
 
-def _source_fs(src: Any, cfg: Config, ch: str) -> tuple[float, str]:
+def _source_fs(src: SourceConfig, cfg: Config, ch: str) -> tuple[float, str]:
     """(fs in Hz, how it was found) for a channel's source; for `check` only."""
     if src.sample_rate_hz is not None:
         return float(src.sample_rate_hz), ""
