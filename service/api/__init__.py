@@ -5,7 +5,7 @@ Reads the hub only; never reaches into sources or engines."""
 from __future__ import annotations
 
 import math
-from collections.abc import AsyncIterator, Callable
+from collections.abc import AsyncIterator, Awaitable, Callable
 from contextlib import asynccontextmanager
 from pathlib import Path
 from typing import Any
@@ -43,7 +43,8 @@ def create_app(
     *,
     config: Config | None = None,
     service: ServiceContext | None = None,
-    lifespan_hooks: tuple[Callable[[], Any], Callable[[], Any]] | None = None,
+    lifespan_hooks: tuple[Callable[[], Awaitable[None]], Callable[[], Awaitable[None]]]
+    | None = None,
 ) -> FastAPI:
     """A FastAPI app over ``hub``. ``config`` gives tokens, CORS and limits (default: an
     empty config: loopback, no tokens); ``service`` (the running Service) backs alarms,
