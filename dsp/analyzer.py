@@ -403,7 +403,8 @@ class Analyzer:
         if len(self._power_cache) > 8:
             self._power_cache.clear()
         self._power_cache[key] = out
-        return out
+        result: np.ndarray = out
+        return result
 
     def spectrum(self, unit: str | None = None, amplitude: str | None = None) -> np.ndarray:
         """Averaged amplitude spectrum, float32 [C, Q], in ``unit`` as ``amplitude`` type."""
@@ -440,7 +441,8 @@ class Analyzer:
         out = np.sqrt(ms, out=ms)
         if e.unresolved.size:
             out.reshape(-1)[e.unresolved] = np.nan
-        return out
+        result: np.ndarray = out
+        return result
 
     def tones(self, unit: str | None = None, amplitude: str | None = None) -> np.ndarray:
         """Tracked-tone amplitudes (float64 [C, T]) at their exact frequencies; NaN if

@@ -252,7 +252,8 @@ def band_weights(edges_hz: ArrayLike, f0_hz: float, df_hz: float, q_bins: int) -
     left = np.maximum(f - df / 2, 0.0)
     right = f + df / 2
     overlap = np.minimum(e[:, 1:2], right) - np.maximum(e[:, 0:1], left)
-    return np.clip(overlap, 0.0, None) / (right - left)
+    result: np.ndarray = np.clip(overlap, 0.0, None) / (right - left)
+    return result
 
 
 def band_rms(power: ArrayLike, weights: ArrayLike, enbw_bins: float) -> np.ndarray:
@@ -288,7 +289,8 @@ def band_rms(power: ArrayLike, weights: ArrayLike, enbw_bins: float) -> np.ndarr
     if enbw <= 0:
         raise ValueError(f"enbw_bins={enbw_bins!r} must be > 0")
     ms = np.matmul(p.astype(np.float64, copy=False), wts.T) / enbw
-    return np.sqrt(np.maximum(ms, 0.0))
+    result: np.ndarray = np.sqrt(np.maximum(ms, 0.0))
+    return result
 
 
 def overall_rms(

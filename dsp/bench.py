@@ -26,7 +26,7 @@ import os
 import platform
 import sys
 import time
-from contextlib import nullcontext
+from contextlib import AbstractContextManager, nullcontext
 from dataclasses import asdict, dataclass
 
 import numpy as np
@@ -275,12 +275,13 @@ def format_decimation(section: dict[str, object]) -> str:
     return "\n".join(lines)
 
 
-def _threads_limited():  # type: ignore[no-untyped-def]
+def _threads_limited() -> AbstractContextManager[object]:
     try:
         from threadpoolctl import threadpool_limits
     except ImportError:  # optional; the env variables below do the same for fresh processes
         return nullcontext()
-    return threadpool_limits(limits=1)
+    limits: AbstractContextManager[object] = threadpool_limits(limits=1)
+    return limits
 
 
 def run(channel_counts: tuple[int, ...] = (1, 8, 64), *, seconds: float = 2.0,

@@ -99,7 +99,8 @@ def _check_spec(ripple_db: float, atten_db: float) -> None:
 def _ripple_delta(ripple_db: float) -> float:
     """Passband deviation δ with 20·lg((1+δ)/(1−δ)) = ripple_db (max − min in dB)."""
     g = 10.0 ** (ripple_db / 20.0)
-    return (g - 1.0) / (g + 1.0)
+    result: float = (g - 1.0) / (g + 1.0)
+    return result
 
 
 def _taps_estimate(fs: float, pass_hz: float, stop_hz: float, ripple_db: float,
@@ -171,7 +172,8 @@ def _design_cached(fs: float, pass_hz: float, stop_hz: float, ripple_db: float,
     if not _meets(h, fs, pass_hz, stop_hz, ripple_db, atten_db):
         raise RuntimeError(f"rounding the taps to float32 broke the stage spec at fs={fs:g} Hz")
     h.setflags(write=False)
-    return h
+    result: np.ndarray = h
+    return result
 
 
 def design_stage(fs: float, pass_hz: float, stop_hz: float, *, ripple_db: float = RIPPLE_DB,
@@ -530,7 +532,8 @@ class Decimator:
         ``scipy.signal.freqz`` of the taps. |H| is the amplitude gain, arg H = −2π·f·delay_in/fs."""
         f = np.asarray(f_hz, dtype=np.float64)
         _, h = scipy.signal.freqz(self.taps, worN=np.atleast_1d(f).ravel(), fs=self.fs)
-        return h.reshape(f.shape)
+        result: np.ndarray = h.reshape(f.shape)
+        return result
 
     # -- stream ------------------------------------------------------------------------
     def _restart(self, next_input_index: int, settled_from: int) -> None:
@@ -576,7 +579,8 @@ class Decimator:
                 y += z[:, jj, jj : jj + 1]
         self._held.consume(m * r)
         self._next_out += m
-        return y
+        result: np.ndarray = y
+        return result
 
     def push(self, block: np.ndarray, first_index: int | None = None) -> np.ndarray:
         """Filter and decimate ``block`` ([C, n], any n ≥ 0); return float32 ``[C, m]``.

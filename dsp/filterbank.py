@@ -350,7 +350,8 @@ class FilterBank:
     @property
     def _tone_count(self) -> int:
         if self._per_frame:
-            return self._kernel.shape[2] // (2 * self._window_basis[0].shape[0])
+            result: int = self._kernel.shape[2] // (2 * self._window_basis[0].shape[0])
+            return result
         return self._kernel.shape[2] // 2
 
     @functools.cached_property
@@ -377,7 +378,8 @@ class FilterBank:
                 y[sel] = a[sel] @ kernel[g]
             return y
         if c * m > _GEMV_ROWS:
-            return (a.reshape(-1, length) @ kernel[0]).reshape(c, m, -1)
+            result: np.ndarray = (a.reshape(-1, length) @ kernel[0]).reshape(c, m, -1)
+            return result
         # A few rows: one matrix-vector product each beats a matrix product that first
         # repacks the whole kernel (measured ~1.7× for 2–3 rows of 2048).
         y = np.empty((c, m, kernel.shape[2]), dtype=np.float32)
@@ -423,7 +425,8 @@ class FilterBank:
             np.ndarray((c, p_count, width), dtype=np.complex64, buffer=z, strides=(sc, sb, se))
         )
         if len(self._group_rows) == 1:
-            return win @ self._combine[0]
+            result: np.ndarray = win @ self._combine[0]
+            return result
         out = np.empty((c, p_count, self._combine.shape[2]), dtype=np.complex64)
         for g, sel in enumerate(self._group_rows):
             out[sel] = win[sel] @ self._combine[g]

@@ -72,7 +72,8 @@ def power_spectrum(x_q: np.ndarray, s1: float, n: int) -> np.ndarray:
     ps[..., 0] *= 0.5
     if n % 2 == 0:
         ps[..., -1] *= 0.5
-    return ps
+    result: np.ndarray = ps
+    return result
 
 
 def psd_from_power(power: np.ndarray, enbw_hz: float) -> np.ndarray:
@@ -91,7 +92,8 @@ def amplitude_from_power(power: np.ndarray, amplitude: Amplitude) -> np.ndarray:
         a *= float(np.sqrt(2.0))  # Python floats keep the input's dtype (NEP 50)
     elif amplitude == "peak-to-peak":
         a *= float(2.0 * np.sqrt(2.0))
-    return a
+    result: np.ndarray = a
+    return result
 
 
 def power_from_amplitude(value: np.ndarray | float, amplitude: Amplitude) -> np.ndarray:

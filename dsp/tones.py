@@ -246,7 +246,8 @@ class _Ranker:
     def build(cls, r_tab: np.ndarray, d_tab: np.ndarray, g_tab: np.ndarray,
               cells: int = 4096) -> _Ranker:
         def exact(r: np.ndarray) -> np.ndarray:
-            return 1.0 / np.interp(np.interp(r, r_tab, d_tab), d_tab, g_tab)
+            result: np.ndarray = 1.0 / np.interp(np.interp(r, r_tab, d_tab), d_tab, g_tab)
+            return result
 
         r0, r1 = float(r_tab[0]), float(r_tab[-1])
         h = exact(np.linspace(r0, r1, cells + 1))
@@ -351,7 +352,8 @@ def goertzel(
     s_prev2 = np.zeros(v.shape[:-1])
     for k in range(n):
         s_prev, s_prev2 = v[..., k] + coeff * s_prev - s_prev2, s_prev
-    return np.exp(-1j * omega * (n - 1)) * (s_prev - np.exp(-1j * omega) * s_prev2)
+    result: np.ndarray = np.exp(-1j * omega * (n - 1)) * (s_prev - np.exp(-1j * omega) * s_prev2)
+    return result
 
 
 def harmonics(f1_hz: float, count: int) -> np.ndarray:

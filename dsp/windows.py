@@ -98,14 +98,16 @@ def transform_magnitude(w: np.ndarray, offsets_bins: np.ndarray) -> np.ndarray:
         re = np.cos(phase) @ w
         im = np.sin(phase) @ w
         flat_out[i : i + step] = np.hypot(re, im)
-    return out / w.sum()
+    result: np.ndarray = out / w.sum()
+    return result
 
 
 def _oversampled_response_db(w: np.ndarray, oversample: int) -> np.ndarray:
     """20·lg|W(ν)/W(0)| at ν = j/oversample, j = 0…(N·oversample)/2 (one-sided)."""
     spec = np.abs(np.fft.rfft(w, n=w.size * oversample))
     with np.errstate(divide="ignore"):
-        return 20 * np.log10(np.maximum(spec / spec[0], 1e-300))
+        result: np.ndarray = 20 * np.log10(np.maximum(spec / spec[0], 1e-300))
+        return result
 
 
 @dataclass(frozen=True)
@@ -135,7 +137,8 @@ class WindowInfo:
     @property
     def worst_case_processing_loss_db(self) -> float:
         """Scalloping loss + 10·lg(ENBW) in dB (Harris 1978)."""
-        return self.scalloping_loss_db + 10 * np.log10(self.enbw_bins)
+        result: float = self.scalloping_loss_db + 10 * np.log10(self.enbw_bins)
+        return result
 
 
 @functools.lru_cache(maxsize=64)

@@ -19,6 +19,7 @@ from pathlib import Path
 from typing import Any
 
 import uvicorn
+from fastapi import FastAPI
 from threadpoolctl import threadpool_limits
 
 from .alarms import AckRefused, AlarmEngine, AlarmEvent, UnknownAlarm, rules_from_config
@@ -34,6 +35,7 @@ from .config import (
     parse_config,
     parse_listen,
 )
+from .context import ReloadRefused
 from .hub import Hub
 from .pipeline import ChannelState, SourcePipeline, channel_states
 from .profiles import ProfileBank
@@ -50,14 +52,6 @@ RESTART_MAX_S = 30.0  # … up to this (our choice)
 RESTART_STABLE_S = 60.0  # a pipeline that ran this long before failing starts over at 1 s
 
 
-class ReloadRefused(Exception):
-    """A reload that changed nothing: ``status`` (409 or 422), ``reason``, ``problems``."""
-
-    def __init__(self, status: int, reason: str, problems: list[str] | None = None) -> None:
-        super().__init__(reason)
-        self.status, self.reason, self.problems = status, reason, list(problems or [])
-
-
 class Service:
     """Sources, one pipeline task each, the alarm engine, the store and the hub.
 
@@ -70,7 +64,7 @@ class Service:
     def __init__(self, cfg: Config, config_path: str | Path | None = None) -> None:
         self.cfg = cfg
         self.config_path = None if config_path is None else Path(config_path)
-        self.http_app: Any = None
+        self.http_app: FastAPI | None = None
         self.hub = Hub()
         self.pipelines: list[SourcePipeline] = []
         self.tasks: list[asyncio.Task[None]] = []
@@ -129,9 +123,7 @@ class Service:
             self.alarms.restore(state)
             log.info("restored %d active/latched alarms", len(self.alarms.active()))
         for p in self.pipelines:
-            start = getattr(p.source, "start", None)
-            if start is not None:
-                await start()
+            await p.source.start()
         self.started_mono = time.monotonic()
         for st in self.hub.channels.values():
             st.status_since_ns = time.time_ns()
@@ -250,17 +242,16 @@ class Service:
             t.cancel()
         await asyncio.gather(*self.tasks, return_exceptions=True)
         for p in self.pipelines:
-            close = getattr(p.source, "aclose", None)
-            if close is not None:
-                await close()
-            self._store_evidence(p, force=True)
+            await p.source.aclose()
+            self._store_evidence(p, final=True)
         await asyncio.to_thread(self.store.close)
 
-    def app(self):  # type: ignore[no-untyped-def]
-        self.http_app = create_app(
+    def app(self) -> FastAPI:
+        app = create_app(
             self.hub, config=self.cfg, service=self, lifespan_hooks=(self.start, self.stop)
         )
-        return self.http_app
+        self.http_app = app
+        return app
 
     # -- configuration reload ----------------------------------------------------------
     async def reload(self) -> dict[str, Any]:
@@ -400,11 +391,8 @@ class Service:
                     },
                 )
 
-    def _store_evidence(self, p: SourcePipeline, *, force: bool = False) -> None:
-        if force and p.requests and p.ring is not None:
-            p.complete_all()
-        while p.ready:
-            ev = p.ready.popleft()
+    def _store_evidence(self, p: SourcePipeline, *, final: bool = False) -> None:
+        for ev in p.take_evidence(final=final):
             self.store.put_evidence(ev.event_id, ev.spectrum, ev.waveform, ev.fs, ev.t0_ns)
 
     async def acknowledge(self, rule: str, who: str, note: str) -> dict[str, object]:

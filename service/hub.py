@@ -10,8 +10,8 @@ import time
 from collections.abc import Iterable
 from dataclasses import dataclass, field
 
-from .pipeline import ChannelState, SourcePipeline
-from .types import SpectralFrame
+from .sources.base import Source
+from .types import ChannelState, PipelineHealth, SpectralFrame
 
 
 class Subscriber:
@@ -109,8 +109,8 @@ class Hub:
     channels: dict[str, ChannelState] = field(default_factory=dict)
     latest: dict[str, SpectralFrame] = field(default_factory=dict)  # primary profile's
     by_profile: dict[tuple[str, str], SpectralFrame] = field(default_factory=dict)
-    sources: dict[str, object] = field(default_factory=dict)
-    pipelines: dict[str, SourcePipeline] = field(default_factory=dict)  # by source id
+    sources: dict[str, Source] = field(default_factory=dict)
+    pipelines: dict[str, PipelineHealth] = field(default_factory=dict)  # by source id
     subscribers: set[Subscriber] = field(default_factory=set)
     started_ns: int = field(default_factory=time.time_ns)
     frames_published: int = 0

@@ -11,8 +11,6 @@ falls behind, the source's bounded queue drops its oldest blocks and counts them
 from __future__ import annotations
 
 import asyncio
-import collections
-import functools
 import logging
 import math
 import time
@@ -22,9 +20,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from dsp.analyzer import Analyzer, spectrum_peaks
+from dsp.analyzer import spectrum_peaks
 
 from .config import Config, channel_settings, profiles_of, source_of
+from .evidence import Evidence, EvidenceCapture
 from .profiles import OVERALL, ChannelGroup, ProfileBank, ProfilePlan, overall_band, plan_profiles
 from .quality import (
     DEFAULT_RANGE,
@@ -34,150 +33,21 @@ from .quality import (
     default_stale_after_s,
 )
 from .sources.base import Source
-from .types import BandValue, FramePeaks, PushPeaks, SampleBlock, SpectralFrame, ToneValue
+from .types import (
+    BandValue,
+    ChannelState,
+    FramePeaks,
+    PeakSettings,
+    PushPeaks,
+    SampleBlock,
+    SpectralFrame,
+    ToneValue,
+)
 
 log = logging.getLogger("quaver.pipeline")
 
 __all__ = ["OVERALL", "ChannelGroup", "ChannelState", "SourcePipeline", "overall_band"]
 FLAT_MIN_S = 0.05  # identical samples for this long = a flat (dead) sensor; our choice
-
-
-@dataclass
-class ChannelState:
-    """What the service knows about one channel; updated by its source's worker thread."""
-
-    id: str
-    source_id: str
-    machine: str
-    description: str
-    input_unit: str
-    sensitivity: float
-    speed_rpm: float | None
-    clip_level: float | None
-    range: float = float("inf")  # largest plausible |sample|, input units (sensor's range)
-    stale_after_s: float = 5.0  # no new frame for this long: no-signal
-    loss_of_signal: str = "alert"  # the loss-of-signal alarm's level, or "off"
-    fs: float = 0.0
-    # The channel's data-quality state (service.quality), derived on the event loop from
-    # what the worker saw (data_status) and when the latest frame came; ``fault`` says why.
-    status: str = "no-signal"
-    fault: str = "waiting for the first spectrum"
-    status_since_ns: int = 0
-    lost: bool = False  # the loss-of-signal condition (service.quality.is_lost)
-    status_changes: int = 0
-    # Written by the source's worker thread: what the latest blocks showed.
-    data_status: str = "ok"  # ok | sensor-fault | gap | overrun
-    data_fault: str = ""
-    settling: bool = False  # analysis restarted after a sensor fault, no clean frame yet
-    # clean samples since the latest bad one: the fault is held for FAULT_HOLD_S of them,
-    # counted in the stream's own samples so that a recording analysed faster than real
-    # time (quaver analyze) holds it exactly as the running service does
-    clean_samples: int = 0
-    overrun_until: float = 0.0
-    samples: int = 0
-    gaps: int = 0
-    frames: int = 0
-    nonfinite_blocks: int = 0
-    range_blocks: int = 0
-    flat_blocks: int = 0
-    clipped_blocks: int = 0
-    sensor_faults: int = 0  # transitions into sensor fault
-    last_block_ns: int = 0
-    last_frame_mono: float | None = None  # monotonic s when its latest frame arrived
-    notes: tuple[str, ...] = ()
-    profiles: tuple[str, ...] = ("default",)  # analysis profiles, the primary one first
-    profile_info: dict[str, dict[str, object]] = field(default_factory=dict)  # at the stream's fs
-
-    def as_dict(self) -> dict[str, object]:
-        return {
-            "id": self.id,
-            "source": self.source_id,
-            "machine": self.machine,
-            "description": self.description,
-            "sample_rate_hz": self.fs,
-            "input_unit": self.input_unit,
-            "sensitivity": self.sensitivity,
-            "speed_rpm": self.speed_rpm,
-            "status": self.status,
-            "fault": self.fault,
-            "status_since_ns": self.status_since_ns,
-            "range": self.range if math.isfinite(self.range) else None,
-            "stale_after_s": self.stale_after_s,
-            "loss_of_signal": self.loss_of_signal,
-            "counters": {
-                "samples": self.samples,
-                "gaps": self.gaps,
-                "frames": self.frames,
-                "status_changes": self.status_changes,
-                "nonfinite_blocks": self.nonfinite_blocks,
-                "range_blocks": self.range_blocks,
-                "flat_blocks": self.flat_blocks,
-                "clipped_blocks": self.clipped_blocks,
-                "sensor_faults": self.sensor_faults,
-            },
-            "notes": list(self.notes),
-            "profiles": [
-                self.profile_info.get(p, {"name": p, "primary": i == 0})
-                for i, p in enumerate(self.profiles)
-            ],
-        }
-
-
-class WaveformRing:
-    """The last ``seconds`` of a source's samples in engineering units, for alarm evidence.
-
-    Sample k of the stream lives at column k mod L while end − L ≤ k < end. A gap empties
-    the ring (a snippet never joins samples from either side of a gap)."""
-
-    def __init__(self, channels: int, fs: float, seconds: float) -> None:
-        self.length = max(1, int(round(fs * seconds)))
-        self.buf = np.zeros((channels, self.length), dtype=np.float32)
-        self.start = 0  # first valid stream index
-        self.end = 0  # one past the last stored index
-
-    def append(self, x: np.ndarray, first_index: int) -> None:
-        if first_index != self.end:
-            self.start = self.end = first_index
-        n = x.shape[1]
-        if n >= self.length:
-            x, first_index = x[:, n - self.length :], first_index + n - self.length
-            n = self.length
-        pos = first_index % self.length
-        head = min(n, self.length - pos)
-        self.buf[:, pos : pos + head] = x[:, :head]
-        self.buf[:, : n - head] = x[:, head:]
-        self.end = first_index + n
-        self.start = max(self.start, self.end - self.length)
-
-    def snippet(self, row: int, lo: int, hi: int) -> tuple[np.ndarray, int]:
-        """Samples [max(lo, start), min(hi, end)) of one channel and the first one's index."""
-        lo, hi = max(lo, self.start), min(hi, self.end)
-        if hi <= lo:
-            return np.zeros(0, np.float32), lo
-        idx = np.arange(lo, hi) % self.length
-        return self.buf[row, idx].copy(), lo
-
-
-@dataclass
-class EvidenceRequest:
-    """Keep the waveform around ``center_index`` (samples before/after) for an event."""
-
-    event_id: int
-    channel: str
-    center_index: int
-    before: int
-    after: int
-    spectrum: dict[str, object]
-
-
-@dataclass
-class Evidence:
-    event_id: int
-    channel: str
-    spectrum: dict[str, object]
-    waveform: np.ndarray  # float32, engineering units
-    fs: float
-    t0_ns: int
 
 
 @dataclass
@@ -190,9 +60,6 @@ class SourcePipeline:
     bank: ProfileBank | None = None
     fs: float | None = None
     evidence_s: tuple[float, float] = (3.0, 3.0)  # waveform kept before / after an event
-    ring: WaveformRing | None = None
-    requests: collections.deque[EvidenceRequest] = field(default_factory=collections.deque)
-    ready: collections.deque[Evidence] = field(default_factory=collections.deque)
     seq: int = 0
     blocks: int = 0
     restarts: int = 0  # analysis restarts after a sensor fault
@@ -204,8 +71,8 @@ class SourcePipeline:
 
     def __post_init__(self) -> None:
         self.started_mono = time.monotonic()  # when this run of the pipeline began
+        self.evidence = EvidenceCapture(*self.evidence_s)
         self._last_drops = 0
-        self._last_block: SampleBlock | None = None
         self._flat_run: np.ndarray | None = None
         self._flat_last: np.ndarray | None = None
 
@@ -229,7 +96,7 @@ class SourcePipeline:
         builds a new profile bank, as at the first block."""
         self.bank, self.fs, self._next_index = None, None, None
         self._flat_run = self._flat_last = None
-        self.requests.clear()
+        self.evidence.drop_requests()
 
     # -- worker thread -----------------------------------------------------------------
     def process(self, block: SampleBlock) -> list[SpectralFrame]:
@@ -252,7 +119,7 @@ class SourcePipeline:
                                  for p in plans for n in p.notes)
                 if self.cfg is not None:
                     st.stale_after_s = stale_after_s(self.cfg, cid, plans)
-            self.ring = WaveformRing(len(block.channel_ids), block.fs, sum(self.evidence_s) + 1.0)
+            self.evidence.restart(len(block.channel_ids), block.fs)
         states = [self.channels[c] for c in block.channel_ids]
         x = block.data
         gap = self._next_index is not None and block.first_index != self._next_index
@@ -317,10 +184,7 @@ class SourcePipeline:
             if overrun:
                 st.overrun_until = now + OVERRUN_HOLD_S
         x = x * sens  # raw units → engineering units
-        if self.ring is not None:
-            self._last_block = block
-            self.ring.append(x, block.first_index)
-            self._complete_evidence(block)
+        self.evidence.append(x, block)
         frames: list[SpectralFrame] = []
         if gap:
             for st in states:
@@ -360,52 +224,21 @@ class SourcePipeline:
             continues = ~any_differs & (last == self._flat_last)
             self._flat_run = np.where(continues, self._flat_run + n, trailing)
             self._flat_last = last.copy()
-        return self._flat_run >= FLAT_MIN_S * fs  # type: ignore[no-any-return]
+        flat: np.ndarray = self._flat_run >= FLAT_MIN_S * fs
+        return flat
 
     def request_evidence(
         self, event_id: int, channel: str, center_index: int, spectrum: dict[str, object]
     ) -> None:
         """Ask for the waveform around ``center_index`` (called from the event loop)."""
-        fs = self.fs or 0.0
-        self.requests.append(
-            EvidenceRequest(
-                event_id,
-                channel,
-                center_index,
-                int(self.evidence_s[0] * fs),
-                int(self.evidence_s[1] * fs),
-                spectrum,
-            )
-        )
+        self.evidence.request(event_id, channel, center_index, spectrum, self.fs or 0.0)
 
-    def complete_all(self) -> None:
-        """Complete every pending request with what the ring holds (at shut-down)."""
-        if self.ring is None or self._last_block is None:
-            return
-        self._complete_evidence(self._last_block, force=True)
-
-    def _complete_evidence(self, block: SampleBlock, *, force: bool = False) -> None:
-        ring = self.ring
-        if ring is None:
-            return
-        rows = {c: i for i, c in enumerate(block.channel_ids)}
-        for _ in range(len(self.requests)):
-            req = self.requests.popleft()
-            if (
-                not force
-                and ring.end < req.center_index + req.after
-                and ring.start <= req.center_index
-            ):
-                self.requests.append(req)  # not due yet
-                continue
-            wave, first = ring.snippet(
-                rows[req.channel], req.center_index - req.before, req.center_index + req.after
-            )
-            # integer ns plus a rounded offset: a float64 near today's epoch is 256 ns coarse
-            t0_ns = block.t0_ns + round((first - block.first_index) * 1e9 / block.fs)
-            self.ready.append(
-                Evidence(req.event_id, req.channel, req.spectrum, wave, block.fs, t0_ns)
-            )
+    def take_evidence(self, *, final: bool = False) -> list[Evidence]:
+        """The evidence completed since the last call (called from the event loop);
+        ``final`` (at shut-down): first complete every pending request with what is kept."""
+        if final:
+            self.evidence.finish()
+        return self.evidence.take()
 
     def _frames(
         self, g: ChannelGroup, block: SampleBlock, new: int, end: int
@@ -421,7 +254,11 @@ class SourcePipeline:
         tone_hz = an.tone_hz
         # Peaks only when a client reads them (PushPeaks), for every channel of the push at
         # once, from the same spectra: what an.peaks() gives, up to float32 rounding.
-        peaks = PushPeaks(functools.partial(_peak_rows, power_in, an))
+        peaks = PushPeaks(power_in, PeakSettings(
+            input_unit=spec.input_unit, df_hz=an.grid.df_hz, window=spec.window, n=an.grid.n,
+            unit=spec.unit, amplitude=spec.amplitude, count=spec.peaks,
+            lowcut_hz=an.lowcut_hz, beta=spec.beta,
+        ), _peak_rows)
         # Time of the newest frame's end (an input-stream index), from the block's own clock.
         t_ns = block.t0_ns + round((end - block.first_index) * 1e9 / block.fs)
         # Plain floats of every channel at once: indexing numpy arrays value by value cost
@@ -483,13 +320,13 @@ class SourcePipeline:
         return out
 
 
-def _peak_rows(power_in: np.ndarray, an: Analyzer) -> list[tuple[ToneValue, ...]]:
+def _peak_rows(power_in: np.ndarray, s: PeakSettings) -> list[tuple[ToneValue, ...]]:
     """Each channel's peaks (``dsp.analyzer.spectrum_peaks``) from its input-unit power
-    spectrum ``power_in`` [C, lines + 1], as the analyzer ``an`` would find them."""
-    spec = an.spec
+    spectrum ``power_in`` [C, lines + 1], as the analyzer whose settings ``s`` are would
+    find them."""
     pk = spectrum_peaks(
-        power_in, spec.input_unit, an.grid.df_hz, spec.window, an.grid.n, unit=spec.unit,
-        amplitude=spec.amplitude, count=spec.peaks, lowcut_hz=an.lowcut_hz, beta=spec.beta,
+        power_in, s.input_unit, s.df_hz, s.window, s.n, unit=s.unit,
+        amplitude=s.amplitude, count=s.count, lowcut_hz=s.lowcut_hz, beta=s.beta,
     )
     return [
         tuple(ToneValue("", f, a) for f, a in zip(fs, amps, strict=True) if math.isfinite(f))

@@ -1,13 +1,15 @@
-"""The few types that flow from the sources through the pipeline to the API.
+"""The types that flow from the sources through the pipeline to the hub and the API.
 
-Plain data only: no I/O, no asyncio, no engine state."""
+Plain data only: no I/O, no asyncio, no engine state. Downstream modules (hub, API) import
+these from here, never from the pipeline that fills them."""
 
 from __future__ import annotations
 
+import math
 import threading
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
-from typing import NamedTuple, overload
+from typing import NamedTuple, Protocol, overload
 
 import numpy as np
 
@@ -78,19 +80,40 @@ class ToneValue(NamedTuple):
     value: float  # in the frame's display unit and amplitude type
 
 
+@dataclass(frozen=True, slots=True)
+class PeakSettings:
+    """What finding the peaks of a push's spectra needs: the analysis settings of the moment
+    (copied from the analyzer, so that a frame never refers to the live engine)."""
+
+    input_unit: str
+    df_hz: float
+    window: str
+    n: int  # FFT length, samples
+    unit: str
+    amplitude: str
+    count: int  # peaks per channel
+    lowcut_hz: float
+    beta: float  # Kaiser window's beta
+
+
+# Finds one tuple of peaks per channel from the push's input-unit power spectra [C, lines + 1].
+PeakFinder = Callable[[np.ndarray, PeakSettings], list[tuple[ToneValue, ...]]]
+
+
 class PushPeaks:
     """The peaks of the channels analysed together in one push, found for all of them the
     first time any is read.
 
     Most frames' peaks are never read (only ``/tones`` and the stream's ``tones`` messages
     show them), and finding them for every push was a quarter of the analysis threads' time
-    (quaver bench --service, profiled). ``compute`` returns one tuple per channel; it runs
-    once, under a lock, on whichever thread reads first."""
+    (quaver bench --service, profiled). Holds the push's ``power`` spectra and ``settings``
+    (plain data); ``find`` runs once, under a lock, on whichever thread reads first."""
 
-    __slots__ = ("_compute", "_rows", "_lock")
+    __slots__ = ("power", "settings", "_find", "_rows", "_lock")
 
-    def __init__(self, compute: Callable[[], list[tuple[ToneValue, ...]]]) -> None:
-        self._compute: Callable[[], list[tuple[ToneValue, ...]]] | None = compute
+    def __init__(self, power: np.ndarray, settings: PeakSettings, find: PeakFinder) -> None:
+        self.power, self.settings = power, settings
+        self._find = find
         self._rows: list[tuple[ToneValue, ...]] | None = None
         self._lock = threading.Lock()
 
@@ -99,8 +122,7 @@ class PushPeaks:
         if rows is None:
             with self._lock:
                 if self._rows is None:
-                    assert self._compute is not None
-                    self._rows, self._compute = self._compute(), None
+                    self._rows = self._find(self.power, self.settings)
                 rows = self._rows
         return rows[c]
 
@@ -178,3 +200,97 @@ class SpectralFrame:
     # "sensor-fault" when the channel's latest blocks held bad samples (zeroed before the
     # analysis; the values are not to be trusted), else "ok" (service.quality)
     quality: str = "ok"
+
+
+@dataclass
+class ChannelState:
+    """What the service knows about one channel; updated by its source's worker thread."""
+
+    id: str
+    source_id: str
+    machine: str
+    description: str
+    input_unit: str
+    sensitivity: float
+    speed_rpm: float | None
+    clip_level: float | None
+    range: float = float("inf")  # largest plausible |sample|, input units (sensor's range)
+    stale_after_s: float = 5.0  # no new frame for this long: no-signal
+    loss_of_signal: str = "alert"  # the loss-of-signal alarm's level, or "off"
+    fs: float = 0.0
+    # The channel's data-quality state (service.quality), derived on the event loop from
+    # what the worker saw (data_status) and when the latest frame came; ``fault`` says why.
+    status: str = "no-signal"
+    fault: str = "waiting for the first spectrum"
+    status_since_ns: int = 0
+    lost: bool = False  # the loss-of-signal condition (service.quality.is_lost)
+    status_changes: int = 0
+    # Written by the source's worker thread: what the latest blocks showed.
+    data_status: str = "ok"  # ok | sensor-fault | gap | overrun
+    data_fault: str = ""
+    settling: bool = False  # analysis restarted after a sensor fault, no clean frame yet
+    # clean samples since the latest bad one: the fault is held for FAULT_HOLD_S of them,
+    # counted in the stream's own samples so that a recording analysed faster than real
+    # time (quaver analyze) holds it exactly as the running service does
+    clean_samples: int = 0
+    overrun_until: float = 0.0
+    samples: int = 0
+    gaps: int = 0
+    frames: int = 0
+    nonfinite_blocks: int = 0
+    range_blocks: int = 0
+    flat_blocks: int = 0
+    clipped_blocks: int = 0
+    sensor_faults: int = 0  # transitions into sensor fault
+    last_block_ns: int = 0
+    last_frame_mono: float | None = None  # monotonic s when its latest frame arrived
+    notes: tuple[str, ...] = ()
+    profiles: tuple[str, ...] = ("default",)  # analysis profiles, the primary one first
+    profile_info: dict[str, dict[str, object]] = field(default_factory=dict)  # at the stream's fs
+
+    def as_dict(self) -> dict[str, object]:
+        return {
+            "id": self.id,
+            "source": self.source_id,
+            "machine": self.machine,
+            "description": self.description,
+            "sample_rate_hz": self.fs,
+            "input_unit": self.input_unit,
+            "sensitivity": self.sensitivity,
+            "speed_rpm": self.speed_rpm,
+            "status": self.status,
+            "fault": self.fault,
+            "status_since_ns": self.status_since_ns,
+            "range": self.range if math.isfinite(self.range) else None,
+            "stale_after_s": self.stale_after_s,
+            "loss_of_signal": self.loss_of_signal,
+            "counters": {
+                "samples": self.samples,
+                "gaps": self.gaps,
+                "frames": self.frames,
+                "status_changes": self.status_changes,
+                "nonfinite_blocks": self.nonfinite_blocks,
+                "range_blocks": self.range_blocks,
+                "flat_blocks": self.flat_blocks,
+                "clipped_blocks": self.clipped_blocks,
+                "sensor_faults": self.sensor_faults,
+            },
+            "notes": list(self.notes),
+            "profiles": [
+                self.profile_info.get(p, {"name": p, "primary": i == 0})
+                for i, p in enumerate(self.profiles)
+            ],
+        }
+
+
+class PipelineHealth(Protocol):
+    """What the hub shows of a source's pipeline (``service.pipeline.SourcePipeline``)."""
+
+    @property
+    def failures(self) -> int: ...  # times it raised (it is restarted)
+
+    @property
+    def failed(self) -> str: ...  # the latest failure's text while it is being restarted
+
+    @property
+    def restarts(self) -> int: ...  # analysis restarts after a sensor fault

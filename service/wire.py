@@ -299,7 +299,8 @@ def framed_header_at(buf: bytes | bytearray, pos: int = 0) -> bool:
     if len(buf) - pos < HEADER_SIZE or buf[pos : pos + 4] != MAGIC:
         return False
     (hcrc,) = struct.unpack_from("<I", buf, pos + _HEAD.size)
-    return zlib.crc32(bytes(buf[pos : pos + _HEAD.size])) == hcrc
+    result: bool = zlib.crc32(bytes(buf[pos : pos + _HEAD.size])) == hcrc
+    return result
 
 
 def implausible_count(data: np.ndarray) -> int:

@@ -5,7 +5,7 @@ Reads the hub only; never reaches into sources or engines."""
 from __future__ import annotations
 
 import math
-from collections.abc import AsyncIterator, Callable
+from collections.abc import AsyncIterator, Awaitable, Callable
 from contextlib import asynccontextmanager
 from pathlib import Path
 from typing import Any
@@ -21,6 +21,7 @@ import web
 
 from .. import __version__
 from ..config import Config
+from ..context import ServiceContext
 from ..hub import Hub
 from . import (
     admin,
@@ -42,8 +43,9 @@ def create_app(
     hub: Hub,
     *,
     config: Config | None = None,
-    service: Any = None,
-    lifespan_hooks: tuple[Callable[[], Any], Callable[[], Any]] | None = None,
+    service: ServiceContext | None = None,
+    lifespan_hooks: tuple[Callable[[], Awaitable[None]], Callable[[], Awaitable[None]]]
+    | None = None,
 ) -> FastAPI:
     """A FastAPI app over ``hub``. ``config`` gives tokens, CORS and limits (default: an
     empty config: loopback, no tokens); ``service`` (the running Service) backs alarms,
@@ -69,11 +71,11 @@ def create_app(
         docs_url=None,  # docs.mount: the same pages from installed assets, no CDN
         redoc_url=None,
     )
+    # Read through the typed dependencies of .deps (and stream's sessions); nothing else.
     app.state.hub = hub
     app.state.config = config
     app.state.service = service
-    app.state.alarms = getattr(service, "alarms", None)
-    app.state.store = getattr(service, "store", None)
+    stream.init_state(app.state)
     # Outermost first: CORS answers preflights (they carry no token), then the access gate
     # (Host/Origin, tokens), then the body limit.
     app.add_middleware(edge.BodyLimit)

@@ -7,10 +7,11 @@ from __future__ import annotations
 
 from typing import Annotated, Any
 
-from fastapi import APIRouter, Depends, HTTPException, Request
+from fastapi import APIRouter, Depends, HTTPException
 
 from ..auth import Principal
-from ..config import Config
+from ..context import ReloadRefused
+from .deps import ConfigDep, MaybeServiceDep
 from .security import Reader, require, role_responses
 
 router = APIRouter(tags=["admin"])
@@ -28,14 +29,11 @@ Admin = Annotated[Principal, Depends(require("admin"))]
         422: {"description": "the config file is not valid; nothing applied (problems listed)"},
     },
 )
-async def reload_config(request: Request, who: Admin) -> dict[str, Any]:
-    from ..app import ReloadRefused  # the service module imports the API, not the other way
-
-    service = request.app.state.service
-    if service is None or not hasattr(service, "reload"):
+async def reload_config(service: MaybeServiceDep, who: Admin) -> dict[str, Any]:
+    if service is None:
         raise HTTPException(409, "this server has no running service to reload")
     try:
-        result: dict[str, Any] = await service.reload()
+        result = await service.reload()
     except ReloadRefused as e:
         detail: Any = e.reason if not e.problems else {"reason": e.reason, "problems": e.problems}
         raise HTTPException(e.status, detail) from None
@@ -47,10 +45,9 @@ async def reload_config(request: Request, who: Admin) -> dict[str, Any]:
     summary="Who the service takes the caller for (the dashboard's 'signed in as')",
     responses=role_responses("viewer"),
 )
-def session(request: Request, who: Reader) -> dict[str, Any]:
+def session(cfg: ConfigDep, who: Reader) -> dict[str, Any]:
     """``tokens``: whether the service asks for tokens at all; ``name`` and ``role`` of the
     caller's token (null without one, which is only possible while ``tokens`` is false)."""
-    cfg: Config = request.app.state.config
     return {
         "tokens": bool(cfg.tokens),
         "name": who.name if who else None,

@@ -9,12 +9,12 @@ import io
 from typing import Annotated, Any, Literal
 
 import numpy as np
-from fastapi import APIRouter, Body, HTTPException, Path, Query, Request, Response
+from fastapi import APIRouter, Body, HTTPException, Path, Query, Response
 from pydantic import BaseModel, Field
 
 from ..alarms import AckRefused, UnknownAlarm
 from ..store import StoreError
-from .deps import I64_MAX
+from .deps import I64_MAX, AlarmsDep, ServiceDep, StoreDep
 from .security import Operator, Reader, role_responses
 
 router = APIRouter(tags=["alarms"])
@@ -24,17 +24,12 @@ class AckBody(BaseModel):
     note: str = Field("", max_length=1000, description="Why / what was done (free text).")
 
 
-def _service(request: Request) -> Any:
-    return request.app.state.service
-
-
 @router.get("/alarms", summary="Active and latched alarms (all rules with all=true)")
 def list_alarms(
-    request: Request,
+    engine: AlarmsDep,
     _: Reader,
     all: Annotated[bool, Query(description="include rules in normal state")] = False,
 ) -> list[dict[str, Any]]:
-    engine = _service(request).alarms
     views = engine.views() if all else engine.active()
     return [v.as_dict() for v in views]
 
@@ -51,14 +46,14 @@ def list_alarms(
     },
 )
 async def ack_alarm(
-    request: Request,
+    service: ServiceDep,
     who: Operator,
     rule: Annotated[str, Path(max_length=200)],
     body: Annotated[AckBody | None, Body()] = None,
 ) -> dict[str, Any]:
     try:
         note = body.note if body is not None else ""
-        return await _service(request).acknowledge(rule, who.name, note)  # type: ignore[no-any-return]
+        return await service.acknowledge(rule, who.name, note)
     except UnknownAlarm as e:
         raise HTTPException(404, str(e)) from None
     except AckRefused as e:
@@ -69,7 +64,7 @@ async def ack_alarm(
 
 @router.get("/events", summary="The event log, newest first, paged by id")
 async def list_events(
-    request: Request,
+    store: StoreDep,
     _: Reader,
     since: Annotated[
         int | None,
@@ -81,7 +76,6 @@ async def list_events(
         int | None, Query(ge=1, le=I64_MAX, description="page: ids below this")
     ] = None,
 ) -> dict[str, Any]:
-    store = _service(request).store
     rows = await asyncio.to_thread(store.events, since, channel, limit, before_id)
     return {"events": rows, "next_before_id": rows[-1]["id"] if len(rows) == limit else None}
 
@@ -89,12 +83,12 @@ async def list_events(
 @router.get("/events/{event_id}", summary="One event",
             responses={404: {"description": "no such event"}})
 async def get_event(
-    request: Request, _: Reader, event_id: Annotated[int, Path(ge=1, le=I64_MAX)]
+    store: StoreDep, _: Reader, event_id: Annotated[int, Path(ge=1, le=I64_MAX)]
 ) -> dict[str, Any]:
-    row = await asyncio.to_thread(_service(request).store.event, event_id)
+    row = await asyncio.to_thread(store.event, event_id)
     if row is None:
         raise HTTPException(404, f"no event {event_id}")
-    return row  # type: ignore[no-any-return]
+    return row
 
 
 @router.get(
@@ -113,7 +107,7 @@ async def get_event(
     },
 )
 async def get_evidence(
-    request: Request,
+    store: StoreDep,
     _: Reader,
     event_id: Annotated[int, Path(ge=1, le=I64_MAX)],
     format: Annotated[Literal["json", "csv", "wav", "npy"], Query()] = "json",
@@ -121,7 +115,7 @@ async def get_evidence(
         Literal["spectrum", "waveform"], Query(description="csv/npy: which array")
     ] = "waveform",
 ) -> Any:
-    ev = await asyncio.to_thread(_service(request).store.get_evidence, event_id)
+    ev = await asyncio.to_thread(store.get_evidence, event_id)
     if ev is None:
         raise HTTPException(404, f"no evidence for event {event_id}")
     spec = ev["spectrum"]

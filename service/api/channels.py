@@ -12,7 +12,7 @@ from fastapi import APIRouter, Query, Response
 
 from dsp.types import AMPLITUDES, OUTPUT_UNITS, QUANTITIES
 
-from ..pipeline import ChannelState
+from ..hub import Hub
 from ..spectra import (
     band_items,
     overall_item,
@@ -22,7 +22,7 @@ from ..spectra import (
     to_npy,
     tone_items,
 )
-from ..types import SpectralFrame
+from ..types import ChannelState, SpectralFrame
 from .deps import NO_FRAME, NOT_FOUND, ChannelDep, HubDep, ProfileQ, get_frame
 
 router = APIRouter(tags=["channels"])
@@ -72,9 +72,9 @@ def _iso(t_ns: int) -> str | None:
         return None
 
 
-def _summary(hub: Any, cid: str) -> dict[str, Any]:
+def _summary(hub: Hub, cid: str) -> dict[str, Any]:
     st = hub.channels[cid]
-    d = st.as_dict()
+    d: dict[str, Any] = st.as_dict()
     d.update(_now_state(st))
     f = hub.latest.get(cid)
     if f is not None:

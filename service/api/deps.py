@@ -1,24 +1,66 @@
-"""Shared FastAPI dependencies (the hub, a channel's latest frame).
+"""Shared FastAPI dependencies: the hub, the running service (:class:`ServiceContext`), its
+alarm engine and store, the config, a channel's latest frame.
 
-No routes here; no I/O beyond reading the hub."""
+No routes here; no I/O beyond reading the hub. The app keeps what these read in
+``app.state`` (``service.api.create_app``); routers take them as typed parameters."""
 
 from __future__ import annotations
 
 from typing import Annotated, Any, NoReturn
 
-from fastapi import Depends, HTTPException, Path, Query, Request
+from fastapi import Depends, HTTPException, Path, Query
 from fastapi.exceptions import RequestValidationError
+from starlette.requests import HTTPConnection
 
+from ..alarms import AlarmEngine
+from ..config import Config
+from ..context import ServiceContext
 from ..hub import Hub
-from ..pipeline import ChannelState
-from ..types import SpectralFrame
+from ..store import Store
+from ..types import ChannelState, SpectralFrame
 
 
-def get_hub(request: Request) -> Hub:
-    return request.app.state.hub  # type: ignore[no-any-return]
+def get_hub(conn: HTTPConnection) -> Hub:
+    hub: Hub = conn.app.state.hub
+    return hub
+
+
+def get_config(conn: HTTPConnection) -> Config:
+    """The config in force (a reload replaces it: read it per request)."""
+    cfg: Config = conn.app.state.config
+    return cfg
+
+
+def maybe_service(conn: HTTPConnection) -> ServiceContext | None:
+    """The running service; None for an app made over a bare hub (tests, docs)."""
+    service: ServiceContext | None = conn.app.state.service
+    return service
+
+
+def get_service(service: Annotated[ServiceContext | None, Depends(maybe_service)]
+                ) -> ServiceContext:
+    if service is None:
+        raise HTTPException(503, "this server runs no monitoring service (alarms, events, "
+                                 "trends and reload need one)")
+    return service
 
 
 HubDep = Annotated[Hub, Depends(get_hub)]
+ConfigDep = Annotated[Config, Depends(get_config)]
+MaybeServiceDep = Annotated[ServiceContext | None, Depends(maybe_service)]
+ServiceDep = Annotated[ServiceContext, Depends(get_service)]
+
+
+def get_alarms(service: ServiceDep) -> AlarmEngine:
+    return service.alarms
+
+
+def get_store(service: ServiceDep) -> Store:
+    return service.store
+
+
+AlarmsDep = Annotated[AlarmEngine, Depends(get_alarms)]
+StoreDep = Annotated[Store, Depends(get_store)]
 
 ChannelId = Annotated[str, Path(description="Channel id", max_length=64)]
 

@@ -8,16 +8,16 @@ import time
 from collections import Counter
 from typing import Any
 
-from fastapi import APIRouter, Request
+from fastapi import APIRouter
 
 from .. import __version__
-from .deps import HubDep
+from .deps import HubDep, MaybeServiceDep
 
 router = APIRouter(tags=["health"])
 
 
 @router.get("/health", summary="Service health, store state, source counters and channel states")
-def health(hub: HubDep, request: Request) -> dict[str, Any]:
+def health(hub: HubDep, service: MaybeServiceDep) -> dict[str, Any]:
     """``status`` is ``ok``, or ``degraded`` while any channel is not ``ok`` (``not_ok`` lists
     them with their state, cause and since when), a source's pipeline has failed, or the
     store cannot write (monitoring, alarms and the API go on; trends, events and evidence
@@ -28,10 +28,9 @@ def health(hub: HubDep, request: Request) -> dict[str, Any]:
          "since_ns": st.status_since_ns}
         for st in hub.channels.values() if st.status != "ok"
     ]
-    sources = {}
+    sources: dict[str, dict[str, object]] = {}
     for sid, src in hub.sources.items():
-        status = getattr(src, "status", None)
-        sources[sid] = status() if callable(status) else {}
+        sources[sid] = src.status()
         p = hub.pipelines.get(sid)
         if p is not None:
             sources[sid]["pipeline"] = {
@@ -40,8 +39,7 @@ def health(hub: HubDep, request: Request) -> dict[str, Any]:
                 "failures": p.failures,
                 "analysis_restarts": p.restarts,
             }
-    store = getattr(request.app.state, "store", None)
-    store_health = store.health() if store is not None else None
+    store_health = service.store.health() if service is not None else None
     store_failing = store_health is not None and not store_health["ok"]
     failed = any(p.failed for p in hub.pipelines.values())
     return {

@@ -8,15 +8,17 @@ import gc
 import math
 import time
 from collections.abc import Iterator
-from typing import Any
 
-from fastapi import APIRouter, Request, Response
+from fastapi import APIRouter, Response
 from prometheus_client import CollectorRegistry, GCCollector, ProcessCollector, generate_latest
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
 from prometheus_client.registry import Collector
 
+from ..context import ServiceContext
+from ..hub import Hub
 from ..quality import CHANNEL_STATUSES
 from ..types import COUNTER_NAMES
+from .deps import HubDep, MaybeServiceDep
 
 router = APIRouter(tags=["metrics"])
 
@@ -24,11 +26,11 @@ SOURCE_COUNTERS = COUNTER_NAMES
 
 
 class _ServiceCollector(Collector):
-    def __init__(self, state: Any) -> None:
-        self.state = state
+    def __init__(self, hub: Hub, service: ServiceContext | None) -> None:
+        self.hub, self.service = hub, service
 
     def collect(self) -> Iterator[Metric]:
-        hub = self.state.hub
+        hub = self.hub
         overall = GaugeMetricFamily(
             "quaver_overall",
             "Overall RMS (band 'overall', else lowcut…Fmax), display unit",
@@ -117,11 +119,11 @@ class _ServiceCollector(Collector):
             labels=["source", "counter"],
         )
         for sid, src in hub.sources.items():
-            c = getattr(src, "counters", None)
+            c = src.counters
             for k in SOURCE_COUNTERS:
-                fams[k].add_metric([sid], float(getattr(c, k, 0) if c is not None else 0))
-            for k, v in sorted(getattr(c, "extra", {}).items()):
-                extra.add_metric([sid, k], float(v))
+                fams[k].add_metric([sid], float(getattr(c, k)))
+            for k, n in sorted(c.extra.items()):
+                extra.add_metric([sid, k], float(n))
         yield from fams.values()
         yield extra
 
@@ -130,8 +132,8 @@ class _ServiceCollector(Collector):
             "Processing time of the latest block that produced a frame",
             labels=["channel"],
         )
-        for cid, v in hub.latency_s.items():
-            lat.add_metric([cid], v)
+        for cid, latency_s in hub.latency_s.items():
+            lat.add_metric([cid], latency_s)
         yield lat
         subs = list(hub.subscribers)
         clients = GaugeMetricFamily("quaver_stream_clients", "WebSocket stream clients")
@@ -157,40 +159,39 @@ class _ServiceCollector(Collector):
         frozen.add_metric([], float(gc.get_freeze_count()))
         yield frozen
 
-        alarms = getattr(self.state, "alarms", None)
-        if alarms is not None:
-            level = GaugeMetricFamily(
-                "quaver_alarm_level",
-                "Alarm level per rule: 0 normal, 1 alert, 2 danger",
-                labels=["channel", "rule"],
+        if self.service is None:  # an app over a bare hub: no alarms, no store
+            return
+        alarms, store = self.service.alarms, self.service.store
+        level = GaugeMetricFamily(
+            "quaver_alarm_level",
+            "Alarm level per rule: 0 normal, 1 alert, 2 danger",
+            labels=["channel", "rule"],
+        )
+        latched = GaugeMetricFamily(
+            "quaver_alarm_latched",
+            "1 while latched, unacknowledged",
+            labels=["channel", "rule"],
+        )
+        for v in alarms.views():
+            d = v.as_dict()
+            level.add_metric([d["channel"], d["rule"]], v.state.rank)
+            latched.add_metric(
+                [d["channel"], d["rule"]],
+                1.0 if d.get("latched") and not d.get("acked") else 0.0,
             )
-            latched = GaugeMetricFamily(
-                "quaver_alarm_latched",
-                "1 while latched, unacknowledged",
-                labels=["channel", "rule"],
-            )
-            for v in alarms.views():
-                d = v.as_dict()
-                level.add_metric([d["channel"], d["rule"]], v.state.rank)
-                latched.add_metric(
-                    [d["channel"], d["rule"]],
-                    1.0 if d.get("latched") and not d.get("acked") else 0.0,
-                )
-            yield from (level, latched)
-        store = getattr(self.state, "store", None)
-        if store is not None:
-            h = store.health()
-            ok = GaugeMetricFamily(
-                "quaver_store_ok", "1 while the store writes; 0 when it cannot (see /health)"
-            )
-            ok.add_metric([], 1.0 if h["ok"] else 0.0)
-            yield ok
-            for key, what in (("write_errors", "Failed store writes"),
-                              ("events_written", "Alarm events committed"),
-                              ("trend_buckets_written", "Trend buckets committed")):
-                m = CounterMetricFamily(f"quaver_store_{key}", what)
-                m.add_metric([], float(h[key]))
-                yield m
+        yield from (level, latched)
+        h = store.health()
+        ok = GaugeMetricFamily(
+            "quaver_store_ok", "1 while the store writes; 0 when it cannot (see /health)"
+        )
+        ok.add_metric([], 1.0 if h["ok"] else 0.0)
+        yield ok
+        for key, what in (("write_errors", "Failed store writes"),
+                          ("events_written", "Alarm events committed"),
+                          ("trend_buckets_written", "Trend buckets committed")):
+            m = CounterMetricFamily(f"quaver_store_{key}", what)
+            m.add_metric([], float(h[key]))
+            yield m
 
 
 @router.get(
@@ -199,9 +200,9 @@ class _ServiceCollector(Collector):
     summary="Prometheus text exposition",
     response_class=Response,
 )
-def metrics(request: Request) -> Response:
+def metrics(hub: HubDep, service: MaybeServiceDep) -> Response:
     registry = CollectorRegistry(auto_describe=False)
-    registry.register(_ServiceCollector(request.app.state))
+    registry.register(_ServiceCollector(hub, service))
     # prometheus_client's own: python_gc_* (collections per generation) and process_*
     # (resident memory, CPU seconds, open files) for a service that runs for months.
     GCCollector(registry=registry)

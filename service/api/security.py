@@ -23,6 +23,7 @@ import base64
 import binascii
 import ipaddress
 import socket
+from collections.abc import Callable
 from typing import Annotated, Any
 from urllib.parse import urlsplit
 
@@ -33,6 +34,7 @@ from starlette.types import ASGIApp, Receive, Scope, Send
 
 from ..auth import Principal, authenticate
 from ..config import Config, parse_listen
+from .deps import get_config
 
 LIVE_PATH = "/api/v1/health/live"
 PUBLIC_PATHS = frozenset({LIVE_PATH, "/", "/docs", "/redoc"})
@@ -196,11 +198,10 @@ async def _ws_refuse(scope: Scope, receive: Receive, send: Send, reason: str) ->
 
 
 def principal(request: Request) -> Principal | None:
-    got = request.scope.get("state", {}).get("principal")
+    got: Principal | None = request.scope.get("state", {}).get("principal")
     if got is not None:
-        return got  # type: ignore[no-any-return]
-    cfg: Config = request.app.state.config
-    return authenticate(request_token(request.scope), cfg.tokens)
+        return got
+    return authenticate(request_token(request.scope), get_config(request).tokens)
 
 
 def role_responses(role: str) -> dict[int | str, dict[str, str]]:
@@ -211,11 +212,11 @@ def role_responses(role: str) -> dict[int | str, dict[str, str]]:
     }
 
 
-def require(role: str):  # type: ignore[no-untyped-def]
+def require(role: str) -> Callable[[Request], Principal]:
     """Dependency: 401 without a valid token, 403 when its role is below ``role``."""
 
     def dep(request: Request) -> Principal:
-        cfg: Config = request.app.state.config
+        cfg = get_config(request)
         who = principal(request)
         if who is None:
             detail = (

@@ -56,6 +56,7 @@ from typing import Any
 
 from fastapi import APIRouter, WebSocket, WebSocketDisconnect
 from pydantic import BaseModel, Field, ValidationError, field_validator
+from starlette.datastructures import State
 
 from dsp.types import AMPLITUDES, OUTPUT_UNITS, QUANTITIES
 
@@ -66,6 +67,7 @@ from ..hub import Hub
 from ..spectra import spectrum_values
 from ..types import SpectralFrame
 from .channels import bands_payload, tones_payload
+from .deps import get_hub
 from .security import WS_PROTOCOL, ws_offered
 
 router = APIRouter()
@@ -409,12 +411,10 @@ class _Session:
 @router.websocket("/stream")
 async def stream(ws: WebSocket) -> None:
     # The access gate (security.AccessGate) has checked Host, Origin and token already.
-    hub: Hub = ws.app.state.hub
+    hub = get_hub(ws)
     offered = ws_offered(ws.headers)
     await ws.accept(subprotocol=WS_PROTOCOL if WS_PROTOCOL in offered else None)
-    encoded = getattr(ws.app.state, "encoded", None)
-    if encoded is None:  # one per app, shared by all its clients
-        encoded = ws.app.state.encoded = _Encoded()
+    encoded: _Encoded = ws.app.state.stream_encoded  # one per app, shared by all its clients
     state = ws.scope.get("state", {})
     session = _Session(ws, hub, encoded, state.get("principal"), state.get("token"))
     sessions = _sessions(ws.app.state)
@@ -457,14 +457,18 @@ async def stream(ws: WebSocket) -> None:
         hub.unsubscribe(session.sub)
 
 
-def _sessions(state: Any) -> set[_Session]:
-    got = getattr(state, "stream_sessions", None)
-    if got is None:
-        got = state.stream_sessions = set()
-    return got  # type: ignore[no-any-return]
+def init_state(state: State) -> None:
+    """The app's stream state: its live sessions and the encoded-message cache they share."""
+    state.stream_sessions = set()
+    state.stream_encoded = _Encoded()
 
 
-def revoke_sessions(state: Any, cfg: Config) -> int:
+def _sessions(state: State) -> set[_Session]:
+    sessions: set[_Session] = state.stream_sessions
+    return sessions
+
+
+def revoke_sessions(state: State, cfg: Config) -> int:
     """After a token change: end every session whose token no longer admits it (close 1008
     "token withdrawn") or now has a lower role (1008 "token role lowered"). Returns how many.
 

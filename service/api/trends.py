@@ -8,10 +8,10 @@ import asyncio
 import time
 from typing import Annotated, Any
 
-from fastapi import APIRouter, HTTPException, Query, Request
+from fastapi import APIRouter, HTTPException, Query
 
 from ..store import trend_key
-from .deps import ChannelDep, ProfileQ, check_profile, invalid, invalid_query
+from .deps import ChannelDep, ConfigDep, ProfileQ, StoreDep, check_profile, invalid, invalid_query
 from .security import Reader
 
 router = APIRouter(tags=["trends"])
@@ -33,8 +33,9 @@ MAX_S = 9.2e9  # times in s whose ns still fit a signed 64-bit integer
     },
 )
 async def get_trend(
-    request: Request,
     channel: ChannelDep,
+    store: StoreDep,
+    cfg: ConfigDep,
     _: Reader,
     name: Annotated[
         str, Query(max_length=200, description="overall | band:<name> | tone:<name>")
@@ -54,7 +55,6 @@ async def get_trend(
     ] = None,
     profile: ProfileQ = None,
 ) -> dict[str, Any]:
-    store = request.app.state.service.store
     prof = check_profile(channel, profile)
     shown = name
     if prof != channel.profiles[0]:
@@ -66,7 +66,7 @@ async def get_trend(
         invalid_query("since", f"since={since_s:g} must be before until={until_s:g}")
     since_ns, until_ns = int(since_s * _NS), int(until_s * _NS)
     if step is not None:  # buckets are made of stored ones: round up to a whole number of them
-        base = request.app.state.config.service.trend_step_s
+        base = cfg.service.trend_step_s
         step = -(-step // base) * base
     try:
         points = await asyncio.to_thread(store.trend, channel.id, name, since_ns, until_ns, step)

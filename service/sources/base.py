@@ -35,7 +35,7 @@ import ipaddress
 import logging
 import time
 from abc import ABC, abstractmethod
-from collections.abc import Callable, Sequence
+from collections.abc import AsyncIterator, Callable, Sequence
 from typing import Any, ClassVar, Protocol, runtime_checkable
 
 import numpy as np
@@ -97,9 +97,11 @@ class Source(Protocol):
     @property
     def fs(self) -> float | None: ...  # Hz; None until known (a WAV not yet seen)
 
-    def __aiter__(self) -> Any: ...
+    def __aiter__(self) -> AsyncIterator[SampleBlock]: ...
 
     async def __anext__(self) -> SampleBlock: ...
+
+    async def start(self) -> None: ...  # bind / open; raises if it cannot be set up
 
     async def aclose(self) -> None: ...
 

@@ -641,6 +641,9 @@ class SimulatedSource:
             fs=self.fs,
         )
 
+    async def start(self) -> None:
+        """Nothing to open: the plant is rendered on demand (the Source contract's start)."""
+
     async def aclose(self) -> None:
         """Stop the stream; a pending or later ``__anext__`` ends the iteration."""
         self._closed = True

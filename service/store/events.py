@@ -70,7 +70,7 @@ def write_state(c: sqlite3.Connection, state: str) -> None:
 def read_state(c: sqlite3.Connection) -> dict[str, Any] | None:
     """The last saved alarm snapshot, or None."""
     row = c.execute("SELECT json FROM alarm_state WHERE k = 1").fetchone()
-    return None if row is None else json.loads(row[0])  # type: ignore[no-any-return]
+    return None if row is None else json.loads(row[0])
 
 
 def select_events(

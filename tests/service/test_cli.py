@@ -121,6 +121,7 @@ def _fake_app(monkeypatch: pytest.MonkeyPatch) -> dict[str, list[Any]]:
     mod = types.ModuleType("service.app")
     mod.demo_config = demo_config  # type: ignore[attr-defined]
     mod.run_service = run_service  # type: ignore[attr-defined]
+    mod.DEMO_OPERATOR_TOKEN = "t-demo"  # type: ignore[attr-defined]
     monkeypatch.setitem(sys.modules, "service.app", mod)
     return calls
 
@@ -151,7 +152,8 @@ def test_demo_passes_its_options_to_the_service(
     argv = ["demo", "--listen", "127.0.0.1:9999", "--data-dir", "d", "--speed", "10"]
     assert cli.main(argv) == 0
     assert calls["demo_config"] == [{"listen": "127.0.0.1:9999", "data_dir": "d", "speed": 10.0}]
-    assert "started" in capsys.readouterr().out
+    out = capsys.readouterr().out
+    assert "started" in out and "demo operator token" in out and "t-demo" in out
     assert cli.main(["demo", "--listen", "0.0.0.0:8750"]) == 2  # no tokens: refused
     assert len(calls["run_service"]) == 1
 
@@ -620,3 +622,19 @@ def test_analyze_json_is_strict_with_bad_samples_and_unmeasurable_values(
     assert tone["amplitude"] is None and tone["reason"].startswith("below the low-frequency")
     (band,) = ch["bands"]
     assert band["value"] is None and "6.25 Hz" in band["reason"]
+
+
+def test_console_script_and_python_m_service_reach_main() -> None:
+    # pyproject's [project.scripts] target and `python -m service` both run cli.main
+    import importlib
+    import subprocess
+    import tomllib
+
+    root = Path(__file__).resolve().parents[2]
+    target = tomllib.loads((root / "pyproject.toml").read_text())["project"]["scripts"]["quaver"]
+    mod, _, fn = target.partition(":")
+    assert getattr(importlib.import_module(mod), fn) is cli.main
+    r = subprocess.run([sys.executable, "-m", "service", "check", "-c",
+                        str(EXAMPLES / "plant.toml")], cwd=root, capture_output=True, text=True,
+                       timeout=120)
+    assert r.returncode == 0 and r.stdout.startswith(f"{EXAMPLES / 'plant.toml'}: OK"), r

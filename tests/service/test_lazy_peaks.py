@@ -6,9 +6,11 @@ reference."""
 
 from __future__ import annotations
 
+import gc
 import math
 import threading
 import tomllib
+import types
 from pathlib import Path
 
 import numpy as np
@@ -16,7 +18,7 @@ import pytest
 
 from service.app import Service
 from service.config import Config
-from service.types import FramePeaks, PushPeaks, SampleBlock, ToneValue
+from service.types import FramePeaks, PeakSettings, PushPeaks, SampleBlock, ToneValue
 from tests.service.conftest import to_toml
 
 FS = 2560.0  # Hz; Fmax 1000 Hz, 400 lines: df = 2.5 Hz (fs = 2.56·Fmax, common practice)
@@ -57,6 +59,12 @@ def test_peaks_are_found_when_read_and_equal_the_analyzers(tmp_path: Path) -> No
     assert [f.channel for f in frames] == ["c0", "c1", "c2"]
     push = frames[0].peaks._push  # type: ignore[attr-defined]
     assert isinstance(frames[0].peaks, FramePeaks) and push._rows is None  # not yet found
+    # plain data only: the push's spectra, the settings of the moment and a module-level
+    # function; nothing that reaches the live analyzer (which goes on changing)
+    held = [r for r in gc.get_referents(push) if r is not None and r is not PushPeaks]
+    assert {type(r) for r in held} <= {np.ndarray, PeakSettings, types.FunctionType,
+                                       type(threading.Lock())}, held
+    assert push.settings.n == p.bank.groups[0].analyzer.grid.n
     top = frames[1].peaks[0]
     assert push._rows is not None and all(f.peaks._push is push for f in frames)  # type: ignore[attr-defined]
     assert top.frequency_hz == pytest.approx(123.4, abs=0.05 * FS / 1024)  # ±0.05 line
@@ -81,7 +89,8 @@ def test_push_peaks_are_computed_once_whatever_thread_reads_first() -> None:
         calls.append(1)
         return [(ToneValue("", 10.0 * c, 1.0),) for c in range(8)]
 
-    push = PushPeaks(compute)
+    settings = PeakSettings("g", 1.0, "hann", 16, "velocity", "rms", 1, 0.0, 14.0)
+    push = PushPeaks(np.zeros((8, 9), np.float32), settings, lambda power, s: compute())
     seen: list[tuple[ToneValue, ...]] = [()] * 8
 
     def read(c: int) -> None:

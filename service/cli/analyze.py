@@ -1,0 +1,437 @@
+"""``quaver analyze``: a recording through the service's own analysis path, offline.
+
+Holds no DSP of its own: feeds ``service.pipeline.SourcePipeline`` and reads its frames as
+the REST API does."""
+
+from __future__ import annotations
+
+import argparse
+import functools
+import json
+import math
+import os
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from pydantic import ValidationError
+
+from dsp.filterbank import FMAX_RATIO
+from dsp.types import (
+    QUANTITIES,
+)
+
+from ..config import (
+    QUANTITY_OF_UNIT,
+    AnalysisSettings,
+    Config,
+    ConfigError,
+    channel_ids,
+    channel_settings,
+    load_config,
+    parse_config,
+    profiles_of,
+)
+from ..lookups import effective_analysis
+from ..pipeline import ChannelState, SourcePipeline, channel_states
+from ..profiles import ProfileBank
+from ..recording import Recording, load_recording
+from ..spectra import band_items, overall_item, peak_items, spectrum_values, tone_items
+from ..types import SampleBlock, SourceCounters, SpectralFrame
+from .common import CHUNK_S, CliError, Progress, _config_error, _num, _say
+
+#
+# `quaver analyze` runs the recording through the service's own path: a config (the -c file's
+# channel, or one made from the options) with the command-line options merged into its
+# analysis settings, then service.pipeline.SourcePipeline.process block by block (sensor
+# checks, gaps, ProfileBank: decimation and every profile, frames) and the REST payload
+# helpers of service.spectra for the values. Nothing here computes a number of its own.
+
+_OPTION_OF = {
+    "fmax_hz": "--fmax", "lines": "--lines", "window": "--window", "overlap": "--overlap",
+    "averaging": "--averaging", "averages": "--averages", "unit": "--unit",
+    "output_unit": "--unit", "amplitude": "--amplitude", "lowcut_hz": "--lowcut",
+    "peaks": "--peaks",
+}
+RECORDING_SOURCE = "recording"  # the source id analyze gives the recording
+MAX_AVERAGES = 100_000  # AnalysisSettings.averages' upper bound
+
+
+@dataclass
+class _Run:
+    """Recording rows analysed as one source of the service (one SourcePipeline)."""
+
+    rows: list[int]
+    ids: list[str]  # the config's channel id of each row
+    cfg: Config
+    config_channel: str | None
+
+
+def _settings(base: dict[str, Any], over: dict[str, Any]) -> AnalysisSettings:
+    try:
+        return AnalysisSettings.model_validate({**base, **over})
+    except ValidationError as e:
+        err = e.errors()[0]
+        key = str(err["loc"][0]) if err["loc"] else "?"
+        raise CliError(f"{_OPTION_OF.get(key, key)}: {err['msg']} (got {err.get('input')!r})",
+                       2) from None
+
+
+def _cli_overrides(args: argparse.Namespace, rec: Recording) -> dict[str, Any]:
+    over: dict[str, Any] = {}
+    for key, value in (("fmax_hz", args.fmax), ("lines", args.lines), ("window", args.window),
+                       ("overlap", args.overlap), ("amplitude", args.amplitude),
+                       ("lowcut_hz", args.lowcut), ("peaks", args.peaks)):
+        if value is not None:
+            over[key] = value
+    if args.unit is not None:
+        if args.unit in QUANTITIES:
+            over.update(unit=args.unit, output_unit=None)
+        else:
+            over.update(unit=QUANTITY_OF_UNIT[args.unit], output_unit=args.unit)
+    # A recording's mean spectrum is what an analyst wants: linear over every frame (an
+    # upper bound of the frame count; the average is the mean of the frames there are) and
+    # held. The config's live averaging applies only when asked for on the command line.
+    mode = args.averaging or "linear"
+    over["averaging"] = mode
+    if args.averages is not None:
+        over["averages"] = args.averages
+    elif mode == "linear":
+        over["averages"] = max(1, min(rec.data.shape[1], MAX_AVERAGES))
+    over["linear_end"] = "hold"
+    return over
+
+
+def _check_fmax(args: argparse.Namespace, rec: Recording) -> None:
+    if args.fmax is not None and args.fmax > rec.fs / FMAX_RATIO * (1 + 1e-9):
+        raise CliError(f"--fmax {args.fmax:g} Hz needs a sample rate of at least 2.56*fmax = "
+                       f"{FMAX_RATIO * args.fmax:g} Hz; the recording runs at {rec.fs:g} Hz", 2)
+
+
+def _cli_items(args: argparse.Namespace, channel: str, fmax_hz: float
+               ) -> tuple[list[dict[str, Any]], list[dict[str, Any]]]:
+    bands, tones = [], []
+    for b in args.band or []:
+        if b.hi > fmax_hz * (1 + 1e-9):
+            raise CliError(f"--band {b.name}:{b.lo:g}:{b.hi:g}: {b.hi:g} Hz is above Fmax "
+                           f"{fmax_hz:g} Hz", 2)
+        bands.append({"channel": channel, "name": b.name, "lo_hz": b.lo, "hi_hz": b.hi})
+    for t in args.tone or []:
+        if t.hz > fmax_hz * (1 + 1e-9):
+            raise CliError(f"--tone {t.name}:{t.hz:g}: {t.hz:g} Hz is above Fmax {fmax_hz:g} Hz",
+                           2)
+        tones.append({"channel": channel, "name": t.name, "hz": t.hz})
+    return bands, tones
+
+
+def _source(ids: list[str], fs: float) -> dict[str, Any]:
+    # a source entry only names the channels and their rate: nothing is ever opened
+    return {"id": RECORDING_SOURCE, "kind": "tcp", "listen": "127.0.0.1:9", "format": "f32le",
+            "sample_rate_hz": fs, "channels": ids}
+
+
+def _validated(doc: dict[str, Any], source: str, over: dict[str, Any]) -> Config:
+    """parse_config with the options' names in place of the settings they override."""
+    try:
+        return parse_config(doc, env={}, source=source)
+    except ConfigError as e:
+        problems = []
+        for p in e.problems:
+            path, sep, rest = p.partition(": ")
+            key = path.rsplit(".", 1)[-1]
+            if sep and key in over and key in _OPTION_OF and ".analysis." in f".{path}":
+                p = f"{_OPTION_OF[key]}: {rest}"
+            problems.append(p)
+        raise CliError("; ".join(problems), 2) from None
+
+
+def _plain_run(args: argparse.Namespace, rec: Recording, over: dict[str, Any]) -> _Run:
+    """Every recording channel with the options' settings (no config file)."""
+    if args.channel is not None or args.profile is not None:
+        raise CliError(f"{'--channel' if args.channel else '--profile'} needs -c/--config", 2)
+    s = _settings({"fmax_hz": rec.fs / FMAX_RATIO}, over)
+    rows = list(range(rec.data.shape[0]))
+    ids = [f"ch{r + 1}" for r in rows]
+    sens = 1.0 if args.sensitivity is None else args.sensitivity
+    bands, tones = _cli_items(args, "*", s.fmax_hz)
+    doc = {
+        "analysis": s.model_dump(),
+        "sources": [_source(ids, rec.fs)],
+        "channels": [{"id": i, "input_unit": args.input_unit or "g", "sensitivity": sens}
+                     for i in ids],
+        "bands": bands,
+        "tones": tones,
+    }
+    return _Run(rows, ids, _validated(doc, "the command-line options", over), None)
+
+
+def _config_run(args: argparse.Namespace, cfg: Config, row: int, cid: str,
+                over: dict[str, Any], fs: float) -> _Run:
+    """One recording row as config channel ``cid``, its profile (--profile or the primary
+    one) only, the options merged over the profile's settings (the later wins)."""
+    runs = profiles_of(cfg, cid)
+    if args.profile is not None and args.profile not in runs:
+        raise CliError(f"--profile {args.profile!r}: channel {cid!r} of {args.config} "
+                       f"has no such profile (profiles: {', '.join(map(repr, runs))})", 2)
+    prof = args.profile or runs[0]
+    base = effective_analysis(cfg, cid, prof).model_dump()
+    s = _settings(base, over)
+    ch = channel_settings(cfg, cid)
+    settings = s.model_dump()
+    channel = {**ch.model_dump(exclude={"analysis", "profiles"}), "analysis": settings}
+    if args.input_unit is not None:
+        channel["input_unit"] = args.input_unit
+    if args.sensitivity is not None:
+        channel["sensitivity"] = args.sensitivity
+    has_speed = ch.speed_rpm is not None
+    cli_bands, cli_tones = _cli_items(args, cid, s.fmax_hz)
+    cli_names = {b["name"] for b in cli_bands} | {t["name"] for t in cli_tones}
+
+    def keep(item: Any, is_order: bool, top: float | None) -> bool:
+        if item.channel not in ("*", cid) or item.profile not in ("*", prof):
+            return False
+        if item.channel == cid and item.name in cli_names:
+            return False  # the option's band or tone of that name replaces it
+        if is_order and not has_speed:
+            return False  # a '*' order item skips a channel without speed
+        # a profile = "*" item goes to the profiles whose Fmax reaches it (config.bands_for)
+        return item.profile != "*" or top is None or top <= s.fmax_hz * (1 + 1e-9)
+
+    rps = (ch.speed_rpm or 0.0) / 60.0
+    bands = []
+    for b in cfg.bands:
+        if b.octave is not None:  # a set: its bands up to Fmax (bands_for drops the rest)
+            item = b.model_dump(exclude_none=True)
+            if b.profile == "*" and b.hi_hz is not None and b.hi_hz > s.fmax_hz:
+                item["hi_hz"] = s.fmax_hz
+            if keep(b, False, None) and (b.lo_hz or 0.0) < s.fmax_hz:
+                bands.append(item)
+            continue
+        is_order = b.hi_order is not None
+        top = b.hi_order * rps if b.hi_order is not None else b.hi_hz
+        if keep(b, is_order, top):
+            bands.append(b.model_dump(exclude_none=True))
+    tones = [t.model_dump(exclude_none=True) for t in cfg.tones
+             if keep(t, t.order is not None, t.hz if t.hz is not None else (t.order or 0) * rps)]
+    doc: dict[str, Any] = {
+        "analysis": cfg.analysis.model_dump(),
+        "sources": [_source([cid], fs)],
+        "channels": [channel],
+        "bands": bands + cli_bands,
+        "tones": tones + cli_tones,
+    }
+    if cfg.profiles:  # the one profile, under its own name, with the merged settings
+        doc["profiles"] = {prof: settings}
+        channel["profiles"] = [prof]
+    return _Run([row], [cid], _validated(doc, f"{args.config} with the command-line options",
+                                         over), cid)
+
+
+def _plan(args: argparse.Namespace, rec: Recording) -> list[_Run]:
+    """The runs: all rows alike without a config; one per row, as its config channel, with."""
+    _check_fmax(args, rec)
+    over = _cli_overrides(args, rec)
+    if args.config is None:
+        return [_plain_run(args, rec, over)]
+    cfg = load_config(args.config)
+    known = list(dict.fromkeys([*channel_ids(cfg), *(c.id for c in cfg.channels)]))
+    listed = ", ".join(map(repr, known)) or "none"
+    if args.channel is not None:
+        if args.channel not in known:
+            raise CliError(f"--channel {args.channel!r} is not a channel of {args.config} "
+                           f"(channels: {listed})", 2)
+        chosen = [args.channel] * rec.data.shape[0]
+    elif all(n in known for n in rec.channel_names):
+        chosen = list(rec.channel_names)  # a text header naming the config's channels
+    elif len(known) == 1:
+        chosen = known * rec.data.shape[0]
+    else:
+        raise CliError(f"{args.config} has several channels; choose one with --channel "
+                       f"(channels: {listed})", 2)
+    return [_config_run(args, cfg, row, cid, over, rec.fs) for row, cid in enumerate(chosen)]
+
+
+async def _no_publish(*_: object) -> None:  # frames are read back, not published
+    return None
+
+
+@dataclass
+class _RecordingSource:
+    """The recording as the pipeline's source (service.sources.base.Source): it names the
+    channels and the rate; cmd_analyze hands the blocks to SourcePipeline.process itself."""
+
+    id: str
+    channel_ids: tuple[str, ...]
+    fs: float | None
+    counters: SourceCounters = field(default_factory=SourceCounters)
+
+    def __aiter__(self) -> _RecordingSource:
+        return self
+
+    async def __anext__(self) -> SampleBlock:
+        raise StopAsyncIteration
+
+    async def start(self) -> None:
+        return None
+
+    async def aclose(self) -> None:
+        return None
+
+    def status(self) -> dict[str, object]:
+        return {"id": self.id, "kind": "recording", "counters": self.counters.as_dict()}
+
+
+def _analyse(run: _Run, rec: Recording, progress: Callable[[int], None]
+             ) -> tuple[dict[str, SpectralFrame], dict[str, ChannelState]]:
+    """Feed the run's rows to a SourcePipeline in CHUNK_S blocks; the newest primary frame
+    of each channel, and the channels' states (sensor checks, counters, notes)."""
+    states = channel_states(run.cfg, RECORDING_SOURCE, run.ids, fs=rec.fs)
+    pipe = SourcePipeline(
+        _RecordingSource(RECORDING_SOURCE, tuple(run.ids), rec.fs), states, _no_publish,
+        make_bank=functools.partial(ProfileBank, run.cfg, run.ids), cfg=run.cfg,
+    )
+    latest: dict[str, SpectralFrame] = {}
+    n_total = rec.data.shape[1]
+    chunk = max(1, int(round(CHUNK_S * rec.fs)))
+    ids = tuple(run.ids)
+    for start in range(0, n_total, chunk):
+        x = np.ascontiguousarray(rec.data[run.rows, start : start + chunk], dtype=np.float32)
+        for f in pipe.process(SampleBlock(RECORDING_SOURCE, ids, x, start, 0, rec.fs)):
+            if f.primary:
+                latest[f.channel] = f
+        progress(min(start + chunk, n_total))
+    return latest, states
+
+
+def _channel_result(name: str, run: _Run, frame: SpectralFrame, st: ChannelState
+                    ) -> dict[str, Any]:
+    info = st.profile_info.get(frame.profile, {})
+    values, unit, amp = spectrum_values(frame)
+    overall = overall_item(frame)
+    return {
+        "channel": name,
+        "config_channel": run.config_channel,
+        "profile": frame.profile,
+        "fs_hz": frame.fs,
+        "decimation": info.get("decimation", 1),
+        "df_hz": frame.df_hz,
+        "f0_hz": frame.f0_hz,
+        "lines": frame.lines,
+        "fmax_hz": frame.fmax_hz,
+        "n": frame.n,
+        "hop": info.get("hop"),
+        "window": frame.window,
+        "averaging": frame.averaging,
+        "averages": frame.averages,
+        "input_unit": frame.input_unit,
+        "sensitivity": st.sensitivity,
+        "unit": unit,
+        "amplitude": amp,
+        "lowcut_hz": frame.lowcut_hz,
+        "overall": overall["overall"],
+        "overall_band_hz": [overall["overall_lo_hz"], overall["overall_hi_hz"]],
+        **({"overall_reason": overall["overall_reason"]} if "overall_reason" in overall else {}),
+        "band_amplitude": "rms",
+        "bands": band_items(frame),
+        "tones": tone_items(frame),
+        "peaks": peak_items(frame),
+        # the worker thread's view of the samples (service.quality: the rest of a channel's
+        # state is about time, which a recording does not have); frame.quality: the frame's
+        "quality": frame.quality,
+        "status": st.data_status,
+        "fault": st.data_fault,
+        "counters": {"nonfinite_blocks": st.nonfinite_blocks, "range_blocks": st.range_blocks,
+                     "flat_blocks": st.flat_blocks, "clipped_blocks": st.clipped_blocks,
+                     "sensor_faults": st.sensor_faults, "gaps": st.gaps},
+        "notes": list(st.notes),
+        "spectrum": [_num(v) for v in values.tolist()],
+    }
+
+
+def _fmt(v: float | None, digits: int = 5) -> str:
+    return "-" if v is None else f"{v:.{digits}g}"
+
+
+def _table(r: dict[str, Any]) -> str:
+    u, a = r["unit"], r["amplitude"]
+    lo, hi = r["overall_band_hz"]
+    cfg = f" (config channel {r['config_channel']})" if r["config_channel"] else ""
+    out = [
+        f"{r['channel']}{cfg}: fs {r['fs_hz']:g} Hz, Fmax {r['fmax_hz']:g} Hz, {r['lines']} "
+        f"lines, df {r['df_hz']:g} Hz, {r['window']}, N {r['n']}, hop {r['hop']}, "
+        f"{r['averaging']} average of {r['averages']} frame(s)",
+        f"  overall {_fmt(lo, 4)}-{_fmt(hi, 5)} Hz: {_fmt(r['overall'])} {u} rms"
+        + (f" ({r['overall_reason']})" if r.get("overall_reason") else ""),
+        f"  low-frequency limit {r['lowcut_hz']:g} Hz (nothing below it is measured)",
+    ]
+    if r["status"] != "ok":
+        out.append(f"  status: {r['status']}" + (f" ({r['fault']})" if r["fault"] else ""))
+    out += [f"  note: {n}" for n in r["notes"]]
+    if r["bands"]:
+        out.append(f"  bands ({u} rms)")
+        for b in r["bands"]:
+            edges = f"{_fmt(b['lo_hz'], 6)}-{_fmt(b['hi_hz'], 6)} Hz"
+            why = f"  ({b['reason']})" if "reason" in b else ""
+            out.append(f"    {b['name']:<20} {edges:>18} {_fmt(b['value']):>11}{why}")
+    if r["peaks"]:
+        out.append(f"  peaks ({u} {a})")
+        out += [f"    {p['frequency_hz']:12.3f} Hz {_fmt(p['amplitude']):>11}" for p in r["peaks"]]
+    if r["tones"]:
+        out.append(f"  tones ({u} {a})")
+        out += [f"    {t['name']:<20} {_fmt(t['frequency_hz'], 8):>12} Hz "
+                f"{_fmt(t['amplitude']):>11}" + (f"  ({t['reason']})" if "reason" in t else "")
+                for t in r["tones"]]
+    return "\n".join(out)
+
+
+def _read(path: str, fmt: str | None, channels: int | None, fs: float | None) -> Recording:
+    try:
+        return load_recording(path, fmt=fmt, channels=channels, fs=fs)
+    except FileNotFoundError:
+        raise CliError(f"{path}: no such file") from None
+
+
+def cmd_analyze(args: argparse.Namespace) -> int:
+    """Offline analysis through the service's own pipeline; see the subcommand help."""
+    rec = _read(args.file, args.format, args.channels, args.rate)
+    if args.sensitivity is not None and not (math.isfinite(args.sensitivity)
+                                             and args.sensitivity != 0):
+        raise CliError(f"--sensitivity {args.sensitivity!r} must be a finite non-zero number", 2)
+    try:
+        runs = _plan(args, rec)
+    except ConfigError as e:
+        return _config_error(e)
+    for p in rec.problems:
+        _say(f"{args.file}: {p}")
+    n_total = rec.data.shape[1]
+    chunk = max(1, int(round(CHUNK_S * rec.fs)))
+    progress = Progress(f"analyze {os.path.basename(str(args.file))}", n_total * len(runs)) \
+        if n_total > chunk else None
+    results: list[dict[str, Any]] = [{} for _ in range(rec.data.shape[0])]
+    for i, run in enumerate(runs):
+        def step(done: int, before: int = i * n_total) -> None:
+            if progress:
+                progress.update(before + done)
+
+        latest, states = _analyse(run, rec, step)
+        for row, cid in zip(run.rows, run.ids, strict=True):
+            frame = latest.get(cid)
+            if frame is None:
+                info = next(iter(states[cid].profile_info.values()), {})
+                raise CliError(f"the recording holds {n_total} samples per channel, fewer than "
+                               f"one frame of N = {info.get('n')} ({info.get('lines')} lines) "
+                               f"at {info.get('sample_rate_hz')} Hz; use fewer --lines")
+            results[row] = _channel_result(rec.channel_names[row], run, frame, states[cid])
+    if progress:
+        progress.close()
+    if args.json:
+        doc = {"file": str(args.file), "format": rec.fmt, "fs_hz": rec.fs,
+               "samples": int(n_total), "duration_s": n_total / rec.fs,
+               "problems": rec.problems, "channels": results}
+        print(json.dumps(doc, allow_nan=False))  # strict JSON: a value not measured is null
+    else:
+        head = (f"{args.file}: {rec.data.shape[0]} channel(s), {rec.fs:g} Hz, "
+                f"{n_total / rec.fs:.3f} s ({n_total} samples), {rec.fmt}")
+        print("\n".join([head, *(_table(r) for r in results)]))
+    return 0

@@ -1,0 +1,139 @@
+"""``quaver demo``, ``quaver serve`` and ``quaver check``: run the service, or check a
+config file without running it.
+
+The running service is ``service.app``, imported only when a command runs it."""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+from types import ModuleType
+
+from dsp.analyzer import resolve_unit
+from dsp.filterbank import FMAX_RATIO
+
+from ..config import (
+    Config,
+    ConfigError,
+    SimulatedSourceConfig,
+    SourceConfig,
+    channel_ids,
+    channel_settings,
+    check_listen_allowed,
+    open_source_warnings,
+    parse_listen,
+)
+from ..lookups import effective_analysis
+from ..profiles import plan_profiles, plan_warnings
+from .common import _config_error, _load
+
+
+def _app() -> ModuleType:
+    # imported when a command runs the service: check, analyze and feed need no server
+    return importlib.import_module("service.app")
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    app = _app()
+    try:
+        cfg = app.demo_config(listen=args.listen, data_dir=args.data_dir, speed=args.speed)
+        check_listen_allowed(cfg)
+    except ConfigError as e:
+        return _config_error(e)
+    host, _ = parse_listen(cfg.service.listen)
+    if host not in ("127.0.0.1", "localhost", "::1"):
+        # The demo's operator token is published in its config: never serve it off this box.
+        print(f"quaver demo: listens on loopback only (its token is public), not {host!r}",
+              file=sys.stderr)
+        return 2
+    token: str = app.DEMO_OPERATOR_TOKEN
+
+    def announce(s: str) -> None:
+        print(s, flush=True)
+        # the demo has [[tokens]], so its dashboard asks for one (README "Access")
+        print(f"demo operator token (sign in with it; it may acknowledge alarms): {token}",
+              flush=True)
+
+    return int(app.run_service(cfg, announce=announce))
+
+
+def cmd_serve(args: argparse.Namespace) -> int:
+    try:
+        cfg = _load(args.config)
+    except ConfigError as e:
+        return _config_error(e)
+    return int(_app().run_service(cfg, announce=lambda s: print(s, flush=True),
+                                  config_path=args.config))
+
+
+def _source_fs(src: SourceConfig, cfg: Config, ch: str) -> tuple[float, str]:
+    """(fs in Hz, how it was found) for a channel's source; for `check` only."""
+    if src.sample_rate_hz is not None:
+        return float(src.sample_rate_hz), ""
+    if isinstance(src, SimulatedSourceConfig):
+        from ..sources.simulated import DEMO_FS
+
+        return DEMO_FS, " (the scenario's rate)"
+    fmax = effective_analysis(cfg, ch).fmax_hz  # a WAV file: the header decides at run time
+    return FMAX_RATIO * fmax, " (assumed 2.56*fmax_hz; the WAV header decides)"
+
+
+def cmd_check(args: argparse.Namespace) -> int:
+    try:
+        cfg = _load(args.config)
+    except ConfigError as e:
+        return _config_error(e)
+    out: list[str] = [f"{args.config}: OK"]
+    out.append(f"service: listen {cfg.service.listen}, data_dir {cfg.service.data_dir}, "
+               f"{len(cfg.tokens)} token(s)")
+    out.append(f"sources: {len(cfg.sources)}")
+    for s in cfg.sources:
+        where = getattr(s, "listen", None) or getattr(s, "path", None) or getattr(s, "scenario", "")
+        rate = f"{s.sample_rate_hz:g} Hz" if s.sample_rate_hz else "rate from the source"
+        chans = ", ".join(s.channels) or "every channel of the scenario"
+        fmt = getattr(s, "format", "")
+        out.append(f"  {s.id}: {s.kind} {where} {fmt} {rate}; channels {chans}".replace("  ;", ";"))
+    ids = channel_ids(cfg)
+    out.append(f"channels: {len(ids)}")
+    problems: list[str] = []
+    warnings = 0
+    for cid in ids:
+        src = next(s for s in cfg.sources if cid in s.channels)
+        fs, how = _source_fs(src, cfg, cid)
+        try:
+            plans = plan_profiles(cfg, cid, fs)
+        except ValueError as e:
+            problems.append(f"channels {cid!r}: {e}")
+            continue
+        head = f"  {cid} ({src.id}): fs {fs:g} Hz{how}"
+        if len(plans) > 1:
+            out.append(head)
+        for p in plans:
+            g, spec = p.spec.grid, p.spec
+            dec = f"decimated x{p.factor} ({'*'.join(map(str, p.stages))}) to {g.fs:g} Hz, " if (
+                p.factor > 1) else ""
+            what = (
+                f"{dec}Fmax {p.fmax_hz:g} Hz, {g.lines} lines, "
+                f"df {g.df_hz:g} Hz, {spec.window}, N {g.n}, hop {g.hop}, "
+                f"{spec.averaging} {spec.averages:g}, {resolve_unit(spec.unit)} {spec.amplitude}, "
+                f"{len(p.bands)} band(s), {len(spec.tones)} tone(s)"
+            )
+            if len(plans) == 1:
+                out.append(f"{head}, {what}")
+            else:
+                out.append(f"    {p.name}{' (primary)' if p.primary else ''}: {what}")
+            out += [f"    note: {n}" for n in p.notes]
+            warned = plan_warnings(p, channel_settings(cfg, cid).speed_rpm)
+            warnings += len(warned)
+            out += [f"    warning: {w}" for w in warned]
+    out.append(f"alarms: {len(cfg.alarms)}")
+    source_warnings = open_source_warnings(cfg)
+    out += [f"warning: {w}" for w in source_warnings]
+    warnings += len(source_warnings)
+    if warnings:
+        out[0] = f"{args.config}: OK, with {warnings} warning(s) below"
+    print("\n".join(out))
+    if problems:
+        return _config_error(ConfigError(problems, source=str(args.config)))
+    return 0

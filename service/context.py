@@ -1,0 +1,45 @@
+"""The seam between the running service and the HTTP app: what the routers may use of it.
+
+:class:`ServiceContext` is what ``service.app.Service`` offers the API; the API depends on
+this protocol (``service.api.deps``), never on the Service class or its module."""
+
+from __future__ import annotations
+
+from typing import Any, Protocol
+
+from .alarms import AlarmEngine
+from .config import Config
+from .hub import Hub
+from .store import Store
+
+
+class ReloadRefused(Exception):
+    """A reload that changed nothing: ``status`` (409 or 422), ``reason``, ``problems``."""
+
+    def __init__(self, status: int, reason: str, problems: list[str] | None = None) -> None:
+        super().__init__(reason)
+        self.status, self.reason, self.problems = status, reason, list(problems or [])
+
+
+class ServiceContext(Protocol):
+    """The running service as the routers see it (``service.app.Service`` implements it)."""
+
+    @property
+    def hub(self) -> Hub: ...
+
+    @property
+    def alarms(self) -> AlarmEngine: ...
+
+    @property
+    def store(self) -> Store: ...
+
+    @property
+    def cfg(self) -> Config: ...
+
+    async def reload(self) -> dict[str, Any]:
+        """Apply the config file's alarms and tokens; raises :class:`ReloadRefused`."""
+        ...
+
+    async def acknowledge(self, rule: str, who: str, note: str) -> dict[str, object]:
+        """Acknowledge ``rule``'s alarm; raises UnknownAlarm, AckRefused or StoreError."""
+        ...
