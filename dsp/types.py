@@ -7,6 +7,27 @@ from __future__ import annotations
 
 from typing import Literal, TypeVar, get_args
 
+__all__ = [
+    "AMPLITUDES",
+    "AVERAGING_MODES",
+    "INDEX_MAX",
+    "INDEX_MIN",
+    "INPUT_UNITS",
+    "LINEAR_ENDS",
+    "OUTPUT_UNITS",
+    "QUANTITIES",
+    "WINDOW_NAMES",
+    "Amplitude",
+    "AveragingMode",
+    "InputUnit",
+    "LinearEnd",
+    "OutputUnit",
+    "Quantity",
+    "WindowName",
+    "check_choice",
+    "check_index_span",
+]
+
 WindowName = Literal["rectangular", "hann", "hamming", "blackman-harris", "flattop", "kaiser"]
 AveragingMode = Literal["linear", "exponential", "peak-hold"]
 LinearEnd = Literal["restart", "hold"]
