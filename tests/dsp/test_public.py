@@ -8,7 +8,9 @@ from __future__ import annotations
 import ast
 import doctest
 import importlib
+import inspect
 import json
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -126,3 +128,76 @@ def test_docstring_examples_hold(name):
     assert result.failed == 0
     if name in ("__init__", "bands", "decimate", "filterbank", "kinematics", "windows"):
         assert result.attempted > 0  # these modules carry examples; they must keep them
+
+
+# --- numpydoc sections ----------------------------------------------------------------------
+#
+# Every public function and class documents its parameters numpydoc-style (a ``Parameters``
+# section naming each one, units stated beside it), and every function that returns a value
+# has a ``Returns`` section. Result records (frozen dataclasses the functions return) name
+# their fields under ``Attributes`` instead.
+
+SECTION = re.compile(r"^(\w[\w ]*)\n-{3,}\s*$", re.M)
+
+
+def numpydoc_sections(doc: str) -> dict[str, list[str]]:
+    """Section title → the names it lists (lines ``name : type`` or ``a, b : type``)."""
+    doc = inspect.cleandoc(doc)
+    marks = list(SECTION.finditer(doc))
+    out: dict[str, list[str]] = {}
+    for i, m in enumerate(marks):
+        body = doc[m.end(): marks[i + 1].start() if i + 1 < len(marks) else len(doc)]
+        names = []
+        for line in body.splitlines():
+            item = re.match(r"^([\w*][\w*, ]*?)\s*:\s", line) or re.match(r"^([\w*]+)\s*$", line)
+            if item and not line.startswith(" "):
+                names += [n.strip().lstrip("*") for n in item.group(1).split(",")]
+        out[m.group(1)] = names
+    return out
+
+
+def _documented(name: str) -> tuple[str, list[str], list[str]]:
+    """(what is missing, parameters of the signature, the names the docstring lists)."""
+    obj = getattr(dsp, name)
+    doc = inspect.getdoc(obj) or ""
+    sections = numpydoc_sections(doc)
+    params = [p for p in inspect.signature(obj).parameters if p not in ("self", "cls")]
+    listed = sections.get("Parameters", []) or sections.get("Attributes", [])
+    problems = [f"{p} not in Parameters/Attributes" for p in params if p not in listed]
+    problems += [f"{p} listed but not a parameter" for p in listed if p not in params]
+    if inspect.isfunction(obj):
+        returns = inspect.signature(obj).return_annotation
+        if returns not in ("None", None, inspect.Signature.empty) and "Returns" not in sections:
+            problems.append("no Returns section")
+    return "; ".join(problems), params, listed
+
+
+PUBLIC_CALLABLES = [n for n in dsp.__all__
+                    if inspect.isfunction(getattr(dsp, n)) or inspect.isclass(getattr(dsp, n))]
+
+
+@pytest.mark.parametrize("name", PUBLIC_CALLABLES)
+def test_public_functions_and_classes_have_numpydoc_sections(name):
+    problems, _, _ = _documented(name)
+    assert problems == ""
+
+
+def test_the_section_reader_reads_numpydoc():
+    doc = '''Do a thing.
+
+    Parameters
+    ----------
+    x : ndarray
+        Samples, g.
+    fs, hop : float
+        Sample rate, Hz; hop, samples.
+    **kwargs : dict
+        More.
+
+    Returns
+    -------
+    ndarray
+        The thing, mm/s.
+    '''
+    assert numpydoc_sections(doc) == {"Parameters": ["x", "fs", "hop", "kwargs"],
+                                      "Returns": ["ndarray"]}
