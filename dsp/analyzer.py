@@ -48,7 +48,24 @@ __all__ = [
 
 
 def resolve_unit(unit: str) -> OutputUnit:
-    """An output unit from a unit or a quantity name (velocity → mm/s, …); checked."""
+    """An output unit from a unit or a quantity name (velocity → mm/s, …); checked.
+
+    Parameters
+    ----------
+    unit : str
+        An output unit (g, m/s2, mm/s, in/s, um, mil) or a quantity (acceleration, velocity,
+        displacement).
+
+    Returns
+    -------
+    str
+        The output unit (a quantity's default: g, mm/s or um).
+
+    Raises
+    ------
+    ValueError
+        For anything else.
+    """
     if unit in QUANTITIES:
         return DEFAULT_UNIT[unit]  # type: ignore[return-value]
     return check_choice("unit", unit, OUTPUT_UNITS + QUANTITIES)  # type: ignore[return-value]
@@ -56,7 +73,17 @@ def resolve_unit(unit: str) -> OutputUnit:
 
 @dataclass(frozen=True)
 class ToneDef:
-    """A tracked tone: at ``hz`` (fixed frequency) or at ``order`` × running speed."""
+    """A tracked tone: at ``hz`` (fixed frequency) or at ``order`` × running speed.
+
+    Parameters
+    ----------
+    name : str
+        Tone name.
+    hz : float, optional
+        Fixed frequency, Hz (> 0).
+    order : float, optional
+        Order of running speed (> 0); exactly one of ``hz`` and ``order``.
+    """
 
     name: str
     hz: float | None = None
@@ -87,6 +114,36 @@ class AnalysisSpec:
     ``grid`` fixes fs (Hz), frame length N and hop; ``averages`` is frames (linear) or
     equivalent frames (exponential); ``unit``/``amplitude`` are the default views;
     ``lowcut_hz`` is the integration cut; ``peaks`` the number of peaks reported.
+
+    Parameters
+    ----------
+    grid : FrameGrid
+        Sample rate (Hz), frame length N and hop (samples), lines kept.
+    window : {'rectangular', 'hann', 'hamming', 'blackman-harris', 'flattop', 'kaiser'}, optional
+        DFT window (default hann).
+    beta : float, optional
+        Kaiser β (default 8.6).
+    averaging : {'exponential', 'linear', 'peak-hold'}, optional
+        Kind of average (default exponential).
+    averages : float, optional
+        Frames (linear) or equivalent frames (exponential); default 8.
+    linear_end : {'restart', 'hold'}, optional
+        What a complete linear average does next (default restart).
+    input_unit : {'g', 'm/s2'}, optional
+        Acceleration unit of the samples pushed (default g).
+    unit : str, optional
+        Default output unit or quantity (default velocity, i.e. mm/s).
+    amplitude : {'rms', 'peak', 'peak-to-peak'}, optional
+        Default amplitude type (default rms).
+    lowcut_hz : float, optional
+        Integration cut, Hz (default 2); the window's main lobe can raise it
+        (:func:`low_limit_hz`).
+    bands : tuple of Band, optional
+        Bands whose RMS is read out (names unique).
+    tones : tuple of ToneDef, optional
+        Tracked tones.
+    peaks : int, optional
+        Peaks reported, 0…256 (default 8).
     """
 
     grid: FrameGrid
@@ -129,6 +186,16 @@ def low_limit_hz(spec: AnalysisSpec) -> float:
     limit up (a band wholly below it reads NaN), tracked tones below it read NaN, no peak is
     looked for below it, and the velocity/displacement spectrum reads 0 there (the
     acceleration spectrum shows the lines as they are). See docs/low-frequency.md.
+
+    Parameters
+    ----------
+    spec : AnalysisSpec
+        The analysis.
+
+    Returns
+    -------
+    float
+        The limit, Hz.
     """
     info = window_info(spec.window, spec.grid.n, beta=spec.beta)
     return max(float(spec.lowcut_hz), info.mainlobe_halfwidth_bins * spec.grid.df_hz)
@@ -195,6 +262,15 @@ class Analyzer:
     (:meth:`spectrum`, :meth:`bands`, :meth:`tones`, :meth:`peaks`, :meth:`psd`) give the
     current average in any unit and amplitude type. ``speed_hz`` (per channel, Hz) resolves
     order bands and order tones; :meth:`set_speed` changes it.
+
+    Parameters
+    ----------
+    spec : AnalysisSpec
+        The analysis.
+    channels : int
+        Number of channels C.
+    speed_hz : ndarray, optional
+        Running speed per channel, Hz (NaN or None where unknown).
     """
 
     spec: AnalysisSpec
@@ -498,7 +574,36 @@ def spectrum_peaks(
     interpolated frequency (``unit_power_weights``), and the ``count`` largest in ``unit``
     are given as ``amplitude`` (peak, RMS or peak-to-peak) in ``unit``. What :meth:`Analyzer.peaks`
     returns, for spectra already read out (the service computes them only when a client
-    asks)."""
+    asks).
+
+    Parameters
+    ----------
+    power : ndarray
+        Acceleration power spectra, [C, Q] or [Q], ``input_unit``² RMS² per line.
+    input_unit : {'g', 'm/s2'}
+        Their acceleration unit.
+    df_hz : float
+        Line spacing, Hz.
+    window : {'rectangular', 'hann', 'hamming', 'blackman-harris', 'flattop', 'kaiser'}
+        The window the frames were weighted by.
+    n : int
+        Frame length, samples.
+    unit : str
+        Output unit or quantity the peaks are ranked and given in.
+    amplitude : {'rms', 'peak', 'peak-to-peak'}
+        Amplitude type of the result.
+    count : int
+        Peaks per channel (0: none).
+    lowcut_hz : float
+        No peak below this, Hz.
+    beta : float, optional
+        Kaiser β (default 8.6).
+
+    Returns
+    -------
+    Peaks
+        Frequencies in Hz; ``amplitude_rms`` holds the ``amplitude`` type in ``unit``.
+    """
     u = resolve_unit(unit)
     if not count:  # no peaks asked for
         shape = (*np.shape(power)[:-1], 0)
