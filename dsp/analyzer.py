@@ -306,7 +306,13 @@ class Analyzer:
 
     # -- set-up ------------------------------------------------------------------------
     def set_speed(self, speed_hz: np.ndarray | float | None) -> None:
-        """Running speed per channel in Hz (None/NaN where unknown); re-resolves orders."""
+        """Running speed per channel in Hz (None/NaN where unknown); re-resolves orders.
+
+        Parameters
+        ----------
+        speed_hz : float or ndarray or None
+            Running speed, Hz (r/min ÷ 60), one value or one per channel; None/NaN: unknown.
+        """
         if speed_hz is None:
             s = np.full(self.channels, np.nan)
         else:
@@ -395,7 +401,13 @@ class Analyzer:
 
     # -- stream ------------------------------------------------------------------------
     def reset(self, next_index: int | None = None) -> None:
-        """A gap: drop the partial frame and start new averages."""
+        """A gap: drop the partial frame and start new averages.
+
+        Parameters
+        ----------
+        next_index : int, optional
+            Stream index the next block starts at.
+        """
         self.bank.reset(next_index)
         self._power_cache.clear()
         self.avg.reset()
@@ -408,6 +420,18 @@ class Analyzer:
         A ``first_index`` other than the next expected one is a gap: see :meth:`reset`.
         Every sample's index must fit int64 (``dsp.types.check_index_span``): a block that
         would run past it raises ValueError and changes nothing.
+
+        Parameters
+        ----------
+        block : ndarray
+            float32 samples [C, n] in ``spec.input_unit`` (any n ≥ 0).
+        first_index : int, optional
+            Stream index of the block's first sample (default: the next expected one).
+
+        Returns
+        -------
+        int
+            Frames completed by this block and folded into the averages.
         """
         n = int(np.shape(block)[-1])
         if first_index is not None:  # refused before the reset below changes anything
@@ -463,7 +487,18 @@ class Analyzer:
 
     def power(self, unit: str | None = None) -> np.ndarray:
         """Averaged power spectrum in unit² (RMS², [C, Q]; float32 unless the average is linear,
-        then float64); zeros before any frame. Read-only: read-outs of one push share it."""
+        then float64); zeros before any frame. Read-only: read-outs of one push share it.
+
+        Parameters
+        ----------
+        unit : str, optional
+            Output unit (g, m/s2, mm/s, in/s, um, mil) or quantity; default ``spec.unit``.
+
+        Returns
+        -------
+        ndarray
+            [C, Q] power spectrum, ``unit``² RMS² per line, lines 0…Fmax.
+        """
         v = self._view(unit)
         key = (v.unit, self.bank.frames_out)
         cached = self._power_cache.get(key)
@@ -482,12 +517,37 @@ class Analyzer:
         return out
 
     def spectrum(self, unit: str | None = None, amplitude: str | None = None) -> np.ndarray:
-        """Averaged amplitude spectrum, float32 [C, Q], in ``unit`` as ``amplitude`` type."""
+        """Averaged amplitude spectrum, float32 [C, Q], in ``unit`` as ``amplitude`` type.
+
+        Parameters
+        ----------
+        unit : str, optional
+            Output unit (g, m/s2, mm/s, in/s, um, mil) or quantity; default ``spec.unit``.
+        amplitude : {'rms', 'peak', 'peak-to-peak'}, optional
+            Amplitude type; default ``spec.amplitude``.
+
+        Returns
+        -------
+        ndarray
+            float32 [C, Q]: amplitude per line in ``unit``, lines 0…Fmax at
+            ``grid.df_hz`` spacing.
+        """
         p32 = self.power(unit).astype(np.float32, copy=False)  # sqrt makes the new array
         return amplitude_from_power(p32, amplitude or self.spec.amplitude)  # type: ignore[arg-type]
 
     def psd(self, unit: str | None = None) -> np.ndarray:
-        """Averaged PSD in unit²/Hz (float64 [C, Q]): power / ENBW_Hz (Heinzel 2002 §9)."""
+        """Averaged PSD in unit²/Hz (float64 [C, Q]): power / ENBW_Hz (Heinzel 2002 §9).
+
+        Parameters
+        ----------
+        unit : str, optional
+            Output unit (g, m/s2, mm/s, in/s, um, mil) or quantity; default ``spec.unit``.
+
+        Returns
+        -------
+        ndarray
+            float64 [C, Q], ``unit``²/Hz.
+        """
         return psd_from_power(self.power(unit), self.info.enbw_hz(self.grid.fs))
 
     def bands(self, unit: str | None = None) -> np.ndarray:
@@ -496,6 +556,16 @@ class Analyzer:
 
         NaN for an order band on a channel without a running speed, and for a band wholly
         below the low-frequency limit.
+
+        Parameters
+        ----------
+        unit : str, optional
+            Output unit (g, m/s2, mm/s, in/s, um, mil) or quantity; default ``spec.unit``.
+
+        Returns
+        -------
+        ndarray
+            float64 [C, B], band RMS in ``unit``, in the order of ``spec.bands``.
         """
         if self.avg.value is None or not self.spec.bands:
             return np.full((self.channels, len(self.spec.bands)), np.nan)
@@ -520,7 +590,20 @@ class Analyzer:
 
     def tones(self, unit: str | None = None, amplitude: str | None = None) -> np.ndarray:
         """Tracked-tone amplitudes (float64 [C, T]) at their exact frequencies; NaN if
-        unresolved (no speed, above Nyquist) or below the low-frequency limit."""
+        unresolved (no speed, above Nyquist) or below the low-frequency limit.
+
+        Parameters
+        ----------
+        unit : str, optional
+            Output unit (g, m/s2, mm/s, in/s, um, mil) or quantity; default ``spec.unit``.
+        amplitude : {'rms', 'peak', 'peak-to-peak'}, optional
+            Amplitude type; default ``spec.amplitude``.
+
+        Returns
+        -------
+        ndarray
+            float64 [C, T] in ``unit``, in the order of ``spec.tones``.
+        """
         v = self._view(unit)
         p = self.tone_avg.value
         if p is None or not self.spec.tones:
@@ -534,6 +617,20 @@ class Analyzer:
         """The largest peaks, interpolated (see ``dsp.tones.find_peaks``), in ``unit``.
 
         ``amplitude_rms`` of the result is converted to ``amplitude`` type in place of RMS.
+
+        Parameters
+        ----------
+        unit : str, optional
+            Output unit (g, m/s2, mm/s, in/s, um, mil) or quantity; default ``spec.unit``.
+        amplitude : {'rms', 'peak', 'peak-to-peak'}, optional
+            Amplitude type; default ``spec.amplitude``.
+        count : int, optional
+            Peaks per channel (default ``spec.peaks``).
+
+        Returns
+        -------
+        Peaks
+            Frequencies in Hz; amplitudes in ``unit`` as ``amplitude`` type, largest first.
         """
         return spectrum_peaks(
             self.power("m/s2"), "m/s2", self.grid.df_hz, self.spec.window, self.grid.n,
@@ -548,7 +645,18 @@ class Analyzer:
         return resolve_unit(self.spec.unit)
 
     def quantity(self, unit: str | None = None) -> str:
-        """"acceleration", "velocity" or "displacement": what ``unit`` (default: ours) measures."""
+        """"acceleration", "velocity" or "displacement": what ``unit`` (default: ours) measures.
+
+        Parameters
+        ----------
+        unit : str, optional
+            Output unit (g, m/s2, mm/s, in/s, um, mil) or quantity; default ``spec.unit``.
+
+        Returns
+        -------
+        str
+            Its quantity.
+        """
         return quantity_of(resolve_unit(unit or self.spec.unit))
 
 

@@ -669,6 +669,19 @@ class Decimator:
         The outputs carry indices ``next_index`` (read before the push) onwards.
         ``first_index`` (optional) is the input index of ``block[:, 0]``; another value than
         :attr:`next_input_index` is a gap and calls :meth:`reset` there first.
+
+        Parameters
+        ----------
+        block : ndarray
+            [C, n] samples at ``fs`` Hz, any unit, any n ≥ 0.
+        first_index : int, optional
+            Stream index of the block's first input sample; another than the next expected
+            one is a gap (:meth:`reset`).
+
+        Returns
+        -------
+        ndarray
+            float32 [C, m] at ``fs_out`` Hz, the block's unit (m may be 0).
         """
         x = _as_block(block, self.channels)
         first_index = _span(x, first_index, self._next_in)
@@ -943,6 +956,18 @@ class MultiRate:
         """Feed ``[C, n]`` at ``fs_in``; return ``{name: float32 [C, m]}`` (``m`` may be 0).
 
         A ``first_index`` other than :attr:`next_input_index` is a gap: see :meth:`reset`.
+
+        Parameters
+        ----------
+        block : ndarray
+            [C, n] samples at ``fs_in`` Hz, any unit, any n ≥ 0.
+        first_index : int, optional
+            Stream index of the block's first input sample (a gap if not the next expected).
+
+        Returns
+        -------
+        dict of str to ndarray
+            Name → float32 [C, m] at that name's ``fs_out`` (m may be 0).
         """
         x = _as_block(block, self.channels)
         first_index = _span(x, first_index, self._next_in)

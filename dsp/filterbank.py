@@ -540,6 +540,18 @@ class FilterBank:
 
         ``first_index`` (optional) is the stream index of ``block[:, 0]``; a value other
         than :attr:`next_index` is a gap and restarts frame assembly there.
+
+        Parameters
+        ----------
+        block : ndarray
+            float32 [C, n] samples, any unit, any n ≥ 0.
+        first_index : int, optional
+            Stream index of the block's first sample; another than the next expected one is a gap.
+
+        Returns
+        -------
+        FrameBatch
+            The frames this block completed (P may be 0).
         """
         p_count = self._accept(self._as_block(block), first_index)
         if not p_count:
@@ -590,6 +602,22 @@ class FilterBank:
         first ``lines`` lines (default: ``grid.analysis_bins``). Equal to squaring
         ``push(block).spectra`` and summing with those weights, to float32 rounding; the
         spectra of all channels are never held at once.
+
+        Parameters
+        ----------
+        block : ndarray
+            float32 [C, n] samples, any unit.
+        weights : ndarray
+            Weight a_p of each completed frame (P of them: :meth:`frames_ready`).
+        lines : int, optional
+            Lines L kept (default the grid's).
+        first_index : int, optional
+            Stream index of the block's first sample, as in :meth:`push`.
+
+        Returns
+        -------
+        PowerBatch
+            The completed frames folded over frames.
         """
         q = self.grid.analysis_bins if lines is None else int(lines)
         if not (1 <= q <= self.grid.bins):

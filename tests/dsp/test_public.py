@@ -156,9 +156,8 @@ def numpydoc_sections(doc: str) -> dict[str, list[str]]:
     return out
 
 
-def _documented(name: str) -> tuple[str, list[str], list[str]]:
+def _documented(obj: object) -> tuple[str, list[str], list[str]]:
     """(what is missing, parameters of the signature, the names the docstring lists)."""
-    obj = getattr(dsp, name)
     doc = inspect.getdoc(obj) or ""
     sections = numpydoc_sections(doc)
     params = [p for p in inspect.signature(obj).parameters if p not in ("self", "cls")]
@@ -178,8 +177,42 @@ PUBLIC_CALLABLES = [n for n in dsp.__all__
 
 @pytest.mark.parametrize("name", PUBLIC_CALLABLES)
 def test_public_functions_and_classes_have_numpydoc_sections(name):
-    problems, _, _ = _documented(name)
+    problems, _, _ = _documented(getattr(dsp, name))
     assert problems == ""
+
+
+# the methods a library user calls to stream samples through and read results out
+MAIN_METHODS = [
+    *(("Analyzer", m) for m in ("push", "reset", "set_speed", "quantity", "power", "spectrum",
+                                "psd", "bands", "tones", "peaks")),
+    ("FilterBank", "push"), ("FilterBank", "push_power"),
+    ("Decimator", "push"), ("MultiRate", "push"),
+]
+
+
+@pytest.mark.parametrize(("cls", "method"), MAIN_METHODS)
+def test_main_methods_have_numpydoc_sections(cls, method):
+    problems, params, _ = _documented(getattr(getattr(dsp, cls), method))
+    assert problems == ""
+
+
+def test_a_missing_parameter_or_returns_is_reported():
+    def f(x: float, fs: float) -> float:
+        """Thing.
+
+        Parameters
+        ----------
+        x : float
+            Samples.
+        gone : int
+            Not a parameter any more.
+        """
+        return x
+
+    problems, params, listed = _documented(f)
+    assert params == ["x", "fs"] and listed == ["x", "gone"]
+    assert problems == ("fs not in Parameters/Attributes; gone listed but not a parameter; "
+                        "no Returns section")
 
 
 def test_the_section_reader_reads_numpydoc():
