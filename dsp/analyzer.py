@@ -48,7 +48,24 @@ __all__ = [
 
 
 def resolve_unit(unit: str) -> OutputUnit:
-    """An output unit from a unit or a quantity name (velocity → mm/s, …); checked."""
+    """An output unit from a unit or a quantity name (velocity → mm/s, …); checked.
+
+    Parameters
+    ----------
+    unit : str
+        An output unit (g, m/s2, mm/s, in/s, um, mil) or a quantity (acceleration, velocity,
+        displacement).
+
+    Returns
+    -------
+    str
+        The output unit (a quantity's default: g, mm/s or um).
+
+    Raises
+    ------
+    ValueError
+        For anything else.
+    """
     if unit in QUANTITIES:
         return DEFAULT_UNIT[unit]  # type: ignore[return-value]
     return check_choice("unit", unit, OUTPUT_UNITS + QUANTITIES)  # type: ignore[return-value]
@@ -56,7 +73,17 @@ def resolve_unit(unit: str) -> OutputUnit:
 
 @dataclass(frozen=True)
 class ToneDef:
-    """A tracked tone: at ``hz`` (fixed frequency) or at ``order`` × running speed."""
+    """A tracked tone: at ``hz`` (fixed frequency) or at ``order`` × running speed.
+
+    Parameters
+    ----------
+    name : str
+        Tone name.
+    hz : float, optional
+        Fixed frequency, Hz (> 0).
+    order : float, optional
+        Order of running speed (> 0); exactly one of ``hz`` and ``order``.
+    """
 
     name: str
     hz: float | None = None
@@ -87,6 +114,36 @@ class AnalysisSpec:
     ``grid`` fixes fs (Hz), frame length N and hop; ``averages`` is frames (linear) or
     equivalent frames (exponential); ``unit``/``amplitude`` are the default views;
     ``lowcut_hz`` is the integration cut; ``peaks`` the number of peaks reported.
+
+    Parameters
+    ----------
+    grid : FrameGrid
+        Sample rate (Hz), frame length N and hop (samples), lines kept.
+    window : {'rectangular', 'hann', 'hamming', 'blackman-harris', 'flattop', 'kaiser'}, optional
+        DFT window (default hann).
+    beta : float, optional
+        Kaiser β (default 8.6).
+    averaging : {'exponential', 'linear', 'peak-hold'}, optional
+        Kind of average (default exponential).
+    averages : float, optional
+        Frames (linear) or equivalent frames (exponential); default 8.
+    linear_end : {'restart', 'hold'}, optional
+        What a complete linear average does next (default restart).
+    input_unit : {'g', 'm/s2'}, optional
+        Acceleration unit of the samples pushed (default g).
+    unit : str, optional
+        Default output unit or quantity (default velocity, i.e. mm/s).
+    amplitude : {'rms', 'peak', 'peak-to-peak'}, optional
+        Default amplitude type (default rms).
+    lowcut_hz : float, optional
+        Integration cut, Hz (default 2); the window's main lobe can raise it
+        (:func:`low_limit_hz`).
+    bands : tuple of Band, optional
+        Bands whose RMS is read out (names unique).
+    tones : tuple of ToneDef, optional
+        Tracked tones.
+    peaks : int, optional
+        Peaks reported, 0…256 (default 8).
     """
 
     grid: FrameGrid
@@ -129,6 +186,16 @@ def low_limit_hz(spec: AnalysisSpec) -> float:
     limit up (a band wholly below it reads NaN), tracked tones below it read NaN, no peak is
     looked for below it, and the velocity/displacement spectrum reads 0 there (the
     acceleration spectrum shows the lines as they are). See docs/low-frequency.md.
+
+    Parameters
+    ----------
+    spec : AnalysisSpec
+        The analysis.
+
+    Returns
+    -------
+    float
+        The limit, Hz.
     """
     info = window_info(spec.window, spec.grid.n, beta=spec.beta)
     return max(float(spec.lowcut_hz), info.mainlobe_halfwidth_bins * spec.grid.df_hz)
@@ -195,6 +262,15 @@ class Analyzer:
     (:meth:`spectrum`, :meth:`bands`, :meth:`tones`, :meth:`peaks`, :meth:`psd`) give the
     current average in any unit and amplitude type. ``speed_hz`` (per channel, Hz) resolves
     order bands and order tones; :meth:`set_speed` changes it.
+
+    Parameters
+    ----------
+    spec : AnalysisSpec
+        The analysis.
+    channels : int
+        Number of channels C.
+    speed_hz : ndarray, optional
+        Running speed per channel, Hz (NaN or None where unknown).
     """
 
     spec: AnalysisSpec
@@ -230,7 +306,13 @@ class Analyzer:
 
     # -- set-up ------------------------------------------------------------------------
     def set_speed(self, speed_hz: np.ndarray | float | None) -> None:
-        """Running speed per channel in Hz (None/NaN where unknown); re-resolves orders."""
+        """Running speed per channel in Hz (None/NaN where unknown); re-resolves orders.
+
+        Parameters
+        ----------
+        speed_hz : float or ndarray or None
+            Running speed, Hz (r/min ÷ 60), one value or one per channel; None/NaN: unknown.
+        """
         if speed_hz is None:
             s = np.full(self.channels, np.nan)
         else:
@@ -319,7 +401,13 @@ class Analyzer:
 
     # -- stream ------------------------------------------------------------------------
     def reset(self, next_index: int | None = None) -> None:
-        """A gap: drop the partial frame and start new averages."""
+        """A gap: drop the partial frame and start new averages.
+
+        Parameters
+        ----------
+        next_index : int, optional
+            Stream index the next block starts at.
+        """
         self.bank.reset(next_index)
         self._power_cache.clear()
         self.avg.reset()
@@ -332,6 +420,18 @@ class Analyzer:
         A ``first_index`` other than the next expected one is a gap: see :meth:`reset`.
         Every sample's index must fit int64 (``dsp.types.check_index_span``): a block that
         would run past it raises ValueError and changes nothing.
+
+        Parameters
+        ----------
+        block : ndarray
+            float32 samples [C, n] in ``spec.input_unit`` (any n ≥ 0).
+        first_index : int, optional
+            Stream index of the block's first sample (default: the next expected one).
+
+        Returns
+        -------
+        int
+            Frames completed by this block and folded into the averages.
         """
         n = int(np.shape(block)[-1])
         if first_index is not None:  # refused before the reset below changes anything
@@ -387,7 +487,18 @@ class Analyzer:
 
     def power(self, unit: str | None = None) -> np.ndarray:
         """Averaged power spectrum in unit² (RMS², [C, Q]; float32 unless the average is linear,
-        then float64); zeros before any frame. Read-only: read-outs of one push share it."""
+        then float64); zeros before any frame. Read-only: read-outs of one push share it.
+
+        Parameters
+        ----------
+        unit : str, optional
+            Output unit (g, m/s2, mm/s, in/s, um, mil) or quantity; default ``spec.unit``.
+
+        Returns
+        -------
+        ndarray
+            [C, Q] power spectrum, ``unit``² RMS² per line, lines 0…Fmax.
+        """
         v = self._view(unit)
         key = (v.unit, self.bank.frames_out)
         cached = self._power_cache.get(key)
@@ -407,12 +518,37 @@ class Analyzer:
         return result
 
     def spectrum(self, unit: str | None = None, amplitude: str | None = None) -> np.ndarray:
-        """Averaged amplitude spectrum, float32 [C, Q], in ``unit`` as ``amplitude`` type."""
+        """Averaged amplitude spectrum, float32 [C, Q], in ``unit`` as ``amplitude`` type.
+
+        Parameters
+        ----------
+        unit : str, optional
+            Output unit (g, m/s2, mm/s, in/s, um, mil) or quantity; default ``spec.unit``.
+        amplitude : {'rms', 'peak', 'peak-to-peak'}, optional
+            Amplitude type; default ``spec.amplitude``.
+
+        Returns
+        -------
+        ndarray
+            float32 [C, Q]: amplitude per line in ``unit``, lines 0…Fmax at
+            ``grid.df_hz`` spacing.
+        """
         p32 = self.power(unit).astype(np.float32, copy=False)  # sqrt makes the new array
         return amplitude_from_power(p32, amplitude or self.spec.amplitude)  # type: ignore[arg-type]
 
     def psd(self, unit: str | None = None) -> np.ndarray:
-        """Averaged PSD in unit²/Hz (float64 [C, Q]): power / ENBW_Hz (Heinzel 2002 §9)."""
+        """Averaged PSD in unit²/Hz (float64 [C, Q]): power / ENBW_Hz (Heinzel 2002 §9).
+
+        Parameters
+        ----------
+        unit : str, optional
+            Output unit (g, m/s2, mm/s, in/s, um, mil) or quantity; default ``spec.unit``.
+
+        Returns
+        -------
+        ndarray
+            float64 [C, Q], ``unit``²/Hz.
+        """
         return psd_from_power(self.power(unit), self.info.enbw_hz(self.grid.fs))
 
     def bands(self, unit: str | None = None) -> np.ndarray:
@@ -421,6 +557,16 @@ class Analyzer:
 
         NaN for an order band on a channel without a running speed, and for a band wholly
         below the low-frequency limit.
+
+        Parameters
+        ----------
+        unit : str, optional
+            Output unit (g, m/s2, mm/s, in/s, um, mil) or quantity; default ``spec.unit``.
+
+        Returns
+        -------
+        ndarray
+            float64 [C, B], band RMS in ``unit``, in the order of ``spec.bands``.
         """
         if self.avg.value is None or not self.spec.bands:
             return np.full((self.channels, len(self.spec.bands)), np.nan)
@@ -446,7 +592,20 @@ class Analyzer:
 
     def tones(self, unit: str | None = None, amplitude: str | None = None) -> np.ndarray:
         """Tracked-tone amplitudes (float64 [C, T]) at their exact frequencies; NaN if
-        unresolved (no speed, above Nyquist) or below the low-frequency limit."""
+        unresolved (no speed, above Nyquist) or below the low-frequency limit.
+
+        Parameters
+        ----------
+        unit : str, optional
+            Output unit (g, m/s2, mm/s, in/s, um, mil) or quantity; default ``spec.unit``.
+        amplitude : {'rms', 'peak', 'peak-to-peak'}, optional
+            Amplitude type; default ``spec.amplitude``.
+
+        Returns
+        -------
+        ndarray
+            float64 [C, T] in ``unit``, in the order of ``spec.tones``.
+        """
         v = self._view(unit)
         p = self.tone_avg.value
         if p is None or not self.spec.tones:
@@ -460,6 +619,20 @@ class Analyzer:
         """The largest peaks, interpolated (see ``dsp.tones.find_peaks``), in ``unit``.
 
         ``amplitude_rms`` of the result is converted to ``amplitude`` type in place of RMS.
+
+        Parameters
+        ----------
+        unit : str, optional
+            Output unit (g, m/s2, mm/s, in/s, um, mil) or quantity; default ``spec.unit``.
+        amplitude : {'rms', 'peak', 'peak-to-peak'}, optional
+            Amplitude type; default ``spec.amplitude``.
+        count : int, optional
+            Peaks per channel (default ``spec.peaks``).
+
+        Returns
+        -------
+        Peaks
+            Frequencies in Hz; amplitudes in ``unit`` as ``amplitude`` type, largest first.
         """
         return spectrum_peaks(
             self.power("m/s2"), "m/s2", self.grid.df_hz, self.spec.window, self.grid.n,
@@ -474,7 +647,18 @@ class Analyzer:
         return resolve_unit(self.spec.unit)
 
     def quantity(self, unit: str | None = None) -> str:
-        """"acceleration", "velocity" or "displacement": what ``unit`` (default: ours) measures."""
+        """"acceleration", "velocity" or "displacement": what ``unit`` (default: ours) measures.
+
+        Parameters
+        ----------
+        unit : str, optional
+            Output unit (g, m/s2, mm/s, in/s, um, mil) or quantity; default ``spec.unit``.
+
+        Returns
+        -------
+        str
+            Its quantity.
+        """
         return quantity_of(resolve_unit(unit or self.spec.unit))
 
 
@@ -500,7 +684,36 @@ def spectrum_peaks(
     interpolated frequency (``unit_power_weights``), and the ``count`` largest in ``unit``
     are given as ``amplitude`` (peak, RMS or peak-to-peak) in ``unit``. What :meth:`Analyzer.peaks`
     returns, for spectra already read out (the service computes them only when a client
-    asks)."""
+    asks).
+
+    Parameters
+    ----------
+    power : ndarray
+        Acceleration power spectra, [C, Q] or [Q], ``input_unit``² RMS² per line.
+    input_unit : {'g', 'm/s2'}
+        Their acceleration unit.
+    df_hz : float
+        Line spacing, Hz.
+    window : {'rectangular', 'hann', 'hamming', 'blackman-harris', 'flattop', 'kaiser'}
+        The window the frames were weighted by.
+    n : int
+        Frame length, samples.
+    unit : str
+        Output unit or quantity the peaks are ranked and given in.
+    amplitude : {'rms', 'peak', 'peak-to-peak'}
+        Amplitude type of the result.
+    count : int
+        Peaks per channel (0: none).
+    lowcut_hz : float
+        No peak below this, Hz.
+    beta : float, optional
+        Kaiser β (default 8.6).
+
+    Returns
+    -------
+    Peaks
+        Frequencies in Hz; ``amplitude_rms`` holds the ``amplitude`` type in ``unit``.
+    """
     u = resolve_unit(unit)
     if not count:  # no peaks asked for
         shape = (*np.shape(power)[:-1], 0)

@@ -22,6 +22,18 @@ def frames_for_time_constant(tau_s: float, hop_s: float) -> float:
 
     A new frame arrives every ``hop_s`` seconds; the smoothing factor per frame is
     α = 1 − exp(−hop_s/tau_s) and the equivalent frame count is 1/α.
+
+    Parameters
+    ----------
+    tau_s : float
+        Time constant of the average, s (> 0).
+    hop_s : float
+        Time between frames, s (> 0).
+
+    Returns
+    -------
+    float
+        Equivalent number of frames (≥ 1, fractional), for ``Averager(averages=...)``.
     """
     if not (tau_s > 0 and hop_s > 0):
         raise ValueError(f"tau_s={tau_s!r} and hop_s={hop_s!r} must both be positive seconds")
@@ -45,6 +57,22 @@ class Averager:
     is a convex combination or a maximum and so loses nothing to float32 rounding;
     :attr:`count` is the number of frames in the current average (for exponential: frames
     since reset, capped at ``averages``).
+
+    Parameters
+    ----------
+    mode : {'exponential', 'linear', 'peak-hold'}, optional
+        Kind of average (default exponential).
+    averages : float, optional
+        Linear: frames per average (a whole number); exponential: equivalent number of
+        frames, ≥ 1 (default 8). Unused for peak hold.
+    linear_end : {'restart', 'hold'}, optional
+        What a complete linear average does with the next frame (default restart).
+
+    Raises
+    ------
+    ValueError
+        For an unknown mode or ``linear_end``, ``averages`` < 1, or a fractional
+        ``averages`` with ``mode='linear'``.
     """
 
     def __init__(

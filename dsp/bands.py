@@ -61,6 +61,17 @@ class Band:
 
     ``lo`` and ``hi`` are stored as floats; 0 <= lo < hi, both finite.
 
+    Parameters
+    ----------
+    name : str
+        Band name (non-empty).
+    lo, hi : float
+        Lower and upper edge, Hz or orders (0 ≤ lo < hi, finite).
+    basis : {'hz', 'order'}, optional
+        Unit of the edges (default hz).
+
+    Examples
+    --------
     >>> Band("1X", 0.8, 1.2, "order").edges_hz(25.0)   # 1500 r/min
     (20.0, 30.0)
     """
@@ -106,7 +117,20 @@ class Band:
 
 def band_edges(bands: Sequence[Band], speed_hz: float | None = None) -> np.ndarray:
     """Edges of ``bands`` in Hz as a float64 array ``(B, 2)`` of ``[lo_hz, hi_hz]`` rows,
-    ready for :func:`band_weights`. ``speed_hz`` as in :meth:`Band.edges_hz`."""
+    ready for :func:`band_weights`. ``speed_hz`` as in :meth:`Band.edges_hz`.
+
+    Parameters
+    ----------
+    bands : sequence of Band
+        The bands.
+    speed_hz : float, optional
+        Running speed, Hz (r/min ÷ 60); needed by order bands.
+
+    Returns
+    -------
+    ndarray
+        float64 of shape (B, 2): [lo_hz, hi_hz] per band, Hz.
+    """
     out = np.empty((len(bands), 2), dtype=np.float64)
     for i, b in enumerate(bands):
         out[i] = b.edges_hz(speed_hz)
@@ -129,7 +153,21 @@ _EDGE_RTOL = 1e-9  # so an edge passed in as a computed float still includes its
 class OctaveBand:
     """One IEC 61260-1 band: index ``x``, exact mid-band ``center_hz``, exact edges
     ``lo_hz``/``hi_hz`` (Hz), the nominal mid-band ``nominal_hz`` used to label it, and
-    ``label`` such as ``"31.5 Hz"`` or ``"12.5 kHz"``."""
+    ``label`` such as ``"31.5 Hz"`` or ``"12.5 kHz"``.
+
+    Attributes
+    ----------
+    x : int
+        Band index (x = 0 is centred on, or for even b starts at, 1 kHz).
+    center_hz : float
+        Exact mid-band frequency, Hz.
+    lo_hz, hi_hz : float
+        Exact edges, Hz.
+    nominal_hz : float
+        Nominal mid-band frequency used for the label, Hz.
+    label : str
+        E.g. ``"31.5 Hz"`` or ``"12.5 kHz"``.
+    """
 
     x: int
     center_hz: float
@@ -183,6 +221,20 @@ def octave_bands(fraction: int, lo_hz: float, hi_hz: float) -> list[OctaveBand]:
     mid-band rounded to 3 significant figures — our own choice: the standard's annex lists
     nominal values for octave and third-octave bands only (from memory; docs/references.md).
 
+    Parameters
+    ----------
+    fraction : {1, 3, 6, 12, 24}
+        b of 1/b-octave.
+    lo_hz, hi_hz : float
+        Range the bands' edges must lie in, Hz (0 < lo_hz < hi_hz).
+
+    Returns
+    -------
+    list of OctaveBand
+        In increasing x; empty when no whole band fits.
+
+    Examples
+    --------
     >>> [b.label for b in octave_bands(1, 20, 20000)][:3]
     ['31.5 Hz', '63 Hz', '125 Hz']
     >>> b = octave_bands(3, 800, 1300)[0]; round(b.lo_hz, 4), round(b.hi_hz, 4)
@@ -230,6 +282,24 @@ def band_weights(edges_hz: ArrayLike, f0_hz: float, df_hz: float, q_bins: int) -
     reaching fs/2 takes half of it, which for white noise reads the band power low by half
     a line's share (1/(2·lines) of the whole range).
 
+    Parameters
+    ----------
+    edges_hz : array_like
+        (B, 2) rows of [lo_hz, hi_hz], Hz (lo < hi, finite).
+    f0_hz : float
+        Frequency of line 0, Hz (≥ 0).
+    df_hz : float
+        Line spacing, Hz (> 0).
+    q_bins : int
+        Number of lines Q (≥ 1).
+
+    Returns
+    -------
+    ndarray
+        float64 of shape (B, Q), dimensionless, in [0, 1].
+
+    Examples
+    --------
     >>> band_weights([[2.0, 4.0]], 0.0, 1.0, 6)
     array([[0. , 0. , 0.5, 1. , 0.5, 0. ]])
     """
@@ -264,6 +334,22 @@ def band_rms(power: ArrayLike, weights: ArrayLike, enbw_bins: float) -> np.ndarr
     ``weights`` is ``(B, Q)`` from :func:`band_weights`; ``enbw_bins`` is the window's
     ENBW in bins, N·S2/S1². NaN in a band's lines gives NaN for that band.
 
+    Parameters
+    ----------
+    power : array_like
+        One-sided power spectrum (..., Q), unit² RMS per line.
+    weights : array_like
+        (B, Q) from :func:`band_weights`.
+    enbw_bins : float
+        The window's ENBW in lines, N·S2/S1² (> 0).
+
+    Returns
+    -------
+    ndarray
+        float64 (..., B): band RMS in the spectrum's unit (√unit²).
+
+    Examples
+    --------
     A sine of peak 2 (RMS √2 ≈ 1.4142) at 50.3 Hz, Hann window, N = 1024, fs = 1024 Hz:
 
     >>> from dsp.windows import get_window, window_info
@@ -303,7 +389,26 @@ def overall_rms(
 ) -> np.ndarray:
     """RMS ``(...)`` float64 over [lo_hz, hi_hz] of a power spectrum ``(..., Q)`` on the
     grid f[q] = f0_hz + q·df_hz (e.g. velocity 10–1000 Hz). Same scaling and rules as
-    :func:`band_weights` and :func:`band_rms`."""
+    :func:`band_weights` and :func:`band_rms`.
+
+    Parameters
+    ----------
+    power : array_like
+        One-sided power spectrum (..., Q), unit² RMS per line.
+    f0_hz : float
+        Frequency of line 0, Hz.
+    df_hz : float
+        Line spacing, Hz.
+    lo_hz, hi_hz : float
+        The range, Hz.
+    enbw_bins : float
+        The window's ENBW in lines.
+
+    Returns
+    -------
+    ndarray
+        float64 (...): the RMS in the spectrum's unit.
+    """
     p = np.asarray(power)
     if p.ndim < 1:
         raise ValueError("power must have at least one axis (lines)")
@@ -339,6 +444,20 @@ def severity_zone(v_rms_mm_s: float | ArrayLike, preset: str) -> str | np.ndarra
     must be finite and >= 0 (mask faulted channels first). Measure over
     :func:`severity_range_hz`.
 
+    Parameters
+    ----------
+    v_rms_mm_s : float or array_like
+        Broadband velocity RMS, mm/s (finite, ≥ 0).
+    preset : str
+        A key of :data:`SEVERITY_PRESETS`.
+
+    Returns
+    -------
+    str or ndarray
+        'A', 'B', 'C' or 'D' (an array of them for array input).
+
+    Examples
+    --------
     >>> severity_zone(4.5, "group1-rigid"), severity_zone(4.49, "group1-rigid")
     ('C', 'B')
     """
@@ -354,5 +473,16 @@ def severity_zone(v_rms_mm_s: float | ArrayLike, preset: str) -> str | np.ndarra
 def severity_range_hz(slow: bool) -> tuple[float, float]:
     """Frequency range in Hz for the severity velocity RMS: (2, 1000) for machines running
     120–600 r/min (``slow=True``), (10, 1000) above 600 r/min (ISO 20816-1:2016, from
-    memory)."""
+    memory).
+
+    Parameters
+    ----------
+    slow : bool
+        True for machines running 120–600 r/min.
+
+    Returns
+    -------
+    tuple of float
+        (lo_hz, hi_hz), Hz.
+    """
     return (2.0, 1000.0) if slow else (10.0, 1000.0)

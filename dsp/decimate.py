@@ -187,6 +187,24 @@ def design_stage(fs: float, pass_hz: float, stop_hz: float, *, ripple_db: float 
     [stop_hz, fs/2] — designed to half that ripple and 1 dB more rejection. Equiripple
     (``scipy.signal.remez``), shortest odd length found near the estimate; a Kaiser-window
     ``firwin`` design if remez does not converge. Results are cached (read-only array).
+
+    Parameters
+    ----------
+    fs : float
+        Input sample rate, Hz.
+    pass_hz : float
+        Passband edge, Hz.
+    stop_hz : float
+        Stopband edge, Hz (pass_hz < stop_hz ≤ fs/2).
+    ripple_db : float, optional
+        Passband ripple allowed, max − min, dB (default 0.1).
+    atten_db : float, optional
+        Stopband rejection required, dB (default 80).
+
+    Returns
+    -------
+    ndarray
+        The taps (float64 holding float32 values), dimensionless, read-only.
     """
     fs = _check_rate("fs", fs)
     _check_spec(ripple_db, atten_db)
@@ -207,6 +225,19 @@ class StagePlan:
 
     Passes [0, ``pass_hz``] with at most ``ripple_db`` (max − min) and stops
     [``stop_hz``, fs/2] by at least ``atten_db`` (see :func:`design_stage`).
+
+    Parameters
+    ----------
+    factor : int
+        Decimation factor of the stage, 2…10.
+    fs : float
+        Input sample rate, Hz.
+    pass_hz, stop_hz : float
+        Passband and stopband edges, Hz.
+    ripple_db : float, optional
+        Passband ripple allowed, max − min, dB (default 0.1).
+    atten_db : float, optional
+        Stopband rejection required, dB (default 80).
     """
 
     factor: int
@@ -237,6 +268,25 @@ class ChainPlan:
     ``fmax_hz`` = fs_out/2.56 ≥ ``fmax_asked_hz``; ``note`` says why they differ ("" when the
     asked Fmax is met exactly). ``stages`` is empty when no decimation is needed. The whole
     chain meets ``ripple_db`` on [0, fmax_hz] and ``atten_db`` on [fs_out − fmax_hz, fs_in/2].
+
+    Parameters
+    ----------
+    fs_in, fs_out : float
+        Input and output sample rates, Hz.
+    factor : int
+        Total decimation factor R.
+    fmax_hz : float
+        Usable Fmax, Hz.
+    fmax_asked_hz : float
+        Fmax asked for, Hz.
+    stages : tuple of StagePlan
+        The stages in order (empty: no decimation).
+    note : str, optional
+        Why ``fmax_hz`` differs from the asked one ("" when it does not).
+    ripple_db : float, optional
+        Passband ripple allowed, max − min, dB (default 0.1).
+    atten_db : float, optional
+        Stopband rejection required, dB (default 80).
     """
 
     fs_in: float
@@ -379,6 +429,24 @@ def plan_chain(fs_in: float, fmax_hz: float, *, ripple_db: float = RIPPLE_DB,
     multiply-adds per input sample. The whole chain meets ``ripple_db`` (max − min, dB) on
     [0, Fmax] and ``atten_db`` of rejection on [fs_out − Fmax, fs_in/2].
 
+    Parameters
+    ----------
+    fs_in : float
+        Input sample rate, Hz.
+    fmax_hz : float
+        Highest frequency to analyse, Hz.
+    ripple_db : float, optional
+        Passband ripple allowed, max − min, dB (default 0.1).
+    atten_db : float, optional
+        Stopband rejection required, dB (default 80).
+
+    Returns
+    -------
+    ChainPlan
+        Factors, ``fs_out`` and the usable ``fmax_hz`` (Hz), stages and note.
+
+    Examples
+    --------
     >>> p = plan_chain(51200.0, 500.0)
     >>> p.factors, p.fs_out, p.fmax_hz, p.note
     ((10, 4), 1280.0, 500.0, '')
@@ -441,7 +509,24 @@ class Decimator:
     per sample, spread over the band (about −150 dB re full scale per line at 0.3 Hz lines),
     far below the 80 dB spec and no worse than the float32 samples themselves.
 
-    Example: 1 s of a 1 V-peak 100 Hz sine at 10 240 Hz, decimated by 4 to 2560 Hz; once
+    Parameters
+    ----------
+    channels : int
+        Number of channels C.
+    factor : int
+        Decimation factor, 2…10.
+    fs : float
+        Input sample rate, Hz.
+    pass_hz, stop_hz : float, optional
+        Passband and stopband edges, Hz (default: designed for its own output, as above).
+    ripple_db : float, optional
+        Passband ripple allowed, max − min, dB (default 0.1).
+    atten_db : float, optional
+        Stopband rejection required, dB (default 80).
+
+    Examples
+    --------
+    1 s of a 1 V-peak 100 Hz sine at 10 240 Hz, decimated by 4 to 2560 Hz; once
     settled the output is the same sine, delayed by ``delay_in`` input samples, within the
     passband ripple (±0.05 dB, i.e. ±0.6 %).
 
@@ -588,6 +673,19 @@ class Decimator:
         The outputs carry indices ``next_index`` (read before the push) onwards.
         ``first_index`` (optional) is the input index of ``block[:, 0]``; another value than
         :attr:`next_input_index` is a gap and calls :meth:`reset` there first.
+
+        Parameters
+        ----------
+        block : ndarray
+            [C, n] samples at ``fs`` Hz, any unit, any n ≥ 0.
+        first_index : int, optional
+            Stream index of the block's first input sample; another than the next expected
+            one is a gap (:meth:`reset`).
+
+        Returns
+        -------
+        ndarray
+            float32 [C, m] at ``fs_out`` Hz, the block's unit (m may be 0).
         """
         x = _as_block(block, self.channels)
         first_index = _span(x, first_index, self._next_in)
@@ -635,6 +733,13 @@ class DecimationChain:
     ``delay_in`` are the chain's (module docstring); ``response(f_hz)`` is the product of
     the stage responses, each from ``scipy.signal.freqz`` at its own input rate. A plan
     with no stages passes blocks through (a float32 block is returned as is, not copied).
+
+    Parameters
+    ----------
+    channels : int
+        Number of channels C.
+    plan : ChainPlan
+        The stages, from :func:`plan_chain`.
     """
 
     def __init__(self, channels: int, plan: ChainPlan) -> None:
@@ -724,6 +829,19 @@ class MultiRate:
 
     ``push(block)`` returns ``{name: float32 [C, m]}`` at each name's ``fs_out``, in the
     block's unit (DC gain 1); a name with R = 1 gets the block itself (as float32).
+
+    Parameters
+    ----------
+    channels : int
+        Number of channels C.
+    fs_in : float
+        Input sample rate, Hz.
+    fmax_hz : mapping of str to float
+        Name → Fmax it needs, Hz.
+    ripple_db : float, optional
+        Passband ripple allowed, max − min, dB (default 0.1).
+    atten_db : float, optional
+        Stopband rejection required, dB (default 80).
     """
 
     def __init__(self, channels: int, fs_in: float, fmax_hz: Mapping[str, float], *,
@@ -842,6 +960,18 @@ class MultiRate:
         """Feed ``[C, n]`` at ``fs_in``; return ``{name: float32 [C, m]}`` (``m`` may be 0).
 
         A ``first_index`` other than :attr:`next_input_index` is a gap: see :meth:`reset`.
+
+        Parameters
+        ----------
+        block : ndarray
+            [C, n] samples at ``fs_in`` Hz, any unit, any n ≥ 0.
+        first_index : int, optional
+            Stream index of the block's first input sample (a gap if not the next expected).
+
+        Returns
+        -------
+        dict of str to ndarray
+            Name → float32 [C, m] at that name's ``fs_out`` (m may be 0).
         """
         x = _as_block(block, self.channels)
         first_index = _span(x, first_index, self._next_in)

@@ -48,6 +48,28 @@ def envelope_spectrum(
     shape (C, n//2+1) or (n//2+1,) in the unit of x. An amplitude-modulated carrier
     a·(1 + m·cos 2πf_m t)·cos 2πf_c t with f_c ± f_m inside the band gives an envelope line
     of a·m/√2 RMS at f_m.
+
+    Parameters
+    ----------
+    x : ndarray
+        Samples, (C, n) or (n,), in any unit (e.g. m/s²).
+    fs : float
+        Sample rate, Hz.
+    lo_hz, hi_hz : float
+        Band-pass edges, Hz (0 < lo_hz < hi_hz < fs/2).
+    window : {'rectangular', 'hann', 'hamming', 'blackman-harris', 'flattop', 'kaiser'}, optional
+        Window for the envelope's transform (default hann).
+    order : int, optional
+        Butterworth order per edge (default 4).
+    beta : float, optional
+        Kaiser β (default 8.6).
+
+    Returns
+    -------
+    f_hz : ndarray
+        Line frequencies q·fs/n, Hz, q = 0…n//2.
+    amplitude_rms : ndarray
+        Envelope RMS amplitude per line, (C, n//2+1) or (n//2+1,), in the unit of x.
     """
     data = np.asarray(x, dtype=np.float64)
     if data.ndim not in (1, 2):

@@ -89,7 +89,19 @@ def _rfft_into(x: np.ndarray, out: np.ndarray) -> np.ndarray:
 
 @dataclass(frozen=True)
 class FrameGrid:
-    """Frame length ``n`` (samples), hop ``hop`` (samples) and sample rate ``fs`` (Hz)."""
+    """Frame length ``n`` (samples), hop ``hop`` (samples) and sample rate ``fs`` (Hz).
+
+    Parameters
+    ----------
+    fs : float
+        Sample rate, Hz (> 0).
+    n : int
+        Frame length N, samples (≥ 8).
+    hop : int
+        Samples between frame starts, 1…N.
+    keep : int, optional
+        Lines analysed, 0…keep−1 (1…N/2+1; default all N/2+1). ``from_fmax`` keeps lines+1.
+    """
 
     fs: float
     n: int
@@ -189,6 +201,15 @@ class FrameBatch:
     ``spectra``: complex64[C, P, Q], X[c, p, q] as in the module docstring (unscaled: divide
     by S1 for amplitude — see ``dsp.scaling``).
     ``tones``: complex64[C, P, T], X(f) at each tracked tone's frequency (T may be 0).
+
+    Attributes
+    ----------
+    start : ndarray
+        int64[P], each frame's first sample's stream index.
+    spectra : ndarray
+        complex64[C, P, Q], unscaled X (divide by S1 for amplitude).
+    tones : ndarray
+        complex64[C, P, T], X(f) at each tracked tone.
     """
 
     start: np.ndarray
@@ -209,6 +230,15 @@ class PowerBatch:
     ``power``: float32[C, L], Σ_p a_p·|X[c, p, q]|² for the lines q < L, with X as in
     :class:`FrameBatch` (unscaled) and a_p the frame weights passed in; a new array.
     ``tones``: complex64[C, P, T], as in :class:`FrameBatch` (not weighted).
+
+    Attributes
+    ----------
+    start : ndarray
+        int64[P], each frame's first sample's stream index.
+    power : ndarray
+        float32[C, L], Σ_p a_p·|X[c, p, q]|² (unscaled), squared input unit.
+    tones : ndarray
+        complex64[C, P, T], X(f) at each tracked tone (not weighted).
     """
 
     start: np.ndarray
@@ -232,7 +262,22 @@ class FilterBank:
     sample; if it is not the next expected index, the partial frame is discarded and
     assembly restarts at ``k`` — frames never straddle a gap. ``reset()`` does the same.
 
-    Example: a 1 V-peak sine on a line centre gives 2|X|/S1 = 1 on that line.
+    Parameters
+    ----------
+    grid : FrameGrid
+        Sample rate (Hz), frame length and hop (samples), lines kept.
+    channels : int
+        Number of channels C.
+    window : {'rectangular', 'hann', 'hamming', 'blackman-harris', 'flattop', 'kaiser'}, optional
+        DFT window (default hann).
+    beta : float, optional
+        Kaiser β (default 8.6).
+    tone_hz : ndarray, optional
+        Tracked tone frequencies, Hz, (C, T) or (T,); see :meth:`set_tones`.
+
+    Examples
+    --------
+    A 1 V-peak sine on a line centre gives 2|X|/S1 = 1 on that line.
 
     >>> import numpy as np
     >>> g = FrameGrid.from_n(1024, fs=1024.0, overlap=0.5)
@@ -498,6 +543,18 @@ class FilterBank:
 
         ``first_index`` (optional) is the stream index of ``block[:, 0]``; a value other
         than :attr:`next_index` is a gap and restarts frame assembly there.
+
+        Parameters
+        ----------
+        block : ndarray
+            float32 [C, n] samples, any unit, any n ≥ 0.
+        first_index : int, optional
+            Stream index of the block's first sample; another than the next expected one is a gap.
+
+        Returns
+        -------
+        FrameBatch
+            The frames this block completed (P may be 0).
         """
         p_count = self._accept(self._as_block(block), first_index)
         if not p_count:
@@ -548,6 +605,22 @@ class FilterBank:
         first ``lines`` lines (default: ``grid.analysis_bins``). Equal to squaring
         ``push(block).spectra`` and summing with those weights, to float32 rounding; the
         spectra of all channels are never held at once.
+
+        Parameters
+        ----------
+        block : ndarray
+            float32 [C, n] samples, any unit.
+        weights : ndarray
+            Weight a_p of each completed frame (P of them: :meth:`frames_ready`).
+        lines : int, optional
+            Lines L kept (default the grid's).
+        first_index : int, optional
+            Stream index of the block's first sample, as in :meth:`push`.
+
+        Returns
+        -------
+        PowerBatch
+            The completed frames folded over frames.
         """
         q = self.grid.analysis_bins if lines is None else int(lines)
         if not (1 <= q <= self.grid.bins):

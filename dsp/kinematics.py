@@ -34,7 +34,17 @@ __all__ = [
 
 @dataclass(frozen=True)
 class BearingOrders:
-    """Bearing defect frequencies as orders: multiples of the shaft rate (dimensionless)."""
+    """Bearing defect frequencies as orders: multiples of the shaft rate (dimensionless).
+
+    Attributes
+    ----------
+    bpfo, bpfi : float
+        Ball pass frequency of the outer and of the inner race, orders.
+    ftf : float
+        Fundamental train (cage) frequency, orders.
+    bsf : float
+        Ball (rolling element) spin frequency, orders.
+    """
 
     bpfo: float
     bpfi: float
@@ -44,7 +54,19 @@ class BearingOrders:
 
 @dataclass(frozen=True)
 class BearingFrequencies:
-    """Bearing defect frequencies in Hz at shaft rate ``shaft_hz`` (see module docstring)."""
+    """Bearing defect frequencies in Hz at shaft rate ``shaft_hz`` (see module docstring).
+
+    Attributes
+    ----------
+    bpfo_hz, bpfi_hz : float
+        Ball pass frequency of the outer and of the inner race, Hz.
+    ftf_hz : float
+        Fundamental train (cage) frequency, Hz.
+    bsf_hz : float
+        Ball (rolling element) spin frequency, Hz.
+    shaft_hz : float
+        The shaft rate they were computed for, Hz.
+    """
 
     bpfo_hz: float
     bpfi_hz: float
@@ -88,11 +110,34 @@ def bearing_frequencies(
 ) -> BearingFrequencies:
     """Defect frequencies in Hz of a rolling-element bearing (Randall & Antoni 2011).
 
-    ``n_elements`` balls or rollers of ``element_diameter`` d on ``pitch_diameter`` D (same
-    length unit, any; d < D), contact angle ``contact_angle_deg`` φ in degrees (0 ≤ φ < 90),
-    inner race turning at ``shaft_hz`` (Hz; r/min ÷ 60) against a fixed outer race.
-    Formulas in the module docstring.
+    The inner race turns at ``shaft_hz`` against a fixed outer race. Formulas in the module
+    docstring.
 
+    Parameters
+    ----------
+    n_elements : int
+        Number of balls or rollers (≥ 1).
+    element_diameter : float
+        Ball or roller diameter d, any length unit (d < D).
+    pitch_diameter : float
+        Pitch diameter D, the same length unit.
+    contact_angle_deg : float
+        Contact angle φ, degrees (0 ≤ φ < 90).
+    shaft_hz : float
+        Shaft rate, Hz (r/min ÷ 60).
+
+    Returns
+    -------
+    BearingFrequencies
+        BPFO, BPFI, FTF and BSF in Hz (``.as_orders()`` for orders).
+
+    Raises
+    ------
+    ValueError
+        For a count below 1, a non-positive size or rate, d ≥ D, or φ outside [0, 90).
+
+    Examples
+    --------
     >>> b = bearing_frequencies(8, 10.0, 50.0, 0.0, 50.0)   # 3000 r/min
     >>> round(b.bpfo_hz, 9), round(b.bpfi_hz, 9), round(b.ftf_hz, 9), round(b.bsf_hz, 9)
     (160.0, 240.0, 20.0, 120.0)
@@ -120,20 +165,50 @@ def bearing_frequencies(
 
 
 def gear_mesh_hz(teeth: int, shaft_hz: float) -> float:
-    """Gear mesh frequency in Hz: teeth × the rate (Hz) of the shaft carrying that gear.
+    """Gear mesh frequency: teeth × the rate of the shaft carrying that gear.
 
     Either gear of a pair gives the same value (z1·f1 = z2·f2). Common practice.
+
+    Parameters
+    ----------
+    teeth : int
+        Number of teeth of the gear (≥ 1).
+    shaft_hz : float
+        Rate of the shaft carrying it, Hz (> 0).
+
+    Returns
+    -------
+    float
+        Mesh frequency, Hz.
     """
     return _count("teeth", teeth) * _positive("shaft_hz", shaft_hz)
 
 
 def sidebands(center_hz: float, spacing_hz: float, count: int) -> np.ndarray:
-    """Frequencies in Hz of ``count`` sidebands each side of ``center_hz``, ``spacing_hz`` apart.
+    """Frequencies of ``count`` sidebands each side of ``center_hz``, ``spacing_hz`` apart.
 
-    Returns float64 of shape (2·count,), ascending, without the centre:
-    [c − count·s, …, c − s, c + s, …, c + count·s]. Modulation at rate s (e.g. a gear
-    shaft's 1X around its mesh frequency, or 1X around BPFI) puts lines there. Raises
-    ValueError if the lowest sideband would fall at or below 0 Hz.
+    Modulation at rate s (e.g. a gear shaft's 1X around its mesh frequency, or 1X around
+    BPFI) puts lines there.
+
+    Parameters
+    ----------
+    center_hz : float
+        Centre (carrier) frequency, Hz (> 0).
+    spacing_hz : float
+        Sideband spacing, the modulation rate, Hz (> 0).
+    count : int
+        Sidebands on each side (≥ 1).
+
+    Returns
+    -------
+    ndarray
+        float64 of shape (2·count,), Hz, ascending, without the centre:
+        [c − count·s, …, c − s, c + s, …, c + count·s].
+
+    Raises
+    ------
+    ValueError
+        If the lowest sideband would fall at or below 0 Hz.
     """
     c = _positive("center_hz", center_hz)
     s = _positive("spacing_hz", spacing_hz)

@@ -61,10 +61,24 @@ _INPUT_TO_SI = {"g": G_N, "m/s2": 1.0}
 
 
 def power_spectrum(x_q: np.ndarray, s1: float, n: int) -> np.ndarray:
-    """One-sided power spectrum 2·|X|²/S1² (RMS² in the input's unit², float32) of rfft output.
+    """One-sided power spectrum 2·|X|²/S1² of rfft output (Heinzel 2002 §9).
 
-    ``x_q`` is ``rfft(w·x)`` along its last axis for an ``n``-point frame; line 0 and
-    (for even n) the Nyquist line are not doubled.
+    Line 0 and, for even ``n``, the Nyquist line are not doubled.
+
+    Parameters
+    ----------
+    x_q : ndarray of complex
+        ``rfft(w·x)`` along the last axis of an ``n``-point frame, in the input's unit.
+    s1 : float
+        Σw, the window's sum (dimensionless).
+    n : int
+        Frame length, samples.
+
+    Returns
+    -------
+    ndarray
+        Power spectrum, RMS² per line in the input's unit², the shape and precision of
+        ``x_q``'s real part (float32 for complex64 input).
     """
     ps = np.square(x_q.real)  # |X|² without complex temporaries (einsum is ~8× slower here)
     ps += np.square(x_q.imag)
@@ -77,14 +91,45 @@ def power_spectrum(x_q: np.ndarray, s1: float, n: int) -> np.ndarray:
 
 
 def psd_from_power(power: np.ndarray, enbw_hz: float) -> np.ndarray:
-    """PSD (unit²/Hz) from a power spectrum (unit²): PS/ENBW_Hz (Heinzel 2002 eq. 23)."""
+    """Power spectral density from a power spectrum: PS/ENBW_Hz (Heinzel 2002 eq. 23).
+
+    Parameters
+    ----------
+    power : ndarray
+        Power spectrum, unit² (RMS² per line).
+    enbw_hz : float
+        Equivalent noise bandwidth of one line, Hz (fs·S2/S1²).
+
+    Returns
+    -------
+    ndarray
+        PSD, unit²/Hz, the shape of ``power``.
+    """
     return power / enbw_hz
 
 
 def amplitude_from_power(power: np.ndarray, amplitude: Amplitude) -> np.ndarray:
-    """Amplitude spectrum from power (RMS²): ``rms`` √PS, ``peak`` √(2PS), ``peak-to-peak`` 2√(2PS).
+    """Amplitude spectrum from a power spectrum (RMS²).
 
-    The peak forms are exact for a sine; for noise they are RMS × √2 (× 2) by convention.
+    ``rms`` gives √PS, ``peak`` √(2·PS), ``peak-to-peak`` 2·√(2·PS). The peak forms are exact
+    for a sine; for noise they are RMS × √2 (× 2) by convention.
+
+    Parameters
+    ----------
+    power : ndarray
+        Power spectrum, unit² (RMS² per line).
+    amplitude : {'rms', 'peak', 'peak-to-peak'}
+        Amplitude type wanted.
+
+    Returns
+    -------
+    ndarray
+        Amplitudes in the unit of √``power``, the shape and dtype of ``power``.
+
+    Raises
+    ------
+    ValueError
+        If ``amplitude`` is not one of the three.
     """
     check_choice("amplitude", amplitude, AMPLITUDES)
     a = np.sqrt(power)
@@ -97,7 +142,20 @@ def amplitude_from_power(power: np.ndarray, amplitude: Amplitude) -> np.ndarray:
 
 
 def power_from_amplitude(value: np.ndarray | float, amplitude: Amplitude) -> np.ndarray:
-    """Inverse of :func:`amplitude_from_power`: RMS² from an amplitude of the given type."""
+    """Inverse of :func:`amplitude_from_power`: RMS² from an amplitude of the given type.
+
+    Parameters
+    ----------
+    value : float or ndarray
+        Amplitude(s) in some unit.
+    amplitude : {'rms', 'peak', 'peak-to-peak'}
+        Amplitude type of ``value``.
+
+    Returns
+    -------
+    ndarray
+        Power, RMS² in that unit², float64.
+    """
     check_choice("amplitude", amplitude, AMPLITUDES)
     v = np.asarray(value, dtype=np.float64)
     if amplitude == "peak":
@@ -108,7 +166,18 @@ def power_from_amplitude(value: np.ndarray | float, amplitude: Amplitude) -> np.
 
 
 def quantity_of(unit: OutputUnit) -> Quantity:
-    """The quantity (acceleration, velocity or displacement) an output unit measures."""
+    """The quantity an output unit measures.
+
+    Parameters
+    ----------
+    unit : {'g', 'm/s2', 'mm/s', 'in/s', 'um', 'mil'}
+        Output unit.
+
+    Returns
+    -------
+    {'acceleration', 'velocity', 'displacement'}
+        Its quantity.
+    """
     check_choice("unit", unit, OUTPUT_UNITS)
     return _UNITS[unit][0]  # type: ignore[return-value]
 
@@ -120,16 +189,31 @@ def unit_power_weights(
     *,
     lowcut_hz: float = 2.0,
 ) -> np.ndarray:
-    """Per-line factor (float64) turning an acceleration power spectrum into ``unit``².
+    """Per-line factor turning an acceleration power spectrum into ``unit``².
 
-    ``input_unit`` is the acceleration unit of the samples (``g`` or ``m/s2``); ``unit``
-    is an output unit (``g``, ``m/s2``, ``mm/s``, ``in/s``, ``um``, ``mil``) or a
-    quantity (then the default unit: g, mm/s, µm). For velocity the factor is
-    (c/(2πf))², for displacement (c/(2πf)²)², c converting to SI then to the unit. Lines
-    with f < ``lowcut_hz`` get 0 for velocity and displacement (and for acceleration only
-    when ``lowcut_hz`` > 0 is asked explicitly through a quantity other than acceleration).
+    For velocity the factor is (c/(2πf))², for displacement (c/(2πf)²)², c converting the
+    input unit to SI and SI to ``unit``; for acceleration it is c². Lines with f <
+    ``lowcut_hz`` (and the DC line) get 0 for velocity and displacement.
 
     Example: 1 g RMS at 100 Hz → 9.80665/(2π·100) m/s = 15.608 mm/s RMS.
+
+    Parameters
+    ----------
+    f_hz : ndarray
+        Line frequencies, Hz.
+    input_unit : {'g', 'm/s2'}
+        Acceleration unit of the samples (and so of the power spectrum, unit²).
+    unit : str
+        Output unit (``g``, ``m/s2``, ``mm/s``, ``in/s``, ``um``, ``mil``) or a quantity
+        (``acceleration``, ``velocity``, ``displacement``: then g, mm/s or µm).
+    lowcut_hz : float, optional
+        Integration cut, Hz (≥ 0; default 2).
+
+    Returns
+    -------
+    ndarray
+        float64 factors, the shape of ``f_hz``: multiply a power spectrum in
+        ``input_unit``² by them to get ``unit``².
     """
     check_choice("input_unit", input_unit, INPUT_UNITS)
     if unit in QUANTITIES:

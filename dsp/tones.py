@@ -47,6 +47,15 @@ class Peaks:
     window's scalloping loss undone; ``line`` — index q of the spectrum line holding the peak.
     Shapes are (C, K) for a (C, Q) spectrum and (K,) for a (Q,) one, K = ``count``. Where a
     channel has fewer than K peaks, the missing entries are NaN (``line`` −1).
+
+    Attributes
+    ----------
+    frequency_hz : ndarray
+        Interpolated frequencies, Hz; NaN where missing.
+    amplitude_rms : ndarray
+        RMS amplitudes of the sines, in the spectrum's unit; NaN where missing.
+    line : ndarray
+        Index q of the line holding each peak; −1 where missing.
     """
 
     frequency_hz: np.ndarray
@@ -118,6 +127,30 @@ def find_peaks(
     Example: a 1 m/s² RMS sine at 1003.7 Hz, fs = 25 600 Hz, N = 4096 (df = 6.25 Hz), Hann:
     find_peaks(...) gives frequency_hz ≈ 1003.70 and amplitude_rms ≈ 1.000, where the highest
     line alone (q = 161, 1006.25 Hz) reads 0.897 m/s² RMS.
+
+    Parameters
+    ----------
+    power : ndarray
+        One-sided power spectrum, rms² per line in some unit², shape (C, Q) or (Q,).
+    df_hz : float
+        Line spacing, Hz (fs/n).
+    window : {'rectangular', 'hann', 'hamming', 'blackman-harris', 'flattop', 'kaiser'}
+        The window the frames were weighted by.
+    n : int
+        Frame length, samples.
+    count : int, optional
+        Peaks per channel, K (≥ 1; default 8).
+    min_hz, max_hz : float, optional
+        Frequency range a peak's line must lie in, Hz (default 0 … the last line).
+    beta : float, optional
+        Kaiser β (default 8.6).
+    weight : callable, optional
+        Frequencies (Hz) → power factor ≥ 0, applied before ranking (e.g. to velocity).
+
+    Returns
+    -------
+    Peaks
+        Shapes (C, K) or (K,), largest first.
     """
     p = np.asarray(power)
     if p.dtype not in (np.float32, np.float64):
@@ -283,6 +316,18 @@ def tone_power(x_tone: np.ndarray, s1: float) -> np.ndarray:
     times that of w) and ``s1`` = Σ w[k]. The same scaling as a spectrum line (Heinzel 2002
     §9), so a sine of peak A at exactly f gives A²/2 for every window, up to the leakage of
     its negative-frequency image.
+
+    Parameters
+    ----------
+    x_tone : ndarray of complex
+        X(f), any shape, in the unit of x.
+    s1 : float
+        Σw of the window (dimensionless).
+
+    Returns
+    -------
+    ndarray
+        float64 power, rms² in the unit of x squared, the shape of ``x_tone``.
     """
     if not (np.isfinite(s1) and s1 > 0):
         raise ValueError(f"s1={s1!r} must be a finite number > 0")
@@ -311,6 +356,24 @@ def tone_kernel(
     X(f) = Σ_k w[k]·x[k]·exp(−2πi·f·k/fs): the window is already in K, so do not apply it
     to the frames again. Feed ``y[..., :T] + 1j·y[..., T:]`` to :func:`tone_power` with
     S1 = Σ w[k]. At f = q·fs/n this equals ``rfft(w·x)[q]``.
+
+    Parameters
+    ----------
+    freqs_hz : ndarray
+        Tone frequencies, Hz (0 ≤ f ≤ fs/2), shape (C, T) or (T,).
+    n : int
+        Frame length, samples.
+    fs : float
+        Sample rate, Hz.
+    window : {'rectangular', 'hann', 'hamming', 'blackman-harris', 'flattop', 'kaiser'}
+        Window folded into the kernel.
+    beta : float, optional
+        Kaiser β (default 8.6).
+
+    Returns
+    -------
+    ndarray
+        float32 K of shape (C, n, 2T) or (n, 2T).
     """
     f = np.asarray(freqs_hz, dtype=np.float64)
     if f.ndim not in (1, 2) or f.shape[-1] == 0:
@@ -342,6 +405,24 @@ def goertzel(
 
     With ω = 2π·f/fs and v[k] = w[k]·x[k]: s[k] = v[k] + 2·cos ω·s[k−1] − s[k−2], and
     X(f) = exp(−iω(n−1))·(s[n−1] − exp(−iω)·s[n−2]).
+
+    Parameters
+    ----------
+    x : ndarray
+        Samples, (..., n), in any unit.
+    f_hz : float
+        Frequency evaluated, Hz (any real value, not only a line centre).
+    fs : float
+        Sample rate, Hz.
+    window : {'rectangular', 'hann', 'hamming', 'blackman-harris', 'flattop', 'kaiser'}
+        Window applied to the samples.
+    beta : float, optional
+        Kaiser β (default 8.6).
+
+    Returns
+    -------
+    ndarray
+        complex128 X(f), shape (...), in the unit of x (scale with :func:`tone_power`).
     """
     v = np.asarray(x, dtype=np.float64)
     n = v.shape[-1]
@@ -357,7 +438,20 @@ def goertzel(
 
 
 def harmonics(f1_hz: float, count: int) -> np.ndarray:
-    """Frequencies in Hz of the first ``count`` harmonics 1X…countX of ``f1_hz`` (float64)."""
+    """Frequencies in Hz of the first ``count`` harmonics 1X…countX of ``f1_hz`` (float64).
+
+    Parameters
+    ----------
+    f1_hz : float
+        Fundamental (1X), Hz.
+    count : int
+        Number of harmonics (≥ 1).
+
+    Returns
+    -------
+    ndarray
+        float64 (count,), Hz: f1, 2·f1, …, count·f1.
+    """
     if not (np.isfinite(f1_hz) and f1_hz > 0):
         raise ValueError(f"f1_hz={f1_hz!r} must be a finite number > 0")
     if int(count) != count or count < 1:
@@ -369,6 +463,18 @@ def orders_to_hz(orders: np.ndarray | float, shaft_hz: float) -> np.ndarray:
     """Frequencies in Hz of ``orders`` (multiples of running speed) at ``shaft_hz`` (Hz).
 
     Order 1 is 1X = shaft_hz; r/min = 60·shaft_hz. Returns float64 of the shape of ``orders``.
+
+    Parameters
+    ----------
+    orders : float or ndarray
+        Orders of running speed (1 = once per revolution).
+    shaft_hz : float
+        Running speed, Hz.
+
+    Returns
+    -------
+    ndarray
+        float64, Hz, the shape of ``orders``.
     """
     if not (np.isfinite(shaft_hz) and shaft_hz > 0):
         raise ValueError(f"shaft_hz={shaft_hz!r} must be a finite number > 0")

@@ -7,6 +7,27 @@ from __future__ import annotations
 
 from typing import Literal, TypeVar, get_args
 
+__all__ = [
+    "AMPLITUDES",
+    "AVERAGING_MODES",
+    "INDEX_MAX",
+    "INDEX_MIN",
+    "INPUT_UNITS",
+    "LINEAR_ENDS",
+    "OUTPUT_UNITS",
+    "QUANTITIES",
+    "WINDOW_NAMES",
+    "Amplitude",
+    "AveragingMode",
+    "InputUnit",
+    "LinearEnd",
+    "OutputUnit",
+    "Quantity",
+    "WindowName",
+    "check_choice",
+    "check_index_span",
+]
+
 WindowName = Literal["rectangular", "hann", "hamming", "blackman-harris", "flattop", "kaiser"]
 AveragingMode = Literal["linear", "exponential", "peak-hold"]
 LinearEnd = Literal["restart", "hold"]
@@ -31,9 +52,26 @@ INDEX_MAX = 2**63 - 1
 
 
 def check_choice(name: str, value: object, allowed: tuple[str, ...]) -> str:
-    """Return ``value`` if it is one of ``allowed``; else raise ValueError naming both.
+    """Check that ``value`` is one of ``allowed``.
 
-    The message reads ``window='hanning' is not one of 'rectangular', 'hann', ...``.
+    Parameters
+    ----------
+    name : str
+        The option's name, for the message.
+    value : object
+        The value given.
+    allowed : tuple of str
+        The accepted values.
+
+    Returns
+    -------
+    str
+        ``value`` itself.
+
+    Raises
+    ------
+    ValueError
+        Naming both, e.g. ``window='hanning' is not one of 'rectangular', 'hann', ...``.
     """
     if not isinstance(value, str) or value not in allowed:
         listed = ", ".join(repr(a) for a in allowed)
@@ -42,12 +80,29 @@ def check_choice(name: str, value: object, allowed: tuple[str, ...]) -> str:
 
 
 def check_index_span(first_index: int, n: int) -> int:
-    """Return ``first_index`` as an int if samples ``first_index … first_index + n − 1`` and
-    the index just after them all fit a signed 64-bit stream index, i.e.
-    INDEX_MIN ≤ first_index and first_index + n ≤ INDEX_MAX; else raise ValueError.
+    """Check that a block of samples keeps its stream indices within int64.
 
-    Streaming stages call it before they change any state, so a refused block leaves them
-    as they were (the samples already pushed keep their frames and averages).
+    Samples ``first_index … first_index + n − 1`` and the index just after them must fit a
+    signed 64-bit stream index: INDEX_MIN ≤ first_index and first_index + n ≤ INDEX_MAX.
+    Streaming stages call it before they change any state, so a refused block leaves them as
+    they were (the samples already pushed keep their frames and averages).
+
+    Parameters
+    ----------
+    first_index : int
+        Stream index of the block's first sample.
+    n : int
+        Samples in the block (per channel).
+
+    Returns
+    -------
+    int
+        ``first_index`` as a Python int.
+
+    Raises
+    ------
+    ValueError
+        If the span does not fit.
     """
     k = int(first_index)
     if k < INDEX_MIN or k + int(n) > INDEX_MAX:

@@ -49,7 +49,23 @@ _SCIPY_NAMES = {
 
 
 def check_window(window: object) -> WindowName:
-    """Return ``window`` if it names a window in the catalogue, else raise ValueError."""
+    """Check a window name against the catalogue.
+
+    Parameters
+    ----------
+    window : object
+        The name to check.
+
+    Returns
+    -------
+    str
+        ``window`` itself, if it names a window of the catalogue.
+
+    Raises
+    ------
+    ValueError
+        Otherwise, listing the names.
+    """
     return check_choice("window", window, WINDOW_NAMES)  # type: ignore[return-value]
 
 
@@ -65,10 +81,24 @@ def _window_cached(window: str, n: int, beta: float) -> np.ndarray:
 
 
 def get_window(window: WindowName, n: int, *, beta: float = DEFAULT_KAISER_BETA) -> np.ndarray:
-    """Periodic window of ``n`` samples as a read-only float64 array (dimensionless).
+    """Periodic (DFT-even) window of ``n`` samples, as ``scipy.signal.get_window`` makes it.
 
-    ``beta`` is the Kaiser shape parameter and is ignored by the other windows.
+    Parameters
+    ----------
+    window : {'rectangular', 'hann', 'hamming', 'blackman-harris', 'flattop', 'kaiser'}
+        Window name.
+    n : int
+        Length, samples (≥ 4).
+    beta : float, optional
+        Kaiser shape parameter β (≥ 0; default 8.6); ignored by the other windows.
 
+    Returns
+    -------
+    ndarray
+        Read-only float64 of shape (n,), dimensionless (cached: do not modify).
+
+    Examples
+    --------
     >>> float(get_window("hann", 8).sum())  # S1 = N/2 for Hann
     4.0
     """
@@ -81,10 +111,23 @@ def get_window(window: WindowName, n: int, *, beta: float = DEFAULT_KAISER_BETA)
 
 
 def transform_magnitude(w: np.ndarray, offsets_bins: np.ndarray) -> np.ndarray:
-    """|W(ν)|/|W(0)| at arbitrary offsets ν in bins (float64, dimensionless), evaluated exactly.
+    """|W(ν)|/|W(0)| at arbitrary offsets ν, evaluated exactly.
 
-    W(ν) = Σ w[k]·exp(−2πi·ν·k/N). Evaluated by direct summation in chunks, so any ν
-    (not only multiples of 1/oversampling) is exact to float64 rounding.
+    W(ν) = Σ w[k]·exp(−2πi·ν·k/N). Evaluated by direct summation in chunks, so any ν (not
+    only multiples of 1/oversampling) is exact to float64 rounding.
+
+    Parameters
+    ----------
+    w : ndarray
+        Window samples (N of them), dimensionless.
+    offsets_bins : ndarray
+        Offsets ν from the line centre, in lines (bins).
+
+    Returns
+    -------
+    ndarray
+        float64 magnitudes re |W(0)| (dimensionless), the shape of ``offsets_bins`` (at
+        least 1-d).
     """
     w = np.asarray(w, dtype=np.float64)
     nu = np.atleast_1d(np.asarray(offsets_bins, dtype=np.float64))
@@ -114,9 +157,26 @@ def _oversampled_response_db(w: np.ndarray, oversample: int) -> np.ndarray:
 class WindowInfo:
     """Figures of merit of one window, all computed from its samples.
 
-    ``coherent_gain`` = S1/N; ``enbw_bins`` = N·S2/S1²; ``scalloping_loss_db`` =
-    −20·lg|W(½)/W(0)|; ``highest_sidelobe_db`` is the largest |W| outside the main lobe,
-    in dB re |W(0)|; ``mainlobe_halfwidth_bins`` is the distance to the first null.
+    Attributes
+    ----------
+    window : str
+        Window name.
+    n : int
+        Length, samples.
+    beta : float
+        Kaiser β (0 for the other windows).
+    s1, s2 : float
+        Σw and Σw² (dimensionless).
+    coherent_gain : float
+        S1/N.
+    enbw_bins : float
+        Equivalent noise bandwidth N·S2/S1², lines (bins).
+    scalloping_loss_db : float
+        −20·lg|W(½)/W(0)|, dB.
+    highest_sidelobe_db : float
+        The largest |W| outside the main lobe, dB re |W(0)| (negative).
+    mainlobe_halfwidth_bins : float
+        Distance from the centre to the first null, lines.
     """
 
     window: str
@@ -178,8 +238,24 @@ def _info_cached(window: str, n: int, beta: float) -> WindowInfo:
 def window_info(
     window: WindowName, n: int = 4096, *, beta: float = DEFAULT_KAISER_BETA
 ) -> WindowInfo:
-    """Figures of merit of the ``n``-point periodic ``window`` (see :class:`WindowInfo`).
+    """Figures of merit of the ``n``-point periodic ``window``.
 
+    Parameters
+    ----------
+    window : {'rectangular', 'hann', 'hamming', 'blackman-harris', 'flattop', 'kaiser'}
+        Window name.
+    n : int, optional
+        Length, samples (default 4096).
+    beta : float, optional
+        Kaiser shape parameter β (default 8.6).
+
+    Returns
+    -------
+    WindowInfo
+        Coherent gain, ENBW, scalloping loss, highest sidelobe, main-lobe half-width.
+
+    Examples
+    --------
     >>> round(window_info("hann").enbw_bins, 6)   # Harris 1978, Table 1: 1.50 bins
     1.5
     """
@@ -197,9 +273,28 @@ def bin_response(
 ) -> tuple[np.ndarray, np.ndarray]:
     """The equivalent band-pass filter of one spectrum line, for plotting.
 
-    Returns ``(offset_bins, gain_db)``: offsets ν from the line's centre in lines
-    (−span_bins…+span_bins) and 20·lg|W(ν)/W(0)| in dB. Multiply the offsets by
-    Δf = fs/N to get Hz. A sine at ν lines from a line's centre reads ``gain_db`` on it.
+    A sine at ν lines from a line's centre reads ``gain_db`` on that line. Multiply the
+    offsets by Δf = fs/N to get Hz.
+
+    Parameters
+    ----------
+    window : {'rectangular', 'hann', 'hamming', 'blackman-harris', 'flattop', 'kaiser'}
+        Window name.
+    n : int
+        Frame length, samples.
+    span_bins : float, optional
+        Half-width of the plotted span, lines (0 < span ≤ n/2; default 8).
+    points_per_bin : int, optional
+        Points per line, 1…1024 (default 32).
+    beta : float, optional
+        Kaiser shape parameter β (default 8.6).
+
+    Returns
+    -------
+    offset_bins : ndarray
+        Offsets ν from the line's centre, lines, −span_bins…+span_bins (float64).
+    gain_db : ndarray
+        20·lg|W(ν)/W(0)|, dB (float64, same shape).
     """
     if not (0 < span_bins <= n / 2):
         raise ValueError(f"span_bins={span_bins!r} must be in (0, n/2]")

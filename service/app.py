@@ -477,7 +477,7 @@ async def serve(
         # float32 spectra barely compress, and deflating them for each client was the
         # stream's largest cost (quaver bench --service: ~820 vs ~420 messages/s)
         ws_per_message_deflate=False,
-        # The edge (README "HTTP edge"): h11 with a request-head time-out (uvicorn has none),
+        # The edge (docs/api.md "HTTP edge"): h11 with a request-head time-out (uvicorn has none),
         # at most max_connections at once (503 beyond), idle keep-alive closed, a request
         # head at most 16 KiB (h11_max_incomplete_event_size: uvicorn's default, stated),
         # WebSocket messages at most 64 KiB before the stream's own 4 KiB check.

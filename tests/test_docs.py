@@ -1,5 +1,9 @@
 """The docs cannot drift: every config key, CLI subcommand and option, and REST route of the
-package must appear in README.md or DEVELOPERS.md.
+package must appear in README.md, DEVELOPERS.md or a docs/ page the README links to.
+
+README.md is what a user reads first; the full reference tables (settings, routes, options)
+live in docs/ pages it links (``[…](docs/configuration.md)``). A page the README does not link
+counts for nothing here: a reader could not find it from the README.
 
 Knows the docs' Markdown conventions and the package's public config models, argument parser
 and HTTP app; nothing of the service's internals.
@@ -43,13 +47,31 @@ from service.config import Config, describe_settings
 from service.hub import Hub
 
 REPO = Path(__file__).resolve().parents[1]
-DOC_FILES = (REPO / "README.md", REPO / "DEVELOPERS.md")
+README = REPO / "README.md"
+CAUTION_FILES = (README, REPO / "DEVELOPERS.md")
 ROUTE_PREFIX = "/api/v1/"
 EXTRA_ROUTES = ("/metrics",)
 CAUTION = "not a machine-protection or safety system"
 
 
-def read_docs(files: Iterable[Path] = DOC_FILES) -> str:
+# a Markdown link to a page under docs/: [text](docs/x.md) or [text](docs/x.md#anchor)
+DOCS_LINK = re.compile(r"\]\((docs/[\w.-]+\.md)(?:#[\w.-]*)?\)")
+
+
+def linked_pages(text: str) -> list[str]:
+    """The docs/ pages ``text`` links to, in order of first mention, each once."""
+    return list(dict.fromkeys(DOCS_LINK.findall(text)))
+
+
+def doc_files(root: Path = REPO) -> list[Path]:
+    """README.md, DEVELOPERS.md and every docs/ page the README links to."""
+    readme = root / "README.md"
+    pages = linked_pages(readme.read_text(encoding="utf-8"))
+    return [readme, root / "DEVELOPERS.md", *(root / p for p in pages)]
+
+
+def read_docs(files: Iterable[Path] | None = None) -> str:
+    files = doc_files() if files is None else files
     return "\n\n".join(p.read_text(encoding="utf-8") for p in files if p.is_file())
 
 
@@ -221,26 +243,55 @@ def docs() -> str:
 
 
 def test_both_docs_exist_and_carry_the_caution():
-    for p in DOC_FILES:
+    for p in CAUTION_FILES:
         text = p.read_text(encoding="utf-8")
         assert CAUTION in " ".join(text.split()), f"{p.name} lacks the caution"
 
 
 def test_every_config_key_is_documented(docs):
     missing = missing_config_keys(docs)
-    assert not missing, "config keys missing from README.md/DEVELOPERS.md:\n  " + "\n  ".join(
-        missing
-    )
+    assert not missing, "config keys missing from the docs:\n  " + "\n  ".join(missing)
 
 
 def test_every_cli_option_is_documented(docs):
     missing = missing_cli(docs, build_parser())
-    assert not missing, "CLI items missing from README.md/DEVELOPERS.md:\n  " + "\n  ".join(missing)
+    assert not missing, "CLI items missing from the docs:\n  " + "\n  ".join(missing)
 
 
 def test_every_route_is_documented(docs):
     missing = missing_routes(docs, create_app(Hub()))
-    assert not missing, "routes missing from README.md/DEVELOPERS.md:\n  " + "\n  ".join(missing)
+    assert not missing, "routes missing from the docs:\n  " + "\n  ".join(missing)
+
+
+def test_every_docs_page_is_linked_from_the_readme_and_exists():
+    # a page nobody can reach from the README is as good as missing; a link to a page that
+    # is not there is a broken promise
+    linked = linked_pages(README.read_text(encoding="utf-8"))
+    on_disk = sorted(f"docs/{p.name}" for p in (REPO / "docs").glob("*.md"))
+    assert sorted(linked) == on_disk
+    # the reference tables moved out of the README are among them
+    assert {"docs/configuration.md", "docs/api.md", "docs/cli.md"} <= set(linked)
+
+
+def test_only_linked_pages_count(tmp_path):
+    (tmp_path / "docs").mkdir()
+    (tmp_path / "DEVELOPERS.md").write_text("nothing here\n")
+    (tmp_path / "docs" / "linked.md").write_text("`zz_made_up_hz`\n")
+    (tmp_path / "docs" / "orphan.md").write_text("`zz_inner_ms = 3`\n")
+    (tmp_path / "README.md").write_text(
+        "See [the settings](docs/linked.md#top), [again](docs/linked.md) and docs/orphan.md.\n"
+    )
+    files = doc_files(tmp_path)
+    assert [p.relative_to(tmp_path).as_posix() for p in files] == [
+        "README.md", "DEVELOPERS.md", "docs/linked.md"
+    ]
+    text = read_docs(files)
+    assert missing_config_keys(text, _Made) == [
+        "nested  (nested)",
+        "rows  (rows)",
+        "zz-alias  (zz-alias)",
+        "zz_inner_ms  (nested.zz_inner_ms, rows[].zz_inner_ms)",
+    ]
 
 
 def test_the_walk_covers_describe_settings():

@@ -69,7 +69,9 @@ def test_time_constant():
 
 
 def test_averager_errors():
-    with pytest.raises(ValueError, match=r"averaging='rolling' is not one of 'linear', 'exponential', 'peak-hold'"):
+    with pytest.raises(
+        ValueError, match=r"averaging='rolling' is not one of 'linear', 'exponential', 'peak-hold'"
+    ):
         Averager("rolling")
     with pytest.raises(ValueError, match=r"linear_end='stop' is not one of 'restart', 'hold'"):
         Averager("linear", 4, linear_end="stop")

@@ -157,7 +157,7 @@ def reference_band(x: np.ndarray) -> np.ndarray:
 
     Frames of N samples every hop from index 0, periodic Hann window (scipy.signal.get_window);
     PS = 2|X|²/S1² and band RMS = √(Σ s_q·PS_q / ENBW_bins) with ENBW_bins = N·S2/S1²
-    (Heinzel et al. 2002, §9–10; README "What it computes"; Harris 1978 Table 1: Hann 1.5
+    (Heinzel et al. 2002, §9–10; docs/design.md "What it computes"; Harris 1978 Table 1: Hann 1.5
     bins); s_q is the share of line q's width inside the band (common practice: the split
     documented in dsp/bands.band_weights — it only matters for frames that straddle an
     amplitude step); powers, not magnitudes, averaged (Heinzel et al. 2002 §8) exponentially,

@@ -415,8 +415,9 @@ def test_f64_samples_decode_without_a_warning(value: float) -> None:
 
 _S = {"id": "line-a", "kind": "tcp", "listen": "127.0.0.1:9101", "format": "framed",
       "sample_rate_hz": 2560.0, "channels": ["a-h", "a-v"], "queue_blocks": 256}
-# Small valid documents that between them use every table and key of README "Reference";
-# small, because a document that passes the per-key checks also runs every cross-check.
+# Small valid documents that between them use every table and key of the settings reference
+# (docs/configuration.md "Reference"); small, because a document that passes the per-key
+# checks also runs every cross-check.
 BASES: list[dict[str, Any]] = [
     {
         "service": {"listen": "127.0.0.1:8750", "trend_step_s": 10, "evidence_before_s": 3.0,

@@ -367,7 +367,7 @@ def test_hover_reads_the_frame_on_screen(demo: Service, page: tuple[Any, PageLog
         q = int(text.split("(line ")[1].split(")")[0])
         shown = text.split(" · ")[-1].split()[0]
         assert readout_hz(text) == pytest.approx(f0 + q * df, abs=0.0005)
-        # the frame as decoded here from the bytes the service sent (wire format: README)
+        # the frame as decoded here from the bytes the service sent (wire format: docs/api.md)
         assert abs(float(shown) - float(values[q])) <= half_unit(shown) * (1 + 1e-6), (
             text,
             values[q],
@@ -548,7 +548,7 @@ def test_line_filter_dialog_hann_figures(demo: Service, page: tuple[Any, PageLog
 @pytest.mark.parametrize("pad", [0, 1, 2, 3])
 def test_binary_spectrum_decoding(demo: Service, page: tuple[Any, PageLog], pad: int) -> None:
     """A stream message (u32 LE header length, JSON header, float32 LE values) decodes to the
-    same numbers whatever the header length's alignment (the wire format in issue 4/README)."""
+    same numbers whatever the header length's alignment (the wire format in docs/api.md)."""
     pg, _ = page
     open_page(pg, demo.base_url + "/#/")
     rng = np.random.default_rng(5)

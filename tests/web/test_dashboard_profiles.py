@@ -62,7 +62,7 @@ def same_frame_as_rest(pg: Any, demo: Service, profile: str | None) -> tuple[dic
 
 
 def assert_same_spectrum(shown: dict[str, Any], rest: dict[str, Any]) -> None:
-    """The page's frame equals the REST one line for line (float32 on the wire: README)."""
+    """The page's frame equals the REST one line for line (float32 on the wire: docs/api.md)."""
     assert shown["profile"] == rest["profile"]
     assert shown["f0_hz"] == rest["f0_hz"] and shown["df_hz"] == rest["df_hz"]
     want = np.array([np.nan if v is None else v for v in rest["values"]], dtype=np.float32)
@@ -110,7 +110,7 @@ def test_switching_to_narrow_and_back(
     view = pg.evaluate("window.quaver.view.view()")
     assert view["hi"] == pytest.approx(NARROW_FMAX_HZ, rel=1e-12)  # the whole range shown
     assert float(pg.get_attribute("#spec", "data-df-hz")) == NARROW_DF_HZ
-    # re-subscribed to the narrow profile only (the stream's subscribe message: README)
+    # re-subscribed to the narrow profile only (the stream's subscribe message: docs/api.md)
     subs = [m["subscribe"] for m in sent[n_sent:] if "subscribe" in m]
     assert subs and subs[-1]["profiles"] == ["narrow"] and subs[-1]["channels"] == [CHANNEL]
     # (b) the caption under the spectrum: Fmax, lines, Δf and the decimation
@@ -188,7 +188,7 @@ def test_unknown_profile_in_the_url_shows_the_primary(
     """An old link naming a profile the channel does not run: the primary one, and a note."""
     pg, log = page
     code, body = demo.status(f"channels/{CHANNEL}/spectrum?profile=nosuch")
-    assert code == 404 and "nosuch" in body["detail"]  # the service refuses it too (README)
+    assert code == 404 and "nosuch" in body["detail"]  # the service refuses it too (docs/api.md)
     open_channel(pg, demo, "?profile=nosuch")
     wait_for(lambda: (on_screen(pg) or {}).get("profile") == "wide", "the primary spectrum")
     wait_for(lambda: "nosuch" in pg.inner_text("#spec-cap"), "a note naming the bad profile")
