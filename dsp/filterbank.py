@@ -23,6 +23,21 @@ functions (3 for Hann: a cosine sum), so a block meets R·2T columns, not N/H·2
 sum Σ_p a_p·|X_p|² of the new frames is needed, so √a_p is folded into each frame's window
 and the frames are windowed, transformed, squared and summed a few channels at a time,
 while they are in cache, with no [C, P, N/2+1] spectrum array for all channels.
+
+With ``remove_dc=True`` (what ``dsp.analyzer`` uses) each frame's constant offset is taken
+out of its spectrum before anything else reads it: c[p] = Σ_k w[k]·x[k₀[p]+k] / S1 = X[p, 0]/S1
+(S1 = Σ w) is the window-weighted mean, the constant that fits the frame best in the
+least-squares sense under the window, and its share of line q is c[p]·W[q], W = rfft(w),
+known in advance. So X'[p, q] = X[p, q] − X[p, 0]·W[q]/W[0] for 1 ≤ q: the spectrum of
+w·(x − c[p]), done on the lines where |W[q]|/W[0] > 1e-9 only (:func:`dc_shape`). The DC
+line itself (q = 0) is kept: it still reads the offset. See docs/low-frequency.md.
+
+This is not ``scipy.signal.welch(..., detrend="constant")``, which subtracts the plain mean
+Σ x/N before windowing. Both remove a pure constant exactly; for a frame that also holds
+a tone off a line centre, the plain mean carries part of the tone with the rectangular
+window's slowly falling sidelobes (−13 dB), and w·(x − mean) still has a DC line
+X[0] − mean·S1 ≠ 0. The window-weighted mean leaves Σ w·(x − c) = 0 exactly and draws the
+tone's share through the window's own (lower) sidelobes.
 """
 
 from __future__ import annotations
@@ -38,7 +53,7 @@ from .tones import tone_kernel
 from .types import check_index_span
 from .windows import DEFAULT_KAISER_BETA, WindowInfo, check_window, get_window, window_info
 
-__all__ = ["FrameBatch", "FrameGrid", "FilterBank", "FMAX_RATIO", "PowerBatch"]
+__all__ = ["FrameBatch", "FrameGrid", "FilterBank", "FMAX_RATIO", "PowerBatch", "dc_shape"]
 
 # fs = 2.56·Fmax and N = 2.56·lines (common practice: leaves room for the anti-alias roll-off)
 FMAX_RATIO = 2.56
@@ -54,6 +69,33 @@ _CHUNK_FRAMES = 12
 _FFT_LANES = 4
 # Up to this many hop-long blocks, tracked tones go block by block (BLAS gemv).
 _GEMV_ROWS = 4
+
+
+# Lines whose |W[q]|/W[0] is at or below this are left alone by the DC removal: a float32
+# FFT rounds a frame's DC line by about eps·√N·|X[0]|/N ≈ 1e-9·|X[0]| at N = 8192 anyway.
+DC_SHAPE_FLOOR = 1e-9
+
+
+def dc_shape(w: np.ndarray, *, floor: float = DC_SHAPE_FLOOR) -> np.ndarray:
+    """W[q]/W[0] for q = 1 … span − 1 (dimensionless), W = rfft(w): a frame's constant c
+    puts c·W[q] on line q. ``span`` is one past the last line with |W[q]|/W[0] > ``floor``.
+
+    Real (float32) for the periodic, DFT-even windows of ``dsp.windows`` (W is real), else
+    complex64. Empty for the rectangular window (W[q] = 0 at every line centre but DC);
+    1 line for Hann and Hamming, 4 for flat-top; every line for Kaiser, whose sidelobes
+    never fall to the floor.
+
+    >>> from dsp.windows import get_window
+    >>> [round(float(v), 3) for v in dc_shape(get_window("hann", 16))]
+    [-0.5]
+    """
+    big = np.fft.rfft(np.asarray(w, dtype=np.float64))
+    shape = big[1:] / big[0].real
+    above = np.flatnonzero(np.abs(shape) > floor)
+    shape = shape[: above[-1] + 1] if above.size else shape[:0]
+    if not shape.size or np.abs(shape.imag).max() <= 1e-12:
+        return shape.real.astype(np.float32)
+    return shape.astype(np.complex64)
 
 
 def _pocketfft_r2c() -> object | None:
@@ -187,7 +229,8 @@ class FrameBatch:
 
     ``start``: int64[P], stream index of each frame's first sample (t = start/fs).
     ``spectra``: complex64[C, P, Q], X[c, p, q] as in the module docstring (unscaled: divide
-    by S1 for amplitude — see ``dsp.scaling``).
+    by S1 for amplitude — see ``dsp.scaling``); lines q ≥ 1 without the frame's
+    window-weighted mean when the bank removes DC.
     ``tones``: complex64[C, P, T], X(f) at each tracked tone's frequency (T may be 0).
     """
 
@@ -232,6 +275,9 @@ class FilterBank:
     sample; if it is not the next expected index, the partial frame is discarded and
     assembly restarts at ``k`` — frames never straddle a gap. ``reset()`` does the same.
 
+    ``remove_dc=True`` takes each frame's window-weighted mean out of lines q ≥ 1 (module
+    docstring): a constant offset then reaches no line but DC, under any window.
+
     Example: a 1 V-peak sine on a line centre gives 2|X|/S1 = 1 on that line.
 
     >>> import numpy as np
@@ -251,6 +297,7 @@ class FilterBank:
         *,
         beta: float = DEFAULT_KAISER_BETA,
         tone_hz: np.ndarray | None = None,
+        remove_dc: bool = False,
     ) -> None:
         check_window(window)
         if int(channels) != channels or channels < 1:
@@ -262,6 +309,9 @@ class FilterBank:
         self.w = get_window(window, grid.n, beta=beta)  # type: ignore[arg-type]
         self.info: WindowInfo = window_info(window, grid.n, beta=beta)  # type: ignore[arg-type]
         self._w32 = self.w.astype(np.float32)
+        self.remove_dc = bool(remove_dc)
+        # W[q]/W[0] on the lines a frame's constant reaches (none for rectangular).
+        self._dc_shape = dc_shape(self.w) if self.remove_dc else np.zeros(0, np.float32)
         self._held = SampleBuffer(self.channels, 4 * grid.n)  # samples towards frames
         self._work = np.empty((self.channels, 0, grid.n), dtype=np.float32)  # push's frames
         self._chunk = np.zeros((0, grid.n), dtype=np.float32)  # push_power's few channels
@@ -487,6 +537,13 @@ class FilterBank:
         self.frames_out += p_count
         return start
 
+    def _remove_dc(self, spec: np.ndarray) -> None:
+        """X[..., q] −= X[..., 0]·W[q]/W[0] in place, on the first lines of ``spec``
+        [..., L] that a constant reaches (q = 1 … min(span, L) − 1); X[..., 0] is kept."""
+        m = min(self._dc_shape.size, spec.shape[-1] - 1)
+        if m > 0:
+            spec[..., 1 : 1 + m] -= spec[..., :1] * self._dc_shape[:m]
+
     def _tones_empty(self, p_count: int) -> np.ndarray:
         return np.zeros((self.channels, p_count, self._tone_count), dtype=np.complex64)
 
@@ -514,6 +571,7 @@ class FilterBank:
             tones = self._tones_direct(windowed)
         # The windowed frames are our scratch: let the FFT reuse them (after the tones).
         spectra = scipy.fft.rfft(windowed, axis=-1, workers=1, overwrite_x=True)
+        self._remove_dc(spectra)
         return FrameBatch(start=self._consume(p_count), spectra=spectra, tones=tones)
 
     def _window_table(self, weights: np.ndarray) -> np.ndarray:
@@ -596,6 +654,8 @@ class FilterBank:
             if pad > used:
                 self._chunk[used:pad] = 0.0  # the FFT may have left anything there
             spec = _rfft_into(self._chunk[:pad], self._spec[:pad])
+            # The weights are linear in x: √a_p·X[p, 0] carries the same √a_p as the lines.
+            self._remove_dc(spec[:used, :q])
             # Σ_p of re² and im² on the interleaved floats, then the pairs. Squaring in place
             # and adding frames beats one einsum (whose loop here is not vectorised): 23 vs
             # 29 µs for 12 frames, measured.
