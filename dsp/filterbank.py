@@ -329,6 +329,7 @@ class FilterBank:
         self._partial: np.ndarray | None = None  # [C, N/H − 1, R·2T] kept block products
         self._combine = np.zeros((1, 0, 0), dtype=np.complex64)  # [G, N/H·R·T, T]
         self._tables: dict[tuple[int, bytes], np.ndarray] = {}  # push_power window tables
+        self._tone_dc = np.zeros((self.channels, 0), dtype=np.complex64)  # W(f)/S1, [C, T]
         if tone_hz is not None:
             self.set_tones(tone_hz)
 
@@ -365,6 +366,7 @@ class FilterBank:
             self._tone_group = np.zeros(self.channels, dtype=np.intp)
             self._group_rows = [np.arange(self.channels)]
             self._tone_hz = f.copy()
+            self._tone_dc = np.zeros((self.channels, 0), dtype=np.complex64)
             return
         # Channels that track the same frequencies (same machine, same speed) share one
         # kernel, so their frames go through one large matrix product instead of C small ones.
@@ -392,10 +394,16 @@ class FilterBank:
             # pieces become one matrix product (~2.5× faster than the same einsum, measured).
             diag = comb[..., None] * np.eye(t)  # [G, N/H, R, T, T]
             self._combine = diag.reshape(rows.shape[0], -1, t).astype(np.complex64)
+            # W(f) = Σ_j Σ_r comb[j, r]·Σ_m basis_r[m]·e^(−iωm): no new exponentials.
+            w_f = np.einsum("gjrt,grt->gt", comb, np.einsum("rm,gmt->grt", basis, e))
         else:
             # The kernel goes onto windowed frames, so it carries no window of its own.
             k = tone_kernel(rows, n, self.grid.fs, "rectangular")
             self._kernel = np.ascontiguousarray(k[..., pairs])
+            ri = np.einsum("k,gkc->gc", self.w, self._kernel, dtype=np.float64)
+            w_f = ri[:, 0::2] + 1j * ri[:, 1::2]
+        # A frame's constant c puts c·W(f) on the tone at f, W(f) = Σ_k w[k]·e^(−2πi·f·k/fs).
+        self._tone_dc = (w_f / self.info.s1)[self._tone_group].astype(np.complex64)
 
     @property
     def _tone_count(self) -> int:
@@ -537,6 +545,12 @@ class FilterBank:
         self.frames_out += p_count
         return start
 
+    def _remove_tone_dc(self, tones: np.ndarray, x0: np.ndarray) -> None:
+        """X(f) −= X[0]·W(f)/S1 in place for ``tones`` [C, P, T], ``x0`` [C, P] the frames'
+        DC lines: the tones of w·(x − c), as the lines (module docstring)."""
+        if self.remove_dc and tones.shape[2]:
+            tones -= x0[..., None] * self._tone_dc[:, None, :]
+
     def _remove_dc(self, spec: np.ndarray) -> None:
         """X[..., q] −= X[..., 0]·W[q]/W[0] in place, on the first lines of ``spec``
         [..., L] that a constant reaches (q = 1 … min(span, L) − 1); X[..., 0] is kept."""
@@ -572,6 +586,7 @@ class FilterBank:
         # The windowed frames are our scratch: let the FFT reuse them (after the tones).
         spectra = scipy.fft.rfft(windowed, axis=-1, workers=1, overwrite_x=True)
         self._remove_dc(spectra)
+        self._remove_tone_dc(tones, spectra[..., 0])
         return FrameBatch(start=self._consume(p_count), spectra=spectra, tones=tones)
 
     def _window_table(self, weights: np.ndarray) -> np.ndarray:
@@ -645,6 +660,10 @@ class FilterBank:
             self._chunk = np.zeros((rows, n), dtype=np.float32)
             self._spec = np.empty((rows, self.grid.bins), dtype=np.complex64)
         sums = np.empty((step, 2 * q), dtype=np.float32)
+        # The frames' DC lines, for the tones' DC (√a_p·X[p, 0] until divided below).
+        x0 = None
+        if self.remove_dc and tones.shape[2]:
+            x0 = np.empty((c_count, p_count), np.complex64)
         for c0 in range(0, c_count, step):
             c1 = min(c_count, c0 + step)
             used = (c1 - c0) * p_count
@@ -656,6 +675,8 @@ class FilterBank:
             spec = _rfft_into(self._chunk[:pad], self._spec[:pad])
             # The weights are linear in x: √a_p·X[p, 0] carries the same √a_p as the lines.
             self._remove_dc(spec[:used, :q])
+            if x0 is not None:
+                x0[c0:c1] = spec[:used, 0].reshape(c1 - c0, p_count)
             # Σ_p of re² and im² on the interleaved floats, then the pairs. Squaring in place
             # and adding frames beats one einsum (whose loop here is not vectorised): 23 vs
             # 29 µs for 12 frames, measured.
@@ -669,4 +690,11 @@ class FilterBank:
                 for i in range(2, p_count):
                     sm += v[:, i]
             np.add(sm[:, 0::2], sm[:, 1::2], out=power[c0:c1])
+        if x0 is not None:
+            root = np.sqrt(a).astype(np.float32)  # the √a_p in the window table
+            ok = root > 1e-30
+            x0[:, ok] /= root[ok]
+            if not ok.all():  # a frame weighted (nearly) 0: its DC line directly
+                x0[:, ~ok] = frames[:, ~ok] @ self._w32
+            self._remove_tone_dc(tones, x0)
         return PowerBatch(start=self._consume(p_count), power=power, tones=tones)

@@ -253,18 +253,24 @@ WINDOWS = ["rectangular", "hann", "hamming", "blackman-harris", "flattop", "kais
 
 @pytest.mark.parametrize("window", WINDOWS)
 @pytest.mark.parametrize("power", [False, True])
-def test_remove_dc_gives_the_spectrum_of_the_frame_less_its_window_weighted_mean(window, power):
+@pytest.mark.parametrize("overlap", [0.75, 0.6])
+def test_remove_dc_gives_the_spectrum_of_the_frame_less_its_window_weighted_mean(
+    window, power, overlap
+):
     # Direct computation in float64, frame by frame: c = Σ w·x / Σ w, Y = rfft(w·(x − c));
     # the bank's lines q ≥ 1 must equal Y[q] and its DC line the plain rfft(w·x)[0]
-    # (docs/low-frequency.md). Offsets of several g, a tone off a line centre, noise.
+    # (docs/low-frequency.md); tracked tones Σ w·(x − c)·e^(−2πi·f·k/fs), by hop-long
+    # blocks (75 %: the hop divides N) and on windowed frames (60 %: it does not).
+    # Offsets of several g, a sine off a line centre, noise.
     n, fs = 1024, 2560.0
-    grid = FrameGrid.from_n(n, fs, overlap=0.75)
+    grid = FrameGrid.from_n(n, fs, overlap=overlap)
+    tone_hz = np.array([0.0, 20.3, 100.3, 777.7])
     rng = np.random.default_rng(21)
     k = np.arange(9000)
     x = rng.normal(0.0, 0.2, (3, k.size))
     x += np.array([[5.0], [-3.0], [0.5]]) + np.sin(2 * np.pi * 100.3 * k / fs)
     x = x.astype(np.float32)
-    fb = FilterBank(grid, 3, window, remove_dc=True)
+    fb = FilterBank(grid, 3, window, remove_dc=True, tone_hz=tone_hz)
     plain = FilterBank(grid, 3, window)
     w = get_window(window, n)  # type: ignore[arg-type]
     frames = np.lib.stride_tricks.sliding_window_view(x.astype(np.float64), n, axis=1)
@@ -272,14 +278,22 @@ def test_remove_dc_gives_the_spectrum_of_the_frame_less_its_window_weighted_mean
     c = (frames @ w) / w.sum()
     want = np.fft.rfft(w * (frames - c[..., None]), axis=-1)
     want[..., 0] = np.fft.rfft(w * frames, axis=-1)[..., 0]
+    kern = w * np.exp(-2j * np.pi * tone_hz[:, None] * np.arange(n) / fs)  # [T, N]
+    want_tones = (frames - c[..., None]) @ kern.T
     atol = 2e-6 * np.abs(want[..., 0]).max()
-    if power:  # the fused path, every frame weight 1
-        got = fb.push_power(x, np.ones(frames.shape[1])).power
+    if power:  # the fused path; one frame weighted 0 (its DC line is then found directly)
+        a = np.ones(frames.shape[1])
+        a[1] = 0.0
+        batch = fb.push_power(x, a)
         np.testing.assert_allclose(
-            got, (np.abs(want) ** 2).sum(axis=1), rtol=2e-5, atol=atol * np.abs(want).max(),
+            batch.power, np.einsum("p,cpq->cq", a, np.abs(want) ** 2),
+            rtol=2e-5, atol=atol * np.abs(want).max(),
         )
+        np.testing.assert_allclose(batch.tones, want_tones, rtol=0, atol=atol)
         return
-    got = fb.push(x).spectra
+    batch = fb.push(x)
+    got = batch.spectra
+    np.testing.assert_allclose(batch.tones, want_tones, rtol=0, atol=atol)
     raw = plain.push(x).spectra
     assert got.shape == want.shape
     np.testing.assert_allclose(got, want, rtol=0, atol=atol)
