@@ -80,10 +80,11 @@ def dc_shape(w: np.ndarray, *, floor: float = DC_SHAPE_FLOOR) -> np.ndarray:
     """W[q]/W[0] for q = 1 … span − 1 (dimensionless), W = rfft(w): a frame's constant c
     puts c·W[q] on line q. ``span`` is one past the last line with |W[q]|/W[0] > ``floor``.
 
-    Real (float32) for the periodic, DFT-even windows of ``dsp.windows`` (W is real), else
-    complex64. Empty for the rectangular window (W[q] = 0 at every line centre but DC);
-    1 line for Hann and Hamming, 4 for flat-top; every line for Kaiser, whose sidelobes
-    never fall to the floor.
+    float32: W is real for a DFT-even window, w[k] = w[N − k], as every window of
+    ``dsp.windows`` is (periodic); another raises ValueError. Empty for the rectangular
+    window (W[q] = 0 at every line centre but DC); 1 line for Hann and Hamming, 3 for
+    Blackman–Harris, 4 for flat-top; every line for Kaiser, whose sidelobes never fall to
+    the floor.
 
     >>> from dsp.windows import get_window
     >>> [round(float(v), 3) for v in dc_shape(get_window("hann", 16))]
@@ -91,11 +92,10 @@ def dc_shape(w: np.ndarray, *, floor: float = DC_SHAPE_FLOOR) -> np.ndarray:
     """
     big = np.fft.rfft(np.asarray(w, dtype=np.float64))
     shape = big[1:] / big[0].real
+    if np.abs(shape.imag).max(initial=0.0) > 1e-12:
+        raise ValueError("the window is not DFT-even (w[k] = w[N − k]): its transform is not real")
     above = np.flatnonzero(np.abs(shape) > floor)
-    shape = shape[: above[-1] + 1] if above.size else shape[:0]
-    if not shape.size or np.abs(shape.imag).max() <= 1e-12:
-        return shape.real.astype(np.float32)
-    return shape.astype(np.complex64)
+    return shape.real[: above[-1] + 1 if above.size else 0].astype(np.float32)
 
 
 def _pocketfft_r2c() -> object | None:
@@ -328,7 +328,8 @@ class FilterBank:
         self._group_rows: list[np.ndarray] = [np.arange(self.channels)]
         self._partial: np.ndarray | None = None  # [C, N/H − 1, R·2T] kept block products
         self._combine = np.zeros((1, 0, 0), dtype=np.complex64)  # [G, N/H·R·T, T]
-        self._tables: dict[tuple[int, bytes], np.ndarray] = {}  # push_power window tables
+        # push_power's window tables, by frame weights
+        self._tables: dict[tuple[int, bytes], tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
         self._tone_dc = np.zeros((self.channels, 0), dtype=np.complex64)  # W(f)/S1, [C, T]
         if tone_hz is not None:
             self.set_tones(tone_hz)
@@ -546,17 +547,20 @@ class FilterBank:
         return start
 
     def _remove_tone_dc(self, tones: np.ndarray, x0: np.ndarray) -> None:
-        """X(f) −= X[0]·W(f)/S1 in place for ``tones`` [C, P, T], ``x0`` [C, P] the frames'
-        DC lines: the tones of w·(x − c), as the lines (module docstring)."""
-        if self.remove_dc and tones.shape[2]:
-            tones -= x0[..., None] * self._tone_dc[:, None, :]
+        """X(f) −= X[0]·W(f)/S1 in place for ``tones`` [C, P, T], ``x0`` float32 [C, P] the
+        frames' DC lines (real): the tones of w·(x − c), as the lines (module docstring)."""
+        tones -= x0[..., None] * self._tone_dc[:, None, :]
 
     def _remove_dc(self, spec: np.ndarray) -> None:
         """X[..., q] −= X[..., 0]·W[q]/W[0] in place, on the first lines of ``spec``
-        [..., L] that a constant reaches (q = 1 … min(span, L) − 1); X[..., 0] is kept."""
+        [..., L] that a constant reaches (q = 1 … min(span, L) − 1); X[..., 0] is kept.
+
+        X[0] = Σ w·x and W[q] are real, so only the real parts change: they are every
+        other float of the complex64 lines."""
         m = min(self._dc_shape.size, spec.shape[-1] - 1)
-        if m > 0:
-            spec[..., 1 : 1 + m] -= spec[..., :1] * self._dc_shape[:m]
+        if m:
+            v = spec.view(np.float32)
+            v[..., 2 : 2 + 2 * m : 2] -= v[..., :1] * self._dc_shape[:m]
 
     def _tones_empty(self, p_count: int) -> np.ndarray:
         return np.zeros((self.channels, p_count, self._tone_count), dtype=np.complex64)
@@ -586,21 +590,26 @@ class FilterBank:
         # The windowed frames are our scratch: let the FFT reuse them (after the tones).
         spectra = scipy.fft.rfft(windowed, axis=-1, workers=1, overwrite_x=True)
         self._remove_dc(spectra)
-        self._remove_tone_dc(tones, spectra[..., 0])
+        if self.remove_dc and tones.shape[2]:
+            self._remove_tone_dc(tones, spectra[..., 0].real)
         return FrameBatch(start=self._consume(p_count), spectra=spectra, tones=tones)
 
-    def _window_table(self, weights: np.ndarray) -> np.ndarray:
-        """[P, N] float32: √a_p·w[k], cached for a few frames a push (steady-state weights
+    def _window_table(self, weights: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """([P, N] float32 √a_p·w[k], [P] float32 1/√a_p or 0 where √a_p is (nearly) 0, the
+        indices of those frames), cached for a few frames a push (steady-state weights
         repeat every push; a long block's table is made once and not kept)."""
         key = (weights.size, weights.tobytes())
-        table = self._tables.get(key)
-        if table is None:
-            table = np.sqrt(weights).astype(np.float32)[:, None] * self._w32
+        made = self._tables.get(key)
+        if made is None:
+            root = np.sqrt(weights).astype(np.float32)
+            inverse = np.zeros_like(root)
+            np.divide(1.0, root, out=inverse, where=root > 1e-30)
+            made = (root[:, None] * self._w32, inverse, np.flatnonzero(inverse == 0.0))
             if weights.size <= 16:
                 if len(self._tables) > 16:
                     self._tables.clear()
-                self._tables[key] = table
-        return table
+                self._tables[key] = made
+        return made
 
     def push_power(
         self,
@@ -649,7 +658,7 @@ class FilterBank:
             if self._work.shape[1] < p_count:
                 self._work = np.empty((c_count, p_count, n), dtype=np.float32)
             tones = self._tones_direct(np.multiply(frames, self._w32, out=self._work[:, :p_count]))
-        table = self._window_table(a)
+        table, inverse_root, lost = self._window_table(a)
         # Channels per chunk: about _CHUNK_FRAMES frames, whole groups of lanes.
         step = max(1, _CHUNK_FRAMES // p_count)
         while step > 1 and (step * p_count) % _FFT_LANES:
@@ -663,7 +672,7 @@ class FilterBank:
         # The frames' DC lines, for the tones' DC (√a_p·X[p, 0] until divided below).
         x0 = None
         if self.remove_dc and tones.shape[2]:
-            x0 = np.empty((c_count, p_count), np.complex64)
+            x0 = np.empty((c_count, p_count), np.float32)
         for c0 in range(0, c_count, step):
             c1 = min(c_count, c0 + step)
             used = (c1 - c0) * p_count
@@ -676,7 +685,7 @@ class FilterBank:
             # The weights are linear in x: √a_p·X[p, 0] carries the same √a_p as the lines.
             self._remove_dc(spec[:used, :q])
             if x0 is not None:
-                x0[c0:c1] = spec[:used, 0].reshape(c1 - c0, p_count)
+                x0[c0:c1] = spec[:used, 0].real.reshape(c1 - c0, p_count)
             # Σ_p of re² and im² on the interleaved floats, then the pairs. Squaring in place
             # and adding frames beats one einsum (whose loop here is not vectorised): 23 vs
             # 29 µs for 12 frames, measured.
@@ -691,10 +700,8 @@ class FilterBank:
                     sm += v[:, i]
             np.add(sm[:, 0::2], sm[:, 1::2], out=power[c0:c1])
         if x0 is not None:
-            root = np.sqrt(a).astype(np.float32)  # the √a_p in the window table
-            ok = root > 1e-30
-            x0[:, ok] /= root[ok]
-            if not ok.all():  # a frame weighted (nearly) 0: its DC line directly
-                x0[:, ~ok] = frames[:, ~ok] @ self._w32
+            x0 *= inverse_root  # √a_p·X[p, 0] → X[p, 0]
+            if lost.size:  # a frame weighted (nearly) 0: its DC line directly
+                x0[:, lost] = frames[:, lost] @ self._w32
             self._remove_tone_dc(tones, x0)
         return PowerBatch(start=self._consume(p_count), power=power, tones=tones)
