@@ -30,7 +30,8 @@ out of its spectrum before anything else reads it: c[p] = Σ_k w[k]·x[k₀[p]+k
 least-squares sense under the window, and its share of line q is c[p]·W[q], W = rfft(w),
 known in advance. So X'[p, q] = X[p, q] − X[p, 0]·W[q]/W[0] for 1 ≤ q: the spectrum of
 w·(x − c[p]), done on the lines where |W[q]|/W[0] > 1e-9 only (:func:`dc_shape`). The DC
-line itself (q = 0) is kept: it still reads the offset. See docs/low-frequency.md.
+line itself (q = 0) is kept: it still reads the offset. Tracked tones likewise:
+X'(f) = X(f) − X[p, 0]·W(f)/S1, W(f) = Σ_k w[k]·e^(−2πi·f·k/fs). See docs/low-frequency.md.
 
 This is not ``scipy.signal.welch(..., detrend="constant")``, which subtracts the plain mean
 Σ x/N before windowing. Both remove a pure constant exactly; for a frame that also holds

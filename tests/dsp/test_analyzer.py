@@ -315,3 +315,21 @@ def test_tones_and_bands_below_the_low_frequency_limit_read_nan(window):
         assert an.band_masked[0].tolist() == [True, False]
     assert an.tones("mm/s")[0, 1] == pytest.approx(1e3 * G_N / (2 * np.pi * 40.0), rel=2e-3)
     assert an.band_edges_hz[0, 1].tolist() == [limit, 60.0]
+
+
+def test_dc_offset_does_not_hide_a_peak_just_above_the_low_frequency_limit():
+    # Under Hann at 3.125 Hz lines (limit 6.25 Hz), a 5 g offset put 3.5 g on line 1, so a
+    # 1 g-peak tone at 7 Hz (line 2.24, its neighbour line 1) was no local maximum and left
+    # the peaks list. With each frame's offset removed from line 1 on, it is found, at its
+    # frequency and amplitude (the same as without the offset). docs/low-frequency.md.
+    grid = FrameGrid.from_fmax(5000, 1600, overlap=0.75)
+    x = _sines(grid.fs, 4, [(1.0, 7.0, 0.0), (0.3, 100.3, 0.2)])
+    found = []
+    for dc in (0.0, 5.0):
+        an = Analyzer(_spec(grid=grid, window="hann", unit="g", peaks=3), 1)
+        an.push((dc + x).astype(np.float32))
+        pk = an.peaks("g", "peak")
+        found.append((pk.frequency_hz[0, :2], pk.amplitude_rms[0, :2]))
+    for f_hz, amp in found:
+        np.testing.assert_allclose(f_hz, [7.0, 100.3], atol=0.05)
+        np.testing.assert_allclose(amp, [1.0, 0.3], rtol=0.02)
