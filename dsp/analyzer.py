@@ -281,7 +281,11 @@ class Analyzer:
     def __post_init__(self) -> None:
         spec = self.spec
         self.grid = spec.grid
-        self.bank = FilterBank(self.grid, self.channels, spec.window, beta=spec.beta)
+        # Each frame's offset (window-weighted mean) reaches no line but DC, under any window:
+        # Kaiser's sidelobes would otherwise carry a sensor's DC past the low-frequency limit.
+        self.bank = FilterBank(
+            self.grid, self.channels, spec.window, beta=spec.beta, remove_dc=True
+        )
         self.info = self.bank.info
         self.q = self.grid.analysis_bins  # lines kept: DC … Fmax
         self.f_hz = self.grid.frequencies()[: self.q]

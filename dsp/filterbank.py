@@ -23,6 +23,22 @@ functions (3 for Hann: a cosine sum), so a block meets R·2T columns, not N/H·2
 sum Σ_p a_p·|X_p|² of the new frames is needed, so √a_p is folded into each frame's window
 and the frames are windowed, transformed, squared and summed a few channels at a time,
 while they are in cache, with no [C, P, N/2+1] spectrum array for all channels.
+
+With ``remove_dc=True`` (what ``dsp.analyzer`` uses) each frame's constant offset is taken
+out of its spectrum before anything else reads it: c[p] = Σ_k w[k]·x[k₀[p]+k] / S1 = X[p, 0]/S1
+(S1 = Σ w) is the window-weighted mean, the constant that fits the frame best in the
+least-squares sense under the window, and its share of line q is c[p]·W[q], W = rfft(w),
+known in advance. So X'[p, q] = X[p, q] − X[p, 0]·W[q]/W[0] for 1 ≤ q: the spectrum of
+w·(x − c[p]), done on the lines where |W[q]|/W[0] > 1e-9 only (:func:`dc_shape`). The DC
+line itself (q = 0) is kept: it still reads the offset. Tracked tones likewise:
+X'(f) = X(f) − X[p, 0]·W(f)/S1, W(f) = Σ_k w[k]·e^(−2πi·f·k/fs). See docs/low-frequency.md.
+
+This is not ``scipy.signal.welch(..., detrend="constant")``, which subtracts the plain mean
+Σ x/N before windowing. Both remove a pure constant exactly; for a frame that also holds
+a tone off a line centre, the plain mean carries part of the tone with the rectangular
+window's slowly falling sidelobes (−13 dB), and w·(x − mean) still has a DC line
+X[0] − mean·S1 ≠ 0. The window-weighted mean leaves Σ w·(x − c) = 0 exactly and draws the
+tone's share through the window's own (lower) sidelobes.
 """
 
 from __future__ import annotations
@@ -38,7 +54,7 @@ from .tones import tone_kernel
 from .types import check_index_span
 from .windows import DEFAULT_KAISER_BETA, WindowInfo, check_window, get_window, window_info
 
-__all__ = ["FrameBatch", "FrameGrid", "FilterBank", "FMAX_RATIO", "PowerBatch"]
+__all__ = ["FrameBatch", "FrameGrid", "FilterBank", "FMAX_RATIO", "PowerBatch", "dc_shape"]
 
 # fs = 2.56·Fmax and N = 2.56·lines (common practice: leaves room for the anti-alias roll-off)
 FMAX_RATIO = 2.56
@@ -54,6 +70,33 @@ _CHUNK_FRAMES = 12
 _FFT_LANES = 4
 # Up to this many hop-long blocks, tracked tones go block by block (BLAS gemv).
 _GEMV_ROWS = 4
+
+
+# Lines whose |W[q]|/W[0] is at or below this are left alone by the DC removal: a float32
+# FFT rounds a frame's DC line by about eps·√N·|X[0]|/N ≈ 1e-9·|X[0]| at N = 8192 anyway.
+DC_SHAPE_FLOOR = 1e-9
+
+
+def dc_shape(w: np.ndarray, *, floor: float = DC_SHAPE_FLOOR) -> np.ndarray:
+    """W[q]/W[0] for q = 1 … span − 1 (dimensionless), W = rfft(w): a frame's constant c
+    puts c·W[q] on line q. ``span`` is one past the last line with |W[q]|/W[0] > ``floor``.
+
+    float32: W is real for a DFT-even window, w[k] = w[N − k], as every window of
+    ``dsp.windows`` is (periodic); another raises ValueError. Empty for the rectangular
+    window (W[q] = 0 at every line centre but DC); 1 line for Hann and Hamming, 3 for
+    Blackman–Harris, 4 for flat-top; every line for Kaiser, whose sidelobes never fall to
+    the floor.
+
+    >>> from dsp.windows import get_window
+    >>> [round(float(v), 3) for v in dc_shape(get_window("hann", 16))]
+    [-0.5]
+    """
+    big = np.fft.rfft(np.asarray(w, dtype=np.float64))
+    shape = big[1:] / big[0].real
+    if np.abs(shape.imag).max(initial=0.0) > 1e-12:
+        raise ValueError("the window is not DFT-even (w[k] = w[N − k]): its transform is not real")
+    above = np.flatnonzero(np.abs(shape) > floor)
+    return shape.real[: above[-1] + 1 if above.size else 0].astype(np.float32)
 
 
 def _pocketfft_r2c() -> object | None:
@@ -199,7 +242,8 @@ class FrameBatch:
 
     ``start``: int64[P], stream index of each frame's first sample (t = start/fs).
     ``spectra``: complex64[C, P, Q], X[c, p, q] as in the module docstring (unscaled: divide
-    by S1 for amplitude — see ``dsp.scaling``).
+    by S1 for amplitude — see ``dsp.scaling``); lines q ≥ 1 without the frame's
+    window-weighted mean when the bank removes DC.
     ``tones``: complex64[C, P, T], X(f) at each tracked tone's frequency (T may be 0).
 
     Attributes
@@ -262,6 +306,9 @@ class FilterBank:
     sample; if it is not the next expected index, the partial frame is discarded and
     assembly restarts at ``k`` — frames never straddle a gap. ``reset()`` does the same.
 
+    ``remove_dc=True`` takes each frame's window-weighted mean out of lines q ≥ 1 (module
+    docstring): a constant offset then reaches no line but DC, under any window.
+
     Parameters
     ----------
     grid : FrameGrid
@@ -274,6 +321,9 @@ class FilterBank:
         Kaiser β (default 8.6).
     tone_hz : ndarray, optional
         Tracked tone frequencies, Hz, (C, T) or (T,); see :meth:`set_tones`.
+    remove_dc : bool, optional
+        Take each frame's window-weighted mean out of lines q ≥ 1 and the tones (default
+        False; the Analyzer turns it on).
 
     Examples
     --------
@@ -296,6 +346,7 @@ class FilterBank:
         *,
         beta: float = DEFAULT_KAISER_BETA,
         tone_hz: np.ndarray | None = None,
+        remove_dc: bool = False,
     ) -> None:
         check_window(window)
         if int(channels) != channels or channels < 1:
@@ -307,6 +358,9 @@ class FilterBank:
         self.w = get_window(window, grid.n, beta=beta)  # type: ignore[arg-type]
         self.info: WindowInfo = window_info(window, grid.n, beta=beta)  # type: ignore[arg-type]
         self._w32 = self.w.astype(np.float32)
+        self.remove_dc = bool(remove_dc)
+        # W[q]/W[0] on the lines a frame's constant reaches (none for rectangular).
+        self._dc_shape = dc_shape(self.w) if self.remove_dc else np.zeros(0, np.float32)
         self._held = SampleBuffer(self.channels, 4 * grid.n)  # samples towards frames
         self._work = np.empty((self.channels, 0, grid.n), dtype=np.float32)  # push's frames
         self._chunk = np.zeros((0, grid.n), dtype=np.float32)  # push_power's few channels
@@ -323,7 +377,9 @@ class FilterBank:
         self._group_rows: list[np.ndarray] = [np.arange(self.channels)]
         self._partial: np.ndarray | None = None  # [C, N/H − 1, R·2T] kept block products
         self._combine = np.zeros((1, 0, 0), dtype=np.complex64)  # [G, N/H·R·T, T]
-        self._tables: dict[tuple[int, bytes], np.ndarray] = {}  # push_power window tables
+        # push_power's window tables, by frame weights
+        self._tables: dict[tuple[int, bytes], tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
+        self._tone_dc = np.zeros((self.channels, 0), dtype=np.complex64)  # W(f)/S1, [C, T]
         if tone_hz is not None:
             self.set_tones(tone_hz)
 
@@ -360,6 +416,7 @@ class FilterBank:
             self._tone_group = np.zeros(self.channels, dtype=np.intp)
             self._group_rows = [np.arange(self.channels)]
             self._tone_hz = f.copy()
+            self._tone_dc = np.zeros((self.channels, 0), dtype=np.complex64)
             return
         # Channels that track the same frequencies (same machine, same speed) share one
         # kernel, so their frames go through one large matrix product instead of C small ones.
@@ -387,10 +444,16 @@ class FilterBank:
             # pieces become one matrix product (~2.5× faster than the same einsum, measured).
             diag = comb[..., None] * np.eye(t)  # [G, N/H, R, T, T]
             self._combine = diag.reshape(rows.shape[0], -1, t).astype(np.complex64)
+            # W(f) = Σ_j Σ_r comb[j, r]·Σ_m basis_r[m]·e^(−iωm): no new exponentials.
+            w_f = np.einsum("gjrt,grt->gt", comb, np.einsum("rm,gmt->grt", basis, e))
         else:
             # The kernel goes onto windowed frames, so it carries no window of its own.
             k = tone_kernel(rows, n, self.grid.fs, "rectangular")
             self._kernel = np.ascontiguousarray(k[..., pairs])
+            ri = np.einsum("k,gkc->gc", self.w, self._kernel, dtype=np.float64)
+            w_f = ri[:, 0::2] + 1j * ri[:, 1::2]
+        # A frame's constant c puts c·W(f) on the tone at f, W(f) = Σ_k w[k]·e^(−2πi·f·k/fs).
+        self._tone_dc = (w_f / self.info.s1)[self._tone_group].astype(np.complex64)
 
     @property
     def _tone_count(self) -> int:
@@ -535,6 +598,22 @@ class FilterBank:
         self.frames_out += p_count
         return start
 
+    def _remove_tone_dc(self, tones: np.ndarray, x0: np.ndarray) -> None:
+        """X(f) −= X[0]·W(f)/S1 in place for ``tones`` [C, P, T], ``x0`` float32 [C, P] the
+        frames' DC lines (real): the tones of w·(x − c), as the lines (module docstring)."""
+        tones -= x0[..., None] * self._tone_dc[:, None, :]
+
+    def _remove_dc(self, spec: np.ndarray) -> None:
+        """X[..., q] −= X[..., 0]·W[q]/W[0] in place, on the first lines of ``spec``
+        [..., L] that a constant reaches (q = 1 … min(span, L) − 1); X[..., 0] is kept.
+
+        X[0] = Σ w·x and W[q] are real, so only the real parts change: they are every
+        other float of the complex64 lines."""
+        m = min(self._dc_shape.size, spec.shape[-1] - 1)
+        if m:
+            v = spec.view(np.float32)
+            v[..., 2 : 2 + 2 * m : 2] -= v[..., :1] * self._dc_shape[:m]
+
     def _tones_empty(self, p_count: int) -> np.ndarray:
         return np.zeros((self.channels, p_count, self._tone_count), dtype=np.complex64)
 
@@ -574,20 +653,27 @@ class FilterBank:
             tones = self._tones_direct(windowed)
         # The windowed frames are our scratch: let the FFT reuse them (after the tones).
         spectra = scipy.fft.rfft(windowed, axis=-1, workers=1, overwrite_x=True)
+        self._remove_dc(spectra)
+        if self.remove_dc and tones.shape[2]:
+            self._remove_tone_dc(tones, spectra[..., 0].real)
         return FrameBatch(start=self._consume(p_count), spectra=spectra, tones=tones)
 
-    def _window_table(self, weights: np.ndarray) -> np.ndarray:
-        """[P, N] float32: √a_p·w[k], cached for a few frames a push (steady-state weights
+    def _window_table(self, weights: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """([P, N] float32 √a_p·w[k], [P] float32 1/√a_p or 0 where √a_p is (nearly) 0, the
+        indices of those frames), cached for a few frames a push (steady-state weights
         repeat every push; a long block's table is made once and not kept)."""
         key = (weights.size, weights.tobytes())
-        table = self._tables.get(key)
-        if table is None:
-            table = np.sqrt(weights).astype(np.float32)[:, None] * self._w32
+        made = self._tables.get(key)
+        if made is None:
+            root = np.sqrt(weights).astype(np.float32)
+            inverse = np.zeros_like(root)
+            np.divide(1.0, root, out=inverse, where=root > 1e-30)
+            made = (root[:, None] * self._w32, inverse, np.flatnonzero(inverse == 0.0))
             if weights.size <= 16:
                 if len(self._tables) > 16:
                     self._tables.clear()
-                self._tables[key] = table
-        return table
+                self._tables[key] = made
+        return made
 
     def push_power(
         self,
@@ -652,7 +738,7 @@ class FilterBank:
             if self._work.shape[1] < p_count:
                 self._work = np.empty((c_count, p_count, n), dtype=np.float32)
             tones = self._tones_direct(np.multiply(frames, self._w32, out=self._work[:, :p_count]))
-        table = self._window_table(a)
+        table, inverse_root, lost = self._window_table(a)
         # Channels per chunk: about _CHUNK_FRAMES frames, whole groups of lanes.
         step = max(1, _CHUNK_FRAMES // p_count)
         while step > 1 and (step * p_count) % _FFT_LANES:
@@ -663,6 +749,10 @@ class FilterBank:
             self._chunk = np.zeros((rows, n), dtype=np.float32)
             self._spec = np.empty((rows, self.grid.bins), dtype=np.complex64)
         sums = np.empty((step, 2 * q), dtype=np.float32)
+        # The frames' DC lines, for the tones' DC (√a_p·X[p, 0] until divided below).
+        x0 = None
+        if self.remove_dc and tones.shape[2]:
+            x0 = np.empty((c_count, p_count), np.float32)
         for c0 in range(0, c_count, step):
             c1 = min(c_count, c0 + step)
             used = (c1 - c0) * p_count
@@ -672,6 +762,10 @@ class FilterBank:
             if pad > used:
                 self._chunk[used:pad] = 0.0  # the FFT may have left anything there
             spec = _rfft_into(self._chunk[:pad], self._spec[:pad])
+            # The weights are linear in x: √a_p·X[p, 0] carries the same √a_p as the lines.
+            self._remove_dc(spec[:used, :q])
+            if x0 is not None:
+                x0[c0:c1] = spec[:used, 0].real.reshape(c1 - c0, p_count)
             # Σ_p of re² and im² on the interleaved floats, then the pairs. Squaring in place
             # and adding frames beats one einsum (whose loop here is not vectorised): 23 vs
             # 29 µs for 12 frames, measured.
@@ -685,4 +779,9 @@ class FilterBank:
                 for i in range(2, p_count):
                     sm += v[:, i]
             np.add(sm[:, 0::2], sm[:, 1::2], out=power[c0:c1])
+        if x0 is not None:
+            x0 *= inverse_root  # √a_p·X[p, 0] → X[p, 0]
+            if lost.size:  # a frame weighted (nearly) 0: its DC line directly
+                x0[:, lost] = frames[:, lost] @ self._w32
+            self._remove_tone_dc(tones, x0)
         return PowerBatch(start=self._consume(p_count), power=power, tones=tones)

@@ -7,8 +7,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from dsp.averaging import Averager
-from dsp.filterbank import FilterBank, FrameGrid
+from dsp.filterbank import FilterBank, FrameGrid, dc_shape
 from dsp.scaling import power_spectrum, psd_from_power
+from dsp.windows import get_window
 
 
 def _signal(c=3, n=20000, fs=4096.0, seed=1):
@@ -182,20 +183,22 @@ def test_block_tones_restart_after_a_gap_and_a_new_tone_set():
     np.testing.assert_allclose(b.tones[0, 0], ref, rtol=0, atol=2e-6 * np.abs(ref).max())
 
 
+@pytest.mark.parametrize("remove_dc", [False, True])
 @pytest.mark.parametrize("channels,overlap,window", [(1, 0.75, "hann"), (7, 0.75, "kaiser"),
                                                      (5, 0.6, "hann"), (64, 0.5, "flattop")])
-def test_push_power_equals_the_weighted_sum_of_push(channels, overlap, window):
+def test_push_power_equals_the_weighted_sum_of_push(channels, overlap, window, remove_dc):
     # The fused path (window with √a_p folded in, a few channels at a time, padded FFT
     # batches) against the straightforward one: push's spectra, |X|² and Σ_p a_p·|X|² in
-    # float64 (and its tones unchanged).
+    # float64 (and its tones unchanged); with a DC offset, removed or not the same way.
     n, fs = 512, 4096.0
     grid = FrameGrid(fs=fs, n=n, hop=FrameGrid.hop_for(n, overlap), keep=200)
     tones = np.linspace(50.0, 1500.0, 3)
-    ref_bank = FilterBank(grid, channels, window, tone_hz=tones)
-    fast = FilterBank(grid, channels, window, tone_hz=tones)
+    ref_bank = FilterBank(grid, channels, window, tone_hz=tones, remove_dc=remove_dc)
+    fast = FilterBank(grid, channels, window, tone_hz=tones, remove_dc=remove_dc)
     rng = np.random.default_rng(9)
     x = rng.normal(size=(channels, 12_000)).astype(np.float32)
     x += np.sin(2 * np.pi * 321.0 * np.arange(x.shape[1]) / fs).astype(np.float32)
+    x += 2.0
     for part in np.split(x, [300, 2000, 2100, 6000, 6001, 9000], axis=1):
         p = fast.frames_ready(part.shape[1])
         a = rng.uniform(0.0, 1.0, p)
@@ -243,3 +246,84 @@ def test_push_power_errors():
     with pytest.raises(ValueError, match=r"block has shape \(3, 10\); expected \(2, n\)"):
         fb.push_power(np.zeros((3, 10), np.float32), [])
     assert fb.pending == 0 and fb.frames_ready(64) == 1
+
+
+WINDOWS = ["rectangular", "hann", "hamming", "blackman-harris", "flattop", "kaiser"]
+
+
+@pytest.mark.parametrize("window", WINDOWS)
+@pytest.mark.parametrize("power", [False, True])
+@pytest.mark.parametrize("overlap", [0.75, 0.6])
+def test_remove_dc_gives_the_spectrum_of_the_frame_less_its_window_weighted_mean(
+    window, power, overlap
+):
+    # Direct computation in float64, frame by frame: c = Σ w·x / Σ w, Y = rfft(w·(x − c));
+    # the bank's lines q ≥ 1 must equal Y[q] and its DC line the plain rfft(w·x)[0]
+    # (docs/low-frequency.md); tracked tones Σ w·(x − c)·e^(−2πi·f·k/fs), by hop-long
+    # blocks (75 %: the hop divides N) and on windowed frames (60 %: it does not).
+    # Offsets of several g, a sine off a line centre, noise.
+    n, fs = 1024, 2560.0
+    grid = FrameGrid.from_n(n, fs, overlap=overlap)
+    tone_hz = np.array([0.0, 20.3, 100.3, 777.7])
+    rng = np.random.default_rng(21)
+    k = np.arange(9000)
+    x = rng.normal(0.0, 0.2, (3, k.size))
+    x += np.array([[5.0], [-3.0], [0.5]]) + np.sin(2 * np.pi * 100.3 * k / fs)
+    x = x.astype(np.float32)
+    fb = FilterBank(grid, 3, window, remove_dc=True, tone_hz=tone_hz)
+    plain = FilterBank(grid, 3, window)
+    w = get_window(window, n)  # type: ignore[arg-type]
+    frames = np.lib.stride_tricks.sliding_window_view(x.astype(np.float64), n, axis=1)
+    frames = frames[:, :: grid.hop]
+    c = (frames @ w) / w.sum()
+    want = np.fft.rfft(w * (frames - c[..., None]), axis=-1)
+    want[..., 0] = np.fft.rfft(w * frames, axis=-1)[..., 0]
+    kern = w * np.exp(-2j * np.pi * tone_hz[:, None] * np.arange(n) / fs)  # [T, N]
+    want_tones = (frames - c[..., None]) @ kern.T
+    atol = 2e-6 * np.abs(want[..., 0]).max()
+    if power:  # the fused path; one frame weighted 0 (its DC line is then found directly)
+        a = np.ones(frames.shape[1])
+        a[1] = 0.0
+        batch = fb.push_power(x, a)
+        np.testing.assert_allclose(
+            batch.power, np.einsum("p,cpq->cq", a, np.abs(want) ** 2),
+            rtol=2e-5, atol=atol * np.abs(want).max(),
+        )
+        np.testing.assert_allclose(batch.tones, want_tones, rtol=0, atol=atol)
+        return
+    batch = fb.push(x)
+    got = batch.spectra
+    np.testing.assert_allclose(batch.tones, want_tones, rtol=0, atol=atol)
+    raw = plain.push(x).spectra
+    assert got.shape == want.shape
+    np.testing.assert_allclose(got, want, rtol=0, atol=atol)
+    np.testing.assert_array_equal(got[..., 0], raw[..., 0])
+    # Without the removal, the offsets' share c·W[q] is what differs, on exactly the
+    # lines dc_shape names: none for rectangular, 1 for Hann/Hamming, all for Kaiser.
+    span = dc_shape(w).size
+    assert span == {"rectangular": 0, "hann": 1, "hamming": 1, "blackman-harris": 3,
+                    "flattop": 4, "kaiser": n // 2}[window]
+    share = np.abs(raw - got)[..., 1:]
+    if span:
+        assert share[..., :span].max() > 1e3 * atol
+    np.testing.assert_allclose(share[..., span:], 0.0, atol=atol)
+
+
+def test_window_weighted_mean_matches_welch_constant_detrend_for_an_offset():
+    # Reference: scipy.signal.welch(detrend="constant") subtracts the plain mean. For an
+    # offset plus tones on line centres (whole cycles per frame) under Hann, the plain and
+    # the window-weighted means are both the offset, so the PSDs agree on every line but
+    # DC; the DC line differs by design: welch's reads ~0, ours reads the offset (c² / ENBW).
+    fs, n = 4096.0, 1024
+    grid = FrameGrid.from_n(n, fs, overlap=0.5)
+    k = np.arange(16_384)
+    x = (4.0 + np.sin(2 * np.pi * 200.0 * k / fs) + 0.3 * np.sin(2 * np.pi * 12.0 * k / fs))
+    fb = FilterBank(grid, 1, "hann", remove_dc=True)
+    avg = Averager("linear", 10_000)
+    avg.update(power_spectrum(fb.push(x[None].astype(np.float32)).spectra, fb.info.s1, n))
+    ours = psd_from_power(avg.value, fb.info.enbw_hz(fs))[0]
+    _, ref = scipy.signal.welch(x, fs, window="hann", nperseg=n, noverlap=n - grid.hop,
+                                detrend="constant", average="mean")
+    np.testing.assert_allclose(ours[1:], ref[1:], rtol=1e-5, atol=1e-6 * ref.max())
+    assert ref[0] < 1e-9 * ref.max()
+    assert ours[0] == pytest.approx(16.0 / fb.info.enbw_hz(fs), rel=1e-5)

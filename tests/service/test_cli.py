@@ -230,10 +230,14 @@ def test_analyze_wav_scaling_and_spectrum_match_scipy_welch(
     doc, _ = _analyze(capsys, str(wav_path), "--unit", "g")  # no sensitivity: ±1 full scale
     spectrum = np.array(doc["channels"][0]["spectrum"])
     _, x = scipy.io.wavfile.read(wav_path)
-    # scipy.signal.welch: same periodic Hann frames, 75 % overlap, linear mean, RMS² per line
-    _, ps = scipy.signal.welch(x / 2**15, FS, window="hann", nperseg=N_FRAME, noverlap=3072,
-                               detrend=False, scaling="spectrum")
-    ref = np.sqrt(ps[:1601])
+    # scipy.signal.welch: same periodic Hann frames, 75 % overlap, linear mean, RMS² per line;
+    # lines q >= 1 of each frame less its window-weighted mean (docs/low-frequency.md), which
+    # welch takes as a detrend function, and the DC line of the frames as they are
+    w = scipy.signal.get_window("hann", N_FRAME)
+    ps = [scipy.signal.welch(x / 2**15, FS, window="hann", nperseg=N_FRAME, noverlap=3072,
+                             detrend=d, scaling="spectrum")[1]
+          for d in (False, lambda seg: seg - (seg @ w / w.sum())[..., None])]
+    ref = np.sqrt(np.r_[ps[0][:1], ps[1][1:1601]])
     big = ref > 1e-3 * ref.max()
     np.testing.assert_allclose(spectrum[big], ref[big], rtol=2e-4)
     np.testing.assert_allclose(spectrum[~big], ref[~big], atol=1e-6 * ref.max())
