@@ -96,7 +96,8 @@ def dc_shape(w: np.ndarray, *, floor: float = DC_SHAPE_FLOOR) -> np.ndarray:
     if np.abs(shape.imag).max(initial=0.0) > 1e-12:
         raise ValueError("the window is not DFT-even (w[k] = w[N − k]): its transform is not real")
     above = np.flatnonzero(np.abs(shape) > floor)
-    return shape.real[: above[-1] + 1 if above.size else 0].astype(np.float32)
+    out: np.ndarray = shape.real[: above[-1] + 1 if above.size else 0].astype(np.float32)
+    return out
 
 
 def _pocketfft_r2c() -> object | None:
