@@ -8,6 +8,12 @@ let shown = false;
 /** Resolve once the service lets this browser read: at once when it asks for no token or the
  *  kept one is good; otherwise after the prompt (the page reloads after a sign-in). */
 export async function signIn() {
+  // A link "…/#token=T" (the demo prints one) signs in at once: the fragment never leaves the
+  // browser, and it is taken out of the address bar and the history straight away.
+  if (location.hash.startsWith("#token=")) {
+    token.set(decodeURIComponent(location.hash.slice("#token=".length)));
+    history.replaceState(null, "", `${location.pathname}${location.search}#/`);
+  }
   const dlg = document.getElementById("dlg-signin");
   document.getElementById("signin-form").addEventListener("submit", onSubmit);
   document.getElementById("signout").addEventListener("click", () => {

@@ -54,6 +54,8 @@ def cmd_demo(args: argparse.Namespace) -> int:
         # the demo has [[tokens]], so its dashboard asks for one (README "Access")
         print(f"demo operator token (sign in with it; it may acknowledge alarms): {token}",
               flush=True)
+        host_port = cfg.service.listen
+        print(f"or open http://{host_port}/#token={token} to sign in at once", flush=True)
 
     return int(app.run_service(cfg, announce=announce))
 

@@ -765,3 +765,20 @@ def test_no_page_asks_anything_beyond_the_service(demo: Service, page: tuple[Any
     assert outside == [], outside
     assert any(u.startswith(base + "/docs-assets/") for u in asked)
     assert not log.errors, log.errors
+
+
+def test_a_token_link_signs_in_at_once_and_leaves_no_token_in_the_address(
+    demo: Service, browser: Any
+) -> None:
+    """`quaver demo` prints …/#token=T: opening it signs in without the prompt, keeps the token
+    for the session only, and the fragment (never sent to a server) is taken out of the
+    address bar straight away."""
+    pg = browser.new_page()  # no token kept: a first visit
+    try:
+        pg.goto(f"{demo.base_url}/#token=quaver-demo-operator", wait_until="domcontentloaded")
+        pg.wait_for_function("window.quaver !== undefined", timeout=15000)
+        assert "token=" not in pg.url
+        assert not pg.is_visible("#dlg-signin[open]")
+        assert pg.evaluate("Object.values(sessionStorage)") == ["quaver-demo-operator"]
+    finally:
+        pg.close()
