@@ -61,7 +61,7 @@ _PUBLIC: dict[str, str] = {
     "StagePlan": "decimate", "design_stage": "decimate", "plan_chain": "decimate",
     "envelope_spectrum": "envelope",
     "FMAX_RATIO": "filterbank", "FilterBank": "filterbank", "FrameBatch": "filterbank",
-    "FrameGrid": "filterbank", "PowerBatch": "filterbank",
+    "FrameGrid": "filterbank", "PowerBatch": "filterbank", "dc_shape": "filterbank",
     "BearingFrequencies": "kinematics", "BearingOrders": "kinematics",
     "bearing_frequencies": "kinematics", "gear_mesh_hz": "kinematics",
     "sidebands": "kinematics",
@@ -133,6 +133,7 @@ __all__ = [
     "bearing_frequencies",
     "bin_response",
     "check_choice",
+    "dc_shape",
     "check_index_span",
     "check_window",
     "design_stage",
@@ -217,7 +218,7 @@ if TYPE_CHECKING:  # what type checkers and editors see; the run-time path is __
         plan_chain,
     )
     from .envelope import envelope_spectrum
-    from .filterbank import FMAX_RATIO, FilterBank, FrameBatch, FrameGrid, PowerBatch
+    from .filterbank import FMAX_RATIO, FilterBank, FrameBatch, FrameGrid, PowerBatch, dc_shape
     from .kinematics import (
         BearingFrequencies,
         BearingOrders,

@@ -87,6 +87,20 @@ def dc_shape(w: np.ndarray, *, floor: float = DC_SHAPE_FLOOR) -> np.ndarray:
     Blackman–Harris, 4 for flat-top; every line for Kaiser, whose sidelobes never fall to
     the floor.
 
+    Parameters
+    ----------
+    w : ndarray
+        The window, N samples, DFT-even.
+    floor : float, optional
+        Relative level, dimensionless, at or below which a line is left out (default 1e-9).
+
+    Returns
+    -------
+    ndarray
+        float32[span − 1], W[q]/W[0] for q = 1 … span − 1.
+
+    Examples
+    --------
     >>> from dsp.windows import get_window
     >>> [round(float(v), 3) for v in dc_shape(get_window("hann", 16))]
     [-0.5]
