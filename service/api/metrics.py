@@ -16,7 +16,7 @@ from prometheus_client.registry import Collector
 
 from ..context import ServiceContext
 from ..hub import Hub
-from ..quality import CHANNEL_STATUSES
+from ..quality import CHANNEL_STATUSES, SUSPENDING
 from ..types import COUNTER_NAMES
 from .deps import HubDep, MaybeServiceDep
 
@@ -52,6 +52,11 @@ class _ServiceCollector(Collector):
             labels=["channel", "profile"],
         )
         for (cid, prof), f in hub.by_profile.items():
+            age.add_metric([cid, prof], f.t_ns / 1e9)
+            if hub.channels[cid].status in SUSPENDING:
+                # not live (no signal, failed, sensor fault): its last values are not current,
+                # so they are not scraped as if they were; quaver_channel_status says why
+                continue
             if math.isfinite(f.overall):
                 overall.add_metric([cid, prof, f.unit], f.overall)
             for b in f.bands:
@@ -60,7 +65,6 @@ class _ServiceCollector(Collector):
             for t in f.tones:
                 if math.isfinite(t.value):
                     tone.add_metric([cid, prof, t.name, f.unit], t.value)
-            age.add_metric([cid, prof], f.t_ns / 1e9)
         yield from (overall, band, tone, age)
 
         status = GaugeMetricFamily(

@@ -87,6 +87,8 @@ def test_a_silent_producer_turns_the_channel_no_signal_and_a_later_danger_is_rai
         assert [(c["channel"], c["status"]) for c in health["not_ok"]] == [("a", "no-signal")]
         assert _metric(svc, r'quaver_channel_status\{channel="a",status="no-signal"\}') == 1.0
         assert _metric(svc, r'quaver_channel_status\{channel="a",status="ok"\}') == 0.0
+        # its last overall is not scraped as if it were current (it was, before: frozen)
+        assert _metric(svc, r'quaver_overall\{channel="a",[^}]*\}') is None
         # the loss-of-signal alarm is raised; the band rule keeps its state, value hidden
         alarms = _alarms(svc)
         assert alarms["a.signal"]["state"] == "alert"
@@ -108,6 +110,8 @@ def test_a_silent_producer_turns_the_channel_no_signal_and_a_later_danger_is_rai
         assert alarms["a.signal"]["state"] == "normal"
         assert abs(alarms["a.band.b"]["value"] - DANGER_PEAK / np.sqrt(2)) < 0.02
         assert svc.health()["status"] == "ok"
+        overall = _metric(svc, r'quaver_overall\{channel="a",[^}]*\}')
+        assert overall is not None and overall > 1.0  # live again: scraped again
         changes = _metric(svc, r'quaver_channel_status_changes_total\{channel="a"\}')
         assert changes is not None and changes >= 3  # first ok, no-signal, ok again
         sock.close()
