@@ -273,7 +273,7 @@ class AlarmEngine:
             a.clear_ack()
         return AlarmEvent(
             t_ns=t_ns, channel=a.rule.channel, rule=a.rule.id, kind="transition",
-            from_state=before.value, to_state=after.value, value=a.value, level=1.0,
+            from_state=before.value, to_state=after.value, value=None, level=None,
             unit="", message=msg, latched=a.latched,
         )
 

@@ -294,6 +294,7 @@ def test_loss_of_signal_rule_goes_to_its_level_and_back() -> None:
     assert (lost.rule, lost.kind, lost.from_state, lost.to_state) == (
         "m1.signal", "transition", "normal", "danger")
     assert lost.raises and "LOSS OF SIGNAL" in lost.message and "no new spectrum" in lost.message
+    assert (lost.value, lost.level) == (None, None)  # no number to show: the message says why
     assert engine.set_channel_status("m1", "failed", t + 2) == []  # still lost: no new event
     assert engine.view("m1.signal").danger == 1.0 and engine.view("m1.signal").alert is None
     (back,) = engine.set_channel_status("m1", "ok", t + 3)
