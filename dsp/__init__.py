@@ -56,9 +56,9 @@ _PUBLIC: dict[str, str] = {
     "band_edges": "bands", "band_rms": "bands", "band_weights": "bands",
     "octave_bands": "bands", "overall_rms": "bands", "severity_range_hz": "bands",
     "severity_zone": "bands",
-    "MIN_FACTOR": "decimate", "MAX_FACTOR": "decimate", "ChainPlan": "decimate",
+    "MIN_FACTOR": "chainplan", "MAX_FACTOR": "chainplan", "ChainPlan": "chainplan",
     "DecimationChain": "decimate", "Decimator": "decimate", "MultiRate": "decimate",
-    "StagePlan": "decimate", "design_stage": "decimate", "plan_chain": "decimate",
+    "StagePlan": "chainplan", "design_stage": "chainplan", "plan_chain": "chainplan",
     "envelope_spectrum": "envelope",
     "FMAX_RATIO": "filterbank", "FilterBank": "filterbank", "FrameBatch": "filterbank",
     "FrameGrid": "filterbank", "PowerBatch": "filterbank", "dc_shape": "filterbank",
@@ -206,17 +206,8 @@ if TYPE_CHECKING:  # what type checkers and editors see; the run-time path is __
         severity_range_hz,
         severity_zone,
     )
-    from .decimate import (
-        MAX_FACTOR,
-        MIN_FACTOR,
-        ChainPlan,
-        DecimationChain,
-        Decimator,
-        MultiRate,
-        StagePlan,
-        design_stage,
-        plan_chain,
-    )
+    from .chainplan import MAX_FACTOR, MIN_FACTOR, ChainPlan, StagePlan, design_stage, plan_chain
+    from .decimate import DecimationChain, Decimator, MultiRate
     from .envelope import envelope_spectrum
     from .filterbank import FMAX_RATIO, FilterBank, FrameBatch, FrameGrid, PowerBatch, dc_shape
     from .kinematics import (

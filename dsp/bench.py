@@ -36,7 +36,8 @@ import scipy.signal
 
 from .analyzer import AnalysisSpec, Analyzer, ToneDef
 from .bands import Band
-from .decimate import DecimationChain, plan_chain
+from .chainplan import plan_chain
+from .decimate import DecimationChain
 from .filterbank import FrameGrid
 from .windows import get_window
 

@@ -20,7 +20,8 @@ import numpy as np
 
 from dsp.analyzer import AnalysisSpec, Analyzer, ToneDef, low_limit_hz, resolve_unit
 from dsp.bands import Band
-from dsp.decimate import MultiRate, plan_chain
+from dsp.chainplan import plan_chain
+from dsp.decimate import MultiRate
 from dsp.filterbank import FMAX_RATIO, FrameGrid
 from dsp.windows import window_info
 

@@ -10,15 +10,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from dsp.analyzer import AnalysisSpec, Analyzer, ToneDef
-from dsp.decimate import (
-    ChainPlan,
-    DecimationChain,
-    Decimator,
-    MultiRate,
-    StagePlan,
-    design_stage,
-    plan_chain,
-)
+from dsp.chainplan import ChainPlan, StagePlan, design_stage, plan_chain
+from dsp.decimate import DecimationChain, Decimator, MultiRate
 from dsp.filterbank import FrameGrid
 
 EPS32 = np.finfo(np.float32).eps

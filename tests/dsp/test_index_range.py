@@ -11,7 +11,8 @@ import numpy as np
 import pytest
 
 from dsp.analyzer import AnalysisSpec, Analyzer
-from dsp.decimate import DecimationChain, Decimator, MultiRate, plan_chain
+from dsp.chainplan import plan_chain
+from dsp.decimate import DecimationChain, Decimator, MultiRate
 from dsp.filterbank import FilterBank, FrameGrid
 from dsp.types import INDEX_MAX, INDEX_MIN, check_index_span
 

@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 import scipy.signal
 
-from dsp.decimate import plan_chain
+from dsp.chainplan import plan_chain
 from service.alarms import rules_from_config
 from service.app import demo_config
 from service.config import (
