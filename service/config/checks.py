@@ -102,6 +102,7 @@ class _Checker:
         if len(self.problems) == before:  # names are only meaningful once bands/tones are sound
             self.alarms()
         self.tokens()
+        self.machines()
         return self.problems
 
     def fs_of(self, ch: str) -> float | None:
@@ -374,6 +375,19 @@ class _Checker:
         if svc.tls_key is not None and svc.tls_cert is None:
             self.add("service.tls_cert: missing; tls_key needs its certificate (give both or "
                      "neither)")
+
+
+    def machines(self) -> None:
+        seen: dict[str, int] = {}
+        used = {c.machine for c in self.cfg.channels if c.machine}
+        for j, m in enumerate(self.cfg.machines):
+            if m.id in seen:
+                self.add(f"machines[{j}].id: {m.id!r} repeats machines[{seen[m.id]}]")
+            seen.setdefault(m.id, j)
+            if m.id not in used:
+                listed = ", ".join(repr(x) for x in sorted(used)) or "none"
+                self.add(f"machines[{j}].id: {m.id!r} is not the machine of any channel "
+                         f"(channels' machines: {listed})")
 
 
 def _cross_check(cfg: Config) -> list[str]:

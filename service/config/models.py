@@ -101,6 +101,16 @@ def _valid_listen(text: str) -> str:
 Listen = Annotated[str, AfterValidator(_valid_listen)]
 
 
+def _valid_zone(text: str) -> str:
+    from ..timefmt import zone  # zoneinfo; imported here so the models stay light
+
+    zone(text)  # raises ValueError with the reason
+    return text
+
+
+TimeZoneName = Annotated[str, AfterValidator(_valid_zone)]
+
+
 class ServiceSettings(_Model):
     listen: Listen = Field(
         "127.0.0.1:8750",
@@ -163,6 +173,12 @@ class ServiceSettings(_Model):
     )
     tls_key: str | None = Field(
         None, description="PEM private key file of tls_cert (unencrypted)."
+    )
+    timezone: TimeZoneName = Field(
+        "UTC",
+        description="Site time zone (IANA name, e.g. 'Europe/Berlin' or 'UTC'): every time "
+        "the API writes as ISO 8601 carries this zone's offset, and the dashboard shows "
+        "times in it.",
     )
     data_dir: str = Field(
         "quaver-data",
@@ -394,7 +410,12 @@ class ChannelConfig(_Model):
         None, gt=0, description="Running speed, r/min; enables order bands and tones."
     )
     machine: str = Field(
-        "", max_length=128, description="Machine this sensor is on (grouping label)."
+        "", max_length=128, description="Machine this sensor is on (grouping label; its "
+        "display name and group come from a [[machines]] entry of that id, if any)."
+    )
+    name: str = Field(
+        "", max_length=128, description="Display name, e.g. 'drive end, horizontal'; "
+        "default: the id."
     )
     description: str = Field("", max_length=1024, description="Free text, e.g. location.")
     clip_level: float | None = Field(
@@ -529,6 +550,18 @@ class AlarmConfig(_Model):
         return self
 
 
+class MachineConfig(_Model):
+    id: str = Field(
+        min_length=1, max_length=128,
+        description="Machine id: the `machine` label its channels carry.",
+    )
+    name: str = Field("", max_length=128, description="Display name; default: the id.")
+    group: str = Field(
+        "", max_length=128, description="Group for filtering, e.g. an area or machine type."
+    )
+    description: str = Field("", max_length=1024, description="Free text.")
+
+
 class TokenConfig(_Model):
     name: Name = _d("Who holds the token (for logs).")
     role: Role = _d(
@@ -561,6 +594,7 @@ class Config(_Model):
     tones: list[ToneConfig] = Field(default_factory=list, description="[[tones]]")
     alarms: list[AlarmConfig] = Field(default_factory=list, description="[[alarms]]")
     tokens: list[TokenConfig] = Field(default_factory=list, description="[[tokens]]")
+    machines: list[MachineConfig] = Field(default_factory=list, description="[[machines]]")
 
 
 MODELS: tuple[type[BaseModel], ...] = (
@@ -578,4 +612,5 @@ MODELS: tuple[type[BaseModel], ...] = (
     ToneConfig,
     AlarmConfig,
     TokenConfig,
+    MachineConfig,
 )
