@@ -17,6 +17,7 @@ from .models import (
     BandConfig,
     ChannelConfig,
     FileSourceConfig,
+    MachineConfig,
     ProfileSettings,
     ServiceSettings,
     SimulatedSourceConfig,
@@ -43,6 +44,7 @@ def describe_settings() -> list[tuple[str, str, str, str]]:
         ("[[tones]]", ToneConfig),
         ("[[alarms]]", AlarmConfig),
         ("[[tokens]]", TokenConfig),
+        ("[[machines]]", MachineConfig),
     ]
     rows = []
     for table, model in tables:
