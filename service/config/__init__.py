@@ -49,6 +49,7 @@ from .models import (
     UdpSourceConfig,
     parse_listen,
 )
+from .notify import NotifyConfig, QuietHours
 from .queries import channel_ids, channel_settings, profile_names, profiles_of, source_of
 
 __all__ = [
@@ -68,6 +69,8 @@ __all__ = [
     "ConfigError",
     "FileSourceConfig",
     "MachineConfig",
+    "NotifyConfig",
+    "QuietHours",
     "ServiceSettings",
     "SimulatedSourceConfig",
     "SourceConfig",

@@ -7,6 +7,7 @@ Knows nothing about files, sockets or storage."""
 from __future__ import annotations
 
 import ipaddress
+from collections.abc import Mapping
 
 from ..lookups import (
     _covers,
@@ -27,6 +28,7 @@ from .models import (
     UdpSourceConfig,
     parse_listen,
 )
+from .notify import check_notify_url, split_urls
 from .queries import channel_settings, profile_names, profiles_of
 
 
@@ -103,6 +105,7 @@ class _Checker:
             self.alarms()
         self.tokens()
         self.machines()
+        self.notify()
         return self.problems
 
     def fs_of(self, ch: str) -> float | None:
@@ -388,6 +391,45 @@ class _Checker:
                 listed = ", ".join(repr(x) for x in sorted(used)) or "none"
                 self.add(f"machines[{j}].id: {m.id!r} is not the machine of any channel "
                          f"(channels' machines: {listed})")
+
+    def notify(self) -> None:
+        seen: dict[str, int] = {}
+        machines = {c.machine for c in self.cfg.channels if c.machine}
+        for j, n in enumerate(self.cfg.notify):
+            if n.name in seen:
+                self.add(f"notify[{j}].name: {n.name!r} repeats notify[{seen[n.name]}]")
+            seen.setdefault(n.name, j)
+            for k, ch in enumerate(n.channels):
+                if not _is_glob(ch):
+                    self.known(ch, f"notify[{j}].channels[{k}]")
+            for k, m in enumerate(n.machines):
+                if not _is_glob(m) and m not in machines:
+                    listed = ", ".join(repr(x) for x in sorted(machines)) or "none"
+                    self.add(f"notify[{j}].machines[{k}]: {m!r} is not the machine of any "
+                             f"channel (channels' machines: {listed})")
+
+
+def _is_glob(pattern: str) -> bool:
+    return any(ch in pattern for ch in "*?[")
+
+
+def notify_env_problems(cfg: Config, env: Mapping[str, str]) -> list[str]:
+    """One line per ``[[notify]] urls_env`` that is unset or empty in ``env`` or holds a URL
+    apprise cannot use (the URL is not repeated: it may hold a password)."""
+    out = []
+    for j, n in enumerate(cfg.notify):
+        if n.urls_env is None:
+            continue
+        urls = split_urls(env.get(n.urls_env, ""))
+        if not urls:
+            out.append(f"notify[{j}].urls_env: the environment variable {n.urls_env} is unset "
+                       "or empty")
+        for k, u in enumerate(urls):
+            try:
+                check_notify_url(u)
+            except ValueError as e:
+                out.append(f"notify[{j}].urls_env: URL {k + 1} of {n.urls_env}: {e}")
+    return out
 
 
 def _cross_check(cfg: Config) -> list[str]:

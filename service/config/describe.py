@@ -26,6 +26,7 @@ from .models import (
     ToneConfig,
     UdpSourceConfig,
 )
+from .notify import NotifyConfig, QuietHours
 
 
 def describe_settings() -> list[tuple[str, str, str, str]]:
@@ -45,6 +46,8 @@ def describe_settings() -> list[tuple[str, str, str, str]]:
         ("[[alarms]]", AlarmConfig),
         ("[[tokens]]", TokenConfig),
         ("[[machines]]", MachineConfig),
+        ("[[notify]]", NotifyConfig),
+        ("[[notify]] quiet_hours", QuietHours),
     ]
     rows = []
     for table, model in tables:

@@ -15,7 +15,7 @@ from typing import Any
 from pydantic import ValidationError
 
 from ..entries import EntryProblem
-from .checks import _cross_check
+from .checks import _cross_check, notify_env_problems
 from .models import (
     ENV_OVERRIDES,
     ID_PATTERN,
@@ -52,7 +52,8 @@ def parse_config(
 ) -> Config:
     """Validate a config already parsed into dicts (e.g. built by ``quaver demo``).
 
-    ``env`` (default ``os.environ``) supplies ``QUAVER_*`` overrides; ``base_dir`` anchors
+    ``env`` (default ``os.environ``) supplies ``QUAVER_*`` overrides and the variables
+    ``[[notify]] urls_env`` names; ``base_dir`` anchors
     relative paths. Raises ConfigError listing every problem.
     """
     env = os.environ if env is None else env
@@ -67,7 +68,7 @@ def parse_config(
         cfg = Config.model_validate(raw)
     except ValidationError as e:
         raise ConfigError(_pydantic_problems(e, from_env), source=source) from None
-    problems = _cross_check(cfg)
+    problems = _cross_check(cfg) + notify_env_problems(cfg, env)
     if problems:
         raise ConfigError(problems, source=source)
     if base_dir is not None:
@@ -129,7 +130,8 @@ def _pydantic_problems(e: ValidationError, from_env: Mapping[tuple[str, str], st
             msg = "must be the 64 hex digits of a SHA-256 digest"
         else:
             msg = err["msg"].removeprefix("Value error, ")
-            if not isinstance(value, dict | list) and repr(value) not in msg:
+            secret = "urls" in loc  # a notification URL may hold a password: not echoed
+            if not isinstance(value, dict | list) and repr(value) not in msg and not secret:
                 msg += f" (got {value!r})"
         where = _path(loc)
         if len(loc) == 2 and tuple(loc) in from_env:

@@ -31,6 +31,7 @@ from dsp.windows import DEFAULT_KAISER_BETA
 
 from ..entries import check_alarm_entry, check_band_entry, check_tone_entry
 from ..wire import FileFormat, StreamFormat
+from .notify import NotifyConfig, QuietHours
 
 ENV_OVERRIDES: dict[str, tuple[str, str]] = {
     "QUAVER_LISTEN": ("service", "listen"),
@@ -595,6 +596,9 @@ class Config(_Model):
     alarms: list[AlarmConfig] = Field(default_factory=list, description="[[alarms]]")
     tokens: list[TokenConfig] = Field(default_factory=list, description="[[tokens]]")
     machines: list[MachineConfig] = Field(default_factory=list, description="[[machines]]")
+    notify: list[NotifyConfig] = Field(
+        default_factory=list, description="[[notify]]: notification targets (service.notify)"
+    )
 
 
 MODELS: tuple[type[BaseModel], ...] = (
@@ -613,4 +617,6 @@ MODELS: tuple[type[BaseModel], ...] = (
     AlarmConfig,
     TokenConfig,
     MachineConfig,
+    NotifyConfig,
+    QuietHours,
 )
