@@ -37,6 +37,7 @@ from .config import (
 )
 from .context import ReloadRefused
 from .hub import Hub
+from .notify import Notifier
 from .pipeline import ChannelState, SourcePipeline, channel_states
 from .profiles import ProfileBank
 from .quality import Inputs, derive, is_lost
@@ -99,6 +100,10 @@ class Service:
             trend_step_s=cfg.service.trend_step_s,
             retention=Retention(max_db_bytes=max_bytes),
         )
+        # [[notify]]: its router writes outbox rows in every events transaction from the start
+        self.notifier = Notifier(cfg, self.store) if cfg.notify else None
+        if self.notifier is not None:
+            self.notifier.attach()
 
     # -- lifecycle ---------------------------------------------------------------------
     async def start(self) -> None:
@@ -122,6 +127,10 @@ class Service:
         if state:
             self.alarms.restore(state)
             log.info("restored %d active/latched alarms", len(self.alarms.active()))
+        if self.notifier is not None:  # sends what an earlier run left pending, first
+            loop = asyncio.get_running_loop()
+            self.notifier.on_event = lambda ev: self._from_thread(loop, ev)
+            self.notifier.start()
         for p in self.pipelines:
             await p.source.start()
         self.started_mono = time.monotonic()
@@ -244,6 +253,8 @@ class Service:
         for p in self.pipelines:
             await p.source.aclose()
             self._store_evidence(p, final=True)
+        if self.notifier is not None:
+            await asyncio.to_thread(self.notifier.stop)
         await asyncio.to_thread(self.store.close)
 
     def app(self) -> FastAPI:
@@ -390,6 +401,11 @@ class Service:
                         "input_unit": frame.input_unit,
                     },
                 )
+
+    def _from_thread(self, loop: asyncio.AbstractEventLoop, ev: AlarmEvent) -> None:
+        """Commit and announce an event made on another thread (the notification sender's)."""
+        with contextlib.suppress(RuntimeError):  # the loop has closed: shutting down
+            asyncio.run_coroutine_threadsafe(self._commit_and_announce(None, [(ev, None)]), loop)
 
     def _store_evidence(self, p: SourcePipeline, *, final: bool = False) -> None:
         for ev in p.take_evidence(final=final):

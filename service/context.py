@@ -10,6 +10,7 @@ from typing import Any, Protocol
 from .alarms import AlarmEngine
 from .config import Config
 from .hub import Hub
+from .notify import Notifier
 from .store import Store
 
 
@@ -35,6 +36,11 @@ class ServiceContext(Protocol):
 
     @property
     def cfg(self) -> Config: ...
+
+    @property
+    def notifier(self) -> Notifier | None:
+        """The notification sender, None without [[notify]] entries."""
+        ...
 
     async def reload(self) -> dict[str, Any]:
         """Apply the config file's alarms and tokens; raises :class:`ReloadRefused`."""

@@ -12,7 +12,7 @@ from typing import Literal, get_args
 from dsp.types import check_choice
 
 RuleKind = Literal["band", "tone", "overall", "signal"]
-EventKind = Literal["transition", "ack", "status"]
+EventKind = Literal["transition", "ack", "status", "notify"]
 Cause = Literal["value", "ack"]
 # Frame times that run back by at most this are jitter (arrival-time stamps of a producer
 # sending in bursts) and hold still; further back is a clock step (our choice).
@@ -39,6 +39,8 @@ EVENT_MEANING: dict[str, str] = {
     "transition": "an alarm changed state because its value moved",
     "ack": "an operator acknowledged an alarm",
     "status": "a channel's data-quality state changed",
+    "notify": "a [[notify]] entry started failing to send (ok → failed) or sends again "
+    "(failed → ok); rule 'notify.<entry>'",
 }
 _ID_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]*$")
 _NS = 1_000_000_000

@@ -21,7 +21,8 @@ def health(hub: HubDep, service: MaybeServiceDep) -> dict[str, Any]:
     """``status`` is ``ok``, or ``degraded`` while any channel is not ``ok`` (``not_ok`` lists
     them with their state, cause and since when), a source's pipeline has failed, or the
     store cannot write (monitoring, alarms and the API go on; trends, events and evidence
-    are not being kept — see ``store``)."""
+    are not being kept — see ``store``), or a ``[[notify]]`` entry keeps failing (``notify``:
+    per entry the outbox rows pending, sent, failed and limited, and the last error)."""
     states = Counter(st.status for st in hub.channels.values())
     not_ok = [
         {"channel": st.id, "status": st.status, "cause": st.fault,
@@ -42,9 +43,13 @@ def health(hub: HubDep, service: MaybeServiceDep) -> dict[str, Any]:
     store_health = service.store.health() if service is not None else None
     store_failing = store_health is not None and not store_health["ok"]
     failed = any(p.failed for p in hub.pipelines.values())
+    notifier = service.notifier if service is not None else None
+    notify = notifier.health() if notifier is not None else None
+    notify_failing = notify is not None and not notify["ok"]
     return {
-        "status": "degraded" if store_failing or not_ok or failed else "ok",
+        "status": "degraded" if store_failing or not_ok or failed or notify_failing else "ok",
         "store": store_health,
+        "notify": notify,
         "version": __version__,
         "uptime_s": round((time.time_ns() - hub.started_ns) / 1e9, 3),
         "channels": dict(states),

@@ -8,6 +8,7 @@ import gc
 import math
 import time
 from collections.abc import Iterator
+from typing import Any
 
 from fastapi import APIRouter, Response
 from prometheus_client import CollectorRegistry, GCCollector, ProcessCollector, generate_latest
@@ -190,12 +191,42 @@ class _ServiceCollector(Collector):
         )
         ok.add_metric([], 1.0 if h["ok"] else 0.0)
         yield ok
+        if self.service.notifier is not None:
+            yield from _notify_metrics(self.service.notifier.health())
         for key, what in (("write_errors", "Failed store writes"),
                           ("events_written", "Alarm events committed"),
                           ("trend_buckets_written", "Trend buckets committed")):
             m = CounterMetricFamily(f"quaver_store_{key}", what)
             m.add_metric([], float(h[key]))
             yield m
+
+
+def _notify_metrics(h: dict[str, Any]) -> Iterator[Metric]:
+    """Per [[notify]] entry: messages sent and failed attempts since start, outbox rows
+    pending, given up and rate-limited (as stored), and 1 while it is failing."""
+    fams: dict[str, CounterMetricFamily | GaugeMetricFamily] = {
+        "sent": CounterMetricFamily("quaver_notify_sent", "Notifications sent since start",
+                                    labels=["entry"]),
+        "failed_attempts": CounterMetricFamily(
+            "quaver_notify_failed", "Failed send attempts since start (each retry counts)",
+            labels=["entry"]),
+        "pending": GaugeMetricFamily("quaver_notify_pending",
+                                     "Outbox rows waiting to be sent", labels=["entry"]),
+        "failed": GaugeMetricFamily("quaver_notify_given_up",
+                                    "Outbox rows given up (kept until pruned)", labels=["entry"]),
+        "limited": GaugeMetricFamily("quaver_notify_limited",
+                                     "Outbox rows held back by the rate limit (until pruned)",
+                                     labels=["entry"]),
+        "failing": GaugeMetricFamily("quaver_notify_failing",
+                                     "1 while the entry's last attempt failed", labels=["entry"]),
+    }
+    for name, e in h["entries"].items():
+        fams["sent"].add_metric([name], float(e["sent_since_start"]))
+        fams["failed_attempts"].add_metric([name], float(e["failed_attempts"]))
+        for k in ("pending", "failed", "limited"):
+            fams[k].add_metric([name], float(e[k]))
+        fams["failing"].add_metric([name], 1.0 if e["failing"] else 0.0)
+    yield from fams.values()
 
 
 @router.get(

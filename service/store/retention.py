@@ -33,6 +33,8 @@ class Retention:
     evidence_s: float | None = 365 * DAY_S
     events_s: float | None = None
     max_db_bytes: int | None = None
+    # outbox rows done (sent, given up, rate-limited) are kept this long, in wall time
+    outbox_s: float | None = 30 * DAY_S
 
 
 def apply_retention(

@@ -71,9 +71,29 @@ _V2 = """
 CREATE INDEX IF NOT EXISTS events_rule ON events(rule, id);
 """
 
+# Step 3: the notification outbox. A row per (event, [[notify]] entry) is written in the
+# transaction of its event and marked when sent, so a message is neither lost nor sent twice
+# across a crash (service.notify). ``grp`` is the event id the message is keyed by: the
+# row's own, or the first event of the digest the row is gathered into. ``store_id`` names
+# this database in every idempotency key (random, made once).
+_V3 = """
+CREATE TABLE IF NOT EXISTS outbox(
+    id INTEGER PRIMARY KEY AUTOINCREMENT,
+    event_id INTEGER NOT NULL REFERENCES events(id) ON DELETE CASCADE,
+    entry TEXT NOT NULL, grp INTEGER NOT NULL, digest INTEGER NOT NULL,
+    state TEXT NOT NULL CHECK (state IN ('pending', 'sent', 'failed', 'limited')),
+    created_ns INTEGER NOT NULL, due_ns INTEGER NOT NULL,
+    attempts INTEGER NOT NULL DEFAULT 0, last_error TEXT NOT NULL DEFAULT '',
+    done_ns INTEGER, UNIQUE(event_id, entry));
+CREATE INDEX IF NOT EXISTS outbox_due ON outbox(state, due_ns);
+CREATE INDEX IF NOT EXISTS outbox_entry ON outbox(entry, created_ns);
+INSERT OR IGNORE INTO meta(key, value) VALUES ('store_id', lower(hex(randomblob(8))));
+"""
+
 MIGRATIONS: tuple[Migration, ...] = (
     Migration("the schema before migrations: events, alarm state, evidence, trends", _V1),
     Migration("index the event log by rule", _V2),
+    Migration("the notification outbox and the store's id", _V3),
 )
 
 

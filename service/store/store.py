@@ -8,7 +8,8 @@ from __future__ import annotations
 
 import json
 import sqlite3
-from collections.abc import Mapping, Sequence
+import time
+from collections.abc import Callable, Mapping, Sequence
 from concurrent.futures import Future
 from pathlib import Path
 from typing import Any
@@ -17,6 +18,7 @@ import numpy as np
 
 from ..alarms import AlarmEvent
 from . import events as ev
+from . import outbox as ob
 from . import trends as tr
 from .retention import Retention, apply_retention
 from .writer import Writer, resolved
@@ -55,6 +57,11 @@ class Store(Writer):
         self.events_written = 0
         self.buckets_written = 0
         self.db_bytes: int | None = None
+        # Notifications (service.notify): the router turns committed events into outbox rows
+        # in their own transaction; ``on_outbox`` is called (writer thread) after a commit
+        # that wrote some. Set both before start().
+        self.notify_router: ob.OutboxRouter | None = None
+        self.on_outbox: Callable[[], None] | None = None
 
     def __enter__(self) -> Store:
         self.start()
@@ -98,19 +105,68 @@ class Store(Writer):
         evs = list(events)
         state = None if alarm_state is None else json.dumps(alarm_state, allow_nan=False)
 
+        router = self.notify_router
+        routed = [0]
+
         def write(c: sqlite3.Connection) -> list[AlarmEvent]:
             out = ev.insert_events(c, evs)
+            if router is not None and out:
+                # the outbox rows commit (or roll back) with their events: never one alone
+                now_ns = time.time_ns()
+                stats = {name: ob.entry_stats(c, name, now_ns, rate_s, digest_s)
+                         for name, (rate_s, digest_s) in router.windows().items()}
+                rows = router.route(out, stats, now_ns)
+                ob.insert_rows(c, rows, now_ns)
+                routed[0] = sum(r.state == "pending" for r in rows)
             if state is not None:
                 ev.write_state(c, state)
             return out
 
         fut = self._submit(write, durable=True)
-        fut.add_done_callback(self._count_events)
+        fut.add_done_callback(lambda f: self._count_events(f, routed[0]))
         return fut
 
-    def _count_events(self, fut: Future[list[AlarmEvent]]) -> None:
+    def _count_events(self, fut: Future[list[AlarmEvent]], routed: int) -> None:
         if not fut.cancelled() and fut.exception() is None:
             self.events_written += len(fut.result())
+            if routed and self.on_outbox is not None:
+                self.on_outbox()
+
+    # -- the notification outbox (service.notify sends; see service.store.outbox) ---------
+    def outbox_due(self, now_ns: int, limit: int = 50) -> list[dict[str, Any]]:
+        """Pending outbox rows due at ``now_ns`` with their events (read, any thread)."""
+        with self._read() as c:
+            return ob.select_due(c, now_ns, limit)
+
+    def outbox_counts(self) -> dict[str, dict[str, int]]:
+        """Outbox rows per entry and state (read, any thread)."""
+        with self._read() as c:
+            return ob.select_counts(c)
+
+    def outbox_rows(self, entry: str | None = None) -> list[dict[str, Any]]:
+        """Every outbox row (of ``entry``), oldest first (read, any thread)."""
+        with self._read() as c:
+            return ob.select_rows(c, entry)
+
+    def store_id(self) -> str:
+        """This database's random id, written once by schema step 3 ("" before it exists)."""
+        with self._read() as c:
+            return ob.store_id(c)
+
+    def outbox_sent(self, row_ids: Sequence[int], now_ns: int) -> Future[int]:
+        """Queue: rows sent (durable, like events)."""
+        ids = list(row_ids)
+        return self._submit(lambda c: ob.mark_sent(c, ids, now_ns), durable=True)
+
+    def outbox_retry(self, row_ids: Sequence[int], due_ns: int, error: str) -> Future[int]:
+        """Queue: one more failed attempt; next one not before ``due_ns``."""
+        ids = list(row_ids)
+        return self._submit(lambda c: ob.mark_retry(c, ids, due_ns, error), durable=True)
+
+    def outbox_failed(self, row_ids: Sequence[int], now_ns: int, error: str) -> Future[int]:
+        """Queue: rows given up."""
+        ids = list(row_ids)
+        return self._submit(lambda c: ob.mark_failed(c, ids, now_ns, error), durable=True)
 
     def save_alarm_state(self, snapshot: Mapping[str, Any]) -> Future[None]:
         """Queue the alarm engine's snapshot (JSON-safe dict); durable like events."""
@@ -241,6 +297,9 @@ class Store(Writer):
     def _maintain(self, c: sqlite3.Connection, now_ns: int | None) -> dict[str, Any]:
         """Retention by age, then by size (see :class:`Retention`); own transactions."""
         report, error = apply_retention(c, self.tiers_s, self.retention, now_ns)
+        if self.retention.outbox_s is not None:  # wall clock: the outbox's times are
+            cutoff = time.time_ns() - round(self.retention.outbox_s * 1e9)
+            report["deleted"]["outbox"] = ob.prune(c, cutoff)
         if error:
             self._error(f"{self.path} {error}")
         self.db_bytes = report["db_bytes"]
