@@ -33,9 +33,9 @@ class _Model(BaseModel):
 
 
 def split_urls(text: str) -> list[str]:
-    """The URLs in ``text`` (one environment variable may hold several: spaces, commas or
-    new lines between them)."""
-    return [u for u in re.split(r"[\s,]+", text) if u]
+    """The URLs in ``text`` (one environment variable may hold several, with spaces or new
+    lines between them; a comma may be part of a URL, e.g. two e-mail recipients)."""
+    return text.split()
 
 
 def check_notify_url(url: str) -> str:
@@ -85,8 +85,8 @@ class NotifyConfig(_Model):
     urls_env: str | None = Field(
         None,
         pattern=_ENV_NAME,
-        description="Name of an environment variable holding more apprise URLs (spaces or "
-        "commas between them): keeps passwords out of the file. Checked at load.",
+        description="Name of an environment variable holding more apprise URLs (spaces "
+        "between them): keeps passwords out of the file. Checked at load.",
     )
     events: list[NotifyEvent] = Field(
         default_factory=lambda: list(DEFAULT_EVENTS),
