@@ -7,20 +7,19 @@ from __future__ import annotations
 
 import sqlite3
 import time
-from datetime import UTC, datetime
 from collections.abc import Callable, Iterator
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
 import pytest
+from notify_receivers import mail_url, smtp_server, webhook
 
 from service.alarms import AlarmEvent
 from service.config import parse_config
 from service.notify import CAUTION, Notifier
 from service.store import Store, StoreError
 from service.store.schema import MIGRATIONS, migrate, schema_version
-
-from notify_receivers import mail_url, smtp_server, webhook
 
 NS = 1_000_000_000
 WAIT_S = 20.0
