@@ -75,7 +75,6 @@ def route_events(
     *,
     machine_of: Callable[[str], str] = lambda ch: "",
     tz: str = "UTC",
-    hold_ns: int = 0,
     suppressed: Callable[[str], bool] = lambda rule: False,
 ) -> list[OutboxRow]:
     """The outbox rows for ``events`` (ids set), in order.
@@ -90,7 +89,7 @@ def route_events(
     * else ``limited`` (written, never sent) if ``rate_limit`` messages were made within
       ``rate_window_s`` — a new digest counts as one message;
     * else a new digest (due after ``digest_window_s``) when over ``digest_after``, or a
-      message of its own, due now (+ ``hold_ns``).
+      message of its own, due now.
     """
     live = {n.name: stats.get(n.name, EntryStats()) for n in entries}
     rows: list[OutboxRow] = []
@@ -117,11 +116,11 @@ def route_events(
             elif st.messages >= n.rate_limit:
                 rows.append(OutboxRow(e.id, n.name, e.id, over, "limited", now_ns))
             elif over:
-                due = now_ns + round(n.digest_window_s * NS) + hold_ns
+                due = now_ns + round(n.digest_window_s * NS)
                 rows.append(OutboxRow(e.id, n.name, e.id, True, "pending", due))
                 live[n.name] = EntryStats(st.messages + 1, st.rows + 1, (e.id, due))
             else:
-                rows.append(OutboxRow(e.id, n.name, e.id, False, "pending", now_ns + hold_ns))
+                rows.append(OutboxRow(e.id, n.name, e.id, False, "pending", now_ns))
                 live[n.name] = replace(st, messages=st.messages + 1, rows=st.rows + 1)
     return rows
 
@@ -130,11 +129,9 @@ def route_events(
 class Router:
     """The store's :class:`~service.store.outbox.OutboxRouter` for a config's ``[[notify]]``.
 
-    ``hold_s`` delays the first attempt of every message it routes (a test aid, see
-    ``QUAVER_NOTIFY_HOLD_S``); ``suppressed(rule_id)`` keeps a rule's events out (shelving)."""
+    ``suppressed(rule_id)`` keeps a rule's events out (e.g. a shelved rule)."""
 
     cfg: Config
-    hold_s: float = 0.0
     suppressed: Callable[[str], bool] = lambda rule: False
 
     def __post_init__(self) -> None:
@@ -149,6 +146,5 @@ class Router:
         return route_events(
             events, self.cfg.notify, stats, now_ns,
             machine_of=lambda ch: self._machine.get(ch, ""),
-            tz=self.cfg.service.timezone, hold_ns=round(self.hold_s * NS),
-            suppressed=self.suppressed,
+            tz=self.cfg.service.timezone, suppressed=self.suppressed,
         )

@@ -25,7 +25,9 @@ __all__ = ["HOLD_ENV", "Notifier", "send_apprise"]
 
 log = logging.getLogger("quaver.notify")
 NS = 1_000_000_000
-HOLD_ENV = "QUAVER_NOTIFY_HOLD_S"  # test aid: delay each message's first attempt, s
+# test aid: this process sends no message made since it started until that message is this
+# many seconds old (so a test can kill it between commit and send); a later run sends at once
+HOLD_ENV = "QUAVER_NOTIFY_HOLD_S"
 POLL_S = 1.0  # due rows are looked for at least this often (and at once after a commit)
 BATCH = 50  # messages looked at per pass
 DEGRADED_AFTER = 3  # consecutive failed attempts of an entry before /health says degraded
@@ -107,7 +109,8 @@ class Notifier:
             for n in cfg.notify
         }
         self.hold_s = float(env.get(HOLD_ENV, "") or 0.0)
-        self.router = Router(cfg, hold_s=self.hold_s, suppressed=suppressed)
+        self.router = Router(cfg, suppressed=suppressed)
+        self.started_ns = time.time_ns()
         self.state = {name: EntryHealth() for name in self.entries}
         self.counts: dict[str, dict[str, int]] = {}
         self.on_event: Callable[[AlarmEvent], None] | None = None
@@ -183,9 +186,13 @@ class Notifier:
         groups: dict[tuple[str, int], list[dict[str, Any]]] = {}
         for r in rows:
             groups.setdefault((r["entry"], r["grp"]), []).append(r)
+        hold_ns = round(self.hold_s * NS)
         for (entry, _), group in groups.items():
             if self._stop.is_set():
                 break
+            created = min(int(r["created_ns"]) for r in group)
+            if hold_ns and created >= self.started_ns and now < created + hold_ns:
+                continue  # test aid: this run holds its own messages back (not a later run)
             self._send_group(entry, group)
         try:
             self.counts = self.store.outbox_counts()

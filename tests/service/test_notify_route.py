@@ -129,12 +129,12 @@ def test_a_new_digest_is_one_message_against_the_rate_limit():
     assert rows == [(1, "n0", "limited")]
 
 
-def test_suppressed_rules_are_not_routed_and_hold_delays():
+def test_suppressed_rules_are_not_routed():
     c = cfg({})
-    r = Router(c, hold_s=2.5, suppressed=lambda rule: rule == "p1-de.band.b")
+    r = Router(c, suppressed=lambda rule: rule == "p1-de.band.b")
     now = at("UTC", 12, 0)
     rows = r.route([ev(1), ev(2, channel="p1-nde")], {}, now)
-    assert [(x.event_id, x.due_ns) for x in rows] == [(2, now + 2_500_000_000)]
+    assert [(x.event_id, x.due_ns) for x in rows] == [(2, now)]
     assert r.windows() == {"n0": (3600.0, 60.0)}
 
 
