@@ -100,11 +100,13 @@ def serve_command(config_path: Path) -> list[str]:
 
 
 def launch(argv: list[str], cwd: Path, log_path: Path, *, append: bool = False,
-           new_session: bool = False) -> subprocess.Popen[bytes]:
-    """Start ``argv`` in ``cwd`` with :func:`child_env`, stdout and stderr to ``log_path``;
-    ``new_session``: Ctrl-C in the terminal reaches only the parent (which then stops it)."""
+           new_session: bool = False, env: dict[str, str] | None = None
+           ) -> subprocess.Popen[bytes]:
+    """Start ``argv`` in ``cwd`` with :func:`child_env` (plus ``env``, e.g. a test aid such
+    as QUAVER_NOTIFY_HOLD_S), stdout and stderr to ``log_path``; ``new_session``: Ctrl-C in
+    the terminal reaches only the parent (which then stops it)."""
     with open(log_path, "ab" if append else "wb") as log:
-        return subprocess.Popen(argv, cwd=cwd, env=child_env(), stdout=log,
+        return subprocess.Popen(argv, cwd=cwd, env={**child_env(), **(env or {})}, stdout=log,
                                 stderr=subprocess.STDOUT, start_new_session=new_session)
 
 
@@ -244,13 +246,14 @@ def start_service(
     new_session: bool = False,
     health_path: str = "/api/v1/health",
     timeout_s: float = START_TIMEOUT_S,
+    env: dict[str, str] | None = None,
 ) -> Child:
     """Write ``doc`` (see :func:`with_ports`) to ``workdir/quaver.toml``, run ``command(path)``
     (``wrap`` may turn it into the command actually run, e.g. inside a namespace; it must pass
     SIGTERM on) and wait until ``health_path`` answers. Retries with fresh ports when a
     probed port was taken meanwhile; HarnessError (with the log) when it does not start. The
     caller stops the :class:`Child`. A ``[service] tls_cert`` makes it HTTPS, trusting exactly
-    that certificate."""
+    that certificate. ``env``: variables added to the child's environment."""
     workdir.mkdir(parents=True, exist_ok=True)
     for attempt in range(1, START_ATTEMPTS + 1):
         full, http_port, ports = with_ports(doc, listen_host)
@@ -259,7 +262,7 @@ def start_service(
         log_path = workdir / f"service-{attempt}.log"
         argv = command(config_path)
         proc = launch(wrap(argv) if wrap is not None else argv, workdir, log_path,
-                      new_session=new_session)
+                      new_session=new_session, env=env)
         cert = full["service"].get("tls_cert")
         child = Child(proc, f"{'https' if cert else 'http'}://{LOOPBACK}:{http_port}", log_path,
                       http_port, ports, config_path, dict(headers or {}),
