@@ -47,7 +47,9 @@ Modules
     ``writer`` (the writer thread, transactions, per-thread reads), ``schema`` (ordered
     migrations keyed by ``PRAGMA user_version``), ``events`` (events, alarm state and
     evidence), ``trends`` (bucket aggregation and tier queries), ``retention`` (deletion by
-    age and size) and ``store`` (:class:`Store`, which puts them together).
+    age and size), ``outbox`` (notification rows, written by ``put_events`` with their
+    events through a router ``service.notify`` supplies) and ``store`` (:class:`Store`,
+    which puts them together).
 """
 
 from .retention import DAY_S, Retention
