@@ -299,7 +299,9 @@ class Store(Writer):
         report, error = apply_retention(c, self.tiers_s, self.retention, now_ns)
         if self.retention.outbox_s is not None:  # wall clock: the outbox's times are
             cutoff = time.time_ns() - round(self.retention.outbox_s * 1e9)
-            report["deleted"]["outbox"] = ob.prune(c, cutoff)
+            pruned = ob.prune(c, cutoff)
+            if pruned:  # named only when rows went (a store without notify reports as before)
+                report["deleted"]["outbox"] = pruned
         if error:
             self._error(f"{self.path} {error}")
         self.db_bytes = report["db_bytes"]

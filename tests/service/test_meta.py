@@ -27,7 +27,7 @@ def test_meta_lists_every_state_and_kind_with_its_meaning() -> None:
     states = {s["name"]: (s["rank"], s["active"]) for s in m["alarm_states"]}
     assert states == {"normal": (0, False), "alert": (1, True), "danger": (2, True),
                       "latched": (0, True)}
-    assert [k["name"] for k in m["event_kinds"]] == ["transition", "ack", "status"]
+    assert [k["name"] for k in m["event_kinds"]] == ["transition", "ack", "status", "notify"]
     assert [k["name"] for k in m["rule_kinds"]] == ["band", "tone", "overall", "signal"]
     every = m["channel_statuses"] + m["alarm_states"] + m["event_kinds"] + m["rule_kinds"]
     assert all(isinstance(x["meaning"], str) and len(x["meaning"]) > 10 for x in every)
