@@ -167,10 +167,17 @@ class Notifier:
 
     # -- the thread --------------------------------------------------------------------------
     def _run(self) -> None:
+        said = ""
         while not self._stop.is_set():
             try:
                 more = self._pass()
-            except Exception:  # the sender must outlive any one pass (e.g. the store failing)
+                said = ""
+            except StoreError as e:  # /health says the store fails; log it once, not each pass
+                if str(e) != said:
+                    log.error("notifications wait for the store: %s", e)
+                    said = str(e)
+                more = False
+            except Exception:  # the sender must outlive any one pass
                 log.exception("notification pass failed")
                 more = False
             if not more:

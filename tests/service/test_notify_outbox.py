@@ -285,3 +285,19 @@ def test_a_database_at_step_2_gains_the_outbox_and_keeps_its_events(tmp_path: Pa
     c.close()
     with Store(path) as store:
         assert store.store_id() == sid  # made once
+
+
+def test_rows_of_an_entry_gone_from_the_config_are_marked_failed(tmp_path: Path) -> None:
+    before = config({"name": "old", "urls": ["json://127.0.0.1:9/h"]})
+    after = config({"name": "new", "urls": ["json://127.0.0.1:9/h"]})
+    calls: list[str] = []
+    with Store(tmp_path / "quaver.db") as store:
+        Notifier(before, store).attach()
+        store.put_events([danger(time.time_ns())]).result()
+        n = Notifier(after, store, send=lambda urls, title, body, key: calls.append(key) or "")
+        n.attach()
+        n._pass()
+        row = store.outbox_rows()[0]
+    assert (row["entry"], row["state"], row["last_error"]) == (
+        "old", "failed", "entry no longer in the config")
+    assert calls == []
