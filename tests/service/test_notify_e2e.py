@@ -129,3 +129,34 @@ def key_store_id(key: str) -> str:
 
 def child_text(child: harness.Child, path: str) -> str:
     return harness.http_get(child.base_url, path).decode()
+
+
+@pytest.mark.slow
+def test_a_failing_target_shows_in_health_metrics_and_the_event_log(tmp_path: Path) -> None:
+    dead = harness.free_ports(1)[0]  # nothing listens there: every post is refused
+    doc = plant(tmp_path / "data", f"json://{harness.LOOPBACK}:{dead}/a",
+                f"json://{harness.LOOPBACK}:{dead}/b")
+    doc["notify"] = [{**doc["notify"][1], "retry_first_s": 0.2, "retry_max_s": 0.4}]
+    child = start(doc, tmp_path / "run")
+    try:
+        def degraded() -> dict[str, Any] | None:
+            h = child.get_json("/api/v1/health")
+            return h if h["status"] == "degraded" and not h["notify"]["ok"] else None
+
+        h = wait_for(degraded, "health to say degraded", 90.0, on_fail=child.log_tail)
+        e = h["notify"]["entries"]["ops-hook"]
+        assert e["failing"] and e["degraded"] and e["consecutive_failures"] >= 3
+        assert e["sent"] == 0 and e["pending"] >= 1
+        assert "JSON" in e["last_error"]  # apprise's reason, e.g. a connection error
+        metrics = child_text(child, "/metrics")
+        assert 'quaver_notify_failing{entry="ops-hook"} 1.0' in metrics
+        failed = [ln for ln in metrics.splitlines()
+                  if ln.startswith('quaver_notify_failed_total{entry="ops-hook"}')]
+        assert float(failed[0].split()[-1]) >= 3
+        # one event when it started failing, not one per retry
+        evs = child.get_json("/api/v1/events?limit=100")["events"]
+        notes = [(x["rule"], x["from_state"], x["to_state"]) for x in evs
+                 if x["kind"] == "notify"]
+        assert notes == [("notify.ops-hook", "ok", "failed")]
+    finally:
+        child.stop()
