@@ -17,7 +17,7 @@ def zone(name: str) -> ZoneInfo:
     """The IANA zone ``name`` ('UTC', 'Europe/Berlin', …); ValueError if unknown."""
     try:
         return ZoneInfo(name)
-    except (ZoneInfoNotFoundError, ValueError) as e:
+    except (ZoneInfoNotFoundError, ValueError, OSError) as e:  # OSError: a name too long for a path
         raise ValueError(
             f"unknown time zone {name!r}: use an IANA name such as 'UTC' or 'Europe/Berlin'"
         ) from e
