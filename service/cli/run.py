@@ -130,6 +130,15 @@ def cmd_check(args: argparse.Namespace) -> int:
             warnings += len(warned)
             out += [f"    warning: {w}" for w in warned]
     out.append(f"alarms: {len(cfg.alarms)}")
+    if cfg.notify:
+        out.append(f"notify: {len(cfg.notify)}")
+    for n in cfg.notify:  # schemes only: a URL may hold a password
+        schemes = ", ".join(sorted({u.split("://", 1)[0] for u in n.urls}))
+        targets = " + ".join(filter(None, [f"{len(n.urls)} URL(s) ({schemes})" if n.urls
+                                           else "", f"${n.urls_env}" if n.urls_env else ""]))
+        out.append(f"  {n.name}: {targets}; events {', '.join(n.events)}; from {n.min_level}"
+                   + (f"; quiet {n.quiet_hours.start}-{n.quiet_hours.end}"
+                      if n.quiet_hours else ""))
     source_warnings = open_source_warnings(cfg)
     out += [f"warning: {w}" for w in source_warnings]
     warnings += len(source_warnings)
