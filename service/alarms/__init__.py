@@ -38,6 +38,8 @@ Semantics (``common practice`` for two-level vibration alarms, made precise here
   at the last one's time (arrival-time stamps of a bursty producer); further back is a
   clock step, after which pending on/off delays and baseline learning restart on the new
   clock, so an alarm is never frozen until the old time comes round again.
+* Shelving (``service.alarms.shelving``): a shelved rule evaluates and logs as usual but
+  is not annunciated as active until its shelve ends (end time, or unshelved).
 * Relative levels: alert/danger = factor × the median of the values seen during the first
   ``learn_s`` seconds of good data (×2 alert, ×4 danger or +6 dB / +12 dB over the
   baseline are ``common practice`` starting points). No transitions while learning.
@@ -57,12 +59,14 @@ from .states import (
     EVENT_KINDS,
     LEARN_MAX,
     RULE_KINDS,
+    SHELVE_MAX_S,
     SNAPSHOT_VERSION,
     TRANSITIONS,
     AckRefused,
     AlarmError,
     AlarmState,
     InvalidTransition,
+    ShelveRefused,
     UnknownAlarm,
     check_transition,
 )
@@ -74,6 +78,7 @@ __all__ = [
     "EVENT_KINDS",
     "LEARN_MAX",
     "RULE_KINDS",
+    "SHELVE_MAX_S",
     "SNAPSHOT_VERSION",
     "TRANSITIONS",
     "AckRefused",
@@ -85,6 +90,7 @@ __all__ = [
     "Baseline",
     "InvalidTransition",
     "Rule",
+    "ShelveRefused",
     "UnknownAlarm",
     "check_transition",
     "rule_id",

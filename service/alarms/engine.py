@@ -18,6 +18,7 @@ from ..quality import CHANNEL_STATUSES, SUSPENDING
 from ..types import SpectralFrame
 from .events import AlarmEvent, AlarmView
 from .rules import Rule
+from .shelving import ShelvingMixin
 from .states import (
     _A,
     _BY_RANK,
@@ -52,6 +53,10 @@ class _Alarm:
     acked_by: str = ""
     acked_ns: int | None = None
     note: str = ""
+    shelved_until_ns: int | None = None  # shelved until then (service.alarms.shelving)
+    shelved_ns: int | None = None
+    shelved_by: str = ""
+    shelve_reason: str = ""
     above_ns: list[int | None] = field(default_factory=lambda: [None, None])  # alert, danger
     below_ns: list[int | None] = field(default_factory=lambda: [None, None])
     # the baseline learned or being learned: restored only while the rule's baseline
@@ -79,8 +84,8 @@ class _Alarm:
         bl = self.rule.baseline
         same_baseline = bl is not None and s["baseline"] == bl.as_dict()
         for f in _SAVED:
-            if f.metadata.get("learned") and not same_baseline:
-                continue
+            if f.metadata.get("learned") and not same_baseline or f.name not in s:
+                continue  # (a snapshot from before shelving has no shelve fields)
             v, now = s[f.name], getattr(self, f.name)
             if isinstance(now, AlarmState):
                 v = AlarmState(check_choice(f.name, v, _STATES))
@@ -144,8 +149,9 @@ class _Alarm:
 _SAVED = tuple(f for f in fields(_Alarm) if f.name != "rule")
 
 
-class AlarmEngine:
-    """Runs every rule's state machine on incoming frames; see the module docstring."""
+class AlarmEngine(ShelvingMixin):
+    """Runs every rule's state machine on incoming frames; see the module docstring.
+    Shelving and acknowledge-all come from :class:`~service.alarms.shelving.ShelvingMixin`."""
 
     def __init__(self, rules: Iterable[Rule]) -> None:
         self._alarms: dict[str, _Alarm] = {}
@@ -305,19 +311,9 @@ class AlarmEngine:
             a.acked, a.acked_by, a.acked_ns, a.note = True, who, int(t_ns), note
             msg = f"{self._what(a)}: {before.value} acknowledged by {who}"
         return AlarmEvent(
-            t_ns=int(t_ns),
-            channel=a.rule.channel,
-            rule=a.rule.id,
-            kind="ack",
-            from_state=before.value,
-            to_state=a.state.value,
-            value=a.value,
-            level=level,
-            unit=a.rule.unit,
-            message=msg,
-            latched=a.latched,
-            acked_by=who,
-            note=note,
+            t_ns=int(t_ns), channel=a.rule.channel, rule=a.rule.id, kind="ack",
+            from_state=before.value, to_state=a.state.value, value=a.value, level=level,
+            unit=a.rule.unit, message=msg, latched=a.latched, acked_by=who, note=note,
         )
 
     # -- output --------------------------------------------------------------------------
@@ -332,8 +328,10 @@ class AlarmEngine:
         return self._view(a)
 
     def active(self) -> list[AlarmView]:
-        """Alarms in ALERT, DANGER or LATCHED, most severe first, then oldest first."""
-        act = [self._view(a) for a in self._alarms.values() if a.state.active]
+        """Alarms in ALERT, DANGER or LATCHED and not shelved, most severe first, then
+        oldest first (shelved ones: :meth:`shelved`)."""
+        act = [self._view(a) for a in self._alarms.values()
+               if a.state.active and a.shelved_until_ns is None]
         return sorted(act, key=lambda v: (-v.peak.rank, v.since_ns or 0, v.rule))
 
     def snapshot(self) -> dict[str, Any]:
@@ -436,8 +434,7 @@ class AlarmEngine:
             note="",
         )
 
-    @staticmethod
-    def _what(a: _Alarm) -> str:
+    def _what(self, a: _Alarm) -> str:
         r = a.rule
         head = r.channel if r.primary else f"{r.channel} {r.profile}"
         return f"{head} overall" if r.kind == "overall" else f"{head} {r.kind} {r.name}"
@@ -491,5 +488,10 @@ class AlarmEngine:
             suspended=r.channel in self._suspended and r.kind != "signal",
             channel_status=self._suspended.get(r.channel, "ok"),
             primary=r.primary,
+            shelved=a.shelved_until_ns is not None,
+            shelved_until_ns=a.shelved_until_ns,
+            shelved_ns=a.shelved_ns,
+            shelved_by=a.shelved_by,
+            shelve_reason=a.shelve_reason,
         )
 

@@ -20,9 +20,10 @@ class AlarmEvent:
     ``id`` is None until the store assigns it (a monotonically increasing integer, see
     ``service.store.Store.put_events``). ``t_ns``: ns since the Unix epoch (the frame's
     time, or the time given to :meth:`AlarmEngine.ack`). ``kind``: ``"transition"`` (state
-    change by value), ``"ack"`` or ``"status"`` (a channel's data-quality state changed:
-    ``from_state``/``to_state`` are then states of ``service.quality``, the message says
-    why). ``value`` (the rule's value then) and ``level`` (the
+    change by value), ``"ack"``, ``"shelve"``/``"unshelve"``/``"shelve-expired"`` (``acked_by``
+    is who, ``note`` the shelve's reason; the state does not change) or ``"status"`` (a
+    channel's data-quality state changed: ``from_state``/``to_state`` are then states of
+    ``service.quality``, the message says why). ``value`` (the rule's value then) and ``level`` (the
     threshold crossed: a level when raising, level·(1 − h) when clearing; for an ack the
     level of the acknowledged state) are in ``unit``; None when not applicable. ``rule`` is a
     rule id, or ``"<channel>.status"``. ``latched``: the alarm now holds until
@@ -96,6 +97,12 @@ class AlarmView:
     # the channel's suspending status, or "ok" (gap and overrun do not suspend rules)
     channel_status: str = "ok"
     primary: bool = True  # is ``profile`` the channel's primary profile
+    # shelved (service.alarms.shelving): not annunciated until ``shelved_until_ns``
+    shelved: bool = False
+    shelved_until_ns: int | None = None
+    shelved_ns: int | None = None
+    shelved_by: str = ""
+    shelve_reason: str = ""
 
     def as_dict(self) -> dict[str, Any]:
         d = {f.name: getattr(self, f.name) for f in fields(self)}

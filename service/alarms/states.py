@@ -12,7 +12,9 @@ from typing import Literal, get_args
 from dsp.types import check_choice
 
 RuleKind = Literal["band", "tone", "overall", "signal"]
-EventKind = Literal["transition", "ack", "status", "notify"]
+EventKind = Literal[
+    "transition", "ack", "status", "notify", "shelve", "unshelve", "shelve-expired"
+]
 Cause = Literal["value", "ack"]
 # Frame times that run back by at most this are jitter (arrival-time stamps of a producer
 # sending in bursts) and hold still; further back is a clock step (our choice).
@@ -21,6 +23,8 @@ RULE_KINDS: tuple[str, ...] = get_args(RuleKind)
 EVENT_KINDS: tuple[str, ...] = get_args(EventKind)
 CAUSES: tuple[str, ...] = get_args(Cause)
 SNAPSHOT_VERSION = 1
+# ISA-18.2 (from memory): a shelved alarm is suppressed for a bounded time; ours: 7 days
+SHELVE_MAX_S = 7 * 86400
 LEARN_MAX = 2048  # baseline values kept; beyond that every other one is dropped (even spacing)
 # What each member of the closed sets means: GET /api/v1/meta serves these to the dashboard.
 ALARM_MEANING: dict[str, str] = {
@@ -41,6 +45,10 @@ EVENT_MEANING: dict[str, str] = {
     "status": "a channel's data-quality state changed",
     "notify": "a [[notify]] entry started failing to send (ok → failed) or sends again "
     "(failed → ok); rule 'notify.<entry>'",
+    "shelve": "an operator shelved a rule: it still evaluates and logs, but its alarm is "
+    "not annunciated as active until the shelve ends",
+    "unshelve": "an operator ended a rule's shelve before its end time",
+    "shelve-expired": "a rule's shelve reached its end time and ended by itself",
 }
 _ID_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]*$")
 _NS = 1_000_000_000
@@ -60,6 +68,11 @@ class UnknownAlarm(AlarmError, LookupError):
 
 class AckRefused(AlarmError):
     """The alarm is not active, or already acknowledged (API: 409)."""
+
+
+class ShelveRefused(AlarmError):
+    """A shelve or unshelve that does not apply (already shelved, not shelved, a bad end
+    time or no reason) (API: 409 or 422)."""
 
 
 class AlarmState(StrEnum):
