@@ -38,6 +38,7 @@ from .config import (
 from .context import ReloadRefused
 from .hub import Hub
 from .notify import Notifier
+from .operator import commit_action, expire_shelves
 from .pipeline import ChannelState, SourcePipeline, channel_states
 from .profiles import ProfileBank
 from .quality import Inputs, derive, is_lost
@@ -177,6 +178,7 @@ class Service:
             await asyncio.sleep(WATCH_PERIOD_S)
             try:
                 await self._refresh_quality(self.hub.channels.values())
+                await expire_shelves(self, time.time_ns())
             except Exception:  # the watch must outlive any one bad pass
                 log.exception("channel state watch failed")
 
@@ -435,6 +437,13 @@ class Service:
         log.info("alarm %s acknowledged by %s", rule, who)
         self.hub.publish_event(d)
         return d
+
+    async def act(
+        self, action: Callable[[AlarmEngine], list[AlarmEvent]], what: str
+    ) -> list[dict[str, Any]]:
+        """An operator action on the alarms (acknowledge-all, shelve, unshelve): committed,
+        then applied and announced (service.operator.commit_action)."""
+        return await commit_action(self, action, what)
 
 
 DEMO_OPERATOR_TOKEN = "quaver-demo-operator"  # matches the hash in examples/demo.toml

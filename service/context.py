@@ -5,9 +5,10 @@ this protocol (``service.api.deps``), never on the Service class or its module."
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from typing import Any, Protocol
 
-from .alarms import AlarmEngine
+from .alarms import AlarmEngine, AlarmEvent
 from .config import Config
 from .hub import Hub
 from .notify import Notifier
@@ -48,4 +49,11 @@ class ServiceContext(Protocol):
 
     async def acknowledge(self, rule: str, who: str, note: str) -> dict[str, object]:
         """Acknowledge ``rule``'s alarm; raises UnknownAlarm, AckRefused or StoreError."""
+        ...
+
+    async def act(
+        self, action: Callable[[AlarmEngine], list[AlarmEvent]], what: str
+    ) -> list[dict[str, Any]]:
+        """Run an operator ``action`` on the alarms: its events committed first, then
+        applied and announced; raises what the action raises, or StoreError."""
         ...

@@ -24,6 +24,7 @@ from ..config import Config
 from ..context import ServiceContext
 from ..hub import Hub
 from . import (
+    actions,
     admin,
     alarms,
     channels,
@@ -32,6 +33,7 @@ from . import (
     health,
     meta,
     metrics,
+    rules,
     security,
     stream,
     trends,
@@ -100,6 +102,8 @@ def create_app(
     app.include_router(stream.router, prefix="/api/v1")
     app.include_router(windows.router, prefix="/api/v1")
     app.include_router(alarms.router, prefix="/api/v1")
+    app.include_router(actions.router, prefix="/api/v1")
+    app.include_router(rules.router, prefix="/api/v1")
     app.include_router(trends.router, prefix="/api/v1")
     app.include_router(admin.router, prefix="/api/v1")
     app.include_router(meta.router, prefix="/api/v1")

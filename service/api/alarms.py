@@ -14,8 +14,9 @@ from pydantic import BaseModel, Field
 
 from ..alarms import AckRefused, UnknownAlarm
 from ..store import StoreError
-from .deps import I64_MAX, AlarmsDep, ServiceDep, StoreDep
+from .deps import I64_MAX, AlarmsDep, ConfigDep, ServiceDep, StoreDep
 from .security import Operator, Reader, role_responses
+from .timefields import with_times
 
 router = APIRouter(tags=["alarms"])
 
@@ -27,11 +28,12 @@ class AckBody(BaseModel):
 @router.get("/alarms", summary="Active and latched alarms (all rules with all=true)")
 def list_alarms(
     engine: AlarmsDep,
+    cfg: ConfigDep,
     _: Reader,
     all: Annotated[bool, Query(description="include rules in normal state")] = False,
 ) -> list[dict[str, Any]]:
     views = engine.views() if all else engine.active()
-    return [v.as_dict() for v in views]
+    return with_times([v.as_dict() for v in views], cfg.service.timezone)
 
 
 @router.post(
@@ -47,13 +49,15 @@ def list_alarms(
 )
 async def ack_alarm(
     service: ServiceDep,
+    cfg: ConfigDep,
     who: Operator,
     rule: Annotated[str, Path(max_length=200)],
     body: Annotated[AckBody | None, Body()] = None,
 ) -> dict[str, Any]:
     try:
         note = body.note if body is not None else ""
-        return await service.acknowledge(rule, who.name, note)
+        return with_times(await service.acknowledge(rule, who.name, note),
+                          cfg.service.timezone)
     except UnknownAlarm as e:
         raise HTTPException(404, str(e)) from None
     except AckRefused as e:
@@ -65,6 +69,7 @@ async def ack_alarm(
 @router.get("/events", summary="The event log, newest first, paged by id")
 async def list_events(
     store: StoreDep,
+    cfg: ConfigDep,
     _: Reader,
     since: Annotated[
         int | None,
@@ -77,18 +82,19 @@ async def list_events(
     ] = None,
 ) -> dict[str, Any]:
     rows = await asyncio.to_thread(store.events, since, channel, limit, before_id)
+    with_times(rows, cfg.service.timezone)
     return {"events": rows, "next_before_id": rows[-1]["id"] if len(rows) == limit else None}
 
 
 @router.get("/events/{event_id}", summary="One event",
             responses={404: {"description": "no such event"}})
 async def get_event(
-    store: StoreDep, _: Reader, event_id: Annotated[int, Path(ge=1, le=I64_MAX)]
+    store: StoreDep, cfg: ConfigDep, _: Reader, event_id: Annotated[int, Path(ge=1, le=I64_MAX)]
 ) -> dict[str, Any]:
     row = await asyncio.to_thread(store.event, event_id)
     if row is None:
         raise HTTPException(404, f"no event {event_id}")
-    return row
+    return with_times(row, cfg.service.timezone)
 
 
 @router.get(
@@ -108,6 +114,7 @@ async def get_event(
 )
 async def get_evidence(
     store: StoreDep,
+    cfg: ConfigDep,
     _: Reader,
     event_id: Annotated[int, Path(ge=1, le=I64_MAX)],
     format: Annotated[Literal["json", "csv", "wav", "npy"], Query()] = "json",
@@ -124,7 +131,7 @@ async def get_evidence(
     wave = np.zeros(0, np.float32) if wave is None else np.asarray(wave, dtype=np.float32)
     name = f"quaver-event-{event_id}"
     if format == "json":
-        return {
+        return with_times({
             "event_id": event_id,
             "t0_ns": ev["t0_ns"],
             "fs": ev["fs"],
@@ -138,7 +145,7 @@ async def get_evidence(
                 "unit": spec.get("input_unit", ""),
                 "samples": wave.tolist(),
             },
-        }
+        }, cfg.service.timezone)
     if format == "wav":
         from ..recording import write_wav
 

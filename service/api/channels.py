@@ -12,6 +12,7 @@ from fastapi import APIRouter, Query, Response
 
 from dsp.types import AMPLITUDES, OUTPUT_UNITS, QUANTITIES
 
+from ..config import Config
 from ..hub import Hub
 from ..spectra import (
     band_items,
@@ -23,7 +24,9 @@ from ..spectra import (
     tone_items,
 )
 from ..types import ChannelState, SpectralFrame
-from .deps import NO_FRAME, NOT_FOUND, ChannelDep, HubDep, ProfileQ, get_frame
+from .deps import NO_FRAME, NOT_FOUND, ChannelDep, ConfigDep, HubDep, ProfileQ, get_frame
+from .rules import names
+from .timefields import with_times
 
 router = APIRouter(tags=["channels"])
 
@@ -72,9 +75,12 @@ def _iso(t_ns: int) -> str | None:
         return None
 
 
-def _summary(hub: Hub, cid: str) -> dict[str, Any]:
+def _summary(hub: Hub, cid: str, cfg: Config) -> dict[str, Any]:
     st = hub.channels[cid]
     d: dict[str, Any] = st.as_dict()
+    nm = names(cfg, cid)
+    d.update(name=nm["channel_name"], machine_name=nm["machine_name"],
+             machine_group=nm["machine_group"])
     d.update(_now_state(st))
     f = hub.latest.get(cid)
     if f is not None:
@@ -96,18 +102,18 @@ def _summary(hub: Hub, cid: str) -> dict[str, Any]:
             "overall_lo_hz": _num(pf.overall_lo_hz), "overall_hi_hz": _num(pf.overall_hi_hz),
             "averages": pf.averages,
         }
-    return d
+    return with_times(d, cfg.service.timezone)
 
 
 @router.get("/channels", summary="Every channel with its state, counters and latest overall")
-def list_channels(hub: HubDep) -> list[dict[str, Any]]:
-    return [_summary(hub, cid) for cid in hub.channels]
+def list_channels(hub: HubDep, cfg: ConfigDep) -> list[dict[str, Any]]:
+    return [_summary(hub, cid, cfg) for cid in hub.channels]
 
 
 @router.get("/channels/{channel_id}", summary="One channel's state and counters",
             responses=NOT_FOUND)
-def get_channel(channel: ChannelDep, hub: HubDep) -> dict[str, Any]:
-    return _summary(hub, channel.id)
+def get_channel(channel: ChannelDep, hub: HubDep, cfg: ConfigDep) -> dict[str, Any]:
+    return _summary(hub, channel.id, cfg)
 
 
 @router.get(
@@ -122,6 +128,7 @@ def get_channel(channel: ChannelDep, hub: HubDep) -> dict[str, Any]:
 def get_spectrum(
     channel: ChannelDep,
     hub: HubDep,
+    cfg: ConfigDep,
     profile: ProfileQ = None,
     unit: Annotated[
         UnitQ | None, Query(description="Unit or quantity; default: the channel's")
@@ -149,7 +156,7 @@ def get_spectrum(
                 "X-Quaver-Profile": frame.profile,
             },
         )
-    return {
+    return with_times({
         **_stamp(frame),
         **_now_state(channel),
         "f0_hz": frame.f0_hz,
@@ -166,7 +173,7 @@ def get_spectrum(
         "sample_rate_hz": frame.fs,
         "n": frame.n,
         "values": values.tolist(),
-    }
+    }, cfg.service.timezone)
 
 
 def bands_payload(frame: SpectralFrame) -> dict[str, Any]:
@@ -193,11 +200,15 @@ def tones_payload(frame: SpectralFrame) -> dict[str, Any]:
 
 @router.get("/channels/{channel_id}/bands", summary="Latest band RMS values and the overall",
             responses=NO_FRAME)
-def get_bands(channel: ChannelDep, hub: HubDep, profile: ProfileQ = None) -> dict[str, Any]:
-    return {**bands_payload(get_frame(channel.id, hub, profile)), **_now_state(channel)}
+def get_bands(channel: ChannelDep, hub: HubDep, cfg: ConfigDep, profile: ProfileQ = None
+              ) -> dict[str, Any]:
+    d = {**bands_payload(get_frame(channel.id, hub, profile)), **_now_state(channel)}
+    return with_times(d, cfg.service.timezone)
 
 
 @router.get("/channels/{channel_id}/tones", summary="Tracked tones and the largest peaks",
             responses=NO_FRAME)
-def get_tones(channel: ChannelDep, hub: HubDep, profile: ProfileQ = None) -> dict[str, Any]:
-    return {**tones_payload(get_frame(channel.id, hub, profile)), **_now_state(channel)}
+def get_tones(channel: ChannelDep, hub: HubDep, cfg: ConfigDep, profile: ProfileQ = None
+              ) -> dict[str, Any]:
+    d = {**tones_payload(get_frame(channel.id, hub, profile)), **_now_state(channel)}
+    return with_times(d, cfg.service.timezone)

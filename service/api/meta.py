@@ -1,8 +1,8 @@
 """GET /api/v1/meta: the closed sets a client shows — channel data-quality states, alarm
-states, event kinds and rule kinds — each with what it means.
+states, event kinds and rule kinds — each with what it means, and the site time zone.
 
 The one definition the dashboard reads (web/states.js) instead of copying the sets. Reads
-service.quality and service.alarms.states only; no hub, no state."""
+service.quality, service.alarms.states and the config's time zone; no hub, no state."""
 
 from __future__ import annotations
 
@@ -18,6 +18,7 @@ from ..alarms.states import (
     AlarmState,
 )
 from ..quality import CHANNEL_STATUSES, MEANING, SUSPENDING
+from .deps import ConfigDep
 
 router = APIRouter(tags=["meta"])
 
@@ -49,9 +50,12 @@ class Meta(BaseModel):
     alarm_states: list[AlarmStateInfo]
     event_kinds: list[KindInfo] = Field(description="the `kind` of an event")
     rule_kinds: list[KindInfo] = Field(description="the `kind` of an alarm rule")
+    timezone: str = Field("UTC", description="the site time zone (IANA name, "
+                          "`service.timezone`): the API's ISO 8601 times carry its offset "
+                          "and the dashboard shows times in it")
 
 
-def meta_document() -> Meta:
+def meta_document(timezone: str = "UTC") -> Meta:
     """The document GET /api/v1/meta answers (the same for every caller and every call)."""
     return Meta(
         channel_statuses=[
@@ -66,14 +70,15 @@ def meta_document() -> Meta:
         ],
         event_kinds=[KindInfo(name=k, meaning=EVENT_MEANING[k]) for k in EVENT_KINDS],
         rule_kinds=[KindInfo(name=k, meaning=RULE_MEANING[k]) for k in RULE_KINDS],
+        timezone=timezone,
     )
 
 
 @router.get("/meta", summary="The state and kind sets, with what each means",
             response_model=Meta)
-def meta() -> Meta:
+def meta(cfg: ConfigDep) -> Meta:
     """Channel data-quality states (``service.quality``), alarm states, event kinds and
     rule kinds, each with its meaning: a client takes its sets from here rather than
     copying them. Read access like every other read (a viewer token when tokens are
     configured)."""
-    return meta_document()
+    return meta_document(cfg.service.timezone)

@@ -27,7 +27,9 @@ def test_meta_lists_every_state_and_kind_with_its_meaning() -> None:
     states = {s["name"]: (s["rank"], s["active"]) for s in m["alarm_states"]}
     assert states == {"normal": (0, False), "alert": (1, True), "danger": (2, True),
                       "latched": (0, True)}
-    assert [k["name"] for k in m["event_kinds"]] == ["transition", "ack", "status", "notify"]
+    assert [k["name"] for k in m["event_kinds"]] == [
+        "transition", "ack", "status", "notify", "shelve", "unshelve", "shelve-expired"]
+    assert m["timezone"] == "UTC"  # the default of service.timezone
     assert [k["name"] for k in m["rule_kinds"]] == ["band", "tone", "overall", "signal"]
     every = m["channel_statuses"] + m["alarm_states"] + m["event_kinds"] + m["rule_kinds"]
     assert all(isinstance(x["meaning"], str) and len(x["meaning"]) > 10 for x in every)
@@ -40,4 +42,5 @@ def test_meta_is_described_in_openapi() -> None:
     ref = op["responses"]["200"]["content"]["application/json"]["schema"]["$ref"]
     assert ref.endswith("/Meta")
     props = spec["components"]["schemas"]["Meta"]["properties"]
-    assert set(props) == {"channel_statuses", "alarm_states", "event_kinds", "rule_kinds"}
+    assert set(props) == {"channel_statuses", "alarm_states", "event_kinds", "rule_kinds",
+                          "timezone"}
