@@ -117,6 +117,28 @@ class EvidenceCapture:
         if self._requests and self._ring is not None and self._last_block is not None:
             self._complete(self._last_block, force=True)
 
+    def latest(self, channel: str, seconds: float) -> tuple[np.ndarray, float, int] | None:
+        """The newest ``seconds`` (at most what the ring holds) of ``channel``'s samples,
+        engineering units: (float32 samples, fs, t0_ns of the first); None before any block
+        or for a channel not in the stream (event loop, while the worker appends).
+
+        The copy is checked after it is taken: if the worker wrapped round over it
+        meanwhile, it is taken again (twice at most; the ring holds seconds, a read
+        microseconds)."""
+        ring, block = self._ring, self._last_block
+        if ring is None or block is None or channel not in block.channel_ids:
+            return None
+        row = block.channel_ids.index(channel)
+        for _ in range(3):
+            block, end = self._last_block, ring.end
+            assert block is not None
+            lo = max(ring.start, end - max(1, round(seconds * block.fs)))
+            wave, first = ring.snippet(row, lo, end)
+            if ring.end - ring.length <= first:  # nothing of it overwritten while copying
+                t0_ns = block.t0_ns + round((first - block.first_index) * 1e9 / block.fs)
+                return wave, block.fs, t0_ns
+        return None
+
     def take(self) -> list[Evidence]:
         """The evidence completed since the last call, oldest first (event loop)."""
         out = []

@@ -233,6 +233,12 @@ class SourcePipeline:
         """Ask for the waveform around ``center_index`` (called from the event loop)."""
         self.evidence.request(event_id, channel, center_index, spectrum, self.fs or 0.0)
 
+    def latest_waveform(self, channel: str, seconds: float
+                        ) -> tuple[np.ndarray, float, int] | None:
+        """The newest ``seconds`` of ``channel``'s samples from the evidence ring (input
+        units, after sensitivity): (samples, fs, t0_ns); None before any data (event loop)."""
+        return self.evidence.latest(channel, seconds)
+
     def take_evidence(self, *, final: bool = False) -> list[Evidence]:
         """The evidence completed since the last call (called from the event loop);
         ``final`` (at shut-down): first complete every pending request with what is kept."""

@@ -294,3 +294,9 @@ class PipelineHealth(Protocol):
 
     @property
     def restarts(self) -> int: ...  # analysis restarts after a sensor fault
+
+    def latest_waveform(self, channel: str, seconds: float
+                        ) -> tuple[np.ndarray, float, int] | None:
+        """The newest ``seconds`` of ``channel``'s samples in input units (after
+        sensitivity): (samples, fs, t0_ns), or None before any data."""
+        ...

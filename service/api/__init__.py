@@ -37,6 +37,7 @@ from . import (
     security,
     stream,
     trends,
+    waveform,
     windows,
 )
 
@@ -99,6 +100,7 @@ def create_app(
 
     app.include_router(health.router, prefix="/api/v1")
     app.include_router(channels.router, prefix="/api/v1")
+    app.include_router(waveform.router, prefix="/api/v1")
     app.include_router(stream.router, prefix="/api/v1")
     app.include_router(windows.router, prefix="/api/v1")
     app.include_router(alarms.router, prefix="/api/v1")
