@@ -108,22 +108,23 @@ export class BandBars {
         ctx.lineTo(x1 - 5, trackY + trackH + 1);
         ctx.fill();
       }
-      // levels: alert dashed-thin, danger solid-thick, both neutral ink; letters above
-      for (const [lvl, tag, lw] of [[r.alert, "A", 1.5], [r.danger, "D", 2.5]]) {
-        if (!(lvl > 0)) continue;
-        const x = x0 + (x1 - x0) * (lvl / max);
+      // levels: alert thin, danger thick, both neutral ink, each labelled below with its word
+      // and value ("alert 4.50", "danger 7.10"): a lone letter would read as a severity zone
+      // of the vibration standards, which these limits are not
+      ctx.font = `600 9px ${pal.font}`;
+      const ticks = levelTicks(ctx, r, (lvl) => x0 + (x1 - x0) * (lvl / max));
+      for (const t of ticks) {
         ctx.strokeStyle = pal.ink;
-        ctx.lineWidth = lw;
+        ctx.lineWidth = t.lw;
         ctx.beginPath();
-        ctx.moveTo(x, trackY - 3);
-        ctx.lineTo(x, trackY + trackH + 3);
+        ctx.moveTo(t.x, trackY - 3);
+        ctx.lineTo(t.x, trackY + trackH + 3);
         ctx.stroke();
         if (!c) {
-          ctx.font = `600 9px ${pal.font}`;
           ctx.fillStyle = pal["ink-2"];
-          ctx.textAlign = "center";
+          ctx.textAlign = t.align;
           ctx.textBaseline = "top";
-          ctx.fillText(`${tag} ${fmtVal(lvl, 2)}`, x, trackY + trackH + 3);
+          ctx.fillText(t.text, t.x, trackY + trackH + 3);
         }
       }
     });
@@ -134,6 +135,25 @@ export class BandBars {
       ctx.textBaseline = "bottom";
     }
   }
+}
+
+/** The level ticks of a row: [{x, lw, text, align}] for alert and danger, labelled with the
+ *  word and the value; when the two labels would overlap centred, alert's ends at its tick
+ *  and danger's starts at its tick. Exported for the browser tests (`levelTicks`). */
+export function levelTicks(ctx, r, xOf) {
+  const out = [];
+  for (const [lvl, word, lw] of [[r.alert, "alert", 1.5], [r.danger, "danger", 2.5]]) {
+    if (lvl > 0) out.push({ x: xOf(lvl), lw, text: `${word} ${fmtVal(lvl)}`, align: "center" });
+  }
+  if (out.length === 2) {
+    const [a, d] = out;
+    const wa = ctx.measureText(a.text).width, wd = ctx.measureText(d.text).width;
+    if (a.x + wa / 2 + 4 > d.x - wd / 2) {
+      a.align = "right";
+      d.align = "left";
+    }
+  }
+  return out;
 }
 
 function clip(ctx, s, w) {
