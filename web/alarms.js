@@ -2,10 +2,12 @@
 // for an operator token once per browser session). Knows no view layout and no plotting.
 
 import { ApiError, ackAlarm, token } from "./api.js";
-import { fmtAge, fmtDateTime, fmtVal, unitLabel } from "./fmt.js";
+import { fmtAge, fmtDateTime, fmtVal, fmtWhen, unitLabel } from "./fmt.js";
 import { STATES, alarmStateKey, eventStateKey } from "./states.js";
 import { badge, glyph, html, setHTML } from "./dom.js";
 import { live, store } from "./shared.js";
+import { chLabel, chTitle } from "./names.js";
+import { ackMark, isShelveEvent, shelveButtons, shelveChange } from "./shelve.js";
 
 const RANK = { danger: 3, alert: 2, latched: 1, ok: 0 };
 
@@ -32,22 +34,19 @@ export function alarmListHtml(alarms, { showChannel = true } = {}) {
     const sinceS = (now - (a.since_ns ?? 0) / 1e6) / 1000;
     const since = a.since_ns ? `since ${fmtSince(a.since_ns)}${sinceS >= 1 ? ` (${fmtAge(sinceS)})` : ""}` : "";
     const ackTxt = a.acked ? `acknowledged${a.acked_by ? ` by ${a.acked_by}` : ""}` : "not acknowledged";
-    const chan = showChannel ? html`<a href="#/channel/${encodeURIComponent(a.channel)}">${a.channel}</a> · ` : "";
-    return html`<li data-rule="${a.rule}" data-state="${k}" class="${a.acked ? "acked" : ""}">
-      ${badge(k)}
+    const chan = showChannel ? html`<a href="#/channel/${encodeURIComponent(a.channel)}" title="${chTitle(a.channel)}">${chLabel(a.channel, { withMachine: true })}</a> · ` : "";
+    return html`<li data-rule="${a.rule}" data-state="${k}" data-acked="${a.acked ? "yes" : "no"}" class="${a.acked ? "acked" : "unacked"}">
+      <span class="marks">${badge(k)}${ackMark(a)}</span>
       <span class="what">${chan}${what(a)}</span>
-      <span class="acts">${a.acked ? "" : html`<button class="small" data-ack="${a.rule}">Acknowledge</button>`}</span>
+      <span class="acts">${a.acked ? "" : html`<button class="small" data-ack="${a.rule}">Acknowledge</button>`}${shelveButtons(a)}</span>
       <span class="sub">${a.kind === "signal" ? "no new spectra" : a.suspended ? `channel not live (${a.channel_status}); value not current` : `${fmtVal(a.value)} ${unitLabel(a.unit || "")}${level ? ` ≥ ${k} level ${fmtVal(level)}` : k === "latched" ? ` (cleared; was ${a.peak || "raised"})` : ""}`}
         · ${since} · <b>${ackTxt}</b>${a.note ? ` — “${a.note}”` : ""}</span>
     </li>`;
   })}`;
 }
 
-/** Time of day for today, date and time otherwise. */
-function fmtSince(t_ns) {
-  const s = fmtDateTime(t_ns);
-  return new Date(t_ns / 1e6).toDateString() === new Date().toDateString() ? s.slice(11) : s;
-}
+/** Time of day for today, date and time otherwise (site zone, with its offset). */
+const fmtSince = fmtWhen;
 
 /** One event-log row. `raises` events (into alert/danger) get an evidence button. */
 export function eventRowHtml(ev, { showChannel = true } = {}) {
@@ -57,10 +56,11 @@ export function eventRowHtml(ev, { showChannel = true } = {}) {
   const name = ev.rule?.startsWith(`${ev.channel}.`) ? ev.rule.slice(ev.channel.length + 1) : ev.rule;
   const change = ev.kind === "ack"
     ? `acknowledged`
+    : isShelveEvent(ev) ? shelveChange(ev)
     : html`<span class="${STATES[from].cls}">${glyph(from, 12)} ${ev.from_state}</span> → <span class="${STATES[to].cls}">${glyph(to, 12)} <b>${ev.to_state}</b></span>`;
   return html`<tr data-event="${ev.id}">
     <td class="t">${fmtDateTime(ev.t_ns)}</td>
-    ${showChannel ? html`<td><a href="#/channel/${encodeURIComponent(ev.channel)}">${ev.channel}</a></td>` : ""}
+    ${showChannel ? html`<td><a href="#/channel/${encodeURIComponent(ev.channel)}" title="${chTitle(ev.channel)}">${chLabel(ev.channel, { withMachine: true })}</a></td>` : ""}
     <td>${name}</td>
     <td>${change}</td>
     <td>${ev.value === null || ev.value === undefined ? "" : `${fmtVal(ev.value)}${ev.level ? ` / ${fmtVal(ev.level)}` : ""} ${unitLabel(ev.unit || "")}`}</td>
@@ -77,11 +77,12 @@ export function eventItemHtml(ev, { showChannel = true } = {}) {
   const name = ev.rule?.startsWith(`${ev.channel}.`) ? ev.rule.slice(ev.channel.length + 1) : ev.rule;
   const change = ev.kind === "ack"
     ? `acknowledged${ev.acked_by ? ` by ${ev.acked_by}` : ""}`
+    : isShelveEvent(ev) ? shelveChange(ev)
     : html`<span class="${STATES[from].cls}">${glyph(from, 12)}</span> ${ev.from_state} → <span class="${STATES[to].cls}">${glyph(to, 12)}</span> <b>${ev.to_state}</b>`;
   const val = ev.value === null || ev.value === undefined ? "" : ` · ${fmtVal(ev.value)}${ev.level ? ` / ${fmtVal(ev.level)}` : ""} ${unitLabel(ev.unit || "")}`;
   return html`<li data-event="${ev.id}">
     <span class="t">${fmtSince(ev.t_ns)}</span>
-    <span class="what">${showChannel ? html`<a href="#/channel/${encodeURIComponent(ev.channel)}">${ev.channel}</a> · ` : ""}${name}</span>
+    <span class="what">${showChannel ? html`<a href="#/channel/${encodeURIComponent(ev.channel)}" title="${chTitle(ev.channel)}">${chLabel(ev.channel)}</a> · ` : ""}${name}</span>
     <span class="acts">${raising ? html`<button class="small" data-evidence="${ev.id}">Evidence</button>` : ""}</span>
     <span class="sub">${change}${val}${ev.note ? ` — “${ev.note}”` : ""}</span>
   </li>`;

@@ -94,3 +94,13 @@ export function qs(params) {
   const s = p.toString();
   return s ? `?${s}` : "";
 }
+
+/** POST a JSON body to an operator route; returns the answer's JSON. Throws ApiError (401 no
+ *  or wrong token, 403 not an operator, 404, 409, 422 with the service's reason). */
+export async function postJSON(path, body, tok) {
+  const headers = { "Content-Type": "application/json", ...authHeaders(tok || token.get()) };
+  const url = path.startsWith("/") ? path : `${API}/${path}`;
+  const r = await fetch(url, { method: "POST", headers, body: JSON.stringify(body ?? {}) });
+  if (!r.ok) throw new ApiError(r.status, await detailOf(r), url);
+  return r.json();
+}

@@ -3,6 +3,8 @@
 // shell's events; draws through the plots.
 
 import { API, ApiError, getJSON, qs } from "./api.js";
+import { mountWave } from "./waveform.js"; // the waveform panel (console)
+import { watchName } from "./names.js";
 import { AMP_CHOICES, UNIT_CHOICES, ampLabel, fmtClock, fmtHz, fmtHzAt, fmtHzExact, fmtVal, unitLabel } from "./fmt.js";
 import { badge, html, setHTML, updateHTML } from "./dom.js";
 import { SpectrumPlot } from "./spectrum.js";
@@ -48,7 +50,7 @@ export function mount(root, id, { profile = "" } = {}) {
   const mine = (m) => m.channel === id && (m.profile === undefined || cur() === null || m.profile === cur());
   setHTML(root, html`
     <div class="ch-head">
-      <h1 id="ch-id">${id}</h1><span class="desc" id="ch-desc"></span><span id="ch-badge"></span><span class="hint" id="ch-fault"></span>
+      <h1 id="ch-id">${id}</h1><span class="ch-name" id="ch-name"></span><span class="desc" id="ch-desc"></span><span id="ch-badge"></span><span class="hint" id="ch-fault"></span>
       <div class="big"><span class="overall" id="ch-overall" data-role="overall">—</span><span class="unit" id="ch-unit"></span></div>
     </div>
     <dl class="facts" id="ch-facts"></dl>
@@ -63,7 +65,7 @@ export function mount(root, id, { profile = "" } = {}) {
       <span class="seg" role="group" aria-label="amplitude scale"><button data-ya="lin">lin</button><button data-ya="log">log</button></span>
       <span class="seg" role="group" aria-label="frequency scale"><button data-xa="lin">lin Hz</button><button data-xa="log">log Hz</button></span>
       <span class="toggles">
-        <label title="band regions with their alert (A) and danger (D) levels (key B)"><input type="checkbox" data-show="bands" checked>bands</label>
+        <label title="band regions with their alert and danger levels (key B)"><input type="checkbox" data-show="bands" checked>bands</label>
         <label title="running-speed harmonics 1X, 2X, … (key H)"><input type="checkbox" data-show="harmonics" checked>1X…</label>
         <label title="bearing defect frequencies from tones named bpfo/bpfi/bsf/ftf (key D)"><input type="checkbox" data-show="bearing" checked>bearing</label>
         <label title="largest peaks labelled (key P)"><input type="checkbox" data-show="peaks" checked>peaks</label>
@@ -83,6 +85,7 @@ export function mount(root, id, { profile = "" } = {}) {
             <span class="seg" role="group" aria-label="period">${Object.keys(RANGES).map((r) => html`<button data-range="${r}">${r === "month" ? "30 days" : `1 ${r}`}</button>`)}</span>
             <span class="hint" id="trend-note"></span></figcaption>
           <canvas id="trend" class="plot-trend"></canvas></figure>
+        <figure class="panel" id="wave-panel"></figure>
       </div>
       <div>
         <section class="panel"><header>Bands <span class="hint" id="bands-unit"></span></header><canvas id="bars" class="plot-bars"></canvas>
@@ -95,6 +98,7 @@ export function mount(root, id, { profile = "" } = {}) {
     </div>`);
 
   const $ = (s) => root.querySelector(s);
+  const extras = [mountWave($("#wave-panel"), id), watchName($("#ch-name"), id, app)]; // console
   const readout = $("#readout");
   const specCanvas = $("#spec");
   const sg = new Spectrogram($("#sgram"), { rows: 200 });
@@ -646,6 +650,7 @@ export function mount(root, id, { profile = "" } = {}) {
       bars.surface.dispose();
       thirds.surface.dispose();
       trend.surface.dispose();
+      for (const x of extras) x.dispose();
     },
   };
 }

@@ -5,13 +5,15 @@ import { API, getJSON, qs } from "./api.js";
 import { html, setHTML, updateHTML } from "./dom.js";
 import { alarmListHtml, eventHeadHtml, eventRowHtml } from "./alarms.js";
 import { app, live, store } from "./shared.js";
+import { openAckAll, shelvedPanel } from "./shelve.js";
 
 export function mount(root) {
   const params = new URLSearchParams(location.hash.split("?")[1] || "");
   let channel = params.get("channel") || "";
   setHTML(root, html`
     <div class="ch-head"><h1>Alarms and events</h1></div>
-    <section class="panel" id="ev-alarms-panel"><header>Active and latched alarms</header><ul class="alarms" id="ev-alarms"></ul></section>
+    <section class="panel" id="ev-alarms-panel"><header>Active and latched alarms <span id="ev-ackall"></span></header><ul class="alarms" id="ev-alarms"></ul></section>
+    <section class="panel" id="ev-shelved-panel"></section>
     <section class="panel" id="ev-log-panel"><header>Event log
         <label class="hint">channel <select id="ev-channel"><option value="">all</option></select></label>
         <span class="hint" id="ev-count"></span></header>
@@ -19,6 +21,13 @@ export function mount(root) {
       <div class="pager"><button id="ev-older" hidden>Older events</button><span class="hint" id="ev-state"></span></div>
     </section>`);
   const $ = (s) => root.querySelector(s);
+  const unackedActive = () => (store.alarms || []).filter((a) => !a.acked).map((a) => a.rule);
+  const shelved = shelvedPanel($("#ev-shelved-panel"), unackedActive);
+  $("#ev-alarms-panel").addEventListener("click", (e) => {
+    if (!e.target.closest("[data-ackall-active]")) return;
+    const ids = unackedActive();
+    openAckAll({ rules: ids }, `${ids.length} active alarm${ids.length === 1 ? "" : "s"} not yet acknowledged`);
+  });
   let events = [];
   let nextBefore = null;
   let busy = false;
@@ -30,6 +39,7 @@ export function mount(root) {
     $("#ev-alarms-panel").hidden = al === null;
     if (al === null) return;
     updateHTML($("#ev-alarms"), alarmListHtml(al));
+    updateHTML($("#ev-ackall"), shelved.ackAllButton()); // shelve.js: acknowledge-all of this list
   }
 
   function fillChannels() {
@@ -85,7 +95,10 @@ export function mount(root) {
   const on = {
     alarms: renderAlarms,
     channels: fillChannels,
-    "alarm-event": () => load(),
+    "alarm-event": () => {
+      load();
+      shelved.load();
+    },
     // events arrive pushed over the stream ("alarm-event"); poll only while it is down
     tick: () => {
       if (!live.wsOpen && !(n++ % 5)) load();
@@ -98,6 +111,7 @@ export function mount(root) {
   return {
     unmount() {
       for (const [k, f] of Object.entries(on)) app.removeEventListener(k, f);
+      shelved.dispose();
     },
   };
 }

@@ -7,6 +7,7 @@ import { html, setHTML } from "./dom.js";
 import { SpectrumPlot } from "./spectrum.js";
 import { Scale, Surface, border, gridX, labelsX, linTicks, pal, plotArea } from "./plot.js";
 import { store } from "./shared.js";
+import { chTitle } from "./names.js";
 
 let plot = null;
 let wave = null;
@@ -59,7 +60,7 @@ export async function openEvidence(eventId) {
     return;
   }
   if (current !== eventId) return;
-  setHTML(what, html`<b>${e.channel}</b> · ${e.rule} · ${e.from_state} → <b>${e.to_state}</b> at ${fmtDateTime(e.t_ns)} · value ${fmtVal(e.value)} / level ${fmtVal(e.level)} ${unitLabel(e.unit || "")}${e.message ? html`<br><span class="hint">${e.message}</span>` : ""}`);
+  setHTML(what, html`<b title="${e.channel}">${chTitle(e.channel)}</b> · ${e.rule} · ${e.from_state} → <b>${e.to_state}</b> at ${fmtDateTime(e.t_ns)} · value ${fmtVal(e.value)} / level ${fmtVal(e.level)} ${unitLabel(e.unit || "")}${e.message ? html`<br><span class="hint">${e.message}</span>` : ""}`);
   const s = ev.spectrum;
   if (s?.values) {
     plot.setData({ f0: s.f0_hz, df: s.df_hz, values: Float32Array.from(s.values, (v) => v ?? NaN), unit: s.unit, amplitude: s.amplitude, t_ns: s.t_ns ?? e.t_ns });

@@ -1,5 +1,5 @@
-// Number, unit, frequency and time formatting shared by every view.
-// Pure functions: no DOM, no network.
+// Number, unit, frequency and time formatting shared by every view (times in the site's
+// zone, set once from GET /api/v1/meta). Pure functions: no DOM, no network.
 
 /** A value with 3 significant digits in fixed notation (exponent only below 1e-3 or at 1e6+). */
 export function fmtVal(v, sig = 3) {
@@ -57,20 +57,74 @@ export function unitLabel(unit, amplitude) {
   return amplitude ? `${u} ${ampLabel(amplitude)}` : u;
 }
 
-/** Local wall time of a ns timestamp, "14:03:07". */
-export function fmtClock(t_ns) {
-  if (!t_ns) return "—";
-  const d = new Date(Number(t_ns) / 1e6);
-  const p = (n) => String(n).padStart(2, "0");
-  return `${p(d.getHours())}:${p(d.getMinutes())}:${p(d.getSeconds())}`;
+// --- times: every time is shown in the site's zone (service.timezone, from GET /api/v1/meta),
+// not the browser's, with the zone's offset where a full time is written.
+const zoneState = { name: "UTC", parts: null };
+
+/** Show times in IANA zone `name` from now on (states.js calls it with the service's zone). */
+export function setSiteZone(name) {
+  try {
+    new Intl.DateTimeFormat("en-GB", { timeZone: name }); // RangeError for an unknown zone
+  } catch {
+    name = "UTC";
+  }
+  zoneState.name = name;
+  zoneState.parts = new Intl.DateTimeFormat("en-GB", {
+    timeZone: name, year: "numeric", month: "2-digit", day: "2-digit", hour: "2-digit",
+    minute: "2-digit", second: "2-digit", hourCycle: "h23", timeZoneName: "longOffset",
+  });
+}
+setSiteZone("UTC");
+
+/** The site zone's IANA name. */
+export function siteZone() {
+  return zoneState.name;
 }
 
-/** Local date and time of a ns timestamp, "2026-12-02 14:03:07". */
+/** The parts of a time in the site zone: {y, mo, d, h, mi, s, off} (off "+05:45"). */
+export function zoneParts(t_ms) {
+  const p = {};
+  for (const x of zoneState.parts.formatToParts(new Date(t_ms))) p[x.type] = x.value;
+  const off = (p.timeZoneName || "GMT").replace(/^(GMT|UTC)/, "") || "+00:00";
+  return { y: p.year, mo: p.month, d: p.day, h: p.hour, mi: p.minute, s: p.second, off: off.replace("−", "-") };
+}
+
+/** The site zone's offset from UTC at a time, ms (+05:45 → 20 700 000). */
+export function zoneOffsetMs(t_ms) {
+  const m = /^([+-])(\d\d):(\d\d)$/.exec(zoneParts(t_ms).off);
+  return m ? (m[1] === "-" ? -1 : 1) * (Number(m[2]) * 3600e3 + Number(m[3]) * 60e3) : 0;
+}
+
+/** The site zone's offset at a time, "+05:45", and its name: "Asia/Kathmandu (UTC+05:45)". */
+export function zoneLabel(t_ms = Date.now()) {
+  return `${zoneState.name} (UTC${zoneParts(t_ms).off})`;
+}
+
+/** Wall time of a ns timestamp in the site zone, "14:03:07". */
+export function fmtClock(t_ns) {
+  if (!t_ns) return "—";
+  const p = zoneParts(Number(t_ns) / 1e6);
+  return `${p.h}:${p.mi}:${p.s}`;
+}
+
+/** The site-zone day of a ns timestamp, "2026-12-02". */
+export function fmtDay(t_ns) {
+  const p = zoneParts(Number(t_ns) / 1e6);
+  return `${p.y}-${p.mo}-${p.d}`;
+}
+
+/** Date, time and offset of a ns timestamp in the site zone, "2026-12-02 14:03:07 +05:45". */
 export function fmtDateTime(t_ns) {
   if (!t_ns) return "—";
-  const d = new Date(Number(t_ns) / 1e6);
-  const p = (n) => String(n).padStart(2, "0");
-  return `${d.getFullYear()}-${p(d.getMonth() + 1)}-${p(d.getDate())} ${p(d.getHours())}:${p(d.getMinutes())}:${p(d.getSeconds())}`;
+  const p = zoneParts(Number(t_ns) / 1e6);
+  return `${p.y}-${p.mo}-${p.d} ${p.h}:${p.mi}:${p.s} ${p.off}`;
+}
+
+/** Time of day with the offset for today (site zone), date, time and offset otherwise. */
+export function fmtWhen(t_ns) {
+  if (!t_ns) return "—";
+  const s = fmtDateTime(t_ns);
+  return fmtDay(t_ns) === fmtDay(Date.now() * 1e6) ? s.slice(11) : s;
 }
 
 /** A duration in seconds as "45 s", "3 min", "2 h 5 min", "4 d". */

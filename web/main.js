@@ -4,7 +4,7 @@
 import { app, channelState, groupByMachine, live, store } from "./shared.js";
 import { Surface, loadPalette } from "./plot.js";
 import { STATES, alarmStateKey, isLive, loadStates } from "./states.js";
-import { fmtHz, fmtVal } from "./fmt.js";
+import { fmtClock, fmtHz, fmtVal } from "./fmt.js";
 import { badge, glyph, html, setHTML, updateHTML } from "./dom.js";
 import * as overview from "./overview.js";
 import * as channel from "./channel.js";
@@ -13,6 +13,9 @@ import { setupAck } from "./alarms.js";
 import { setupEvidence } from "./evidence.js";
 import { setupFilter } from "./filterview.js";
 import { signIn } from "./signin.js";
+import { chName, chTitle, machineLabel } from "./names.js";
+import * as rulesView from "./rules.js";
+import { setupConsole } from "./console.js";
 
 app.addEventListener("channels", () => renderSide());
 app.addEventListener("alarms", () => {
@@ -49,7 +52,7 @@ function renderConn(d) {
   const b = document.getElementById("banner");
   if (conn === "reconnecting") {
     b.hidden = false;
-    b.textContent = `No contact with the service since ${new Date(store.downSince || Date.now()).toLocaleTimeString([], { hour12: false })} — reconnecting` +
+    b.textContent = `No contact with the service since ${fmtClock((store.downSince || Date.now()) * 1e6)} — reconnecting` +
       (d.attempts > 1 ? ` (attempt ${d.attempts})` : "") + ". Values on screen are not live.";
   } else {
     b.hidden = true;
@@ -81,11 +84,11 @@ function renderSide() {
   const cur = currentChannel();
   const parts = [];
   for (const [machine, chans] of groupByMachine(store.channels)) {
-    parts.push(html`<h3><span>${machine}</span></h3>`);
+    parts.push(html`<h3 data-machine="${machine}" title="${machine}"><span>${machineLabel(machine)}</span></h3>`);
     for (const c of chans) {
       const k = channelState(c);
       const abn = STATES[k].rank >= STATES.latched.rank;
-      parts.push(html`<a class="ch ${abn ? "abn" : ""} ${STATES[k].cls}" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${c.id}" data-state="${k}" title="${c.description} — ${STATES[k].word}${overallTitle(c.latest)}"${c.id === cur ? html` aria-current="page"` : ""}>${glyph(k)}<span>${c.id}</span><span class="v">${c.latest && isLive(c.status) ? fmtVal(c.latest.overall) : STATES[k].word.toLowerCase()}</span></a>`);
+      parts.push(html`<a class="ch ${abn ? "abn" : ""} ${STATES[k].cls}" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${c.id}" data-state="${k}" title="${chTitle(c.id)}${c.description ? ` — ${c.description}` : ""} — ${STATES[k].word}${overallTitle(c.latest)}"${c.id === cur ? html` aria-current="page"` : ""}>${glyph(k)}<span>${chName(c.id)}</span><span class="v">${c.latest && isLive(c.status) ? fmtVal(c.latest.overall) : STATES[k].word.toLowerCase()}</span></a>`);
     }
   }
   updateHTML(document.getElementById("side"), parts);
@@ -113,6 +116,9 @@ function route() {
   if (ch) {
     which = "channel";
     view = channel.mount(main, ch.id, { profile: ch.profile });
+  } else if (location.hash.startsWith("#/rules")) {
+    which = "rules"; // the rules view (web/rules.js)
+    view = rulesView.mount(main);
   } else if (location.hash.startsWith("#/events")) {
     which = "events";
     view = eventsView.mount(main);
@@ -135,6 +141,7 @@ async function init() {
   setupAck();
   setupEvidence();
   setupFilter();
+  setupConsole(); // shelve, unshelve and acknowledge-all dialogs; the site zone in the header
   for (const d of document.querySelectorAll("dialog")) {
     d.addEventListener("click", (e) => {
       if (e.target.closest("[data-close]")) d.close();

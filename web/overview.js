@@ -8,6 +8,7 @@ import { badge, glyph, html, join, setHTML, updateHTML } from "./dom.js";
 import { BandBars, bandRows, topBands } from "./bars.js";
 import { Surface, pal } from "./plot.js";
 import { alarmListHtml, eventItemHtml, ruleProfile } from "./alarms.js";
+import { chName, machineLabel } from "./names.js";
 import { alarmsFor, app, channelState, fetchWatched, FRAME, groupByMachine, history, levels, live, seedHistory, store } from "./shared.js";
 
 const SPARK_MS = 10 * 60e3;
@@ -83,10 +84,11 @@ export function mount(root) {
     cards.clear();
     const parts = [];
     for (const [machine, chans] of groupByMachine(store.channels)) {
-      parts.push(html`<section class="machine" data-machine="${machine}"><h2><span class="mglyph"></span>${machine} <span class="count">${chans.length} channel${chans.length > 1 ? "s" : ""}</span></h2><div class="cards">`);
+      parts.push(html`<section class="machine" data-machine="${machine}"><h2><span class="mglyph"></span>${machineLabel(machine)} <span class="count">${chans.length} channel${chans.length > 1 ? "s" : ""}</span></h2><div class="cards">`);
       for (const c of chans) {
         parts.push(html`<a class="card" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${c.id}" data-state="unknown">
-          <div class="row1"><span class="id">${c.id}</span><span class="st"></span></div>
+          <div class="row1"><span class="id" title="${c.id}">${chName(c.id)}</span><span class="st"></span></div>
+          ${chName(c.id) !== c.id ? html`<div class="cid">${c.id}</div>` : ""}
           <div class="desc" title="${c.description}">${c.description || ""}</div>
           <div class="headline"><span class="overall" data-role="overall">—</span><span class="unit"></span><span class="what"></span></div>
           <canvas class="spark" aria-hidden="true"></canvas>

@@ -143,7 +143,8 @@ live.addEventListener("channels", (e) => {
 
 live.addEventListener("alarms", (e) => {
   const list = e.detail;
-  store.alarms = list === null ? null : list.filter((a) => a.state !== "normal" || a.latched);
+  // a shelved rule's alarm is not annunciated (shown under Shelved instead)
+  store.alarms = list === null ? null : list.filter((a) => (a.state !== "normal" || a.latched) && !a.shelved);
   for (const a of list || []) store.rules.set(ruleKey(a.channel, ruleProfile(a), a.kind, a.name), a);
   // A rule that left the active list is back to normal: keep its levels, drop its state.
   if (list) {

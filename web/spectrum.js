@@ -469,7 +469,8 @@ export class SpectrumPlot {
       const k = convertFactor(b.unit, d.unit, d.amplitude, "rms");
       if (k === null && !wide && (b.alert > 0 || b.danger > 0)) this._levelsHidden = b.unit;
       if (k === null || wide) continue; // a wide band's RMS sums many lines: no per-line level
-      for (const [lvl, dash, wdt, tag] of [[b.alert, [5, 3], 1, "A"], [b.danger, [], 1.6, "D"]]) {
+      // labelled with words: a lone "A"/"D" reads as a severity zone of the vibration standards
+      for (const [lvl, dash, wdt, tag] of [[b.alert, [5, 3], 1, "alert"], [b.danger, [], 1.6, "danger"]]) {
         if (!(lvl > 0)) continue;
         const y = yOf(lvl * k);
         if (y <= T - 4 || y >= B + 4) continue;
@@ -481,9 +482,9 @@ export class SpectrumPlot {
         ctx.lineTo(x1, y);
         ctx.stroke();
         ctx.setLineDash([]);
-        if (x1 - x0 > 12) {
+        ctx.font = `600 9px ${pal.font}`;
+        if (x1 - x0 > ctx.measureText(tag).width + 4) {
           ctx.fillStyle = pal.ink;
-          ctx.font = `600 9px ${pal.font}`;
           ctx.textBaseline = "bottom";
           ctx.fillText(tag, x0 + 2, y - 1);
         }

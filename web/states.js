@@ -4,6 +4,7 @@
 // is here. No DOM beyond returning markup strings.
 
 import { API, getJSON } from "./api.js";
+import { setSiteZone } from "./fmt.js";
 
 // How each state is shown, ordered most to least severe. `cls` picks the colour in app.css;
 // `shape` the glyph; `rank` orders states for "worst of". `help` (the tooltip) is the
@@ -47,6 +48,7 @@ export async function loadStates() {
 }
 
 function applyMeta(meta) {
+  setSiteZone(meta.timezone || "UTC"); // every time on the page is shown in the site's zone
   for (const c of meta.channel_statuses) {
     const key = SHOWN_AS[c.name] ?? c.name;
     STATUS_TO_STATE[c.name] = key;

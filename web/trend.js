@@ -1,7 +1,7 @@
 // The trend chart: one value over time (mean line inside its min–max envelope), its alert
 // and danger levels, and alarm events marked by shape. Canvas only; data comes from the caller.
 
-import { fmtClock, fmtVal, unitLabel } from "./fmt.js";
+import { fmtClock, fmtVal, unitLabel, zoneOffsetMs, zoneParts } from "./fmt.js";
 import { Scale, Surface, border, gridX, gridY, labelsX, labelsY, linTicks, niceCeil, pal, plateText, plotArea } from "./plot.js";
 
 const STEPS_S = [1, 2, 5, 10, 15, 30, 60, 120, 300, 600, 900, 1800, 3600, 7200, 10800, 21600, 43200, 86400, 172800, 604800];
@@ -45,7 +45,7 @@ export class TrendChart {
     labelsY(ctx, ys, yt, box, (v) => fmtVal(v, 2));
     const spanS = (t1 - t0) / 1000;
     const step = (STEPS_S.find((s) => ((R - L) / spanS) * s >= 80) ?? 2592000) * 1000;
-    const tz = new Date().getTimezoneOffset() * 60e3;
+    const tz = -zoneOffsetMs(t1); // ticks on the site zone's whole hours and days
     const xt = [];
     for (let t = Math.ceil((t0 - tz) / step) * step + tz; t <= t1; t += step) xt.push(t);
     gridX(ctx, xs, xt, box);
@@ -155,12 +155,11 @@ function medianDt(pts) {
 }
 
 function timeLabel(t, step) {
-  const d = new Date(t);
-  const p = (n) => String(n).padStart(2, "0");
-  if (step >= 86400e3) return `${d.getFullYear()}-${p(d.getMonth() + 1)}-${p(d.getDate())}`;
-  if (step >= 3600e3 && d.getHours() === 0) return `${p(d.getMonth() + 1)}-${p(d.getDate())}`;
-  if (step < 60e3) return `${p(d.getHours())}:${p(d.getMinutes())}:${p(d.getSeconds())}`;
-  return `${p(d.getHours())}:${p(d.getMinutes())}`;
+  const d = zoneParts(t); // the site zone's wall time
+  if (step >= 86400e3) return `${d.y}-${d.mo}-${d.d}`;
+  if (step >= 3600e3 && d.h === "00") return `${d.mo}-${d.d}`;
+  if (step < 60e3) return `${d.h}:${d.mi}:${d.s}`;
+  return `${d.h}:${d.mi}`;
 }
 
 /** Event marker shapes match the state glyphs: diamond danger, triangle alert, ring otherwise. */
