@@ -77,6 +77,9 @@ ROUTES: list[tuple[str, str, str]] = [
     ("GET", "/api/v1/channels/a/bands", "read"),
     ("GET", "/api/v1/channels/a/tones", "read"),
     ("GET", "/api/v1/channels/a/trend?name=overall", "read"),
+    ("GET", "/api/v1/channels/a/waveform", "read"),
+    ("GET", "/api/v1/rules", "read"),
+    ("GET", "/api/v1/alarms/shelved", "read"),
     ("GET", "/api/v1/windows/hann/response", "read"),
     ("GET", "/api/v1/meta", "read"),
     ("GET", "/api/v1/alarms", "read"),
@@ -84,6 +87,9 @@ ROUTES: list[tuple[str, str, str]] = [
     ("GET", "/api/v1/events/1", "read"),
     ("GET", "/api/v1/events/1/evidence", "read"),
     ("POST", "/api/v1/alarms/a.band.b/ack", "ack"),
+    ("POST", "/api/v1/alarms/ack", "ack"),
+    ("POST", "/api/v1/alarms/a.band.b/shelve", "ack"),
+    ("POST", "/api/v1/alarms/a.band.b/unshelve", "ack"),
     ("POST", "/api/v1/admin/reload", "reload"),
     ("WS", "/api/v1/stream", "ws"),
 ]
@@ -97,6 +103,8 @@ ROUTE_TEMPLATES = {  # the app's path templates the ROUTES above stand for
     "/api/v1/alarms", "/api/v1/events", "/api/v1/events/{event_id}",
     "/api/v1/events/{event_id}/evidence", "/api/v1/alarms/{rule}/ack",
     "/api/v1/admin/reload", "/api/v1/stream", "/api/v1/meta",
+    "/api/v1/channels/{channel_id}/waveform", "/api/v1/rules", "/api/v1/alarms/shelved",
+    "/api/v1/alarms/ack", "/api/v1/alarms/{rule}/shelve", "/api/v1/alarms/{rule}/unshelve",
 }
 
 
