@@ -11,13 +11,14 @@ from typing import Any
 from fastapi import APIRouter
 
 from .. import __version__
-from .deps import HubDep, MaybeServiceDep
+from .deps import ConfigDep, HubDep, MaybeServiceDep
+from .timefields import with_times
 
 router = APIRouter(tags=["health"])
 
 
 @router.get("/health", summary="Service health, store state, source counters and channel states")
-def health(hub: HubDep, service: MaybeServiceDep) -> dict[str, Any]:
+def health(hub: HubDep, service: MaybeServiceDep, cfg: ConfigDep) -> dict[str, Any]:
     """``status`` is ``ok``, or ``degraded`` while any channel is not ``ok`` (``not_ok`` lists
     them with their state, cause and since when), a source's pipeline has failed, or the
     store cannot write (monitoring, alarms and the API go on; trends, events and evidence
@@ -46,7 +47,7 @@ def health(hub: HubDep, service: MaybeServiceDep) -> dict[str, Any]:
     notifier = service.notifier if service is not None else None
     notify = notifier.health() if notifier is not None else None
     notify_failing = notify is not None and not notify["ok"]
-    return {
+    return with_times({
         "status": "degraded" if store_failing or not_ok or failed or notify_failing else "ok",
         "store": store_health,
         "notify": notify,
@@ -56,7 +57,7 @@ def health(hub: HubDep, service: MaybeServiceDep) -> dict[str, Any]:
         "not_ok": not_ok,
         "frames_published": hub.frames_published,
         "sources": sources,
-    }
+    }, cfg.service.timezone)
 
 
 @router.get("/health/live", summary="Liveness: the service answers (no token needed, no details)")

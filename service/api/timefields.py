@@ -20,7 +20,7 @@ TIME_FIELDS: dict[str, str] = {
     "shelved_ns": "shelved_time",
     "shelved_until_ns": "shelved_until",
     "status_since_ns": "status_since",
-    "last_time_ns": "last_time",
+    "last_error_ns": "last_error_time",
 }
 T = TypeVar("T")
 _LO, _HI = 0, 253_402_300_799 * 10**9  # years 1970 … 9999: a producer's clock can be anything

@@ -13,6 +13,7 @@ from fastapi import APIRouter, HTTPException, Query
 from ..store import trend_key
 from .deps import ChannelDep, ConfigDep, ProfileQ, StoreDep, check_profile, invalid, invalid_query
 from .security import Reader
+from .timefields import iso_or_none
 
 router = APIRouter(tags=["trends"])
 
@@ -74,6 +75,7 @@ async def get_trend(
     except ValueError as e:  # e.g. a step that is not a multiple of the stored step
         invalid_query("step", str(e))
     names = await asyncio.to_thread(store.trend_names, channel.id)
+    tz = cfg.service.timezone
     if not points and name not in names and names:
         raise HTTPException(404, f"no trend {name!r} on {channel.id!r}; have: {', '.join(names)}")
     return {
@@ -84,6 +86,7 @@ async def get_trend(
         "since": since_s,
         "until": until_s,
         "points": [
-            {"t_ns": t, "mean": m, "min": lo, "max": hi, "count": n} for t, m, lo, hi, n in points
+            {"t_ns": t, "time": iso_or_none(t, tz), "mean": m, "min": lo, "max": hi, "count": n}
+            for t, m, lo, hi, n in points
         ],
     }

@@ -49,7 +49,7 @@ CONFIG = one_band_config(
     alarms=[{"channel": "*", "band": "b", "alert": 0.5, "danger": 1.0, "hysteresis": 0.1,
              "on_delay_s": 0.5, "off_delay_s": 2.0, "latch": True}],
     tokens=[token("otto", "operator"), token("vera", "viewer")],
-    service={"timezone": ZONE},
+    service={"timezone": ZONE, "trend_step_s": 1},
 )
 
 
@@ -154,6 +154,10 @@ def test_channels_carry_display_names_and_meta_the_zone(svc: RunningService) -> 
     assert svc.get("meta")["timezone"] == ZONE
     ev = svc.get("events")["events"][0]
     assert ev["time"].endswith("+05:45")
+    t = a["latest"]["timestamp_ns"] / 1e9
+    points = svc.wait(lambda: svc.get("channels/a/trend", name="band:b", since=t - 600,
+                                      until=t + 600)["points"] or None, "trend points")
+    assert all(p["time"].endswith("+05:45") for p in points)
 
 
 def test_waveform_is_the_newest_samples_in_input_units(svc: RunningService) -> None:
