@@ -472,7 +472,7 @@ export function mount(root, id, { profile = "" } = {}) {
 
   function staleCheck() {
     let s = "";
-    if (store.conn === "reconnecting") s = `no contact since ${new Date(store.downSince).toLocaleTimeString([], { hour12: false })}`;
+    if (store.conn === "reconnecting") s = `no contact since ${fmtClock(store.downSince * 1e6)}`;
     else if (st.hold) s = `held at ${fmtClock(st.lastT)}`;
     else if (st.lastSpec && Date.now() - st.lastSpec > STALE_AFTER_MS) s = `no new spectrum for ${Math.round((Date.now() - st.lastSpec) / 1000)} s`;
     plot.setStale(s);

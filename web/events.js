@@ -6,6 +6,7 @@ import { html, setHTML, updateHTML } from "./dom.js";
 import { alarmListHtml, eventHeadHtml, eventRowHtml } from "./alarms.js";
 import { app, live, store } from "./shared.js";
 import { openAckAll, shelvedPanel } from "./shelve.js";
+import { chTitle } from "./names.js";
 
 export function mount(root) {
   const params = new URLSearchParams(location.hash.split("?")[1] || "");
@@ -47,7 +48,7 @@ export function mount(root) {
     const ids = store.channels.map((c) => c.id);
     if (sel.dataset.ids === ids.join(",")) return;
     sel.dataset.ids = ids.join(",");
-    setHTML(sel, html`<option value="">all</option>${ids.map((i) => html`<option value="${i}">${i}</option>`)}`);
+    setHTML(sel, html`<option value="">all</option>${ids.map((i) => html`<option value="${i}">${chTitle(i)}</option>`)}`);
     sel.value = channel;
   }
 

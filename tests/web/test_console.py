@@ -232,3 +232,22 @@ def test_waveform_panel_and_names_on_the_channel_page(
     screenshot(pg, "console-waveform")
     assert not log.errors
 
+
+
+def test_band_limit_ticks_say_alert_and_danger_with_their_values(
+    zoned: ZonedDemo, page: tuple[Any, PageLog]
+) -> None:
+    """The bar's level ticks read "alert 4.50" / "danger 7.10", never a lone "A"/"D" (which
+    reads as a severity zone of ISO 10816-3: docs/references.md); close levels move apart."""
+    pg, _ = page
+    open_view(pg, zoned.base_url + "/")
+    ticks = pg.evaluate("""async () => {
+        const m = await import("/static/bars.js");
+        const ctx = document.createElement("canvas").getContext("2d");
+        ctx.font = "600 9px sans-serif";
+        const far = m.levelTicks(ctx, {alert: 4.5, danger: 7.1}, (v) => v * 40);
+        const near = m.levelTicks(ctx, {alert: 4.5, danger: 4.6}, (v) => v * 40);
+        return [far.map((t) => [t.text, t.align]), near.map((t) => [t.text, t.align])];
+    }""")
+    assert ticks == [[["alert 4.50", "center"], ["danger 7.10", "center"]],
+                     [["alert 4.50", "right"], ["danger 4.60", "left"]]]
