@@ -8,7 +8,8 @@ import { badge, glyph, html, join, setHTML, updateHTML } from "./dom.js";
 import { BandBars, bandRows, topBands } from "./bars.js";
 import { Surface, pal } from "./plot.js";
 import { alarmListHtml, eventItemHtml, ruleProfile } from "./alarms.js";
-import { chName, machineLabel } from "./names.js";
+import { chName, machineLabel, machineName } from "./names.js";
+import { openAckAll } from "./shelve.js";
 import { alarmsFor, app, channelState, fetchWatched, FRAME, groupByMachine, history, levels, live, seedHistory, store } from "./shared.js";
 
 const SPARK_MS = 10 * 60e3;
@@ -84,7 +85,7 @@ export function mount(root) {
     cards.clear();
     const parts = [];
     for (const [machine, chans] of groupByMachine(store.channels)) {
-      parts.push(html`<section class="machine" data-machine="${machine}"><h2><span class="mglyph"></span>${machineLabel(machine)} <span class="count">${chans.length} channel${chans.length > 1 ? "s" : ""}</span></h2><div class="cards">`);
+      parts.push(html`<section class="machine" data-machine="${machine}"><h2><span class="mglyph"></span>${machineLabel(machine)} <span class="count">${chans.length} channel${chans.length > 1 ? "s" : ""}</span><span class="mack"></span></h2><div class="cards">`);
       for (const c of chans) {
         parts.push(html`<a class="card" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${c.id}" data-state="unknown">
           <div class="row1"><span class="id" title="${c.id}">${chName(c.id)}</span><span class="st"></span></div>
@@ -185,6 +186,10 @@ export function mount(root) {
         const k = card.dataset.state;
         if ((STATES[k]?.rank ?? -1) > STATES[worst].rank) worst = k;
       }
+      // acknowledge-all of this machine's unacknowledged alarms (POST /alarms/ack {machine})
+      const mid = sec.dataset.machine;
+      const n = (store.alarms || []).filter((a) => !a.acked && store.channels.find((c) => c.id === a.channel)?.machine === mid).length;
+      updateHTML(sec.querySelector(".mack"), n ? html`<button class="small" data-ack-machine="${mid}">Acknowledge all (${n})</button>` : "");
       const g = sec.querySelector(".mglyph");
       updateHTML(g, html`<span class="${STATES[worst].cls}" title="worst state: ${STATES[worst].word}">${glyph(worst)}</span>`);
     }
@@ -246,6 +251,13 @@ export function mount(root) {
     "alarm-event": () => loadEvents(),
   };
   let pendingBands = false;
+  const machineAck = (e) => {
+    const b = e.target.closest("[data-ack-machine]");
+    if (!b) return;
+    const mid = b.dataset.ackMachine;
+    openAckAll({ machine: mid }, `every unacknowledged alarm of ${machineName(mid)} (${mid})`);
+  };
+  root.addEventListener("click", machineAck);
   for (const [k, f] of Object.entries(on)) app.addEventListener(k, f);
   update();
   renderAlarms();

@@ -183,6 +183,26 @@ def test_shelve_with_reason_and_end_then_unshelve(
     assert not log.errors
 
 
+def test_plant_view_offers_acknowledge_all_per_machine(
+    zoned: ZonedDemo, page: tuple[Any, PageLog]
+) -> None:
+    pg, log = page
+    open_view(pg, zoned.base_url + "/")
+    unacked = [a for a in zoned.get("alarms") if not a["acked"]]
+    assert unacked and {a["channel"].split("-")[0] for a in unacked} == {"p1"}
+    btn = ".machine[data-machine='p1'] [data-ack-machine]"
+    wait_for(lambda: pg.query_selector(btn), "pump 1's Acknowledge-all button")
+    assert pg.inner_text(btn) == f"Acknowledge all ({len(unacked)})"
+    assert not pg.query_selector(".machine[data-machine='p2'] [data-ack-machine]")  # none
+    pg.click(btn)
+    assert pg.is_visible("#dlg-ackall")
+    assert "Cooling-water pump 1 (p1)" in pg.inner_text("#ackall-what")
+    pg.click("#dlg-ackall button[value='cancel']")
+    assert not pg.is_visible("#dlg-ackall")
+    assert all(not a["acked"] for a in zoned.get("alarms"))  # cancelled: nothing changed
+    assert not log.errors
+
+
 def test_acknowledge_all_marks_each_alarm_ack(
     zoned: ZonedDemo, page: tuple[Any, PageLog]
 ) -> None:
