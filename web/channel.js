@@ -380,7 +380,7 @@ export function mount(root, id, { profile = "" } = {}) {
     bars.setRows(named, m.unit);
     thirds.setRows(th, m.unit);
     $("#thirds-head").hidden = $("#thirds").hidden = !th.length; // e.g. a narrow profile has none
-    setText($("#bands-unit"), `${unitLabel(m.unit, "rms")} · A = alert, D = danger`);
+    setText($("#bands-unit"), `${unitLabel(m.unit, "rms")} · ticks: alert and danger levels`);
     fillTrendNames(named);
   }
 

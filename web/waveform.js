@@ -39,7 +39,7 @@ export class WavePlot {
     const xs = new Scale(false).set(0, durMs, L, R);
     const ys = new Scale(false).set(-mx, mx, B, T);
     const xt = linTicks(0, durMs, Math.max(2, Math.floor((R - L) / 80)));
-    const yt = linTicks(-mx, mx, Math.max(2, Math.floor((B - T) / 34)));
+    const yt = linTicks(-mx, mx, Math.max(5, Math.floor((B - T) / 24))); // steps below mx
     gridX(ctx, xs, xt, box);
     gridY(ctx, ys, yt, box, (v) => (v === 0 ? pal.axis : pal.grid));
     labelsX(ctx, xs, xt, box, (t) => `${+t.toFixed(2)} ms`, { dy: 4, spaced: true });
@@ -96,7 +96,8 @@ export function mountWave(fig, id) {
       const d = await getJSON(`${API}/channels/${encodeURIComponent(id)}/waveform${qs({ seconds, points })}`);
       if (gone) return;
       plot.setData(d);
-      cap.textContent = `${d.n} samples at ${fmtVal(d.fs, 5)} /s from ${fmtWhen(d.t0_ns)}${d.step > 1 ? ` · drawn as min/max of ${d.step}` : ""}`;
+      cap.textContent = `${d.n} samples · ${fmtVal(d.fs, 5)}/s · from ${fmtWhen(d.t0_ns)}`;
+      cap.title = d.step > 1 ? `drawn as the min/max of each ${d.step} samples` : "every sample drawn";
       fig.dataset.n = d.n;
       fig.dataset.unit = d.unit;
     } catch (e) {
