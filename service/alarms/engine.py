@@ -221,7 +221,7 @@ class AlarmEngine(ShelvingMixin):
                 continue
             ev = self._step(a, a.rule.pick(frame), frame.t_ns, frame.unit)
             if ev is not None:
-                events.append(ev)
+                events.append(self.noted(ev))
         return events
 
     def set_channel_status(
@@ -253,7 +253,7 @@ class AlarmEngine(ShelvingMixin):
             if a.rule.kind == "signal":
                 ev = self._signal(a, lost, int(t_ns), fault)
                 if ev is not None:
-                    events.append(ev)
+                    events.append(self.noted(ev))
         return events
 
     def _signal(self, a: _Alarm, lost: bool, t_ns: int, cause: str) -> AlarmEvent | None:

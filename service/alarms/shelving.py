@@ -14,6 +14,7 @@ annunciated again at once. The shelve is part of the alarm snapshot (a restart k
 from __future__ import annotations
 
 from collections.abc import Iterable
+from dataclasses import replace
 from typing import TYPE_CHECKING
 
 from .events import AlarmEvent, AlarmView
@@ -46,6 +47,14 @@ class ShelvingMixin:
         shelved rule's events."""
         a = self._alarms.get(rule_id)
         return a is not None and a.shelved_until_ns is not None
+
+    def noted(self, ev: AlarmEvent) -> AlarmEvent:
+        """``ev`` with "(shelved: not annunciated)" after its message when its rule is
+        shelved, so the event log says why nobody was shown it."""
+        a = self._alarms.get(ev.rule)
+        if a is None or a.shelved_until_ns is None:
+            return ev
+        return replace(ev, message=f"{ev.message} (shelved: not annunciated)")
 
     def shelved(self) -> list[AlarmView]:
         """The shelved rules (any state), the shelve ending soonest first."""

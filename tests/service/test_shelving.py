@@ -38,6 +38,8 @@ def test_a_shelved_rule_still_evaluates_and_logs_but_is_not_active() -> None:
     assert [(x.rule, x.to_state) for x in evs] == [("m1.overall", "alert"),
                                                  ("m2.overall", "alert")]
     assert [v.rule for v in e.active()] == ["m2.overall"]
+    assert evs[0].message.endswith("(shelved: not annunciated)")
+    assert "shelved" not in evs[1].message
     (sh,) = e.shelved()
     assert (sh.rule, sh.state.value, sh.shelved, sh.shelve_reason) == (
         "m1.overall", "alert", True, "bearing swap tonight")
