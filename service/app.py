@@ -102,7 +102,12 @@ class Service:
             retention=Retention(max_db_bytes=max_bytes),
         )
         # [[notify]]: its router writes outbox rows in every events transaction from the start
-        self.notifier = Notifier(cfg, self.store) if cfg.notify else None
+        # a shelved rule's events are logged but not sent (the predicate runs on the store's
+        # writer thread: one dict read of the current alarm engine)
+        self.notifier = (
+            Notifier(cfg, self.store, suppressed=lambda rule: self.alarms.is_shelved(rule))
+            if cfg.notify else None
+        )
         if self.notifier is not None:
             self.notifier.attach()
 
