@@ -36,13 +36,14 @@ from .config import (
     parse_listen,
 )
 from .context import ReloadRefused
+from .history import SpectrumHistory, alarm_row
 from .hub import Hub
 from .pipeline import ChannelState, SourcePipeline, channel_states
 from .profiles import ProfileBank
 from .quality import Inputs, derive, is_lost
 from .sources import make_source
 from .spectra import spectrum_values
-from .store import Retention, Store, StoreError, trend_key
+from .store import HistoryPolicy, HistoryRow, Retention, Store, StoreError, trend_key
 from .types import SpectralFrame
 
 log = logging.getLogger("quaver")
@@ -94,11 +95,18 @@ class Service:
         self.started_mono = time.monotonic()
         self.alarms = AlarmEngine(rules_from_config(cfg, channels=all_ids))
         max_bytes = None if cfg.service.max_db_mb is None else int(cfg.service.max_db_mb * 2**20)
+        hist = cfg.history
         self.store = Store(
             Path(cfg.service.data_dir) / "quaver.db",
             trend_step_s=cfg.service.trend_step_s,
             retention=Retention(max_db_bytes=max_bytes),
+            history=HistoryPolicy(
+                fine_s=hist.fine_days * 86400, coarse_s=hist.coarse_days * 86400,
+                coarse_step_s=hist.coarse_step_s, max_bytes=int(hist.max_mb * 2**20),
+            ),
         )
+        # stored spectra: interval means taken on the loop, encoded on the writer thread
+        self.history = SpectrumHistory(hist.interval_s) if hist.enabled else None
 
     # -- lifecycle ---------------------------------------------------------------------
     async def start(self) -> None:
@@ -244,6 +252,8 @@ class Service:
         for p in self.pipelines:
             await p.source.aclose()
             self._store_evidence(p, final=True)
+        if self.history is not None:
+            self.store.put_history(self.history.flush())
         await asyncio.to_thread(self.store.close)
 
     def app(self) -> FastAPI:
@@ -338,6 +348,10 @@ class Service:
         if not frames:
             return
         self.hub.publish(frames, latency_s)
+        if self.history is not None:
+            closed = self.history.add(frames)
+            if closed:
+                self.store.put_history(closed)
         events: list[tuple[AlarmEvent, SpectralFrame | None]] = []
         for f in frames:
             values = {"overall": f.overall}
@@ -367,9 +381,13 @@ class Service:
             self.store_errors += 1
             log.error("could not store %d alarm events (not announced): %s", len(evs), err)
             return
+        spectra: list[HistoryRow] = []
         for e, (_, frame) in zip(stored, events, strict=True):
             log.info("alarm event %s: %s", e.id, e.message)
             self.hub.publish_event(e.as_dict())
+            if self.history is not None and frame is not None:
+                # spectral history: the spectrum of the moment at every alarm change
+                spectra.append(alarm_row(frame, e.id))
             if e.raises and e.id is not None and p is not None and frame is not None:
                 values, unit, amp = spectrum_values(frame)
                 p.request_evidence(
@@ -390,6 +408,8 @@ class Service:
                         "input_unit": frame.input_unit,
                     },
                 )
+        if spectra:
+            self.store.put_history(spectra)
 
     def _store_evidence(self, p: SourcePipeline, *, final: bool = False) -> None:
         for ev in p.take_evidence(final=final):
