@@ -30,6 +30,7 @@ from . import (
     docs,
     edge,
     health,
+    history,
     meta,
     metrics,
     security,
@@ -101,6 +102,7 @@ def create_app(
     app.include_router(windows.router, prefix="/api/v1")
     app.include_router(alarms.router, prefix="/api/v1")
     app.include_router(trends.router, prefix="/api/v1")
+    app.include_router(history.router, prefix="/api/v1")
     app.include_router(admin.router, prefix="/api/v1")
     app.include_router(meta.router, prefix="/api/v1")
     app.include_router(metrics.router)
