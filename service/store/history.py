@@ -4,14 +4,15 @@ Functions of a connection (the writer's or a reader's) and plain arrays; knows t
 table, not threads, frames, the hub or HTTP (the service hands it power spectra as arrays).
 
 Codec: a power spectrum P[q] (input unit², RMS² per line) is kept as 16-bit codes of its
-level in dB re 1 unit², in steps of :data:`DB_STEP` = 0.01 dB from :data:`DB_FLOOR`
+level in dB re 1 unit², in steps of :data:`DB_STEP` = 0.02 dB from :data:`DB_FLOOR`
 (code = round((10·log10 P − DB_FLOOR)/DB_STEP)), compressed with zlib. Decoding gives every
-line within ±0.005 dB of the power stored (±0.06 % in power, half that in amplitude); code 0
+line within ±0.01 dB of the power stored (±0.23 % in power, half that in amplitude); code 0
 stands for a power at or below the floor (10⁻⁴⁰, read back as 0), levels above
-DB_FLOOR + 655.34 dB are clipped there. Measured on the simulated plant (docs/api.md,
-"Spectral history"), this is 1.3/2.5/4.8/9.5 kB for 800/1600/3200/6400 lines, against
-2.9/5.6/11.4/22.4 kB for float32 + zlib; float16 of dB is ~10 % smaller but its step grows
-with |dB| (0.06 dB at −100 dB), so levels far below 1 unit² would lose more.
+DB_FLOOR + 1310.7 dB are clipped there. Measured on the simulated plant's interval means
+(``python -m bench.history_size``): 1.0/1.9/3.8/7.8 kB for 800/1600/3200/6400 lines,
+against 2.8/5.5/11.1/22.1 kB for float32 + zlib; float16 of dB is ~9 % smaller, but its
+step grows with |dB| (0.03 dB from 32 to 64 dB, 0.06 dB beyond), whereas this one is the
+same at every level.
 """
 
 from __future__ import annotations
@@ -36,10 +37,12 @@ __all__ = [
 ]
 
 NS = 1_000_000_000
-DB_STEP = 0.01
+DB_STEP = 0.02
 DB_FLOOR = -400.0
-CODEC = "u16-centidB-zlib"
-ROW_OVERHEAD_BYTES = 160  # a row's columns and its index entries, about (for the bound)
+CODEC = "u16-0.02dB-zlib"
+# a row's columns, index entries and the part of a page it leaves unused: 2.5 kB rows take
+# a 4 KiB page each (python -m bench.history_size measures it); used without dbstat
+ROW_OVERHEAD_BYTES = 1600
 _U16 = np.dtype("<u2")
 _META_COLS = (
     "f0_hz", "df_hz", "fmax_hz", "input_unit", "unit", "amplitude", "lowcut_hz",
@@ -60,7 +63,7 @@ def encode(power: np.ndarray) -> bytes:
         db = 10.0 * np.log10(p)
     codes = np.round((db - DB_FLOOR) / DB_STEP)
     codes = np.clip(np.nan_to_num(codes, nan=0.0, neginf=0.0), 0, 65535).astype(_U16)
-    return zlib.compress(codes.tobytes(), 6)
+    return zlib.compress(codes.tobytes(), 9)
 
 
 def decode(data: bytes) -> np.ndarray:
@@ -78,7 +81,7 @@ class HistoryPolicy:
     Interval rows are kept as they are for ``fine_s``; older ones are thinned to one row
     per ``coarse_step_s`` (their power-weighted mean, by the frames each holds) and kept
     for ``coarse_s``; alarm rows are never thinned and go after ``coarse_s``. Whenever the
-    stored spectra exceed ``max_bytes`` (blobs + :data:`ROW_OVERHEAD_BYTES` per row) the
+    stored spectra exceed ``max_bytes`` (the file pages they take, :func:`stored_bytes`) the
     oldest eighth of the fine rows is thinned, and once none is left to thin the oldest
     eighth of all rows is dropped, until they fit."""
 
@@ -212,9 +215,18 @@ def select_spectra(
 
 
 def stored_bytes(c: sqlite3.Connection) -> tuple[int, int]:
-    """(rows, bytes) of the stored spectra: blobs plus :data:`ROW_OVERHEAD_BYTES` a row."""
+    """(rows, bytes) of the stored spectra: the pages the table and its indexes take in
+    the file (SQLite's dbstat table), or where SQLite is built without it, the blobs plus
+    :data:`ROW_OVERHEAD_BYTES` a row."""
     n, b = c.execute("SELECT COUNT(*), COALESCE(SUM(length(data)), 0) FROM history").fetchone()
-    return int(n), int(b) + ROW_OVERHEAD_BYTES * int(n)
+    try:
+        pages = c.execute(
+            "SELECT COALESCE(SUM(pgsize), 0) FROM dbstat WHERE name IN "
+            "('history', 'history_channel_t', 'history_age')"
+        ).fetchone()[0]
+    except sqlite3.OperationalError:  # no dbstat in this SQLite
+        return int(n), int(b) + ROW_OVERHEAD_BYTES * int(n)
+    return int(n), int(pages)
 
 
 # -- retention ---------------------------------------------------------------------------

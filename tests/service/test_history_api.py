@@ -23,8 +23,7 @@ from service.store import Store
 from service.store.history import DB_STEP
 from service.types import ChannelState
 from service.waterfall import pool_columns, pool_rows
-
-from tests.service.test_history_store import LINES, S, T0, frame, spectrum
+from tests.service.test_history_store import LINES, T0, S, frame, spectrum
 
 # the stored power is within DB_STEP/2 dB; an amplitude (its square root) within half that
 AMP_REL = 10 ** (DB_STEP / 2 / 20) - 1 + 2 * float(np.finfo(np.float32).eps)

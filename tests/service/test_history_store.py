@@ -148,12 +148,16 @@ def test_old_interval_rows_are_thinned_to_hourly_means_and_alarm_rows_kept(
 
 
 def test_the_bound_thins_the_oldest_first_then_drops_them(tmp_path: Path) -> None:
-    per_row = len(encode(spectrum(1))) + 160
-    # 48 ten-minute rows (8 h); room for about 20 rows
-    policy = HistoryPolicy(fine_s=None, coarse_s=None, coarse_step_s=3600,
-                           max_bytes=20 * per_row)
-    with Store(tmp_path / "q.db", history=policy) as store:
+    unbound = HistoryPolicy(fine_s=None, coarse_s=None, max_bytes=None)
+    with Store(tmp_path / "q.db", history=unbound) as store:
+        # 48 ten-minute rows (8 h)
         store.put_history([row(600 * k, spectrum(k)) for k in range(1, 49)]).result()
+        report = store.maintain_history().result()
+        assert report["rows"] == 48 and report["thinned_for_size"] == 0
+    per_row = report["bytes"] / 48
+    policy = HistoryPolicy(fine_s=None, coarse_s=None, coarse_step_s=3600,
+                           max_bytes=int(40 * per_row))  # room for about 40 rows
+    with Store(tmp_path / "q.db", history=policy) as store:
         report = store.maintain_history().result()
         assert report["bytes"] <= policy.max_bytes
         assert report["thinned_for_size"] > 0
@@ -164,12 +168,12 @@ def test_the_bound_thins_the_oldest_first_then_drops_them(tmp_path: Path) -> Non
         assert steps == sorted(steps, reverse=True)
         assert listed[-1]["t_ns"] == T0 + 48 * 600 * S
         # a bound so small that thinning cannot do: the oldest rows are dropped
-        tight = HistoryPolicy(fine_s=None, coarse_s=None, max_bytes=3 * per_row)
+        tight = HistoryPolicy(fine_s=None, coarse_s=None, max_bytes=int(12 * per_row))
     with Store(tmp_path / "q.db", history=tight) as store:
         report = store.maintain_history().result()
         assert report["deleted_for_size"] > 0 and report["bytes"] <= tight.max_bytes
         listed, total = store.history_list("c1", "wide", T0, T0 + 86400 * S, limit=100)
-        assert 0 < total <= 3 and listed[-1]["t_ns"] == T0 + 48 * 600 * S
+        assert 0 < total < 8 and listed[-1]["t_ns"] == T0 + 48 * 600 * S
 
 
 def test_a_step_2_database_is_migrated_with_an_empty_step_and_history(tmp_path: Path) -> None:
