@@ -9,7 +9,7 @@ level in dB re 1 unit², in steps of :data:`DB_STEP` = 0.02 dB from :data:`DB_FL
 line within ±0.01 dB of the power stored (±0.23 % in power, half that in amplitude); code 0
 stands for a power at or below the floor (10⁻⁴⁰, read back as 0), levels above
 DB_FLOOR + 1310.7 dB are clipped there. Measured on the simulated plant's interval means
-(``python -m bench.history_size``): 1.0/1.9/3.8/7.8 kB for 800/1600/3200/6400 lines,
+(``python -m tests.service.history_sizes``): 1.0/1.9/3.8/7.8 kB for 800/1600/3200/6400 lines,
 against 2.8/5.5/11.1/22.1 kB for float32 + zlib; float16 of dB is ~9 % smaller, but its
 step grows with |dB| (0.03 dB from 32 to 64 dB, 0.06 dB beyond), whereas this one is the
 same at every level.
@@ -41,7 +41,7 @@ DB_STEP = 0.02
 DB_FLOOR = -400.0
 CODEC = "u16-0.02dB-zlib"
 # a row's columns, index entries and the part of a page it leaves unused: 2.5 kB rows take
-# a 4 KiB page each (python -m bench.history_size measures it); used without dbstat
+# a 4 KiB page each (python -m tests.service.history_sizes measures it); used without dbstat
 ROW_OVERHEAD_BYTES = 1600
 _U16 = np.dtype("<u2")
 _META_COLS = (

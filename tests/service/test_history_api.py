@@ -5,6 +5,8 @@ from __future__ import annotations
 
 import base64
 import io
+import socket
+import time
 from collections.abc import Iterator
 from dataclasses import dataclass, replace
 from pathlib import Path
@@ -23,6 +25,7 @@ from service.store import Store
 from service.store.history import DB_STEP
 from service.types import ChannelState
 from service.waterfall import pool_columns, pool_rows
+from tests.service.conftest import LOOPBACK, SMALL_FS, feed_tone, one_band_config, run_service
 from tests.service.test_history_store import LINES, T0, S, frame, spectrum
 
 # the stored power is within DB_STEP/2 dB; an amplitude (its square root) within half that
@@ -170,3 +173,39 @@ def test_pooling_keeps_the_largest_line_and_fills_narrow_columns() -> None:
     np.testing.assert_array_equal(wf.values[:, 2], [10.0, 5.0])
     outside = pool_columns(v, 0.0, 10.0, 200.0, 300.0, 2)
     assert np.isnan(outside).all()
+
+
+@pytest.mark.slow
+def test_a_running_service_stores_interval_means_and_a_row_at_each_alarm_change(
+    tmp_path: Path,
+) -> None:
+    doc = one_band_config(history={"interval_s": 1.0})
+    with run_service(doc, tmp_path) as svc, \
+            socket.create_connection((LOOPBACK, svc.ports["s"]), timeout=10) as sock:
+        k = 0
+        for _ in range(3):  # quiet (0.14 g RMS in band b), over more than one interval
+            k = feed_tone(sock, k, int(1.5 * SMALL_FS), 0.2)
+            time.sleep(1.1)
+        k = feed_tone(sock, k, int(4 * SMALL_FS), 0.8)  # 0.57 g RMS: over alert (0.5)
+
+        def alarm_rows() -> list[dict[str, Any]] | None:
+            items = svc.get("channels/a/history", since=0)["items"]
+            rows = [i for i in items if i["reason"] == "alarm"]
+            return rows or None
+
+        (alarm,) = svc.wait(alarm_rows, "a stored spectrum at the alarm change")
+        events = svc.get("events")["events"]
+        raised = [e for e in events if e["to_state"] == "alert"]
+        assert [e["id"] for e in raised] == [alarm["event_id"]]
+        items = svc.get("channels/a/history", since=0)["items"]
+        interval = [i for i in items if i["reason"] == "interval"]
+        assert len(interval) >= 2 and all(i["step_s"] == 1 for i in interval)
+        assert all(i["frames"] >= 1 for i in interval)
+        # the alarm's spectrum holds the tone at the level that raised it: 0.8 g peak
+        one = svc.get(f"channels/a/history/{alarm['id']}")
+        q = round(123.0 / one["df_hz"])
+        tone = max(one["values"][q - 2:q + 3])
+        assert 0.6 < tone < 0.9, tone
+        wf = svc.get("channels/a/waterfall", since=0, rows=50, cols=64)
+        # one row per stored spectrum (fewer than 50); more may have been stored meanwhile
+        assert wf["rows"] == wf["spectra"] >= len(items) and wf["cols"] == 64

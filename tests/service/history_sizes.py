@@ -1,6 +1,6 @@
 """Bytes per stored spectrum of the spectral history, measured on the simulated plant.
 
-``python -m bench.history_size``: renders 60 s of the demo plant (fault growing), averages
+``python -m tests.service.history_sizes``: renders 60 s of the demo plant (fault growing), averages
 it as the service does (exponential, 8 averages, 75 % overlap) at 800…6400 lines, and
 encodes each channel's interval mean and single averaged spectra with the store's codec and
 with the alternatives considered; then the growth per channel and profile at the defaults.
