@@ -244,8 +244,9 @@ async def get_waterfall(
     since: SinceQ = None,
     until: UntilQ = None,
     rows: Annotated[int, Query(ge=1, le=2000, description="most rows")] = 300,
-    cols: Annotated[int, Query(ge=8, le=4096, description="frequency columns")] = 512,
-    fmin_hz: Annotated[float | None, Query(ge=0, le=1e6, description="default: 0")] = None,
+    cols: Annotated[int, Query(ge=8, le=8192, description="frequency columns")] = 512,
+    fmin_hz: Annotated[float | None, Query(ge=-1e6, le=1e6, description="default: 0 (may be "
+                                           "below 0, e.g. half a line below line 0)")] = None,
     fmax_hz: Annotated[float | None, Query(gt=0, le=1e6,
                                            description="default: the spectra's Fmax")] = None,
     unit: UnitHQ = None,
@@ -275,7 +276,7 @@ async def get_waterfall(
     tz = cfg.service.timezone
     out: dict[str, Any] = {
         "channel": channel.id, "profile": prof, "since": since_s, "until": until_s,
-        "unit": u, "amplitude": amp, "fmin_hz": lo, "fmax_hz": hi if spectra else None,
+        "interval_s": cfg.history.interval_s, "unit": u, "amplitude": amp, "fmin_hz": lo, "fmax_hz": hi if spectra else None,
         "cols": cols, "rows": 0 if wf is None else len(wf.t_ns), "spectra": len(spectra),
         "t0_ns": [] if wf is None else wf.t0_ns, "t_ns": [] if wf is None else wf.t_ns,
         "times": [] if wf is None else [iso_time(t, tz) for t in wf.t_ns],
