@@ -33,7 +33,8 @@ DRAWN_PIXELS_JS = """() => {
   const d = ctx.getImageData(x0, y0, w, h).data;
   let drawn = 0, levels = new Set();
   for (let i = 0; i < d.length; i += 4) {
-    if (Math.abs(d[i] - bg[0]) + Math.abs(d[i + 1] - bg[1]) + Math.abs(d[i + 2] - bg[2]) > 6) drawn++;
+    const off = Math.abs(d[i] - bg[0]) + Math.abs(d[i + 1] - bg[1]) + Math.abs(d[i + 2] - bg[2]);
+    if (off > 6) drawn++;
     levels.add(d[i]);
   }
   return {drawn, total: w * h, levels: levels.size};
