@@ -206,6 +206,11 @@ def test_a_running_service_stores_interval_means_and_a_row_at_each_alarm_change(
         q = round(123.0 / one["df_hz"])
         tone = max(one["values"][q - 2:q + 3])
         assert 0.6 < tone < 0.9, tone
+        metrics = svc.client.get("/metrics").text
+        (written,) = [float(line.split()[-1]) for line in metrics.splitlines()
+                      if line.startswith("quaver_store_history_written_total ")]
+        assert written >= len(items)
+        assert svc.health()["store"]["history_written"] >= len(items)
         wf = svc.get("channels/a/waterfall", since=0, rows=50, cols=64)
         # one row per stored spectrum (fewer than 50); more may have been stored meanwhile
         assert wf["rows"] == wf["spectra"] >= len(items) and wf["cols"] == 64
