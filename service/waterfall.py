@@ -9,7 +9,7 @@ the dashboard's spectrum plot uses per pixel column).
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -59,10 +59,17 @@ def pool_columns(
 def pool_rows(
     spectra: Sequence[tuple[int, np.ndarray, float, float]], rows: int, cols: int,
     fmin_hz: float, fmax_hz: float,
+    convert: Callable[[np.ndarray, int], np.ndarray] | None = None,
 ) -> Waterfall:
     """Spectra (t_ns, values, f0_hz, df_hz), oldest first, as at most ``rows`` rows: when
     there are more, consecutive spectra are pooled (their element-wise max) in groups of
-    equal count (the last groups one smaller)."""
+    equal count (the last groups one smaller).
+
+    ``convert(values, i)``: applied to the line-by-line max of a group's spectra on the same
+    lines (``i``: the index of the last of them) before the columns are pooled — for values
+    stored as any increasing function of the ones shown (codes of a level), whose max is
+    the max of what they stand for; spectra on the same lines must then share one
+    conversion."""
     if not (rows >= 1 and cols >= 1 and fmax_hz > fmin_hz):
         raise ValueError("rows and cols must be >= 1 and fmax_hz above fmin_hz")
     n = len(spectra)
@@ -70,10 +77,18 @@ def pool_rows(
     out = np.full((len(groups), cols), np.nan, dtype=np.float32)
     t0, t1, counts = [], [], []
     for r, g in enumerate(groups):
-        pooled = np.full(cols, np.nan)
+        # spectra on the same lines are pooled line by line first (one max over time), then
+        # into columns once per set of lines: the same cells, far fewer column passes
+        grids: dict[tuple[float, float, int], tuple[np.ndarray, int]] = {}
         for i in g:
-            t, v, f0, df = spectra[int(i)]
-            pooled = np.fmax(pooled, pool_columns(v, f0, df, fmin_hz, fmax_hz, cols))
+            _t, v, f0, df = spectra[int(i)]
+            key = (f0, df, len(v))
+            have = grids.get(key)
+            grids[key] = (np.array(v) if have is None else np.fmax(have[0], v), int(i))
+        pooled = np.full(cols, np.nan)
+        for (f0, df, _n), (v, last) in grids.items():
+            shown = v if convert is None else convert(v, last)
+            pooled = np.fmax(pooled, pool_columns(shown, f0, df, fmin_hz, fmax_hz, cols))
         out[r] = pooled
         t0.append(int(spectra[int(g[0])][0]))
         t1.append(int(spectra[int(g[-1])][0]))

@@ -17,7 +17,7 @@ from fastapi import APIRouter, HTTPException, Query, Response
 from fastapi import Path as Path_
 
 from ..spectra import power_values, to_npy
-from ..store.history import DB_STEP
+from ..store.history import DB_STEP, codes_power
 from ..timefmt import iso_time
 from ..types import ChannelState
 from ..waterfall import pool_rows
@@ -260,7 +260,8 @@ async def get_waterfall(
     prof = check_profile(channel, profile)
     since_s, until_s = _range(since, until)
     found = await asyncio.to_thread(
-        store.history_spectra, channel.id, prof, int(since_s * _NS), int(until_s * _NS)
+        store.history_spectra, channel.id, prof, int(since_s * _NS), int(until_s * _NS),
+        None, True,
     )
     lo = 0.0 if fmin_hz is None else fmin_hz
     hi = fmax_hz if fmax_hz is not None else max((r["fmax_hz"] for r in found), default=0.0)
@@ -268,11 +269,18 @@ async def get_waterfall(
         invalid_query("fmin_hz", f"fmin_hz={lo:g} must be below fmax_hz={hi:g}")
     u = unit or (found[-1]["unit"] if found else channel.input_unit)
     amp = amplitude or (found[-1]["amplitude"] if found else "rms")
-    spectra = []
-    for r in found:
-        v, u, amp = _values(r, u, amp)
-        spectra.append((int(r["t_ns"]), v, float(r["f0_hz"]), float(r["df_hz"])))
-    wf = pool_rows(spectra, rows, cols, lo, hi) if spectra else None
+    if found:
+        u, amp = _values({**found[-1], "power": np.zeros(1)}, u, amp)[1:]
+
+    def convert(codes: np.ndarray, i: int) -> np.ndarray:
+        # codes increase with the power: pooled as codes, converted once per cell group
+        # (a group's spectra on the same lines share their unit settings but for a rare
+        # change of input unit or low cut, where the last one's are used)
+        return _values({**found[i], "power": codes_power(codes)}, u, amp)[0]
+
+    spectra = [(int(r["t_ns"]), r["codes"], float(r["f0_hz"]), float(r["df_hz"]))
+               for r in found]
+    wf = pool_rows(spectra, rows, cols, lo, hi, convert) if spectra else None
     tz = cfg.service.timezone
     out: dict[str, Any] = {
         "channel": channel.id, "profile": prof, "since": since_s, "until": until_s,

@@ -68,9 +68,20 @@ def encode(power: np.ndarray) -> bytes:
 
 def decode(data: bytes) -> np.ndarray:
     """The power spectrum (float64, input unit²) of :func:`encode`'s bytes."""
-    codes = np.frombuffer(zlib.decompress(data), dtype=_U16)
-    p = 10.0 ** ((DB_FLOOR + DB_STEP * codes.astype(np.float64)) / 10.0)
-    p[codes == 0] = 0.0
+    return codes_power(decode_codes(data))
+
+
+def decode_codes(data: bytes) -> np.ndarray:
+    """The 16-bit codes of :func:`encode`'s bytes: increasing with the power, so the largest
+    of several spectra's codes is the code of their largest power (pooling needs no power)."""
+    return np.frombuffer(zlib.decompress(data), dtype=_U16)
+
+
+def codes_power(codes: np.ndarray) -> np.ndarray:
+    """Power (float64, input unit²) of 16-bit codes."""
+    c = np.asarray(codes)
+    p = 10.0 ** ((DB_FLOOR + DB_STEP * c.astype(np.float64)) / 10.0)
+    p[c == 0] = 0.0
     return p
 
 
@@ -166,10 +177,14 @@ def count_rows(
     ).fetchone()[0])
 
 
-def _full(r: Sequence[Any]) -> dict[str, Any]:
+def _full(r: Sequence[Any], codes: bool = False) -> dict[str, Any]:
     names = (*_LIST_COLS, "channel", "profile", *_META_COLS, "data")
     d = dict(zip(names, r, strict=True))
-    d["power"] = decode(d.pop("data"))
+    data = d.pop("data")
+    if codes:
+        d["codes"] = decode_codes(data)
+    else:
+        d["power"] = decode(data)
     return d
 
 
@@ -202,16 +217,16 @@ def select_nearest(
 
 def select_spectra(
     c: sqlite3.Connection, channel: str, profile: str, since_ns: int, until_ns: int,
-    ids: Sequence[int] | None = None,
+    ids: Sequence[int] | None = None, codes: bool = False,
 ) -> list[dict[str, Any]]:
     """Every stored spectrum (decoded) of (channel, profile) in [since_ns, until_ns), oldest
-    first; only ``ids`` when given."""
+    first; only ``ids`` when given; with ``codes`` their 16-bit codes instead of power."""
     sql = _FULL + " WHERE channel = ? AND profile = ? AND t_ns >= ? AND t_ns < ?"
     args: list[Any] = [channel, profile, int(since_ns), int(until_ns)]
     if ids is not None:
         sql += f" AND id IN ({', '.join('?' * len(ids))})"
         args += [int(i) for i in ids]
-    return [_full(r) for r in c.execute(sql + " ORDER BY t_ns, id", args).fetchall()]
+    return [_full(r, codes) for r in c.execute(sql + " ORDER BY t_ns, id", args).fetchall()]
 
 
 def stored_bytes(c: sqlite3.Connection) -> tuple[int, int]:
