@@ -46,10 +46,10 @@ class SpectrumHistory:
     channel is a whole interval past its end (a channel that went silent). Frames whose
     ``quality`` is not "ok" are left out (their samples were bad)."""
 
-    def __init__(self, interval_s: float) -> None:
-        if not interval_s >= 1:
-            raise ValueError(f"interval_s={interval_s!r} must be at least 1 s")
-        self.step_s = int(round(interval_s))
+    def __init__(self, interval_s: int) -> None:
+        if not (isinstance(interval_s, int) and interval_s >= 1):
+            raise ValueError(f"interval_s={interval_s!r} must be a whole number of s, at least 1")
+        self.step_s = interval_s
         self.step_ns = self.step_s * NS
         self._open: dict[tuple[str, str], _Open] = {}
         self._newest_end_ns = 0

@@ -260,8 +260,7 @@ async def get_waterfall(
     prof = check_profile(channel, profile)
     since_s, until_s = _range(since, until)
     found = await asyncio.to_thread(
-        store.history_spectra, channel.id, prof, int(since_s * _NS), int(until_s * _NS),
-        None, True,
+        store.history_spectra, channel.id, prof, int(since_s * _NS), int(until_s * _NS), True
     )
     lo = 0.0 if fmin_hz is None else fmin_hz
     hi = fmax_hz if fmax_hz is not None else max((r["fmax_hz"] for r in found), default=0.0)

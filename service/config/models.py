@@ -194,8 +194,8 @@ class HistorySettings(_Model):
     enabled: bool = Field(
         True, description="Store averaged spectra of every channel and profile (history)."
     )
-    interval_s: float = Field(
-        600.0,
+    interval_s: int = Field(
+        600,
         ge=1,
         le=86400,
         description="One stored spectrum per channel and profile every this many s: the "

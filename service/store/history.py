@@ -217,16 +217,15 @@ def select_nearest(
 
 def select_spectra(
     c: sqlite3.Connection, channel: str, profile: str, since_ns: int, until_ns: int,
-    ids: Sequence[int] | None = None, codes: bool = False,
+    codes: bool = False,
 ) -> list[dict[str, Any]]:
     """Every stored spectrum (decoded) of (channel, profile) in [since_ns, until_ns), oldest
-    first; only ``ids`` when given; with ``codes`` their 16-bit codes instead of power."""
-    sql = _FULL + " WHERE channel = ? AND profile = ? AND t_ns >= ? AND t_ns < ?"
-    args: list[Any] = [channel, profile, int(since_ns), int(until_ns)]
-    if ids is not None:
-        sql += f" AND id IN ({', '.join('?' * len(ids))})"
-        args += [int(i) for i in ids]
-    return [_full(r, codes) for r in c.execute(sql + " ORDER BY t_ns, id", args).fetchall()]
+    first; with ``codes`` their 16-bit codes instead of their power."""
+    rows = c.execute(
+        _FULL + " WHERE channel = ? AND profile = ? AND t_ns >= ? AND t_ns < ? ORDER BY t_ns, id",
+        (channel, profile, int(since_ns), int(until_ns)),
+    ).fetchall()
+    return [_full(r, codes) for r in rows]
 
 
 def stored_bytes(c: sqlite3.Connection) -> tuple[int, int]:

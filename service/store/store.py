@@ -273,13 +273,13 @@ class Store(Writer):
 
     def history_spectra(
         self, channel: str, profile: str, since_ns: int, until_ns: int,
-        ids: Sequence[int] | None = None, codes: bool = False,
+        codes: bool = False,
     ) -> list[dict[str, Any]]:
-        """Every stored spectrum in [since_ns, until_ns) (or only ``ids`` of it), decoded,
-        oldest first; ``codes``: their 16-bit codes (``service.store.history``) in place of
-        ``power``, to pool many at the cost of one conversion."""
+        """Every stored spectrum in [since_ns, until_ns), decoded, oldest first; ``codes``:
+        their 16-bit codes (``service.store.history``) in place of ``power``, to pool many
+        at the cost of one conversion."""
         with self._read() as c:
-            return hi.select_spectra(c, channel, profile, since_ns, until_ns, ids, codes)
+            return hi.select_spectra(c, channel, profile, since_ns, until_ns, codes)
 
     def maintain_history(self, now_ns: int | None = None) -> Future[dict[str, Any]]:
         """Thin, drop by age and hold the bound of the stored spectra now (``now_ns``

@@ -4,12 +4,15 @@ rows, tier thinning, the disk bound and the migration of a step-2 database."""
 from __future__ import annotations
 
 import sqlite3
+import tomllib
 from dataclasses import replace
+from importlib import resources
 from pathlib import Path
 
 import numpy as np
 import pytest
 
+from service.config import ConfigError, parse_config
 from service.history import SpectrumHistory, alarm_row
 from service.store import HistoryPolicy, HistoryRow, Store
 from service.store.history import DB_STEP, decode, encode
@@ -197,3 +200,22 @@ def test_a_step_2_database_is_migrated_with_an_empty_step_and_history(tmp_path: 
     c = sqlite3.connect(path)
     assert schema_version(c) == len(MIGRATIONS) == 4
     c.close()
+
+
+def with_history(**history: object) -> dict[str, object]:
+    """The demo's config (service/examples/demo.toml) with ``history`` as its [history]."""
+    text = resources.files("service").joinpath("examples/demo.toml").read_text("utf-8")
+    return {**tomllib.loads(text), "history": history}
+
+
+def test_the_history_settings_refuse_tiers_that_do_not_nest_and_odd_intervals() -> None:
+    with pytest.raises(ConfigError, match=r"coarse_days=10 must be at least fine_days=30"):
+        parse_config(with_history(coarse_days=10))
+    with pytest.raises(ConfigError, match=r"history\.interval_s"):
+        parse_config(with_history(interval_s=0))
+    with pytest.raises(ConfigError, match=r"history\.interval_s"):
+        parse_config(with_history(interval_s=10.5))  # whole seconds
+    assert parse_config(with_history(interval_s=10)).history.interval_s == 10
+    assert parse_config(with_history()).history.interval_s == 600  # the default
+    with pytest.raises(ValueError, match="whole number of s, at least 1"):
+        SpectrumHistory(0)
