@@ -179,7 +179,7 @@ def test_pooling_keeps_the_largest_line_and_fills_narrow_columns() -> None:
 def test_a_running_service_stores_interval_means_and_a_row_at_each_alarm_change(
     tmp_path: Path,
 ) -> None:
-    doc = one_band_config(history={"interval_s": 1.0})
+    doc = one_band_config(history={"interval_s": 1})
     with run_service(doc, tmp_path) as svc, \
             socket.create_connection((LOOPBACK, svc.ports["s"]), timeout=10) as sock:
         k = 0
