@@ -37,7 +37,7 @@ function offsetOf(iso) {
  */
 export function mountHistory(figure, { id, plot, sg, view }) {
   const saved = localStorage.getItem("quaver.historyRange");
-  const st = { range: HISTORY_RANGES[saved] ? saved : "1 h", interval_s: 600, offset: null, loadedKey: "", pending: null, picked: null, sgFilled: false, sgBuffer: [], busy: false };
+  const st = { range: HISTORY_RANGES[saved] ? saved : "1 h", interval_s: 600, offset: null, loadedKey: "", pending: null, picked: null, sgFilled: false, sgBuffer: [], gen: 0 };
   setHTML(figure, html`<figcaption>History waterfall
       <span class="seg" role="group" aria-label="history range">${Object.keys(HISTORY_RANGES).map((r) => html`<button data-hrange="${r}">${r}</button>`)}</span>
       <span class="hint" id="hist-note">stored spectra, newest at the top; click a row to overlay it on the spectrum</span></figcaption>
@@ -69,6 +69,7 @@ export function mountHistory(figure, { id, plot, sg, view }) {
     const cols = Math.max(64, Math.min(1024, Math.floor(canvas.clientWidth || 600)));
     const key = `${st.range}|${v.unit}|${v.amplitude}|${v.profile}`;
     st.loadedKey = key;
+    st.loaded = false;
     st.pending = null;
     wf.setNote("loading stored spectra…");
     try {
@@ -93,6 +94,8 @@ export function mountHistory(figure, { id, plot, sg, view }) {
         ? `${j.spectra} stored spectra (one per ${fmtInterval(st.interval_s)} and at alarm changes)${j.spectra > j.rows ? `, ${j.rows} rows of the largest values` : ""}; live rows marked at the left edge`
         : `nothing stored in the last ${st.range} yet: one spectrum is stored every ${fmtInterval(st.interval_s)}`);
       wf.setNote(j.spectra ? "" : "no stored spectra in this range yet");
+      if (!j.spectra) wf.setHistory({ rows: [], cols: 0, fmin: 0, fmax: 1, span: null, maxSpan: span * 1e6, unit: "", amplitude: "" });
+      st.loaded = true;
     } catch (e) {
       if (key === st.loadedKey) wf.setNote(`history not available: ${e.message}`);
     }
@@ -103,6 +106,15 @@ export function mountHistory(figure, { id, plot, sg, view }) {
     if (!st.sgFilled) {
       if (st.sgBuffer.length < sg.rows) st.sgBuffer.push(d);
       if (st.sgBuffer.length === 1) fillSpectrogram(d);
+    }
+    if (st.loaded && !wf.cols && d.values.length) {
+      // nothing stored yet: the live rows start the waterfall, on the live spectrum's lines
+      const canvas = $("#waterfall");
+      wf.setHistory({ rows: [], cols: Math.max(64, Math.min(1024, Math.floor(canvas.clientWidth || 600))), fmin: 0,
+        fmax: d.f0 + (d.values.length - 1) * d.df, span: [d.t_ns - st.interval_s * 1e9, d.t_ns],
+        maxSpan: HISTORY_RANGES[st.range] * 1e6, unit: unitLabel(d.unit, d.amplitude), amplitude: d.amplitude });
+      st.unit = d.unit;
+      st.amplitude = d.amplitude;
     }
     if (!wf.span || !wf.cols || d.unit !== st.unit || d.amplitude !== st.amplitude) return;
     const rowNs = Math.max(st.interval_s * 1e9, (wf.span[1] - wf.span[0]) / 400);
@@ -122,6 +134,7 @@ export function mountHistory(figure, { id, plot, sg, view }) {
 
   /** Open the spectrogram full: the stored spectra just before now, on the live lines. */
   async function fillSpectrogram(d) {
+    const gen = st.gen;
     const n = d.values.length;
     const rows = Math.max(1, Math.min(sg.rows, Math.floor(MAX_SGRAM_VALUES / n)));
     const v = view();
@@ -130,7 +143,7 @@ export function mountHistory(figure, { id, plot, sg, view }) {
       const j = await getJSON(`${API}/channels/${encodeURIComponent(id)}/waterfall${qs({
         since: (now - rows * st.interval_s * 1000 - 60e3) / 1000, until: Number(d.t_ns) / 1e9, rows, cols: n,
         fmin_hz: d.f0 - d.df / 2, fmax_hz: d.f0 + (n - 0.5) * d.df, unit: d.unit, amplitude: d.amplitude, profile: v.profile, format: "base64" })}`, { timeoutMs: 20000 });
-      if (st.sgFilled || !j.rows || j.cols !== n) return; // one column per line: the lines themselves
+      if (gen !== st.gen || st.sgFilled || !j.rows || j.cols !== n) return; // one column per line: the lines themselves
       const stored = decode(j.data, j.rows, j.cols);
       sg.clear();
       stored.forEach((values, r) => sg.push({ values, f0: d.f0, df: d.df, t_ns: j.t_ns[r] }));
@@ -139,8 +152,10 @@ export function mountHistory(figure, { id, plot, sg, view }) {
     } catch {
       /* the spectrogram fills from the live stream as before */
     } finally {
-      st.sgFilled = true;
-      st.sgBuffer = [];
+      if (gen === st.gen) {
+        st.sgFilled = true;
+        st.sgBuffer = [];
+      }
     }
   }
 
@@ -187,7 +202,9 @@ export function mountHistory(figure, { id, plot, sg, view }) {
     /** The unit, amplitude or profile changed: load again, drop the overlay. */
     reload() {
       unpick();
-      st.sgFilled = true; // the spectrogram restarts live for the new view
+      st.gen++; // the page cleared the spectrogram: fill it again for the new view
+      st.sgFilled = false;
+      st.sgBuffer = [];
       load();
     },
     probe: () => ({ range: st.range, rows: wf.rows.length, live: wf.rows.filter((r) => r.live).length, picked: st.picked && { id: st.picked.id, time: st.picked.time } }),
