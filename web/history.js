@@ -92,7 +92,8 @@ export function mountHistory(figure, { id, plot, sg, view }) {
       st.amplitude = j.amplitude;
       setText($("#hist-note"), j.spectra
         ? `${j.spectra} stored spectra (one per ${fmtInterval(st.interval_s)} and at alarm changes)${j.spectra > j.rows ? `, ${j.rows} rows of the largest values` : ""}; live rows marked at the left edge`
-        : `nothing stored in the last ${st.range} yet: one spectrum is stored every ${fmtInterval(st.interval_s)}`);
+        : j.enabled === false ? "this service stores no spectra ([history] enabled = false): live rows only"
+          : `nothing stored in the last ${st.range} yet: one spectrum is stored every ${fmtInterval(st.interval_s)}`);
       wf.setNote(j.spectra ? "" : "no stored spectra in this range yet");
       if (!j.spectra) wf.setHistory({ rows: [], cols: 0, fmin: 0, fmax: 1, span: null, maxSpan: span * 1e6, unit: "", amplitude: "" });
       st.loaded = true;
@@ -117,7 +118,7 @@ export function mountHistory(figure, { id, plot, sg, view }) {
       st.amplitude = d.amplitude;
     }
     if (!wf.span || !wf.cols || d.unit !== st.unit || d.amplitude !== st.amplitude) return;
-    const rowNs = Math.max(st.interval_s * 1e9, (wf.span[1] - wf.span[0]) / 400);
+    const rowNs = Math.max(1e9, wf.maxSpan / 400); // at most ~400 live rows in the range
     const pooled = poolColumns(d.values, d.f0, d.df, wf.fmin, wf.fmax, wf.cols);
     const p = st.pending;
     if (!p) {

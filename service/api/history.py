@@ -118,6 +118,7 @@ async def list_history(
         "profile": prof,
         "since": since_s,
         "until": until_s,
+        "enabled": cfg.history.enabled,
         "interval_s": cfg.history.interval_s,
         "count": total,
         "truncated": total > len(rows),
@@ -283,8 +284,8 @@ async def get_waterfall(
     tz = cfg.service.timezone
     out: dict[str, Any] = {
         "channel": channel.id, "profile": prof, "since": since_s, "until": until_s,
-        "interval_s": cfg.history.interval_s, "unit": u, "amplitude": amp, "fmin_hz": lo,
-        "fmax_hz": hi if spectra else None,
+        "enabled": cfg.history.enabled, "interval_s": cfg.history.interval_s, "unit": u,
+        "amplitude": amp, "fmin_hz": lo, "fmax_hz": hi if spectra else None,
         "cols": cols, "rows": 0 if wf is None else len(wf.t_ns), "spectra": len(spectra),
         "t0_ns": [] if wf is None else wf.t0_ns, "t_ns": [] if wf is None else wf.t_ns,
         "times": [] if wf is None else [iso_time(t, tz) for t in wf.t_ns],
