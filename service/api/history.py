@@ -29,6 +29,7 @@ router = APIRouter(tags=["history"])
 
 _NS = 1_000_000_000
 MAX_S = 9.2e9  # times in s whose ns still fit a signed 64-bit integer
+MAX_CELLS = 2**22  # a waterfall's rows × cols at most (4 194 304 values, 16 MiB as float32)
 PRECISION_DB = DB_STEP / 2  # every stored line is within this of the power stored, dB
 
 SinceQ = Annotated[
@@ -233,8 +234,8 @@ async def get_history_spectrum(
     "/channels/{channel_id}/waterfall",
     summary="Stored spectra over a time range as at most rows × cols (max-pooled)",
     responses={404: {"description": "unknown channel or profile"},
-               **invalid("a value out of its range, since not before until, or fmin_hz "
-                         "not below fmax_hz")},
+               **invalid("a value out of its range, since not before until, fmin_hz "
+                         "not below fmax_hz, or rows × cols above 4194304")},
 )
 async def get_waterfall(
     channel: ChannelDep,
@@ -260,6 +261,8 @@ async def get_waterfall(
 ) -> dict[str, Any]:
     prof = check_profile(channel, profile)
     since_s, until_s = _range(since, until)
+    if rows * cols > MAX_CELLS:
+        invalid_query("cols", f"rows × cols = {rows * cols} is above {MAX_CELLS}")
     found = await asyncio.to_thread(
         store.history_spectra, channel.id, prof, int(since_s * _NS), int(until_s * _NS), True
     )

@@ -155,6 +155,8 @@ def test_the_waterfall_pools_rows_and_columns_to_the_size_asked(client: Any) -> 
     b = c.get("/api/v1/channels/c1/waterfall", params={**params, "format": "base64"}).json()
     m = np.frombuffer(base64.b64decode(b["data"]), dtype="<f4").reshape(b["rows"], b["cols"])
     np.testing.assert_array_equal(m, np.array(d["values"], dtype=np.float32))
+    big = c.get("/api/v1/channels/c1/waterfall", params={**params, "rows": 2000, "cols": 8192})
+    assert big.status_code == 422 and "above 4194304" in big.text
     empty = c.get("/api/v1/channels/c1/waterfall", params={**params, "until": T0 / S + 1,
                                                             "since": T0 / S}).json()
     assert empty["rows"] == 0 and empty["values"] == []

@@ -164,6 +164,9 @@ def _forward_interval(case: Any) -> Any:
         q["until"] = until = since + 1.0  # until defaults to now: a later since is 422
     if isinstance(since, int | float) and isinstance(until, int | float) and since >= until:
         q["since"], q["until"] = min(since, until) - 1.0, max(since, until)
+    rows, cols = q.get("rows", 300), q.get("cols", 512)  # the waterfall: rows × cols <= 2**22
+    if isinstance(rows, int) and isinstance(cols, int) and rows * cols > 2**22:
+        q["cols"] = max(8, 2**22 // rows)
     lo, hi = q.get("fmin_hz"), q.get("fmax_hz")  # the waterfall's columns: likewise
     if isinstance(lo, int | float) and isinstance(hi, int | float) and lo >= hi:
         q["fmin_hz"], q["fmax_hz"] = min(lo, hi) - 1.0, max(lo, hi)
