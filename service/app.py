@@ -36,6 +36,7 @@ from .config import (
     parse_listen,
 )
 from .context import ReloadRefused
+from .history import SpectrumHistory, alarm_row
 from .hub import Hub
 from .notify import Notifier
 from .operator import commit_action, expire_shelves
@@ -44,7 +45,7 @@ from .profiles import ProfileBank
 from .quality import Inputs, derive, is_lost
 from .sources import make_source
 from .spectra import spectrum_values
-from .store import Retention, Store, StoreError, trend_key
+from .store import HistoryPolicy, HistoryRow, Retention, Store, StoreError, trend_key
 from .types import SpectralFrame
 
 log = logging.getLogger("quaver")
@@ -96,10 +97,15 @@ class Service:
         self.started_mono = time.monotonic()
         self.alarms = AlarmEngine(rules_from_config(cfg, channels=all_ids))
         max_bytes = None if cfg.service.max_db_mb is None else int(cfg.service.max_db_mb * 2**20)
+        hist = cfg.history
         self.store = Store(
             Path(cfg.service.data_dir) / "quaver.db",
             trend_step_s=cfg.service.trend_step_s,
             retention=Retention(max_db_bytes=max_bytes),
+            history=HistoryPolicy(
+                fine_s=hist.fine_days * 86400, coarse_s=hist.coarse_days * 86400,
+                coarse_step_s=hist.coarse_step_s, max_bytes=int(hist.max_mb * 2**20),
+            ),
         )
         # [[notify]]: its router writes outbox rows in every events transaction from the start
         # a shelved rule's events are logged but not sent (the predicate runs on the store's
@@ -110,6 +116,8 @@ class Service:
         )
         if self.notifier is not None:
             self.notifier.attach()
+        # stored spectra: interval means taken on the loop, encoded on the writer thread
+        self.history = SpectrumHistory(hist.interval_s) if hist.enabled else None
 
     # -- lifecycle ---------------------------------------------------------------------
     async def start(self) -> None:
@@ -260,6 +268,8 @@ class Service:
         for p in self.pipelines:
             await p.source.aclose()
             self._store_evidence(p, final=True)
+        if self.history is not None:
+            self.store.put_history(self.history.flush())
         if self.notifier is not None:
             await asyncio.to_thread(self.notifier.stop)
         await asyncio.to_thread(self.store.close)
@@ -356,6 +366,10 @@ class Service:
         if not frames:
             return
         self.hub.publish(frames, latency_s)
+        if self.history is not None:
+            closed = self.history.add(frames)
+            if closed:
+                self.store.put_history(closed)
         events: list[tuple[AlarmEvent, SpectralFrame | None]] = []
         for f in frames:
             values = {"overall": f.overall}
@@ -385,9 +399,13 @@ class Service:
             self.store_errors += 1
             log.error("could not store %d alarm events (not announced): %s", len(evs), err)
             return
+        spectra: list[HistoryRow] = []
         for e, (_, frame) in zip(stored, events, strict=True):
             log.info("alarm event %s: %s", e.id, e.message)
             self.hub.publish_event(e.as_dict())
+            if self.history is not None and frame is not None:
+                # spectral history: the spectrum of the moment at every alarm change
+                spectra.append(alarm_row(frame, e.id))
             if e.raises and e.id is not None and p is not None and frame is not None:
                 values, unit, amp = spectrum_values(frame)
                 p.request_evidence(
@@ -408,6 +426,8 @@ class Service:
                         "input_unit": frame.input_unit,
                     },
                 )
+        if spectra:
+            self.store.put_history(spectra)
 
     def _from_thread(self, loop: asyncio.AbstractEventLoop, ev: AlarmEvent) -> None:
         """Commit and announce an event made on another thread (the notification sender's)."""

@@ -25,11 +25,20 @@ def spectrum_values(
     velocity, displacement); ``amplitude`` is peak | rms | peak-to-peak. Velocity and
     displacement lines below the frame's low-frequency cut read 0.
     """
-    u = resolve_unit(unit or frame.unit)
-    a = check_choice("amplitude", amplitude or frame.amplitude, AMPLITUDES)
-    w = _weights(frame.f0_hz, frame.df_hz, int(frame.power.size), frame.input_unit, u,
-                 frame.lowcut_hz)
-    vals = amplitude_from_power(frame.power * w, a)  # type: ignore[arg-type]
+    return power_values(frame.power, frame.f0_hz, frame.df_hz, frame.input_unit,
+                        frame.lowcut_hz, unit or frame.unit, amplitude or frame.amplitude)
+
+
+def power_values(
+    power: np.ndarray, f0_hz: float, df_hz: float, input_unit: str, lowcut_hz: float,
+    unit: str, amplitude: str,
+) -> tuple[np.ndarray, str, str]:
+    """(values float32, unit, amplitude) of a power spectrum in ``input_unit``² (RMS² per
+    line on f = f0_hz + q·df_hz), as :func:`spectrum_values` gives a frame's."""
+    u = resolve_unit(unit)
+    a = check_choice("amplitude", amplitude, AMPLITUDES)
+    w = _weights(f0_hz, df_hz, int(power.size), input_unit, u, lowcut_hz)
+    vals = amplitude_from_power(power * w, a)  # type: ignore[arg-type]
     return vals.astype(np.float32, copy=False), u, a
 
 

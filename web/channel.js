@@ -9,6 +9,7 @@ import { AMP_CHOICES, UNIT_CHOICES, ampLabel, fmtClock, fmtHz, fmtHzAt, fmtHzExa
 import { badge, html, setHTML, updateHTML } from "./dom.js";
 import { SpectrumPlot } from "./spectrum.js";
 import { Spectrogram } from "./spectrogram.js";
+import { mountHistory } from "./history.js";
 import { BandBars, ThirdsChart, bandRows } from "./bars.js";
 import { TrendChart } from "./trend.js";
 import { alarmListHtml, eventItemHtml } from "./alarms.js";
@@ -80,6 +81,7 @@ export function mount(root, id, { profile = "" } = {}) {
           <canvas id="spec" class="plot-spec" tabindex="0" aria-label="averaged spectrum of ${id}; use the arrow keys, plus and minus to move and zoom"></canvas>
           <p class="spec-cap" id="spec-cap" aria-live="polite"></p></figure>
         <figure class="panel"><figcaption>Spectrogram <span class="hint">newest at the top; same frequency axis as above</span></figcaption><canvas id="sgram" class="plot-sgram"></canvas></figure>
+        <figure class="panel" id="hist-panel"></figure>
         <figure class="panel"><figcaption>Trend
             <select id="sel-trend" aria-label="value to trend"></select>
             <span class="seg" role="group" aria-label="period">${Object.keys(RANGES).map((r) => html`<button data-range="${r}">${r === "month" ? "30 days" : `1 ${r}`}</button>`)}</span>
@@ -114,6 +116,7 @@ export function mount(root, id, { profile = "" } = {}) {
     },
     onKey: (e) => key(e),
   });
+  const hist = mountHistory($("#hist-panel"), { id, plot, sg, view: () => ({ unit: st.unit, amplitude: st.amplitude, profile: st.profile }) });
   plot.logAmp = prefs.logAmp ?? true;
   plot.logFreq = prefs.logFreq ?? false;
   for (const k of Object.keys(plot.show)) if (prefs[`show_${k}`] === false) plot.show[k] = false;
@@ -163,6 +166,7 @@ export function mount(root, id, { profile = "" } = {}) {
     plot.setServerPeaks(null);
     plot.setMarkers({ speedHz: (chan()?.speed_rpm || 0) / 60, bearing: [] });
     sg.clear();
+    hist.reload();
     for (const k of ["seq", "profile", "f0Hz", "dfHz"]) delete specCanvas.dataset[k];
     bars.setRows([], "");
     thirds.setRows([], "");
@@ -264,6 +268,7 @@ export function mount(root, id, { profile = "" } = {}) {
   $("#sel-unit").addEventListener("change", (e) => {
     st.unit = e.target.value;
     sg.clear();
+    hist.reload();
     plot.top = null;
     subscribe();
     loadMeta();
@@ -271,6 +276,7 @@ export function mount(root, id, { profile = "" } = {}) {
   $("#sel-amp").addEventListener("change", (e) => {
     st.amplitude = e.target.value;
     sg.clear();
+    hist.reload();
     subscribe();
     loadMeta();
   });
@@ -355,6 +361,7 @@ export function mount(root, id, { profile = "" } = {}) {
     specCanvas.dataset.f0Hz = h.f0_hz;
     specCanvas.dataset.dfHz = h.df_hz;
     sg.push(d);
+    hist.onSpectrum(d);
     if (st.fresh || !plot.view) {
       st.fresh = false;
       plot.resetView(); // a new axis: the whole range, and the spectrogram follows
@@ -641,12 +648,14 @@ export function mount(root, id, { profile = "" } = {}) {
       },
       view: () => plot.view && { ...plot.view },
       bands: () => st.bands && { profile: st.bands.profile, names: (st.bands.bands || []).map((b) => b.name) },
+      history: () => hist.probe(),
       bars: () => bars.rows.map((r) => ({ name: r.name, value: r.value, alert: r.alert, danger: r.danger, state: r.state, via: r.via })),
     },
     unmount() {
       for (const [k, f] of Object.entries(on)) app.removeEventListener(k, f);
       plot.surface.dispose();
       sg.surface.dispose();
+      hist.dispose();
       bars.surface.dispose();
       thirds.surface.dispose();
       trend.surface.dispose();

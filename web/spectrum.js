@@ -61,7 +61,7 @@ export class SpectrumPlot {
     this.canvas = canvas;
     this.opts = opts;
     this.data = null; // {f0, df, values, unit, amplitude, t_ns}
-    this.overlay = null; // {f0, df, values, label}
+    this.overlay = null; // {f0, df, values, label, dash?, legend?: [live words, overlay words]}
     this.logAmp = true;
     this.logFreq = false;
     this.view = null; // {lo, hi} Hz
@@ -343,7 +343,7 @@ export class SpectrumPlot {
     if (this.overlay) {
       const o = this.overlay;
       const oe = columnExtremes(o.values, o.f0, o.df, xs, W);
-      this._trace(ctx, oe, yOf, pal["trace-2"], 2.2);
+      this._trace(ctx, oe, yOf, pal["trace-2"], o.dash ? 1.6 : 2.2, o.dash);
     }
     this._trace(ctx, ext, yOf, this.stale ? pal["ink-3"] : pal.trace, 1.1);
     this._drawDots(ctx, d, yOf);
@@ -353,6 +353,7 @@ export class SpectrumPlot {
     if (this.show.peaks) this._drawPeaks(ctx, d, yOf, L, R, T);
     this._drawSelected(ctx, d, T, B);
     this._drawHover(ctx, d, L, R, T, B, yOf);
+    if (this.overlay?.legend) this._drawLegend(ctx, R, T);
     if (this.show.bands && this._levelsHidden) {
       ctx.font = `11px ${pal.font}`;
       plateText(ctx, `band limits are in ${this._levelsHidden}: show that unit to see them`, L + 6, B - 10, { fg: pal["ink-2"], bg: pal.plot });
@@ -361,6 +362,35 @@ export class SpectrumPlot {
       ctx.font = `600 12px ${pal.font}`;
       plateText(ctx, this.stale, R - 6, T + 12, { align: "right", fg: pal.ink, bg: pal.panel });
     }
+  }
+
+  /** Which line is which, in words beside a sample of each line's style (top right). */
+  _drawLegend(ctx, R, T) {
+    const o = this.overlay;
+    const items = [[o.legend[0], pal.trace, 1.1, []], [o.legend[1], pal["trace-2"], 1.6, o.dash || []]];
+    ctx.font = `11px ${pal.font}`;
+    const w = 30 + Math.max(...items.map(([t]) => ctx.measureText(t).width));
+    const x = R - w - 18, y = T + 6;
+    ctx.fillStyle = pal.panel;
+    ctx.fillRect(x, y, w + 10, 36);
+    ctx.strokeStyle = pal.axis;
+    ctx.lineWidth = 1;
+    ctx.strokeRect(x + 0.5, y + 0.5, w + 9, 35);
+    items.forEach(([text, colour, width, dash], i) => {
+      const yy = y + 11 + i * 15;
+      ctx.strokeStyle = colour;
+      ctx.lineWidth = width;
+      ctx.setLineDash(dash);
+      ctx.beginPath();
+      ctx.moveTo(x + 6, yy);
+      ctx.lineTo(x + 28, yy);
+      ctx.stroke();
+      ctx.setLineDash([]);
+      ctx.fillStyle = pal.ink;
+      ctx.textAlign = "left";
+      ctx.textBaseline = "middle";
+      ctx.fillText(text, x + 34, yy);
+    });
   }
 
   _trace(ctx, e, yOf, color, width, dash) {

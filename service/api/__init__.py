@@ -31,6 +31,7 @@ from . import (
     docs,
     edge,
     health,
+    history,
     meta,
     metrics,
     rules,
@@ -107,6 +108,7 @@ def create_app(
     app.include_router(actions.router, prefix="/api/v1")
     app.include_router(rules.router, prefix="/api/v1")
     app.include_router(trends.router, prefix="/api/v1")
+    app.include_router(history.router, prefix="/api/v1")
     app.include_router(admin.router, prefix="/api/v1")
     app.include_router(meta.router, prefix="/api/v1")
     app.include_router(metrics.router)

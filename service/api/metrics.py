@@ -195,7 +195,8 @@ class _ServiceCollector(Collector):
             yield from _notify_metrics(self.service.notifier.health())
         for key, what in (("write_errors", "Failed store writes"),
                           ("events_written", "Alarm events committed"),
-                          ("trend_buckets_written", "Trend buckets committed")):
+                          ("trend_buckets_written", "Trend buckets committed"),
+                          ("history_written", "Stored spectra (spectral history) committed")):
             m = CounterMetricFamily(f"quaver_store_{key}", what)
             m.add_metric([], float(h[key]))
             yield m

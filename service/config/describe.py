@@ -17,6 +17,7 @@ from .models import (
     BandConfig,
     ChannelConfig,
     FileSourceConfig,
+    HistorySettings,
     MachineConfig,
     ProfileSettings,
     ServiceSettings,
@@ -34,6 +35,7 @@ def describe_settings() -> list[tuple[str, str, str, str]]:
     tables: list[tuple[str, type[BaseModel]]] = [
         ("[service]", ServiceSettings),
         ("[analysis]", AnalysisSettings),
+        ("[history]", HistorySettings),
         ('[[sources]] kind="tcp"', TcpSourceConfig),
         ('[[sources]] kind="udp"', UdpSourceConfig),
         ('[[sources]] kind="file"', FileSourceConfig),

@@ -188,6 +188,52 @@ class ServiceSettings(_Model):
     )
 
 
+# --- [history] --------------------------------------------------------------------------
+
+
+class HistorySettings(_Model):
+    enabled: bool = Field(
+        True, description="Store averaged spectra of every channel and profile (history)."
+    )
+    interval_s: int = Field(
+        600,
+        ge=1,
+        le=86400,
+        description="One stored spectrum per channel and profile every this many s: the "
+        "mean of every frame's averaged power spectrum over the interval (plus one at "
+        "every alarm change).",
+    )
+    fine_days: float = Field(
+        30.0, gt=0, le=36500, description="Interval spectra are kept as they are this long, days."
+    )
+    coarse_step_s: int = Field(
+        3600,
+        ge=60,
+        le=86400,
+        description="Older interval spectra are thinned to one per this many s (their mean).",
+    )
+    coarse_days: float = Field(
+        365.0,
+        gt=0,
+        le=36500,
+        description="Thinned spectra (and alarm spectra) are kept this long, days; then dropped.",
+    )
+    max_mb: float = Field(
+        1024.0,
+        gt=0,
+        description="Bound of the stored spectra, MiB: beyond it the oldest are thinned first, "
+        "then dropped.",
+    )
+
+    @model_validator(mode="after")
+    def _tiers(self) -> HistorySettings:
+        if self.coarse_days < self.fine_days:
+            raise ValueError(
+                f"coarse_days={self.coarse_days:g} must be at least fine_days={self.fine_days:g}"
+            )
+        return self
+
+
 # --- [analysis] -------------------------------------------------------------------------
 
 
@@ -584,6 +630,10 @@ class Config(_Model):
         default_factory=lambda: AnalysisSettings.model_validate({}),
         description="Analysis defaults for every channel.",
     )
+    history: HistorySettings = Field(
+        default_factory=lambda: HistorySettings.model_validate({}),
+        description="[history]: stored spectra, their tiers and bound.",
+    )
     profiles: dict[Id, ProfileSettings] = Field(  # type: ignore[valid-type]
         default_factory=dict,
         description="[profiles.<name>]: named analyses each channel may run side by side "
@@ -604,6 +654,7 @@ class Config(_Model):
 MODELS: tuple[type[BaseModel], ...] = (
     Config,
     ServiceSettings,
+    HistorySettings,
     AnalysisSettings,
     AnalysisOverride,
     ProfileSettings,

@@ -1,4 +1,4 @@
-"""SQLite storage: alarm events and alarm state, alarm evidence (spectrum + waveform), trends.
+"""SQLite storage: alarm events and alarm state, alarm evidence, trends, spectral history.
 
 One writer thread fed by a queue, reads on per-thread connections; knows nothing about
 asyncio, HTTP, the hub or the engine (it takes AlarmEvents and plain numbers and arrays).
@@ -46,15 +46,26 @@ Trends
 Modules
     ``writer`` (the writer thread, transactions, per-thread reads), ``schema`` (ordered
     migrations keyed by ``PRAGMA user_version``), ``events`` (events, alarm state and
-    evidence), ``trends`` (bucket aggregation and tier queries), ``retention`` (deletion by
-    age and size), ``outbox`` (notification rows, written by ``put_events`` with their
-    events through a router ``service.notify`` supplies) and ``store`` (:class:`Store`,
-    which puts them together).
+    evidence), ``trends`` (bucket aggregation and tier queries), ``history`` (stored
+    spectra: codec, queries, thinning and their own bound), ``retention`` (deletion by age
+    and size), ``outbox`` (notification rows, written by ``put_events`` with their events
+    through a router ``service.notify`` supplies) and ``store`` (:class:`Store`, which puts
+    them together).
 """
 
+from .history import HistoryPolicy, HistoryRow
 from .retention import DAY_S, Retention
 from .store import Store
 from .trends import TREND_STEPS_S, trend_key
 from .writer import StoreError
 
-__all__ = ["DAY_S", "TREND_STEPS_S", "Retention", "Store", "StoreError", "trend_key"]
+__all__ = [
+    "DAY_S",
+    "TREND_STEPS_S",
+    "HistoryPolicy",
+    "HistoryRow",
+    "Retention",
+    "Store",
+    "StoreError",
+    "trend_key",
+]

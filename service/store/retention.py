@@ -23,8 +23,9 @@ class Retention:
 
     ``raw_s``/``minute_s``/``hour_s`` are for the trend tiers of ``trend_step_s``, 60 s and
     3600 s. ``max_db_bytes`` caps the main database file (page_count × page_size): when it
-    is exceeded the oldest rows go in this order — raw trend tier, evidence, 1-min tier,
-    1-h tier — until it fits; events and alarm state are never dropped for size.
+    is exceeded the oldest rows go in this order — raw trend tier, stored spectra
+    (``service.store.history``), evidence, 1-min tier, 1-h tier — until it fits; events
+    and alarm state are never dropped for size.
     """
 
     raw_s: float | None = 7 * DAY_S
@@ -73,7 +74,8 @@ def apply_retention(
     for_size: dict[str, int] = {}
     error = ""
     if ret.max_db_bytes is not None:
-        victims = [f"trend_{tiers_s[0]}s", "evidence", *(f"trend_{s}s" for s in tiers_s[1:])]
+        victims = [f"trend_{tiers_s[0]}s", "history", "evidence",
+                   *(f"trend_{s}s" for s in tiers_s[1:])]
         while size > ret.max_db_bytes and victims:
             c.execute("BEGIN IMMEDIATE")
             n = drop_oldest(c, victims[0])
@@ -107,6 +109,14 @@ def drop_tier(c: sqlite3.Connection, step_s: int, before_ns: int) -> int:
 
 def drop_oldest(c: sqlite3.Connection, what: str) -> int:
     """Delete about the oldest eighth of one kind of row (at least one bucket time)."""
+    if what == "history":
+        n = c.execute("SELECT COUNT(*) FROM history").fetchone()[0]
+        if n == 0:
+            return 0
+        t = c.execute(
+            "SELECT t_ns FROM history ORDER BY t_ns LIMIT 1 OFFSET ?", (max(0, n // 8 - 1),)
+        ).fetchone()[0]
+        return int(c.execute("DELETE FROM history WHERE t_ns <= ?", (t,)).rowcount)
     if what == "evidence":
         n = c.execute("SELECT COUNT(*) FROM evidence").fetchone()[0]
         return int(

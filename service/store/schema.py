@@ -90,10 +90,29 @@ CREATE INDEX IF NOT EXISTS outbox_entry ON outbox(entry, created_ns);
 INSERT OR IGNORE INTO meta(key, value) VALUES ('store_id', lower(hex(randomblob(8))));
 """
 
+# Step 4: spectral history (service.store.history): averaged spectra of every channel and
+# profile at each interval and at every alarm change, 16-bit dB codes compressed with zlib.
+# reason 'interval' rows have step_s = their interval (thinned rows the coarse step),
+# 'alarm' rows step_s = 0 and the event's id.
+_V4 = """
+CREATE TABLE history(
+    id INTEGER PRIMARY KEY AUTOINCREMENT,
+    channel TEXT NOT NULL, profile TEXT NOT NULL, t_ns INTEGER NOT NULL,
+    span_ns INTEGER NOT NULL, reason TEXT NOT NULL CHECK (reason IN ('interval', 'alarm')),
+    step_s INTEGER NOT NULL, frames INTEGER NOT NULL, averages INTEGER NOT NULL,
+    event_id INTEGER, lines INTEGER NOT NULL, f0_hz REAL NOT NULL, df_hz REAL NOT NULL,
+    fmax_hz REAL NOT NULL, input_unit TEXT NOT NULL, unit TEXT NOT NULL,
+    amplitude TEXT NOT NULL, lowcut_hz REAL NOT NULL, window TEXT NOT NULL,
+    enbw_bins REAL NOT NULL, codec TEXT NOT NULL, data BLOB NOT NULL);
+CREATE INDEX history_channel_t ON history(channel, profile, t_ns);
+CREATE INDEX history_age ON history(t_ns);
+"""
+
 MIGRATIONS: tuple[Migration, ...] = (
     Migration("the schema before migrations: events, alarm state, evidence, trends", _V1),
     Migration("index the event log by rule", _V2),
     Migration("the notification outbox and the store's id", _V3),
+    Migration("spectral history: stored averaged spectra", _V4),
 )
 
 

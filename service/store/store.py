@@ -18,6 +18,7 @@ import numpy as np
 
 from ..alarms import AlarmEvent
 from . import events as ev
+from . import history as hi
 from . import outbox as ob
 from . import trends as tr
 from .retention import Retention, apply_retention
@@ -32,7 +33,8 @@ class Store(Writer):
     ``path`` is the database file (its folder is created). ``trend_step_s`` is the finest
     trend tier in seconds (one of :data:`TREND_STEPS_S`); the coarser tiers are 60 s and
     3600 s. ``maintenance_s``: how often (wall time, on the writer thread) the retention
-    limits are applied; :meth:`maintain` applies them now.
+    limits are applied; :meth:`maintain` applies them now. ``history``: how long stored
+    spectra are kept and their bound (:class:`~service.store.history.HistoryPolicy`).
     """
 
     def __init__(
@@ -42,6 +44,7 @@ class Store(Writer):
         trend_step_s: int = 10,
         retention: Retention | None = None,
         maintenance_s: float = 600.0,
+        history: hi.HistoryPolicy | None = None,
     ) -> None:
         if trend_step_s not in tr.TREND_STEPS_S:
             listed = ", ".join(map(str, tr.TREND_STEPS_S))
@@ -50,6 +53,9 @@ class Store(Writer):
         self.trend_step_s = int(trend_step_s)
         self.tiers_s: tuple[int, int, int] = (self.trend_step_s, 60, 3600)
         self.retention = retention or Retention()
+        self.history_policy = history or hi.HistoryPolicy()
+        self.history_written = 0
+        self.history_bytes: int | None = None
         self._buckets = tr.TrendBuckets(self.trend_step_s)
         # series ids of the writer's connection (ids never change: series are never deleted);
         # only the writer thread touches it, and it is emptied when the connection is opened
@@ -80,6 +86,9 @@ class Store(Writer):
             "trend_buckets_written": self.buckets_written,
             "db_bytes": self.db_bytes,
             "max_db_bytes": self.retention.max_db_bytes,
+            "history_written": self.history_written,
+            "history_bytes": self.history_bytes,
+            "history_max_bytes": self.history_policy.max_bytes,
         }
 
     # -- hooks of the writer -----------------------------------------------------------------
@@ -193,6 +202,21 @@ class Store(Writer):
         row = ev.evidence_row(event_id, spectrum, waveform, fs, t0_ns)
         return self._submit(lambda c: ev.insert_evidence(c, row), durable=True)
 
+    def put_history(self, rows: Sequence[hi.HistoryRow]) -> Future[list[int]]:
+        """Queue stored spectra (encoded on the writer thread); resolves to their ids once
+        committed (synchronous=NORMAL, like trends). Each row's ``power`` must not change
+        after this call (pass a copy)."""
+        batch = list(rows)
+        if not batch:
+            return resolved([])
+        fut = self._submit(lambda c: hi.insert_rows(c, batch), durable=False)
+        fut.add_done_callback(self._count_history)
+        return fut
+
+    def _count_history(self, fut: Future[list[int]]) -> None:
+        if not fut.cancelled() and fut.exception() is None:
+            self.history_written += len(fut.result())
+
     def record(self, channel: str, name: str, t_ns: int, value: float) -> None:
         """Add one value (any unit; the caller keeps units consistent per series) at ``t_ns``
         (ns since the Unix epoch, >= 0) to the trend of (channel, name). NaN/inf are skipped.
@@ -279,6 +303,46 @@ class Store(Writer):
         with self._read() as c:
             return tr.select_names(c, channel)
 
+    def history_list(
+        self, channel: str, profile: str, since_ns: int, until_ns: int, limit: int = 1000
+    ) -> tuple[list[dict[str, Any]], int]:
+        """Stored spectra of (channel, profile) with since_ns <= t_ns < until_ns, oldest
+        first, without their values (at most ``limit``, the newest), and how many there are.
+        Each: id, t_ns, span_ns, reason ("interval"|"alarm"), step_s, frames, averages,
+        event_id, lines."""
+        with self._read() as c:
+            rows = hi.select_list(c, channel, profile, since_ns, until_ns, limit)
+            return rows, hi.count_rows(c, channel, profile, since_ns, until_ns)
+
+    def history_spectrum(self, row_id: int) -> dict[str, Any] | None:
+        """One stored spectrum: the list's fields, channel, profile, its settings (f0_hz,
+        df_hz, fmax_hz, input_unit, unit, amplitude, lowcut_hz, window, enbw_bins) and
+        ``power`` (float64, input unit², as decoded); None if there is no such id."""
+        with self._read() as c:
+            return hi.select_one(c, row_id)
+
+    def history_nearest(self, channel: str, profile: str, t_ns: int) -> dict[str, Any] | None:
+        """The stored spectrum of (channel, profile) nearest to ``t_ns``, as
+        :meth:`history_spectrum`; None if there is none."""
+        with self._read() as c:
+            return hi.select_nearest(c, channel, profile, t_ns)
+
+    def history_spectra(
+        self, channel: str, profile: str, since_ns: int, until_ns: int,
+        codes: bool = False,
+    ) -> list[dict[str, Any]]:
+        """Every stored spectrum in [since_ns, until_ns), decoded, oldest first; ``codes``:
+        their 16-bit codes (``service.store.history``) in place of ``power``, to pool many
+        at the cost of one conversion."""
+        with self._read() as c:
+            return hi.select_spectra(c, channel, profile, since_ns, until_ns, codes)
+
+    def maintain_history(self, now_ns: int | None = None) -> Future[dict[str, Any]]:
+        """Thin, drop by age and hold the bound of the stored spectra now (``now_ns``
+        defaults to the newest one's time); see :class:`~service.store.history.HistoryPolicy`."""
+        return self._submit(lambda c: self._maintain_history(c, now_ns), durable=False,
+                            alone=True)
+
     # -- internals ---------------------------------------------------------------------------
     def _submit_buckets(self, closed: list[tuple[tr.Key, tr.Agg]]) -> Future[None]:
         rows = list(closed)
@@ -296,6 +360,7 @@ class Store(Writer):
 
     def _maintain(self, c: sqlite3.Connection, now_ns: int | None) -> dict[str, Any]:
         """Retention by age, then by size (see :class:`Retention`); own transactions."""
+        history = self._maintain_history(c, None)  # first: its deletions are then vacuumed
         report, error = apply_retention(c, self.tiers_s, self.retention, now_ns)
         if self.retention.outbox_s is not None:  # wall clock: the outbox's times are
             cutoff = time.time_ns() - round(self.retention.outbox_s * 1e9)
@@ -304,5 +369,11 @@ class Store(Writer):
                 report["deleted"]["outbox"] = pruned
         if error:
             self._error(f"{self.path} {error}")
+        report["history"] = history
         self.db_bytes = report["db_bytes"]
+        return report
+
+    def _maintain_history(self, c: sqlite3.Connection, now_ns: int | None) -> dict[str, Any]:
+        report = hi.apply_history_retention(c, self.history_policy, now_ns)
+        self.history_bytes = report["bytes"]
         return report

@@ -55,6 +55,10 @@ GET_ROUTES = [
     "/api/v1/channels/{channel_id}/bands",
     "/api/v1/channels/{channel_id}/tones",
     "/api/v1/channels/{channel_id}/trend",
+    "/api/v1/channels/{channel_id}/history",
+    "/api/v1/channels/{channel_id}/history/{spectrum_id}",
+    "/api/v1/channels/{channel_id}/history/compare",
+    "/api/v1/channels/{channel_id}/waterfall",
     "/api/v1/alarms",
     "/api/v1/events",
     "/api/v1/events/{event_id}",
@@ -106,7 +110,7 @@ def findings(demo: RunningService, api_schema: Any) -> Callable[[str], dict[str,
         for strategy in strategies:
             if route == "/api/v1/windows/{window}/response":
                 strategy = strategy.map(_affordable_window_request)
-            if route == "/api/v1/channels/{channel_id}/trend":
+            if route in FORWARD_ROUTES:
                 strategy = strategy.map(_forward_interval)
 
             @settings(max_examples=EXAMPLES, derandomize=True, deadline=None, database=None,
@@ -146,14 +150,26 @@ def _affordable_window_request(case: Any) -> Any:
     return case
 
 
+FORWARD_ROUTES = ("/api/v1/channels/{channel_id}/trend", "/api/v1/channels/{channel_id}/history",
+                  "/api/v1/channels/{channel_id}/waterfall")
+
+
 def _forward_interval(case: Any) -> Any:
     """GET /trend wants since before until, a rule between two parameters that OpenAPI
     cannot state (its 422 says it; test_robustness checks that answer): keep generated
     intervals forward, so positive_data_acceptance judges the rest of the contract."""
     q = case.query if isinstance(case.query, dict) else {}
     since, until = q.get("since"), q.get("until")
+    if isinstance(since, int | float) and until is None and since >= time.time() - 1.0:
+        q["until"] = until = since + 1.0  # until defaults to now: a later since is 422
     if isinstance(since, int | float) and isinstance(until, int | float) and since >= until:
         q["since"], q["until"] = min(since, until) - 1.0, max(since, until)
+    rows, cols = q.get("rows", 300), q.get("cols", 512)  # the waterfall: rows × cols <= 2**22
+    if isinstance(rows, int) and isinstance(cols, int) and rows * cols > 2**22:
+        q["cols"] = max(8, 2**22 // rows)
+    lo, hi = q.get("fmin_hz"), q.get("fmax_hz")  # the waterfall's columns: likewise
+    if isinstance(lo, int | float) and isinstance(hi, int | float) and lo >= hi:
+        q["fmin_hz"], q["fmax_hz"] = min(lo, hi) - 1.0, max(lo, hi)
     return case
 
 
