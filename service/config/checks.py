@@ -20,16 +20,19 @@ from ..lookups import (
 from .models import (
     FRAME_RATIO,
     QUANTITY_OF_UNIT,
+    BandConfig,
     Config,
     ConfigError,
     FileSourceConfig,
     SimulatedSourceConfig,
     TcpSourceConfig,
+    ToneConfig,
     UdpSourceConfig,
     parse_listen,
 )
 from .notify import check_notify_url, split_urls
 from .queries import channel_settings, profile_names, profiles_of
+from .salvage import Doubts
 
 
 def open_source_warnings(cfg: Config) -> list[str]:
@@ -80,8 +83,11 @@ def _fmt_hz(x: float) -> str:
 class _Checker:
     """Cross-field and cross-table checks of a config that passed the per-field checks."""
 
-    def __init__(self, cfg: Config) -> None:
+    def __init__(self, cfg: Config, doubts: Doubts | None = None) -> None:
         self.cfg = cfg
+        # what entries that failed their models leave unknown: checks that depend on it are
+        # skipped rather than report its consequences
+        self.doubts = doubts or Doubts()
         self.problems: list[str] = []
         self.channel_source: dict[str, int] = {}
         self.open_ended = any(
@@ -98,11 +104,9 @@ class _Checker:
         self.channels()
         self.profiles()
         self.analysis()
-        before = len(self.problems)
         self.bands()
         self.tones()
-        if len(self.problems) == before:  # names are only meaningful once bands/tones are sound
-            self.alarms()
+        self.alarms()
         self.tokens()
         self.machines()
         self.notify()
@@ -113,18 +117,19 @@ class _Checker:
         return None if i is None else self.cfg.sources[i].sample_rate_hz
 
     def known(self, ch: str, where: str) -> bool:
-        if ch == "*" or ch in self.channel_source or self.open_ended:
+        if ch == "*" or ch in self.channel_source or self.open_ended or self.doubts.source(ch):
             return True
         listed = ", ".join(repr(c) for c in self.channel_source) or "none"
         self.add(f"{where}: {ch!r} is not a channel of any source (channels: {listed})")
         return False
 
     def targets(self, ch: str) -> list[str]:
-        return list(self.channel_source) if ch == "*" else [ch]
+        chans = list(self.channel_source) if ch == "*" else [ch]
+        return [c for c in chans if not self.doubts.channel(c)]
 
     def sources(self) -> None:
         cfg = self.cfg
-        if not cfg.sources:
+        if not cfg.sources and not self.doubts.any_failed("sources"):
             self.add("sources: at least one [[sources]] entry is required")
         seen_id: dict[str, int] = {}
         seen_listen: dict[tuple[str, str], int] = {}
@@ -163,7 +168,9 @@ class _Checker:
                         f"sources[{seen_listen[key]}]"
                     )
                 seen_listen.setdefault(key, i)
-                if s.kind == "tcp" and parse_listen(s.listen) == parse_listen(cfg.service.listen):
+                if s.kind == "tcp" and not self.doubts.field("service.listen") and (
+                    parse_listen(s.listen) == parse_listen(cfg.service.listen)
+                ):
                     self.add(f"sources[{i}].listen: {s.listen!r} is the service's own address")
 
     def channels(self) -> None:
@@ -172,7 +179,9 @@ class _Checker:
             if c.id in seen:
                 self.add(f"channels[{j}].id: {c.id!r} repeats channels[{seen[c.id]}]")
             seen.setdefault(c.id, j)
-            if c.id not in self.channel_source and not self.open_ended:
+            if c.id not in self.channel_source and not (
+                self.open_ended or self.doubts.source(c.id)
+            ):
                 listed = ", ".join(repr(x) for x in self.channel_source) or "none"
                 self.add(
                     f"channels[{j}].id: {c.id!r} is not produced by any source "
@@ -188,7 +197,9 @@ class _Checker:
         for j, c in enumerate(self.cfg.channels):
             seen: set[str] = set()
             for k, name in enumerate(c.profiles or ()):
-                if name not in names:
+                if name in self.doubts.profiles:  # its own entry failed: reported there
+                    self.profiles_ok = False
+                elif name not in names:
                     self.add(f"channels[{j}].profiles[{k}]: {name!r} is not a profile "
                              f"(profiles: {listed})")
                     self.profiles_ok = False
@@ -204,11 +215,15 @@ class _Checker:
         if name is None or name == "*":
             return True
         names = profile_names(self.cfg)
+        if name in self.doubts.profiles:
+            return False
         if name not in names:
             listed = ", ".join(map(repr, names))
             self.add(f"{where}: {name!r} is not a profile (profiles: {listed})")
             return False
-        if ch != "*" and self.profiles_ok and name not in profiles_of(self.cfg, ch):
+        if ch != "*" and self.profiles_ok and not self.doubts.channel(ch) and (
+            name not in profiles_of(self.cfg, ch)
+        ):
             runs = ", ".join(map(repr, profiles_of(self.cfg, ch)))
             self.add(f"{where}: channel {ch!r} does not run profile {name!r} (it runs {runs})")
             return False
@@ -239,27 +254,36 @@ class _Checker:
         def where(field: str) -> str:
             return self.where(ch, field, prof)
 
+        if self.doubts.channel(ch):
+            return
         a = effective_analysis(self.cfg, ch, prof)
-        if a.lines % 25:
+        sure = not self.doubts.profiles
+
+        def doubt(*fields: str) -> bool:
+            return not sure or any(self.doubts.field(f"analysis.{f}") for f in fields)
+
+        if a.lines % 25 and not doubt("lines"):
             self.add(
                 f"{where('lines')}: 2.56·{a.lines} = {a.lines * 2.56:g} "
                 "samples is not an integer; use a multiple of 25 (e.g. 400, 800, "
                 "1600, 3200, 6400)"
             )
         fs = self.fs_of(ch)
-        if fs is not None and a.fmax_hz * FRAME_RATIO > fs * (1 + 1e-9):
+        if fs is not None and a.fmax_hz * FRAME_RATIO > fs * (1 + 1e-9) and not doubt("fmax_hz"):
             src = self.cfg.sources[self.channel_source[ch]]
             self.add(
                 f"{where('fmax_hz')}: {_fmt_hz(a.fmax_hz)} needs a sample "
                 f"rate of at least 2.56·fmax = {_fmt_hz(a.fmax_hz * FRAME_RATIO)}; "
                 f"source {src.id!r} runs at {_fmt_hz(fs)}"
             )
-        if a.output_unit is not None and QUANTITY_OF_UNIT[a.output_unit] != a.unit:
+        if a.output_unit is not None and QUANTITY_OF_UNIT[a.output_unit] != a.unit and not doubt(
+            "output_unit", "unit"
+        ):
             self.add(
                 f"{where('output_unit')}: {a.output_unit!r} is not a unit "
                 f"of {a.unit} (unit = {a.unit!r})"
             )
-        if a.lowcut_hz >= a.fmax_hz:
+        if a.lowcut_hz >= a.fmax_hz and not doubt("lowcut_hz", "fmax_hz"):
             self.add(
                 f"{where('lowcut_hz')}: {_fmt_hz(a.lowcut_hz)} must be "
                 f"below fmax_hz {_fmt_hz(a.fmax_hz)}"
@@ -267,6 +291,8 @@ class _Checker:
 
     def speed_needed(self, where: str, ch: str) -> None:
         targets = self.targets(ch)
+        if self.doubts.channel(ch):
+            return
         speeds = [channel_settings(self.cfg, t).speed_rpm for t in targets]
         if ch != "*" and speeds and speeds[0] is None:
             self.add(f"{where}: channel {ch!r} has no speed_rpm, so orders cannot be placed")
@@ -279,7 +305,11 @@ class _Checker:
         """A band edge or tone above Fmax: with ``profile = "*"`` it must fit at least one of
         the channel's profiles, else the named profile."""
         over = []
+        if self.doubts.fmax(ch) and (ch != "*" or not self.targets(ch)):
+            return
         for t in self.targets(ch):
+            if self.doubts.fmax(t):
+                continue
             mine = self.channel_profiles(t)
             profs = mine if profile == "*" else [profile] if profile in mine else []
             if not profs:
@@ -313,39 +343,55 @@ class _Checker:
         scope: dict[tuple[str, str, str], int] = {}
         for j, b in enumerate(self.cfg.bands):
             w = f"bands[{j}]"
-            if not self.known(b.channel, f"{w}.channel"):
-                continue
-            if not self.profile_known(f"{w}.profile", b.profile, b.channel):
-                continue
-            if b.octave is not None and not _expand_band(b):
-                self.add(
-                    f"{w}: no 1/{b.octave}-octave band lies within {b.lo_hz:g}-{b.hi_hz:g} Hz"
-                )
-                continue
-            if not _is_order_band(b):
-                self.above_fmax(f"{w}.hi_hz", b.channel, b.hi_hz, None, b.profile)
-            else:
-                self.speed_needed(f"{w}.lo_order", b.channel)
-                self.above_fmax(f"{w}.hi_order", b.channel, None, b.hi_order, b.profile)
-            self.names(
-                "bands", scope, j, b.channel, b.profile, [x.name for x in _expand_band(b)]
+            before = len(self.problems)
+            self.band(j, b, w, scope)
+            if len(self.problems) > before:  # alarms on it would only echo this problem
+                self.doubts.bands.add((b.channel, None if b.octave is not None else b.name))
+
+    def band(
+        self, j: int, b: BandConfig, w: str, scope: dict[tuple[str, str, str], int]
+    ) -> None:
+        if not self.known(b.channel, f"{w}.channel"):
+            return
+        if not self.profile_known(f"{w}.profile", b.profile, b.channel):
+            return
+        if b.octave is not None and not _expand_band(b):
+            self.add(
+                f"{w}: no 1/{b.octave}-octave band lies within {b.lo_hz:g}-{b.hi_hz:g} Hz"
             )
+            return
+        if not _is_order_band(b):
+            self.above_fmax(f"{w}.hi_hz", b.channel, b.hi_hz, None, b.profile)
+        else:
+            self.speed_needed(f"{w}.lo_order", b.channel)
+            self.above_fmax(f"{w}.hi_order", b.channel, None, b.hi_order, b.profile)
+        self.names(
+            "bands", scope, j, b.channel, b.profile, [x.name for x in _expand_band(b)]
+        )
 
     def tones(self) -> None:
         scope: dict[tuple[str, str, str], int] = {}
         for j, t in enumerate(self.cfg.tones):
             w = f"tones[{j}]"
-            if not self.known(t.channel, f"{w}.channel"):
-                continue
-            if not self.profile_known(f"{w}.profile", t.profile, t.channel):
-                continue
-            if t.order is not None:
-                self.speed_needed(f"{w}.order", t.channel)
-            self.above_fmax(
-                f"{w}.{'hz' if t.hz is not None else 'order'}", t.channel, t.hz, t.order,
-                t.profile,
-            )
-            self.names("tones", scope, j, t.channel, t.profile, [t.name])
+            before = len(self.problems)
+            self.tone(j, t, w, scope)
+            if len(self.problems) > before:  # alarms on it would only echo this problem
+                self.doubts.tones.add((t.channel, t.name))
+
+    def tone(
+        self, j: int, t: ToneConfig, w: str, scope: dict[tuple[str, str, str], int]
+    ) -> None:
+        if not self.known(t.channel, f"{w}.channel"):
+            return
+        if not self.profile_known(f"{w}.profile", t.profile, t.channel):
+            return
+        if t.order is not None:
+            self.speed_needed(f"{w}.order", t.channel)
+        self.above_fmax(
+            f"{w}.{'hz' if t.hz is not None else 'order'}", t.channel, t.hz, t.order,
+            t.profile,
+        )
+        self.names("tones", scope, j, t.channel, t.profile, [t.name])
 
     def alarms(self) -> None:
         # each entry's own rules (one value, alert < danger, factor/dB pairs) are its
@@ -359,9 +405,14 @@ class _Checker:
             if self.open_ended or a.overall:
                 continue
             kind, name = ("band", a.band) if a.band is not None else ("tone", a.tone)
+            targets = self.targets(a.channel)
+            if not targets or any(self.doubts.fmax(t) for t in targets) or self.doubts.value(
+                kind, a.channel, str(name)
+            ):
+                continue  # what it watches is in doubt: its own entry's problem says why
             problem = missing_value(
-                self.cfg, w, a.channel, a.profile, kind, str(name),
-                self.targets(a.channel), self.channel_profiles,
+                self.cfg, w, a.channel, a.profile, kind, str(name), targets,
+                self.channel_profiles,
             )
             if problem:
                 self.add(problem)
@@ -373,6 +424,8 @@ class _Checker:
                 self.add(f"tokens[{j}].name: {t.name!r} repeats tokens[{seen[t.name]}]")
             seen.setdefault(t.name, j)
         svc = self.cfg.service
+        if self.doubts.field("service.tls_cert") or self.doubts.field("service.tls_key"):
+            return
         if svc.tls_cert is not None and svc.tls_key is None:
             self.add("service.tls_key: missing; tls_cert needs its key (give both or neither)")
         if svc.tls_key is not None and svc.tls_cert is None:
@@ -383,11 +436,12 @@ class _Checker:
     def machines(self) -> None:
         seen: dict[str, int] = {}
         used = {c.machine for c in self.cfg.channels if c.machine}
+        channels_sure = not self.doubts.any_failed("channels")
         for j, m in enumerate(self.cfg.machines):
             if m.id in seen:
                 self.add(f"machines[{j}].id: {m.id!r} repeats machines[{seen[m.id]}]")
             seen.setdefault(m.id, j)
-            if m.id not in used:
+            if m.id not in used and channels_sure:
                 listed = ", ".join(repr(x) for x in sorted(used)) or "none"
                 self.add(f"machines[{j}].id: {m.id!r} is not the machine of any channel "
                          f"(channels' machines: {listed})")
@@ -403,7 +457,7 @@ class _Checker:
                 if not _is_glob(ch):
                     self.known(ch, f"notify[{j}].channels[{k}]")
             for k, m in enumerate(n.machines):
-                if not _is_glob(m) and m not in machines:
+                if not _is_glob(m) and m not in machines and not self.doubts.any_failed("channels"):
                     listed = ", ".join(repr(x) for x in sorted(machines)) or "none"
                     self.add(f"notify[{j}].machines[{k}]: {m!r} is not the machine of any "
                              f"channel (channels' machines: {listed})")
@@ -432,5 +486,8 @@ def notify_env_problems(cfg: Config, env: Mapping[str, str]) -> list[str]:
     return out
 
 
-def _cross_check(cfg: Config) -> list[str]:
-    return _Checker(cfg).run()
+def _cross_check(cfg: Config, doubts: Doubts | None = None) -> list[str]:
+    """Every cross-table problem; with ``doubts`` (a salvaged config, ``.salvage``) the
+    entries' indices are the file's and what failed entries leave unknown is not checked."""
+    problems = _Checker(cfg, doubts).run()
+    return problems if doubts is None else [doubts.renumber(p) for p in problems]

@@ -26,6 +26,7 @@ from .models import (
     ConfigError,
     FileSourceConfig,
 )
+from .salvage import salvage
 
 
 def load_config(path: str | os.PathLike[str], env: Mapping[str, str] | None = None) -> Config:
@@ -67,7 +68,12 @@ def parse_config(
     try:
         cfg = Config.model_validate(raw)
     except ValidationError as e:
-        raise ConfigError(_pydantic_problems(e, from_env), source=source) from None
+        problems = _pydantic_problems(e, from_env)
+        # the entries that did validate are cross-checked too, so one run lists every problem
+        salvaged = salvage(raw, e)
+        if salvaged is not None:
+            problems += [p for p in _cross_check(*salvaged) if p not in problems]
+        raise ConfigError(problems, source=source) from None
     problems = _cross_check(cfg) + notify_env_problems(cfg, env)
     if problems:
         raise ConfigError(problems, source=source)
