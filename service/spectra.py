@@ -93,6 +93,8 @@ def tone_reason(frame: SpectralFrame, frequency_hz: float) -> str:
         return "order tone without a running speed, or above fs/2"
     if frequency_hz < frame.lowcut_hz:
         return f"below the low-frequency limit ({frame.lowcut_hz:g} Hz)"
+    if frequency_hz > frame.fmax_hz * (1 + 1e-9):
+        return f"beyond Fmax {frame.fmax_hz:g} Hz"
     return "not measured"
 
 

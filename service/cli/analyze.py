@@ -66,6 +66,10 @@ class _Run:
     ids: list[str]  # the config's channel id of each row
     cfg: Config
     config_channel: str | None
+    # the config's bands and tones that lie beyond this run's Fmax, as null JSON items with
+    # their reason, and the warning line each gives
+    beyond: list[tuple[str, dict[str, Any]]] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
 
 
 def _settings(base: dict[str, Any], over: dict[str, Any]) -> AnalysisSettings:
@@ -176,6 +180,7 @@ def _config_run(args: argparse.Namespace, cfg: Config, row: int, cid: str,
                        f"has no such profile (profiles: {', '.join(map(repr, runs))})", 2)
     prof = args.profile or runs[0]
     base = effective_analysis(cfg, cid, prof).model_dump()
+    base_fmax_hz = float(base["fmax_hz"])
     s = _settings(base, over)
     ch = channel_settings(cfg, cid)
     settings = s.model_dump()
@@ -188,6 +193,9 @@ def _config_run(args: argparse.Namespace, cfg: Config, row: int, cid: str,
     cli_bands, cli_tones = _cli_items(args, cid, s.fmax_hz)
     cli_names = {b["name"] for b in cli_bands} | {t["name"] for t in cli_tones}
 
+    rps = (ch.speed_rpm or 0.0) / 60.0
+    beyond: list[tuple[str, dict[str, Any]]] = []
+
     def keep(item: Any, is_order: bool, top: float | None) -> bool:
         if item.channel not in ("*", cid) or item.profile not in ("*", prof):
             return False
@@ -195,17 +203,22 @@ def _config_run(args: argparse.Namespace, cfg: Config, row: int, cid: str,
             return False  # the option's band or tone of that name replaces it
         if is_order and not has_speed:
             return False  # a '*' order item skips a channel without speed
-        # a profile = "*" item goes to the profiles whose Fmax reaches it (config.bands_for)
-        return item.profile != "*" or top is None or top <= s.fmax_hz * (1 + 1e-9)
+        if top is None or top <= s.fmax_hz * (1 + 1e-9):
+            return True
+        # beyond this run's Fmax: a profile = "*" item beyond the profile's own Fmax belongs
+        # to other profiles (as in bands_for); else the options lowered Fmax below it, and
+        # it is said, with a null row
+        if item.profile != "*" or top <= base_fmax_hz * (1 + 1e-9):
+            beyond.append(_beyond(item, rps, s.fmax_hz))
+        return False
 
-    rps = (ch.speed_rpm or 0.0) / 60.0
     bands = []
     for b in cfg.bands:
         if b.octave is not None:  # a set: its bands up to Fmax (bands_for drops the rest)
             item = b.model_dump(exclude_none=True)
-            if b.profile == "*" and b.hi_hz is not None and b.hi_hz > s.fmax_hz:
+            if b.hi_hz is not None and b.hi_hz > s.fmax_hz:
                 item["hi_hz"] = s.fmax_hz
-            if keep(b, False, None) and (b.lo_hz or 0.0) < s.fmax_hz:
+            if keep(b, False, b.lo_hz):
                 bands.append(item)
             continue
         is_order = b.hi_order is not None
@@ -214,6 +227,11 @@ def _config_run(args: argparse.Namespace, cfg: Config, row: int, cid: str,
             bands.append(b.model_dump(exclude_none=True))
     tones = [t.model_dump(exclude_none=True) for t in cfg.tones
              if keep(t, t.order is not None, t.hz if t.hz is not None else (t.order or 0) * rps)]
+    warnings = [
+        f"{kind} {item['name']!r} at {_where(kind, item)} lies beyond Fmax {s.fmax_hz:g} Hz "
+        f"(channel {cid!r}, profile {prof!r}): not measured; raise --fmax to include it"
+        for kind, item in beyond
+    ]
     doc: dict[str, Any] = {
         "analysis": cfg.analysis.model_dump(),
         "sources": [_source([cid], fs)],
@@ -225,7 +243,28 @@ def _config_run(args: argparse.Namespace, cfg: Config, row: int, cid: str,
         doc["profiles"] = {prof: settings}
         channel["profiles"] = [prof]
     return _Run([row], [cid], _validated(doc, f"{args.config} with the command-line options",
-                                         over), cid)
+                                         over), cid, beyond, warnings)
+
+
+def _beyond(item: Any, rps: float, fmax_hz: float) -> tuple[str, dict[str, Any]]:
+    """A config band or tone beyond Fmax as the null JSON item REST would give, its reason
+    beside it (edges and frequency in Hz; orders times the running speed)."""
+    reason = f"beyond Fmax {fmax_hz:g} Hz"
+    if hasattr(item, "lo_hz"):  # a band
+        if item.hi_order is not None:
+            lo, hi = (item.lo_order or 0.0) * rps, item.hi_order * rps
+        else:
+            lo, hi = item.lo_hz, item.hi_hz
+        return "band", {"name": item.name, "lo_hz": lo, "hi_hz": hi, "value": None,
+                        "reason": reason}
+    hz = item.hz if item.hz is not None else item.order * rps
+    return "tone", {"name": item.name, "frequency_hz": hz, "amplitude": None, "reason": reason}
+
+
+def _where(kind: str, item: dict[str, Any]) -> str:
+    if kind == "tone":
+        return f"{item['frequency_hz']:g} Hz"
+    return f"{item['lo_hz']:g}-{item['hi_hz']:g} Hz"
 
 
 def _plan(args: argparse.Namespace, rec: Recording) -> list[_Run]:
@@ -333,8 +372,8 @@ def _channel_result(name: str, run: _Run, frame: SpectralFrame, st: ChannelState
         "overall_band_hz": [overall["overall_lo_hz"], overall["overall_hi_hz"]],
         **({"overall_reason": overall["overall_reason"]} if "overall_reason" in overall else {}),
         "band_amplitude": "rms",
-        "bands": band_items(frame),
-        "tones": tone_items(frame),
+        "bands": [*band_items(frame), *(i for k, i in run.beyond if k == "band")],
+        "tones": [*tone_items(frame), *(i for k, i in run.beyond if k == "tone")],
         "peaks": peak_items(frame),
         # the worker thread's view of the samples (service.quality: the rest of a channel's
         # state is about time, which a recording does not have); frame.quality: the frame's
@@ -404,6 +443,9 @@ def cmd_analyze(args: argparse.Namespace) -> int:
         return _config_error(e)
     for p in rec.problems:
         _say(f"{args.file}: {p}")
+    for run in runs:
+        for w in run.warnings:
+            _say(f"warning: {w}")
     n_total = rec.data.shape[1]
     chunk = max(1, int(round(CHUNK_S * rec.fs)))
     progress = Progress(f"analyze {os.path.basename(str(args.file))}", n_total * len(runs)) \
