@@ -6,6 +6,7 @@ Every option carries help text with its unit."""
 from __future__ import annotations
 
 import argparse
+import importlib.metadata
 import sys
 import typing
 from collections.abc import Sequence
@@ -56,6 +57,14 @@ def _recording_options(p: argparse.ArgumentParser, format_flag: str) -> None:
                    help="channel count (raw files; text takes it from the columns)")
 
 
+def _version() -> str:
+    """The installed distribution's version (pyproject's), or a plain note without one."""
+    try:
+        return importlib.metadata.version("quaver")
+    except importlib.metadata.PackageNotFoundError:  # run from a tree that was never installed
+        return "(not installed)"
+
+
 class _Parser(argparse.ArgumentParser):
     """argparse with usage errors as one line (the reason and where to find help)."""
 
@@ -70,6 +79,9 @@ def build_parser() -> argparse.ArgumentParser:
         description="quaver: continuous machinery-vibration monitoring (spectra, bands, tones, "
         "alarms). A monitoring aid, not a machine-protection or safety system.",
     )
+    ap.add_argument("--version", action="version", version=f"quaver {_version()}",
+                    help="print the installed quaver's version (from the package metadata) "
+                    "and exit")
     sub = ap.add_subparsers(dest="command", metavar="COMMAND")
 
     p = sub.add_parser("demo", help="run the service on a simulated plant (no config needed)",
