@@ -26,6 +26,7 @@ from ..config import (
 from ..wire import STREAM_FORMATS
 
 DEFAULT_LISTEN = "127.0.0.1:8750"
+DEMO_FEED_LISTEN = "127.0.0.1:8751"  # quaver demo's framed TCP input (examples/demo-feed.toml)
 CHUNK_S = 1.0  # analyze pushes the recording through the engine this many seconds at a time
 FEED_FORMATS: tuple[str, ...] = STREAM_FORMATS
 FRAMED_PAYLOAD = "f32le"  # sample format inside framed frames

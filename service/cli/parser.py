@@ -28,6 +28,7 @@ from .analyze import cmd_analyze
 from .bench import cmd_bench
 from .common import (
     DEFAULT_LISTEN,
+    DEMO_FEED_LISTEN,
     FEED_FORMATS,
     TOKEN_ENV,
     CliError,
@@ -55,6 +56,10 @@ def _recording_options(p: argparse.ArgumentParser, format_flag: str) -> None:
                    "files; a WAV file's header gives it)")
     p.add_argument("--channels", type=_positive(int), default=None, metavar="N",
                    help="channel count (raw files; text takes it from the columns)")
+
+
+def _feed_listen_arg(text: str) -> str | None:
+    return None if text == "none" else _listen_arg(text)
 
 
 def _version() -> str:
@@ -97,6 +102,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--speed", type=_positive(float), default=None, metavar="X",
                    help="time-lapse factor of the simulated fault growth, x real time "
                    "(default 1; e.g. 10 reaches danger in about 20 s)")
+    p.add_argument("--feed-listen", type=_feed_listen_arg, default=DEMO_FEED_LISTEN,
+                   metavar="HOST:PORT",
+                   help="loopback address of the demo's framed TCP input (channel rig-h, "
+                   f"12800 Hz), for quaver feed (default {DEMO_FEED_LISTEN}; 'none' leaves "
+                   "it out)")
     p.set_defaults(func=cmd_demo)
 
     p = sub.add_parser("serve", help="run the service from a config file",

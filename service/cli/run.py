@@ -37,16 +37,19 @@ def _app() -> ModuleType:
 def cmd_demo(args: argparse.Namespace) -> int:
     app = _app()
     try:
-        cfg = app.demo_config(listen=args.listen, data_dir=args.data_dir, speed=args.speed)
+        cfg = app.demo_config(listen=args.listen, data_dir=args.data_dir, speed=args.speed,
+                              feed_listen=args.feed_listen)
         check_listen_allowed(cfg)
     except ConfigError as e:
         return _config_error(e)
-    host, _ = parse_listen(cfg.service.listen)
-    if host not in ("127.0.0.1", "localhost", "::1"):
-        # The demo's operator token is published in its config: never serve it off this box.
-        print(f"quaver demo: listens on loopback only (its token is public), not {host!r}",
-              file=sys.stderr)
-        return 2
+    for listen in (cfg.service.listen, args.feed_listen):
+        host, _ = parse_listen(listen) if listen else ("127.0.0.1", 0)
+        if host not in ("127.0.0.1", "localhost", "::1"):
+            # The demo's operator token is published in its config: never serve it off this
+            # box; nor take samples from beyond it.
+            print(f"quaver demo: listens on loopback only (its token is public), not {host!r}",
+                  file=sys.stderr)
+            return 2
     token: str = app.DEMO_OPERATOR_TOKEN
 
     def announce(s: str) -> None:
@@ -56,6 +59,11 @@ def cmd_demo(args: argparse.Namespace) -> int:
               flush=True)
         host_port = cfg.service.listen
         print(f"or open http://{host_port}/#token={token} to sign in at once", flush=True)
+        if args.feed_listen:
+            # the token lets feed ask the service which format the input reads
+            print(f"framed TCP input (channel rig-h, 12800 Hz): QUAVER_TOKEN={token} quaver "
+                  f"feed FILE.wav --to {args.feed_listen} --format framed --api "
+                  f"http://{host_port}", flush=True)
 
     return int(app.run_service(cfg, announce=announce))
 

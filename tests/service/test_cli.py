@@ -151,11 +151,18 @@ def test_demo_passes_its_options_to_the_service(
     calls = _fake_app(monkeypatch)
     argv = ["demo", "--listen", "127.0.0.1:9999", "--data-dir", "d", "--speed", "10"]
     assert cli.main(argv) == 0
-    assert calls["demo_config"] == [{"listen": "127.0.0.1:9999", "data_dir": "d", "speed": 10.0}]
+    assert calls["demo_config"] == [{"listen": "127.0.0.1:9999", "data_dir": "d", "speed": 10.0,
+                                     "feed_listen": "127.0.0.1:8751"}]
     out = capsys.readouterr().out
     assert "started" in out and "demo operator token" in out and "t-demo" in out
+    assert ("QUAVER_TOKEN=t-demo quaver feed FILE.wav --to 127.0.0.1:8751 --format framed "
+            "--api http://127.0.0.1:9999") in out
     assert cli.main(["demo", "--listen", "0.0.0.0:8750"]) == 2  # no tokens: refused
+    assert cli.main(["demo", "--feed-listen", "0.0.0.0:8751"]) == 2  # loopback only
     assert len(calls["run_service"]) == 1
+    assert cli.main(["demo", "--feed-listen", "none"]) == 0
+    assert calls["demo_config"][-1]["feed_listen"] is None
+    assert "quaver feed" not in capsys.readouterr().out
 
 
 # --- analyze ---------------------------------------------------------------------------------
