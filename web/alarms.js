@@ -64,9 +64,15 @@ export function eventRowHtml(ev, { showChannel = true } = {}) {
     <td>${name}</td>
     <td>${change}</td>
     <td>${ev.value === null || ev.value === undefined ? "" : `${fmtVal(ev.value)}${ev.level ? ` / ${fmtVal(ev.level)}` : ""} ${unitLabel(ev.unit || "")}`}</td>
-    <td><span class="msg">${ev.message || ""}${ev.acked_by ? ` — by ${ev.acked_by}` : ""}${ev.note ? `: “${ev.note}”` : ""}</span></td>
+    <td><span class="msg">${ev.message || ""}${byWhom(ev)}${ev.note ? `: “${ev.note}”` : ""}</span></td>
     <td>${raising ? html`<button class="small" data-evidence="${ev.id}">Evidence</button>` : ""}</td>
   </tr>`;
+}
+
+/** " — by NAME" after an event's message, unless the message already names them (an
+ *  acknowledgement's says "acknowledged by NAME"). */
+function byWhom(ev) {
+  return ev.acked_by && !(ev.message || "").includes(`by ${ev.acked_by}`) ? ` — by ${ev.acked_by}` : "";
 }
 
 /** A compact event entry for narrow side panels (the full log uses table rows). */
@@ -147,8 +153,8 @@ export function setupAck() {
 function ackError(err) {
   if (!(err instanceof ApiError)) return "The service is not reachable; nothing was acknowledged.";
   switch (err.status) {
-    case 401: return "Refused (401): a valid operator token is needed. Enter it below.";
-    case 403: return "Refused (403): this token may not acknowledge alarms (operator role needed). Enter an operator token below.";
+    case 401: return "Refused (401): a valid operator token is needed. Enter it in the Operator token field above.";
+    case 403: return "Refused (403): this token may not acknowledge alarms (operator role needed). Enter an operator token in the field above.";
     case 404: return `Refused (404): ${err.detail}`;
     case 409: return `Nothing to acknowledge (409): ${err.detail}`;
     default: return `Refused (${err.status}): ${err.detail}`;

@@ -14,6 +14,7 @@ import { BandBars, ThirdsChart, bandRows } from "./bars.js";
 import { TrendChart } from "./trend.js";
 import { alarmListHtml, eventItemHtml } from "./alarms.js";
 import { openFilter } from "./filterview.js";
+import { fetchLast, notLiveNote } from "./lastvalues.js";
 import { alarmsFor, app, bandsOf, channelState, fetchWatched, FRAME, levels, live, profileKey, store, tonesOf } from "./shared.js";
 
 const BEARING = /^(bpfo|bpfi|bsf|ftf)/i;
@@ -55,6 +56,7 @@ export function mount(root, id, { profile = "" } = {}) {
       <div class="big"><span class="overall" id="ch-overall" data-role="overall">—</span><span class="unit" id="ch-unit"></span></div>
     </div>
     <dl class="facts" id="ch-facts"></dl>
+    <p class="lastnote" id="ch-lastnote" role="status" hidden></p>
     <div class="toolbar profile-pick" id="profile-pick" hidden>
       <span class="lbl" id="profile-lbl" title="the channel's analysis profiles: each has its own Fmax, lines and bands; everything below follows the one chosen">Analysis profile</span>
       <span class="seg" role="group" aria-labelledby="profile-lbl" id="seg-profile"></span>
@@ -90,10 +92,10 @@ export function mount(root, id, { profile = "" } = {}) {
         <figure class="panel" id="wave-panel"></figure>
       </div>
       <div>
-        <section class="panel"><header>Bands <span class="hint" id="bands-unit"></span></header><canvas id="bars" class="plot-bars"></canvas>
+        <section class="panel" id="bands-panel"><header>Bands <span class="hint" id="bands-unit"></span></header><canvas id="bars" class="plot-bars"></canvas>
           <header id="thirds-head">Third-octave bands</header><canvas id="thirds" class="plot-thirds"></canvas></section>
         <section class="panel" id="ch-alarms-panel" hidden><header>Alarms on this channel</header><ul class="alarms" id="ch-alarms"></ul></section>
-        <section class="panel"><header>Tones and peaks <span class="hint" id="tones-unit"></span></header><table class="tones" id="tones"></table></section>
+        <section class="panel" id="tones-panel"><header>Tones and peaks <span class="hint" id="tones-unit"></span></header><table class="tones" id="tones"></table></section>
         <section class="panel" id="ch-events-panel"><header>Events <a class="hint" href="#/events?channel=${encodeURIComponent(id)}">full log</a></header>
           <ul class="evlist" id="ch-events"></ul></section>
       </div>
@@ -185,6 +187,7 @@ export function mount(root, id, { profile = "" } = {}) {
     renderHead();
     subscribe();
     loadMeta();
+    loadLast();
     loadTrend();
     const b = bandsOf(id, cur());
     if (b && mine(b)) onBands(b, true);
@@ -326,6 +329,29 @@ export function mount(root, id, { profile = "" } = {}) {
   }
 
   // --- data ---------------------------------------------------------------------------
+  /** Bands and tones from REST until the stream brings any: a channel whose data stopped
+   *  still shows its last values (marked not live by renderLive). */
+  async function loadLast() {
+    const asked = st.profile;
+    const { bands, tones } = await fetchLast(id, asked);
+    if (!alive || asked !== st.profile) return; // the view or the profile changed meanwhile
+    if (bands && !st.bands && mine(bands)) onBands(bands, true);
+    if (tones && !st.tones && mine(tones)) onTones(tones, true);
+    renderLive();
+  }
+
+  /** A channel that is not live: its state and since when above the values, which are
+   *  greyed (bands, tones, peaks and the spectrum keep their last values). */
+  function renderLive() {
+    const last = st.tones?.timestamp_ns ?? st.bands?.timestamp_ns ?? st.lastT;
+    const note = notLiveNote(chan(), last);
+    const el = $("#ch-lastnote");
+    el.hidden = !note;
+    setText(el, note);
+    for (const p of ["#bands-panel", "#tones-panel"]) $(p).classList.toggle("notlive", !!note);
+    return note;
+  }
+
   async function loadMeta() {
     const asked = st.profile;
     const again = () => setTimeout(() => asked === st.profile && loadMeta(), 1000);
@@ -482,8 +508,10 @@ export function mount(root, id, { profile = "" } = {}) {
     if (store.conn === "reconnecting") s = `no contact since ${fmtClock(store.downSince * 1e6)}`;
     else if (st.hold) s = `held at ${fmtClock(st.lastT)}`;
     else if (st.lastSpec && Date.now() - st.lastSpec > STALE_AFTER_MS) s = `no new spectrum for ${Math.round((Date.now() - st.lastSpec) / 1000)} s`;
+    const note = renderLive();
+    if (note && !st.hold) s = note;
     plot.setStale(s);
-    bars.setStale(store.conn === "reconnecting");
+    bars.setStale(store.conn === "reconnecting" || !!note);
   }
 
   function renderAlarms() {
@@ -626,6 +654,7 @@ export function mount(root, id, { profile = "" } = {}) {
     },
   };
   let tickN = 0;
+  let alive = true; // false once unmounted: late answers are dropped
   for (const [k, f] of Object.entries(on)) app.addEventListener(k, f);
   syncToolbar();
   subscribe();
@@ -637,6 +666,7 @@ export function mount(root, id, { profile = "" } = {}) {
   if (m0) onBands(m0);
   const t0 = tonesOf(id, cur());
   if (t0) onTones(t0);
+  loadLast();
   loadEvents().then(loadTrend);
   return {
     /** What is on screen, for people in devtools and for the tests (window.quaver.view). */
@@ -650,8 +680,11 @@ export function mount(root, id, { profile = "" } = {}) {
       bands: () => st.bands && { profile: st.bands.profile, names: (st.bands.bands || []).map((b) => b.name) },
       history: () => hist.probe(),
       bars: () => bars.rows.map((r) => ({ name: r.name, value: r.value, alert: r.alert, danger: r.danger, state: r.state, via: r.via })),
+      labels: () => plot.labels.map((l) => ({ ...l })), // every text drawn on the spectrum, with its box
+      notLive: () => $("#ch-lastnote").hidden ? "" : $("#ch-lastnote").textContent,
     },
     unmount() {
+      alive = false;
       for (const [k, f] of Object.entries(on)) app.removeEventListener(k, f);
       plot.surface.dispose();
       sg.surface.dispose();

@@ -16,8 +16,14 @@ import { signIn } from "./signin.js";
 import { chName, chTitle, machineLabel } from "./names.js";
 import * as rulesView from "./rules.js";
 import { setupConsole } from "./console.js";
+import * as notFound from "./notfound.js";
 
-app.addEventListener("channels", () => renderSide());
+app.addEventListener("channels", () => {
+  // a channel view opened before the list came, or of a channel that has gone: say so
+  const ch = channelRoute();
+  if (ch && (view?.probe?.notFound?.()?.kind === "channel") !== !knownChannel(ch.id)) route();
+  else renderSide();
+});
 app.addEventListener("alarms", () => {
   renderAlarmSummary();
   renderSide();
@@ -107,6 +113,16 @@ function currentChannel() {
   return channelRoute()?.id ?? null;
 }
 
+/** False only when the service's channel list is in and does not hold `id`. */
+function knownChannel(id) {
+  return !store.channels.length || store.channels.some((c) => c.id === id);
+}
+
+/** The plant view's hashes: none, `#`, `#/` (with or without a query). */
+function isPlant(hash) {
+  return /^(#\/?)?(\?.*)?$/.test(hash);
+}
+
 function route() {
   view?.unmount?.();
   const main = document.getElementById("main");
@@ -115,15 +131,26 @@ function route() {
   let which = "plant";
   if (ch) {
     which = "channel";
-    view = channel.mount(main, ch.id, { profile: ch.profile });
+    view = knownChannel(ch.id)
+      ? channel.mount(main, ch.id, { profile: ch.profile })
+      : notFound.mountChannel(main, ch.id, store.channels.map((c) => c.id));
   } else if (location.hash.startsWith("#/rules")) {
     which = "rules"; // the rules view (web/rules.js)
     view = rulesView.mount(main);
   } else if (location.hash.startsWith("#/events")) {
     which = "events";
     view = eventsView.mount(main);
-  } else {
+  } else if (isPlant(location.hash)) {
     view = overview.mount(main);
+  } else {
+    which = "";
+    let asked = location.hash;
+    try {
+      asked = decodeURIComponent(asked);
+    } catch {
+      /* a malformed escape: show it as it is */
+    }
+    view = notFound.mountRoute(main, asked);
   }
   for (const a of document.querySelectorAll("[data-nav]")) {
     if (a.dataset.nav === which) a.setAttribute("aria-current", "page");

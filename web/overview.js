@@ -214,6 +214,7 @@ export function mount(root) {
     evBusy = true;
     try {
       const j = await getJSON(`${API}/events?limit=12`);
+      if (disposed) return; // the view was left while the answer was on its way
       const evs = j.events || [];
       const tb = document.getElementById("ov-event-rows");
       if (tb) updateHTML(tb, evs.length ? evs.map((ev) => eventItemHtml(ev)) : html`<li class="empty">No events yet.</li>`);
@@ -223,7 +224,7 @@ export function mount(root) {
     } finally {
       evBusy = false;
     }
-    renderAlarms();
+    if (!disposed) renderAlarms();
   }
 
   const on = {

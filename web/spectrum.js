@@ -2,13 +2,18 @@
 // peaks, hover read-out, zoom/pan by mouse and keys. Gets data from its caller; no network.
 
 import { fmtHz, fmtHzAt, fmtVal, tickHz, unitLabel, convertFactor } from "./fmt.js";
-import { Scale, Surface, border, gridX, plotArea, gridY, labelsX, labelsY, linTicks, logTicks, niceCeil, pal, plateText } from "./plot.js";
+import { Scale, Surface, border, gridX, plotArea, gridY, labelsX, labelsY, linTicks, logTicks, niceCeil, pal } from "./plot.js";
+import { Labels } from "./labels.js";
 
 export const MARGIN = { l: 58, r: 14, t: 24, b: 30 };
 const LOG_DECADES = 4;
 const MAX_PEAK_LABELS = 6;
 const MAX_HARMONICS = 10;
 const WIDE_RATIO = 1.6; // a band with hi/lo above this (over ~2/3 octave) gets a bracket, not a fill
+// Which labels give way to which when they would overlap (Labels in labels.js): the state
+// of the plot first, then the values people read, then the markers' names.
+const PRIO = { stale: 100, legend: 95, unit: 90, peak: 80, note: 70, bearing: 60, harmonic: 50, band: 40, level: 30 };
+const DOWN = (step, n) => Array.from({ length: n }, (_, i) => [0, i * step]); // moves: down in steps
 
 /** Bins of one spectrum in [qa, qb] (inclusive) whose frequencies fall in [fa, fb). */
 function binRange(f0, df, n, fa, fb) {
@@ -76,6 +81,7 @@ export class SpectrumPlot {
     this.hover = null; // {x, y}
     this.selected = null; // bin index
     this.stale = "";
+    this.labels = []; // every label drawn, with its box: [{kind, text, value, x0, y0, w, h}]
     this.xs = new Scale(false);
     this.ys = new Scale(true);
     this.surface = new Surface(canvas, (ctx, w, h) => this._draw(ctx, w, h));
@@ -313,6 +319,8 @@ export class SpectrumPlot {
     plotArea(ctx, w, h, { L, R, T, B });
     ctx.font = `11px ${pal.font}`;
     const d = this.data;
+    this.labels = [];
+    const labels = (this._labels = new Labels());
     if (!d || !this.view || R - L < 20 || B - T < 20) {
       ctx.fillStyle = pal["ink-3"];
       ctx.textAlign = "center";
@@ -338,12 +346,12 @@ export class SpectrumPlot {
     if (this.show.bands) this._drawBands(ctx, T, B, yOf);
     this._drawGrid(ctx, L, R, T, B);
     if (this.show.harmonics) this._drawHarmonics(ctx, T, B);
-    this._occupied = [];
     if (this.show.bearing) this._drawBearing(ctx, T, B);
     if (this.overlay) {
+      // the other spectrum (evidence: now): wide, grey and dashed; this one thin, dark, solid
       const o = this.overlay;
       const oe = columnExtremes(o.values, o.f0, o.df, xs, W);
-      this._trace(ctx, oe, yOf, pal["trace-2"], o.dash ? 1.6 : 2.2, o.dash);
+      this._trace(ctx, oe, yOf, pal["trace-2"], o.dash ? 1.6 : 2.2, o.dash ?? [7, 4]);
     }
     this._trace(ctx, ext, yOf, this.stale ? pal["ink-3"] : pal.trace, 1.1);
     this._drawDots(ctx, d, yOf);
@@ -352,44 +360,49 @@ export class SpectrumPlot {
     this._drawAxes(ctx, L, R, T, B);
     if (this.show.peaks) this._drawPeaks(ctx, d, yOf, L, R, T);
     this._drawSelected(ctx, d, T, B);
-    this._drawHover(ctx, d, L, R, T, B, yOf);
-    if (this.overlay?.legend) this._drawLegend(ctx, R, T);
     if (this.show.bands && this._levelsHidden) {
-      ctx.font = `11px ${pal.font}`;
-      plateText(ctx, `band limits are in ${this._levelsHidden}: show that unit to see them`, L + 6, B - 10, { fg: pal["ink-2"], bg: pal.plot });
+      labels.add({ kind: "note", prio: PRIO.note, text: `band limits are in ${this._levelsHidden}: show that unit to see them`, x: L + 6, y: B - 10, size: 11, font: `11px ${pal.font}`, fg: pal["ink-2"], bg: pal.plot, moves: DOWN(-16, 3) });
     }
     if (this.stale) {
-      ctx.font = `600 12px ${pal.font}`;
-      plateText(ctx, this.stale, R - 6, T + 12, { align: "right", fg: pal.ink, bg: pal.panel });
+      labels.add({ kind: "stale", prio: PRIO.stale, text: this.stale, x: R - 6, y: T + 12, size: 12, font: `600 12px ${pal.font}`, align: "right", fg: pal.ink, bg: pal.panel });
     }
+    if (this.overlay) this._legend(ctx, labels, R, T);
+    this.labels = labels.draw(ctx);
+    this._drawHover(ctx, d, L, R, T, B, yOf);
   }
 
-  /** Which line is which, in words beside a sample of each line's style (top right). */
-  _drawLegend(ctx, R, T) {
+  /** Which line is which when two spectra are drawn: a key of line samples and words. */
+  _legend(ctx, labels, R, T) {
     const o = this.overlay;
-    const items = [[o.legend[0], pal.trace, 1.1, []], [o.legend[1], pal["trace-2"], 1.6, o.dash || []]];
-    ctx.font = `11px ${pal.font}`;
-    const w = 30 + Math.max(...items.map(([t]) => ctx.measureText(t).width));
-    const x = R - w - 18, y = T + 6;
-    ctx.fillStyle = pal.panel;
-    ctx.fillRect(x, y, w + 10, 36);
-    ctx.strokeStyle = pal.axis;
-    ctx.lineWidth = 1;
-    ctx.strokeRect(x + 0.5, y + 0.5, w + 9, 35);
-    items.forEach(([text, colour, width, dash], i) => {
-      const yy = y + 11 + i * 15;
-      ctx.strokeStyle = colour;
-      ctx.lineWidth = width;
-      ctx.setLineDash(dash);
-      ctx.beginPath();
-      ctx.moveTo(x + 6, yy);
-      ctx.lineTo(x + 28, yy);
-      ctx.stroke();
-      ctx.setLineDash([]);
-      ctx.fillStyle = pal.ink;
-      ctx.textAlign = "left";
-      ctx.textBaseline = "middle";
-      ctx.fillText(text, x + 34, yy);
+    const words = o.legend ?? [this.data.label || "this spectrum", o.label || "other"];
+    const rows = [[words[0], [], 1.1, pal.trace], [words[1], o.dash ?? [7, 4], o.dash ? 1.6 : 2.2, pal["trace-2"]]];
+    const font = `11px ${pal.font}`;
+    ctx.font = font;
+    const tw = Math.max(...rows.map(([t]) => ctx.measureText(t).width));
+    const w = tw + 44, h = rows.length * 15 + 6;
+    labels.add({
+      kind: "legend", prio: PRIO.legend, text: rows.map(([t]) => t).join(" / "), x: R - 6 - w, y: T + 26, w, h, pad: 0, base: "top", font,
+      moves: DOWN(18, 6),
+      paint: (c, box) => {
+        c.fillStyle = pal.panel;
+        c.fillRect(box.x0, box.y0, box.w, box.h);
+        c.font = font;
+        c.textAlign = "left";
+        c.textBaseline = "middle";
+        rows.forEach(([text, dash, width, colour], i) => {
+          const y = box.y0 + 10 + i * 15;
+          c.strokeStyle = colour;
+          c.lineWidth = width;
+          c.setLineDash(dash);
+          c.beginPath();
+          c.moveTo(box.x0 + 6, y);
+          c.lineTo(box.x0 + 34, y);
+          c.stroke();
+          c.setLineDash([]);
+          c.fillStyle = pal.ink;
+          c.fillText(text, box.x0 + 40, y);
+        });
+      },
     });
   }
 
@@ -460,9 +473,7 @@ export class SpectrumPlot {
     ctx.textAlign = "right";
     ctx.textBaseline = "top";
     ctx.fillText("Hz", L - 6, B + 5);
-    ctx.textAlign = "left";
-    ctx.textBaseline = "top";
-    ctx.fillText(unitLabel(d.unit, d.amplitude) + (this.logAmp ? "  (log)" : ""), 4, 5);
+    this._labels.add({ kind: "unit", prio: PRIO.unit, text: unitLabel(d.unit, d.amplitude) + (this.logAmp ? "  (log)" : ""), x: 4, y: 5, size: 11, font: `11px ${pal.font}`, base: "top", fg: pal["ink-3"] });
   }
 
   _drawBands(ctx, T, B, yOf) {
@@ -489,11 +500,11 @@ export class SpectrumPlot {
         ctx.fillRect(x0, T, 1.5, 12);
         ctx.fillRect(x1 - 1.5, T, 1.5, 12);
       }
-      ctx.fillStyle = b.state === "danger" ? pal["danger-ink"] : b.state === "alert" ? pal["alert-ink"] : pal["ink-3"];
       ctx.font = `10px ${pal.font}`;
-      ctx.textAlign = "left";
-      ctx.textBaseline = "top";
-      if (x1 - x0 > ctx.measureText(b.name).width + 4) ctx.fillText(b.name, x0 + 3, T + (wide ? 5 : 3));
+      if (x1 - x0 > ctx.measureText(b.name).width + 4) {
+        const fg = b.state === "danger" ? pal["danger-ink"] : b.state === "alert" ? pal["alert-ink"] : pal["ink-3"];
+        this._labels.add({ kind: "band", prio: PRIO.band, text: b.name, x: x0 + 3, y: T + (wide ? 5 : 3), size: 10, font: ctx.font, base: "top", fg, moves: DOWN(12, 4) });
+      }
       // Levels: a narrow band's RMS reaches its level when one line in it reaches the level,
       // so the level is drawn across the band in the spectrum's unit (same quantity only).
       const k = convertFactor(b.unit, d.unit, d.amplitude, "rms");
@@ -514,9 +525,7 @@ export class SpectrumPlot {
         ctx.setLineDash([]);
         ctx.font = `600 9px ${pal.font}`;
         if (x1 - x0 > ctx.measureText(tag).width + 4) {
-          ctx.fillStyle = pal.ink;
-          ctx.textBaseline = "bottom";
-          ctx.fillText(tag, x0 + 2, y - 1);
+          this._labels.add({ kind: "level", prio: PRIO.level, text: tag, value: lvl, x: x0 + 2, y: y - 1, size: 9, font: ctx.font, base: "bottom", fg: pal.ink, moves: [[0, 0], [0, 13], [10, 0], [10, 13]] });
         }
       }
     }
@@ -548,10 +557,7 @@ export class SpectrumPlot {
       if (x === null) continue;
       const left = k === 1 ? Infinity : x - this.xs.px((k - 1) * f1);
       if (k > 1 && left < 22 && k % 2) continue;
-      ctx.fillStyle = pal.mark;
-      ctx.textAlign = "center";
-      ctx.textBaseline = "bottom";
-      ctx.fillText(`${k}X`, x, T - 3);
+      this._labels.add({ kind: "harmonic", prio: PRIO.harmonic - k / 100, text: `${k}X`, value: k * f1, x, y: T - 3, size: 10, font: ctx.font, align: "center", base: "bottom", fg: pal.mark });
     }
   }
 
@@ -568,45 +574,35 @@ export class SpectrumPlot {
         const x = this._vmark(ctx, f, T + 14, B, [6, 3]);
         if (x === null) continue;
         const label = (k > 1 ? `${k}×` : "") + t.name.toUpperCase();
-        const r = plateText(ctx, label, x, T + 15 + 13 * row, { align: "center", base: "top", fg: pal.mark, bg: pal.plot, pad: 2 });
-        this._occupied.push({ x: r.x0 + r.w / 2, y: r.y0 + r.h / 2, w: r.w });
+        this._labels.add({ kind: "bearing", prio: PRIO.bearing - k / 100, text: label, value: f, x, y: T + 15 + 16 * row, size: 10, font: ctx.font, align: "center", base: "top", fg: pal.mark, bg: pal.plot, pad: 2, moves: DOWN(16, 4) });
       }
       row = (row + 1) % 3;
     }
   }
 
-  /** The largest local maxima in view, at least 44 px apart, labelled with f and value. */
+  /** The service's peaks in view (GET /channels/{id}/tones: interpolated frequency and
+   *  amplitude), largest first, at least 44 px apart: each marked on the trace and labelled
+   *  with the service's numbers, never with a value read off the drawing. Without the
+   *  service's peaks (none yet, or of another frame's lines) nothing is labelled. */
   _drawPeaks(ctx, d, yOf, L, R, T) {
     const v = d.values;
-    const [qa, qb] = binRange(d.f0, d.df, v.length, this.view.lo, this.view.hi);
-    const cand = [];
-    for (let q = Math.max(1, qa); q <= Math.min(v.length - 2, qb); q++) {
-      if (v[q] > v[q - 1] && v[q] >= v[q + 1] && v[q] > 0) cand.push(q);
-    }
-    cand.sort((a, b) => v[b] - v[a]);
+    const sp = this.serverPeaks;
+    const sameUnit = sp && sp.unit === d.unit && sp.amplitude === d.amplitude;
     const chosen = [];
     const floor = this.logAmp ? this.ys.lo * 3 : this.ys.hi * 0.04;
-    for (const q of cand) {
-      if (chosen.length >= MAX_PEAK_LABELS || v[q] < floor) break;
-      const x = this.xs.px(d.f0 + q * d.df);
-      if (chosen.every((c) => Math.abs(c.x - x) > 44)) chosen.push({ q, x });
+    const list = [...(sp?.peaks || [])].sort((a, b) => b.amplitude - a.amplitude);
+    for (const p of list) {
+      if (chosen.length >= MAX_PEAK_LABELS) break;
+      const f = p.frequency_hz;
+      if (!Number.isFinite(f) || f < this.view.lo || f > this.view.hi) continue;
+      const q = Math.round((f - d.f0) / d.df);
+      if (q < 0 || q >= v.length || !(v[q] >= floor)) continue;
+      const x = this.xs.px(f);
+      if (chosen.every((c) => Math.abs(c.x - x) > 44)) chosen.push({ q, x, p });
     }
     ctx.font = `10.5px ${pal.mono}`;
-    const placed = [...(this._occupied || [])];
-    for (const { q, x } of chosen) {
-      // Interpolated frequency: parabola through the log magnitudes (Gaussian fit).
-      const a = Math.log(v[q - 1] || 1e-30), b = Math.log(v[q]), c = Math.log(v[q + 1] || 1e-30);
-      const den = a - 2 * b + c;
-      const delta = den < 0 ? Math.max(-0.5, Math.min(0.5, (0.5 * (a - c)) / den)) : 0;
-      let f = d.f0 + (q + delta) * d.df;
-      let amp = v[q];
-      // Prefer the service's interpolated peak when it is this one (same line ±1).
-      const sp = this.serverPeaks;
-      const near = sp?.peaks?.find((p) => Math.abs(p.frequency_hz - (d.f0 + q * d.df)) <= 1.01 * d.df);
-      if (near) {
-        f = near.frequency_hz;
-        if (sp.unit === d.unit && sp.amplitude === d.amplitude) amp = near.amplitude;
-      }
+    for (const { q, x, p } of chosen) {
+      const f = p.frequency_hz;
       const y = yOf(v[q]);
       ctx.fillStyle = pal.ink;
       ctx.beginPath();
@@ -616,15 +612,19 @@ export class SpectrumPlot {
       ctx.closePath();
       ctx.fill();
       const ord = this.speedHz && f / this.speedHz < 40 ? ` ${(f / this.speedHz).toFixed(2)}X` : "";
-      const text = `${fmtHz(f, false)}${ord} · ${fmtVal(amp)}`;
+      // the amplitude only when the service's is in the unit drawn (else the frequency alone)
+      const text = `${fmtHz(f, false)}${ord}${sameUnit ? ` · ${fmtVal(p.amplitude)}` : ""}`;
       const tw = ctx.measureText(text).width + 6;
-      let ty = Math.max(T + 8, y - 18);
+      const ty = Math.max(T + 8, y - 18);
       const tx = Math.min(R - tw / 2 - 2, Math.max(L + tw / 2 + 2, x));
-      for (let tries = 0; tries < 6 && placed.some((p) => Math.abs(p.x - tx) < (p.w + tw) / 2 && Math.abs(p.y - ty) < 15); tries++) ty += 15;
-      placed.push({ x: tx, y: ty, w: tw });
-      plateText(ctx, text, tx, ty, { align: "center", fg: pal.ink, bg: pal.plot, pad: 3 });
+      this._labels.add({
+        kind: "peak", prio: PRIO.peak - chosen.indexOf(chosen.find((c) => c.q === q)) / 100, text,
+        value: { frequency_hz: f, amplitude: sameUnit ? p.amplitude : null },
+        x: tx, y: ty, size: 10.5, font: ctx.font, align: "center", fg: pal.ink, bg: pal.plot, pad: 3,
+        moves: [...DOWN(15, 6), ...DOWN(-15, 3).slice(1)],
+      });
     }
-    this.peaks = chosen.map(({ q }) => ({ q, f: d.f0 + q * d.df, v: v[q] }));
+    this.peaks = chosen.map(({ q, p }) => ({ q, f: p.frequency_hz, v: v[q] }));
   }
 
   _drawSelected(ctx, d, T, B) {
