@@ -16,7 +16,15 @@ import pytest
 from service.app import demo_config
 from service.cli.feed import feed_recording
 from tests.service.conftest import run_service
-from tests.web.conftest import DEMO_TOKEN, PageLog, Service, screenshot, wait_for
+from tests.web.conftest import (
+    OPERATOR_TOKEN,
+    VIEWER_TOKEN,
+    PageLog,
+    Service,
+    screenshot,
+    signed_in_as,
+    wait_for,
+)
 
 pytestmark = pytest.mark.browser
 
@@ -206,43 +214,48 @@ def test_spectrum_labels_never_overlap(demo: Service, page: tuple[Any, PageLog],
 
 
 def test_ack_names_who_once_and_the_dialog_points_at_its_field(
-    own_service: Any, page: tuple[Any, PageLog]
+    own_service: Any, browser: Any
 ) -> None:
-    svc: Service = own_service(speed=10.0)
+    svc: Service = own_service(speed=10.0, tokens=True)
     svc.wait_all_channels()
-    pg, log = page
+    pg = browser.new_page()
+    signed_in_as(pg, VIEWER_TOKEN)  # may read, may not acknowledge
+    errors: list[str] = []
+    pg.on("pageerror", lambda e: errors.append(str(e)))
+    try:
+        def alarm() -> dict[str, Any] | None:
+            return next((a for a in svc.get("alarms") if a["state"] in ("alert", "danger")
+                         and not a.get("acked")), None)
 
-    def alarm() -> dict[str, Any] | None:
-        return next((a for a in svc.get("alarms") if a["state"] in ("alert", "danger")
-                     and not a.get("acked")), None)
+        a = wait_for(alarm, "an alarm from the demo's growing fault", 60)
+        open_page(pg, svc.base_url + "/#/")
+        sel = f'#ov-alarm-list li[data-rule="{a["rule"]}"] [data-ack]'
+        pg.wait_for_selector(sel, timeout=15000)
+        pg.click(sel)
+        pg.wait_for_selector("#dlg-ack[open]")
+        pg.click("#ack-submit")
+        wait_for(lambda: "403" in pg.inner_text("#ack-msg"), "the refusal of a viewer token")
+        msg = pg.inner_text("#ack-msg")
+        assert "field above" in msg and "below" not in msg, msg
+        assert pg.is_visible("#ack-token")
+        field_y = pg.eval_on_selector("#ack-token", "e => e.getBoundingClientRect().top")
+        msg_y = pg.eval_on_selector("#ack-msg", "e => e.getBoundingClientRect().top")
+        assert field_y < msg_y  # the field is where the message says
+        pg.click("#dlg-ack button[value=cancel]")
 
-    a = wait_for(alarm, "an alarm from the demo's growing fault", 60)
-    open_page(pg, svc.base_url + "/#/")
-    sel = f'#ov-alarm-list li[data-rule="{a["rule"]}"] [data-ack]'
-    pg.wait_for_selector(sel, timeout=15000)
-    pg.click(sel)
-    pg.wait_for_selector("#dlg-ack[open]")
-    pg.click("#ack-forget")  # forget the session's token: the field is asked for
-    pg.fill("#ack-token", "not-a-token")
-    pg.click("#ack-submit")
-    wait_for(lambda: "401" in pg.inner_text("#ack-msg"), "the refusal of a wrong token")
-    msg = pg.inner_text("#ack-msg")
-    assert "field above" in msg and "below" not in msg, msg
-    field_y = pg.eval_on_selector("#ack-token", "e => e.getBoundingClientRect().top")
-    msg_y = pg.eval_on_selector("#ack-msg", "e => e.getBoundingClientRect().top")
-    assert field_y < msg_y  # the field is where the message says
-    pg.click("#dlg-ack button[value=cancel]")
-
-    r = svc.client.post(f"/api/v1/alarms/{a['rule']}/ack", json={"note": "seen"},
-                        headers={"Authorization": f"Bearer {DEMO_TOKEN}"})
-    assert r.status_code == 200, r.text
-    ack = next(e for e in svc.get("events", limit=50)["events"]
-               if e["kind"] == "ack" and e["rule"] == a["rule"])
-    assert ack["acked_by"] == "demo-operator" and "by demo-operator" in ack["message"]
-    pg.evaluate("location.hash = '#/events'")
-    row = f'tr[data-event="{ack["id"]}"] .msg'
-    pg.wait_for_selector(row, timeout=15000)
-    text = pg.inner_text(row)
-    assert text.count("demo-operator") == 1, text
-    assert text == f"{ack['message']}: “seen”", text
-    assert not log.errors, log.errors
+        r = svc.client.post(f"/api/v1/alarms/{a['rule']}/ack", json={"note": "seen"},
+                            headers={"Authorization": f"Bearer {OPERATOR_TOKEN}"})
+        assert r.status_code == 200, r.text
+        ack = next(e for e in svc.get("events", limit=50)["events"]
+                   if e["kind"] == "ack" and e["rule"] == a["rule"])
+        who = "web-test-operator"
+        assert ack["acked_by"] == who and f"by {who}" in ack["message"], ack
+        pg.evaluate("location.hash = '#/events'")
+        row = f'tr[data-event="{ack["id"]}"] .msg'
+        pg.wait_for_selector(row, timeout=15000)
+        text = pg.inner_text(row)
+        assert text.count(who) == 1, text
+        assert text == f"{ack['message']}: “seen”", text
+        assert not errors, errors
+    finally:
+        pg.close()
