@@ -37,6 +37,11 @@ export function setupEvidence() {
   });
 }
 
+/** The labels drawn on the evidence spectrum (its key among them), for people and tests. */
+export function evidenceLabels() {
+  return plot?.labels ?? [];
+}
+
 export async function openEvidence(eventId) {
   const dlg = document.getElementById("dlg-evidence");
   const what = document.getElementById("ev-what");
@@ -63,7 +68,7 @@ export async function openEvidence(eventId) {
   setHTML(what, html`<b title="${e.channel}">${chTitle(e.channel)}</b> · ${e.rule} · ${e.from_state} → <b>${e.to_state}</b> at ${fmtDateTime(e.t_ns)} · value ${fmtVal(e.value)} / level ${fmtVal(e.level)} ${unitLabel(e.unit || "")}${e.message ? html`<br><span class="hint">${e.message}</span>` : ""}`);
   const s = ev.spectrum;
   if (s?.values) {
-    plot.setData({ f0: s.f0_hz, df: s.df_hz, values: Float32Array.from(s.values, (v) => v ?? NaN), unit: s.unit, amplitude: s.amplitude, t_ns: s.t_ns ?? e.t_ns });
+    plot.setData({ f0: s.f0_hz, df: s.df_hz, values: Float32Array.from(s.values, (v) => v ?? NaN), unit: s.unit, amplitude: s.amplitude, t_ns: s.t_ns ?? e.t_ns, label: "then (at the event)" });
     plot.resetView(false);
     const ch = store.channels.find((c) => c.id === e.channel);
     plot.setMarkers({ speedHz: (ch?.speed_rpm || 0) / 60, bearing: [] });

@@ -256,6 +256,22 @@ def test_ack_names_who_once_and_the_dialog_points_at_its_field(
         text = pg.inner_text(row)
         assert text.count(who) == 1, text
         assert text == f"{ack['message']}: “seen”", text
+
+        # the evidence of the raising event: then and now told apart by line and words
+        raised = wait_for(lambda: next((e for e in svc.get("events", limit=200)["events"]
+                                        if e.get("has_evidence")), None), "a kept spectrum")
+        button = f'tr[data-event="{raised["id"]}"] [data-evidence]'
+        pg.wait_for_selector(button, timeout=15000)
+        pg.click(button)
+        pg.wait_for_selector("#dlg-evidence[open]")
+        labels_js = "async () => (await import('/static/evidence.js')).evidenceLabels()"
+        key = wait_for(lambda: [lb for lb in pg.evaluate(labels_js) if lb["kind"] == "legend"],
+                       "the key of the evidence spectrum")
+        assert key[0]["text"] == "then (at the event) / now"
+        caption = pg.inner_text("#dlg-evidence figcaption")
+        assert "solid" in caption and "dashed" in caption, caption
+        assert_no_overlap(pg.evaluate(labels_js))
+        screenshot(pg, "evidence-then-now")
         assert not errors, errors
     finally:
         pg.close()
