@@ -4,16 +4,12 @@
 import { fmtHz, fmtHzAt, fmtVal, tickHz, unitLabel, convertFactor } from "./fmt.js";
 import { Scale, Surface, border, gridX, plotArea, gridY, labelsX, labelsY, linTicks, logTicks, niceCeil, pal } from "./plot.js";
 import { Labels } from "./labels.js";
+import { DOWN, PRIO, addLegend, addPeakLabels } from "./spectrumlabels.js";
 
 export const MARGIN = { l: 58, r: 14, t: 24, b: 30 };
 const LOG_DECADES = 4;
-const MAX_PEAK_LABELS = 6;
 const MAX_HARMONICS = 10;
 const WIDE_RATIO = 1.6; // a band with hi/lo above this (over ~2/3 octave) gets a bracket, not a fill
-// Which labels give way to which when they would overlap (Labels in labels.js): the state
-// of the plot first, then the values people read, then the markers' names.
-const PRIO = { stale: 100, legend: 95, unit: 90, peak: 80, note: 70, bearing: 60, harmonic: 50, band: 40, level: 30 };
-const DOWN = (step, n) => Array.from({ length: n }, (_, i) => [0, i * step]); // moves: down in steps
 
 /** Bins of one spectrum in [qa, qb] (inclusive) whose frequencies fall in [fa, fb). */
 function binRange(f0, df, n, fa, fb) {
@@ -358,7 +354,7 @@ export class SpectrumPlot {
     ctx.restore();
 
     this._drawAxes(ctx, L, R, T, B);
-    if (this.show.peaks) this._drawPeaks(ctx, d, yOf, L, R, T);
+    if (this.show.peaks) this.peaks = addPeakLabels(this, ctx, d, yOf, { L, R, T });
     this._drawSelected(ctx, d, T, B);
     if (this.show.bands && this._levelsHidden) {
       labels.add({ kind: "note", prio: PRIO.note, text: `band limits are in ${this._levelsHidden}: show that unit to see them`, x: L + 6, y: B - 10, size: 11, font: `11px ${pal.font}`, fg: pal["ink-2"], bg: pal.plot, moves: DOWN(-16, 3) });
@@ -366,44 +362,9 @@ export class SpectrumPlot {
     if (this.stale) {
       labels.add({ kind: "stale", prio: PRIO.stale, text: this.stale, x: R - 6, y: T + 12, size: 12, font: `600 12px ${pal.font}`, align: "right", fg: pal.ink, bg: pal.panel });
     }
-    if (this.overlay) this._legend(ctx, labels, R, T);
+    if (this.overlay) addLegend(this, ctx, { R, T });
     this.labels = labels.draw(ctx);
     this._drawHover(ctx, d, L, R, T, B, yOf);
-  }
-
-  /** Which line is which when two spectra are drawn: a key of line samples and words. */
-  _legend(ctx, labels, R, T) {
-    const o = this.overlay;
-    const words = o.legend ?? [this.data.label || "this spectrum", o.label || "other"];
-    const rows = [[words[0], [], 1.1, pal.trace], [words[1], o.dash ?? [7, 4], o.dash ? 1.6 : 2.2, pal["trace-2"]]];
-    const font = `11px ${pal.font}`;
-    ctx.font = font;
-    const tw = Math.max(...rows.map(([t]) => ctx.measureText(t).width));
-    const w = tw + 44, h = rows.length * 15 + 6;
-    labels.add({
-      kind: "legend", prio: PRIO.legend, text: rows.map(([t]) => t).join(" / "), x: R - 6 - w, y: T + 26, w, h, pad: 0, base: "top", font,
-      moves: DOWN(18, 6),
-      paint: (c, box) => {
-        c.fillStyle = pal.panel;
-        c.fillRect(box.x0, box.y0, box.w, box.h);
-        c.font = font;
-        c.textAlign = "left";
-        c.textBaseline = "middle";
-        rows.forEach(([text, dash, width, colour], i) => {
-          const y = box.y0 + 10 + i * 15;
-          c.strokeStyle = colour;
-          c.lineWidth = width;
-          c.setLineDash(dash);
-          c.beginPath();
-          c.moveTo(box.x0 + 6, y);
-          c.lineTo(box.x0 + 34, y);
-          c.stroke();
-          c.setLineDash([]);
-          c.fillStyle = pal.ink;
-          c.fillText(text, box.x0 + 40, y);
-        });
-      },
-    });
   }
 
   _trace(ctx, e, yOf, color, width, dash) {
@@ -578,53 +539,6 @@ export class SpectrumPlot {
       }
       row = (row + 1) % 3;
     }
-  }
-
-  /** The service's peaks in view (GET /channels/{id}/tones: interpolated frequency and
-   *  amplitude), largest first, at least 44 px apart: each marked on the trace and labelled
-   *  with the service's numbers, never with a value read off the drawing. Without the
-   *  service's peaks (none yet, or of another frame's lines) nothing is labelled. */
-  _drawPeaks(ctx, d, yOf, L, R, T) {
-    const v = d.values;
-    const sp = this.serverPeaks;
-    const sameUnit = sp && sp.unit === d.unit && sp.amplitude === d.amplitude;
-    const chosen = [];
-    const floor = this.logAmp ? this.ys.lo * 3 : this.ys.hi * 0.04;
-    const list = [...(sp?.peaks || [])].sort((a, b) => b.amplitude - a.amplitude);
-    for (const p of list) {
-      if (chosen.length >= MAX_PEAK_LABELS) break;
-      const f = p.frequency_hz;
-      if (!Number.isFinite(f) || f < this.view.lo || f > this.view.hi) continue;
-      const q = Math.round((f - d.f0) / d.df);
-      if (q < 0 || q >= v.length || !(v[q] >= floor)) continue;
-      const x = this.xs.px(f);
-      if (chosen.every((c) => Math.abs(c.x - x) > 44)) chosen.push({ q, x, p });
-    }
-    ctx.font = `10.5px ${pal.mono}`;
-    for (const { q, x, p } of chosen) {
-      const f = p.frequency_hz;
-      const y = yOf(v[q]);
-      ctx.fillStyle = pal.ink;
-      ctx.beginPath();
-      ctx.moveTo(x, y - 3);
-      ctx.lineTo(x - 4, y - 10);
-      ctx.lineTo(x + 4, y - 10);
-      ctx.closePath();
-      ctx.fill();
-      const ord = this.speedHz && f / this.speedHz < 40 ? ` ${(f / this.speedHz).toFixed(2)}X` : "";
-      // the amplitude only when the service's is in the unit drawn (else the frequency alone)
-      const text = `${fmtHz(f, false)}${ord}${sameUnit ? ` · ${fmtVal(p.amplitude)}` : ""}`;
-      const tw = ctx.measureText(text).width + 6;
-      const ty = Math.max(T + 8, y - 18);
-      const tx = Math.min(R - tw / 2 - 2, Math.max(L + tw / 2 + 2, x));
-      this._labels.add({
-        kind: "peak", prio: PRIO.peak - chosen.indexOf(chosen.find((c) => c.q === q)) / 100, text,
-        value: { frequency_hz: f, amplitude: sameUnit ? p.amplitude : null },
-        x: tx, y: ty, size: 10.5, font: ctx.font, align: "center", fg: pal.ink, bg: pal.plot, pad: 3,
-        moves: [...DOWN(15, 6), ...DOWN(-15, 3).slice(1)],
-      });
-    }
-    this.peaks = chosen.map(({ q, p }) => ({ q, f: p.frequency_hz, v: v[q] }));
   }
 
   _drawSelected(ctx, d, T, B) {
