@@ -421,11 +421,11 @@ export function mount(root, id, { profile = "" } = {}) {
   function onTones(m, force = false) {
     if (!mine(m)) return;
     st.tones = m;
-    plot.setServerPeaks(m);
     plot.setMarkers({ speedHz: (chan()?.speed_rpm || 0) / 60, bearing: (m.tones || []).filter((t) => BEARING.test(t.name)).map((t) => ({ name: t.name, f: t.frequency_hz })) });
     const now = performance.now();
     if (!force && now - tonesAt < TEXT_PERIOD_MS) return;
     tonesAt = now;
+    plot.setServerPeaks(m); // with the table: a peak's label and its row show the same numbers
     const sp = (chan()?.speed_rpm || 0) / 60;
     const ord = (f) => (sp > 0 && Number.isFinite(f) && f / sp < 100 ? `${(f / sp).toFixed(2)}X` : "");
     const tones = m.tones || [];

@@ -115,6 +115,7 @@ export class SpectrumPlot {
   /** The service's interpolated peaks {peaks: [{frequency_hz, amplitude}], unit, amplitude}. */
   setServerPeaks(m) {
     this.serverPeaks = m;
+    this.surface.invalidate();
   }
   setStale(text) {
     if (text === this.stale) return;

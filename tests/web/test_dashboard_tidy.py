@@ -204,6 +204,18 @@ def test_spectrum_labels_never_overlap(demo: Service, page: tuple[Any, PageLog],
     labels = wait_for(lambda: (lambda ls: ls if kinds <= {lb["kind"] for lb in ls} else None)(
         probe(pg, "labels") or []), f"{sorted(kinds)} labels on the spectrum")
     assert_no_overlap(labels)
+
+    def same_as_table() -> bool:
+        # a peak label and its row in the tones table show the same service numbers
+        got = pg.evaluate("""() => [window.quaver.view.labels().filter(l => l.kind === 'peak')
+            .map(l => l.text.split(' ')[0] + ' ' + l.text.split(' · ')[1]),
+            [...document.querySelectorAll('#tones tr:not(.sep)')].slice(1)
+            .filter(r => r.cells[0].textContent === '')
+            .map(r => r.cells[1].textContent.replace(' kHz', 'k').replace(' Hz', '') + ' '
+                      + r.cells[3].textContent)]""")
+        return bool(got[0]) and set(got[0]) <= set(got[1])
+
+    wait_for(same_as_table, "peak labels equal to their rows in the tones table")
     for scale in ("log", "lin"):  # other layouts of the same labels
         pg.click(f"[data-xa={scale}]")
         pg.wait_for_timeout(400)
