@@ -186,9 +186,9 @@ def test_stopped_channel_shows_its_last_values_with_its_state(
 # --- labels on the live spectrum -------------------------------------------------------------
 
 
-# On the narrow profile (Fmax 500 Hz) the orders 1X…10X, BPFO and its multiples, band names,
-# alert/danger tags and peaks all compete for the top of the plot.
-CROWDED = {"peak", "harmonic", "bearing", "band", "level", "unit"}
+# On the narrow profile (Fmax 500 Hz) the orders 1X…10X, BPFO and its multiples, band names
+# and peaks all compete for the top of the plot.
+CROWDED = {"peak", "harmonic", "bearing", "band", "unit"}
 
 
 @pytest.mark.parametrize(("route", "kinds"), [
@@ -293,3 +293,28 @@ def test_ack_names_who_once_and_the_dialog_points_at_its_field(
         assert not errors, errors
     finally:
         pg.close()
+
+
+def test_label_layout_gives_way_by_priority(demo: Service, page: tuple[Any, PageLog]) -> None:
+    """labels.js on its own: three labels asking for the same place; the most important keeps
+    it, the next moves to its first free place, the one with no free place is left out."""
+    pg, log = page
+    open_page(pg, demo.base_url + "/#/")
+    placed = pg.evaluate("""async () => {
+        const { Labels } = await import('/static/labels.js');
+        const ctx = document.createElement('canvas').getContext('2d');
+        const L = new Labels();
+        const at = { x: 100, y: 50, size: 10, font: '10px sans-serif', fg: '#000', w: 40 };
+        L.add({ ...at, text: 'low', kind: 'band', prio: 1 });
+        L.add({ ...at, text: 'mid', kind: 'harmonic', prio: 5, moves: [[0, 0], [0, 20]] });
+        L.add({ ...at, text: 'top', kind: 'peak', prio: 9 });
+        return L.draw(ctx);
+    }""")
+    # a plain label's box: the text's width plus 1 px each side, 10 px font + 3 px tall,
+    # its middle at y (labels.js boxOf)
+    assert [(p["text"], p["x0"], p["y0"], p["w"], p["h"]) for p in placed] == [
+        ("top", 99, 43.5, 42, 13),
+        ("mid", 99, 63.5, 42, 13),
+    ]
+    assert_no_overlap(placed)
+    assert not log.errors, log.errors
