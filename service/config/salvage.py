@@ -124,9 +124,9 @@ def _drop(raw: dict[str, Any], e: ValidationError, d: Doubts) -> dict[str, Any]:
             d.profiles.add(second)
             d.tables.add("profiles")
             out[top] = {k: v for k, v in out[top].items() if k != second}
-        elif top in ("service", "analysis") and isinstance(second, str) and isinstance(
+        elif top not in LIST_TABLES and isinstance(second, str) and isinstance(
             out.get(top), dict
-        ):
+        ):  # a field of [service], [analysis], [history], …: that field's default stands in
             d.tables.add(top)
             d.fields.add(f"{top}.{second}")
             out[top] = {k: v for k, v in out[top].items() if k != second}

@@ -184,3 +184,15 @@ def test_a_failed_band_silences_only_the_alarms_on_it() -> None:
     assert e.value.problems[1:] == ["alarms[1].band: 'b1' is not a band of channel 'c2' "
                                     "(bands: none)"]
     assert e.value.problems[0].startswith("bands[0].hi_hz: ")
+
+
+def test_a_bad_setting_of_a_table_keeps_the_rest_checked() -> None:
+    d = _good()
+    d["history"] = {"interval_s": "often"}  # one field of [history]: its default stands in
+    d["alarms"] = [{"channel": "c9", "overall": True, "alert": 1.0, "danger": 2.0}]
+    with pytest.raises(ConfigError) as e:
+        parse_config(d, env={})
+    assert len(e.value.problems) == 2, e.value.problems
+    assert e.value.problems[0].startswith("history.interval_s: ")
+    assert e.value.problems[1] == ("alarms[0].channel: 'c9' is not a channel of any source "
+                                   "(channels: 'c1', 'c2')")
