@@ -218,7 +218,9 @@ def _config_run(args: argparse.Namespace, cfg: Config, row: int, cid: str,
             item = b.model_dump(exclude_none=True)
             if b.hi_hz is not None and b.hi_hz > s.fmax_hz:
                 item["hi_hz"] = s.fmax_hz
-            if keep(b, False, b.lo_hz):
+            # none of the set below Fmax: beyond it (a lower edge at Fmax holds no band)
+            lo = b.lo_hz or 0.0
+            if keep(b, False, None if lo < s.fmax_hz else max(lo, s.fmax_hz * (1 + 1e-8))):
                 bands.append(item)
             continue
         is_order = b.hi_order is not None
