@@ -117,3 +117,19 @@ def test_within_fmax_nothing_is_warned_and_the_tone_is_measured(
     tones = {t["name"]: t for t in ch["tones"]}
     assert tones["mesh"]["amplitude"] == pytest.approx(0.1 / math.sqrt(2), rel=1e-2)
     assert ch["bands"][0]["value"] == pytest.approx(0.1 / math.sqrt(2), rel=2e-2)
+
+
+def test_an_octave_set_at_or_above_the_lowered_fmax_is_warned_of(
+    files: tuple[Path, Path], capsys: pytest.CaptureFixture[str]
+) -> None:
+    wav, cfg = files
+    cfg.write_text(CONFIG + '\n[[bands]]\nchannel = "c1"\nname = "hi3"\noctave = 3\n'
+                   "lo_hz = 500\nhi_hz = 2000\n")
+    assert cli.main(["analyze", str(wav), "-c", str(cfg), "--fmax", "500", "--unit", "g",
+                     "--json"]) == 0
+    out, err = capsys.readouterr()
+    assert ("warning: band 'hi3' at 500-2000 Hz lies beyond Fmax 500 Hz (channel 'c1', "
+            "profile 'default'): not measured; raise --fmax to include it") in err
+    (ch,) = json.loads(out)["channels"]
+    assert {"name": "hi3", "lo_hz": 500, "hi_hz": 2000, "value": None,
+            "reason": "beyond Fmax 500 Hz"} in ch["bands"]
