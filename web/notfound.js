@@ -1,7 +1,9 @@
 // Views for what does not exist: a route the dashboard has no view for, a channel the
-// service does not have. Each names what was asked for and links back; reads no data.
+// service does not have. Each names what was asked for and links back; reads nothing but
+// the channels' display names.
 
 import { html, setHTML } from "./dom.js";
+import { chTitle } from "./names.js";
 
 /** The view of a route (`#/settings`) that is not one of the dashboard's. */
 export function mountRoute(root, hash) {
@@ -17,7 +19,7 @@ export function mountRoute(root, hash) {
 export function mountChannel(root, id, known) {
   setHTML(root, html`<section class="notfound" data-notfound="channel" role="alert">
     <h1>No channel '${id}'</h1>
-    <p>The service has no channel of that id${known.length ? html` (it has ${known.length}: ${known.map((c, i) => html`${i ? ", " : ""}<a href="#/channel/${encodeURIComponent(c)}">${c}</a>`)})` : ""}.</p>
+    <p>The service has no channel of that id${known.length ? html` (it has ${known.length}: ${known.map((c, i) => html`${i ? ", " : ""}<a href="#/channel/${encodeURIComponent(c)}" title="${chTitle(c)}">${c}</a>`)})` : ""}.</p>
     <p><a href="#/">Back to the plant overview</a></p>
   </section>`);
   return { unmount() {}, probe: { notFound: () => ({ kind: "channel", what: id }) } };
