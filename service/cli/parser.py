@@ -58,8 +58,8 @@ def _recording_options(p: argparse.ArgumentParser, format_flag: str) -> None:
                    help="channel count (raw files; text takes it from the columns)")
 
 
-def _feed_listen_arg(text: str) -> str | None:
-    return None if text == "none" else _listen_arg(text)
+def _feed_listen_arg(text: str) -> str:
+    return text if text == "none" else _listen_arg(text)
 
 
 def _version() -> str:
@@ -102,11 +102,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--speed", type=_positive(float), default=None, metavar="X",
                    help="time-lapse factor of the simulated fault growth, x real time "
                    "(default 1; e.g. 10 reaches danger in about 20 s)")
-    p.add_argument("--feed-listen", type=_feed_listen_arg, default=DEMO_FEED_LISTEN,
+    p.add_argument("--feed-listen", type=_feed_listen_arg, default=None,
                    metavar="HOST:PORT",
                    help="loopback address of the demo's framed TCP input (channel rig-h, "
-                   f"12800 Hz), for quaver feed (default {DEMO_FEED_LISTEN}; 'none' leaves "
-                   "it out)")
+                   f"12800 Hz), for quaver feed (default {DEMO_FEED_LISTEN}, left out with a "
+                   "note when that port is taken; 'none' leaves it out)")
     p.set_defaults(func=cmd_demo)
 
     p = sub.add_parser("serve", help="run the service from a config file",

@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import socket
 import sys
 from types import ModuleType
 
@@ -26,7 +27,7 @@ from ..config import (
 )
 from ..lookups import effective_analysis
 from ..profiles import plan_profiles, plan_warnings
-from .common import _config_error, _load
+from .common import DEMO_FEED_LISTEN, _config_error, _load
 
 
 def _app() -> ModuleType:
@@ -34,15 +35,42 @@ def _app() -> ModuleType:
     return importlib.import_module("service.app")
 
 
+def _port_free(listen: str) -> bool:
+    """Can a TCP listener bind ``host:port`` now? (A hint only: it may be taken meanwhile.)"""
+    host, port = parse_listen(listen)
+    family = socket.AF_INET6 if ":" in host else socket.AF_INET
+    with socket.socket(family, socket.SOCK_STREAM) as s:
+        s.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)  # as the TCP source binds
+        try:
+            s.bind((host, port))
+        except OSError:
+            return False
+    return True
+
+
+def _demo_feed_listen(asked: str | None) -> str | None:
+    """The demo input's address: as asked ('none': none); by default DEMO_FEED_LISTEN, or
+    none with a note when that port is taken (the demo must start all the same)."""
+    if asked is not None:
+        return None if asked == "none" else asked
+    if _port_free(DEMO_FEED_LISTEN):
+        return DEMO_FEED_LISTEN
+    print(f"quaver demo: {DEMO_FEED_LISTEN} is taken; starting without the TCP input for "
+          "quaver feed (choose another address with --feed-listen HOST:PORT)",
+          file=sys.stderr, flush=True)
+    return None
+
+
 def cmd_demo(args: argparse.Namespace) -> int:
     app = _app()
+    feed_listen = _demo_feed_listen(args.feed_listen)
     try:
         cfg = app.demo_config(listen=args.listen, data_dir=args.data_dir, speed=args.speed,
-                              feed_listen=args.feed_listen)
+                              feed_listen=feed_listen)
         check_listen_allowed(cfg)
     except ConfigError as e:
         return _config_error(e)
-    for listen in (cfg.service.listen, args.feed_listen):
+    for listen in (cfg.service.listen, feed_listen):
         host, _ = parse_listen(listen) if listen else ("127.0.0.1", 0)
         if host not in ("127.0.0.1", "localhost", "::1"):
             # The demo's operator token is published in its config: never serve it off this
@@ -59,10 +87,10 @@ def cmd_demo(args: argparse.Namespace) -> int:
               flush=True)
         host_port = cfg.service.listen
         print(f"or open http://{host_port}/#token={token} to sign in at once", flush=True)
-        if args.feed_listen:
+        if feed_listen:
             # the token lets feed ask the service which format the input reads
             print(f"framed TCP input (channel rig-h, 12800 Hz): QUAVER_TOKEN={token} quaver "
-                  f"feed FILE.wav --to {args.feed_listen} --format framed --api "
+                  f"feed FILE.wav --to {feed_listen} --format framed --api "
                   f"http://{host_port}", flush=True)
 
     return int(app.run_service(cfg, announce=announce))

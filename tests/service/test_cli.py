@@ -149,6 +149,10 @@ def test_demo_passes_its_options_to_the_service(
     capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
 ) -> None:
     calls = _fake_app(monkeypatch)
+    from service.cli import run as run_cmd
+
+    free = {"127.0.0.1:8751": True}  # what the demo finds of its input's port
+    monkeypatch.setattr(run_cmd, "_port_free", lambda listen: free[listen])
     argv = ["demo", "--listen", "127.0.0.1:9999", "--data-dir", "d", "--speed", "10"]
     assert cli.main(argv) == 0
     assert calls["demo_config"] == [{"listen": "127.0.0.1:9999", "data_dir": "d", "speed": 10.0,
@@ -163,6 +167,27 @@ def test_demo_passes_its_options_to_the_service(
     assert cli.main(["demo", "--feed-listen", "none"]) == 0
     assert calls["demo_config"][-1]["feed_listen"] is None
     assert "quaver feed" not in capsys.readouterr().out
+    # the default port taken: the demo starts without its input and says so
+    free["127.0.0.1:8751"] = False
+    assert cli.main(["demo"]) == 0
+    assert calls["demo_config"][-1]["feed_listen"] is None
+    got = capsys.readouterr()
+    assert "127.0.0.1:8751 is taken; starting without the TCP input" in got.err
+    assert "quaver feed" not in got.out
+    # an address asked for is used as it is (a taken one fails the start, as any source)
+    assert cli.main(["demo", "--feed-listen", "127.0.0.1:8761"]) == 0
+    assert calls["demo_config"][-1]["feed_listen"] == "127.0.0.1:8761"
+
+
+def test_port_free_sees_a_listener() -> None:
+    from service.cli.run import _port_free
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        s.listen()
+        taken = f"127.0.0.1:{s.getsockname()[1]}"
+        assert not _port_free(taken)
+    assert _port_free(taken)  # closed: free again
 
 
 # --- analyze ---------------------------------------------------------------------------------
