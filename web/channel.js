@@ -8,6 +8,7 @@ import { watchName } from "./names.js";
 import { AMP_CHOICES, UNIT_CHOICES, ampLabel, fmtClock, fmtHz, fmtHzAt, fmtHzExact, fmtVal, unitLabel } from "./fmt.js";
 import { badge, html, setHTML, updateHTML } from "./dom.js";
 import { SpectrumPlot } from "./spectrum.js";
+import { LISTED_PEAKS } from "./spectrumlabels.js";
 import { Spectrogram } from "./spectrogram.js";
 import { mountHistory } from "./history.js";
 import { BandBars, ThirdsChart, bandRows } from "./bars.js";
@@ -429,7 +430,7 @@ export function mount(root, id, { profile = "" } = {}) {
     const sp = (chan()?.speed_rpm || 0) / 60;
     const ord = (f) => (sp > 0 && Number.isFinite(f) && f / sp < 100 ? `${(f / sp).toFixed(2)}X` : "");
     const tones = m.tones || [];
-    const peaks = (m.peaks || []).slice(0, 6);
+    const peaks = (m.peaks || []).slice(0, LISTED_PEAKS);
     const shape = tones.map((t) => t.name).join("|") + `/${peaks.length}`;
     const table = $("#tones");
     if (shape !== toneKey) {

@@ -5,7 +5,9 @@
 import { fmtHz, fmtVal } from "./fmt.js";
 import { pal } from "./plot.js";
 
-const MAX_PEAK_LABELS = 6;
+/** How many of the service's peaks the tones table lists; only those are labelled, so every
+ *  peak label has its row in the table. */
+export const LISTED_PEAKS = 6;
 // Which labels give way to which when they would overlap: the state of the plot first,
 // then the values people read, then the markers' names.
 export const PRIO = { stale: 100, legend: 95, unit: 90, peak: 80, note: 70, bearing: 60, harmonic: 50, band: 40, level: 30 };
@@ -26,8 +28,7 @@ export function addPeakLabels(plot, ctx, d, yOf, { L, R, T }) {
   const sameUnit = sp && sp.unit === d.unit && sp.amplitude === d.amplitude;
   const floor = plot.logAmp ? plot.ys.lo * 3 : plot.ys.hi * 0.04;
   const chosen = [];
-  for (const p of [...(sp?.peaks || [])].sort((a, b) => b.amplitude - a.amplitude)) {
-    if (chosen.length >= MAX_PEAK_LABELS) break;
+  for (const p of (sp?.peaks || []).slice(0, LISTED_PEAKS).sort((a, b) => b.amplitude - a.amplitude)) {
     const f = p.frequency_hz;
     if (!Number.isFinite(f) || f < plot.view.lo || f > plot.view.hi) continue;
     const q = Math.round((f - d.f0) / d.df);

@@ -484,7 +484,7 @@ def test_malformed_frames_and_a_mid_frame_disconnect(svc: RunningService) -> Non
 
 BAD_CONFIGS = {
     # a value outside a closed set names the key path and lists the allowed ones
-    "window": ('[analysis]\nwindow = "hanning"\n\n'
+    "window": ('[analysis]\nwindow = "hanning"\nfmax_hz = 1000\n\n'
                '[[sources]]\nid = "x"\nkind = "tcp"\nlisten = "127.0.0.1:9"\nformat = "f32le"\n'
                'sample_rate_hz = 2560\nchannels = ["x-a"]\n',
                r"analysis\.window: 'hanning' is not one of .*'hann'"),
