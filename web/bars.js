@@ -18,6 +18,7 @@ export class BandBars {
     this.unit = "";
     this.stale = false;
     this.rowH = compact ? 17 : 34;
+    this.height = 0;
     this.surface = new Surface(canvas, (ctx, w, h) => this._draw(ctx, w, h));
   }
 
@@ -25,8 +26,21 @@ export class BandBars {
     const n = this.rows.length;
     this.rows = rows;
     this.unit = unit;
-    if (rows.length !== n) this.canvas.style.height = `${Math.max(1, rows.length) * this.rowH + (this.compact ? 2 : 10)}px`;
+    const h = this._tops(rows).at(-1) + (this.compact ? 2 : 10);
+    if (h !== this.height) {
+      this.height = h;
+      this.canvas.style.height = `${h}px`;
+    }
     this.surface.invalidate();
+  }
+
+  /** Each row's top, and the end of the last one: a row with levels is taller in the full
+   *  layout, so the words under its ticks ("alert 2.80") clear the next row's name. */
+  _tops(rows) {
+    const tops = [this.compact ? 1 : 5];
+    for (const r of rows) tops.push(tops.at(-1) + this.rowH + (!this.compact && (r.alert > 0 || r.danger > 0) ? 12 : 0));
+    if (!rows.length) tops.push(tops[0] + this.rowH);
+    return tops;
   }
 
   setStale(s) {
@@ -55,8 +69,9 @@ export class BandBars {
     const nameW = c ? 74 : 0;
     const valW = c ? 50 : 0;
     const x0 = padL + nameW, x1 = w - padR - valW;
+    const tops = this._tops(rows);
     rows.forEach((r, i) => {
-      const top = (c ? 1 : 5) + i * this.rowH;
+      const top = tops[i];
       const max = r.danger > 0 ? r.danger * 1.3 : shared;
       const trackY = c ? top + 5 : top + 18;
       const trackH = c ? 7 : 9;

@@ -145,15 +145,22 @@ export class Spectrogram {
       if (r) spanS = (t0 - r.t_ns) / 1e9;
     }
     const step = [1, 2, 5, 10, 15, 30, 60, 120, 300].find((s) => (H / Math.max(spanS, 1e-3)) * s * (this.count / this.rows) > 34) ?? 600;
-    let next = step;
+    // Rows are not evenly spaced in time once stored spectra (one per history interval) sit
+    // below the live ones (one per frame): a tick labels the multiple of `step` its row has
+    // passed, and ticks closer than a label's height are left out, so they never overlap.
+    let next = step, lastY = T + 6;
     for (let k = 0; k < this.count; k++) {
       const r = this.ring[(this.head + k) % this.rows];
       if (!r) continue;
       const age = (t0 - r.t_ns) / 1e9;
       if (age >= next) {
         const y = T + (k + 0.5) * rowH;
-        if (y < B - 6) ctx.fillText(`−${next} s`, L - 6, y);
-        next += step;
+        const passed = Math.floor(age / step) * step;
+        if (y < B - 6 && y - lastY >= 14) {
+          ctx.fillText(`−${passed} s`, L - 6, y);
+          lastY = y;
+        }
+        next = passed + step;
       }
     }
     ctx.font = `11px ${pal.font}`;
