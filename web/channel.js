@@ -355,10 +355,10 @@ export function mount(root, id, { profile = "" } = {}) {
 
   async function loadMeta() {
     const asked = st.profile;
-    const again = () => setTimeout(() => asked === st.profile && loadMeta(), 1000);
+    const again = () => setTimeout(() => alive && asked === st.profile && loadMeta(), 1000);
     try {
       const j = await getJSON(`${API}/channels/${encodeURIComponent(id)}/spectrum${qs({ unit: st.unit, amplitude: st.amplitude, profile: asked })}`);
-      if (asked !== st.profile) return; // the profile changed meanwhile
+      if (!alive || asked !== st.profile) return; // the view or the profile changed meanwhile
       const { values, ...meta } = j;
       if (!mine(meta)) return again(); // not the profile's yet (its name was still unknown)
       st.meta = meta;
@@ -366,7 +366,7 @@ export function mount(root, id, { profile = "" } = {}) {
       renderFacts();
       renderCaption();
     } catch (e) {
-      if (asked !== st.profile) return;
+      if (!alive || asked !== st.profile) return;
       if (e instanceof ApiError && e.status === 503) again();
       else if (e instanceof ApiError && e.status === 404 && asked && /profile/i.test(e.detail)) {
         st.profileNote = e.detail; // e.g. an old link naming a profile this channel no longer runs
@@ -524,10 +524,11 @@ export function mount(root, id, { profile = "" } = {}) {
 
   let evBusy = false;
   async function loadEvents() {
-    if (evBusy) return;
+    if (evBusy || !alive) return;
     evBusy = true;
     try {
       const j = await getJSON(`${API}/events${qs({ channel: id, limit: 10 })}`);
+      if (!alive) return;
       st.events = j.events || [];
       const tb = $("#ch-events");
       if (tb) updateHTML(tb, st.events.length ? st.events.map((ev) => eventItemHtml(ev, { showChannel: false })) : html`<li class="empty">No events on this channel.</li>`);
@@ -565,6 +566,7 @@ export function mount(root, id, { profile = "" } = {}) {
   let trendAt = 0;
   let trendAgain = false;
   async function loadTrend() {
+    if (!alive) return;
     if (trendBusy) {
       trendAgain = true; // a choice changed meanwhile: load once more when this one ends
       return;
@@ -614,12 +616,12 @@ export function mount(root, id, { profile = "" } = {}) {
         if (!(e instanceof ApiError) || e.status === 404) throw e;
         j = await getJSON(url(null)); // the service did not like the step: let it choose
       }
-      if (asked !== st.profile) return; // the profile changed meanwhile; loadTrend runs again
+      if (!alive || asked !== st.profile) return; // the view or profile changed; loadTrend runs again
       const pts = (j.points || []).map((p) => ({ t_ms: p.t_ns / 1e6, mean: p.mean, min: p.min, max: p.max }));
       trend.set({ ...base, points: pts });
       $("#trend-note").textContent = `stored history, ${fmtStep(j.step_s ?? stepS)} steps`;
     } catch (e) {
-      if (asked !== st.profile) return;
+      if (!alive || asked !== st.profile) return;
       if (e instanceof ApiError && e.status === 404) {
         trend.set({ ...base, points: [] });
         $("#trend-note").textContent = "nothing stored under this name yet";

@@ -210,6 +210,8 @@ export function mountHistory(figure, { id, plot, sg, view }) {
     },
     probe: () => ({ range: st.range, rows: wf.rows.length, live: wf.rows.filter((r) => r.live).length, picked: st.picked && { id: st.picked.id, time: st.picked.time } }),
     dispose() {
+      st.loadedKey = null; // a load on its way is dropped (it checks its key on return)
+      st.gen++; // and so is a spectrogram fill
       wf.surface.dispose();
     },
   };

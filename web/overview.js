@@ -123,6 +123,7 @@ export function mount(root) {
       try {
         const j = await getJSON(`${API}/channels/${encodeURIComponent(c.id)}/trend${qs({ name: "overall", since: until - SPARK_MS / 1000, until, step: 10 })}`);
         seedHistory(c.id, FRAME, (j.points || []).map((p) => [p.t_ns / 1e6, p.mean]));
+        if (disposed) return;
         cards.get(c.id)?.spark.surface.invalidate();
       } catch {
         return; // unreachable or failing: the sparklines fill from the live values
@@ -131,6 +132,7 @@ export function mount(root) {
   }
 
   function update() {
+    if (disposed) return; // a late event or answer after the view was left
     const chans = store.channels;
     const key = chans.map((c) => c.id).join(",");
     if (key !== ids) {
@@ -235,10 +237,9 @@ export function mount(root) {
     },
     bands: () => {
       if (!pendingBands) {
-        pendingBands = true;
-        requestAnimationFrame(() => {
-          pendingBands = false;
-          update();
+        pendingBands = requestAnimationFrame(() => {
+          pendingBands = 0;
+          if (!disposed) update();
         });
       }
     },
@@ -251,7 +252,7 @@ export function mount(root) {
     })(),
     "alarm-event": () => loadEvents(),
   };
-  let pendingBands = false;
+  let pendingBands = 0; // the animation frame that will update the cards, or 0
   const machineAck = (e) => {
     const b = e.target.closest("[data-ack-machine]");
     if (!b) return;
@@ -266,6 +267,8 @@ export function mount(root) {
   return {
     unmount() {
       disposed = true;
+      cancelAnimationFrame(pendingBands);
+      root.removeEventListener("click", machineAck);
       for (const [k, f] of Object.entries(on)) app.removeEventListener(k, f);
       for (const c of cards.values()) {
         c.bars.surface.dispose();

@@ -26,6 +26,7 @@ export class Surface {
     this.h = 0;
     this.dpr = 1;
     this._pending = false;
+    this._frame = 0;
     this.onResize = null;
     this._ro = new ResizeObserver((entries) => {
       const r = entries[0].contentRect;
@@ -51,7 +52,7 @@ export class Surface {
   invalidate() {
     if (this._pending) return;
     this._pending = true;
-    requestAnimationFrame(() => {
+    this._frame = requestAnimationFrame(() => {
       this._pending = false;
       if (!this.w || !this.h || !this.canvas.isConnected) return;
       this.ctx.setTransform(this.dpr, 0, 0, this.dpr, 0, 0);
@@ -77,6 +78,8 @@ export class Surface {
 
   dispose() {
     this._ro.disconnect();
+    cancelAnimationFrame(this._frame); // no drawing after the view is gone
+    this._pending = true; // and none asked for later
   }
 }
 Surface.stats = null;
