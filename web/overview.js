@@ -6,57 +6,11 @@ import { fmtClock, fmtHz, fmtVal, unitLabel } from "./fmt.js";
 import { STATES, STATUS_TO_STATE, isLive } from "./states.js";
 import { badge, glyph, html, join, setHTML, updateHTML } from "./dom.js";
 import { BandBars, bandRows, topBands } from "./bars.js";
-import { Surface, pal } from "./plot.js";
+import { Spark, SPARK_MS, overallLimits, sharedTops } from "./sparkline.js";
 import { alarmListHtml, eventItemHtml, ruleProfile } from "./alarms.js";
 import { chName, machineLabel, machineName } from "./names.js";
 import { openAckAll } from "./shelve.js";
-import { alarmsFor, app, channelState, fetchWatched, FRAME, groupByMachine, history, levels, live, seedHistory, store } from "./shared.js";
-
-const SPARK_MS = 10 * 60e3;
-
-class Spark {
-  constructor(canvas, get) {
-    this.get = get;
-    this.surface = new Surface(canvas, (ctx, w, h) => this._draw(ctx, w, h));
-  }
-  _draw(ctx, w, h) {
-    const { pts, alert, danger, stale } = this.get();
-    ctx.fillStyle = pal.panel;
-    ctx.fillRect(0, 0, w, h);
-    ctx.fillStyle = pal.plot;
-    ctx.fillRect(0, 0, w, h);
-    if (pts.length < 2) return;
-    const t1 = pts[pts.length - 1][0], t0 = t1 - SPARK_MS;
-    let mx = 0;
-    for (const p of pts) if (p[0] >= t0) mx = Math.max(mx, p[1]);
-    if (danger > 0 && danger < mx * 2) mx = Math.max(mx, danger);
-    mx = mx * 1.1 || 1;
-    const X = (t) => ((t - t0) / SPARK_MS) * (w - 2) + 1;
-    const Y = (v) => h - 2 - (v / mx) * (h - 4);
-    for (const [lvl, dash] of [[alert, [3, 2]], [danger, []]]) {
-      if (!(lvl > 0) || lvl > mx) continue;
-      ctx.strokeStyle = pal["ink-3"];
-      ctx.setLineDash(dash);
-      ctx.lineWidth = 1;
-      ctx.beginPath();
-      ctx.moveTo(0, Math.round(Y(lvl)) + 0.5);
-      ctx.lineTo(w, Math.round(Y(lvl)) + 0.5);
-      ctx.stroke();
-      ctx.setLineDash([]);
-    }
-    ctx.strokeStyle = stale ? pal["ink-3"] : pal.trace;
-    ctx.lineWidth = 1.2;
-    ctx.beginPath();
-    let started = false;
-    for (const [t, v] of pts) {
-      if (t < t0) continue;
-      if (!started) ctx.moveTo(X(t), Y(v));
-      else ctx.lineTo(X(t), Y(v));
-      started = true;
-    }
-    ctx.stroke();
-  }
-}
+import { alarmsFor, app, channelState, fetchWatched, FRAME, groupByMachine, history, live, seedHistory, store } from "./shared.js";
 
 export function mount(root) {
   setHTML(root, html`
@@ -71,6 +25,7 @@ export function mount(root) {
       </aside>
     </div>`);
   const cards = new Map(); // channel → {el, bars, spark, ...}
+  let tops = new Map(); // unit → the shared sparkline scale of channels without a danger level
   let ids = "";
   let disposed = false;
 
@@ -108,8 +63,8 @@ export function mount(root) {
         st: el.querySelector(".st"), note: el.querySelector(".note"),
       };
       entry.spark = new Spark(el.querySelector(".spark"), () => {
-        const rule = levels(id, "overall", "overall");
-        return { pts: history(id, FRAME), alert: rule?.alert, danger: rule?.danger, stale: store.conn === "reconnecting" };
+        const unit = store.channels.find((c) => c.id === id)?.latest?.unit || "";
+        return { pts: history(id, FRAME), limits: overallLimits(id), sharedTop: tops.get(unit), unit, stale: store.conn === "reconnecting" };
       });
       cards.set(id, entry);
     }
@@ -141,6 +96,7 @@ export function mount(root) {
       seedSparks();
     }
     const stale = store.conn === "reconnecting";
+    tops = sharedTops(chans.map((c) => ({ id: c.id, unit: c.latest?.unit || "", pts: history(c.id, FRAME) })));
     let nAbn = 0;
     for (const c of chans) {
       const e = cards.get(c.id);

@@ -4,11 +4,14 @@ channels are. Headless Chromium against the demo service on 127.0.0.1."""
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Any
 
 import pytest
 
-from tests.web.conftest import PageLog, Service, wait_for
+from service.app import demo_config
+from tests.service.conftest import run_service
+from tests.web.conftest import PageLog, Service, screenshot, wait_for
 
 pytestmark = pytest.mark.browser
 
@@ -73,3 +76,82 @@ def test_quick_view_changes_leave_no_callbacks_behind(demo: Service,
     assert pg.query_selector("[data-notfound]") is None
     assert not log.errors, f"uncaught errors in the page: {log.errors[:5]}"
     assert not log.console_errors(), f"console errors: {log.console_errors()[:5]}"
+
+
+# --- sparklines: the limits of every rule form, on fixed scales ------------------------------
+
+
+def _demo_with_every_overall_rule_form() -> dict[str, Any]:
+    """The demo (its `band = "overall"` rule on every channel) plus an `overall = true` rule on
+    one channel and a baseline-relative one (alert/danger factors) on another."""
+    cfg = demo_config(fault_start_s=1e6)
+    doc = cfg.model_dump(mode="json", exclude_none=True, exclude_defaults=True)
+    doc.pop("service", None)
+    doc["alarms"] = [
+        *doc["alarms"],
+        {"channel": "f1-gb-h", "overall": True, "alert": 2.0, "danger": 3.6},
+        {"channel": "p1-de-v", "overall": True, "baseline_learn_s": 3.0,
+         "alert_factor": 3.0, "danger_factor": 8.0},
+    ]
+    return doc
+
+
+def _overall_levels(entries: list[dict[str, Any]], channel: str) -> tuple[set[float], set[float]]:
+    """The alert and danger levels /alarms gives for the rules watching a channel's overall on
+    its primary profile (either form)."""
+    mine = [a for a in entries if a["channel"] == channel and a.get("primary", True)
+            and (a["kind"] == "overall" or (a["kind"] == "band" and a["name"] == "overall"))]
+    return ({a["alert"] for a in mine if a["alert"]}, {a["danger"] for a in mine if a["danger"]})
+
+
+def _spark(pg: Any, channel: str) -> dict[str, str]:
+    return pg.eval_on_selector(f".card[data-channel='{channel}'] canvas.spark",
+                               "c => ({...c.dataset})")
+
+
+def _floats(s: str) -> set[float]:
+    return {float(x) for x in s.split(",") if x}
+
+
+def test_sparklines_draw_every_rule_form_on_fixed_scales(tmp_path: Path,
+                                                         page: tuple[Any, PageLog]) -> None:
+    pg, log = page
+    with run_service(_demo_with_every_overall_rule_form(), tmp_path) as svc:
+        def entries() -> list[dict[str, Any]]:
+            got = svc.get("alarms", all="true")
+            return got if isinstance(got, list) else got["alarms"]
+
+        # the baseline rule has learnt: its absolute levels are known
+        wait_for(lambda: _overall_levels(entries(), "p1-de-v")[1] - {4.5},
+                 "the baseline rule's levels", 30)
+        open_page(pg, svc.base_url + "/#/")
+        pg.wait_for_selector(".card canvas.spark")
+        al = entries()
+        for ch in ["p1-de-h", "f1-gb-h", "p1-de-v"]:
+            alert, danger = _overall_levels(al, ch)
+            assert danger, (ch, al)
+            d = wait_for(lambda ch=ch: (s := _spark(pg, ch)).get("last") and s,
+                         f"the sparkline of {ch}")
+            # every rule's levels are drawn, whatever its form, and nothing else
+            assert _floats(d["alert"]) == alert, (ch, d)
+            assert _floats(d["danger"]) == danger, (ch, d)
+            # the scale is fixed at 1.3 × the highest danger level, not the data's own range
+            assert float(d["top"]) == pytest.approx(1.3 * max(danger), rel=1e-9), (ch, d)
+            assert float(d["lastFrac"]) == pytest.approx(
+                min(float(d["last"]), float(d["top"])) / float(d["top"]), rel=1e-9)
+        # the demo's form (band = "overall") alone: the demo's own levels
+        assert _overall_levels(al, "p1-de-h") == ({2.8}, {4.5})
+        # two (nearly) flat channels on the same scale: the higher level draws higher, in
+        # proportion (an auto scale would draw both near the top)
+        same = [c["id"] for c in svc.get("channels")
+                if _overall_levels(al, c["id"])[1] == {4.5} and c["latest"]]
+        sparks = {ch: _spark(pg, ch) for ch in same}
+        lo = min(same, key=lambda ch: float(sparks[ch]["last"]))
+        hi = max(same, key=lambda ch: float(sparks[ch]["last"]))
+        v_lo, v_hi = float(sparks[lo]["last"]), float(sparks[hi]["last"])
+        assert v_hi > 1.2 * v_lo, sparks
+        assert float(sparks[hi]["lastFrac"]) / float(sparks[lo]["lastFrac"]) == pytest.approx(
+            v_hi / v_lo, rel=1e-6)
+        assert float(sparks[hi]["lastFrac"]) < 1.0
+        screenshot(pg, "plant-sparklines")
+    assert not log.errors, log.errors
