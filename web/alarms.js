@@ -88,7 +88,7 @@ export function eventItemHtml(ev, { showChannel = true } = {}) {
   const val = ev.value === null || ev.value === undefined ? "" : ` · ${fmtVal(ev.value)}${ev.level ? ` / ${fmtVal(ev.level)}` : ""} ${unitLabel(ev.unit || "")}`;
   return html`<li data-event="${ev.id}">
     <span class="t">${fmtSince(ev.t_ns)}</span>
-    <span class="what">${showChannel ? html`<a href="#/channel/${encodeURIComponent(ev.channel)}" title="${chTitle(ev.channel)}">${chLabel(ev.channel)}</a> · ` : ""}${name}</span>
+    <span class="what">${showChannel ? html`<a href="#/channel/${encodeURIComponent(ev.channel)}" title="${chTitle(ev.channel)}">${chLabel(ev.channel, { withMachine: true })}</a> · ` : ""}${name}</span>
     <span class="acts">${raising ? html`<button class="small" data-evidence="${ev.id}">Evidence</button>` : ""}</span>
     <span class="sub">${change}${val}${ev.note ? ` — “${ev.note}”` : ""}</span>
   </li>`;

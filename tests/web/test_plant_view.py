@@ -4,7 +4,6 @@ channels are. Headless Chromium against the demo service on 127.0.0.1."""
 
 from __future__ import annotations
 
-from pathlib import Path
 from typing import Any
 
 import pytest
@@ -92,8 +91,17 @@ def _demo_with_every_overall_rule_form() -> dict[str, Any]:
         {"channel": "f1-gb-h", "overall": True, "alert": 2.0, "danger": 3.6},
         {"channel": "p1-de-v", "overall": True, "baseline_learn_s": 3.0,
          "alert_factor": 3.0, "danger_factor": 8.0},
+        # in danger at once: an alarm and events to name
+        {"channel": "f1-fan-h", "overall": True, "alert": 0.1, "danger": 0.2},
     ]
     return doc
+
+
+@pytest.fixture(scope="module")
+def plant(tmp_path_factory: pytest.TempPathFactory) -> Any:
+    """A service of the demo with every form of overall rule (see above)."""
+    with run_service(_demo_with_every_overall_rule_form(), tmp_path_factory.mktemp("plant")) as svc:
+        yield svc
 
 
 def _overall_levels(entries: list[dict[str, Any]], channel: str) -> tuple[set[float], set[float]]:
@@ -113,45 +121,68 @@ def _floats(s: str) -> set[float]:
     return {float(x) for x in s.split(",") if x}
 
 
-def test_sparklines_draw_every_rule_form_on_fixed_scales(tmp_path: Path,
+def test_sparklines_draw_every_rule_form_on_fixed_scales(plant: Any,
                                                          page: tuple[Any, PageLog]) -> None:
     pg, log = page
-    with run_service(_demo_with_every_overall_rule_form(), tmp_path) as svc:
-        def entries() -> list[dict[str, Any]]:
-            got = svc.get("alarms", all="true")
-            return got if isinstance(got, list) else got["alarms"]
+    svc = plant
+    def entries() -> list[dict[str, Any]]:
+        got = svc.get("alarms", all="true")
+        return got if isinstance(got, list) else got["alarms"]
 
-        # the baseline rule has learnt: its absolute levels are known
-        wait_for(lambda: _overall_levels(entries(), "p1-de-v")[1] - {4.5},
-                 "the baseline rule's levels", 30)
-        open_page(pg, svc.base_url + "/#/")
-        pg.wait_for_selector(".card canvas.spark")
-        al = entries()
-        for ch in ["p1-de-h", "f1-gb-h", "p1-de-v"]:
-            alert, danger = _overall_levels(al, ch)
-            assert danger, (ch, al)
-            d = wait_for(lambda ch=ch: (s := _spark(pg, ch)).get("last") and s,
-                         f"the sparkline of {ch}")
-            # every rule's levels are drawn, whatever its form, and nothing else
-            assert _floats(d["alert"]) == alert, (ch, d)
-            assert _floats(d["danger"]) == danger, (ch, d)
-            # the scale is fixed at 1.3 × the highest danger level, not the data's own range
-            assert float(d["top"]) == pytest.approx(1.3 * max(danger), rel=1e-9), (ch, d)
-            assert float(d["lastFrac"]) == pytest.approx(
-                min(float(d["last"]), float(d["top"])) / float(d["top"]), rel=1e-9)
-        # the demo's form (band = "overall") alone: the demo's own levels
-        assert _overall_levels(al, "p1-de-h") == ({2.8}, {4.5})
-        # two (nearly) flat channels on the same scale: the higher level draws higher, in
-        # proportion (an auto scale would draw both near the top)
-        same = [c["id"] for c in svc.get("channels")
-                if _overall_levels(al, c["id"])[1] == {4.5} and c["latest"]]
-        sparks = {ch: _spark(pg, ch) for ch in same}
-        lo = min(same, key=lambda ch: float(sparks[ch]["last"]))
-        hi = max(same, key=lambda ch: float(sparks[ch]["last"]))
-        v_lo, v_hi = float(sparks[lo]["last"]), float(sparks[hi]["last"])
-        assert v_hi > 1.2 * v_lo, sparks
-        assert float(sparks[hi]["lastFrac"]) / float(sparks[lo]["lastFrac"]) == pytest.approx(
-            v_hi / v_lo, rel=1e-6)
-        assert float(sparks[hi]["lastFrac"]) < 1.0
-        screenshot(pg, "plant-sparklines")
+    # the baseline rule has learnt: its absolute levels are known
+    wait_for(lambda: _overall_levels(entries(), "p1-de-v")[1] - {4.5},
+             "the baseline rule's levels", 30)
+    open_page(pg, svc.base_url + "/#/")
+    pg.wait_for_selector(".card canvas.spark")
+    al = entries()
+    for ch in ["p1-de-h", "f1-gb-h", "p1-de-v"]:
+        alert, danger = _overall_levels(al, ch)
+        assert danger, (ch, al)
+        d = wait_for(lambda ch=ch: (s := _spark(pg, ch)).get("last") and s,
+                     f"the sparkline of {ch}")
+        # every rule's levels are drawn, whatever its form, and nothing else
+        assert _floats(d["alert"]) == alert, (ch, d)
+        assert _floats(d["danger"]) == danger, (ch, d)
+        # the scale is fixed at 1.3 × the highest danger level, not the data's own range
+        assert float(d["top"]) == pytest.approx(1.3 * max(danger), rel=1e-9), (ch, d)
+        assert float(d["lastFrac"]) == pytest.approx(
+            min(float(d["last"]), float(d["top"])) / float(d["top"]), rel=1e-9)
+    # the demo's form (band = "overall") alone: the demo's own levels
+    assert _overall_levels(al, "p1-de-h") == ({2.8}, {4.5})
+    # two (nearly) flat channels on the same scale: the higher level draws higher, in
+    # proportion (an auto scale would draw both near the top)
+    same = [c["id"] for c in svc.get("channels")
+            if _overall_levels(al, c["id"])[1] == {4.5} and c["latest"]]
+    sparks = {ch: _spark(pg, ch) for ch in same}
+    lo = min(same, key=lambda ch: float(sparks[ch]["last"]))
+    hi = max(same, key=lambda ch: float(sparks[ch]["last"]))
+    v_lo, v_hi = float(sparks[lo]["last"]), float(sparks[hi]["last"])
+    assert v_hi > 1.2 * v_lo, sparks
+    assert float(sparks[hi]["lastFrac"]) / float(sparks[lo]["lastFrac"]) == pytest.approx(
+        v_hi / v_lo, rel=1e-6)
+    assert float(sparks[hi]["lastFrac"]) < 1.0
+    screenshot(pg, "plant-sparklines")
+    assert not log.errors, log.errors
+
+
+def test_alarms_and_events_on_the_plant_view_name_the_machine(plant: Any,
+                                                               page: tuple[Any, PageLog]) -> None:
+    pg, log = page
+    chans = {c["id"]: c for c in plant.get("channels")}
+    fan = chans["f1-fan-h"]
+    assert fan["machine_name"] and fan["machine_name"] != fan["machine"]
+    wait_for(lambda: any(e["channel"] == "f1-fan-h" for e in plant.get("events")["events"]),
+             "an event on f1-fan-h", 30)
+    open_page(pg, plant.base_url + "/#/")
+    alarm = pg.wait_for_selector("#ov-alarm-list li[data-rule='f1-fan-h.overall'] .what")
+    assert alarm.inner_text() == f"{fan['machine_name']} · {fan['name']} f1-fan-h · overall"
+    pg.wait_for_selector("#ov-event-rows li[data-event]")
+    rows = pg.eval_on_selector_all("#ov-event-rows li[data-event] .what",
+                                   "els => els.map(e => e.textContent)")
+    events = plant.get("events", limit=12)["events"]
+    assert len(rows) == len(events) > 0
+    for text, ev in zip(rows, events, strict=True):
+        c = chans[ev["channel"]]
+        # "Cooling fan 1 · fan shaft, horizontal f1-fan-h · overall"
+        assert text.startswith(f"{c['machine_name']} · {c['name']} {c['id']}"), (text, ev)
     assert not log.errors, log.errors
