@@ -1,9 +1,14 @@
 // The live link: WebSocket subscription (binary spectra, JSON the rest), REST polling when the
-// socket cannot open, reconnection, the plant-wide poll. Emits events; knows nothing of drawing.
+// socket cannot open, reconnection, the plant-wide poll or resync. Emits events; no drawing.
 
 import { API, askSignIn, getJSON, wsProtocols } from "./api.js";
 
 const PLANT_POLL_MS = 2000;
+// With the stream open and every channel's bands subscribed (the plant view) nothing is polled:
+// values come with the bands, statuses with status messages, and each alarm event (or status
+// change) fetches /alarms once. A resync this rarely is the safety net (rules changed by a reload).
+const PLANT_RESYNC_MS = 60000;
+const CHANNELS_EMIT_MS = 1000; // values from bands messages reach the views at most this often
 const DOWN_POLL_MS = 1000;
 const WS_RETRY_MAX_MS = 8000;
 const WS_ABSENT_RETRY_MS = 20000; // the service answers REST but has no socket route
@@ -41,6 +46,17 @@ export class Live extends EventTarget {
     this._due = new Map(); // poll key → next time (ms)
     this._busy = new Set();
     this._plantTimer = 0;
+    this._plantBusy = false;
+    this._plantSlow = false; // the next plant fetch is the rare resync, not the poll
+    this._alarmsBusy = false;
+    this._alarmsAgain = false;
+    this._chTimer = 0;
+  }
+
+  /** Whether the stream brings what the plant poll would (every channel's values). */
+  _streamCoversPlant() {
+    const s = this.sub;
+    return this.wsOpen && !!s && s.channels === "*" && (s.kinds || []).includes("bands");
   }
 
   get conn() {
@@ -63,10 +79,68 @@ export class Live extends EventTarget {
     this.sub = sub;
     this._due.clear();
     if (this.wsOpen) this._send({ subscribe: sub });
+    // a view that needs the poll again (its stream brings less): start it
+    if (this._plantSlow && !this._streamCoversPlant() && !this._plantBusy) {
+      clearTimeout(this._plantTimer);
+      this._plantSlow = false;
+      this._plantTimer = setTimeout(() => this._plant(), PLANT_POLL_MS);
+    }
+  }
+
+  /** Fetch the alarm list once (after an alarm event or a status change; coalesced). */
+  async refreshAlarms() {
+    if (this._alarmsBusy) {
+      this._alarmsAgain = true;
+      return;
+    }
+    this._alarmsBusy = true;
+    try {
+      await this._alarms();
+    } finally {
+      this._alarmsBusy = false;
+    }
+    if (this._alarmsAgain) {
+      this._alarmsAgain = false;
+      this.refreshAlarms();
+    }
+  }
+
+  async _alarms() {
+    try {
+      const al = await getJSON(`${API}/alarms?all=true`, { timeoutMs: 4000 });
+      this.alarms = Array.isArray(al) ? al : al.alarms ?? [];
+    } catch (e) {
+      if (!(e instanceof TypeError)) console.warn("alarms:", e.message);
+    }
+    this._emit("alarms", this.alarms);
+  }
+
+  /** A bands message of a channel's primary profile: its values are the channel's latest. */
+  _latestFromBands(m) {
+    const i = this.channels.findIndex((c) => c.id === m.channel);
+    if (i < 0) return;
+    const c = this.channels[i];
+    const primary = c.profiles?.[0]?.name ?? this.profiles[m.channel]?.[0];
+    if (primary && m.profile && m.profile !== primary) return;
+    if (c.latest && (c.latest.seq ?? -1) >= (m.seq ?? 0) && c.latest.timestamp_ns >= m.timestamp_ns) return;
+    this.channels[i] = {
+      ...c,
+      latest: {
+        ...(c.latest || {}), seq: m.seq, timestamp_ns: m.timestamp_ns, timestamp: m.timestamp, quality: m.quality,
+        unit: m.unit, overall: m.overall, overall_lo_hz: m.overall_lo_hz, overall_hi_hz: m.overall_hi_hz,
+      },
+    };
+    if (!this._chTimer) {
+      this._chTimer = setTimeout(() => {
+        this._chTimer = 0;
+        this._emit("channels", this.channels);
+      }, CHANNELS_EMIT_MS);
+    }
   }
 
   /** Ask for the plant poll now (e.g. after an acknowledgement). */
   refreshPlant() {
+    this._plantSlow = false;
     clearTimeout(this._plantTimer);
     this._plantTimer = setTimeout(() => this._plant(), 0);
   }
@@ -92,6 +166,8 @@ export class Live extends EventTarget {
   // --- plant-wide poll: every channel's status and latest overall, and the alarms -----
   async _plant() {
     clearTimeout(this._plantTimer);
+    this._plantTimer = 0;
+    this._plantBusy = true;
     let ok = false;
     try {
       const ch = await getJSON(`${API}/channels`, { timeoutMs: 4000 });
@@ -99,18 +175,16 @@ export class Live extends EventTarget {
       ok = true;
       this._setUp(true);
       this._emit("channels", ch);
-      try {
-        const al = await getJSON(`${API}/alarms?all=true`, { timeoutMs: 4000 });
-        this.alarms = Array.isArray(al) ? al : al.alarms ?? [];
-      } catch (e) {
-        if (!(e instanceof TypeError)) console.warn("alarms:", e.message);
-      }
-      this._emit("alarms", this.alarms);
+      await this._alarms();
     } catch (e) {
       if (!(e instanceof TypeError)) console.warn("channels:", e.message);
       this._setUp(false);
+    } finally {
+      this._plantBusy = false;
     }
-    this._plantTimer = setTimeout(() => this._plant(), ok ? PLANT_POLL_MS : DOWN_POLL_MS);
+    this._plantSlow = ok && this._streamCoversPlant();
+    const next = !ok ? DOWN_POLL_MS : this._plantSlow ? PLANT_RESYNC_MS : PLANT_POLL_MS;
+    this._plantTimer = setTimeout(() => this._plant(), next);
   }
 
   // --- WebSocket -------------------------------------------------------------------
@@ -137,6 +211,7 @@ export class Live extends EventTarget {
       this._setUp(true);
       this._emit("conn", { conn: this.conn });
       if (this.sub) this._send({ subscribe: this.sub });
+      this.refreshPlant(); // (re)connected: resync once, then the stream keeps the page current
     };
     ws.onmessage = (ev) => this._onMessage(ev.data);
     ws.onclose = (ev) => {
@@ -186,13 +261,16 @@ export class Live extends EventTarget {
         if (m.profiles && typeof m.profiles === "object") this.profiles = m.profiles;
         break;
       case "bands":
+        this._latestFromBands(m);
+        this._emit(m.kind, m);
+        break;
       case "tones":
         this._emit(m.kind, m);
         break;
       case "alarm":
       case "alarms":
         this._emit("alarm", m);
-        this.refreshPlant();
+        this.refreshAlarms(); // the alarm list as it now is (levels, value, acknowledgement)
         break;
       case "status": {
         // {"kind": "status", "channels": [{id, status, fault, since_ns}]} about once a second
@@ -206,7 +284,10 @@ export class Live extends EventTarget {
             changed = true;
           }
         }
-        if (changed) this._emit("channels", this.channels);
+        if (changed) {
+          this._emit("channels", this.channels);
+          this.refreshAlarms(); // a rule of a channel not live is suspended
+        }
         break;
       }
       case "error":

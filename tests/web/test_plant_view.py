@@ -6,11 +6,12 @@ from __future__ import annotations
 
 from typing import Any
 
+import httpx
 import pytest
 
 from service.app import demo_config
 from tests.service.conftest import run_service
-from tests.web.conftest import PageLog, Service, screenshot, wait_for
+from tests.web.conftest import DEMO_TOKEN, PageLog, Service, screenshot, wait_for
 
 pytestmark = pytest.mark.browser
 
@@ -185,4 +186,45 @@ def test_alarms_and_events_on_the_plant_view_name_the_machine(plant: Any,
         c = chans[ev["channel"]]
         # "Cooling fan 1 · fan shaft, horizontal f1-fan-h · overall"
         assert text.startswith(f"{c['machine_name']} · {c['name']} {c['id']}"), (text, ev)
+    assert not log.errors, log.errors
+
+
+# --- no polling while the stream is open ---------------------------------------------------
+
+
+QUIET_S = 10  # the window in which the plant view must not poll
+
+
+def test_plant_view_follows_the_stream_without_polling(plant: Any,
+                                                       page: tuple[Any, PageLog]) -> None:
+    pg, log = page
+    asked: list[str] = []
+    pg.on("request", lambda r: asked.append(r.url))
+    open_page(pg, plant.base_url + "/#/")
+    pg.wait_for_selector("#ov-alarm-list li[data-rule='f1-fan-h.overall'][data-acked='no']")
+    wait_for(lambda: pg.evaluate("() => window.quaver.live.wsOpen"), "the stream to open")
+    pg.evaluate("""() => { window.alarmMsgs = 0;
+        window.quaver.live.addEventListener("alarm", () => window.alarmMsgs++); }""")
+    pg.wait_for_timeout(1500)  # the resync on connect is answered
+    card = "[data-channel='p1-de-h'] [data-role=overall]"
+    seq0 = int(pg.eval_on_selector(card, "e => e.dataset.seq"))
+    start = len(asked)
+    pg.wait_for_timeout(QUIET_S * 1000)
+    window = asked[start:]
+    polled = [u for u in window if u.split("?")[0].endswith("/api/v1/channels")]
+    alarms = [u for u in window if "/api/v1/alarms" in u]
+    msgs = pg.evaluate("() => window.alarmMsgs")
+    assert not polled, polled
+    # /alarms is fetched only after an alarm message (at most once each), never on a clock
+    assert len(alarms) <= msgs, (alarms, msgs)
+    # the values still moved: they come with the stream's bands messages
+    seq1 = int(pg.eval_on_selector(card, "e => e.dataset.seq"))
+    assert seq1 > seq0
+    # an alarm change arrives pushed: acknowledge over the API, the plant view shows it
+    r = httpx.post(f"{plant.base_url}/api/v1/alarms/f1-fan-h.overall/ack", json={"note": "seen"},
+                   headers={"Authorization": f"Bearer {DEMO_TOKEN}"}, timeout=5.0,
+                   trust_env=False)
+    assert r.status_code == 200, r.text
+    pg.wait_for_selector("#ov-alarm-list li[data-rule='f1-fan-h.overall'][data-acked='yes']")
+    assert not [u for u in asked[start:] if u.split("?")[0].endswith("/api/v1/channels")]
     assert not log.errors, log.errors
