@@ -166,6 +166,13 @@ export function mount(root) {
     }
   }
 
+  let lastEvents = null;
+  /** The recent events, named with the machines' and channels' names as /channels gives them. */
+  function renderEvents() {
+    const tb = document.getElementById("ov-event-rows");
+    if (tb && lastEvents) updateHTML(tb, lastEvents.length ? lastEvents.map((ev) => eventItemHtml(ev)) : html`<li class="empty">No events yet.</li>`);
+  }
+
   let evBusy = false;
   async function loadEvents() {
     if (evBusy || disposed) return;
@@ -173,9 +180,8 @@ export function mount(root) {
     try {
       const j = await getJSON(`${API}/events?limit=12`);
       if (disposed) return; // the view was left while the answer was on its way
-      const evs = j.events || [];
-      const tb = document.getElementById("ov-event-rows");
-      if (tb) updateHTML(tb, evs.length ? evs.map((ev) => eventItemHtml(ev)) : html`<li class="empty">No events yet.</li>`);
+      lastEvents = j.events || [];
+      renderEvents();
       document.getElementById("ov-events").hidden = false;
     } catch {
       /* keep what is shown */
@@ -186,7 +192,10 @@ export function mount(root) {
   }
 
   const on = {
-    channels: () => update(),
+    channels: () => {
+      update();
+      renderEvents(); // the names may have come after the events
+    },
     alarms: () => {
       renderAlarms();
       update();

@@ -158,9 +158,14 @@ def test_overall_on_screen_matches_rest(demo: Service, page: tuple[Any, PageLog]
                 m = json.loads(payload)
                 if m.get("kind") == "status" and (m.get("latest") or {}).get("seq") is not None:
                     seen[(m.get("id") or m["channel"], m["latest"]["seq"])] = m["latest"]["overall"]
+                # the plant view takes each channel's latest overall from its primary profile's
+                # bands messages while the stream is open (web/README.md)
+                if m.get("kind") == "bands" and m.get("profile") == primary.get(m["channel"]):
+                    seen[(m["channel"], m["seq"])] = m["overall"]
 
         ws.on("framereceived", frame)
 
+    primary = {c["id"]: c["profiles"][0]["name"] for c in demo.get("channels")}
     pg.on("response", on_response)
     pg.on("websocket", on_ws)
     open_page(pg, demo.base_url + "/")
