@@ -54,6 +54,11 @@ export class BandBars {
     ctx.fillStyle = pal.panel;
     ctx.fillRect(0, 0, w, h);
     const rows = this.rows;
+    // the levels drawn per row, for people in devtools and the tests
+    const more = (r) => (this.compact && r.more) || [];
+    this.canvas.dataset.levels = JSON.stringify(rows.map((r) => ({
+      name: r.name, alert: [r.alert, ...more(r).map((m) => m.alert)].filter((v) => v > 0),
+      danger: [r.danger, ...more(r).map((m) => m.danger)].filter((v) => v > 0) })));
     if (!rows.length) {
       ctx.fillStyle = pal["ink-3"];
       ctx.font = `italic 12px ${pal.font}`;
@@ -72,7 +77,8 @@ export class BandBars {
     const tops = this._tops(rows);
     rows.forEach((r, i) => {
       const top = tops[i];
-      const max = r.danger > 0 ? r.danger * 1.3 : shared;
+      const dmax = Math.max(r.danger || 0, ...(r.more || []).map((m) => m.danger || 0));
+      const max = dmax > 0 ? dmax * 1.3 : shared;
       const trackY = c ? top + 5 : top + 18;
       const trackH = c ? 7 : 9;
       const abn = r.state === "alert" || r.state === "danger";
@@ -128,6 +134,8 @@ export class BandBars {
       // of the vibration standards, which these limits are not
       ctx.font = `600 9px ${pal.font}`;
       const ticks = levelTicks(ctx, r, (lvl) => x0 + (x1 - x0) * (lvl / max));
+      // another rule's levels on the same value: ticks too (on the cards, which have no words)
+      if (c) for (const m of r.more || []) ticks.push(...levelTicks(ctx, m, (lvl) => x0 + (x1 - x0) * (lvl / max)));
       for (const t of ticks) {
         ctx.strokeStyle = pal.ink;
         ctx.lineWidth = t.lw;
@@ -257,9 +265,17 @@ export function bandRows(channelId, msg, look = SHARED) {
     else if (rule?.danger > 0 && value >= rule.danger) state = "danger";
     else if (rule?.alert > 0 && value >= rule.alert) state = "alert";
     const row = { ...b, value, via, unit: msg.unit, alert: rule?.alert ?? null, danger: rule?.danger ?? null, state };
+    // the band named "overall" may be watched in both forms (band = "overall", overall = true)
+    const more = b.name === "overall" && rule ? otherOverallRule(look, channelId, rule, via || msg.profile) : null;
+    if (more && (more.alert > 0 || more.danger > 0)) row.more = [{ alert: more.alert ?? null, danger: more.danger ?? null }];
     (b.name.startsWith("third ") ? thirds : named).push(row);
   }
   return { named, thirds };
+}
+
+/** The other form's rule watching a channel's overall on `profile` (null when there is none). */
+function otherOverallRule({ levels }, channelId, rule, profile) {
+  return rule.kind === "overall" ? levels(channelId, "band", "overall", profile) : levels(channelId, "overall", "overall", profile);
 }
 
 /** The rule that watches band `b` of `msg`, and the value it watches: a band rule on the

@@ -4,6 +4,7 @@ channels are. Headless Chromium against the demo service on 127.0.0.1."""
 
 from __future__ import annotations
 
+import json
 from typing import Any
 
 import httpx
@@ -144,6 +145,13 @@ def test_sparklines_draw_every_rule_form_on_fixed_scales(plant: Any,
         # every rule's levels are drawn, whatever its form, and nothing else
         assert _floats(d["alert"]) == alert, (ch, d)
         assert _floats(d["danger"]) == danger, (ch, d)
+        # the card's overall bar draws the same rules' levels
+        bars = json.loads(pg.eval_on_selector(f".card[data-channel='{ch}'] canvas.minibars",
+                                              "c => c.dataset.levels || '[]'"))
+        overall_bar = [b for b in bars if b["name"] == "overall"]
+        assert overall_bar, (ch, bars)
+        assert set(overall_bar[0]["alert"]) == alert, (ch, overall_bar)
+        assert set(overall_bar[0]["danger"]) == danger, (ch, overall_bar)
         # the scale is fixed at 1.3 × the highest danger level, not the data's own range
         assert float(d["top"]) == pytest.approx(1.3 * max(danger), rel=1e-9), (ch, d)
         assert float(d["lastFrac"]) == pytest.approx(
