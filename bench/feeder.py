@@ -9,7 +9,7 @@ from __future__ import annotations
 import contextlib
 import socket
 import time
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -63,11 +63,18 @@ class Feeder:
     ``timestamp_ns`` gives back its end index (``index_of_time``)."""
 
     def __init__(self, ports: dict[str, int], source_ids: Sequence[str], per_source: int, fs: float,
-                 block: int, base_ns: int) -> None:
+                 block: int, base_ns: int, gains: Mapping[str, Sequence[float]] | None = None
+                 ) -> None:
+        """``gains``: per source, a factor for each of its channels' signal (default 1), e.g.
+        to drive some machines over their alarm levels."""
         self.fs, self.block, self.base_ns = fs, block, base_ns
         self.ids = list(source_ids)
-        self.templates = {sid: FrameTemplate(_signal(per_source, block, fs, seed=i), fs)
-                          for i, sid in enumerate(self.ids)}
+        gains = gains or {}
+        self.templates = {
+            sid: FrameTemplate(_signal(per_source, block, fs, seed=i)
+                               * np.asarray(gains.get(sid, [1.0] * per_source),
+                                            dtype=np.float32)[:, None], fs)
+            for i, sid in enumerate(self.ids)}
         self.log = FeedLog({sid: [] for sid in self.ids}, dict.fromkeys(self.ids, 0))
         self.socks: dict[str, socket.socket] = {}
         try:
