@@ -65,13 +65,14 @@ class Feeder:
     def __init__(self, ports: dict[str, int], source_ids: Sequence[str], per_source: int, fs: float,
                  block: int, base_ns: int, gains: Mapping[str, Sequence[float]] | None = None
                  ) -> None:
-        """``gains``: per source, a factor for each of its channels' signal (default 1), e.g.
-        to drive some machines over their alarm levels."""
+        """``gains``: per source, a factor for each of its channels' signal (default 1 for
+        ``per_source`` channels), e.g. to drive some machines over their alarm levels; its
+        length is that source's channel count."""
         self.fs, self.block, self.base_ns = fs, block, base_ns
         self.ids = list(source_ids)
         gains = gains or {}
         self.templates = {
-            sid: FrameTemplate(_signal(per_source, block, fs, seed=i)
+            sid: FrameTemplate(_signal(len(gains.get(sid, [0] * per_source)), block, fs, seed=i)
                                * np.asarray(gains.get(sid, [1.0] * per_source),
                                             dtype=np.float32)[:, None], fs)
             for i, sid in enumerate(self.ids)}

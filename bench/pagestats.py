@@ -11,6 +11,8 @@ from collections.abc import Sequence
 
 __all__ = ["busy_shares", "cpu_ratio", "per_window_rates", "ws_payload_bytes"]
 
+TAIL = 0.25  # fraction of a window below which a last partial window is merged
+
 
 def busy_shares(samples: Sequence[tuple[float, float]], window_s: float) -> list[float]:
     """Main-thread busy share per window from ``(timestamp_s, task_duration_s)`` samples of the
@@ -27,13 +29,16 @@ def per_window_rates(samples: Sequence[tuple[float, float]], window_s: float) ->
     ``window_s`` from the first sample, from ``(time_s, count)`` samples: the change between
     the last sample of the previous window (or the first sample) and the last one inside the
     window over the time between them, so no interval is lost between windows. The last window
-    may be partial (the last sample closes it); a window without samples is left out."""
+    may be partial (the last sample closes it; shorter than ``TAIL`` of a window, it joins the
+    one before); a window without samples is left out."""
     if window_s <= 0:
         raise ValueError(f"window_s must be > 0, got {window_s}")
     if len(samples) < 2:
         return []
     t0, t_end = samples[0][0], samples[-1][0]
-    last = max(0, int(math.ceil((t_end - t0) / window_s)) - 1)
+    # a last window shorter than TAIL·window_s (e.g. clock jitter at the end) joins the one
+    # before it
+    last = max(0, int(math.ceil((t_end - t0) / window_s - TAIL)) - 1)
     windows: dict[int, list[tuple[float, float]]] = {}
     for t, n in samples:
         windows.setdefault(min(int((t - t0) // window_s), last), []).append((t, n))
