@@ -23,7 +23,7 @@ from typing import Any
 
 from . import harness
 from .feeder import Feeder
-from .pageprobe import PageProbe, browser_context
+from .pageprobe import VIEWPORT_H, VIEWPORT_W, PageProbe, browser_context
 from .pagestats import busy_shares, cpu_ratio, per_window_rates
 from .plant import ALERT_GAIN, DANGER_GAIN, PER_SOURCE, PlantPlan, config_doc
 from .probes import machine, proc_cpu_s
@@ -156,7 +156,7 @@ def run(plan: PlantPlan, minutes: float, workdir: Path | None = None) -> dict[st
                   "fs_hz": plan.fs_hz, "fmax_hz": plan.fmax_hz, "lines": plan.lines,
                   "overlap": plan.overlap, "block_s": plan.block_s,
                   "channels_per_source": PER_SOURCE, "minutes": minutes,
-                  "closed_window_s": closed_s, "viewport": "1440x900"},
+                  "closed_window_s": closed_s, "viewport": f"{VIEWPORT_W}x{VIEWPORT_H}"},
     }
     with contextlib.ExitStack() as stack:
         if workdir is None:
@@ -250,10 +250,12 @@ def format_report(r: dict[str, Any]) -> str:
     return "\n".join(lines)
 
 
-def main(plan: PlantPlan, minutes: float, json_path: str | None = None) -> int:
-    """Run, print the table, write the JSON report to ``json_path`` if given; exit status."""
+def main(plan: PlantPlan, minutes: float, json_path: str | None = None,
+         as_json: bool = False) -> int:
+    """Run, print the table (``as_json``: the JSON report instead), write the JSON report to
+    ``json_path`` if given; exit status."""
     report = run(plan, minutes)
-    print(format_report(report))
+    print(json.dumps(report, indent=2) if as_json else format_report(report), flush=True)
     if json_path:
         Path(json_path).write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
     return 0

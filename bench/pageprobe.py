@@ -24,7 +24,7 @@ CHROMIUM = Path("/usr/bin/chromium")
 CHROMIUM_ARGS = ["--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
                  "--disable-background-networking", "--disable-component-update",
                  "--disable-sync"]
-VIEWPORT = {"width": 1440, "height": 900}
+VIEWPORT_W, VIEWPORT_H = 1440, 900
 TOKEN_KEY = "quaver.token"  # web/api.js: the token kept for the session
 
 # Counts animation frames from the first document on (window.__qbFrames).
@@ -72,7 +72,8 @@ def browser_context(workdir: Path, chromium: Path = CHROMIUM) -> Iterator[Any]:
     with sync_playwright() as pw:
         ctx = pw.chromium.launch_persistent_context(
             str(workdir / "profile"), executable_path=str(chromium), headless=True,
-            args=CHROMIUM_ARGS, env=env, viewport=VIEWPORT)
+            args=CHROMIUM_ARGS, env=env,
+            viewport={"width": VIEWPORT_W, "height": VIEWPORT_H})
         ctx.route(lambda url: not url.startswith(f"http://{LOOPBACK}:"),
                   lambda route: route.abort())
         try:

@@ -1,5 +1,5 @@
 """``quaver bench``: the engine benchmark (``dsp.bench``) or, with ``--service``, the
-whole-service load benchmark."""
+whole-service load benchmark, or, with ``--dashboard``, the plant view in a browser."""
 
 from __future__ import annotations
 
@@ -7,8 +7,49 @@ import argparse
 
 from .common import CliError
 
+DASHBOARD_ONLY = ("machines", "danger", "alert", "minutes")
+
+
+def _dashboard(args: argparse.Namespace) -> int:
+    for opt in ("repeats", "seconds"):
+        if getattr(args, opt) is not None:
+            raise CliError(f"--{opt} does not apply to --dashboard", 2)
+    if args.short:
+        raise CliError("--short does not apply to --dashboard (use e.g. --minutes 0.5)", 2)
+    from bench.dashboard import main
+    from bench.plant import PlantPlan
+
+    base = PlantPlan()
+    channels = base.channels
+    if args.channels is not None:
+        try:
+            channels = int(args.channels)
+        except ValueError:
+            raise CliError(f"--channels {args.channels!r}: expected one count with --dashboard",
+                           2) from None
+
+    def given(v: int | None, default: int) -> int:
+        return default if v is None else int(v)
+
+    try:
+        plan = PlantPlan(channels=channels, machines=given(args.machines, base.machines),
+                         danger=given(args.danger, base.danger),
+                         alert=given(args.alert, base.alert))
+    except ValueError as e:
+        raise CliError(str(e), 2) from None
+    minutes = 5.0 if args.minutes is None else float(args.minutes)
+    json_path = args.json if isinstance(args.json, str) else None
+    return int(main(plan, minutes, json_path=json_path, as_json=args.json is True))
+
 
 def cmd_bench(args: argparse.Namespace) -> int:
+    if args.dashboard:
+        return _dashboard(args)
+    given = [f"--{o}" for o in DASHBOARD_ONLY if getattr(args, o) is not None]
+    if given:
+        raise CliError(f"{', '.join(given)} applies to --dashboard only", 2)
+    if isinstance(args.json, str):
+        raise CliError("--json FILE applies to --dashboard; use --json alone to print JSON", 2)
     if args.service:
         import bench as loadbench
 

@@ -225,17 +225,35 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Engine throughput and cost relative to the bare batched "
                        "rfft of the same frames (dsp.bench); with --service, a load benchmark of "
                        "a real service started on 127.0.0.1 (the bench package).")
-    p.add_argument("--service", action="store_true",
-                   help="load-test a real service in a child process: ingest headroom over TCP "
-                   "at real time, sample-to-WebSocket latency, fan-out to 50 clients, memory "
-                   "after 10^4 and 10^6 frames (several minutes)")
+    which = p.add_mutually_exclusive_group()
+    which.add_argument("--service", action="store_true",
+                       help="load-test a real service in a child process: ingest headroom over "
+                       "TCP at real time, sample-to-WebSocket latency, fan-out to 50 clients, "
+                       "memory after 10^4 and 10^6 frames (several minutes)")
+    which.add_argument("--dashboard", action="store_true",
+                       help="the plant view in headless Chromium (/usr/bin/chromium, Playwright) "
+                       "against a generated plant fed at real time: first full render, "
+                       "main-thread busy share, frame rate, retained heap, bytes/s, service CPU "
+                       "with the page open and closed, abnormal machines in the first screen")
     p.add_argument("--short", action="store_true", help="quick run: 1 and 8 channels, 0.5 s "
                    "(with --service: the CI-sized run, 16 and 32 channels, 10 clients, memory "
                    "after 10^3 and 10^5 frames, under a minute)")
-    p.add_argument("--json", action="store_true", help="print the report as JSON")
+    p.add_argument("--json", nargs="?", const=True, default=False, metavar="FILE",
+                   help="print the report as JSON (with --dashboard: FILE also writes it there, "
+                   "next to the printed table)")
     p.add_argument("--channels", default=None, metavar="LIST",
                    help="comma-separated channel counts (default 1,8,64; with --service the "
-                   "headroom steps, default 32,64,128,192,256)")
+                   "headroom steps, default 32,64,128,192,256; with --dashboard one count, "
+                   "default 256)")
+    p.add_argument("--machines", type=_positive(int), default=None, metavar="N",
+                   help="with --dashboard: machines the channels are spread over (default 64)")
+    p.add_argument("--danger", type=_positive(int, allow_zero=True), default=None, metavar="N",
+                   help="with --dashboard: machines fed over their danger level (default 3)")
+    p.add_argument("--alert", type=_positive(int, allow_zero=True), default=None, metavar="N",
+                   help="with --dashboard: machines fed over their alert level (default 10)")
+    p.add_argument("--minutes", type=_positive(float), default=None, metavar="M",
+                   help="with --dashboard: how long the page is measured, min (default 5; "
+                   "e.g. 0.5 for a quick look)")
     p.add_argument("--seconds", type=_positive(float), default=None, metavar="S",
                    help="signal length per case, s (default 2; with --service the real-time "
                    "span of each headroom step, default 20)")
