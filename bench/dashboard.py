@@ -133,6 +133,9 @@ def _measure_page(probe: PageProbe, plan: PlantPlan, span_s: float, pid: int,
         "bytes_per_s": round((samples[-1]["bytes"] - s0["bytes"]) / wall, 1),
         "ws_messages": probe.ws_messages,
         "page_errors": probe.errors[:10],
+        # the raw DevTools/page samples, to recompute any figure (t, task_s: DevTools s;
+        # frames; wall: this process's monotonic clock, s; bytes received so far)
+        "samples": [{k: round(v, 4) for k, v in smp.items()} for smp in samples],
         "service_cpu_open": {"cpu_s": round(cpu_open, 2), "wall_s": round(wall, 1)},
     }
     probe.close()

@@ -26,9 +26,9 @@ def busy_shares(samples: Sequence[tuple[float, float]], window_s: float) -> list
 
 def per_window_rates(samples: Sequence[tuple[float, float]], window_s: float) -> list[float]:
     """Rate per second of a cumulative counter (e.g. animation frames) per window of
-    ``window_s`` from the first sample, from ``(time_s, count)`` samples: the change between
-    the last sample of the previous window (or the first sample) and the last one inside the
-    window over the time between them, so no interval is lost between windows. The last window
+    ``window_s`` from the first sample, from ``(time_s, count)`` samples: windows are
+    (start, end], and each runs from the last sample of the previous window (or the first
+    sample) to its own last one, so no interval is lost between windows. The last window
     may be partial (the last sample closes it; shorter than ``TAIL`` of a window, it joins the
     one before); a window without samples is left out."""
     if window_s <= 0:
@@ -41,7 +41,8 @@ def per_window_rates(samples: Sequence[tuple[float, float]], window_s: float) ->
     last = max(0, int(math.ceil((t_end - t0) / window_s - TAIL)) - 1)
     windows: dict[int, list[tuple[float, float]]] = {}
     for t, n in samples:
-        windows.setdefault(min(int((t - t0) // window_s), last), []).append((t, n))
+        k = max(0, int(math.ceil((t - t0) / window_s)) - 1)  # windows are (start, end]
+        windows.setdefault(min(k, last), []).append((t, n))
     rates = []
     for k in sorted(windows):
         prev = windows.get(k - 1)
