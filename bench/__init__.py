@@ -30,6 +30,11 @@ Every loop is bounded, every wait has a time-out, and the child processes are st
 Modules: ``stats`` (pure arithmetic), ``plan``, ``probes`` (/proc), ``harness`` (the child
 service, shared with the tests), ``target`` (the service under test), ``feeder``,
 ``clients`` (WebSocket), ``experiments`` (the four phases and ``run``), ``report``.
+
+``quaver bench --dashboard`` (``dashboard.run``) measures the plant view in headless Chromium
+against a generated plant: ``plant``, ``pageprobe`` (Playwright, DevTools Protocol),
+``pagestats`` (pure arithmetic), ``dashboard``; imported on its own, not from here, so the
+load benchmark never needs Playwright.
 """
 
 from .experiments import run
