@@ -4,6 +4,7 @@ whole-service load benchmark, or, with ``--dashboard``, the plant view in a brow
 from __future__ import annotations
 
 import argparse
+from pathlib import Path
 
 from .common import CliError
 
@@ -17,6 +18,7 @@ def _dashboard(args: argparse.Namespace) -> int:
     if args.short:
         raise CliError("--short does not apply to --dashboard (use e.g. --minutes 0.5)", 2)
     from bench.dashboard import main
+    from bench.pageprobe import CHROMIUM
     from bench.plant import PlantPlan
 
     base = PlantPlan()
@@ -37,8 +39,19 @@ def _dashboard(args: argparse.Namespace) -> int:
                          alert=given(args.alert, base.alert))
     except ValueError as e:
         raise CliError(str(e), 2) from None
+    try:
+        import playwright.sync_api  # noqa: F401
+    except ImportError:
+        raise CliError("--dashboard needs Playwright for Python (pip install playwright; "
+                       "the browser is the system's Chromium)", 1) from None
+    if not CHROMIUM.exists():
+        raise CliError(f"--dashboard needs Chromium at {CHROMIUM} (apt-get install chromium)",
+                       1)
+
     minutes = 5.0 if args.minutes is None else float(args.minutes)
     json_path = args.json if isinstance(args.json, str) else None
+    if json_path is not None and not Path(json_path).resolve().parent.is_dir():
+        raise CliError(f"--json {json_path!r}: its folder does not exist", 2)
     return int(main(plan, minutes, json_path=json_path, as_json=args.json is True))
 
 

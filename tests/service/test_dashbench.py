@@ -130,6 +130,7 @@ def test_plant_refuses_impossible_sizes(kw, message):
     (["--dashboard", "--channels", "8,16"], "expected one count with --dashboard"),
     (["--dashboard", "--repeats", "2"], "--repeats does not apply to --dashboard"),
     (["--dashboard", "--short"], "--short does not apply to --dashboard"),
+    (["--dashboard", "--json", "no-such-folder-18/r.json"], "its folder does not exist"),
 ])
 def test_bench_dashboard_refuses_bad_options(argv, message, capsys):
     assert cli_main(["bench", *argv]) == 2
