@@ -73,6 +73,16 @@ def _settled(svc: harness.Child, plan: PlantPlan) -> bool:
     return set(danger + alert) <= active
 
 
+def _health(svc: harness.Child) -> dict[str, int]:
+    """Drops over every source, channels in ``overrun`` and analysis frames so far: whether
+    the service kept up with the feed (a starved service makes the page's figures lighter)."""
+    health = svc.get_json("/api/v1/health")
+    chans = svc.get_json("/api/v1/channels")
+    return {"drops": sum(int(s["counters"]["drops"]) for s in health["sources"].values()),
+            "overrun_channels": sum(c["status"] == "overrun" for c in chans),
+            "frames": sum(int(c["counters"]["frames"]) for c in chans)}
+
+
 def _cpu_window(pid: int, seconds: float, feed: _FeedThread) -> dict[str, float]:
     cpu0, t0 = proc_cpu_s(pid), time.monotonic()
     end = t0 + seconds
@@ -190,6 +200,7 @@ def run(plan: PlantPlan, minutes: float, workdir: Path | None = None) -> dict[st
                                    f"{svc.log_tail()}")
             time.sleep(POLL_S)
         _say(f"service settled; service CPU with no page for {closed_s:g} s")
+        health0, t_health0 = _health(svc), time.monotonic()
         before = _cpu_window(svc.pid, closed_s, feed)
         _say(f"opening the plant view for {span_s:g} s")
         with browser_context(workdir / "chromium") as ctx:
@@ -198,6 +209,13 @@ def run(plan: PlantPlan, minutes: float, workdir: Path | None = None) -> dict[st
         _say(f"page closed; service CPU with no page for {closed_s:g} s")
         after = _cpu_window(svc.pid, closed_s, feed)
         feed.check()
+        health1 = _health(svc)
+        report["service_health"] = {
+            "drops": health1["drops"] - health0["drops"],
+            "overrun_channels_at_end": health1["overrun_channels"],
+            "frames_per_s": round((health1["frames"] - health0["frames"])
+                                  / (time.monotonic() - t_health0), 1),
+            "frames_per_s_fed": round(plan.channels * plan.frames_per_s, 1)}
         closed_cpu = before["cpu_s"] + after["cpu_s"]
         closed_wall = before["wall_s"] + after["wall_s"]
         opened = page.pop("service_cpu_open")
@@ -219,7 +237,7 @@ def _fmt_list(xs: list[float], fmt: str) -> str:
 
 def format_report(r: dict[str, Any]) -> str:
     """The report as a plain-text table."""
-    s, p, c = r["setup"], r["page"], r["service_cpu"]
+    s, p, c, h = r["setup"], r["page"], r["service_cpu"], r["service_health"]
     fs = p["first_screen"]
     heaps = " ".join(f"{h['mb']:.1f} MB@{h['after_s']:g}s" for h in p["heap_retained"]) or "—"
     rows = [
@@ -236,6 +254,9 @@ def format_report(r: dict[str, Any]) -> str:
         ("received by the page", f"{p['bytes_per_s'] / 1024:.1f} KiB/s "
                                  f"(load {p['load_bytes'] / 1024:.0f} KiB, "
                                  f"{p['ws_messages']} WebSocket messages)"),
+        ("service kept up", f"{h['frames_per_s']:.0f} of {h['frames_per_s_fed']:.0f} analysis "
+                            f"frames/s, {h['drops']} drops, {h['overrun_channels_at_end']} "
+                            f"channels in overrun at the end"),
         ("service CPU, page closed", f"{100 * c['closed_share']:.1f} % of a core"),
         ("service CPU, page open", f"{100 * c['open_share']:.1f} % of a core "
                                    f"(× {c['open_over_closed']:.2f})"),

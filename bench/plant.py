@@ -57,6 +57,12 @@ class PlantPlan:
         return self.fs_hz / 2.56  # common practice: fs = 2.56·Fmax
 
     @property
+    def frames_per_s(self) -> float:
+        """Analysis frames per second of one channel: fs / hop, N = 2.56·lines."""
+        n = int(round(2.56 * self.lines))  # common practice: N = 2.56·lines
+        return self.fs_hz / max(1, int(round(n * (1.0 - self.overlap))))
+
+    @property
     def block(self) -> int:
         return int(round(self.block_s * self.fs_hz))
 

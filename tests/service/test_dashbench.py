@@ -106,6 +106,8 @@ def test_plant_config_is_a_valid_config(tmp_path: Path):
     assert {m.id for m in cfg.machines} == set(plan.machine_ids())
     assert cfg.machines[1].name == "Cooling fan 1"
     assert len(cfg.alarms) == 1 and cfg.alarms[0].overall
+    # N = 2.56 × 400 = 1024, hop 512 at 50 % overlap: 2560 / 512 = 5 frames/s per channel
+    assert plan.frames_per_s == 5.0 and plan.block == 256
     assert cfg.analysis.fmax_hz == pytest.approx(1000.0)
     assert [t.role for t in cfg.tokens] == ["viewer"]
 

@@ -39,8 +39,12 @@ def test_dashboard_bench_reports_every_figure(chromium_path: Path, tmp_path: Pat
     assert p["page_errors"] == []
     assert 0 < c["closed_share"] and 0 < c["open_share"] and c["open_over_closed"] > 0
     assert len(c["closed_windows"]) == 2
+    h = r["service_health"]
+    assert h["frames_per_s_fed"] == 40.0  # 8 channels × 2560 Hz / hop 512
+    assert h["frames_per_s"] > 0 and h["drops"] >= 0 and h["overrun_channels_at_end"] >= 0
     text = format_report(r)
     for row in ("first full render", "abnormal machines in first screen  1/1",
                 "main-thread busy share", "frame rate", "retained JS heap",
-                "received by the page", "service CPU, page closed", "service CPU, page open"):
+                "received by the page", "service kept up", "service CPU, page closed",
+                "service CPU, page open"):
         assert row in text
