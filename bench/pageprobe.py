@@ -128,8 +128,15 @@ class PageProbe:
     def wait_rendered(self, machine_ids: Sequence[str], timeout_s: float) -> float:
         """Seconds from the navigation's start until every machine and card value is in the
         DOM (checked at every animation frame; the page's own clock)."""
-        got = self.page.wait_for_function(RENDERED, arg=list(machine_ids), polling="raf",
-                                          timeout=timeout_s * 1000.0)
+        from playwright.sync_api import TimeoutError as PageTimeout
+
+        try:
+            got = self.page.wait_for_function(RENDERED, arg=list(machine_ids), polling="raf",
+                                              timeout=timeout_s * 1000.0)
+        except PageTimeout:
+            raise RuntimeError(f"the plant view did not show every machine with its values "
+                               f"within {timeout_s:g} s (page errors: {self.errors[:3]})"
+                               ) from None
         return float(got.json_value()) / 1000.0
 
     def first_screen(self, machine_ids: Sequence[str]) -> dict[str, Any]:

@@ -52,7 +52,10 @@ def _dashboard(args: argparse.Namespace) -> int:
     json_path = args.json if isinstance(args.json, str) else None
     if json_path is not None and not Path(json_path).resolve().parent.is_dir():
         raise CliError(f"--json {json_path!r}: its folder does not exist", 2)
-    return int(main(plan, minutes, json_path=json_path, as_json=args.json is True))
+    try:
+        return int(main(plan, minutes, json_path=json_path, as_json=args.json is True))
+    except RuntimeError as e:  # bench.harness.HarnessError too: the service did not start
+        raise CliError(f"--dashboard: {e}", 1) from None
 
 
 def cmd_bench(args: argparse.Namespace) -> int:
