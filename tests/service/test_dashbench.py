@@ -3,7 +3,7 @@ hand-made samples and the standard library, the generated plant against the conf
 and the options it refuses.
 
 Knows bench.pagestats, bench.plant, the config loader and the CLI; no browser, no service
-(the run end to end is tests/web/test_dashbench.py), no timings."""
+(the run end to end is tests/web/test_dashboard_bench.py), no timings."""
 
 from __future__ import annotations
 
