@@ -13,8 +13,10 @@ from pydantic import BaseModel
 from dsp.analyzer import ToneDef
 from dsp.bands import Band, octave_bands
 
-from .config.models import AnalysisSettings, BandConfig, Config
+from .config.models import Config
+from .config.plant import BandConfig
 from .config.queries import channel_settings, profiles_of
+from .config.settings import AnalysisSettings
 
 __all__ = ["bands_for", "effective_analysis", "missing_value", "tones_for", "watched"]
 

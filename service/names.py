@@ -4,7 +4,8 @@ Knows the config models only; the API, notifications and the CLI name a channel 
 
 from __future__ import annotations
 
-from .config.models import ChannelConfig, Config, MachineConfig
+from .config.models import Config
+from .config.plant import ChannelConfig, MachineConfig
 
 __all__ = ["channel_label", "channel_name", "machine_name", "machine_of"]
 

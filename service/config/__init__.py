@@ -20,38 +20,30 @@ from __future__ import annotations
 # The config → dsp lookups live in service.lookups, beside the profile plan; these names
 # stay importable from here for code written before the move.
 from ..lookups import bands_for, effective_analysis, tones_for
+from .base import FRAME_RATIO, ID_PATTERN, QUANTITY_OF_UNIT, ConfigError, parse_listen
 from .checks import check_listen_allowed, open_source_warnings
 from .describe import describe_settings
 from .load import load_config, parse_config
-from .models import (
+from .models import MODELS, Config
+from .notify import NotifyConfig, QuietHours
+from .plant import AlarmConfig, BandConfig, ChannelConfig, MachineConfig, TokenConfig, ToneConfig
+from .queries import channel_ids, channel_settings, profile_names, profiles_of, source_of
+from .settings import (
     DEFAULT_PROFILE,
-    FRAME_RATIO,
-    ID_PATTERN,
-    MODELS,
-    QUANTITY_OF_UNIT,
-    SOURCE_KINDS,
-    AlarmConfig,
     AnalysisOverride,
     AnalysisSettings,
-    BandConfig,
-    ChannelConfig,
-    Config,
-    ConfigError,
-    FileSourceConfig,
     HistorySettings,
-    MachineConfig,
     ProfileSettings,
     ServiceSettings,
+)
+from .sources import (
+    SOURCE_KINDS,
+    FileSourceConfig,
     SimulatedSourceConfig,
     SourceConfig,
     TcpSourceConfig,
-    TokenConfig,
-    ToneConfig,
     UdpSourceConfig,
-    parse_listen,
 )
-from .notify import NotifyConfig, QuietHours
-from .queries import channel_ids, channel_settings, profile_names, profiles_of, source_of
 
 __all__ = [
     "FRAME_RATIO",

@@ -17,22 +17,13 @@ from ..lookups import (
     effective_analysis,
     missing_value,
 )
-from .models import (
-    FRAME_RATIO,
-    QUANTITY_OF_UNIT,
-    BandConfig,
-    Config,
-    ConfigError,
-    FileSourceConfig,
-    SimulatedSourceConfig,
-    TcpSourceConfig,
-    ToneConfig,
-    UdpSourceConfig,
-    parse_listen,
-)
+from .base import FRAME_RATIO, QUANTITY_OF_UNIT, ConfigError, parse_listen
+from .models import Config
 from .notify import check_notify_url, split_urls
+from .plant import BandConfig, ToneConfig
 from .queries import channel_settings, profile_names, profiles_of
 from .salvage import Doubts
+from .sources import FileSourceConfig, SimulatedSourceConfig, TcpSourceConfig, UdpSourceConfig
 
 
 def open_source_warnings(cfg: Config) -> list[str]:

@@ -10,24 +10,16 @@ from typing import Annotated, Any, Literal, Union, get_args, get_origin
 
 from pydantic import BaseModel
 
-from .models import (
-    AlarmConfig,
+from .notify import NotifyConfig, QuietHours
+from .plant import AlarmConfig, BandConfig, ChannelConfig, MachineConfig, TokenConfig, ToneConfig
+from .settings import (
     AnalysisOverride,
     AnalysisSettings,
-    BandConfig,
-    ChannelConfig,
-    FileSourceConfig,
     HistorySettings,
-    MachineConfig,
     ProfileSettings,
     ServiceSettings,
-    SimulatedSourceConfig,
-    TcpSourceConfig,
-    TokenConfig,
-    ToneConfig,
-    UdpSourceConfig,
 )
-from .notify import NotifyConfig, QuietHours
+from .sources import FileSourceConfig, SimulatedSourceConfig, TcpSourceConfig, UdpSourceConfig
 
 
 def describe_settings() -> list[tuple[str, str, str, str]]:

@@ -15,18 +15,17 @@ from typing import Any
 from pydantic import ValidationError
 
 from ..entries import EntryProblem
+from .base import ID_PATTERN, SHA256_PATTERN, ConfigError
 from .checks import _cross_check, notify_env_problems
-from .models import (
-    ENV_OVERRIDES,
-    ID_PATTERN,
-    MODELS,
-    SHA256_PATTERN,
-    SOURCE_KINDS,
-    Config,
-    ConfigError,
-    FileSourceConfig,
-)
+from .models import MODELS, Config
 from .salvage import salvage
+from .sources import SOURCE_KINDS, FileSourceConfig
+
+# Environment variables that override one setting each: variable -> (table, key).
+ENV_OVERRIDES: dict[str, tuple[str, str]] = {
+    "QUAVER_LISTEN": ("service", "listen"),
+    "QUAVER_DATA_DIR": ("service", "data_dir"),
+}
 
 
 def load_config(path: str | os.PathLike[str], env: Mapping[str, str] | None = None) -> Config:

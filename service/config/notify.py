@@ -8,7 +8,9 @@ from __future__ import annotations
 import re
 from typing import Annotated, Literal, get_args
 
-from pydantic import AfterValidator, BaseModel, ConfigDict, Field, model_validator
+from pydantic import AfterValidator, Field, model_validator
+
+from .base import StrictModel
 
 __all__ = [
     "NOTIFY_EVENTS",
@@ -24,12 +26,6 @@ NOTIFY_EVENTS: tuple[str, ...] = get_args(NotifyEvent)
 DEFAULT_EVENTS: tuple[NotifyEvent, ...] = ("raised", "status", "source")
 _HHMM = re.compile(r"^([01]\d|2[0-3]):([0-5]\d)$")
 _ENV_NAME = r"^[A-Za-z_][A-Za-z0-9_]{0,127}$"
-
-
-class _Model(BaseModel):
-    model_config = ConfigDict(
-        extra="forbid", validate_default=True, allow_inf_nan=False, strict=True
-    )
 
 
 def split_urls(text: str) -> list[str]:
@@ -64,7 +60,7 @@ def _valid_hhmm(text: str) -> str:
 HHMM = Annotated[str, AfterValidator(_valid_hhmm)]
 
 
-class QuietHours(_Model):
+class QuietHours(StrictModel):
     start: HHMM = Field(description="Start of the quiet hours, HH:MM in service.timezone.")
     end: HHMM = Field(
         description="End of the quiet hours, HH:MM in service.timezone (before start: they "
@@ -72,7 +68,7 @@ class QuietHours(_Model):
     )
 
 
-class NotifyConfig(_Model):
+class NotifyConfig(StrictModel):
     name: str = Field(
         pattern=r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$",
         description="Entry name (url-safe, unique): in the idempotency key, health and metrics.",

@@ -6,7 +6,10 @@ Pure functions over the models; nothing about the engine (what a profile analyse
 
 from __future__ import annotations
 
-from .models import DEFAULT_PROFILE, ChannelConfig, Config, SourceConfig
+from .models import Config
+from .plant import ChannelConfig
+from .settings import DEFAULT_PROFILE
+from .sources import SourceConfig
 
 
 def channel_ids(cfg: Config) -> list[str]:

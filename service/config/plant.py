@@ -1,0 +1,197 @@
+"""The plant's tables: ``[[channels]]``, ``[[bands]]``, ``[[tones]]``, ``[[alarms]]``,
+``[[machines]]`` and ``[[tokens]]``, each entry checked on its own.
+
+Knows nothing about files, sources, sockets, storage or the engine; from dsp it takes only the
+closed option sets."""
+
+from __future__ import annotations
+
+from typing import Annotated, Literal
+
+from pydantic import AfterValidator, Field, model_validator
+
+from dsp.bands import OCTAVE_FRACTIONS
+from dsp.types import InputUnit
+
+from ..entries import check_alarm_entry, check_band_entry, check_tone_entry
+from .base import SHA256_PATTERN, Id, Name, Role, StrictModel, described
+from .settings import AnalysisOverride
+
+
+class ChannelConfig(StrictModel):
+    id: Id = described("Channel id as named in its source's `channels` list (url-safe).")
+    input_unit: InputUnit = Field(
+        "g", description="Unit of the samples after sensitivity: g | m/s2."
+    )
+    sensitivity: float = Field(
+        1.0,
+        description="Input units per raw sample unit (e.g. "
+        "0.000122 g per count; for WAV: per full scale).",
+    )
+    speed_rpm: float | None = Field(
+        None, gt=0, description="Running speed, r/min; enables order bands and tones."
+    )
+    machine: str = Field(
+        "", max_length=128, description="Machine this sensor is on (grouping label; its "
+        "display name and group come from a [[machines]] entry of that id, if any)."
+    )
+    name: str = Field(
+        "", max_length=128, description="Display name, e.g. 'drive end, horizontal'; "
+        "default: the id."
+    )
+    description: str = Field("", max_length=1024, description="Free text, e.g. location.")
+    clip_level: float | None = Field(
+        None,
+        gt=0,
+        description="Raw sample magnitude at which the sensor chain clips "
+        "(raw units); |x| >= clip_level is a sensor fault.",
+    )
+    range: float | None = Field(
+        None,
+        gt=0,
+        description="Largest plausible |sample| in input_unit (after sensitivity): the "
+        "sensor's measuring range. A sample beyond it (or NaN/inf) is a sensor fault and "
+        "never reaches the analysis. Default: 2000 g (19613.3 m/s2).",
+    )
+    stale_after_s: float | None = Field(
+        None,
+        gt=0,
+        le=86400,
+        description="No new analysed spectrum for this long and the channel is no-signal, s. "
+        "Default: max(5 s, 3 hops, one frame + 2 hops) of its slowest profile.",
+    )
+    loss_of_signal: Literal["alert", "danger", "off"] = Field(
+        "alert",
+        description="Level of the channel's loss-of-signal alarm (rule '<channel>.signal'), "
+        "raised while the channel is no-signal or its source failed; 'off': none.",
+    )
+    analysis: AnalysisOverride = Field(  # type: ignore[valid-type]
+        default_factory=AnalysisOverride, description="Per-channel analysis overrides."
+    )
+    profiles: list[Id] | None = Field(
+        None,
+        description="Analysis profiles this channel runs, by name from [profiles]; the first "
+        "is its primary one (what REST and the stream give when no profile is asked for). "
+        "Default: every profile, in file order.",
+    )
+
+
+_PROFILE_HELP = (
+    "Profile name, or '*' for every profile of the channel whose fmax_hz covers it."
+)
+
+
+class BandConfig(StrictModel):
+    channel: str = Field("*", description="Channel id, or '*' for every channel.")
+    profile: str = Field("*", description=_PROFILE_HELP)
+    name: Name = described("Band name (unique per channel); for an octave set, the name prefix.")
+    lo_hz: float | None = Field(None, ge=0, description="Lower edge, Hz.")
+    hi_hz: float | None = Field(None, gt=0, description="Upper edge, Hz.")
+    lo_order: float | None = Field(
+        None, ge=0, description="Lower edge, orders of running speed (1 = once per revolution)."
+    )
+    hi_order: float | None = Field(None, gt=0, description="Upper edge, orders.")
+    octave: int | None = Field(
+        None,
+        description="1/b-octave band set (IEC 61260-1), b in 1, 3, 6, 12, 24, over lo_hz…hi_hz.",
+    )
+
+    @model_validator(mode="after")
+    def _entry(self) -> BandConfig:
+        check_band_entry(lo_hz=self.lo_hz, hi_hz=self.hi_hz, lo_order=self.lo_order,
+                         hi_order=self.hi_order, octave=self.octave,
+                         octave_fractions=OCTAVE_FRACTIONS)
+        return self
+
+
+class ToneConfig(StrictModel):
+    channel: str = Field("*", description="Channel id, or '*' for every channel.")
+    profile: str = Field("*", description=_PROFILE_HELP)
+    name: Name = described("Tone name (unique per channel), e.g. '1X' or 'mesh'.")
+    hz: float | None = Field(None, gt=0, description="Fixed frequency, Hz.")
+    order: float | None = Field(None, gt=0, description="Order of running speed.")
+
+    @model_validator(mode="after")
+    def _entry(self) -> ToneConfig:
+        check_tone_entry(hz=self.hz, order=self.order)
+        return self
+
+
+class AlarmConfig(StrictModel):
+    channel: str = Field("*", description="Channel id, or '*' for every channel.")
+    profile: str | None = Field(
+        None,
+        description="Profile whose value is watched; default: the channel's first profile "
+        "that has the band or tone (overall: its primary profile); '*': every profile "
+        "that has it.",
+    )
+    band: str | None = Field(None, description="Band name watched.")
+    tone: str | None = Field(None, description="Tone name watched.")
+    overall: bool = Field(
+        False,
+        description="Watch the channel's overall RMS: over its band named 'overall' if it has "
+        "one, else over lowcut_hz…fmax_hz.",
+    )
+    alert: float | None = Field(
+        None, gt=0,
+        description="Alert (first) level, in the channel's display unit and amplitude "
+        "(bands and overall: RMS). Required unless baseline_learn_s is set.",
+    )
+    danger: float | None = Field(
+        None, gt=0, description="Danger (second) level, same unit; must exceed alert."
+    )
+    baseline_learn_s: float | None = Field(
+        None, gt=0, le=365 * 86400,
+        description="Relative levels: learn the median of the first baseline_learn_s seconds "
+        "of good data, then alert/danger at a factor or dB over it.",
+    )
+    alert_factor: float | None = Field(None, gt=1, description="Alert at this × the baseline.")
+    danger_factor: float | None = Field(None, gt=1, description="Danger at this × the baseline.")
+    alert_db: float | None = Field(None, gt=0, description="Alert at this many dB over baseline.")
+    danger_db: float | None = Field(None, gt=0, description="Danger at this many dB over baseline.")
+    hysteresis: float = Field(
+        0.05,
+        ge=0,
+        le=0.5,
+        description="Clear when the value falls below level·(1 − hysteresis); fraction 0…0.5.",
+    )
+    on_delay_s: float = Field(
+        0.0, ge=0, le=86400, description="Time above a level before the alarm goes active, s."
+    )
+    off_delay_s: float = Field(0.0, ge=0, le=86400, description="Time below before it clears, s.")
+    latch: bool = Field(False, description="Stay active until acknowledged.")
+
+    @model_validator(mode="after")
+    def _entry(self) -> AlarmConfig:
+        check_alarm_entry(
+            band=self.band, tone=self.tone, overall=self.overall, alert=self.alert,
+            danger=self.danger, baseline_learn_s=self.baseline_learn_s,
+            alert_factor=self.alert_factor, danger_factor=self.danger_factor,
+            alert_db=self.alert_db, danger_db=self.danger_db,
+        )
+        return self
+
+
+class MachineConfig(StrictModel):
+    id: str = Field(
+        min_length=1, max_length=128,
+        description="Machine id: the `machine` label its channels carry.",
+    )
+    name: str = Field("", max_length=128, description="Display name; default: the id.")
+    group: str = Field(
+        "", max_length=128, description="Group for filtering, e.g. an area or machine type."
+    )
+    description: str = Field("", max_length=1024, description="Free text.")
+
+
+class TokenConfig(StrictModel):
+    name: Name = described("Who holds the token (for logs).")
+    role: Role = described(
+        "viewer (read) | operator (also acknowledge alarms) | admin (also reload the config) "
+        "| metrics (GET /metrics only: a scraper's token)."
+    )
+    sha256: Annotated[str, AfterValidator(str.lower)] = Field(
+        pattern=SHA256_PATTERN,
+        description="Hex SHA-256 of the token (the token itself is never stored); "
+        "kept in lower case.",
+    )
