@@ -27,14 +27,15 @@ class _Service(Protocol):
 
 
 async def commit_action(
-    svc: _Service, action: Callable[[AlarmEngine], list[AlarmEvent]], what: str
+    svc: _Service, action: Callable[[AlarmEngine], list[AlarmEvent]], what: str,
+    *, undone: str = "nothing was changed",
 ) -> list[dict[str, Any]]:
     """Run ``action`` on a copy of the alarm engine, commit its events and the state after
     them in one transaction, then run it on the live engine and announce the events.
 
     The action's own errors (UnknownAlarm, AckRefused, ShelveRefused, ValueError) raise
     before anything is written. A store that fails raises :class:`StoreError` and changes
-    nothing (the API answers 503), as :meth:`service.app.Service.acknowledge` does."""
+    nothing (the API answers 503; ``undone`` says what did not happen)."""
     trial = copy.deepcopy(svc.alarms)
     events = action(trial)
     if not events:
@@ -46,7 +47,7 @@ async def commit_action(
     except Exception as err:
         svc.store_errors += 1
         log.error("%s not stored, not applied: %s", what, err)
-        raise StoreError(f"the store cannot write ({err}); nothing was changed") from err
+        raise StoreError(f"the store cannot write ({err}); {undone}") from err
     try:
         action(svc.alarms)
     except (AlarmError, ValueError) as err:  # changed while committing (rare): logged

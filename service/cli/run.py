@@ -30,9 +30,9 @@ from ..profiles import plan_profiles, plan_warnings
 from .common import DEMO_FEED_LISTEN, _config_error, _load
 
 
-def _app() -> ModuleType:
+def _runner() -> ModuleType:
     # imported when a command runs the service: check, analyze and feed need no server
-    return importlib.import_module("service.app")
+    return importlib.import_module("service.runner")
 
 
 def _port_free(listen: str) -> bool:
@@ -62,10 +62,12 @@ def _demo_feed_listen(asked: str | None) -> str | None:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
-    app = _app()
+    runner = _runner()
+    from ..demo import DEMO_OPERATOR_TOKEN, demo_config
+
     feed_listen = _demo_feed_listen(args.feed_listen)
     try:
-        cfg = app.demo_config(listen=args.listen, data_dir=args.data_dir, speed=args.speed,
+        cfg = demo_config(listen=args.listen, data_dir=args.data_dir, speed=args.speed,
                               feed_listen=feed_listen)
         check_listen_allowed(cfg)
     except ConfigError as e:
@@ -78,7 +80,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
             print(f"quaver demo: listens on loopback only (its token is public), not {host!r}",
                   file=sys.stderr)
             return 2
-    token: str = app.DEMO_OPERATOR_TOKEN
+    token: str = DEMO_OPERATOR_TOKEN
 
     def announce(s: str) -> None:
         print(s, flush=True)
@@ -93,7 +95,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
                   f"feed FILE.wav --to {feed_listen} --format framed --api "
                   f"http://{host_port}", flush=True)
 
-    return int(app.run_service(cfg, announce=announce))
+    return int(runner.run_service(cfg, announce=announce))
 
 
 def cmd_serve(args: argparse.Namespace) -> int:
@@ -101,7 +103,7 @@ def cmd_serve(args: argparse.Namespace) -> int:
         cfg = _load(args.config)
     except ConfigError as e:
         return _config_error(e)
-    return int(_app().run_service(cfg, announce=lambda s: print(s, flush=True),
+    return int(_runner().run_service(cfg, announce=lambda s: print(s, flush=True),
                                   config_path=args.config))
 
 

@@ -19,7 +19,8 @@ from starlette.websockets import WebSocketDisconnect
 
 from service.alarms import AlarmEvent
 from service.api.stream import MAX_DEPTH, MAX_MESSAGE_BYTES, json_depth_over
-from service.app import Service, demo_config
+from service.app import Service
+from service.demo import demo_config
 from service.store import StoreError
 
 OPERATOR = "quaver-demo-operator"  # service/examples/demo.toml's operator token
@@ -78,7 +79,7 @@ def test_events_the_store_could_not_keep_are_not_announced(tmp_path: Path) -> No
     ev = AlarmEvent(t_ns=1, channel="c", rule="c.overall", kind="transition",
                     from_state="normal", to_state="alert", value=1.0, level=0.5, unit="g",
                     message="m")
-    asyncio.run(svc._commit_and_announce(svc.pipelines[0], [(ev, None)]))  # type: ignore[list-item]
+    asyncio.run(svc.commit_and_announce(svc.pipelines[0], [(ev, None)]))  # type: ignore[list-item]
     assert got == [] and svc.store_errors == 1
 
 

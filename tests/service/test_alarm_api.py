@@ -244,8 +244,8 @@ def config_doc(data_dir: Path, *, tokens: bool = True) -> dict[str, Any]:
 
 
 LAUNCH = (
-    "import sys, service.app, service.config; "
-    "sys.exit(service.app.run_service(service.config.load_config(sys.argv[1])))"
+    "import sys, service.runner, service.config; "
+    "sys.exit(service.runner.run_service(service.config.load_config(sys.argv[1])))"
 )
 
 

@@ -21,6 +21,7 @@ import pytest
 import scipy.io.wavfile
 import scipy.signal
 
+import service.demo
 from service import cli
 from service.config import parse_config
 from service.wire import FrameDecoder, decode_raw
@@ -103,7 +104,8 @@ def test_check_bad_config_prints_the_key_path(
 
 
 def _fake_app(monkeypatch: pytest.MonkeyPatch) -> dict[str, list[Any]]:
-    """Stand in for service.app so serve/demo wiring is seen without running a server."""
+    """Stand in for service.runner and the demo's config so serve/demo wiring is seen without
+    running a server."""
     calls: dict[str, list[Any]] = {"demo_config": [], "run_service": [], "config_path": []}
 
     def demo_config(**kw: Any) -> Any:
@@ -118,11 +120,11 @@ def _fake_app(monkeypatch: pytest.MonkeyPatch) -> dict[str, list[Any]]:
         announce("started")
         return 0
 
-    mod = types.ModuleType("service.app")
-    mod.demo_config = demo_config  # type: ignore[attr-defined]
+    mod = types.ModuleType("service.runner")
     mod.run_service = run_service  # type: ignore[attr-defined]
-    mod.DEMO_OPERATOR_TOKEN = "t-demo"  # type: ignore[attr-defined]
-    monkeypatch.setitem(sys.modules, "service.app", mod)
+    monkeypatch.setitem(sys.modules, "service.runner", mod)
+    monkeypatch.setattr(service.demo, "demo_config", demo_config)
+    monkeypatch.setattr(service.demo, "DEMO_OPERATOR_TOKEN", "t-demo")
     return calls
 
 

@@ -14,7 +14,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from service.app import demo_config
+from service.demo import demo_config
 from service.recording import load_recording
 from tests.service.conftest import HARNESS_TOKEN, REPO, child_env, run_service
 

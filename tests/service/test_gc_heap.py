@@ -81,11 +81,11 @@ def test_process_figures_for_a_long_run(svc: RunningService) -> None:
         assert f'python_gc_objects_uncollectable_total{{generation="{gen}"}}' in m
 
 
-# Runs service.app.serve() (not run_service) for the config file argv[1] until it serves,
+# Runs service.runner.serve() (not run_service) for the config file argv[1] until it serves,
 # then prints the collector's freeze count and exits at once.
 IN_PROCESS = """
 import asyncio, gc, os, sys
-from service.app import serve
+from service.runner import serve
 from service.config import load_config
 
 async def main():

@@ -16,12 +16,12 @@ import scipy.signal
 
 from dsp.chainplan import plan_chain
 from service.alarms import rules_from_config
-from service.app import demo_config
 from service.config import (
     ConfigError,
     parse_config,
     profiles_of,
 )
+from service.demo import demo_config
 from service.lookups import bands_for, effective_analysis, tones_for
 from service.profiles import ProfileBank, plan_profiles
 

@@ -205,7 +205,8 @@ def test_sighup_reloads_too(svc: RunningService) -> None:
 def test_the_demo_has_no_file_to_reload(tmp_path: Path) -> None:
     from fastapi.testclient import TestClient
 
-    from service.app import DEMO_OPERATOR_TOKEN, Service, demo_config
+    from service.app import Service
+    from service.demo import DEMO_OPERATOR_TOKEN, demo_config
 
     cfg = demo_config(data_dir=str(tmp_path))
     admin = {"name": "root", "role": "admin", "sha256": hashlib.sha256(b"adm").hexdigest()}

@@ -14,7 +14,7 @@ import pytest
 from hypothesis import HealthCheck, Phase, given, settings
 from hypothesis import strategies as st
 
-from service.app import demo_config
+from service.demo import demo_config
 
 schemathesis = pytest.importorskip(
     "schemathesis", reason="schemathesis is not installed (pip install schemathesis; it belongs "

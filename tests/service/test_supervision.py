@@ -16,8 +16,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-import service.app as app_module
 import service.pipeline as pipeline_module
+import service.supervise as supervise_module
 from service.app import Service
 from service.config import parse_config
 from service.pipeline import SourcePipeline
@@ -47,7 +47,7 @@ async def _until(probe: Any, what: str, timeout_s: float = 10.0) -> None:
 def test_a_failing_pipeline_is_reported_failed_and_restarted(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    monkeypatch.setattr(app_module, "RESTART_FIRST_S", 0.3)
+    monkeypatch.setattr(supervise_module, "RESTART_FIRST_S", 0.3)
     (port,) = free_ports(1)
     svc = Service(_cfg(tmp_path, port))
     p = svc.pipelines[0]

@@ -41,7 +41,7 @@ OPERATOR_TOKEN = "web-test-operator-7c1d"
 VIEWER_TOKEN = "web-test-viewer-19ab"
 # The demo has [[tokens]] (its operator), so every read needs a token (README "Access"):
 # the harness and the pages use it unless a test signs in itself.
-DEMO_TOKEN = "quaver-demo-operator"  # service/app.py DEMO_OPERATOR_TOKEN
+DEMO_TOKEN = "quaver-demo-operator"  # service/demo.py DEMO_OPERATOR_TOKEN
 
 T = TypeVar("T")
 
@@ -67,8 +67,8 @@ def _service_code(port: int, data_dir: Path, speed: float | None, tokens: bool) 
     """Python for ``python -c``: the built-in demo on ``port`` (optionally faster, with tokens)."""
     if not tokens:
         return (
-            "import service.app as a; "
-            f"raise SystemExit(a.run_service(a.demo_config(listen='{LOOPBACK}:{port}', "
+            "import service.demo as d, service.runner as a; "
+            f"raise SystemExit(a.run_service(d.demo_config(listen='{LOOPBACK}:{port}', "
             f"data_dir={str(data_dir)!r}, speed={speed!r})))"
         )
     toks = [
@@ -84,8 +84,8 @@ def _service_code(port: int, data_dir: Path, speed: float | None, tokens: bool) 
         },
     ]
     return (
-        "import service.app as a, service.config as c; "
-        f"cfg = a.demo_config(listen='{LOOPBACK}:{port}', data_dir={str(data_dir)!r}, "
+        "import service.demo as d, service.runner as a, service.config as c; "
+        f"cfg = d.demo_config(listen='{LOOPBACK}:{port}', data_dir={str(data_dir)!r}, "
         f"speed={speed!r}); "
         f"cfg = cfg.model_copy(update={{'tokens': [c.TokenConfig(**t) for t in {toks!r}]}}); "
         "raise SystemExit(a.run_service(cfg))"

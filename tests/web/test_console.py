@@ -38,8 +38,8 @@ class ZonedDemo(Service):
 
     def start(self) -> None:
         code = (
-            "import service.app as a; "
-            f"cfg = a.demo_config(listen='{LOOPBACK}:{self.port}', "
+            "import service.demo as d, service.runner as a; "
+            f"cfg = d.demo_config(listen='{LOOPBACK}:{self.port}', "
             f"data_dir={str(self.data_dir)!r}, speed=6.0, fault_start_s=0.0, "
             "fault_ramp_s=10.0); "
             "cfg = cfg.model_copy(update={'service': cfg.service.model_copy("

@@ -13,8 +13,8 @@ from typing import Any
 import numpy as np
 import pytest
 
-from service.app import demo_config
 from service.cli.feed import feed_recording
+from service.demo import demo_config
 from tests.service.conftest import run_service
 from tests.web.conftest import (
     OPERATOR_TOKEN,

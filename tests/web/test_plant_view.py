@@ -10,7 +10,7 @@ from typing import Any
 import httpx
 import pytest
 
-from service.app import demo_config
+from service.demo import demo_config
 from tests.service.conftest import run_service
 from tests.web.conftest import DEMO_TOKEN, PageLog, Service, screenshot, wait_for
 
