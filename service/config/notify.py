@@ -76,7 +76,7 @@ class NotifyConfig(StrictModel):
     urls: list[Annotated[str, AfterValidator(check_notify_url)]] = Field(
         default_factory=list,
         description="apprise URLs of the targets, e.g. 'mailto://…' or 'json://…' "
-        "(see README, Notifications); checked when the config is loaded.",
+        "(see docs/notifications.md); checked when the config is loaded.",
     )
     urls_env: str | None = Field(
         None,

@@ -58,7 +58,7 @@ from service.config import (
 
 # --- the framed wire format -----------------------------------------------------------------
 
-# The layout table of README.md "Framed TCP and UDP", written out here independently.
+# The layout table of docs/feeding.md "Framed TCP and UDP", written out here independently.
 HEAD = struct.Struct("<4sBBHdQqII")  # bytes 0…39, covered by the header CRC
 HEADER = 44
 FORMATS = ("s16le", "s32le", "f32le", "f64le")  # sample format codes 0, 1, 2, 3
@@ -121,7 +121,7 @@ def f64_overflow_allowed() -> Iterator[None]:
         yield
 
 
-# A good frame's samples keep signed 64-bit indices (README, framed format): with at most 48
+# A good frame's samples keep signed 64-bit indices (docs/feeding.md, framed format): with at most 48
 # samples a frame, any first index below this fits.
 GOOD_INDEX_END = 2**63 - 48
 
@@ -251,7 +251,7 @@ def cut(stream: bytes, pieces: int, rnd: random.Random) -> list[bytes]:
 
 def same_frame(got: wire.Frame, want: dict[str, Any]) -> bool:
     """``got`` carries ``want``'s header values, and its data are the payload read as
-    interleaved little-endian samples (README layout), as float32 [channels, n]."""
+    interleaved little-endian samples (docs/feeding.md layout), as float32 [channels, n]."""
     c = want["channels"]
     x = np.frombuffer(want["payload"], DTYPES[want["fmt"]]).reshape(-1, c).T.astype(np.float32)
     return (
@@ -399,7 +399,7 @@ F64_SNAN = struct.unpack("<d", bytes.fromhex("010000000000f07f"))[0]  # IEEE 754
 
 @pytest.mark.parametrize("value", [1e300, -1e300, F64_SNAN], ids=["big", "-big", "snan"])
 def test_f64_samples_decode_without_a_warning(value: float) -> None:
-    payload = struct.pack("<2d", value, 1.0)  # one channel, two samples (README layout)
+    payload = struct.pack("<2d", value, 1.0)  # one channel, two samples (docs/feeding.md layout)
     head = HEAD.pack(wire.MAGIC, 1, 3, 1, 2560.0, 0, 0, len(payload), zlib.crc32(payload))
     frame = head + struct.pack("<I", zlib.crc32(head)) + payload
     got = wire.FrameDecoder().feed(frame)  # the suite runs with warnings as errors

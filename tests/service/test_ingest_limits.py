@@ -31,7 +31,7 @@ if TYPE_CHECKING:
 from tests.service.conftest import LOOPBACK, SMALL_FS, free_ports, run_service, to_toml
 
 CliRun = subprocess.CompletedProcess[str]
-INDEX_MAX = 2**63 - 1  # stream indices are signed 64-bit (README, framed format)
+INDEX_MAX = 2**63 - 1  # stream indices are signed 64-bit (docs/feeding.md, framed format)
 HEAD = struct.Struct("<4sBBHdQqII")  # the README's header table, bytes 0…39
 FRAME = 256  # samples per frame
 N_GOOD = 4 * 1024  # samples of good signal after each fault: several 1024-sample frames

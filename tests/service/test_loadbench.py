@@ -142,7 +142,7 @@ def test_frame_template_restamps_index_time_and_header_crc():
     data = rng.normal(size=(3, 50)).astype(np.float32)
     tpl = FrameTemplate(data, 25600.0)
     raw = tpl.frame(123_456_789_012, 1_700_000_000_123_456_789)
-    # README "Framed TCP and UDP": u64 first index at 16, i64 time at 24, CRC-32 of bytes
+    # docs/feeding.md "Framed TCP and UDP": u64 first index at 16, i64 time at 24, CRC-32 of bytes
     # 0…39 at 40 (zlib / IEEE 802.3)
     assert struct.unpack_from("<Q", raw, 16)[0] == 123_456_789_012
     assert struct.unpack_from("<I", raw, 40)[0] == zlib.crc32(raw[:40])

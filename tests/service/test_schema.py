@@ -44,7 +44,7 @@ CHECKS = {f.__name__: f for f in (
     content_type_conformance, response_headers_conformance, negative_data_rejection,
     positive_data_acceptance, missing_required_header, ignored_auth)}
 
-# README "HTTP API": every documented read route (the WebSocket is not in OpenAPI)
+# docs/api.md "Routes": every documented read route (the WebSocket is not in OpenAPI)
 GET_ROUTES = [
     "/api/v1/health",
     "/api/v1/health/live",
