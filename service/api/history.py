@@ -10,12 +10,14 @@ import asyncio
 import base64
 import io
 import time
+from dataclasses import dataclass
 from typing import Annotated, Any, Literal
 
 import numpy as np
-from fastapi import APIRouter, HTTPException, Query, Response
+from fastapi import APIRouter, Depends, HTTPException, Query, Response
 from fastapi import Path as Path_
 
+from ..config import Config
 from ..spectra import power_values, to_npy
 from ..store.history import DB_STEP, codes_power
 from ..timefmt import iso_time
@@ -53,6 +55,37 @@ def _range(since: float | None, until: float | None, default_s: float = 86400.0
     if not since_s < until_s:
         invalid_query("since", f"since={since_s:g} must be before until={until_s:g}")
     return since_s, until_s
+
+
+@dataclass(frozen=True)
+class StoredRange:
+    """What a history query names: the profile (checked) and the time range, s."""
+
+    profile: str
+    since_s: float
+    until_s: float
+
+    @property
+    def ns(self) -> tuple[int, int]:
+        return int(self.since_s * _NS), int(self.until_s * _NS)
+
+
+def stored_range(
+    channel: ChannelDep, profile: ProfileQ = None, since: SinceQ = None, until: UntilQ = None
+) -> StoredRange:
+    return StoredRange(check_profile(channel, profile), *_range(since, until))
+
+
+RangeDep = Annotated[StoredRange, Depends(stored_range)]
+
+
+def _head(channel: ChannelState, span: StoredRange, cfg: Config) -> dict[str, Any]:
+    """The fields every history answer over a range starts with."""
+    return {
+        "channel": channel.id, "profile": span.profile, "since": span.since_s,
+        "until": span.until_s, "enabled": cfg.history.enabled,
+        "interval_s": cfg.history.interval_s,
+    }
 
 
 def _item(r: dict[str, Any], tz: str) -> dict[str, Any]:
@@ -103,24 +136,15 @@ async def list_history(
     store: StoreDep,
     cfg: ConfigDep,
     _: Reader,
-    profile: ProfileQ = None,
-    since: SinceQ = None,
-    until: UntilQ = None,
+    span: RangeDep,
     limit: Annotated[int, Query(ge=1, le=10000, description="most items (the newest)")] = 1000,
 ) -> dict[str, Any]:
-    prof = check_profile(channel, profile)
-    since_s, until_s = _range(since, until)
     rows, total = await asyncio.to_thread(
-        store.history_list, channel.id, prof, int(since_s * _NS), int(until_s * _NS), limit
+        store.history_list, channel.id, span.profile, *span.ns, limit
     )
     tz = cfg.service.timezone
     return {
-        "channel": channel.id,
-        "profile": prof,
-        "since": since_s,
-        "until": until_s,
-        "enabled": cfg.history.enabled,
-        "interval_s": cfg.history.interval_s,
+        **_head(channel, span, cfg),
         "count": total,
         "truncated": total > len(rows),
         "items": [_item(r, tz) for r in rows],
@@ -242,9 +266,7 @@ async def get_waterfall(
     store: StoreDep,
     cfg: ConfigDep,
     _: Reader,
-    profile: ProfileQ = None,
-    since: SinceQ = None,
-    until: UntilQ = None,
+    span: RangeDep,
     rows: Annotated[int, Query(ge=1, le=2000, description="most rows")] = 300,
     cols: Annotated[int, Query(ge=8, le=8192, description="frequency columns")] = 512,
     fmin_hz: Annotated[float | None, Query(ge=-1e6, le=1e6, description="default: 0 (may be "
@@ -259,12 +281,10 @@ async def get_waterfall(
               "little-endian rows × cols (NaN: no value)"),
     ] = "json",
 ) -> dict[str, Any]:
-    prof = check_profile(channel, profile)
-    since_s, until_s = _range(since, until)
     if rows * cols > MAX_CELLS:
         invalid_query("cols", f"rows × cols = {rows * cols} is above {MAX_CELLS}")
     found = await asyncio.to_thread(
-        store.history_spectra, channel.id, prof, int(since_s * _NS), int(until_s * _NS), True
+        store.history_spectra, channel.id, span.profile, *span.ns, True
     )
     lo = 0.0 if fmin_hz is None else fmin_hz
     hi = fmax_hz if fmax_hz is not None else max((r["fmax_hz"] for r in found), default=0.0)
@@ -286,8 +306,7 @@ async def get_waterfall(
     wf = pool_rows(spectra, rows, cols, lo, hi, convert) if spectra else None
     tz = cfg.service.timezone
     out: dict[str, Any] = {
-        "channel": channel.id, "profile": prof, "since": since_s, "until": until_s,
-        "enabled": cfg.history.enabled, "interval_s": cfg.history.interval_s, "unit": u,
+        **_head(channel, span, cfg), "unit": u,
         "amplitude": amp, "fmin_hz": lo, "fmax_hz": hi if spectra else None,
         "cols": cols, "rows": 0 if wf is None else len(wf.t_ns), "spectra": len(spectra),
         "t0_ns": [] if wf is None else wf.t0_ns, "t_ns": [] if wf is None else wf.t_ns,
