@@ -6,13 +6,23 @@ Writes only through the service (``ServiceContext.act``: committed, then applied
 from __future__ import annotations
 
 import time
+from collections.abc import Callable
 from datetime import datetime
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Body, HTTPException, Path
 from pydantic import BaseModel, Field
 
-from ..alarms import SHELVE_MAX_S, AckRefused, AlarmEngine, ShelveRefused, UnknownAlarm
+from ..alarms import (
+    SHELVE_MAX_S,
+    AckRefused,
+    AlarmEngine,
+    AlarmEvent,
+    ShelveRefused,
+    UnknownAlarm,
+)
+from ..config import Config
+from ..context import ServiceContext
 from ..store import StoreError
 from ..timefmt import zone
 from .deps import AlarmsDep, ConfigDep, ServiceDep
@@ -57,6 +67,19 @@ def _run_errors(e: Exception) -> HTTPException:
     return HTTPException(422, str(e))
 
 
+async def _on_rule(
+    service: ServiceContext, cfg: Config, rule: str,
+    action: Callable[[AlarmEngine], list[AlarmEvent]], what: str,
+) -> dict[str, Any]:
+    """Run one rule's action through the service; its event and the rule's alarm after it."""
+    try:
+        events = await service.act(action, what)
+    except (ShelveRefused, UnknownAlarm, StoreError, ValueError) as e:
+        raise _run_errors(e) from None
+    return with_times({"event": events[0], "alarm": service.alarms.view(rule).as_dict()},
+                      cfg.service.timezone)
+
+
 @router.get("/alarms/shelved", summary="Shelved rules (any state), ending soonest first")
 def list_shelved(engine: AlarmsDep, cfg: ConfigDep, _: Reader) -> list[dict[str, Any]]:
     rows = [v.as_dict() for v in engine.shelved()]
@@ -80,7 +103,7 @@ async def ack_all(
         chosen = [r for r in chosen if not engine.is_shelved(r)]
     t_ns, note = time.time_ns(), body.note
 
-    def action(eng: AlarmEngine) -> list[Any]:
+    def action(eng: AlarmEngine) -> list[AlarmEvent]:
         return eng.ack_many(chosen, who.name, note, t_ns=t_ns)
 
     try:
@@ -109,15 +132,10 @@ async def shelve(
         until_ns = t_ns + round((body.duration_s or 0) * _NS)
     reason = body.reason
 
-    def action(eng: AlarmEngine) -> list[Any]:
+    def action(eng: AlarmEngine) -> list[AlarmEvent]:
         return [eng.shelve(rule, who.name, reason, until_ns, t_ns=t_ns)]
 
-    try:
-        events = await service.act(action, f"shelve of {rule} by {who.name}")
-    except (ShelveRefused, UnknownAlarm, StoreError, ValueError) as e:
-        raise _run_errors(e) from None
-    return with_times({"event": events[0], "alarm": service.alarms.view(rule).as_dict()},
-                      cfg.service.timezone)
+    return await _on_rule(service, cfg, rule, action, f"shelve of {rule} by {who.name}")
 
 
 @router.post("/alarms/{rule}/unshelve", summary="End a rule's shelve now (operator role)",
@@ -129,12 +147,7 @@ async def unshelve(
 ) -> dict[str, Any]:
     t_ns = time.time_ns()
 
-    def action(eng: AlarmEngine) -> list[Any]:
+    def action(eng: AlarmEngine) -> list[AlarmEvent]:
         return [eng.unshelve(rule, who.name, t_ns=t_ns)]
 
-    try:
-        events = await service.act(action, f"unshelve of {rule} by {who.name}")
-    except (ShelveRefused, UnknownAlarm, StoreError, ValueError) as e:
-        raise _run_errors(e) from None
-    return with_times({"event": events[0], "alarm": service.alarms.view(rule).as_dict()},
-                      cfg.service.timezone)
+    return await _on_rule(service, cfg, rule, action, f"unshelve of {rule} by {who.name}")
