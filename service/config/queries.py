@@ -34,6 +34,12 @@ def profile_names(cfg: Config) -> list[str]:
 
 
 def profiles_of(cfg: Config, channel_id: str) -> list[str]:
-    """The profiles ``channel_id`` runs, its primary one first."""
+    """The profiles ``channel_id`` runs, its primary one first: its own ``profiles``, else
+    every profile but those whose table makes them envelope profiles (``kind =
+    "envelope"``: a channel runs one only when it lists it)."""
     own = channel_settings(cfg, channel_id).profiles
-    return list(own) if own else profile_names(cfg)
+    if own:
+        return list(own)
+    names = profile_names(cfg)
+    own_kind = {n: p.model_dump(exclude_none=True).get("kind") for n, p in cfg.profiles.items()}
+    return [n for n in names if own_kind.get(n) != "envelope"] or names

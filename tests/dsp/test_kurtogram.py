@@ -141,6 +141,7 @@ def test_best_within_and_kurtosis_at() -> None:
     high = kg.best_within(6000.0, FS / 2)
     assert high is not None and high.lo_hz >= 6000.0 and high.kurtosis < b.kurtosis / 2
     assert kg.best_within(100.0, 150.0) is None
+    assert kg.best_within(0.0, FS / 2) != kg.band(0, 0)  # the bands at 0 and fs/2 are out
 
 
 @pytest.mark.parametrize(("kwargs", "match"), [
@@ -177,3 +178,20 @@ def test_envelope_stream_line_matches_the_batch_envelope_spectrum() -> None:
     assert line == pytest.approx(a * m / math.sqrt(2), rel=0.18)
     with pytest.raises(ValueError, match=r"fmax_hz = 500 < lo_hz"):
         st.set_band(400.0, 900.0)
+
+
+def test_noise_spread_matches_gaussian_noise() -> None:
+    # Var K ≈ 4/m for m independent circular Gaussian samples (delta method on the moments
+    # of an exponential |c|²; docs/references.md, Antoni 2007 section): over kurtograms of
+    # white noise, the band values at the deepest levels spread as noise_spread says (±35 %)
+    rng = np.random.default_rng(11)
+    kgs = [fast_kurtogram(rng.standard_normal(2**15), 1000.0, nlevel=6) for _ in range(4)]
+    kg = kgs[0]
+    for row in (len(kg.levels) - 1, len(kg.levels) - 3, len(kg.levels) - 5):
+        vals = np.concatenate([k.bands_at(row)[1:-1] for k in kgs])  # ends: DC / Nyquist
+        assert np.std(vals) == pytest.approx(kg.noise_spread(kg.levels[row]), rel=0.35)
+    # nothing in noise is significant at 5 spreads; the fault's resonance band is
+    assert kg.best_within(0.0, 500.0, z_min=5.0) is None
+    x, _ = impulsive_fault(2)
+    b = fast_kurtogram(x, FS, nlevel=6).best_within(500.0, FS / 2, z_min=5.0)
+    assert b is not None and b.lo_hz - b.bw_hz <= F_RES <= b.hi_hz + b.bw_hz
