@@ -6,6 +6,8 @@ Pure functions over the models; nothing about the engine (what a profile analyse
 
 from __future__ import annotations
 
+from pydantic import BaseModel
+
 from .models import Config
 from .plant import ChannelConfig
 from .settings import DEFAULT_PROFILE
@@ -41,5 +43,6 @@ def profiles_of(cfg: Config, channel_id: str) -> list[str]:
     if own:
         return list(own)
     names = profile_names(cfg)
-    own_kind = {n: p.model_dump(exclude_none=True).get("kind") for n, p in cfg.profiles.items()}
-    return [n for n in names if own_kind.get(n) != "envelope"] or names
+    tables: dict[str, BaseModel] = dict(cfg.profiles)
+    return [n for n in names if n not in tables
+            or tables[n].model_dump().get("kind") != "envelope"] or names
