@@ -116,9 +116,9 @@ function caption(d) {
  *  and keep it current while shown. `active()`: is the profile shown an envelope one (the
  *  panel hides itself otherwise). Returns {dispose(), probe(), refresh()}. */
 export function mountKurtogram(fig, id, { profile, active }) {
-  setHTML(fig, html`<figcaption>Kurtogram <span class="hint">spectral kurtosis over band centre (across) and bandwidth (down, level 0 = the whole band); darker = more impulsive; outlined: the band demodulated</span>
-      <span class="readout" id="kg-cap"></span></figcaption>
-    <canvas id="kg" class="plot-kurtogram" aria-label="kurtogram of ${id}"></canvas>`);
+  setHTML(fig, html`<figcaption>Kurtogram <span class="hint">spectral kurtosis over band centre (across) and bandwidth (down, level 0 = the whole band); darker = more impulsive; outlined: the band demodulated</span></figcaption>
+    <canvas id="kg" class="plot-kurtogram" aria-label="kurtogram of ${id}"></canvas>
+    <p class="spec-cap" id="kg-cap" aria-live="polite"></p>`);
   const plot = new KurtogramPlot(fig.querySelector("#kg"));
   const cap = fig.querySelector("#kg-cap");
   let busy = false;
