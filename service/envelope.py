@@ -50,16 +50,22 @@ def keeps_band(held: float, challenger: float) -> bool:
 
 
 class EnvelopeFront:
-    """One channel's envelope for an envelope profile whose analysis runs at ``fmax_hz``.
+    """The envelope of ``channels`` channels for an envelope profile whose analysis runs at
+    ``fmax_hz``: one channel in automatic mode (its band is its own), any number sharing a
+    fixed band (one vectorised band-pass and chain).
 
-    ``push(x[1, n], first_index)`` returns the settled envelope samples and the output index
+    ``push(x[C, n], first_index)`` returns the settled envelope samples and the output index
     of the first, or None while nothing is settled. In automatic mode the band starts as
     the broad default and follows the kurtogram from its first significant band on. Output
     indices are those of the decimation chain (``content_index`` maps them to input indices).
     """
 
-    def __init__(self, fs_in: float, fmax_hz: float, setup: EnvelopeSetup) -> None:
+    def __init__(self, fs_in: float, fmax_hz: float, setup: EnvelopeSetup,
+                 channels: int = 1) -> None:
+        if setup.band is None and channels != 1:
+            raise ValueError(f"an automatic band is one channel's own, not {channels}'s")
         self.fs_in, self.fmax_hz, self.setup = float(fs_in), float(fmax_hz), setup
+        self.channels = int(channels)
         self.stream: EnvelopeStream | None = None
         self.kurtogram: Kurtogram | None = None
         self.kurtogram_index = -1  # input index just after the samples it analysed
@@ -84,7 +90,7 @@ class EnvelopeFront:
             if not lo < hi:
                 raise ValueError(f"envelope band {setup.band!r} lies above this "
                                  f"{self.fs_in:g} Hz stream's reach ({top:g} Hz)")
-            self.stream = EnvelopeStream(1, self.fs_in, lo, hi, self.fmax_hz)
+            self.stream = EnvelopeStream(self.channels, self.fs_in, lo, hi, self.fmax_hz)
         else:
             lo, hi = DEFAULT_LO_FMAX * self.fmax_hz, HI_FRACTION * self.fs_in
             if not lo < hi:
@@ -154,8 +160,8 @@ class EnvelopeFront:
         self._challenger, self._wins = None, 0
 
     def push(self, x: np.ndarray, first_index: int) -> tuple[np.ndarray, int] | None:
-        """The envelope of one block ``x`` [1, n] (engineering units) whose first sample
-        has input index ``first_index``: (samples [1, m], output index of the first)."""
+        """The envelope of one block ``x`` [C, n] (engineering units) whose first sample
+        has input index ``first_index``: (samples [C, m], output index of the first)."""
         if self.auto:
             if self._next_in is not None and first_index != self._next_in:
                 self._filled, self._since = 0, 0  # a gap: keep no samples from before it

@@ -272,7 +272,7 @@ class ChannelGroup:
     tap: str | None = None
     tap_rows: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.intp))
     plan: ProfilePlan | None = None
-    front: EnvelopeFront | None = None  # an envelope profile's demodulation (one channel)
+    front: EnvelopeFront | None = None  # an envelope profile's demodulation
 
 
 class ProfileBank:
@@ -314,9 +314,9 @@ class ProfileBank:
         for row, cid in enumerate(channel_ids):
             input_unit = channel_settings(cfg, cid).input_unit
             for p in self.plans[cid]:
-                key = repr((p.name, p.spec, input_unit, p.factor))
-                if p.envelope is not None:  # its band is the channel's own
-                    key = repr((p.name, cid))
+                key = repr((p.name, p.spec, input_unit, p.factor, p.envelope))
+                if p.envelope is not None and p.envelope.band is None:
+                    key = repr((p.name, cid))  # an automatic band is the channel's own
                 keyed.setdefault(key, []).append(row)
                 plan_of[key] = p
         self.groups: list[ChannelGroup] = []
@@ -329,7 +329,8 @@ class ProfileBank:
             tap = None if p.factor == 1 else f"x{p.factor}"
             front = None
             if p.envelope is not None:
-                front, tap = EnvelopeFront(self.fs_in, p.fmax_hz, p.envelope), None
+                front = EnvelopeFront(self.fs_in, p.fmax_hz, p.envelope, len(rows))
+                tap = None
             self.groups.append(
                 ChannelGroup(
                     profile=p.name,

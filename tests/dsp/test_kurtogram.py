@@ -195,3 +195,21 @@ def test_noise_spread_matches_gaussian_noise() -> None:
     x, _ = impulsive_fault(2)
     b = fast_kurtogram(x, FS, nlevel=6).best_within(500.0, FS / 2, z_min=5.0)
     assert b is not None and b.lo_hz - b.bw_hz <= F_RES <= b.hi_hz + b.bw_hz
+
+
+def test_envelope_stream_gap_restarts_and_keeps_indices() -> None:
+    # a jump in first_index is a gap: the band-pass restarts from rest and the chain's output
+    # indices jump with it (dsp.decimate: output k' stands for input k'·R + phase − delay)
+    fs = 25_600.0
+    t = np.arange(25_600) / fs
+    x = np.sin(2 * np.pi * 3000.0 * t)[None, :]
+    st = EnvelopeStream(1, fs, 2500.0, 3500.0, 500.0)
+    a = st.push(x[:, :12_800], first_index=0)
+    nxt = st.next_index
+    b = st.push(x[:, 12_800:], first_index=12_800 + 25_600)  # one second missing
+    assert st.next_index == nxt + 25_600 // st.factor + b.shape[1]
+    assert st.first_settled_index > nxt  # the restart's transient is marked unsettled
+    # a steady tone's envelope is its amplitude, 1, once settled (mean |sin| = 2/π)
+    assert float(np.mean(a[0, a.shape[1] // 2:])) == pytest.approx(1.0, rel=0.01)
+    with pytest.raises(ValueError, match=r"block must be \(1, n\)"):
+        st.push(np.zeros((2, 10)))

@@ -234,3 +234,36 @@ def test_analyze_runs_an_envelope_profile_on_a_recording(
     assert bands["BPFO"]["value"] > 5 * bands["2xBSF"]["value"] > 0
     assert tones["BPFO"]["frequency_hz"] == pytest.approx(bpfo)
     assert ch["unit"] == "g"
+
+
+@pytest.mark.parametrize("blocks", [[12_800], [1000, 4321, 7479], [256] * 50])
+def test_fixed_band_channels_share_one_front_and_streaming_equals_batch(
+    blocks: list[int]
+) -> None:
+    # two channels with the same fixed band run one vectorised envelope; cutting the same
+    # 2 s into other blocks gives the same envelope band values (STYLE.md: streaming equals
+    # batch), to float32 rounding
+    doc = base(channels=[{"id": c, "speed_rpm": 1480.0, "bearing": "de",
+                          "profiles": ["wide", "env"]} for c in ("a", "b")])
+    doc["profiles"]["env"].update(band=[2500.0, 4500.0], averages=2)
+    cfg = parse_config(doc, env={})
+    x = np.concatenate([_fault(2.0, 0.3), _fault(2.0, 0.0)]).astype(np.float32)
+
+    def run(sizes: list[int]) -> np.ndarray:
+        bank = ProfileBank(cfg, ["a", "b"], FS)
+        (g,) = [g for g in bank.groups if g.profile == "env"]
+        assert g.channel_ids == ("a", "b") and g.front is not None
+        k = 0
+        for n in sizes * (x.shape[1] // sum(sizes)) + [x.shape[1] % sum(sizes)]:
+            if n:
+                bank.push(x[:, k:k + n], k)
+                k += n
+        assert k == x.shape[1]
+        return np.asarray(g.analyzer.bands())
+
+    one = run([x.shape[1]])
+    got = run(blocks)
+    np.testing.assert_allclose(got, one, rtol=1e-4)
+    names = [b.name for b in bands_for(cfg, "a", "env")]
+    i = names.index("BPFO")
+    assert one[0, i] > 10 * one[1, i]  # the faulty channel against the healthy one
