@@ -241,8 +241,8 @@ def test_fixed_band_channels_share_one_front_and_streaming_equals_batch(
     blocks: list[int]
 ) -> None:
     # two channels with the same fixed band run one vectorised envelope; cutting the same
-    # 2 s into other blocks gives the same envelope band values (STYLE.md: streaming equals
-    # batch), to float32 rounding
+    # 2 s into other blocks gives the same envelope band values (streaming equals batch),
+    # to float32 rounding
     doc = base(channels=[{"id": c, "speed_rpm": 1480.0, "bearing": "de",
                           "profiles": ["wide", "env"]} for c in ("a", "b")])
     doc["profiles"]["env"].update(band=[2500.0, 4500.0], averages=2)
