@@ -64,14 +64,27 @@ def test_envelope_bpfo_alarm_comes_before_the_overall_one(tmp_path: Path) -> Non
     except harness.HarnessError as e:
         pytest.fail(str(e))
     try:
-        def both() -> list[dict[str, Any]] | None:
+        def raised(rule: str) -> list[dict[str, Any]] | None:
             evs = transitions(child)
-            rules = {e["rule"] for e in evs}
-            return evs if {ENV_RULE, OVERALL_RULE} <= rules else None
+            return evs if rule in {e["rule"] for e in evs} else None
 
-        evs = wait_for(both, "the envelope BPFO and the overall rule to change state", 120.0,
+        early = wait_for(lambda: raised(ENV_RULE), "the envelope BPFO rule to change state",
+                         90.0, on_fail=child.log_tail)
+        # at once, early in the fault: the overall has not moved, and the band demodulated is
+        # the one around the 3.3 kHz housing resonance the strikes ring
+        # (service/sources/simulated.py). (Later, with the fault strong, the strikes' sharp
+        # onsets can make a lower band more impulsive still, and the band may move there.)
+        kg = child.get_json("/api/v1/channels/p1-de-h/kurtogram?profile=envelope")
+        assert OVERALL_RULE not in {e["rule"] for e in early}
+        assert kg["mode"] == "auto" and kg["chosen"]
+        lo, hi = kg["band"]["lo_hz"], kg["band"]["hi_hz"]
+        assert lo - (hi - lo) <= 3300.0 <= hi + (hi - lo), kg["band"]
+        m = kg["kurtogram"]
+        assert len(m["kurtosis"]) == len(m["levels"]) and m["best"]["kurtosis"] > 1.0
+
+        evs = wait_for(lambda: raised(OVERALL_RULE), "the overall rule to change state", 90.0,
                        on_fail=child.log_tail)
-        first = {}
+        first: dict[str, dict[str, Any]] = {}
         for e in evs:
             first.setdefault(e["rule"], e)
         env, overall = first[ENV_RULE], first[OVERALL_RULE]
@@ -86,7 +99,8 @@ def test_envelope_bpfo_alarm_comes_before_the_overall_one(tmp_path: Path) -> Non
         q = "?profile=envelope"
         bands = {b["name"]: b for b in
                  child.get_json(f"/api/v1/channels/p1-de-h/bands{q}")["bands"]}
-        assert bands["BPFO"]["value"] > 0.02 > bands["2xBSF"]["value"]
+        bpfo_g = bands["BPFO"]["value"]
+        assert bpfo_g > 0.02 and bpfo_g > 5 * bands["2xBSF"]["value"]
         tones = child.get_json(f"/api/v1/channels/p1-de-h/tones{q}")
         bpfo_hz = PUMP_DE_BEARING.frequencies(1480 / 60).bpfo_hz
         t = {x["name"]: x for x in tones["tones"]}
@@ -98,13 +112,6 @@ def test_envelope_bpfo_alarm_comes_before_the_overall_one(tmp_path: Path) -> Non
         spec = child.get_json(f"/api/v1/channels/p1-de-h/spectrum{q}")
         assert (spec["fmax_hz"], spec["unit"]) == (500.0, "g")
 
-        kg = child.get_json(f"/api/v1/channels/p1-de-h/kurtogram{q}")
-        assert kg["mode"] == "auto" and kg["chosen"]
-        lo, hi = kg["band"]["lo_hz"], kg["band"]["hi_hz"]
-        # the strikes ring a 3.3 kHz housing resonance (service/sources/simulated.py)
-        assert lo - (hi - lo) <= 3300.0 <= hi + (hi - lo), kg["band"]
-        m = kg["kurtogram"]
-        assert len(m["kurtosis"]) == len(m["levels"]) and m["best"]["kurtosis"] > 1.0
         healthy = child.get_json(f"/api/v1/channels/p2-de-h/kurtogram{q}")
         assert not healthy["chosen"]  # nothing impulsive: the broad default band
         with pytest.raises(urllib.error.HTTPError) as err:
