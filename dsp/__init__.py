@@ -29,6 +29,7 @@ submodule          what it holds
 ``decimate``       the multi-stage FIR decimation chain behind narrow profiles
 ``envelope``       envelope (demodulation) spectrum
 ``kinematics``     bearing defect and gear-mesh frequencies
+``kurtogram``      spectral kurtosis and Antoni's fast kurtogram (the band to demodulate)
 ``types``          the closed option sets (window names, units, …) and the index range
 =================  ==========================================================================
 
@@ -45,7 +46,7 @@ from typing import TYPE_CHECKING, Any
 # name → submodule holding it; every submodule's __all__, nothing else
 _SUBMODULES = (
     "analyzer", "averaging", "bands", "decimate", "envelope", "filterbank", "kinematics",
-    "scaling", "tones", "types", "windows",
+    "kurtogram", "scaling", "tones", "types", "windows",
 )
 _PUBLIC: dict[str, str] = {
     "AnalysisSpec": "analyzer", "Analyzer": "analyzer", "ToneDef": "analyzer",
@@ -59,12 +60,15 @@ _PUBLIC: dict[str, str] = {
     "MIN_FACTOR": "chainplan", "MAX_FACTOR": "chainplan", "ChainPlan": "chainplan",
     "DecimationChain": "decimate", "Decimator": "decimate", "MultiRate": "decimate",
     "StagePlan": "chainplan", "design_stage": "chainplan", "plan_chain": "chainplan",
-    "envelope_spectrum": "envelope",
+    "EnvelopeStream": "envelope", "envelope_spectrum": "envelope",
     "FMAX_RATIO": "filterbank", "FilterBank": "filterbank", "FrameBatch": "filterbank",
     "FrameGrid": "filterbank", "PowerBatch": "filterbank", "dc_shape": "filterbank",
     "BearingFrequencies": "kinematics", "BearingOrders": "kinematics",
     "bearing_frequencies": "kinematics", "gear_mesh_hz": "kinematics",
     "sidebands": "kinematics",
+    "Kurtogram": "kurtogram", "KurtogramBand": "kurtogram", "complex_kurtosis": "kurtogram",
+    "fast_kurtogram": "kurtogram", "kurtogram_levels": "kurtogram",
+    "spectral_kurtosis": "kurtogram",
     "G_N": "scaling", "DEFAULT_UNIT": "scaling", "amplitude_from_power": "scaling",
     "power_from_amplitude": "scaling", "power_spectrum": "scaling",
     "psd_from_power": "scaling", "quantity_of": "scaling", "unit_power_weights": "scaling",
@@ -106,6 +110,8 @@ __all__ = [
     "INDEX_MIN",
     "INPUT_UNITS",
     "InputUnit",
+    "Kurtogram",
+    "KurtogramBand",
     "LINEAR_ENDS",
     "LinearEnd",
     "MAX_FACTOR",
@@ -133,17 +139,21 @@ __all__ = [
     "bearing_frequencies",
     "bin_response",
     "check_choice",
+    "complex_kurtosis",
     "dc_shape",
     "check_index_span",
     "check_window",
     "design_stage",
+    "EnvelopeStream",
     "envelope_spectrum",
+    "fast_kurtogram",
     "find_peaks",
     "frames_for_time_constant",
     "gear_mesh_hz",
     "get_window",
     "goertzel",
     "harmonics",
+    "kurtogram_levels",
     "low_limit_hz",
     "octave_bands",
     "orders_to_hz",
@@ -157,6 +167,7 @@ __all__ = [
     "severity_range_hz",
     "severity_zone",
     "sidebands",
+    "spectral_kurtosis",
     "spectrum_peaks",
     "tone_kernel",
     "tone_power",
@@ -208,7 +219,7 @@ if TYPE_CHECKING:  # what type checkers and editors see; the run-time path is __
     )
     from .chainplan import MAX_FACTOR, MIN_FACTOR, ChainPlan, StagePlan, design_stage, plan_chain
     from .decimate import DecimationChain, Decimator, MultiRate
-    from .envelope import envelope_spectrum
+    from .envelope import EnvelopeStream, envelope_spectrum
     from .filterbank import FMAX_RATIO, FilterBank, FrameBatch, FrameGrid, PowerBatch, dc_shape
     from .kinematics import (
         BearingFrequencies,
@@ -216,6 +227,14 @@ if TYPE_CHECKING:  # what type checkers and editors see; the run-time path is __
         bearing_frequencies,
         gear_mesh_hz,
         sidebands,
+    )
+    from .kurtogram import (
+        Kurtogram,
+        KurtogramBand,
+        complex_kurtosis,
+        fast_kurtogram,
+        kurtogram_levels,
+        spectral_kurtosis,
     )
     from .scaling import (
         DEFAULT_UNIT,

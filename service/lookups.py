@@ -12,13 +12,28 @@ from pydantic import BaseModel
 
 from dsp.analyzer import ToneDef
 from dsp.bands import Band, octave_bands
+from dsp.kinematics import BearingOrders, bearing_frequencies
 
 from .config.models import Config
 from .config.plant import BandConfig
 from .config.queries import channel_settings, profiles_of
 from .config.settings import AnalysisSettings
 
-__all__ = ["bands_for", "effective_analysis", "missing_value", "tones_for", "watched"]
+__all__ = [
+    "DEFECT_HALF_WIDTH",
+    "bands_for",
+    "bearing_orders",
+    "defect_bands",
+    "defect_tones",
+    "effective_analysis",
+    "missing_value",
+    "tones_for",
+    "watched",
+]
+
+# Half-width of a defect band, a fraction of its centre: real bearings run 1-2 % below the
+# no-slip frequencies (Randall & Antoni 2011); ±3 % holds that and a speed off by 1 %.
+DEFECT_HALF_WIDTH = 0.03
 
 
 def _primary(cfg: Config, channel_id: str, profile: str | None) -> str:
@@ -35,7 +50,53 @@ def effective_analysis(
     prof: BaseModel | None = cfg.profiles.get(_primary(cfg, channel_id, profile))
     if prof is not None:
         out = out.model_copy(update=prof.model_dump(exclude_none=True))
+    if out.kind == "envelope" and (out.unit != "acceleration" or out.output_unit not in (
+        None, "g", "m/s2"
+    )):
+        # an envelope is of the acceleration signal; integrating it means nothing
+        out = out.model_copy(update={"unit": "acceleration", "output_unit": None})
     return out
+
+
+def bearing_orders(cfg: Config, channel_id: str) -> BearingOrders | None:
+    """The defect frequencies of the channel's ``bearing`` as orders of its shaft speed
+    (``dsp.kinematics``), or None without one (or for an id no ``[[bearings]]`` has)."""
+    bid = channel_settings(cfg, channel_id).bearing
+    b = next((x for x in cfg.bearings if x.id == bid), None) if bid else None
+    if b is None:
+        return None
+    return bearing_frequencies(b.n_balls, b.ball_d, b.pitch_d, b.contact_angle_deg,
+                               1.0).as_orders()
+
+
+def defect_bands(orders: BearingOrders) -> list[Band]:
+    """Bands around the defect frequencies and harmonics, as orders (so they follow the
+    speed however it is known): BPFO, 2xBPFO, 3xBPFO, BPFI, 2xBPFI, BSF, 2xBSF, each
+    ±DEFECT_HALF_WIDTH of its centre."""
+    w = DEFECT_HALF_WIDTH
+    items = [("BPFO", orders.bpfo, 3), ("BPFI", orders.bpfi, 2), ("BSF", orders.bsf, 2)]
+    return [
+        Band(name if k == 1 else f"{k}x{name}", k * o * (1 - w), k * o * (1 + w), "order")
+        for name, o, count in items for k in range(1, count + 1)
+    ]
+
+
+def defect_tones(orders: BearingOrders) -> list[ToneDef]:
+    """Tracked tones at 1X and the four defect frequencies (orders); a display marks
+    their harmonics and BPFI's 1X sidebands from them."""
+    return [ToneDef("1X", order=1.0), ToneDef("FTF", order=orders.ftf),
+            ToneDef("BSF", order=orders.bsf), ToneDef("BPFO", order=orders.bpfo),
+            ToneDef("BPFI", order=orders.bpfi)]
+
+
+def _defects(cfg: Config, channel_id: str, profile: str) -> BearingOrders | None:
+    """The bearing orders when ``profile`` is an envelope profile of a channel with a
+    bearing and a speed; else None."""
+    if effective_analysis(cfg, channel_id, profile).kind != "envelope":
+        return None
+    if channel_settings(cfg, channel_id).speed_rpm is None:
+        return None
+    return bearing_orders(cfg, channel_id)
 
 
 def _expand_band(b: BandConfig) -> list[Band]:
@@ -100,6 +161,11 @@ def bands_for(cfg: Config, channel_id: str, profile: str | None = None) -> list[
             out += expand(b)
         elif b.channel == "*" and (rpm is not None or not _is_order_band(b)):
             out += [band for band in expand(b) if band.name not in own_names]
+    orders = _defects(cfg, channel_id, profile)
+    if orders is not None:  # a configured band of the same name wins
+        taken = {b.name for b in out}
+        out += [b for b in defect_bands(orders) if b.name not in taken
+                and _covers(fmax, b.hi * rpm / 60.0)]  # type: ignore[operator]
     return out
 
 
@@ -113,12 +179,18 @@ def tones_for(cfg: Config, channel_id: str, profile: str | None = None) -> list[
         if _applies(t.profile, profile, fmax, _top_hz(t.hz, t.order, rpm))
     ]
     own_names = {t.name for t in mine if t.channel == channel_id}
-    return [
+    out = [
         ToneDef(t.name, hz=t.hz, order=t.order)
         for t in mine
         if t.channel == channel_id
         or (t.channel == "*" and t.name not in own_names and (rpm is not None or t.order is None))
     ]
+    orders = _defects(cfg, channel_id, profile)
+    if orders is not None:
+        taken = {t.name for t in out}
+        out += [t for t in defect_tones(orders) if t.name not in taken
+                and _covers(fmax, (t.order or 0.0) * rpm / 60.0)]  # type: ignore[operator]
+    return out
 
 
 def _watched_profiles(mine: list[str], profile: str | None) -> list[str]:

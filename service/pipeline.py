@@ -75,6 +75,7 @@ class SourcePipeline:
         self._last_drops = 0
         self._flat_run: np.ndarray | None = None
         self._flat_last: np.ndarray | None = None
+        self._clock: tuple[int, int, float] = (0, 0, 0.0)  # latest block: first_index, t0_ns, fs
 
     async def run(self) -> None:
         """Consume the source until it ends or the task is cancelled."""
@@ -121,6 +122,7 @@ class SourcePipeline:
                     st.stale_after_s = stale_after_s(self.cfg, cid, plans)
             self.evidence.restart(len(block.channel_ids), block.fs)
         states = [self.channels[c] for c in block.channel_ids]
+        self._clock = (block.first_index, block.t0_ns, block.fs)
         x = block.data
         gap = self._next_index is not None and block.first_index != self._next_index
         self._next_index = block.first_index + block.n
@@ -232,6 +234,26 @@ class SourcePipeline:
     ) -> None:
         """Ask for the waveform around ``center_index`` (called from the event loop)."""
         self.evidence.request(event_id, channel, center_index, spectrum, self.fs or 0.0)
+
+    def envelope_state(self, channel: str, profile: str) -> dict[str, object] | None:
+        """An envelope profile's band in use and latest kurtogram (``service.envelope``),
+        with the kurtogram's time; None if there is no such envelope profile yet. Read from
+        the event loop: the worker replaces the kurtogram whole, never edits it."""
+        bank = self.bank
+        if bank is None:
+            return None
+        g = next((g for g in bank.groups if g.front is not None and g.profile == profile
+                  and channel in g.channel_ids), None)
+        if g is None or g.front is None:
+            return None
+        d = g.front.as_dict()
+        end = d.get("kurtogram_end_index")
+        first, t0_ns, fs = self._clock
+        d["kurtogram_t_ns"] = (None if not isinstance(end, int) or not fs
+                               else t0_ns + round((end - first) * 1e9 / fs))
+        d["kurtogram_length_s"] = g.front.setup.length_s
+        d["kurtogram_levels"] = g.front.setup.levels
+        return d
 
     def latest_waveform(self, channel: str, seconds: float
                         ) -> tuple[np.ndarray, float, int] | None:

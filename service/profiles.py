@@ -31,6 +31,7 @@ from .config import (
     channel_settings,
     profiles_of,
 )
+from .envelope import EnvelopeFront, EnvelopeSetup
 from .lookups import bands_for, effective_analysis, tones_for
 
 OVERALL = "_overall"  # internal band: the channel's overall value (see overall_band)
@@ -124,6 +125,7 @@ class ProfilePlan:
     factor: int
     stages: tuple[int, ...]
     notes: tuple[str, ...]
+    envelope: EnvelopeSetup | None = None  # an envelope profile's demodulation
 
     @property
     def fs_hz(self) -> float:
@@ -157,6 +159,9 @@ class ProfilePlan:
             "bands": [b.name for b in self.bands],
             "tones": [t.name for t in s.tones],
             "notes": list(self.notes),
+            "kind": "spectrum" if self.envelope is None else "envelope",
+            "envelope_band": None if self.envelope is None else (
+                "auto" if self.envelope.band is None else list(self.envelope.band)),
         }
 
 
@@ -232,11 +237,19 @@ def plan_profiles(cfg: Config, channel_id: str, fs_in: float) -> list[ProfilePla
         res = analysis_spec(
             settings, fs, input_unit=ch.input_unit, bands=(*bands, overall), tones=tones
         )
+        envelope = None
+        if settings.kind == "envelope":
+            band = settings.band
+            envelope = EnvelopeSetup(
+                band=None if band == "auto" else (float(band[0]), float(band[1])),
+                interval_s=settings.kurtogram_interval_s,
+                length_s=settings.kurtogram_length_s, levels=settings.kurtogram_levels,
+            )
         out.append(
             ProfilePlan(
                 channel=channel_id, name=name, primary=i == 0, settings=settings,
                 spec=res.spec, bands=bands, fs_in=float(fs_in), factor=chain.factor,
-                stages=chain.factors, notes=notes,
+                stages=chain.factors, notes=notes, envelope=envelope,
             )
         )
     return out
@@ -259,6 +272,7 @@ class ChannelGroup:
     tap: str | None = None
     tap_rows: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.intp))
     plan: ProfilePlan | None = None
+    front: EnvelopeFront | None = None  # an envelope profile's demodulation
 
 
 class ProfileBank:
@@ -281,6 +295,8 @@ class ProfileBank:
         taps: dict[int, list[int]] = {}
         for row, cid in enumerate(channel_ids):
             for p in self.plans[cid]:
+                if p.envelope is not None:
+                    continue  # decimates its own envelope (service.envelope)
                 if p.factor > 1 and row not in taps.setdefault(p.factor, []):
                     taps[p.factor].append(row)
         self.rates: MultiRate | None = None
@@ -298,7 +314,9 @@ class ProfileBank:
         for row, cid in enumerate(channel_ids):
             input_unit = channel_settings(cfg, cid).input_unit
             for p in self.plans[cid]:
-                key = repr((p.name, p.spec, input_unit, p.factor))
+                key = repr((p.name, p.spec, input_unit, p.factor, p.envelope))
+                if p.envelope is not None and p.envelope.band is None:
+                    key = repr((p.name, cid))  # an automatic band is the channel's own
                 keyed.setdefault(key, []).append(row)
                 plan_of[key] = p
         self.groups: list[ChannelGroup] = []
@@ -309,6 +327,10 @@ class ProfileBank:
                 [(channel_settings(cfg, c).speed_rpm or math.nan) / 60.0 for c in ids]
             )
             tap = None if p.factor == 1 else f"x{p.factor}"
+            front = None
+            if p.envelope is not None:
+                front = EnvelopeFront(self.fs_in, p.fmax_hz, p.envelope, len(rows))
+                tap = None
             self.groups.append(
                 ChannelGroup(
                     profile=p.name,
@@ -323,6 +345,7 @@ class ProfileBank:
                     tap_rows=np.array([self._pos[r] for r in rows] if tap else rows,
                                       dtype=np.intp),
                     plan=p,
+                    front=front,
                 )
             )
 
@@ -342,7 +365,12 @@ class ProfileBank:
                 )
         done = []
         for g in self.groups:
-            if g.tap is None:
+            if g.front is not None:
+                env = g.front.push(x[g.rows], first_index)
+                if env is None:
+                    continue
+                new = g.analyzer.push(env[0], first_index=env[1])
+            elif g.tap is None:
                 new = g.analyzer.push(x[g.rows], first_index=first_index)
             else:
                 y, k0 = taps[g.tap]
@@ -356,6 +384,8 @@ class ProfileBank:
     def end_index(self, g: ChannelGroup) -> int:
         """Input-stream index just after the content of ``g``'s newest frame."""
         end = g.analyzer.last_end_index or 0
+        if g.front is not None:
+            return g.front.content_index(end)
         if g.tap is None or self.rates is None:
             return int(end)
         return int(self.rates.content_index(g.tap, end))

@@ -300,3 +300,8 @@ class PipelineHealth(Protocol):
         """The newest ``seconds`` of ``channel``'s samples in input units (after
         sensitivity): (samples, fs, t0_ns), or None before any data."""
         ...
+
+    def envelope_state(self, channel: str, profile: str) -> dict[str, object] | None:
+        """An envelope profile's band in use and latest kurtogram (JSON-ready), or None if
+        ``profile`` is not an envelope profile of ``channel`` or it has not started."""
+        ...

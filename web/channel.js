@@ -4,6 +4,7 @@
 
 import { API, ApiError, getJSON, qs } from "./api.js";
 import { mountWave } from "./waveform.js"; // the waveform panel (console)
+import { defectMarkers, mountKurtogram } from "./kurtogram.js"; // envelope profiles
 import { watchName } from "./names.js";
 import { AMP_CHOICES, UNIT_CHOICES, ampLabel, fmtClock, fmtHz, fmtHzAt, fmtHzExact, fmtVal, unitLabel } from "./fmt.js";
 import { badge, html, setHTML, updateHTML } from "./dom.js";
@@ -83,6 +84,7 @@ export function mount(root, id, { profile = "" } = {}) {
         <figure class="panel"><figcaption>Spectrum <span class="hint">wheel: zoom · drag: pan · shift+wheel or ↑↓: amplitude · ← →, + −, 0 · L/F: log · click: pick a line</span><span class="readout" id="readout"></span></figcaption>
           <canvas id="spec" class="plot-spec" tabindex="0" aria-label="averaged spectrum of ${id}; use the arrow keys, plus and minus to move and zoom"></canvas>
           <p class="spec-cap" id="spec-cap" aria-live="polite"></p></figure>
+        <figure class="panel" id="kg-panel" hidden></figure>
         <figure class="panel"><figcaption>Spectrogram <span class="hint">newest at the top; same frequency axis as above</span></figcaption><canvas id="sgram" class="plot-sgram"></canvas></figure>
         <figure class="panel" id="hist-panel"></figure>
         <figure class="panel"><figcaption>Trend
@@ -103,7 +105,9 @@ export function mount(root, id, { profile = "" } = {}) {
     </div>`);
 
   const $ = (s) => root.querySelector(s);
-  const extras = [mountWave($("#wave-panel"), id), watchName($("#ch-name"), id, app)]; // console
+  const isEnvelope = () => curProfile()?.kind === "envelope";
+  const kgPanel = mountKurtogram($("#kg-panel"), id, { profile: () => cur(), active: isEnvelope });
+  const extras = [mountWave($("#wave-panel"), id), watchName($("#ch-name"), id, app), kgPanel]; // console
   const readout = $("#readout");
   const specCanvas = $("#spec");
   const sg = new Spectrogram($("#sgram"), { rows: 200 });
@@ -170,6 +174,7 @@ export function mount(root, id, { profile = "" } = {}) {
     plot.setMarkers({ speedHz: (chan()?.speed_rpm || 0) / 60, bearing: [] });
     sg.clear();
     hist.reload();
+    kgPanel.refresh();
     for (const k of ["seq", "profile", "f0Hz", "dfHz"]) delete specCanvas.dataset[k];
     bars.setRows([], "");
     thirds.setRows([], "");
@@ -422,7 +427,11 @@ export function mount(root, id, { profile = "" } = {}) {
   function onTones(m, force = false) {
     if (!mine(m)) return;
     st.tones = m;
-    plot.setMarkers({ speedHz: (chan()?.speed_rpm || 0) / 60, bearing: (m.tones || []).filter((t) => BEARING.test(t.name)).map((t) => ({ name: t.name, f: t.frequency_hz })) });
+    const speedHz = (chan()?.speed_rpm || 0) / 60;
+    // an envelope spectrum marks the defect frequencies, harmonics and BPFI's ±1X sidebands
+    const bearing = isEnvelope() ? defectMarkers(m.tones, speedHz)
+      : (m.tones || []).filter((t) => BEARING.test(t.name)).map((t) => ({ name: t.name, f: t.frequency_hz }));
+    plot.setMarkers({ speedHz, bearing });
     const now = performance.now();
     if (!force && now - tonesAt < TEXT_PERIOD_MS) return;
     tonesAt = now;
@@ -682,6 +691,8 @@ export function mount(root, id, { profile = "" } = {}) {
       view: () => plot.view && { ...plot.view },
       bands: () => st.bands && { profile: st.bands.profile, names: (st.bands.bands || []).map((b) => b.name) },
       history: () => hist.probe(),
+      kurtogram: () => kgPanel.probe(),
+      markers: () => plot.bearing.map((b) => ({ ...b })), // bearing / defect markers drawn
       bars: () => bars.rows.map((r) => ({ name: r.name, value: r.value, alert: r.alert, danger: r.danger, state: r.state, via: r.via })),
       labels: () => plot.labels.map((l) => ({ ...l })), // every text drawn on the spectrum, with its box
       notLive: () => $("#ch-lastnote").hidden ? "" : $("#ch-lastnote").textContent,

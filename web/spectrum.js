@@ -529,7 +529,7 @@ export class SpectrumPlot {
     for (const t of this.bearing) {
       if (!(t.f > 0)) continue;
       const spacing = this.xs.px(this.view.hi) - this.xs.px(this.view.hi - t.f);
-      const maxK = spacing < 14 ? 1 : 5;
+      const maxK = spacing < 14 ? 1 : (t.harmonics ?? 5); // a sideband is marked once
       for (let k = 1; k <= maxK; k++) {
         const f = k * t.f;
         if (f < this.view.lo || f > this.view.hi) continue;

@@ -32,6 +32,7 @@ from . import (
     edge,
     health,
     history,
+    kurtogram,
     meta,
     metrics,
     rules,
@@ -102,6 +103,7 @@ def create_app(
     app.include_router(health.router, prefix="/api/v1")
     app.include_router(channels.router, prefix="/api/v1")
     app.include_router(waveform.router, prefix="/api/v1")
+    app.include_router(kurtogram.router, prefix="/api/v1")
     app.include_router(stream.router, prefix="/api/v1")
     app.include_router(windows.router, prefix="/api/v1")
     app.include_router(alarms.router, prefix="/api/v1")

@@ -240,6 +240,8 @@ def _config_run(args: argparse.Namespace, cfg: Config, row: int, cid: str,
         "channels": [channel],
         "bands": bands + cli_bands,
         "tones": tones + cli_tones,
+        # the channel's bearing, for an envelope profile's defect bands and tones
+        "bearings": [b.model_dump() for b in cfg.bearings if b.id == ch.bearing],
     }
     if cfg.profiles:  # the one profile, under its own name, with the merged settings
         doc["profiles"] = {prof: settings}

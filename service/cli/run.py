@@ -153,6 +153,12 @@ def cmd_check(args: argparse.Namespace) -> int:
             g, spec = p.spec.grid, p.spec
             dec = f"decimated x{p.factor} ({'*'.join(map(str, p.stages))}) to {g.fs:g} Hz, " if (
                 p.factor > 1) else ""
+            env = p.envelope
+            if env is not None:  # an envelope profile: its demodulation band first
+                band = (f"band {env.band[0]:g}-{env.band[1]:g} Hz" if env.band is not None
+                        else f"band auto (kurtogram of {env.length_s:g} s every "
+                             f"{env.interval_s:g} s)")
+                dec = f"envelope, {band}, {dec}"
             what = (
                 f"{dec}Fmax {p.fmax_hz:g} Hz, {g.lines} lines, "
                 f"df {g.df_hz:g} Hz, {spec.window}, N {g.n}, hop {g.hop}, "

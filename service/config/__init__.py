@@ -26,7 +26,15 @@ from .describe import describe_settings
 from .load import load_config, parse_config
 from .models import MODELS, Config
 from .notify import NotifyConfig, QuietHours
-from .plant import AlarmConfig, BandConfig, ChannelConfig, MachineConfig, TokenConfig, ToneConfig
+from .plant import (
+    AlarmConfig,
+    BandConfig,
+    BearingConfig,
+    ChannelConfig,
+    MachineConfig,
+    TokenConfig,
+    ToneConfig,
+)
 from .queries import channel_ids, channel_settings, profile_names, profiles_of, source_of
 from .settings import (
     DEFAULT_PROFILE,
@@ -57,6 +65,7 @@ __all__ = [
     "DEFAULT_PROFILE",
     "ProfileSettings",
     "BandConfig",
+    "BearingConfig",
     "ChannelConfig",
     "Config",
     "ConfigError",

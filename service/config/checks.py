@@ -100,6 +100,7 @@ class _Checker:
         self.alarms()
         self.tokens()
         self.machines()
+        self.bearings()
         self.notify()
         return self.problems
 
@@ -274,6 +275,15 @@ class _Checker:
                 f"{where('output_unit')}: {a.output_unit!r} is not a unit "
                 f"of {a.unit} (unit = {a.unit!r})"
             )
+        if a.kind == "envelope" and a.band != "auto" and not doubt("band", "fmax_hz"):
+            lo, hi = a.band
+            if lo <= a.fmax_hz:
+                self.add(f"{where('band')}: the envelope band's lower edge {_fmt_hz(lo)} must "
+                         f"be above fmax_hz {_fmt_hz(a.fmax_hz)} (the rectifier puts "
+                         "products at twice the band's frequencies)")
+            if fs is not None and hi >= fs / 2:
+                self.add(f"{where('band')}: the envelope band's upper edge {_fmt_hz(hi)} must "
+                         f"be below half the sample rate, {_fmt_hz(fs / 2)}")
         if a.lowcut_hz >= a.fmax_hz and not doubt("lowcut_hz", "fmax_hz"):
             self.add(
                 f"{where('lowcut_hz')}: {_fmt_hz(a.lowcut_hz)} must be "
@@ -436,6 +446,25 @@ class _Checker:
                 listed = ", ".join(repr(x) for x in sorted(used)) or "none"
                 self.add(f"machines[{j}].id: {m.id!r} is not the machine of any channel "
                          f"(channels' machines: {listed})")
+
+    def bearings(self) -> None:
+        seen: dict[str, int] = {}
+        for j, b in enumerate(self.cfg.bearings):
+            if b.id in seen:
+                self.add(f"bearings[{j}].id: {b.id!r} repeats bearings[{seen[b.id]}]")
+            seen.setdefault(b.id, j)
+        if self.doubts.any_failed("bearings"):
+            return
+        for j, c in enumerate(self.cfg.channels):
+            if c.bearing is None:
+                continue
+            if c.bearing not in seen:
+                listed = ", ".join(map(repr, seen)) or "none"
+                self.add(f"channels[{j}].bearing: {c.bearing!r} is not a bearing "
+                         f"(bearings: {listed})")
+            elif c.speed_rpm is None:
+                self.add(f"channels[{j}].bearing: channel {c.id!r} has no speed_rpm, so the "
+                         "bearing's defect frequencies cannot be placed")
 
     def notify(self) -> None:
         seen: dict[str, int] = {}

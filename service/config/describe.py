@@ -11,7 +11,15 @@ from typing import Annotated, Any, Literal, Union, get_args, get_origin
 from pydantic import BaseModel
 
 from .notify import NotifyConfig, QuietHours
-from .plant import AlarmConfig, BandConfig, ChannelConfig, MachineConfig, TokenConfig, ToneConfig
+from .plant import (
+    AlarmConfig,
+    BandConfig,
+    BearingConfig,
+    ChannelConfig,
+    MachineConfig,
+    TokenConfig,
+    ToneConfig,
+)
 from .settings import (
     AnalysisOverride,
     AnalysisSettings,
@@ -40,6 +48,7 @@ def describe_settings() -> list[tuple[str, str, str, str]]:
         ("[[alarms]]", AlarmConfig),
         ("[[tokens]]", TokenConfig),
         ("[[machines]]", MachineConfig),
+        ("[[bearings]]", BearingConfig),
         ("[[notify]]", NotifyConfig),
         ("[[notify]] quiet_hours", QuietHours),
     ]

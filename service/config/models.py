@@ -13,6 +13,7 @@ from .notify import NotifyConfig, QuietHours
 from .plant import (
     AlarmConfig,
     BandConfig,
+    BearingConfig,
     ChannelConfig,
     MachineConfig,
     TokenConfig,
@@ -58,6 +59,10 @@ class Config(StrictModel):
     alarms: list[AlarmConfig] = Field(default_factory=list, description="[[alarms]]")
     tokens: list[TokenConfig] = Field(default_factory=list, description="[[tokens]]")
     machines: list[MachineConfig] = Field(default_factory=list, description="[[machines]]")
+    bearings: list[BearingConfig] = Field(
+        default_factory=list,
+        description="[[bearings]]: rolling-element bearing geometry for defect frequencies",
+    )
     notify: list[NotifyConfig] = Field(
         default_factory=list, description="[[notify]]: notification targets (service.notify)"
     )
@@ -80,6 +85,7 @@ MODELS: tuple[type[BaseModel], ...] = (
     AlarmConfig,
     TokenConfig,
     MachineConfig,
+    BearingConfig,
     NotifyConfig,
     QuietHours,
 )

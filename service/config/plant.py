@@ -68,11 +68,18 @@ class ChannelConfig(StrictModel):
     analysis: AnalysisOverride = Field(  # type: ignore[valid-type]
         default_factory=AnalysisOverride, description="Per-channel analysis overrides."
     )
+    bearing: Id | None = Field(
+        None,
+        description="Id of a [[bearings]] entry: the bearing this sensor watches. Its defect "
+        "frequencies (BPFO, BPFI, BSF, FTF; orders of speed_rpm) become bands and tracked "
+        "tones of the channel's envelope profiles.",
+    )
     profiles: list[Id] | None = Field(
         None,
         description="Analysis profiles this channel runs, by name from [profiles]; the first "
         "is its primary one (what REST and the stream give when no profile is asked for). "
-        "Default: every profile, in file order.",
+        "Default: every profile, in file order, except envelope profiles (kind = "
+        "'envelope' in their own table), which a channel runs only when it lists them.",
     )
 
 
@@ -169,6 +176,21 @@ class AlarmConfig(StrictModel):
             alert_factor=self.alert_factor, danger_factor=self.danger_factor,
             alert_db=self.alert_db, danger_db=self.danger_db,
         )
+        return self
+
+
+class BearingConfig(StrictModel):
+    id: Id = described("Bearing id, named by a channel's `bearing`.")
+    n_balls: int = Field(ge=1, le=500, description="Number of balls or rollers.")
+    ball_d: float = Field(gt=0, description="Ball (roller) diameter, any length unit.")
+    pitch_d: float = Field(gt=0, description="Pitch diameter, the same length unit as ball_d.")
+    contact_angle_deg: float = Field(0.0, ge=0, lt=90, description="Contact angle, degrees.")
+
+    @model_validator(mode="after")
+    def _sizes(self) -> BearingConfig:
+        if not self.ball_d < self.pitch_d:
+            raise ValueError(f"ball_d={self.ball_d:g} must be smaller than "
+                             f"pitch_d={self.pitch_d:g}")
         return self
 
 

@@ -6,6 +6,8 @@ Pure functions over the models; nothing about the engine (what a profile analyse
 
 from __future__ import annotations
 
+from pydantic import BaseModel
+
 from .models import Config
 from .plant import ChannelConfig
 from .settings import DEFAULT_PROFILE
@@ -34,6 +36,13 @@ def profile_names(cfg: Config) -> list[str]:
 
 
 def profiles_of(cfg: Config, channel_id: str) -> list[str]:
-    """The profiles ``channel_id`` runs, its primary one first."""
+    """The profiles ``channel_id`` runs, its primary one first: its own ``profiles``, else
+    every profile but those whose table makes them envelope profiles (``kind =
+    "envelope"``: a channel runs one only when it lists it)."""
     own = channel_settings(cfg, channel_id).profiles
-    return list(own) if own else profile_names(cfg)
+    if own:
+        return list(own)
+    names = profile_names(cfg)
+    tables: dict[str, BaseModel] = dict(cfg.profiles)
+    return [n for n in names if n not in tables
+            or tables[n].model_dump().get("kind") != "envelope"] or names

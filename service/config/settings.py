@@ -6,7 +6,7 @@ only the closed option sets."""
 
 from __future__ import annotations
 
-from typing import Annotated, Any
+from typing import Annotated, Any, Literal
 
 from pydantic import AfterValidator, BaseModel, Field, create_model, model_validator
 
@@ -24,6 +24,19 @@ def _valid_zone(text: str) -> str:
 
 
 TimeZoneName = Annotated[str, AfterValidator(_valid_zone)]
+
+
+def _valid_band(edges: list[float]) -> list[float]:
+    lo, hi = edges
+    if not (0 < lo < hi):
+        raise ValueError(f"band {edges!r} must be [lo_hz, hi_hz] with 0 < lo_hz < hi_hz")
+    return edges
+
+
+ProfileKind = Literal["spectrum", "envelope"]
+EnvelopeBand = Literal["auto"] | Annotated[
+    list[float], Field(min_length=2, max_length=2), AfterValidator(_valid_band)
+]
 
 
 class ServiceSettings(StrictModel):
@@ -203,6 +216,35 @@ class AnalysisSettings(StrictModel):
         "window's main lobe can raise it (docs/low-frequency.md).",
     )
     peaks: int = Field(8, ge=0, le=256, description="Number of spectral peaks reported.")
+    kind: ProfileKind = Field(
+        "spectrum",
+        description="spectrum | envelope. An envelope profile band-passes the signal (see "
+        "band), takes its envelope (full-wave rectified and low-passed) and shows the "
+        "envelope's spectrum up to fmax_hz, in acceleration: bearing defects' strike rates "
+        "(BPFO, BPFI, BSF, FTF) appear there as lines. Its unit is always acceleration.",
+    )
+    band: EnvelopeBand = Field(
+        "auto",
+        description="Envelope profiles: the band-pass [lo_hz, hi_hz] before demodulation, "
+        "Hz (fmax_hz < lo_hz < hi_hz < fs/2), or 'auto': the band of greatest spectral "
+        "kurtosis by Antoni's fast kurtogram, chosen again every kurtogram_interval_s on the "
+        "latest kurtogram_length_s of samples, and changed only when another band is "
+        "clearly and repeatedly better.",
+    )
+    kurtogram_interval_s: float = Field(
+        10.0, ge=1, le=86400,
+        description="Envelope profiles: a kurtogram every this many s of the stream, s.",
+    )
+    kurtogram_length_s: float = Field(
+        1.0, ge=0.05, le=10,
+        description="Envelope profiles: the latest samples each kurtogram analyses, s.",
+    )
+    kurtogram_levels: int = Field(
+        6, ge=1, le=10,
+        description="Envelope profiles: the kurtogram's depth; its narrowest bands are "
+        "fs/2^(levels+1) Hz wide (fewer where kurtogram_length_s holds fewer than "
+        "2^(levels+7) samples).",
+    )
 
 
 def _override_model(name: str, scope: str) -> type[BaseModel]:

@@ -132,8 +132,12 @@ def test_profile_mistakes_name_the_key_and_the_reason(edit: dict[str, Any], expe
 def test_demo_runs_wide_and_a_narrow_profile_decimated_by_ten() -> None:
     cfg = demo_config()
     plans = {p.name: p for p in plan_profiles(cfg, "p1-de-h", FS)}
-    assert list(plans) == ["wide", "narrow"] and plans["wide"].primary
+    assert list(plans) == ["wide", "narrow", "envelope"] and plans["wide"].primary
     w, n = plans["wide"], plans["narrow"]
+    # the envelope profile decimates its own envelope by the same chain (service.envelope)
+    e = plans["envelope"]
+    assert e.envelope is not None and e.envelope.band is None and (e.factor, e.fmax_hz) == (
+        10, 500.0)
     # fs = 2.56·Fmax, N = 2.56·lines, df = fs/N (common practice)
     assert (w.factor, w.fmax_hz, w.spec.grid.n, w.spec.grid.df_hz) == (1, 5000.0, 4096, 3.125)
     assert (n.factor, n.stages, n.fs_hz, n.fmax_hz) == (10, (10,), 1280.0, 500.0)

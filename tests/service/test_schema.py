@@ -60,6 +60,7 @@ GET_ROUTES = [
     "/api/v1/channels/{channel_id}/history/compare",
     "/api/v1/channels/{channel_id}/waterfall",
     "/api/v1/channels/{channel_id}/waveform",
+    "/api/v1/channels/{channel_id}/kurtogram",
     "/api/v1/alarms",
     "/api/v1/alarms/shelved",
     "/api/v1/rules",
