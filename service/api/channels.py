@@ -4,15 +4,17 @@ Reads the hub's latest frames; never touches an engine."""
 
 from __future__ import annotations
 
+import math
 import time
 from typing import Annotated, Any, Literal
 
 import numpy as np
-from fastapi import APIRouter, Query, Response
+from fastapi import APIRouter, Body, HTTPException, Query, Response
+from pydantic import BaseModel, Field
 
 from dsp.types import AMPLITUDES, OUTPUT_UNITS, QUANTITIES
 
-from ..config import Config
+from ..config import Config, channel_settings
 from ..hub import Hub
 from ..spectra import (
     band_items,
@@ -26,6 +28,7 @@ from ..spectra import (
 from ..types import ChannelState, SpectralFrame
 from .deps import NO_FRAME, NOT_FOUND, ChannelDep, ConfigDep, HubDep, ProfileQ, get_frame
 from .rules import names
+from .security import Operator, role_responses
 from .timefields import with_times
 
 router = APIRouter(tags=["channels"])
@@ -44,13 +47,28 @@ def _num(v: float) -> float | None:
 
 
 def _stamp(frame: SpectralFrame) -> dict[str, Any]:
-    return {
+    d = {
         "channel": frame.channel,
         "profile": frame.profile,
         "seq": frame.seq,
         "timestamp_ns": frame.t_ns,
         "timestamp": _iso(frame.t_ns),
         "quality": frame.quality,
+    }
+    if frame.speed_source:
+        d["speed"] = frame_speed(frame)
+    return d
+
+
+def frame_speed(frame: SpectralFrame) -> dict[str, Any]:
+    """The speed a frame's orders were placed at, with its source and status, and whether
+    it changed within the frame by more than the channel's speed_tolerance (``varied``)."""
+    return {
+        "rpm": _num(frame.speed_rpm),
+        "source": frame.speed_source,
+        "status": frame.speed_status,
+        "variation": _num(frame.speed_variation),
+        "varied": frame.speed_varied,
     }
 
 
@@ -212,3 +230,42 @@ def get_tones(channel: ChannelDep, hub: HubDep, cfg: ConfigDep, profile: Profile
               ) -> dict[str, Any]:
     d = {**tones_payload(get_frame(channel.id, hub, profile)), **_now_state(channel)}
     return with_times(d, cfg.service.timezone)
+
+
+class SpeedBody(BaseModel):
+    rpm: float | None = Field(
+        ..., gt=0, le=1e6,
+        description="Running speed, r/min; null returns the channel to its configured speed.",
+    )
+
+
+@router.put(
+    "/channels/{channel_id}/speed",
+    summary="Write a channel's running speed by hand (operator role)",
+    responses={
+        **role_responses("operator"),
+        404: {"description": "unknown channel"},
+        409: {"description": "the channel's speed is measured (tacho or estimated), or it "
+                             "is a tacho channel"},
+    },
+)
+def put_speed(channel: ChannelDep, cfg: ConfigDep, who: Operator,
+              body: Annotated[SpeedBody, Body()]) -> dict[str, Any]:
+    if channel.kind == "tacho":
+        raise HTTPException(409, f"channel {channel.id!r} is a tacho: it measures speed")
+    if channel.speed_source in ("tacho", "estimated"):
+        raise HTTPException(
+            409, f"channel {channel.id!r} has its speed from "
+            f"{'tacho ' + repr(channel.speed_from) if channel.speed_from else 'its 1X line'}; "
+            "a written speed would be overridden")
+    # read by the source's worker at its next block (a plain attribute: one writer, here)
+    channel.manual_by = who.name
+    channel.manual_rpm = body.rpm
+    if body.rpm is None:
+        channel.speed_source = channel_settings(cfg, channel.id).speed_source
+        channel.speed_now_rpm = channel.speed_rpm if channel.speed_rpm is not None else math.nan
+        channel.speed_status = "ok" if channel.speed_rpm is not None else "no-signal"
+        return {"channel": channel.id, "speed": channel.speed_dict()}
+    channel.speed_source = "manual"
+    channel.speed_now_rpm, channel.speed_status = float(body.rpm), "ok"
+    return {"channel": channel.id, "speed": channel.speed_dict()}

@@ -137,6 +137,11 @@ class SimulatedSourceConfig(_SourceBase):
     fault_ramp_s: float = Field(
         180.0, gt=0, le=1e6, description="Time the scripted fault takes to reach full severity, s."
     )
+    speed_ramp_s: float = Field(
+        120.0, gt=0, le=1e6,
+        description="Scenario 'variable-speed': time for one speed ramp between 900 and "
+        "1500 r/min (and back), s.",
+    )
 
 
 SOURCE_KINDS: tuple[str, ...] = get_args(SourceKind)

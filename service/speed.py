@@ -1,0 +1,197 @@
+"""Running speed per channel of one source: tacho pulses, estimates from the 1X line, manual
+and fixed speeds; the speed each frame's orders are placed at, and whether it varied.
+
+Runs on the source's worker thread, driven by the pipeline; knows nothing of HTTP or storage."""
+
+from __future__ import annotations
+
+import math
+import time
+from collections.abc import Sequence
+
+import numpy as np
+
+from dsp.tacho import TachoSettings, TachoTracker, speed_from_spectrum
+
+from .config import Config, channel_settings
+from .config.plant import ChannelConfig
+from .profiles import ChannelGroup, ProfileBank
+from .types import ChannelState
+
+__all__ = ["FrameSpeed", "SourceSpeeds", "tacho_settings"]
+
+# the 1X estimate follows at most this relative change from one frame to the next (our choice:
+# a ramp of minutes moves far less between frames; a jump beyond it is searched again)
+ESTIMATE_TRACK = 0.1
+
+FrameSpeed = tuple[float, str, str, float, bool]  # rpm, source, status, variation, varied
+
+
+def tacho_settings(ch: ChannelConfig) -> TachoSettings:
+    """A tacho channel's trigger and plausibility settings from its config entry."""
+    hyst = ch.trigger_hysteresis if ch.trigger_hysteresis is not None else 0.5
+    return TachoSettings(
+        pulses_per_rev=ch.pulses_per_rev, rpm_min=ch.rpm_min, rpm_max=ch.rpm_max,
+        level=ch.trigger_level, hysteresis=hyst, min_swing=ch.min_swing,
+    )
+
+
+class SourceSpeeds:
+    """The speed work of one source at one sample rate ``fs`` (Hz).
+
+    ``push`` feeds the tacho rows of each block to their trackers (stream index = time ×
+    fs); ``place`` sets each group's running speeds before its analyzer reads out; ``frame``
+    gives a channel's speed for the frame just made. Channels with a fixed ``speed_rpm`` keep
+    the speed their analyzer was built with, unless an operator writes one.
+    """
+
+    def __init__(self, cfg: Config, channel_ids: Sequence[str], fs: float,
+                 states: dict[str, ChannelState]) -> None:
+        self.fs = float(fs)
+        self.states = states
+        self.settings = {cid: channel_settings(cfg, cid) for cid in channel_ids}
+        self.trackers: dict[str, tuple[int, TachoTracker]] = {
+            cid: (row, TachoTracker(self.fs, tacho_settings(ch)))
+            for row, (cid, ch) in enumerate(self.settings.items()) if ch.kind == "tacho"
+        }
+        self.tacho_rows = np.array([ch.kind == "tacho" for ch in self.settings.values()])
+        self._started = False
+        self._written: set[str] = set()
+        self._lag: dict[int, int] = {}  # group id → input samples its frames end before a block's
+        self._frame: dict[tuple[int, str], FrameSpeed] = {}
+        for cid, ch in self.settings.items():
+            st = states[cid]
+            st.kind, st.speed_source, st.speed_from = ch.kind, ch.speed_source, ch.speed_from
+            if ch.speed_source == "fixed":
+                st.speed_now_rpm, st.speed_status = float(ch.speed_rpm or math.nan), "ok"
+
+    def _dynamic(self, cid: str) -> bool:
+        """Can ``cid``'s speed change while running (measured, estimated or written)?"""
+        if self.states[cid].manual_rpm is not None:
+            self._written.add(cid)  # placed from now on, also after the write is withdrawn
+        return (self.settings[cid].speed_source in ("tacho", "estimated", "manual")
+                or cid in self._written)
+
+    def reset(self, next_index: int) -> None:
+        """A gap (or a new stream): every tracker starts a new run at ``next_index``."""
+        for _, tr in self.trackers.values():
+            tr.reset(next_index)
+        self._started = True
+
+    def push(self, x: np.ndarray, first_index: int) -> None:
+        """Feed the tacho rows of a block ``[C, n]`` (engineering units)."""
+        if not self._started:
+            self.reset(first_index)
+        now = time.monotonic()
+        for cid, (row, tr) in self.trackers.items():
+            res = tr.push(x[row])
+            st = self.states[cid]
+            st.pulses += int(res.edges_s.size - res.bridged.sum())
+            st.extra_pulses += res.extra
+            st.missing_pulses += res.missing
+            st.pulse_faults += res.faults
+            if res.rpm.size:
+                st.speed_now_rpm = float(res.rpm[-1])
+            st.speed_status = res.status
+            if res.status == "no-signal":
+                st.speed_now_rpm = math.nan
+            else:  # pulses arrive: the channel is live (a tacho has no spectra to show it)
+                st.last_frame_mono = now
+
+    def tacho_quality(self) -> None:
+        """A tacho whose pulses jump implausibly is a sensor fault (after the pipeline's own
+        sample checks, which it must not undo)."""
+        for cid, (_, tr) in self.trackers.items():
+            st = self.states[cid]
+            if tr.status == "sensor-fault" and st.data_status != "sensor-fault":
+                st.data_status = "sensor-fault"
+                st.data_fault = "tacho: implausible pulse spacing (extra or jumping pulses)"
+
+    def _span_speed(self, cid: str, ch: ChannelConfig, t0: float, t1: float) -> FrameSpeed:
+        src = ch.speed_source
+        st = self.states[cid]
+        if src == "tacho" and ch.speed_from in self.trackers:
+            _, tr = self.trackers[ch.speed_from]
+            rpm, var = tr.mean_rpm(t0, t1)
+            status = tr.status
+            if status == "no-signal":
+                rpm, var = math.nan, math.nan
+            varied = bool(math.isfinite(var) and var > ch.speed_tolerance)
+            return rpm, src, status, var, varied
+        if st.manual_rpm is not None:
+            return st.manual_rpm, "manual", "ok", 0.0, False
+        if src in ("estimated", "fixed", "manual"):
+            rpm = st.speed_now_rpm
+            return rpm, src, "ok" if math.isfinite(rpm) else "no-signal", math.nan, False
+        return math.nan, "", "", math.nan, False
+
+    def place(self, bank: ProfileBank, groups: Sequence[ChannelGroup], block_end: int,
+              *, after: bool) -> None:
+        """Set the running speed of ``groups``' analyzers to each channel's mean speed over
+        its newest frame: before the push (``after`` False; tones are measured in it) from
+        the span the next frame will likely cover, after it from the frame's own span."""
+        for g in groups:
+            if not any(self._dynamic(cid) for cid in g.channel_ids):
+                continue
+            key = id(g)
+            factor = g.plan.factor if g.plan is not None else 1
+            length = g.analyzer.grid.n * factor
+            if after:
+                end = bank.end_index(g)
+                self._lag[key] = block_end - end
+            else:
+                end = block_end - self._lag.get(key, 0)
+            t0, t1 = (end - length) / self.fs, end / self.fs
+            speeds = []
+            changed = False
+            for c, cid in enumerate(g.channel_ids):
+                ch = self.settings[cid]
+                fs_ = self._span_speed(cid, ch, t0, t1)
+                self._frame[(key, cid)] = fs_
+                hz = fs_[0] / 60.0
+                speeds.append(hz)
+                if self._dynamic(cid):
+                    old = g.analyzer.speed_hz
+                    was = math.nan if old is None else float(old[c])
+                    changed |= not (was == hz or (math.isnan(was) and math.isnan(hz)))
+            if changed:
+                g.analyzer.set_speed(np.array(speeds))
+
+    def estimate(self, g: ChannelGroup) -> None:
+        """After a primary group's frame: the 1X line of channels with speed = 'estimated'."""
+        rows = [c for c, cid in enumerate(g.channel_ids)
+                if self.settings[cid].speed_source == "estimated" and g.primary[c]]
+        if not rows:
+            return
+        an = g.analyzer
+        power = an.power(an.spec.input_unit)
+        for c in rows:
+            cid = g.channel_ids[c]
+            ch, st = self.settings[cid], self.states[cid]
+            prev = st.speed_now_rpm
+            rpm = speed_from_spectrum(
+                power[c], an.grid.df_hz, an.spec.window, an.grid.n, ch.rpm_min, ch.rpm_max,
+                beta=an.spec.beta, previous_rpm=[prev], max_change=ESTIMATE_TRACK,
+            )[0]
+            if not math.isfinite(rpm) and math.isfinite(prev):  # lost it: search the range
+                rpm = speed_from_spectrum(power[c], an.grid.df_hz, an.spec.window, an.grid.n,
+                                          ch.rpm_min, ch.rpm_max, beta=an.spec.beta)[0]
+            st.speed_now_rpm = float(rpm)
+            st.speed_status = "ok" if math.isfinite(rpm) else "no-signal"
+
+    def frame(self, g: ChannelGroup, cid: str) -> FrameSpeed:
+        """The speed of ``cid``'s newest frame in ``g`` (set by :meth:`place`)."""
+        got = self._frame.get((id(g), cid))
+        if got is None:
+            st = self.states[cid]
+            return (st.speed_now_rpm, st.speed_source,
+                    st.speed_status, math.nan, False)
+        st = self.states[cid]
+        if g.primary[g.channel_ids.index(cid)] and st.kind != "tacho":
+            if got[1] in ("tacho", "manual"):
+                st.speed_now_rpm = got[0]
+                st.speed_status = got[2]
+            if got[1]:
+                st.speed_source = got[1]
+            st.speed_variation, st.speed_varied = got[3], got[4]
+        return got
