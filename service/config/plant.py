@@ -132,7 +132,8 @@ class ChannelConfig(StrictModel):
         if self.kind == "tacho" and given:
             raise ValueError(f"a tacho channel measures speed; it takes no {given[0]}")
         if self.speed_from is not None and len(given) > 1:
-            raise ValueError(f"give one speed source: speed_from or {given[1]}, not both")
+            other = next(g for g in given if g != "speed_from")
+            raise ValueError(f"give one speed source: speed_from or {other}, not both")
         if self.speed == "estimated" and self.speed_rpm is not None:
             raise ValueError("speed = 'estimated' takes no speed_rpm")
         if self.trigger_level is not None and self.trigger_hysteresis is None:

@@ -118,7 +118,9 @@ class FileSourceConfig(_SourceBase):
 class SimulatedSourceConfig(_SourceBase):
     kind: Literal["simulated"] = described("Source kind.")
     scenario: Name = Field(
-        "demo", description="Simulated plant scenario (see service/sources/simulated.py: 'demo')."
+        "demo", description="Simulated plant scenario: 'demo' (service/sources/simulated.py) or "
+        "'variable-speed' (a fan ramping 900–1500 r/min with a tacho: "
+        "service/sources/varspeed.py)."
     )
     speed: float = Field(
         1.0,
