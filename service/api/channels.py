@@ -18,6 +18,7 @@ from ..config import Config, channel_settings
 from ..hub import Hub
 from ..spectra import (
     band_items,
+    frame_speed,
     overall_item,
     peak_items,
     spectrum_values,
@@ -58,18 +59,6 @@ def _stamp(frame: SpectralFrame) -> dict[str, Any]:
     if frame.speed_source:
         d["speed"] = frame_speed(frame)
     return d
-
-
-def frame_speed(frame: SpectralFrame) -> dict[str, Any]:
-    """The speed a frame's orders were placed at, with its source and status, and whether
-    it changed within the frame by more than the channel's speed_tolerance (``varied``)."""
-    return {
-        "rpm": _num(frame.speed_rpm),
-        "source": frame.speed_source,
-        "status": frame.speed_status,
-        "variation": _num(frame.speed_variation),
-        "varied": frame.speed_varied,
-    }
 
 
 def _now_state(st: ChannelState) -> dict[str, Any]:

@@ -27,7 +27,14 @@ from .load import load_config, parse_config
 from .models import MODELS, Config
 from .notify import NotifyConfig, QuietHours
 from .plant import AlarmConfig, BandConfig, ChannelConfig, MachineConfig, TokenConfig, ToneConfig
-from .queries import channel_ids, channel_settings, profile_names, profiles_of, source_of
+from .queries import (
+    channel_ids,
+    channel_settings,
+    planning_rpm,
+    profile_names,
+    profiles_of,
+    source_of,
+)
 from .settings import (
     DEFAULT_PROFILE,
     AnalysisOverride,
@@ -75,6 +82,7 @@ __all__ = [
     "bands_for",
     "channel_ids",
     "channel_settings",
+    "planning_rpm",
     "check_listen_allowed",
     "describe_settings",
     "effective_analysis",

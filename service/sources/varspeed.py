@@ -11,8 +11,9 @@ rendered in any chunks equals one long render:
 
 * the accelerometer (g): orders 1, 2 and 7 (blade pass) whose *velocity* stays at a fixed
   RMS whatever the speed (acceleration peak = v·√2·2π·o·f(t)/g_n), plus white noise;
-* the tacho (V): 0 → 5 V once per revolution, the rise a linear ramp over 1 % of a
-  revolution starting where r(t) passes a whole number, high for 10 %, plus 20 mV of noise.
+* the tacho (V): 0 → 5 V once per revolution, the rise a linear ramp over 5 % of a
+  revolution (a few samples even at a low rate, so the trigger finds the edge between
+  samples) starting where r(t) passes a whole number, high for 10 %, plus 20 mV of noise.
 """
 
 from __future__ import annotations
@@ -96,8 +97,8 @@ class VariableSpeedModel:
                     out[row] += a_peak * np.cos(2.0 * np.pi * (cyc - np.floor(cyc)))
             else:
                 ph = r - np.floor(r)
-                up = np.clip(ph / 0.01, 0.0, 1.0)
-                down = np.clip((0.11 - ph) / 0.01, 0.0, 1.0)
+                up = np.clip(ph / 0.05, 0.0, 1.0)
+                down = np.clip((0.2 - ph) / 0.05, 0.0, 1.0)
                 out[row] += TACHO_V * np.minimum(up, down)
             out[row] += self.noise[cid] * self._noise(cid, first_index, n)
         return out.astype(np.float32)

@@ -168,3 +168,37 @@ def test_order_bands_are_checked_against_fmax_at_the_tachos_rpm_max():
     doc = config(tacho={"rpm_max": 6000.0})  # 7.5 × 100 Hz = 750 Hz > Fmax 500 Hz
     with pytest.raises(ConfigError, match=r"order 7.5 is above fmax_hz"):
         parse_config(doc, source="test")
+
+
+def test_analyze_reads_a_tacho_channel_and_places_orders_at_its_speed(tmp_path):
+    import json
+
+    import tomli_w
+
+    from tests.service.conftest import run_cli
+
+    model = VariableSpeedModel(fs=FS, ramp_s=60.0)
+    x = model.render(0, int(30 * FS))  # 900 → 1200 r/min
+    rec = tmp_path / "fan.csv"
+    np.savetxt(rec, x.T, delimiter=",", header=",".join(IDS), comments="", fmt="%.7g")
+    doc = config()
+    doc["sources"] = [{"id": "v", "kind": "tcp", "listen": "127.0.0.1:9", "format": "f32le",
+                       "sample_rate_hz": FS, "channels": list(IDS)}]
+    cfg = tmp_path / "q.toml"
+    cfg.write_bytes(tomli_w.dumps(doc).encode())
+    out = run_cli("analyze", str(rec), "--rate", str(FS), "-c", str(cfg), "--json",
+                  "--averaging", "exponential", "--averages", "2")
+    assert out.returncode == 0, out.stderr
+    fan, tacho = json.loads(out.stdout)["channels"]
+    assert (fan["speed"]["source"], fan["speed"]["status"]) == ("tacho", "ok")
+    n, hop = 2048, 1024  # 2.56 × 800 lines, overlap 0.5
+    end = (n + (x.shape[1] - n) // hop * hop) / FS  # the newest frame's end, s
+    want = 60 * (model.revolutions(end) - model.revolutions(end - n / FS)) / (n / FS)
+    assert fan["speed"]["rpm"] == pytest.approx(want, rel=2e-3)
+    one_x = next(b for b in fan["bands"] if b["name"] == "1x")
+    assert abs(20 * np.log10(one_x["value"] / V_1X)) < 0.5
+    assert one_x["lo_hz"] == pytest.approx(0.8 * fan["speed"]["rpm"] / 60)
+    sp = tacho["speed"]
+    assert tacho["kind"] == "tacho" and sp["status"] == "ok" and sp["pulses"]["faults"] == 0
+    assert sp["rpm_min"] == pytest.approx(900.0, rel=2e-3)
+    assert sp["rpm_max"] == pytest.approx(float(model.rpm(30.0)), rel=5e-3)
