@@ -21,7 +21,7 @@ def demo_config(
     fault_start_s: float | None = None,
     fault_ramp_s: float | None = None,
     feed_listen: str | None = None,
-    variable_speed: bool = True,
+    variable_speed: bool = False,
 ) -> Config:
     """The built-in demo: the invented pumping station from ``service/examples/demo.toml``.
 
@@ -29,7 +29,8 @@ def demo_config(
     and stretch the scripted bearing fault (plant seconds). ``feed_listen`` (HOST:PORT)
     adds the framed TCP input of ``examples/demo-feed.toml`` there, for ``quaver feed``
     (``quaver demo``: 127.0.0.1:8751 unless told otherwise; without it only HTTP is bound).
-    ``variable_speed`` adds the variable-speed fan with its tacho (``examples/demo-varspeed.toml``)."""
+    ``variable_speed`` adds the variable-speed fan with its tacho
+    (``examples/demo-varspeed.toml``; ``quaver demo --variable-speed``)."""
     examples = resources.files("service").joinpath("examples")
     data = tomllib.loads(examples.joinpath("demo.toml").read_text(encoding="utf-8"))
     if feed_listen is not None:

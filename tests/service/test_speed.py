@@ -202,3 +202,21 @@ def test_analyze_reads_a_tacho_channel_and_places_orders_at_its_speed(tmp_path):
     assert tacho["kind"] == "tacho" and sp["status"] == "ok" and sp["pulses"]["faults"] == 0
     assert sp["rpm_min"] == pytest.approx(900.0, rel=2e-3)
     assert sp["rpm_max"] == pytest.approx(float(model.rpm(30.0)), rel=5e-3)
+
+
+def test_the_demo_with_the_variable_speed_fan():
+    from service.demo import demo_config
+    from service.lookups import bands_for
+
+    plain = demo_config()
+    cfg = demo_config(variable_speed=True)
+    assert [s.id for s in plain.sources] == ["tarn-hollow"]  # the demo as it was
+    assert [s.id for s in cfg.sources] == ["tarn-hollow", "switch-room"]
+    src = cfg.sources[1]
+    assert (src.scenario, list(src.channels)) == ("variable-speed", list(IDS))
+    fan = next(c for c in cfg.channels if c.id == "v1-fan-h")
+    assert (fan.speed_source, fan.speed_from) == ("tacho", "v1-tacho")
+    # blade pass of the 7-blade fan: the model's order 7 (service/sources/varspeed.py)
+    blade = next(b for b in bands_for(cfg, "v1-fan-h") if b.name == "blade-pass")
+    assert blade.basis == "order" and blade.lo < 7.0 < blade.hi
+    assert bands_for(cfg, "v1-tacho") == []  # a tacho has no spectra
