@@ -213,6 +213,19 @@ class TachoTracker:
         """The kept pulses, s (a copy)."""
         return self._t.copy()
 
+    def run_pulses_s(self) -> np.ndarray:
+        """The kept pulses of the newest run (no break between them), s (a copy).
+
+        Returns
+        -------
+        ndarray
+            float64 pulse times, s from stream sample 0.
+        """
+        if not self._t.size:
+            return self._t.copy()
+        out: np.ndarray = self._t[self._run == self._run[-1]]
+        return out.copy()
+
     def _thresholds(self, z: np.ndarray, n: int) -> tuple[np.ndarray, np.ndarray]:
         s = self.settings
         if s.level is not None:

@@ -205,7 +205,7 @@ class SourcePipeline:
         if speeds is not None:
             if gap:
                 speeds.reset(block.first_index)
-            speeds.push(x, block.first_index)
+            speeds.push(x, block.first_index, block.t0_ns)
             if self.bank is not None:
                 speeds.place(self.bank, self.bank.groups, block_end, after=False)
         if self.bank is not None:

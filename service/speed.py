@@ -11,6 +11,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
+from dsp.orders import order_track
 from dsp.tacho import TachoSettings, TachoTracker, speed_from_spectrum
 
 from .config import Config, channel_settings
@@ -18,7 +19,7 @@ from .config.plant import ChannelConfig
 from .profiles import ChannelGroup, ProfileBank
 from .types import ChannelState
 
-__all__ = ["FrameSpeed", "SourceSpeeds", "tacho_settings"]
+__all__ = ["FrameSpeed", "RunupCapture", "SourceSpeeds", "tacho_settings"]
 
 # the 1X estimate follows at most this relative change from one frame to the next (our choice:
 # a ramp of minutes moves far less between frames; a jump beyond it is searched again)
@@ -34,6 +35,85 @@ def tacho_settings(ch: ChannelConfig) -> TachoSettings:
         pulses_per_rev=ch.pulses_per_rev, rpm_min=ch.rpm_min, rpm_max=ch.rpm_max,
         level=ch.trigger_level, hysteresis=hyst, min_swing=ch.min_swing,
     )
+
+
+RUNUP_RING_S = 8.0  # samples kept for run-up capture, s (our choice: ≥ a few revolutions
+# at the slowest plausible speed, plus the filters' margins)
+RUNUP_REVS = 4  # revolutions per run-up step: order resolution 1/4 (common practice)
+
+
+class RunupCapture:
+    """Amplitude and phase of chosen orders against speed for one channel fed by a tacho:
+    the channel's newest samples are kept, and each stretch of whole revolutions between
+    kept pulses (away from the ring's ends) goes through :func:`dsp.orders.order_track`;
+    each step lands in its speed bin of ``rpm_step`` r/min, which keeps the vector (complex)
+    mean of the steps of its latest visit (a new pass through the bin starts it again).
+    ``rows`` is replaced, never changed in place (the API reads it from another thread)."""
+
+    def __init__(self, row: int, tacho: str, ch: ChannelConfig, fs: float,
+                 pulses_per_rev: int, rpm_min: float) -> None:
+        self.row, self.tacho, self.fs = row, tacho, fs
+        self.orders = tuple(float(o) for o in ch.runup_orders)
+        self.rpm_step = float(ch.runup_rpm_step)
+        self.ppr = pulses_per_rev
+        self.keep = int(RUNUP_RING_S * fs)
+        self.margin_s = 3.0 * 60.0 / rpm_min  # the resampling filters' reach: 2 revolutions
+        self.x = np.zeros(0)
+        self.first = 0  # stream index of x[0]
+        self.done_s = -math.inf  # the last pulse already used
+        self.rows: dict[int, dict[str, object]] = {}
+        self._sums: dict[int, tuple[np.ndarray, int, float]] = {}
+        self.last_bin: int | None = None
+
+    def reset(self, next_index: int) -> None:
+        self.x, self.first, self.done_s = np.zeros(0), next_index, -math.inf
+
+    def push(self, x: np.ndarray, first_index: int, tracker: TachoTracker, t0_ns: int) -> None:
+        if first_index != self.first + self.x.size:
+            self.reset(first_index)
+        self.x = np.concatenate((self.x, x.astype(np.float64)))
+        if self.x.size > self.keep:
+            cut = self.x.size - self.keep
+            self.x, self.first = self.x[cut:], self.first + cut
+        t_lo = self.first / self.fs + self.margin_s
+        t_hi = (self.first + self.x.size) / self.fs - self.margin_s
+        if tracker.status != "ok" or t_hi <= t_lo:
+            return
+        run = tracker.run_pulses_s()
+        e = run[(run >= max(t_lo, self.done_s)) & (run <= t_hi)]
+        per = RUNUP_REVS * self.ppr
+        use = (e.size - 1) // per * per + 1
+        if use < max(4, per + 1):
+            return
+        e = e[:use]
+        tr = order_track(self.x, self.fs, e, self.orders, pulses_per_rev=self.ppr,
+                         revs_per_step=RUNUP_REVS, t0_s=self.first / self.fs)
+        rows = dict(self.rows)
+        t_block = (first_index + x.size) / self.fs
+        z = tr.amplitude_rms * np.exp(1j * np.radians(tr.phase_deg))  # [steps, orders]
+        for k in range(tr.rpm.size):
+            b = int(math.floor(tr.rpm[k] / self.rpm_step))
+            if b != self.last_bin or b not in self._sums:  # a new visit of the bin
+                self._sums[b] = (np.zeros(len(self.orders), complex), 0, 0.0)
+            zs, n, rs = self._sums[b]
+            zs, n, rs = zs + z[k], n + 1, rs + float(tr.rpm[k])
+            self._sums[b] = (zs, n, rs)
+            self.last_bin = b
+            mean = zs / n
+            rows[b] = {
+                "rpm": rs / n,
+                "t_ns": t0_ns - round((t_block - float(tr.t_s[k])) * 1e9),
+                "steps": n,
+                "amplitude": [float(a) for a in np.abs(mean)],
+                "phase_deg": [float(p) for p in np.degrees(np.angle(mean))],
+            }
+        self.rows = rows
+        self.done_s = float(e[-1])
+
+    def as_list(self) -> list[dict[str, object]]:
+        """The bins with data, by increasing speed."""
+        rows = self.rows
+        return [rows[b] for b in sorted(rows)]
 
 
 class SourceSpeeds:
@@ -55,6 +135,14 @@ class SourceSpeeds:
             for row, (cid, ch) in enumerate(self.settings.items()) if ch.kind == "tacho"
         }
         self.tacho_rows = np.array([ch.kind == "tacho" for ch in self.settings.values()])
+        self.runups: dict[str, RunupCapture] = {}
+        for row, (cid, ch) in enumerate(self.settings.items()):
+            if ch.runup_orders and ch.speed_from in self.trackers:
+                tacho = self.settings[ch.speed_from]
+                cap = RunupCapture(row, ch.speed_from, ch, self.fs, tacho.pulses_per_rev,
+                                   tacho.rpm_min)
+                self.runups[cid] = cap
+                states[cid].runup = cap
         self._started = False
         self._written: set[str] = set()
         self._lag: dict[int, int] = {}  # group id → input samples its frames end before a block's
@@ -76,10 +164,13 @@ class SourceSpeeds:
         """A gap (or a new stream): every tracker starts a new run at ``next_index``."""
         for _, tr in self.trackers.values():
             tr.reset(next_index)
+        for cap in self.runups.values():
+            cap.reset(next_index)
         self._started = True
 
-    def push(self, x: np.ndarray, first_index: int) -> None:
-        """Feed the tacho rows of a block ``[C, n]`` (engineering units)."""
+    def push(self, x: np.ndarray, first_index: int, t0_ns: int = 0) -> None:
+        """Feed the tacho rows of a block ``[C, n]`` (engineering units); then the run-up
+        captures (``t0_ns``: the block's first sample's time, for their rows)."""
         if not self._started:
             self.reset(first_index)
         now = time.monotonic()
@@ -97,6 +188,9 @@ class SourceSpeeds:
                 st.speed_now_rpm = math.nan
             else:  # pulses arrive: the channel is live (a tacho has no spectra to show it)
                 st.last_frame_mono = now
+        for cap in self.runups.values():
+            cap.push(x[cap.row], first_index, self.trackers[cap.tacho][1],
+                     t0_ns + round(x.shape[1] / self.fs * 1e9))
 
     def tacho_quality(self) -> None:
         """A tacho whose pulses jump implausibly is a sensor fault (after the pipeline's own

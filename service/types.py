@@ -274,6 +274,7 @@ class ChannelState:
     extra_pulses: int = 0
     missing_pulses: int = 0
     pulse_faults: int = 0
+    runup: RunupSource | None = None  # run-up data (service.speed.RunupCapture), if kept
 
     def speed_dict(self) -> dict[str, object] | None:
         """The channel's running speed as JSON fields, with its status; None without one."""
@@ -332,6 +333,15 @@ class ChannelState:
                 for i, p in enumerate(self.profiles)
             ],
         }
+
+
+class RunupSource(Protocol):
+    """What the API reads of a channel's run-up capture (``service.speed.RunupCapture``)."""
+
+    orders: tuple[float, ...]
+    rpm_step: float
+
+    def as_list(self) -> list[dict[str, object]]: ...
 
 
 class PipelineHealth(Protocol):

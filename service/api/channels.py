@@ -258,3 +258,29 @@ def put_speed(channel: ChannelDep, cfg: ConfigDep, who: Operator,
     channel.speed_source = "manual"
     channel.speed_now_rpm, channel.speed_status = float(body.rpm), "ok"
     return {"channel": channel.id, "speed": channel.speed_dict()}
+
+
+@router.get(
+    "/channels/{channel_id}/runup",
+    summary="Amplitude and phase of chosen orders against speed (run-up / coast-down data)",
+    responses={404: {"description": "unknown channel, or it keeps no run-up data "
+                                    "(no runup_orders)"}},
+)
+def get_runup(channel: ChannelDep, cfg: ConfigDep) -> dict[str, Any]:
+    cap = channel.runup
+    if cap is None:
+        raise HTTPException(404, f"channel {channel.id!r} keeps no run-up data: give it "
+                            "runup_orders and a speed_from tacho")
+    rows = cap.as_list()
+    d = {
+        "channel": channel.id,
+        "orders": list(cap.orders),
+        "rpm_step": cap.rpm_step,
+        "unit": channel.input_unit,
+        "amplitude": "rms",
+        "phase_reference": "the tacho pulse at the start of each step of whole revolutions",
+        "status": channel.status,
+        "speed": channel.speed_dict(),
+        "rows": rows,
+    }
+    return with_times(d, cfg.service.timezone)

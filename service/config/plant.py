@@ -61,6 +61,15 @@ class ChannelConfig(StrictModel):
         description="A frame is flagged speed_varied when its speed changed by more than "
         "this fraction of its mean within the frame (max − min over its revolutions).",
     )
+    runup_orders: list[Annotated[float, Field(gt=0, le=64)]] = Field(
+        default_factory=list, max_length=16,
+        description="Orders whose amplitude and phase are kept against speed (run-up and "
+        "coast-down data, GET /api/v1/channels/{id}/runup); needs speed_from.",
+    )
+    runup_rpm_step: float = Field(
+        50.0, gt=0, description="Speed bins of the run-up data, r/min: each keeps the vector "
+        "mean of the steps of its latest pass.",
+    )
     pulses_per_rev: int = Field(1, ge=1, le=1024, description="Tacho: pulses per revolution.")
     trigger_level: float | None = Field(
         None,
@@ -134,6 +143,8 @@ class ChannelConfig(StrictModel):
         if self.speed_from is not None and len(given) > 1:
             other = next(g for g in given if g != "speed_from")
             raise ValueError(f"give one speed source: speed_from or {other}, not both")
+        if self.runup_orders and self.speed_from is None:
+            raise ValueError("runup_orders needs speed_from (a tacho gives the shaft angle)")
         if self.speed == "estimated" and self.speed_rpm is not None:
             raise ValueError("speed = 'estimated' takes no speed_rpm")
         if self.trigger_level is not None and self.trigger_hysteresis is None:

@@ -37,7 +37,8 @@ def _doc() -> dict[str, Any]:
              "sample_rate_hz": FS, "channels": ["m"]},
         ],
         "channels": [
-            {"id": "v1-fan-h", "speed_from": "v1-tacho"},
+            {"id": "v1-fan-h", "speed_from": "v1-tacho", "runup_orders": [1.0, 2.0],
+             "runup_rpm_step": 100.0},
             {"id": "v1-tacho", "kind": "tacho", "rpm_min": 300.0, "rpm_max": 3000.0},
             {"id": "m", "speed": "manual", "rpm_max": 3000.0},
         ],
@@ -91,3 +92,14 @@ def test_order_band_follows_the_tacho_and_speed_is_reported(tmp_path: Path) -> N
         m = svc.channel("m")["speed"]
         assert (m["rpm"], m["source"], m["written_by"]) == (1480.0, "manual", OPERATOR[0])
         assert put("nope", 1480.0, OPERATOR).status_code == 404
+
+        runup = svc.get("channels/v1-fan-h/runup")
+        assert runup["orders"] == [1.0, 2.0] and runup["unit"] == "g"
+        rpm = [r["rpm"] for r in runup["rows"]]
+        assert len(rpm) >= 3 and rpm == sorted(rpm)
+        # 1X of the model: 2.0 mm/s RMS, i.e. 2.0e-3·2π·f/g_n g RMS (service/sources/varspeed.py)
+        for r in runup["rows"]:
+            want = V_1X * 1e-3 * 2 * np.pi * r["rpm"] / 60 / 9.80665
+            assert r["amplitude"][0] == pytest.approx(want, rel=0.1)
+        r = svc.client.get("/api/v1/channels/m/runup")
+        assert r.status_code == 404 and "runup_orders" in r.json()["detail"]
