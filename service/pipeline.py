@@ -207,7 +207,8 @@ class SourcePipeline:
                 speeds.reset(block.first_index)
             speeds.push(x, block.first_index, block.t0_ns)
             if self.bank is not None:
-                speeds.place(self.bank, self.bank.groups, block_end, after=False)
+                speeds.place(self.bank, self.bank.groups, block_end, after=False,
+                             block_n=block.n)
         if self.bank is not None:
             for g, new in self.bank.push(x, block.first_index):
                 if speeds is not None:

@@ -11,7 +11,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
-from dsp.orders import order_track
+from dsp.orders import OrderSpectrum, order_spectrum, order_track
 from dsp.tacho import TachoSettings, TachoTracker, speed_from_spectrum
 
 from .config import Config, channel_settings
@@ -19,7 +19,8 @@ from .config.plant import ChannelConfig
 from .profiles import ChannelGroup, ProfileBank
 from .types import ChannelState
 
-__all__ = ["FrameSpeed", "RunupCapture", "SourceSpeeds", "tacho_settings"]
+__all__ = ["FrameSpeed", "NotEnoughRevolutions", "RunupCapture", "SourceSpeeds",
+           "tacho_settings"]
 
 # the 1X estimate follows at most this relative change from one frame to the next (our choice:
 # a ramp of minutes moves far less between frames; a jump beyond it is searched again)
@@ -42,9 +43,14 @@ RUNUP_RING_S = 8.0  # samples kept for run-up capture, s (our choice: ≥ a few 
 RUNUP_REVS = 4  # revolutions per run-up step: order resolution 1/4 (common practice)
 
 
+class NotEnoughRevolutions(ValueError):
+    """The samples kept do not hold a frame's worth of whole revolutions yet."""
+
+
 class RunupCapture:
-    """Amplitude and phase of chosen orders against speed for one channel fed by a tacho:
-    the channel's newest samples are kept, and each stretch of whole revolutions between
+    """The newest samples of a channel fed by a tacho, with the tacho's pulses over them (for
+    order spectra on request), and amplitude and phase of chosen orders against speed: each
+    stretch of whole revolutions between
     kept pulses (away from the ring's ends) goes through :func:`dsp.orders.order_track`;
     each step lands in its speed bin of ``rpm_step`` r/min, which keeps the vector (complex)
     mean of the steps of its latest visit (a new pass through the bin starts it again).
@@ -61,6 +67,9 @@ class RunupCapture:
         self.x = np.zeros(0)
         self.first = 0  # stream index of x[0]
         self.done_s = -math.inf  # the last pulse already used
+        # (samples, stream index of the first, pulses s): replaced whole by the worker,
+        # read by the API's threads
+        self.snap: tuple[np.ndarray, int, np.ndarray] = (np.zeros(0), 0, np.zeros(0))
         self.rows: dict[int, dict[str, object]] = {}
         self._sums: dict[int, tuple[np.ndarray, int, float]] = {}
         self.last_bin: int | None = None
@@ -77,17 +86,22 @@ class RunupCapture:
             self.x, self.first = self.x[cut:], self.first + cut
         t_lo = self.first / self.fs + self.margin_s
         t_hi = (self.first + self.x.size) / self.fs - self.margin_s
-        if tracker.status != "ok" or t_hi <= t_lo:
-            return
         run = tracker.run_pulses_s()
+        inside = run[(run >= t_lo) & (run <= t_hi)] if t_hi > t_lo else run[:0]
+        self.snap = (self.x, self.first, inside)
+        if tracker.status != "ok" or t_hi <= t_lo or not self.orders:
+            return
         e = run[(run >= max(t_lo, self.done_s)) & (run <= t_hi)]
         per = RUNUP_REVS * self.ppr
         use = (e.size - 1) // per * per + 1
         if use < max(4, per + 1):
             return
         e = e[:use]
-        tr = order_track(self.x, self.fs, e, self.orders, pulses_per_rev=self.ppr,
-                         revs_per_step=RUNUP_REVS, t0_s=self.first / self.fs)
+        # only the samples these revolutions need, with the filters' margins
+        lo = max(0, int((e[0] - self.margin_s) * self.fs) - self.first)
+        hi = min(self.x.size, int((e[-1] + self.margin_s) * self.fs) + 1 - self.first)
+        tr = order_track(self.x[lo:hi], self.fs, e, self.orders, pulses_per_rev=self.ppr,
+                         revs_per_step=RUNUP_REVS, t0_s=(self.first + lo) / self.fs)
         rows = dict(self.rows)
         t_block = (first_index + x.size) / self.fs
         z = tr.amplitude_rms * np.exp(1j * np.radians(tr.phase_deg))  # [steps, orders]
@@ -109,6 +123,21 @@ class RunupCapture:
             }
         self.rows = rows
         self.done_s = float(e[-1])
+
+    def order_spectrum(self, omax: float, lines: int) -> OrderSpectrum:
+        """The order spectrum (:func:`dsp.orders.order_spectrum`, Hann, 50 % overlap, linear
+        average) of the samples kept, between the first and last pulse that lie inside them.
+
+        Raises NotEnoughRevolutions when they hold less than one frame (lines/omax revs)."""
+        x, first, pulses = self.snap
+        need = lines / omax  # revolutions per frame
+        have = (pulses.size - 1) / self.ppr if pulses.size else 0.0
+        if pulses.size < 4 or have < need:
+            raise NotEnoughRevolutions(
+                f"a frame of {lines} lines to order {omax:g} spans {need:g} revolutions; the "
+                f"{RUNUP_RING_S:g} s of samples kept hold {max(have, 0):.0f}")
+        return order_spectrum(x, self.fs, pulses, omax, lines, pulses_per_rev=self.ppr,
+                              t0_s=first / self.fs)
 
     def as_list(self) -> list[dict[str, object]]:
         """The bins with data, by increasing speed."""
@@ -137,7 +166,7 @@ class SourceSpeeds:
         self.tacho_rows = np.array([ch.kind == "tacho" for ch in self.settings.values()])
         self.runups: dict[str, RunupCapture] = {}
         for row, (cid, ch) in enumerate(self.settings.items()):
-            if ch.runup_orders and ch.speed_from in self.trackers:
+            if ch.speed_from in self.trackers:
                 tacho = self.settings[ch.speed_from]
                 cap = RunupCapture(row, ch.speed_from, ch, self.fs, tacho.pulses_per_rev,
                                    tacho.rpm_min)
@@ -220,15 +249,19 @@ class SourceSpeeds:
         return math.nan, "", "", math.nan, False
 
     def place(self, bank: ProfileBank, groups: Sequence[ChannelGroup], block_end: int,
-              *, after: bool) -> None:
+              *, after: bool, block_n: int = 0) -> None:
         """Set the running speed of ``groups``' analyzers to each channel's mean speed over
         its newest frame: before the push (``after`` False; tones are measured in it) from
-        the span the next frame will likely cover, after it from the frame's own span."""
+        the span the next frame will likely cover, after it from the frame's own span.
+        ``block_n``: the block's samples (before the push, a group that makes no frame of
+        them is left alone: set_speed costs ~2 ms)."""
         for g in groups:
             if not any(self._dynamic(cid) for cid in g.channel_ids):
                 continue
             key = id(g)
             factor = g.plan.factor if g.plan is not None else 1
+            if not after and factor == 1 and not g.analyzer.bank.frames_ready(block_n):
+                continue  # no frame (no tone) from this block: nothing to place yet
             length = g.analyzer.grid.n * factor
             if after:
                 end = bank.end_index(g)

@@ -9,9 +9,12 @@ import math
 import threading
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
-from typing import NamedTuple, Protocol, overload
+from typing import TYPE_CHECKING, NamedTuple, Protocol, overload
 
 import numpy as np
+
+if TYPE_CHECKING:  # the engine's result type, without importing scipy here
+    from dsp.orders import OrderSpectrum
 
 
 @dataclass(frozen=True, slots=True)
@@ -274,7 +277,9 @@ class ChannelState:
     extra_pulses: int = 0
     missing_pulses: int = 0
     pulse_faults: int = 0
-    runup: RunupSource | None = None  # run-up data (service.speed.RunupCapture), if kept
+    # samples and pulses of a channel fed by a tacho: order spectra, run-up data
+    # (service.speed.RunupCapture); None for other channels
+    runup: RunupSource | None = None
 
     def speed_dict(self) -> dict[str, object] | None:
         """The channel's running speed as JSON fields, with its status; None without one."""
@@ -342,6 +347,8 @@ class RunupSource(Protocol):
     rpm_step: float
 
     def as_list(self) -> list[dict[str, object]]: ...
+
+    def order_spectrum(self, omax: float, lines: int) -> OrderSpectrum: ...
 
 
 class PipelineHealth(Protocol):

@@ -26,8 +26,18 @@ from ..spectra import (
     to_npy,
     tone_items,
 )
+from ..speed import NotEnoughRevolutions
 from ..types import ChannelState, SpectralFrame
-from .deps import NO_FRAME, NOT_FOUND, ChannelDep, ConfigDep, HubDep, ProfileQ, get_frame
+from .deps import (
+    NO_FRAME,
+    NOT_FOUND,
+    ChannelDep,
+    ConfigDep,
+    HubDep,
+    ProfileQ,
+    get_frame,
+    invalid_query,
+)
 from .rules import names
 from .security import Operator, role_responses
 from .timefields import with_times
@@ -268,7 +278,7 @@ def put_speed(channel: ChannelDep, cfg: ConfigDep, who: Operator,
 )
 def get_runup(channel: ChannelDep, cfg: ConfigDep) -> dict[str, Any]:
     cap = channel.runup
-    if cap is None:
+    if cap is None or not cap.orders:
         raise HTTPException(404, f"channel {channel.id!r} keeps no run-up data: give it "
                             "runup_orders and a speed_from tacho")
     rows = cap.as_list()
@@ -282,5 +292,48 @@ def get_runup(channel: ChannelDep, cfg: ConfigDep) -> dict[str, Any]:
         "status": channel.status,
         "speed": channel.speed_dict(),
         "rows": rows,
+    }
+    return with_times(d, cfg.service.timezone)
+
+
+@router.get(
+    "/channels/{channel_id}/orders",
+    summary="Order spectrum of a channel fed by a tacho, by angular resampling",
+    responses={404: {"description": "unknown channel, or its speed is not from a tacho"},
+               422: {"description": "omax/lines out of range"},
+               503: {"description": "fewer revolutions kept than one frame needs"}},
+)
+def get_orders(
+    channel: ChannelDep,
+    cfg: ConfigDep,
+    omax: Annotated[float, Query(gt=0, le=200, description="highest order shown")] = 10.0,
+    lines: Annotated[int, Query(
+        ge=25, le=3200, description="lines from 0 to omax (order resolution omax/lines); "
+        "2.56 × lines must be whole, e.g. 100, 200, 400, 800, 1600")] = 400,
+) -> dict[str, Any]:
+    if (lines * 256) % 100:
+        invalid_query("lines", f"2.56 × {lines} is not a whole number of samples; use e.g. "
+                      "100, 200, 400, 800 or 1600")
+    cap = channel.runup
+    if cap is None:
+        raise HTTPException(404, f"channel {channel.id!r} has no tacho (speed_from): order "
+                            "spectra need the shaft angle")
+    try:
+        res = cap.order_spectrum(omax, lines)
+    except NotEnoughRevolutions as e:
+        raise HTTPException(503, str(e), headers={"Retry-After": "5"}) from None
+    d = {
+        "channel": channel.id,
+        "omax": omax,
+        "lines": lines,
+        "d_order": omax / lines,
+        "frames": res.frames,
+        "rpm_mean": res.rpm_mean,
+        "window": "hann",
+        "unit": channel.input_unit,
+        "amplitude": "rms",
+        "status": channel.status,
+        "speed": channel.speed_dict(),
+        "values": [_num(v) for v in res.amplitude_rms[0].tolist()],
     }
     return with_times(d, cfg.service.timezone)

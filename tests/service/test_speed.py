@@ -246,3 +246,23 @@ def test_runup_data_gives_order_amplitude_and_phase_per_speed_bin():
         lead = (360 * order * 0.0375 + 180) % 360 - 180
         err = np.abs((phase[:, j] - lead + 180) % 360 - 180)
         assert err.max() < (3.0 if order == 1.0 else 6.0), err
+
+
+def test_order_spectrum_of_the_samples_kept_puts_each_order_on_its_line():
+    _, states, model = run(config(), 40.0)  # speed 900 → ~1170 r/min, rising
+    cap = states["v1-fan-h"].runup
+    res = cap.order_spectrum(10.0, 100)  # 0.1-order lines, frames of 10 revolutions
+    assert res.frames >= 10
+    # the model's orders keep a fixed velocity, so their acceleration grows with speed: over
+    # the 8 s kept the speed moves ~4 %, and each order's line holds their RMS mean to a few %
+    # (Fyfe & Munck 1997: the order stays on one line however the speed moves)
+    for order, v_mm_s in ORDERS_MM_S:
+        q = int(round(order * 10))
+        near = res.amplitude_rms[0, q - 3: q + 4]
+        assert near.argmax() == 3
+        want = v_mm_s * 1e-3 * 2 * np.pi * order * (res.rpm_mean / 60) / 9.80665
+        assert res.amplitude_rms[0, q] == pytest.approx(want, rel=0.05)
+    from service.speed import NotEnoughRevolutions
+
+    with pytest.raises(NotEnoughRevolutions, match=r"a frame of 1600 lines to order 10 spans 160"):
+        cap.order_spectrum(10.0, 1600)

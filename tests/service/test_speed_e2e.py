@@ -30,8 +30,8 @@ def _doc() -> dict[str, Any]:
         "analysis": {"fmax_hz": 500.0, "lines": 800, "overlap": 0.5, "averaging": "exponential",
                      "averages": 2, "unit": "velocity"},
         "sources": [
-            # 20 × real time: one 900 → 1500 r/min ramp (30 s of plant time) in 1.5 s
-            {"id": "v", "kind": "simulated", "scenario": "variable-speed", "speed": 20.0,
+            # 10 × real time: one 900 → 1500 r/min ramp (30 s of plant time) in 3 s
+            {"id": "v", "kind": "simulated", "scenario": "variable-speed", "speed": 10.0,
              "speed_ramp_s": 30.0, "sample_rate_hz": FS, "channels": ["v1-fan-h", "v1-tacho"]},
             {"id": "t", "kind": "tcp", "listen": "auto", "format": "framed",
              "sample_rate_hz": FS, "channels": ["m"]},
@@ -101,5 +101,13 @@ def test_order_band_follows_the_tacho_and_speed_is_reported(tmp_path: Path) -> N
         for r in runup["rows"]:
             want = V_1X * 1e-3 * 2 * np.pi * r["rpm"] / 60 / 9.80665
             assert r["amplitude"][0] == pytest.approx(want, rel=0.1)
+        orders = svc.get("channels/v1-fan-h/orders", omax=10.0, lines=100)
+        values = np.array(orders["values"])
+        assert orders["frames"] >= 1 and values.size == 101
+        for q in (10, 20, 70):  # orders 1, 2 and 7 each on its line (0.1 order per line)
+            assert values[q] == values[q - 3: q + 4].max() > 5 * np.median(values)
+        assert svc.client.get("/api/v1/channels/m/orders").status_code == 404
+        r = svc.client.get("/api/v1/channels/v1-fan-h/orders", params={"lines": 301})
+        assert r.status_code == 422 and "2.56 × 301" in r.text
         r = svc.client.get("/api/v1/channels/m/runup")
         assert r.status_code == 404 and "runup_orders" in r.json()["detail"]
