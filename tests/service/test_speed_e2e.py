@@ -5,12 +5,14 @@ operator's speed write. A real ``quaver serve`` on 127.0.0.1."""
 from __future__ import annotations
 
 import hashlib
+import json
 import time
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pytest
+from websockets.sync.client import connect
 
 from service.sources.varspeed import ORDERS_MM_S
 from tests.service.conftest import run_service
@@ -109,5 +111,19 @@ def test_order_band_follows_the_tacho_and_speed_is_reported(tmp_path: Path) -> N
         assert svc.client.get("/api/v1/channels/m/orders").status_code == 404
         r = svc.client.get("/api/v1/channels/v1-fan-h/orders", params={"lines": 301})
         assert r.status_code == 422 and "2.56 × 301" in r.text
+        # the stream's band messages carry the frame's speed and its status too
+        url = f"ws://127.0.0.1:{svc.http_port}/api/v1/stream"
+        with connect(url, proxy=None, open_timeout=10, compression=None,
+                     additional_headers={"Authorization": f"Bearer {VIEWER[1]}"}) as ws:
+            assert json.loads(ws.recv(timeout=10))["kind"] == "hello"
+            ws.send(json.dumps({"subscribe": {"channels": ["v1-fan-h"], "kinds": ["bands"]}}))
+            for _ in range(50):
+                msg = json.loads(ws.recv(timeout=10))
+                if msg.get("kind") == "bands":
+                    break
+            assert msg["kind"] == "bands", msg
+            assert msg["speed"]["source"] == "tacho" and msg["speed"]["status"] == "ok"
+            assert 850 < msg["speed"]["rpm"] < 1550
+
         r = svc.client.get("/api/v1/channels/m/runup")
         assert r.status_code == 404 and "runup_orders" in r.json()["detail"]
