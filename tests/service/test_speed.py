@@ -266,3 +266,17 @@ def test_order_spectrum_of_the_samples_kept_puts_each_order_on_its_line():
 
     with pytest.raises(NotEnoughRevolutions, match=r"a frame of 1600 lines to order 10 spans 160"):
         cap.order_spectrum(10.0, 1600)
+
+
+def test_check_lists_the_tacho_and_where_a_channel_takes_its_speed(tmp_path):
+    import tomli_w
+
+    from tests.service.conftest import run_cli
+
+    cfg = tmp_path / "q.toml"
+    cfg.write_bytes(tomli_w.dumps(config()).encode())
+    out = run_cli("check", "-c", str(cfg))
+    assert out.returncode == 0, out.stderr
+    assert "v1-fan-h (v): fs 1280 Hz, speed from tacho v1-tacho, Fmax 500 Hz" in out.stdout
+    assert ("v1-tacho (v): fs 1280 Hz, tacho, 1 pulse(s)/rev, 300-3000 r/min, trigger level "
+            "auto") in out.stdout
