@@ -125,5 +125,10 @@ def test_order_band_follows_the_tacho_and_speed_is_reported(tmp_path: Path) -> N
             assert msg["speed"]["source"] == "tacho" and msg["speed"]["status"] == "ok"
             assert 850 < msg["speed"]["rpm"] < 1550
 
+        metrics = svc.client.get("/metrics").text
+        assert 'quaver_speed_rpm{channel="v1-fan-h",source="tacho"}' in metrics
+        assert 'quaver_speed_status{channel="v1-tacho",status="ok"} 1.0' in metrics
+        assert 'quaver_speed_rpm{channel="m",source="manual"} 1480.0' in metrics
+
         r = svc.client.get("/api/v1/channels/m/runup")
         assert r.status_code == 404 and "runup_orders" in r.json()["detail"]
