@@ -30,7 +30,7 @@ def _token(name: str, role: str, plain: str) -> dict[str, str]:
 def _doc() -> dict[str, Any]:
     return {
         "analysis": {"fmax_hz": 500.0, "lines": 800, "overlap": 0.5, "averaging": "exponential",
-                     "averages": 2, "unit": "velocity"},
+                     "averages": 4, "unit": "velocity"},
         "sources": [
             # 10 × real time: one 900 → 1500 r/min ramp (30 s of plant time) in 3 s
             {"id": "v", "kind": "simulated", "scenario": "variable-speed", "speed": 10.0,
