@@ -5,6 +5,7 @@ Knows nothing about sockets, files, the service or its config: arrays in, arrays
 
 from __future__ import annotations
 
+from collections import deque
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Literal, get_args
@@ -20,6 +21,10 @@ __all__ = [
     "SPEED_STATUSES", "TACHO_EDGES", "SpeedStatus", "TachoEdge", "TachoPush", "TachoSettings",
     "TachoTracker", "speed_from_spectrum", "tacho_edges",
 ]
+
+# sensor-fault while at least NOISY_EXTRA of the last NOISY_WINDOW candidate pulses were extra
+# (our choice: a clean tacho has none; one glitch now and then is tolerated)
+NOISY_WINDOW, NOISY_EXTRA = 16, 4
 
 SpeedStatus = Literal["ok", "no-signal", "sensor-fault"]
 TachoEdge = Literal["rising", "falling"]
@@ -180,6 +185,7 @@ class TachoTracker:
         self._t_min = s.pulse_period_s(s.rpm_max)
         # running min/max over 1.5 of the longest pulse periods (odd, for a trailing window)
         self._w = int(np.ceil(1.5 * self._t_max * self.fs)) | 1
+        self._k = 0
         self.reset()
 
     def reset(self, next_index: int | None = None) -> None:
@@ -190,7 +196,8 @@ class TachoTracker:
         next_index : int, optional
             Stream index of the next sample pushed (default: carry on counting).
         """
-        self._k = getattr(self, "_k", 0) if next_index is None else int(next_index)
+        if next_index is not None:
+            self._k = int(next_index)
         self._hist = np.zeros(0)
         self._state = -1  # trigger: 1 high, 0 low, −1 not known yet
         self._prev: tuple[float, float] | None = None  # last sample and its upper threshold
@@ -201,7 +208,8 @@ class TachoTracker:
         self._period: float | None = None  # current pulse period, s
         self._good = 0  # plausible pulses since the last fault
         self._faulted = False
-        self._noisy = False
+        self._relock = False  # the period lock was dropped: the next pulse starts a run
+        self._recent: deque[bool] = deque(maxlen=NOISY_WINDOW)  # per candidate: was extra
 
     @property
     def next_index(self) -> int:
@@ -283,6 +291,8 @@ class TachoTracker:
         tol = s.max_change
 
         def start_run(t: float) -> None:
+            self._recent.append(False)
+            self._relock = False
             self._run_no += 1
             self._last, self._period = t, None
             out_t.append(t)
@@ -291,7 +301,7 @@ class TachoTracker:
 
         for t in cand:
             last = self._last
-            if last is None or t - last > self._t_max * (s.max_missing + 1.5):
+            if last is None or self._relock or t - last > self._t_max * (s.max_missing + 1.5):
                 start_run(t)  # first pulse, or after a silence: a new run
                 continue
             dt = t - last
@@ -299,6 +309,7 @@ class TachoTracker:
             if period is None:
                 if dt < self._t_min * (1 - tol):
                     extra += 1
+                    self._recent.append(True)
                     continue
                 if dt > self._t_max * (1 + tol):
                     start_run(t)
@@ -308,6 +319,13 @@ class TachoTracker:
                 r = dt / period
                 if r < 1 - tol:
                     extra += 1
+                    self._recent.append(True)
+                    if sum(self._recent) >= NOISY_EXTRA:
+                        # extras keep coming: the lock may be on every other pulse (or on
+                        # interference); drop it and acquire again from the next pulse, and
+                        # call it a fault until 2k + 1 plausible pulses come in a row
+                        self._relock, self._period = True, None
+                        self._faulted, self._good = True, 0
                     continue
                 n = int(round(r))
                 if r > 1 + tol and not (2 <= n <= s.max_missing + 1 and abs(r / n - 1) <= tol):
@@ -331,6 +349,7 @@ class TachoTracker:
             out_t.append(t)
             out_bridged.append(False)
             out_run.append(self._run_no)
+            self._recent.append(False)
             self._good += 1
             if self._good >= 2 * s.pulses_per_rev + 1:
                 self._faulted = False
@@ -339,7 +358,6 @@ class TachoTracker:
         self._t = np.concatenate((self._t, edges))[-self.keep:]
         self._run = np.concatenate((self._run, runs))[-self.keep:]
         rev_end, rpm = self._revolutions(min(edges.size, self._t.size))
-        self._noisy = extra > max(1, edges.size)
         return TachoPush(edges, np.asarray(out_bridged, dtype=bool), rev_end, rpm,
                          self.status, extra, missing, faults)
 
@@ -355,13 +373,15 @@ class TachoTracker:
     def status(self) -> SpeedStatus:
         """``no-signal`` when no plausible pulse came for longer than (max_missing + 1.5)
         pulse periods at rpm_min (or none ever); ``sensor-fault`` after an implausible jump
-        until 2k + 1 plausible pulses in a row, or while extra pulses outnumber good ones;
-        else ``ok``."""
+        until 2k + 1 plausible pulses in a row, or while 4 or more of the last 16 candidate
+        pulses were extra (interference that could pass for a tacho; the period lock is
+        dropped then, so a lock on every other pulse does not last, and the fault holds
+        until 2k + 1 plausible pulses come in a row); else ``ok``."""
         now = self._k / self.fs
         s = self.settings
         if self._last is None or now - self._last > self._t_max * (s.max_missing + 1.5):
             return "no-signal"
-        if self._faulted or self._noisy:
+        if self._faulted or sum(self._recent) >= NOISY_EXTRA:
             return "sensor-fault"
         return "ok"
 

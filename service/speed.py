@@ -26,6 +26,7 @@ __all__ = ["FrameSpeed", "NotEnoughRevolutions", "RunupCapture", "SourceSpeeds",
 # a ramp of minutes moves far less between frames; a jump beyond it is searched again)
 ESTIMATE_TRACK = 0.1
 
+TACHO_FAULT = "tacho: implausible pulses (extra, or jumping spacing)"
 FrameSpeed = tuple[float, str, str, float, bool]  # rpm, source, status, variation, varied
 
 
@@ -174,6 +175,7 @@ class SourceSpeeds:
                 states[cid].runup = cap
         self._started = False
         self._written: set[str] = set()
+        self._tacho_faults: set[str] = set()  # tachos whose pulses are implausible now
         self._lag: dict[int, int] = {}  # group id → input samples its frames end before a block's
         self._frame: dict[tuple[int, str], FrameSpeed] = {}
         for cid, ch in self.settings.items():
@@ -222,13 +224,24 @@ class SourceSpeeds:
                      t0_ns + round(x.shape[1] / self.fs * 1e9))
 
     def tacho_quality(self) -> None:
-        """A tacho whose pulses jump implausibly is a sensor fault (after the pipeline's own
-        sample checks, which it must not undo)."""
+        """A tacho whose pulses jump implausibly (or come with many extra ones) is a sensor
+        fault, set here after the pipeline's own sample checks, whose faults it leaves alone.
+        It is marked settling so that, unlike a sample fault, it never restarts the analysis
+        of the source's other channels: their samples are fine."""
         for cid, (_, tr) in self.trackers.items():
             st = self.states[cid]
-            if tr.status == "sensor-fault" and st.data_status != "sensor-fault":
-                st.data_status = "sensor-fault"
-                st.data_fault = "tacho: implausible pulse spacing (extra or jumping pulses)"
+            faulty = tr.status == "sensor-fault"
+            ours = st.data_fault.startswith(TACHO_FAULT)
+            if faulty and cid not in self._tacho_faults:
+                st.sensor_faults += 1  # a transition into the fault, as the sample checks count
+            if faulty:
+                self._tacho_faults.add(cid)
+                if st.data_status != "sensor-fault" or ours:
+                    st.data_status, st.data_fault, st.settling = "sensor-fault", TACHO_FAULT, True
+            else:
+                self._tacho_faults.discard(cid)
+                if ours:
+                    st.data_status, st.data_fault, st.settling = "ok", "", False
 
     def _span_speed(self, cid: str, ch: ChannelConfig, t0: float, t1: float) -> FrameSpeed:
         src = ch.speed_source

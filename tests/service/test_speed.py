@@ -47,7 +47,8 @@ class _Source:
 
 
 def run(doc: dict[str, Any], seconds: float, *, ramp_s: float = 60.0, block: int = 128,
-        tacho_off: tuple[float, float] | None = None, write: tuple[float, float] | None = None):
+        tacho_off: tuple[float, float] | None = None, write: tuple[float, float] | None = None,
+        glitches: tuple[float, float] | None = None):
     """Frames of the fan channel and the channel states after ``seconds`` of the model."""
     cfg = parse_config(doc, source="test")
     model = VariableSpeedModel(fs=FS, ramp_s=ramp_s)
@@ -58,6 +59,9 @@ def run(doc: dict[str, Any], seconds: float, *, ramp_s: float = 60.0, block: int
         x = model.render(k, block)
         if write is not None and k / FS >= write[0]:  # what PUT …/speed does to the state
             states["v1-fan-h"].manual_rpm, write = write[1], None
+        if glitches is not None and glitches[0] <= k / FS < glitches[1]:
+            # interference on the tacho's cable: 5 V spikes at random, ~40 a second
+            x[1, np.random.default_rng(k).random(block) < 1 / 32] += 5.0
         if tacho_off is not None and tacho_off[0] <= k / FS < tacho_off[1]:
             x[1] = 0.01 * np.sin(np.arange(k, k + block))  # pulses stop, a little noise
         frames += [f for f in p.process(SampleBlock("v", IDS, x, k, round(k / FS * 1e9), FS))
@@ -120,6 +124,20 @@ def test_lost_tacho_pulses_give_no_signal_and_no_order_values():
     # no speed: the order band cannot be placed and reads NaN (null in JSON, with a reason)
     assert all(math.isnan(f.bands[0].value) and math.isnan(f.speed_rpm) for f in after)
     assert states["v1-tacho"].speed_dict()["status"] == "no-signal"
+
+
+def test_a_tacho_with_extra_pulses_is_a_sensor_fault_until_it_is_clean_again():
+    frames, states, _ = run(config(), 30.0, glitches=(10.0, 15.0))
+    during = [f for f in frames if 10e9 < f.t_ns < 15.5e9]
+    # a lucky run of three plausible pulses between spikes may read ok for a frame
+    faulty = [f for f in during if f.speed_status == "sensor-fault"]
+    assert len(faulty) >= 0.75 * len(during) and all(math.isnan(f.speed_rpm) for f in faulty)
+    assert all(f.speed_status != "no-signal" for f in during)  # pulses never stopped
+    tacho = states["v1-tacho"]
+    assert tacho.extra_pulses + tacho.pulse_faults > 20 and tacho.sensor_faults >= 1
+    after = [f for f in frames if f.t_ns > 17e9]
+    assert after and all(f.speed_status == "ok" and f.speed_rpm > 900 for f in after)
+    assert tacho.data_status == "ok" and tacho.speed_dict()["status"] == "ok"
 
 
 def test_speed_estimated_from_the_1x_line():
