@@ -30,6 +30,8 @@ submodule          what it holds
 ``envelope``       envelope (demodulation) spectrum
 ``kinematics``     bearing defect and gear-mesh frequencies
 ``kurtogram``      spectral kurtosis and Antoni's fast kurtogram (the band to demodulate)
+``tacho``          tacho pulses → speed per revolution and its status; speed from the 1X line
+``orders``         computed order tracking: angular resampling, order spectra, run-up data
 ``types``          the closed option sets (window names, units, …) and the index range
 =================  ==========================================================================
 
@@ -46,7 +48,7 @@ from typing import TYPE_CHECKING, Any
 # name → submodule holding it; every submodule's __all__, nothing else
 _SUBMODULES = (
     "analyzer", "averaging", "bands", "decimate", "envelope", "filterbank", "kinematics",
-    "kurtogram", "scaling", "tones", "types", "windows",
+    "kurtogram", "orders", "scaling", "tacho", "tones", "types", "windows",
 )
 _PUBLIC: dict[str, str] = {
     "AnalysisSpec": "analyzer", "Analyzer": "analyzer", "ToneDef": "analyzer",
@@ -69,6 +71,9 @@ _PUBLIC: dict[str, str] = {
     "Kurtogram": "kurtogram", "KurtogramBand": "kurtogram", "complex_kurtosis": "kurtogram",
     "fast_kurtogram": "kurtogram", "kurtogram_levels": "kurtogram",
     "spectral_kurtosis": "kurtogram",
+    "OrderSpectrum": "orders", "OrderTrack": "orders", "angular_resample": "orders",
+    "bin_by_speed": "orders", "order_spectrum": "orders", "order_track": "orders",
+    "revolution_times": "orders",
     "G_N": "scaling", "DEFAULT_UNIT": "scaling", "amplitude_from_power": "scaling",
     "power_from_amplitude": "scaling", "power_spectrum": "scaling",
     "psd_from_power": "scaling", "quantity_of": "scaling", "unit_power_weights": "scaling",
@@ -80,6 +85,9 @@ _PUBLIC: dict[str, str] = {
     "Amplitude": "types", "AveragingMode": "types", "InputUnit": "types",
     "LinearEnd": "types", "OutputUnit": "types", "Quantity": "types", "WindowName": "types",
     "check_choice": "types", "check_index_span": "types",
+    "SPEED_STATUSES": "tacho", "TACHO_EDGES": "tacho", "SpeedStatus": "tacho",
+    "TachoEdge": "tacho", "TachoPush": "tacho", "TachoSettings": "tacho",
+    "TachoTracker": "tacho", "speed_from_spectrum": "tacho", "tacho_edges": "tacho",
     "WindowInfo": "windows", "bin_response": "windows", "check_window": "windows",
     "get_window": "windows", "transform_magnitude": "windows", "window_info": "windows",
 }
@@ -120,23 +128,34 @@ __all__ = [
     "OCTAVE_FRACTIONS",
     "OUTPUT_UNITS",
     "OctaveBand",
+    "OrderSpectrum",
+    "OrderTrack",
     "OutputUnit",
     "Peaks",
     "PowerBatch",
     "QUANTITIES",
     "Quantity",
     "SEVERITY_PRESETS",
+    "SPEED_STATUSES",
     "SeverityPreset",
+    "SpeedStatus",
     "StagePlan",
+    "TACHO_EDGES",
+    "TachoEdge",
+    "TachoPush",
+    "TachoSettings",
+    "TachoTracker",
     "ToneDef",
     "WINDOW_NAMES",
     "WindowInfo",
     "WindowName",
     "amplitude_from_power",
+    "angular_resample",
     "band_edges",
     "band_rms",
     "band_weights",
     "bearing_frequencies",
+    "bin_by_speed",
     "bin_response",
     "check_choice",
     "complex_kurtosis",
@@ -156,6 +175,8 @@ __all__ = [
     "kurtogram_levels",
     "low_limit_hz",
     "octave_bands",
+    "order_spectrum",
+    "order_track",
     "orders_to_hz",
     "overall_rms",
     "plan_chain",
@@ -164,11 +185,14 @@ __all__ = [
     "psd_from_power",
     "quantity_of",
     "resolve_unit",
+    "revolution_times",
     "severity_range_hz",
     "severity_zone",
     "sidebands",
     "spectral_kurtosis",
     "spectrum_peaks",
+    "speed_from_spectrum",
+    "tacho_edges",
     "tone_kernel",
     "tone_power",
     "transform_magnitude",
@@ -236,6 +260,15 @@ if TYPE_CHECKING:  # what type checkers and editors see; the run-time path is __
         kurtogram_levels,
         spectral_kurtosis,
     )
+    from .orders import (
+        OrderSpectrum,
+        OrderTrack,
+        angular_resample,
+        bin_by_speed,
+        order_spectrum,
+        order_track,
+        revolution_times,
+    )
     from .scaling import (
         DEFAULT_UNIT,
         G_N,
@@ -245,6 +278,17 @@ if TYPE_CHECKING:  # what type checkers and editors see; the run-time path is __
         psd_from_power,
         quantity_of,
         unit_power_weights,
+    )
+    from .tacho import (
+        SPEED_STATUSES,
+        TACHO_EDGES,
+        SpeedStatus,
+        TachoEdge,
+        TachoPush,
+        TachoSettings,
+        TachoTracker,
+        speed_from_spectrum,
+        tacho_edges,
     )
     from .tones import (
         Peaks,

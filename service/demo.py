@@ -21,13 +21,16 @@ def demo_config(
     fault_start_s: float | None = None,
     fault_ramp_s: float | None = None,
     feed_listen: str | None = None,
+    variable_speed: bool = False,
 ) -> Config:
     """The built-in demo: the invented pumping station from ``service/examples/demo.toml``.
 
     ``speed`` paces the simulation (×real time); ``fault_start_s``/``fault_ramp_s`` move
     and stretch the scripted bearing fault (plant seconds). ``feed_listen`` (HOST:PORT)
     adds the framed TCP input of ``examples/demo-feed.toml`` there, for ``quaver feed``
-    (``quaver demo``: 127.0.0.1:8751 unless told otherwise; without it only HTTP is bound)."""
+    (``quaver demo``: 127.0.0.1:8751 unless told otherwise; without it only HTTP is bound).
+    ``variable_speed`` adds the variable-speed fan with its tacho
+    (``examples/demo-varspeed.toml``; ``quaver demo --variable-speed``)."""
     examples = resources.files("service").joinpath("examples")
     data = tomllib.loads(examples.joinpath("demo.toml").read_text(encoding="utf-8"))
     if feed_listen is not None:
@@ -36,6 +39,10 @@ def demo_config(
             s["listen"] = feed_listen
         for table in ("sources", "channels"):
             data[table] = [*data.get(table, []), *feed[table]]
+    if variable_speed:
+        fan = tomllib.loads(examples.joinpath("demo-varspeed.toml").read_text(encoding="utf-8"))
+        for table in ("sources", "channels", "machines", "bands"):
+            data[table] = [*data.get(table, []), *fan[table]]
     if listen is not None:
         data.setdefault("service", {})["listen"] = listen
     if data_dir is not None:

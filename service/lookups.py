@@ -16,7 +16,7 @@ from dsp.kinematics import BearingOrders, bearing_frequencies
 
 from .config.models import Config
 from .config.plant import BandConfig
-from .config.queries import channel_settings, profiles_of
+from .config.queries import channel_settings, planning_rpm, profiles_of
 from .config.settings import AnalysisSettings
 
 __all__ = [
@@ -135,12 +135,16 @@ def bands_for(cfg: Config, channel_id: str, profile: str | None = None) -> list[
     :class:`dsp.bands.Band` (Hz or orders).
 
     ``"*"`` bands apply to every channel except where the channel has a band of the same
-    name of its own; ``"*"`` order bands skip channels without ``speed_rpm``; an octave set
+    name of its own; ``"*"`` order bands skip channels without a running speed (orders are
+    placed at ``speed_rpm``, or ``rpm_max`` where the speed is measured); an octave set
     becomes one band per IEC 61260-1 band, named ``"<name> <mid-band>"`` (e.g. "thirds 1 kHz").
     A band with ``profile = "*"`` goes to each profile whose fmax_hz reaches its upper edge.
     """
     profile = _primary(cfg, channel_id, profile)
-    rpm = channel_settings(cfg, channel_id).speed_rpm
+    ch = channel_settings(cfg, channel_id)
+    if ch.kind == "tacho":
+        return []  # a tacho channel gives speed, not spectra
+    rpm = planning_rpm(cfg, channel_id)
     fmax = effective_analysis(cfg, channel_id, profile).fmax_hz
 
     def expand(b: BandConfig) -> list[Band]:
@@ -172,7 +176,10 @@ def bands_for(cfg: Config, channel_id: str, profile: str | None = None) -> list[
 def tones_for(cfg: Config, channel_id: str, profile: str | None = None) -> list[ToneDef]:
     """The tracked tones of one channel's profile (same rules as :func:`bands_for`)."""
     profile = _primary(cfg, channel_id, profile)
-    rpm = channel_settings(cfg, channel_id).speed_rpm
+    ch = channel_settings(cfg, channel_id)
+    if ch.kind == "tacho":
+        return []
+    rpm = planning_rpm(cfg, channel_id)
     fmax = effective_analysis(cfg, channel_id, profile).fmax_hz
     mine = [
         t for t in cfg.tones

@@ -33,6 +33,7 @@ from .quality import (
     default_stale_after_s,
 )
 from .sources.base import Source
+from .speed import SourceSpeeds
 from .types import (
     BandValue,
     ChannelState,
@@ -66,6 +67,7 @@ class SourcePipeline:
     failures: int = 0  # times run() raised; the service restarts it (service.app)
     failed: str = ""  # the latest failure's text while it is being restarted
     latency_s: float = 0.0
+    speeds: SourceSpeeds | None = None  # running speed per channel (tacho, estimated, …)
     _next_index: int | None = None
     _executor: ThreadPoolExecutor = field(init=False)
 
@@ -96,6 +98,7 @@ class SourcePipeline:
         """Forget the engine's state (before running again after a failure): the next block
         builds a new profile bank, as at the first block."""
         self.bank, self.fs, self._next_index = None, None, None
+        self.speeds = None
         self._flat_run = self._flat_last = None
         self.evidence.drop_requests()
 
@@ -113,6 +116,8 @@ class SourcePipeline:
                     block.fs,
                 )
             self.bank, self.fs = self.make_bank(block.fs), block.fs
+            if self.cfg is not None:
+                self.speeds = SourceSpeeds(self.cfg, block.channel_ids, block.fs, self.channels)
             for cid, plans in self.bank.plans.items():
                 st = self.channels[cid]
                 st.profile_info = {p.name: p.as_dict() for p in plans}
@@ -142,6 +147,8 @@ class SourcePipeline:
             finite = np.isfinite(x).all(axis=1)
             x = np.where(good, x, 0.0).astype(np.float32)
         flat = self._flat_line(x, block.fs, gap)
+        if self.speeds is not None and self.speeds.tacho_rows.size == flat.size:
+            flat &= ~self.speeds.tacho_rows  # a tacho rests flat between pulses
         hold = round(FAULT_HOLD_S * block.fs)  # a fault is held this many clean samples
         restart = False
         for c, st in enumerate(states):
@@ -195,9 +202,22 @@ class SourcePipeline:
         if restart and self.fs is not None:
             self.bank = self.make_bank(self.fs)
             self.restarts += 1
+        speeds = self.speeds
+        block_end = block.first_index + block.n
+        if speeds is not None:
+            if gap:
+                speeds.reset(block.first_index)
+            speeds.push(x, block.first_index, block.t0_ns)
+            if self.bank is not None:
+                speeds.place(self.bank, self.bank.groups, block_end, after=False,
+                             block_n=block.n)
         if self.bank is not None:
             for g, new in self.bank.push(x, block.first_index):
+                if speeds is not None:
+                    speeds.place(self.bank, [g], block_end, after=True)
                 frames += self._frames(g, block, new, self.bank.end_index(g))
+                if speeds is not None:
+                    speeds.estimate(g)
         for st in states:
             if st.data_status == "sensor-fault":
                 if st.settling or st.clean_samples < hold:
@@ -206,6 +226,8 @@ class SourcePipeline:
                 st.data_status, st.data_fault = "overrun", ""
             elif st.data_status != "gap":
                 st.data_status, st.data_fault = "ok", ""
+        if speeds is not None:
+            speeds.tacho_quality()
         return frames
 
     def _flat_line(self, x: np.ndarray, fs: float, gap: bool) -> np.ndarray:
@@ -306,6 +328,8 @@ class SourcePipeline:
             elif st.data_status == "gap":
                 st.data_status = "ok"
             self.seq += 1
+            sp = (st.speed_now_rpm, st.speed_source, st.speed_status, math.nan, False) if (
+                self.speeds is None) else self.speeds.frame(g, cid)
             out.append(
                 SpectralFrame(
                     channel=cid,
@@ -343,6 +367,8 @@ class SourcePipeline:
                     ),
                     peaks=FramePeaks(peaks, c),
                     quality="sensor-fault" if st.data_status == "sensor-fault" else "ok",
+                    speed_rpm=sp[0], speed_source=sp[1], speed_status=sp[2],
+                    speed_variation=sp[3], speed_varied=sp[4],
                 )
             )
         return out

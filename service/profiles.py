@@ -215,8 +215,11 @@ def plan_profiles(cfg: Config, channel_id: str, fs_in: float) -> list[ProfilePla
     """The profiles of one channel (primary first) on a stream of ``fs_in`` Hz.
 
     A profile whose Fmax is above fs_in/2.56 (possible only where the config could not know
-    the rate, e.g. a WAV file's) runs undecimated to fs_in/2.56, with a note saying so."""
+    the rate, e.g. a WAV file's) runs undecimated to fs_in/2.56, with a note saying so.
+    A tacho channel has none: its pulses give speed (``service.speed``), not spectra."""
     ch = channel_settings(cfg, channel_id)
+    if ch.kind == "tacho":
+        return []
     out = []
     for i, name in enumerate(profiles_of(cfg, channel_id)):
         settings = effective_analysis(cfg, channel_id, name)

@@ -137,3 +137,15 @@ def tone_items(frame: SpectralFrame) -> list[dict[str, object]]:
 def peak_items(frame: SpectralFrame) -> list[dict[str, object]]:
     """The frame's largest peaks as JSON: interpolated frequency (Hz) and amplitude."""
     return [{"frequency_hz": p.frequency_hz, "amplitude": p.value} for p in frame.peaks]
+
+
+def frame_speed(frame: SpectralFrame) -> dict[str, object]:
+    """The speed a frame's orders were placed at, with its source and status, and whether
+    it changed within the frame by more than the channel's speed_tolerance (``varied``)."""
+    return {
+        "rpm": _num(frame.speed_rpm),
+        "source": frame.speed_source,
+        "status": frame.speed_status,
+        "variation": _num(frame.speed_variation),
+        "varied": frame.speed_varied,
+    }

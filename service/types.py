@@ -9,9 +9,12 @@ import math
 import threading
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
-from typing import NamedTuple, Protocol, overload
+from typing import TYPE_CHECKING, NamedTuple, Protocol, overload
 
 import numpy as np
+
+if TYPE_CHECKING:  # the engine's result type, without importing scipy here
+    from dsp.orders import OrderSpectrum
 
 
 @dataclass(frozen=True, slots=True)
@@ -200,6 +203,16 @@ class SpectralFrame:
     # "sensor-fault" when the channel's latest blocks held bad samples (zeroed before the
     # analysis; the values are not to be trusted), else "ok" (service.quality)
     quality: str = "ok"
+    # The running speed order bands and tones were placed at: the frame's mean speed, r/min
+    # (NaN: none), where it came from (tacho | estimated | manual | fixed | "" none), the
+    # speed source's own status (ok | no-signal | sensor-fault; "" without a source), the
+    # relative change of speed within the frame, and whether that exceeded the channel's
+    # speed_tolerance (the frame smears its orders: service.speed)
+    speed_rpm: float = float("nan")
+    speed_source: str = ""
+    speed_status: str = ""
+    speed_variation: float = float("nan")
+    speed_varied: bool = False
 
 
 @dataclass
@@ -247,6 +260,48 @@ class ChannelState:
     notes: tuple[str, ...] = ()
     profiles: tuple[str, ...] = ("default",)  # analysis profiles, the primary one first
     profile_info: dict[str, dict[str, object]] = field(default_factory=dict)  # at the stream's fs
+    # Running speed (service.speed): "vibration" or "tacho"; where the speed comes from
+    # (tacho | estimated | manual | fixed | ""), the latest value r/min and its own status
+    # (ok | no-signal | sensor-fault), the latest frame's relative change of speed and flag;
+    # an operator's written speed; a tacho channel's pulse counters.
+    kind: str = "vibration"
+    speed_source: str = ""
+    speed_from: str | None = None
+    speed_now_rpm: float = float("nan")
+    speed_status: str = ""
+    speed_variation: float = float("nan")
+    speed_varied: bool = False
+    manual_rpm: float | None = None
+    manual_by: str = ""
+    pulses: int = 0
+    extra_pulses: int = 0
+    missing_pulses: int = 0
+    pulse_faults: int = 0
+    # samples and pulses of a channel fed by a tacho: order spectra, run-up data
+    # (service.speed.RunupCapture); None for other channels
+    runup: RunupSource | None = None
+
+    def speed_dict(self) -> dict[str, object] | None:
+        """The channel's running speed as JSON fields, with its status; None without one."""
+        if not self.speed_source and self.kind != "tacho":
+            return None
+        rpm = self.speed_now_rpm
+        d: dict[str, object] = {
+            "rpm": rpm if math.isfinite(rpm) else None,
+            "source": "tacho" if self.kind == "tacho" else self.speed_source,
+            "status": self.speed_status or ("ok" if math.isfinite(rpm) else "no-signal"),
+            "variation": (self.speed_variation if math.isfinite(self.speed_variation)
+                          else None),
+            "varied": self.speed_varied,
+        }
+        if self.speed_from is not None:
+            d["from"] = self.speed_from
+        if self.speed_source == "manual":
+            d["written_by"] = self.manual_by or None
+        if self.kind == "tacho":
+            d["pulses"] = {"accepted": self.pulses, "extra": self.extra_pulses,
+                           "missing": self.missing_pulses, "faults": self.pulse_faults}
+        return d
 
     def as_dict(self) -> dict[str, object]:
         return {
@@ -258,6 +313,8 @@ class ChannelState:
             "input_unit": self.input_unit,
             "sensitivity": self.sensitivity,
             "speed_rpm": self.speed_rpm,
+            "kind": self.kind,
+            "speed": self.speed_dict(),
             "status": self.status,
             "fault": self.fault,
             "status_since_ns": self.status_since_ns,
@@ -281,6 +338,17 @@ class ChannelState:
                 for i, p in enumerate(self.profiles)
             ],
         }
+
+
+class RunupSource(Protocol):
+    """What the API reads of a channel's run-up capture (``service.speed.RunupCapture``)."""
+
+    orders: tuple[float, ...]
+    rpm_step: float
+
+    def as_list(self) -> list[dict[str, object]]: ...
+
+    def order_spectrum(self, omax: float, lines: int) -> OrderSpectrum: ...
 
 
 class PipelineHealth(Protocol):

@@ -4,18 +4,21 @@ Reads the hub's latest frames; never touches an engine."""
 
 from __future__ import annotations
 
+import math
 import time
 from typing import Annotated, Any, Literal
 
 import numpy as np
-from fastapi import APIRouter, Query, Response
+from fastapi import APIRouter, Body, HTTPException, Query, Response
+from pydantic import BaseModel, Field
 
 from dsp.types import AMPLITUDES, OUTPUT_UNITS, QUANTITIES
 
-from ..config import Config
+from ..config import Config, channel_settings
 from ..hub import Hub
 from ..spectra import (
     band_items,
+    frame_speed,
     overall_item,
     peak_items,
     spectrum_values,
@@ -23,9 +26,20 @@ from ..spectra import (
     to_npy,
     tone_items,
 )
+from ..speed import NotEnoughRevolutions
 from ..types import ChannelState, SpectralFrame
-from .deps import NO_FRAME, NOT_FOUND, ChannelDep, ConfigDep, HubDep, ProfileQ, get_frame
+from .deps import (
+    NO_FRAME,
+    NOT_FOUND,
+    ChannelDep,
+    ConfigDep,
+    HubDep,
+    ProfileQ,
+    get_frame,
+    invalid_query,
+)
 from .rules import names
+from .security import Operator, role_responses
 from .timefields import with_times
 
 router = APIRouter(tags=["channels"])
@@ -44,7 +58,7 @@ def _num(v: float) -> float | None:
 
 
 def _stamp(frame: SpectralFrame) -> dict[str, Any]:
-    return {
+    d = {
         "channel": frame.channel,
         "profile": frame.profile,
         "seq": frame.seq,
@@ -52,6 +66,9 @@ def _stamp(frame: SpectralFrame) -> dict[str, Any]:
         "timestamp": _iso(frame.t_ns),
         "quality": frame.quality,
     }
+    if frame.speed_source:
+        d["speed"] = frame_speed(frame)
+    return d
 
 
 def _now_state(st: ChannelState) -> dict[str, Any]:
@@ -211,4 +228,112 @@ def get_bands(channel: ChannelDep, hub: HubDep, cfg: ConfigDep, profile: Profile
 def get_tones(channel: ChannelDep, hub: HubDep, cfg: ConfigDep, profile: ProfileQ = None
               ) -> dict[str, Any]:
     d = {**tones_payload(get_frame(channel.id, hub, profile)), **_now_state(channel)}
+    return with_times(d, cfg.service.timezone)
+
+
+class SpeedBody(BaseModel):
+    rpm: float | None = Field(
+        ..., gt=0, le=1e6,
+        description="Running speed, r/min; null returns the channel to its configured speed.",
+    )
+
+
+@router.put(
+    "/channels/{channel_id}/speed",
+    summary="Write a channel's running speed by hand (operator role)",
+    responses={
+        **role_responses("operator"),
+        404: {"description": "unknown channel"},
+        409: {"description": "the channel's speed is measured (tacho or estimated), or it "
+                             "is a tacho channel"},
+    },
+)
+def put_speed(channel: ChannelDep, cfg: ConfigDep, who: Operator,
+              body: Annotated[SpeedBody, Body()]) -> dict[str, Any]:
+    if channel.kind == "tacho":
+        raise HTTPException(409, f"channel {channel.id!r} is a tacho: it measures speed")
+    if channel.speed_source in ("tacho", "estimated"):
+        raise HTTPException(
+            409, f"channel {channel.id!r} has its speed from "
+            f"{'tacho ' + repr(channel.speed_from) if channel.speed_from else 'its 1X line'}; "
+            "a written speed would be overridden")
+    # read by the source's worker at its next block (a plain attribute: one writer, here)
+    channel.manual_by = who.name
+    channel.manual_rpm = body.rpm
+    if body.rpm is None:
+        channel.speed_source = channel_settings(cfg, channel.id).speed_source
+        channel.speed_now_rpm = channel.speed_rpm if channel.speed_rpm is not None else math.nan
+        channel.speed_status = "ok" if channel.speed_rpm is not None else "no-signal"
+        return {"channel": channel.id, "speed": channel.speed_dict()}
+    channel.speed_source = "manual"
+    channel.speed_now_rpm, channel.speed_status = float(body.rpm), "ok"
+    return {"channel": channel.id, "speed": channel.speed_dict()}
+
+
+@router.get(
+    "/channels/{channel_id}/runup",
+    summary="Amplitude and phase of chosen orders against speed (run-up / coast-down data)",
+    responses={404: {"description": "unknown channel, or it keeps no run-up data "
+                                    "(no runup_orders)"}},
+)
+def get_runup(channel: ChannelDep, cfg: ConfigDep) -> dict[str, Any]:
+    cap = channel.runup
+    if cap is None or not cap.orders:
+        raise HTTPException(404, f"channel {channel.id!r} keeps no run-up data: give it "
+                            "runup_orders and a speed_from tacho")
+    rows = cap.as_list()
+    d = {
+        "channel": channel.id,
+        "orders": list(cap.orders),
+        "rpm_step": cap.rpm_step,
+        "unit": channel.input_unit,
+        "amplitude": "rms",
+        "phase_reference": "the tacho pulse at the start of each step of whole revolutions",
+        "status": channel.status,
+        "speed": channel.speed_dict(),
+        "rows": rows,
+    }
+    return with_times(d, cfg.service.timezone)
+
+
+@router.get(
+    "/channels/{channel_id}/orders",
+    summary="Order spectrum of a channel fed by a tacho, by angular resampling",
+    responses={404: {"description": "unknown channel, or its speed is not from a tacho"},
+               422: {"description": "omax/lines out of range"},
+               503: {"description": "fewer revolutions kept than one frame needs"}},
+)
+def get_orders(
+    channel: ChannelDep,
+    cfg: ConfigDep,
+    omax: Annotated[float, Query(gt=0, le=200, description="highest order shown")] = 10.0,
+    lines: Annotated[int, Query(
+        ge=25, le=3200, description="lines from 0 to omax (order resolution omax/lines); "
+        "2.56 × lines must be whole, e.g. 100, 200, 400, 800, 1600")] = 400,
+) -> dict[str, Any]:
+    if (lines * 256) % 100:
+        invalid_query("lines", f"2.56 × {lines} is not a whole number of samples; use e.g. "
+                      "100, 200, 400, 800 or 1600")
+    cap = channel.runup
+    if cap is None:
+        raise HTTPException(404, f"channel {channel.id!r} has no tacho (speed_from): order "
+                            "spectra need the shaft angle")
+    try:
+        res = cap.order_spectrum(omax, lines)
+    except NotEnoughRevolutions as e:
+        raise HTTPException(503, str(e), headers={"Retry-After": "5"}) from None
+    d = {
+        "channel": channel.id,
+        "omax": omax,
+        "lines": lines,
+        "d_order": omax / lines,
+        "frames": res.frames,
+        "rpm_mean": res.rpm_mean,
+        "window": "hann",
+        "unit": channel.input_unit,
+        "amplitude": "rms",
+        "status": channel.status,
+        "speed": channel.speed_dict(),
+        "values": [_num(v) for v in res.amplitude_rms[0].tolist()],
+    }
     return with_times(d, cfg.service.timezone)

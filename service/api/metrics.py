@@ -100,6 +100,24 @@ class _ServiceCollector(Collector):
             if st.last_frame_mono is not None:
                 stale.add_metric([cid], max(0.0, now - st.last_frame_mono))
         yield from (status, faults, gaps, changes, stale)
+        # running speed, with its own status beside it (a number never leaves without it)
+        speed = GaugeMetricFamily(
+            "quaver_speed_rpm", "Running speed, r/min (absent while unknown)",
+            labels=["channel", "source"],
+        )
+        speed_status = GaugeMetricFamily(
+            "quaver_speed_status", "1 for the running speed's current status",
+            labels=["channel", "status"],
+        )
+        for cid, st in hub.channels.items():
+            sp = st.speed_dict()
+            if sp is None:
+                continue
+            if sp["rpm"] is not None:
+                speed.add_metric([cid, str(sp["source"])], float(sp["rpm"]))  # type: ignore[arg-type]
+            for s in ("ok", "no-signal", "sensor-fault"):
+                speed_status.add_metric([cid, s], 1.0 if sp["status"] == s else 0.0)
+        yield from (speed, speed_status)
         failures = CounterMetricFamily(
             "quaver_source_pipeline_failures",
             "Times the source's pipeline raised (it is restarted with back-off)",

@@ -10,6 +10,7 @@ import functools
 import json
 import math
 import os
+import sys
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
@@ -18,6 +19,7 @@ import numpy as np
 from pydantic import ValidationError
 
 from dsp.filterbank import FMAX_RATIO
+from dsp.tacho import TachoTracker
 from dsp.types import (
     QUANTITIES,
 )
@@ -31,13 +33,22 @@ from ..config import (
     channel_settings,
     load_config,
     parse_config,
+    planning_rpm,
     profiles_of,
 )
 from ..lookups import effective_analysis
 from ..pipeline import ChannelState, SourcePipeline, channel_states
 from ..profiles import ProfileBank
 from ..recording import Recording, load_recording
-from ..spectra import band_items, overall_item, peak_items, spectrum_values, tone_items
+from ..spectra import (
+    band_items,
+    frame_speed,
+    overall_item,
+    peak_items,
+    spectrum_values,
+    tone_items,
+)
+from ..speed import tacho_settings
 from ..types import SampleBlock, SourceCounters, SpectralFrame
 from .common import CHUNK_S, CliError, Progress, _config_error, _num, _say
 
@@ -171,9 +182,10 @@ def _plain_run(args: argparse.Namespace, rec: Recording, over: dict[str, Any]) -
 
 
 def _config_run(args: argparse.Namespace, cfg: Config, row: int, cid: str,
-                over: dict[str, Any], fs: float) -> _Run:
+                over: dict[str, Any], fs: float, chosen: list[str]) -> _Run:
     """One recording row as config channel ``cid``, its profile (--profile or the primary
-    one) only, the options merged over the profile's settings (the later wins)."""
+    one) only, the options merged over the profile's settings (the later wins). A channel
+    whose speed comes from a tacho (``speed_from``) takes the tacho's row with it."""
     runs = profiles_of(cfg, cid)
     if args.profile is not None and args.profile not in runs:
         raise CliError(f"--profile {args.profile!r}: channel {cid!r} of {args.config} "
@@ -189,11 +201,22 @@ def _config_run(args: argparse.Namespace, cfg: Config, row: int, cid: str,
         channel["input_unit"] = args.input_unit
     if args.sensitivity is not None:
         channel["sensitivity"] = args.sensitivity
-    has_speed = ch.speed_rpm is not None
+    plan_rpm = planning_rpm(cfg, cid)
+    has_speed = plan_rpm is not None
+    rows, ids, extra_channels = [row], [cid], []
+    if ch.speed_from is not None:
+        if ch.speed_from not in chosen:
+            raise CliError(f"channel {cid!r} takes its speed from tacho {ch.speed_from!r}, "
+                           "which is not a channel of the recording (name it in the file's "
+                           "header)", 2)
+        rows.append(chosen.index(ch.speed_from))
+        ids.append(ch.speed_from)
+        tacho = channel_settings(cfg, ch.speed_from)
+        extra_channels.append(tacho.model_dump(exclude={"analysis", "profiles"}))
     cli_bands, cli_tones = _cli_items(args, cid, s.fmax_hz)
     cli_names = {b["name"] for b in cli_bands} | {t["name"] for t in cli_tones}
 
-    rps = (ch.speed_rpm or 0.0) / 60.0
+    rps = (plan_rpm or 0.0) / 60.0
     beyond: list[tuple[str, dict[str, Any]]] = []
 
     def keep(item: Any, is_order: bool, top: float | None) -> bool:
@@ -236,8 +259,8 @@ def _config_run(args: argparse.Namespace, cfg: Config, row: int, cid: str,
     ]
     doc: dict[str, Any] = {
         "analysis": cfg.analysis.model_dump(),
-        "sources": [_source([cid], fs)],
-        "channels": [channel],
+        "sources": [_source(ids, fs)],
+        "channels": [channel, *extra_channels],
         "bands": bands + cli_bands,
         "tones": tones + cli_tones,
         # the channel's bearing, for an envelope profile's defect bands and tones
@@ -246,8 +269,8 @@ def _config_run(args: argparse.Namespace, cfg: Config, row: int, cid: str,
     if cfg.profiles:  # the one profile, under its own name, with the merged settings
         doc["profiles"] = {prof: settings}
         channel["profiles"] = [prof]
-    return _Run([row], [cid], _validated(doc, f"{args.config} with the command-line options",
-                                         over), cid, beyond, warnings)
+    return _Run(rows, ids, _validated(doc, f"{args.config} with the command-line options",
+                                      over), cid, beyond, warnings)
 
 
 def _beyond(item: Any, rps: float, fmax_hz: float) -> tuple[str, dict[str, Any]]:
@@ -292,7 +315,22 @@ def _plan(args: argparse.Namespace, rec: Recording) -> list[_Run]:
     else:
         raise CliError(f"{args.config} has several channels; choose one with --channel "
                        f"(channels: {listed})", 2)
-    return [_config_run(args, cfg, row, cid, over, rec.fs) for row, cid in enumerate(chosen)]
+    rows = list(enumerate(chosen))
+    if args.profile is not None and args.channel is None:
+        # a recording of a whole source: the rows whose channel runs the profile asked for
+        # (an envelope profile is often on a few channels only); the others are named
+        has = [(r, c) for r, c in rows if channel_settings(cfg, c).kind == "tacho"
+               or args.profile in profiles_of(cfg, c)]
+        if any(channel_settings(cfg, c).kind != "tacho" for _, c in has):
+            left = sorted({c for r, c in rows if (r, c) not in has})
+            if left:
+                print(f"quaver analyze: --profile {args.profile!r}: left out "
+                      f"{', '.join(left)} (no such profile)", file=sys.stderr)
+            rows = has
+    return [_config_run(args, cfg, row, cid, over, rec.fs, chosen)
+            if channel_settings(cfg, cid).kind != "tacho"
+            else _Run([row], [cid], cfg, cid)  # a tacho row: its speed, not a spectrum
+            for row, cid in rows]
 
 
 async def _no_publish(*_: object) -> None:  # frames are read back, not published
@@ -388,8 +426,30 @@ def _channel_result(name: str, run: _Run, frame: SpectralFrame, st: ChannelState
                      "flat_blocks": st.flat_blocks, "clipped_blocks": st.clipped_blocks,
                      "sensor_faults": st.sensor_faults, "gaps": st.gaps},
         "notes": list(st.notes),
+        **({"speed": frame_speed(frame)} if frame.speed_source else {}),
         "spectrum": [_num(v) for v in values.tolist()],
     }
+
+
+def _tacho_result(name: str, run: _Run, x: np.ndarray, fs: float) -> dict[str, Any]:
+    """A tacho row: its pulses through the service's own settings (dsp.tacho), the speed
+    per revolution summarised (r/min) and the status at the end of the recording."""
+    ch = channel_settings(run.cfg, run.ids[0])
+    res = TachoTracker(fs, tacho_settings(ch)).push(np.asarray(x, dtype=np.float64)
+                                                    * ch.sensitivity)
+    rpm = res.rpm
+    speed: dict[str, Any] = {
+        "rpm_mean": (60.0 * (res.edges_s.size - 1) / ch.pulses_per_rev
+                     / (res.edges_s[-1] - res.edges_s[0])) if res.edges_s.size > 1 else None,
+        "rpm_min": float(rpm.min()) if rpm.size else None,
+        "rpm_max": float(rpm.max()) if rpm.size else None,
+        "revolutions": int(rpm.size),
+        "status": res.status,
+        "pulses": {"accepted": int(res.edges_s.size - res.bridged.sum()), "extra": res.extra,
+                   "missing": res.missing, "faults": res.faults},
+    }
+    return {"channel": name, "config_channel": run.config_channel, "kind": "tacho",
+            "speed": speed}
 
 
 def _fmt(v: float | None, digits: int = 5) -> str:
@@ -397,6 +457,14 @@ def _fmt(v: float | None, digits: int = 5) -> str:
 
 
 def _table(r: dict[str, Any]) -> str:
+    if r.get("kind") == "tacho":
+        sp = r["speed"]
+        cfg = f" (config channel {r['config_channel']})" if r["config_channel"] else ""
+        return (f"{r['channel']}{cfg}: tacho, {sp['revolutions']} revolutions, speed "
+                f"{_fmt(sp['rpm_min'])}-{_fmt(sp['rpm_max'])} r/min (mean "
+                f"{_fmt(sp['rpm_mean'])}), status {sp['status']}; pulses "
+                f"{sp['pulses']['accepted']}, extra {sp['pulses']['extra']}, missing "
+                f"{sp['pulses']['missing']}, faults {sp['pulses']['faults']}")
     u, a = r["unit"], r["amplitude"]
     lo, hi = r["overall_band_hz"]
     cfg = f" (config channel {r['config_channel']})" if r["config_channel"] else ""
@@ -411,6 +479,11 @@ def _table(r: dict[str, Any]) -> str:
     if r["status"] != "ok":
         out.append(f"  status: {r['status']}" + (f" ({r['fault']})" if r["fault"] else ""))
     out += [f"  note: {n}" for n in r["notes"]]
+    if r.get("speed"):
+        sp = r["speed"]
+        out.append(f"  orders placed at {_fmt(sp['rpm'])} r/min ({sp['source']}, "
+                   f"{sp['status']}; the newest frame's mean speed"
+                   + (", which varied within the frame)" if sp["varied"] else ")"))
     if r["bands"]:
         out.append(f"  bands ({u} rms)")
         for b in r["bands"]:
@@ -460,8 +533,15 @@ def cmd_analyze(args: argparse.Namespace) -> int:
             if progress:
                 progress.update(before + done)
 
+        if run.config_channel is not None and (
+                channel_settings(run.cfg, run.config_channel).kind == "tacho"):
+            row = run.rows[0]
+            results[row] = _tacho_result(rec.channel_names[row], run, rec.data[row], rec.fs)
+            continue
         latest, states = _analyse(run, rec, step)
         for row, cid in zip(run.rows, run.ids, strict=True):
+            if run.config_channel is not None and cid != run.config_channel:
+                continue  # the tacho that gave a channel its speed: its own row reports it
             frame = latest.get(cid)
             if frame is None:
                 info = next(iter(states[cid].profile_info.values()), {})
@@ -471,6 +551,7 @@ def cmd_analyze(args: argparse.Namespace) -> int:
             results[row] = _channel_result(rec.channel_names[row], run, frame, states[cid])
     if progress:
         progress.close()
+    results = [r for r in results if r]  # rows left out (--profile they do not run)
     if args.json:
         doc = {"file": str(args.file), "format": rec.fmt, "fs_hz": rec.fs,
                "samples": int(n_total), "duration_s": n_total / rec.fs,

@@ -61,14 +61,27 @@ def _demo_feed_listen(asked: str | None) -> str | None:
     return None
 
 
+def _lowest_rpm(cfg: Config, cid: str) -> float | None:
+    """The speed whose orders reach lowest: speed_rpm, else the lowest plausible one (the
+    tacho's rpm_min for speed_from, the channel's own for an estimated or manual speed)."""
+    ch = channel_settings(cfg, cid)
+    if ch.speed_rpm is not None:
+        return ch.speed_rpm
+    if ch.speed_from is not None:
+        return channel_settings(cfg, ch.speed_from).rpm_min
+    return ch.rpm_min if ch.speed is not None else None
+
+
 def cmd_demo(args: argparse.Namespace) -> int:
     runner = _runner()
     from ..demo import DEMO_OPERATOR_TOKEN, demo_config
 
     feed_listen = _demo_feed_listen(args.feed_listen)
     try:
+        # the fan is asked for by name only, so the default demo stays as it was
+        fan = {"variable_speed": True} if args.variable_speed else {}
         cfg = demo_config(listen=args.listen, data_dir=args.data_dir, speed=args.speed,
-                              feed_listen=feed_listen)
+                              feed_listen=feed_listen, **fan)
         check_listen_allowed(cfg)
     except ConfigError as e:
         return _config_error(e)
@@ -147,6 +160,15 @@ def cmd_check(args: argparse.Namespace) -> int:
             problems.append(f"channels {cid!r}: {e}")
             continue
         head = f"  {cid} ({src.id}): fs {fs:g} Hz{how}"
+        ch = channel_settings(cfg, cid)
+        if ch.kind == "tacho":
+            level = "auto" if ch.trigger_level is None else f"{ch.trigger_level:g}"
+            out.append(f"{head}, tacho, {ch.pulses_per_rev} pulse(s)/rev, "
+                       f"{ch.rpm_min:g}-{ch.rpm_max:g} r/min, trigger level {level}")
+            continue
+        if ch.speed_source in ("tacho", "estimated", "manual"):
+            head += (f", speed from tacho {ch.speed_from}" if ch.speed_from
+                     else f", speed {ch.speed_source}")
         if len(plans) > 1:
             out.append(head)
         for p in plans:
@@ -170,7 +192,7 @@ def cmd_check(args: argparse.Namespace) -> int:
             else:
                 out.append(f"    {p.name}{' (primary)' if p.primary else ''}: {what}")
             out += [f"    note: {n}" for n in p.notes]
-            warned = plan_warnings(p, channel_settings(cfg, cid).speed_rpm)
+            warned = plan_warnings(p, _lowest_rpm(cfg, cid))
             warnings += len(warned)
             out += [f"    warning: {w}" for w in warned]
     out.append(f"alarms: {len(cfg.alarms)}")

@@ -35,7 +35,14 @@ from .plant import (
     TokenConfig,
     ToneConfig,
 )
-from .queries import channel_ids, channel_settings, profile_names, profiles_of, source_of
+from .queries import (
+    channel_ids,
+    channel_settings,
+    planning_rpm,
+    profile_names,
+    profiles_of,
+    source_of,
+)
 from .settings import (
     DEFAULT_PROFILE,
     AnalysisOverride,
@@ -84,6 +91,7 @@ __all__ = [
     "bands_for",
     "channel_ids",
     "channel_settings",
+    "planning_rpm",
     "check_listen_allowed",
     "describe_settings",
     "effective_analysis",

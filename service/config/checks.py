@@ -21,7 +21,7 @@ from .base import FRAME_RATIO, QUANTITY_OF_UNIT, ConfigError, parse_listen
 from .models import Config
 from .notify import check_notify_url, split_urls
 from .plant import BandConfig, ToneConfig
-from .queries import channel_settings, profile_names, profiles_of
+from .queries import channel_settings, planning_rpm, profile_names, profiles_of
 from .salvage import Doubts
 from .sources import FileSourceConfig, SimulatedSourceConfig, TcpSourceConfig, UdpSourceConfig
 
@@ -181,6 +181,15 @@ class _Checker:
                 )
             if c.sensitivity == 0:
                 self.add(f"channels[{j}].sensitivity: must not be 0")
+            if c.speed_from is not None and not self.doubts.channel(c.speed_from):
+                tacho = channel_settings(self.cfg, c.speed_from)
+                if tacho.kind != "tacho":
+                    self.add(f"channels[{j}].speed_from: {c.speed_from!r} is not a channel of "
+                             "kind 'tacho'")
+                elif self.channel_source.get(c.speed_from) != self.channel_source.get(c.id):
+                    self.add(f"channels[{j}].speed_from: tacho {c.speed_from!r} is not on "
+                             f"the source of channel {c.id!r} (pulses and vibration must share "
+                             "one sample clock)")
 
     def profiles(self) -> None:
         names = profile_names(self.cfg)
@@ -294,7 +303,7 @@ class _Checker:
         targets = self.targets(ch)
         if self.doubts.channel(ch):
             return
-        speeds = [channel_settings(self.cfg, t).speed_rpm for t in targets]
+        speeds = [planning_rpm(self.cfg, t) for t in targets]
         if ch != "*" and speeds and speeds[0] is None:
             self.add(f"{where}: channel {ch!r} has no speed_rpm, so orders cannot be placed")
         elif ch == "*" and targets and all(s is None for s in speeds):
@@ -315,7 +324,7 @@ class _Checker:
             profs = mine if profile == "*" else [profile] if profile in mine else []
             if not profs:
                 continue
-            top = _top_hz(hz, order, channel_settings(self.cfg, t).speed_rpm)
+            top = _top_hz(hz, order, planning_rpm(self.cfg, t))
             fmax = max(effective_analysis(self.cfg, t, p).fmax_hz for p in profs)
             if not _covers(fmax, top):
                 over.append(f"{t!r} ({_fmt_hz(fmax)})")

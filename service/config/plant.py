@@ -31,6 +31,62 @@ class ChannelConfig(StrictModel):
     speed_rpm: float | None = Field(
         None, gt=0, description="Running speed, r/min; enables order bands and tones."
     )
+    kind: Literal["vibration", "tacho"] = Field(
+        "vibration",
+        description="vibration: a sensor analysed into spectra | tacho: a pulse signal "
+        "(once or pulses_per_rev per revolution) that gives running speed; no spectra.",
+    )
+    speed_from: str | None = Field(
+        None,
+        description="Id of the tacho channel (on the same source) whose pulses give this "
+        "channel's running speed, frame by frame; order bands and tones follow it.",
+    )
+    speed: Literal["estimated", "manual"] | None = Field(
+        None,
+        description="estimated: running speed from the largest line in rpm_min…rpm_max "
+        "(taken as 1X; choose the range to leave out 2X) | manual: written by an operator "
+        "(PUT /api/v1/channels/{id}/speed), starting from speed_rpm if given.",
+    )
+    rpm_min: float = Field(
+        30.0, gt=0, description="Lowest plausible running speed, r/min (tacho plausibility; "
+        "the lower end of the range searched by speed = 'estimated')."
+    )
+    rpm_max: float = Field(
+        30000.0, gt=0, description="Highest plausible running speed, r/min (tacho "
+        "plausibility; the upper end of the range searched by speed = 'estimated'). Orders "
+        "are placed within Fmax at this speed for channels whose speed is measured."
+    )
+    speed_tolerance: float = Field(
+        0.05, gt=0, le=1,
+        description="A frame is flagged speed_varied when its speed changed by more than "
+        "this fraction of its mean within the frame (max − min over its revolutions).",
+    )
+    runup_orders: list[Annotated[float, Field(gt=0, le=64)]] = Field(
+        default_factory=list, max_length=16,
+        description="Orders whose amplitude and phase are kept against speed (run-up and "
+        "coast-down data, GET /api/v1/channels/{id}/runup); needs speed_from.",
+    )
+    runup_rpm_step: float = Field(
+        50.0, gt=0, description="Speed bins of the run-up data, r/min: each keeps the vector "
+        "mean of the steps of its latest pass.",
+    )
+    pulses_per_rev: int = Field(1, ge=1, le=1024, description="Tacho: pulses per revolution.")
+    trigger_level: float | None = Field(
+        None,
+        description="Tacho: trigger level in input units (after sensitivity); default: "
+        "automatic, the middle of the recent min and max (follows DC drift).",
+    )
+    trigger_hysteresis: float | None = Field(
+        None, gt=0,
+        description="Tacho: distance between the two trigger thresholds: a fraction of the "
+        "recent swing, below 1, with the automatic level (default 0.5); in input units with "
+        "trigger_level (required then).",
+    )
+    min_swing: float = Field(
+        1.0, ge=0,
+        description="Tacho, automatic level: smallest peak-to-peak swing taken as pulses, "
+        "input units (noise alone must stay below it).",
+    )
     machine: str = Field(
         "", max_length=128, description="Machine this sensor is on (grouping label; its "
         "display name and group come from a [[machines]] entry of that id, if any)."
@@ -81,6 +137,39 @@ class ChannelConfig(StrictModel):
         "Default: every profile, in file order, except envelope profiles (kind = "
         "'envelope' in their own table), which a channel runs only when it lists them.",
     )
+
+
+    @model_validator(mode="after")
+    def _speed_entry(self) -> ChannelConfig:
+        if self.rpm_min >= self.rpm_max:
+            raise ValueError(f"rpm_min {self.rpm_min:g} must be below rpm_max {self.rpm_max:g}")
+        given = [k for k, v in (("speed_rpm", self.speed_rpm), ("speed_from", self.speed_from),
+                                ("speed", self.speed)) if v is not None]
+        if self.kind == "tacho" and given:
+            raise ValueError(f"a tacho channel measures speed; it takes no {given[0]}")
+        if self.speed_from is not None and len(given) > 1:
+            other = next(g for g in given if g != "speed_from")
+            raise ValueError(f"give one speed source: speed_from or {other}, not both")
+        if self.runup_orders and self.speed_from is None:
+            raise ValueError("runup_orders needs speed_from (a tacho gives the shaft angle)")
+        if self.speed == "estimated" and self.speed_rpm is not None:
+            raise ValueError("speed = 'estimated' takes no speed_rpm")
+        if self.trigger_level is not None and self.trigger_hysteresis is None:
+            raise ValueError("trigger_level needs trigger_hysteresis (input units)")
+        if (self.trigger_level is None and self.trigger_hysteresis is not None
+                and self.trigger_hysteresis >= 1):
+            raise ValueError(f"trigger_hysteresis {self.trigger_hysteresis:g} must be a "
+                             "fraction below 1 with the automatic level")
+        return self
+
+    @property
+    def speed_source(self) -> str:
+        """Where the running speed comes from: tacho | estimated | manual | fixed | '' (none)."""
+        if self.speed_from is not None:
+            return "tacho"
+        if self.speed is not None:
+            return self.speed
+        return "fixed" if self.speed_rpm is not None else ""
 
 
 _PROFILE_HELP = (

@@ -30,6 +30,19 @@ def channel_settings(cfg: Config, channel_id: str) -> ChannelConfig:
     return entry if entry is not None else ChannelConfig.model_validate({"id": channel_id})
 
 
+def planning_rpm(cfg: Config, channel_id: str) -> float | None:
+    """The speed, r/min, orders are placed at when the config is checked (Fmax, '*' bands
+    and tones): ``speed_rpm``; else, where the speed is measured or written, the highest
+    plausible one (the tacho's ``rpm_max`` for ``speed_from``, the channel's own for
+    ``speed = 'estimated'`` or ``'manual'``); None without a speed."""
+    ch = channel_settings(cfg, channel_id)
+    if ch.speed_rpm is not None:
+        return ch.speed_rpm
+    if ch.speed_from is not None:
+        return channel_settings(cfg, ch.speed_from).rpm_max
+    return ch.rpm_max if ch.speed is not None else None
+
+
 def profile_names(cfg: Config) -> list[str]:
     """Every analysis profile name, in file order (``["default"]`` without [profiles])."""
     return list(cfg.profiles) or [DEFAULT_PROFILE]

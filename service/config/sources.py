@@ -118,7 +118,9 @@ class FileSourceConfig(_SourceBase):
 class SimulatedSourceConfig(_SourceBase):
     kind: Literal["simulated"] = described("Source kind.")
     scenario: Name = Field(
-        "demo", description="Simulated plant scenario (see service/sources/simulated.py: 'demo')."
+        "demo", description="Simulated plant scenario: 'demo' (service/sources/simulated.py) or "
+        "'variable-speed' (a fan ramping 900–1500 r/min with a tacho: "
+        "service/sources/varspeed.py)."
     )
     speed: float = Field(
         1.0,
@@ -136,6 +138,11 @@ class SimulatedSourceConfig(_SourceBase):
     )
     fault_ramp_s: float = Field(
         180.0, gt=0, le=1e6, description="Time the scripted fault takes to reach full severity, s."
+    )
+    speed_ramp_s: float = Field(
+        120.0, gt=0, le=1e6,
+        description="Scenario 'variable-speed': time for one speed ramp between 900 and "
+        "1500 r/min (and back), s.",
     )
 
 

@@ -77,6 +77,7 @@ def make_source(cfg: SourceConfig, *, clock: Callable[[], int] = time.time_ns) -
 
         kwargs: dict[str, object] = {
             "seed": cfg.seed, "fault_start_s": cfg.fault_start_s, "fault_ramp_s": cfg.fault_ramp_s,
+            "speed_ramp_s": cfg.speed_ramp_s,
         }
         if cfg.sample_rate_hz is not None:
             kwargs["fs"] = cfg.sample_rate_hz

@@ -32,6 +32,7 @@ import time
 import zlib
 from collections.abc import AsyncIterator, Callable, Mapping, Sequence
 from dataclasses import dataclass
+from typing import Protocol
 
 import numpy as np
 
@@ -416,7 +417,7 @@ DEMO_CHANNELS: tuple[ChannelInfo, ...] = (
                 FAN_BEARING),
 )
 
-SCENARIOS: tuple[str, ...] = ("demo",)
+SCENARIOS: tuple[str, ...] = ("demo", "variable-speed")
 
 
 def demo_site(
@@ -528,12 +529,29 @@ def demo_site(
     )
 
 
-def build_scenario(name: str, **kwargs: object) -> PlantModel:
+class SignalModel(Protocol):
+    """What :class:`SimulatedSource` streams: a pure function of the sample index."""
+
+    fs: float
+    channel_ids: tuple[str, ...]
+
+    def render(self, first_index: int, n: int) -> np.ndarray: ...
+
+    def fault_severity(self, t_s: float) -> float: ...
+
+
+def build_scenario(name: str, **kwargs: object) -> SignalModel:
     """Build a named simulated site; ``name`` is one of :data:`SCENARIOS`.
 
-    Keyword arguments go to the scenario's factory (for "demo": :func:`demo_site`)."""
+    Keyword arguments go to the scenario's factory (for "demo": :func:`demo_site`; for
+    "variable-speed": :func:`service.sources.varspeed.variable_speed_site`)."""
     if name not in SCENARIOS:
         raise ValueError(f"scenario={name!r} is not one of {', '.join(map(repr, SCENARIOS))}")
+    if name == "variable-speed":
+        from .varspeed import variable_speed_site
+
+        return variable_speed_site(**kwargs)  # type: ignore[arg-type]
+    kwargs.pop("speed_ramp_s", None)
     return demo_site(**kwargs)  # type: ignore[arg-type]
 
 
@@ -561,7 +579,7 @@ class SimulatedSource:
     def __init__(
         self,
         source_id: str,
-        model: PlantModel,
+        model: SignalModel,
         *,
         block_s: float = 0.1,
         speed: float = 1.0,

@@ -121,8 +121,8 @@ def f64_overflow_allowed() -> Iterator[None]:
         yield
 
 
-# A good frame's samples keep signed 64-bit indices (docs/feeding.md, framed format): with at most 48
-# samples a frame, any first index below this fits.
+# A good frame's samples keep signed 64-bit indices (docs/feeding.md, framed format):
+# with at most 48 samples a frame, any first index below this fits.
 GOOD_INDEX_END = 2**63 - 48
 
 
