@@ -36,7 +36,6 @@ from .deps import (
     HubDep,
     ProfileQ,
     get_frame,
-    invalid_query,
 )
 from .rules import names
 from .security import Operator, role_responses
@@ -308,12 +307,10 @@ def get_orders(
     cfg: ConfigDep,
     omax: Annotated[float, Query(gt=0, le=200, description="highest order shown")] = 10.0,
     lines: Annotated[int, Query(
-        ge=25, le=3200, description="lines from 0 to omax (order resolution omax/lines); "
-        "2.56 × lines must be whole, e.g. 100, 200, 400, 800, 1600")] = 400,
+        ge=25, le=3200, multiple_of=25,
+        description="lines from 0 to omax (order resolution omax/lines); a multiple of 25 "
+        "(so 2.56 × lines is a whole number of samples), e.g. 100, 200, 400, 800, 1600")] = 400,
 ) -> dict[str, Any]:
-    if (lines * 256) % 100:
-        invalid_query("lines", f"2.56 × {lines} is not a whole number of samples; use e.g. "
-                      "100, 200, 400, 800 or 1600")
     cap = channel.runup
     if cap is None:
         raise HTTPException(404, f"channel {channel.id!r} has no tacho (speed_from): order "

@@ -61,6 +61,8 @@ GET_ROUTES = [
     "/api/v1/channels/{channel_id}/waterfall",
     "/api/v1/channels/{channel_id}/waveform",
     "/api/v1/channels/{channel_id}/kurtogram",
+    "/api/v1/channels/{channel_id}/orders",
+    "/api/v1/channels/{channel_id}/runup",
     "/api/v1/alarms",
     "/api/v1/alarms/shelved",
     "/api/v1/rules",
