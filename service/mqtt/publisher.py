@@ -95,9 +95,10 @@ class MqttPublisher:
         """Subscribe to the hub and start connecting (paho retries in its own thread with
         back-off 1 s … reconnect_max_s; the service runs whether the broker answers or not)."""
         import paho.mqtt.client as mqtt  # the 'mqtt' extra: only a service with [mqtt] needs it
+        from paho.mqtt.enums import CallbackAPIVersion
 
         self.store_id = store_id
-        c = mqtt.Client(mqtt.CallbackAPIVersion.VERSION2, client_id=self.client_id,
+        c = mqtt.Client(CallbackAPIVersion.VERSION2, client_id=self.client_id,
                         protocol=mqtt.MQTTv311, clean_session=True)
         c.will_set(self.topics.state, OFFLINE, qos=1, retain=True)
         if self.m.username:
