@@ -24,6 +24,7 @@ __all__ = [
     "bands_payload",
     "encode",
     "event_payload",
+    "head",
     "spectrum_payload",
     "status_payload",
     "tones_payload",
@@ -73,9 +74,10 @@ def _num(v: float) -> float | None:
     return float(v) if np.isfinite(v) else None
 
 
-def _head(frame: SpectralFrame, st: ChannelState, machine: str, tz: str) -> dict[str, Any]:
+def head(frame: SpectralFrame, st: ChannelState, machine: str, tz: str) -> dict[str, Any]:
     """What every value message starts with: whose, when, and the data-quality state with it
-    (the channel's state now, and ``frame_quality``: were this frame's samples clean)."""
+    (the channel's state now, and ``frame_quality``: were this frame's samples clean). Made
+    once per frame; each message of the frame takes a copy."""
     return {
         "channel": frame.channel,
         "machine": machine or None,
@@ -89,53 +91,49 @@ def _head(frame: SpectralFrame, st: ChannelState, machine: str, tz: str) -> dict
     }
 
 
-def bands_payload(frame: SpectralFrame, st: ChannelState, machine: str, tz: str,
-                  kinds: Collection[str]) -> dict[str, Any]:
-    """The ``bands`` message: RMS per band in the frame's unit, ``overall`` first (each
-    part only if ``kinds`` holds ``overall`` / ``bands``), null with a reason when a value
-    was not measured, and the edges each value covers."""
+def bands_payload(frame: SpectralFrame, top: dict[str, Any], kinds: Collection[str]
+                  ) -> dict[str, Any]:
+    """The ``bands`` message (``top``: :func:`head`): RMS per band in the frame's unit,
+    ``overall`` first (each part only if ``kinds`` holds ``overall`` / ``bands``), null with
+    a reason when a value was not measured. The edges each value covers are not repeated in
+    every message: ``GET /api/v1/channels/{id}/bands`` has them."""
     values: dict[str, float | None] = {}
-    edges: dict[str, list[float | None]] = {}
     reasons: dict[str, str] = {}
     if "overall" in kinds:
         values["overall"] = v = _num(frame.overall)
-        edges["overall"] = [_num(frame.overall_lo_hz), _num(frame.overall_hi_hz)]
         if v is None:
             reasons["overall"] = band_reason(frame, frame.overall_lo_hz, frame.overall_hi_hz)
     if "bands" in kinds:
         for b in frame.bands:
             values[b.name] = v = _num(b.value)
-            edges[b.name] = [_num(b.lo_hz), _num(b.hi_hz)]
             if v is None:
                 reasons[b.name] = band_reason(frame, b.lo_hz, b.hi_hz)
-    doc = _head(frame, st, machine, tz)
-    doc.update(unit=frame.unit, amplitude="rms", values=values, edges_hz=edges)
+    doc = dict(top)
+    doc.update(unit=frame.unit, amplitude="rms", values=values)
     if reasons:
         doc["reasons"] = reasons
     return doc
 
 
-def tones_payload(frame: SpectralFrame, st: ChannelState, machine: str, tz: str
-                  ) -> dict[str, Any]:
-    """The ``tones`` message: each tracked tone's frequency (Hz) and amplitude in the frame's
-    unit and amplitude type; null with a reason when not measured."""
+def tones_payload(frame: SpectralFrame, top: dict[str, Any]) -> dict[str, Any]:
+    """The ``tones`` message (``top``: :func:`head`): each tracked tone's frequency (Hz) and
+    amplitude in the frame's unit and amplitude type; null with a reason when not measured."""
     tones: dict[str, dict[str, Any]] = {}
     for t in frame.tones:
         d: dict[str, Any] = {"frequency_hz": _num(t.frequency_hz), "amplitude": _num(t.value)}
         if d["amplitude"] is None:
             d["reason"] = tone_reason(frame, t.frequency_hz)
         tones[t.name] = d
-    doc = _head(frame, st, machine, tz)
+    doc = dict(top)
     doc.update(unit=frame.unit, amplitude=frame.amplitude, tones=tones)
     return doc
 
 
-def spectrum_payload(frame: SpectralFrame, st: ChannelState, machine: str, tz: str
-                     ) -> dict[str, Any]:
-    """The ``spectrum`` message: values on f[q] = f0_hz + q·df_hz in the frame's unit and
-    amplitude type (as ``GET /channels/{id}/spectrum`` gives them)."""
+def spectrum_payload(frame: SpectralFrame, top: dict[str, Any]) -> dict[str, Any]:
+    """The ``spectrum`` message (``top``: :func:`head`): values on f[q] = f0_hz + q·df_hz in
+    the frame's unit and amplitude type (as ``GET /channels/{id}/spectrum`` gives them)."""
     values, unit, amp = spectrum_values(frame)
-    doc = _head(frame, st, machine, tz)
+    doc = dict(top)
     doc.update(unit=unit, amplitude=amp, f0_hz=frame.f0_hz, df_hz=frame.df_hz,
                fmax_hz=frame.fmax_hz, lines=frame.lines, averages=frame.averages,
                values=[_num(v) for v in values.tolist()])

@@ -37,6 +37,7 @@ from .payloads import (
     bands_payload,
     encode,
     event_payload,
+    head,
     spectrum_payload,
     status_payload,
     tones_payload,
@@ -251,19 +252,19 @@ class MqttPublisher:
         st = self.hub.channels.get(f.channel)
         if st is None:
             return
-        machine = self.machines.get(f.channel, "")
+        top = head(f, st, self.machines.get(f.channel, ""), self.tz)
         q, keep = self.m.qos, self.retain_values
         if self.kinds & {"overall", "bands"}:
-            doc = bands_payload(f, st, machine, self.tz, self.kinds)
+            doc = bands_payload(f, top, self.kinds)
             self._send(self.topics.frame(f, "bands"), encode(doc), q, keep)
         if "tones" in self.kinds and f.tones:
-            doc = tones_payload(f, st, machine, self.tz)
+            doc = tones_payload(f, top)
             self._send(self.topics.frame(f, "tones"), encode(doc), q, keep)
         if "spectrum" in self.kinds:
             key = (f.channel, f.profile)
             if now >= self._spectrum_due.get(key, 0.0):
                 self._spectrum_due[key] = now + self.m.spectrum_interval_s
-                doc = spectrum_payload(f, st, machine, self.tz)
+                doc = spectrum_payload(f, top)
                 self._send(self.topics.frame(f, "spectrum"), encode(doc), q, keep)
 
     def _event(self, ev: dict[str, Any]) -> None:
