@@ -128,7 +128,7 @@ class Service:
             self.notifier.on_event = lambda ev: self._from_thread(loop, ev)
             self.notifier.start()
         if self.mqtt is not None:  # before the sources: it sees every frame and event
-            await self.mqtt.start(await asyncio.to_thread(self.store.store_id))
+            await self.mqtt.start(self.store.store_id)
         for p in self.pipelines:
             await p.source.start()
         self.started_mono = time.monotonic()

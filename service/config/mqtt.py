@@ -6,6 +6,7 @@ them are :func:`mqtt_problems`)."""
 
 from __future__ import annotations
 
+import importlib.util
 from collections.abc import Mapping
 from typing import TYPE_CHECKING, Annotated, Literal, get_args
 
@@ -133,13 +134,23 @@ class MqttConfig(StrictModel):
         return self
 
 
+def _have_paho() -> bool:
+    try:
+        return importlib.util.find_spec("paho.mqtt.client") is not None
+    except (ImportError, ValueError):
+        return False
+
+
 def mqtt_problems(cfg: Config, env: Mapping[str, str]) -> list[str]:
-    """One line per problem of an enabled ``[mqtt]`` that its model cannot see: an unset
-    ``password_env``, a machine id that cannot be a topic level."""
+    """One line per problem of an enabled ``[mqtt]`` that its model cannot see: paho-mqtt
+    missing, an unset ``password_env``, a machine id that cannot be a topic level."""
     m = cfg.mqtt
     if not m.enabled:
         return []
     out = []
+    if not _have_paho():
+        out.append("mqtt.enabled: publishing needs paho-mqtt, which is not installed "
+                   "(pip install 'quaver[mqtt]')")
     if m.password_env is not None and not env.get(m.password_env):
         out.append(f"mqtt.password_env: the environment variable {m.password_env} is unset or "
                    "empty")

@@ -7,10 +7,9 @@ event loop."""
 from __future__ import annotations
 
 import json
+import math
 from collections.abc import Collection
 from typing import Any
-
-import numpy as np
 
 from ..spectra import band_reason, spectrum_values, tone_reason
 from ..timefmt import iso_time
@@ -71,7 +70,8 @@ def encode(doc: dict[str, Any]) -> bytes:
 
 
 def _num(v: float) -> float | None:
-    return float(v) if np.isfinite(v) else None
+    f = float(v)  # math.isfinite on a float: a tenth of np.isfinite's cost on a scalar
+    return f if math.isfinite(f) else None
 
 
 def head(frame: SpectralFrame, st: ChannelState, machine: str, tz: str) -> dict[str, Any]:
@@ -165,6 +165,6 @@ def event_payload(event: dict[str, Any], store_id: str, machine: str, tz: str
     doc.update(event)
     for k in ("value", "level"):
         v = doc.get(k)
-        if isinstance(v, float) and not np.isfinite(v):
+        if isinstance(v, float) and not math.isfinite(v):
             doc[k] = None
     return doc

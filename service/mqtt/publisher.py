@@ -1,16 +1,20 @@
 """The MQTT publisher: a hub subscriber on the event loop that turns frames, channel states and
-committed alarm events into messages, and paho-mqtt's network thread that carries them.
+committed alarm events into messages, and one network thread that owns the paho-mqtt client.
 
 Knows the hub, the config, the payloads and paho (imported when it starts); nothing of HTTP,
 the store's tables or the engine.
 
 Real-time contract
-    Nothing here waits on the broker. The hub hands this subscriber the newest frame per
-    channel and profile (a slow publisher skips frames, counted as ``skipped``); messages go
-    to paho's queue while it is connected and has fewer than ``backlog_max`` unsent, else to
-    a bounded backlog (oldest dropped and counted as ``dropped``) that is sent, in order,
-    once the broker answers again. QoS 0 messages paho had taken but not written when the
-    link failed are counted as ``lost``; QoS 1 ones paho sends again itself.
+    Nothing on the event loop waits on the broker or on the network. The hub hands this
+    subscriber the newest frame per channel and profile (a publisher that falls behind skips
+    frames, counted as ``skipped``); the messages made from them go into the backlog, a
+    bounded deque (beyond ``backlog_max`` the oldest is dropped and counted as ``dropped``).
+    The network thread is the only one that touches the paho client: it connects (again,
+    with back-off from 1 s doubling to ``reconnect_max_s``), hands the backlog to paho in
+    order while connected, and runs paho's loop (acknowledgements, keep-alive). One thread
+    for paho means one wake-up per batch of messages instead of one per message, and no
+    locking inside paho. QoS 0 messages paho had taken but not written when the link failed
+    are counted as ``lost``; QoS 1 ones paho sends again after reconnecting.
 """
 
 from __future__ import annotations
@@ -23,7 +27,7 @@ import os
 import socket
 import threading
 import time
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from typing import TYPE_CHECKING, Any
 
 from ..config import Config
@@ -49,11 +53,15 @@ if TYPE_CHECKING:
 __all__ = ["MqttPublisher"]
 
 log = logging.getLogger("quaver.mqtt")
-STATUS_PERIOD_S = 0.25  # channel states are compared this often (and the backlog retried)
-YIELD_EVERY = 64  # messages made between two returns to the event loop
+STATUS_PERIOD_S = 0.25  # channel states are compared this often
+YIELD_EVERY = 64  # items taken from the hub between two returns to the event loop
+NET_POLL_S = 0.02  # the network thread looks at the backlog at least this often
 STOP_TIMEOUT_S = 3.0  # the 'offline' message on a clean stop is waited for at most this
 EVENT_QUEUE = 4096  # alarm events the hub holds for this subscriber before dropping
-NO_CONN = 4  # paho's MQTT_ERR_NO_CONN (MQTTErrorCode is an IntEnum)
+# paho's MQTT_ERR_NO_CONN and MQTT_ERR_CONN_LOST (MQTTErrorCode is an IntEnum): no link
+NO_LINK = (4, 7)
+
+Message = tuple[str, bytes, int, bool]  # topic, payload, QoS, retain
 
 
 class MqttPublisher:
@@ -74,31 +82,43 @@ class MqttPublisher:
                          else self.m.password)
         self.client_id = self.m.client_id or _default_client_id()
         self.store_id = ""
-        self.backlog: collections.deque[tuple[str, bytes, int, bool]] = collections.deque()
+        self._read_store_id: Callable[[], str] = lambda: ""
+        # appended on the event loop, taken from the left by the network thread (a deque's
+        # append and popleft are atomic); the drop of the oldest happens on the loop only
+        self.backlog: collections.deque[Message] = collections.deque()
         self.connected = False
         self.connected_since_ns: int | None = None
         self.connects = self.disconnects = 0
         self.published = self.dropped = self.lost = self.errors = 0
         self.last_error = ""
         self.last_error_ns: int | None = None
-        self._lock = threading.Lock()  # the sets below are shared with paho's thread
-        self._pending: dict[int, int] = {}  # mid → qos of messages paho has not yet sent
-        self._early: set[int] = set()  # mids paho reported sent before we recorded them
-        self._fresh = False  # connected since the task last looked: flush, then states
+        self._lock = threading.Lock()  # counters written by both threads
+        self._pending: dict[int, int] = {}  # mid → QoS of messages paho has not yet sent
+        self._early: set[int] = set()  # mids paho reported sent before publish() returned
+        self._fresh = False  # connected since the task last looked: send every state again
         self._sent_status: dict[str, tuple[str, str]] = {}
         self._spectrum_due: dict[tuple[str, str], float] = {}
         self._client: mqtt.Client | None = None
         self._sub: Subscriber | None = None
         self._task: asyncio.Task[None] | None = None
+        self._thread: threading.Thread | None = None
+        self._stop = threading.Event()
 
     # -- lifecycle ---------------------------------------------------------------------
-    async def start(self, store_id: str) -> None:
-        """Subscribe to the hub and start connecting (paho retries in its own thread with
-        back-off 1 s … reconnect_max_s; the service runs whether the broker answers or not)."""
-        import paho.mqtt.client as mqtt  # the 'mqtt' extra: only a service with [mqtt] needs it
-        from paho.mqtt.enums import CallbackAPIVersion
+    async def start(self, store_id: Callable[[], str]) -> None:
+        """Subscribe to the hub and start the network thread, which connects (again and
+        again, with back-off; the service runs whether the broker answers or not).
+        ``store_id`` reads the store's id for the events' keys (again later if it fails)."""
+        try:  # the 'mqtt' extra: only a service with [mqtt] needs it
+            import paho.mqtt.client as mqtt
+            from paho.mqtt.enums import CallbackAPIVersion
+        except ImportError as e:
+            raise RuntimeError("[mqtt] is enabled but paho-mqtt is not installed "
+                               "(pip install 'quaver[mqtt]')") from e
 
-        self.store_id = store_id
+        self._read_store_id = store_id
+        with contextlib.suppress(Exception):  # a failing store announces no events anyway
+            self.store_id = await asyncio.to_thread(store_id)
         c = mqtt.Client(CallbackAPIVersion.VERSION2, client_id=self.client_id,
                         protocol=mqtt.MQTTv311, clean_session=True)
         c.will_set(self.topics.state, OFFLINE, qos=1, retain=True)
@@ -106,15 +126,10 @@ class MqttPublisher:
             c.username_pw_set(self.m.username, self.password)
         if self.m.tls:
             c.tls_set(ca_certs=self.m.ca_file)
-        c.reconnect_delay_set(1, max(1, int(self.m.reconnect_max_s)))
         c.on_connect = self._on_connect
         c.on_disconnect = self._on_disconnect
         c.on_publish = self._on_publish
-        c.on_connect_fail = self._on_connect_fail
         self._client = c
-        host, port = parse_listen(self.m.broker)
-        c.connect_async(host, port, keepalive=self.m.keepalive_s)
-        c.loop_start()
         sub = self.hub.subscribe(None, max_queue=EVENT_QUEUE)
         sub.profiles = frozenset({"*"})
         if "alarms" not in self.kinds:
@@ -122,30 +137,23 @@ class MqttPublisher:
         if not self.kinds & {"overall", "bands", "tones", "spectrum"}:
             sub.kinds = sub.kinds - {"spectrum", "bands", "tones"}
         self._sub = sub
+        self._thread = threading.Thread(target=self._net, name="mqtt-net", daemon=True)
+        self._thread.start()
         self._task = asyncio.create_task(self._run(), name="mqtt-publisher")
 
     async def stop(self) -> None:
-        """Stop taking frames; tell the broker 'offline' (retained) and disconnect cleanly
-        (a clean disconnect cancels the last will, so the state is published first)."""
+        """Stop taking frames; the network thread tells the broker 'offline' (retained)
+        and disconnects cleanly (a clean disconnect cancels the last will, so the state is
+        published first), within STOP_TIMEOUT_S and a little."""
         if self._task is not None:
             self._task.cancel()
             with contextlib.suppress(asyncio.CancelledError):
                 await self._task
         if self._sub is not None:
             self.hub.unsubscribe(self._sub)
-        c = self._client
-        if c is None:
-            return
-
-        def close() -> None:
-            if self.connected:
-                info = c.publish(self.topics.state, OFFLINE, qos=1, retain=True)
-                with contextlib.suppress(Exception):
-                    info.wait_for_publish(timeout=STOP_TIMEOUT_S)
-            c.disconnect()
-            c.loop_stop()
-
-        await asyncio.to_thread(close)
+        self._stop.set()
+        if self._thread is not None:
+            await asyncio.to_thread(self._thread.join, STOP_TIMEOUT_S + 2.0)
 
     def health(self) -> dict[str, Any]:
         """For /health and /metrics: ``ok`` while connected."""
@@ -171,7 +179,76 @@ class MqttPublisher:
             "last_error_ns": self.last_error_ns,
         }
 
-    # -- paho's thread -----------------------------------------------------------------
+    # -- the network thread: the only one that touches the paho client ----------------
+    def _net(self) -> None:
+        c = self._client
+        assert c is not None  # made by start() before the thread
+        host, port = parse_listen(self.m.broker)
+        delay_s, first = 1.0, True
+        while not self._stop.is_set():
+            try:
+                if first:
+                    c.connect(host, port, keepalive=self.m.keepalive_s)
+                    first = False
+                else:
+                    c.reconnect()
+            except (OSError, ValueError) as e:  # refused, unreachable, TLS, bad address
+                self._error(f"cannot connect to {self.m.broker}: {e}")
+                self._stop.wait(delay_s)
+                delay_s = min(2 * delay_s, self.m.reconnect_max_s)
+                continue
+            rc = 0
+            while rc == 0 and not self._stop.is_set():
+                if self.connected:
+                    self._flush(c)
+                    if self.connected_since_ns is not None:
+                        delay_s = 1.0  # a link that came up starts the back-off over
+                rc = c.loop(timeout=NET_POLL_S)
+            if self._stop.is_set():
+                break
+            self._stop.wait(delay_s)
+            delay_s = min(2 * delay_s, self.m.reconnect_max_s)
+        self._close(c)
+
+    def _close(self, c: mqtt.Client) -> None:
+        if self.connected:
+            info = c.publish(self.topics.state, OFFLINE, qos=1, retain=True)
+            deadline = time.monotonic() + STOP_TIMEOUT_S
+            while not info.is_published() and self.connected and time.monotonic() < deadline:
+                c.loop(timeout=NET_POLL_S)
+        with contextlib.suppress(Exception):
+            c.disconnect()
+            c.loop(timeout=NET_POLL_S)
+
+    def _flush(self, c: mqtt.Client) -> None:
+        """Hand the backlog to paho, oldest first, while it takes messages and fewer than
+        backlog_max are unsent. A message is taken out before it is handed over (the loop
+        may drop the oldest meanwhile) and put back in front if the link just failed."""
+        while self.connected:
+            with self._lock:
+                if len(self._pending) >= self.m.backlog_max:
+                    return
+            try:
+                msg = self.backlog.popleft()
+            except IndexError:
+                return
+            topic, payload, qos, retain = msg
+            info = c.publish(topic, payload, qos=qos, retain=retain)
+            if info.rc in NO_LINK and qos == 0:
+                self.backlog.appendleft(msg)  # kept for the next connection
+                return
+            if info.rc != 0 and info.rc not in NO_LINK:  # QoS 1 stays queued in paho
+                self._error(f"publish to {topic}: paho error {info.rc}")
+                continue  # a message paho refuses is not retried
+            self._record(info.mid, qos)
+
+    def _record(self, mid: int, qos: int) -> None:
+        with self._lock:
+            if mid in self._early:
+                self._early.discard(mid)
+            else:
+                self._pending[mid] = qos
+
     def _on_connect(self, client: mqtt.Client, userdata: Any, flags: Any, reason: Any,
                     properties: Any) -> None:
         if reason.is_failure:
@@ -199,9 +276,6 @@ class MqttPublisher:
                 log.warning("MQTT: connection to %s lost (%s); reconnecting", self.m.broker,
                             reason)
 
-    def _on_connect_fail(self, client: mqtt.Client, userdata: Any) -> None:
-        self._error(f"cannot connect to {self.m.broker}")
-
     def _on_publish(self, client: mqtt.Client, userdata: Any, mid: int, reason: Any,
                     properties: Any) -> None:
         with self._lock:
@@ -228,13 +302,11 @@ class MqttPublisher:
             try:
                 if self._fresh:
                     self._fresh = False
-                    self._flush()
                     self._sent_status.clear()  # a broker that restarted forgot them
                     next_status = 0.0
                 now = time.monotonic()
                 if now >= next_status:
                     next_status = now + STATUS_PERIOD_S
-                    self._flush()
                     if "status" in self.kinds:
                         self._states()
                 if isinstance(item, SpectralFrame):
@@ -268,6 +340,8 @@ class MqttPublisher:
                 self._send(self.topics.frame(f, "spectrum"), encode(doc), q, keep)
 
     def _event(self, ev: dict[str, Any]) -> None:
+        if not self.store_id:  # the store failed at start and has committed since
+            self.store_id = self._read_store_id()
         channel = str(ev.get("channel", ""))
         doc = event_payload(ev, self.store_id, self.machines.get(channel, ""), self.tz)
         self._send(self.topics.events, encode(doc), 1, False)
@@ -284,49 +358,14 @@ class MqttPublisher:
             doc = status_payload(st, self.machines.get(cid, ""), self.tz, now_ns)
             self._send(self.topics.status(cid), encode(doc), self.m.qos, True)
 
-    # -- handing messages over ---------------------------------------------------------
+    # -- handing messages over ----------------------------------------------------------
     def _send(self, topic: str, payload: bytes, qos: int, retain: bool) -> None:
-        if self.backlog or not self._take(topic, payload, qos, retain):
-            self._hold(topic, payload, qos, retain)
-
-    def _hold(self, topic: str, payload: bytes, qos: int, retain: bool) -> None:
+        """Into the backlog (the network thread sends it); the oldest dropped when full."""
         if len(self.backlog) >= self.m.backlog_max:
-            self.backlog.popleft()
-            self.dropped += 1
+            with contextlib.suppress(IndexError):  # the network thread may have taken it
+                self.backlog.popleft()
+                self.dropped += 1
         self.backlog.append((topic, payload, qos, retain))
-
-    def _flush(self) -> None:
-        """Hand the backlog to paho, oldest first, while it takes messages."""
-        while self.backlog:
-            if not self._take(*self.backlog[0]):
-                return
-            self.backlog.popleft()
-
-    def _take(self, topic: str, payload: bytes, qos: int, retain: bool) -> bool:
-        """Give one message to paho if connected with room; False to keep it here."""
-        c = self._client
-        if c is None or not self.connected:
-            return False
-        with self._lock:
-            if len(self._pending) >= self.m.backlog_max:
-                return False
-        info = c.publish(topic, payload, qos=qos, retain=retain)
-        rc = info.rc
-        if rc != 0 and not (rc == NO_CONN and qos > 0):
-            if rc == NO_CONN:
-                return False  # QoS 0 while the link just failed: keep it for later
-            self._error(f"publish to {topic}: paho error {rc}")
-            return True  # a message paho refuses is not retried
-        # QoS 1 taken while the link fails stays in paho's queue and is sent on reconnection
-        self._record(info.mid, qos)
-        return True
-
-    def _record(self, mid: int, qos: int) -> None:
-        with self._lock:
-            if mid in self._early:
-                self._early.discard(mid)
-            else:
-                self._pending[mid] = qos
 
 
 def _default_client_id() -> str:

@@ -14,6 +14,7 @@ import shutil
 import signal
 import socket
 import subprocess
+import tempfile
 import threading
 import time
 from collections.abc import Callable, Iterator
@@ -78,6 +79,7 @@ class Broker:
     persistence: bool = False
     proc: subprocess.Popen[bytes] | None = None
     starts: int = 0
+    _store: Path | None = None
 
     @property
     def address(self) -> str:
@@ -92,7 +94,7 @@ class Broker:
         lines = [f"listener {self.port} {LOOPBACK}", "allow_anonymous true",
                  f"persistence {'true' if self.persistence else 'false'}"]
         if self.persistence:  # a subscriber's session and its queue outlive a restart
-            lines += [f"persistence_location {self.workdir}/", "queue_qos0_messages true",
+            lines += [f"persistence_location {self.store()}/", "queue_qos0_messages true",
                       "max_queued_messages 100000"]
         conf = self.workdir / "mosquitto.conf"
         conf.write_text("\n".join(lines) + "\n", encoding="utf-8")
@@ -111,6 +113,21 @@ class Broker:
 
         wait_until(accepts, f"mosquitto on port {self.port}", START_TIMEOUT_S, self.log)
         return self
+
+    def store(self) -> Path:
+        """A folder for the broker's database that its own user can write: mosquitto started
+        as root runs as the user 'mosquitto', which cannot enter pytest's private tmp_path."""
+        if self._store is None:
+            self._store = Path(tempfile.mkdtemp(prefix="quaver-mosquitto-"))
+            self._store.chmod(0o777)
+        return self._store
+
+    def remove(self) -> None:
+        """Stop, and delete the database folder."""
+        self.stop()
+        if self._store is not None:
+            shutil.rmtree(self._store, ignore_errors=True)
+            self._store = None
 
     def stop(self, sig: int = signal.SIGTERM) -> None:
         if self.proc is None:
@@ -135,7 +152,7 @@ def running_broker(workdir: Path, persistence: bool = False) -> Iterator[Broker]
     try:
         yield b
     finally:
-        b.stop()
+        b.remove()
 
 
 @dataclass
@@ -145,6 +162,7 @@ class Message:
     qos: int
     retain: bool
     connection: int  # which connection of the subscriber received it (1, 2 …)
+    at: float = 0.0  # time.time() when it arrived
 
     def json(self) -> Any:
         return json.loads(self.payload)
@@ -163,6 +181,7 @@ class Listener:
     messages: list[Message] = field(default_factory=list)
     connections: int = 0
     subscribed: int = 0
+    sessions: list[bool] = field(default_factory=list)  # session present, per connection
     _lock: threading.Lock = field(default_factory=threading.Lock)
     _client: Any = None
 
@@ -177,12 +196,13 @@ class Listener:
         def on_connect(client: Any, userdata: Any, flags: Any, reason: Any, props: Any) -> None:
             with self._lock:
                 self.connections += 1
+                self.sessions.append(bool(flags.session_present))
             client.subscribe([(t, 1) for t in self.topics])
 
         def on_message(client: Any, userdata: Any, msg: Any) -> None:
             with self._lock:
                 self.messages.append(Message(msg.topic, bytes(msg.payload), msg.qos,
-                                             bool(msg.retain), self.connections))
+                                             bool(msg.retain), self.connections, time.time()))
 
         def on_subscribe(client: Any, userdata: Any, mid: Any, codes: Any, props: Any) -> None:
             with self._lock:

@@ -3,12 +3,15 @@ publisher's bounded backlog, without a broker (tests/service/test_mqtt_e2e.py ha
 
 from __future__ import annotations
 
+import json
 import re
+import subprocess
+import sys
 from pathlib import Path
 from typing import Any
 
 import pytest
-from conftest import run_cli, to_toml
+from conftest import REPO, child_env, run_cli, to_toml
 
 from service.config import ConfigError, parse_config
 from service.hub import Hub
@@ -101,3 +104,39 @@ def test_backlog_is_bounded_drops_oldest_and_counts() -> None:
     assert h["connected"] is False and h["ok"] is False
     assert (h["backlog"], h["dropped"], h["published"]) == (10, 15, 0)
     assert re.fullmatch(r"quaver-[A-Za-z0-9._-]+", h["client_id"])
+
+
+def test_without_paho_the_demo_runs_and_an_enabled_mqtt_is_a_config_error(
+        tmp_path: Path) -> None:
+    """paho-mqtt is an extra: a service without [mqtt] never imports it, and one with
+    [mqtt] enabled but no paho is refused by the config check, not by a traceback."""
+    code = f"""
+import asyncio, json, sys
+sys.modules["paho"] = None  # as if the extra were not installed
+from service.app import Service
+from service.config import ConfigError, parse_config
+from service.demo import demo_config
+svc = Service(demo_config(data_dir={str(tmp_path)!r}))
+async def run():
+    await svc.start()
+    for _ in range(100):  # at most 10 s for the first frames
+        await asyncio.sleep(0.1)
+        if svc.hub.frames_published:
+            break
+    await svc.stop()
+asyncio.run(run())
+try:
+    parse_config({{"sources": {SOURCE!r}, "mqtt": {{"enabled": True}}}}, env={{}})
+    problems = []
+except ConfigError as e:
+    problems = e.problems
+print(json.dumps({{"frames": svc.hub.frames_published, "problems": problems,
+                  "paho": [m for m in sys.modules if m.startswith("paho.")]}}))
+"""
+    r = subprocess.run([sys.executable, "-c", code], cwd=REPO, env=child_env(),
+                       capture_output=True, text=True, timeout=60, check=False)
+    assert r.returncode == 0, r.stderr[-2000:]
+    out = json.loads(r.stdout.strip().splitlines()[-1])
+    assert out["paho"] == [] and out["frames"] > 0
+    assert out["problems"] == ["mqtt.enabled: publishing needs paho-mqtt, which is not "
+                               "installed (pip install 'quaver[mqtt]')"]

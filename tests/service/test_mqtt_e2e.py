@@ -130,7 +130,10 @@ def test_payloads_equal_rest_status_retained_and_alarm_events_keyed(tmp_path: Pa
         store_id = e["key"].split("-")[1]
         assert e["key"] == f"quaver-{store_id}-{e['id']}" and len(store_id) == 16
 
-        # retained: a subscriber that comes later gets the channel's state and 'online'
+        # retained: a subscriber that comes later gets the channel's state and 'online' (once
+        # the state 'ok' was published: states are looked at every 0.25 s)
+        sub.wait(lambda m: m.topic == "quaver/pump-1/a/status" and m.json()["status"] == "ok",
+                 "the state ok")
         with Listener(broker, ["quaver/+/a/status", "quaver/service/state"]) as late:
             st = late.wait(lambda m: m.topic == "quaver/pump-1/a/status", "retained status")[0]
             on = late.wait(lambda m: m.topic == "quaver/service/state", "retained state")[0]
@@ -196,31 +199,41 @@ def test_broker_restart_backlog_bounded_then_delivered_in_order(
                 down = svc.wait(full, "the backlog to fill and drop", 30.0)
             finally:
                 feeder.stop()
-            held = svc.wait(lambda: (lambda h: h if h["backlog"] == 40 else None)(
-                svc.health()["mqtt"]), "the backlog after the feed stopped")
+            # the last blocks analysed: no frame comes any more
+            latest = stable_rest(svc, "channels/a/bands")["seq"]
+            held = svc.health()["mqtt"]
+            assert not held["connected"] and held["backlog"] == 40, held
             assert max(seen) == 40  # bounded: never above backlog_max
             last_before = max(m.json()["seq"] for m in sub.got())
             broker.start()  # the same port
             up = svc.wait(lambda: (lambda h: h if h["connected"] and h["backlog"] == 0
                                    else None)(svc.health()["mqtt"]), "reconnected, sent", 30.0)
-            latest = stable_rest(svc, "channels/a/bands")["seq"]
+            assert stable_rest(svc, "channels/a/bands")["seq"] == latest
+
+            def after() -> list[Message]:
+                return sub.got(lambda m: m.connection >= 2 and m.json()["seq"] > last_before)
+
             # the backlog's last message is the newest frame: once it is in, all are
             got = wait_until(
                 lambda: (lambda ms: ms if ms and ms[-1].json()["seq"] == latest else None)(
-                    sub.got(lambda m: m.connection >= 2 and m.json()["seq"] > last_before)),
-                "the newest frame at the subscriber", 15.0, broker.log)
+                    after()), "the newest frame at the subscriber", 15.0,
+                lambda: f"REST latest {latest}, last before {last_before}, got "
+                        f"{[m.json()['seq'] for m in after()]}, held {held}, up {up}, "
+                        f"now {svc.health()['mqtt']}, subscriber sessions {sub.sessions}\n"
+                        f"{broker.log()}")
             seqs = [m.json()["seq"] for m in got]
+            assert sub.sessions == [False, True]  # the broker kept the subscriber's session
             assert seqs == sorted(set(seqs)), seqs  # in order, each once
             # every held message arrived (the oldest ones were dropped, counted, not sent)
-            assert len(seqs) >= held["backlog"] == 40
-            assert up["dropped"] == held["dropped"] > 0 and up["connects"] == 2
+            assert len(seqs) >= held["backlog"] == 40, f"{last_before} {seqs} {held} {up}"
+            assert up["dropped"] == held["dropped"] > 0 and up["connects"] == 2, (held, up)
             report = {"before": len(before), "down": down, "held": held, "up": up,
                       "delivered": len(seqs), "first_last": [seqs[0], seqs[-1]],
                       "rest_latest": latest}
             record_property("restart", report)
             print("broker restart:", json.dumps(report))
     finally:
-        broker.stop()
+        broker.remove()
 
 
 @pytest.mark.slow
