@@ -140,3 +140,15 @@ print(json.dumps({{"frames": svc.hub.frames_published, "problems": problems,
     assert out["paho"] == [] and out["frames"] > 0
     assert out["problems"] == ["mqtt.enabled: publishing needs paho-mqtt, which is not "
                                "installed (pip install 'quaver[mqtt]')"]
+
+
+@pytest.mark.parametrize(("argv", "message"), [
+    (["bench", "--mqtt", "auto"], "--mqtt applies to --service only"),
+    (["bench", "--service", "--mqtt", "broker.local"], "--mqtt: 'broker.local' is not host:port"),
+    (["bench", "--service", "--mqtt", "auto", "--channels", "32,64"],
+     "--channels '32,64': expected one count with --mqtt"),
+    (["bench", "--service", "--mqtt", "auto", "--short"], "do not apply to --service --mqtt"),
+])
+def test_bench_mqtt_option_errors(argv: list[str], message: str) -> None:
+    r = run_cli(*argv)
+    assert r.returncode == 2 and message in r.stderr, r.stderr
