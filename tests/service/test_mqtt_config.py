@@ -31,6 +31,8 @@ def test_off_by_default_with_its_defaults() -> None:
     assert m.publish == ["overall", "bands", "tones", "status", "alarms"]
 
 
+# '+' and '#' are wildcards, '/' separates levels, '$' topics belong to the broker: MQTT 3.1.1
+# §4.7.1 and §4.7.2 (docs/references.md)
 @pytest.mark.parametrize(("mqtt", "message"), [
     ({"qos": 2}, "mqtt.qos: 2 is not one of 0, 1"),
     ({"topic_prefix": "site/#"}, "mqtt.topic_prefix: 'site/#': level '#' holds '#'"),

@@ -122,6 +122,8 @@ def test_payloads_equal_rest_status_retained_and_alarm_events_keyed(tmp_path: Pa
 
         # the alarm event: after commit (it is in the store), QoS 1, keyed by store and id
         ev = ev_msgs[0]
+        # QoS 1 end to end (MQTT 3.1.1 §4.3, docs/references.md: at least once; the key
+        # lets a receiver drop a repeat)
         assert ev.qos == 1 and not ev.retain
         e = ev.json()
         stored = [x for x in svc.get("events", channel="a", limit=50)["events"]
@@ -137,6 +139,8 @@ def test_payloads_equal_rest_status_retained_and_alarm_events_keyed(tmp_path: Pa
         with Listener(broker, ["quaver/+/a/status", "quaver/service/state"]) as late:
             st = late.wait(lambda m: m.topic == "quaver/pump-1/a/status", "retained status")[0]
             on = late.wait(lambda m: m.topic == "quaver/service/state", "retained state")[0]
+        # MQTT 3.1.1 §3.3.1.3 (docs/references.md): a retained message goes to every new
+        # subscriber of its topic with the RETAIN flag set
         assert st.retain and st.json()["status"] == "ok" and st.json()["channel"] == "a"
         assert on.retain and on.payload == b"online"
 
@@ -244,7 +248,9 @@ def test_last_will_when_killed_and_offline_when_stopped(tmp_path: Path) -> None:
                                         (signal.SIGTERM, "clean stop")]):
             with run_service(mqtt_doc(broker), tmp_path / f"svc{n}") as svc:
                 sub.wait(lambda m: m.payload == b"online", "online", count=n + 1)
-                svc.stop(sig)  # SIGKILL: no clean disconnect, the broker sends the will
+                # SIGKILL: the connection closes without DISCONNECT, so the broker publishes the
+                # will (MQTT 3.1.1 §3.1.2.5, docs/references.md); SIGTERM: quaver says offline
+                svc.stop(sig)
             got = sub.wait(lambda m: m.payload == b"offline", f"offline ({why})", count=n + 1)
             assert got[-1].topic == state
         payloads = [m.payload for m in sub.got()]
