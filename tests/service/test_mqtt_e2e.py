@@ -83,7 +83,7 @@ def stable_rest(svc: RunningService, path: str) -> dict[str, Any]:
 def test_payloads_equal_rest_status_retained_and_alarm_events_keyed(tmp_path: Path) -> None:
     with running_broker(tmp_path / "broker") as broker, \
             Listener(broker, ["quaver/#"]) as sub, \
-            run_service(mqtt_doc(broker), tmp_path / "svc") as svc:
+            run_service(mqtt_doc(broker, retain="latest"), tmp_path / "svc") as svc:
         with socket.create_connection(("127.0.0.1", svc.ports["s"]), timeout=10) as sock:
             # 2 s of a 0.3 g peak tone (0.21 g RMS: normal), then 3 s at 0.8 g peak:
             # 0.8/√2 = 0.566 g RMS in band b, above the 0.5 g alert level (RMS of a sine:
@@ -136,9 +136,13 @@ def test_payloads_equal_rest_status_retained_and_alarm_events_keyed(tmp_path: Pa
         # the state 'ok' was published: states are looked at every 0.25 s)
         sub.wait(lambda m: m.topic == "quaver/pump-1/a/status" and m.json()["status"] == "ok",
                  "the state ok")
-        with Listener(broker, ["quaver/+/a/status", "quaver/service/state"]) as late:
+        with Listener(broker, ["quaver/+/a/status", "quaver/service/state",
+                               "quaver/+/a/+/bands"]) as late:
             st = late.wait(lambda m: m.topic == "quaver/pump-1/a/status", "retained status")[0]
             on = late.wait(lambda m: m.topic == "quaver/service/state", "retained state")[0]
+            kept = late.wait(lambda m: m.topic.endswith("/bands"), "retained bands")[0]
+        # retain = "latest": the broker keeps the newest bands message, the frame REST shows
+        assert kept.retain and kept.json() == doc
         # MQTT 3.1.1 §3.3.1.3 (docs/references.md): a retained message goes to every new
         # subscriber of its topic with the RETAIN flag set
         assert st.retain and st.json()["status"] == "ok" and st.json()["channel"] == "a"
