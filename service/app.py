@@ -20,6 +20,7 @@ from .api import create_app
 from .config import Config, open_source_warnings
 from .history import SpectrumHistory, alarm_row
 from .hub import Hub
+from .mqtt import MqttPublisher
 from .notify import Notifier
 from .operator import commit_action
 from .pipeline import ChannelState, SourcePipeline, channel_states
@@ -95,6 +96,8 @@ class Service:
         )
         if self.notifier is not None:
             self.notifier.attach()
+        # [mqtt]: a hub subscriber; paho is imported only when it starts
+        self.mqtt = MqttPublisher(cfg, self.hub) if cfg.mqtt.enabled else None
         # stored spectra: interval means taken on the loop, encoded on the writer thread
         self.history = SpectrumHistory(hist.interval_s) if hist.enabled else None
 
@@ -124,6 +127,8 @@ class Service:
             loop = asyncio.get_running_loop()
             self.notifier.on_event = lambda ev: self._from_thread(loop, ev)
             self.notifier.start()
+        if self.mqtt is not None:  # before the sources: it sees every frame and event
+            await self.mqtt.start(self.store.store_id)
         for p in self.pipelines:
             await p.source.start()
         self.started_mono = time.monotonic()
@@ -153,6 +158,8 @@ class Service:
             self.store.put_history(self.history.flush())
         if self.notifier is not None:
             await asyncio.to_thread(self.notifier.stop)
+        if self.mqtt is not None:
+            await self.mqtt.stop()
         await asyncio.to_thread(self.store.close)
 
     def app(self) -> FastAPI:

@@ -11,6 +11,7 @@ from typing import Any, Protocol
 from .alarms import AlarmEngine, AlarmEvent
 from .config import Config
 from .hub import Hub
+from .mqtt import MqttPublisher
 from .notify import Notifier
 from .store import Store
 
@@ -41,6 +42,11 @@ class ServiceContext(Protocol):
     @property
     def notifier(self) -> Notifier | None:
         """The notification sender, None without [[notify]] entries."""
+        ...
+
+    @property
+    def mqtt(self) -> MqttPublisher | None:
+        """The MQTT publisher, None without [mqtt] enabled."""
         ...
 
     async def reload(self) -> dict[str, Any]:

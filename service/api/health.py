@@ -23,7 +23,8 @@ def health(hub: HubDep, service: MaybeServiceDep, cfg: ConfigDep) -> dict[str, A
     them with their state, cause and since when), a source's pipeline has failed, or the
     store cannot write (monitoring, alarms and the API go on; trends, events and evidence
     are not being kept — see ``store``), or a ``[[notify]]`` entry keeps failing (``notify``:
-    per entry the outbox rows pending, sent, failed and limited, and the last error)."""
+    per entry the outbox rows pending, sent, failed and limited, and the last error), or the
+    ``[mqtt]`` broker cannot be reached (``mqtt``: connected, published, backlog, dropped …)."""
     states = Counter(st.status for st in hub.channels.values())
     not_ok = [
         {"channel": st.id, "status": st.status, "cause": st.fault,
@@ -47,10 +48,14 @@ def health(hub: HubDep, service: MaybeServiceDep, cfg: ConfigDep) -> dict[str, A
     notifier = service.notifier if service is not None else None
     notify = notifier.health() if notifier is not None else None
     notify_failing = notify is not None and not notify["ok"]
+    mqtt = service.mqtt.health() if service is not None and service.mqtt is not None else None
+    mqtt_failing = mqtt is not None and not mqtt["ok"]
     return with_times({
-        "status": "degraded" if store_failing or not_ok or failed or notify_failing else "ok",
+        "status": "degraded" if (store_failing or not_ok or failed or notify_failing
+                                 or mqtt_failing) else "ok",
         "store": store_health,
         "notify": notify,
+        "mqtt": mqtt,
         "version": __version__,
         "uptime_s": round((time.time_ns() - hub.started_ns) / 1e9, 3),
         "channels": dict(states),

@@ -211,6 +211,8 @@ class _ServiceCollector(Collector):
         yield ok
         if self.service.notifier is not None:
             yield from _notify_metrics(self.service.notifier.health())
+        if self.service.mqtt is not None:
+            yield from _mqtt_metrics(self.service.mqtt.health())
         for key, what in (("write_errors", "Failed store writes"),
                           ("events_written", "Alarm events committed"),
                           ("trend_buckets_written", "Trend buckets committed"),
@@ -246,6 +248,27 @@ def _notify_metrics(h: dict[str, Any]) -> Iterator[Metric]:
             fams[k].add_metric([name], float(e[k]))
         fams["failing"].add_metric([name], 1.0 if e["failing"] else 0.0)
     yield from fams.values()
+
+
+def _mqtt_metrics(h: dict[str, Any]) -> Iterator[Metric]:
+    """The MQTT publisher: link state, messages sent, held, dropped, lost; errors."""
+    gauges = {"connected": "1 while connected to the MQTT broker",
+              "backlog": "Messages held while the broker cannot take them",
+              "in_flight": "Messages the MQTT client holds, not yet sent (QoS 0) or acknowledged"}
+    counters = {"published": "MQTT messages sent (QoS 1: acknowledged) since start",
+                "dropped": "MQTT messages dropped, oldest first, from a full backlog",
+                "lost": "QoS 0 MQTT messages lost with a failing link",
+                "skipped": "Frames the MQTT publisher skipped for a newer one (it fell behind)",
+                "errors": "MQTT connection and publish errors since start",
+                "connects": "Connections made to the MQTT broker since start"}
+    for k, what in gauges.items():
+        g = GaugeMetricFamily(f"quaver_mqtt_{k}", what)
+        g.add_metric([], float(h[k]))
+        yield g
+    for k, what in counters.items():
+        c = CounterMetricFamily(f"quaver_mqtt_{k}", what)
+        c.add_metric([], float(h[k]))
+        yield c
 
 
 @router.get(

@@ -58,6 +58,33 @@ def _dashboard(args: argparse.Namespace) -> int:
         raise CliError(f"--dashboard: {e}", 1) from None
 
 
+def _mqtt(args: argparse.Namespace) -> int:
+    from bench.mqtt import main_mqtt
+
+    from ..config.base import parse_listen
+
+    if args.repeats is not None or args.short:
+        raise CliError("--repeats and --short do not apply to --service --mqtt", 2)
+    if args.mqtt != "auto":
+        try:
+            parse_listen(args.mqtt)
+        except ValueError as e:
+            raise CliError(f"--mqtt: {e} (or 'auto')", 2) from None
+    channels = None
+    if args.channels is not None:
+        try:
+            channels = int(args.channels)
+        except ValueError:
+            raise CliError(f"--channels {args.channels!r}: expected one count with --mqtt",
+                           2) from None
+        if channels < 1:
+            raise CliError(f"--channels {args.channels!r}: must be >= 1", 2)
+    try:
+        return main_mqtt(args.mqtt, channels, args.seconds, args.json is True)
+    except RuntimeError as e:  # no mosquitto for 'auto'; the service did not start
+        raise CliError(f"--mqtt: {e}", 1) from None
+
+
 def cmd_bench(args: argparse.Namespace) -> int:
     if args.dashboard:
         return _dashboard(args)
@@ -66,6 +93,10 @@ def cmd_bench(args: argparse.Namespace) -> int:
         raise CliError(f"{', '.join(given)} applies to --dashboard only", 2)
     if isinstance(args.json, str):
         raise CliError("--json FILE applies to --dashboard; use --json alone to print JSON", 2)
+    if args.mqtt is not None and not args.service:
+        raise CliError("--mqtt applies to --service only", 2)
+    if args.service and args.mqtt is not None:
+        return _mqtt(args)
     if args.service:
         import bench as loadbench
 

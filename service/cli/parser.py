@@ -262,6 +262,11 @@ def build_parser() -> argparse.ArgumentParser:
                    "span of each headroom step, default 20)")
     p.add_argument("--repeats", type=_positive(int), default=None, metavar="N",
                    help="best of this many runs (default 5)")
+    p.add_argument("--mqtt", default=None, metavar="HOST:PORT",
+                   help="with --service: instead of the load phases, the service's CPU per "
+                   "frame with [mqtt] publishing off and on, at --channels (one count, default "
+                   "256) fed at real time for --seconds (default 15); 'auto' starts a "
+                   "mosquitto of its own on 127.0.0.1")
     p.set_defaults(func=cmd_bench)
     return ap
 

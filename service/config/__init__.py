@@ -25,6 +25,7 @@ from .checks import check_listen_allowed, open_source_warnings
 from .describe import describe_settings
 from .load import load_config, parse_config
 from .models import MODELS, Config
+from .mqtt import MqttConfig
 from .notify import NotifyConfig, QuietHours
 from .plant import (
     AlarmConfig,
@@ -64,6 +65,7 @@ __all__ = [
     "FRAME_RATIO",
     "ID_PATTERN",
     "MODELS",
+    "MqttConfig",
     "QUANTITY_OF_UNIT",
     "SOURCE_KINDS",
     "AlarmConfig",

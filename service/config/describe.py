@@ -10,6 +10,7 @@ from typing import Annotated, Any, Literal, Union, get_args, get_origin
 
 from pydantic import BaseModel
 
+from .mqtt import MqttConfig
 from .notify import NotifyConfig, QuietHours
 from .plant import (
     AlarmConfig,
@@ -51,6 +52,7 @@ def describe_settings() -> list[tuple[str, str, str, str]]:
         ("[[bearings]]", BearingConfig),
         ("[[notify]]", NotifyConfig),
         ("[[notify]] quiet_hours", QuietHours),
+        ("[mqtt]", MqttConfig),
     ]
     rows = []
     for table, model in tables:

@@ -18,6 +18,7 @@ from ..entries import EntryProblem
 from .base import ID_PATTERN, SHA256_PATTERN, ConfigError
 from .checks import _cross_check, notify_env_problems
 from .models import MODELS, Config
+from .mqtt import mqtt_problems
 from .salvage import salvage
 from .sources import SOURCE_KINDS, FileSourceConfig
 
@@ -73,7 +74,7 @@ def parse_config(
         if salvaged is not None:
             problems += [p for p in _cross_check(*salvaged) if p not in problems]
         raise ConfigError(problems, source=source) from None
-    problems = _cross_check(cfg) + notify_env_problems(cfg, env)
+    problems = _cross_check(cfg) + notify_env_problems(cfg, env) + mqtt_problems(cfg, env)
     if problems:
         raise ConfigError(problems, source=source)
     if base_dir is not None:
@@ -83,6 +84,8 @@ def parse_config(
             cfg.service.tls_cert = str(base_dir / cfg.service.tls_cert)
         if cfg.service.tls_key is not None:
             cfg.service.tls_key = str(base_dir / cfg.service.tls_key)
+        if cfg.mqtt.ca_file is not None:
+            cfg.mqtt.ca_file = str(base_dir / cfg.mqtt.ca_file)
         for s in cfg.sources:
             if isinstance(s, FileSourceConfig):
                 s.path = str(base_dir / s.path)

@@ -9,6 +9,7 @@ from __future__ import annotations
 from pydantic import BaseModel, Field
 
 from .base import Id, StrictModel
+from .mqtt import MqttConfig
 from .notify import NotifyConfig, QuietHours
 from .plant import (
     AlarmConfig,
@@ -66,6 +67,10 @@ class Config(StrictModel):
     notify: list[NotifyConfig] = Field(
         default_factory=list, description="[[notify]]: notification targets (service.notify)"
     )
+    mqtt: MqttConfig = Field(
+        default_factory=lambda: MqttConfig.model_validate({}),
+        description="[mqtt]: publishing to an MQTT broker (service.mqtt)",
+    )
 
 
 MODELS: tuple[type[BaseModel], ...] = (
@@ -88,4 +93,5 @@ MODELS: tuple[type[BaseModel], ...] = (
     BearingConfig,
     NotifyConfig,
     QuietHours,
+    MqttConfig,
 )
