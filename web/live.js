@@ -51,6 +51,8 @@ export class Live extends EventTarget {
     this._alarmsBusy = false;
     this._alarmsAgain = false;
     this._chTimer = 0;
+    this._indexOf = null;
+    this._index = new Map();
   }
 
   /** Whether the stream brings what the plant poll would (every channel's values). */
@@ -117,7 +119,7 @@ export class Live extends EventTarget {
 
   /** A bands message of a channel's primary profile: its values are the channel's latest. */
   _latestFromBands(m) {
-    const i = this.channels.findIndex((c) => c.id === m.channel);
+    const i = this._at(m.channel);
     if (i < 0) return;
     const c = this.channels[i];
     const primary = c.profiles?.[0]?.name ?? this.profiles[m.channel]?.[0];
@@ -136,6 +138,15 @@ export class Live extends EventTarget {
         this._emit("channels", this.channels);
       }, CHANNELS_EMIT_MS);
     }
+  }
+
+  /** The index of a channel in `channels` (-1: none); a map, not a search per message. */
+  _at(id) {
+    if (this._indexOf !== this.channels) {
+      this._indexOf = this.channels;
+      this._index = new Map(this.channels.map((c, i) => [c.id, i]));
+    }
+    return this._index.get(id) ?? -1;
   }
 
   /** Ask for the plant poll now (e.g. after an acknowledgement). */
@@ -276,7 +287,7 @@ export class Live extends EventTarget {
         // {"kind": "status", "channels": [{id, status, fault, since_ns}]} about once a second
         let changed = false;
         for (const u of m.channels || [m]) {
-          const i = this.channels.findIndex((c) => c.id === (u.id ?? u.channel));
+          const i = this._at(u.id ?? u.channel);
           if (i < 0) continue;
           const c = this.channels[i];
           if (c.status !== u.status || (u.fault ?? c.fault) !== c.fault) {
