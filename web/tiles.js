@@ -41,7 +41,7 @@ export class Tiles {
   _build(ms) {
     const sorted = [...ms].sort((a, b) => (a.id < b.id ? -1 : 1));
     setHTML(this.box, sorted.map((m) => html`<a class="tile" href="#/" data-machine="${m.id}" data-state="unknown" title="${m.name} (${m.id})${m.group ? ` · ${m.group}` : ""}">
-      <span class="t-st"></span><span class="t-name">${m.name}${m.name !== m.id ? html` <span class="cid">${m.id}</span>` : ""}</span>
+      <span class="t-st"></span><span class="t-name">${m.name}</span>
       <span class="t-val" data-role="worst"></span><span class="t-q"></span></a>`));
     this.tiles.clear();
     for (const el of this.box.querySelectorAll(".tile")) {
@@ -77,7 +77,7 @@ export class Tiles {
       const q = qualityText(m);
       if (s.q !== q) {
         s.q = q;
-        t.q.textContent = q;
+        t.q.textContent = m.name !== m.id ? `${m.id} · ${q}` : q;
         t.q.dataset.quality = m.notOk.length ? "not-ok" : "ok";
       }
       const hide = !matches(m, f);
