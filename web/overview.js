@@ -5,6 +5,7 @@
 import { API, getJSON } from "./api.js";
 import { html, setHTML, updateHTML } from "./dom.js";
 import { sharedTops } from "./sparkline.js";
+import { onNextFrame } from "./plot.js";
 import { alarmListHtml, eventItemHtml } from "./alarms.js";
 import { machineName } from "./names.js";
 import { openAckAll } from "./shelve.js";
@@ -51,7 +52,7 @@ export function mount(root) {
   let groups = "";
   let disposed = false;
   let summaries = [];
-  let frame = 0; // the one animation frame that shows what changed, or 0
+  let frame = null; // cancels the pending frame's work (plot.js onNextFrame), or null
   let summaryDue = true;
   let summaryAt = 0;
   let summaryTimer = 0;
@@ -71,11 +72,11 @@ export function mount(root) {
   /** Ask for one animation frame; `summary`: the tiles need recomputing too. */
   function schedule(summary) {
     if (summary) summaryDue = true;
-    if (!frame && !disposed) frame = requestAnimationFrame(render);
+    if (!frame && !disposed) frame = onNextFrame(render);
   }
 
   function render() {
-    frame = 0;
+    frame = null;
     if (disposed) return; // a late event or answer after the view was left
     const chans = store.channels;
     const key = chans.map((c) => c.id).join(",");
@@ -205,7 +206,7 @@ export function mount(root) {
   return {
     unmount() {
       disposed = true;
-      cancelAnimationFrame(frame);
+      frame?.(); // cancel the pending frame's work
       clearTimeout(summaryTimer);
       root.removeEventListener("click", click);
       root.removeEventListener("input", onInput);

@@ -109,11 +109,31 @@ export class Surface {
 }
 Surface.stats = null;
 
-// The surfaces to draw at the next animation frame: one requestAnimationFrame for all of them.
+// The surfaces to draw at the next animation frame: one requestAnimationFrame for all of them,
+// after the callbacks views asked for (onNextFrame), which may invalidate surfaces of their own.
 const dirty = new Set();
+const before = new Set();
 let frame = 0;
+
+/** Run `fn` at the next animation frame, before the surfaces draw (the page's one frame
+ *  callback). Returns a function that cancels it. */
+export function onNextFrame(fn) {
+  before.add(fn);
+  if (!frame) frame = requestAnimationFrame(flush);
+  return () => before.delete(fn);
+}
+
 function flush() {
   frame = 0;
+  const fns = [...before];
+  before.clear();
+  for (const f of fns) {
+    try {
+      f();
+    } catch (e) {
+      console.error(e);
+    }
+  }
   const now = [...dirty];
   dirty.clear();
   for (const s of now) {
