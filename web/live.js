@@ -5,9 +5,9 @@ import { API, askSignIn, getJSON, wsProtocols } from "./api.js";
 
 const PLANT_POLL_MS = 2000;
 // With the stream open and every channel's bands subscribed (the plant view) nothing is polled:
-// values come with the bands, statuses with status messages, and each alarm event (or status
-// change) fetches /alarms once. A resync this rarely is the safety net (rules changed by a reload).
-const PLANT_RESYNC_MS = 60000;
+// values come with the bands, statuses with status messages, and each alarm event, status
+// change or `rules` message (the rules were reloaded) fetches /alarms once. The page resyncs
+// (/channels, /alarms) when the stream (re)opens only.
 const CHANNELS_EMIT_MS = 1000; // values from bands messages reach the views at most this often
 const DOWN_POLL_MS = 1000;
 const WS_RETRY_MAX_MS = 8000;
@@ -47,7 +47,7 @@ export class Live extends EventTarget {
     this._busy = new Set();
     this._plantTimer = 0;
     this._plantBusy = false;
-    this._plantSlow = false; // the next plant fetch is the rare resync, not the poll
+    this._plantSlow = false; // the stream covers the plant: no poll until it closes
     this._alarmsBusy = false;
     this._alarmsAgain = false;
     this._chTimer = 0;
@@ -194,8 +194,9 @@ export class Live extends EventTarget {
       this._plantBusy = false;
     }
     this._plantSlow = ok && this._streamCoversPlant();
-    const next = !ok ? DOWN_POLL_MS : this._plantSlow ? PLANT_RESYNC_MS : PLANT_POLL_MS;
-    this._plantTimer = setTimeout(() => this._plant(), next);
+    // the stream keeps the page current: no timer (subscribe() starts the poll again for a
+    // view whose stream brings less, the socket's close for a lost stream)
+    if (!this._plantSlow) this._plantTimer = setTimeout(() => this._plant(), ok ? PLANT_POLL_MS : DOWN_POLL_MS);
   }
 
   // --- WebSocket -------------------------------------------------------------------
@@ -282,6 +283,9 @@ export class Live extends EventTarget {
       case "alarms":
         this._emit("alarm", m);
         this.refreshAlarms(); // the alarm list as it now is (levels, value, acknowledgement)
+        break;
+      case "rules": // the alarm rules were reloaded: their levels as they now are
+        this.refreshAlarms();
         break;
       case "status": {
         // {"kind": "status", "channels": [{id, status, fault, since_ns}]} about once a second

@@ -17,10 +17,13 @@ The server sends:
   UTF-8 JSON ``{"kind": "spectrum", "channel", "profile", "seq", "timestamp_ns", "f0_hz", "df_hz",
   "unit", "amplitude", "averages", "count", "missed"}``, then ``count`` little-endian
   float32 values (the header is padded with spaces so the values start 4-byte aligned);
-* text JSON messages ``{"kind": "hello" | "bands" | "tones" | "alarm" | "status" | "error",
+* text JSON messages ``{"kind": "hello" | "bands" | "tones" | "alarm" | "rules" | "status" | "error",
   ...}`` whose fields match the REST resources; an ``alarm`` message is a committed event
   (as in ``/events``, ``id`` never null) whose own kind (transition, ack, sensor-fault) is
-  in ``event_kind``.
+  in ``event_kind``; a ``rules`` message ``{"kind": "rules", "notice": "rules", "added",
+  "changed", "removed"}`` (rule ids) says the alarm rules were reloaded (levels may have
+  changed: ``GET /api/v1/alarms?all=true`` has them) and goes to every client that gets
+  alarms, whatever its channels.
 
 A client message must be at most ``MAX_MESSAGE_BYTES`` (else close 1009) and JSON nested at
 most ``MAX_DEPTH`` deep (checked before parsing); a message that is not a valid
@@ -76,7 +79,7 @@ log = logging.getLogger("quaver.stream")
 # an OSError; starlette raises RuntimeError after a close).
 _CLIENT_GONE = (WebSocketDisconnect, RuntimeError, OSError)
 
-KINDS = ("spectrum", "bands", "tones", "alarms", "status")
+KINDS = ("spectrum", "bands", "tones", "alarms", "status")  # what a client subscribes to
 MAX_MESSAGE_BYTES = 4096  # a subscription is small; anything bigger is refused
 MAX_DEPTH = 8  # {"subscribe": {"channels": [...]}} is 3 deep
 MAX_ERRORS = 20  # bad messages tolerated per session before it is closed
@@ -357,6 +360,9 @@ class _Session:
                 continue
             if isinstance(item, SpectralFrame):
                 await self._send_frame(item)
+            elif "notice" in item:  # a change of the whole service (Hub.publish_notice)
+                if "alarms" in self.spec.kinds:
+                    await self.send_json({**item, "kind": item["notice"]})
             else:  # an alarm event (dict) published by the service
                 if "alarms" in self.spec.kinds:
                     # the documented kind; the event's own (transition, ack, …) goes aside
