@@ -51,6 +51,7 @@ from __future__ import annotations
 
 import asyncio
 import collections
+import heapq
 import json
 import logging
 import struct
@@ -264,6 +265,11 @@ class _Session:
         # newest frame per (channel, profile) held back by the rate limit; a held frame that a
         # newer one replaces is counted in ``self.sub.missed`` (so /metrics sees it too)
         self.held: dict[tuple[str, str], SpectralFrame] = {}
+        # (due, key) of the held frames, soonest first: finding the frames that are due costs
+        # the due ones, not a pass over every held channel per message (at a thousand
+        # channels and a slow rate nearly every channel has one held). Entries whose frame
+        # went out another way are skipped when they come up.
+        self.due_heap: list[tuple[float, tuple[str, str]]] = []
 
     def end(self, code: int, reason: str) -> None:
         """Stop the session's loops; the handler then closes with ``code`` and ``reason``."""
@@ -288,6 +294,9 @@ class _Session:
         self.sub.channels = chans
         self.sub.profiles = profs
         self.sub.kinds = frozenset(spec.kinds)
+        # the rate may have changed: the held frames' due times with it
+        self.due_heap = [(self._due(k), k) for k in self.held]
+        heapq.heapify(self.due_heap)
 
     async def receive_loop(self) -> None:
         while True:
@@ -347,8 +356,8 @@ class _Session:
                 )
                 next_status = now + STATUS_PERIOD_S
             timeout = STATUS_PERIOD_S
-            if self.held:
-                timeout = min(timeout, max(0.0, min(self._due(c) for c in self.held) - now))
+            if self.due_heap:
+                timeout = min(timeout, max(0.0, self.due_heap[0][0] - now))
             try:
                 item = await self.sub.queue.get(timeout=timeout)
             except TimeoutError:
@@ -377,7 +386,15 @@ class _Session:
     async def _send_due(self) -> None:
         """Send every held frame whose rate-limit interval is up."""
         now = time.monotonic()
-        for key in [k for k in self.held if self._due(k) <= now]:
+        heap = self.due_heap
+        while heap and heap[0][0] <= now:
+            _, key = heapq.heappop(heap)
+            if key not in self.held:
+                continue  # sent already
+            due = self._due(key)
+            if due > now:  # sent and held again since this entry was made
+                heapq.heappush(heap, (due, key))
+                continue
             await self._send(self.held.pop(key))
 
     async def _send_frame(self, frame: SpectralFrame) -> None:
@@ -389,14 +406,16 @@ class _Session:
             if time.monotonic() < self._due(key):
                 # still too soon: the newer frame takes the older one's place, which is skipped
                 self.sub.missed += 1
-                self.held[key] = frame
+                self.held[key] = frame  # its (due, key) entry stands
                 return
             # The older one's interval is up (it came due while the loop was busy): it goes
             # first and ``frame`` waits its own turn below (sending ``frame`` alone would skip
             # ``older`` although this client keeps up with the rate limit).
             await self._send(older)
-        if time.monotonic() < self._due(key):
+        due = self._due(key)
+        if time.monotonic() < due:
             self.held[key] = frame
+            heapq.heappush(self.due_heap, (due, key))
             return
         await self._send(frame)
 
