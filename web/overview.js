@@ -79,6 +79,8 @@ export function mount(root) {
     frame = null;
     if (disposed) return; // a late event or answer after the view was left
     const chans = store.channels;
+    // the machines are shown in severity order from the start, never in id order first
+    if (!store.alarmsKnown) return;
     const key = chans.map((c) => c.id).join(",");
     if (key !== ids) {
       ids = key;

@@ -23,6 +23,7 @@ export const app = new EventTarget();
 export const store = {
   channels: [],
   alarms: null, // active/latched alarm entries, or null when the service has no alarm route
+  alarmsKnown: false, // the alarm list has been asked for once (answered or not)
   rules: new Map(), // "channel|profile|kind|name" → last alarm entry seen (remembers levels); profile "" = primary
   bands: new Map(), // channel → latest bands message of its primary profile; "channel|profile" → of another
   tones: new Map(), // the same for tones messages
@@ -150,6 +151,7 @@ live.addEventListener("channels", (e) => {
 
 live.addEventListener("alarms", (e) => {
   const list = e.detail;
+  store.alarmsKnown = true;
   // a shelved rule's alarm is not annunciated (shown under Shelved instead)
   store.alarms = list === null ? null : list.filter((a) => (a.state !== "normal" || a.latched) && !a.shelved);
   for (const a of list || []) store.rules.set(ruleKey(a.channel, ruleProfile(a), a.kind, a.name), a);
