@@ -36,6 +36,7 @@ class Subscriber:
         profiles: frozenset[str] | None = None,
     ) -> None:
         self.channels = channels  # None = every channel
+        self.every_alarm = False  # True: alarm events of every channel, whatever ``channels``
         self.profiles = profiles
         self.kinds = (
             kinds
@@ -69,7 +70,8 @@ class Subscriber:
         if "alarms" not in self.kinds:
             return
         # a notice about the whole service (no "channel" key: rules reloaded) goes to everyone
-        if self.channels is not None and "channel" in event and event["channel"] not in self.channels:
+        if (self.channels is not None and not self.every_alarm and "channel" in event
+                and event["channel"] not in self.channels):
             return
         if len(self.events) >= self.max_events:
             self.events.popleft()

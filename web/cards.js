@@ -137,9 +137,10 @@ export class Cards {
       if (!c) continue;
       this._text(e, c);
       const bm = store.bands.get(e.id);
-      const key = `${bm?.seq}|${c.latest?.seq}|${e.shown.state}|${store.conn}|${store.alarms?.length}`;
-      if (key === e.shown.key) continue;
+      const key = `${bm?.seq}|${c.latest?.seq}|${e.shown.state}|${store.conn}`;
+      if (key === e.shown.key && store.alarms === e.shown.drawnAlarms) continue; // levels come with the alarms
       e.shown.key = key;
+      e.shown.drawnAlarms = store.alarms;
       const stale = store.conn === "reconnecting";
       const { named } = bandRows(e.id, bm);
       const top = topBands(named, 3);

@@ -148,7 +148,8 @@ def test_filters_and_search_pick_the_machines(plant: Plant, page: tuple[Any, Pag
 
     def sections_shown() -> set[str]:
         return set(pg.eval_on_selector_all(
-            "#ov-cards section.machine", "els => els.filter(e => !e.hidden).map(e => e.dataset.machine)"))
+            "#ov-cards section.machine",
+            "els => els.filter(e => !e.hidden).map(e => e.dataset.machine)"))
 
     wait_for(lambda: set(plant.danger) <= {t["machine"] for t in shown_tiles(pg)
                                            if t["sev"] == "danger"}, "the danger tiles")
@@ -199,7 +200,8 @@ FRAME_COUNTER = """
 window.__rafMax = 0; window.__rafAsked = 0;
 const rawRaf = window.requestAnimationFrame.bind(window);
 window.requestAnimationFrame = (fn) => { window.__rafAsked++; return rawRaf((t) => {
-  window.__rafMax = Math.max(window.__rafMax, window.__rafAsked); window.__rafAsked = 0; fn(t); }); };
+  window.__rafMax = Math.max(window.__rafMax, window.__rafAsked); window.__rafAsked = 0; fn(t);
+}); };
 """
 
 
