@@ -58,7 +58,8 @@ export class Live extends EventTarget {
   /** Whether the stream brings what the plant poll would (every channel's values). */
   _streamCoversPlant() {
     const s = this.sub;
-    return this.wsOpen && !!s && s.channels === "*" && (s.kinds || []).includes("bands");
+    const kinds = s?.kinds || [];
+    return this.wsOpen && !!s && (kinds.includes("overall") || (s.channels === "*" && kinds.includes("bands")));
   }
 
   get conn() {
@@ -147,6 +148,33 @@ export class Live extends EventTarget {
       this._index = new Map(this.channels.map((c, i) => [c.id, i]));
     }
     return this._index.get(id) ?? -1;
+  }
+
+  /** An `overall` message: every channel's status and newest overall (once a second). */
+  _overall(m) {
+    let statusChanged = false;
+    for (const u of m.channels || []) {
+      const i = this._at(u.id);
+      if (i < 0) continue;
+      const c = this.channels[i];
+      let next = c;
+      if (c.status !== u.status || (u.fault ?? null) !== (c.fault ?? null)) {
+        next = { ...next, status: u.status, fault: u.fault ?? null, status_since_ns: u.since_ns ?? c.status_since_ns };
+        statusChanged = true;
+      }
+      if (u.seq != null && !(c.latest && (c.latest.seq ?? -1) >= u.seq && c.latest.timestamp_ns >= u.timestamp_ns)) {
+        next = {
+          ...next,
+          latest: {
+            ...(c.latest || {}), seq: u.seq, timestamp_ns: u.timestamp_ns, quality: u.quality, unit: u.unit,
+            overall: u.overall, overall_lo_hz: u.overall_lo_hz, overall_hi_hz: u.overall_hi_hz,
+          },
+        };
+      }
+      if (next !== c) this.channels[i] = next;
+    }
+    this._emit("channels", this.channels);
+    if (statusChanged) this.refreshAlarms(); // a rule of a channel not live is suspended
   }
 
   /** Ask for the plant poll now (e.g. after an acknowledgement). */
@@ -286,6 +314,9 @@ export class Live extends EventTarget {
         break;
       case "rules": // the alarm rules were reloaded: their levels as they now are
         this.refreshAlarms();
+        break;
+      case "overall":
+        this._overall(m);
         break;
       case "status": {
         // {"kind": "status", "channels": [{id, status, fault, since_ns}]} about once a second

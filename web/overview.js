@@ -14,9 +14,12 @@ import { bySeverity, counts, machineSummaries, matches } from "./plantsum.js";
 import { Tiles } from "./tiles.js";
 import { Cards } from "./cards.js";
 
-// Each channel's bands at most every 2 s: the tiles, values and sparklines (ten-second means)
-// need no more, and a thousand channels then cost the service and the page half as much.
-const BANDS_RATE_HZ = 0.5;
+// The stream brings every channel's status and overall once a second in one `overall` message
+// (the tiles, values and sparklines), every alarm event, and the bands of the cards on screen
+// only (their bars), at 1 per second; the subscription follows the scrolling.
+const BANDS_RATE_HZ = 1;
+const SUB_MAX_CHANNELS = 150; // more cards on screen than this (a subscription is ≤ 4 KiB): all
+const SUB_DELAY_MS = 250; // scrolling settles before the subscription changes
 const SUMMARY_MS = 1000; // the tiles and the summary line are recomputed at most this often
 const FILTER_STATES = [["", "all states"], ["abnormal", "needs attention"], ["danger", "danger"], ["alert", "alert"], ["latched", "latched"], ["quality", "data not ok"], ["normal", "normal"]];
 
@@ -57,7 +60,23 @@ export function mount(root) {
   let summaryAt = 0;
   let summaryTimer = 0;
   const cards = new Cards($("ov-cards"), () => tops);
-  cards.onShow = () => schedule(false);
+  let subKey = "";
+  let subTimer = 0;
+  /** Take the bands of the cards on screen (or nearly), every channel's overall and alarms. */
+  function subscribeShown() {
+    subTimer = 0;
+    if (disposed) return;
+    const ids = [...cards.visible].map((e) => e.id).sort();
+    const sub = { channels: ids.length > SUB_MAX_CHANNELS ? "*" : ids, kinds: ["bands", "alarms", "overall"], every_alarm: true, max_rate_hz: BANDS_RATE_HZ };
+    const key = JSON.stringify(sub);
+    if (key === subKey) return;
+    subKey = key;
+    live.subscribe(sub);
+  }
+  cards.onShow = () => {
+    schedule(false);
+    if (!subTimer) subTimer = setTimeout(subscribeShown, SUB_DELAY_MS);
+  };
   const tiles = new Tiles($("ov-tiles"), (mid) => {
     const sec = document.getElementById(`m-${mid}`);
     if (sec) {
@@ -67,7 +86,7 @@ export function mount(root) {
     }
   });
 
-  live.subscribe({ channels: "*", kinds: ["bands", "status", "alarms"], max_rate_hz: BANDS_RATE_HZ });
+  subscribeShown();
 
   /** Ask for one animation frame; `summary`: the tiles need recomputing too. */
   function schedule(summary) {
@@ -210,6 +229,7 @@ export function mount(root) {
       disposed = true;
       frame?.(); // cancel the pending frame's work
       clearTimeout(summaryTimer);
+      clearTimeout(subTimer);
       root.removeEventListener("click", click);
       root.removeEventListener("input", onInput);
       for (const [k, f] of Object.entries(on)) app.removeEventListener(k, f);

@@ -28,9 +28,9 @@ The server sends:
   changed: ``GET /api/v1/alarms?all=true`` has them) and goes to every client that gets
   alarms, whatever its channels; an ``overall`` message (kind ``overall``, about once a
   second, whatever the client's channels) ``{"kind": "overall", "channels": [{"id", "status",
-  "seq", "timestamp_ns", "quality", "unit", "overall", "overall_lo_hz", "overall_hi_hz"}]}``
-  gives every channel's newest overall (primary profile; only ``id`` and ``status`` before
-  its first frame).
+  "fault", "since_ns", "seq", "timestamp_ns", "quality", "unit", "overall", "overall_lo_hz",
+  "overall_hi_hz"}]}`` gives every channel's status (as ``status`` does) and newest overall
+  (primary profile; from ``seq`` on absent before its first frame).
 
 A client message must be at most ``MAX_MESSAGE_BYTES`` (else close 1009) and JSON nested at
 most ``MAX_DEPTH`` deep (checked before parsing); a message that is not a valid
@@ -235,13 +235,14 @@ def _spectrum_header(frame: SpectralFrame, u: str, a: str, count: int) -> str:
 
 def overall_message(hub: Hub) -> dict[str, Any]:
     """The ``overall`` message: every channel's newest overall of its primary profile with its
-    frame's seq, time, unit, band and data quality (null values before its first frame), and
-    the channel's status now — a plant's values in one message a second, whatever the
+    frame's seq, time, unit, band and data quality (absent before its first frame), and the
+    channel's status now (with its fault and since when) — a plant's values in one message a second, whatever the
     client's channels (a plant view subscribes to the bands of the channels it shows only)."""
     out = []
     for cid, st in hub.channels.items():
         f = hub.latest.get(cid)
-        item: dict[str, Any] = {"id": cid, "status": st.status}
+        item: dict[str, Any] = {"id": cid, "status": st.status, "fault": st.fault,
+                                "since_ns": st.status_since_ns}
         if f is not None:
             item.update(seq=f.seq, timestamp_ns=f.t_ns, quality=f.quality, unit=f.unit,
                         overall=_num(f.overall), overall_lo_hz=_num(f.overall_lo_hz),

@@ -76,7 +76,7 @@ def test_overall_gives_every_channel_and_every_alarm_any_channels_alarms(
         assert [c["id"] for c in m["channels"]] == list(rest)  # both, though only a subscribed
         for c in m["channels"]:
             want = rest[c["id"]]
-            assert c["status"] == want["status"]
+            assert (c["status"], c["fault"]) == (want["status"], want["fault"])
             # the newest frame's overall, as REST gives it for the same frame (or one later)
             assert c["seq"] <= want["latest"]["seq"]
             assert c["unit"] == want["latest"]["unit"]

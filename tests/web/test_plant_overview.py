@@ -218,12 +218,18 @@ def test_cards_off_screen_are_neither_updated_nor_drawn(plant: Plant,
     draws0 = {ch: pg.evaluate(DRAWS, ch) for ch in (first, last)}
     seq0 = {ch: pg.evaluate(SEQ, ch) for ch in (first, last)}
     pg.evaluate("window.__rafMax = 0")  # from here on (Playwright's own waits poll on frames)
-    pg.wait_for_timeout(6000)  # three or more bands messages per channel (0.5 per second)
+    pg.wait_for_timeout(6000)  # several seconds of the stream (overall and bands: 1 per second)
     # the card on screen followed the stream, the one off screen did nothing at all
     assert pg.evaluate(DRAWS, first) > draws0[first]
     assert pg.evaluate(SEQ, first) != seq0[first]
     assert pg.evaluate(DRAWS, last) == draws0[last] == 0
     assert pg.evaluate(SEQ, last) == seq0[last]
+    # the stream brings the bands of the cards on screen only (every channel's overall comes in
+    # one message a second), and every alarm event
+    sub = pg.evaluate("() => window.quaver.live.sub")
+    shown = sorted(pg.evaluate("() => window.quaver.view.visibleCards()"))
+    assert sub["channels"] == shown and first in shown and last not in shown, (sub, shown)
+    assert sub["every_alarm"] is True and "overall" in sub["kinds"]
     # every card the page drew was on screen: far fewer than the plant's channels
     drawn = pg.eval_on_selector_all("#ov-cards canvas.spark[data-draws]", "els => els.length")
     assert 0 < drawn < PLAN.channels / 4, drawn
