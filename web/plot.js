@@ -48,6 +48,9 @@ export class Surface {
     this.dpr = dpr;
     this.canvas.width = Math.round(w * dpr);
     this.canvas.height = Math.round(h * dpr);
+    // a resized canvas is cleared to black (alpha: false) until its next draw: plot colour now
+    this.ctx.fillStyle = pal.plot || "#f5f5f2";
+    this.ctx.fillRect(0, 0, this.canvas.width, this.canvas.height);
     this.onResize?.(w, h);
     this.invalidate();
   }
