@@ -12,7 +12,8 @@ import { matches } from "./plantsum.js";
 export function worstText(w) {
   if (!w) return "no value";
   const u = w.unit ? ` ${w.unit}` : "";
-  return w.limit ? `${fmtVal(w.value)} / ${fmtVal(w.limit)}${u}` : `${fmtVal(w.value)}${u} (no limit)`;
+  const last = w.stale ? "last " : ""; // never a bare number from a channel not live
+  return w.limit ? `${last}${fmtVal(w.value)} / ${fmtVal(w.limit)}${u}` : `${last}${fmtVal(w.value)}${u} (no limit)`;
 }
 
 /** "data ok", "1 of 4 no-signal", "2 of 4 not ok". */
