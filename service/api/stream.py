@@ -236,8 +236,9 @@ def _spectrum_header(frame: SpectralFrame, u: str, a: str, count: int) -> str:
 def overall_message(hub: Hub) -> dict[str, Any]:
     """The ``overall`` message: every channel's newest overall of its primary profile with its
     frame's seq, time, unit, band and data quality (absent before its first frame), and the
-    channel's status now (with its fault and since when) — a plant's values in one message a second, whatever the
-    client's channels (a plant view subscribes to the bands of the channels it shows only)."""
+    channel's status now (with its fault and since when) — a plant's values in one message a
+    second, whatever the client's channels (a plant view subscribes to the bands of the
+    channels it shows only)."""
     out = []
     for cid, st in hub.channels.items():
         f = hub.latest.get(cid)
