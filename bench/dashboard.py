@@ -96,12 +96,15 @@ def _cpu_window(pid: int, seconds: float, feed: _FeedThread) -> dict[str, float]
 
 
 def _measure_page(probe: PageProbe, plan: PlantPlan, span_s: float, pid: int,
-                  feed: _FeedThread) -> dict[str, Any]:
-    """Open the plant view, wait for the full render, then sample for ``span_s``."""
+                  feed: _FeedThread, screenshot: str | None = None) -> dict[str, Any]:
+    """Open the plant view, wait for the full render, then sample for ``span_s``
+    (``screenshot``: a PNG of the first screen at the full render goes there)."""
     danger, alert = plan.abnormal()
     probe.open()
     render_s = probe.wait_rendered(plan.machine_ids(), RENDER_TIMEOUT_S)
     screen = probe.first_screen(danger + alert)
+    if screenshot:
+        probe.page.screenshot(path=screenshot)
     load_bytes = probe.bytes_received()
     window_s = 60.0 if span_s >= 60.0 else span_s
     step_s = min(5.0, span_s / 6.0)
@@ -152,7 +155,8 @@ def _measure_page(probe: PageProbe, plan: PlantPlan, span_s: float, pid: int,
     return got
 
 
-def run(plan: PlantPlan, minutes: float, workdir: Path | None = None) -> dict[str, Any]:
+def run(plan: PlantPlan, minutes: float, workdir: Path | None = None,
+        screenshot: str | None = None) -> dict[str, Any]:
     """The whole benchmark; a JSON-ready report. The service, the feeder and the browser
     always end."""
     if minutes <= 0:
@@ -205,7 +209,7 @@ def run(plan: PlantPlan, minutes: float, workdir: Path | None = None) -> dict[st
         _say(f"opening the plant view for {span_s:g} s")
         with browser_context(workdir / "chromium") as ctx:
             page = _measure_page(PageProbe(ctx, svc.base_url, token), plan, span_s, svc.pid,
-                                 feed)
+                                 feed, screenshot)
         _say(f"page closed; service CPU with no page for {closed_s:g} s")
         after = _cpu_window(svc.pid, closed_s, feed)
         feed.check()
@@ -275,10 +279,10 @@ def format_report(r: dict[str, Any]) -> str:
 
 
 def main(plan: PlantPlan, minutes: float, json_path: str | None = None,
-         as_json: bool = False) -> int:
+         as_json: bool = False, screenshot: str | None = None) -> int:
     """Run, print the table (``as_json``: the JSON report instead), write the JSON report to
-    ``json_path`` if given; exit status."""
-    report = run(plan, minutes)
+    ``json_path`` if given (and the first screen to ``screenshot``); exit status."""
+    report = run(plan, minutes, screenshot=screenshot)
     print(json.dumps(report, indent=2) if as_json else format_report(report), flush=True)
     if json_path:
         Path(json_path).write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")

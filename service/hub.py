@@ -36,6 +36,7 @@ class Subscriber:
         profiles: frozenset[str] | None = None,
     ) -> None:
         self.channels = channels  # None = every channel
+        self.every_alarm = False  # True: alarm events of every channel, whatever ``channels``
         self.profiles = profiles
         self.kinds = (
             kinds
@@ -68,7 +69,9 @@ class Subscriber:
     def offer_event(self, event: dict[str, object]) -> None:
         if "alarms" not in self.kinds:
             return
-        if self.channels is not None and event.get("channel") not in self.channels:
+        # a notice about the whole service (no "channel" key: rules reloaded) goes to everyone
+        if (self.channels is not None and not self.every_alarm and "channel" in event
+                and event["channel"] not in self.channels):
             return
         if len(self.events) >= self.max_events:
             self.events.popleft()
@@ -130,6 +133,12 @@ class Hub:
         """Announce an alarm event (already committed to the store) to subscribers."""
         for s in self.subscribers:
             s.offer_event(event)
+
+    def publish_notice(self, notice: str, **fields: object) -> None:
+        """Announce a change of the whole service that is not an event of the log (``notice``
+        "rules": the alarm rules were reloaded) to every subscriber of alarms."""
+        for s in self.subscribers:
+            s.offer_event({"notice": notice, **fields})
 
     def subscribe(self, channels: Iterable[str] | None = None, max_queue: int = 256) -> Subscriber:
         sub = Subscriber(frozenset(channels) if channels is not None else None, max_queue)

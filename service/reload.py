@@ -71,6 +71,9 @@ async def reload_config(svc: Service) -> dict[str, Any]:
         # collection, ~0.1 s, on a rare admin action) and freeze again.
         gc.unfreeze()
         freeze_start_up_heap()
+    # stream clients holding the rules' levels (the plant view) fetch /alarms again on this
+    # rather than polling for a reload that may never come
+    svc.hub.publish_notice("rules", **{k: list(diff[k]) for k in ("added", "changed", "removed")})
     dropped = sorted(active & set(diff["removed"]))
     log.info(
         "config reloaded from %s: alarm rules +%d ~%d -%d (%d kept), %d token(s)%s",

@@ -5,9 +5,9 @@ import { API, askSignIn, getJSON, wsProtocols } from "./api.js";
 
 const PLANT_POLL_MS = 2000;
 // With the stream open and every channel's bands subscribed (the plant view) nothing is polled:
-// values come with the bands, statuses with status messages, and each alarm event (or status
-// change) fetches /alarms once. A resync this rarely is the safety net (rules changed by a reload).
-const PLANT_RESYNC_MS = 60000;
+// values come with the bands, statuses with status messages, and each alarm event, status
+// change or `rules` message (the rules were reloaded) fetches /alarms once. The page resyncs
+// (/channels, /alarms) when the stream (re)opens only.
 const CHANNELS_EMIT_MS = 1000; // values from bands messages reach the views at most this often
 const DOWN_POLL_MS = 1000;
 const WS_RETRY_MAX_MS = 8000;
@@ -47,16 +47,19 @@ export class Live extends EventTarget {
     this._busy = new Set();
     this._plantTimer = 0;
     this._plantBusy = false;
-    this._plantSlow = false; // the next plant fetch is the rare resync, not the poll
+    this._plantSlow = false; // the stream covers the plant: no poll until it closes
     this._alarmsBusy = false;
     this._alarmsAgain = false;
     this._chTimer = 0;
+    this._indexOf = null;
+    this._index = new Map();
   }
 
   /** Whether the stream brings what the plant poll would (every channel's values). */
   _streamCoversPlant() {
     const s = this.sub;
-    return this.wsOpen && !!s && s.channels === "*" && (s.kinds || []).includes("bands");
+    const kinds = s?.kinds || [];
+    return this.wsOpen && !!s && (kinds.includes("overall") || (s.channels === "*" && kinds.includes("bands")));
   }
 
   get conn() {
@@ -117,7 +120,7 @@ export class Live extends EventTarget {
 
   /** A bands message of a channel's primary profile: its values are the channel's latest. */
   _latestFromBands(m) {
-    const i = this.channels.findIndex((c) => c.id === m.channel);
+    const i = this._at(m.channel);
     if (i < 0) return;
     const c = this.channels[i];
     const primary = c.profiles?.[0]?.name ?? this.profiles[m.channel]?.[0];
@@ -136,6 +139,42 @@ export class Live extends EventTarget {
         this._emit("channels", this.channels);
       }, CHANNELS_EMIT_MS);
     }
+  }
+
+  /** The index of a channel in `channels` (-1: none); a map, not a search per message. */
+  _at(id) {
+    if (this._indexOf !== this.channels) {
+      this._indexOf = this.channels;
+      this._index = new Map(this.channels.map((c, i) => [c.id, i]));
+    }
+    return this._index.get(id) ?? -1;
+  }
+
+  /** An `overall` message: every channel's status and newest overall (once a second). */
+  _overall(m) {
+    let statusChanged = false;
+    for (const u of m.channels || []) {
+      const i = this._at(u.id);
+      if (i < 0) continue;
+      const c = this.channels[i];
+      let next = c;
+      if (c.status !== u.status || (u.fault ?? null) !== (c.fault ?? null)) {
+        next = { ...next, status: u.status, fault: u.fault ?? null, status_since_ns: u.since_ns ?? c.status_since_ns };
+        statusChanged = true;
+      }
+      if (u.seq != null && !(c.latest && (c.latest.seq ?? -1) >= u.seq && c.latest.timestamp_ns >= u.timestamp_ns)) {
+        next = {
+          ...next,
+          latest: {
+            ...(c.latest || {}), seq: u.seq, timestamp_ns: u.timestamp_ns, quality: u.quality, unit: u.unit,
+            overall: u.overall, overall_lo_hz: u.overall_lo_hz, overall_hi_hz: u.overall_hi_hz,
+          },
+        };
+      }
+      if (next !== c) this.channels[i] = next;
+    }
+    this._emit("channels", this.channels);
+    if (statusChanged) this.refreshAlarms(); // a rule of a channel not live is suspended
   }
 
   /** Ask for the plant poll now (e.g. after an acknowledgement). */
@@ -183,8 +222,9 @@ export class Live extends EventTarget {
       this._plantBusy = false;
     }
     this._plantSlow = ok && this._streamCoversPlant();
-    const next = !ok ? DOWN_POLL_MS : this._plantSlow ? PLANT_RESYNC_MS : PLANT_POLL_MS;
-    this._plantTimer = setTimeout(() => this._plant(), next);
+    // the stream keeps the page current: no timer (subscribe() starts the poll again for a
+    // view whose stream brings less, the socket's close for a lost stream)
+    if (!this._plantSlow) this._plantTimer = setTimeout(() => this._plant(), ok ? PLANT_POLL_MS : DOWN_POLL_MS);
   }
 
   // --- WebSocket -------------------------------------------------------------------
@@ -272,11 +312,17 @@ export class Live extends EventTarget {
         this._emit("alarm", m);
         this.refreshAlarms(); // the alarm list as it now is (levels, value, acknowledgement)
         break;
+      case "rules": // the alarm rules were reloaded: their levels as they now are
+        this.refreshAlarms();
+        break;
+      case "overall":
+        this._overall(m);
+        break;
       case "status": {
         // {"kind": "status", "channels": [{id, status, fault, since_ns}]} about once a second
         let changed = false;
         for (const u of m.channels || [m]) {
-          const i = this.channels.findIndex((c) => c.id === (u.id ?? u.channel));
+          const i = this._at(u.id ?? u.channel);
           if (i < 0) continue;
           const c = this.channels[i];
           if (c.status !== u.status || (u.fault ?? c.fault) !== c.fault) {

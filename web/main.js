@@ -86,20 +86,30 @@ function renderAlarmSummary() {
 }
 
 // --- sidebar -----------------------------------------------------------------------------
+// The rows are rewritten only when a state, name or the current channel changes; the values
+// (which change every few seconds on every channel) are patched in place, so a plant of a
+// thousand channels does not rebuild a thousand links each time.
+let sideValues = new Map(); // channel id → its value's <span>
 function renderSide() {
   const cur = currentChannel();
   const parts = [];
+  const vals = [];
   for (const [machine, chans] of groupByMachine(store.channels)) {
     parts.push(html`<h3 data-machine="${machine}" title="${machine}"><span>${machineLabel(machine)}</span></h3>`);
     for (const c of chans) {
       const k = channelState(c);
       const abn = STATES[k].rank >= STATES.latched.rank;
-      parts.push(html`<a class="ch ${abn ? "abn" : ""} ${STATES[k].cls}" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${c.id}" data-state="${k}" title="${chTitle(c.id)}${c.description ? ` — ${c.description}` : ""} — ${STATES[k].word}${overallTitle(c.latest)}"${c.id === cur ? html` aria-current="page"` : ""}>${glyph(k)}<span>${chName(c.id)}</span><span class="v">${c.latest && isLive(c.status) ? fmtVal(c.latest.overall) : STATES[k].word.toLowerCase()}</span></a>`);
+      vals.push([c.id, c.latest && isLive(c.status) ? fmtVal(c.latest.overall) : STATES[k].word.toLowerCase()]);
+      parts.push(html`<a class="ch ${abn ? "abn" : ""} ${STATES[k].cls}" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${c.id}" data-state="${k}" title="${chTitle(c.id)}${c.description ? ` — ${c.description}` : ""} — ${STATES[k].word}${overallTitle(c.latest)}"${c.id === cur ? html` aria-current="page"` : ""}>${glyph(k)}<span>${chName(c.id)}</span><span class="v"></span></a>`);
     }
   }
-  updateHTML(document.getElementById("side"), parts);
+  const side = document.getElementById("side");
+  if (updateHTML(side, parts)) sideValues = new Map([...side.querySelectorAll("a.ch")].map((a) => [a.dataset.channel, a.querySelector(".v")]));
+  for (const [id, text] of vals) {
+    const el = sideValues.get(id);
+    if (el && el.textContent !== text) el.textContent = text;
+  }
 }
-
 
 // --- router ------------------------------------------------------------------------------
 let view = null;

@@ -6,7 +6,7 @@ import { html } from "./dom.js";
 import { store } from "./shared.js";
 
 function chan(id) {
-  return store.channels.find((c) => c.id === id) ?? null;
+  return store.byId.get(id) ?? null;
 }
 
 /** A channel's display name (its id when it has none). */
@@ -14,11 +14,16 @@ export function chName(id) {
   return chan(id)?.name || id;
 }
 
+let names = { of: null, by: new Map() }; // machine id → name, rebuilt when /channels changes
+
 /** A machine's display name, from any channel on it (the id when none is configured). */
 export function machineName(machineId) {
   if (!machineId) return "(no machine)";
-  const c = store.channels.find((x) => x.machine === machineId && x.machine_name);
-  return c?.machine_name || machineId;
+  if (names.of !== store.channels) {
+    names = { of: store.channels, by: new Map() };
+    for (const c of store.channels) if (c.machine && c.machine_name && !names.by.has(c.machine)) names.by.set(c.machine, c.machine_name);
+  }
+  return names.by.get(machineId) || machineId;
 }
 
 /** The machine id of a channel ("" when it names none). */

@@ -26,7 +26,10 @@ export class Surface {
     this.h = 0;
     this.dpr = 1;
     this._pending = false;
-    this._frame = 0;
+    this._disposed = false;
+    this.hidden = false; // off screen: changes wait (see setHidden)
+    this._stale = false;
+    this.draws = 0;
     this.onResize = null;
     this._ro = new ResizeObserver((entries) => {
       const r = entries[0].contentRect;
@@ -45,22 +48,46 @@ export class Surface {
     this.dpr = dpr;
     this.canvas.width = Math.round(w * dpr);
     this.canvas.height = Math.round(h * dpr);
+    // a resized canvas is cleared to black (alpha: false) until its next draw: plot colour now
+    this.ctx.fillStyle = pal.plot || "#f5f5f2";
+    this.ctx.fillRect(0, 0, this.canvas.width, this.canvas.height);
     this.onResize?.(w, h);
     this.invalidate();
   }
 
+  /** Draw on the next animation frame (one frame callback for every surface of the page). */
   invalidate() {
+    if (this.hidden) {
+      this._stale = true; // drawn when shown again (setHidden(false))
+      return;
+    }
     if (this._pending) return;
     this._pending = true;
-    this._frame = requestAnimationFrame(() => {
-      this._pending = false;
-      if (!this.w || !this.h || !this.canvas.isConnected) return;
-      this.ctx.setTransform(this.dpr, 0, 0, this.dpr, 0, 0);
-      const t0 = performance.now();
-      this.drawFn(this.ctx, this.w, this.h);
-      // Opt-in draw timing for performance checks: set Surface.stats = [] in devtools.
-      if (Surface.stats) Surface.stats.push([this.canvas.id || this.canvas.className, performance.now() - t0]);
-    });
+    dirty.add(this);
+    if (!frame) frame = requestAnimationFrame(flush);
+  }
+
+  /** A surface off screen draws nothing; shown again, it draws once if anything changed. */
+  setHidden(hidden) {
+    this.hidden = hidden;
+    if (!hidden && this._stale) {
+      this._stale = false;
+      this.invalidate();
+    }
+  }
+
+  /** Draw now (a caller already inside an animation frame). Counts in `canvas.dataset.draws`. */
+  drawNow() {
+    this._pending = false;
+    dirty.delete(this);
+    if (this._disposed || !this.w || !this.h || !this.canvas.isConnected) return;
+    this.ctx.setTransform(this.dpr, 0, 0, this.dpr, 0, 0);
+    const t0 = performance.now();
+    this.drawFn(this.ctx, this.w, this.h);
+    this.draws += 1;
+    this.canvas.dataset.draws = String(this.draws);
+    // Opt-in draw timing for performance checks: set Surface.stats = [] in devtools.
+    if (Surface.stats) Surface.stats.push([this.canvas.id || this.canvas.className, performance.now() - t0]);
   }
 
   // Keep `owner.hover` ({x, y} in CSS pixels, or null off the canvas) and redraw on moves.
@@ -78,11 +105,48 @@ export class Surface {
 
   dispose() {
     this._ro.disconnect();
-    cancelAnimationFrame(this._frame); // no drawing after the view is gone
+    dirty.delete(this); // no drawing after the view is gone
+    this._disposed = true;
     this._pending = true; // and none asked for later
   }
 }
 Surface.stats = null;
+
+// The surfaces to draw at the next animation frame: one requestAnimationFrame for all of them,
+// after the callbacks views asked for (onNextFrame), which may invalidate surfaces of their own.
+const dirty = new Set();
+const before = new Set();
+let frame = 0;
+
+/** Run `fn` at the next animation frame, before the surfaces draw (the page's one frame
+ *  callback). Returns a function that cancels it. */
+export function onNextFrame(fn) {
+  before.add(fn);
+  if (!frame) frame = requestAnimationFrame(flush);
+  return () => before.delete(fn);
+}
+
+function flush() {
+  frame = 0;
+  const fns = [...before];
+  before.clear();
+  for (const f of fns) {
+    try {
+      f();
+    } catch (e) {
+      console.error(e);
+    }
+  }
+  const now = [...dirty];
+  dirty.clear();
+  for (const s of now) {
+    try {
+      s.drawNow();
+    } catch (e) {
+      console.error(e); // one broken plot does not stop the others
+    }
+  }
+}
 
 /** Linear or logarithmic map from a value range [lo, hi] to a pixel range [p0, p1]. */
 export class Scale {

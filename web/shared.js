@@ -7,8 +7,13 @@ import { API, getJSON } from "./api.js";
 import { Live } from "./live.js";
 import { channelStateKey } from "./states.js";
 import { ruleProfile } from "./alarms.js";
+import { StepRing } from "./ring.js";
 
-const HISTORY_MS = 3600e3;
+// A channel's overall history in the page: ten-second means over ten minutes (what a plant
+// card's sparkline shows), in a ring of fixed size per channel, so a page left open for
+// days at a thousand channels holds as much as after ten minutes.
+export const SPARK_STEP_MS = 10e3;
+export const SPARK_STEPS = 60;
 /** History key of the channel's overall (over its band named "overall", else lowcut…Fmax, as
  *  every frame says in overall_lo_hz/overall_hi_hz), apart from a band history of that name. */
 export const FRAME = "(frame overall)";
@@ -18,10 +23,12 @@ export const app = new EventTarget();
 export const store = {
   channels: [],
   alarms: null, // active/latched alarm entries, or null when the service has no alarm route
+  alarmsKnown: false, // the alarm list has been asked for once (answered or not)
   rules: new Map(), // "channel|profile|kind|name" → last alarm entry seen (remembers levels); profile "" = primary
   bands: new Map(), // channel → latest bands message of its primary profile; "channel|profile" → of another
   tones: new Map(), // the same for tones messages
-  hist: new Map(), // channel → Map(name → [[t_ms, value], ...]) for this browser session ("profile/name" off the primary)
+  hist: new Map(), // channel → StepRing of its primary profile's overall (this session, seeded from /trend)
+  byId: new Map(), // channel id → its /channels entry
   conn: "connecting",
   downSince: 0,
 };
@@ -76,7 +83,7 @@ function ruleKey(channelId, pk, kind, name) {
 
 /** A channel's primary analysis profile: the first of /channels' `profiles`, else the stream's hello. */
 export function primaryOf(channelId) {
-  const c = store.channels.find((x) => x.id === channelId);
+  const c = store.byId.get(channelId);
   return c?.profiles?.[0]?.name ?? live.profiles?.[channelId]?.[0] ?? null;
 }
 
@@ -96,53 +103,55 @@ export function tonesOf(channelId, profile = "") {
   return store.tones.get(msgKey(channelId, profileKey(channelId, profile)));
 }
 
+let alarmIndex = { of: undefined, by: new Map() };
+/** A channel's active/latched alarms (indexed once per alarm list, not searched per call). */
 export function alarmsFor(channelId) {
-  return (store.alarms || []).filter((a) => a.channel === channelId);
+  if (alarmIndex.of !== store.alarms) {
+    const by = new Map();
+    for (const a of store.alarms || []) {
+      if (!by.has(a.channel)) by.set(a.channel, []);
+      by.get(a.channel).push(a);
+    }
+    alarmIndex = { of: store.alarms, by };
+  }
+  return alarmIndex.by.get(channelId) ?? [];
 }
 
 export function channelState(c) {
   return channelStateKey(c.status, alarmsFor(c.id));
 }
 
-/** This session's values of `name` (FRAME or a band) of a channel's profile (default: primary). */
-export function history(channelId, name, profile = "") {
-  return store.hist.get(channelId)?.get(histKey(profileKey(channelId, profile), name)) ?? [];
+/** The ring of a channel's overall (primary profile): this session's values and stored ones. */
+export function overallRing(channelId) {
+  let r = store.hist.get(channelId);
+  if (!r) store.hist.set(channelId, (r = new StepRing(SPARK_STEP_MS, SPARK_STEPS)));
+  return r;
 }
 
-const histKey = (pk, name) => (pk ? `${pk}/${name}` : name);
-
-/** Put stored points (older than what this session saw) in front of a history. */
-export function seedHistory(channelId, name, pts) {
-  let m = store.hist.get(channelId);
-  if (!m) store.hist.set(channelId, (m = new Map()));
-  const a = m.get(name) || [];
-  const first = a.length ? a[0][0] : Infinity;
-  m.set(name, pts.filter((p) => p[0] < first).concat(a));
+/** This session's overall of a channel ([[t_ms, value]], ten-second means then the newest). */
+export function history(channelId) {
+  return store.hist.get(channelId)?.points() ?? [];
 }
 
-function remember(channelId, name, t_ms, v) {
-  if (!Number.isFinite(v) || !t_ms) return;
-  let m = store.hist.get(channelId);
-  if (!m) store.hist.set(channelId, (m = new Map()));
-  let a = m.get(name);
-  if (!a) m.set(name, (a = []));
-  const last = a[a.length - 1];
-  if (last && t_ms - last[0] < 1000) return;
-  a.push([t_ms, v]);
-  while (a.length && a[0][0] < t_ms - HISTORY_MS) a.shift();
+function remember(channelId, t_ms, v) {
+  const r = overallRing(channelId);
+  if (r.last && t_ms <= r.last[0]) return; // the same frame again
+  r.add(t_ms, v);
 }
 
 // --- live feeds -------------------------------------------------------------------------
 live.addEventListener("channels", (e) => {
   store.channels = e.detail;
+  store.byId = new Map(store.channels.map((c) => [c.id, c]));
   for (const c of store.channels) {
-    if (c.latest) remember(c.id, FRAME, c.latest.timestamp_ns / 1e6, c.latest.overall);
+    if (c.latest) remember(c.id, c.latest.timestamp_ns / 1e6, c.latest.overall);
   }
   app.dispatchEvent(new CustomEvent("channels", { detail: store.channels }));
 });
 
 live.addEventListener("alarms", (e) => {
   const list = e.detail;
+  store.alarmsKnown = true;
   // a shelved rule's alarm is not annunciated (shown under Shelved instead)
   store.alarms = list === null ? null : list.filter((a) => (a.state !== "normal" || a.latched) && !a.shelved);
   for (const a of list || []) store.rules.set(ruleKey(a.channel, ruleProfile(a), a.kind, a.name), a);
@@ -158,9 +167,6 @@ live.addEventListener("bands", (e) => {
   const m = e.detail;
   const pk = profileKey(m.channel, m.profile);
   store.bands.set(msgKey(m.channel, pk), m);
-  const t = (m.timestamp_ns ?? 0) / 1e6;
-  for (const b of m.bands || []) if (!b.name.startsWith("third ")) remember(m.channel, histKey(pk, b.name), t, b.value);
-  if (pk) remember(m.channel, histKey(pk, FRAME), t, m.overall); // the primary's comes with /channels
   // Some services put levels on the bands themselves.
   for (const b of m.bands || []) {
     if (b.alert !== undefined || b.danger !== undefined) {

@@ -35,16 +35,14 @@ export function niceCeil(v) {
 /**
  * The plant's shared scale per unit, for sparklines of channels without a danger level: a
  * nice number at or above the highest value any of them showed in the last ten minutes, so
- * equal values draw at equal heights on every such card. `chans`: [{id, unit, pts}].
+ * equal values draw at equal heights on every such card. `chans`: [{id, unit, max}] (`max`: the
+ * highest value of its last ten minutes).
  */
 export function sharedTops(chans) {
   const mx = new Map();
   for (const c of chans) {
     if (overallLimits(c.id).danger.length) continue;
-    const t0 = (c.pts.at(-1)?.[0] ?? 0) - SPARK_MS;
-    let m = mx.get(c.unit) ?? 0;
-    for (const p of c.pts) if (p[0] >= t0 && p[1] > m) m = p[1];
-    mx.set(c.unit, m);
+    mx.set(c.unit, Math.max(mx.get(c.unit) ?? 0, c.max));
   }
   return new Map([...mx].map(([u, m]) => [u, niceCeil(m * 1.1)]));
 }

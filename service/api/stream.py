@@ -5,11 +5,13 @@ Reads the hub through a bounded subscriber queue; a slow client only ever delays
 Protocol
 --------
 The client sends a text message ``{"subscribe": {"channels": [...] | "*", "kinds": [...],
-"profiles": [...] | "*", "max_rate_hz": 10, "unit": "mm/s", "amplitude": "rms"}}`` (it may
-send another at any time to change its subscription). ``kinds`` ⊆ spectrum, bands, tones,
-alarms, status. Without ``profiles`` a client gets each channel's primary profile; with a
-list, those profiles of every subscribed channel that runs them; ``"*"``: every profile.
-The rate limit holds per channel and profile.
+"profiles": [...] | "*", "max_rate_hz": 10, "unit": "mm/s", "amplitude": "rms",
+"every_alarm": false}}`` (it may send another at any time to change its subscription).
+``kinds`` ⊆ spectrum, bands, tones, alarms, status, overall (default: all but overall).
+Without ``profiles`` a client gets each channel's primary profile; with a list, those
+profiles of every subscribed channel that runs them; ``"*"``: every profile. The rate
+limit holds per channel and profile. Alarm events come for the subscribed channels only,
+unless ``every_alarm`` is true (then for every channel).
 
 The server sends:
 
@@ -17,10 +19,18 @@ The server sends:
   UTF-8 JSON ``{"kind": "spectrum", "channel", "profile", "seq", "timestamp_ns", "f0_hz", "df_hz",
   "unit", "amplitude", "averages", "count", "missed"}``, then ``count`` little-endian
   float32 values (the header is padded with spaces so the values start 4-byte aligned);
-* text JSON messages ``{"kind": "hello" | "bands" | "tones" | "alarm" | "status" | "error",
+* text JSON messages ``{"kind": "hello" | "bands" | "tones" | "alarm" | "rules" | "status" |
+  "overall" | "error",
   ...}`` whose fields match the REST resources; an ``alarm`` message is a committed event
   (as in ``/events``, ``id`` never null) whose own kind (transition, ack, sensor-fault) is
-  in ``event_kind``.
+  in ``event_kind``; a ``rules`` message ``{"kind": "rules", "notice": "rules", "added",
+  "changed", "removed"}`` (rule ids) says the alarm rules were reloaded (levels may have
+  changed: ``GET /api/v1/alarms?all=true`` has them) and goes to every client that gets
+  alarms, whatever its channels; an ``overall`` message (kind ``overall``, about once a
+  second, whatever the client's channels) ``{"kind": "overall", "channels": [{"id", "status",
+  "fault", "since_ns", "seq", "timestamp_ns", "quality", "unit", "overall", "overall_lo_hz",
+  "overall_hi_hz"}]}`` gives every channel's status (as ``status`` does) and newest overall
+  (primary profile; from ``seq`` on absent before its first frame).
 
 A client message must be at most ``MAX_MESSAGE_BYTES`` (else close 1009) and JSON nested at
 most ``MAX_DEPTH`` deep (checked before parsing); a message that is not a valid
@@ -48,6 +58,7 @@ from __future__ import annotations
 
 import asyncio
 import collections
+import heapq
 import json
 import logging
 import struct
@@ -66,7 +77,7 @@ from ..config import Config
 from ..hub import Hub
 from ..spectra import spectrum_values
 from ..types import SpectralFrame
-from .channels import bands_payload, tones_payload
+from .channels import _num, bands_payload, tones_payload
 from .deps import get_hub
 from .security import WS_PROTOCOL, ws_offered
 
@@ -76,7 +87,7 @@ log = logging.getLogger("quaver.stream")
 # an OSError; starlette raises RuntimeError after a close).
 _CLIENT_GONE = (WebSocketDisconnect, RuntimeError, OSError)
 
-KINDS = ("spectrum", "bands", "tones", "alarms", "status")
+KINDS = ("spectrum", "bands", "tones", "alarms", "status", "overall")  # what a client subscribes to
 MAX_MESSAGE_BYTES = 4096  # a subscription is small; anything bigger is refused
 MAX_DEPTH = 8  # {"subscribe": {"channels": [...]}} is 3 deep
 MAX_ERRORS = 20  # bad messages tolerated per session before it is closed
@@ -89,7 +100,12 @@ class Subscription(BaseModel):
     profiles: list[str] | str | None = Field(
         None, description="profile names, or '*' for all; default: each channel's primary"
     )
-    kinds: list[str] = Field(default_factory=lambda: list(KINDS))
+    # the default stays the kinds there were before `overall` (a client that names none
+    # gets what it always got)
+    kinds: list[str] = Field(default_factory=lambda: [k for k in KINDS if k != "overall"])
+    every_alarm: bool = Field(
+        False, description="alarm events of every channel, whatever `channels` (a plant "
+        "view that takes the bands of the channels on screen only)")
     max_rate_hz: float = Field(10.0, gt=0, le=100, description="per channel, messages/s")
     unit: str | None = None
     amplitude: str | None = None
@@ -217,6 +233,25 @@ def _spectrum_header(frame: SpectralFrame, u: str, a: str, count: int) -> str:
     return text[: -len("0}")]
 
 
+def overall_message(hub: Hub) -> dict[str, Any]:
+    """The ``overall`` message: every channel's newest overall of its primary profile with its
+    frame's seq, time, unit, band and data quality (absent before its first frame), and the
+    channel's status now (with its fault and since when) — a plant's values in one message a
+    second, whatever the client's channels (a plant view subscribes to the bands of the
+    channels it shows only)."""
+    out = []
+    for cid, st in hub.channels.items():
+        f = hub.latest.get(cid)
+        item: dict[str, Any] = {"id": cid, "status": st.status, "fault": st.fault,
+                                "since_ns": st.status_since_ns}
+        if f is not None:
+            item.update(seq=f.seq, timestamp_ns=f.t_ns, quality=f.quality, unit=f.unit,
+                        overall=_num(f.overall), overall_lo_hz=_num(f.overall_lo_hz),
+                        overall_hi_hz=_num(f.overall_hi_hz))
+        out.append(item)
+    return {"kind": "overall", "channels": out}
+
+
 def json_depth_over(text: str, limit: int) -> bool:
     """True when the brackets in ``text`` nest deeper than ``limit`` (strings skipped), so
     json.loads never sees a message deep enough to exhaust the recursion limit."""
@@ -261,6 +296,11 @@ class _Session:
         # newest frame per (channel, profile) held back by the rate limit; a held frame that a
         # newer one replaces is counted in ``self.sub.missed`` (so /metrics sees it too)
         self.held: dict[tuple[str, str], SpectralFrame] = {}
+        # (due, key) of the held frames, soonest first: finding the frames that are due costs
+        # the due ones, not a pass over every held channel per message (at a thousand
+        # channels and a slow rate nearly every channel has one held). Entries whose frame
+        # went out another way are skipped when they come up.
+        self.due_heap: list[tuple[float, tuple[str, str]]] = []
 
     def end(self, code: int, reason: str) -> None:
         """Stop the session's loops; the handler then closes with ``code`` and ``reason``."""
@@ -283,8 +323,12 @@ class _Session:
             if bad:
                 raise ValueError(f"unknown profiles {bad}; known: {sorted(known)}")
         self.sub.channels = chans
+        self.sub.every_alarm = spec.every_alarm
         self.sub.profiles = profs
         self.sub.kinds = frozenset(spec.kinds)
+        # the rate may have changed: the held frames' due times with it
+        self.due_heap = [(self._due(k), k) for k in self.held]
+        heapq.heapify(self.due_heap)
 
     async def receive_loop(self) -> None:
         while True:
@@ -331,21 +375,25 @@ class _Session:
         next_status = 0.0
         while True:
             now = time.monotonic()
-            if "status" in self.spec.kinds and now >= next_status:
-                await self.send_json(
-                    {
-                        "kind": "status",
-                        "channels": [
-                            {"id": st.id, "status": st.status, "fault": st.fault,
-                             "since_ns": st.status_since_ns}
-                            for st in self.hub.channels.values()
-                        ],
-                    }
-                )
+            if now >= next_status and ("status" in self.spec.kinds
+                                       or "overall" in self.spec.kinds):
+                if "status" in self.spec.kinds:
+                    await self.send_json(
+                        {
+                            "kind": "status",
+                            "channels": [
+                                {"id": st.id, "status": st.status, "fault": st.fault,
+                                 "since_ns": st.status_since_ns}
+                                for st in self.hub.channels.values()
+                            ],
+                        }
+                    )
+                if "overall" in self.spec.kinds:
+                    await self.send_json(overall_message(self.hub))
                 next_status = now + STATUS_PERIOD_S
             timeout = STATUS_PERIOD_S
-            if self.held:
-                timeout = min(timeout, max(0.0, min(self._due(c) for c in self.held) - now))
+            if self.due_heap:
+                timeout = min(timeout, max(0.0, self.due_heap[0][0] - now))
             try:
                 item = await self.sub.queue.get(timeout=timeout)
             except TimeoutError:
@@ -357,6 +405,9 @@ class _Session:
                 continue
             if isinstance(item, SpectralFrame):
                 await self._send_frame(item)
+            elif "notice" in item:  # a change of the whole service (Hub.publish_notice)
+                if "alarms" in self.spec.kinds:
+                    await self.send_json({**item, "kind": item["notice"]})
             else:  # an alarm event (dict) published by the service
                 if "alarms" in self.spec.kinds:
                     # the documented kind; the event's own (transition, ack, …) goes aside
@@ -371,7 +422,15 @@ class _Session:
     async def _send_due(self) -> None:
         """Send every held frame whose rate-limit interval is up."""
         now = time.monotonic()
-        for key in [k for k in self.held if self._due(k) <= now]:
+        heap = self.due_heap
+        while heap and heap[0][0] <= now:
+            _, key = heapq.heappop(heap)
+            if key not in self.held:
+                continue  # sent already
+            due = self._due(key)
+            if due > now:  # sent and held again since this entry was made
+                heapq.heappush(heap, (due, key))
+                continue
             await self._send(self.held.pop(key))
 
     async def _send_frame(self, frame: SpectralFrame) -> None:
@@ -383,14 +442,16 @@ class _Session:
             if time.monotonic() < self._due(key):
                 # still too soon: the newer frame takes the older one's place, which is skipped
                 self.sub.missed += 1
-                self.held[key] = frame
+                self.held[key] = frame  # its (due, key) entry stands
                 return
             # The older one's interval is up (it came due while the loop was busy): it goes
             # first and ``frame`` waits its own turn below (sending ``frame`` alone would skip
             # ``older`` although this client keeps up with the rate limit).
             await self._send(older)
-        if time.monotonic() < self._due(key):
+        due = self._due(key)
+        if time.monotonic() < due:
             self.held[key] = frame
+            heapq.heappush(self.due_heap, (due, key))
             return
         await self._send(frame)
 

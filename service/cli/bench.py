@@ -8,7 +8,7 @@ from pathlib import Path
 
 from .common import CliError
 
-DASHBOARD_ONLY = ("machines", "danger", "alert", "minutes")
+DASHBOARD_ONLY = ("machines", "danger", "alert", "minutes", "screenshot")
 
 
 def _dashboard(args: argparse.Namespace) -> int:
@@ -52,8 +52,12 @@ def _dashboard(args: argparse.Namespace) -> int:
     json_path = args.json if isinstance(args.json, str) else None
     if json_path is not None and not Path(json_path).resolve().parent.is_dir():
         raise CliError(f"--json {json_path!r}: its folder does not exist", 2)
+    shot = args.screenshot
+    if shot is not None and not Path(shot).resolve().parent.is_dir():
+        raise CliError(f"--screenshot {shot!r}: its folder does not exist", 2)
     try:
-        return int(main(plan, minutes, json_path=json_path, as_json=args.json is True))
+        return int(main(plan, minutes, json_path=json_path, as_json=args.json is True,
+                        screenshot=shot))
     except RuntimeError as e:  # bench.harness.HarnessError too: the service did not start
         raise CliError(f"--dashboard: {e}", 1) from None
 

@@ -257,6 +257,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--minutes", type=_positive(float), default=None, metavar="M",
                    help="with --dashboard: how long the page is measured, min (default 5; "
                    "e.g. 0.5 for a quick look)")
+    p.add_argument("--screenshot", default=None, metavar="FILE",
+                   help="with --dashboard: save a PNG of the first screen at the full render")
     p.add_argument("--seconds", type=_positive(float), default=None, metavar="S",
                    help="signal length per case, s (default 2; with --service the real-time "
                    "span of each headroom step, default 20)")

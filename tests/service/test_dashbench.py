@@ -133,6 +133,9 @@ def test_plant_refuses_impossible_sizes(kw, message):
     (["--dashboard", "--repeats", "2"], "--repeats does not apply to --dashboard"),
     (["--dashboard", "--short"], "--short does not apply to --dashboard"),
     (["--dashboard", "--json", "no-such-folder-18/r.json"], "its folder does not exist"),
+    (["--screenshot", "shot.png"], "--screenshot applies to --dashboard only"),
+    (["--dashboard", "--screenshot", "no-such-folder-18/s.png"],
+     "--screenshot 'no-such-folder-18/s.png': its folder does not exist"),
 ])
 def test_bench_dashboard_refuses_bad_options(argv, message, capsys):
     assert cli_main(["bench", *argv]) == 2

@@ -10,7 +10,7 @@ import asyncio
 import numpy as np
 import pytest
 
-from service.hub import Subscriber
+from service.hub import Hub, Subscriber
 from service.types import SpectralFrame
 
 
@@ -59,3 +59,17 @@ def test_a_subscriber_without_profiles_takes_each_channels_primary_only() -> Non
     named.offer(frame("a", 1, "wide", primary=True))
     named.offer(frame("a", 2, "narrow", primary=False))
     assert list(sub.frames) == [("a", "wide")] and list(named.frames) == [("a", "narrow")]
+
+
+def test_a_notice_reaches_every_subscriber_of_alarms_whatever_its_channels() -> None:
+    hub = Hub()
+    of_b = hub.subscribe(["b"])
+    of_b.kinds = frozenset({"alarms"})
+    no_alarms = hub.subscribe(None)
+    no_alarms.kinds = frozenset({"bands"})
+    hub.publish_event({"channel": "a", "id": 1})  # another channel's event: not for of_b
+    hub.publish_event({"channel": None, "id": 2})  # an event of no channel: not for of_b
+    hub.publish_notice("rules", added=[], changed=["a.band.b"], removed=[])
+    assert list(of_b.events) == [
+        {"notice": "rules", "added": [], "changed": ["a.band.b"], "removed": []}]
+    assert not no_alarms.events

@@ -217,3 +217,31 @@ def test_the_demo_has_no_file_to_reload(tmp_path: Path) -> None:
         r = client.post("/api/v1/admin/reload",
                         headers={"Authorization": f"Bearer {DEMO_OPERATOR_TOKEN}"})
         assert r.status_code == 403
+
+
+def test_a_reload_tells_stream_clients_the_rules_changed(svc: RunningService) -> None:
+    """The plant view keeps every rule's levels and polls nothing while its stream is open:
+    a reload reaches it as a `rules` message (even a client of other channels' alarms), and
+    /alarms then has the new levels."""
+    alarms = [{"channel": "a", "band": "b", "alert": 0.45, "danger": 1.0, "latch": True}]
+    url = f"ws://{LOOPBACK}:{svc.http_port}/api/v1/stream"
+    with ws_connect(url, open_timeout=10, additional_headers=auth("ada"), proxy=None) as ws:
+        assert json.loads(ws.recv(timeout=10))["kind"] == "hello"
+        ws.send(json.dumps({"subscribe": {"channels": ["a"], "kinds": ["alarms"]}}))
+        rewrite(svc, alarms=alarms)
+        try:
+            assert reload(svc).status_code == 200
+            got = None
+            for _ in range(50):  # bounded: status and alarm messages may come first
+                m = json.loads(ws.recv(timeout=10))
+                if m["kind"] == "rules":
+                    got = m
+                    break
+            assert got is not None
+            rule = alarm(svc)["rule"]
+            assert got["changed"] == [rule] and got["added"] == got["removed"] == []
+            assert alarm(svc)["alert"] == 0.45
+        finally:
+            rewrite(svc, alarms=[{"channel": "a", "band": "b", "alert": 0.5, "danger": 1.0,
+                                  "latch": True}])
+            assert reload(svc).status_code == 200

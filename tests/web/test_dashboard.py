@@ -162,6 +162,11 @@ def test_overall_on_screen_matches_rest(demo: Service, page: tuple[Any, PageLog]
                 # bands messages while the stream is open (web/README.md)
                 if m.get("kind") == "bands" and m.get("profile") == primary.get(m["channel"]):
                     seen[(m["channel"], m["seq"])] = m["overall"]
+                # and every channel's from the `overall` message (the cards off screen)
+                if m.get("kind") == "overall":
+                    for c in m["channels"]:
+                        if c.get("seq") is not None:
+                            seen[(c["id"], c["seq"])] = c["overall"]
 
         ws.on("framereceived", frame)
 

@@ -146,10 +146,13 @@ def test_sparklines_draw_every_rule_form_on_fixed_scales(plant: Any,
         assert _floats(d["alert"]) == alert, (ch, d)
         assert _floats(d["danger"]) == danger, (ch, d)
         # the card's overall bar draws the same rules' levels
-        bars = json.loads(pg.eval_on_selector(f".card[data-channel='{ch}'] canvas.minibars",
-                                              "c => c.dataset.levels || '[]'"))
-        overall_bar = [b for b in bars if b["name"] == "overall"]
-        assert overall_bar, (ch, bars)
+        # (the bars come with the bands the page subscribes to once the card is on screen)
+        def overall_bar_of(ch: str = ch) -> list[dict[str, Any]]:
+            bars = json.loads(pg.eval_on_selector(f".card[data-channel='{ch}'] canvas.minibars",
+                                                  "c => c.dataset.levels || '[]'"))
+            return [b for b in bars if b["name"] == "overall"]
+
+        overall_bar = wait_for(overall_bar_of, f"the overall bar of {ch}")
         assert set(overall_bar[0]["alert"]) == alert, (ch, overall_bar)
         assert set(overall_bar[0]["danger"]) == danger, (ch, overall_bar)
         # the scale is fixed at 1.3 × the highest danger level, not the data's own range
