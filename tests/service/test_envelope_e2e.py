@@ -11,10 +11,10 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from conftest import wait_for
 
 from bench import harness
 from service.sources.simulated import PUMP_DE_BEARING
+from tests.service.conftest import wait_for
 
 CHANNELS = ["p1-de-h", "p2-de-h"]
 ENV_RULE = "p1-de-h.envelope.band.bpfo"  # service.alarms.rule_id: the name's slug

@@ -11,11 +11,11 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from conftest import REPO, child_env, run_cli, to_toml
 
 from service.config import ConfigError, parse_config
 from service.hub import Hub
 from service.mqtt import MqttPublisher, Topics
+from tests.service.conftest import REPO, child_env, run_cli, to_toml
 
 SOURCE = [{"id": "s", "kind": "simulated", "scenario": "demo", "channels": ["p1-de-h"]}]
 

@@ -14,8 +14,9 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from conftest import REPO, RunningService, feed_tone, one_band_config, run_service
 from mosquitto import Broker, Listener, Message, running_broker, wait_until
+
+from tests.service.conftest import REPO, RunningService, feed_tone, one_band_config, run_service
 
 SCHEMA = json.loads((REPO / "docs" / "mqtt.schema.json").read_text(encoding="utf-8"))
 ALL = ["overall", "bands", "tones", "spectrum", "status", "alarms"]

@@ -10,10 +10,10 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from conftest import wait_for
 from notify_receivers import mail_url, smtp_server, webhook
 
 from bench import harness
+from tests.service.conftest import wait_for
 
 CH = "p1-de-h"
 RULE = f"{CH}.overall"

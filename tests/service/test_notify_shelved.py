@@ -10,10 +10,10 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from conftest import wait_for
 from notify_receivers import webhook
 
 from bench import harness
+from tests.service.conftest import wait_for
 
 SHELVED, OPEN = "p1-de-h", "p1-de-v"
 TOKEN = "tok-otto"
