@@ -17,11 +17,13 @@ import { chName, chTitle, machineLabel } from "./names.js";
 import * as rulesView from "./rules.js";
 import { setupConsole } from "./console.js";
 import * as notFound from "./notfound.js";
+import { isTacho, mountTacho } from "./speed.js";
 
 app.addEventListener("channels", () => {
   // a channel view opened before the list came, or of a channel that has gone: say so
   const ch = channelRoute();
-  if (ch && (view?.probe?.notFound?.()?.kind === "channel") !== !knownChannel(ch.id)) route();
+  if (ch && ((view?.probe?.notFound?.()?.kind === "channel") !== !knownChannel(ch.id)
+    || !!view?.probe?.waiting || !!view?.probe?.tacho !== tachoChannel(ch.id))) route();
   else renderSide();
 });
 app.addEventListener("alarms", () => {
@@ -128,6 +130,11 @@ function knownChannel(id) {
   return !store.channels.length || store.channels.some((c) => c.id === id);
 }
 
+/** Whether `id` is a tacho channel (its page shows its speed, it has no spectrum). */
+function tachoChannel(id) {
+  return isTacho(store.channels.find((c) => c.id === id));
+}
+
 /** The plant view's hashes: none, `#`, `#/` (with or without a query). */
 function isPlant(hash) {
   return /^(#\/?)?(\?.*)?$/.test(hash);
@@ -141,9 +148,15 @@ function route() {
   let which = "plant";
   if (ch) {
     which = "channel";
-    view = knownChannel(ch.id)
-      ? channel.mount(main, ch.id, { profile: ch.profile })
-      : notFound.mountChannel(main, ch.id, store.channels.map((c) => c.id));
+    if (!store.channels.length) {
+      // which kind of channel it is comes with the list (a tacho has no spectrum to ask for)
+      setHTML(main, html`<p class="hint" id="ch-waiting">waiting for the service's channel list…</p>`);
+      view = { probe: { waiting: true } };
+    } else if (!knownChannel(ch.id)) {
+      view = notFound.mountChannel(main, ch.id, store.channels.map((c) => c.id));
+    } else {
+      view = tachoChannel(ch.id) ? mountTacho(main, ch.id) : channel.mount(main, ch.id, { profile: ch.profile });
+    }
   } else if (location.hash.startsWith("#/rules")) {
     which = "rules"; // the rules view (web/rules.js)
     view = rulesView.mount(main);
