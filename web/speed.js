@@ -78,7 +78,7 @@ export function showSpeed(card, c) {
   if (!isTacho(c)) return;
   card.dataset.kind = "tacho";
   const o = card.querySelector(".overall");
-  if (o) o.textContent = sp?.rpm != null ? fmtVal(sp.rpm, 4) : WORDS[sp?.status] || "—";
+  if (o) o.textContent = sp?.rpm != null ? String(Math.round(sp.rpm)) : WORDS[sp?.status] || "—";
   const u = card.querySelector(".unit");
   if (u) u.textContent = sp?.rpm != null ? "r/min" : "";
   const w = card.querySelector(".what");
@@ -112,7 +112,7 @@ export function mountTacho(root, id) {
     const sp = fresh?.speed ? { ...fresh.speed } : speedOf(c);
     const rpm = sp?.rpm != null && Number.isFinite(sp.rpm) ? sp.rpm : null;
     const big = $("#tacho-rpm");
-    setText(big, rpm !== null ? fmtVal(rpm, 4) : WORDS[sp?.status] || "—");
+    setText(big, rpm !== null ? String(Math.round(rpm)) : WORDS[sp?.status] || "—");
     big.dataset.rpm = rpm ?? "";
     big.dataset.status = sp?.status ?? "";
     big.classList.toggle("abn", !!sp && sp.status !== "ok");
