@@ -21,7 +21,7 @@ import { isTacho, mountTacho } from "./speed.js";
 
 app.addEventListener("channels", () => {
   // a channel view opened before the list came, or of a channel that has gone: say so
-  const ch = channelRoute();
+  const ch = view && channelRoute(); // (none before init's first route)
   if (ch && ((view?.probe?.notFound?.()?.kind === "channel") !== !knownChannel(ch.id)
     || !!view?.probe?.waiting || !!view?.probe?.tacho !== tachoChannel(ch.id))) route();
   else renderSide();
@@ -184,6 +184,24 @@ function route() {
   renderSide();
 }
 
+/** Resolves when the first channel list is in, the service is found unreachable, or after
+ *  `ms`, whichever comes first. */
+function firstChannels(ms) {
+  if (store.channels.length) return Promise.resolve();
+  return new Promise((resolve) => {
+    const done = () => {
+      clearTimeout(timer);
+      app.removeEventListener("channels", done);
+      app.removeEventListener("conn", onConn);
+      resolve();
+    };
+    const onConn = (e) => e.detail.conn === "reconnecting" && done();
+    const timer = setTimeout(done, ms);
+    app.addEventListener("channels", done);
+    app.addEventListener("conn", onConn);
+  });
+}
+
 async function init() {
   await signIn(); // with tokens configured nothing is read before the service accepts one
   await loadStates(); // the state sets and their meanings (GET /api/v1/meta)
@@ -201,8 +219,16 @@ async function init() {
   // view chooses to show of itself (the channel view: its profile and the spectrum on screen)
   window.quaver = { live, store, Surface, view: null, version: 1 };
   window.addEventListener("hashchange", route);
-  route();
-  live.start();
+  if (channelRoute()) {
+    // a channel's page depends on its kind (a tacho has no spectrum to ask for), which
+    // comes with the channel list: ask for it first (a few seconds at most)
+    live.start();
+    await firstChannels(4000);
+    route();
+  } else {
+    route();
+    live.start();
+  }
   setInterval(() => app.dispatchEvent(new CustomEvent("tick")), 1000);
 }
 
