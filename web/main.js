@@ -215,20 +215,20 @@ async function init() {
       if (e.target.closest("[data-close]")) d.close();
     });
   }
-  // for people poking around in devtools (and the browser tests): `view` is what the open
-  // view chooses to show of itself (the channel view: its profile and the spectrum on screen)
-  window.quaver = { live, store, Surface, view: null, version: 1 };
-  window.addEventListener("hashchange", route);
-  if (channelRoute()) {
-    // a channel's page depends on its kind (a tacho has no spectrum to ask for), which
-    // comes with the channel list: ask for it first (a few seconds at most)
+  // A channel's page depends on its kind (a tacho has no spectrum to ask for), which comes
+  // with the channel list: for a channel link, ask for the list first (a few seconds at most).
+  const early = !!channelRoute();
+  if (early) {
     live.start();
     await firstChannels(4000);
-    route();
-  } else {
-    route();
-    live.start();
   }
+  // for people poking around in devtools (and the browser tests): `view` is what the open
+  // view chooses to show of itself (the channel view: its profile and the spectrum on screen);
+  // set once the first view is about to mount
+  window.quaver = { live, store, Surface, view: null, version: 1 };
+  window.addEventListener("hashchange", route);
+  route();
+  if (!early) live.start();
   setInterval(() => app.dispatchEvent(new CustomEvent("tick")), 1000);
 }
 
