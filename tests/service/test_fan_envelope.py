@@ -126,3 +126,30 @@ def test_the_healthy_fan_raises_nothing_while_the_speed_ramps() -> None:
     # healthy: the BPFO band holds the envelope of the broadband noise, about 0.002 g,
     # a tenth of the demo's alert level 0.02 g (demo.toml; demo values, not advice)
     assert max(bpfo[4:]) < 0.005
+
+
+@pytest.mark.slow
+def test_analyze_places_the_fans_bpfo_band_at_the_tachos_speed(tmp_path) -> None:
+    import json
+    from pathlib import Path
+
+    from tests.service.conftest import run_cli
+
+    model = VariableSpeedModel(fs=FS, ramp_s=120.0, fault_start_s=0.0, fault_ramp_s=30.0)
+    t0 = 40.0  # full severity, the speed rising ≈ 1050 → 1140 r/min over the 12 s
+    x = model.render(int(t0 * FS), int(12 * FS))
+    rec = tmp_path / "fan.csv"
+    np.savetxt(rec, x.T, delimiter=",", header=",".join(IDS), comments="", fmt="%.7g")
+    demo_toml = Path(__file__).parents[2] / "service" / "examples" / "demo.toml"
+    out = run_cli("analyze", str(rec), "--rate", str(FS), "-c", str(demo_toml),
+                  "--profile", "envelope-fan", "--json")
+    assert out.returncode == 0, out.stderr
+    fan, tacho = json.loads(out.stdout)["channels"]
+    sp = fan["speed"]
+    assert (sp["source"], sp["status"]) == ("tacho", "ok") and tacho["kind"] == "tacho"
+    assert 1050.0 < sp["rpm"] < 1140.0
+    b = next(b for b in fan["bands"] if b["name"] == "BPFO")
+    ob = 8 / 2 * (1 - 12.7 / 56.5)  # BPFO, n/2·(1 − d/D) (Randall & Antoni 2011)
+    assert (b["lo_hz"] + b["hi_hz"]) / 2 == pytest.approx(ob * sp["rpm"] / 60.0, rel=1e-6)
+    # the defect at full severity: far above the demo's alert 0.02 g (measured 0.117 g)
+    assert b["value"] > 0.05
