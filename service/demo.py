@@ -1,4 +1,5 @@
-"""The built-in demo: the invented pumping station of ``service/examples/demo.toml``, with
+"""The built-in demo: the invented pumping station of ``service/examples/demo.toml`` (with its
+variable-speed fan and tacho), with
 its published operator token and the optional framed TCP input for ``quaver feed``.
 
 Knows the config parser and the packaged examples only."""
@@ -29,8 +30,8 @@ def demo_config(
     and stretch the scripted bearing fault (plant seconds). ``feed_listen`` (HOST:PORT)
     adds the framed TCP input of ``examples/demo-feed.toml`` there, for ``quaver feed``
     (``quaver demo``: 127.0.0.1:8751 unless told otherwise; without it only HTTP is bound).
-    ``variable_speed`` adds the variable-speed fan with its tacho
-    (``examples/demo-varspeed.toml``; ``quaver demo --variable-speed``)."""
+    The variable-speed fan v1 with its tacho is part of the demo; ``variable_speed`` is
+    accepted for older callers and changes nothing (``quaver demo --variable-speed`` too)."""
     examples = resources.files("service").joinpath("examples")
     data = tomllib.loads(examples.joinpath("demo.toml").read_text(encoding="utf-8"))
     if feed_listen is not None:
@@ -39,10 +40,7 @@ def demo_config(
             s["listen"] = feed_listen
         for table in ("sources", "channels"):
             data[table] = [*data.get(table, []), *feed[table]]
-    if variable_speed:
-        fan = tomllib.loads(examples.joinpath("demo-varspeed.toml").read_text(encoding="utf-8"))
-        for table in ("sources", "channels", "machines", "bands"):
-            data[table] = [*data.get(table, []), *fan[table]]
+    del variable_speed  # the fan is always there now
     if listen is not None:
         data.setdefault("service", {})["listen"] = listen
     if data_dir is not None:

@@ -91,10 +91,10 @@ def defect_tones(orders: BearingOrders) -> list[ToneDef]:
 
 def _defects(cfg: Config, channel_id: str, profile: str) -> BearingOrders | None:
     """The bearing orders when ``profile`` is an envelope profile of a channel with a
-    bearing and a speed; else None."""
+    bearing and a speed (fixed, manual, estimated or from a tacho); else None."""
     if effective_analysis(cfg, channel_id, profile).kind != "envelope":
         return None
-    if channel_settings(cfg, channel_id).speed_rpm is None:
+    if not channel_settings(cfg, channel_id).speed_source:  # no speed to place them at
         return None
     return bearing_orders(cfg, channel_id)
 

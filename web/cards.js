@@ -11,6 +11,7 @@ import { Spark, SPARK_MS, overallLimits } from "./sparkline.js";
 import { ruleProfile } from "./alarms.js";
 import { chName, machineLabel } from "./names.js";
 import { alarmsFor, channelState, fetchWatched, history, overallRing, store } from "./shared.js";
+import { showSpeed } from "./speed.js";
 
 const SEEDS_AT_ONCE = 2; // trend requests in flight while cards come into view
 const seeded = new Set(); // channels whose sparkline got its stored ten minutes (this page)
@@ -193,6 +194,7 @@ export class Cards {
       if (al.length) notes.push(al.map((a) => `${a.kind === "overall" ? "overall" : a.name}${ruleProfile(a) ? ` (${ruleProfile(a)})` : ""} ${a.state}${a.acked ? " (ack)" : ""}`).join(", "));
       updateHTML(e.note, join(notes, " · "));
     }
+    showSpeed(e.el, c); // the running speed line; a tacho's card shows its speed instead
   }
 
   /** Sections in `ids` order, `show(id)` false ones hidden; each section's worst state and

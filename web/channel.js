@@ -17,6 +17,7 @@ import { TrendChart } from "./trend.js";
 import { alarmListHtml, eventItemHtml } from "./alarms.js";
 import { openFilter } from "./filterview.js";
 import { fetchLast, notLiveNote } from "./lastvalues.js";
+import { speedHtml, speedOf } from "./speed.js"; // the running speed line
 import { alarmsFor, app, bandsOf, channelState, fetchWatched, FRAME, levels, live, profileKey, store, tonesOf } from "./shared.js";
 
 const BEARING = /^(bpfo|bpfi|bsf|ftf)/i;
@@ -52,11 +53,22 @@ export function mount(root, id, { profile = "" } = {}) {
   // A message is this view's when it is of this channel and of the profile shown (a service
   // without profiles sends none: take it).
   const mine = (m) => m.channel === id && (m.profile === undefined || cur() === null || m.profile === cur());
+  /** The running speed now (null without one): the newest of /channels' and the frame's the
+   *  bands shown were placed at. */
+  const speedNow = () => {
+    const sp = speedOf(chan());
+    const b = st.bands;
+    return b?.speed && (b.timestamp_ns ?? 0) >= (sp?.t_ns ?? 0)
+      ? { ...(sp || {}), ...b.speed, t_ns: b.timestamp_ns } : sp;
+  };
+  /** 1X in Hz for the markers and orders: the speed now, else the configured one, else 0. */
+  const speedHz = () => (speedNow()?.rpm || chan()?.speed_rpm || 0) / 60;
   setHTML(root, html`
     <div class="ch-head">
       <h1 id="ch-id">${id}</h1><span class="ch-name" id="ch-name"></span><span class="desc" id="ch-desc"></span><span id="ch-badge"></span><span class="hint" id="ch-fault"></span>
       <div class="big"><span class="overall" id="ch-overall" data-role="overall">—</span><span class="unit" id="ch-unit"></span></div>
     </div>
+    <div class="speedline" id="ch-speed"></div>
     <dl class="facts" id="ch-facts"></dl>
     <p class="lastnote" id="ch-lastnote" role="status" hidden></p>
     <div class="toolbar profile-pick" id="profile-pick" hidden>
@@ -171,7 +183,7 @@ export function mount(root, id, { profile = "" } = {}) {
     plot.top = null;
     plot.setBands([]);
     plot.setServerPeaks(null);
-    plot.setMarkers({ speedHz: (chan()?.speed_rpm || 0) / 60, bearing: [] });
+    plot.setMarkers({ speedHz: speedHz(), bearing: [] });
     sg.clear();
     hist.reload();
     kgPanel.refresh();
@@ -418,6 +430,7 @@ export function mount(root, id, { profile = "" } = {}) {
     bandsAt = now;
     bars.setRows(named, m.unit);
     thirds.setRows(th, m.unit);
+    renderSpeed();
     $("#thirds-head").hidden = $("#thirds").hidden = !th.length; // e.g. a narrow profile has none
     setText($("#bands-unit"), `${unitLabel(m.unit, "rms")} · ticks: alert and danger levels`);
     fillTrendNames(named);
@@ -427,16 +440,16 @@ export function mount(root, id, { profile = "" } = {}) {
   function onTones(m, force = false) {
     if (!mine(m)) return;
     st.tones = m;
-    const speedHz = (chan()?.speed_rpm || 0) / 60;
+    const f1 = speedHz();
     // an envelope spectrum marks the defect frequencies, harmonics and BPFI's ±1X sidebands
-    const bearing = isEnvelope() ? defectMarkers(m.tones, speedHz)
+    const bearing = isEnvelope() ? defectMarkers(m.tones, f1)
       : (m.tones || []).filter((t) => BEARING.test(t.name)).map((t) => ({ name: t.name, f: t.frequency_hz }));
-    plot.setMarkers({ speedHz, bearing });
+    plot.setMarkers({ speedHz: f1, bearing });
     const now = performance.now();
     if (!force && now - tonesAt < TEXT_PERIOD_MS) return;
     tonesAt = now;
     plot.setServerPeaks(m); // with the table: a peak's label and its row show the same numbers
-    const sp = (chan()?.speed_rpm || 0) / 60;
+    const sp = speedHz();
     const ord = (f) => (sp > 0 && Number.isFinite(f) && f / sp < 100 ? `${(f / sp).toFixed(2)}X` : "");
     const tones = m.tones || [];
     const peaks = (m.peaks || []).slice(0, LISTED_PEAKS);
@@ -485,6 +498,11 @@ export function mount(root, id, { profile = "" } = {}) {
     setText($("#ch-unit"), L ? `${unitLabel(L.unit, "rms")} overall ${overallBand(L)}${P && !P.primary ? ` (${P.name})` : ""}` : "");
     renderProfiles();
     renderFacts();
+    renderSpeed();
+  }
+
+  function renderSpeed() {
+    updateHTML($("#ch-speed"), speedHtml(speedNow()));
   }
 
   /** "10–1000 Hz": the band an overall covers, from a frame summary or bands message. */
@@ -497,7 +515,8 @@ export function mount(root, id, { profile = "" } = {}) {
     const c = chan();
     const m = st.meta;
     const f = [];
-    if (c?.speed_rpm) f.push(["speed", `${fmtVal(c.speed_rpm, 4)} r/min · 1X ${fmtHz(c.speed_rpm / 60)}`]);
+    const rpm = speedHz() * 60;
+    if (rpm > 0) f.push(["speed", `${fmtVal(rpm, 4)} r/min · 1X ${fmtHz(rpm / 60)}`]);
     if (m) {
       f.push(["lines", `${m.lines} · Fmax ${fmtHzExact(m.fmax_hz)} · Δf ${fmtHzExact(m.df_hz)}`]);
       f.push(["window", `${m.window} · ENBW ${fmtVal(m.enbw_bins)} lines`]);
@@ -696,6 +715,7 @@ export function mount(root, id, { profile = "" } = {}) {
       bars: () => bars.rows.map((r) => ({ name: r.name, value: r.value, alert: r.alert, danger: r.danger, state: r.state, via: r.via })),
       labels: () => plot.labels.map((l) => ({ ...l })), // every text drawn on the spectrum, with its box
       notLive: () => $("#ch-lastnote").hidden ? "" : $("#ch-lastnote").textContent,
+      speed: () => speedNow(), // the running speed shown ({rpm, source, status, …} or null)
     },
     unmount() {
       alive = false;

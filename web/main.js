@@ -17,11 +17,13 @@ import { chName, chTitle, machineLabel } from "./names.js";
 import * as rulesView from "./rules.js";
 import { setupConsole } from "./console.js";
 import * as notFound from "./notfound.js";
+import { isTacho, mountTacho } from "./speed.js";
 
 app.addEventListener("channels", () => {
   // a channel view opened before the list came, or of a channel that has gone: say so
-  const ch = channelRoute();
-  if (ch && (view?.probe?.notFound?.()?.kind === "channel") !== !knownChannel(ch.id)) route();
+  const ch = view && channelRoute(); // (none before init's first route)
+  if (ch && ((view?.probe?.notFound?.()?.kind === "channel") !== !knownChannel(ch.id)
+    || !!view?.probe?.waiting || !!view?.probe?.tacho !== tachoChannel(ch.id))) route();
   else renderSide();
 });
 app.addEventListener("alarms", () => {
@@ -128,6 +130,11 @@ function knownChannel(id) {
   return !store.channels.length || store.channels.some((c) => c.id === id);
 }
 
+/** Whether `id` is a tacho channel (its page shows its speed, it has no spectrum). */
+function tachoChannel(id) {
+  return isTacho(store.channels.find((c) => c.id === id));
+}
+
 /** The plant view's hashes: none, `#`, `#/` (with or without a query). */
 function isPlant(hash) {
   return /^(#\/?)?(\?.*)?$/.test(hash);
@@ -141,9 +148,15 @@ function route() {
   let which = "plant";
   if (ch) {
     which = "channel";
-    view = knownChannel(ch.id)
-      ? channel.mount(main, ch.id, { profile: ch.profile })
-      : notFound.mountChannel(main, ch.id, store.channels.map((c) => c.id));
+    if (!store.channels.length) {
+      // which kind of channel it is comes with the list (a tacho has no spectrum to ask for)
+      setHTML(main, html`<p class="hint" id="ch-waiting">waiting for the service's channel list…</p>`);
+      view = { probe: { waiting: true } };
+    } else if (!knownChannel(ch.id)) {
+      view = notFound.mountChannel(main, ch.id, store.channels.map((c) => c.id));
+    } else {
+      view = tachoChannel(ch.id) ? mountTacho(main, ch.id) : channel.mount(main, ch.id, { profile: ch.profile });
+    }
   } else if (location.hash.startsWith("#/rules")) {
     which = "rules"; // the rules view (web/rules.js)
     view = rulesView.mount(main);
@@ -171,6 +184,24 @@ function route() {
   renderSide();
 }
 
+/** Resolves when the first channel list is in, the service is found unreachable, or after
+ *  `ms`, whichever comes first. */
+function firstChannels(ms) {
+  if (store.channels.length) return Promise.resolve();
+  return new Promise((resolve) => {
+    const done = () => {
+      clearTimeout(timer);
+      app.removeEventListener("channels", done);
+      app.removeEventListener("conn", onConn);
+      resolve();
+    };
+    const onConn = (e) => e.detail.conn === "reconnecting" && done();
+    const timer = setTimeout(done, ms);
+    app.addEventListener("channels", done);
+    app.addEventListener("conn", onConn);
+  });
+}
+
 async function init() {
   await signIn(); // with tokens configured nothing is read before the service accepts one
   await loadStates(); // the state sets and their meanings (GET /api/v1/meta)
@@ -184,12 +215,20 @@ async function init() {
       if (e.target.closest("[data-close]")) d.close();
     });
   }
+  // A channel's page depends on its kind (a tacho has no spectrum to ask for), which comes
+  // with the channel list: for a channel link, ask for the list first (a few seconds at most).
+  const early = !!channelRoute();
+  if (early) {
+    live.start();
+    await firstChannels(4000);
+  }
   // for people poking around in devtools (and the browser tests): `view` is what the open
-  // view chooses to show of itself (the channel view: its profile and the spectrum on screen)
+  // view chooses to show of itself (the channel view: its profile and the spectrum on screen);
+  // set once the first view is about to mount
   window.quaver = { live, store, Surface, view: null, version: 1 };
   window.addEventListener("hashchange", route);
   route();
-  live.start();
+  if (!early) live.start();
   setInterval(() => app.dispatchEvent(new CustomEvent("tick")), 1000);
 }
 

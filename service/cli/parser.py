@@ -108,8 +108,8 @@ def build_parser() -> argparse.ArgumentParser:
                    f"12800 Hz), for quaver feed (default {DEMO_FEED_LISTEN}, left out with a "
                    "note when that port is taken; 'none' leaves it out)")
     p.add_argument("--variable-speed", action="store_true",
-                   help="add the variable-speed fan v1 (900-1500 r/min ramps) with its tacho "
-                   "channel, whose order bands follow the measured speed")
+                   help="accepted and changes nothing: the variable-speed fan v1 with its "
+                   "tacho is part of the demo now")
     p.set_defaults(func=cmd_demo)
 
     p = sub.add_parser("serve", help="run the service from a config file",

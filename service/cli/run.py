@@ -78,10 +78,9 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
     feed_listen = _demo_feed_listen(args.feed_listen)
     try:
-        # the fan is asked for by name only, so the default demo stays as it was
-        fan = {"variable_speed": True} if args.variable_speed else {}
+        # --variable-speed is accepted and changes nothing: the fan v1 is in every demo
         cfg = demo_config(listen=args.listen, data_dir=args.data_dir, speed=args.speed,
-                              feed_listen=feed_listen, **fan)
+                          feed_listen=feed_listen)
         check_listen_allowed(cfg)
     except ConfigError as e:
         return _config_error(e)

@@ -471,9 +471,10 @@ class _Checker:
                 listed = ", ".join(map(repr, seen)) or "none"
                 self.add(f"channels[{j}].bearing: {c.bearing!r} is not a bearing "
                          f"(bearings: {listed})")
-            elif c.speed_rpm is None:
-                self.add(f"channels[{j}].bearing: channel {c.id!r} has no speed_rpm, so the "
-                         "bearing's defect frequencies cannot be placed")
+            elif not c.speed_source:
+                self.add(f"channels[{j}].bearing: channel {c.id!r} has no running speed "
+                         "(speed_rpm, speed_from or speed), so the bearing's defect "
+                         "frequencies cannot be placed")
 
     def notify(self) -> None:
         seen: dict[str, int] = {}

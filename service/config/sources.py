@@ -119,7 +119,8 @@ class SimulatedSourceConfig(_SourceBase):
     kind: Literal["simulated"] = described("Source kind.")
     scenario: Name = Field(
         "demo", description="Simulated plant scenario: 'demo' (service/sources/simulated.py) or "
-        "'variable-speed' (a fan ramping 900–1500 r/min with a tacho: "
+        "'variable-speed' (a fan ramping 900–1500 r/min with a tacho, its bearing growing "
+        "an outer-race defect from fault_start_s at 10240 Hz and above: "
         "service/sources/varspeed.py)."
     )
     speed: float = Field(

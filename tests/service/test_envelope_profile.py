@@ -96,7 +96,7 @@ def test_bearing_defect_bands_and_tones_are_orders_of_speed() -> None:
     ({"channels": [{"id": "a", "bearing": "nope", "speed_rpm": 1480.0}]},
      r"channels\[0\]\.bearing: 'nope' is not a bearing \(bearings: 'de'\)"),
     ({"channels": [{"id": "a", "bearing": "de"}]},
-     r"channels\[0\]\.bearing: channel 'a' has no speed_rpm"),
+     r"channels\[0\]\.bearing: channel 'a' has no running speed"),
     ({"bearings": [{"id": "de", "n_balls": 9, "ball_d": 60.0, "pitch_d": 52.5}]},
      r"bearings\[0\].*ball_d=60 must be smaller than pitch_d=52.5"),
     ({"bearings": [{"id": "de", "n_balls": 9, "ball_d": 11.9, "pitch_d": 52.5},

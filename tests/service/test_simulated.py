@@ -27,8 +27,15 @@ from service.sources.simulated import (
     g_peak_for_velocity,
     noise_sigma_for_velocity,
 )
+from service.sources.varspeed import (
+    FAN_V1_BEARING,
+    VARSPEED_CHANNELS,
+    VariableSpeedModel,
+    variable_speed_site,
+)
 
 G_N = 9.80665  # m/s², 3rd CGPM (1901)
+
 FS = 12800.0
 DEMO_TOML = Path(__file__).parents[2] / "service" / "examples" / "demo.toml"
 INFO = {c.id: c for c in DEMO_CHANNELS}
@@ -255,11 +262,21 @@ def test_model_rejects_bad_input_with_clear_messages() -> None:
 def test_demo_config_is_valid_and_matches_the_simulated_site() -> None:
     load_config(DEMO_TOML)  # the project's own validator accepts it (raises ConfigError if not)
     cfg = tomllib.loads(DEMO_TOML.read_text())
-    (src,) = cfg["sources"]
+    src, fan = cfg["sources"]
     assert (src["kind"], src["scenario"]) == ("simulated", "demo")
     assert src["channels"] == list(INFO)
     assert src["sample_rate_hz"] == 2.56 * cfg["analysis"]["fmax_hz"]  # trade convention
+    # the variable-speed fan v1 and its tacho: the model's channels, at the same rate
+    assert (fan["kind"], fan["scenario"]) == ("simulated", "variable-speed")
+    assert fan["channels"] == list(VARSPEED_CHANNELS)
+    assert fan["sample_rate_hz"] == src["sample_rate_hz"]
+    (bearing,) = [b for b in cfg["bearings"] if b["id"] == "fan-v1"]
+    assert (bearing["n_balls"], bearing["ball_d"], bearing["pitch_d"]) == (
+        FAN_V1_BEARING.n_elements, FAN_V1_BEARING.element_diameter_mm,
+        FAN_V1_BEARING.pitch_diameter_mm)
     for ch in cfg["channels"]:
+        if ch["id"] in VARSPEED_CHANNELS:
+            continue
         info = INFO[ch["id"]]
         assert (ch["machine"], ch["description"], ch["input_unit"]) == (
             info.machine, info.description, "g")
@@ -369,3 +386,52 @@ def test_source_rejects_bad_settings() -> None:
         SimulatedSource("s", model, block_s=1e-6)
     with pytest.raises(ValueError, match=r"queue_blocks=0 must be >= 1"):
         SimulatedSource("s", model, queue_blocks=0)
+
+
+# --- the variable-speed fan's bearing fault -------------------------------------------------
+
+def test_fan_strikes_come_at_bpfo_of_the_actual_shaft_speed() -> None:
+    m = VariableSpeedModel(fs=FS, ramp_s=20.0, fault_start_s=0.0, fault_ramp_s=1e-3,
+                           channels=["v1-fan-h"])
+    t0, n = 6.0, int(4.0 * FS)  # 4 s while the speed rises fast (≈ 1024 → 1200 r/min)
+    x = m.render(int(t0 * FS), n)[0].astype(np.float64)
+    # band-pass around the 2.6 kHz resonance and take the envelope (scipy.signal as the
+    # reference implementation of the Butterworth filter and the Hilbert transform)
+    sos = scipy.signal.butter(4, [2000.0, 3200.0], btype="bandpass", fs=FS, output="sos")
+    env = np.abs(scipy.signal.hilbert(scipy.signal.sosfiltfilt(sos, x)))
+    rpm_lo = float(m.rpm(t0))
+    bpfo_max = m.bpfo_order * float(m.rpm(t0 + 4.0)) / 60.0
+    peaks, _ = scipy.signal.find_peaks(env, distance=int(0.6 * FS / bpfo_max),
+                                       height=0.3 * env.max())
+    t_pk = t0 + peaks / FS
+    # BPFO = n/2·(1 − d/D) orders for contact angle 0 (Randall & Antoni 2011)
+    ob = 8 / 2 * (1 - 12.7 / 56.5)
+    assert m.bpfo_order == pytest.approx(ob)
+    want = 1.0 / (ob * m.rpm((t_pk[1:] + t_pk[:-1]) / 2) / 60.0)  # the spacing at that speed
+    rel = np.diff(t_pk) / want - 1.0
+    assert len(rel) > 150 and float(m.rpm(t0 + 4.0)) - rpm_lo > 170
+    # the strikes' 1 % slip jitter (simulated.py) spreads the spacing by √2 %: median within
+    # 0.5 %, all within 6 %; a strike rate fixed at the starting speed would be 17 % off
+    assert abs(np.median(rel)) < 0.005 and np.abs(rel).max() < 0.06, (np.median(rel), rel)
+
+
+def test_fan_fault_renders_in_any_chunks_and_grows_with_severity() -> None:
+    m = VariableSpeedModel(fs=FS, ramp_s=30.0, fault_start_s=2.0, fault_ramp_s=6.0)
+    whole = m.render(0, int(10 * FS))
+    parts = np.concatenate([m.render(k, 7919) for k in range(0, int(10 * FS), 7919)], axis=1)
+    np.testing.assert_array_equal(parts[:, : whole.shape[1]], whole)
+    healthy = VariableSpeedModel(fs=FS, ramp_s=30.0).render(0, int(10 * FS))
+    np.testing.assert_array_equal(healthy[:, : int(2 * FS)], whole[:, : int(2 * FS)])
+    np.testing.assert_array_equal(healthy[1], whole[1])  # the tacho is not touched
+    assert (m.fault_severity(1.0), m.fault_severity(5.0), m.fault_severity(9.0)) == (0.0, 0.5, 1.0)
+    late = whole[0, int(9 * FS):] - healthy[0, int(9 * FS):]
+    mid = whole[0, int(4.5 * FS): int(5.5 * FS)] - healthy[0, int(4.5 * FS): int(5.5 * FS)]
+    assert late.std() > 1.5 * mid.std() > 0
+
+
+def test_fan_fault_needs_the_rate_of_its_resonance() -> None:
+    with pytest.raises(ValueError, match=r"too low for the fan's bearing fault"):
+        VariableSpeedModel(fs=1280.0, fault_start_s=0.0)
+    # the scenario at a low rate (the speed tests' 1280 Hz) renders a healthy fan
+    assert variable_speed_site(fs=1280.0, fault_start_s=0.0).fault_start_s is None
+    assert variable_speed_site(fs=FS, fault_start_s=30.0).fault_start_s == 30.0

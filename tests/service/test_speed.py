@@ -227,9 +227,9 @@ def test_the_demo_with_the_variable_speed_fan():
     from service.demo import demo_config
     from service.lookups import bands_for
 
-    plain = demo_config()
-    cfg = demo_config(variable_speed=True)
-    assert [s.id for s in plain.sources] == ["tarn-hollow"]  # the demo as it was
+    cfg = demo_config()
+    # the fan is part of every demo; the old switch is accepted and changes nothing
+    assert demo_config(variable_speed=True) == cfg
     assert [s.id for s in cfg.sources] == ["tarn-hollow", "switch-room"]
     src = cfg.sources[1]
     assert (src.scenario, list(src.channels)) == ("variable-speed", list(IDS))
@@ -239,6 +239,12 @@ def test_the_demo_with_the_variable_speed_fan():
     blade = next(b for b in bands_for(cfg, "v1-fan-h") if b.name == "blade-pass")
     assert blade.basis == "order" and blade.lo < 7.0 < blade.hi
     assert bands_for(cfg, "v1-tacho") == []  # a tacho has no spectra
+    # its bearing's defect bands are orders, so they follow the tacho's speed: BPFO of 8
+    # balls of 12.7 mm on 56.5 mm, n/2·(1 − d/D) (Randall & Antoni 2011), ±3 %
+    bpfo = next(b for b in bands_for(cfg, "v1-fan-h", "envelope-fan") if b.name == "BPFO")
+    ob = 8 / 2 * (1 - 12.7 / 56.5)
+    assert bpfo.basis == "order"
+    assert (bpfo.lo, bpfo.hi) == (pytest.approx(0.97 * ob), pytest.approx(1.03 * ob))
 
 
 def test_runup_data_gives_order_amplitude_and_phase_per_speed_bin():

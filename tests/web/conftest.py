@@ -139,13 +139,15 @@ class Service:
             return False
 
     def wait_all_channels(self) -> list[dict[str, Any]]:
-        """Wait until every channel has a spectrum (so the page never meets a 503)."""
+        """Wait until every channel that has spectra has one (so the page never meets a
+        503), and return those channels. A tacho channel (``kind = "tacho"``) has none: it
+        is left out (its page shows its speed)."""
 
         def probe() -> list[dict[str, Any]] | None:
-            ch = self.get("channels")
+            ch = [c for c in self.get("channels") if c.get("kind") != "tacho"]
             return ch if ch and all(c["latest"] for c in ch) else None
 
-        return wait_for(probe, "a spectrum on every channel", START_TIMEOUT_S)
+        return wait_for(probe, "a spectrum on every channel that has spectra", START_TIMEOUT_S)
 
     def stop(self) -> None:
         p, self.proc = self.proc, None

@@ -188,8 +188,11 @@ def test_plant_view_offers_acknowledge_all_per_machine(
 ) -> None:
     pg, log = page
     open_view(pg, zoned.base_url + "/")
-    unacked = [a for a in zoned.get("alarms") if not a["acked"]]
-    assert unacked and {a["channel"].split("-")[0] for a in unacked} == {"p1"}
+    # the demo's faults: pump 1 and (its bearing, caught in the envelope) fan v1
+    every = [a for a in zoned.get("alarms") if not a["acked"]]
+    assert every and {a["channel"].split("-")[0] for a in every} <= {"p1", "v1"}
+    unacked = [a for a in every if a["channel"].startswith("p1-")]
+    assert unacked
     btn = ".machine[data-machine='p1'] [data-ack-machine]"
     wait_for(lambda: pg.query_selector(btn), "pump 1's Acknowledge-all button")
     assert pg.inner_text(btn) == f"Acknowledge all ({len(unacked)})"
@@ -239,9 +242,10 @@ def test_waveform_panel_and_names_on_the_channel_page(
 ) -> None:
     pg, log = page
     open_view(pg, zoned.base_url + "/#/channel/p2-de-h")
-    wait_for(lambda: pg.get_attribute("#wave-panel", "data-n"), "the waveform")
+    # 0.25 s at 12.8 kHz: the panel asks for it every refresh, and shows what the ring holds
+    # (after a gap, less: at 6× real time on a busy machine the demo's sources can overrun)
+    wait_for(lambda: pg.get_attribute("#wave-panel", "data-n") == "3200", "the waveform")
     assert pg.get_attribute("#wave-panel", "data-unit") == "g"
-    assert int(pg.get_attribute("#wave-panel", "data-n") or 0) == 3200  # 0.25 s at 12.8 kHz
     cap = pg.inner_text("#wave-cap")  # "3200 samples · 12800/s · from 22:44:48 +05:45"
     assert re.fullmatch(r"3200 samples · 12800/s · from (\d{4}-\d\d-\d\d )?\d\d:\d\d:\d\d \+05:45",
                         cap), cap
