@@ -19,6 +19,7 @@ from .base import ID_PATTERN, SHA256_PATTERN, ConfigError
 from .checks import _cross_check, notify_env_problems
 from .models import MODELS, Config
 from .mqtt import mqtt_problems
+from .opcua import anchor_opcua_paths, opcua_problems
 from .salvage import salvage
 from .sources import SOURCE_KINDS, FileSourceConfig
 
@@ -89,6 +90,10 @@ def parse_config(
         for s in cfg.sources:
             if isinstance(s, FileSourceConfig):
                 s.path = str(base_dir / s.path)
+        anchor_opcua_paths(cfg.opcua, base_dir)
+    problems = opcua_problems(cfg)  # after the paths are anchored: it looks for the files
+    if problems:
+        raise ConfigError(problems, source=source)
     return cfg
 
 
