@@ -75,7 +75,8 @@ def parse_config(
         if salvaged is not None:
             problems += [p for p in _cross_check(*salvaged) if p not in problems]
         raise ConfigError(problems, source=source) from None
-    problems = _cross_check(cfg) + notify_env_problems(cfg, env) + mqtt_problems(cfg, env)
+    problems = (_cross_check(cfg) + notify_env_problems(cfg, env) + mqtt_problems(cfg, env)
+                + opcua_problems(cfg, base_dir))
     if problems:
         raise ConfigError(problems, source=source)
     if base_dir is not None:
@@ -91,9 +92,6 @@ def parse_config(
             if isinstance(s, FileSourceConfig):
                 s.path = str(base_dir / s.path)
         anchor_opcua_paths(cfg.opcua, base_dir)
-    problems = opcua_problems(cfg)  # after the paths are anchored: it looks for the files
-    if problems:
-        raise ConfigError(problems, source=source)
     return cfg
 
 

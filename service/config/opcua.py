@@ -131,9 +131,10 @@ def anchor_opcua_paths(o: OpcuaConfig, base_dir: Path) -> None:
         o.private_key = str(base_dir / o.private_key)
 
 
-def opcua_problems(cfg: Config) -> list[str]:
+def opcua_problems(cfg: Config, base_dir: Path | None = None) -> list[str]:
     """What ``[opcua]`` cannot see alone: an endpoint beyond loopback without ``[[tokens]]``
-    (anyone could read), certificate or key files that do not exist."""
+    (anyone could read), certificate or key files that do not exist (relative paths from
+    ``base_dir``, the config file's folder)."""
     o = cfg.opcua
     if not o.enabled:
         return []
@@ -145,6 +146,6 @@ def opcua_problems(cfg: Config) -> list[str]:
                    "beyond this machine")
     for key in ("certificate", "private_key"):
         path = getattr(o, key)
-        if path is not None and not Path(path).is_file():
+        if path is not None and not (base_dir or Path()).joinpath(path).is_file():
             out.append(f"opcua.{key}: {path!r} is not a file")
     return out
