@@ -30,7 +30,7 @@ CALLER: contextvars.ContextVar[Principal | None] = contextvars.ContextVar(
 
 
 @dataclass
-class QuaverUser(User):
+class QuaverUser(User):  # type: ignore[misc]
     """An asyncua user carrying our principal (role viewer, operator or admin)."""
 
     principal: Principal | None = None
@@ -60,7 +60,7 @@ class TokenUsers:
         return QuaverUser(role=UserRole.User, name=who.name, principal=who)
 
 
-class QuaverRuleset(SimpleRoleRuleset):
+class QuaverRuleset(SimpleRoleRuleset):  # type: ignore[misc]
     """asyncua's role ruleset (users may read, browse, subscribe and call), which also notes
     the caller of every request for the method handlers (:data:`CALLER`)."""
 
