@@ -9,6 +9,7 @@ an optional extra)."""
 from __future__ import annotations
 
 import asyncio
+import functools
 import logging
 import math
 import os
@@ -64,6 +65,7 @@ def _dt(t_ns: int) -> datetime:
     return datetime.fromtimestamp(t_ns // 1000 / 1e6, UTC)
 
 
+@functools.cache
 def _code(name: str) -> ua.StatusCode:
     return ua.StatusCode(getattr(ua.StatusCodes, name))
 
@@ -84,6 +86,8 @@ class OpcuaServer:
         self._alarm_nodes: set[str] = set()
         self._last_alarm_refresh = 0.0
         self._events: Any = None  # asyncua EventGenerator
+        self._nids: dict[str, ua.NodeId] = {}
+        self._spectrum_props: dict[str, tuple[float, float, str, str]] = {}
 
     # -- start and stop -------------------------------------------------------------------
     async def start(self) -> None:
@@ -290,11 +294,13 @@ class OpcuaServer:
     # -- writing values -------------------------------------------------------------------
     async def _put(self, path: str, value: Any, vtype: ua.VariantType, code: str,
                    src: datetime, now: datetime) -> None:
-        dv = ua.DataValue(ua.Variant(value if not code.startswith("Bad") else None, vtype
-                                     if not code.startswith("Bad") else ua.VariantType.Null),
+        nid = self._nids.get(path)
+        if nid is None:
+            nid = self._nids[path] = self.nid(path)
+        bad = code.startswith("Bad")
+        dv = ua.DataValue(ua.Variant(None if bad else value, ua.VariantType.Null if bad else vtype),
                           StatusCode=_code(code), SourceTimestamp=src, ServerTimestamp=now)
-        r = await self.server.iserver.aspace.write_attribute_value(
-            self.nid(path), ua.AttributeIds.Value, dv)
+        r = await self.server.iserver.aspace.write_attribute_value(nid, ua.AttributeIds.Value, dv)
         if not r.is_good():
             self.stats.errors += 1
             self.stats.last_error = f"{path}: {r.name}"
@@ -305,23 +311,27 @@ class OpcuaServer:
         st = self.host.hub.channels[f.channel]
         src, now = _dt(f.t_ns), datetime.now(UTC)
         D = ua.VariantType.Double
-        await self._put(p.overall(), float(f.overall), D,
-                        value_code(st.status, f.quality, f.overall), src, now)
+        status, q = st.status, f.quality
+        await self._put(p.overall(), float(f.overall), D, value_code(status, q, f.overall),
+                        src, now)
         for b in f.bands:
-            await self._put(p.band(b.name), float(b.value), D,
-                            value_code(st.status, f.quality, b.value), src, now)
+            await self._put(p.band(b.name), float(b.value), D, value_code(status, q, b.value),
+                            src, now)
         for t in f.tones:
-            await self._put(p.tone(t.name), float(t.value), D,
-                            value_code(st.status, f.quality, t.value), src, now)
+            await self._put(p.tone(t.name), float(t.value), D, value_code(status, q, t.value),
+                            src, now)
         if self.cfg.spectra:
             values, unit, amp = spectrum_values(f)
             sp = p.spectrum()
-            code = value_code(st.status, f.quality, 0.0)
-            await self._put(sp, values.tolist(), ua.VariantType.Float, code, src, now)
-            for name, v, vt in (("df_hz", f.df_hz, D), ("f0_hz", f.f0_hz, D),
-                                ("unit", unit, ua.VariantType.String),
-                                ("amplitude", amp, ua.VariantType.String)):
-                await self._put(f"{sp}/{name}", v, vt, "Good", src, now)
+            await self._put(sp, values.tolist(), ua.VariantType.Float,
+                            value_code(status, q, 0.0), src, now)
+            props = (f.df_hz, f.f0_hz, unit, amp)
+            if self._spectrum_props.get(sp) != props:  # they change only with the set-up
+                self._spectrum_props[sp] = props
+                for name, v, vt in (("df_hz", f.df_hz, D), ("f0_hz", f.f0_hz, D),
+                                    ("unit", unit, ua.VariantType.String),
+                                    ("amplitude", amp, ua.VariantType.String)):
+                    await self._put(f"{sp}/{name}", v, vt, "Good", src, now)
         self.stats.frames += 1
 
     async def _write_state(self, ch: ChannelLayout, t_ns: int) -> None:
@@ -426,6 +436,9 @@ class OpcuaServer:
                 elif item is not None:
                     await self._refresh_alarms({str(item["rule"])})
                     await self._announce(item)
+                # the hub hands pending items over without waiting, and asyncua's writes do
+                # not wait either: yield, so the analysis, alarms and HTTP run between frames
+                await asyncio.sleep(0)
                 now = time.monotonic()
                 if now - last_tick >= TICK_S:
                     last_tick = now
