@@ -96,6 +96,13 @@ class OpcuaConfig(StrictModel):
         description="Publish each profile's spectrum as a Float array (the largest part of "
         "the server's work: turn off when clients read band values only).",
     )
+    max_loop_share: float = Field(
+        0.25, ge=0.05, le=1.0,
+        description="Largest share of the event loop's time the server may take writing "
+        "values (0.05…1): beyond it, it waits and each channel skips to its newest frame, so "
+        "the analysis, alarms and HTTP never wait for OPC UA; /health counts the skipped "
+        "frames (dropped).",
+    )
     alarm_refresh_s: float = Field(
         1.0, ge=0.1, le=60,
         description="How often every alarm's value is written to the Alarms folder, s "

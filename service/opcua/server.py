@@ -43,6 +43,7 @@ from .layout import (
 
 log = logging.getLogger("quaver.opcua")
 NS = 1_000_000_000
+REST_MIN_S = 0.005  # rests shorter than this are gathered (timer overhead; our choice)
 TICK_S = 0.25  # channel states are compared with what was published this often (our choice)
 EVENT_TYPE = "types/AlarmEventType"
 # event fields of our AlarmEventType beyond BaseEventType's: (name, variant type)
@@ -420,11 +421,13 @@ class OpcuaServer:
         sub = self._sub
         profiles = {(p.channel, p.profile): p for ch in self.layout for p in ch.profiles}
         last_tick = time.monotonic()
+        rest = 0.0  # s owed to the rest of the loop (max_loop_share)
         while True:
             try:
                 item = await sub.get(timeout=TICK_S)
             except TimeoutError:
                 item = None
+            t0 = time.perf_counter()
             try:
                 if isinstance(item, SpectralFrame):
                     p = profiles.get((item.channel, item.profile))
@@ -436,9 +439,16 @@ class OpcuaServer:
                 elif item is not None:
                     await self._refresh_alarms({str(item["rule"])})
                     await self._announce(item)
-                # the hub hands pending items over without waiting, and asyncua's writes do
-                # not wait either: yield, so the analysis, alarms and HTTP run between frames
-                await asyncio.sleep(0)
+                # The hub hands pending items over without waiting and asyncua's writes do not
+                # wait either: yield after each, and rest in proportion to the time it took,
+                # so that writing takes at most max_loop_share of the loop (the hub keeps the
+                # newest frame of each channel meanwhile: drop to newest, counted).
+                rest += (time.perf_counter() - t0) * (1.0 / self.cfg.max_loop_share - 1.0)
+                if rest >= REST_MIN_S:
+                    await asyncio.sleep(rest)
+                    rest = 0.0
+                else:
+                    await asyncio.sleep(0)
                 now = time.monotonic()
                 if now - last_tick >= TICK_S:
                     last_tick = now
