@@ -26,6 +26,7 @@ from .target import run_service
 __all__ = ["OpcuaClient", "main", "run"]
 
 WARMUP_S = 3.0
+READY_S = 180.0  # the longest wait for the address space to be built
 NS_URI = "urn:quaver:bench"
 
 
@@ -108,6 +109,12 @@ def run(channels: int = 256, seconds: float = 20.0, workdir: Path | None = None
                 "site": "bench", "spectra": mode == "on"}}
             _say(f"opcua {mode}: a service with {n_src * plan.per_source} channels")
             with run_service(workdir / mode, analysis, sources, extra=extra) as svc:
+                t0 = time.monotonic()
+                while mode != "off" and time.monotonic() - t0 < READY_S:
+                    if (svc.get("health").get("opcua") or {}).get("state") == "running":
+                        break  # the plant's nodes are all there
+                    time.sleep(0.5)
+                report.setdefault("address_space_s", {})[mode] = round(time.monotonic() - t0, 1)
                 feeder = Feeder(svc.ports, ids, plan.per_source, plan.fs_hz, plan.block,
                                 time.time_ns())
                 try:

@@ -132,6 +132,8 @@ class Service:
             self.notifier.start()
         if self.mqtt is not None:  # before the sources: it sees every frame and event
             await self.mqtt.start(self.store.store_id)
+        if self.opcua is not None:  # like a source's port: an endpoint it cannot bind fails;
+            await self.opcua.start()  # before the sources: asyncua's set-up holds the loop ~2 s
         for p in self.pipelines:
             await p.source.start()
         self.started_mono = time.monotonic()
@@ -140,8 +142,6 @@ class Service:
         for p in self.pipelines:
             self.tasks.append(asyncio.create_task(self._run(p), name=f"pipeline-{p.source.id}"))
         self.tasks.append(asyncio.create_task(self._watch(), name="quality-watch"))
-        if self.opcua is not None:  # like a source's port: an endpoint it cannot serve fails
-            await self.opcua.start()
 
     async def _run(self, p: SourcePipeline) -> None:
         await run_supervised(self, p)

@@ -85,11 +85,20 @@ class OpcuaPublisher:
         self.state = "stopped"
 
     def health(self) -> dict[str, Any]:
+        """``state``: starting (listening; the plant's nodes are being added), running,
+        failed (``last_error`` says why) or stopped; ``ok`` unless failed."""
         o = self.host.cfg.opcua
         s = self.stats
+        state = self.state
+        if state == "running" and self._server is not None:
+            if self._server.failed:
+                state = "failed"
+                s.last_error = self._server.failed
+            elif not self._server.ready:
+                state = "starting"
         return {
-            "ok": self.state == "running",
-            "state": self.state,
+            "ok": state in ("starting", "running"),
+            "state": state,
             "endpoint": o.endpoint,
             "namespace": f"urn:quaver:{o.site}",
             "security": o.security_policy if o.security_policy == "None"

@@ -43,7 +43,10 @@ from .layout import (
 
 log = logging.getLogger("quaver.opcua")
 NS = 1_000_000_000
+ADD_CHUNK = 500  # nodes added between two yields to the loop while building (our choice)
+YIELD_EVERY = 32  # channels or alarms written between two yields in a state or alarm pass
 REST_MIN_S = 0.005  # rests shorter than this are gathered (timer overhead; our choice)
+REST_MAX_S = 0.25  # the longest rest after one pass (our choice)
 TICK_S = 0.25  # channel states are compared with what was published this often (our choice)
 EVENT_TYPE = "types/AlarmEventType"
 # event fields of our AlarmEventType beyond BaseEventType's: (name, variant type)
@@ -87,6 +90,8 @@ class OpcuaServer:
         self._alarm_nodes: set[str] = set()
         self._last_alarm_refresh = 0.0
         self._events: Any = None  # asyncua EventGenerator
+        self.ready = False  # every node built and the hub subscribed
+        self.failed = ""  # why building the address space failed
         self._nids: dict[str, ua.NodeId] = {}
         self._spectrum_props: dict[str, tuple[float, float, str, str]] = {}
 
@@ -111,12 +116,26 @@ class OpcuaServer:
         s.set_identity_tokens([ua.UserNameIdentityToken] if self.host.cfg.tokens
                               else [ua.AnonymousIdentityToken])
         self.idx = await s.register_namespace(namespace_uri(self.host.cfg))
-        await self._build()
-        await s.start()
-        self._sub = Subscriber(None, max_events=4096, profiles=frozenset({"*"}))
-        self.host.hub.subscribers.add(self._sub)
-        await self._write_all_states(time.time_ns())
-        self._task = asyncio.create_task(self._run(), name="opcua-publisher")
+        await self._build_fixed()
+        await s.start()  # the endpoint's port is bound here: a taken one fails the start-up
+        self._task = asyncio.create_task(self._populate_and_run(), name="opcua-publisher")
+
+    async def _populate_and_run(self) -> None:
+        """The plant's nodes (in chunks: the loop keeps serving the sources and HTTP), then
+        the hub subscription and the loop. ``ready`` is set once clients see every node."""
+        try:
+            await self._build_plant()
+            self._sub = Subscriber(None, max_events=4096, profiles=frozenset({"*"}))
+            self.host.hub.subscribers.add(self._sub)
+            await self._write_all_states(time.time_ns())
+            self.ready = True
+            log.info("OPC UA address space ready: %d channels, %d alarm rules",
+                     len(self.layout), len(self._alarm_nodes))
+        except Exception as e:
+            self.failed = f"{type(e).__name__}: {e}"[:300]
+            log.exception("OPC UA address space not built")
+            raise
+        await self._run()
 
     async def stop(self) -> None:
         if self._sub is not None:
@@ -148,13 +167,34 @@ class OpcuaServer:
     def nid(self, path: str) -> ua.NodeId:
         return ua.NodeId(path, self.idx)
 
-    async def _build(self) -> None:
+    async def _build_fixed(self) -> None:
+        """The folders, the Acknowledge method and the event type (before the server
+        listens)."""
         idx = self.idx
         objects = self.server.nodes.objects
+        self._add([self._object("machines", "Machines", objects.nodeid, folder=True),
+                   self._object("alarms", "Alarms", objects.nodeid, folder=True)])
+        alarms = self.server.get_node(self.nid("alarms"))
+        await alarms.add_method(
+            self.nid("alarms/Acknowledge"), ua.QualifiedName("Acknowledge", idx), self._ack,
+            [_arg("RuleId", ua.ObjectIds.String, "rule id, as in GET /api/v1/alarms"),
+             _arg("Note", ua.ObjectIds.String, "why, for the event log (may be empty)")],
+            [_arg("State", ua.ObjectIds.String, "the alarm's state after the acknowledgement")],
+        )
+        etype = await self.server.get_node(ua.ObjectIds.BaseEventType).add_object_type(
+            self.nid(EVENT_TYPE), ua.QualifiedName("AlarmEventType", idx))
+        for name, vt in EVENT_FIELDS:
+            vtype = getattr(ua.VariantType, vt)
+            await etype.add_property(self.nid(f"{EVENT_TYPE}/{name}"),
+                                     ua.QualifiedName(name, idx), ua.get_default_value(vtype),
+                                     varianttype=vtype)
+        self._events = await self.server.get_event_generator(etype, ua.ObjectIds.Server)
+
+    async def _build_plant(self) -> None:
+        """Machines → channels → profiles → values, and the alarm rules."""
         self.layout = plan(self.host.cfg, self.host.hub.channels)
         items: list[ua.AddNodesItem] = []
         machines_names = {m.id: m.name or m.id for m in self.host.cfg.machines}
-        items.append(self._object("machines", "Machines", objects.nodeid, folder=True))
         seen_machines: set[str] = set()
         for ch in self.layout:
             st = self.host.hub.channels[ch.id]
@@ -162,6 +202,10 @@ class OpcuaServer:
                 seen_machines.add(ch.machine)
                 name = machines_names.get(st.machine, st.machine) or "(no machine)"
                 items.append(self._object(ch.machine, name, self.nid("machines"), organizes=True))
+            if len(items) >= ADD_CHUNK:  # a channel at a time; the loop serves in between
+                self._add(items)
+                items = []
+                await asyncio.sleep(0)
             items.append(self._object(ch.path, ch.id, self.nid(ch.machine),
                                       description=ch.description))
             S = ua.VariantType.String
@@ -189,27 +233,12 @@ class OpcuaServer:
                                     ("unit", ua.Variant(p.unit, ua.VariantType.String)),
                                     ("amplitude", ua.Variant("", ua.VariantType.String))):
                         items.append(self._var(sp, name, v, prop=True))
-        items.append(self._object("alarms", "Alarms", objects.nodeid, folder=True))
         self._add(items)
         await self._add_alarm_rules(self.host.alarms.views())
-        alarms = self.server.get_node(self.nid("alarms"))
-        await alarms.add_method(
-            self.nid("alarms/Acknowledge"), ua.QualifiedName("Acknowledge", idx), self._ack,
-            [_arg("RuleId", ua.ObjectIds.String, "rule id, as in GET /api/v1/alarms"),
-             _arg("Note", ua.ObjectIds.String, "why, for the event log (may be empty)")],
-            [_arg("State", ua.ObjectIds.String, "the alarm's state after the acknowledgement")],
-        )
-        etype = await self.server.get_node(ua.ObjectIds.BaseEventType).add_object_type(
-            self.nid(EVENT_TYPE), ua.QualifiedName("AlarmEventType", idx))
-        for name, vt in EVENT_FIELDS:
-            vtype = getattr(ua.VariantType, vt)
-            await etype.add_property(self.nid(f"{EVENT_TYPE}/{name}"),
-                                     ua.QualifiedName(name, idx), ua.get_default_value(vtype),
-                                     varianttype=vtype)
-        self._events = await self.server.get_event_generator(etype, ua.ObjectIds.Server)
 
     def _add(self, items: list[ua.AddNodesItem]) -> None:
-        # in one call on the server's own session: thousands of nodes in well under a second
+        # straight to the node management service (asyncua's Node helpers make a request per
+        # node); ~20 000 nodes of a 256-channel plant take seconds, so callers add in chunks
         for r in self.server.iserver.node_mgt_service.add_nodes(items):
             r.StatusCode.check()
 
@@ -289,6 +318,10 @@ class OpcuaServer:
             for name, vt in ALARM_VARS:
                 vtype = getattr(ua.VariantType, vt)
                 items.append(self._var(base, name, ua.Variant(ua.get_default_value(vtype), vtype)))
+            if len(items) >= ADD_CHUNK:
+                self._add(items)
+                items = []
+                await asyncio.sleep(0)
         if items:
             self._add(items)
 
@@ -360,24 +393,32 @@ class OpcuaServer:
         return any(self.host.hub.frame(ch.id, p.profile) is not None for p in ch.profiles)
 
     async def _write_all_states(self, t_ns: int) -> None:
-        for ch in self.layout:
+        for k, ch in enumerate(self.layout):
             await self._write_state(ch, t_ns)
+            if k % YIELD_EVERY == YIELD_EVERY - 1:
+                await asyncio.sleep(0)
 
     async def _check_states(self) -> None:
         """Write the state of every channel whose state changed since it was written (the
         hub's status events say so too, but the first spectrum after the start is none)."""
         chans = self.host.hub.channels
+        written = 0
         for ch in self.layout:
             if chans[ch.id].status != self._published.get(ch.id):
                 await self._write_state(ch, time.time_ns())
+                written += 1
+                if written % YIELD_EVERY == 0:
+                    await asyncio.sleep(0)
 
     async def _refresh_alarms(self, rules: set[str] | None = None) -> None:
         views = self.host.alarms.views()
         await self._add_alarm_rules(views)
         now = datetime.now(UTC)
-        for v in views:
+        for k, v in enumerate(views):
             if rules is not None and v.rule not in rules:
                 continue
+            if k % YIELD_EVERY == YIELD_EVERY - 1:
+                await asyncio.sleep(0)
             row = {"state": v.state.value, "value": v.value, "alert": v.alert, "danger": v.danger,
                    "acknowledged": v.acked, "latched": v.latched, "shelved": v.shelved,
                    "channel": v.channel, "unit": v.unit}
@@ -445,7 +486,9 @@ class OpcuaServer:
                 # newest frame of each channel meanwhile: drop to newest, counted).
                 rest += (time.perf_counter() - t0) * (1.0 / self.cfg.max_loop_share - 1.0)
                 if rest >= REST_MIN_S:
-                    await asyncio.sleep(rest)
+                    # one long pass (a plant-wide state change) is not repaid for seconds:
+                    # at most REST_MAX_S, and frames keep flowing
+                    await asyncio.sleep(min(rest, REST_MAX_S))
                     rest = 0.0
                 else:
                     await asyncio.sleep(0)

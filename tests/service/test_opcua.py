@@ -149,6 +149,7 @@ class Producer:
 def svc(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[RunningService, int]]:
     (port,) = free_ports(1)
     with run_service(service_doc(port), tmp_path_factory.mktemp("opcua")) as s:
+        s.wait(lambda: s.health()["opcua"]["state"] == "running", "the OPC UA address space")
         yield s, port
 
 
@@ -392,6 +393,7 @@ def test_sign_and_encrypt_with_the_generated_certificate(tmp_path: Path) -> None
     (port,) = free_ports(1)
     doc = service_doc(port, security_policy="Basic256Sha256", security_mode="SignAndEncrypt")
     with run_service(doc, tmp_path / "svc") as s:
+        s.wait(lambda: s.health()["opcua"]["state"] == "running", "the OPC UA address space")
         assert s.config_path is not None
         data_dir = s.config_path.parent / tomllib.loads(s.config_path.read_text())["service"][
             "data_dir"]
