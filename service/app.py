@@ -142,6 +142,8 @@ class Service:
         for p in self.pipelines:
             self.tasks.append(asyncio.create_task(self._run(p), name=f"pipeline-{p.source.id}"))
         self.tasks.append(asyncio.create_task(self._watch(), name="quality-watch"))
+        if self.opcua is not None:
+            self.opcua.begin()
 
     async def _run(self, p: SourcePipeline) -> None:
         await run_supervised(self, p)

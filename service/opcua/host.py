@@ -50,8 +50,9 @@ class PublisherStats:
 
 
 class OpcuaPublisher:
-    """The ``[opcua]`` server of a service: :meth:`start` (imports asyncua, builds the
-    address space, listens), :meth:`stop`, :meth:`health`."""
+    """The ``[opcua]`` server of a service: :meth:`start` (imports asyncua, listens),
+    :meth:`begin` (the plant's nodes and the publishing, in the background), :meth:`stop`,
+    :meth:`health`."""
 
     def __init__(self, host: OpcuaHost) -> None:
         self.host = host
@@ -78,6 +79,12 @@ class OpcuaPublisher:
         self.state = "running"
         log.info("OPC UA server at %s (namespace %s)", self.host.cfg.opcua.endpoint,
                  f"urn:quaver:{self.host.cfg.opcua.site}")
+
+    def begin(self) -> None:
+        """Add the plant's nodes and start publishing, in the background (call once the
+        sources run; /health says ``starting`` until every node is there)."""
+        if self._server is not None and self.state == "running":
+            self._server.begin()
 
     async def stop(self) -> None:
         if self._server is not None and self.state == "running":

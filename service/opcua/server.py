@@ -43,8 +43,8 @@ from .layout import (
 
 log = logging.getLogger("quaver.opcua")
 NS = 1_000_000_000
-ADD_CHUNK = 500  # nodes added between two yields to the loop while building (our choice)
-YIELD_EVERY = 32  # channels or alarms written between two yields in a state or alarm pass
+ADD_CHUNK = 100  # nodes added between two yields to the loop while building (our choice)
+YIELD_EVERY = 32  # channels whose first state is written between two yields while building
 REST_MIN_S = 0.005  # rests shorter than this are gathered (timer overhead; our choice)
 REST_MAX_S = 0.25  # the longest rest after one pass (our choice)
 TICK_S = 0.25  # channel states are compared with what was published this often (our choice)
@@ -78,6 +78,9 @@ class OpcuaServer:
     """One asyncua server over a running service (``host``); see the package docstring."""
 
     def __init__(self, host: OpcuaHost, stats: PublisherStats) -> None:
+        # asyncua logs each node it loads and each request at INFO: thousands of lines at
+        # start and a line per read in the service's log; its warnings and errors stay
+        logging.getLogger("asyncua").setLevel(logging.WARNING)
         self.host, self.stats = host, stats
         self.cfg = host.cfg.opcua
         self.server = Server(user_manager=TokenUsers(lambda: self.host.cfg.tokens))
@@ -118,6 +121,10 @@ class OpcuaServer:
         self.idx = await s.register_namespace(namespace_uri(self.host.cfg))
         await self._build_fixed()
         await s.start()  # the endpoint's port is bound here: a taken one fails the start-up
+
+    def begin(self) -> None:
+        """Build the plant's nodes and publish, on a task of its own (after the sources
+        started: the build takes seconds of loop time for a large plant)."""
         self._task = asyncio.create_task(self._populate_and_run(), name="opcua-publisher")
 
     async def _populate_and_run(self) -> None:
@@ -128,6 +135,8 @@ class OpcuaServer:
             self._sub = Subscriber(None, max_events=4096, profiles=frozenset({"*"}))
             self.host.hub.subscribers.add(self._sub)
             await self._write_all_states(time.time_ns())
+            await self._refresh_alarms()
+            self._last_alarm_refresh = time.monotonic()
             self.ready = True
             log.info("OPC UA address space ready: %d channels, %d alarm rules",
                      len(self.layout), len(self._alarm_nodes))
@@ -402,23 +411,17 @@ class OpcuaServer:
         """Write the state of every channel whose state changed since it was written (the
         hub's status events say so too, but the first spectrum after the start is none)."""
         chans = self.host.hub.channels
-        written = 0
         for ch in self.layout:
             if chans[ch.id].status != self._published.get(ch.id):
                 await self._write_state(ch, time.time_ns())
-                written += 1
-                if written % YIELD_EVERY == 0:
-                    await asyncio.sleep(0)
 
     async def _refresh_alarms(self, rules: set[str] | None = None) -> None:
         views = self.host.alarms.views()
         await self._add_alarm_rules(views)
         now = datetime.now(UTC)
-        for k, v in enumerate(views):
+        for v in views:
             if rules is not None and v.rule not in rules:
                 continue
-            if k % YIELD_EVERY == YIELD_EVERY - 1:
-                await asyncio.sleep(0)
             row = {"state": v.state.value, "value": v.value, "alert": v.alert, "danger": v.danger,
                    "acknowledged": v.acked, "latched": v.latched, "shelved": v.shelved,
                    "channel": v.channel, "unit": v.unit}
@@ -481,7 +484,8 @@ class OpcuaServer:
                     await self._refresh_alarms({str(item["rule"])})
                     await self._announce(item)
                 # The hub hands pending items over without waiting and asyncua's writes do not
-                # wait either: yield after each, and rest in proportion to the time it took,
+                # wait either (so the time measured is ours alone): yield after each item,
+                # and rest in proportion to the time it took,
                 # so that writing takes at most max_loop_share of the loop (the hub keeps the
                 # newest frame of each channel meanwhile: drop to newest, counted).
                 rest += (time.perf_counter() - t0) * (1.0 / self.cfg.max_loop_share - 1.0)
