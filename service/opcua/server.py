@@ -45,6 +45,7 @@ log = logging.getLogger("quaver.opcua")
 NS = 1_000_000_000
 ADD_CHUNK = 100  # nodes added between two yields to the loop while building (our choice)
 YIELD_EVERY = 32  # channels whose first state is written between two yields while building
+SLICE_S = 0.005  # the longest run of writes before the loop gets its turn (our choice)
 REST_MIN_S = 0.005  # rests shorter than this are gathered (timer overhead; our choice)
 REST_MAX_S = 0.25  # the longest rest after one pass (our choice)
 TICK_S = 0.25  # channel states are compared with what was published this often (our choice)
@@ -468,41 +469,30 @@ class OpcuaServer:
 
     # -- the loop -------------------------------------------------------------------------
     async def _run(self) -> None:
+        """Take the hub's items and write them, a slice of work at a time.
+
+        The hub hands pending items over without waiting and asyncua's writes do not wait
+        either, so a slice's time (the loop thread's CPU) is ours alone. After each slice
+        (at most SLICE_S) the loop gets its turn, and we rest in proportion to the time the
+        slice took, so that publishing takes at most ``max_loop_share`` of the loop: the hub
+        keeps the newest frame of each channel meanwhile (drop to newest, counted)."""
         assert self._sub is not None
         sub = self._sub
         profiles = {(p.channel, p.profile): p for ch in self.layout for p in ch.profiles}
         last_tick = time.monotonic()
-        rest = 0.0  # s owed to the rest of the loop (max_loop_share)
+        rest = 0.0  # s owed to the rest of the loop
         while True:
             try:
-                item = await sub.get(timeout=TICK_S)
+                item: SpectralFrame | dict[str, Any] | None = await sub.get(timeout=TICK_S)
             except TimeoutError:
                 item = None
-            t0 = time.thread_time()  # the loop thread's CPU: ours alone (no await yields)
+            t0 = time.thread_time()
             try:
-                if isinstance(item, SpectralFrame):
-                    p = profiles.get((item.channel, item.profile))
-                    if p is not None:
-                        if self.host.hub.channels[item.channel].status != self._published.get(
-                                item.channel):
-                            await self._check_states()
-                        await self._write_frame(item, p)
-                elif item is not None:
-                    await self._refresh_alarms(str(item["rule"]))
-                    await self._announce(item)
-                # The hub hands pending items over without waiting and asyncua's writes do not
-                # wait either (so the time measured is ours alone): yield after each item,
-                # and rest in proportion to the time it took,
-                # so that writing takes at most max_loop_share of the loop (the hub keeps the
-                # newest frame of each channel meanwhile: drop to newest, counted).
-                rest += (time.thread_time() - t0) * (1.0 / self.cfg.max_loop_share - 1.0)
-                if rest >= REST_MIN_S:
-                    # one long pass (a plant-wide state change) is not repaid for seconds:
-                    # at most REST_MAX_S, and frames keep flowing
-                    await asyncio.sleep(min(rest, REST_MAX_S))
-                    rest = 0.0
-                else:
-                    await asyncio.sleep(0)
+                while item is not None:
+                    await self._handle(item, profiles)
+                    if not sub.pending() or time.thread_time() - t0 >= SLICE_S:
+                        break
+                    item = await sub.get()  # returns at once: items are pending
                 now = time.monotonic()
                 if now - last_tick >= TICK_S:
                     last_tick = now
@@ -517,6 +507,26 @@ class OpcuaServer:
                 self.stats.errors += 1
                 self.stats.last_error = f"{type(e).__name__}: {e}"[:300]
                 log.exception("OPC UA publisher")
+            rest += (time.thread_time() - t0) * (1.0 / self.cfg.max_loop_share - 1.0)
+            if rest >= REST_MIN_S:
+                # a long pass (a plant-wide state change) is not repaid for seconds
+                await asyncio.sleep(min(rest, REST_MAX_S))
+                rest = 0.0
+            else:
+                await asyncio.sleep(0)
+
+    async def _handle(self, item: SpectralFrame | dict[str, Any],
+                      profiles: dict[tuple[str, str], ProfileLayout]) -> None:
+        if isinstance(item, SpectralFrame):
+            p = profiles.get((item.channel, item.profile))
+            if p is not None:
+                if self.host.hub.channels[item.channel].status != self._published.get(
+                        item.channel):
+                    await self._check_states()
+                await self._write_frame(item, p)
+        else:
+            await self._refresh_alarms(str(item["rule"]))
+            await self._announce(item)
 
     # -- the Acknowledge method -----------------------------------------------------------
     async def _ack(self, parent: ua.NodeId, rule: ua.Variant,
