@@ -97,11 +97,11 @@ class OpcuaConfig(StrictModel):
         "the server's work: turn off when clients read band values only).",
     )
     max_loop_share: float = Field(
-        0.25, ge=0.05, le=1.0,
+        0.1, ge=0.02, le=1.0,
         description="Largest share of the event loop's time the server may take writing "
-        "values (0.05…1): beyond it, it waits and each channel skips to its newest frame, so "
-        "the analysis, alarms and HTTP never wait for OPC UA; /health counts the skipped "
-        "frames (dropped).",
+        "values (0.02…1): beyond it, it waits and each channel skips to its newest frame, so "
+        "the frames' hand-off, alarms and HTTP keep the rest of the loop; /health counts the "
+        "skipped frames (dropped). See docs/performance.md before raising it.",
     )
     alarm_refresh_s: float = Field(
         1.0, ge=0.1, le=60,
