@@ -95,6 +95,51 @@ def test_check_refuses_security_none_off_loopback(
            "[[tokens]]" in r.stdout + r.stderr
 
 
+@pytest.mark.parametrize(("opcua", "message"), [
+    ({"endpoint": "http://127.0.0.1:4840"},
+     r"opcua\.endpoint: 'http://127\.0\.0\.1:4840' is not opc\.tcp://host:port"),
+    ({"endpoint": "opc.tcp://[::1]:0/q"}, r"opcua\.endpoint: .* with a port in 1-65535"),
+    ({"certificate": "c.der"}, r"opcua\.private_key: give certificate and private_key together"),
+    ({"security_policy": "Basic128"}, r"opcua\.security_policy: 'Basic128' is not one of"),
+    ({"max_loop_share": 0.0}, r"opcua\.max_loop_share: "),
+    ({"certificate": "missing.der", "private_key": "missing.pem"},
+     r"opcua\.certificate: '.*missing\.der' is not a file"),
+])
+def test_bad_opcua_settings_name_their_key(opcua: dict[str, Any], message: str,
+                                           tmp_path: Path) -> None:
+    from service.config import ConfigError, parse_config
+
+    doc = one_band_config(opcua={"enabled": True, **opcua})
+    doc["sources"][0]["listen"] = "127.0.0.1:17002"
+    with pytest.raises(ConfigError, match=message):
+        parse_config(doc, base_dir=tmp_path)
+
+
+def test_without_asyncua_the_service_imports_and_the_server_says_what_to_install() -> None:
+    code = (
+        "import asyncio, sys\n"
+        "sys.modules['asyncua'] = None  # as if the extra were not installed\n"
+        "from service.app import Service\n"
+        "from service.config import parse_config\n"
+        "cfg = parse_config({'sources': [{'id': 's', 'kind': 'simulated'}],\n"
+        "                    'opcua': {'enabled': True}})\n"
+        "svc = Service(cfg)\n"
+        "try:\n"
+        "    asyncio.run(svc.opcua.start())\n"
+        "except RuntimeError as e:\n"
+        "    print(e, svc.opcua.health()['state'])\n"
+    )
+    import subprocess
+    import sys
+
+    from conftest import REPO, child_env
+
+    r = subprocess.run([sys.executable, "-c", code], cwd=REPO, env=child_env(),
+                       capture_output=True, text=True, timeout=60, check=False)
+    assert r.returncode == 0, r.stderr
+    assert "pip install 'quaver[opcua]'" in r.stdout and r.stdout.strip().endswith("failed")
+
+
 # --- a running service ---------------------------------------------------------------------
 
 
