@@ -1,54 +1,36 @@
-"""The OPC UA server: builds the address space of ``service.opcua.layout`` in an asyncua
-server, writes every frame's values into it from a hub subscription, announces alarm and
-channel-state changes as events, and serves the Acknowledge method.
+"""The OPC UA server, in the worker process (``service.opcua.worker``): builds the address
+space of ``service.opcua.layout`` in an asyncua server, writes the values the service packs
+for it (:mod:`service.opcua.pack`) with the frames' times, announces alarm and channel-state
+changes as events, and serves the Acknowledge method by asking the service.
 
-Knows asyncua, the hub's subscriber, the alarm engine's views and the service's acknowledge;
-nothing of HTTP, the store or the engine. Imported only when ``[opcua] enabled`` (asyncua is
-an optional extra)."""
+Knows asyncua, the layout and the packed batches; nothing of the hub, the alarm engine,
+HTTP or the store (they live in the service process). Imported only in the worker."""
 
 from __future__ import annotations
 
-import asyncio
 import functools
 import logging
 import math
 import os
-import time
+from collections.abc import Awaitable, Callable, Sequence
+from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 from asyncua import Server, ua
 from asyncua.crypto import cert_gen
 from cryptography.x509.oid import ExtendedKeyUsageOID
 
-from ..alarms import AckRefused, AlarmView, UnknownAlarm
-from ..hub import Subscriber
-from ..spectra import spectrum_values
-from ..store import StoreError
-from ..types import SpectralFrame
+from ..auth import TokenEntry
+from ..config.opcua import OpcuaConfig
 from .access import CALLER, QuaverRuleset, TokenUsers
-from .host import OpcuaHost, PublisherStats
-from .layout import (
-    UNITS,
-    WAITING,
-    ChannelLayout,
-    ProfileLayout,
-    channel_code,
-    namespace_uri,
-    plan,
-    unit_id,
-    value_code,
-)
+from .layout import UNITS, WAITING, ChannelLayout, unit_id
+from .pack import ALARM_VARS, CODES, UNMEASURED_CODE, FrameBatch
 
 log = logging.getLogger("quaver.opcua")
-NS = 1_000_000_000
-ADD_CHUNK = 100  # nodes added between two yields to the loop while building (our choice)
-YIELD_EVERY = 32  # channels whose first state is written between two yields while building
-SLICE_S = 0.005  # the longest run of writes before the loop gets its turn (our choice)
-REST_MIN_S = 0.005  # rests shorter than this are gathered (timer overhead; our choice)
-REST_MAX_S = 0.25  # the longest rest after one pass (our choice)
-TICK_S = 0.25  # channel states are compared with what was published this often (our choice)
+ADD_CHUNK = 2000  # nodes added per call to the node management service (our choice)
 EVENT_TYPE = "types/AlarmEventType"
 # event fields of our AlarmEventType beyond BaseEventType's: (name, variant type)
 EVENT_FIELDS: tuple[tuple[str, str], ...] = (
@@ -58,11 +40,10 @@ EVENT_FIELDS: tuple[tuple[str, str], ...] = (
 )
 # BaseEventType Severity 1…1000 (IEC 62541-5): our choice of one value per level
 SEVERITY = {"danger": 900, "alert": 600, "latched": 400, "normal": 200}
-ALARM_VARS: tuple[tuple[str, str], ...] = (
-    ("state", "String"), ("value", "Double"), ("alert", "Double"), ("danger", "Double"),
-    ("acknowledged", "Boolean"), ("latched", "Boolean"), ("shelved", "Boolean"),
-    ("channel", "String"), ("unit", "String"),
-)
+ALARM_TYPES = dict(ALARM_VARS)
+# what the Acknowledge handler hands the service: (rule, who, note) → ("ok", to_state) or
+# ("refused", StatusCode name)
+AckCall = Callable[[str, str, str], Awaitable[tuple[str, str]]]
 
 
 def _dt(t_ns: int) -> datetime:
@@ -75,29 +56,39 @@ def _code(name: str) -> ua.StatusCode:
     return ua.StatusCode(getattr(ua.StatusCodes, name))
 
 
-class OpcuaServer:
-    """One asyncua server over a running service (``host``); see the package docstring."""
+@dataclass
+class WorkerStats:
+    """The worker's counters since it started (sent to the service for /health)."""
 
-    def __init__(self, host: OpcuaHost, stats: PublisherStats) -> None:
+    frames: int = 0  # frames written into the address space
+    updates: int = 0  # node values written
+    events: int = 0  # OPC UA events fired
+    errors: int = 0  # writes that failed
+    last_error: str = ""
+
+
+class OpcuaServer:
+    """One asyncua server in the worker; see the module docstring."""
+
+    def __init__(self, cfg: OpcuaConfig, tokens: Sequence[TokenEntry], data_dir: str,
+                 ns_uri: str, ack: AckCall) -> None:
         # asyncua logs each node it loads and each request at INFO: thousands of lines at
         # start and a line per read in the service's log; its warnings and errors stay
         logging.getLogger("asyncua").setLevel(logging.WARNING)
-        self.host, self.stats = host, stats
-        self.cfg = host.cfg.opcua
-        self.server = Server(user_manager=TokenUsers(lambda: self.host.cfg.tokens))
+        self.cfg, self.tokens, self.data_dir, self.ns_uri = cfg, list(tokens), data_dir, ns_uri
+        self.ack_call = ack
+        self.stats = WorkerStats()
+        self.server = Server(user_manager=TokenUsers(lambda: self.tokens))
         self.idx = 0
         self.layout: list[ChannelLayout] = []
-        self._sub: Subscriber | None = None
-        self._task: asyncio.Task[None] | None = None
-        self._published: dict[str, str] = {}  # channel → status last written to its nodes
-        self._alarm_rows: dict[str, dict[str, Any]] = {}  # rule → values last written
+        # per profile (the service's order): NodeIds of overall, bands…, tones…; spectrum
+        self._value_nids: list[list[ua.NodeId]] = []
+        self._spectrum_nid: list[ua.NodeId | None] = []
+        self._spectrum_props: list[tuple[Any, ...] | None] = []
+        self._channel_nids: list[list[ua.NodeId]] = []  # per channel: every value node
         self._alarm_nodes: set[str] = set()
-        self._last_alarm_refresh = 0.0
         self._events: Any = None  # asyncua EventGenerator
-        self.ready = False  # every node built and the hub subscribed
-        self.failed = ""  # why building the address space failed
-        self._nids: dict[str, ua.NodeId] = {}
-        self._spectrum_props: dict[str, tuple[float, float, str, str]] = {}
+        self._write = None  # the address space's write_attribute_value
 
     # -- start and stop -------------------------------------------------------------------
     async def start(self) -> None:
@@ -117,42 +108,14 @@ class OpcuaServer:
             cert, key = await self._certificate()
             await s.load_certificate(str(cert))
             await s.load_private_key(str(key))
-        s.set_identity_tokens([ua.UserNameIdentityToken] if self.host.cfg.tokens
+        s.set_identity_tokens([ua.UserNameIdentityToken] if self.tokens
                               else [ua.AnonymousIdentityToken])
-        self.idx = await s.register_namespace(namespace_uri(self.host.cfg))
+        self.idx = await s.register_namespace(self.ns_uri)
         await self._build_fixed()
+        self._write = s.iserver.aspace.write_attribute_value
         await s.start()  # the endpoint's port is bound here: a taken one fails the start-up
 
-    def begin(self) -> None:
-        """Build the plant's nodes and publish, on a task of its own (after the sources
-        started: the build takes seconds of loop time for a large plant)."""
-        self._task = asyncio.create_task(self._populate_and_run(), name="opcua-publisher")
-
-    async def _populate_and_run(self) -> None:
-        """The plant's nodes (in chunks: the loop keeps serving the sources and HTTP), then
-        the hub subscription and the loop. ``ready`` is set once clients see every node."""
-        try:
-            await self._build_plant()
-            self._sub = Subscriber(None, max_events=4096, profiles=frozenset({"*"}))
-            self.host.hub.subscribers.add(self._sub)
-            await self._write_all_states(time.time_ns())
-            await self._refresh_alarms()
-            self._last_alarm_refresh = time.monotonic()
-            self.ready = True
-            log.info("OPC UA address space ready: %d channels, %d alarm rules",
-                     len(self.layout), len(self._alarm_nodes))
-        except Exception as e:
-            self.failed = f"{type(e).__name__}: {e}"[:300]
-            log.exception("OPC UA address space not built")
-            raise
-        await self._run()
-
     async def stop(self) -> None:
-        if self._sub is not None:
-            self.host.hub.unsubscribe(self._sub)
-        if self._task is not None:
-            self._task.cancel()
-            await asyncio.gather(self._task, return_exceptions=True)
         await self.server.stop()
 
     async def _certificate(self) -> tuple[Path, Path]:
@@ -161,7 +124,7 @@ class OpcuaServer:
         o = self.cfg
         if o.certificate is not None and o.private_key is not None:
             return Path(o.certificate), Path(o.private_key)
-        folder = Path(self.host.cfg.service.data_dir) / "opcua"
+        folder = Path(self.data_dir) / "opcua"
         folder.mkdir(parents=True, exist_ok=True)
         cert, key = folder / "server-cert.der", folder / "server-key.pem"
         host = o.endpoint.split("://", 1)[1].rsplit(":", 1)[0].strip("[]")
@@ -200,22 +163,17 @@ class OpcuaServer:
                                      varianttype=vtype)
         self._events = await self.server.get_event_generator(etype, ua.ObjectIds.Server)
 
-    async def _build_plant(self) -> None:
-        """Machines → channels → profiles → values, and the alarm rules."""
-        self.layout = plan(self.host.cfg, self.host.hub.channels)
+    def build_plant(self, layout: list[ChannelLayout], machine_names: dict[str, str]) -> None:
+        """Machines → channels → profiles → values (the worker has nothing else to do
+        meanwhile: no yields)."""
+        self.layout = layout
         items: list[ua.AddNodesItem] = []
-        machines_names = {m.id: m.name or m.id for m in self.host.cfg.machines}
         seen_machines: set[str] = set()
-        for ch in self.layout:
-            st = self.host.hub.channels[ch.id]
+        for ch in layout:
             if ch.machine not in seen_machines:
                 seen_machines.add(ch.machine)
-                name = machines_names.get(st.machine, st.machine) or "(no machine)"
+                name = machine_names.get(ch.machine) or "(no machine)"
                 items.append(self._object(ch.machine, name, self.nid("machines"), organizes=True))
-            if len(items) >= ADD_CHUNK:  # a channel at a time; the loop serves in between
-                self._add(items)
-                items = []
-                await asyncio.sleep(0)
             items.append(self._object(ch.path, ch.id, self.nid(ch.machine),
                                       description=ch.description))
             S = ua.VariantType.String
@@ -223,6 +181,7 @@ class OpcuaServer:
             items.append(self._var(ch.path, "cause", ua.Variant("", S)))
             items.append(self._var(ch.path, "status_code", ua.Variant(
                 _code(WAITING), ua.VariantType.StatusCode), datatype=ua.ObjectIds.StatusCode))
+            chan_nids: list[ua.NodeId] = []
             for p in ch.profiles:
                 items.append(self._object(p.path, p.profile, self.nid(ch.path)))
                 items += self._analog(p.path, "overall", p.unit, ch)
@@ -234,6 +193,10 @@ class OpcuaServer:
                                           folder=True))
                 for t in p.tones:
                     items += self._analog(f"{p.path}/tones", t, p.unit, ch, path=p.tone(t))
+                nids = [self.nid(x) for x in (p.overall(), *map(p.band, p.bands),
+                                              *map(p.tone, p.tones))]
+                self._value_nids.append(nids)
+                chan_nids += nids
                 if self.cfg.spectra:
                     sp = p.spectrum()
                     items.append(self._var(p.path, "spectrum", ua.Variant(
@@ -243,12 +206,20 @@ class OpcuaServer:
                                     ("unit", ua.Variant(p.unit, ua.VariantType.String)),
                                     ("amplitude", ua.Variant("", ua.VariantType.String))):
                         items.append(self._var(sp, name, v, prop=True))
+                    self._spectrum_nid.append(self.nid(sp))
+                    chan_nids.append(self.nid(sp))
+                else:
+                    self._spectrum_nid.append(None)
+                self._spectrum_props.append(None)
+            self._channel_nids.append(chan_nids)
+            if len(items) >= ADD_CHUNK:
+                self._add(items)
+                items = []
         self._add(items)
-        await self._add_alarm_rules(self.host.alarms.views())
 
     def _add(self, items: list[ua.AddNodesItem]) -> None:
         # straight to the node management service (asyncua's Node helpers make a request per
-        # node); ~20 000 nodes of a 256-channel plant take seconds, so callers add in chunks
+        # node; ~20 000 nodes of a 256-channel plant)
         for r in self.server.iserver.node_mgt_service.add_nodes(items):
             r.StatusCode.check()
 
@@ -316,140 +287,104 @@ class OpcuaServer:
                                  datatype=ua.ObjectIds.Range, prop=True))
         return out
 
-    async def _add_alarm_rules(self, views: list[AlarmView]) -> None:
-        items = []
-        for v in views:
-            if v.rule in self._alarm_nodes:
-                continue
-            self._alarm_nodes.add(v.rule)
-            base = f"alarms/{v.rule}"
-            items.append(self._object(base, v.rule, self.nid("alarms"),
-                                      description=f"{v.channel}: {v.kind} {v.name}".strip()))
-            for name, vt in ALARM_VARS:
-                vtype = getattr(ua.VariantType, vt)
-                items.append(self._var(base, name, ua.Variant(ua.get_default_value(vtype), vtype)))
-            if len(items) >= ADD_CHUNK:
-                self._add(items)
-                items = []
-                await asyncio.sleep(0)
-        if items:
-            self._add(items)
+    def _add_alarm_rule(self, rule: str, description: str) -> None:
+        if rule in self._alarm_nodes:
+            return
+        self._alarm_nodes.add(rule)
+        base = f"alarms/{rule}"
+        items = [self._object(base, rule, self.nid("alarms"), description=description)]
+        for name, vt in ALARM_VARS:
+            vtype = getattr(ua.VariantType, vt)
+            items.append(self._var(base, name, ua.Variant(ua.get_default_value(vtype), vtype)))
+        self._add(items)
 
     # -- writing values -------------------------------------------------------------------
-    async def _put(self, path: str, value: Any, vtype: ua.VariantType, code: str,
+    async def _put(self, nid: ua.NodeId, value: Any, vtype: ua.VariantType, code: str,
                    src: datetime, now: datetime) -> None:
-        nid = self._nids.get(path)
-        if nid is None:
-            nid = self._nids[path] = self.nid(path)
         bad = code.startswith("Bad")
         dv = ua.DataValue(ua.Variant(None if bad else value, ua.VariantType.Null if bad else vtype),
                           StatusCode=_code(code), SourceTimestamp=src, ServerTimestamp=now)
-        r = await self.server.iserver.aspace.write_attribute_value(nid, ua.AttributeIds.Value, dv)
+        r = await self._write(nid, ua.AttributeIds.Value, dv)  # type: ignore[misc]
         if not r.is_good():
             self.stats.errors += 1
-            self.stats.last_error = f"{path}: {r.name}"
+            self.stats.last_error = f"{nid.Identifier}: {r.name}"
             return
         self.stats.updates += 1
 
-    async def _write_frame(self, f: SpectralFrame, p: ProfileLayout) -> None:
-        st = self.host.hub.channels[f.channel]
-        src, now = _dt(f.t_ns), datetime.now(UTC)
-        D = ua.VariantType.Double
-        status, q = st.status, f.quality
-        await self._put(p.overall(), float(f.overall), D, value_code(status, q, f.overall),
-                        src, now)
-        for b in f.bands:
-            await self._put(p.band(b.name), float(b.value), D, value_code(status, q, b.value),
-                            src, now)
-        for t in f.tones:
-            await self._put(p.tone(t.name), float(t.value), D, value_code(status, q, t.value),
-                            src, now)
-        if self.cfg.spectra:
-            values, unit, amp = spectrum_values(f)
-            sp = p.spectrum()
-            await self._put(sp, values.tolist(), ua.VariantType.Float,
-                            value_code(status, q, 0.0), src, now)
-            props = (f.df_hz, f.f0_hz, unit, amp)
-            if self._spectrum_props.get(sp) != props:  # they change only with the set-up
-                self._spectrum_props[sp] = props
-                for name, v, vt in (("df_hz", f.df_hz, D), ("f0_hz", f.f0_hz, D),
-                                    ("unit", unit, ua.VariantType.String),
-                                    ("amplitude", amp, ua.VariantType.String)):
-                    await self._put(f"{sp}/{name}", v, vt, "Good", src, now)
-        self.stats.frames += 1
-
-    async def _write_state(self, ch: ChannelLayout, t_ns: int) -> None:
-        """The channel's status nodes; its values' StatusCode when it goes Bad (their value
-        is then null: IEC 62541-4 §7.7.1, and asyncua clears it) or comes back."""
-        st = self.host.hub.channels[ch.id]
-        before = self._published.get(ch.id)
-        self._published[ch.id] = st.status
-        src, now = _dt(st.status_since_ns or t_ns), datetime.now(UTC)
-        S = ua.VariantType.String
-        code = channel_code(st.status) if st.last_frame_mono is not None or before else WAITING
-        if st.status == "no-signal" and not self._seen(ch):
-            code = WAITING  # nothing analysed yet since the start
-        await self._put(f"{ch.path}/status", st.status, S, "Good", src, now)
-        await self._put(f"{ch.path}/cause", st.fault, S, "Good", src, now)
-        await self._put(f"{ch.path}/status_code", _code(code), ua.VariantType.StatusCode,
-                        "Good", src, now)
-        if code.startswith("Bad"):
-            for p in ch.profiles:
-                for path in (p.overall(), *map(p.band, p.bands), *map(p.tone, p.tones),
-                             *((p.spectrum(),) if self.cfg.spectra else ())):
-                    await self._put(path, None, ua.VariantType.Null, code, src, now)
-
-    def _seen(self, ch: ChannelLayout) -> bool:
-        return any(self.host.hub.frame(ch.id, p.profile) is not None for p in ch.profiles)
-
-    async def _write_all_states(self, t_ns: int) -> None:
-        for k, ch in enumerate(self.layout):
-            await self._write_state(ch, t_ns)
-            if k % YIELD_EVERY == YIELD_EVERY - 1:
-                await asyncio.sleep(0)
-
-    async def _check_states(self) -> None:
-        """Write the state of every channel whose state changed since it was written (the
-        hub's status events say so too, but the first spectrum after the start is none)."""
-        chans = self.host.hub.channels
-        for ch in self.layout:
-            if chans[ch.id].status != self._published.get(ch.id):
-                await self._write_state(ch, time.time_ns())
-
-    async def _refresh_alarms(self, rule: str | None = None) -> None:
-        """Write the alarm nodes that changed: of ``rule`` (after its event), or of every
-        rule (each alarm_refresh_s; a rule added by a config reload gets its nodes)."""
-        if rule is None:
-            views = self.host.alarms.views()
-            await self._add_alarm_rules(views)
-        else:
-            try:  # one rule: its event must not cost a pass over every rule
-                views = [self.host.alarms.view(rule)]
-            except UnknownAlarm:  # a channel-state event ("<channel>.status"), or gone
-                return
-            await self._add_alarm_rules(views)
+    async def write_frames(self, batch: FrameBatch) -> None:
+        """One packed batch: every value of every frame, with its frame's time and code."""
         now = datetime.now(UTC)
-        for v in views:
-            row = {"state": v.state.value, "value": v.value, "alert": v.alert, "danger": v.danger,
-                   "acknowledged": v.acked, "latched": v.latched, "shelved": v.shelved,
-                   "channel": v.channel, "unit": v.unit}
-            old = self._alarm_rows.get(v.rule, {})
-            src = _dt(v.value_ns) if v.value_ns else now
-            for name, vt in ALARM_VARS:
-                x = row[name]
-                if old.get(name, ()) == x:
-                    continue
-                if x is None or (isinstance(x, float) and not math.isfinite(x)):
-                    # no value yet, learning a baseline, or suspended while not live
-                    await self._put(f"alarms/{v.rule}/{name}", None, ua.VariantType.Null,
-                                    WAITING if v.value_ns is None else "BadNoCommunication"
-                                    if v.suspended else "BadWaitingForInitialData", src, now)
-                else:
-                    await self._put(f"alarms/{v.rule}/{name}", x, getattr(ua.VariantType, vt),
-                                    "Good", src, now)
-            self._alarm_rows[v.rule] = row
+        D = ua.VariantType.Double
+        values = batch.values.tolist()
+        finite = np.isfinite(batch.values).tolist()
+        starts = batch.starts.tolist()
+        codes = [CODES[c] for c in batch.codes.tolist()]
+        good = _code("Good")
+        for i, (prof, t_ns) in enumerate(zip(batch.profiles.tolist(), batch.t_ns.tolist(),
+                                             strict=True)):
+            src = _dt(t_ns)
+            code = codes[i]
+            nids = self._value_nids[prof]
+            k0 = starts[i]
+            if code == "Good":  # the common case, without the per-value code look-up
+                for j, nid in enumerate(nids):
+                    k = k0 + j
+                    if finite[k]:
+                        dv = ua.DataValue(ua.Variant(values[k], D), StatusCode=good,
+                                          SourceTimestamp=src, ServerTimestamp=now)
+                        r = await self._write(nid, ua.AttributeIds.Value, dv)  # type: ignore[misc]
+                        if r.is_good():
+                            self.stats.updates += 1
+                        else:
+                            self.stats.errors += 1
+                            self.stats.last_error = f"{nid.Identifier}: {r.name}"
+                    else:
+                        await self._put(nid, None, D, CODES[UNMEASURED_CODE], src, now)
+            else:
+                for j, nid in enumerate(nids):  # Uncertain or Bad: NaN is not "unmeasured"
+                    await self._put(nid, values[k0 + j], D, code, src, now)
+            self.stats.frames += 1
+        for prof, t_ns, code_i, spectrum, props in batch.spectra:
+            sp = self._spectrum_nid[prof]
+            if sp is None:
+                continue
+            src = _dt(t_ns)
+            await self._put(sp, spectrum.tolist(), ua.VariantType.Float, CODES[code_i], src, now)
+            if self._spectrum_props[prof] != props:  # they change only with the set-up
+                self._spectrum_props[prof] = props
+                for name, v, vt in zip(("df_hz", "f0_hz", "unit", "amplitude"), props,
+                                       (D, D, ua.VariantType.String, ua.VariantType.String),
+                                       strict=True):
+                    await self._put(self.nid(f"{sp.Identifier}/{name}"), v, vt, "Good", src, now)
 
-    async def _announce(self, ev: dict[str, Any]) -> None:
+    async def write_states(self, states: list[tuple[int, str, str, str, int]]) -> None:
+        """Channels' status nodes; their values' StatusCode when they go Bad (their value is
+        then null: IEC 62541-4 §7.7.1, and asyncua clears it)."""
+        now = datetime.now(UTC)
+        S = ua.VariantType.String
+        for ch_i, status, cause, code, t_ns in states:
+            ch = self.layout[ch_i]
+            src = _dt(t_ns)
+            await self._put(self.nid(f"{ch.path}/status"), status, S, "Good", src, now)
+            await self._put(self.nid(f"{ch.path}/cause"), cause, S, "Good", src, now)
+            await self._put(self.nid(f"{ch.path}/status_code"), _code(code),
+                            ua.VariantType.StatusCode, "Good", src, now)
+            if code.startswith("Bad"):
+                for nid in self._channel_nids[ch_i]:
+                    await self._put(nid, None, ua.VariantType.Null, code, src, now)
+
+    async def write_alarms(self, rows: list[tuple[str, str, list[tuple[str, Any, str]], int]]
+                           ) -> None:
+        """Alarm nodes that changed: (rule, description, [(name, value, code)], t_ns)."""
+        now = datetime.now(UTC)
+        for rule, description, changes, t_ns in rows:
+            self._add_alarm_rule(rule, description)
+            src = _dt(t_ns) if t_ns else now
+            for name, x, code in changes:
+                vt = getattr(ua.VariantType, ALARM_TYPES[name])
+                await self._put(self.nid(f"alarms/{rule}/{name}"), x, vt, code, src, now)
+
+    async def announce(self, ev: dict[str, Any]) -> None:
         """An alarm or channel-state event (already committed) as an OPC UA event."""
         e = self._events.event
         e.Rule, e.Channel, e.Kind = str(ev["rule"]), str(ev["channel"]), str(ev["kind"])
@@ -467,84 +402,16 @@ class OpcuaServer:
         await self._events.trigger(_dt(int(ev["t_ns"])), str(ev.get("message", "")))
         self.stats.events += 1
 
-    # -- the loop -------------------------------------------------------------------------
-    async def _run(self) -> None:
-        """Take the hub's items and write them, a slice of work at a time.
-
-        The hub hands pending items over without waiting and asyncua's writes do not wait
-        either, so a slice's time (the loop thread's CPU) is ours alone. After each slice
-        (at most SLICE_S) the loop gets its turn, and we rest in proportion to the time the
-        slice took, so that publishing takes at most ``max_loop_share`` of the loop: the hub
-        keeps the newest frame of each channel meanwhile (drop to newest, counted)."""
-        assert self._sub is not None
-        sub = self._sub
-        profiles = {(p.channel, p.profile): p for ch in self.layout for p in ch.profiles}
-        last_tick = time.monotonic()
-        rest = 0.0  # s owed to the rest of the loop
-        while True:
-            try:
-                item: SpectralFrame | dict[str, Any] | None = await sub.get(timeout=TICK_S)
-            except TimeoutError:
-                item = None
-            t0 = time.thread_time()
-            try:
-                while item is not None:
-                    await self._handle(item, profiles)
-                    if not sub.pending() or time.thread_time() - t0 >= SLICE_S:
-                        break
-                    item = await sub.get()  # returns at once: items are pending
-                now = time.monotonic()
-                if now - last_tick >= TICK_S:
-                    last_tick = now
-                    await self._check_states()
-                if now - self._last_alarm_refresh >= self.cfg.alarm_refresh_s:
-                    self._last_alarm_refresh = now
-                    await self._refresh_alarms()
-                self.stats.dropped = sub.missed
-            except asyncio.CancelledError:
-                raise
-            except Exception as e:  # one bad write must not stop the publisher
-                self.stats.errors += 1
-                self.stats.last_error = f"{type(e).__name__}: {e}"[:300]
-                log.exception("OPC UA publisher")
-            rest += (time.thread_time() - t0) * (1.0 / self.cfg.max_loop_share - 1.0)
-            if rest >= REST_MIN_S:
-                # a long pass (a plant-wide state change) is not repaid for seconds
-                await asyncio.sleep(min(rest, REST_MAX_S))
-                rest = 0.0
-            else:
-                await asyncio.sleep(0)
-
-    async def _handle(self, item: SpectralFrame | dict[str, Any],
-                      profiles: dict[tuple[str, str], ProfileLayout]) -> None:
-        if isinstance(item, SpectralFrame):
-            p = profiles.get((item.channel, item.profile))
-            if p is not None:
-                if self.host.hub.channels[item.channel].status != self._published.get(
-                        item.channel):
-                    await self._check_states()
-                await self._write_frame(item, p)
-        else:
-            await self._refresh_alarms(str(item["rule"]))
-            await self._announce(item)
-
     # -- the Acknowledge method -----------------------------------------------------------
     async def _ack(self, parent: ua.NodeId, rule: ua.Variant,
                    note: ua.Variant) -> list[ua.Variant] | ua.StatusCode:
         who = CALLER.get()
         if who is None or not who.may("operator"):
             return _code("BadUserAccessDenied")
-        rid = str(rule.Value or "")
-        try:
-            out = await self.host.acknowledge(rid, who.name, str(note.Value or ""))
-        except UnknownAlarm:
-            return _code("BadNotFound")
-        except AckRefused:
-            return _code("BadInvalidState")
-        except StoreError:
-            return _code("BadResourceUnavailable")  # nothing was acknowledged: retry later
-        await self._refresh_alarms(rid)
-        return [ua.Variant(str(out.get("to_state", "")), ua.VariantType.String)]
+        how, what = await self.ack_call(str(rule.Value or ""), who.name, str(note.Value or ""))
+        if how != "ok":
+            return _code(what)
+        return [ua.Variant(what, ua.VariantType.String)]
 
     def sessions(self) -> int:
         b = self.server.bserver
