@@ -422,7 +422,7 @@ class OpcuaPublisher:
                 else:
                     changes.append((name, x, "Good"))
             self._alarm_rows[v.rule] = row
-            if changes or v.rule not in old and not old:
+            if changes:
                 rows.append((v.rule, f"{v.channel}: {v.kind} {v.name}".strip(), changes,
                              v.value_ns or 0))
         if rows:

@@ -468,3 +468,89 @@ def test_sign_and_encrypt_with_the_generated_certificate(tmp_path: Path) -> None
                     await plain.get_namespace_index(NS_URI)
 
         run(go())
+
+
+# --- the worker process --------------------------------------------------------------------
+
+
+def _pid_alive(pid: int) -> bool:
+    """``pid`` runs (a zombie waiting to be reaped does not: it holds no socket, no CPU)."""
+    try:
+        status = Path(f"/proc/{pid}/status").read_text()
+    except (FileNotFoundError, ProcessLookupError):
+        return False
+    state = next((ln.split()[1] for ln in status.splitlines() if ln.startswith("State:")), "")
+    return state not in ("Z", "X")
+
+
+def _wait_gone(pid: int, what: str, timeout_s: float = 15.0) -> None:
+    import time
+
+    end = time.monotonic() + timeout_s
+    while time.monotonic() < end:
+        if not _pid_alive(pid):
+            return
+        time.sleep(0.1)
+    pytest.fail(f"{what}: the OPC UA worker (pid {pid}) still runs after {timeout_s:g} s")
+
+
+def test_a_killed_worker_is_restarted_and_the_analysis_goes_on(tmp_path: Path) -> None:
+    import os
+    import signal
+
+    (port,) = free_ports(1)
+    with run_service(service_doc(port), tmp_path / "svc") as s:
+        s.wait(lambda: s.health()["opcua"]["state"] == "running", "the OPC UA address space")
+        h = s.health()["opcua"]
+        first = h["worker_pid"]
+        assert first != s.pid and _pid_alive(first) and h["restarts"] == 0
+        p = Producer(s.ports["s"])
+        try:
+            p.amp = 0.3
+            p.running.set()
+            s.wait(lambda: s.get_or_none("channels/a/bands"), "a first spectrum")
+            os.kill(first, signal.SIGKILL)  # as a crash of asyncua would end it
+            h = s.wait(lambda: (x := s.health()["opcua"])["state"] == "failed" and x,
+                       "/health to say the server failed")
+            assert not h["ok"] and f"pid {first}" in h["last_error"]
+            t_down = s.get("channels/a/bands")["timestamp_ns"]
+            s.wait(lambda: s.health()["opcua"]["state"] == "running", "the restarted server",
+                   WAIT_S + 30)
+            h = s.health()["opcua"]
+            assert h["restarts"] == 1 and h["worker_pid"] not in (first, None)
+            assert _pid_alive(h["worker_pid"]) and not _pid_alive(first)
+            # the analysis went on while the server was down and coming back
+            assert s.get("channels/a/bands")["timestamp_ns"] > t_down
+            assert s.health()["sources"]["s"]["pipeline"]["state"] != "failed"
+            p.running.clear()
+
+            async def go() -> None:  # the new worker serves a client: same node ids, values
+                async with client(port) as c:
+                    idx = await c.get_namespace_index(NS_URI)
+                    band = c.get_node(ua.NodeId("-/a/default/bands/b", idx))
+                    await asyncio.sleep(0.6)  # the last frames are written
+                    rest = s.get("channels/a/bands")
+                    dv = await band.read_data_value()
+                    assert dv.StatusCode.is_good()
+                    assert ts_us(dv.SourceTimestamp) == us(rest["timestamp_ns"])
+                    assert dv.Value.Value == {b["name"]: b["value"]
+                                              for b in rest["bands"]}["b"]
+
+            run(go())
+            second = h["worker_pid"]
+        finally:
+            p.close()
+    # the service stopped (SIGTERM): its worker ended with it
+    _wait_gone(second, "after the service stopped")
+
+
+def test_the_worker_ends_when_the_service_is_killed(tmp_path: Path) -> None:
+    import signal
+
+    (port,) = free_ports(1)
+    with run_service(service_doc(port), tmp_path / "svc") as s:
+        s.wait(lambda: s.health()["opcua"]["state"] == "running", "the OPC UA address space")
+        pid = s.health()["opcua"]["worker_pid"]
+        assert _pid_alive(pid)
+        s.stop(signal.SIGKILL)  # no clean-up at all: the worker sees its socket close
+        _wait_gone(pid, "after the service was killed")
