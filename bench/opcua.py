@@ -10,6 +10,7 @@ import asyncio
 import contextlib
 import json
 import math
+import os
 import tempfile
 import threading
 import time
@@ -130,7 +131,24 @@ def run(channels: int = 256, seconds: float = 20.0, workdir: Path | None = None,
                             client = inner.enter_context(OpcuaClient(port, chans, bands))
                         feeder.realtime(ids, WARMUP_S)
                         changes0 = client.changes if client else 0
+                        o0 = svc.get("health").get("opcua") or {}
                         res = _feed_step(plan, svc, feeder, ids, seconds)
+                        o1 = svc.get("health").get("opcua") or {}
+                        if o1:  # the worker process: its own CPU and what it wrote
+                            got, n = res["frames_counted"], res["channels"]
+                            cpu = o1["worker_cpu_s"] - o0["worker_cpu_s"]
+                            written = o1["frames"] - o0["frames"]
+                            res["worker_cpu_s"] = round(cpu, 3)
+                            res["worker_cpu_share"] = round(cpu / res["seconds"], 3)
+                            res["worker_cpu_ms_per_frame"] = (round(1e3 * cpu / got, 4)
+                                                              if got else None)
+                            res["opcua_frames_written"] = written
+                            res["opcua_dropped"] = o1["dropped"] - o0["dropped"]
+                            # values per channel per second reaching OPC UA vs analysed
+                            res["opcua_rate_hz_per_channel"] = round(
+                                written / n / res["seconds"], 2)
+                            res["analysis_rate_hz_per_channel"] = round(
+                                got / n / res["seconds"], 2)
                         if client is not None:
                             res["client_changes"] = client.changes - changes0
                             res["client_error"] = client.error
@@ -151,16 +169,23 @@ def run(channels: int = 256, seconds: float = 20.0, workdir: Path | None = None,
 def format_report(r: dict[str, Any]) -> str:
     lines = [f"quaver bench --service --opcua: {r['channels']} channels, {r['seconds']:g} s "
              f"real time per run ({r['machine'].get('cpu', '?')})", "",
-             "| [opcua] | service CPU ms/frame | CPU share | frames | drops | OPC UA frames "
-             "written | dropped (newest kept) | client data changes |",
+             "| [opcua] | frames analysed / expected | service CPU ms/frame (share) | "
+             "worker CPU ms/frame (share) | OPC UA frames written | dropped (newest kept) | "
+             "per channel: analysed / written Hz | client data changes |",
              "|---|---|---|---|---|---|---|---|"]
     for mode, res in r["runs"].items():
-        o = res.get("opcua") or {}
-        lines.append(f"| {mode} | {res['service_cpu_ms_per_frame']} | "
-                     f"{100 * res['service_cpu_share']:.0f} % | {res['frames_counted']} | "
-                     f"{res['drops']} | {o.get('frames', '—')} | {o.get('dropped', '—')} | "
+        wcpu = (f"{res['worker_cpu_ms_per_frame']} ({100 * res['worker_cpu_share']:.0f} %)"
+                if "worker_cpu_s" in res else "—")
+        lines.append(f"| {mode} | {res['frames_counted']} / {res['frames_expected']} | "
+                     f"{res['service_cpu_ms_per_frame']} "
+                     f"({100 * res['service_cpu_share']:.0f} %) | {wcpu} | "
+                     f"{res.get('opcua_frames_written', '—')} | "
+                     f"{res.get('opcua_dropped', '—')} | "
+                     f"{res.get('analysis_rate_hz_per_channel', '—')} / "
+                     f"{res.get('opcua_rate_hz_per_channel', '—')} | "
                      f"{res.get('client_changes', '—')} |")
     lines.append("")
+    lines.append(f"load average at the end: {os.getloadavg()[0]:.2f}")
     lines.append(f"on/off: {r.get('ratio_on')} (spectra on), {r.get('ratio_on-no-spectra')} "
                  "(spectra off)")
     return "\n".join(lines)

@@ -409,7 +409,7 @@ class OpcuaPublisher:
                    "danger": v.danger, "acknowledged": v.acked, "latched": v.latched,
                    "shelved": v.shelved, "channel": v.channel, "unit": v.unit}
             old = self._alarm_rows.get(v.rule, {})
-            changes = []
+            changes: list[tuple[str, Any, str]] = []
             for name, _ in ALARM_VARS:
                 x = row[name]
                 if old.get(name, ()) == x:
