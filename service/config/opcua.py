@@ -98,10 +98,11 @@ class OpcuaConfig(StrictModel):
     )
     max_loop_share: float = Field(
         0.1, ge=0.02, le=1.0,
-        description="Largest share of the event loop's time the server may take writing "
-        "values (0.02…1): beyond it, it waits and each channel skips to its newest frame, so "
-        "the frames' hand-off, alarms and HTTP keep the rest of the loop; /health counts the "
-        "skipped frames (dropped). See docs/performance.md before raising it.",
+        description="Largest share of the service's event loop the hand-off to the OPC UA "
+        "worker process may take (packing each push into arrays; 0.02…1): beyond it, it "
+        "waits and each channel skips to its newest frame; /health counts the skipped "
+        "frames (dropped). The asyncua server itself runs in its own process. See "
+        "docs/opcua.md.",
     )
     alarm_refresh_s: float = Field(
         1.0, ge=0.1, le=60,

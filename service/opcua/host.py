@@ -43,6 +43,7 @@ TICK_S = 0.25  # channel states compared with what was published this often (our
 SPECTRUM_EVERY_S = 0.5  # a profile's spectrum at most this often (the newest one; our choice)
 START_WAIT_S = 60.0  # the longest wait for a worker to listen (asyncua's set-up; our choice)
 STOP_WAIT_S = 5.0  # then the worker is killed (our choice)
+REST_MIN_S, REST_MAX_S = 0.005, 0.25  # rests gathered (timer overhead), capped (our choice)
 RESTART_MIN_S, RESTART_MAX_S = 1.0, 30.0  # pause before restarting a worker, doubling
 REPO = Path(__file__).resolve().parents[2]  # holds the service and dsp packages
 
@@ -287,7 +288,11 @@ class OpcuaPublisher:
         assert self._sub is not None
         sub = self._sub
         last_tick = last_alarms = 0.0
+        rest = 0.0  # s owed to the rest of the loop (max_loop_share)
         while True:
+            if rest >= REST_MIN_S:
+                await asyncio.sleep(min(rest, REST_MAX_S))
+                rest = 0.0
             try:
                 self._kick.clear()
                 if self._ready and self._inflight < MAX_INFLIGHT:
@@ -298,6 +303,7 @@ class OpcuaPublisher:
                     await _wait(self._kick, TICK_S)
                 if not self._ready:
                     continue  # the hub keeps the newest frame of each channel meanwhile
+                t0 = time.thread_time()
                 now = time.monotonic()
                 if self._full:
                     self._full = False
@@ -325,6 +331,10 @@ class OpcuaPublisher:
                     last_alarms = now
                     self._send_alarms(self.host.alarms.views())
                 self.stats.dropped = sub.missed
+                # the hand-off keeps to max_loop_share of the loop thread's time; beyond
+                # it the hub keeps the newest frame of each channel (counted as dropped)
+                rest += (time.thread_time() - t0) * (
+                    1.0 / self.host.cfg.opcua.max_loop_share - 1.0)
             except asyncio.CancelledError:
                 raise
             except Exception as e:  # one bad pass must not stop the publisher
