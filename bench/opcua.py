@@ -142,6 +142,10 @@ def run(channels: int = 256, seconds: float = 20.0, workdir: Path | None = None,
                             res["worker_cpu_share"] = round(cpu / res["seconds"], 3)
                             res["worker_cpu_ms_per_frame"] = (round(1e3 * cpu / got, 4)
                                                               if got else None)
+                            res["handoff_cpu_s"] = round(
+                                o1["handoff_cpu_s"] - o0["handoff_cpu_s"], 3)
+                            res["handoff_rest_s"] = round(
+                                o1["handoff_rest_s"] - o0["handoff_rest_s"], 3)
                             res["opcua_frames_written"] = written
                             res["opcua_dropped"] = o1["dropped"] - o0["dropped"]
                             # values per channel per second reaching OPC UA vs analysed

@@ -282,8 +282,11 @@ def _opcua_metrics(h: dict[str, Any]) -> Iterator[Metric]:
                       ("updates", "Node values written (values, states, alarms)"),
                       ("dropped", "Frames replaced by a newer one before they were written"),
                       ("events", "OPC UA events fired (alarm and channel-state changes)"),
-                      ("errors", "Failed writes or publisher passes")):
-        m = CounterMetricFamily(f"quaver_opcua_{key}", what)
+                      ("errors", "Failed writes or publisher passes"),
+                      ("restarts", "OPC UA worker processes started again after one died"),
+                      ("worker_cpu_s", "CPU seconds of the OPC UA worker processes")):
+        name = "worker_cpu_seconds" if key == "worker_cpu_s" else key
+        m = CounterMetricFamily(f"quaver_opcua_{name}", what)
         m.add_metric([], float(h[key]))
         yield m
 

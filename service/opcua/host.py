@@ -76,6 +76,8 @@ class PublisherStats:
     handed: int = 0  # frames handed to the worker
     restarts: int = 0  # workers started again after one died
     worker_cpu_s: float = 0.0  # CPU time of the workers (user + system)
+    handoff_cpu_s: float = 0.0  # the service loop thread's CPU time packing and handing over
+    handoff_rest_s: float = 0.0  # time the hand-off rested to keep to max_loop_share
 
 
 class OpcuaPublisher:
@@ -291,6 +293,7 @@ class OpcuaPublisher:
         rest = 0.0  # s owed to the rest of the loop (max_loop_share)
         while True:
             if rest >= REST_MIN_S:
+                self.stats.handoff_rest_s += min(rest, REST_MAX_S)
                 await asyncio.sleep(min(rest, REST_MAX_S))
                 rest = 0.0
             try:
@@ -333,8 +336,9 @@ class OpcuaPublisher:
                 self.stats.dropped = sub.missed
                 # the hand-off keeps to max_loop_share of the loop thread's time; beyond
                 # it the hub keeps the newest frame of each channel (counted as dropped)
-                rest += (time.thread_time() - t0) * (
-                    1.0 / self.host.cfg.opcua.max_loop_share - 1.0)
+                spent = time.thread_time() - t0
+                self.stats.handoff_cpu_s += spent
+                rest += spent * (1.0 / self.host.cfg.opcua.max_loop_share - 1.0)
             except asyncio.CancelledError:
                 raise
             except Exception as e:  # one bad pass must not stop the publisher
@@ -520,6 +524,8 @@ class OpcuaPublisher:
             "worker_pid": self.pid,
             "worker_cpu_s": s.worker_cpu_s,
             "restarts": s.restarts,
+            "handoff_cpu_s": round(s.handoff_cpu_s, 3),
+            "handoff_rest_s": round(s.handoff_rest_s, 3),
         }
 
 

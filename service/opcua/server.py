@@ -8,6 +8,7 @@ HTTP or the store (they live in the service process). Imported only in the worke
 
 from __future__ import annotations
 
+import asyncio
 import functools
 import logging
 import math
@@ -31,6 +32,7 @@ from .pack import ALARM_VARS, CODES, UNMEASURED_CODE, FrameBatch
 
 log = logging.getLogger("quaver.opcua")
 ADD_CHUNK = 2000  # nodes added per call to the node management service (our choice)
+YIELD_EVERY = 32  # frames written between two turns of the worker's loop (our choice)
 EVENT_TYPE = "types/AlarmEventType"
 # event fields of our AlarmEventType beyond BaseEventType's: (name, variant type)
 EVENT_FIELDS: tuple[tuple[str, str], ...] = (
@@ -54,6 +56,16 @@ def _dt(t_ns: int) -> datetime:
 @functools.cache
 def _code(name: str) -> ua.StatusCode:
     return ua.StatusCode(getattr(ua.StatusCodes, name))
+
+
+class _Value(ua.DataValue):  # type: ignore[misc]
+    """A DataValue built for one write and never changed after. asyncua deep-copies each
+    value written once per monitored item (to guard against callers that change a value
+    after writing it): three quarters of a write's CPU with one client subscribed (measured
+    with cProfile: ~165 µs a write, ~44 µs without the copy). Ours need no copy."""
+
+    def __deepcopy__(self, memo: dict[int, Any]) -> _Value:
+        return self
 
 
 @dataclass
@@ -302,7 +314,7 @@ class OpcuaServer:
     async def _put(self, nid: ua.NodeId, value: Any, vtype: ua.VariantType, code: str,
                    src: datetime, now: datetime) -> None:
         bad = code.startswith("Bad")
-        dv = ua.DataValue(ua.Variant(None if bad else value, ua.VariantType.Null if bad else vtype),
+        dv = _Value(ua.Variant(None if bad else value, ua.VariantType.Null if bad else vtype),
                           StatusCode=_code(code), SourceTimestamp=src, ServerTimestamp=now)
         r = await self._write(nid, ua.AttributeIds.Value, dv)  # type: ignore[misc]
         if not r.is_good():
@@ -330,7 +342,7 @@ class OpcuaServer:
                 for j, nid in enumerate(nids):
                     k = k0 + j
                     if finite[k]:
-                        dv = ua.DataValue(ua.Variant(values[k], D), StatusCode=good,
+                        dv = _Value(ua.Variant(values[k], D), StatusCode=good,
                                           SourceTimestamp=src, ServerTimestamp=now)
                         r = await self._write(nid, ua.AttributeIds.Value, dv)  # type: ignore[misc]
                         if r.is_good():
@@ -344,6 +356,8 @@ class OpcuaServer:
                 for j, nid in enumerate(nids):  # Uncertain or Bad: NaN is not "unmeasured"
                     await self._put(nid, values[k0 + j], D, code, src, now)
             self.stats.frames += 1
+            if i % YIELD_EVERY == YIELD_EVERY - 1:
+                await asyncio.sleep(0)  # clients' requests and publishing get their turn
         for prof, t_ns, code_i, spectrum, props in batch.spectra:
             sp = self._spectrum_nid[prof]
             if sp is None:
