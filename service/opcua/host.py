@@ -32,7 +32,7 @@ from ..hub import Hub, Subscriber
 from ..spectra import spectrum_values
 from ..store import StoreError
 from .layout import WAITING, ChannelLayout, channel_code, namespace_uri, plan, value_code
-from .link import read_message, write_message
+from .link import Sender, read_message
 from .pack import ALARM_VARS, code_index, pack_frames
 
 __all__ = ["OpcuaHost", "OpcuaPublisher", "PublisherStats"]
@@ -91,7 +91,8 @@ class OpcuaPublisher:
         self.state = "stopped"  # stopped | starting | running | failed
         self.pid: int | None = None
         self._proc: asyncio.subprocess.Process | None = None
-        self._writer: asyncio.StreamWriter | None = None
+        self._writer: asyncio.StreamWriter | None = None  # back from the worker: unused
+        self._sender: Sender | None = None  # to the worker
         self._reader_task: asyncio.Task[None] | None = None
         self._pump_task: asyncio.Task[None] | None = None
         self._watch_task: asyncio.Task[None] | None = None
@@ -141,36 +142,48 @@ class OpcuaPublisher:
                  self.host.cfg.opcua.endpoint, namespace_uri(self.host.cfg), self.pid)
 
     async def _spawn(self) -> None:
-        ours, theirs = socket.socketpair()
+        # two socket pairs: to the worker (blocking, from the Sender's thread) and back
+        # (the loop's reader)
+        out_ours, out_theirs = socket.socketpair()
+        in_ours, in_theirs = socket.socketpair()
         env = dict(os.environ)
         env["PYTHONPATH"] = os.pathsep.join(
             [str(REPO), *filter(None, [env.get("PYTHONPATH")])])
         try:
             proc = await asyncio.create_subprocess_exec(
-                sys.executable, "-m", "service.opcua.worker", "--fd", str(theirs.fileno()),
-                pass_fds=(theirs.fileno(),), env=env, cwd=str(REPO),
+                sys.executable, "-m", "service.opcua.worker",
+                "--fd-in", str(out_theirs.fileno()), "--fd-out", str(in_theirs.fileno()),
+                pass_fds=(out_theirs.fileno(), in_theirs.fileno()), env=env, cwd=str(REPO),
                 stdin=asyncio.subprocess.DEVNULL)
+        except Exception:
+            out_ours.close()
+            in_ours.close()
+            raise
         finally:
-            theirs.close()
+            out_theirs.close()
+            in_theirs.close()
         self._proc, self.pid = proc, proc.pid
-        reader, writer = await asyncio.open_connection(sock=ours)
+        reader, writer = await asyncio.open_connection(sock=in_ours)
         self._reset_link()
+        sender = Sender(out_ours)
         cfg = self.host.cfg
-        write_message(writer, ("init", {"opcua": cfg.opcua, "tokens": list(cfg.tokens),
-                                        "data_dir": str(cfg.service.data_dir),
-                                        "ns_uri": namespace_uri(cfg)}))
+        sender.send(("init", {"opcua": cfg.opcua, "tokens": list(cfg.tokens),
+                              "data_dir": str(cfg.service.data_dir),
+                              "ns_uri": namespace_uri(cfg)}))
         self._tokens_sent = cfg.tokens
         try:
             first = await asyncio.wait_for(read_message(reader), START_WAIT_S)
         except (TimeoutError, asyncio.IncompleteReadError, ConnectionError) as e:
             await self._kill(proc)
+            sender.close()
             writer.close()
             raise RuntimeError(f"the OPC UA worker did not start ({type(e).__name__})") from None
         if first[0] != "listening":
             await self._kill(proc)
+            sender.close()
             writer.close()
             raise RuntimeError(str(first[1]) if len(first) > 1 else str(first))
-        self._writer = writer
+        self._sender, self._writer = sender, writer
         self._down = ""
         self._reader_task = asyncio.create_task(self._read(reader), name="opcua-worker-read")
         if self._began:
@@ -229,6 +242,9 @@ class OpcuaPublisher:
         for k in ("frames", "updates", "events", "errors", "cpu_s"):
             self._base[k] = self._base.get(k, 0) + self._child.get(k, 0)
         self._child = {}
+        if self._sender is not None:
+            self._sender.close()
+            self._sender = None
         if self._writer is not None:
             self._writer.close()
             self._writer = None
@@ -257,8 +273,8 @@ class OpcuaPublisher:
                 t.add_done_callback(self._acks.discard)
 
     def _send(self, msg: tuple[Any, ...]) -> None:
-        if self._writer is not None and not self._writer.is_closing():
-            write_message(self._writer, msg)
+        if self._sender is not None:
+            self._sender.send(msg)
 
     # -- the plant and the publishing -----------------------------------------------------
     def begin(self) -> None:
@@ -482,6 +498,8 @@ class OpcuaPublisher:
             except TimeoutError:
                 log.warning("OPC UA worker did not stop within %g s; killed", STOP_WAIT_S)
                 await self._kill(proc)
+        if self._sender is not None:
+            self._sender.close()
         if self._writer is not None:
             self._writer.close()
         if self._reader_task is not None:

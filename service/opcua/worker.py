@@ -1,5 +1,6 @@
-"""The OPC UA worker process: ``python -m service.opcua.worker --fd N``, started by the
-service (:class:`service.opcua.host.OpcuaPublisher`) with one end of a socket pair.
+"""The OPC UA worker process: ``python -m service.opcua.worker --fd-in N --fd-out M``,
+started by the service (:class:`service.opcua.host.OpcuaPublisher`) with one end of each of
+two socket pairs.
 
 It runs the asyncua server (:mod:`service.opcua.server`) so that the server's Python work
 holds this process's interpreter lock, not the service's: the analysis threads never wait
@@ -29,10 +30,14 @@ __all__ = ["main", "serve"]
 log = logging.getLogger("quaver.opcua")
 ACK_WAIT_S = 10.0  # the longest wait for the service's answer to an Acknowledge (our choice)
 STATS_S = 0.5  # counters to the service this often (our choice)
+READ_LIMIT = 16 * 1024 * 1024  # the reader's buffer (our choice)
 
 
-async def serve(sock: socket.socket) -> int:
-    reader, writer = await asyncio.open_connection(sock=sock)
+async def serve(sock_in: socket.socket, sock_out: socket.socket) -> int:
+    # a batch with spectra is megabytes: read it in few turns of the loop
+    # (each pair's unused half is kept: a StreamWriter collected closes its socket)
+    reader, _unused_writer = await asyncio.open_connection(sock=sock_in, limit=READ_LIMIT)
+    _unused_reader, writer = await asyncio.open_connection(sock=sock_out)
     loop = asyncio.get_running_loop()
     first = await read_message(reader)
     if first[0] != "init":
@@ -121,13 +126,14 @@ async def serve(sock: socket.socket) -> int:
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(prog="python -m service.opcua.worker")
-    ap.add_argument("--fd", type=int, required=True, help="our end of the service's socket pair")
+    ap.add_argument("--fd-in", type=int, required=True, help="the service's messages to us")
+    ap.add_argument("--fd-out", type=int, required=True, help="ours to the service")
     args = ap.parse_args(argv)
     logging.basicConfig(level=logging.WARNING, stream=sys.stderr,
                         format="%(asctime)s opcua-worker[%(process)d] %(levelname)s "
                                "%(name)s: %(message)s")
-    sock = socket.socket(fileno=args.fd)
-    return asyncio.run(serve(sock))
+    return asyncio.run(serve(socket.socket(fileno=args.fd_in),
+                             socket.socket(fileno=args.fd_out)))
 
 
 if __name__ == "__main__":
