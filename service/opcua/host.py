@@ -31,6 +31,7 @@ from ..config import Config
 from ..hub import Hub, Subscriber
 from ..spectra import spectrum_values
 from ..store import StoreError
+from ..types import SpectralFrame
 from .layout import WAITING, ChannelLayout, channel_code, namespace_uri, plan, value_code
 from .link import Sender, read_message
 from .pack import ALARM_VARS, code_index, pack_frames
@@ -46,6 +47,34 @@ STOP_WAIT_S = 5.0  # then the worker is killed (our choice)
 REST_MIN_S, REST_MAX_S = 0.005, 0.25  # rests gathered (timer overhead), capped (our choice)
 RESTART_MIN_S, RESTART_MAX_S = 1.0, 30.0  # pause before restarting a worker, doubling
 REPO = Path(__file__).resolve().parents[2]  # holds the service and dsp packages
+
+
+class FrameLog(Subscriber):
+    """A hub subscriber that keeps every frame in order, not only the newest of each
+    channel: a block of the source may finish two frames of a channel in one push, and the
+    hub's usual subscriber kept only the second (a quarter of the frames at 12.5 frames/s
+    from 0.1 s blocks). Beyond ``limit`` frames waiting (the worker lags) it keeps the
+    newest of each channel and profile; ``missed`` counts the rest."""
+
+    def __init__(self, limit: int) -> None:
+        super().__init__(None, max_events=4096, profiles=frozenset({"*"}))
+        self.log: list[SpectralFrame] = []
+        self.limit = max(1, limit)
+
+    def offer(self, frame: SpectralFrame) -> None:
+        self.log.append(frame)
+        if len(self.log) > self.limit:
+            newest = {(f.channel, f.profile): f for f in self.log}
+            self.missed += len(self.log) - len(newest)
+            self.log = list(newest.values())
+        self._wake.set()
+
+    def pending(self) -> int:
+        return len(self.log) + len(self.events)
+
+    def take(self) -> list[SpectralFrame]:
+        out, self.log = self.log, []
+        return out
 
 
 class OpcuaHost(Protocol):
@@ -96,7 +125,7 @@ class OpcuaPublisher:
         self._reader_task: asyncio.Task[None] | None = None
         self._pump_task: asyncio.Task[None] | None = None
         self._watch_task: asyncio.Task[None] | None = None
-        self._sub: Subscriber | None = None
+        self._sub: FrameLog | None = None
         self._stopping = False
         self._began = False
         self._ready = False  # the worker's address space is built
@@ -283,9 +312,9 @@ class OpcuaPublisher:
         if self.state != "running" or self._began:
             return
         self._began = True
-        self._sub = Subscriber(None, max_events=4096, profiles=frozenset({"*"}))
-        self.host.hub.subscribers.add(self._sub)
         self._send_plant()
+        self._sub = FrameLog(2 * max(1, len(self._profiles)))
+        self.host.hub.subscribers.add(self._sub)
         self._pump_task = asyncio.create_task(self._pump(), name="opcua-publisher")
 
     def _send_plant(self) -> None:
@@ -336,7 +365,7 @@ class OpcuaPublisher:
                     except UnknownAlarm:  # a channel-state event ("<channel>.status")
                         pass
                     self._send(("event", ev))
-                if sub.frames and self._inflight < MAX_INFLIGHT:
+                if sub.log and self._inflight < MAX_INFLIGHT:
                     self._send_frames(sub, now)
                 if now - last_tick >= TICK_S:
                     last_tick = now
@@ -363,13 +392,12 @@ class OpcuaPublisher:
                 log.exception("OPC UA publisher")
                 await asyncio.sleep(TICK_S)
 
-    def _send_frames(self, sub: Subscriber, now: float) -> None:
-        frames, sub.frames = sub.frames, {}
+    def _send_frames(self, sub: FrameLog, now: float) -> None:
         chans = self.host.hub.channels
         spectra = self.host.cfg.opcua.spectra
         picked, index, statuses, changed = [], [], [], set()
-        for key, f in frames.items():
-            k = self._profiles.get(key)
+        for f in sub.take():
+            k = self._profiles.get((f.channel, f.profile))
             if k is None or (len(f.bands), len(f.tones)) != self._shape[k]:
                 continue  # not in the address space (a reload changed the set-up)
             st = chans[f.channel]
