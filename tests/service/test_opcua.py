@@ -504,6 +504,9 @@ def test_a_killed_worker_is_restarted_and_the_analysis_goes_on(tmp_path: Path) -
         h = s.health()["opcua"]
         first = h["worker_pid"]
         assert first != s.pid and _pid_alive(first) and h["restarts"] == 0
+        # the worker yields the cores to the analysis (nice is additive, at most 19: POSIX)
+        assert os.getpriority(os.PRIO_PROCESS, first) == min(
+            19, os.getpriority(os.PRIO_PROCESS, s.pid) + 10)
         p = Producer(s.ports["s"])
         try:
             p.amp = 0.3
