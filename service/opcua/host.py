@@ -360,6 +360,9 @@ class OpcuaPublisher:
                     last_tick = last_alarms = now
                 while sub.events:
                     ev = sub.events.popleft()
+                    if "notice" in ev:  # the rules were reloaded: every row, new rules' nodes
+                        self._send_alarms(self.host.alarms.views())
+                        continue
                     try:
                         self._send_alarms([self.host.alarms.view(str(ev["rule"]))])
                     except UnknownAlarm:  # a channel-state event ("<channel>.status")
