@@ -19,7 +19,8 @@ from typing import Any, TypeVar
 
 import numpy as np
 import pytest
-from conftest import (
+
+from tests.service.conftest import (
     SMALL_FS,
     RunningService,
     free_ports,
@@ -132,7 +133,7 @@ def test_without_asyncua_the_service_imports_and_the_server_says_what_to_install
     import subprocess
     import sys
 
-    from conftest import REPO, child_env
+    from tests.service.conftest import REPO, child_env
 
     r = subprocess.run([sys.executable, "-c", code], cwd=REPO, env=child_env(),
                        capture_output=True, text=True, timeout=60, check=False)
