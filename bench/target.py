@@ -64,7 +64,7 @@ def run_service(workdir: Path, analysis: dict[str, Any], sources: list[dict[str,
                 ) -> Iterator[BenchService]:
     """Start the service for ``sources`` (each on a free loopback port) in ``workdir``; wait
     until /api/v1/health answers; always stop it on leaving. In a session of its own, so
-    Ctrl-C reaches the bench, which then stops it. ``extra``: more tables (e.g. ``mqtt``)."""
+    Ctrl-C reaches the bench, which then stops it. ``extra``: more tables (``mqtt``, ``opcua``)."""
     doc = config_doc(analysis, [{**s, "listen": "auto"} for s in sources], speed_rpm)
     doc.update(extra or {})
     with harness.run_service(doc, workdir, new_session=True) as child:

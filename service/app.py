@@ -22,6 +22,7 @@ from .history import SpectrumHistory, alarm_row
 from .hub import Hub
 from .mqtt import MqttPublisher
 from .notify import Notifier
+from .opcua import OpcuaPublisher
 from .operator import commit_action
 from .pipeline import ChannelState, SourcePipeline, channel_states
 from .profiles import ProfileBank
@@ -100,6 +101,8 @@ class Service:
         self.mqtt = MqttPublisher(cfg, self.hub) if cfg.mqtt.enabled else None
         # stored spectra: interval means taken on the loop, encoded on the writer thread
         self.history = SpectrumHistory(hist.interval_s) if hist.enabled else None
+        # [opcua]: a hub subscriber like any client (asyncua is imported when it starts)
+        self.opcua = OpcuaPublisher(self) if cfg.opcua.enabled else None
 
     # -- lifecycle ---------------------------------------------------------------------
     async def start(self) -> None:
@@ -129,6 +132,8 @@ class Service:
             self.notifier.start()
         if self.mqtt is not None:  # before the sources: it sees every frame and event
             await self.mqtt.start(self.store.store_id)
+        if self.opcua is not None:  # like a source's port: an endpoint it cannot bind fails;
+            await self.opcua.start()  # before the sources: asyncua's set-up holds the loop ~2 s
         for p in self.pipelines:
             await p.source.start()
         self.started_mono = time.monotonic()
@@ -137,6 +142,8 @@ class Service:
         for p in self.pipelines:
             self.tasks.append(asyncio.create_task(self._run(p), name=f"pipeline-{p.source.id}"))
         self.tasks.append(asyncio.create_task(self._watch(), name="quality-watch"))
+        if self.opcua is not None:
+            self.opcua.begin()
 
     async def _run(self, p: SourcePipeline) -> None:
         await run_supervised(self, p)
@@ -148,6 +155,8 @@ class Service:
         await refresh_quality(self, channels)
 
     async def stop(self) -> None:
+        if self.opcua is not None:
+            await self.opcua.stop()
         for t in self.tasks:
             t.cancel()
         await asyncio.gather(*self.tasks, return_exceptions=True)

@@ -13,6 +13,7 @@ from .config import Config
 from .hub import Hub
 from .mqtt import MqttPublisher
 from .notify import Notifier
+from .opcua import OpcuaPublisher
 from .store import Store
 
 
@@ -47,6 +48,11 @@ class ServiceContext(Protocol):
     @property
     def mqtt(self) -> MqttPublisher | None:
         """The MQTT publisher, None without [mqtt] enabled."""
+        ...
+
+    @property
+    def opcua(self) -> OpcuaPublisher | None:
+        """The OPC UA server, None unless [opcua] is enabled."""
         ...
 
     async def reload(self) -> dict[str, Any]:

@@ -24,7 +24,9 @@ def health(hub: HubDep, service: MaybeServiceDep, cfg: ConfigDep) -> dict[str, A
     store cannot write (monitoring, alarms and the API go on; trends, events and evidence
     are not being kept — see ``store``), or a ``[[notify]]`` entry keeps failing (``notify``:
     per entry the outbox rows pending, sent, failed and limited, and the last error), or the
-    ``[mqtt]`` broker cannot be reached (``mqtt``: connected, published, backlog, dropped …)."""
+    ``[mqtt]`` broker cannot be reached (``mqtt``: connected, published, backlog, dropped …),
+    or the ``[opcua]`` server is not running (``opcua``: state, sessions, frames and values written,
+    frames dropped, events, errors)."""
     states = Counter(st.status for st in hub.channels.values())
     not_ok = [
         {"channel": st.id, "status": st.status, "cause": st.fault,
@@ -50,12 +52,16 @@ def health(hub: HubDep, service: MaybeServiceDep, cfg: ConfigDep) -> dict[str, A
     notify_failing = notify is not None and not notify["ok"]
     mqtt = service.mqtt.health() if service is not None and service.mqtt is not None else None
     mqtt_failing = mqtt is not None and not mqtt["ok"]
+    opcua = service.opcua.health() if service is not None and service.opcua is not None else None
+    opcua_failing = opcua is not None and not opcua["ok"]
+    degraded = (store_failing or not_ok or failed or notify_failing or mqtt_failing
+                or opcua_failing)
     return with_times({
-        "status": "degraded" if (store_failing or not_ok or failed or notify_failing
-                                 or mqtt_failing) else "ok",
+        "status": "degraded" if degraded else "ok",
         "store": store_health,
         "notify": notify,
         "mqtt": mqtt,
+        "opcua": opcua,
         "version": __version__,
         "uptime_s": round((time.time_ns() - hub.started_ns) / 1e9, 3),
         "channels": dict(states),

@@ -213,6 +213,8 @@ class _ServiceCollector(Collector):
             yield from _notify_metrics(self.service.notifier.health())
         if self.service.mqtt is not None:
             yield from _mqtt_metrics(self.service.mqtt.health())
+        if self.service.opcua is not None:
+            yield from _opcua_metrics(self.service.opcua.health())
         for key, what in (("write_errors", "Failed store writes"),
                           ("events_written", "Alarm events committed"),
                           ("trend_buckets_written", "Trend buckets committed"),
@@ -269,6 +271,24 @@ def _mqtt_metrics(h: dict[str, Any]) -> Iterator[Metric]:
         c = CounterMetricFamily(f"quaver_mqtt_{k}", what)
         c.add_metric([], float(h[k]))
         yield c
+def _opcua_metrics(h: dict[str, Any]) -> Iterator[Metric]:
+    """The [opcua] server: 1 while running, sessions, and its counters since start."""
+    up = GaugeMetricFamily("quaver_opcua_up", "1 while the OPC UA server runs")
+    up.add_metric([], 1.0 if h["ok"] else 0.0)
+    sessions = GaugeMetricFamily("quaver_opcua_sessions", "OPC UA sessions open")
+    sessions.add_metric([], float(h["sessions"]))
+    yield from (up, sessions)
+    for key, what in (("frames", "Frames written into the address space"),
+                      ("updates", "Node values written (values, states, alarms)"),
+                      ("dropped", "Frames replaced by a newer one before they were written"),
+                      ("events", "OPC UA events fired (alarm and channel-state changes)"),
+                      ("errors", "Failed writes or publisher passes"),
+                      ("restarts", "OPC UA worker processes started again after one died"),
+                      ("worker_cpu_s", "CPU seconds of the OPC UA worker processes")):
+        name = "worker_cpu_seconds" if key == "worker_cpu_s" else key
+        m = CounterMetricFamily(f"quaver_opcua_{name}", what)
+        m.add_metric([], float(h[key]))
+        yield m
 
 
 @router.get(

@@ -17,6 +17,8 @@ def _dashboard(args: argparse.Namespace) -> int:
             raise CliError(f"--{opt} does not apply to --dashboard", 2)
     if args.short:
         raise CliError("--short does not apply to --dashboard (use e.g. --minutes 0.5)", 2)
+    if args.opcua:
+        raise CliError("--opcua applies to --service", 2)
     from bench.dashboard import main
     from bench.pageprobe import CHROMIUM
     from bench.plant import PlantPlan
@@ -89,6 +91,26 @@ def _mqtt(args: argparse.Namespace) -> int:
         raise CliError(f"--mqtt: {e}", 1) from None
 
 
+def _opcua(args: argparse.Namespace) -> int:
+    if args.repeats is not None or args.short:
+        raise CliError("--repeats and --short do not apply to --service --opcua", 2)
+    try:
+        import asyncua  # noqa: F401
+    except ImportError:
+        raise CliError("--opcua needs asyncua (pip install 'quaver[opcua]')", 1) from None
+    from bench.opcua import main
+
+    channels = 256
+    if args.channels is not None:
+        try:
+            channels = int(args.channels)
+        except ValueError:
+            raise CliError(f"--channels {args.channels!r}: expected one count with --opcua",
+                           2) from None
+    seconds = 20.0 if args.seconds is None else float(args.seconds)
+    return int(main(channels, seconds, as_json=args.json is True))
+
+
 def cmd_bench(args: argparse.Namespace) -> int:
     if args.dashboard:
         return _dashboard(args)
@@ -101,6 +123,10 @@ def cmd_bench(args: argparse.Namespace) -> int:
         raise CliError("--mqtt applies to --service only", 2)
     if args.service and args.mqtt is not None:
         return _mqtt(args)
+    if args.opcua and not args.service:
+        raise CliError("--opcua applies to --service", 2)
+    if args.opcua:
+        return _opcua(args)
     if args.service:
         import bench as loadbench
 

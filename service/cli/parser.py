@@ -238,6 +238,11 @@ def build_parser() -> argparse.ArgumentParser:
                        "against a generated plant fed at real time: first full render, "
                        "main-thread busy share, frame rate, retained heap, bytes/s, service CPU "
                        "with the page open and closed, abnormal machines in the first screen")
+    p.add_argument("--opcua", action="store_true",
+                   help="with --service: instead of the load phases, the service's CPU per "
+                   "frame with the [opcua] server off, on, and on without spectra, with a "
+                   "client subscribed to every channel's overall and bands (--channels one "
+                   "count, default 256; --seconds per run, default 20)")
     p.add_argument("--short", action="store_true", help="quick run: 1 and 8 channels, 0.5 s "
                    "(with --service: the CI-sized run, 16 and 32 channels, 10 clients, memory "
                    "after 10^3 and 10^5 frames, under a minute)")

@@ -27,6 +27,7 @@ from .load import load_config, parse_config
 from .models import MODELS, Config
 from .mqtt import MqttConfig
 from .notify import NotifyConfig, QuietHours
+from .opcua import OpcuaConfig
 from .plant import (
     AlarmConfig,
     BandConfig,
@@ -82,6 +83,7 @@ __all__ = [
     "MachineConfig",
     "HistorySettings",
     "NotifyConfig",
+    "OpcuaConfig",
     "QuietHours",
     "ServiceSettings",
     "SimulatedSourceConfig",

@@ -12,6 +12,7 @@ from pydantic import BaseModel
 
 from .mqtt import MqttConfig
 from .notify import NotifyConfig, QuietHours
+from .opcua import OpcuaConfig
 from .plant import (
     AlarmConfig,
     BandConfig,
@@ -53,6 +54,7 @@ def describe_settings() -> list[tuple[str, str, str, str]]:
         ("[[notify]]", NotifyConfig),
         ("[[notify]] quiet_hours", QuietHours),
         ("[mqtt]", MqttConfig),
+        ("[opcua]", OpcuaConfig),
     ]
     rows = []
     for table, model in tables:

@@ -19,6 +19,7 @@ from .base import ID_PATTERN, SHA256_PATTERN, ConfigError
 from .checks import _cross_check, notify_env_problems
 from .models import MODELS, Config
 from .mqtt import mqtt_problems
+from .opcua import anchor_opcua_paths, opcua_problems
 from .salvage import salvage
 from .sources import SOURCE_KINDS, FileSourceConfig
 
@@ -74,7 +75,8 @@ def parse_config(
         if salvaged is not None:
             problems += [p for p in _cross_check(*salvaged) if p not in problems]
         raise ConfigError(problems, source=source) from None
-    problems = _cross_check(cfg) + notify_env_problems(cfg, env) + mqtt_problems(cfg, env)
+    problems = (_cross_check(cfg) + notify_env_problems(cfg, env) + mqtt_problems(cfg, env)
+                + opcua_problems(cfg, base_dir))
     if problems:
         raise ConfigError(problems, source=source)
     if base_dir is not None:
@@ -89,6 +91,7 @@ def parse_config(
         for s in cfg.sources:
             if isinstance(s, FileSourceConfig):
                 s.path = str(base_dir / s.path)
+        anchor_opcua_paths(cfg.opcua, base_dir)
     return cfg
 
 

@@ -11,6 +11,7 @@ from pydantic import BaseModel, Field
 from .base import Id, StrictModel
 from .mqtt import MqttConfig
 from .notify import NotifyConfig, QuietHours
+from .opcua import OpcuaConfig
 from .plant import (
     AlarmConfig,
     BandConfig,
@@ -71,6 +72,10 @@ class Config(StrictModel):
         default_factory=lambda: MqttConfig.model_validate({}),
         description="[mqtt]: publishing to an MQTT broker (service.mqtt)",
     )
+    opcua: OpcuaConfig = Field(
+        default_factory=lambda: OpcuaConfig.model_validate({}),
+        description="[opcua]: the optional OPC UA server (service.opcua)",
+    )
 
 
 MODELS: tuple[type[BaseModel], ...] = (
@@ -94,4 +99,5 @@ MODELS: tuple[type[BaseModel], ...] = (
     NotifyConfig,
     QuietHours,
     MqttConfig,
+    OpcuaConfig,
 )
