@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from typing import Annotated, Any, Literal
 
-from pydantic import AfterValidator, BaseModel, Field, create_model, model_validator
+from pydantic import AfterValidator, BaseModel, Field, PlainValidator, create_model, model_validator
 
 from dsp.types import Amplitude, AveragingMode, LinearEnd, OutputUnit, Quantity, WindowName
 from dsp.windows import DEFAULT_KAISER_BETA
@@ -33,10 +33,19 @@ def _valid_band(edges: list[float]) -> list[float]:
     return edges
 
 
+def _envelope_band(v: object) -> str | list[float]:
+    """'auto' or [lo_hz, hi_hz]: one validator, so a bad value gives one error at the key
+    (a union would give one per member, named by pydantic's member tags)."""
+    if v == "auto":
+        return "auto"
+    if isinstance(v, list) and len(v) == 2 and all(
+            isinstance(x, int | float) and not isinstance(x, bool) for x in v):
+        return _valid_band([float(x) for x in v])
+    raise ValueError(f"must be 'auto' or [lo_hz, hi_hz] (got {v!r})")
+
+
 ProfileKind = Literal["spectrum", "envelope"]
-EnvelopeBand = Literal["auto"] | Annotated[
-    list[float], Field(min_length=2, max_length=2), AfterValidator(_valid_band)
-]
+EnvelopeBand = Annotated[Literal["auto"] | list[float], PlainValidator(_envelope_band)]
 
 
 class ServiceSettings(StrictModel):

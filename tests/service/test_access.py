@@ -84,6 +84,10 @@ ROUTES: list[tuple[str, str, str]] = [
     ("GET", "/api/v1/channels/a/history/1", "read"),
     ("GET", "/api/v1/channels/a/history/compare?a=0&b=1", "read"),
     ("GET", "/api/v1/channels/a/waterfall", "read"),
+    ("GET", "/api/v1/channels/a/kurtogram", "read"),
+    ("GET", "/api/v1/channels/a/orders", "read"),
+    ("GET", "/api/v1/channels/a/runup", "read"),
+    ("PUT", "/api/v1/channels/a/speed", "ack"),
     ("GET", "/api/v1/windows/hann/response", "read"),
     ("GET", "/api/v1/meta", "read"),
     ("GET", "/api/v1/alarms", "read"),
@@ -112,6 +116,8 @@ ROUTE_TEMPLATES = {  # the app's path templates the ROUTES above stand for
     "/api/v1/admin/reload", "/api/v1/stream", "/api/v1/meta",
     "/api/v1/channels/{channel_id}/waveform", "/api/v1/rules", "/api/v1/alarms/shelved",
     "/api/v1/alarms/ack", "/api/v1/alarms/{rule}/shelve", "/api/v1/alarms/{rule}/unshelve",
+    "/api/v1/channels/{channel_id}/kurtogram", "/api/v1/channels/{channel_id}/orders",
+    "/api/v1/channels/{channel_id}/runup", "/api/v1/channels/{channel_id}/speed",
 }
 
 
@@ -149,7 +155,8 @@ def outcome(base: str, method: str, path: str, caller: str) -> str:
             return str(e.rcvd.code) if e.rcvd is not None else "closed"
     with httpx.Client(base_url=base, timeout=10.0, trust_env=False) as c:
         r = c.request(method, path, headers=headers,
-                      json={} if method == "POST" and "ack" in path else None)
+                      json={} if method == "POST" and "ack" in path
+                      else {"rpm": 1000.0} if method == "PUT" else None)
     if r.status_code in (401, 403):
         return str(r.status_code)
     assert r.status_code < 500, (method, path, caller, r.status_code, r.text[:200])

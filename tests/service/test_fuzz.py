@@ -534,6 +534,9 @@ def constraint_of(model: Any, key: str) -> tuple[str, dict[str, Any]]:
         for name in ("gt", "ge", "lt", "le", "min_length", "max_length", "pattern"):
             if getattr(m, name, None) is not None:
                 limits[name] = getattr(m, name)
+    if get_origin(ann) in (Union, types.UnionType) and any(
+            get_origin(a) is list for a in get_args(ann)):
+        return "list", limits  # e.g. an envelope band: 'auto' or [lo_hz, hi_hz]
     if get_origin(ann) is Literal:
         return "literal", {"choices": get_args(ann)}
     if get_origin(ann) is list:
