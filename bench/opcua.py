@@ -85,12 +85,32 @@ class OpcuaClient:
 
 
 MODES = ("off", "on", "on-no-spectra")
+BOTH_MODES = ("off", "mqtt", "on", "both")  # with an MQTT broker: each alone, then both
+
+
+def _extra(mode: str, port: int, share: float | None, mqtt: str | None) -> dict[str, Any]:
+    """The config sections of ``mode``: ``on``/``on-no-spectra`` the OPC UA server (with or
+    without spectra), ``mqtt`` the MQTT publisher (its default ``publish``, QoS 0), ``both``
+    the two together."""
+    extra: dict[str, Any] = {}
+    if mode in ("on", "on-no-spectra", "both"):
+        extra["opcua"] = {"enabled": True, "endpoint": f"opc.tcp://127.0.0.1:{port}/quaver",
+                          "site": "bench", "spectra": mode != "on-no-spectra",
+                          **({} if share is None else {"max_loop_share": share})}
+    if mode in ("mqtt", "both"):
+        if mqtt is None:
+            raise ValueError(f"mode {mode!r} needs an MQTT broker")
+        extra["mqtt"] = {"enabled": True, "broker": mqtt,
+                         "client_id": f"quaver-bench-{os.getpid()}", "backlog_max": 100000}
+    return extra
 
 
 def run(channels: int = 256, seconds: float = 20.0, workdir: Path | None = None,
-        modes: tuple[str, ...] = MODES, share: float | None = None) -> dict[str, Any]:
+        modes: tuple[str, ...] = MODES, share: float | None = None,
+        mqtt: str | None = None) -> dict[str, Any]:
     """The runs of ``modes`` (``share``: the server's ``max_loop_share``, default its
-    default); a JSON-ready report."""
+    default; ``mqtt``: the broker of the ``mqtt`` and ``both`` modes); a JSON-ready
+    report."""
     plan = BenchPlan()
     n_src = math.ceil(channels / plan.per_source)
     ids = _source_ids(n_src)
@@ -109,14 +129,12 @@ def run(channels: int = 256, seconds: float = 20.0, workdir: Path | None = None,
                 prefix="quaver-bench-opcua-")))
         for mode in modes:
             (port,) = free_ports(1)
-            extra = {} if mode == "off" else {"opcua": {
-                "enabled": True, "endpoint": f"opc.tcp://127.0.0.1:{port}/quaver",
-                "site": "bench", "spectra": mode == "on",
-                **({} if share is None else {"max_loop_share": share})}}
+            extra = _extra(mode, port, share, mqtt)
+            serves = "opcua" in extra
             _say(f"opcua {mode}: a service with {n_src * plan.per_source} channels")
             with run_service(workdir / mode, analysis, sources, extra=extra) as svc:
                 t0 = time.monotonic()
-                while mode != "off" and time.monotonic() - t0 < READY_S:
+                while serves and time.monotonic() - t0 < READY_S:
                     if (svc.get("health").get("opcua") or {}).get("state") == "running":
                         break  # the plant's nodes are all there
                     time.sleep(0.5)
@@ -126,7 +144,7 @@ def run(channels: int = 256, seconds: float = 20.0, workdir: Path | None = None,
                 try:
                     with contextlib.ExitStack() as inner:
                         client = None
-                        if mode != "off":
+                        if serves:
                             chans = [c for sid in ids for c in _channel_ids(sid, plan.per_source)]
                             client = inner.enter_context(OpcuaClient(port, chans, bands))
                         feeder.realtime(ids, WARMUP_S)
@@ -165,25 +183,27 @@ def run(channels: int = 256, seconds: float = 20.0, workdir: Path | None = None,
                             res["client_error"] = client.error
                         health = svc.get("health")
                         res["opcua"] = health.get("opcua")
+                        res["mqtt"] = health.get("mqtt")
                 finally:
                     feeder.close()
             report["runs"][mode] = res
             _say(f"  service CPU {res['service_cpu_ms_per_frame']} ms/frame, "
                  f"{100 * res['service_cpu_share']:.0f} % of a core, drops {res['drops']}")
     off = report["runs"].get("off", {}).get("service_cpu_ms_per_frame")
-    for mode in ("on", "on-no-spectra"):
+    for mode in ("on", "on-no-spectra", "mqtt", "both"):
         on = report["runs"].get(mode, {}).get("service_cpu_ms_per_frame")
         report[f"ratio_{mode}"] = round(on / off, 3) if off and on else None
     return report
 
 
 def format_report(r: dict[str, Any]) -> str:
-    lines = [f"quaver bench --service --opcua: {r['channels']} channels, {r['seconds']:g} s "
+    lines = [f"quaver bench --service --opcua{' --mqtt' if 'both' in r['runs'] else ''}: "
+             f"{r['channels']} channels, {r['seconds']:g} s "
              f"real time per run ({r['machine'].get('cpu', '?')})", "",
              "| [opcua] | frames analysed / expected | service CPU ms/frame (share) | "
              "worker CPU ms/frame (share) | OPC UA frames written | dropped (newest kept) | "
-             "per channel: published / written Hz | client data changes |",
-             "|---|---|---|---|---|---|---|---|"]
+             "per channel: published / written Hz | client data changes | MQTT published |",
+             "|---|---|---|---|---|---|---|---|---|"]
     for mode, res in r["runs"].items():
         wcpu = (f"{res['worker_cpu_ms_per_frame']} ({100 * res['worker_cpu_share']:.0f} %)"
                 if "worker_cpu_s" in res else "—")
@@ -194,18 +214,32 @@ def format_report(r: dict[str, Any]) -> str:
                      f"{res.get('opcua_dropped', '—')} | "
                      f"{res.get('analysis_rate_hz_per_channel', '—')} / "
                      f"{res.get('opcua_rate_hz_per_channel', '—')} | "
-                     f"{res.get('client_changes', '—')} |")
+                     f"{res.get('client_changes', '—')} | "
+                     f"{(res.get('mqtt') or {}).get('published', '—')} |")
     lines.append("")
     lines.append(f"load average at the end: {os.getloadavg()[0]:.2f}")
-    lines.append(f"on/off: {r.get('ratio_on')} (spectra on), {r.get('ratio_on-no-spectra')} "
-                 "(spectra off)")
+    if "both" in r["runs"]:
+        lines.append(f"service CPU per frame ÷ off: MQTT {r.get('ratio_mqtt')}, OPC UA "
+                     f"{r.get('ratio_on')}, both {r.get('ratio_both')}")
+    else:
+        lines.append(f"on/off: {r.get('ratio_on')} (spectra on), "
+                     f"{r.get('ratio_on-no-spectra')} (spectra off)")
     return "\n".join(lines)
 
 
-def main(channels: int = 256, seconds: float = 20.0, as_json: bool = False) -> int:
+def main(channels: int = 256, seconds: float = 20.0, as_json: bool = False,
+         mqtt: str | None = None) -> int:
+    """``quaver bench --service --opcua [--mqtt BROKER]``: with a broker ('auto': a
+    Mosquitto of our own) the runs are off, MQTT alone, OPC UA alone and both."""
+    from .mqtt import broker
     from .report import _interrupts
 
-    with _interrupts():
-        report = run(channels, seconds)
+    with _interrupts(), contextlib.ExitStack() as stack:
+        if mqtt is None:
+            report = run(channels, seconds)
+        else:
+            work = Path(stack.enter_context(tempfile.TemporaryDirectory(prefix="quaver-b2-")))
+            addr, _ = stack.enter_context(broker(mqtt, work / "broker"))
+            report = run(channels, seconds, work, modes=BOTH_MODES, mqtt=addr)
     print(json.dumps(report, indent=1) if as_json else format_report(report))
     return 0

@@ -82,6 +82,23 @@ class Subscriber:
     def pending(self) -> int:
         return len(self.frames) + len(self.events)
 
+    def take_frames(self) -> list[SpectralFrame]:
+        """Every pending frame (the newest of each channel and profile) at once."""
+        frames, self.frames = self.frames, {}
+        return list(frames.values())
+
+    async def wait(self, timeout: float) -> None:
+        """Until something is offered or ``timeout`` s pass (no error either way); returns at
+        once while an event is pending."""
+        if self.events:
+            return
+        self._wake.clear()
+        handle = asyncio.get_running_loop().call_later(timeout, self._wake.set)
+        try:
+            await self._wake.wait()
+        finally:
+            handle.cancel()
+
     async def get(self, timeout: float | None = None) -> SpectralFrame | dict[str, object]:
         """The next event (first) or frame; waits at most ``timeout`` s (TimeoutError).
 

@@ -108,7 +108,17 @@ def _opcua(args: argparse.Namespace) -> int:
             raise CliError(f"--channels {args.channels!r}: expected one count with --opcua",
                            2) from None
     seconds = 20.0 if args.seconds is None else float(args.seconds)
-    return int(main(channels, seconds, as_json=args.json is True))
+    if args.mqtt is not None and args.mqtt != "auto":
+        from ..config.base import parse_listen
+
+        try:
+            parse_listen(args.mqtt)
+        except ValueError as e:
+            raise CliError(f"--mqtt: {e} (or 'auto')", 2) from None
+    try:
+        return int(main(channels, seconds, as_json=args.json is True, mqtt=args.mqtt))
+    except RuntimeError as e:  # no mosquitto for 'auto'; the service did not start
+        raise CliError(f"--opcua: {e}", 1) from None
 
 
 def cmd_bench(args: argparse.Namespace) -> int:
@@ -121,7 +131,7 @@ def cmd_bench(args: argparse.Namespace) -> int:
         raise CliError("--json FILE applies to --dashboard; use --json alone to print JSON", 2)
     if args.mqtt is not None and not args.service:
         raise CliError("--mqtt applies to --service only", 2)
-    if args.service and args.mqtt is not None:
+    if args.service and args.mqtt is not None and not args.opcua:
         return _mqtt(args)
     if args.opcua and not args.service:
         raise CliError("--opcua applies to --service", 2)

@@ -242,7 +242,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="with --service: instead of the load phases, the service's CPU per "
                    "frame with the [opcua] server off, on, and on without spectra, with a "
                    "client subscribed to every channel's overall and bands (--channels one "
-                   "count, default 256; --seconds per run, default 20)")
+                   "count, default 256; --seconds per run, default 20); with --mqtt too: "
+                   "off, MQTT alone, OPC UA alone and both on")
     p.add_argument("--short", action="store_true", help="quick run: 1 and 8 channels, 0.5 s "
                    "(with --service: the CI-sized run, 16 and 32 channels, 10 clients, memory "
                    "after 10^3 and 10^5 frames, under a minute)")

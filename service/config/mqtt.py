@@ -103,6 +103,13 @@ class MqttConfig(StrictModel):
         "spectrum (every spectrum_interval_s) | status (retained channel states) | alarms "
         "(alarm and state events).",
     )
+    interval_s: float = Field(
+        1.0, ge=0.0, le=3600.0,
+        description="Shortest time between two band and tone messages of one channel and "
+        "profile, s: each round publishes the newest frame of every channel (0: every "
+        "analysed frame, several a second per channel). Alarm events and status changes "
+        "are sent at once whatever this is.",
+    )
     spectrum_interval_s: float = Field(
         60.0, ge=1.0, le=86400.0,
         description="Shortest time between two spectra of one channel and profile, s.",

@@ -7,7 +7,9 @@ the store's tables or the engine.
 Real-time contract
     Nothing on the event loop waits on the broker or on the network. The hub hands this
     subscriber the newest frame per channel and profile (a publisher that falls behind skips
-    frames, counted as ``skipped``); the messages made from them go into the backlog, a
+    frames, counted as ``skipped``; with ``interval_s`` > 0 frames are published in rounds,
+    the newest of each channel every ``interval_s``, and the ones replaced in between are
+    counted there too); the messages made from them go into the backlog, a
     bounded deque (beyond ``backlog_max`` the oldest is dropped and counted as ``dropped``).
     The network thread is the only one that touches the paho client: it connects (again,
     with back-off from 1 s doubling to ``reconnect_max_s``), hands the backlog to paho in
@@ -292,6 +294,9 @@ class MqttPublisher:
     async def _run(self) -> None:
         sub = self._sub
         assert sub is not None  # started by start(), which subscribes first
+        if self.m.interval_s > 0:
+            await self._run_rounds(sub, self.m.interval_s)
+            return
         next_status = 0.0
         made = 0
         while True:
@@ -300,17 +305,9 @@ class MqttPublisher:
             except TimeoutError:
                 item = None
             try:
-                if self._fresh:
-                    self._fresh = False
-                    self._sent_status.clear()  # a broker that restarted forgot them
-                    next_status = 0.0
-                now = time.monotonic()
-                if now >= next_status:
-                    next_status = now + STATUS_PERIOD_S
-                    if "status" in self.kinds:
-                        self._states()
+                next_status = self._status_due(next_status)
                 if isinstance(item, SpectralFrame):
-                    self._frame(item, now)
+                    self._frame(item, time.monotonic())
                 elif item is not None:
                     self._event(item)
             except Exception as err:  # one bad message must not end publishing
@@ -319,6 +316,53 @@ class MqttPublisher:
             made += 1
             if made % YIELD_EVERY == 0:
                 await asyncio.sleep(0)
+
+    async def _run_rounds(self, sub: Subscriber, every_s: float) -> None:
+        """``interval_s`` > 0: alarm events at once, frames in rounds — every ``every_s``
+        the newest frame of each channel and profile (the hub replaced the older ones,
+        counted as ``skipped``), so the broker gets a value per channel per round and the
+        event loop does the work of one frame per channel per round, not per analysis."""
+        loop = asyncio.get_running_loop()
+        next_status = next_round = 0.0
+        while True:
+            try:
+                next_status = self._status_due(next_status)
+                made = 0
+                while sub.events and made < YIELD_EVERY:
+                    self._event(sub.events.popleft())
+                    made += 1
+                now = loop.time()
+                if sub.frames and now >= next_round:
+                    next_round = now + every_s
+                    mono = time.monotonic()
+                    for k, f in enumerate(sub.take_frames(), 1):
+                        self._frame(f, mono)
+                        if k % YIELD_EVERY == 0:
+                            await asyncio.sleep(0)
+            except Exception as err:  # one bad message must not end publishing
+                self._error(f"{type(err).__name__}: {err}")
+                log.exception("MQTT: could not publish")
+            if sub.events:
+                await asyncio.sleep(0)
+                continue
+            now = loop.time()
+            wait = STATUS_PERIOD_S if not sub.frames else max(0.0, next_round - now)
+            if wait > 0:
+                await sub.wait(min(wait, STATUS_PERIOD_S))
+
+    def _status_due(self, next_status: float) -> float:
+        """Send the channel states that changed when their period is up (all of them after
+        a new connection); the next due time."""
+        if self._fresh:
+            self._fresh = False
+            self._sent_status.clear()  # a broker that restarted forgot them
+            next_status = 0.0
+        now = time.monotonic()
+        if now >= next_status:
+            next_status = now + STATUS_PERIOD_S
+            if "status" in self.kinds:
+                self._states()
+        return next_status
 
     def _frame(self, f: SpectralFrame, now: float) -> None:
         st = self.hub.channels.get(f.channel)

@@ -10,6 +10,7 @@ import json
 import signal
 import socket
 import threading
+import time
 from pathlib import Path
 from typing import Any
 
@@ -24,13 +25,13 @@ ALL = ["overall", "bands", "tones", "spectrum", "status", "alarms"]
 
 def mqtt_doc(broker: Broker, **mqtt: Any) -> dict[str, Any]:
     """One framed TCP channel ``a`` on machine ``pump-1`` (band ``b`` 100–150 Hz with its
-    alarm at 0.5 g alert / 1.0 g danger RMS, a tracked tone at 123 Hz), publishing to
-    ``broker``."""
+    alarm at 0.5 g alert / 1.0 g danger RMS, a tracked tone at 123 Hz), publishing every
+    frame (``interval_s`` 0, unless given) to ``broker``."""
     return one_band_config(
         channels=[{"id": "a", "machine": "pump-1"}],
         tones=[{"name": "t123", "hz": 123.0}],
         mqtt={"enabled": True, "broker": broker.address, "client_id": "quaver-under-test",
-              "publish": ALL, "spectrum_interval_s": 1.0, **mqtt},
+              "publish": ALL, "spectrum_interval_s": 1.0, "interval_s": 0.0, **mqtt},
     )
 
 
@@ -179,6 +180,39 @@ class Feeder:
         self.stop_ev.set()
         self.thread.join(timeout=10)
         self.sock.close()
+
+
+@pytest.mark.slow
+def test_interval_publishes_the_newest_frame_per_round_and_events_at_once(
+        tmp_path: Path) -> None:
+    topic = "quaver/pump-1/a/default/bands"
+    with running_broker(tmp_path / "broker") as broker, \
+            Listener(broker, ["quaver/#"]) as sub, \
+            run_service(mqtt_doc(broker, interval_s=0.5), tmp_path / "svc") as svc:
+        feeder = Feeder(svc.ports["s"])
+        try:
+            sub.wait(lambda m: m.topic == topic, "a first bands message", 10)
+            first = svc.get("channels/a/bands")["seq"]
+            t0 = time.monotonic()
+            time.sleep(3.0)
+            last = svc.get("channels/a/bands")["seq"]
+            span = time.monotonic() - t0
+        finally:
+            feeder.stop()
+        bands = stable_rest(svc, "channels/a/bands")
+        # the round after the feed stopped carries the newest frame, the one REST shows
+        mq = svc.wait(lambda: bands_of(sub, bands["seq"]), "the MQTT bands of REST's frame")
+        assert mq.json()["values"]["b"] == bands["bands"][0]["value"]
+        seqs = [m.json()["seq"] for m in sub.got(lambda m: m.topic == topic)]
+        within = [q for q in seqs if first < q <= last]
+        # one message per 0.5 s round (± a round at each end) while the service analysed
+        # many more frames; each round takes the newest, so the seqs only grow
+        assert len(within) <= span / 0.5 + 2, (len(within), span)
+        assert len(within) >= span / 0.5 - 2, (len(within), span)
+        assert last - first > 2 * len(within), (last - first, len(within))
+        assert seqs == sorted(seqs) and len(set(seqs)) == len(seqs)
+        h = svc.health()["mqtt"]
+        assert h["skipped"] > 0 and h["dropped"] == 0 and h["errors"] == 0
 
 
 @pytest.mark.slow
