@@ -1,5 +1,6 @@
 // The plant view's detail cards: one per channel, in machine sections. Only cards on screen
-// (IntersectionObserver) get their canvases, update and draw; updates are coalesced into one
+// (IntersectionObserver on the machine sections: a quarter of the targets of one per card at
+// four channels a machine, and the observer's cost grows with its targets) get their canvases, update and draw; updates are coalesced into one
 // animation frame. DOM and drawing of the cards; the data come from shared.js.
 
 import { API, getJSON, qs } from "./api.js";
@@ -23,6 +24,7 @@ export class Cards {
     this.tops = tops;
     this.cards = new Map(); // channel → card entry
     this.sections = new Map(); // machine → section element
+    this.inSection = new Map(); // section element → its card entries
     this.visible = new Set(); // cards on screen (or nearly)
     this.order = "";
     this.disposed = false;
@@ -37,6 +39,7 @@ export class Cards {
     this.io.disconnect();
     this.visible.clear();
     this.cards.clear();
+    this.inSection.clear();
     const parts = [];
     for (const [machine, chans] of groups) {
       parts.push(html`<section class="machine" data-machine="${machine}" id="m-${machine}"><h2><span class="mglyph"></span>${machineLabel(machine)} <span class="count">${chans.length} channel${chans.length > 1 ? "s" : ""}</span><span class="mack"></span></h2><div class="cards">`);
@@ -64,29 +67,35 @@ export class Cards {
       };
       this.cards.set(e.id, e);
       this._text(e, store.byId.get(e.id)); // every card shows its value from the start
-      this.io.observe(el);
+      const sec = el.closest("section.machine");
+      if (!this.inSection.has(sec)) this.inSection.set(sec, []);
+      this.inSection.get(sec).push(e);
     }
+    for (const sec of this.inSection.keys()) this.io.observe(sec);
   }
 
   _seen(entries) {
     if (this.disposed) return;
     for (const en of entries) {
-      const e = this.cards.get(en.target.dataset.channel);
-      if (!e) continue;
-      if (en.isIntersecting) {
-        this.visible.add(e);
-        if (!e.spark) this._canvases(e);
-        e.spark.surface.setHidden(false);
-        e.bars.surface.setHidden(false);
-        e.shown = {}; // whatever changed while it was away is shown now
-        this._queueSeed(e.id);
-      } else {
-        this.visible.delete(e);
-        e.spark?.surface.setHidden(true);
-        e.bars?.surface.setHidden(true);
-      }
+      for (const e of this.inSection.get(en.target) || []) this._show(e, en.isIntersecting);
     }
     this.onShow?.();
+  }
+
+  /** A card comes into view (or nearly: the observer's margin) or leaves it. */
+  _show(e, on) {
+    if (on) {
+      this.visible.add(e);
+      if (!e.spark) this._canvases(e);
+      e.spark.surface.setHidden(false);
+      e.bars.surface.setHidden(false);
+      e.shown = {}; // whatever changed while it was away is shown now
+      this._queueSeed(e.id);
+    } else {
+      this.visible.delete(e);
+      e.spark?.surface.setHidden(true);
+      e.bars?.surface.setHidden(true);
+    }
   }
 
   /** A card's canvases, made when it first comes into view (a card never seen costs none). */
