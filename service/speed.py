@@ -181,7 +181,9 @@ class SourceSpeeds:
         for cid, ch in self.settings.items():
             st = states[cid]
             st.kind, st.speed_source, st.speed_from = ch.kind, ch.speed_source, ch.speed_from
-            if ch.speed_source == "fixed":
+            if ch.speed_source == "fixed" or (ch.speed_source == "manual"
+                                               and ch.speed_rpm is not None):
+                # a manual speed starts from speed_rpm until one is written
                 st.speed_now_rpm, st.speed_status = float(ch.speed_rpm or math.nan), "ok"
 
     def _dynamic(self, cid: str) -> bool:
