@@ -17,6 +17,7 @@ from dsp.tacho import TachoSettings, TachoTracker, speed_from_spectrum
 from .config import Config, channel_settings
 from .config.plant import ChannelConfig
 from .profiles import ChannelGroup, ProfileBank
+from .runups import SweepRecorder
 from .types import ChannelState
 
 __all__ = ["FrameSpeed", "NotEnoughRevolutions", "RunupCapture", "SourceSpeeds",
@@ -74,9 +75,20 @@ class RunupCapture:
         self.rows: dict[int, dict[str, object]] = {}
         self._sums: dict[int, tuple[np.ndarray, int, float]] = {}
         self.last_bin: int | None = None
+        # run-up / coast-down records (service.runups), with runup_min_rpm … runup_max_rpm
+        self.sweeps = (SweepRecorder(ch.runup_min_rpm, ch.runup_max_rpm, self.rpm_step,
+                                     self.orders)
+                       if ch.runup_min_rpm is not None and ch.runup_max_rpm is not None
+                       else None)
 
     def reset(self, next_index: int) -> None:
         self.x, self.first, self.done_s = np.zeros(0), next_index, -math.inf
+        if self.sweeps is not None:  # a gap: the sweep's steps would not join up
+            self.sweeps.abandon()
+
+    def take_records(self) -> list[dict[str, object]]:
+        """Complete run-up / coast-down records not taken yet (any thread)."""
+        return [] if self.sweeps is None else self.sweeps.take()
 
     def push(self, x: np.ndarray, first_index: int, tracker: TachoTracker, t0_ns: int) -> None:
         if first_index != self.first + self.x.size:
@@ -90,6 +102,8 @@ class RunupCapture:
         run = tracker.run_pulses_s()
         inside = run[(run >= t_lo) & (run <= t_hi)] if t_hi > t_lo else run[:0]
         self.snap = (self.x, self.first, inside)
+        if tracker.status != "ok" and self.sweeps is not None:
+            self.sweeps.abandon()  # pulses lost or implausible: the sweep is not known
         if tracker.status != "ok" or t_hi <= t_lo or not self.orders:
             return
         e = run[(run >= max(t_lo, self.done_s)) & (run <= t_hi)]
@@ -115,9 +129,12 @@ class RunupCapture:
             self._sums[b] = (zs, n, rs)
             self.last_bin = b
             mean = zs / n
+            t_ns = t0_ns - round((t_block - float(tr.t_s[k])) * 1e9)
+            if self.sweeps is not None:
+                self.sweeps.step(float(tr.rpm[k]), t_ns, z[k])
             rows[b] = {
                 "rpm": rs / n,
-                "t_ns": t0_ns - round((t_block - float(tr.t_s[k])) * 1e9),
+                "t_ns": t_ns,
                 "steps": n,
                 "amplitude": [float(a) for a in np.abs(mean)],
                 "phase_deg": [float(p) for p in np.degrees(np.angle(mean))],
