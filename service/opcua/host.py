@@ -47,7 +47,7 @@ START_WAIT_S = 60.0  # the longest wait for a worker to listen (asyncua's set-up
 STOP_WAIT_S = 5.0  # then the worker is killed (our choice)
 REST_MIN_S, REST_MAX_S = 0.005, 0.25  # rests gathered (timer overhead), capped (our choice)
 RESTART_MIN_S, RESTART_MAX_S = 1.0, 30.0  # pause before restarting a worker, doubling
-# a refused SetSpeed as an OPC UA status code (OPC 10000-4 §7.39 names them)
+# a refused SetSpeed as an OPC UA status code (names from IEC 62541-4, docs/references.md)
 SPEED_CODES = {"unknown-channel": "BadNotFound", "not-writable": "BadNotWritable",
                "bad-value": "BadOutOfRange"}
 REPO = Path(__file__).resolve().parents[2]  # holds the service and dsp packages

@@ -17,7 +17,7 @@ from mosquitto import Broker, Listener, running_broker, wait_until
 
 from service.mqtt.payloads import parse_speed
 from service.speedwrite import SpeedRefused
-from tests.service.conftest import one_band_config, run_service
+from tests.service.conftest import REPO, one_band_config, run_service
 
 TOPIC = "quaver/pump-1/a/speed/set"
 NOW_NS = 1_800_000_000_000_000_000
@@ -143,6 +143,15 @@ def test_speed_topics_are_subscribed_again_after_a_broker_restart(tmp_path: Path
 def test_speed_payloads_taken(payload: bytes, want: float | None) -> None:
     # 2027-01-15T08:00:00Z is 1800000000 s after the epoch (POSIX time, common practice)
     assert parse_speed(payload, NOW_NS, 60.0) == want
+    speed_schema().validate(json.loads(payload))  # and docs/mqtt.schema.json agrees
+
+
+def speed_schema() -> Any:
+    """docs/mqtt.schema.json's ``speed_set`` as a validator."""
+    jsonschema = pytest.importorskip("jsonschema")
+    schema = json.loads((REPO / "docs" / "mqtt.schema.json").read_text(encoding="utf-8"))
+    only = {k: v for k, v in schema.items() if k != "oneOf"}
+    return jsonschema.Draft202012Validator({**only, "$ref": "#/$defs/speed_set"})
 
 
 @pytest.mark.parametrize(("payload", "match"), [
@@ -165,3 +174,11 @@ def test_speed_payloads_refused(payload: bytes, match: str) -> None:
     with pytest.raises(SpeedRefused, match=match) as e:
         parse_speed(payload, NOW_NS, 60.0)
     assert e.value.why == "bad-value"
+    # the schema refuses them too, except what only the service's clock can judge (the
+    # time's age) and a time without an offset (the schema's "format" is not enforced)
+    try:
+        doc = json.loads(payload)
+    except ValueError:
+        return  # not JSON at all
+    if "time is" not in match and "ISO 8601" not in match:
+        assert not speed_schema().is_valid(doc), doc
