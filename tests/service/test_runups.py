@@ -176,3 +176,40 @@ def test_records_survive_a_reopen_and_the_oldest_go_beyond_the_bound(tmp_path: P
         assert kept[-1]["id"] == ids[3]  # the three oldest went
         assert [x["channel"] for x in store.runups("b")] == ["b"]
         assert json.dumps(store.runup("a", ids[-1]))  # JSON-safe as stored
+
+
+def test_analyze_finds_the_run_up_of_a_recording(tmp_path: Path) -> None:
+    import tomli_w
+
+    from service.sources.varspeed import VariableSpeedModel
+    from tests.service.conftest import run_cli
+    from tests.service.test_speed import FS, IDS
+
+    model = VariableSpeedModel(fs=FS, ramp_s=30.0)
+    x = model.render(0, int(34 * FS))  # 900 → 1500 r/min in 30 s, then the turn
+    rec = tmp_path / "fan.csv"
+    np.savetxt(rec, x.T, delimiter=",", header=",".join(IDS), comments="", fmt="%.7g")
+    doc = config(fan={"speed_from": "v1-tacho", "runup_orders": [1.0, 7.0],
+                      "runup_rpm_step": 100.0, "runup_min_rpm": 950.0,
+                      "runup_max_rpm": 1450.0})
+    doc["sources"] = [{"id": "v", "kind": "tcp", "listen": "127.0.0.1:9", "format": "f32le",
+                       "sample_rate_hz": FS, "channels": list(IDS)}]
+    cfg = tmp_path / "q.toml"
+    cfg.write_bytes(tomli_w.dumps(doc).encode())
+    out = run_cli("analyze", str(rec), "--rate", str(FS), "-c", str(cfg), "--json")
+    assert out.returncode == 0, out.stderr
+    fan = json.loads(out.stdout)["channels"][0]
+    (ru,) = fan["runups"]
+    # 950 and 1450 r/min at t = 30/π·acos(±5/6) s = 5.6 s and 24.4 s (the model's law)
+    assert ru["kind"] == "run-up" and ru["unit"] == "g" and ru["orders"] == [1.0, 7.0]
+    assert ru["start_s"] == pytest.approx(5.6, abs=0.4)
+    assert ru["end_s"] == pytest.approx(24.4, abs=0.4)
+    rpm = np.array([p["rpm"] for p in ru["rows"]])
+    assert len(rpm) == 6 and 950 < rpm[0] < 1050 and rpm[-1] >= 1450  # 100 r/min bins
+    amp = np.array([p["amplitude"][0] for p in ru["rows"]])
+    # 1X's acceleration at each bin's speed (as in the test above; 3 × 5 %/√steps)
+    want = dict(ORDERS_MM_S)[1.0] * 1e-3 * 2 * np.pi * (rpm / 60) / 9.80665
+    steps = np.array([p["steps"] for p in ru["rows"]])
+    assert np.all(np.abs(amp / want - 1) < 0.15 / np.sqrt(steps))
+    text = run_cli("analyze", str(rec), "--rate", str(FS), "-c", str(cfg))
+    assert "run-up 950->1450 r/min at " in text.stdout and "points of orders 1X, 7X" in text.stdout
