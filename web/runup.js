@@ -82,7 +82,7 @@ export class OrderPlot {
   }
 
   _draw(ctx, w, h) {
-    const box = { L: 58, R: w - 14, T: 10, B: h - 40 };
+    const box = { L: 74, R: w - 14, T: 10, B: h - 40 };
     const { L, R, T, B } = box;
     plotArea(ctx, w, h, box);
     const d = this.data;

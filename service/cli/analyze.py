@@ -378,7 +378,9 @@ def _analyse(run: _Run, rec: Recording, progress: Callable[[int], None]
     ids = tuple(run.ids)
     for start in range(0, n_total, chunk):
         x = np.ascontiguousarray(rec.data[run.rows, start : start + chunk], dtype=np.float32)
-        for f in pipe.process(SampleBlock(RECORDING_SOURCE, ids, x, start, 0, rec.fs)):
+        # times from the recording's first sample (the run-up records' start and end)
+        t0_ns = round(start / rec.fs * 1e9)
+        for f in pipe.process(SampleBlock(RECORDING_SOURCE, ids, x, start, t0_ns, rec.fs)):
             if f.primary:
                 latest[f.channel] = f
         progress(min(start + chunk, n_total))
