@@ -51,13 +51,14 @@ def write_speed(cfg: Config, channels: dict[str, ChannelState], channel: str,
     st = channels.get(channel)
     if st is None:
         raise SpeedRefused("unknown-channel", f"no channel {channel!r}")
-    if st.kind == "tacho":
+    ch = channel_settings(cfg, channel)  # the config's, not the state's: set by the worker
+    if ch.kind == "tacho":
         raise SpeedRefused("not-writable", f"channel {channel!r} is a tacho: it measures speed")
-    configured = channel_settings(cfg, channel).speed_source
+    configured = ch.speed_source
     if configured in ("tacho", "estimated"):
         raise SpeedRefused(
             "not-writable", f"channel {channel!r} has its speed from "
-            f"{'tacho ' + repr(st.speed_from) if st.speed_from else 'its 1X line'}; "
+            f"{'tacho ' + repr(ch.speed_from) if ch.speed_from else 'its 1X line'}; "
             "a written speed would be overridden")
     if manual_only and configured != "manual":
         raise SpeedRefused("not-writable", f"channel {channel!r} is not configured "
