@@ -163,6 +163,7 @@ class Service:
         for p in self.pipelines:
             await p.source.aclose()
             self._store_evidence(p, final=True)
+            self._store_runups(p)
         if self.history is not None:
             self.store.put_history(self.history.flush())
         if self.notifier is not None:
@@ -188,6 +189,7 @@ class Service:
         self, p: SourcePipeline, frames: list[SpectralFrame], latency_s: float
     ) -> None:
         self._store_evidence(p)
+        self._store_runups(p)
         now = time.monotonic()
         for f in frames:
             p.channels[f.channel].last_frame_mono = now
@@ -267,6 +269,16 @@ class Service:
     def _store_evidence(self, p: SourcePipeline, *, final: bool = False) -> None:
         for ev in p.take_evidence(final=final):
             self.store.put_evidence(ev.event_id, ev.spectrum, ev.waveform, ev.fs, ev.t0_ns)
+
+    def _store_runups(self, p: SourcePipeline) -> None:
+        """Queue the run-up / coast-down records the worker completed (service.runups)."""
+        for st in p.channels.values():
+            if st.runup is None:
+                continue
+            for rec in st.runup.take_records():
+                log.info("%s record of %s kept: %d speed bins", rec["kind"], st.id,
+                         len(rec["rows"]))  # type: ignore[arg-type]
+                self.store.put_runup(st.id, st.input_unit, rec)
 
     async def acknowledge(self, rule: str, who: str, note: str) -> dict[str, Any]:
         """Acknowledge ``rule``: the ack event and the alarm state after it are committed

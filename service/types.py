@@ -350,6 +350,8 @@ class RunupSource(Protocol):
 
     def order_spectrum(self, omax: float, lines: int) -> OrderSpectrum: ...
 
+    def take_records(self) -> list[dict[str, object]]: ...
+
 
 class PipelineHealth(Protocol):
     """What the hub shows of a source's pipeline (``service.pipeline.SourcePipeline``)."""

@@ -12,6 +12,7 @@ import { SpectrumPlot } from "./spectrum.js";
 import { LISTED_PEAKS } from "./spectrumlabels.js";
 import { Spectrogram } from "./spectrogram.js";
 import { mountHistory } from "./history.js";
+import { mountRunupPanel } from "./runup.js"; // run-up records of a channel fed by a tacho
 import { BandBars, ThirdsChart, bandRows } from "./bars.js";
 import { TrendChart } from "./trend.js";
 import { alarmListHtml, eventItemHtml } from "./alarms.js";
@@ -105,6 +106,7 @@ export function mount(root, id, { profile = "" } = {}) {
             <span class="hint" id="trend-note"></span></figcaption>
           <canvas id="trend" class="plot-trend"></canvas></figure>
         <figure class="panel" id="wave-panel"></figure>
+        <figure class="panel" id="runup-panel" hidden></figure>
       </div>
       <div>
         <section class="panel" id="bands-panel"><header>Bands <span class="hint" id="bands-unit"></span></header><canvas id="bars" class="plot-bars"></canvas>
@@ -119,7 +121,8 @@ export function mount(root, id, { profile = "" } = {}) {
   const $ = (s) => root.querySelector(s);
   const isEnvelope = () => curProfile()?.kind === "envelope";
   const kgPanel = mountKurtogram($("#kg-panel"), id, { profile: () => cur(), active: isEnvelope });
-  const extras = [mountWave($("#wave-panel"), id), watchName($("#ch-name"), id, app), kgPanel]; // console
+  const runups = mountRunupPanel($("#runup-panel"), id);
+  const extras = [mountWave($("#wave-panel"), id), watchName($("#ch-name"), id, app), kgPanel, runups]; // console
   const readout = $("#readout");
   const specCanvas = $("#spec");
   const sg = new Spectrogram($("#sgram"), { rows: 200 });
@@ -716,6 +719,7 @@ export function mount(root, id, { profile = "" } = {}) {
       labels: () => plot.labels.map((l) => ({ ...l })), // every text drawn on the spectrum, with its box
       notLive: () => $("#ch-lastnote").hidden ? "" : $("#ch-lastnote").textContent,
       speed: () => speedNow(), // the running speed shown ({rpm, source, status, …} or null)
+      runups: () => runups.probe(), // ids of the run-up records listed
     },
     unmount() {
       alive = false;

@@ -17,7 +17,8 @@ import { chName, chTitle, machineLabel } from "./names.js";
 import * as rulesView from "./rules.js";
 import { setupConsole } from "./console.js";
 import * as notFound from "./notfound.js";
-import { isTacho, mountTacho } from "./speed.js";
+import { isTacho, mountTacho, sideSpeedText } from "./speed.js";
+import { mountRunup, runupRoute } from "./runup.js";
 
 app.addEventListener("channels", () => {
   // a channel view opened before the list came, or of a channel that has gone: say so
@@ -101,7 +102,9 @@ function renderSide() {
     for (const c of chans) {
       const k = channelState(c);
       const abn = STATES[k].rank >= STATES.latched.rank;
-      vals.push([c.id, c.latest && isLive(c.status) ? fmtVal(c.latest.overall) : STATES[k].word.toLowerCase()]);
+      // a tacho has no overall: its speed, or what its speed status says (no signal …)
+      vals.push([c.id, isTacho(c) ? sideSpeedText(c, STATES[k].word.toLowerCase())
+        : c.latest && isLive(c.status) ? fmtVal(c.latest.overall) : STATES[k].word.toLowerCase()]);
       parts.push(html`<a class="ch ${abn ? "abn" : ""} ${STATES[k].cls}" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${c.id}" data-state="${k}" title="${chTitle(c.id)}${c.description ? ` — ${c.description}` : ""} — ${STATES[k].word}${overallTitle(c.latest)}"${c.id === cur ? html` aria-current="page"` : ""}>${glyph(k)}<span>${chName(c.id)}</span><span class="v"></span></a>`);
     }
   }
@@ -145,8 +148,12 @@ function route() {
   const main = document.getElementById("main");
   setHTML(main, "");
   const ch = channelRoute();
+  const ru = runupRoute(location.hash);
   let which = "plant";
-  if (ch) {
+  if (ru) {
+    which = "channel"; // a run-up record belongs to its channel
+    view = mountRunup(main, ru.id, ru.rid);
+  } else if (ch) {
     which = "channel";
     if (!store.channels.length) {
       // which kind of channel it is comes with the list (a tacho has no spectrum to ask for)

@@ -42,6 +42,16 @@ export function speedOf(c) {
   return own;
 }
 
+/** A tacho's value in the sidebar: "1 234 r/min" while its speed is ok, else what its speed
+ *  status says ("no signal", "sensor fault"); `fallback` (the channel state's word) without
+ *  a speed at all. */
+export function sideSpeedText(c, fallback) {
+  const sp = c?.speed;
+  if (!sp) return fallback;
+  if (sp.status === "ok" && sp.rpm != null && Number.isFinite(sp.rpm)) return `${Math.round(sp.rpm)} r/min`;
+  return WORDS[sp.status] || fallback;
+}
+
 /** "1 234 r/min · tacho" (with "· no signal" or "· varied" when so); "" for no speed. */
 export function speedText(sp) {
   if (!sp) return "";

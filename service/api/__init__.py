@@ -36,6 +36,7 @@ from . import (
     meta,
     metrics,
     rules,
+    runups,
     security,
     stream,
     trends,
@@ -111,6 +112,7 @@ def create_app(
     app.include_router(rules.router, prefix="/api/v1")
     app.include_router(trends.router, prefix="/api/v1")
     app.include_router(history.router, prefix="/api/v1")
+    app.include_router(runups.router, prefix="/api/v1")
     app.include_router(admin.router, prefix="/api/v1")
     app.include_router(meta.router, prefix="/api/v1")
     app.include_router(metrics.router)

@@ -4,7 +4,6 @@ Reads the hub's latest frames; never touches an engine."""
 
 from __future__ import annotations
 
-import math
 import time
 from typing import Annotated, Any, Literal
 
@@ -14,7 +13,7 @@ from pydantic import BaseModel, Field
 
 from dsp.types import AMPLITUDES, OUTPUT_UNITS, QUANTITIES
 
-from ..config import Config, channel_settings
+from ..config import Config
 from ..hub import Hub
 from ..spectra import (
     band_items,
@@ -27,6 +26,7 @@ from ..spectra import (
     tone_items,
 )
 from ..speed import NotEnoughRevolutions
+from ..speedwrite import SpeedRefused, write_speed
 from ..types import ChannelState, SpectralFrame
 from .deps import (
     NO_FRAME,
@@ -247,26 +247,14 @@ class SpeedBody(BaseModel):
                              "is a tacho channel"},
     },
 )
-def put_speed(channel: ChannelDep, cfg: ConfigDep, who: Operator,
+def put_speed(channel: ChannelDep, hub: HubDep, cfg: ConfigDep, who: Operator,
               body: Annotated[SpeedBody, Body()]) -> dict[str, Any]:
-    if channel.kind == "tacho":
-        raise HTTPException(409, f"channel {channel.id!r} is a tacho: it measures speed")
-    if channel.speed_source in ("tacho", "estimated"):
-        raise HTTPException(
-            409, f"channel {channel.id!r} has its speed from "
-            f"{'tacho ' + repr(channel.speed_from) if channel.speed_from else 'its 1X line'}; "
-            "a written speed would be overridden")
-    # read by the source's worker at its next block (a plain attribute: one writer, here)
-    channel.manual_by = who.name
-    channel.manual_rpm = body.rpm
-    if body.rpm is None:
-        channel.speed_source = channel_settings(cfg, channel.id).speed_source
-        channel.speed_now_rpm = channel.speed_rpm if channel.speed_rpm is not None else math.nan
-        channel.speed_status = "ok" if channel.speed_rpm is not None else "no-signal"
-        return {"channel": channel.id, "speed": channel.speed_dict()}
-    channel.speed_source = "manual"
-    channel.speed_now_rpm, channel.speed_status = float(body.rpm), "ok"
-    return {"channel": channel.id, "speed": channel.speed_dict()}
+    try:
+        speed = write_speed(cfg, hub.channels, channel.id, body.rpm, who.name,
+                            manual_only=False)
+    except SpeedRefused as e:
+        raise HTTPException(409 if e.why == "not-writable" else 422, str(e)) from None
+    return {"channel": channel.id, "speed": speed}
 
 
 @router.get(

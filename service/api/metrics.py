@@ -262,7 +262,10 @@ def _mqtt_metrics(h: dict[str, Any]) -> Iterator[Metric]:
                 "lost": "QoS 0 MQTT messages lost with a failing link",
                 "skipped": "Frames the MQTT publisher skipped for a newer one (it fell behind)",
                 "errors": "MQTT connection and publish errors since start",
-                "connects": "Connections made to the MQTT broker since start"}
+                "connects": "Connections made to the MQTT broker since start",
+                "speed_written": "Running speeds taken from MQTT speed/set messages",
+                "speed_refused": "MQTT speed/set messages refused (bad payload, stale time, "
+                                 "channel not manual)"}
     for k, what in gauges.items():
         g = GaugeMetricFamily(f"quaver_mqtt_{k}", what)
         g.add_metric([], float(h[k]))

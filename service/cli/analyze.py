@@ -378,7 +378,9 @@ def _analyse(run: _Run, rec: Recording, progress: Callable[[int], None]
     ids = tuple(run.ids)
     for start in range(0, n_total, chunk):
         x = np.ascontiguousarray(rec.data[run.rows, start : start + chunk], dtype=np.float32)
-        for f in pipe.process(SampleBlock(RECORDING_SOURCE, ids, x, start, 0, rec.fs)):
+        # times from the recording's first sample (the run-up records' start and end)
+        t0_ns = round(start / rec.fs * 1e9)
+        for f in pipe.process(SampleBlock(RECORDING_SOURCE, ids, x, start, t0_ns, rec.fs)):
             if f.primary:
                 latest[f.channel] = f
         progress(min(start + chunk, n_total))
@@ -427,8 +429,26 @@ def _channel_result(name: str, run: _Run, frame: SpectralFrame, st: ChannelState
                      "sensor_faults": st.sensor_faults, "gaps": st.gaps},
         "notes": list(st.notes),
         **({"speed": frame_speed(frame)} if frame.speed_source else {}),
+        **_runups(run, st),
         "spectrum": [_num(v) for v in values.tolist()],
     }
+
+
+def _runups(run: _Run, st: ChannelState) -> dict[str, Any]:
+    """The run-up / coast-down records the recording held (service.runups), with times in s
+    from its first sample; nothing for a channel that records none."""
+    ch = None if run.config_channel is None else channel_settings(run.cfg, run.config_channel)
+    if ch is None or ch.runup_min_rpm is None or st.runup is None:
+        return {}
+    out = []
+    for r in st.runup.take_records():
+        r = dict(r)
+        start, end = r.pop("start_ns"), r.pop("end_ns")
+        rows = [{**{k: v for k, v in p.items() if k != "t_ns"}, "t_s": p["t_ns"] / 1e9}
+                for p in r.pop("rows")]  # type: ignore[attr-defined]
+        out.append({**r, "start_s": start / 1e9, "end_s": end / 1e9,  # type: ignore[operator]
+                    "unit": st.input_unit, "rows": rows})
+    return {"runups": out}
 
 
 def _tacho_result(name: str, run: _Run, x: np.ndarray, fs: float) -> dict[str, Any]:
@@ -484,6 +504,14 @@ def _table(r: dict[str, Any]) -> str:
         out.append(f"  orders placed at {_fmt(sp['rpm'])} r/min ({sp['source']}, "
                    f"{sp['status']}; the newest frame's mean speed"
                    + (", which varied within the frame)" if sp["varied"] else ")"))
+    for ru in r.get("runups", []):
+        lo, hi = ((ru["rpm_hi"], ru["rpm_lo"]) if ru["kind"] == "coast-down"
+                  else (ru["rpm_lo"], ru["rpm_hi"]))
+        out.append(f"  {ru['kind']} {lo:g}->{hi:g} r/min at {ru['start_s']:.1f}-"
+                   f"{ru['end_s']:.1f} s: {len(ru['rows'])} points of orders "
+                   f"{', '.join(f'{o:g}X' for o in ru['orders'])} (--json for them)")
+    if "runups" in r and not r["runups"]:
+        out.append("  no run-up or coast-down through the whole range in this recording")
     if r["bands"]:
         out.append(f"  bands ({u} rms)")
         for b in r["bands"]:

@@ -130,6 +130,17 @@ class MqttConfig(StrictModel):
         "are dropped and counted (health, metrics).",
     )
 
+    speed_writes: bool = Field(
+        False, description="Take running speeds written to '<prefix>/<machine>/<channel>/"
+        "speed/set' for channels configured speed = 'manual' (who may write is the broker's "
+        "ACL: MQTT carries no quaver role).",
+    )
+    speed_max_age_s: float = Field(
+        60.0, gt=0, le=86400.0,
+        description="A speed message whose 'time' is older (or further ahead) than this, s, "
+        "is refused: a retained or delayed message must not set an old speed.",
+    )
+
     @model_validator(mode="after")
     def _pairs(self) -> MqttConfig:
         if self.ca_file is not None and not self.tls:
@@ -161,6 +172,9 @@ def mqtt_problems(cfg: Config, env: Mapping[str, str]) -> list[str]:
     if m.password_env is not None and not env.get(m.password_env):
         out.append(f"mqtt.password_env: the environment variable {m.password_env} is unset or "
                    "empty")
+    if m.speed_writes and not any(ch.speed == "manual" for ch in cfg.channels):
+        out.append("mqtt.speed_writes: no channel is configured speed = 'manual', so no speed "
+                   "topic is subscribed")
     for j, ch in enumerate(cfg.channels):
         if ch.machine and (why := topic_level_problem(ch.machine)):
             out.append(f"channels[{j}].machine: {ch.machine!r} {why}; with [mqtt] enabled a "

@@ -70,6 +70,16 @@ class ChannelConfig(StrictModel):
         50.0, gt=0, description="Speed bins of the run-up data, r/min: each keeps the vector "
         "mean of the steps of its latest pass.",
     )
+    runup_min_rpm: float | None = Field(
+        None, gt=0, description="Lower end of the speed range a run-up or coast-down record "
+        "covers, r/min: a record starts when the speed leaves one end inwards and is kept "
+        "when it reaches the other (GET /api/v1/channels/{id}/runups); with runup_max_rpm "
+        "and runup_orders.",
+    )
+    runup_max_rpm: float | None = Field(
+        None, gt=0, description="Upper end of the speed range of run-up and coast-down "
+        "records, r/min; above runup_min_rpm.",
+    )
     pulses_per_rev: int = Field(1, ge=1, le=1024, description="Tacho: pulses per revolution.")
     trigger_level: float | None = Field(
         None,
@@ -152,6 +162,16 @@ class ChannelConfig(StrictModel):
             raise ValueError(f"give one speed source: speed_from or {other}, not both")
         if self.runup_orders and self.speed_from is None:
             raise ValueError("runup_orders needs speed_from (a tacho gives the shaft angle)")
+        sweep = (self.runup_min_rpm, self.runup_max_rpm)
+        if (sweep[0] is None) != (sweep[1] is None):
+            raise ValueError("give runup_min_rpm and runup_max_rpm together")
+        if sweep[0] is not None and sweep[1] is not None:
+            if not self.runup_orders:
+                raise ValueError("runup_min_rpm/runup_max_rpm need runup_orders (the orders "
+                                 "a record keeps)")
+            if sweep[0] >= sweep[1]:
+                raise ValueError(f"runup_min_rpm {sweep[0]:g} must be below runup_max_rpm "
+                                 f"{sweep[1]:g}")
         if self.speed == "estimated" and self.speed_rpm is not None:
             raise ValueError("speed = 'estimated' takes no speed_rpm")
         if self.trigger_level is not None and self.trigger_hysteresis is None:

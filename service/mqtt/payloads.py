@@ -6,12 +6,14 @@ event loop."""
 
 from __future__ import annotations
 
+import datetime
 import json
 import math
 from collections.abc import Collection
 from typing import Any
 
 from ..spectra import band_reason, spectrum_values, tone_reason
+from ..speedwrite import SpeedRefused, check_rpm
 from ..timefmt import iso_time
 from ..types import ChannelState, SpectralFrame
 
@@ -24,6 +26,7 @@ __all__ = [
     "encode",
     "event_payload",
     "head",
+    "parse_speed",
     "spectrum_payload",
     "status_payload",
     "tones_payload",
@@ -39,6 +42,7 @@ class Topics:
 
         <prefix>/<machine>/<channel>/<profile>/bands | tones | spectrum
         <prefix>/<machine>/<channel>/status           (retained)
+        <prefix>/<machine>/<channel>/speed/set        (subscribed: speeds written to quaver)
         <prefix>/alarms/events                        (QoS 1)
         <prefix>/service/state                        (retained: online | offline)
     """
@@ -59,6 +63,10 @@ class Topics:
 
     def status(self, channel: str) -> str:
         return f"{self.channel(channel)}/status"
+
+    def speed_set(self, channel: str) -> str:
+        """Where a speed for ``channel`` is written (subscribed with speed_writes)."""
+        return f"{self.channel(channel)}/speed/set"
 
     def frame(self, frame: SpectralFrame, kind: str) -> str:
         return f"{self.channel(frame.channel)}/{frame.profile}/{kind}"
@@ -168,3 +176,49 @@ def event_payload(event: dict[str, Any], store_id: str, machine: str, tz: str
         if isinstance(v, float) and not math.isfinite(v):
             doc[k] = None
     return doc
+
+
+MAX_SPEED_PAYLOAD = 1024  # bytes; a speed message is a few dozen (our choice)
+
+
+def parse_speed(payload: bytes, now_ns: int, max_age_s: float) -> float | None:
+    """The speed, r/min, a ``.../speed/set`` message writes (None: withdraw the written
+    speed, back to the configured one). ``payload`` is a bare number (``1234.5``) or JSON
+    ``{"rpm": 1234.5 | null, "time": "<ISO 8601 with offset>" | <ns since the epoch>}``;
+    a ``time`` further than ``max_age_s`` from ``now_ns`` is refused (a retained or delayed
+    message). Raises SpeedRefused('bad-value', why) for anything else."""
+    if len(payload) > MAX_SPEED_PAYLOAD:
+        raise SpeedRefused("bad-value", f"payload of {len(payload)} bytes (at most "
+                           f"{MAX_SPEED_PAYLOAD})")
+    try:
+        doc = json.loads(payload.decode("utf-8"))
+    except (UnicodeDecodeError, ValueError) as e:
+        raise SpeedRefused("bad-value", f"payload is not a number or JSON: {e}") from None
+    if not isinstance(doc, dict):
+        return check_rpm(doc)
+    unknown = sorted(set(doc) - {"rpm", "time"})
+    if unknown:
+        raise SpeedRefused("bad-value", f"unknown key(s) {', '.join(unknown)} (takes rpm, "
+                           "time)")
+    if "rpm" not in doc:
+        raise SpeedRefused("bad-value", "no 'rpm' key")
+    if "time" in doc:
+        age_s = (now_ns - _time_ns(doc["time"])) / 1e9
+        if abs(age_s) > max_age_s:
+            raise SpeedRefused("bad-value", f"time is {age_s:+.0f} s from now (at most "
+                               f"±{max_age_s:g} s)")
+    return None if doc["rpm"] is None else check_rpm(doc["rpm"])
+
+
+def _time_ns(t: object) -> int:
+    if isinstance(t, int) and not isinstance(t, bool):
+        return t
+    if isinstance(t, str):
+        try:
+            d = datetime.datetime.fromisoformat(t)
+        except ValueError:
+            d = None
+        if d is not None and d.tzinfo is not None:
+            return round(d.timestamp() * 1e9)
+    raise SpeedRefused("bad-value", f"time={t!r} is not ns since the epoch or ISO 8601 "
+                       "with an offset")

@@ -35,6 +35,7 @@ from typing import TYPE_CHECKING, Any
 from ..config import Config
 from ..config.base import parse_listen
 from ..hub import Hub, Subscriber
+from ..speedwrite import SpeedRefused, write_speed
 from ..types import SpectralFrame
 from .payloads import (
     OFFLINE,
@@ -44,6 +45,7 @@ from .payloads import (
     encode,
     event_payload,
     head,
+    parse_speed,
     spectrum_payload,
     status_payload,
     tones_payload,
@@ -105,6 +107,12 @@ class MqttPublisher:
         self._task: asyncio.Task[None] | None = None
         self._thread: threading.Thread | None = None
         self._stop = threading.Event()
+        # speed/set topic → channel, for the channels configured speed = "manual"
+        self.speed_topics = ({self.topics.speed_set(c.id): c.id for c in cfg.channels
+                              if c.speed == "manual"} if self.m.speed_writes else {})
+        self.speed_written = self.speed_refused = 0
+        self.last_speed_refusal = ""
+        self._loop: asyncio.AbstractEventLoop | None = None
 
     # -- lifecycle ---------------------------------------------------------------------
     async def start(self, store_id: Callable[[], str]) -> None:
@@ -119,6 +127,7 @@ class MqttPublisher:
                                "(pip install 'quaver[mqtt]')") from e
 
         self._read_store_id = store_id
+        self._loop = asyncio.get_running_loop()
         with contextlib.suppress(Exception):  # a failing store announces no events anyway
             self.store_id = await asyncio.to_thread(store_id)
         c = mqtt.Client(CallbackAPIVersion.VERSION2, client_id=self.client_id,
@@ -131,6 +140,7 @@ class MqttPublisher:
         c.on_connect = self._on_connect
         c.on_disconnect = self._on_disconnect
         c.on_publish = self._on_publish
+        c.on_message = self._on_message
         self._client = c
         sub = self.hub.subscribe(None, max_queue=EVENT_QUEUE)
         sub.profiles = frozenset({"*"})
@@ -179,6 +189,10 @@ class MqttPublisher:
             "errors": self.errors,
             "last_error": self.last_error,
             "last_error_ns": self.last_error_ns,
+            "speed_topics": len(self.speed_topics),
+            "speed_written": self.speed_written,
+            "speed_refused": self.speed_refused,
+            "last_speed_refusal": self.last_speed_refusal,
         }
 
     # -- the network thread: the only one that touches the paho client ----------------
@@ -257,6 +271,8 @@ class MqttPublisher:
             self._error(f"broker refused the connection: {reason}")
             return
         self._record(client.publish(self.topics.state, ONLINE, qos=1, retain=True).mid, 1)
+        for topic in self.speed_topics:  # again on every connection (clean session)
+            client.subscribe(topic, qos=1)
         self.connected, self._fresh = True, True
         self.connected_since_ns = time.time_ns()
         self.connects += 1
@@ -284,6 +300,34 @@ class MqttPublisher:
             if self._pending.pop(mid, None) is None:
                 self._early.add(mid)
             self.published += 1
+
+    def _on_message(self, client: mqtt.Client, userdata: Any, msg: Any) -> None:
+        """A speed written to a ``speed/set`` topic (network thread): parsed here, applied on
+        the event loop (where every other change of a channel's state is made)."""
+        channel = self.speed_topics.get(msg.topic)
+        if channel is None or self._loop is None:
+            return
+        try:
+            rpm = parse_speed(bytes(msg.payload), time.time_ns(), self.m.speed_max_age_s)
+        except SpeedRefused as e:
+            self._loop.call_soon_threadsafe(self._speed_refused, channel, str(e))
+            return
+        self._loop.call_soon_threadsafe(self._write_speed, channel, rpm)
+
+    def _write_speed(self, channel: str, rpm: float | None) -> None:
+        try:
+            write_speed(self.cfg, self.hub.channels, channel, rpm, "mqtt", manual_only=True)
+        except SpeedRefused as e:
+            self._speed_refused(channel, str(e))
+            return
+        self.speed_written += 1
+        log.info("MQTT: speed of %s written: %s", channel,
+                 "withdrawn" if rpm is None else f"{rpm:g} r/min")
+
+    def _speed_refused(self, channel: str, why: str) -> None:
+        self.speed_refused += 1
+        self.last_speed_refusal = f"{channel}: {why}"[:300]
+        log.warning("MQTT: speed for %s refused: %s", channel, why)
 
     def _error(self, text: str) -> None:
         with self._lock:

@@ -30,6 +30,7 @@ from ..alarms import AckRefused, AlarmEngine, AlarmView, UnknownAlarm
 from ..config import Config
 from ..hub import Hub, Subscriber
 from ..spectra import spectrum_values
+from ..speedwrite import SpeedRefused, write_speed
 from ..store import StoreError
 from ..types import SpectralFrame
 from .layout import WAITING, ChannelLayout, channel_code, namespace_uri, plan, value_code
@@ -46,6 +47,9 @@ START_WAIT_S = 60.0  # the longest wait for a worker to listen (asyncua's set-up
 STOP_WAIT_S = 5.0  # then the worker is killed (our choice)
 REST_MIN_S, REST_MAX_S = 0.005, 0.25  # rests gathered (timer overhead), capped (our choice)
 RESTART_MIN_S, RESTART_MAX_S = 1.0, 30.0  # pause before restarting a worker, doubling
+# a refused SetSpeed as an OPC UA status code (names from IEC 62541-4, docs/references.md)
+SPEED_CODES = {"unknown-channel": "BadNotFound", "not-writable": "BadNotWritable",
+               "bad-value": "BadOutOfRange"}
 REPO = Path(__file__).resolve().parents[2]  # holds the service and dsp packages
 
 
@@ -300,6 +304,8 @@ class OpcuaPublisher:
                 t = asyncio.create_task(self._on_ack(*msg[1:]))
                 self._acks.add(t)
                 t.add_done_callback(self._acks.discard)
+            elif kind == "speed":
+                self._on_speed(*msg[1:])
 
     def _send(self, msg: tuple[Any, ...]) -> None:
         if self._sender is not None:
@@ -511,6 +517,19 @@ class OpcuaPublisher:
             except UnknownAlarm:
                 pass
         self._send(("ack_reply", n, *reply))
+
+    def _on_speed(self, n: int, channel: str, rpm: float, who: str) -> None:
+        """A SetSpeed from the worker (an operator's session): written like an MQTT speed,
+        to channels configured speed = 'manual' only."""
+        try:
+            write_speed(self.host.cfg, self.host.hub.channels, channel, rpm, f"opcua:{who}",
+                        manual_only=True)
+            reply = ("ok", "")
+            log.info("OPC UA: speed of %s written by %s: %g r/min", channel, who, rpm)
+        except SpeedRefused as e:
+            reply = ("refused", SPEED_CODES[e.why])
+            log.warning("OPC UA: speed for %s from %s refused: %s", channel, who, e)
+        self._send(("speed_reply", n, *reply))
 
     async def stop(self) -> None:
         self._stopping = True

@@ -46,6 +46,8 @@ ALARM_TYPES = dict(ALARM_VARS)
 # what the Acknowledge handler hands the service: (rule, who, note) → ("ok", to_state) or
 # ("refused", StatusCode name)
 AckCall = Callable[[str, str, str], Awaitable[tuple[str, str]]]
+# what SetSpeed hands the service: (channel, rpm, who) → ("ok", "") or ("refused", code name)
+SpeedCall = Callable[[str, float, str], Awaitable[tuple[str, str]]]
 
 
 def _dt(t_ns: int) -> datetime:
@@ -83,12 +85,13 @@ class OpcuaServer:
     """One asyncua server in the worker; see the module docstring."""
 
     def __init__(self, cfg: OpcuaConfig, tokens: Sequence[TokenEntry], data_dir: str,
-                 ns_uri: str, ack: AckCall) -> None:
+                 ns_uri: str, ack: AckCall, set_speed: SpeedCall) -> None:
         # asyncua logs each node it loads and each request at INFO: thousands of lines at
         # start and a line per read in the service's log; its warnings and errors stay
         logging.getLogger("asyncua").setLevel(logging.WARNING)
         self.cfg, self.tokens, self.data_dir, self.ns_uri = cfg, list(tokens), data_dir, ns_uri
         self.ack_call = ack
+        self.speed_call = set_speed
         self.stats = WorkerStats()
         self.server = Server(user_manager=TokenUsers(lambda: self.tokens))
         self.idx = 0
@@ -153,18 +156,28 @@ class OpcuaServer:
         return ua.NodeId(path, self.idx)
 
     async def _build_fixed(self) -> None:
-        """The folders, the Acknowledge method and the event type (before the server
+        """The folders, the Acknowledge and SetSpeed methods and the event type (before the server
         listens)."""
         idx = self.idx
         objects = self.server.nodes.objects
         self._add([self._object("machines", "Machines", objects.nodeid, folder=True),
-                   self._object("alarms", "Alarms", objects.nodeid, folder=True)])
+                   self._object("alarms", "Alarms", objects.nodeid, folder=True),
+                   self._object("speed", "Speed", objects.nodeid, organizes=True,
+                                description="Running speeds written by operators")])
         alarms = self.server.get_node(self.nid("alarms"))
         await alarms.add_method(
             self.nid("alarms/Acknowledge"), ua.QualifiedName("Acknowledge", idx), self._ack,
             [_arg("RuleId", ua.ObjectIds.String, "rule id, as in GET /api/v1/alarms"),
              _arg("Note", ua.ObjectIds.String, "why, for the event log (may be empty)")],
             [_arg("State", ua.ObjectIds.String, "the alarm's state after the acknowledgement")],
+        )
+        speed = self.server.get_node(self.nid("speed"))
+        await speed.add_method(
+            self.nid("speed/SetSpeed"), ua.QualifiedName("SetSpeed", idx), self._set_speed,
+            [_arg("ChannelId", ua.ObjectIds.String, "channel id of a channel configured "
+                  "speed = 'manual'"),
+             _arg("Rpm", ua.ObjectIds.Double, "running speed, r/min, in (0, 1e6]")],
+            [],
         )
         etype = await self.server.get_node(ua.ObjectIds.BaseEventType).add_object_type(
             self.nid(EVENT_TYPE), ua.QualifiedName("AlarmEventType", idx))
@@ -426,6 +439,19 @@ class OpcuaServer:
         if how != "ok":
             return _code(what)
         return [ua.Variant(what, ua.VariantType.String)]
+
+    # -- the SetSpeed method ----------------------------------------------------------------
+    async def _set_speed(self, parent: ua.NodeId, channel: ua.Variant,
+                         rpm: ua.Variant) -> list[ua.Variant] | ua.StatusCode:
+        who = CALLER.get()
+        if who is None or not who.may("operator"):
+            return _code("BadUserAccessDenied")
+        if not isinstance(channel.Value, str) or not isinstance(rpm.Value, (int, float)):
+            return _code("BadInvalidArgument")
+        how, what = await self.speed_call(channel.Value, float(rpm.Value), who.name)
+        if how != "ok":
+            return _code(what)
+        return []
 
     def sessions(self) -> int:
         b = self.server.bserver

@@ -62,11 +62,23 @@ async def serve(sock_in: socket.socket, sock_out: socket.socket) -> int:
         finally:
             acks.pop(n, None)
 
+    async def set_speed(channel: str, rpm: float, who: str) -> tuple[str, str]:
+        n = next(ids)
+        fut: asyncio.Future[tuple[str, str]] = loop.create_future()
+        acks[n] = fut
+        write_message(writer, ("speed", n, channel, rpm, who))
+        try:
+            return await asyncio.wait_for(fut, ACK_WAIT_S)
+        except TimeoutError:  # the service did not answer: the speed is not known to be set
+            return ("refused", "BadTimeout")
+        finally:
+            acks.pop(n, None)
+
     try:
         from .server import OpcuaServer
 
         server = OpcuaServer(init["opcua"], init["tokens"], init["data_dir"], init["ns_uri"],
-                             ack)
+                             ack, set_speed)
         await server.start()
     except Exception as e:
         write_message(writer, ("failed", f"{type(e).__name__}: {e}"[:300]))
@@ -103,7 +115,7 @@ async def serve(sock_in: socket.socket, sock_out: socket.socket) -> int:
                     await server.write_alarms(msg[1])
                 elif kind == "event":
                     await server.announce(msg[1])
-                elif kind == "ack_reply":
+                elif kind in ("ack_reply", "speed_reply"):
                     fut = acks.get(msg[1])
                     if fut is not None and not fut.done():
                         fut.set_result((msg[2], msg[3]))

@@ -108,11 +108,25 @@ CREATE INDEX history_channel_t ON history(channel, profile, t_ns);
 CREATE INDEX history_age ON history(t_ns);
 """
 
+# Step 5: run-up and coast-down records (service.store.runups): amplitude and phase of chosen
+# orders against speed, one row per sweep through a channel's runup_min_rpm … runup_max_rpm,
+# its points as JSON (a few hundred numbers: no codec needed).
+_V5 = """
+CREATE TABLE runups(
+    id INTEGER PRIMARY KEY AUTOINCREMENT,
+    channel TEXT NOT NULL, kind TEXT NOT NULL CHECK (kind IN ('run-up', 'coast-down')),
+    start_ns INTEGER NOT NULL, end_ns INTEGER NOT NULL, rpm_lo REAL NOT NULL,
+    rpm_hi REAL NOT NULL, rpm_step REAL NOT NULL, orders TEXT NOT NULL, unit TEXT NOT NULL,
+    points INTEGER NOT NULL, data TEXT NOT NULL);
+CREATE INDEX runups_channel ON runups(channel, id);
+"""
+
 MIGRATIONS: tuple[Migration, ...] = (
     Migration("the schema before migrations: events, alarm state, evidence, trends", _V1),
     Migration("index the event log by rule", _V2),
     Migration("the notification outbox and the store's id", _V3),
     Migration("spectral history: stored averaged spectra", _V4),
+    Migration("run-up and coast-down records", _V5),
 )
 
 

@@ -20,6 +20,7 @@ from ..alarms import AlarmEvent
 from . import events as ev
 from . import history as hi
 from . import outbox as ob
+from . import runups as ru
 from . import trends as tr
 from .retention import Retention, apply_retention
 from .writer import Writer, resolved
@@ -217,6 +218,15 @@ class Store(Writer):
         if not fut.cancelled() and fut.exception() is None:
             self.history_written += len(fut.result())
 
+    def put_runup(self, channel: str, unit: str, record: Mapping[str, Any]) -> Future[int]:
+        """Queue a run-up / coast-down record of ``channel`` (amplitudes in ``unit`` RMS;
+        ``service.runups.SweepRecorder``'s dict); resolves to its id once committed
+        (durable: a record is the only copy of a sweep). A bad record raises ValueError
+        here."""
+        rec = dict(record)
+        ru.check_record(rec)
+        return self._submit(lambda c: ru.insert_runup(c, channel, unit, rec), durable=True)
+
     def record(self, channel: str, name: str, t_ns: int, value: float) -> None:
         """Add one value (any unit; the caller keeps units consistent per series) at ``t_ns``
         (ns since the Unix epoch, >= 0) to the trend of (channel, name). NaN/inf are skipped.
@@ -302,6 +312,19 @@ class Store(Writer):
         """Names with a stored trend on ``channel``, sorted."""
         with self._read() as c:
             return tr.select_names(c, channel)
+
+    def runups(self, channel: str, limit: int = 100) -> list[dict[str, Any]]:
+        """The channel's run-up / coast-down records without their points, newest first:
+        id, channel, kind, start_ns, end_ns, rpm_lo, rpm_hi, rpm_step, orders, unit,
+        points."""
+        with self._read() as c:
+            return ru.select_runups(c, channel, limit)
+
+    def runup(self, channel: str, runup_id: int) -> dict[str, Any] | None:
+        """One record as in :meth:`runups` with ``rows`` (rpm, t_ns, steps, amplitude[],
+        phase_deg[] by increasing speed), or None."""
+        with self._read() as c:
+            return ru.select_runup(c, channel, runup_id)
 
     def history_list(
         self, channel: str, profile: str, since_ns: int, until_ns: int, limit: int = 1000

@@ -87,6 +87,8 @@ ROUTES: list[tuple[str, str, str]] = [
     ("GET", "/api/v1/channels/a/kurtogram", "read"),
     ("GET", "/api/v1/channels/a/orders", "read"),
     ("GET", "/api/v1/channels/a/runup", "read"),
+    ("GET", "/api/v1/channels/a/runups", "read"),
+    ("GET", "/api/v1/channels/a/runups/1", "read"),
     ("PUT", "/api/v1/channels/a/speed", "ack"),
     ("GET", "/api/v1/windows/hann/response", "read"),
     ("GET", "/api/v1/meta", "read"),
@@ -118,6 +120,7 @@ ROUTE_TEMPLATES = {  # the app's path templates the ROUTES above stand for
     "/api/v1/alarms/ack", "/api/v1/alarms/{rule}/shelve", "/api/v1/alarms/{rule}/unshelve",
     "/api/v1/channels/{channel_id}/kurtogram", "/api/v1/channels/{channel_id}/orders",
     "/api/v1/channels/{channel_id}/runup", "/api/v1/channels/{channel_id}/speed",
+    "/api/v1/channels/{channel_id}/runups", "/api/v1/channels/{channel_id}/runups/{runup_id}",
 }
 
 

@@ -198,7 +198,7 @@ def test_a_step_2_database_is_migrated_through_the_outbox_to_history(tmp_path: P
         (rid,) = store.put_history([row(600, spectrum(1))]).result()
         assert store.history_spectrum(rid) is not None
     c = sqlite3.connect(path)
-    assert schema_version(c) == len(MIGRATIONS) == 4
+    assert schema_version(c) == len(MIGRATIONS)  # every later step ran too
     c.close()
 
 

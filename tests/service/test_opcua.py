@@ -148,7 +148,8 @@ def service_doc(port: int, **opcua: Any) -> dict[str, Any]:
     tokens = [{"name": n, "role": role, "sha256": hashlib.sha256(tok.encode()).hexdigest()}
               for n, (role, tok) in TOKENS.items()]
     return one_band_config(
-        channels=[{"id": "a", "stale_after_s": STALE_S}],
+        channels=[{"id": "a", "stale_after_s": STALE_S, "speed": "manual",
+                   "speed_rpm": 1200.0}],
         tones=[{"name": "t123", "hz": 123.0}],
         tokens=tokens,
         opcua={"enabled": True, "endpoint": f"opc.tcp://127.0.0.1:{port}/quaver",
@@ -417,6 +418,58 @@ def test_alarm_events_and_acknowledge(svc: tuple[RunningService, int], plant: Pr
     finally:
         plant.running.clear()
         plant.amp = 0.3
+
+
+def test_set_speed_operator_only_and_bad_calls_refused(svc: tuple[RunningService, int]
+                                                       ) -> None:
+    s, port = svc
+    before = s.get("channels/a")["speed"]
+    assert (before["rpm"], before["source"]) == (1200.0, "manual")
+
+    async def go() -> None:
+        async with client(port, "op") as op, client(port, "watcher") as viewer:
+            idx = await op.get_namespace_index(NS_URI)
+            method = ua.NodeId("speed/SetSpeed", idx)
+            rpm = ua.Variant(1500.0, ua.VariantType.Double)
+            with pytest.raises(ua.uaerrors.BadUserAccessDenied):
+                await viewer.get_node(ua.NodeId("speed", idx)).call_method(method, "a", rpm)
+            assert s.get("channels/a")["speed"]["rpm"] == 1200.0  # refused: nothing written
+            speed = op.get_node(ua.NodeId("speed", idx))
+            assert await speed.call_method(method, "a", rpm) is None  # no outputs
+            sp = s.get("channels/a")["speed"]
+            assert (sp["rpm"], sp["source"], sp["written_by"]) == (1500.0, "manual", "opcua:op")
+            with pytest.raises(ua.uaerrors.BadNotFound):
+                await speed.call_method(method, "no-such-channel", rpm)
+            for bad in (0.0, -10.0, math.nan, math.inf, 2e6):
+                with pytest.raises(ua.uaerrors.BadOutOfRange):
+                    await speed.call_method(method, "a", ua.Variant(bad,
+                                                                       ua.VariantType.Double))
+            with pytest.raises(ua.uaerrors.BadInvalidArgument):  # a string is not a speed
+                await speed.call_method(method, "a", "1500")
+            assert s.get("channels/a")["speed"]["rpm"] == 1500.0  # none of them changed it
+
+    run(go(), 60)
+
+
+def test_set_speed_refuses_a_channel_that_is_not_manual(tmp_path: Path) -> None:
+    (port,) = free_ports(1)
+    doc = service_doc(port)
+    doc["channels"] = [{"id": "a", "speed_rpm": 1200.0}]  # fixed: not speed = manual
+    with run_service(doc, tmp_path) as s:
+        s.wait(lambda: s.health()["opcua"]["state"] == "running", "the OPC UA address space")
+
+        async def go() -> None:
+            async with client(port, "op") as op:
+                idx = await op.get_namespace_index(NS_URI)
+                with pytest.raises(ua.uaerrors.BadNotWritable):
+                    await op.get_node(ua.NodeId("speed", idx)).call_method(
+                        ua.NodeId("speed/SetSpeed", idx), "a",
+                        ua.Variant(1500.0, ua.VariantType.Double))
+
+        run(go(), 60)
+        # nothing written: a written speed would show as {"source": "manual", …}; without
+        # samples fed the channel has shown no speed yet
+        assert s.get("channels/a")["speed"] is None
 
 
 async def _eq(node: Any, want: Any) -> bool | None:

@@ -64,6 +64,8 @@ GET_ROUTES = [
     "/api/v1/channels/{channel_id}/kurtogram",
     "/api/v1/channels/{channel_id}/orders",
     "/api/v1/channels/{channel_id}/runup",
+    "/api/v1/channels/{channel_id}/runups",
+    "/api/v1/channels/{channel_id}/runups/{runup_id}",
     "/api/v1/alarms",
     "/api/v1/alarms/shelved",
     "/api/v1/rules",
