@@ -1,0 +1,264 @@
+"""The service process's side of cluster mode: connect to Ray (or start a local one), place
+each group of sources on an actor, and stand in for each source's pipeline: pull its pushes,
+turn them back into frames and hand them to the service exactly as a local pipeline does.
+
+Ray is imported here only, when a cluster starts (the optional ``ray`` extra). Knows the
+service's pipeline seam (``publish``, ``failed``, evidence) but not the hub, alarms or store."""
+
+from __future__ import annotations
+
+import asyncio
+import logging
+import os
+import time
+from collections.abc import Awaitable, Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from ..config import Config, SourceConfig
+from ..config.cluster import node_resource
+from ..evidence import Evidence
+from ..pipeline import _peak_rows
+from ..sources import make_source
+from ..sources.base import Source
+from ..types import ChannelState, SourceCounters, SpectralFrame
+from .actor import SourceGroup
+from .transport import PLAN_FIELDS, PushBatch, apply_states, unpack
+
+log = logging.getLogger("quaver.cluster")
+
+__all__ = ["Cluster", "RemotePipeline", "RemoteSource", "group_sources"]
+
+PULL_WAIT_S = 1.0  # a pull returns after this long without a push (our choice)
+CALL_TIMEOUT_S = 30.0  # a start or stop call that takes longer has failed (our choice)
+RELOCATABLE = ("file", "simulated")
+
+
+def group_sources(cfg: Config) -> list[tuple[str | None, list[str]]]:
+    """The actors' groups: (node or None, source ids). Sources that name a node run on one
+    actor per node; the others are dealt round robin to ``workers`` actors (no empty one)."""
+    pinned: dict[str, list[str]] = {}
+    free: list[str] = []
+    for s in cfg.sources:
+        if s.node is not None:
+            pinned.setdefault(s.node, []).append(s.id)
+        else:
+            free.append(s.id)
+    groups: list[tuple[str | None, list[str]]] = [(n, ids) for n, ids in pinned.items()]
+    k = min(cfg.cluster.workers, len(free))
+    groups += [(None, free[i::k]) for i in range(k)]
+    return groups
+
+
+class Cluster:
+    """Ray, connected (or started locally) on first use, and the service's actors."""
+
+    def __init__(self, cfg: Config) -> None:
+        self.cfg = cfg
+        self.groups = group_sources(cfg)
+        self.actors: list[Any] = []
+        self.by_source: dict[str, Any] = {}
+        self._started_ray = False
+        self._lock = asyncio.Lock()
+
+    async def ensure(self) -> None:
+        async with self._lock:
+            if self.actors:
+                return
+            self._connect()  # blocks the loop once, at start-up: ray.init wants the main thread
+            self._spawn()
+
+    def _connect(self) -> None:
+        import ray
+
+        cl = self.cfg.cluster
+        if ray.is_initialized():  # a test (or an embedding program) connected already
+            return
+        # the workers import this package from where the service runs
+        root = str(Path(__file__).resolve().parents[2])
+        env = {"PYTHONPATH": os.pathsep.join(
+            p for p in (root, os.environ.get("PYTHONPATH", "")) if p)}
+        if cl.address == "local":
+            ray.init(num_cpus=cl.workers, include_dashboard=False,
+                     object_store_memory=cl.object_store_mb * 2**20,
+                     runtime_env={"env_vars": env}, log_to_driver=False,
+                     configure_logging=False)
+        else:
+            ray.init(address=cl.address, runtime_env={"env_vars": env}, log_to_driver=False,
+                     configure_logging=False)
+        self._started_ray = True
+
+    def _spawn(self) -> None:
+        import ray
+
+        remote_cls = ray.remote(SourceGroup)
+        for node, ids in self.groups:
+            opts: dict[str, Any] = {
+                "max_restarts": self.cfg.cluster.max_restarts, "max_task_retries": 0,
+                # an actor mostly waits on sockets and numpy; a quarter CPU each lets a
+                # node host several, and the node's CPUs bound them all together
+                "num_cpus": 0.25, "max_concurrency": 1000,
+            }
+            if node is not None:
+                opts["resources"] = {node_resource(node): 0.001}
+            else:
+                opts["scheduling_strategy"] = "SPREAD"
+            actor = remote_cls.options(**opts).remote(self.cfg, ids)
+            self.actors.append(actor)
+            for sid in ids:
+                self.by_source[sid] = actor
+
+    async def close(self) -> None:
+        import ray
+
+        for a in self.actors:
+            try:
+                await asyncio.wait_for(a.stop.remote(), 5.0)
+            except Exception as e:  # a dead actor has nothing to stop
+                log.info("actor stop: %s", e)
+            ray.kill(a, no_restart=True)
+        self.actors.clear()
+        if self._started_ray:
+            await asyncio.to_thread(ray.shutdown)
+            self._started_ray = False
+
+
+class RemoteSource:
+    """A source running on an actor, as the hub and the API see it: its identity from the
+    config, its counters and status from its latest push."""
+
+    def __init__(self, cfg: SourceConfig, cluster: Cluster) -> None:
+        local = make_source(cfg)  # never started: identity, rate and status shape only
+        self.id, self.channel_ids = local.id, tuple(local.channel_ids)
+        self._fs = local.fs
+        self.kind = cfg.kind
+        self.node = cfg.node
+        self.counters: SourceCounters = local.counters
+        self._status: dict[str, object] = local.status()
+        self.cluster = cluster
+
+    @property
+    def fs(self) -> float | None:
+        return self._fs
+
+    @property
+    def actor(self) -> Any:
+        return self.cluster.by_source[self.id]
+
+    async def start(self) -> None:
+        await self.cluster.ensure()
+        await asyncio.wait_for(self.actor.start.remote(), CALL_TIMEOUT_S)
+
+    async def aclose(self) -> None:
+        pass  # the cluster stops its actors (Cluster.close)
+
+    def status(self) -> dict[str, object]:
+        return {**self._status, "engine": "ray", "node": self.node}
+
+    def __aiter__(self) -> RemoteSource:
+        return self
+
+    async def __anext__(self) -> Any:
+        raise StopAsyncIteration  # blocks never reach the service process
+
+    def took(self, b: PushBatch) -> None:
+        self.counters, self._status = b.counters, b.status
+
+
+@dataclass
+class RemotePipeline:
+    """A source's pipeline on an actor, seen from the service process (what
+    ``service.supervise`` and the API use of a ``SourcePipeline``)."""
+
+    source: RemoteSource
+    channels: dict[str, ChannelState]
+    publish: Callable[[RemotePipeline, list[SpectralFrame], float], Awaitable[None]]
+    failures: int = 0
+    failed: str = ""
+    restarts: int = 0
+    latency_s: float = 0.0
+    incarnation: str = ""
+    pushes: int = 0
+    _evidence: list[Evidence] = field(default_factory=list)
+    _remote_failures: int = 0
+
+    def __post_init__(self) -> None:
+        self.started_mono = time.monotonic()
+
+    async def run(self) -> None:
+        """Pull the source's pushes until cancelled; raises when the actor is lost (the
+        service reports the source failed and runs this again after its back-off, by which
+        time Ray has restarted the actor, on another node if its own was lost)."""
+        actor = self.source.actor
+        while True:
+            batches: list[PushBatch] = await actor.pull.remote(self.source.id, PULL_WAIT_S)
+            for b in batches:
+                await self._take(b)
+
+    async def _take(self, b: PushBatch) -> None:
+        if b.incarnation != self.incarnation:
+            if self.incarnation:
+                log.warning("source %s: its actor was restarted", self.source.id)
+            self.incarnation = b.incarnation
+            self._remote_failures = 0
+        self.source.took(b)
+        apply_states(self.channels, b.states)
+        apply_states(self.channels, b.plans, PLAN_FIELDS)
+        now = time.monotonic()
+        for cid, age in b.frame_age_s.items():
+            st = self.channels[cid]
+            seen = now - age
+            if st.last_frame_mono is None or seen > st.last_frame_mono:
+                st.last_frame_mono = seen
+        self.failures += b.failures - self._remote_failures
+        self._remote_failures = b.failures
+        self.failed, self.restarts, self.latency_s = b.failed, b.restarts, b.latency_s
+        self._evidence += b.evidence
+        self.pushes += 1
+        await self.publish(self, unpack(b.groups, _peak_rows), b.latency_s)
+
+    def reset_analysis(self) -> None:
+        """Nothing to forget here: the actor's pipeline restarts its own analysis."""
+
+    def request_evidence(self, event_id: int, channel: str, center_index: int,
+                         spectrum: dict[str, object]) -> None:
+        self.source.actor.request_evidence.remote(self.source.id, event_id, channel,
+                                                  center_index, spectrum)
+
+    def take_evidence(self, *, final: bool = False) -> list[Evidence]:
+        if final:
+            self._evidence += self._call("finish_evidence", 5.0) or []
+        out, self._evidence = self._evidence, []
+        return out
+
+    def latest_waveform(self, channel: str, seconds: float
+                        ) -> tuple[np.ndarray, float, int] | None:
+        got = self._call("latest_waveform", 2.0, channel, seconds)
+        return None if got is None else (np.asarray(got[0]), float(got[1]), int(got[2]))
+
+    def envelope_state(self, channel: str, profile: str) -> dict[str, object] | None:
+        out: dict[str, object] | None = self._call("envelope_state", 2.0, channel, profile)
+        return out
+
+    def _call(self, method: str, timeout_s: float, *args: object) -> Any:
+        """A bounded blocking call to the actor (API routes that are read rarely); None when
+        the actor does not answer in time."""
+        import ray
+
+        try:
+            return ray.get(getattr(self.source.actor, method).remote(self.source.id, *args),
+                           timeout=timeout_s)
+        except Exception as e:
+            log.warning("source %s: %s: %s", self.source.id, method, e)
+            return None
+
+
+def make_remote(cfg: Config, cluster: Cluster, src_cfg: SourceConfig,
+                states: dict[str, ChannelState],
+                publish: Callable[[RemotePipeline, list[SpectralFrame], float],
+                                  Awaitable[None]]) -> tuple[Source, RemotePipeline]:
+    src = RemoteSource(src_cfg, cluster)
+    return src, RemotePipeline(src, states, publish)  # type: ignore[return-value]
