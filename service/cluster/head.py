@@ -261,4 +261,4 @@ def make_remote(cfg: Config, cluster: Cluster, src_cfg: SourceConfig,
                 publish: Callable[[RemotePipeline, list[SpectralFrame], float],
                                   Awaitable[None]]) -> tuple[Source, RemotePipeline]:
     src = RemoteSource(src_cfg, cluster)
-    return src, RemotePipeline(src, states, publish)  # type: ignore[return-value]
+    return src, RemotePipeline(src, states, publish)

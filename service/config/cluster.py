@@ -69,7 +69,7 @@ def cluster_problems(cfg: Config) -> list[str]:
         if (cl.engine == "ray" and cl.address != "local" and node is None
                 and s.kind in ("tcp", "udp")):
             out.append(
-                f"sources[{i}].node: a {s.kind} source on a Ray cluster must name the node whose address it "
-                "listens on (node = \"<name>\", the worker started with the resource "
-                f"{node_resource('<name>')!r})")
+                f"sources[{i}].node: a {s.kind} source on a Ray cluster must name the node "
+                "whose address it listens on (node = \"<name>\", the worker started with the "
+                f"resource {node_resource('<name>')!r})")
     return out

@@ -17,8 +17,8 @@ from pydantic import ValidationError
 from ..entries import EntryProblem
 from .base import ID_PATTERN, SHA256_PATTERN, ConfigError
 from .checks import _cross_check, notify_env_problems
-from .models import MODELS, Config
 from .cluster import cluster_problems
+from .models import MODELS, Config
 from .mqtt import mqtt_problems
 from .opcua import anchor_opcua_paths, opcua_problems
 from .salvage import salvage

@@ -36,7 +36,7 @@ class _SourceBase(StrictModel):
         description="stale_after_s for every channel of this source that does not set its "
         "own, s (see [[channels]]).",
     )
-    node: Id | None = Field(  # type: ignore[valid-type]
+    node: Id | None = Field(
         None,
         description="With [cluster] engine = \"ray\": the node this source must run on (a "
         "network source: the node whose address it listens on), matched to the Ray custom "
