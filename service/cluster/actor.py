@@ -108,10 +108,16 @@ class SourceGroup:
         return self.runs[source_id].pipeline.take_evidence(final=True)
 
     def where(self) -> dict[str, object]:
-        """Which process and host this run is in (for tests and /health)."""
+        """Which process, host and Ray node (None outside Ray) this run is in."""
         import os
         import socket
-        return {"pid": os.getpid(), "host": socket.gethostname(),
+        try:
+            import ray
+
+            node = ray.get_runtime_context().get_node_id() if ray.is_initialized() else None
+        except ImportError:
+            node = None
+        return {"pid": os.getpid(), "host": socket.gethostname(), "node_id": node,
                 "incarnation": self.incarnation}
 
     async def stop(self) -> None:

@@ -3,6 +3,7 @@ comparison of SpectralFrames field by field (arrays bit for bit, NaN equal to Na
 
 from __future__ import annotations
 
+import asyncio
 import dataclasses
 import math
 from pathlib import Path
@@ -10,7 +11,11 @@ from typing import Any
 
 import numpy as np
 
+from service.config import parse_config
+from service.pipeline import SourcePipeline, channel_states
+from service.profiles import ProfileBank
 from service.recording import write_wav
+from service.sources import make_source
 from service.types import SpectralFrame
 
 FS = 2560.0  # 2.56 × Fmax 1000 Hz (common practice: fs = 2.56·Fmax)
@@ -70,4 +75,27 @@ def frame_differences(a: SpectralFrame, b: SpectralFrame,
             x, y = tuple(x), tuple(y)
         if not same(x, y):
             out.append(f.name)
+    return out
+
+
+def local_frames(cfg_doc: dict[str, object]) -> list[SpectralFrame]:
+    """The recording's frames from a SourcePipeline in this process (as the service runs it
+    without [cluster])."""
+    cfg = parse_config(cfg_doc, source="test")
+    src = make_source(cfg.sources[0])
+    ids = list(src.channel_ids)
+    out: list[SpectralFrame] = []
+
+    async def publish(p: object, frames: list[SpectralFrame], latency_s: float) -> None:
+        out.extend(frames)
+
+    async def go() -> None:
+        p = SourcePipeline(src, channel_states(cfg, "rec", ids), publish,
+                           lambda fs: ProfileBank(cfg, ids, fs), cfg=cfg)
+        async with asyncio.timeout(60):
+            await src.start()
+            await p.run()
+            await src.aclose()
+
+    asyncio.run(go())
     return out

@@ -12,7 +12,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from clusterkit import frame_differences, recording, replay_doc
+from clusterkit import frame_differences, local_frames, recording, replay_doc
 
 from service.cluster.actor import SourceGroup
 from service.cluster.head import group_sources
@@ -22,7 +22,7 @@ from service.demo import demo_config
 from service.pipeline import SourcePipeline, _peak_rows, channel_states
 from service.profiles import ProfileBank
 from service.sources import make_source
-from service.types import SampleBlock, SpectralFrame
+from service.types import SampleBlock
 
 
 def test_a_push_packed_and_unpacked_gives_the_pipelines_frames() -> None:
@@ -68,29 +68,6 @@ def test_pack_keeps_one_batch_per_analysis_group() -> None:
     assert sum(len(g.channels) for g in groups) == len(frames)
 
 
-def _local_frames(cfg_doc: dict[str, object]) -> list[SpectralFrame]:
-    """The recording's frames from a SourcePipeline in this process (as the service runs it
-    without [cluster])."""
-    cfg = parse_config(cfg_doc, source="test")
-    src = make_source(cfg.sources[0])
-    ids = list(src.channel_ids)
-    out: list[SpectralFrame] = []
-
-    async def publish(p: object, frames: list[SpectralFrame], latency_s: float) -> None:
-        out.extend(frames)
-
-    async def go() -> None:
-        p = SourcePipeline(src, channel_states(cfg, "rec", ids), publish,
-                           lambda fs: ProfileBank(cfg, ids, fs), cfg=cfg)
-        async with asyncio.timeout(60):
-            await src.start()
-            await p.run()
-            await src.aclose()
-
-    asyncio.run(go())
-    return out
-
-
 def _group_batches(cfg_doc: dict[str, object]) -> list[PushBatch]:
     """Every push of the same recording from a SourceGroup (the actor's work) in this
     process, pulled as the service process pulls them."""
@@ -113,7 +90,7 @@ def _group_batches(cfg_doc: dict[str, object]) -> list[PushBatch]:
 
 def test_the_actors_work_gives_the_local_pipelines_results(tmp_path: Path) -> None:
     doc = replay_doc(recording(tmp_path / "rec.wav"))
-    local = _local_frames(doc)
+    local = local_frames(doc)
     batches = _group_batches(doc)
     remote = [f for b in batches for f in unpack(b.groups, _peak_rows)]
     # 12 s at fs 2560 (30720 samples): "wide" 1024-point frames every 512 samples →
