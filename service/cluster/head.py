@@ -10,6 +10,7 @@ from __future__ import annotations
 import asyncio
 import logging
 import os
+import sys
 import time
 from collections.abc import Awaitable, Callable
 from dataclasses import dataclass, field
@@ -72,11 +73,20 @@ class Cluster:
             self._spawn()
 
     def _connect(self) -> None:
-        import ray
+        import signal
 
         cl = self.cfg.cluster
+        if cl.address == "local" and "ray" not in sys.modules:
+            # a Ray of this machine only: its servers on loopback (Ray reads this on import)
+            os.environ.setdefault("RAY_ENABLE_WINDOWS_OR_OSX_CLUSTER", "0")
+        import ray
+
         if ray.is_initialized():  # a test (or an embedding program) connected already
             return
+        os.environ.setdefault("RAY_USAGE_STATS_ENABLED", "0")  # no reports home
+        # ray.init installs a SIGTERM handler that exits at once; the service's own
+        # (orderly stop: sources, store) must stay in charge
+        term = signal.getsignal(signal.SIGTERM)
         # the workers import this package from where the service runs
         root = str(Path(__file__).resolve().parents[2])
         env = {"PYTHONPATH": os.pathsep.join(
@@ -90,6 +100,8 @@ class Cluster:
             ray.init(address=cl.address, runtime_env={"env_vars": env}, log_to_driver=False,
                      configure_logging=False)
         self._started_ray = True
+        if term is not None:
+            signal.signal(signal.SIGTERM, term)
 
     def _spawn(self) -> None:
         import ray

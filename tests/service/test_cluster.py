@@ -151,3 +151,30 @@ def test_sources_are_grouped_by_node_then_dealt_to_the_workers() -> None:
     cfg = parse_config(doc, source="test")
     assert group_sources(cfg) == [("east", ["net"]), (None, ["rec", "sim1"]),
                                   (None, ["sim0", "sim2"])]
+
+
+def test_the_docker_cluster_example_places_what_its_config_names() -> None:
+    import json
+
+    import yaml
+
+    from service.config import load_config
+    from service.config.cluster import node_resource
+
+    docker = Path(__file__).resolve().parents[2] / "docker"
+    cfg = load_config(docker / "quaver-cluster.toml")
+    assert cfg.cluster.engine == "ray" and cfg.cluster.address == "auto"
+    with open(docker / "compose.cluster.yaml", encoding="utf-8") as f:
+        services = yaml.safe_load(f)["services"]
+    offered: set[str] = set()
+    for svc in services.values():
+        cmd = svc["command"]
+        for arg in cmd if isinstance(cmd, list) else []:
+            if arg.startswith("--resources="):
+                offered |= set(json.loads(arg.split("=", 1)[1]))
+    # every pinned source's node is a resource some worker offers
+    pinned = {node_resource(s.node) for s in cfg.sources if s.node is not None}
+    assert pinned and pinned <= offered
+    # the image is built with the ray extra, and the head runs the service
+    assert services["head"]["build"]["args"]["QUAVER_EXTRAS"] == "[ray]"
+    assert "quaver serve -c /etc/quaver/quaver.toml" in " ".join(services["head"]["command"])

@@ -21,6 +21,11 @@ from typing import Any
 import pytest
 from clusterkit import frame_differences, local_frames, recording, replay_doc
 
+# Before Ray is imported: every node, server and worker of Ray on loopback (Ray reads this
+# when it is imported; its processes inherit it), no usage reports, no token auth.
+RAY_ENV = {"RAY_ENABLE_WINDOWS_OR_OSX_CLUSTER": "0", "RAY_USAGE_STATS_ENABLED": "0",
+           "RAY_AUTH_MODE": "disabled"}
+os.environ.update(RAY_ENV)
 ray = pytest.importorskip("ray")
 from ray.cluster_utils import Cluster as RayTestCluster  # noqa: E402
 
@@ -30,17 +35,14 @@ from service.config.cluster import node_resource  # noqa: E402
 from service.types import SpectralFrame  # noqa: E402
 
 OBJECT_STORE = 80 * 2**20  # bytes per node: the smallest Ray accepts comfortably
-RAY_ENV = {"RAY_USAGE_STATS_ENABLED": "0", "RAY_AUTH_MODE": "disabled"}
 
 
 @pytest.fixture(scope="module")
 def cluster() -> Iterator[tuple[RayTestCluster, dict[str, Any]]]:
-    saved = {k: os.environ.get(k) for k in RAY_ENV}
-    os.environ.update(RAY_ENV)
     temp = tempfile.mkdtemp(prefix="qray", dir="/tmp")  # short: Ray's socket paths
     c = RayTestCluster(initialize_head=True, head_node_args={
         "num_cpus": 0, "include_dashboard": False, "object_store_memory": OBJECT_STORE,
-        "temp_dir": temp, "node_ip_address": "127.0.0.1",
+        "temp_dir": temp,
         # a lost node is declared dead after 3 missed 1 s health checks (Ray's default is
         # slower; the test waits bounded all the same)
         "_system_config": {"health_check_period_ms": 1000,
@@ -48,14 +50,14 @@ def cluster() -> Iterator[tuple[RayTestCluster, dict[str, Any]]]:
     })
     try:
         nodes = {name: c.add_node(num_cpus=1, resources={node_resource(name): 1},
-                                  object_store_memory=OBJECT_STORE,
-                                  node_ip_address="127.0.0.1")
+                                  object_store_memory=OBJECT_STORE)
                  for name in ("w1", "w2")}
         c.wait_for_nodes(timeout=60)
         # this process's driver, on loopback like the nodes (the service finds it connected);
         # the workers import the package from this tree
         root = str(Path(__file__).resolve().parents[2])
-        ray.init(address=c.address, _node_ip_address="127.0.0.1", log_to_driver=False,
+        assert c.address.startswith("127.0.0.1:")
+        ray.init(address=c.address, log_to_driver=False,
                  runtime_env={"env_vars": {"PYTHONPATH": root}})
         yield c, nodes
     finally:
@@ -63,11 +65,6 @@ def cluster() -> Iterator[tuple[RayTestCluster, dict[str, Any]]]:
             ray.shutdown()
         c.shutdown()
         shutil.rmtree(temp, ignore_errors=True)
-        for k, v in saved.items():
-            if v is None:
-                os.environ.pop(k, None)
-            else:
-                os.environ[k] = v
 
 
 async def until(cond: Callable[[], bool], timeout_s: float, what: str) -> float:
