@@ -126,15 +126,20 @@ class Cluster:
     async def close(self) -> None:
         import ray
 
-        for a in self.actors:
-            try:
-                await asyncio.wait_for(a.stop.remote(), 5.0)
-            except Exception as e:  # a dead actor has nothing to stop
-                log.info("actor stop: %s", e)
+        # every actor at once, bounded: a dead one has nothing to stop
+        try:
+            stopped: list[object] = await asyncio.wait_for(asyncio.gather(
+                *(a.stop.remote() for a in self.actors), return_exceptions=True),
+                CALL_TIMEOUT_S)
+        except TimeoutError as e:
+            stopped = [e] * len(self.actors)
+        for a, res in zip(self.actors, stopped, strict=True):
+            if isinstance(res, BaseException):
+                log.info("actor stop: %s", res)
             ray.kill(a, no_restart=True)
         self.actors.clear()
         if self._started_ray:
-            await asyncio.to_thread(ray.shutdown)
+            ray.shutdown()  # on the thread that connected
             self._started_ray = False
 
 
@@ -242,7 +247,7 @@ class RemotePipeline:
 
     def take_evidence(self, *, final: bool = False) -> list[Evidence]:
         if final:
-            self._evidence += self._call("finish_evidence", 5.0) or []
+            self._evidence += self._call("finish_evidence", 2.0) or []
         out, self._evidence = self._evidence, []
         return out
 

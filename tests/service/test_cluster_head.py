@@ -1,0 +1,171 @@
+"""The service process's side of cluster mode without Ray: a Service with
+``[cluster] engine = "ray"`` whose actors are SourceGroups in this process (the same class
+Ray runs), so the head's logic — pulls, frames to the hub, channel states, counters, a lost
+actor shown as ``failed`` and the restarted one taken up — runs in every test run."""
+
+from __future__ import annotations
+
+import asyncio
+import time
+from collections.abc import Awaitable, Callable
+from pathlib import Path
+from typing import Any
+
+import pytest
+from clusterkit import frame_differences, local_frames, recording, replay_doc
+
+from service.app import Service
+from service.cluster import head
+from service.cluster.actor import SourceGroup
+from service.config import Config, parse_config
+from service.types import SpectralFrame
+
+
+class _Method:
+    def __init__(self, fn: Callable[..., Any], owner: InProcessActor) -> None:
+        self.fn, self.owner = fn, owner
+
+    def remote(self, *args: Any) -> Awaitable[Any]:
+        async def call() -> Any:
+            if self.owner.lost:  # as Ray raises for a call to an actor whose process died
+                raise RuntimeError("the actor died unexpectedly (test)")
+            got = self.fn(*args)
+            return await got if asyncio.iscoroutine(got) else got
+
+        return call()
+
+
+class InProcessActor:
+    """A SourceGroup called the way head.py calls a Ray actor (``actor.method.remote()``)."""
+
+    def __init__(self, cfg: Config, ids: list[str]) -> None:
+        self.group = SourceGroup(cfg, ids)
+        self.lost = False
+
+    def __getattr__(self, name: str) -> _Method:
+        return _Method(getattr(self.group, name), self)
+
+
+@pytest.fixture
+def in_process(monkeypatch: pytest.MonkeyPatch) -> None:
+    async def ensure(self: head.Cluster) -> None:
+        if not self.actors:
+            for _, ids in self.groups:
+                a = InProcessActor(self.cfg, ids)
+                self.actors.append(a)
+                self.by_source.update({sid: a for sid in ids})
+
+    async def close(self: head.Cluster) -> None:
+        for a in self.actors:
+            await a.group.stop()
+        for a in self.by_source.values():
+            await a.group.stop()
+        self.actors.clear()
+
+    def call(self: head.RemotePipeline, method: str, timeout_s: float, *args: Any) -> Any:
+        # the blocking calls (waveform, envelope, evidence at shut-down) straight to the group
+        return getattr(self.source.actor.group, method)(self.source.id, *args)
+
+    monkeypatch.setattr(head.RemotePipeline, "_call", call)
+    monkeypatch.setattr(head.Cluster, "ensure", ensure)
+    monkeypatch.setattr(head.Cluster, "close", close)
+
+
+async def until(cond: Callable[[], bool], timeout_s: float, what: str) -> None:
+    t0 = time.monotonic()
+    while not cond():
+        if time.monotonic() - t0 > timeout_s:
+            raise AssertionError(f"not within {timeout_s} s: {what}")
+        await asyncio.sleep(0.05)
+
+
+def run(coro: Awaitable[None], timeout_s: float = 60.0) -> None:
+    async def bounded() -> None:
+        async with asyncio.timeout(timeout_s):
+            await coro
+
+    asyncio.run(bounded())
+
+
+def test_the_head_publishes_the_actors_frames_as_the_local_pipeline_does(
+        in_process: None, tmp_path: Path) -> None:
+    doc = replay_doc(recording(tmp_path / "rec.wav"))
+    local = local_frames(doc)
+    cfg = parse_config({**doc, "service": {"data_dir": str(tmp_path / "data")},
+                        "cluster": {"engine": "ray"}}, source="test")
+    got: list[SpectralFrame] = []
+
+    async def go() -> None:
+        svc = Service(cfg)
+        publish = svc.hub.publish
+
+        def capture(frames: Any, latency_s: float = 0.0) -> None:
+            frames = list(frames)
+            got.extend(frames)
+            publish(frames, latency_s)
+
+        svc.hub.publish = capture  # type: ignore[method-assign]
+        await svc.start()
+        try:
+            await until(lambda: len(got) >= len(local), 30, "every frame")
+            st = svc.hub.channels["m1-de-h"]
+            # the worker-side state and the source's counters came with the pushes
+            assert st.samples == 12 * 2560 and st.fs == 2560.0
+            assert st.frames == sum(1 for f in local if f.channel == "m1-de-h" and f.primary)
+            assert set(st.profile_info) == {"wide", "narrow"}
+            assert svc.hub.sources["rec"].counters.samples == 12 * 2560
+            assert svc.hub.sources["rec"].status()["engine"] == "ray"
+            assert st.status == "ok"
+            assert svc.hub.latest["m1-de-h"].profile == "wide"
+        finally:
+            await svc.stop()
+
+    run(go())
+    assert len(got) == len(local)
+    for a, b in zip(local, got, strict=True):
+        assert frame_differences(a, b, skip=("t_ns",)) == [], (a.channel, a.profile, a.seq)
+
+
+def test_a_lost_actor_shows_failed_with_its_reason_and_its_restart_is_taken_up(
+        in_process: None, tmp_path: Path) -> None:
+    ids = ["p1-de-h", "p2-de-h"]  # two of the demo plant's channels
+    cfg = parse_config({
+        "service": {"data_dir": str(tmp_path / "data")},
+        "analysis": {"fmax_hz": 4000.0, "lines": 400, "overlap": 0.5},
+        "cluster": {"engine": "ray", "workers": 1},
+        "sources": [{"id": "sim", "kind": "simulated", "scenario": "demo",
+                     "sample_rate_hz": 10240.0, "channels": ids, "speed": 4.0}],
+    }, source="test")
+
+    async def go() -> None:
+        svc = Service(cfg)
+        await svc.start()
+        try:
+            ch = svc.hub.channels
+            await until(lambda: ch["p1-de-h"].status == "ok", 30, "first frames")
+            assert svc.cluster is not None
+            old = svc.cluster.by_source["sim"]
+            first = svc.by_source["sim"].incarnation  # type: ignore[attr-defined]
+            old.lost = True  # its process dies: every call to it raises from now on
+            await until(lambda: ch["p1-de-h"].status == "failed", 30, "failed shown")
+            failed = [e for e in svc.store.events(limit=100)
+                      if e["kind"] == "status" and e["to_state"] == "failed"]
+            assert {e["channel"] for e in failed} == set(ids)
+            assert all("pipeline failed: RuntimeError: the actor died unexpectedly"
+                       in str(e["message"]) for e in failed)
+            # Ray restarts it: a new run of the actor (its __init__ again) takes the calls
+            await old.group.stop()
+            svc.cluster.by_source["sim"] = InProcessActor(cfg, ["sim"])
+            await until(lambda: ch["p1-de-h"].status == "ok", 30, "ok again")
+            assert svc.by_source["sim"].incarnation != first  # type: ignore[attr-defined]
+            assert svc.by_source["sim"].failures == 1
+            back = [e for e in svc.store.events(limit=100)
+                    if e["kind"] == "status" and e["channel"] == "p1-de-h"]
+            # newest first: failed, then (after the back-off) waiting for the restarted
+            # actor's first spectrum, then ok
+            assert back[0]["to_state"] == "ok"
+            assert "failed" in [e["to_state"] for e in back]
+        finally:
+            await svc.stop()
+
+    run(go())
