@@ -114,7 +114,7 @@ def _feed_step(plan: BenchPlan, svc: BenchService, feeder: Feeder, sources: list
     restart_gaps = plan.per_source * sum(feeder.restart(sid) for sid in sources)
     before = _counters(svc)
     n0 = {sid: feeder.log.next_index[sid] for sid in sources}
-    cluster = plan.cluster is not None
+    cluster = plan.cluster not in (None, "process")
     w0, r0 = (svc.workers_cpu_s(), svc.ray_cpu_s()) if cluster else (0.0, 0.0)
     cpu0, proc0, wall0 = svc.cpu_s(), os.times(), time.monotonic()
     with _QueueWatch(svc) as watch:
@@ -404,10 +404,12 @@ def run(plan: BenchPlan, workdir: Path | None = None) -> dict[str, Any]:
                     "queue_blocks": plan.queue_blocks,
                     "channels": _channel_ids(sid, plan.per_source)} for sid in ids]
         extra: dict[str, Any] = {}
-        if plan.cluster is not None:
+        if plan.cluster not in (None, "process"):
             extra["cluster"] = {"engine": "ray", "address": plan.cluster,
                                 "workers": plan.workers}
             report["cluster"] = {"address": plan.cluster, "workers": plan.workers}
+        elif plan.cluster == "process":  # the one-process baseline of a cluster comparison
+            report["cluster"] = {"address": "process", "workers": 0}
         _say(f"starting a service with {n_src * plan.per_source} channels on {n_src} sources"
              + (f", on Ray ({plan.cluster}, {plan.workers} workers)" if extra else ""))
         with run_service(workdir / "load", analysis, sources, extra=extra,

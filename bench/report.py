@@ -53,7 +53,7 @@ def format_report(r: dict[str, Any]) -> str:
             f" {100 * st['feeder_cpu_share']:>5.1f}% {100 * st['bench_cpu_share']:>5.1f}% "
             f"{_f(lat['median_ms'], '.1f'):>7} {_f(lat['p99_ms'], '.1f'):>7} "
             f"{st['service_rss_mb']:>7.1f}")
-    if "cluster" in r:
+    if "cluster" in r and r["cluster"]["address"] != "process":
         c = r["cluster"]
         out += ["", f"  on Ray ({c['address']}, {c['workers']} workers): per step, CPU shares "
                     "of one core — head (the service process), workers (the actors), all Ray "

@@ -141,7 +141,7 @@ def cmd_bench(args: argparse.Namespace) -> int:
         raise CliError("--workers applies to --service --cluster", 2)
     if args.cluster is not None and not args.service:
         raise CliError("--cluster applies to --service only", 2)
-    if args.cluster is not None:
+    if args.cluster is not None and args.cluster != "process":
         try:
             import ray  # noqa: F401
         except ImportError:
