@@ -400,8 +400,11 @@ def run(plan: BenchPlan, workdir: Path | None = None) -> dict[str, Any]:
         analysis = {"fmax_hz": plan.fmax_hz, "lines": plan.lines, "overlap": plan.overlap,
                     "window": "hann", "averaging": "exponential", "averages": 8,
                     "unit": "velocity"}
+        # idle_timeout_s: the feeder connects every source at the start and feeds only some
+        # in each step; at the default (10 s) the service dropped the idle ones and the next
+        # step that fed them failed with a broken pipe
         sources = [{"id": sid, "kind": "tcp", "format": "framed", "sample_rate_hz": plan.fs_hz,
-                    "queue_blocks": plan.queue_blocks,
+                    "queue_blocks": plan.queue_blocks, "idle_timeout_s": 3600.0,
                     "channels": _channel_ids(sid, plan.per_source)} for sid in ids]
         extra: dict[str, Any] = {}
         if plan.cluster not in (None, "process"):
