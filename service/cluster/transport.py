@@ -146,23 +146,27 @@ def unpack(groups: Iterable[GroupBatch], find_peaks: PeakFinder) -> list[Spectra
     """The SpectralFrames of a push's groups, equal to the ones :func:`pack` took; peaks are
     found lazily from the shipped spectra by ``find_peaks`` (the pipeline's own finder)."""
     out: list[SpectralFrame] = []
+    new_band, new_tone = BandValue._make, ToneValue._make
     for g in groups:
         s = dict(zip(_SHARED, g.shared, strict=True))
         push = (PushPeaks(g.power, g.peaks, find_peaks)
                 if isinstance(g.peaks, PeakSettings) else None)
-        overall, bands, tones, speed = (g.overall.tolist(), g.bands.tolist(), g.tones.tolist(),
-                                        g.speed.tolist())
+        # plain floats of every channel at once (as the pipeline makes them), then one
+        # tuple per band and tone: (name, lo_hz, hi_hz, value), (name, frequency_hz, value)
+        overall, speed = g.overall.tolist(), g.speed.tolist()
+        bands = [[new_band((n, *v)) for n, v in zip(g.band_names, row, strict=True)]
+                 for row in g.bands.tolist()]
+        tones = [[new_tone((n, *v)) for n, v in zip(g.tone_names, row, strict=True)]
+                 for row in g.tones.tolist()]
         primary, seq, varied = g.primary.tolist(), g.seq.tolist(), g.speed_varied.tolist()
         for c, cid in enumerate(g.channels):
+            o, sp = overall[c], speed[c]
             out.append(SpectralFrame(
                 channel=cid, primary=primary[c], seq=seq[c], power=g.power[c],
-                overall=overall[c][0], overall_lo_hz=overall[c][1], overall_hi_hz=overall[c][2],
-                bands=tuple(BandValue(n, *v) for n, v in zip(g.band_names, bands[c],
-                                                              strict=True)),
-                tones=tuple(ToneValue(n, *v) for n, v in zip(g.tone_names, tones[c],
-                                                             strict=True)),
+                overall=o[0], overall_lo_hz=o[1], overall_hi_hz=o[2],
+                bands=tuple(bands[c]), tones=tuple(tones[c]),
                 peaks=FramePeaks(push, c) if push is not None else g.peaks[c],  # type: ignore[index]
-                quality=g.quality[c], speed_rpm=speed[c][0], speed_variation=speed[c][1],
+                quality=g.quality[c], speed_rpm=sp[0], speed_variation=sp[1],
                 speed_source=g.speed_source[c], speed_status=g.speed_status[c],
                 speed_varied=varied[c],
                 **s,  # type: ignore[arg-type]
