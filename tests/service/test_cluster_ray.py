@@ -34,6 +34,8 @@ from service.config import parse_config  # noqa: E402
 from service.config.cluster import node_resource  # noqa: E402
 from service.types import SpectralFrame  # noqa: E402
 
+pytestmark = pytest.mark.slow  # a Ray cluster of three nodes: ~40 s for the file
+
 OBJECT_STORE = 80 * 2**20  # bytes per node: the smallest Ray accepts comfortably
 
 
