@@ -77,11 +77,19 @@ class SourceGroup:
                 r.task = asyncio.create_task(self._supervise(r), name=f"pipeline-{sid}")
         return self.incarnation
 
-    async def pull(self, source_id: str, wait_s: float) -> list[PushBatch]:
+    async def pull(self, source_id: str, wait_s: float,
+                   written: dict[str, tuple[float | None, str]] | None = None
+                   ) -> list[PushBatch]:
         """The source's pushes since the last pull (oldest first); waits up to ``wait_s`` s
-        for one. Starts the sources first if this run of the actor has not (a restart)."""
+        for one. Starts the sources first if this run of the actor has not (a restart).
+        ``written``: the speeds written at the service (PUT /speed, MQTT, OPC UA) by channel,
+        (r/min or None, who), for the worker's next block, as in one process."""
         await self.start()
         r = self.runs[source_id]
+        for cid, (rpm, who) in (written or {}).items():
+            st = r.pipeline.channels.get(cid)
+            if st is not None:
+                st.manual_rpm, st.manual_by = rpm, who
         if not r.outbox:
             r.ready.clear()
             try:

@@ -211,7 +211,12 @@ class RemotePipeline:
         time Ray has restarted the actor, on another node if its own was lost)."""
         actor = self.source.actor
         while True:
-            batches: list[PushBatch] = await actor.pull.remote(self.source.id, PULL_WAIT_S)
+            # the written speeds travel with every pull (a few bytes): the actor's worker
+            # places them from its next block, and a restarted actor gets them again
+            written = {cid: (st.manual_rpm, st.manual_by) for cid, st in self.channels.items()
+                       if st.manual_rpm is not None or st.manual_by}
+            batches: list[PushBatch] = await actor.pull.remote(self.source.id, PULL_WAIT_S,
+                                                               written)
             for b in batches:
                 await self._take(b)
 

@@ -18,6 +18,7 @@ from service.app import Service
 from service.cluster import head
 from service.cluster.actor import SourceGroup
 from service.config import Config, parse_config
+from service.speedwrite import write_speed
 from service.types import SpectralFrame
 
 
@@ -26,13 +27,16 @@ class _Method:
         self.fn, self.owner = fn, owner
 
     def remote(self, *args: Any) -> Awaitable[Any]:
+        """Submitted at once, as Ray does (a call nobody awaits still runs)."""
         async def call() -> Any:
             if self.owner.lost:  # as Ray raises for a call to an actor whose process died
                 raise RuntimeError("the actor died unexpectedly (test)")
             got = self.fn(*args)
             return await got if asyncio.iscoroutine(got) else got
 
-        return call()
+        task = asyncio.ensure_future(call())
+        task.add_done_callback(lambda t: t.cancelled() or t.exception())  # retrieved
+        return task
 
 
 class InProcessActor:
@@ -130,11 +134,15 @@ def test_a_lost_actor_shows_failed_with_its_reason_and_its_restart_is_taken_up(
         in_process: None, tmp_path: Path) -> None:
     ids = ["p1-de-h", "p2-de-h"]  # two of the demo plant's channels
     cfg = parse_config({
-        "service": {"data_dir": str(tmp_path / "data")},
+        "service": {"data_dir": str(tmp_path / "data"), "evidence_before_s": 0.5,
+                    "evidence_after_s": 0.5},
         "analysis": {"fmax_hz": 4000.0, "lines": 400, "overlap": 0.5},
         "cluster": {"engine": "ray", "workers": 1},
         "sources": [{"id": "sim", "kind": "simulated", "scenario": "demo",
                      "sample_rate_hz": 10240.0, "channels": ids, "speed": 4.0}],
+        # raised at the first frame (the plant's overall is far above it): its evidence,
+        # the waveform around it, is captured on the actor and stored by the service
+        "alarms": [{"channel": "p2-de-h", "overall": True, "alert": 1e-6, "danger": 1e9}],
     }, source="test")
 
     async def go() -> None:
@@ -143,6 +151,30 @@ def test_a_lost_actor_shows_failed_with_its_reason_and_its_restart_is_taken_up(
         try:
             ch = svc.hub.channels
             await until(lambda: ch["p1-de-h"].status == "ok", 30, "first frames")
+            def raised() -> list[dict[str, Any]]:
+                return [e for e in svc.store.events(limit=100)
+                        if e["channel"] == "p2-de-h" and e["kind"] != "status"]
+
+            await until(lambda: bool(raised()), 30, "the alarm raised")
+            first_id = int(raised()[-1]["id"])
+
+            def stored() -> dict[str, Any] | None:
+                return svc.store.get_evidence(first_id)
+
+            await until(lambda: stored() is not None, 30, "evidence stored")
+            ev = stored()
+            assert ev is not None and ev["fs"] == 10240.0
+            # 0.5 s before and 0.5 s after the event's frame, at most (the stream's start
+            # may cut the part before)
+            assert 0.5 * 10240 <= ev["waveform"].size <= 1.0 * 10240
+            # a speed written at the service reaches the actor's worker: its frames carry it
+            write_speed(cfg, ch, "p1-de-h", 2970.0, "tester", manual_only=False)
+            await until(lambda: svc.hub.latest["p1-de-h"].speed_source == "manual", 30,
+                        "frames at the written speed")
+            assert svc.hub.latest["p1-de-h"].speed_rpm == 2970.0
+            assert ch["p1-de-h"].speed_dict() == {  # the state the actor sent back
+                "rpm": 2970.0, "source": "manual", "status": "ok", "variation": 0.0,
+                "varied": False, "written_by": "tester"}
             assert svc.cluster is not None
             old = svc.cluster.by_source["sim"]
             first = svc.by_source["sim"].incarnation  # type: ignore[attr-defined]
