@@ -23,6 +23,7 @@ from ..evidence import Evidence
 from ..pipeline import SourcePipeline, channel_states
 from ..profiles import ProfileBank
 from ..sources import make_source
+from ..speed import NotEnoughRevolutions
 from ..types import ChannelState, SpectralFrame
 from .transport import PLAN_FIELDS, PushBatch, pack, pack_states
 
@@ -112,6 +113,22 @@ class SourceGroup:
                        ) -> dict[str, object] | None:
         return self.runs[source_id].pipeline.envelope_state(channel, profile)
 
+    def runup_list(self, source_id: str, channel: str) -> list[dict[str, object]] | None:
+        st = self.runs[source_id].pipeline.channels.get(channel)
+        return None if st is None or st.runup is None else st.runup.as_list()
+
+    def order_spectrum(self, source_id: str, channel: str, omax: float, lines: int
+                       ) -> object:
+        """The order spectrum, or the NotEnoughRevolutions it raised (returned, not raised:
+        the service raises it again, whatever Ray would wrap it in)."""
+        st = self.runs[source_id].pipeline.channels.get(channel)
+        if st is None or st.runup is None:
+            return None
+        try:
+            return st.runup.order_spectrum(omax, lines)
+        except NotEnoughRevolutions as e:
+            return e
+
     def finish_evidence(self, source_id: str) -> list[Evidence]:
         return self.runs[source_id].pipeline.take_evidence(final=True)
 
@@ -172,6 +189,7 @@ class SourceGroup:
             if r.plans_sent.get(st.id) != plan:
                 r.plans_sent[st.id] = plans[st.id] = plan
         framed = {f.channel for f in frames}
+        runups = {st.id: st.runup for st in states if st.runup is not None}
         status = p.source.status()
         if r.dropped:
             status["outbox_dropped"] = r.dropped
@@ -182,6 +200,9 @@ class SourceGroup:
             counters=p.source.counters, status=status, latency_s=latency_s,
             failures=p.failures, restarts=p.restarts, failed=p.failed,
             evidence=p.take_evidence(),
+            runup_setup={cid: (cap.orders, cap.rpm_step) for cid, cap in runups.items()},
+            runup_records={cid: recs for cid, cap in runups.items()
+                           if (recs := cap.take_records())},
         )
 
     def _put(self, r: _Run, batch: PushBatch) -> None:

@@ -15,7 +15,7 @@ import time
 from collections.abc import Awaitable, Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -25,7 +25,11 @@ from ..evidence import Evidence
 from ..pipeline import _peak_rows
 from ..sources import make_source
 from ..sources.base import Source
+from ..speed import NotEnoughRevolutions
 from ..types import ChannelState, SourceCounters, SpectralFrame
+
+if TYPE_CHECKING:
+    from dsp.orders import OrderSpectrum
 from .actor import SourceGroup
 from .transport import PLAN_FIELDS, PushBatch, apply_states, unpack
 
@@ -239,6 +243,15 @@ class RemotePipeline:
         self._remote_failures = b.failures
         self.failed, self.restarts, self.latency_s = b.failed, b.restarts, b.latency_s
         self._evidence += b.evidence
+        for cid, (orders, step) in b.runup_setup.items():
+            st = self.channels[cid]
+            if not (isinstance(st.runup, RemoteRunup) and st.runup.orders == orders
+                    and st.runup.rpm_step == step):
+                st.runup = RemoteRunup(self, cid, orders, step)
+        for cid, recs in b.runup_records.items():
+            cap = self.channels[cid].runup
+            if isinstance(cap, RemoteRunup):
+                cap.records += recs
         self.pushes += 1
         await self.publish(self, unpack(b.groups, _peak_rows), b.latency_s)
 
@@ -276,6 +289,36 @@ class RemotePipeline:
         except Exception as e:
             log.warning("source %s: %s: %s", self.source.id, method, e)
             return None
+
+
+class RemoteRunup:
+    """A channel's run-up capture on its actor, as the service and API read it
+    (``service.types.RunupSource``): completed records arrive with the pushes; the live
+    run-up data and order spectra are asked of the actor (bounded calls)."""
+
+    def __init__(self, pipeline: RemotePipeline, channel: str, orders: tuple[float, ...],
+                 rpm_step: float) -> None:
+        self.pipeline, self.channel = pipeline, channel
+        self.orders, self.rpm_step = tuple(orders), float(rpm_step)
+        self.records: list[dict[str, object]] = []
+
+    def take_records(self) -> list[dict[str, object]]:
+        out, self.records = self.records, []
+        return out
+
+    def as_list(self) -> list[dict[str, object]]:
+        got: list[dict[str, object]] | None = self.pipeline._call(
+            "runup_list", 2.0, self.channel)
+        return got or []
+
+    def order_spectrum(self, omax: float, lines: int) -> OrderSpectrum:
+        got = self.pipeline._call("order_spectrum", 5.0, self.channel, omax, lines)
+        if isinstance(got, NotEnoughRevolutions):
+            raise got
+        if got is None:
+            raise RuntimeError(f"{self.channel}: the actor gave no order spectrum")
+        out: OrderSpectrum = got
+        return out
 
 
 def make_remote(cfg: Config, cluster: Cluster, src_cfg: SourceConfig,

@@ -90,6 +90,10 @@ class PushBatch:
     restarts: int = 0
     failed: str = ""
     evidence: list[Evidence] = field(default_factory=list)
+    # channels with a run-up capture (service.speed): (orders, rpm_step), and the run-up /
+    # coast-down records completed in this push
+    runup_setup: dict[str, tuple[tuple[float, ...], float]] = field(default_factory=dict)
+    runup_records: dict[str, list[dict[str, object]]] = field(default_factory=dict)
     sent_ns: int = field(default_factory=time.time_ns)
 
 

@@ -18,6 +18,7 @@ from service.app import Service
 from service.cluster import head
 from service.cluster.actor import SourceGroup
 from service.config import Config, parse_config
+from service.speed import NotEnoughRevolutions
 from service.speedwrite import write_speed
 from service.types import SpectralFrame
 
@@ -197,6 +198,44 @@ def test_a_lost_actor_shows_failed_with_its_reason_and_its_restart_is_taken_up(
             # actor's first spectrum, then ok
             assert back[0]["to_state"] == "ok"
             assert "failed" in [e["to_state"] for e in back]
+        finally:
+            await svc.stop()
+
+    run(go())
+
+
+def test_run_up_data_and_order_spectra_of_a_tacho_fed_channel_come_from_its_actor(
+        in_process: None, tmp_path: Path) -> None:
+    from service.demo import demo_config
+
+    cfg = demo_config(data_dir=str(tmp_path / "data"), speed=4.0)
+    cfg.cluster.engine = "ray"  # the variable-speed fan v1 with its tacho, on an actor
+
+    async def go() -> None:
+        svc = Service(cfg)
+        await svc.start()
+        try:
+            st = svc.hub.channels["v1-fan-h"]
+            await until(lambda: isinstance(st.runup, head.RemoteRunup), 30, "a capture")
+            assert st.runup is not None
+            actor = svc.cluster.by_source["switch-room"]  # type: ignore[union-attr]
+            cap = actor.group.runs["switch-room"].pipeline.channels["v1-fan-h"].runup
+            # the demo's runup_orders and runup_rpm_step (service/examples/demo.toml)
+            assert st.runup.orders == cap.orders == (1.0, 2.0, 7.0)
+            assert st.runup.rpm_step == 25.0
+            await until(lambda: bool(st.runup.as_list()), 30, "run-up rows")  # type: ignore[union-attr]
+            rows = st.runup.as_list()
+            assert rows and rows[0].keys() == cap.as_list()[0].keys()
+            await until(lambda: st.status == "ok", 30, "frames")
+            for _ in range(100):  # bounded: until the ring holds one frame's revolutions
+                try:
+                    res = st.runup.order_spectrum(10.0, 100)
+                    break
+                except NotEnoughRevolutions:
+                    await asyncio.sleep(0.2)
+            else:
+                raise AssertionError("no order spectrum within 20 s")
+            assert res.frames >= 1 and 900.0 <= res.rpm_mean <= 1500.0  # the fan's range
         finally:
             await svc.stop()
 
