@@ -35,7 +35,7 @@ from .transport import PLAN_FIELDS, PushBatch, apply_states, unpack
 
 log = logging.getLogger("quaver.cluster")
 
-__all__ = ["Cluster", "RemotePipeline", "RemoteSource", "group_sources"]
+__all__ = ["ActorLost", "Cluster", "RemotePipeline", "RemoteSource", "group_sources"]
 
 PULL_WAIT_S = 1.0  # a pull returns after this long without a push (our choice)
 CALL_TIMEOUT_S = 30.0  # a start or stop call that takes longer has failed (our choice)
@@ -147,6 +147,11 @@ class Cluster:
             self._started_ray = False
 
 
+class ActorLost(RuntimeError):
+    """The actor running a source is gone (its process or node); the source is failed until
+    Ray has restarted it."""
+
+
 class RemoteSource:
     """A source running on an actor, as the hub and the API see it: its identity from the
     config, its counters and status from its latest push."""
@@ -203,6 +208,7 @@ class RemotePipeline:
     latency_s: float = 0.0
     incarnation: str = ""
     pushes: int = 0
+    max_restarts: int = 0  # the actor's bound ([cluster] max_restarts), for the messages
     _evidence: list[Evidence] = field(default_factory=list)
     _remote_failures: int = 0
 
@@ -213,6 +219,18 @@ class RemotePipeline:
         """Pull the source's pushes until cancelled; raises when the actor is lost (the
         service reports the source failed and runs this again after its back-off, by which
         time Ray has restarted the actor, on another node if its own was lost)."""
+        try:
+            await self._pull_loop()
+        except Exception as e:
+            if type(e).__module__.startswith("ray") and "Actor" in type(e).__name__:
+                # Ray's text runs to many lines: say what happened and what comes next
+                first = str(e).strip().splitlines()[0][:200] if str(e).strip() else ""
+                raise ActorLost(
+                    f"actor lost ({type(e).__name__}: {first}); Ray restarts it, on another "
+                    f"node if its own is gone (at most {self.max_restarts} times)") from e
+            raise
+
+    async def _pull_loop(self) -> None:
         actor = self.source.actor
         while True:
             # the written speeds travel with every pull (a few bytes): the actor's worker
@@ -326,4 +344,4 @@ def make_remote(cfg: Config, cluster: Cluster, src_cfg: SourceConfig,
                 publish: Callable[[RemotePipeline, list[SpectralFrame], float],
                                   Awaitable[None]]) -> tuple[Source, RemotePipeline]:
     src = RemoteSource(src_cfg, cluster)
-    return src, RemotePipeline(src, states, publish)
+    return src, RemotePipeline(src, states, publish, max_restarts=cfg.cluster.max_restarts)
