@@ -93,8 +93,11 @@ class SourceGroup:
                 st.manual_rpm, st.manual_by = rpm, who
         if not r.outbox:
             r.ready.clear()
+            # asyncio.timeout, not wait_for: on Python 3.11 wait_for can swallow a
+            # cancellation that arrives as the event is set (the caller then never stops)
             try:
-                await asyncio.wait_for(r.ready.wait(), wait_s)
+                async with asyncio.timeout(wait_s):
+                    await r.ready.wait()
             except TimeoutError:
                 pass
         out = list(r.outbox)

@@ -61,10 +61,8 @@ def in_process(monkeypatch: pytest.MonkeyPatch) -> None:
                 self.by_source.update({sid: a for sid in ids})
 
     async def close(self: head.Cluster) -> None:
-        for a in self.actors:
-            await a.group.stop()
-        for a in self.by_source.values():
-            await a.group.stop()
+        for a in {id(a): a for a in [*self.actors, *self.by_source.values()]}.values():
+            await a.group.stop()  # each once: the first actors and any that replaced them
         self.actors.clear()
 
     def call(self: head.RemotePipeline, method: str, timeout_s: float, *args: Any) -> Any:
@@ -181,11 +179,16 @@ def test_a_lost_actor_shows_failed_with_its_reason_and_its_restart_is_taken_up(
             first = svc.by_source["sim"].incarnation  # type: ignore[attr-defined]
             old.lost = True  # its process dies: every call to it raises from now on
             await until(lambda: ch["p1-de-h"].status == "failed", 30, "failed shown")
-            failed = [e for e in svc.store.events(limit=100)
-                      if e["kind"] == "status" and e["to_state"] == "failed"]
-            assert {e["channel"] for e in failed} == set(ids)
+
+            def failed() -> list[dict[str, Any]]:
+                return [e for e in svc.store.events(limit=100)
+                        if e["kind"] == "status" and e["to_state"] == "failed"]
+
+            # the state is set first, then its events are committed (then announced)
+            await until(lambda: {e["channel"] for e in failed()} == set(ids), 30,
+                        "both channels' failed events committed")
             assert all("pipeline failed: RuntimeError: the actor died unexpectedly"
-                       in str(e["message"]) for e in failed)
+                       in str(e["message"]) for e in failed())
             # Ray restarts it: a new run of the actor (its __init__ again) takes the calls
             await old.group.stop()
             svc.cluster.by_source["sim"] = InProcessActor(cfg, ["sim"])
