@@ -114,11 +114,15 @@ def _feed_step(plan: BenchPlan, svc: BenchService, feeder: Feeder, sources: list
     restart_gaps = plan.per_source * sum(feeder.restart(sid) for sid in sources)
     before = _counters(svc)
     n0 = {sid: feeder.log.next_index[sid] for sid in sources}
+    cluster = plan.cluster not in (None, "process")
+    w0, r0 = (svc.workers_cpu_s(), svc.ray_cpu_s()) if cluster else (0.0, 0.0)
     cpu0, proc0, wall0 = svc.cpu_s(), os.times(), time.monotonic()
     with _QueueWatch(svc) as watch:
         fed = feeder.realtime(sources, seconds)
     wall = time.monotonic() - wall0
     cpu = svc.cpu_s() - cpu0
+    workers_cpu = svc.workers_cpu_s() - w0 if cluster else 0.0
+    ray_cpu = svc.ray_cpu_s() - r0 if cluster else 0.0
     proc1 = os.times()
     bench_cpu = (proc1.user - proc0.user) + (proc1.system - proc0.system)
     want = {c: expected_frames(feeder.log.next_index[sid] - n0[sid], plan.n, plan.hop)
@@ -162,6 +166,13 @@ def _feed_step(plan: BenchPlan, svc: BenchService, feeder: Feeder, sources: list
         "bench_cpu_share": round(bench_cpu / wall, 4),
         "feeder_max_late_ms": round(fed["max_late_ms"], 2),
         "service_rss_mb": round(svc.rss() / 2**20, 1),
+        # cluster mode: the Ray actors' CPU (ingest, checks, engine) and every process the
+        # service started (actors, raylet, GCS …), beside the service (head) process's own
+        **({"workers_cpu_share": round(workers_cpu / wall, 3),
+            "ray_cpu_share": round(ray_cpu / wall, 3),
+            "head_cpu_ms_per_frame": round(1e3 * cpu / frames_got, 4) if frames_got else None,
+            "workers_cpu_ms_per_frame": (round(1e3 * workers_cpu / frames_got, 4)
+                                         if frames_got else None)} if cluster else {}),
     }
 
 
@@ -389,20 +400,34 @@ def run(plan: BenchPlan, workdir: Path | None = None) -> dict[str, Any]:
         analysis = {"fmax_hz": plan.fmax_hz, "lines": plan.lines, "overlap": plan.overlap,
                     "window": "hann", "averaging": "exponential", "averages": 8,
                     "unit": "velocity"}
+        # idle_timeout_s: the feeder connects every source at the start and feeds only some
+        # in each step; at the default (10 s) the service dropped the idle ones and the next
+        # step that fed them failed with a broken pipe
         sources = [{"id": sid, "kind": "tcp", "format": "framed", "sample_rate_hz": plan.fs_hz,
-                    "queue_blocks": plan.queue_blocks,
+                    "queue_blocks": plan.queue_blocks, "idle_timeout_s": 3600.0,
                     "channels": _channel_ids(sid, plan.per_source)} for sid in ids]
-        _say(f"starting a service with {n_src * plan.per_source} channels on {n_src} sources")
-        with run_service(workdir / "load", analysis, sources) as svc:
+        extra: dict[str, Any] = {}
+        if plan.cluster not in (None, "process"):
+            extra["cluster"] = {"engine": "ray", "address": plan.cluster,
+                                "workers": plan.workers}
+            report["cluster"] = {"address": plan.cluster, "workers": plan.workers}
+        elif plan.cluster == "process":  # the one-process baseline of a cluster comparison
+            report["cluster"] = {"address": "process", "workers": 0}
+        _say(f"starting a service with {n_src * plan.per_source} channels on {n_src} sources"
+             + (f", on Ray ({plan.cluster}, {plan.workers} workers)" if extra else ""))
+        with run_service(workdir / "load", analysis, sources, extra=extra,
+                         start_timeout_s=120.0 if extra else 30.0) as svc:
             report["service_rss_idle_mb"] = round(svc.rss() / 2**20, 1)
             feeder = Feeder(svc.ports, ids, plan.per_source, plan.fs_hz, plan.block, time.time_ns())
             try:
                 report["headroom"] = headroom_and_latency(plan, svc, feeder)
-                report["fanout"] = fanout(plan, svc, feeder,
-                                          report["headroom"]["largest_passing_channels"])
+                if plan.cluster is None:  # cluster runs measure headroom only
+                    report["fanout"] = fanout(plan, svc, feeder,
+                                              report["headroom"]["largest_passing_channels"])
             finally:
                 feeder.close()
             report["service_log_tail"] = svc.log_tail(5)
-        report["memory"] = memory(plan, workdir / "memory")
+        if plan.cluster is None:
+            report["memory"] = memory(plan, workdir / "memory")
     report["machine"]["loadavg_at_end"] = [round(v, 2) for v in os.getloadavg()]
     return report

@@ -32,6 +32,11 @@ class BenchPlan:
     mem_block: int = 65536  # samples per channel per framed block
     mem_checkpoints: tuple[int, ...] = (10_000, 100_000, 1_000_000)  # frames, all channels
     mem_timeout_s: float = 900.0
+    # [cluster] of the service under test: None (one process, every phase), "process" (one
+    # process, headroom and latency only: the baseline of a cluster comparison) or a Ray
+    # address ("local": the service starts a Ray of ``workers`` processes on this machine)
+    cluster: str | None = None
+    workers: int = 1
 
     @classmethod
     def for_mode(cls, short: bool) -> BenchPlan:

@@ -16,7 +16,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["BLAS_ENV", "machine", "proc_cpu_s", "proc_rss_bytes"]
+__all__ = ["BLAS_ENV", "descendants", "machine", "proc_cpu_s", "proc_rss_bytes", "tree_cpu_s"]
 
 BLAS_ENV = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
 
@@ -56,3 +56,37 @@ def proc_rss_bytes(pid: int) -> int:
         if line.startswith("VmRSS:"):
             return int(line.split()[1]) * 1024
     raise OSError(f"no VmRSS for pid {pid}")
+
+
+def descendants(pid: int) -> list[int]:
+    """Every process below ``pid`` (children, their children …), from /proc/*/stat."""
+    parent: dict[int, int] = {}
+    for d in Path("/proc").iterdir():
+        if not d.name.isdigit():
+            continue
+        with contextlib.suppress(OSError, ValueError, IndexError):
+            text = (d / "stat").read_text()
+            parent[int(d.name)] = int(text[text.rindex(")") + 2 :].split()[1])
+    out: list[int] = []
+    todo = [pid]
+    while todo:
+        p = todo.pop()
+        kids = [c for c, pp in parent.items() if pp == p]
+        out += kids
+        todo += kids
+    return out
+
+
+def tree_cpu_s(pid: int, match: str | None = None) -> float:
+    """CPU seconds of the processes below ``pid`` (not ``pid`` itself); with ``match``, only
+    those whose command line contains it (e.g. Ray's ``ray::SourceGroup`` workers)."""
+    total = 0.0
+    for p in descendants(pid):
+        with contextlib.suppress(OSError, ValueError, IndexError):
+            if match is not None:
+                cmd = Path(f"/proc/{p}/cmdline").read_bytes().replace(b"\0", b" ").decode(
+                    errors="replace")
+                if match not in cmd:
+                    continue
+            total += proc_cpu_s(p)
+    return total

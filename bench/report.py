@@ -53,6 +53,17 @@ def format_report(r: dict[str, Any]) -> str:
             f" {100 * st['feeder_cpu_share']:>5.1f}% {100 * st['bench_cpu_share']:>5.1f}% "
             f"{_f(lat['median_ms'], '.1f'):>7} {_f(lat['p99_ms'], '.1f'):>7} "
             f"{st['service_rss_mb']:>7.1f}")
+    if "cluster" in r and r["cluster"]["address"] != "process":
+        c = r["cluster"]
+        out += ["", f"  on Ray ({c['address']}, {c['workers']} workers): per step, CPU shares "
+                    "of one core — head (the service process), workers (the actors), all Ray "
+                    "processes — and ms per analysis frame"]
+        for st in h["steps"]:
+            out.append(
+                f"  {st['channels']:>4} head {100 * st['service_cpu_share']:>5.0f}% workers "
+                f"{100 * st['workers_cpu_share']:>5.0f}% ray {100 * st['ray_cpu_share']:>5.0f}%"
+                f"  head {_f(st['head_cpu_ms_per_frame'], '.3f')} ms/frame, workers "
+                f"{_f(st['workers_cpu_ms_per_frame'], '.3f')} ms/frame")
     lat = h["latency"]
     out += ["", f"2. latency, sample sent → WebSocket spectrum message that includes it "
                 f"(channel {lat['channel']}, at {lat['at_channels']} channels, first "
@@ -60,6 +71,8 @@ def format_report(r: dict[str, Any]) -> str:
                 f"ms, p99 {_f(lat['p99_ms'], '.1f')} ms, max {_f(lat['max_ms'], '.1f')} ms "
                 f"over {lat['count']} messages" + (f" [client: {lat['client_error']}]"
                                                     if lat["client_error"] else "")]
+    if "fanout" not in r:  # a cluster run: headroom and latency only
+        return "\n".join(out)
     f = r["fanout"]
     rec = f["received_per_client"]
     want = [c["expected"] for c in f["per_client"] if c.get("expected") is not None]
@@ -99,9 +112,11 @@ def format_report(r: dict[str, Any]) -> str:
 
 
 def main(*, short: bool = False, as_json: bool = False,
-         steps: Sequence[int] | None = None, step_s: float | None = None) -> int:
+         steps: Sequence[int] | None = None, step_s: float | None = None,
+         cluster: str | None = None, workers: int = 1) -> int:
     """``quaver bench --service``: run, print the table (or JSON); 0 when it ran."""
     plan = BenchPlan.for_mode(short)
+    plan.cluster, plan.workers = cluster, workers
     if steps:
         plan.steps = tuple(sorted(set(int(c) for c in steps)))
     if step_s:

@@ -13,7 +13,7 @@ from pathlib import Path
 from typing import Any
 
 from . import harness
-from .probes import proc_cpu_s, proc_rss_bytes
+from .probes import proc_cpu_s, proc_rss_bytes, tree_cpu_s
 
 __all__ = ["BenchService", "config_doc", "run_service"]
 
@@ -51,6 +51,15 @@ class BenchService(harness.Child):
     def cpu_s(self) -> float:
         return proc_cpu_s(self.pid)
 
+    def workers_cpu_s(self) -> float:
+        """CPU seconds of the service's Ray actors (cluster mode with a local Ray)."""
+        return tree_cpu_s(self.pid, "SourceGroup")
+
+    def ray_cpu_s(self) -> float:
+        """CPU seconds of every process the service started (a local Ray: its actors, raylet,
+        GCS and helpers)."""
+        return tree_cpu_s(self.pid)
+
     def rss(self) -> int:
         return proc_rss_bytes(self.pid)
 
@@ -60,12 +69,12 @@ class BenchService(harness.Child):
 
 @contextlib.contextmanager
 def run_service(workdir: Path, analysis: dict[str, Any], sources: list[dict[str, Any]],
-                speed_rpm: float = 1485.0, extra: dict[str, Any] | None = None
-                ) -> Iterator[BenchService]:
+                speed_rpm: float = 1485.0, extra: dict[str, Any] | None = None,
+                start_timeout_s: float = harness.START_TIMEOUT_S) -> Iterator[BenchService]:
     """Start the service for ``sources`` (each on a free loopback port) in ``workdir``; wait
     until /api/v1/health answers; always stop it on leaving. In a session of its own, so
     Ctrl-C reaches the bench, which then stops it. ``extra``: more tables (``mqtt``, ``opcua``)."""
     doc = config_doc(analysis, [{**s, "listen": "auto"} for s in sources], speed_rpm)
     doc.update(extra or {})
-    with harness.run_service(doc, workdir, new_session=True) as child:
+    with harness.run_service(doc, workdir, new_session=True, timeout_s=start_timeout_s) as child:
         yield child.promote(BenchService)

@@ -11,7 +11,7 @@ import logging
 import time
 from collections.abc import Callable, Iterable
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from fastapi import FastAPI
 
@@ -32,6 +32,9 @@ from .spectra import spectrum_values
 from .store import HistoryPolicy, HistoryRow, Retention, Store, StoreError, trend_key
 from .supervise import refresh_quality, run_supervised, watch
 from .types import SpectralFrame
+
+if TYPE_CHECKING:
+    from .cluster.head import Cluster
 
 log = logging.getLogger("quaver")
 
@@ -55,12 +58,25 @@ class Service:
         self.store_errors = 0
         self.status_changes: dict[str, int] = {}  # transitions into each state, for /metrics
         all_ids: list[str] = []
+        # [cluster] engine = "ray": each source's pipeline runs on a Ray actor and a
+        # RemotePipeline stands in for it here (Ray is imported when the cluster starts)
+        self.cluster: Cluster | None = None
+        if cfg.cluster.engine == "ray":
+            from .cluster.head import Cluster, make_remote
+
+            self.cluster = Cluster(cfg)
         for src_cfg in cfg.sources:
             source = make_source(src_cfg)
             ids = list(source.channel_ids)
             all_ids += ids
             states = channel_states(cfg, src_cfg.id, ids, fs=source.fs)
             self.hub.channels.update(states)
+            if self.cluster is not None:
+                source, remote = make_remote(cfg, self.cluster, src_cfg, states,
+                                             self.on_frames)  # type: ignore[arg-type]
+                self.hub.sources[src_cfg.id] = source
+                self.pipelines.append(remote)  # type: ignore[arg-type]
+                continue
             self.hub.sources[src_cfg.id] = source
             self.pipelines.append(
                 SourcePipeline(
@@ -164,6 +180,8 @@ class Service:
             await p.source.aclose()
             self._store_evidence(p, final=True)
             self._store_runups(p)
+        if self.cluster is not None:
+            await self.cluster.close()
         if self.history is not None:
             self.store.put_history(self.history.flush())
         if self.notifier is not None:

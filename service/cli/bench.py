@@ -137,6 +137,15 @@ def cmd_bench(args: argparse.Namespace) -> int:
         raise CliError("--opcua applies to --service", 2)
     if args.opcua:
         return _opcua(args)
+    if args.workers is not None and args.cluster is None:
+        raise CliError("--workers applies to --service --cluster", 2)
+    if args.cluster is not None and not args.service:
+        raise CliError("--cluster applies to --service only", 2)
+    if args.cluster is not None and args.cluster != "process":
+        try:
+            import ray  # noqa: F401
+        except ImportError:
+            raise CliError("--cluster needs Ray (pip install 'quaver[ray]')", 1) from None
     if args.service:
         import bench as loadbench
 
@@ -152,7 +161,8 @@ def cmd_bench(args: argparse.Namespace) -> int:
             if any(c < 1 for c in steps):
                 raise CliError(f"--channels {args.channels!r}: counts must be >= 1", 2)
         return int(loadbench.main(short=args.short, as_json=args.json, steps=steps,
-                                  step_s=args.seconds))
+                                  step_s=args.seconds, cluster=args.cluster,
+                                  workers=args.workers or 1))
     from dsp import bench
 
     argv: list[str] = []

@@ -275,6 +275,15 @@ def build_parser() -> argparse.ArgumentParser:
                    "frame with [mqtt] publishing off and on, at --channels (one count, default "
                    "256) fed at real time for --seconds (default 15); 'auto' starts a "
                    "mosquitto of its own on 127.0.0.1")
+    p.add_argument("--cluster", default=None, metavar="ADDRESS",
+                   help="with --service: the service under test runs its sources on Ray "
+                   "([cluster] engine = \"ray\"; 'local' starts a Ray of --workers processes "
+                   "on this machine; 'process': one process, the baseline to compare with); "
+                   "measures headroom and latency only, with the head's and the workers' CPU "
+                   "per frame (needs the 'ray' extra)")
+    p.add_argument("--workers", type=_positive(int), default=None, metavar="N",
+                   help="with --cluster: worker processes (actors) the sources are dealt to "
+                   "(default 1)")
     p.set_defaults(func=cmd_bench)
     return ap
 

@@ -10,6 +10,7 @@ from typing import Annotated, Any, Literal, Union, get_args, get_origin
 
 from pydantic import BaseModel
 
+from .cluster import ClusterConfig
 from .mqtt import MqttConfig
 from .notify import NotifyConfig, QuietHours
 from .opcua import OpcuaConfig
@@ -55,6 +56,7 @@ def describe_settings() -> list[tuple[str, str, str, str]]:
         ("[[notify]] quiet_hours", QuietHours),
         ("[mqtt]", MqttConfig),
         ("[opcua]", OpcuaConfig),
+        ("[cluster]", ClusterConfig),
     ]
     rows = []
     for table, model in tables:

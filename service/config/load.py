@@ -17,6 +17,7 @@ from pydantic import ValidationError
 from ..entries import EntryProblem
 from .base import ID_PATTERN, SHA256_PATTERN, ConfigError
 from .checks import _cross_check, notify_env_problems
+from .cluster import cluster_problems
 from .models import MODELS, Config
 from .mqtt import mqtt_problems
 from .opcua import anchor_opcua_paths, opcua_problems
@@ -76,7 +77,7 @@ def parse_config(
             problems += [p for p in _cross_check(*salvaged) if p not in problems]
         raise ConfigError(problems, source=source) from None
     problems = (_cross_check(cfg) + notify_env_problems(cfg, env) + mqtt_problems(cfg, env)
-                + opcua_problems(cfg, base_dir))
+                + opcua_problems(cfg, base_dir) + cluster_problems(cfg))
     if problems:
         raise ConfigError(problems, source=source)
     if base_dir is not None:

@@ -9,6 +9,7 @@ from __future__ import annotations
 from pydantic import BaseModel, Field
 
 from .base import Id, StrictModel
+from .cluster import ClusterConfig
 from .mqtt import MqttConfig
 from .notify import NotifyConfig, QuietHours
 from .opcua import OpcuaConfig
@@ -76,6 +77,10 @@ class Config(StrictModel):
         default_factory=lambda: OpcuaConfig.model_validate({}),
         description="[opcua]: the optional OPC UA server (service.opcua)",
     )
+    cluster: ClusterConfig = Field(
+        default_factory=lambda: ClusterConfig.model_validate({}),
+        description="[cluster]: the sources' analysis on Ray actors (service.cluster)",
+    )
 
 
 MODELS: tuple[type[BaseModel], ...] = (
@@ -100,4 +105,5 @@ MODELS: tuple[type[BaseModel], ...] = (
     QuietHours,
     MqttConfig,
     OpcuaConfig,
+    ClusterConfig,
 )

@@ -36,6 +36,13 @@ class _SourceBase(StrictModel):
         description="stale_after_s for every channel of this source that does not set its "
         "own, s (see [[channels]]).",
     )
+    node: Id | None = Field(
+        None,
+        description="With [cluster] engine = \"ray\": the node this source must run on (a "
+        "network source: the node whose address it listens on), matched to the Ray custom "
+        "resource quaver-node-<node> of that node; unset: the source may run on any node "
+        "and moves when its node is lost.",
+    )
 
 
 def _valid_cidrs(items: list[str] | None) -> list[str] | None:

@@ -1,0 +1,227 @@
+"""The work a Ray actor does for its group of sources: ingest, sensor checks and the engine,
+with the same classes as the service process (``make_source``, ``SourcePipeline``,
+``ProfileBank``), and each push as one :class:`~service.cluster.transport.PushBatch` waiting
+in that source's outbox until the service process pulls it.
+
+Imports no Ray: ``service.cluster.head`` wraps :class:`SourceGroup` in ``ray.remote``, so the
+class runs (and is tested) in a plain process too. Knows nothing of the hub, alarms, store
+or HTTP."""
+
+from __future__ import annotations
+
+import asyncio
+import collections
+import functools
+import logging
+import time
+import uuid
+from collections.abc import Iterable
+from dataclasses import dataclass, field
+
+from ..config import Config
+from ..evidence import Evidence
+from ..pipeline import SourcePipeline, channel_states
+from ..profiles import ProfileBank
+from ..sources import make_source
+from ..speed import NotEnoughRevolutions
+from ..types import ChannelState, SpectralFrame
+from .transport import PLAN_FIELDS, PushBatch, pack, pack_states
+
+log = logging.getLogger("quaver.cluster")
+
+__all__ = ["OUTBOX_BATCHES", "SourceGroup"]
+
+OUTBOX_BATCHES = 4096  # pushes kept for a service that does not pull; then oldest dropped
+RESTART_FIRST_S, RESTART_MAX_S = 1.0, 30.0  # a failed pipeline runs again (as service.supervise)
+
+
+@dataclass
+class _Run:
+    pipeline: SourcePipeline
+    outbox: collections.deque[PushBatch] = field(default_factory=collections.deque)
+    ready: asyncio.Event = field(default_factory=asyncio.Event)
+    plans_sent: dict[str, tuple[object, ...]] = field(default_factory=dict)
+    dropped: int = 0
+    task: asyncio.Task[None] | None = None
+
+
+class SourceGroup:
+    """Some of the config's sources, each with its own pipeline, on one event loop."""
+
+    def __init__(self, cfg: Config, source_ids: list[str]) -> None:
+        self.cfg = cfg
+        self.incarnation = uuid.uuid4().hex  # Ray restarting the actor runs __init__ again
+        self.runs: dict[str, _Run] = {}
+        for src_cfg in cfg.sources:
+            if src_cfg.id not in source_ids:
+                continue
+            source = make_source(src_cfg)
+            ids = list(source.channel_ids)
+            states = channel_states(cfg, src_cfg.id, ids, fs=source.fs)
+            p = SourcePipeline(
+                source, states, self._publish,
+                make_bank=functools.partial(ProfileBank, cfg, ids), cfg=cfg,
+                evidence_s=(cfg.service.evidence_before_s, cfg.service.evidence_after_s),
+            )
+            self.runs[src_cfg.id] = _Run(p)
+        self._started = False
+
+    # -- called by the service process ---------------------------------------------------
+    async def start(self) -> str:
+        """Open every source (bind, open; raises if one cannot be set up) and start its
+        pipeline. Returns this run's incarnation id."""
+        if not self._started:
+            self._started = True
+            for r in self.runs.values():
+                await r.pipeline.source.start()
+            for sid, r in self.runs.items():
+                r.task = asyncio.create_task(self._supervise(r), name=f"pipeline-{sid}")
+        return self.incarnation
+
+    async def pull(self, source_id: str, wait_s: float,
+                   written: dict[str, tuple[float | None, str]] | None = None
+                   ) -> list[PushBatch]:
+        """The source's pushes since the last pull (oldest first); waits up to ``wait_s`` s
+        for one. Starts the sources first if this run of the actor has not (a restart).
+        ``written``: the speeds written at the service (PUT /speed, MQTT, OPC UA) by channel,
+        (r/min or None, who), for the worker's next block, as in one process."""
+        await self.start()
+        r = self.runs[source_id]
+        for cid, (rpm, who) in (written or {}).items():
+            st = r.pipeline.channels.get(cid)
+            if st is not None:
+                st.manual_rpm, st.manual_by = rpm, who
+        if not r.outbox:
+            r.ready.clear()
+            # asyncio.timeout, not wait_for: on Python 3.11 wait_for can swallow a
+            # cancellation that arrives as the event is set (the caller then never stops)
+            try:
+                async with asyncio.timeout(wait_s):
+                    await r.ready.wait()
+            except TimeoutError:
+                pass
+        out = list(r.outbox)
+        r.outbox.clear()
+        return out
+
+    def request_evidence(self, source_id: str, event_id: int, channel: str, center_index: int,
+                         spectrum: dict[str, object]) -> None:
+        self.runs[source_id].pipeline.request_evidence(event_id, channel, center_index, spectrum)
+
+    def latest_waveform(self, source_id: str, channel: str, seconds: float
+                        ) -> tuple[object, float, int] | None:
+        return self.runs[source_id].pipeline.latest_waveform(channel, seconds)
+
+    def envelope_state(self, source_id: str, channel: str, profile: str
+                       ) -> dict[str, object] | None:
+        return self.runs[source_id].pipeline.envelope_state(channel, profile)
+
+    def runup_list(self, source_id: str, channel: str) -> list[dict[str, object]] | None:
+        st = self.runs[source_id].pipeline.channels.get(channel)
+        return None if st is None or st.runup is None else st.runup.as_list()
+
+    def order_spectrum(self, source_id: str, channel: str, omax: float, lines: int
+                       ) -> object:
+        """The order spectrum, or the NotEnoughRevolutions it raised (returned, not raised:
+        the service raises it again, whatever Ray would wrap it in)."""
+        st = self.runs[source_id].pipeline.channels.get(channel)
+        if st is None or st.runup is None:
+            return None
+        try:
+            return st.runup.order_spectrum(omax, lines)
+        except NotEnoughRevolutions as e:
+            return e
+
+    def finish_evidence(self, source_id: str) -> list[Evidence]:
+        return self.runs[source_id].pipeline.take_evidence(final=True)
+
+    def where(self) -> dict[str, object]:
+        """Which process, host and Ray node (None outside Ray) this run is in."""
+        import os
+        import socket
+        try:
+            import ray
+
+            node = ray.get_runtime_context().get_node_id() if ray.is_initialized() else None
+        except ImportError:
+            node = None
+        return {"pid": os.getpid(), "host": socket.gethostname(), "node_id": node,
+                "incarnation": self.incarnation}
+
+    async def stop(self) -> None:
+        for r in self.runs.values():
+            if r.task is not None:
+                r.task.cancel()
+        await asyncio.gather(*(r.task for r in self.runs.values() if r.task is not None),
+                             return_exceptions=True)
+        for r in self.runs.values():
+            await r.pipeline.source.aclose()
+
+    # -- inside the actor -------------------------------------------------------------------
+    async def _supervise(self, r: _Run) -> None:
+        p = r.pipeline
+        backoff_s = RESTART_FIRST_S
+        while True:
+            try:
+                await p.run()
+                return
+            except asyncio.CancelledError:
+                raise
+            except Exception as err:
+                p.failures += 1
+                p.failed = f"{type(err).__name__}: {err}"[:500]
+                log.exception("source %s failed; restarting in %g s", p.source.id, backoff_s)
+                self._put(r, self._batch(r, [], 0.0))
+            await asyncio.sleep(backoff_s)
+            backoff_s = min(backoff_s * 2, RESTART_MAX_S)
+            p.reset_analysis()
+            p.failed = ""
+
+    async def _publish(self, p: SourcePipeline, frames: list[SpectralFrame],
+                       latency_s: float) -> None:
+        r = self.runs[p.source.id]
+        self._put(r, self._batch(r, frames, latency_s))
+
+    def _batch(self, r: _Run, frames: list[SpectralFrame], latency_s: float) -> PushBatch:
+        p = r.pipeline
+        now = time.monotonic()
+        states = p.channels.values()
+        plans: dict[str, tuple[object, ...]] = {}
+        for st in states:
+            plan = tuple(getattr(st, k) for k in PLAN_FIELDS)
+            if r.plans_sent.get(st.id) != plan:
+                r.plans_sent[st.id] = plans[st.id] = plan
+        framed = {f.channel for f in frames}
+        runups = {st.id: st.runup for st in states if st.runup is not None}
+        status = p.source.status()
+        if r.dropped:
+            status["outbox_dropped"] = r.dropped
+        return PushBatch(
+            source_id=p.source.id, incarnation=self.incarnation, groups=pack(frames),
+            states=pack_states(states), plans=plans,
+            frame_age_s=_alive_without_frames(states, framed, now),
+            counters=p.source.counters, status=status, latency_s=latency_s,
+            failures=p.failures, restarts=p.restarts, failed=p.failed,
+            evidence=p.take_evidence(),
+            runup_setup={cid: (cap.orders, cap.rpm_step) for cid, cap in runups.items()},
+            runup_records={cid: recs for cid, cap in runups.items()
+                           if (recs := cap.take_records())},
+        )
+
+    def _put(self, r: _Run, batch: PushBatch) -> None:
+        if len(r.outbox) >= OUTBOX_BATCHES:
+            r.outbox.popleft()
+            r.dropped += 1
+        r.outbox.append(batch)
+        r.ready.set()
+
+
+def _alive_without_frames(states: Iterable[ChannelState], framed: set[str], now: float
+                          ) -> dict[str, float]:
+    """Channels whose worker marked them alive (a tacho's pulses: service.speed) without a
+    frame in this push: their age, so the service process can mark them too."""
+    out: dict[str, float] = {}
+    for st in states:
+        if st.id not in framed and st.last_frame_mono is not None:
+            out[st.id] = now - st.last_frame_mono
+    return out

@@ -1,0 +1,347 @@
+"""The service process's side of cluster mode: connect to Ray (or start a local one), place
+each group of sources on an actor, and stand in for each source's pipeline: pull its pushes,
+turn them back into frames and hand them to the service exactly as a local pipeline does.
+
+Ray is imported here only, when a cluster starts (the optional ``ray`` extra). Knows the
+service's pipeline seam (``publish``, ``failed``, evidence) but not the hub, alarms or store."""
+
+from __future__ import annotations
+
+import asyncio
+import logging
+import os
+import sys
+import time
+from collections.abc import Awaitable, Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from ..config import Config, SourceConfig
+from ..config.cluster import node_resource
+from ..evidence import Evidence
+from ..pipeline import _peak_rows
+from ..sources import make_source
+from ..sources.base import Source
+from ..speed import NotEnoughRevolutions
+from ..types import ChannelState, SourceCounters, SpectralFrame
+
+if TYPE_CHECKING:
+    from dsp.orders import OrderSpectrum
+from .actor import SourceGroup
+from .transport import PLAN_FIELDS, PushBatch, apply_states, unpack
+
+log = logging.getLogger("quaver.cluster")
+
+__all__ = ["ActorLost", "Cluster", "RemotePipeline", "RemoteSource", "group_sources"]
+
+PULL_WAIT_S = 1.0  # a pull returns after this long without a push (our choice)
+CALL_TIMEOUT_S = 30.0  # a start or stop call that takes longer has failed (our choice)
+RELOCATABLE = ("file", "simulated")
+
+
+def group_sources(cfg: Config) -> list[tuple[str | None, list[str]]]:
+    """The actors' groups: (node or None, source ids). Sources that name a node run on one
+    actor per node; the others are dealt round robin to ``workers`` actors (no empty one)."""
+    pinned: dict[str, list[str]] = {}
+    free: list[str] = []
+    for s in cfg.sources:
+        if s.node is not None:
+            pinned.setdefault(s.node, []).append(s.id)
+        else:
+            free.append(s.id)
+    groups: list[tuple[str | None, list[str]]] = [(n, ids) for n, ids in pinned.items()]
+    k = min(cfg.cluster.workers, len(free))
+    groups += [(None, free[i::k]) for i in range(k)]
+    return groups
+
+
+class Cluster:
+    """Ray, connected (or started locally) on first use, and the service's actors."""
+
+    def __init__(self, cfg: Config) -> None:
+        self.cfg = cfg
+        self.groups = group_sources(cfg)
+        self.actors: list[Any] = []
+        self.by_source: dict[str, Any] = {}
+        self._started_ray = False
+        self._lock = asyncio.Lock()
+
+    async def ensure(self) -> None:
+        async with self._lock:
+            if self.actors:
+                return
+            self._connect()  # blocks the loop once, at start-up: ray.init wants the main thread
+            self._spawn()
+
+    def _connect(self) -> None:
+        import signal
+
+        cl = self.cfg.cluster
+        if cl.address == "local" and "ray" not in sys.modules:
+            # a Ray of this machine only: its servers on loopback (Ray reads this on import)
+            os.environ.setdefault("RAY_ENABLE_WINDOWS_OR_OSX_CLUSTER", "0")
+        import ray
+
+        if ray.is_initialized():  # a test (or an embedding program) connected already
+            return
+        os.environ.setdefault("RAY_USAGE_STATS_ENABLED", "0")  # no reports home
+        # ray.init installs a SIGTERM handler that exits at once; the service's own
+        # (orderly stop: sources, store) must stay in charge
+        term = signal.getsignal(signal.SIGTERM)
+        # the workers import this package from where the service runs
+        root = str(Path(__file__).resolve().parents[2])
+        env = {"PYTHONPATH": os.pathsep.join(
+            p for p in (root, os.environ.get("PYTHONPATH", "")) if p)}
+        if cl.address == "local":
+            ray.init(num_cpus=cl.workers, include_dashboard=False,
+                     object_store_memory=cl.object_store_mb * 2**20,
+                     runtime_env={"env_vars": env}, log_to_driver=False,
+                     configure_logging=False)
+        else:
+            ray.init(address=cl.address, runtime_env={"env_vars": env}, log_to_driver=False,
+                     configure_logging=False)
+        self._started_ray = True
+        if term is not None:
+            signal.signal(signal.SIGTERM, term)
+
+    def _spawn(self) -> None:
+        import ray
+
+        remote_cls = ray.remote(SourceGroup)
+        for node, ids in self.groups:
+            opts: dict[str, Any] = {
+                "max_restarts": self.cfg.cluster.max_restarts, "max_task_retries": 0,
+                # an actor mostly waits on sockets and numpy; a quarter CPU each lets a
+                # node host several, and the node's CPUs bound them all together
+                "num_cpus": 0.25, "max_concurrency": 1000,
+            }
+            if node is not None:
+                opts["resources"] = {node_resource(node): 0.001}
+            else:
+                opts["scheduling_strategy"] = "SPREAD"
+            actor = remote_cls.options(**opts).remote(self.cfg, ids)
+            self.actors.append(actor)
+            for sid in ids:
+                self.by_source[sid] = actor
+
+    async def close(self) -> None:
+        import ray
+
+        # every actor at once, bounded: a dead one has nothing to stop
+        try:
+            stopped: list[object] = await asyncio.wait_for(asyncio.gather(
+                *(a.stop.remote() for a in self.actors), return_exceptions=True),
+                CALL_TIMEOUT_S)
+        except TimeoutError as e:
+            stopped = [e] * len(self.actors)
+        for a, res in zip(self.actors, stopped, strict=True):
+            if isinstance(res, BaseException):
+                log.info("actor stop: %s", res)
+            ray.kill(a, no_restart=True)
+        self.actors.clear()
+        if self._started_ray:
+            ray.shutdown()  # on the thread that connected
+            self._started_ray = False
+
+
+class ActorLost(RuntimeError):
+    """The actor running a source is gone (its process or node); the source is failed until
+    Ray has restarted it."""
+
+
+class RemoteSource:
+    """A source running on an actor, as the hub and the API see it: its identity from the
+    config, its counters and status from its latest push."""
+
+    def __init__(self, cfg: SourceConfig, cluster: Cluster) -> None:
+        local = make_source(cfg)  # never started: identity, rate and status shape only
+        self.id, self.channel_ids = local.id, tuple(local.channel_ids)
+        self._fs = local.fs
+        self.kind = cfg.kind
+        self.node = cfg.node
+        self.counters: SourceCounters = local.counters
+        self._status: dict[str, object] = local.status()
+        self.cluster = cluster
+
+    @property
+    def fs(self) -> float | None:
+        return self._fs
+
+    @property
+    def actor(self) -> Any:
+        return self.cluster.by_source[self.id]
+
+    async def start(self) -> None:
+        await self.cluster.ensure()
+        await asyncio.wait_for(self.actor.start.remote(), CALL_TIMEOUT_S)
+
+    async def aclose(self) -> None:
+        pass  # the cluster stops its actors (Cluster.close)
+
+    def status(self) -> dict[str, object]:
+        return {**self._status, "engine": "ray", "node": self.node}
+
+    def __aiter__(self) -> RemoteSource:
+        return self
+
+    async def __anext__(self) -> Any:
+        raise StopAsyncIteration  # blocks never reach the service process
+
+    def took(self, b: PushBatch) -> None:
+        self.counters, self._status = b.counters, b.status
+
+
+@dataclass
+class RemotePipeline:
+    """A source's pipeline on an actor, seen from the service process (what
+    ``service.supervise`` and the API use of a ``SourcePipeline``)."""
+
+    source: RemoteSource
+    channels: dict[str, ChannelState]
+    publish: Callable[[RemotePipeline, list[SpectralFrame], float], Awaitable[None]]
+    failures: int = 0
+    failed: str = ""
+    restarts: int = 0
+    latency_s: float = 0.0
+    incarnation: str = ""
+    pushes: int = 0
+    max_restarts: int = 0  # the actor's bound ([cluster] max_restarts), for the messages
+    _evidence: list[Evidence] = field(default_factory=list)
+    _remote_failures: int = 0
+
+    def __post_init__(self) -> None:
+        self.started_mono = time.monotonic()
+
+    async def run(self) -> None:
+        """Pull the source's pushes until cancelled; raises when the actor is lost (the
+        service reports the source failed and runs this again after its back-off, by which
+        time Ray has restarted the actor, on another node if its own was lost)."""
+        try:
+            await self._pull_loop()
+        except Exception as e:
+            if type(e).__module__.startswith("ray") and "Actor" in type(e).__name__:
+                # Ray's text runs to many lines: say what happened and what comes next
+                first = str(e).strip().splitlines()[0][:200] if str(e).strip() else ""
+                raise ActorLost(
+                    f"actor lost ({type(e).__name__}: {first}); Ray restarts it, on another "
+                    f"node if its own is gone (at most {self.max_restarts} times)") from e
+            raise
+
+    async def _pull_loop(self) -> None:
+        actor = self.source.actor
+        while True:
+            # the written speeds travel with every pull (a few bytes): the actor's worker
+            # places them from its next block, and a restarted actor gets them again
+            written = {cid: (st.manual_rpm, st.manual_by) for cid, st in self.channels.items()
+                       if st.manual_rpm is not None or st.manual_by}
+            batches: list[PushBatch] = await actor.pull.remote(self.source.id, PULL_WAIT_S,
+                                                               written)
+            for b in batches:
+                await self._take(b)
+
+    async def _take(self, b: PushBatch) -> None:
+        if b.incarnation != self.incarnation:
+            if self.incarnation:
+                log.warning("source %s: its actor was restarted", self.source.id)
+            self.incarnation = b.incarnation
+            self._remote_failures = 0
+        self.source.took(b)
+        apply_states(self.channels, b.states)
+        apply_states(self.channels, b.plans, PLAN_FIELDS)
+        now = time.monotonic()
+        for cid, age in b.frame_age_s.items():
+            st = self.channels[cid]
+            seen = now - age
+            if st.last_frame_mono is None or seen > st.last_frame_mono:
+                st.last_frame_mono = seen
+        self.failures += b.failures - self._remote_failures
+        self._remote_failures = b.failures
+        self.failed, self.restarts, self.latency_s = b.failed, b.restarts, b.latency_s
+        self._evidence += b.evidence
+        for cid, (orders, step) in b.runup_setup.items():
+            st = self.channels[cid]
+            if not (isinstance(st.runup, RemoteRunup) and st.runup.orders == orders
+                    and st.runup.rpm_step == step):
+                st.runup = RemoteRunup(self, cid, orders, step)
+        for cid, recs in b.runup_records.items():
+            cap = self.channels[cid].runup
+            if isinstance(cap, RemoteRunup):
+                cap.records += recs
+        self.pushes += 1
+        await self.publish(self, unpack(b.groups, _peak_rows), b.latency_s)
+
+    def reset_analysis(self) -> None:
+        """Nothing to forget here: the actor's pipeline restarts its own analysis."""
+
+    def request_evidence(self, event_id: int, channel: str, center_index: int,
+                         spectrum: dict[str, object]) -> None:
+        self.source.actor.request_evidence.remote(self.source.id, event_id, channel,
+                                                  center_index, spectrum)
+
+    def take_evidence(self, *, final: bool = False) -> list[Evidence]:
+        if final:
+            self._evidence += self._call("finish_evidence", 2.0) or []
+        out, self._evidence = self._evidence, []
+        return out
+
+    def latest_waveform(self, channel: str, seconds: float
+                        ) -> tuple[np.ndarray, float, int] | None:
+        got = self._call("latest_waveform", 2.0, channel, seconds)
+        return None if got is None else (np.asarray(got[0]), float(got[1]), int(got[2]))
+
+    def envelope_state(self, channel: str, profile: str) -> dict[str, object] | None:
+        out: dict[str, object] | None = self._call("envelope_state", 2.0, channel, profile)
+        return out
+
+    def _call(self, method: str, timeout_s: float, *args: object) -> Any:
+        """A bounded blocking call to the actor (API routes that are read rarely); None when
+        the actor does not answer in time."""
+        import ray
+
+        try:
+            return ray.get(getattr(self.source.actor, method).remote(self.source.id, *args),
+                           timeout=timeout_s)
+        except Exception as e:
+            log.warning("source %s: %s: %s", self.source.id, method, e)
+            return None
+
+
+class RemoteRunup:
+    """A channel's run-up capture on its actor, as the service and API read it
+    (``service.types.RunupSource``): completed records arrive with the pushes; the live
+    run-up data and order spectra are asked of the actor (bounded calls)."""
+
+    def __init__(self, pipeline: RemotePipeline, channel: str, orders: tuple[float, ...],
+                 rpm_step: float) -> None:
+        self.pipeline, self.channel = pipeline, channel
+        self.orders, self.rpm_step = tuple(orders), float(rpm_step)
+        self.records: list[dict[str, object]] = []
+
+    def take_records(self) -> list[dict[str, object]]:
+        out, self.records = self.records, []
+        return out
+
+    def as_list(self) -> list[dict[str, object]]:
+        got: list[dict[str, object]] | None = self.pipeline._call(
+            "runup_list", 2.0, self.channel)
+        return got or []
+
+    def order_spectrum(self, omax: float, lines: int) -> OrderSpectrum:
+        got = self.pipeline._call("order_spectrum", 5.0, self.channel, omax, lines)
+        if isinstance(got, NotEnoughRevolutions):
+            raise got
+        if got is None:
+            raise RuntimeError(f"{self.channel}: the actor gave no order spectrum")
+        out: OrderSpectrum = got
+        return out
+
+
+def make_remote(cfg: Config, cluster: Cluster, src_cfg: SourceConfig,
+                states: dict[str, ChannelState],
+                publish: Callable[[RemotePipeline, list[SpectralFrame], float],
+                                  Awaitable[None]]) -> tuple[Source, RemotePipeline]:
+    src = RemoteSource(src_cfg, cluster)
+    return src, RemotePipeline(src, states, publish, max_restarts=cfg.cluster.max_restarts)

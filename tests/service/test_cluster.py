@@ -1,0 +1,180 @@
+"""Cluster mode without Ray: the transport from an actor to the service process gives back
+the pipeline's own frames, the actor's work (SourceGroup) run in this process gives the
+local pipeline's results, and the [cluster] table's rules.
+
+The same with real Ray actors on a multi-node test cluster: test_cluster_ray.py."""
+
+from __future__ import annotations
+
+import asyncio
+import pickle
+from pathlib import Path
+
+import numpy as np
+import pytest
+from clusterkit import frame_differences, local_frames, recording, replay_doc
+
+from service.cluster.actor import SourceGroup
+from service.cluster.head import group_sources
+from service.cluster.transport import PushBatch, pack, unpack
+from service.config import ConfigError, parse_config
+from service.demo import demo_config
+from service.pipeline import SourcePipeline, _peak_rows, channel_states
+from service.profiles import ProfileBank
+from service.sources import make_source
+from service.types import SampleBlock
+
+
+def test_a_push_packed_and_unpacked_gives_the_pipelines_frames() -> None:
+    # every source of the demo (pumps, gearbox, the variable-speed fan with its tacho), four
+    # seconds of the plant model pushed in 0.1 s blocks as the simulated source cuts them
+    cfg = demo_config(data_dir="unused")
+    pushes = 0
+    for src_cfg in cfg.sources:
+        src = make_source(src_cfg)
+        ids = list(src.channel_ids)
+        fs = float(src.fs or 0.0)
+        p = SourcePipeline(src, channel_states(cfg, src_cfg.id, ids), None,  # type: ignore[arg-type]
+                           lambda fs, ids=ids: ProfileBank(cfg, ids, fs), cfg=cfg)
+        n = round(0.1 * fs)
+        for k in range(0, round(4.0 * fs), n):
+            x = src.model.render(k, n)  # type: ignore[attr-defined]
+            frames = p.process(SampleBlock(src_cfg.id, tuple(ids), x, k, k * 1000, fs))
+            # through pickle, as Ray sends it
+            back = unpack(pickle.loads(pickle.dumps(pack(frames))), _peak_rows)
+            assert len(back) == len(frames)
+            for a, b in zip(frames, back, strict=True):
+                assert frame_differences(a, b) == [], a.channel
+            pushes += bool(frames)
+    assert pushes > 40  # every source made frames in most pushes
+
+
+def test_pack_keeps_one_batch_per_analysis_group() -> None:
+    cfg = parse_config(replay_doc(Path("x.wav")), source="test")
+    ids = ["m1-de-h", "m1-de-v"]
+    p = SourcePipeline(make_source(cfg.sources[0]), channel_states(cfg, "rec", ids), None,  # type: ignore[arg-type]
+                       lambda fs: ProfileBank(cfg, ids, fs), cfg=cfg)
+    t = np.arange(2560 * 3) / 2560.0
+    x = np.stack([np.sin(2 * np.pi * 24.75 * t), np.cos(2 * np.pi * 24.75 * t)]).astype(
+        np.float32)
+    frames = p.process(SampleBlock("rec", tuple(ids), x, 0, 0, 2560.0))
+    groups = pack(frames)
+    # two profiles ("wide", "narrow"), both channels in each: one batch per profile and hop,
+    # holding both channels' spectra as one [C, lines + 1] array
+    profiles = [g.shared[0] for g in groups]
+    assert set(profiles) == {"wide", "narrow"}
+    assert all(g.channels == tuple(ids) for g in groups)
+    assert {g.power.shape for g in groups} == {(2, 401), (2, 201)}
+    assert sum(len(g.channels) for g in groups) == len(frames)
+
+
+def _group_batches(cfg_doc: dict[str, object]) -> list[PushBatch]:
+    """Every push of the same recording from a SourceGroup (the actor's work) in this
+    process, pulled as the service process pulls them."""
+    cfg = parse_config(cfg_doc, source="test")
+    out: list[PushBatch] = []
+
+    async def go() -> None:
+        g = SourceGroup(cfg, ["rec"])
+        async with asyncio.timeout(60):
+            await g.start()
+            task = g.runs["rec"].task
+            assert task is not None
+            while not (task.done() and not g.runs["rec"].outbox):
+                out.extend(await g.pull("rec", 0.2))
+            await g.stop()
+
+    asyncio.run(go())
+    return out
+
+
+def test_the_actors_work_gives_the_local_pipelines_results(tmp_path: Path) -> None:
+    doc = replay_doc(recording(tmp_path / "rec.wav"))
+    local = local_frames(doc)
+    batches = _group_batches(doc)
+    remote = [f for b in batches for f in unpack(b.groups, _peak_rows)]
+    # 12 s at fs 2560 (30720 samples): "wide" 1024-point frames every 512 samples →
+    # (30720 − 1024) // 512 + 1 = 59 per channel; "narrow" decimated by 4 to 640 Hz,
+    # 512-point frames every 256 (1024 input samples), the first ending at the input index
+    # its first frame reports (the decimation chain's delay) → 2 channels each
+    narrow = [f for f in local if f.profile == "narrow"]
+    per_channel = (30720 - narrow[0].end_index) // 1024 + 1
+    assert narrow[0].end_index > 512 * 4  # the chain's delay adds to the 2048 input samples
+    assert len(local) == 2 * (59 + per_channel)
+    assert len(remote) == len(local)
+    for a, b in zip(local, remote, strict=True):
+        # t_ns: the replay's clock starts at each run's wall time
+        assert frame_differences(a, b, skip=("t_ns",)) == [], (a.channel, a.profile, a.seq)
+    last = batches[-1]
+    assert last.counters.samples == 12 * 2560
+    assert last.states["m1-de-h"][1] == 12 * 2560  # STATE_FIELDS[1]: samples
+    assert {cid for b in batches for cid in b.plans} == {"m1-de-h", "m1-de-v"}
+    assert len({b.incarnation for b in batches}) == 1
+
+
+def _cluster_doc(**cluster: object) -> dict[str, object]:
+    doc = replay_doc(Path("rec.wav"))
+    doc["sources"] = [
+        *doc["sources"],  # type: ignore[list-item]
+        {"id": "net", "kind": "tcp", "listen": "127.0.0.1:9000", "format": "f32le",
+         "sample_rate_hz": 2560.0, "channels": ["n1"]},
+    ]
+    doc["cluster"] = cluster
+    return doc
+
+
+def test_network_sources_on_a_remote_cluster_must_name_their_node() -> None:
+    with pytest.raises(ConfigError, match=r"sources\[1\]\.node: a tcp source on a Ray cluster "
+                       r"must name the node"):
+        parse_config(_cluster_doc(engine="ray", address="10.1.2.3:6379"), source="test")
+    # on a local Ray everything runs on this machine: no node needed
+    cfg = parse_config(_cluster_doc(engine="ray", address="local"), source="test")
+    assert cfg.cluster.workers == 2
+
+
+def test_node_without_ray_and_a_bad_engine_are_refused() -> None:
+    doc = _cluster_doc()
+    doc["sources"][0]["node"] = "east"  # type: ignore[index]
+    with pytest.raises(ConfigError, match=r'sources\[0\]\.node: node is only used with '
+                       r'\[cluster\] engine = "ray"'):
+        parse_config(doc, source="test")
+    with pytest.raises(ConfigError,
+                       match=r"cluster\.engine: 'spark' is not one of 'process', 'ray'"):
+        parse_config(_cluster_doc(engine="spark"), source="test")
+
+
+def test_sources_are_grouped_by_node_then_dealt_to_the_workers() -> None:
+    doc = _cluster_doc(engine="ray", workers=2)
+    doc["sources"] += [  # type: ignore[operator]
+        {"id": f"sim{i}", "kind": "simulated", "channels": [f"s{i}-a"]} for i in range(3)]
+    doc["sources"][1]["node"] = "east"  # type: ignore[index]
+    cfg = parse_config(doc, source="test")
+    assert group_sources(cfg) == [("east", ["net"]), (None, ["rec", "sim1"]),
+                                  (None, ["sim0", "sim2"])]
+
+
+def test_the_docker_cluster_example_places_what_its_config_names() -> None:
+    import json
+
+    import yaml
+
+    from service.config import load_config
+    from service.config.cluster import node_resource
+
+    docker = Path(__file__).resolve().parents[2] / "docker"
+    cfg = load_config(docker / "quaver-cluster.toml")
+    assert cfg.cluster.engine == "ray" and cfg.cluster.address == "auto"
+    with open(docker / "compose.cluster.yaml", encoding="utf-8") as f:
+        services = yaml.safe_load(f)["services"]
+    offered: set[str] = set()
+    for svc in services.values():
+        cmd = svc["command"]
+        for arg in cmd if isinstance(cmd, list) else []:
+            if arg.startswith("--resources="):
+                offered |= set(json.loads(arg.split("=", 1)[1]))
+    # every pinned source's node is a resource some worker offers
+    pinned = {node_resource(s.node) for s in cfg.sources if s.node is not None}
+    assert pinned and pinned <= offered
+    # the image is built with the ray extra, and the head runs the service
+    assert services["head"]["build"]["args"]["QUAVER_EXTRAS"] == "[ray]"
+    assert "quaver serve -c /etc/quaver/quaver.toml" in " ".join(services["head"]["command"])
