@@ -10,8 +10,8 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy.interpolate import CubicSpline
-from scipy.special import i0
 from scipy.signal import firwin, resample_poly
+from scipy.special import i0
 
 from .analyzer import AnalysisSpec, Analyzer
 from .filterbank import FrameGrid
