@@ -414,16 +414,21 @@ class AngleStream:
         Output samples per revolution S (2.56·Omax for a spectrum to order Omax).
     pulses_per_rev : int, optional
         Tacho pulses per revolution (default 1).
+    max_span_s : float, optional
+        Samples kept while too few pulses are known to resample them, s (default 10; the
+        oldest go first).
     """
 
     index_gap = 1 << 20
+    keep_times = 1 << 15  # output times kept for time_at
 
     def __init__(self, channels: int, fs: float, samples_per_rev: float,
-                 pulses_per_rev: int = 1) -> None:
+                 pulses_per_rev: int = 1, *, max_span_s: float = 10.0) -> None:
         if not (fs > 0 and samples_per_rev > 0 and pulses_per_rev >= 1 and channels >= 1):
             raise ValueError("channels, fs, samples_per_rev and pulses_per_rev must be > 0")
         self.channels, self.fs, self.spr = int(channels), float(fs), float(samples_per_rev)
         self.ppr = int(pulses_per_rev)
+        self.max_span = max(1, int(max_span_s * self.fs))
         self._times = np.zeros(0)  # times of the latest outputs, s
         self._times_first = 0  # output index of _times[0]
         self._base = 0  # output index of j = 0 in the current run
@@ -446,6 +451,13 @@ class AngleStream:
         self._x = np.zeros((self.channels, 0))
         self._t0 = None
         self._new_run()
+
+    def _hold(self) -> None:
+        """Waiting for pulses: keep at most ``max_span_s`` of the newest samples."""
+        cut = self._x.shape[1] - self.max_span
+        if cut > 0 and self._t0 is not None:
+            self._x = self._x[:, cut:]
+            self._t0 += cut / self.fs
 
     @property
     def next_index(self) -> int:
@@ -516,6 +528,7 @@ class AngleStream:
         self._take_pulses(pulses_s)
         tp, npl = self._tp, self._np
         if tp.size < 4:
+            self._hold()
             return empty, self._next_out
         # θ(t) holds from the run's first pulse (or the third kept one, away from the
         # spline's free end) to the second newest pulse (the newest's segment still moves)
@@ -524,6 +537,7 @@ class AngleStream:
         k_a = max(0, int(np.ceil((ta - self._t0) * self.fs)))
         k_b = int(np.floor((tb - self._t0) * self.fs))
         if k_b - k_a < 2:
+            self._hold()
             return empty, self._next_out
         t = self._t0 + np.arange(k_a, k_b + 1) / self.fs
         spline = CubicSpline(tp, npl / self.ppr)
@@ -550,10 +564,11 @@ class AngleStream:
             t_out = np.interp(j, u, t)
             first = self._base + int(j[0])
             if self._times.size and first == self._times_first + self._times.size:
-                self._times = np.concatenate((self._times, t_out))[-8192:]
+                self._times = np.concatenate((self._times, t_out))[-self.keep_times:]
                 self._times_first = first + j.size - self._times.size
             else:
-                self._times, self._times_first = t_out[-8192:], first + max(0, j.size - 8192)
+                self._times = t_out[-self.keep_times:]
+                self._times_first = first + j.size - self._times.size
             self._j = int(j[-1]) + 1
             self._next_out = first + j.size
         # drop the samples and pulses no later output needs
