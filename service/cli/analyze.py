@@ -224,6 +224,9 @@ def _config_run(args: argparse.Namespace, cfg: Config, row: int, cid: str,
             return False
         if item.channel == cid and item.name in cli_names:
             return False  # the option's band or tone of that name replaces it
+        if s.kind == "order":  # orders only, up to omax (as lookups.covers)
+            o = item.hi_order if hasattr(item, "hi_order") else item.order
+            return is_order and o is not None and o <= s.omax * (1 + 1e-9)
         if is_order and not has_speed:
             return False  # a '*' order item skips a channel without speed
         if top is None or top <= s.fmax_hz * (1 + 1e-9):
@@ -398,6 +401,7 @@ def _channel_result(name: str, run: _Run, frame: SpectralFrame, st: ChannelState
         "profile": frame.profile,
         "fs_hz": frame.fs,
         "decimation": info.get("decimation", 1),
+        "x_unit": frame.x_unit,  # of every x value here: Hz, or order (an order profile)
         "df_hz": frame.df_hz,
         "f0_hz": frame.f0_hz,
         "lines": frame.lines,
