@@ -19,7 +19,8 @@ The server sends:
   UTF-8 JSON ``{"kind": "spectrum", "channel", "profile", "seq", "timestamp_ns", "f0_hz",
   "df_hz", "x_unit", "unit", "amplitude", "averages", "count", "missed"}`` (``x_unit``: "Hz",
   or "order" for an order profile, whose f0_hz and df_hz are then orders), then ``count``
-  little-endian float32 values (the header is padded with spaces so the values start 4-byte aligned);
+  little-endian float32 values (the header is padded with spaces so the values start
+  4-byte aligned);
 * text JSON messages ``{"kind": "hello" | "bands" | "tones" | "alarm" | "rules" | "status" |
   "overall" | "error",
   ...}`` whose fields match the REST resources; an ``alarm`` message is a committed event
