@@ -9,7 +9,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.interpolate import CubicSpline
+from scipy.interpolate import CubicHermiteSpline, CubicSpline
 from scipy.signal import firwin, resample_poly
 from scipy.special import i0
 
@@ -391,15 +391,14 @@ class AngleStream:
 
     a sum over the input samples k (times t_k) with h(v) = sinc(v)·w(v/L) (w a Kaiser window
     of half-width L = 16 output samples), i.e. the convolution in angle ∫ x(θ)·h(S·θ − j)·S dθ
-    evaluated with the time samples (dθ = θ′(t)·dt). θ(t) is the cubic spline of revolutions
-    against pulse time (not-a-knot, through the pulses from a few before the samples in use
-    to the newest), read only up to the second newest pulse, where later pulses no longer
-    move it. Unlike :func:`angular_resample` the filter's cut follows the speed sample by
-    sample, so no intermediate rate is needed; the input must hold nothing above
+    evaluated with the time samples (dθ = θ′(t)·dt). θ(t) is the cubic Hermite through the
+    pulses with slopes from 4th-order differences over two pulses either side: local, so
+    any split of the stream gives the same outputs (and a read-ahead of three pulses).
+    Unlike :func:`angular_resample` the filter's cut follows the speed sample by sample, so no intermediate rate is needed; the input must hold nothing above
     fs/2 − S·(speed in rev/s)/2 (a decimation chain cut at ≥ 1.28·Omax × the highest speed
     ensures it, ``service.profiles``).
 
-    The outputs are delayed by about two revolutions (the pulses read ahead) plus L/S
+    The outputs are delayed by about three revolutions (the pulses read ahead) plus L/S
     revolutions. Output sample indices count on within a run; a new run of pulses (the
     tacho lost lock or a gap) starts a new count at the index after ``index_gap`` more, so
     whatever frames them sees a gap.
@@ -527,22 +526,34 @@ class AngleStream:
         empty = np.zeros((self.channels, 0), dtype=np.float32)
         self._take_pulses(pulses_s)
         tp, npl = self._tp, self._np
-        if tp.size < 4:
+        if tp.size < 6:
             self._hold()
             return empty, self._next_out
-        # θ(t) holds from the run's first pulse (or the third kept one, away from the
-        # spline's free end) to the second newest pulse (the newest's segment still moves)
-        ta = tp[0] if npl[0] == 0 else tp[2]
-        tb = min(tp[-2], self._t0 + (self._x.shape[1] - 1) / self.fs)
+        # θ(t): cubic Hermite through the pulses (θ = pulse number / k), its slope at each
+        # pulse from the 4th-order difference over the two pulses either side (one-sided at
+        # the run's start), so each stretch depends on the nearby pulses only and any split
+        # of the stream gives the same angles. It holds from the run's first pulse (or the
+        # third kept one) to the third newest (whose slope needs the two after it).
+        m = tp.size
+        dt = np.full(m, np.nan)
+        dt[2:m - 2] = (-tp[4:] + 8 * tp[3:m - 1] - 8 * tp[1:m - 3] + tp[:m - 4]) / 12.0
+        start = npl[0] == 0
+        if start:
+            dt[0] = (-25 * tp[0] + 48 * tp[1] - 36 * tp[2] + 16 * tp[3] - 3 * tp[4]) / 12.0
+            dt[1] = (-3 * tp[0] - 10 * tp[1] + 18 * tp[2] - 6 * tp[3] + tp[4]) / 12.0
+        lo_knot = 0 if start else 2
+        ta, tb = tp[lo_knot], min(tp[m - 3], self._t0 + (self._x.shape[1] - 1) / self.fs)
         k_a = max(0, int(np.ceil((ta - self._t0) * self.fs)))
         k_b = int(np.floor((tb - self._t0) * self.fs))
         if k_b - k_a < 2:
             self._hold()
             return empty, self._next_out
         t = self._t0 + np.arange(k_a, k_b + 1) / self.fs
-        spline = CubicSpline(tp, npl / self.ppr)
-        u = self.spr * spline(t)
-        du = self.spr * spline(t, 1) / self.fs
+        knots = slice(lo_knot, m - 2)
+        theta = CubicHermiteSpline(tp[knots], npl[knots] / self.ppr,
+                                   1.0 / (self.ppr * dt[knots]))
+        u = self.spr * theta(t)
+        du = self.spr * theta(t, 1) / self.fs
         half = STREAM_HALF
         if self._j is None:
             self._j = int(np.ceil(u[0])) + half

@@ -87,7 +87,7 @@ class OrderFront:
             take = min(to_frame, total - pos)
             if take == to_frame:
                 end = bank.next_index + take  # the frame's angle samples: end − n … end − 1
-                t_a, t_b = (float(v) for v in self.stream.time_at([end - n, end - 1]))
+                t_a, t_b = (float(v) for v in self.stream.time_at(np.array([end - n, end - 1])))
                 rpm = 60.0 * (n - 1) / spr / (t_b - t_a)
                 if an.count and abs(rpm / self.average_rpm - 1.0) > band:
                     an.restart_average()

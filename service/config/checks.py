@@ -309,8 +309,7 @@ class _Checker:
         at = f"channels[{j}].profiles" if j is not None else f"channel {ch!r}"
         c = channel_settings(self.cfg, ch)
         if c.kind == "tacho":
-            self.add(f"{at}: {ch!r} is a tacho channel; it cannot run order profile {prof!r}")
-            return
+            return  # a tacho runs no profile (service.profiles.plan_profiles)
         if c.speed_from is None:
             has = {"fixed": f"a fixed speed_rpm ({c.speed_rpm:g} r/min)" if c.speed_rpm else "",
                    "estimated": "a speed estimated from its 1X line",
