@@ -394,8 +394,9 @@ class AngleStream:
     evaluated with the time samples (dθ = θ′(t)·dt). θ(t) is the cubic Hermite through the
     pulses with slopes from 4th-order differences over two pulses either side: local, so
     any split of the stream gives the same outputs (and a read-ahead of three pulses).
-    Unlike :func:`angular_resample` the filter's cut follows the speed sample by sample, so no intermediate rate is needed; the input must hold nothing above
-    fs/2 − S·(speed in rev/s)/2 (a decimation chain cut at ≥ 1.28·Omax × the highest speed
+    Unlike :func:`angular_resample` the filter's cut follows the speed sample by sample, so
+    no intermediate rate is needed; the input must hold nothing above fs/2 − S·(speed in
+    rev/s)/2 (a decimation chain cut at ≥ 1.28·Omax × the highest speed
     ensures it, ``service.profiles``).
 
     The outputs are delayed by about three revolutions (the pulses read ahead) plus L/S
