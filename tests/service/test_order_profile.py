@@ -172,7 +172,7 @@ def test_averages_restart_when_the_speed_leaves_their_band():
 
 @pytest.mark.parametrize("block", [97, 1300, 5120])
 def test_order_frames_do_not_depend_on_the_block_size(sweep, block):
-    # streaming equals batch (STYLE.md): the same samples in other blocks give the same
+    # streaming equals batch (common practice): the same samples in other blocks give the same
     # order spectra, to float rounding (the angles come from the pulses nearby only)
     ref = [f for f in sweep if f.profile == "orders"]
     got = [f for f in run(doc(), recording(), block) if f.profile == "orders"]
