@@ -52,8 +52,16 @@ class _ServiceCollector(Collector):
             "Time of the latest spectrum, s since the Unix epoch",
             labels=["channel", "profile"],
         )
+        order_rpm = GaugeMetricFamily(
+            "quaver_order_average_rpm",
+            "Order profiles: the speed the current average started at, r/min (its frames "
+            "stay within the profile's speed_band_pct of it)",
+            labels=["channel", "profile"],
+        )
         for (cid, prof), f in hub.by_profile.items():
             age.add_metric([cid, prof], f.t_ns / 1e9)
+            if f.x_unit == "order" and math.isfinite(f.average_rpm):
+                order_rpm.add_metric([cid, prof], f.average_rpm)
             if hub.channels[cid].status in SUSPENDING:
                 # not live (no signal, failed, sensor fault): its last values are not current,
                 # so they are not scraped as if they were; quaver_channel_status says why
@@ -66,7 +74,7 @@ class _ServiceCollector(Collector):
             for t in f.tones:
                 if math.isfinite(t.value):
                     tone.add_metric([cid, prof, t.name, f.unit], t.value)
-        yield from (overall, band, tone, age)
+        yield from (overall, band, tone, age, order_rpm)
 
         status = GaugeMetricFamily(
             "quaver_channel_status",
