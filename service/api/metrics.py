@@ -60,14 +60,14 @@ class _ServiceCollector(Collector):
         )
         for (cid, prof), f in hub.by_profile.items():
             age.add_metric([cid, prof], f.t_ns / 1e9)
-            if f.x_unit == "order" and math.isfinite(f.average_rpm):
-                order_rpm.add_metric([cid, prof], f.average_rpm)
             if hub.channels[cid].status in SUSPENDING:
                 # not live (no signal, failed, sensor fault): its last values are not current,
                 # so they are not scraped as if they were; quaver_channel_status says why
                 continue
             if math.isfinite(f.overall):
                 overall.add_metric([cid, prof, f.unit], f.overall)
+            if f.x_unit == "order" and math.isfinite(f.average_rpm):
+                order_rpm.add_metric([cid, prof], f.average_rpm)
             for b in f.bands:
                 if math.isfinite(b.value):
                     band.add_metric([cid, prof, b.name, f.unit], b.value)
