@@ -4,6 +4,7 @@ same values from `quaver analyze` as from the running service's REST API."""
 
 from __future__ import annotations
 
+import asyncio
 import json
 import math
 from pathlib import Path
@@ -264,3 +265,44 @@ def test_analyze_gives_the_services_values(tmp_path: Path,
     assert ch["speed"]["rpm"] == pytest.approx(bands["speed"]["rpm"], rel=1e-9)
     # and both are right: order 2 at 0.5 g peak (Fyfe & Munck 1997, as above)
     assert abs(20 * np.log10(ch["tones"][1]["amplitude"] / (0.5 / math.sqrt(2)))) < 0.2
+
+
+def test_order_values_reach_alarms_and_metrics(tmp_path: Path) -> None:
+    # an alarm rule on an order band of the order profile, through the service's own frame
+    # path (Service.on_frames: hub, trends, alarms committed before announced), and /metrics
+    d = doc({"averaging": "linear", "averages": 4})
+    d["service"] = {"data_dir": str(tmp_path / "data")}
+    d["alarms"] = [{"channel": "fan", "profile": "orders", "band": "2x", "alert": 0.2,
+                    "danger": 0.5}]
+    path = tmp_path / "q.toml"
+    path.write_text(to_toml(d), encoding="utf-8")
+    svc = Service(load_config(path))
+    x = recording(seconds=10.0)
+
+    async def feed() -> None:
+        p = svc.pipelines[0]
+        for k in range(0, x.shape[1], BLOCK):
+            frames = p.process(SampleBlock("s", IDS, x[:, k:k + BLOCK], k,
+                                           round(k / FS * 1e9), FS))
+            await svc.on_frames(p, frames, 0.0)
+
+    try:
+        asyncio.run(feed())
+        client = TestClient(create_app(svc.hub, service=svc), base_url="http://127.0.0.1")
+        alarms = client.get("/api/v1/alarms").json()
+        metrics = client.get("/metrics").text
+        bands = client.get("/api/v1/channels/fan/bands", params={"profile": "orders"}).json()
+    finally:
+        svc.store.close()
+    # order 2 at 0.5 g peak is 0.354 g RMS (a sine's RMS A/√2): between alert 0.2 and danger
+    # 0.5, so the rule on the order band is in alert (Fyfe & Munck 1997, as above)
+    two = next(b for b in bands["bands"] if b["name"] == "2x")
+    assert abs(20 * np.log10(two["value"] / (0.5 / math.sqrt(2)))) < 0.2
+    mine = [a for a in alarms if a["channel"] == "fan" and a["profile"] == "orders"]
+    assert [(a["name"], a["state"]) for a in mine] == [("2x", "alert")], alarms
+    assert mine[0]["value"] == pytest.approx(two["value"], rel=1e-6)
+    line = next(ln for ln in metrics.splitlines() if ln.startswith("quaver_band{")
+                and 'profile="orders"' in ln and 'band="2x"' in ln)
+    assert float(line.rsplit(" ", 1)[1]) == pytest.approx(two["value"], rel=1e-6)
+    avg = next(ln for ln in metrics.splitlines() if ln.startswith("quaver_order_average_rpm{"))
+    assert float(avg.rsplit(" ", 1)[1]) == pytest.approx(bands["speed"]["average_rpm"])
