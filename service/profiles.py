@@ -245,8 +245,9 @@ def plan_warnings(plan: ProfilePlan, speed_rpm: float | None) -> list[str]:
             continue
         f = t.frequency_hz(speed_hz)
         if f < f_low:
-            at = "" if t.order is None else f" (order {t.order:g} at {speed_rpm:g} r/min)"
-            out.append(f"tone {t.name!r} at {f:g} Hz{at} lies below {why}: it reads null")
+            at = "" if t.order is None or plan.order is not None else (
+                f" (order {t.order:g} at {speed_rpm:g} r/min)")
+            out.append(f"tone {t.name!r} at {f:g} {u}{at} lies below {why}: it reads null")
     return out
 
 
