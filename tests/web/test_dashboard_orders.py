@@ -31,10 +31,11 @@ def test_the_fans_order_spectrum_has_an_axis_in_orders(demo: Service,
     pg.goto(f"{demo.base_url}/#/channel/{FAN}?profile=orders", wait_until="domcontentloaded")
 
     def drawn() -> dict[str, Any] | None:
-        s = pg.evaluate("window.quaver.view.spectrum()")
-        axis = pg.evaluate("window.quaver.view.axis()")
-        return {"s": s, "axis": axis} if s and s["profile"] == "orders" and axis["ticks"] \
-            and axis["unit"] == "order" else None
+        got = pg.evaluate("""() => { const v = window.quaver && window.quaver.view;
+            return v && v.spectrum && v.axis ? {s: v.spectrum(), axis: v.axis()} : null; }""")
+        if not got or not got["s"] or got["s"]["profile"] != "orders":
+            return None
+        return got if got["axis"]["ticks"] and got["axis"]["unit"] == "order" else None
 
     got = wait_for(drawn, "the order spectrum drawn on an order axis", 60)
     assert (got["s"]["f0_hz"], got["s"]["df_hz"]) == (0.0, 0.025)
