@@ -121,6 +121,7 @@ def accuracy(seconds: float = 30.0) -> dict[str, Any]:
 
     fs = 5120.0
     doc = _doc(1, True, fs)
+    doc["analysis"]["fmax_hz"] = 2000.0
     doc["profiles"]["orders"] = {**ORDERS, "omax": 10.0, "lines": 400,
                                  "speed_band_pct": 100.0}
     doc["channels"][1]["rpm_max"] = 3000.0
