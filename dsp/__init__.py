@@ -71,7 +71,8 @@ _PUBLIC: dict[str, str] = {
     "Kurtogram": "kurtogram", "KurtogramBand": "kurtogram", "complex_kurtosis": "kurtogram",
     "fast_kurtogram": "kurtogram", "kurtogram_levels": "kurtogram",
     "spectral_kurtosis": "kurtogram",
-    "OrderSpectrum": "orders", "OrderTrack": "orders", "angular_resample": "orders",
+    "AngleStream": "orders", "OrderSpectrum": "orders", "OrderTrack": "orders",
+    "angular_resample": "orders",
     "bin_by_speed": "orders", "order_spectrum": "orders", "order_track": "orders",
     "revolution_times": "orders",
     "G_N": "scaling", "DEFAULT_UNIT": "scaling", "amplitude_from_power": "scaling",
@@ -98,6 +99,7 @@ __all__ = [
     "Amplitude",
     "AnalysisSpec",
     "Analyzer",
+    "AngleStream",
     "Averager",
     "AveragingMode",
     "BAND_BASES",
@@ -261,6 +263,7 @@ if TYPE_CHECKING:  # what type checkers and editors see; the run-time path is __
         spectral_kurtosis,
     )
     from .orders import (
+        AngleStream,
         OrderSpectrum,
         OrderTrack,
         angular_resample,

@@ -418,6 +418,13 @@ class Analyzer:
         self.tone_avg.reset()
         self.last_start = None
 
+    def restart_average(self) -> None:
+        """Start new averages with the next frame, keeping the samples held towards it
+        (e.g. the speed left the band an order average may span)."""
+        self._power_cache.clear()
+        self.avg.reset()
+        self.tone_avg.reset()
+
     def push(self, block: np.ndarray, first_index: int | None = None) -> int:
         """Feed samples ``[C, n]``; returns the number of new frames folded into the averages.
 

@@ -9,16 +9,17 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.interpolate import CubicSpline
+from scipy.interpolate import CubicHermiteSpline, CubicSpline
 from scipy.signal import firwin, resample_poly
+from scipy.special import i0
 
 from .analyzer import AnalysisSpec, Analyzer
 from .filterbank import FrameGrid
 from .types import WindowName
 
 __all__ = [
-    "OrderSpectrum", "OrderTrack", "angular_resample", "bin_by_speed", "order_spectrum",
-    "order_track", "revolution_times",
+    "AngleStream", "OrderSpectrum", "OrderTrack", "angular_resample", "bin_by_speed",
+    "order_spectrum", "order_track", "revolution_times",
 ]
 
 # Interpolation from the time grid: the signal is first upsampled by this factor (FIR,
@@ -368,3 +369,227 @@ def bin_by_speed(track: OrderTrack, rpm_step: float) -> OrderTrack:
     t = np.bincount(inv, weights=track.t_s) / count
     return OrderTrack(track.orders, t, (keys + 0.5) * rpm_step, np.abs(mean),
                       np.degrees(np.angle(mean)))
+
+
+# The streaming resampler's kernel: a sinc cut at the output's Nyquist order (S/2), under a
+# Kaiser window of ±STREAM_HALF output samples. Kaiser's design formula (Kaiser 1974, as in
+# Oppenheim & Schafer §7.6) gives a transition of (A − 8)/(2.285·2π·2·16) ≈ 0.157 of the
+# output rate for A = 80 dB (β 8): from 0.42·S to 0.58·S orders, so lines up to Omax =
+# S/2.56 = 0.39·S pass flat and what folds below 0.42·S is ≥ 80 dB down.
+STREAM_HALF = 16
+STREAM_BETA = 8.0
+
+
+class AngleStream:
+    """Computed order tracking, streaming: samples at a constant sample rate in, samples at
+    constant shaft angle out, for C channels that share one tacho.
+
+    Each output sample j (θ_j = j/S revolutions after the run's first pulse, S =
+    ``samples_per_rev``) is the order-domain low-pass of the signal read at that angle:
+
+        y_j = Σ_k x[k] · h(u_k − j) · u′_k / fs,   u_k = S·θ(t_k),
+
+    a sum over the input samples k (times t_k) with h(v) = sinc(v)·w(v/L) (w a Kaiser window
+    of half-width L = 16 output samples), i.e. the convolution in angle ∫ x(θ)·h(S·θ − j)·S dθ
+    evaluated with the time samples (dθ = θ′(t)·dt). θ(t) is the cubic Hermite through the
+    pulses with slopes from 4th-order differences over two pulses either side: local, so
+    any split of the stream gives the same outputs (and a read-ahead of three pulses).
+    Unlike :func:`angular_resample` the filter's cut follows the speed sample by sample, so
+    no intermediate rate is needed; the input must hold nothing above fs/2 − S·(speed in
+    rev/s)/2 (a decimation chain cut at ≥ 1.28·Omax × the highest speed
+    ensures it, ``service.profiles``).
+
+    The outputs are delayed by about three revolutions (the pulses read ahead) plus L/S
+    revolutions. Output sample indices count on within a run; a new run of pulses (the
+    tacho lost lock or a gap) starts a new count at the index after ``index_gap`` more, so
+    whatever frames them sees a gap.
+
+    Parameters
+    ----------
+    channels : int
+        Channels C.
+    fs : float
+        Input sample rate, Hz.
+    samples_per_rev : float
+        Output samples per revolution S (2.56·Omax for a spectrum to order Omax).
+    pulses_per_rev : int, optional
+        Tacho pulses per revolution (default 1).
+    max_span_s : float, optional
+        Samples kept while too few pulses are known to resample them, s (default 10; the
+        oldest go first).
+    """
+
+    index_gap = 1 << 20
+    keep_times = 1 << 15  # output times kept for time_at
+
+    def __init__(self, channels: int, fs: float, samples_per_rev: float,
+                 pulses_per_rev: int = 1, *, max_span_s: float = 10.0) -> None:
+        if not (fs > 0 and samples_per_rev > 0 and pulses_per_rev >= 1 and channels >= 1):
+            raise ValueError("channels, fs, samples_per_rev and pulses_per_rev must be > 0")
+        self.channels, self.fs, self.spr = int(channels), float(fs), float(samples_per_rev)
+        self.ppr = int(pulses_per_rev)
+        self.max_span = max(1, int(max_span_s * self.fs))
+        self._times = np.zeros(0)  # times of the latest outputs, s
+        self._times_first = 0  # output index of _times[0]
+        self._base = 0  # output index of j = 0 in the current run
+        self._next_out = 0  # the next output index
+        self._x = np.zeros((self.channels, 0))
+        self._t0: float | None = None  # time of _x[:, 0], s
+        self._new_run()
+
+    def _new_run(self) -> None:
+        """Forget the pulses; the next output starts a new count, ``index_gap`` on."""
+        self._tp = np.zeros(0)  # kept pulses of the run, s
+        self._np = np.zeros(0)  # their pulse numbers within the run
+        self._j: int | None = None  # next angle sample of the run to make
+        if self._next_out > self._base:  # this run made outputs: leave a gap after them
+            self._base = self._next_out + self.index_gap
+            self._next_out = self._base
+
+    def reset(self) -> None:
+        """Forget the samples and pulses (a gap): the next output starts a new run."""
+        self._x = np.zeros((self.channels, 0))
+        self._t0 = None
+        self._new_run()
+
+    def _hold(self) -> None:
+        """Waiting for pulses: keep at most ``max_span_s`` of the newest samples."""
+        cut = self._x.shape[1] - self.max_span
+        if cut > 0 and self._t0 is not None:
+            self._x = self._x[:, cut:]
+            self._t0 += cut / self.fs
+
+    @property
+    def next_index(self) -> int:
+        """Output index of the next angle sample."""
+        return self._next_out
+
+    def time_at(self, index: float | np.ndarray) -> np.ndarray:
+        """Times (s) of recent output indices (the latest few thousand), by linear
+        interpolation between them; NaN outside."""
+        k = np.asarray(index, dtype=np.float64) - self._times_first
+        if self._times.size < 2:
+            return np.full(np.shape(k), np.nan)
+        out = np.interp(k, np.arange(self._times.size), self._times)
+        return np.where((k >= 0) & (k <= self._times.size - 1), out, np.nan)
+
+    def _take_pulses(self, pulses_s: np.ndarray) -> bool:
+        """Add the run's new pulses; False (after a reset) when they are of another run."""
+        p = np.asarray(pulses_s, dtype=np.float64)
+        if self._tp.size:
+            last = self._tp[-1]
+            at = np.searchsorted(p, last)
+            if at >= p.size or p[at] != last:  # our newest pulse is not in this run
+                self._new_run()
+                return self._take_pulses(p)
+            new = p[at + 1:]
+            n0 = self._np[-1] + 1
+        else:
+            new, n0 = p, 0.0
+        if new.size:
+            self._tp = np.concatenate((self._tp, new))
+            self._np = np.concatenate((self._np, n0 + np.arange(new.size)))
+        return True
+
+    def push(self, x: np.ndarray, t0_s: float, pulses_s: np.ndarray
+             ) -> tuple[np.ndarray, int]:
+        """Feed samples and the pulses known so far; return the angle samples now complete.
+
+        Parameters
+        ----------
+        x : ndarray
+            Samples [C, n] at ``fs``, any unit.
+        t0_s : float
+            Time of x[:, 0], s, on the pulses' clock. Another time than the one after the
+            previous push's last sample is a gap: everything restarts (:meth:`reset`).
+        pulses_s : ndarray
+            Pulse times of the tacho's newest run (s, increasing; the kept ones, which must
+            include the newest pulse already given, else it is a new run).
+
+        Returns
+        -------
+        y : ndarray
+            float32 [C, M]: the signal at M consecutive angle steps of 1/S revolution.
+        first : int
+            Output index of y[:, 0] (:attr:`next_index` before the call, unless a new run
+            began).
+        """
+        x = np.asarray(x, dtype=np.float64)
+        if x.ndim != 2 or x.shape[0] != self.channels:
+            raise ValueError(f"x has shape {x.shape}; expected ({self.channels}, n)")
+        if self._t0 is not None:
+            expect = self._t0 + self._x.shape[1] / self.fs
+            if abs(t0_s - expect) > 0.5 / self.fs:
+                self.reset()
+        if self._t0 is None:
+            self._t0 = float(t0_s)
+        self._x = np.concatenate((self._x, x), axis=1)
+        empty = np.zeros((self.channels, 0), dtype=np.float32)
+        self._take_pulses(pulses_s)
+        tp, npl = self._tp, self._np
+        if tp.size < 6:
+            self._hold()
+            return empty, self._next_out
+        # θ(t): cubic Hermite through the pulses (θ = pulse number / k), its slope at each
+        # pulse from the 4th-order difference over the two pulses either side (one-sided at
+        # the run's start), so each stretch depends on the nearby pulses only and any split
+        # of the stream gives the same angles. It holds from the run's first pulse (or the
+        # third kept one) to the third newest (whose slope needs the two after it).
+        m = tp.size
+        dt = np.full(m, np.nan)
+        dt[2:m - 2] = (-tp[4:] + 8 * tp[3:m - 1] - 8 * tp[1:m - 3] + tp[:m - 4]) / 12.0
+        start = npl[0] == 0
+        if start:
+            dt[0] = (-25 * tp[0] + 48 * tp[1] - 36 * tp[2] + 16 * tp[3] - 3 * tp[4]) / 12.0
+            dt[1] = (-3 * tp[0] - 10 * tp[1] + 18 * tp[2] - 6 * tp[3] + tp[4]) / 12.0
+        lo_knot = 0 if start else 2
+        ta, tb = tp[lo_knot], min(tp[m - 3], self._t0 + (self._x.shape[1] - 1) / self.fs)
+        k_a = max(0, int(np.ceil((ta - self._t0) * self.fs)))
+        k_b = int(np.floor((tb - self._t0) * self.fs))
+        if k_b - k_a < 2:
+            self._hold()
+            return empty, self._next_out
+        t = self._t0 + np.arange(k_a, k_b + 1) / self.fs
+        knots = slice(lo_knot, m - 2)
+        theta = CubicHermiteSpline(tp[knots], npl[knots] / self.ppr,
+                                   1.0 / (self.ppr * dt[knots]))
+        u = self.spr * theta(t)
+        du = self.spr * theta(t, 1) / self.fs
+        half = STREAM_HALF
+        if self._j is None:
+            self._j = int(np.ceil(u[0])) + half
+        j = np.arange(self._j, int(np.floor(u[-1])) - half + 1)
+        y = empty
+        if j.size:
+            lo = np.searchsorted(u, j - half, side="right")
+            hi = np.searchsorted(u, j + half, side="left")
+            width = int((hi - lo).max())
+            idx = lo[:, None] + np.arange(width)
+            inside = idx < hi[:, None]
+            idx = np.minimum(idx, u.size - 1)
+            v = u[idx] - j[:, None]
+            w = np.sinc(v) * i0(STREAM_BETA * np.sqrt(np.clip(1 - (v / half) ** 2, 0, 1)))
+            w *= du[idx] * inside / i0(STREAM_BETA)
+            xs = self._x[:, k_a:k_b + 1]
+            # one product over every channel: [C, M, K] samples against [M, K] weights
+            y = np.einsum("mk,cmk->cm", w, xs[:, idx]).astype(np.float32)
+            t_out = np.interp(j, u, t)
+            first = self._base + int(j[0])
+            if self._times.size and first == self._times_first + self._times.size:
+                self._times = np.concatenate((self._times, t_out))[-self.keep_times:]
+                self._times_first = first + j.size - self._times.size
+            else:
+                self._times = t_out[-self.keep_times:]
+                self._times_first = first + j.size - self._times.size
+            self._j = int(j[-1]) + 1
+            self._next_out = first + j.size
+        # drop the samples and pulses no later output needs
+        keep_from = k_a + int(np.searchsorted(u, self._j - half - 1))
+        keep_from = min(keep_from, self._x.shape[1])
+        if keep_from > 0:
+            self._x = self._x[:, keep_from:]
+            self._t0 += keep_from / self.fs
+        p_keep = max(0, int(np.searchsorted(tp, self._t0)) - 4)
+        if p_keep:
+            self._tp, self._np = tp[p_keep:], npl[p_keep:]
+        return y, (self._next_out - y.shape[1])

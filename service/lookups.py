@@ -23,6 +23,7 @@ __all__ = [
     "DEFECT_HALF_WIDTH",
     "bands_for",
     "bearing_orders",
+    "covers",
     "defect_bands",
     "defect_tones",
     "effective_analysis",
@@ -50,12 +51,24 @@ def effective_analysis(
     prof: BaseModel | None = cfg.profiles.get(_primary(cfg, channel_id, profile))
     if prof is not None:
         out = out.model_copy(update=prof.model_dump(exclude_none=True))
-    if out.kind == "envelope" and (out.unit != "acceleration" or out.output_unit not in (
-        None, "g", "m/s2"
-    )):
-        # an envelope is of the acceleration signal; integrating it means nothing
+    if out.kind in ("envelope", "order") and (
+        out.unit != "acceleration" or out.output_unit not in (None, "g", "m/s2")
+    ):
+        # an envelope is of the acceleration signal; integrating it means nothing. An order
+        # spectrum's lines are orders, whose frequency in Hz moves with the speed within a
+        # frame, so ÷ω has no single ω per line: both stay in acceleration.
         out = out.model_copy(update={"unit": "acceleration", "output_unit": None})
     return out
+
+
+def covers(settings: AnalysisSettings, hz: float | None, order: float | None,
+           speed_rpm: float | None) -> bool:
+    """Can a profile with ``settings`` measure a band edge or tone at ``hz`` or ``order``
+    (placed at ``speed_rpm``)? An order profile's axis is orders up to ``omax``: it measures
+    orders only, whatever the speed; a spectrum's measures what lies below ``fmax_hz``."""
+    if settings.kind == "order":
+        return order is not None and order <= settings.omax * (1 + 1e-9)
+    return _covers(settings.fmax_hz, _top_hz(hz, order, speed_rpm))
 
 
 def bearing_orders(cfg: Config, channel_id: str) -> BearingOrders | None:
@@ -123,11 +136,14 @@ def _covers(fmax_hz: float, top_hz: float | None) -> bool:
     return top_hz is None or top_hz <= fmax_hz * (1 + 1e-9)
 
 
-def _applies(item_profile: str, profile: str, fmax_hz: float, top_hz: float | None) -> bool:
-    """Does a band/tone given for ``item_profile`` belong to ``profile`` (Fmax ``fmax_hz``)?"""
+def _applies(item_profile: str, profile: str, settings: AnalysisSettings, hz: float | None,
+             order: float | None, speed_rpm: float | None) -> bool:
+    """Does a band/tone given for ``item_profile`` belong to ``profile`` (``settings``)? An
+    order profile takes only orders (the config's cross-checks refuse a Hz entry naming
+    one)."""
     if item_profile == "*":
-        return _covers(fmax_hz, top_hz)
-    return item_profile == profile
+        return covers(settings, hz, order, speed_rpm)
+    return item_profile == profile and (settings.kind != "order" or order is not None)
 
 
 def bands_for(cfg: Config, channel_id: str, profile: str | None = None) -> list[Band]:
@@ -145,16 +161,17 @@ def bands_for(cfg: Config, channel_id: str, profile: str | None = None) -> list[
     if ch.kind == "tacho":
         return []  # a tacho channel gives speed, not spectra
     rpm = planning_rpm(cfg, channel_id)
-    fmax = effective_analysis(cfg, channel_id, profile).fmax_hz
+    settings = effective_analysis(cfg, channel_id, profile)
+    fmax = settings.fmax_hz
 
     def expand(b: BandConfig) -> list[Band]:
         return [
             band
             for band in _expand_band(b)
             if _applies(
-                b.profile, profile, fmax,
-                _top_hz(band.hi if band.basis == "hz" else None,
-                        band.hi if band.basis == "order" else None, rpm),
+                b.profile, profile, settings,
+                band.hi if band.basis == "hz" else None,
+                band.hi if band.basis == "order" else None, rpm,
             )
         ]
 
@@ -180,10 +197,11 @@ def tones_for(cfg: Config, channel_id: str, profile: str | None = None) -> list[
     if ch.kind == "tacho":
         return []
     rpm = planning_rpm(cfg, channel_id)
-    fmax = effective_analysis(cfg, channel_id, profile).fmax_hz
+    settings = effective_analysis(cfg, channel_id, profile)
+    fmax = settings.fmax_hz
     mine = [
         t for t in cfg.tones
-        if _applies(t.profile, profile, fmax, _top_hz(t.hz, t.order, rpm))
+        if _applies(t.profile, profile, settings, t.hz, t.order, rpm)
     ]
     own_names = {t.name for t in mine if t.channel == channel_id}
     out = [

@@ -212,7 +212,8 @@ class SourcePipeline:
                 speeds.place(self.bank, self.bank.groups, block_end, after=False,
                              block_n=block.n)
         if self.bank is not None:
-            for g, new in self.bank.push(x, block.first_index):
+            tachos = None if speeds is None else speeds.tracker_map
+            for g, new in self.bank.push(x, block.first_index, tachos):
                 if speeds is not None:
                     speeds.place(self.bank, [g], block_end, after=True)
                 frames += self._frames(g, block, new, self.bank.end_index(g))
@@ -315,6 +316,9 @@ class SourcePipeline:
         # more than the rest of a frame (~6 µs a band).
         band_names = [b.name for b in g.bands]
         tone_names = [t.name for t in spec.tones]
+        x_unit = "Hz" if g.order is None else "order"
+        restarted = g.order is not None and g.order.restarted
+        average_rpm = math.nan if g.order is None else g.order.average_rpm
         bands_l, edges_l = bands.tolist(), edges.tolist()
         tones_l, tone_hz_l = tones.tolist(), tone_hz.tolist()
         out = []
@@ -328,8 +332,12 @@ class SourcePipeline:
             elif st.data_status == "gap":
                 st.data_status = "ok"
             self.seq += 1
-            sp = (st.speed_now_rpm, st.speed_source, st.speed_status, math.nan, False) if (
-                self.speeds is None) else self.speeds.frame(g, cid)
+            if g.order is not None:  # the frame's own mean speed, from its revolutions
+                o = g.order
+                sp = (o.frame_rpm, "tacho", o.status, o.frame_variation, False)
+            else:
+                sp = (st.speed_now_rpm, st.speed_source, st.speed_status, math.nan, False) if (
+                    self.speeds is None) else self.speeds.frame(g, cid)
             out.append(
                 SpectralFrame(
                     channel=cid,
@@ -369,6 +377,7 @@ class SourcePipeline:
                     quality="sensor-fault" if st.data_status == "sensor-fault" else "ok",
                     speed_rpm=sp[0], speed_source=sp[1], speed_status=sp[2],
                     speed_variation=sp[3], speed_varied=sp[4],
+                    x_unit=x_unit, average_restarted=restarted, average_rpm=average_rpm,
                 )
             )
         return out
@@ -427,5 +436,4 @@ def stale_after_s(cfg: Config, channel_id: str, plans: Sequence[ProfilePlan]) ->
         return given
     if not plans:
         return STALE_MIN_S
-    g = [p.spec.grid for p in plans]
-    return default_stale_after_s(max(x.hop / x.fs for x in g), max(x.n / x.fs for x in g))
+    return default_stale_after_s(max(p.hop_s for p in plans), max(p.frame_s for p in plans))

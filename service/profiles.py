@@ -13,7 +13,7 @@ channels of a source whose profile set-ups are identical share one vectorised An
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -23,6 +23,7 @@ from dsp.bands import Band
 from dsp.chainplan import plan_chain
 from dsp.decimate import MultiRate
 from dsp.filterbank import FMAX_RATIO, FrameGrid
+from dsp.tacho import TachoTracker
 from dsp.windows import window_info
 
 from .config import (
@@ -31,8 +32,10 @@ from .config import (
     channel_settings,
     profiles_of,
 )
+from .config.settings import ORDER_MARGIN
 from .envelope import EnvelopeFront, EnvelopeSetup
 from .lookups import bands_for, effective_analysis, tones_for
+from .orders import OrderFront, OrderSetup
 
 OVERALL = "_overall"  # internal band: the channel's overall value (see overall_band)
 
@@ -126,6 +129,10 @@ class ProfilePlan:
     stages: tuple[int, ...]
     notes: tuple[str, ...]
     envelope: EnvelopeSetup | None = None  # an envelope profile's demodulation
+    # An order profile's resampling: then the spec's grid is in angle (fs = samples per
+    # revolution, df = order resolution, "Hz" = orders) and ``factor`` decimates the stream
+    # the resampler reads.
+    order: OrderSetup | None = None
 
     @property
     def fs_hz(self) -> float:
@@ -135,8 +142,34 @@ class ProfilePlan:
     def fmax_hz(self) -> float:
         return self.spec.grid.fs / FMAX_RATIO
 
+    @property
+    def x_unit(self) -> str:
+        """The unit of the spectrum's x axis: "Hz", or "order" for an order profile."""
+        return "Hz" if self.order is None else "order"
+
+    @property
+    def hop_s(self) -> float:
+        """Time between frames, s (an order profile's: at its tacho's slowest speed)."""
+        g = self.spec.grid
+        return g.hop / g.fs * (1.0 if self.order is None else self.order.slowest_rev_s)
+
+    @property
+    def frame_s(self) -> float:
+        """Time a frame spans, s (an order profile's: at its tacho's slowest speed)."""
+        g = self.spec.grid
+        return g.n / g.fs * (1.0 if self.order is None else self.order.slowest_rev_s)
+
     def as_dict(self) -> dict[str, object]:
         g, s = self.spec.grid, self.spec
+        extra: dict[str, object] = {}
+        if self.order is not None:
+            extra = {"omax": self.fmax_hz, "order_resolution": g.df_hz,
+                     "samples_per_rev": g.fs, "revs_per_frame": g.n / g.fs,
+                     "speed_from": self.order.tacho,
+                     "speed_band_pct": self.order.speed_band_pct,
+                     # in Hz or s, not orders: the rate the resampler reads; a frame's
+                     # duration depends on the speed
+                     "sample_rate_hz": self.fs_in / self.factor, "frame_s": None}
         return {
             "name": self.name,
             "primary": self.primary,
@@ -159,9 +192,12 @@ class ProfilePlan:
             "bands": [b.name for b in self.bands],
             "tones": [t.name for t in s.tones],
             "notes": list(self.notes),
-            "kind": "spectrum" if self.envelope is None else "envelope",
+            "kind": ("order" if self.order is not None else "spectrum" if self.envelope is None
+                     else "envelope"),
+            "x_unit": self.x_unit,
             "envelope_band": None if self.envelope is None else (
                 "auto" if self.envelope.band is None else list(self.envelope.band)),
+            **extra,
         }
 
 
@@ -179,26 +215,29 @@ def plan_warnings(plan: ProfilePlan, speed_rpm: float | None) -> list[str]:
     tones (orders at ``speed_rpm``) below the low-frequency limit (they read null, or from
     the limit up), and bands too narrow for the line spacing (they read a sine low)."""
     spec = plan.spec
+    u = "Hz"
+    if plan.order is not None:  # the axis is in orders: read them at 1 revolution per s
+        speed_rpm, u = 60.0, "orders"
     f_low = low_limit_hz(spec)
     df = spec.grid.df_hz
     speed_hz = None if speed_rpm is None else speed_rpm / 60.0
-    why = (f"the low-frequency limit {f_low:g} Hz (max(lowcut_hz {spec.lowcut_hz:g}, "
-           f"{spec.window}'s main lobe at {df:g} Hz lines))")
+    why = (f"the low-frequency limit {f_low:g} {u} (max(lowcut_hz {spec.lowcut_hz:g}, "
+           f"{spec.window}'s main lobe at {df:g} {u} lines))")
     need = min_band_lines(spec)
     out = []
     for b in plan.bands:
         if b.basis == "order" and speed_hz is None:
             continue
         lo, hi = b.edges_hz(speed_hz)
-        at = "" if b.basis == "hz" else f" at {speed_rpm:g} r/min"
+        at = "" if b.basis == "hz" or plan.order is not None else f" at {speed_rpm:g} r/min"
         if hi <= f_low:
-            out.append(f"band {b.name!r} ({lo:g}-{hi:g} Hz{at}) lies below {why}: "
+            out.append(f"band {b.name!r} ({lo:g}-{hi:g} {u}{at}) lies below {why}: "
                        "it reads null")
         elif lo < f_low:
-            out.append(f"band {b.name!r} ({lo:g}-{hi:g} Hz{at}) starts below {why}: it is "
-                       f"measured over {f_low:g}-{hi:g} Hz")
+            out.append(f"band {b.name!r} ({lo:g}-{hi:g} {u}{at}) starts below {why}: it is "
+                       f"measured over {f_low:g}-{hi:g} {u}")
         elif (hi - lo) / df < need:
-            out.append(f"band {b.name!r} ({lo:g}-{hi:g} Hz{at}) is {(hi - lo) / df:.2g} "
+            out.append(f"band {b.name!r} ({lo:g}-{hi:g} {u}{at}) is {(hi - lo) / df:.2g} "
                        f"lines wide, under the {need:g} lines {spec.window} needs: a sine in "
                        "it reads low (more lines, or a wider band)")
     for t in spec.tones:
@@ -206,8 +245,9 @@ def plan_warnings(plan: ProfilePlan, speed_rpm: float | None) -> list[str]:
             continue
         f = t.frequency_hz(speed_hz)
         if f < f_low:
-            at = "" if t.order is None else f" (order {t.order:g} at {speed_rpm:g} r/min)"
-            out.append(f"tone {t.name!r} at {f:g} Hz{at} lies below {why}: it reads null")
+            at = "" if t.order is None or plan.order is not None else (
+                f" (order {t.order:g} at {speed_rpm:g} r/min)")
+            out.append(f"tone {t.name!r} at {f:g} {u}{at} lies below {why}: it reads null")
     return out
 
 
@@ -223,6 +263,11 @@ def plan_profiles(cfg: Config, channel_id: str, fs_in: float) -> list[ProfilePla
     out = []
     for i, name in enumerate(profiles_of(cfg, channel_id)):
         settings = effective_analysis(cfg, channel_id, name)
+        if settings.kind == "order":
+            plan = _order_plan(cfg, channel_id, name, i == 0, settings, fs_in)
+            if plan is not None:  # None: no tacho (the config's cross-checks say so)
+                out.append(plan)
+            continue
         top = fs_in / FMAX_RATIO
         chain = plan_chain(fs_in, min(settings.fmax_hz, top))
         notes: tuple[str, ...] = ()
@@ -258,6 +303,40 @@ def plan_profiles(cfg: Config, channel_id: str, fs_in: float) -> list[ProfilePla
     return out
 
 
+def _order_plan(cfg: Config, channel_id: str, name: str, primary: bool,
+                settings: AnalysisSettings, fs_in: float) -> ProfilePlan | None:
+    """An order profile's plan: the stream decimated to reach ORDER_MARGIN·omax orders at the
+    tacho's rpm_max, resampled to 2.56·omax samples per revolution, framed in angle."""
+    ch = channel_settings(cfg, channel_id)
+    if ch.speed_from is None:
+        return None
+    tacho = channel_settings(cfg, ch.speed_from)
+    top = fs_in / FMAX_RATIO
+    need_hz = ORDER_MARGIN * settings.omax * tacho.rpm_max / 60.0
+    chain = plan_chain(fs_in, min(need_hz, top))
+    notes: tuple[str, ...] = ()
+    if need_hz > top * (1 + 1e-9):
+        notes = (f"omax {settings.omax:g} at rpm_max {tacho.rpm_max:g} needs the signal to "
+                 f"{need_hz:g} Hz; this {fs_in:g} Hz stream holds {top:g} Hz, so orders above "
+                 f"{top / ORDER_MARGIN / (tacho.rpm_max / 60.0):g} fold at the top speed",)
+    bands = tuple(bands_for(cfg, channel_id, name))
+    tones = tuple(tones_for(cfg, channel_id, name))
+    # the angle domain's "Hz" are orders: no integration cut there (the unit is acceleration)
+    settings = settings.model_copy(update={"fmax_hz": settings.omax, "lowcut_hz": 0.0})
+    overall = overall_band(bands, 0.0, settings.omax)
+    spr = FMAX_RATIO * settings.omax
+    res = analysis_spec(settings, spr, input_unit=ch.input_unit, bands=(*bands, overall),
+                        tones=tones)
+    setup = OrderSetup(tacho=ch.speed_from, pulses_per_rev=tacho.pulses_per_rev,
+                       samples_per_rev=spr, speed_band_pct=settings.speed_band_pct,
+                       rpm_min=tacho.rpm_min, rpm_max=tacho.rpm_max)
+    return ProfilePlan(
+        channel=channel_id, name=name, primary=primary, settings=settings, spec=res.spec,
+        bands=bands, fs_in=float(fs_in), factor=chain.factor, stages=chain.factors,
+        notes=notes, order=setup,
+    )
+
+
 @dataclass
 class ChannelGroup:
     """Channels of one source that run one profile with identical set-ups: one Analyzer.
@@ -276,6 +355,7 @@ class ChannelGroup:
     tap_rows: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.intp))
     plan: ProfilePlan | None = None
     front: EnvelopeFront | None = None  # an envelope profile's demodulation
+    order: OrderFront | None = None  # an order profile's angular resampling
 
 
 class ProfileBank:
@@ -317,7 +397,8 @@ class ProfileBank:
         for row, cid in enumerate(channel_ids):
             input_unit = channel_settings(cfg, cid).input_unit
             for p in self.plans[cid]:
-                key = repr((p.name, p.spec, input_unit, p.factor, p.envelope))
+                # an order profile's channels share a group (one resampling) per tacho
+                key = repr((p.name, p.spec, input_unit, p.factor, p.envelope, p.order))
                 if p.envelope is not None and p.envelope.band is None:
                     key = repr((p.name, cid))  # an automatic band is the channel's own
                 keyed.setdefault(key, []).append(row)
@@ -331,9 +412,13 @@ class ProfileBank:
             )
             tap = None if p.factor == 1 else f"x{p.factor}"
             front = None
+            order = None
             if p.envelope is not None:
                 front = EnvelopeFront(self.fs_in, p.fmax_hz, p.envelope, len(rows))
                 tap = None
+            if p.order is not None:
+                order = OrderFront(p.order, self.fs_in / p.factor, len(rows))
+                speed[:] = 1.0  # order bands and tones in orders: the angle domain's "Hz"
             self.groups.append(
                 ChannelGroup(
                     profile=p.name,
@@ -349,6 +434,7 @@ class ProfileBank:
                                       dtype=np.intp),
                     plan=p,
                     front=front,
+                    order=order,
                 )
             )
 
@@ -357,8 +443,12 @@ class ProfileBank:
         """Decimation stages run per push (shared stages counted once)."""
         return 0 if self.rates is None else self.rates.stage_count
 
-    def push(self, x: np.ndarray, first_index: int) -> list[tuple[ChannelGroup, int]]:
-        """Analyse one block ``[C, n]`` whose first sample has stream index ``first_index``."""
+    def push(self, x: np.ndarray, first_index: int,
+             tachos: Mapping[str, TachoTracker] | None = None
+             ) -> list[tuple[ChannelGroup, int]]:
+        """Analyse one block ``[C, n]`` whose first sample has stream index ``first_index``;
+        ``tachos``: the source's tacho trackers by channel id, already fed this block (order
+        profiles read their pulses; without them they make no frames)."""
         taps: dict[str, tuple[np.ndarray, int]] = {}
         if self.rates is not None:
             out = self.rates.push(x[self._dec_rows], first_index=first_index)
@@ -373,6 +463,17 @@ class ProfileBank:
                 if env is None:
                     continue
                 new = g.analyzer.push(env[0], first_index=env[1])
+            elif g.order is not None:
+                tracker = None if tachos is None else tachos.get(g.order.setup.tacho)
+                if g.tap is None:
+                    y, k0, t0_s = x[g.rows], first_index, first_index / self.fs_in
+                else:
+                    yt, k0 = taps[g.tap]
+                    if not yt.shape[1]:
+                        continue
+                    y = yt[g.tap_rows]
+                    t0_s = float(self.rates.content_index(g.tap, k0)) / self.fs_in  # type: ignore[union-attr]
+                new = g.order.push(g.analyzer, y, t0_s, tracker)
             elif g.tap is None:
                 new = g.analyzer.push(x[g.rows], first_index=first_index)
             else:
@@ -387,6 +488,8 @@ class ProfileBank:
     def end_index(self, g: ChannelGroup) -> int:
         """Input-stream index just after the content of ``g``'s newest frame."""
         end = g.analyzer.last_end_index or 0
+        if g.order is not None:
+            return g.order.content_index(self.fs_in)
         if g.front is not None:
             return g.front.content_index(end)
         if g.tap is None or self.rates is None:

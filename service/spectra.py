@@ -59,9 +59,11 @@ def frequencies(frame: SpectralFrame) -> np.ndarray:
 
 
 def to_csv(frame: SpectralFrame, values: np.ndarray, unit: str, amplitude: str) -> str:
-    """Two columns, frequency_hz and the value, with a header naming the unit."""
+    """Two columns, frequency_hz (an order profile's: order) and the value, with a header
+    naming the unit."""
     buf = io.StringIO()
-    buf.write(f"frequency_hz,{amplitude}_{unit.replace('/', '_per_')}\n")
+    x = "order" if frame.x_unit == "order" else "frequency_hz"
+    buf.write(f"{x},{amplitude}_{unit.replace('/', '_per_')}\n")
     for fq, v in zip(frequencies(frame), values, strict=True):
         buf.write(f"{fq:.6g},{v:.7g}\n")
     return buf.getvalue()
@@ -78,12 +80,16 @@ def _num(v: float) -> float | None:
     return float(v) if np.isfinite(v) else None
 
 
+def _xu(frame: SpectralFrame) -> str:
+    return "Hz" if frame.x_unit == "Hz" else "orders"
+
+
 def band_reason(frame: SpectralFrame, lo_hz: float, hi_hz: float) -> str:
     """Why a band (or the overall) of ``frame`` has no value; '' when it has one."""
     if not (np.isfinite(lo_hz) and np.isfinite(hi_hz)):
         return "order band: the channel has no running speed"
     if hi_hz <= frame.lowcut_hz:
-        return f"below the low-frequency limit ({frame.lowcut_hz:g} Hz)"
+        return f"below the low-frequency limit ({frame.lowcut_hz:g} {_xu(frame)})"
     return "not measured"
 
 
@@ -92,9 +98,9 @@ def tone_reason(frame: SpectralFrame, frequency_hz: float) -> str:
     if not np.isfinite(frequency_hz):
         return "order tone without a running speed, or above fs/2"
     if frequency_hz < frame.lowcut_hz:
-        return f"below the low-frequency limit ({frame.lowcut_hz:g} Hz)"
+        return f"below the low-frequency limit ({frame.lowcut_hz:g} {_xu(frame)})"
     if frequency_hz > frame.fmax_hz * (1 + 1e-9):
-        return f"beyond Fmax {frame.fmax_hz:g} Hz"
+        return f"beyond Fmax {frame.fmax_hz:g} {_xu(frame)}"
     return "not measured"
 
 
@@ -148,4 +154,7 @@ def frame_speed(frame: SpectralFrame) -> dict[str, object]:
         "status": frame.speed_status,
         "variation": _num(frame.speed_variation),
         "varied": frame.speed_varied,
+        # an order profile's average spans one speed band (service.orders)
+        **({"average_rpm": _num(frame.average_rpm),
+            "average_restarted": frame.average_restarted} if frame.x_unit == "order" else {}),
     }

@@ -207,6 +207,11 @@ class SourceSpeeds:
                 # a manual speed starts from speed_rpm until one is written
                 st.speed_now_rpm, st.speed_status = float(ch.speed_rpm or math.nan), "ok"
 
+    @property
+    def tracker_map(self) -> dict[str, TachoTracker]:
+        """The tacho trackers by channel id (for order profiles' resampling)."""
+        return {cid: tr for cid, (_, tr) in self.trackers.items()}
+
     def _dynamic(self, cid: str) -> bool:
         """Can ``cid``'s speed change while running (measured, estimated or written)?"""
         if self.states[cid].manual_rpm is not None:
@@ -292,6 +297,8 @@ class SourceSpeeds:
         ``block_n``: the block's samples (before the push, a group that makes no frame of
         them is left alone: set_speed costs ~2 ms)."""
         for g in groups:
+            if g.order is not None:  # orders are its axis: its analyzer's speed stays 1 rev/s
+                continue
             if not any(self._dynamic(cid) for cid in g.channel_ids):
                 continue
             key = id(g)

@@ -213,6 +213,14 @@ class SpectralFrame:
     speed_status: str = ""
     speed_variation: float = float("nan")
     speed_varied: bool = False
+    # The unit of the x axis: "Hz", or "order" for an order profile's frame (then f0_hz,
+    # df_hz, fmax_hz, lowcut_hz, band edges and tone frequencies are orders). An order
+    # average spans one speed band (service.orders): ``average_restarted`` says the newest
+    # frame's speed left it and started a new average, ``average_rpm`` is the speed the
+    # current average started at (NaN for other profiles).
+    x_unit: str = "Hz"
+    average_restarted: bool = False
+    average_rpm: float = float("nan")
 
 
 @dataclass

@@ -102,7 +102,9 @@ export class BandBars {
         const nw = ctx.measureText(label).width;
         ctx.font = `11px ${pal.font}`;
         ctx.fillStyle = pal["ink-3"];
-        const range = Number.isFinite(r.lo_hz) ? `${fmtHz(r.lo_hz, false)}–${fmtHz(r.hi_hz)}` : "";
+        // an order profile's band edges are orders
+        const range = !Number.isFinite(r.lo_hz) ? "" : r.x_unit === "order"
+          ? `orders ${+r.lo_hz.toPrecision(4)}–${+r.hi_hz.toPrecision(4)}` : `${fmtHz(r.lo_hz, false)}–${fmtHz(r.hi_hz)}`;
         ctx.fillText(range + (r.danger > 0 ? "" : "  · no limits"), padL + nw + 8, top + 7);
         ctx.textAlign = "right";
         ctx.font = `${abn ? "700 " : ""}12px ${pal.mono}`;
@@ -264,7 +266,7 @@ export function bandRows(channelId, msg, look = SHARED) {
     if (rule && rule.state && rule.rule) state = rule.state === "latched" ? "latched" : rule.state === "normal" ? "ok" : rule.state;
     else if (rule?.danger > 0 && value >= rule.danger) state = "danger";
     else if (rule?.alert > 0 && value >= rule.alert) state = "alert";
-    const row = { ...b, value, via, unit: msg.unit, alert: rule?.alert ?? null, danger: rule?.danger ?? null, state };
+    const row = { ...b, value, via, unit: msg.unit, x_unit: msg.x_unit ?? "Hz", alert: rule?.alert ?? null, danger: rule?.danger ?? null, state };
     // the band named "overall" may be watched in both forms (band = "overall", overall = true)
     const more = b.name === "overall" && rule ? otherOverallRule(look, channelId, rule, via || msg.profile) : null;
     if (more && (more.alert > 0 || more.danger > 0)) row.more = [{ alert: more.alert ?? null, danger: more.danger ?? null }];

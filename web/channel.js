@@ -120,6 +120,10 @@ export function mount(root, id, { profile = "" } = {}) {
 
   const $ = (s) => root.querySelector(s);
   const isEnvelope = () => curProfile()?.kind === "envelope";
+  /** An order profile: its x values are orders (x_unit "order"), 1X is order 1. */
+  const isOrder = () => curProfile()?.x_unit === "order";
+  /** Where 1X sits on the shown x axis: order 1 in an order spectrum, else the speed in Hz. */
+  const oneX = () => (isOrder() ? 1 : speedHz());
   const kgPanel = mountKurtogram($("#kg-panel"), id, { profile: () => cur(), active: isEnvelope });
   const runups = mountRunupPanel($("#runup-panel"), id);
   const extras = [mountWave($("#wave-panel"), id), watchName($("#ch-name"), id, app), kgPanel, runups]; // console
@@ -129,12 +133,15 @@ export function mount(root, id, { profile = "" } = {}) {
   const plot = new SpectrumPlot($("#spec"), {
     onView: (v) => sg.setView(v),
     onHover: (info) => {
+      const df = st.meta?.df_hz ?? plot.data?.df ?? 1;
       setText(readout, info
-        ? `${fmtHzAt(info.f, st.meta?.df_hz ?? plot.data?.df ?? 1)} (line ${info.q}) · ${info.order !== null ? `${info.order.toFixed(2)}X · ` : ""}${fmtVal(info.v)} ${unitLabel(info.unit, info.amplitude)}`
+        ? (isOrder()
+          ? `order ${info.f.toFixed(Math.min(3, (String(df).split(".")[1] || "").length))} (line ${info.q}) · ${fmtVal(info.v)} ${unitLabel(info.unit, info.amplitude)}`
+          : `${fmtHzAt(info.f, df)} (line ${info.q}) · ${info.order !== null ? `${info.order.toFixed(2)}X · ` : ""}${fmtVal(info.v)} ${unitLabel(info.unit, info.amplitude)}`)
         : "");
     },
     onPick: ({ q, f }) => {
-      readout.textContent = `picked line ${q} at ${fmtHz(f)} — “Line filter…” shows its response`;
+      readout.textContent = `picked line ${q} at ${isOrder() ? `order ${+f.toFixed(3)}` : fmtHz(f)} — “Line filter…” shows its response`;
     },
     onKey: (e) => key(e),
   });
@@ -186,7 +193,8 @@ export function mount(root, id, { profile = "" } = {}) {
     plot.top = null;
     plot.setBands([]);
     plot.setServerPeaks(null);
-    plot.setMarkers({ speedHz: speedHz(), bearing: [] });
+    plot.setXUnit(curProfile()?.x_unit);
+    plot.setMarkers({ speedHz: oneX(), bearing: [] });
     sg.clear();
     hist.reload();
     kgPanel.refresh();
@@ -256,10 +264,18 @@ export function mount(root, id, { profile = "" } = {}) {
     }
     const parts = [];
     if (P && profiles().length > 1) parts.push(`${P.name} profile${P.primary ? " (primary)" : ""}`);
-    parts.push(`Fmax ${fmtHzExact(fmax)}`, `${lines} lines`, `Δf ${fmtHzExact(df)}`);
-    if (P?.frame_s) parts.push(`${+P.frame_s.toPrecision(3)} s per transform`);
     const R = P?.decimation ?? 1;
-    if (R > 1) parts.push(`decimated ×${R} (analysed at ${fmtHzExact(P.sample_rate_hz)})`);
+    if (isOrder()) {
+      // an order spectrum: orders of the tacho's speed, resampled at constant shaft angle
+      parts.push(`orders to ${+fmax.toPrecision(4)}×`, `${lines} lines`, `Δ ${+df.toPrecision(3)} order`);
+      if (P?.revs_per_frame) parts.push(`${+P.revs_per_frame.toPrecision(3)} revolutions per transform`);
+      if (P?.speed_from) parts.push(`angle from ${P.speed_from}`);
+      if (P?.speed_band_pct) parts.push(`averages within ±${P.speed_band_pct} % speed`);
+    } else {
+      parts.push(`Fmax ${fmtHzExact(fmax)}`, `${lines} lines`, `Δf ${fmtHzExact(df)}`);
+      if (P?.frame_s) parts.push(`${+P.frame_s.toPrecision(3)} s per transform`);
+      if (R > 1) parts.push(`decimated ×${R} (analysed at ${fmtHzExact(P.sample_rate_hz)})`);
+    }
     if (P?.fmax_asked_hz && Math.abs(P.fmax_asked_hz - fmax) > 1e-9 * fmax) parts.push(`${fmtHzExact(P.fmax_asked_hz)} asked`);
     setText(el, parts.join(" · ") + (st.profileNote ? ` — ${st.profileNote}` : ""));
     el.dataset.profile = P?.name ?? "";
@@ -267,6 +283,7 @@ export function mount(root, id, { profile = "" } = {}) {
     el.dataset.dfHz = df;
     el.dataset.lines = lines;
     el.dataset.decimation = R;
+    el.dataset.xUnit = P?.x_unit ?? "Hz";
   }
 
   function key(e) {
@@ -401,12 +418,14 @@ export function mount(root, id, { profile = "" } = {}) {
     st.lastT = h.timestamp_ns;
     if (st.hold) return;
     const d = { f0: h.f0_hz, df: h.df_hz, values, unit: h.unit, amplitude: h.amplitude, t_ns: h.timestamp_ns, lowcut_hz: st.meta?.lowcut_hz, seq: h.seq, profile: h.profile ?? "" };
+    plot.setXUnit(h.x_unit);
     plot.setData(d);
     // which frame is on screen, of which profile, on which lines (for people and tests)
     specCanvas.dataset.seq = h.seq;
     specCanvas.dataset.profile = h.profile ?? "";
     specCanvas.dataset.f0Hz = h.f0_hz;
     specCanvas.dataset.dfHz = h.df_hz;
+    specCanvas.dataset.xUnit = h.x_unit ?? "Hz";
     sg.push(d);
     hist.onSpectrum(d);
     if (st.fresh || !plot.view) {
@@ -443,7 +462,7 @@ export function mount(root, id, { profile = "" } = {}) {
   function onTones(m, force = false) {
     if (!mine(m)) return;
     st.tones = m;
-    const f1 = speedHz();
+    const f1 = oneX();
     // an envelope spectrum marks the defect frequencies, harmonics and BPFI's ±1X sidebands
     const bearing = isEnvelope() ? defectMarkers(m.tones, f1)
       : (m.tones || []).filter((t) => BEARING.test(t.name)).map((t) => ({ name: t.name, f: t.frequency_hz }));
@@ -452,7 +471,7 @@ export function mount(root, id, { profile = "" } = {}) {
     if (!force && now - tonesAt < TEXT_PERIOD_MS) return;
     tonesAt = now;
     plot.setServerPeaks(m); // with the table: a peak's label and its row show the same numbers
-    const sp = speedHz();
+    const sp = oneX();
     const ord = (f) => (sp > 0 && Number.isFinite(f) && f / sp < 100 ? `${(f / sp).toFixed(2)}X` : "");
     const tones = m.tones || [];
     const peaks = (m.peaks || []).slice(0, LISTED_PEAKS);
@@ -469,7 +488,8 @@ export function mount(root, id, { profile = "" } = {}) {
     [...tones.map((t) => [t.frequency_hz, t.amplitude]), ...peaks.map((p) => [p.frequency_hz, p.amplitude])].forEach(([f, a], i) => {
       const c = rows[i + 1]?.cells;
       if (!c) return;
-      setText(c[1], fmtHz(f));
+      // an order spectrum's x values are orders: the frequency is at the speed now
+      setText(c[1], isOrder() ? (speedHz() > 0 ? fmtHz(f * speedHz()) : "—") : fmtHz(f));
       setText(c[2], ord(f));
       setText(c[3], fmtVal(a));
     });
@@ -510,6 +530,9 @@ export function mount(root, id, { profile = "" } = {}) {
 
   /** "10–1000 Hz": the band an overall covers, from a frame summary or bands message. */
   function overallBand(m) {
+    if (m?.x_unit === "order" && m.overall_lo_hz != null && m.overall_hi_hz != null) {
+      return `orders ${+m.overall_lo_hz.toPrecision(3)}–${+m.overall_hi_hz.toPrecision(3)}`;
+    }
     return m?.overall_lo_hz != null && m?.overall_hi_hz != null
       ? `${fmtHz(m.overall_lo_hz)}–${fmtHz(m.overall_hi_hz)}` : "";
   }
@@ -520,7 +543,11 @@ export function mount(root, id, { profile = "" } = {}) {
     const f = [];
     const rpm = speedHz() * 60;
     if (rpm > 0) f.push(["speed", `${fmtVal(rpm, 4)} r/min · 1X ${fmtHz(rpm / 60)}`]);
-    if (m) {
+    if (m && isOrder()) {
+      f.push(["lines", `${m.lines} · orders to ${+m.fmax_hz.toPrecision(4)}× · Δ ${+m.df_hz.toPrecision(3)} order`]);
+      f.push(["window", `${m.window} · ENBW ${fmtVal(m.enbw_bins)} lines`]);
+      f.push(["averaging", `${m.averaging ?? ""} ${m.averages}`]);
+    } else if (m) {
       f.push(["lines", `${m.lines} · Fmax ${fmtHzExact(m.fmax_hz)} · Δf ${fmtHzExact(m.df_hz)}`]);
       f.push(["window", `${m.window} · ENBW ${fmtVal(m.enbw_bins)} lines`]);
       f.push(["averaging", `${m.averaging ?? ""} ${m.averages}`]);
@@ -717,6 +744,8 @@ export function mount(root, id, { profile = "" } = {}) {
       markers: () => plot.bearing.map((b) => ({ ...b })), // bearing / defect markers drawn
       bars: () => bars.rows.map((r) => ({ name: r.name, value: r.value, alert: r.alert, danger: r.danger, state: r.state, via: r.via })),
       labels: () => plot.labels.map((l) => ({ ...l })), // every text drawn on the spectrum, with its box
+      axis: () => ({ unit: plot.xUnit, ticks: [...(plot.xTicks || [])] }), // the x axis drawn
+      xPx: (v) => plot.xs?.px(v) ?? null, // where x value v (Hz or order) is drawn, CSS px
       notLive: () => $("#ch-lastnote").hidden ? "" : $("#ch-lastnote").textContent,
       speed: () => speedNow(), // the running speed shown ({rpm, source, status, …} or null)
       runups: () => runups.probe(), // ids of the run-up records listed
@@ -738,6 +767,7 @@ export function mount(root, id, { profile = "" } = {}) {
 /** One profile in a line (a button's tooltip): "Fmax 500 Hz · 1600 lines · Δf 0.3125 Hz · decimated ×10". */
 function profileSummary(p) {
   if (p.fmax_hz === undefined) return `${p.name}: no spectrum yet`;
+  if (p.x_unit === "order") return `orders to ${+p.fmax_hz.toPrecision(4)}× · ${p.lines} lines · Δ ${+p.df_hz.toPrecision(3)} order · angle from ${p.speed_from}`;
   return `Fmax ${fmtHzExact(p.fmax_hz)} · ${p.lines} lines · Δf ${fmtHzExact(p.df_hz)}${p.decimation > 1 ? ` · decimated ×${p.decimation}` : ""}`;
 }
 

@@ -36,6 +36,11 @@ export function fmtHzAt(f, df) {
   return `${f.toFixed(Math.min(3, frac.length))} Hz`;
 }
 
+/** An axis tick label for an order of running speed: "1×", "2.5×", "0.5×". */
+export function tickOrder(o) {
+  return `${+o.toPrecision(3)}×`;
+}
+
 /** An axis tick label for a frequency (short: "500", "1k", "2.5k"). */
 export function tickHz(f) {
   if (f >= 1000) {

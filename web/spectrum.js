@@ -1,7 +1,7 @@
 // The spectrum plot: min/max per pixel column, bands and levels, order and bearing markers,
 // peaks, hover read-out, zoom/pan by mouse and keys. Gets data from its caller; no network.
 
-import { fmtHz, fmtHzAt, fmtVal, tickHz, unitLabel, convertFactor } from "./fmt.js";
+import { fmtHz, fmtHzAt, fmtVal, tickHz, tickOrder, unitLabel, convertFactor } from "./fmt.js";
 import { Scale, Surface, border, gridX, plotArea, gridY, labelsX, labelsY, linTicks, logTicks, niceCeil, pal } from "./plot.js";
 import { Labels } from "./labels.js";
 import { DOWN, PRIO, addLegend, addPeakLabels } from "./spectrumlabels.js";
@@ -72,6 +72,7 @@ export class SpectrumPlot {
     this._lowSince = 0;
     this.bands = []; // [{name, lo_hz, hi_hz, value, unit, alert, danger, state}]
     this.speedHz = null;
+    this.xUnit = "Hz"; // or "order": an order profile's x values are orders
     this.bearing = []; // [{name, f}]
     this.show = { bands: true, harmonics: true, bearing: true, peaks: true };
     this.hover = null; // {x, y}
@@ -101,6 +102,14 @@ export class SpectrumPlot {
   }
   setBands(bands) {
     this.bands = bands || [];
+    this.surface.invalidate();
+  }
+  /** The x axis' unit: "Hz", or "order" for an order profile (ticks 1×, 2×…, readout "order"). */
+  setXUnit(u) {
+    const next = u === "order" ? "order" : "Hz";
+    if (next === this.xUnit) return;
+    this.xUnit = next;
+    this.view = null; // orders and Hz share no zoom
     this.surface.invalidate();
   }
   setMarkers({ speedHz, bearing }) {
@@ -428,13 +437,16 @@ export class SpectrumPlot {
     const d = this.data;
     const box = { L, R, T, B };
     border(ctx, box);
-    labelsX(ctx, this.xs, this._xt.major, box, tickHz, { spaced: true });
+    const orders = this.xUnit === "order";
+    const fmtX = orders ? tickOrder : tickHz;
+    labelsX(ctx, this.xs, this._xt.major, box, fmtX, { spaced: true });
+    this.xTicks = this._xt.major.map(fmtX); // the x tick texts (for people and tests)
     labelsY(ctx, this.ys, this._yt.major, box, (v) => fmtVal(v, 2));
     ctx.font = `11px ${pal.font}`;
     ctx.fillStyle = pal["ink-3"];
     ctx.textAlign = "right";
     ctx.textBaseline = "top";
-    ctx.fillText("Hz", L - 6, B + 5);
+    ctx.fillText(orders ? "order" : "Hz", L - 6, B + 5);
     this._labels.add({ kind: "unit", prio: PRIO.unit, text: unitLabel(d.unit, d.amplitude) + (this.logAmp ? "  (log)" : ""), x: 4, y: 5, size: 11, font: `11px ${pal.font}`, base: "top", fg: pal["ink-3"] });
   }
 
@@ -580,8 +592,9 @@ export class SpectrumPlot {
       order: this.speedHz ? hit.f / this.speedHz : null,
       then: this.overlay ? this.overlay.values[Math.round((hit.f - this.overlay.f0) / this.overlay.df)] : undefined,
     };
-    const lines = [`${fmtHzAt(hit.f, d.df)}  (line ${hit.q})`];
-    if (info.order !== null) lines.push(`order ${info.order.toFixed(2)}X`);
+    const orders = this.xUnit === "order";
+    const lines = [`${orders ? `order ${hit.f.toFixed(Math.min(3, (String(d.df).split(".")[1] || "").length))}` : fmtHzAt(hit.f, d.df)}  (line ${hit.q})`];
+    if (info.order !== null && !orders) lines.push(`order ${info.order.toFixed(2)}X`);
     lines.push(`${fmtVal(hit.v)} ${unitLabel(d.unit, d.amplitude)}`);
     if (info.then !== undefined) lines.push(`${this.overlay.label || "other"} ${fmtVal(info.then)}`);
     ctx.font = `11px ${pal.mono}`;

@@ -48,7 +48,9 @@ export function addPeakLabels(plot, ctx, d, yOf, { L, R, T }) {
     ctx.closePath();
     ctx.fill();
     const ord = plot.speedHz && f / plot.speedHz < 40 ? ` ${(f / plot.speedHz).toFixed(2)}X` : "";
-    const text = `${fmtHz(f, false)}${ord}${sameUnit ? ` · ${fmtVal(p.amplitude)}` : ""}`;
+    // an order spectrum's peaks are at orders already: "7.00X", not "7.000 7.00X"
+    const text = plot.xUnit === "order" ? `${f.toFixed(2)}X${sameUnit ? ` · ${fmtVal(p.amplitude)}` : ""}`
+      : `${fmtHz(f, false)}${ord}${sameUnit ? ` · ${fmtVal(p.amplitude)}` : ""}`;
     const tw = ctx.measureText(text).width + 6;
     plot._labels.add({
       kind: "peak", prio: PRIO.peak - i / 100, text,

@@ -64,6 +64,9 @@ def _stamp(frame: SpectralFrame) -> dict[str, Any]:
         "timestamp_ns": frame.t_ns,
         "timestamp": _iso(frame.t_ns),
         "quality": frame.quality,
+        # the unit of every x value below (f0_hz, df_hz, fmax_hz, lowcut_hz, band edges, tone
+        # and peak frequencies): "Hz", or "order" for an order profile
+        "x_unit": frame.x_unit,
     }
     if frame.speed_source:
         d["speed"] = frame_speed(frame)
@@ -167,6 +170,7 @@ def get_spectrum(
             headers={
                 "X-Quaver-F0-Hz": str(frame.f0_hz),
                 "X-Quaver-Df-Hz": repr(frame.df_hz),
+                "X-Quaver-X-Unit": frame.x_unit,
                 "X-Quaver-Unit": u,
                 "X-Quaver-Amplitude": a,
                 "X-Quaver-Profile": frame.profile,

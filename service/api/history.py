@@ -18,6 +18,7 @@ from fastapi import APIRouter, Depends, HTTPException, Query, Response
 from fastapi import Path as Path_
 
 from ..config import Config
+from ..lookups import effective_analysis
 from ..spectra import power_values, to_npy
 from ..store.history import DB_STEP, codes_power
 from ..timefmt import iso_time
@@ -79,12 +80,19 @@ def stored_range(
 RangeDep = Annotated[StoredRange, Depends(stored_range)]
 
 
+def _x_unit(cfg: Config, channel_id: str, profile: str | None) -> str:
+    """The unit of a profile's x values: "order" for an order profile (its stored spectra
+    are on orders of running speed), else "Hz"."""
+    return "order" if effective_analysis(cfg, channel_id, profile).kind == "order" else "Hz"
+
+
 def _head(channel: ChannelState, span: StoredRange, cfg: Config) -> dict[str, Any]:
     """The fields every history answer over a range starts with."""
     return {
         "channel": channel.id, "profile": span.profile, "since": span.since_s,
         "until": span.until_s, "enabled": cfg.history.enabled,
         "interval_s": cfg.history.interval_s,
+        "x_unit": _x_unit(cfg, channel.id, span.profile),
     }
 
 
@@ -251,7 +259,7 @@ async def get_history_spectrum(
             "X-Quaver-T-Ns": str(r["t_ns"]),
         })
     return {**_described(r, cfg.service.timezone), "unit": u, "amplitude": amp,
-            "values": values.tolist()}
+            "x_unit": _x_unit(cfg, r["channel"], r["profile"]), "values": values.tolist()}
 
 
 @router.get(

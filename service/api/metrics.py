@@ -52,6 +52,12 @@ class _ServiceCollector(Collector):
             "Time of the latest spectrum, s since the Unix epoch",
             labels=["channel", "profile"],
         )
+        order_rpm = GaugeMetricFamily(
+            "quaver_order_average_rpm",
+            "Order profiles: the speed the current average started at, r/min (its frames "
+            "stay within the profile's speed_band_pct of it)",
+            labels=["channel", "profile"],
+        )
         for (cid, prof), f in hub.by_profile.items():
             age.add_metric([cid, prof], f.t_ns / 1e9)
             if hub.channels[cid].status in SUSPENDING:
@@ -60,13 +66,15 @@ class _ServiceCollector(Collector):
                 continue
             if math.isfinite(f.overall):
                 overall.add_metric([cid, prof, f.unit], f.overall)
+            if f.x_unit == "order" and math.isfinite(f.average_rpm):
+                order_rpm.add_metric([cid, prof], f.average_rpm)
             for b in f.bands:
                 if math.isfinite(b.value):
                     band.add_metric([cid, prof, b.name, f.unit], b.value)
             for t in f.tones:
                 if math.isfinite(t.value):
                     tone.add_metric([cid, prof, t.name, f.unit], t.value)
-        yield from (overall, band, tone, age)
+        yield from (overall, band, tone, age, order_rpm)
 
         status = GaugeMetricFamily(
             "quaver_channel_status",

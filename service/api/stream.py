@@ -16,9 +16,11 @@ unless ``every_alarm`` is true (then for every channel).
 The server sends:
 
 * binary spectrum messages: bytes 0–3 a little-endian u32 header length L, then L bytes of
-  UTF-8 JSON ``{"kind": "spectrum", "channel", "profile", "seq", "timestamp_ns", "f0_hz", "df_hz",
-  "unit", "amplitude", "averages", "count", "missed"}``, then ``count`` little-endian
-  float32 values (the header is padded with spaces so the values start 4-byte aligned);
+  UTF-8 JSON ``{"kind": "spectrum", "channel", "profile", "seq", "timestamp_ns", "f0_hz",
+  "df_hz", "x_unit", "unit", "amplitude", "averages", "count", "missed"}`` (``x_unit``: "Hz",
+  or "order" for an order profile, whose f0_hz and df_hz are then orders), then ``count``
+  little-endian float32 values (the header is padded with spaces so the values start
+  4-byte aligned);
 * text JSON messages ``{"kind": "hello" | "bands" | "tones" | "alarm" | "rules" | "status" |
   "overall" | "error",
   ...}`` whose fields match the REST resources; an ``alarm`` message is a committed event
@@ -221,6 +223,7 @@ def _spectrum_header(frame: SpectralFrame, u: str, a: str, count: int) -> str:
             "timestamp_ns": frame.t_ns,
             "f0_hz": frame.f0_hz,
             "df_hz": frame.df_hz,
+            "x_unit": frame.x_unit,
             "unit": u,
             "amplitude": a,
             "averages": frame.averages,

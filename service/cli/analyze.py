@@ -224,6 +224,9 @@ def _config_run(args: argparse.Namespace, cfg: Config, row: int, cid: str,
             return False
         if item.channel == cid and item.name in cli_names:
             return False  # the option's band or tone of that name replaces it
+        if s.kind == "order":  # orders only, up to omax (as lookups.covers)
+            o = item.hi_order if hasattr(item, "hi_order") else item.order
+            return is_order and o is not None and o <= s.omax * (1 + 1e-9)
         if is_order and not has_speed:
             return False  # a '*' order item skips a channel without speed
         if top is None or top <= s.fmax_hz * (1 + 1e-9):
@@ -398,6 +401,7 @@ def _channel_result(name: str, run: _Run, frame: SpectralFrame, st: ChannelState
         "profile": frame.profile,
         "fs_hz": frame.fs,
         "decimation": info.get("decimation", 1),
+        "x_unit": frame.x_unit,  # of every x value here: Hz, or order (an order profile)
         "df_hz": frame.df_hz,
         "f0_hz": frame.f0_hz,
         "lines": frame.lines,
@@ -488,13 +492,17 @@ def _table(r: dict[str, Any]) -> str:
     u, a = r["unit"], r["amplitude"]
     lo, hi = r["overall_band_hz"]
     cfg = f" (config channel {r['config_channel']})" if r["config_channel"] else ""
+    xu = "Hz" if r.get("x_unit", "Hz") == "Hz" else "orders"  # an order profile's x values
+    head = (f"fs {r['fs_hz']:g} Hz, Fmax {r['fmax_hz']:g} Hz, {r['lines']} lines, df "
+            f"{r['df_hz']:g} Hz" if xu == "Hz" else
+            f"order spectrum, {r['fs_hz']:g} samples/rev, omax {r['fmax_hz']:g}, {r['lines']} "
+            f"lines, {r['df_hz']:g} orders apart")
     out = [
-        f"{r['channel']}{cfg}: fs {r['fs_hz']:g} Hz, Fmax {r['fmax_hz']:g} Hz, {r['lines']} "
-        f"lines, df {r['df_hz']:g} Hz, {r['window']}, N {r['n']}, hop {r['hop']}, "
+        f"{r['channel']}{cfg}: {head}, {r['window']}, N {r['n']}, hop {r['hop']}, "
         f"{r['averaging']} average of {r['averages']} frame(s)",
-        f"  overall {_fmt(lo, 4)}-{_fmt(hi, 5)} Hz: {_fmt(r['overall'])} {u} rms"
+        f"  overall {_fmt(lo, 4)}-{_fmt(hi, 5)} {xu}: {_fmt(r['overall'])} {u} rms"
         + (f" ({r['overall_reason']})" if r.get("overall_reason") else ""),
-        f"  low-frequency limit {r['lowcut_hz']:g} Hz (nothing below it is measured)",
+        f"  low-frequency limit {r['lowcut_hz']:g} {xu} (nothing below it is measured)",
     ]
     if r["status"] != "ok":
         out.append(f"  status: {r['status']}" + (f" ({r['fault']})" if r["fault"] else ""))
@@ -515,15 +523,16 @@ def _table(r: dict[str, Any]) -> str:
     if r["bands"]:
         out.append(f"  bands ({u} rms)")
         for b in r["bands"]:
-            edges = f"{_fmt(b['lo_hz'], 6)}-{_fmt(b['hi_hz'], 6)} Hz"
+            edges = f"{_fmt(b['lo_hz'], 6)}-{_fmt(b['hi_hz'], 6)} {xu}"
             why = f"  ({b['reason']})" if "reason" in b else ""
             out.append(f"    {b['name']:<20} {edges:>18} {_fmt(b['value']):>11}{why}")
     if r["peaks"]:
         out.append(f"  peaks ({u} {a})")
-        out += [f"    {p['frequency_hz']:12.3f} Hz {_fmt(p['amplitude']):>11}" for p in r["peaks"]]
+        out += [f"    {p['frequency_hz']:12.3f} {xu} {_fmt(p['amplitude']):>11}"
+                for p in r["peaks"]]
     if r["tones"]:
         out.append(f"  tones ({u} {a})")
-        out += [f"    {t['name']:<20} {_fmt(t['frequency_hz'], 8):>12} Hz "
+        out += [f"    {t['name']:<20} {_fmt(t['frequency_hz'], 8):>12} {xu} "
                 f"{_fmt(t['amplitude']):>11}" + (f"  ({t['reason']})" if "reason" in t else "")
                 for t in r["tones"]]
     return "\n".join(out)

@@ -121,9 +121,30 @@ def _opcua(args: argparse.Namespace) -> int:
         raise CliError(f"--opcua: {e}", 1) from None
 
 
+def _orders(args: argparse.Namespace) -> int:
+    if args.short or args.opcua or args.mqtt is not None:
+        raise CliError("--short, --opcua and --mqtt do not apply to --orders", 2)
+    from bench.orders import main
+
+    counts: tuple[int, ...] = (1, 8)
+    if args.channels is not None:
+        try:
+            counts = tuple(int(c) for c in args.channels.split(","))
+        except ValueError:
+            raise CliError(f"--channels {args.channels!r}: expected counts like 1,8", 2) from None
+        if any(c < 1 for c in counts):
+            raise CliError(f"--channels {args.channels!r}: counts must be >= 1", 2)
+    return int(main(counts, args.seconds, args.repeats, as_json=args.json is True))
+
+
 def cmd_bench(args: argparse.Namespace) -> int:
     if args.dashboard:
         return _dashboard(args)
+    if args.orders:
+        if any(getattr(args, o) is not None for o in DASHBOARD_ONLY):
+            raise CliError("--machines, --danger, --alert, --minutes and --screenshot apply "
+                           "to --dashboard only", 2)
+        return _orders(args)
     given = [f"--{o}" for o in DASHBOARD_ONLY if getattr(args, o) is not None]
     if given:
         raise CliError(f"{', '.join(given)} applies to --dashboard only", 2)

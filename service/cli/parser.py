@@ -238,6 +238,12 @@ def build_parser() -> argparse.ArgumentParser:
                        "against a generated plant fed at real time: first full render, "
                        "main-thread busy share, frame rate, retained heap, bytes/s, service CPU "
                        "with the page open and closed, abnormal machines in the first screen")
+    which.add_argument("--orders", action="store_true",
+                       help="an order profile's CPU per frame against an ordinary spectrum's, "
+                       "in-process on the demo's variable-speed fan (--channels: fan channels "
+                       "on one tacho, default 1,8; --seconds of signal, default 20; --repeats, "
+                       "default 3), and the order lines' amplitude error on a 600-1800 r/min "
+                       "sweep (bench/orders.py)")
     p.add_argument("--opcua", action="store_true",
                    help="with --service: instead of the load phases, the service's CPU per "
                    "frame with the [opcua] server off, on, and on without spectra, with a "

@@ -180,12 +180,25 @@ def cmd_check(args: argparse.Namespace) -> int:
                         else f"band auto (kurtogram of {env.length_s:g} s every "
                              f"{env.interval_s:g} s)")
                 dec = f"envelope, {band}, {dec}"
-            what = (
-                f"{dec}Fmax {p.fmax_hz:g} Hz, {g.lines} lines, "
-                f"df {g.df_hz:g} Hz, {spec.window}, N {g.n}, hop {g.hop}, "
-                f"{spec.averaging} {spec.averages:g}, {resolve_unit(spec.unit)} {spec.amplitude}, "
-                f"{len(p.bands)} band(s), {len(spec.tones)} tone(s)"
-            )
+            o = p.order
+            if o is not None:  # an order profile: the signal it resamples, then the angle grid
+                sig = (f"signal decimated x{p.factor} to {p.fs_in / p.factor:g} Hz, "
+                       if p.factor > 1 else "")
+                what = (
+                    f"order, from tacho {o.tacho}, {sig}{g.fs:g} samples/rev, omax "
+                    f"{p.fmax_hz:g}, {g.lines} lines, {g.df_hz:g} orders, {spec.window}, "
+                    f"{g.n / g.fs:g} revs a frame, hop {g.hop / g.fs:g} revs, {spec.averaging} "
+                    f"{spec.averages:g} within ±{o.speed_band_pct:g} % speed, "
+                    f"{resolve_unit(spec.unit)} {spec.amplitude}, {len(p.bands)} band(s), "
+                    f"{len(spec.tones)} tone(s)"
+                )
+            else:
+                what = (
+                    f"{dec}Fmax {p.fmax_hz:g} Hz, {g.lines} lines, "
+                    f"df {g.df_hz:g} Hz, {spec.window}, N {g.n}, hop {g.hop}, "
+                    f"{spec.averaging} {spec.averages:g}, {resolve_unit(spec.unit)} "
+                    f"{spec.amplitude}, {len(p.bands)} band(s), {len(spec.tones)} tone(s)"
+                )
             if len(plans) == 1:
                 out.append(f"{head}, {what}")
             else:

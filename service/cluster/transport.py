@@ -49,6 +49,7 @@ PLAN_FIELDS: tuple[str, ...] = ("stale_after_s", "notes", "profile_info", "kind"
 _SHARED: tuple[str, ...] = (
     "profile", "t_ns", "end_index", "fs", "n", "df_hz", "f0_hz", "lines", "fmax_hz", "window",
     "enbw_bins", "averaging", "averages", "input_unit", "unit", "amplitude", "lowcut_hz",
+    "x_unit", "average_restarted", "average_rpm",  # an order profile's (service.orders)
 )
 
 

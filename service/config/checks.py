@@ -7,13 +7,12 @@ Knows nothing about files, sockets or storage."""
 from __future__ import annotations
 
 import ipaddress
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 
 from ..lookups import (
-    _covers,
     _expand_band,
     _is_order_band,
-    _top_hz,
+    covers,
     effective_analysis,
     missing_value,
 )
@@ -23,6 +22,7 @@ from .notify import check_notify_url, split_urls
 from .plant import BandConfig, ToneConfig
 from .queries import channel_settings, planning_rpm, profile_names, profiles_of
 from .salvage import Doubts
+from .settings import ORDER_MARGIN, AnalysisSettings
 from .sources import FileSourceConfig, SimulatedSourceConfig, TcpSourceConfig, UdpSourceConfig
 
 
@@ -293,11 +293,44 @@ class _Checker:
             if fs is not None and hi >= fs / 2:
                 self.add(f"{where('band')}: the envelope band's upper edge {_fmt_hz(hi)} must "
                          f"be below half the sample rate, {_fmt_hz(fs / 2)}")
+        if a.kind == "order":
+            self.order_profile(ch, prof, a, where, fs)
         if a.lowcut_hz >= a.fmax_hz and not doubt("lowcut_hz", "fmax_hz"):
             self.add(
                 f"{where('lowcut_hz')}: {_fmt_hz(a.lowcut_hz)} must be "
                 f"below fmax_hz {_fmt_hz(a.fmax_hz)}"
             )
+
+    def order_profile(self, ch: str, prof: str, a: AnalysisSettings,
+                      where: Callable[[str], str], fs: float | None) -> None:
+        """An order profile needs the shaft's angle from a tacho on the channel's source, and
+        a sample rate that holds omax at the tacho's highest plausible speed."""
+        j = self.entry_index.get(ch)
+        at = f"channels[{j}].profiles" if j is not None else f"channel {ch!r}"
+        c = channel_settings(self.cfg, ch)
+        if c.kind == "tacho":
+            return  # a tacho runs no profile (service.profiles.plan_profiles)
+        if c.speed_from is None:
+            has = {"fixed": f"a fixed speed_rpm ({c.speed_rpm:g} r/min)" if c.speed_rpm else "",
+                   "estimated": "a speed estimated from its 1X line",
+                   "manual": "a speed written by an operator"}.get(c.speed_source, "no speed")
+            self.add(f"{at}: order profile {prof!r} needs speed_from = a tacho channel: "
+                     "computed order tracking resamples at constant shaft angle, which only "
+                     f"a tacho's pulses give; channel {ch!r} has {has or 'no speed'} (order "
+                     "bands and tones of an ordinary profile follow such a speed instead)")
+            return
+        if self.doubts.channel(c.speed_from) or fs is None:
+            return
+        tacho = channel_settings(self.cfg, c.speed_from)
+        if tacho.kind != "tacho":
+            return  # reported at speed_from
+        need = ORDER_MARGIN * a.omax * tacho.rpm_max / 60.0
+        if need * FRAME_RATIO > fs * (1 + 1e-9):
+            self.add(f"{where('omax')}: order {a.omax:g} at rpm_max {tacho.rpm_max:g} of tacho "
+                     f"{c.speed_from!r} needs the signal to "
+                     f"{ORDER_MARGIN:g}·omax·rpm_max/60 = {_fmt_hz(need)}, so a sample rate of "
+                     f"at least {_fmt_hz(need * FRAME_RATIO)}; channel {ch!r}'s source runs at "
+                     f"{_fmt_hz(fs)} (lower omax or the tacho's rpm_max)")
 
     def speed_needed(self, where: str, ch: str) -> None:
         targets = self.targets(ch)
@@ -324,10 +357,16 @@ class _Checker:
             profs = mine if profile == "*" else [profile] if profile in mine else []
             if not profs:
                 continue
-            top = _top_hz(hz, order, planning_rpm(self.cfg, t))
-            fmax = max(effective_analysis(self.cfg, t, p).fmax_hz for p in profs)
-            if not _covers(fmax, top):
-                over.append(f"{t!r} ({_fmt_hz(fmax)})")
+            rpm = planning_rpm(self.cfg, t)
+            sets = [effective_analysis(self.cfg, t, p) for p in profs]
+            if profile != "*" and sets[0].kind == "order" and order is None:
+                self.add(f"{where}: profile {profile!r} is an order profile (kind = 'order'): "
+                         "its bands and tones are in orders (lo_order/hi_order, order), not Hz")
+                return
+            if not any(covers(a, hz, order, rpm) for a in sets):
+                top = max((a.omax if a.kind == "order" else a.fmax_hz) for a in sets)
+                unit = " orders" if all(a.kind == "order" for a in sets) else ""
+                over.append(f"{t!r} ({_fmt_hz(top) if not unit else f'omax {top:g}'})")
         if over:
             value = _fmt_hz(hz) if hz is not None else f"order {order:g}"
             of = "any profile of" if profile == "*" and len(self.cfg.profiles) > 1 else (

@@ -144,8 +144,9 @@ class ChannelConfig(StrictModel):
         None,
         description="Analysis profiles this channel runs, by name from [profiles]; the first "
         "is its primary one (what REST and the stream give when no profile is asked for). "
-        "Default: every profile, in file order, except envelope profiles (kind = "
-        "'envelope' in their own table), which a channel runs only when it lists them.",
+        "Default: every profile, in file order, except envelope and order profiles (kind = "
+        "'envelope' or 'order' in their own table), which a channel runs only when it lists "
+        "them.",
     )
 
 
@@ -193,7 +194,8 @@ class ChannelConfig(StrictModel):
 
 
 _PROFILE_HELP = (
-    "Profile name, or '*' for every profile of the channel whose fmax_hz covers it."
+    "Profile name, or '*' for every profile of the channel whose fmax_hz covers it (an "
+    "order profile's omax: orders only)."
 )
 
 

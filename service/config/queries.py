@@ -50,12 +50,12 @@ def profile_names(cfg: Config) -> list[str]:
 
 def profiles_of(cfg: Config, channel_id: str) -> list[str]:
     """The profiles ``channel_id`` runs, its primary one first: its own ``profiles``, else
-    every profile but those whose table makes them envelope profiles (``kind =
-    "envelope"``: a channel runs one only when it lists it)."""
+    every profile but those whose table makes them envelope or order profiles (``kind =
+    "envelope"`` or ``"order"``: a channel runs one only when it lists it)."""
     own = channel_settings(cfg, channel_id).profiles
     if own:
         return list(own)
     names = profile_names(cfg)
     tables: dict[str, BaseModel] = dict(cfg.profiles)
     return [n for n in names if n not in tables
-            or tables[n].model_dump().get("kind") != "envelope"] or names
+            or tables[n].model_dump().get("kind") not in ("envelope", "order")] or names

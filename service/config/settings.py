@@ -13,7 +13,12 @@ from pydantic import AfterValidator, BaseModel, Field, PlainValidator, create_mo
 from dsp.types import Amplitude, AveragingMode, LinearEnd, OutputUnit, Quantity, WindowName
 from dsp.windows import DEFAULT_KAISER_BETA
 
-from .base import Listen, StrictModel
+from .base import FRAME_RATIO, Listen, StrictModel
+
+# An order profile's signal must reach ORDER_MARGIN·omax orders at the tacho's rpm_max: its
+# angle-domain filter cuts at the angle rate's Nyquist order, S/2 = 1.28·omax for S = 2.56·omax
+# samples per revolution (dsp.orders.AngleStream), and nothing may fold below omax.
+ORDER_MARGIN = FRAME_RATIO / 2
 
 
 def _valid_zone(text: str) -> str:
@@ -44,7 +49,7 @@ def _envelope_band(v: object) -> str | list[float]:
     raise ValueError(f"must be 'auto' or [lo_hz, hi_hz] (got {v!r})")
 
 
-ProfileKind = Literal["spectrum", "envelope"]
+ProfileKind = Literal["spectrum", "envelope", "order"]
 EnvelopeBand = Annotated[Literal["auto"] | list[float], PlainValidator(_envelope_band)]
 
 
@@ -227,10 +232,25 @@ class AnalysisSettings(StrictModel):
     peaks: int = Field(8, ge=0, le=256, description="Number of spectral peaks reported.")
     kind: ProfileKind = Field(
         "spectrum",
-        description="spectrum | envelope. An envelope profile band-passes the signal (see "
+        description="spectrum | envelope | order. An envelope profile band-passes the signal (see "
         "band), takes its envelope (full-wave rectified and low-passed) and shows the "
         "envelope's spectrum up to fmax_hz, in acceleration: bearing defects' strike rates "
-        "(BPFO, BPFI, BSF, FTF) appear there as lines. Its unit is always acceleration.",
+        "(BPFO, BPFI, BSF, FTF) appear there as lines. Its unit is always acceleration. "
+        "An order profile resamples the signal at constant shaft angle from a tacho's "
+        "pulses (computed order tracking; the channel needs speed_from) and shows the "
+        "spectrum in orders of running speed up to omax, the order resolution omax/lines; its "
+        "unit is always acceleration.",
+    )
+    omax: float = Field(
+        20.0, gt=0, le=1000,
+        description="Order profiles: the highest order shown (orders of running speed); the "
+        "order resolution is omax/lines and a frame spans lines/omax revolutions.",
+    )
+    speed_band_pct: float = Field(
+        5.0, gt=0, le=100,
+        description="Order profiles: an average holds only frames whose mean speed is within "
+        "± this % of its first frame's; a frame outside starts a new average (the frame says "
+        "so: average_restarted), so an average never mixes speeds further apart.",
     )
     band: EnvelopeBand = Field(
         "auto",

@@ -139,10 +139,12 @@ def tones_payload(frame: SpectralFrame, top: dict[str, Any]) -> dict[str, Any]:
 
 def spectrum_payload(frame: SpectralFrame, top: dict[str, Any]) -> dict[str, Any]:
     """The ``spectrum`` message (``top``: :func:`head`): values on f[q] = f0_hz + q·df_hz in
-    the frame's unit and amplitude type (as ``GET /channels/{id}/spectrum`` gives them)."""
+    the frame's unit and amplitude type (as ``GET /channels/{id}/spectrum`` gives them); the
+    x values in ``x_unit`` (Hz, or orders for an order profile)."""
     values, unit, amp = spectrum_values(frame)
     doc = dict(top)
-    doc.update(unit=unit, amplitude=amp, f0_hz=frame.f0_hz, df_hz=frame.df_hz,
+    doc.update(unit=unit, amplitude=amp, x_unit=frame.x_unit, f0_hz=frame.f0_hz,
+               df_hz=frame.df_hz,
                fmax_hz=frame.fmax_hz, lines=frame.lines, averages=frame.averages,
                values=[_num(v) for v in values.tolist()])
     return doc

@@ -40,6 +40,9 @@ def _samples(cfg: Any, ids: list[str], fs: float, seed: int) -> np.ndarray:
     x = np.empty((len(ids), k.size), dtype=np.float32)
     for r, cid in enumerate(ids):
         rpm = channel_settings(cfg, cid).speed_rpm or 1500.0
+        if channel_settings(cfg, cid).kind == "tacho":  # 0/5 V, once a revolution at 1500
+            x[r] = 5.0 * ((k * rpm / 60.0 / fs) % 1.0 < 0.1)  # r/min: the fan's 1X below
+            continue
         parts = [(0.8, rpm / 60.0)] + [(rng.uniform(0.05, 1.0), rng.uniform(20, fs / 2.6))
                                        for _ in range(3)]
         sig = 0.3 + rng.normal(0.0, 0.01, k.size)

@@ -210,7 +210,8 @@ def test_spectrum_message_layout_for_any_missed(missed: int) -> None:
     assert (4 + length) % 4 == 0
     head = json.loads(msg[4 : 4 + length])
     assert head == {"kind": "spectrum", "channel": CHANNELS[0], "profile": "default", "seq": 41,
-                    "timestamp_ns": 123456, "f0_hz": 0.0, "df_hz": 3.125, "unit": "g",
+                    "timestamp_ns": 123456, "f0_hz": 0.0, "df_hz": 3.125, "x_unit": "Hz",
+                    "unit": "g",
                     "amplitude": "rms", "averages": 8, "count": 101, "missed": missed}
     values = np.frombuffer(msg[4 + length :], dtype="<f4")
     np.testing.assert_array_equal(values, np.zeros(101, np.float32))
