@@ -13,6 +13,7 @@ from collections.abc import Callable, Iterable
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+import numpy as np
 from fastapi import FastAPI
 
 from .alarms import AlarmEngine, AlarmEvent, rules_from_config
@@ -31,7 +32,7 @@ from .sources import make_source
 from .spectra import spectrum_values
 from .store import HistoryPolicy, HistoryRow, Retention, Store, StoreError, trend_key
 from .supervise import refresh_quality, run_supervised, watch
-from .types import SpectralFrame
+from .types import PushFrames, SpectralFrame
 
 if TYPE_CHECKING:
     from .cluster.head import Cluster
@@ -57,6 +58,7 @@ class Service:
         self.tasks: list[asyncio.Task[None]] = []
         self.store_errors = 0
         self.status_changes: dict[str, int] = {}  # transitions into each state, for /metrics
+        self._trend_layouts: dict[object, list[list[tuple[str, str]]]] = {}
         all_ids: list[str] = []
         # [cluster] engine = "ray": each source's pipeline runs on a Ray actor and a
         # RemotePipeline stands in for it here (Ray is imported when the cluster starts)
@@ -204,35 +206,55 @@ class Service:
 
     # -- per block ---------------------------------------------------------------------
     async def on_frames(
-        self, p: SourcePipeline, frames: list[SpectralFrame], latency_s: float
+        self, p: SourcePipeline, pushes: list[PushFrames], latency_s: float
     ) -> None:
+        """A block's results, one :class:`PushFrames` per analysis group, worked on as
+        arrays over the channels (frames are made only where something reads them)."""
         self._store_evidence(p)
         self._store_runups(p)
         now = time.monotonic()
-        for f in frames:
-            p.channels[f.channel].last_frame_mono = now
+        chans = p.channels
+        for push in pushes:
+            for cid in push.channels:
+                chans[cid].last_frame_mono = now
         # every block: a fault seen by the worker is a state (and an event) at once
-        await self._refresh_quality(p.channels.values())
-        if not frames:
+        await self._refresh_quality(chans.values())
+        if not pushes:
             return
-        self.hub.publish(frames, latency_s)
-        if self.history is not None:
-            closed = self.history.add(frames)
-            if closed:
-                self.store.put_history(closed)
         events: list[tuple[AlarmEvent, SpectralFrame | None]] = []
-        for f in frames:
-            values = {"overall": f.overall}
-            values.update({f"band:{b.name}": b.value for b in f.bands})
-            values.update({f"tone:{t.name}": t.value for t in f.tones})
-            if not f.primary:
-                values = {trend_key(f.profile, k): v for k, v in values.items()}
-            self.store.record_many(f.channel, f.t_ns, values)
-            st = self.hub.channels[f.channel]
-            for e in self.alarms.evaluate(f, st.status, fault=st.fault):
-                events.append((e, f))
+        for push in pushes:
+            self.hub.publish_push(push, latency_s)
+            if self.history is not None:
+                closed = self.history.add_push(push)
+                if closed:
+                    self.store.put_history(closed)
+            keys = self._trend_keys(push)
+            values = np.concatenate((push.bands[:, -1:], push.bands[:, :len(push.band_names)],
+                                     push.tones), axis=1)
+            self.store.record_block((push.channels, push.profile), keys, push.t_ns, values)
+            hub_ch = self.hub.channels
+            for c, cid in enumerate(push.channels):
+                st = hub_ch[cid]
+                f = push.frame(c)
+                for e in self.alarms.evaluate(f, st.status, fault=st.fault):
+                    events.append((e, f))
         if events:
             await self.commit_and_announce(p, events)
+
+    def _trend_keys(self, push: PushFrames) -> list[list[tuple[str, str]]]:
+        """The trend series (channel, name) of each cell of a push's values [overall |
+        bands | tones]: made once per layout, the same list object after (compared by
+        identity in the store's buckets)."""
+        layout = (push.channels, push.profile, push.band_names, push.tone_names,
+                  push.primary.tobytes())
+        keys = self._trend_layouts.get(layout)
+        if keys is None:
+            names = ["overall", *(f"band:{b}" for b in push.band_names),
+                     *(f"tone:{t}" for t in push.tone_names)]
+            keys = [[(cid, n if primary else trend_key(push.profile, n)) for n in names]
+                    for cid, primary in zip(push.channels, push.primary.tolist(), strict=True)]
+            self._trend_layouts[layout] = keys
+        return keys
 
     async def commit_and_announce(
         self, p: SourcePipeline | None, events: list[tuple[AlarmEvent, SpectralFrame | None]]
