@@ -232,12 +232,10 @@ class Service:
             values = np.concatenate((push.bands[:, -1:], push.bands[:, :len(push.band_names)],
                                      push.tones), axis=1)
             self.store.record_block((push.channels, push.profile), keys, push.t_ns, values)
-            hub_ch = self.hub.channels
-            for c, cid in enumerate(push.channels):
-                st = hub_ch[cid]
-                f = push.frame(c)
-                for e in self.alarms.evaluate(f, st.status, fault=st.fault):
-                    events.append((e, f))
+            states = [self.hub.channels[cid] for cid in push.channels]
+            for e, c in self.alarms.evaluate_push(push, [st.status for st in states],
+                                                  [st.fault for st in states]):
+                events.append((e, push.frame(c)))
         if events:
             await self.commit_and_announce(p, events)
 
