@@ -156,6 +156,8 @@ class SourcePipeline:
             flat &= ~self.speeds.tacho_rows  # a tacho rests flat between pulses
         hold = round(FAULT_HOLD_S * block.fs)  # a fault is held this many clean samples
         restart = False
+        # plain bools of every channel at once (numpy scalars one by one cost more)
+        finite_l, in_range_l, flat_l = finite.tolist(), in_range.tolist(), flat.tolist()
         for c, st in enumerate(states):
             st.fs = block.fs
             st.samples += block.n
@@ -165,19 +167,19 @@ class SourcePipeline:
             clipped = st.clip_level is not None and bool(np.any(np.abs(x[c]) >= st.clip_level))
             reason = (
                 "non-finite samples (NaN/inf)"
-                if not finite[c]
+                if not finite_l[c]
                 else f"values beyond the sensor's range (|x| > {st.range:g} {st.input_unit})"
-                if not in_range[c]
+                if not in_range_l[c]
                 else "flat line"
-                if flat[c]
+                if flat_l[c]
                 else "clipping"
                 if clipped
                 else ""
             )
             if reason:
-                st.nonfinite_blocks += not finite[c]
-                st.range_blocks += bool(finite[c] and not in_range[c])
-                st.flat_blocks += bool(flat[c])
+                st.nonfinite_blocks += not finite_l[c]
+                st.range_blocks += bool(finite_l[c] and not in_range_l[c])
+                st.flat_blocks += bool(flat_l[c])
                 st.clipped_blocks += clipped
                 if st.data_status != "sensor-fault":
                     st.sensor_faults += 1

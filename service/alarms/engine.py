@@ -73,6 +73,16 @@ class _Table:
         self.on_ns = np.zeros(n, dtype=np.int64)
         self.off_ns = np.zeros(n, dtype=np.int64)
 
+    def rows(self) -> _Rows:
+        """The per-value fields as Python lists (value, its time, above, below, state code,
+        with their has-flags), for reading many alarms at once."""
+        return (self.v.tolist(), self.has_v.tolist(), self.vns.tolist(), self.has_vns.tolist(),
+                self.above.tolist(), self.has_above.tolist(), self.below.tolist(),
+                self.has_below.tolist(), self.code.tolist())
+
+
+_Rows = tuple[list[Any], ...]
+
 
 class _Alarm:
     """Run-time state of one rule (everything :meth:`AlarmEngine.snapshot` keeps). The
@@ -187,16 +197,30 @@ class _Alarm:
         self._base = v
         self._set_levels()
 
-    def saved(self) -> dict[str, Any]:
+    def saved(self, rows: _Rows | None = None) -> dict[str, Any]:
         """Every field but the rule, JSON-safe, plus the baseline settings it was learned
-        with (one alarm of :meth:`AlarmEngine.snapshot`)."""
-        out: dict[str, Any] = {}
-        for name in _SAVED:
-            v = getattr(self, name)
-            out[name] = v.value if isinstance(v, AlarmState) else list(v) if isinstance(
-                v, list) else v
-        out["baseline"] = self.rule.baseline.as_dict() if self.rule.baseline else None
-        return out
+        with (one alarm of :meth:`AlarmEngine.snapshot`; ``rows``: the engine's table as
+        lists, ``_Table.rows()``, read instead of the arrays)."""
+        if rows is None:
+            rows = self._t.rows()
+        i = self._i
+        v, has_v, vns, has_vns, above, has_above, below, has_below, code = rows
+        ab, hab, be, hbe = above[i], has_above[i], below[i], has_below[i]
+        return {
+            "state": _CODE_STATES[code[i]].value, "peak": self.peak.value,
+            "since_ns": self.since_ns,
+            "value": v[i] if has_v[i] else None, "value_ns": vns[i] if has_vns[i] else None,
+            "acked": self.acked, "acked_by": self.acked_by, "acked_ns": self.acked_ns,
+            "note": self.note, "shelved_until_ns": self.shelved_until_ns,
+            "shelved_ns": self.shelved_ns, "shelved_by": self.shelved_by,
+            "shelve_reason": self.shelve_reason,
+            "above_ns": [ab[0] if hab[0] else None, ab[1] if hab[1] else None],
+            "below_ns": [be[0] if hbe[0] else None, be[1] if hbe[1] else None],
+            "base": self._base, "learn_start_ns": self.learn_start_ns,
+            "learn": list(self.learn), "learn_stride": self.learn_stride,
+            "learn_count": self.learn_count,
+            "baseline": self.rule.baseline.as_dict() if self.rule.baseline else None,
+        }
 
     def resume(self, s: Mapping[str, Any]) -> None:
         """Take the fields :meth:`saved` wrote; the learned ones only if the baseline
@@ -572,7 +596,8 @@ class AlarmEngine(ShelvingMixin):
     def snapshot(self) -> dict[str, Any]:
         """JSON-safe state of every alarm (states, acknowledgements, pending delays, learned
         baselines and baseline learning) and of the faulted channels; see :meth:`restore`."""
-        alarms = {rid: a.saved() for rid, a in self._alarms.items()}
+        rows = self._table.rows()  # the table as lists once, not value by value
+        alarms = {rid: a.saved(rows) for rid, a in self._alarms.items()}
         return {"version": SNAPSHOT_VERSION, "alarms": alarms, "suspended": dict(self._suspended)}
 
     def restore(self, snapshot: Mapping[str, Any]) -> None:
