@@ -60,18 +60,26 @@ class _Table:
     def __init__(self, n: int) -> None:
         self.v = np.zeros(n)
         self.has_v = np.zeros(n, dtype=bool)
-        self.vns = np.zeros(n, dtype=np.int64)
+        self.vns: np.ndarray = np.zeros(n, dtype=np.int64)
         self.has_vns = np.zeros(n, dtype=bool)
-        self.above = np.zeros((n, 2), dtype=np.int64)
+        self.above: np.ndarray = np.zeros((n, 2), dtype=np.int64)
         self.has_above = np.zeros((n, 2), dtype=bool)
-        self.below = np.zeros((n, 2), dtype=np.int64)
+        self.below: np.ndarray = np.zeros((n, 2), dtype=np.int64)
         self.has_below = np.zeros((n, 2), dtype=bool)
         self.code = np.zeros(n, dtype=np.int64)
         self.lv = np.full((n, 2), np.nan)  # alert, danger; NaN: none (learning, signal)
         self.clear_k = np.zeros((n, 2))  # level·(1 − h) below which a level clears
         self.h = np.zeros(n)
-        self.on_ns = np.zeros(n, dtype=np.int64)
-        self.off_ns = np.zeros(n, dtype=np.int64)
+        self.on_ns: np.ndarray = np.zeros(n, dtype=np.int64)
+        self.off_ns: np.ndarray = np.zeros(n, dtype=np.int64)
+
+    def hold(self, t_ns: int | None) -> None:
+        """Make room for time ``t_ns``: beyond int64 (a producer's header at the end of the
+        range) the time arrays become arrays of Python ints, slower but exact, for good."""
+        if t_ns is not None and not _I64_MIN <= t_ns <= _I64_MAX and self.vns.dtype != object:
+            self.vns, self.above, self.below, self.on_ns, self.off_ns = (
+                a.astype(object) for a in (self.vns, self.above, self.below, self.on_ns,
+                                           self.off_ns))
 
     def rows(self) -> _Rows:
         """The per-value fields as Python lists (value, its time, above, below, state code,
@@ -82,6 +90,7 @@ class _Table:
 
 
 _Rows = tuple[list[Any], ...]
+_I64_MIN, _I64_MAX = -(2**63), 2**63 - 1
 
 
 class _Alarm:
@@ -161,6 +170,7 @@ class _Alarm:
 
     @value_ns.setter
     def value_ns(self, t_ns: int | None) -> None:
+        self._t.hold(t_ns)
         self._t.has_vns[self._i] = t_ns is not None
         self._t.vns[self._i] = 0 if t_ns is None else t_ns
 
@@ -173,6 +183,7 @@ class _Alarm:
     def above_ns(self, v: list[int | None]) -> None:
         t, i = self._t, self._i
         for k in (0, 1):
+            t.hold(v[k])
             t.has_above[i, k] = v[k] is not None
             t.above[i, k] = v[k] or 0
 
@@ -185,6 +196,7 @@ class _Alarm:
     def below_ns(self, v: list[int | None]) -> None:
         t, i = self._t, self._i
         for k in (0, 1):
+            t.hold(v[k])
             t.has_below[i, k] = v[k] is not None
             t.below[i, k] = v[k] or 0
 
@@ -334,6 +346,8 @@ class AlarmEngine(ShelvingMixin):
         alarms: dict[str, _Alarm] = {}
         by_channel: dict[str, list[_Alarm]] = {}
         table = _Table(len(new))
+        if self._table.vns.dtype == object:  # times beyond int64 were seen: stay exact
+            table.hold(_I64_MAX + 1)
         for k, r in enumerate(new):
             a = self._alarms.get(r.id)
             if a is None:
@@ -406,6 +420,7 @@ class AlarmEngine(ShelvingMixin):
             live = np.array([ch not in self._suspended for ch in push.channels])
             go &= live[plan.chan]
         tab = self._table
+        tab.hold(t_ns)
         s_all = plan.slots
         # Python for: a baseline still being learned, a time before the rule's last value
         slow = go & (np.isnan(tab.lv[s_all, 0]) | (tab.has_vns[s_all] & (tab.vns[s_all] > t_ns)))
@@ -424,8 +439,8 @@ class AlarmEngine(ShelvingMixin):
         tab.below[s] = np.where(below & tab.has_below[s], tab.below[s], t_ns)
         tab.has_below[s] = below
         rank = _RANK_OF_CODE[tab.code[s]]
-        on_ok = tab.has_above[s] & (t_ns - tab.above[s] >= tab.on_ns[s][:, None])
-        off_ok = tab.has_below[s] & (t_ns - tab.below[s] >= tab.off_ns[s][:, None])
+        on_ok = tab.has_above[s] & (t_ns - tab.above[s] >= tab.on_ns[s][:, None]).astype(bool)
+        off_ok = tab.has_below[s] & (t_ns - tab.below[s] >= tab.off_ns[s][:, None]).astype(bool)
         up = (on_ok[:, 1] & (rank < 2)) | (on_ok[:, 0] & (rank < 1))
         down = (off_ok[:, 0] & (rank >= 1)) | (off_ok[:, 1] & (rank >= 2))
         moving = rows[up | down]

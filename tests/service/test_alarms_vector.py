@@ -103,13 +103,13 @@ def _event_dict(e: Any) -> dict[str, Any]:
     return d
 
 
-def _run(seed: int, steps: int = 400) -> tuple[int, int]:
+def _run(seed: int, steps: int = 400, t0_ns: int = 1_700_000_000 * NS) -> tuple[int, int]:
     rng = np.random.default_rng(seed)
     rules = _rules(rng)
     vec, ref = AlarmEngine(rules), ReferenceAlarmEngine(rules)
     values = _values(rng, steps, grid=seed % 2 == 1)
     statuses = ["ok"] * len(CHANNELS)
-    t = 1_700_000_000 * NS
+    t = t0_ns
     events = transitions = 0
     for p in range(steps):
         # the clock: mostly steady, sometimes arrival jitter back, rarely a step back
@@ -148,6 +148,13 @@ def test_vectorised_alarms_equal_the_per_rule_engine(seed: int) -> None:
     events, transitions = _run(seed)
     # the sequences do exercise the state machines (not a comparison of two silences)
     assert transitions >= 10, (events, transitions)
+
+
+def test_times_beyond_int64_stay_exact() -> None:
+    """A producer's header times at the end of the int64 range (tests/service/
+    test_robustness.py): frame times run past 2**63 − 1 ns and both engines still agree."""
+    events, transitions = _run(3, steps=200, t0_ns=2**63 - 1 - 5 * NS)
+    assert transitions >= 5, (events, transitions)
 
 
 def test_restore_and_replace_rules_keep_equal() -> None:
