@@ -234,7 +234,7 @@ class Service:
             self.store.record_block((push.channels, push.profile), keys, push.t_ns, values)
             states = [self.hub.channels[cid] for cid in push.channels]
             for e, c in self.alarms.evaluate_push(push, [st.status for st in states],
-                                                  [st.fault for st in states]):
+                                                  [st.fault for st in states], values):
                 events.append((e, push.frame(c)))
         if events:
             await self.commit_and_announce(p, events)

@@ -309,6 +309,9 @@ class _Plan(NamedTuple):
     cols: np.ndarray  # its value's flat index in the push's [C, 1 + B + T] values
     chan: np.ndarray  # its channel's index in the push
     alarms: list[_Alarm]
+    sl: slice | None  # the same rows as one slice of the table, when they are consecutive
+    sig_slots: np.ndarray  # the loss-of-signal rules of the push's channels: rows
+    sig_chan: np.ndarray  # ... and their channels' indices in the push
 
 
 class AlarmEngine(ShelvingMixin):
@@ -328,6 +331,7 @@ class AlarmEngine(ShelvingMixin):
             self._by_channel.setdefault(r.channel, []).append(a)
         self._suspended: dict[str, str] = {}  # channel → its suspending status
         self._plans: dict[tuple[object, ...], _Plan] = {}
+        self._sig_of: dict[tuple[object, ...], list[_Alarm]] = {}
 
     def replace_rules(self, rules: Iterable[Rule]) -> dict[str, list[str]]:
         """Swap in a new rule set (a config reload); returns the rule ids ``added``,
@@ -368,6 +372,7 @@ class AlarmEngine(ShelvingMixin):
         out["removed"] = [i for i in self._alarms if i not in alarms]
         self._alarms, self._by_channel, self._table = alarms, by_channel, table
         self._plans.clear()
+        self._sig_of.clear()
         return out
 
     @property
@@ -396,54 +401,86 @@ class AlarmEngine(ShelvingMixin):
         return events
 
     def evaluate_push(
-        self, push: PushFrames, statuses: Sequence[str], faults: Sequence[str]
+        self, push: PushFrames, statuses: Sequence[str], faults: Sequence[str],
+        values: np.ndarray | None = None,
     ) -> list[tuple[AlarmEvent, int]]:
         """:meth:`evaluate` of every frame of ``push`` at once (``statuses[c]`` and
         ``faults[c]``: channel c's data-quality state and its cause), with array operations
         over the rules it feeds: levels, hysteresis and delays compared for all of them,
         Python only for the rules that change state, learn a baseline or see the clock go
         back. The same events, in the same order, as :meth:`evaluate` frame by frame
-        (tests/service/test_alarms_vector.py); each with the index of its channel."""
+        (tests/service/test_alarms_vector.py); each with the index of its channel.
+        ``values``: the push's [overall | bands | tones] if the caller has them already."""
         t_ns = int(push.t_ns)
         out: list[tuple[AlarmEvent, int]] = []
-        for c, ch in enumerate(push.channels):
-            for e in self.set_channel_status(ch, statuses[c], t_ns, fault=faults[c]):
-                out.append((e, c))
         plan = self._plan(push)
-        if not plan.slots.size:
-            return out
-        values = np.concatenate((push.bands[:, -1:], push.bands[:, :len(push.band_names)],
-                                 push.tones), axis=1)
-        v = values.ravel()[plan.cols]
-        go = np.isfinite(v)
-        if self._suspended:
-            live = np.array([ch not in self._suspended for ch in push.channels])
-            go &= live[plan.chan]
         tab = self._table
         tab.hold(t_ns)
+        # Channel states: the common case, an "ok" channel not suspended whose signal rule
+        # is normal, only records 0 at t_ns (what set_channel_status does for it), for all
+        # such channels at once; any other channel goes through set_channel_status.
+        suspended = self._suspended
+        quiet = np.array([st == "ok" and ch not in suspended
+                          for ch, st in zip(push.channels, statuses, strict=True)])
+        sig = plan.sig_slots
+        if sig.size:
+            calm = quiet[plan.sig_chan] & (_RANK_OF_CODE[tab.code[sig]] == 0)
+            done = sig[calm]
+            tab.v[done] = 0.0
+            tab.has_v[done] = True
+            tab.vns[done] = t_ns
+            tab.has_vns[done] = True
+            quiet[plan.sig_chan[~calm]] = False
+        for c in np.flatnonzero(~quiet).tolist():
+            for e in self.set_channel_status(push.channels[c], statuses[c], t_ns,
+                                             fault=faults[c]):
+                out.append((e, c))
+        if not plan.slots.size:
+            return out
+        if values is None:
+            values = np.concatenate((push.bands[:, -1:], push.bands[:, :len(push.band_names)],
+                                     push.tones), axis=1)
+        v = values.ravel()[plan.cols]
+        go = np.isfinite(v)
+        if suspended:
+            live = np.array([ch not in suspended for ch in push.channels])
+            go &= live[plan.chan]
         s_all = plan.slots
         # Python for: a baseline still being learned, a time before the rule's last value
-        slow = go & (np.isnan(tab.lv[s_all, 0]) | (tab.has_vns[s_all] & (tab.vns[s_all] > t_ns)))
+        lv = tab.lv[plan.sl] if plan.sl is not None else tab.lv[s_all]
+        slow = np.isnan(lv[:, 0])
+        vns_all = tab.vns[plan.sl] if plan.sl is not None else tab.vns[s_all]
+        if int(vns_all.max()) > t_ns:
+            slow |= (tab.has_vns[s_all] & (vns_all > t_ns)).astype(bool)
+        slow &= go
         fast = go & ~slow
-        rows = np.flatnonzero(fast)
-        s = s_all[rows]
-        vv = v[rows]
+        s: slice | np.ndarray
+        if plan.sl is not None and fast.all():  # the usual push: one slice of the table
+            s, vv, rows = plan.sl, v, None
+        else:
+            rows = np.flatnonzero(fast)
+            s, vv, lv = s_all[rows], v[rows], lv[rows]
         tab.v[s] = vv
         tab.has_v[s] = True
         tab.vns[s] = t_ns
         tab.has_vns[s] = True
-        above = vv[:, None] >= tab.lv[s]
+        above = vv[:, None] >= lv
         below = vv[:, None] < tab.clear_k[s]
-        tab.above[s] = np.where(above & tab.has_above[s], tab.above[s], t_ns)
+        ab, hab = tab.above[s], tab.has_above[s]
+        be, hbe = tab.below[s], tab.has_below[s]
+        ab = tab.above[s] = np.where(above & hab, ab, t_ns)
         tab.has_above[s] = above
-        tab.below[s] = np.where(below & tab.has_below[s], tab.below[s], t_ns)
+        be = tab.below[s] = np.where(below & hbe, be, t_ns)
         tab.has_below[s] = below
         rank = _RANK_OF_CODE[tab.code[s]]
-        on_ok = tab.has_above[s] & (t_ns - tab.above[s] >= tab.on_ns[s][:, None]).astype(bool)
-        off_ok = tab.has_below[s] & (t_ns - tab.below[s] >= tab.off_ns[s][:, None]).astype(bool)
+        on_ok = above & (t_ns - ab >= tab.on_ns[s][:, None]).astype(bool)
+        off_ok = below & (t_ns - be >= tab.off_ns[s][:, None]).astype(bool)
         up = (on_ok[:, 1] & (rank < 2)) | (on_ok[:, 0] & (rank < 1))
         down = (off_ok[:, 0] & (rank >= 1)) | (off_ok[:, 1] & (rank >= 2))
-        moving = rows[up | down]
+        turn = up | down
+        moving = np.flatnonzero(turn) if rows is None else rows[turn]
+        if not (moving.size or slow.any()):
+            return out
         todo = np.union1d(moving, np.flatnonzero(slow))  # in row order
         if not todo.size:
             return out
@@ -466,7 +503,9 @@ class AlarmEngine(ShelvingMixin):
         return out
 
     def _plan(self, push: PushFrames) -> _Plan:
-        """Which value of a push each rule of its channels watches (made once per layout)."""
+        """Which value of a push each rule of its channels watches (made once per layout).
+        A new layout puts its rules in consecutive rows of the table, so that a push reads
+        and writes slices of it rather than scattered rows."""
         key = (push.channels, push.profile, push.band_names, push.tone_names,
                push.primary.tobytes())
         plan = self._plans.get(key)
@@ -474,12 +513,16 @@ class AlarmEngine(ShelvingMixin):
             return plan
         nb = len(push.band_names)
         ncol = 1 + nb + len(push.tone_names)
-        slots, cols, chans, alarms = [], [], [], []
+        cols, chans, alarms, sig, sig_chan = [], [], [], [], []
         for c, ch in enumerate(push.channels):
             primary = bool(push.primary[c])
             for a in self._by_channel.get(ch, ()):
                 r = a.rule
-                if r.kind == "signal" or not (r.profile == push.profile or (
+                if r.kind == "signal":
+                    sig.append(a)
+                    sig_chan.append(c)
+                    continue
+                if not (r.profile == push.profile or (
                         r.primary and primary and r.profile in ("", push.profile))):
                     continue
                 if r.kind == "overall":
@@ -489,14 +532,42 @@ class AlarmEngine(ShelvingMixin):
                     if r.name not in names:
                         continue  # NaN: never evaluated
                     col = 1 + names.index(r.name) + (nb if r.kind == "tone" else 0)
-                slots.append(a._i)
                 cols.append(c * ncol + col)
                 chans.append(c)
                 alarms.append(a)
-        plan = _Plan(np.array(slots, dtype=np.int64), np.array(cols, dtype=np.int64),
-                     np.array(chans, dtype=np.int64), alarms)
-        self._plans[key] = plan
-        return plan
+        self._plans[key] = _Plan(np.zeros(0, dtype=np.int64), np.array(cols, dtype=np.int64),
+                                 np.array(chans, dtype=np.int64), alarms, None,
+                                 np.zeros(0, dtype=np.int64), np.array(sig_chan, dtype=np.int64))
+        self._sig_of[key] = sig
+        self._arrange()
+        return self._plans[key]
+
+    def _arrange(self) -> None:
+        """Rows in plan order (each plan's value rules, then its signal rules), the rules no
+        plan holds after; every plan's row indices made again."""
+        order: list[_Alarm] = []
+        seen: set[int] = set()
+        for key, plan in self._plans.items():
+            for a in (*plan.alarms, *self._sig_of[key]):
+                if id(a) not in seen:
+                    seen.add(id(a))
+                    order.append(a)
+        order += [a for a in self._alarms.values() if id(a) not in seen]
+        if [a._i for a in order] != list(range(len(order))):
+            table = _Table(len(order))
+            if self._table.vns.dtype == object:
+                table.hold(_I64_MAX + 1)
+            for k, a in enumerate(order):
+                a.move(table, k)
+            self._table = table
+        for key, plan in list(self._plans.items()):
+            slots = np.array([a._i for a in plan.alarms], dtype=np.int64)
+            sl = None
+            if slots.size and np.array_equal(slots, np.arange(slots[0], slots[0] + slots.size)):
+                sl = slice(int(slots[0]), int(slots[0]) + slots.size)
+            self._plans[key] = plan._replace(
+                slots=slots, sl=sl,
+                sig_slots=np.array([a._i for a in self._sig_of[key]], dtype=np.int64))
 
     def set_channel_status(
         self, channel: str, status: str, t_ns: int, *, fault: str = "", lost: bool | None = None
