@@ -302,6 +302,19 @@ class _Alarm:
         return self.learn_value(v, t_ns)
 
 
+def _rows_of(rules: Sequence[Rule]) -> list[int]:
+    """Each rule's row in the table: value rules grouped by channel (channels in the order
+    they first appear, rules in their own order within), then the loss-of-signal rules. A
+    push of a source's channels then usually reads one slice of rows."""
+    pos = {ch: i for i, ch in enumerate(dict.fromkeys(r.channel for r in rules))}
+    order = sorted(range(len(rules)),
+                   key=lambda k: (rules[k].kind == "signal", pos[rules[k].channel], k))
+    rows = [0] * len(rules)
+    for row, k in enumerate(order):
+        rows[k] = row
+    return rows
+
+
 class _Plan(NamedTuple):
     """The value rules a push layout feeds, in evaluation order (channel, then rule)."""
 
@@ -323,15 +336,14 @@ class AlarmEngine(ShelvingMixin):
         self._by_channel: dict[str, list[_Alarm]] = {}
         rules = list(rules)
         self._table = _Table(len(rules))
-        for k, r in enumerate(rules):
+        for r, row in zip(rules, _rows_of(rules), strict=True):
             if r.id in self._alarms:
                 raise ValueError(f"rule id {r.id!r} is given twice")
-            a = _Alarm(r, self._table, k)
+            a = _Alarm(r, self._table, row)
             self._alarms[r.id] = a
             self._by_channel.setdefault(r.channel, []).append(a)
         self._suspended: dict[str, str] = {}  # channel → its suspending status
         self._plans: dict[tuple[object, ...], _Plan] = {}
-        self._sig_of: dict[tuple[object, ...], list[_Alarm]] = {}
 
     def replace_rules(self, rules: Iterable[Rule]) -> dict[str, list[str]]:
         """Swap in a new rule set (a config reload); returns the rule ids ``added``,
@@ -352,7 +364,7 @@ class AlarmEngine(ShelvingMixin):
         table = _Table(len(new))
         if self._table.vns.dtype == object:  # times beyond int64 were seen: stay exact
             table.hold(_I64_MAX + 1)
-        for k, r in enumerate(new):
+        for r, k in zip(new, _rows_of(new), strict=True):
             a = self._alarms.get(r.id)
             if a is None:
                 a = _Alarm(r, table, k)
@@ -372,7 +384,6 @@ class AlarmEngine(ShelvingMixin):
         out["removed"] = [i for i in self._alarms if i not in alarms]
         self._alarms, self._by_channel, self._table = alarms, by_channel, table
         self._plans.clear()
-        self._sig_of.clear()
         return out
 
     @property
@@ -503,9 +514,8 @@ class AlarmEngine(ShelvingMixin):
         return out
 
     def _plan(self, push: PushFrames) -> _Plan:
-        """Which value of a push each rule of its channels watches (made once per layout).
-        A new layout puts its rules in consecutive rows of the table, so that a push reads
-        and writes slices of it rather than scattered rows."""
+        """Which value of a push each rule of its channels watches (made once per layout);
+        ``sl`` when its rows are one slice of the table (``_rows_of``)."""
         key = (push.channels, push.profile, push.band_names, push.tone_names,
                push.primary.tobytes())
         plan = self._plans.get(key)
@@ -535,39 +545,15 @@ class AlarmEngine(ShelvingMixin):
                 cols.append(c * ncol + col)
                 chans.append(c)
                 alarms.append(a)
-        self._plans[key] = _Plan(np.zeros(0, dtype=np.int64), np.array(cols, dtype=np.int64),
-                                 np.array(chans, dtype=np.int64), alarms, None,
-                                 np.zeros(0, dtype=np.int64), np.array(sig_chan, dtype=np.int64))
-        self._sig_of[key] = sig
-        self._arrange()
-        return self._plans[key]
-
-    def _arrange(self) -> None:
-        """Rows in plan order (each plan's value rules, then its signal rules), the rules no
-        plan holds after; every plan's row indices made again."""
-        order: list[_Alarm] = []
-        seen: set[int] = set()
-        for key, plan in self._plans.items():
-            for a in (*plan.alarms, *self._sig_of[key]):
-                if id(a) not in seen:
-                    seen.add(id(a))
-                    order.append(a)
-        order += [a for a in self._alarms.values() if id(a) not in seen]
-        if [a._i for a in order] != list(range(len(order))):
-            table = _Table(len(order))
-            if self._table.vns.dtype == object:
-                table.hold(_I64_MAX + 1)
-            for k, a in enumerate(order):
-                a.move(table, k)
-            self._table = table
-        for key, plan in list(self._plans.items()):
-            slots = np.array([a._i for a in plan.alarms], dtype=np.int64)
-            sl = None
-            if slots.size and np.array_equal(slots, np.arange(slots[0], slots[0] + slots.size)):
-                sl = slice(int(slots[0]), int(slots[0]) + slots.size)
-            self._plans[key] = plan._replace(
-                slots=slots, sl=sl,
-                sig_slots=np.array([a._i for a in self._sig_of[key]], dtype=np.int64))
+        slots = np.array([a._i for a in alarms], dtype=np.int64)
+        sl = None
+        if slots.size and np.array_equal(slots, np.arange(slots[0], slots[0] + slots.size)):
+            sl = slice(int(slots[0]), int(slots[0]) + slots.size)
+        plan = _Plan(slots, np.array(cols, dtype=np.int64), np.array(chans, dtype=np.int64),
+                     alarms, sl, np.array([a._i for a in sig], dtype=np.int64),
+                     np.array(sig_chan, dtype=np.int64))
+        self._plans[key] = plan
+        return plan
 
     def set_channel_status(
         self, channel: str, status: str, t_ns: int, *, fault: str = "", lost: bool | None = None
