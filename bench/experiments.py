@@ -21,6 +21,7 @@ from pathlib import Path
 from typing import Any
 
 from .clients import LatencyClient, read_line
+from .engine import engine_capacity
 from .feeder import Feeder
 from .harness import HTTP_TIMEOUT_S, REPO, child_env, stop_process
 from .plan import BenchPlan
@@ -162,6 +163,7 @@ def _feed_step(plan: BenchPlan, svc: BenchService, feeder: Feeder, sources: list
         "max_queued_blocks": watch.max_queued,
         "service_cpu_s": round(cpu, 3), "service_cpu_share": round(cpu / wall, 3),
         "service_cpu_ms_per_frame": round(1e3 * cpu / frames_got, 4) if frames_got else None,
+        "cpu_ms_per_frame": round(1e3 * cpu / frames_got, 4) if frames_got else None,
         "feeder_cpu_share": round(fed["cpu_s"] / wall, 4),
         "bench_cpu_share": round(bench_cpu / wall, 4),
         "feeder_max_late_ms": round(fed["max_late_ms"], 2),
@@ -199,6 +201,7 @@ def headroom_and_latency(plan: BenchPlan, svc: BenchService, feeder: Feeder) -> 
             lat = latencies_ns(arrivals, sends, base_ns=feeder.base_ns, fs=plan.fs_hz)
             res["latency"] = latency_figures(lat)
             res["latency_ns"] = lat
+            res["p99_ms"] = res["latency"]["p99_ms"]
             steps.append(res)
             _say(f"  {'pass' if res['passed'] else 'FAIL'}: drops {res['drops']}, frames "
                  f"{res['frames_counted']}/{res['frames_expected']}, service CPU "
@@ -392,6 +395,8 @@ def run(plan: BenchPlan, workdir: Path | None = None) -> dict[str, Any]:
     report["setup"] = {**cfg, "n": plan.n, "hop": plan.hop, "block_samples": plan.block,
                        "bands": 16, "tones": 8, "alarm_rules_per_channel": 2,
                        "drain_s": DRAIN_S, "window": "hann", "averaging": "exponential 8"}
+    _say("the engine alone at these settings (one core)")
+    report["engine"] = engine_capacity(plan)
     with contextlib.ExitStack() as stack:
         if workdir is None:
             workdir = Path(stack.enter_context(tempfile.TemporaryDirectory(prefix="quaver-bench-")))
@@ -430,4 +435,24 @@ def run(plan: BenchPlan, workdir: Path | None = None) -> dict[str, Any]:
         if plan.cluster is None:
             report["memory"] = memory(plan, workdir / "memory")
     report["machine"]["loadavg_at_end"] = [round(v, 2) for v in os.getloadavg()]
+    summarise(report)
     return report
+
+
+def summarise(report: dict[str, Any]) -> None:
+    """The headline figures at the top of the report: the service's headroom and CPU per
+    analysis frame (at the headroom step) beside the engine's capacity and CPU per frame
+    at the same settings, and their ratios (service ÷ engine)."""
+    h, eng = report["headroom"], report["engine"]
+    best = h["largest_passing_channels"]
+    step = next((s for s in h["steps"] if s["channels"] == best), None)
+    cpu = step["cpu_ms_per_frame"] if step else None
+    report["headroom_channels"] = best
+    report["engine_capacity_channels"] = eng["capacity_channels"]
+    report["cpu_ms_per_frame"] = cpu
+    report["engine_cpu_ms_per_frame"] = eng["cpu_ms_per_frame"]
+    report["headroom_over_engine_capacity"] = (
+        round(best / eng["capacity_channels"], 3) if eng["capacity_channels"] else None)
+    report["cpu_per_frame_over_engine"] = (
+        round(cpu / eng["cpu_ms_per_frame"], 2) if cpu and eng["cpu_ms_per_frame"] else None)
+    report["p99_ms_by_channels"] = {s["channels"]: s["p99_ms"] for s in h["steps"]}

@@ -36,6 +36,15 @@ def format_report(r: dict[str, Any]) -> str:
            f"{s['alarm_rules_per_channel']} alarm rules per channel; {s['per_source']} channels "
            f"per TCP source, {s['block_samples']}-sample framed blocks, queue "
            f"{s['queue_blocks']} blocks; the feeder shares the machine's cores", ""]
+    e = r["engine"]
+    out.append(f"headroom {r['headroom_channels']} channels, "
+               f"{_f(r['cpu_ms_per_frame'], '.4f')} ms of service CPU per analysis frame; "
+               f"the engine alone at these settings (one core, {e['channels_timed']} channels "
+               f"timed, {e['realtime_factor']:g}x real time): {e['capacity_channels']} "
+               f"channels, {e['cpu_ms_per_frame']:.4f} ms per frame; "
+               f"service/engine: headroom {_f(r['headroom_over_engine_capacity'], '.3f')}, "
+               f"CPU per frame {_f(r['cpu_per_frame_over_engine'], '.2f')}x")
+    out.append("")
     h = r["headroom"]
     out.append(f"1. ingest headroom: largest channel count kept up with: "
                f"{h['largest_passing_channels']} (steps {s['step_s']:g} s each at real time; "

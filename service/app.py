@@ -11,8 +11,9 @@ import logging
 import time
 from collections.abc import Callable, Iterable
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, cast
 
+import numpy as np
 from fastapi import FastAPI
 
 from .alarms import AlarmEngine, AlarmEvent, rules_from_config
@@ -31,7 +32,7 @@ from .sources import make_source
 from .spectra import spectrum_values
 from .store import HistoryPolicy, HistoryRow, Retention, Store, StoreError, trend_key
 from .supervise import refresh_quality, run_supervised, watch
-from .types import SpectralFrame
+from .types import PushFrames, SpectralFrame
 
 if TYPE_CHECKING:
     from .cluster.head import Cluster
@@ -57,6 +58,7 @@ class Service:
         self.tasks: list[asyncio.Task[None]] = []
         self.store_errors = 0
         self.status_changes: dict[str, int] = {}  # transitions into each state, for /metrics
+        self._trend_layouts: dict[object, list[list[tuple[str, str]]]] = {}
         all_ids: list[str] = []
         # [cluster] engine = "ray": each source's pipeline runs on a Ray actor and a
         # RemotePipeline stands in for it here (Ray is imported when the cluster starts)
@@ -204,14 +206,54 @@ class Service:
 
     # -- per block ---------------------------------------------------------------------
     async def on_frames(
+        self, p: SourcePipeline, pushes: list[PushFrames] | list[SpectralFrame],
+        latency_s: float
+    ) -> None:
+        """A block's results, one :class:`PushFrames` per analysis group, worked on as
+        arrays over the channels (frames are made only where something reads them); a list
+        of SpectralFrames (what a cluster head unpacks) goes frame by frame."""
+        if pushes and isinstance(pushes[0], SpectralFrame):
+            await self._on_frame_list(p, pushes, latency_s)
+            return
+        batch = cast(list[PushFrames], pushes)
+        self._store_evidence(p)
+        self._store_runups(p)
+        now = time.monotonic()
+        chans = p.channels
+        for push in batch:
+            for cid in push.channels:
+                chans[cid].last_frame_mono = now
+        # every block: a fault seen by the worker is a state (and an event) at once
+        await self._refresh_quality(chans.values())
+        if not batch:
+            return
+        events: list[tuple[AlarmEvent, SpectralFrame | None]] = []
+        for push in batch:
+            self.hub.publish_push(push, latency_s)
+            if self.history is not None:
+                closed = self.history.add_push(push)
+                if closed:
+                    self.store.put_history(closed)
+            keys = self._trend_keys(push)
+            values = np.concatenate((push.bands[:, -1:], push.bands[:, :len(push.band_names)],
+                                     push.tones), axis=1)
+            self.store.record_block((push.channels, push.profile), keys, push.t_ns, values)
+            states = [self.hub.channels[cid] for cid in push.channels]
+            for e, c in self.alarms.evaluate_push(push, [st.status for st in states],
+                                                  [st.fault for st in states], values):
+                events.append((e, push.frame(c)))
+        if events:
+            await self.commit_and_announce(p, events)
+
+    async def _on_frame_list(
         self, p: SourcePipeline, frames: list[SpectralFrame], latency_s: float
     ) -> None:
+        """:meth:`on_frames` of frames one by one (the cluster head's unpacked batches)."""
         self._store_evidence(p)
         self._store_runups(p)
         now = time.monotonic()
         for f in frames:
             p.channels[f.channel].last_frame_mono = now
-        # every block: a fault seen by the worker is a state (and an event) at once
         await self._refresh_quality(p.channels.values())
         if not frames:
             return
@@ -233,6 +275,21 @@ class Service:
                 events.append((e, f))
         if events:
             await self.commit_and_announce(p, events)
+
+    def _trend_keys(self, push: PushFrames) -> list[list[tuple[str, str]]]:
+        """The trend series (channel, name) of each cell of a push's values [overall |
+        bands | tones]: made once per layout, the same list object after (compared by
+        identity in the store's buckets)."""
+        layout = (push.channels, push.profile, push.band_names, push.tone_names,
+                  push.primary.tobytes())
+        keys = self._trend_layouts.get(layout)
+        if keys is None:
+            names = ["overall", *(f"band:{b}" for b in push.band_names),
+                     *(f"tone:{t}" for t in push.tone_names)]
+            keys = [[(cid, n if primary else trend_key(push.profile, n)) for n in names]
+                    for cid, primary in zip(push.channels, push.primary.tolist(), strict=True)]
+            self._trend_layouts[layout] = keys
+        return keys
 
     async def commit_and_announce(
         self, p: SourcePipeline | None, events: list[tuple[AlarmEvent, SpectralFrame | None]]

@@ -7,11 +7,50 @@ from __future__ import annotations
 import asyncio
 import collections
 import time
-from collections.abc import Iterable
+from collections.abc import Iterable, Iterator, MutableMapping
 from dataclasses import dataclass, field
+from typing import Generic, TypeVar
 
 from .sources.base import Source
-from .types import ChannelState, PipelineHealth, SpectralFrame
+from .types import ChannelState, PipelineHealth, PushFrames, SpectralFrame
+
+K = TypeVar("K")
+FRAME_KINDS = frozenset({"spectrum", "bands", "tones"})
+
+
+class LazyFrames(MutableMapping[K, SpectralFrame], Generic[K]):
+    """A mapping to frames that holds each as (push, channel index) until it is read: the
+    hub keeps the newest of every channel without making a :class:`SpectralFrame` for
+    the many that nobody reads before the next push replaces them."""
+
+    __slots__ = ("_d",)
+
+    def __init__(self) -> None:
+        self._d: dict[K, SpectralFrame | tuple[PushFrames, int]] = {}
+
+    def put(self, key: K, push: PushFrames, c: int) -> None:
+        self._d[key] = (push, c)
+
+    def __getitem__(self, key: K) -> SpectralFrame:
+        v = self._d[key]
+        if isinstance(v, tuple):
+            return v[0].frame(v[1])
+        return v
+
+    def __setitem__(self, key: K, frame: SpectralFrame) -> None:
+        self._d[key] = frame
+
+    def __delitem__(self, key: K) -> None:
+        del self._d[key]
+
+    def __iter__(self) -> Iterator[K]:
+        return iter(self._d)
+
+    def __len__(self) -> int:
+        return len(self._d)
+
+    def __contains__(self, key: object) -> bool:
+        return key in self._d
 
 
 class Subscriber:
@@ -65,6 +104,21 @@ class Subscriber:
             self.missed += 1
         self.frames[key] = frame
         self._wake.set()
+
+    def offer_push(self, push: PushFrames) -> None:
+        """:meth:`offer` of each of ``push``'s frames this subscriber takes; frames of
+        channels it does not take are never made."""
+        if not self.kinds & FRAME_KINDS:
+            return
+        if self.profiles is None:
+            if not push.primary.any():
+                return
+        elif "*" not in self.profiles and push.profile not in self.profiles:
+            return
+        chans = self.channels
+        for c, cid in enumerate(push.channels):
+            if chans is None or cid in chans:
+                self.offer(push.frame(c))
 
     def offer_event(self, event: dict[str, object]) -> None:
         if "alarms" not in self.kinds:
@@ -127,8 +181,8 @@ class Subscriber:
 @dataclass
 class Hub:
     channels: dict[str, ChannelState] = field(default_factory=dict)
-    latest: dict[str, SpectralFrame] = field(default_factory=dict)  # primary profile's
-    by_profile: dict[tuple[str, str], SpectralFrame] = field(default_factory=dict)
+    latest: LazyFrames[str] = field(default_factory=LazyFrames)  # primary profile's
+    by_profile: LazyFrames[tuple[str, str]] = field(default_factory=LazyFrames)
     sources: dict[str, Source] = field(default_factory=dict)
     pipelines: dict[str, PipelineHealth] = field(default_factory=dict)  # by source id
     subscribers: set[Subscriber] = field(default_factory=set)
@@ -145,6 +199,20 @@ class Hub:
             self.latency_s[f.channel] = latency_s
             for s in self.subscribers:
                 s.offer(f)
+
+    def publish_push(self, push: PushFrames, latency_s: float = 0.0) -> None:
+        """:meth:`publish` of a push's frames, made only when read."""
+        profile = push.profile
+        by_profile, latest, lat = self.by_profile, self.latest, self.latency_s
+        for c, (cid, primary) in enumerate(zip(push.channels, push.primary.tolist(),
+                                               strict=True)):
+            by_profile.put((cid, profile), push, c)
+            if primary:
+                latest.put(cid, push, c)
+            lat[cid] = latency_s
+        self.frames_published += len(push.channels)
+        for s in self.subscribers:
+            s.offer_push(push)
 
     def publish_event(self, event: dict[str, object]) -> None:
         """Announce an alarm event (already committed to the store) to subscribers."""

@@ -35,10 +35,10 @@ from .quality import (
 from .sources.base import Source
 from .speed import SourceSpeeds
 from .types import (
-    BandValue,
     ChannelState,
-    FramePeaks,
+    FrameSettings,
     PeakSettings,
+    PushFrames,
     PushPeaks,
     SampleBlock,
     SpectralFrame,
@@ -55,7 +55,7 @@ FLAT_MIN_S = 0.05  # identical samples for this long = a flat (dead) sensor; our
 class SourcePipeline:
     source: Source
     channels: dict[str, ChannelState]
-    publish: Callable[[SourcePipeline, list[SpectralFrame], float], Awaitable[None]]
+    publish: Callable[[SourcePipeline, list[PushFrames], float], Awaitable[None]]
     make_bank: Callable[[float], ProfileBank]  # built at the stream's sample rate
     cfg: Config | None = None  # for each channel's stale_after_s once the plans are known
     bank: ProfileBank | None = None
@@ -88,9 +88,9 @@ class SourcePipeline:
         try:
             async for block in self.source:
                 t0 = time.perf_counter()
-                frames = await loop.run_in_executor(self._executor, self.process, block)
+                pushes = await loop.run_in_executor(self._executor, self.process_pushes, block)
                 self.latency_s = time.perf_counter() - t0
-                await self.publish(self, frames, self.latency_s)
+                await self.publish(self, pushes, self.latency_s)
         finally:
             self._executor.shutdown(wait=False, cancel_futures=True)
 
@@ -104,7 +104,12 @@ class SourcePipeline:
 
     # -- worker thread -----------------------------------------------------------------
     def process(self, block: SampleBlock) -> list[SpectralFrame]:
-        """Sensor checks, gap handling and analysis of one block (runs on the worker thread)."""
+        """:meth:`process_pushes`, one :class:`SpectralFrame` per channel and group."""
+        return [f for push in self.process_pushes(block) for f in push.frames()]
+
+    def process_pushes(self, block: SampleBlock) -> list[PushFrames]:
+        """Sensor checks, gap handling and analysis of one block (runs on the worker
+        thread): one :class:`PushFrames` per analysis group that finished frames."""
         now = time.monotonic()
         self.blocks += 1
         if block.fs != self.fs:  # first block, or the producer changed its rate
@@ -151,6 +156,8 @@ class SourcePipeline:
             flat &= ~self.speeds.tacho_rows  # a tacho rests flat between pulses
         hold = round(FAULT_HOLD_S * block.fs)  # a fault is held this many clean samples
         restart = False
+        # plain bools of every channel at once (numpy scalars one by one cost more)
+        finite_l, in_range_l, flat_l = finite.tolist(), in_range.tolist(), flat.tolist()
         for c, st in enumerate(states):
             st.fs = block.fs
             st.samples += block.n
@@ -160,19 +167,19 @@ class SourcePipeline:
             clipped = st.clip_level is not None and bool(np.any(np.abs(x[c]) >= st.clip_level))
             reason = (
                 "non-finite samples (NaN/inf)"
-                if not finite[c]
+                if not finite_l[c]
                 else f"values beyond the sensor's range (|x| > {st.range:g} {st.input_unit})"
-                if not in_range[c]
+                if not in_range_l[c]
                 else "flat line"
-                if flat[c]
+                if flat_l[c]
                 else "clipping"
                 if clipped
                 else ""
             )
             if reason:
-                st.nonfinite_blocks += not finite[c]
-                st.range_blocks += bool(finite[c] and not in_range[c])
-                st.flat_blocks += bool(flat[c])
+                st.nonfinite_blocks += not finite_l[c]
+                st.range_blocks += bool(finite_l[c] and not in_range_l[c])
+                st.flat_blocks += bool(flat_l[c])
                 st.clipped_blocks += clipped
                 if st.data_status != "sensor-fault":
                     st.sensor_faults += 1
@@ -194,7 +201,7 @@ class SourcePipeline:
                 st.overrun_until = now + OVERRUN_HOLD_S
         x = x * sens  # raw units → engineering units
         self.evidence.append(x, block)
-        frames: list[SpectralFrame] = []
+        pushes: list[PushFrames] = []
         if gap:
             for st in states:
                 if st.data_status != "sensor-fault":
@@ -216,7 +223,7 @@ class SourcePipeline:
             for g, new in self.bank.push(x, block.first_index, tachos):
                 if speeds is not None:
                     speeds.place(self.bank, [g], block_end, after=True)
-                frames += self._frames(g, block, new, self.bank.end_index(g))
+                pushes.append(self._push(g, block, new, self.bank.end_index(g)))
                 if speeds is not None:
                     speeds.estimate(g)
         for st in states:
@@ -229,7 +236,7 @@ class SourcePipeline:
                 st.data_status, st.data_fault = "ok", ""
         if speeds is not None:
             speeds.tacho_quality()
-        return frames
+        return pushes
 
     def _flat_line(self, x: np.ndarray, fs: float, gap: bool) -> np.ndarray:
         """Per channel: has the signal held one exact value for FLAT_MIN_S or longer?
@@ -291,18 +298,13 @@ class SourcePipeline:
             self.evidence.finish()
         return self.evidence.take()
 
-    def _frames(
-        self, g: ChannelGroup, block: SampleBlock, new: int, end: int
-    ) -> list[SpectralFrame]:
+    def _push(self, g: ChannelGroup, block: SampleBlock, new: int, end: int) -> PushFrames:
+        """The group's values of this push as one :class:`PushFrames` (arrays over its
+        channels); per channel only the counters and states of its ChannelState."""
         an = g.analyzer
         spec = an.spec
         lines = an.grid.lines
-        unit = an.unit
         power_in = an.power(spec.input_unit)[:, : lines + 1].astype(np.float32)
-        bands = an.bands()
-        edges = an.band_edges_hz
-        tones = an.tones()
-        tone_hz = an.tone_hz
         # Peaks only when a client reads them (PushPeaks), for every channel of the push at
         # once, from the same spectra: what an.peaks() gives, up to float32 rounding.
         peaks = PushPeaks(power_in, PeakSettings(
@@ -312,16 +314,14 @@ class SourcePipeline:
         ), _peak_rows)
         # Time of the newest frame's end (an input-stream index), from the block's own clock.
         t_ns = block.t0_ns + round((end - block.first_index) * 1e9 / block.fs)
-        # Plain floats of every channel at once: indexing numpy arrays value by value cost
-        # more than the rest of a frame (~6 µs a band).
-        band_names = [b.name for b in g.bands]
-        tone_names = [t.name for t in spec.tones]
-        x_unit = "Hz" if g.order is None else "order"
-        restarted = g.order is not None and g.order.restarted
-        average_rpm = math.nan if g.order is None else g.order.average_rpm
-        bands_l, edges_l = bands.tolist(), edges.tolist()
-        tones_l, tone_hz_l = tones.tolist(), tone_hz.tolist()
-        out = []
+        count = len(g.channel_ids)
+        fault = np.zeros(count, dtype=bool)
+        rpm = np.full(count, math.nan)
+        variation = np.full(count, math.nan)
+        varied = np.zeros(count, dtype=bool)
+        sources: list[str] = []
+        statuses: list[str] = []
+        speeds = self.speeds
         for c, cid in enumerate(g.channel_ids):
             st = self.channels[cid]
             if g.primary[c]:
@@ -331,56 +331,46 @@ class SourcePipeline:
                 st.data_status, st.data_fault = "ok", ""
             elif st.data_status == "gap":
                 st.data_status = "ok"
-            self.seq += 1
+            elif st.data_status == "sensor-fault":
+                fault[c] = True
             if g.order is not None:  # the frame's own mean speed, from its revolutions
                 o = g.order
-                sp = (o.frame_rpm, "tacho", o.status, o.frame_variation, False)
+                rpm[c], variation[c] = o.frame_rpm, o.frame_variation
+                sources.append("tacho")
+                statuses.append(o.status)
+            elif speeds is None:
+                rpm[c] = st.speed_now_rpm
+                sources.append(st.speed_source)
+                statuses.append(st.speed_status)
             else:
-                sp = (st.speed_now_rpm, st.speed_source, st.speed_status, math.nan, False) if (
-                    self.speeds is None) else self.speeds.frame(g, cid)
-            out.append(
-                SpectralFrame(
-                    channel=cid,
-                    profile=g.profile,
-                    primary=g.primary[c],
-                    seq=self.seq,
-                    t_ns=t_ns,
-                    end_index=end,
-                    fs=an.grid.fs,
-                    n=an.grid.n,
-                    df_hz=an.grid.df_hz,
-                    f0_hz=0.0,
-                    lines=lines,
-                    fmax_hz=an.grid.fmax_hz,
-                    window=spec.window,
-                    enbw_bins=an.info.enbw_bins,
-                    averaging=spec.averaging,
-                    averages=an.count,
-                    input_unit=spec.input_unit,
-                    unit=unit,
-                    amplitude=spec.amplitude,
-                    lowcut_hz=an.lowcut_hz,
-                    power=power_in[c],
-                    overall=bands_l[c][-1],
-                    overall_lo_hz=edges_l[c][-1][0],
-                    overall_hi_hz=edges_l[c][-1][1],
-                    bands=tuple(
-                        BandValue(name, lo_hi[0], lo_hi[1], v)
-                        # the analyzer's last band is the overall one, not a configured band
-                        for name, lo_hi, v in zip(band_names, edges_l[c], bands_l[c], strict=False)
-                    ),
-                    tones=tuple(
-                        ToneValue(name, f, v)
-                        for name, f, v in zip(tone_names, tone_hz_l[c], tones_l[c], strict=True)
-                    ),
-                    peaks=FramePeaks(peaks, c),
-                    quality="sensor-fault" if st.data_status == "sensor-fault" else "ok",
-                    speed_rpm=sp[0], speed_source=sp[1], speed_status=sp[2],
-                    speed_variation=sp[3], speed_varied=sp[4],
-                    x_unit=x_unit, average_restarted=restarted, average_rpm=average_rpm,
-                )
-            )
-        return out
+                sp = speeds.frame(g, cid)
+                rpm[c], variation[c], varied[c] = sp[0], sp[3], sp[4]
+                sources.append(sp[1])
+                statuses.append(sp[2])
+        seq0 = self.seq + 1
+        self.seq += count
+        settings = FrameSettings(
+            profile=g.profile, fs=an.grid.fs, n=an.grid.n, df_hz=an.grid.df_hz, f0_hz=0.0,
+            lines=lines, fmax_hz=an.grid.fmax_hz, window=spec.window,
+            enbw_bins=an.info.enbw_bins, averaging=spec.averaging,
+            input_unit=spec.input_unit, unit=an.unit, amplitude=spec.amplitude,
+            lowcut_hz=an.lowcut_hz, x_unit="Hz" if g.order is None else "order",
+        )
+        return PushFrames(
+            source_id=block.source_id, channels=tuple(g.channel_ids), settings=settings,
+            primary=np.asarray(g.primary, dtype=bool), seq0=seq0, t_ns=t_ns, end_index=end,
+            averages=an.count, power=power_in,
+            band_names=tuple(b.name for b in g.bands),
+            bands=np.asarray(an.bands(), dtype=np.float64),
+            band_edges=np.asarray(an.band_edges_hz, dtype=np.float64),
+            tone_names=tuple(t.name for t in spec.tones),
+            tones=np.asarray(an.tones(), dtype=np.float64),
+            tone_hz=np.asarray(an.tone_hz, dtype=np.float64),
+            fault=fault, speed_rpm=rpm, speed_source=tuple(sources),
+            speed_status=tuple(statuses), speed_variation=variation, speed_varied=varied,
+            peaks=peaks, average_restarted=g.order is not None and g.order.restarted,
+            average_rpm=math.nan if g.order is None else g.order.average_rpm,
+        )
 
 
 def _peak_rows(power_in: np.ndarray, s: PeakSettings) -> list[tuple[ToneValue, ...]]:

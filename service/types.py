@@ -120,6 +120,11 @@ class PushPeaks:
         self._rows: list[tuple[ToneValue, ...]] | None = None
         self._lock = threading.Lock()
 
+    def __reduce__(self) -> tuple[object, ...]:
+        # picklable (a push sent between processes): the lock is made anew, the peaks found
+        # so far go with it
+        return (_push_peaks, (self.power, self.settings, self._find, self._rows))
+
     def row(self, c: int) -> tuple[ToneValue, ...]:
         rows = self._rows
         if rows is None:
@@ -128,6 +133,13 @@ class PushPeaks:
                     self._rows = self._find(self.power, self.settings)
                 rows = self._rows
         return rows[c]
+
+
+def _push_peaks(power: np.ndarray, settings: PeakSettings, find: PeakFinder,
+                rows: list[tuple[ToneValue, ...]] | None) -> PushPeaks:
+    p = PushPeaks(power, settings, find)
+    p._rows = rows
+    return p
 
 
 class FramePeaks(Sequence[ToneValue]):
@@ -221,6 +233,153 @@ class SpectralFrame:
     x_unit: str = "Hz"
     average_restarted: bool = False
     average_rpm: float = float("nan")
+
+
+@dataclass(frozen=True, slots=True)
+class FrameSettings:
+    """What every frame of one analysis group shares (one object per group and set-up,
+    referenced by each of its pushes): the grid, window, averaging and units of
+    :class:`SpectralFrame` (same names, same meanings)."""
+
+    profile: str
+    fs: float
+    n: int
+    df_hz: float
+    f0_hz: float
+    lines: int
+    fmax_hz: float
+    window: str
+    enbw_bins: float
+    averaging: str
+    input_unit: str
+    unit: str
+    amplitude: str
+    lowcut_hz: float
+    x_unit: str = "Hz"  # "order" for an order profile (grid, edges, tones in orders)
+
+
+class PushFrames:
+    """One source push of one analysis group, column by column: what C
+    :class:`SpectralFrame` objects would hold, as arrays over the group's channels.
+
+    The pipeline makes one per group and push on the source's worker thread; the service
+    (hub, trends, spectral history, alarms, metrics, stream) works on the arrays, and a
+    :class:`SpectralFrame` of channel ``c`` is made only when something reads it
+    (:meth:`frame`, cached). Picklable and cheap to send (numpy arrays, strings and
+    numbers; the frames made so far are not sent), so a push can be analysed in another
+    process and handed to the service whole.
+
+    Fields (c indexes ``channels``; B bands, T tones, Q = lines + 1):
+
+    - ``source_id``, ``channels`` (C ids), ``settings`` (:class:`FrameSettings`: the
+      profile and everything a frame's grid and units say);
+    - ``primary``: bool [C], is ``settings.profile`` channel c's primary profile;
+    - ``seq0``: the first channel's frame sequence number (channel c's is ``seq0 + c``);
+    - ``t_ns``: the time just after the newest frame's last sample (ns since the epoch);
+      ``end_index``: the input-stream index just after it; ``averages``: frames averaged;
+    - ``power``: float32 [C, Q], averaged power spectra in ``input_unit``² per line;
+    - ``band_names`` (B), ``bands``: float64 [C, B + 1] RMS in the display unit (the last
+      column is the overall), ``band_edges``: float64 [C, B + 1, 2] in Hz;
+    - ``tone_names`` (T), ``tones``: float64 [C, T] (display unit and amplitude),
+      ``tone_hz``: float64 [C, T];
+    - ``fault``: bool [C], the channel's samples were bad (quality "sensor-fault");
+    - ``speed_rpm``, ``speed_variation``: float64 [C] (NaN: none), ``speed_varied``:
+      bool [C], ``speed_source``, ``speed_status``: C strings (``service.speed``);
+    - ``peaks``: the push's :class:`PushPeaks` (found on first read);
+    - ``average_restarted``, ``average_rpm``: an order profile's average (SpectralFrame's
+      fields of the same names; False and NaN for other profiles).
+    """
+
+    __slots__ = (
+        "source_id", "channels", "settings", "primary", "seq0", "t_ns", "end_index",
+        "averages", "power", "band_names", "bands", "band_edges", "tone_names", "tones",
+        "tone_hz", "fault", "speed_rpm", "speed_source", "speed_status", "speed_variation",
+        "speed_varied", "peaks", "average_restarted", "average_rpm", "_frames", "_rows",
+    )
+
+    def __init__(
+        self, *, source_id: str, channels: tuple[str, ...], settings: FrameSettings,
+        primary: np.ndarray, seq0: int, t_ns: int, end_index: int, averages: int,
+        power: np.ndarray, band_names: tuple[str, ...], bands: np.ndarray,
+        band_edges: np.ndarray, tone_names: tuple[str, ...], tones: np.ndarray,
+        tone_hz: np.ndarray, fault: np.ndarray, speed_rpm: np.ndarray,
+        speed_source: tuple[str, ...], speed_status: tuple[str, ...],
+        speed_variation: np.ndarray, speed_varied: np.ndarray, peaks: PushPeaks,
+        average_restarted: bool = False, average_rpm: float = math.nan,
+    ) -> None:
+        self.source_id, self.channels, self.settings = source_id, channels, settings
+        self.primary, self.seq0, self.t_ns, self.end_index = primary, seq0, t_ns, end_index
+        self.averages, self.power = averages, power
+        self.band_names, self.bands, self.band_edges = band_names, bands, band_edges
+        self.tone_names, self.tones, self.tone_hz = tone_names, tones, tone_hz
+        self.fault = fault
+        self.speed_rpm, self.speed_source, self.speed_status = speed_rpm, speed_source, speed_status
+        self.speed_variation, self.speed_varied = speed_variation, speed_varied
+        self.peaks = peaks
+        self.average_restarted, self.average_rpm = average_restarted, average_rpm
+        self._frames: list[SpectralFrame | None] = [None] * len(channels)
+        self._rows: tuple[list[object], ...] | None = None
+
+    def __len__(self) -> int:
+        return len(self.channels)
+
+    @property
+    def profile(self) -> str:
+        return self.settings.profile
+
+    @property
+    def overall(self) -> np.ndarray:
+        """float64 [C]: each channel's overall (RMS, display unit)."""
+        return self.bands[:, -1]
+
+    def __getstate__(self) -> dict[str, object]:
+        return {k: getattr(self, k) for k in self.__slots__ if not k.startswith("_")}
+
+    def __setstate__(self, state: dict[str, object]) -> None:
+        for k, v in state.items():
+            object.__setattr__(self, k, v)
+        self._frames = [None] * len(self.channels)
+        self._rows = None
+
+    def frame(self, c: int) -> SpectralFrame:
+        """Channel ``c``'s :class:`SpectralFrame` (made once, then the same object)."""
+        f = self._frames[c]
+        if f is None:
+            f = self._frames[c] = self._make(c)
+        return f
+
+    def frames(self) -> list[SpectralFrame]:
+        return [self.frame(c) for c in range(len(self.channels))]
+
+    def _make(self, c: int) -> SpectralFrame:
+        rows = self._rows
+        if rows is None:  # plain floats of every channel at once (numpy scalars cost more)
+            rows = self._rows = (self.bands.tolist(), self.band_edges.tolist(),
+                                 self.tones.tolist(), self.tone_hz.tolist())
+        bands, edges, tones, tone_hz = rows
+        b_c: list[float] = bands[c]  # type: ignore[assignment]
+        e_c: list[list[float]] = edges[c]  # type: ignore[assignment]
+        s = self.settings
+        return SpectralFrame(
+            channel=self.channels[c], profile=s.profile, primary=bool(self.primary[c]),
+            seq=self.seq0 + c, t_ns=self.t_ns, end_index=self.end_index, fs=s.fs, n=s.n,
+            df_hz=s.df_hz, f0_hz=s.f0_hz, lines=s.lines, fmax_hz=s.fmax_hz, window=s.window,
+            enbw_bins=s.enbw_bins, averaging=s.averaging, averages=self.averages,
+            input_unit=s.input_unit, unit=s.unit, amplitude=s.amplitude,
+            lowcut_hz=s.lowcut_hz, power=self.power[c], overall=b_c[-1],
+            overall_lo_hz=e_c[-1][0], overall_hi_hz=e_c[-1][1],
+            # the last band is the overall one, not a configured band
+            bands=tuple(BandValue(name, lo_hi[0], lo_hi[1], v) for name, lo_hi, v
+                        in zip(self.band_names, e_c, b_c, strict=False)),
+            tones=tuple(ToneValue(name, f, v) for name, f, v
+                        in zip(self.tone_names, tone_hz[c], tones[c], strict=True)),  # type: ignore[call-overload]
+            peaks=FramePeaks(self.peaks, c),
+            quality="sensor-fault" if self.fault[c] else "ok",
+            speed_rpm=float(self.speed_rpm[c]), speed_source=self.speed_source[c],
+            speed_status=self.speed_status[c], speed_variation=float(self.speed_variation[c]),
+            speed_varied=bool(self.speed_varied[c]), x_unit=s.x_unit,
+            average_restarted=self.average_restarted, average_rpm=self.average_rpm,
+        )
 
 
 @dataclass

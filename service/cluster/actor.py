@@ -24,7 +24,7 @@ from ..pipeline import SourcePipeline, channel_states
 from ..profiles import ProfileBank
 from ..sources import make_source
 from ..speed import NotEnoughRevolutions
-from ..types import ChannelState, SpectralFrame
+from ..types import ChannelState, PushFrames, SpectralFrame
 from .transport import PLAN_FIELDS, PushBatch, pack, pack_states
 
 log = logging.getLogger("quaver.cluster")
@@ -177,9 +177,11 @@ class SourceGroup:
             p.reset_analysis()
             p.failed = ""
 
-    async def _publish(self, p: SourcePipeline, frames: list[SpectralFrame],
+    async def _publish(self, p: SourcePipeline, pushes: list[PushFrames],
                        latency_s: float) -> None:
         r = self.runs[p.source.id]
+        # the transport packs frames (service.cluster.transport); a push could go as it is
+        frames = [f for push in pushes for f in push.frames()]
         self._put(r, self._batch(r, frames, latency_s))
 
     def _batch(self, r: _Run, frames: list[SpectralFrame], latency_s: float) -> PushBatch:

@@ -9,7 +9,7 @@ from __future__ import annotations
 import json
 import sqlite3
 import time
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Hashable, Mapping, Sequence
 from concurrent.futures import Future
 from pathlib import Path
 from typing import Any
@@ -236,6 +236,15 @@ class Store(Writer):
     def record_many(self, channel: str, t_ns: int, values: Mapping[str, float]) -> None:
         """:meth:`record` for several names of one channel at one time."""
         closed = self._buckets.add(channel, t_ns, values)
+        if closed:
+            self._submit_buckets(closed)
+
+    def record_block(self, block: Hashable, keys: Sequence[Sequence[tr.Key]], t_ns: int,
+                     values: np.ndarray) -> None:
+        """:meth:`record_many` of a block of series that arrive together, with array
+        operations (``TrendBuckets.add_block``): ``values`` [C, K], cell (c, k) the series
+        ``keys[c][k]`` = (channel, name)."""
+        closed = self._buckets.add_block(block, keys, t_ns, values)
         if closed:
             self._submit_buckets(closed)
 

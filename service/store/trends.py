@@ -9,8 +9,10 @@ from __future__ import annotations
 import math
 import sqlite3
 import threading
-from collections.abc import Mapping
+from collections.abc import Hashable, Mapping, Sequence
 from dataclasses import dataclass
+
+import numpy as np
 
 __all__ = ["TREND_STEPS_S", "Agg", "TrendBuckets", "trend_key"]
 
@@ -54,6 +56,35 @@ class Agg:
         self.count += 1
 
 
+@dataclass(slots=True)
+class _Block:
+    """The open buckets of a block of series that always arrive together (one push's
+    channels × values), as arrays [C, K]; cells with count 0 have no bucket."""
+
+    start_ns: int
+    keys: Sequence[Sequence[Key]]  # [C][K]
+    sum: np.ndarray
+    min: np.ndarray
+    max: np.ndarray
+    count: np.ndarray
+
+    @classmethod
+    def of(cls, start_ns: int, keys: Sequence[Sequence[Key]], v: np.ndarray,
+           fin: np.ndarray) -> _Block:
+        return cls(start_ns, keys, np.where(fin, v, 0.0), np.where(fin, v, math.inf),
+                   np.where(fin, v, -math.inf), fin.astype(np.int64))
+
+    def rows(self) -> list[tuple[Key, Agg]]:
+        start = self.start_ns
+        out = []
+        for kc, sc, lo, hi, nc in zip(self.keys, self.sum.tolist(), self.min.tolist(),
+                                      self.max.tolist(), self.count.tolist(), strict=True):
+            for key, su, mi, ma, n in zip(kc, sc, lo, hi, nc, strict=True):
+                if n:
+                    out.append((key, Agg(start, su, mi, ma, n)))
+        return out
+
+
 class TrendBuckets:
     """The open buckets of every series at ``step_s`` (thread-safe). :meth:`add` returns the
     buckets it closed: a later bucket of the same series arrived, the series went quiet for
@@ -63,7 +94,58 @@ class TrendBuckets:
         self.step_ns = int(step_s) * NS
         self._lock = threading.Lock()
         self._open: dict[Key, Agg] = {}
+        self._blocks: dict[Hashable, _Block] = {}
         self._newest_ns: int | None = None
+
+    def add_block(self, block: Hashable, keys: Sequence[Sequence[Key]], t_ns: int,
+                  values: np.ndarray) -> list[tuple[Key, Agg]]:
+        """:meth:`add` of a block of series that arrive together: ``values`` [C, K] at
+        ``t_ns``, cell (c, k) the series ``keys[c][k]``; ``block`` names the block (the same
+        name, the same keys). Array operations per call; the buckets it closes are what
+        :meth:`add` would close for the same values, value by value (non-finite values are
+        left out; a series' bucket closes when a later bucket of its block opens)."""
+        step = self.step_ns
+        t = int(t_ns)
+        start = t - t % step
+        v = np.asarray(values, dtype=np.float64)
+        fin = np.isfinite(v)
+        closed: list[tuple[Key, Agg]] = []
+        with self._lock:
+            b = self._blocks.get(block)
+            if b is not None and (b.keys is not keys and b.keys != keys):
+                closed += b.rows()  # another layout under the same name: start afresh
+                b = None
+            if b is None or start > b.start_ns:
+                if b is not None:
+                    closed += b.rows()
+                self._blocks[block] = _Block.of(start, keys, v, fin)
+            elif start == b.start_ns:
+                vz = np.where(fin, v, 0.0)
+                b.sum += vz
+                np.minimum(b.min, np.where(fin, v, math.inf), out=b.min)
+                np.maximum(b.max, np.where(fin, v, -math.inf), out=b.max)
+                b.count += fin
+            else:  # late: merges into the buckets already written
+                for c, k in zip(*np.nonzero(fin), strict=True):
+                    closed.append((keys[c][k], Agg.of(start, float(v[c, k]))))
+            if self._newest_ns is None or start > self._newest_ns:
+                self._newest_ns = start
+                closed += self._close_quiet(start)
+        return closed
+
+    def _close_quiet(self, start: int) -> list[tuple[Key, Agg]]:
+        """Close the series that went quiet: no value for two steps before ``start``."""
+        closed: list[tuple[Key, Agg]] = []
+        step = self.step_ns
+        for key, b in list(self._open.items()):
+            if b.start_ns < start - step:
+                closed.append((key, b))
+                del self._open[key]
+        for name, blk in list(self._blocks.items()):
+            if blk.start_ns < start - step:
+                closed += blk.rows()
+                del self._blocks[name]
+        return closed
 
     def add(self, channel: str, t_ns: int, values: Mapping[str, float]) -> list[tuple[Key, Agg]]:
         step = self.step_ns
@@ -88,17 +170,17 @@ class TrendBuckets:
                     closed.append((key, Agg.of(start, v)))
             if self._newest_ns is None or start > self._newest_ns:
                 self._newest_ns = start
-                for key, b in list(self._open.items()):  # series that went quiet
-                    if b.start_ns < start - step:
-                        closed.append((key, b))
-                        del self._open[key]
+                closed += self._close_quiet(start)  # series that went quiet
         return closed
 
     def take_all(self) -> list[tuple[Key, Agg]]:
         """Close every open bucket (a later value for it merges in exactly)."""
         with self._lock:
             closed = list(self._open.items())
+            for blk in self._blocks.values():
+                closed += blk.rows()
             self._open.clear()
+            self._blocks.clear()
         return closed
 
 

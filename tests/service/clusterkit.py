@@ -16,7 +16,7 @@ from service.pipeline import SourcePipeline, channel_states
 from service.profiles import ProfileBank
 from service.recording import write_wav
 from service.sources import make_source
-from service.types import SpectralFrame
+from service.types import PushFrames, SpectralFrame
 
 FS = 2560.0  # 2.56 × Fmax 1000 Hz (common practice: fs = 2.56·Fmax)
 IDS = ["m1-de-h", "m1-de-v"]
@@ -86,8 +86,9 @@ def local_frames(cfg_doc: dict[str, object]) -> list[SpectralFrame]:
     ids = list(src.channel_ids)
     out: list[SpectralFrame] = []
 
-    async def publish(p: object, frames: list[SpectralFrame], latency_s: float) -> None:
-        out.extend(frames)
+    async def publish(p: object, pushes: list[PushFrames], latency_s: float) -> None:
+        # the pipeline publishes one PushFrames per group; its frames as the service reads them
+        out.extend(f for push in pushes for f in push.frames())
 
     async def go() -> None:
         p = SourcePipeline(src, channel_states(cfg, "rec", ids), publish,

@@ -270,3 +270,27 @@ def test_short_run_memory_figures(report):
     assert mem["drops"] == 0  # the feeder keeps at most 3 blocks ahead of the analysis
     assert mem["rss_ratio"] == pytest.approx(mem["points"][-1]["rss_mb"]
                                              / mem["points"][0]["rss_mb"], abs=1e-3)
+
+
+@pytest.mark.slow
+def test_short_run_headline_figures_are_the_steps_and_the_engines(report):
+    """The summary keys repeat the step figures they name, and the engine's capacity is its
+    real-time factor times the channels it was timed on (bench/engine.py)."""
+    steps = {s["channels"]: s for s in report["headroom"]["steps"]}
+    best = report["headroom"]["largest_passing_channels"]
+    assert report["headroom_channels"] == best
+    for ch, st in steps.items():
+        assert st["p99_ms"] == st["latency"]["p99_ms"]
+        assert st["cpu_ms_per_frame"] == st["service_cpu_ms_per_frame"] > 0
+        assert report["p99_ms_by_channels"][str(ch)] == st["p99_ms"]  # JSON keys are text
+    if best in steps:
+        assert report["cpu_ms_per_frame"] == steps[best]["cpu_ms_per_frame"]
+    eng = report["engine"]
+    assert eng["realtime_factor"] > 1  # the engine alone is far faster than real time
+    assert report["engine_capacity_channels"] == eng["capacity_channels"]
+    # floor(channels × factor); the factor is printed rounded to 0.01
+    assert abs(eng["capacity_channels"] - eng["channels_timed"] * eng["realtime_factor"]) <= (
+        1 + 0.005 * eng["channels_timed"])
+    if best:
+        assert report["headroom_over_engine_capacity"] == pytest.approx(
+            best / eng["capacity_channels"], abs=1e-3)

@@ -52,7 +52,7 @@ def test_a_failing_pipeline_is_reported_failed_and_restarted(
     svc = Service(_cfg(tmp_path, port))
     p = svc.pipelines[0]
     st_a = svc.hub.channels["a"]
-    real = p.process
+    real = p.process_pushes  # what the pipeline task runs per block
     calls = {"n": 0}
 
     def sometimes_raises(block: SampleBlock) -> Any:
@@ -61,7 +61,7 @@ def test_a_failing_pipeline_is_reported_failed_and_restarted(
             raise OverflowError("injected: the engine met something it could not handle")
         return real(block)
 
-    p.process = sometimes_raises  # type: ignore[method-assign]
+    p.process_pushes = sometimes_raises  # type: ignore[method-assign]
 
     async def main() -> dict[str, Any]:
         await svc.start()
