@@ -122,13 +122,22 @@ def svc(quaver_service_factory: Callable[[dict[str, Any]], RunningService]) -> R
 def spectrum_after(svc: RunningService, cid: str, *, samples: int, frames: int,
                    what: str, timeout_s: float = 20.0, **params: Any) -> dict[str, Any]:
     """Wait until channel ``cid`` has taken ``samples`` samples and made ``frames`` frames in
-    all; then return its latest spectrum."""
+    all; then return its latest spectrum, once two reads in a row give the same one (the
+    counters are kept on the analysis thread, and the push they count reaches the hub's
+    latest spectrum a moment later, on the event loop)."""
+    last: list[int | None] = [None]
 
     def probe() -> dict[str, Any] | None:
         c = svc.channel(cid)["counters"]
         if c["samples"] != samples or c["frames"] != frames:
             return None
-        return svc.get_or_none(f"channels/{cid}/spectrum", **params)  # type: ignore[no-any-return]
+        spec = svc.get_or_none(f"channels/{cid}/spectrum", **params)
+        if spec is None:
+            return None
+        if spec["seq"] != last[0]:
+            last[0] = spec["seq"]
+            return None
+        return spec  # type: ignore[no-any-return]
 
     return svc.wait(probe, f"{cid}: {what} ({samples} samples, {frames} frames)", timeout_s)
 

@@ -96,8 +96,11 @@ def test_a_silent_producer_turns_the_channel_no_signal_and_a_later_danger_is_rai
         assert band["state"] == "normal" and band["value"] is None and band["suspended"]
         assert band["channel_status"] == "no-signal"
         # the transitions are events, committed and listed in order
-        status = [(e["from_state"], e["to_state"]) for e in _events(svc, "status")]
-        # (the first spectrum after the start is not an event: it is not news)
+        # (the first spectrum after the start is not an event: it is not news; the event is
+        # committed by the store's writer a moment after the state changes)
+        status = svc.wait(lambda: [(e["from_state"], e["to_state"])
+                                   for e in _events(svc, "status")] or None,
+                          "the status event committed", timeout_s=5)
         assert status == [("ok", "no-signal")], status
         los = [e for e in _events(svc, "transition") if e["rule"] == "a.signal"]
         assert [(e["from_state"], e["to_state"]) for e in los][-1] == ("normal", "alert")
