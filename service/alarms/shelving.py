@@ -13,7 +13,7 @@ annunciated again at once. The shelve is part of the alarm snapshot (a restart k
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+from collections.abc import Iterable, Mapping
 from dataclasses import replace
 from typing import TYPE_CHECKING
 
@@ -21,7 +21,7 @@ from .events import AlarmEvent, AlarmView
 from .states import _NS, SHELVE_MAX_S, AckRefused, ShelveRefused, UnknownAlarm
 
 if TYPE_CHECKING:
-    from .engine import _Alarm
+    from .common import RuleState as _Alarm
 
 MAX_REASON = 1000  # characters of a shelve's reason (our choice, as an ack's note)
 
@@ -29,7 +29,7 @@ MAX_REASON = 1000  # characters of a shelve's reason (our choice, as an ack's no
 class ShelvingMixin:
     """Shelve, unshelve, expiry and acknowledge-all over the engine's alarms."""
 
-    _alarms: dict[str, _Alarm]
+    _alarms: Mapping[str, _Alarm]
 
     # provided by AlarmEngine
     def ack(self, rule_id: str, who: str, note: str = "", *, t_ns: int) -> AlarmEvent:
