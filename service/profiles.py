@@ -210,10 +210,11 @@ def min_band_lines(spec: AnalysisSpec) -> float:
     return max(3.0, info.mainlobe_halfwidth_bins + 1.0)
 
 
-def plan_warnings(plan: ProfilePlan, speed_rpm: float | None) -> list[str]:
+def plan_warnings(plan: ProfilePlan, speed_rpm: float | None, speed_why: str = "") -> list[str]:
     """What ``plan`` cannot measure as configured, for ``quaver check``: bands and tracked
     tones (orders at ``speed_rpm``) below the low-frequency limit (they read null, or from
-    the limit up), and bands too narrow for the line spacing (they read a sine low)."""
+    the limit up), and bands too narrow for the line spacing (they read a sine low).
+    ``speed_why`` says where ``speed_rpm`` comes from (e.g. ", the lowest v1-tacho reads")."""
     spec = plan.spec
     u = "Hz"
     if plan.order is not None:  # the axis is in orders: read them at 1 revolution per s
@@ -229,7 +230,7 @@ def plan_warnings(plan: ProfilePlan, speed_rpm: float | None) -> list[str]:
         if b.basis == "order" and speed_hz is None:
             continue
         lo, hi = b.edges_hz(speed_hz)
-        at = "" if b.basis == "hz" or plan.order is not None else f" at {speed_rpm:g} r/min"
+        at = "" if b.basis == "hz" or plan.order is not None else f" at {speed_rpm:g} r/min{speed_why}"
         if hi <= f_low:
             out.append(f"band {b.name!r} ({lo:g}-{hi:g} {u}{at}) lies below {why}: "
                        "it reads null")
@@ -246,7 +247,7 @@ def plan_warnings(plan: ProfilePlan, speed_rpm: float | None) -> list[str]:
         f = t.frequency_hz(speed_hz)
         if f < f_low:
             at = "" if t.order is None or plan.order is not None else (
-                f" (order {t.order:g} at {speed_rpm:g} r/min)")
+                f" (order {t.order:g} at {speed_rpm:g} r/min{speed_why})")
             out.append(f"tone {t.name!r} at {f:g} {u}{at} lies below {why}: it reads null")
     return out
 

@@ -61,15 +61,19 @@ def _demo_feed_listen(asked: str | None) -> str | None:
     return None
 
 
-def _lowest_rpm(cfg: Config, cid: str) -> float | None:
-    """The speed whose orders reach lowest: speed_rpm, else the lowest plausible one (the
-    tacho's rpm_min for speed_from, the channel's own for an estimated or manual speed)."""
+def _lowest_rpm(cfg: Config, cid: str) -> tuple[float | None, str]:
+    """The speed whose orders reach lowest and where it comes from: speed_rpm, else the
+    lowest plausible one (the tacho's rpm_min for speed_from, the channel's own for an
+    estimated or manual speed): a warning at that speed may not apply at the usual one."""
     ch = channel_settings(cfg, cid)
     if ch.speed_rpm is not None:
-        return ch.speed_rpm
+        return ch.speed_rpm, ""
     if ch.speed_from is not None:
-        return channel_settings(cfg, ch.speed_from).rpm_min
-    return ch.rpm_min if ch.speed is not None else None
+        return (channel_settings(cfg, ch.speed_from).rpm_min,
+                f", the rpm_min of tacho {ch.speed_from}")
+    if ch.speed is not None:
+        return ch.rpm_min, f", the channel's rpm_min for a {ch.speed} speed"
+    return None, ""
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
@@ -204,7 +208,7 @@ def cmd_check(args: argparse.Namespace) -> int:
             else:
                 out.append(f"    {p.name}{' (primary)' if p.primary else ''}: {what}")
             out += [f"    note: {n}" for n in p.notes]
-            warned = plan_warnings(p, _lowest_rpm(cfg, cid))
+            warned = plan_warnings(p, *_lowest_rpm(cfg, cid))
             warnings += len(warned)
             out += [f"    warning: {w}" for w in warned]
     out.append(f"alarms: {len(cfg.alarms)}")

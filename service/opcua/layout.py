@@ -21,7 +21,9 @@ path                                     node
 ``<m>/<ch>/<p>/bands/<band>``            a band's RMS (Double)
 ``<m>/<ch>/<p>/tones/<tone>``            a tracked tone's amplitude (Double)
 ``<m>/<ch>/<p>/spectrum``                the spectrum (Float array) with properties
-                                         ``…/spectrum/df_hz``, ``f0_hz``, ``unit``, ``amplitude``
+                                         ``…/spectrum/df_hz``, ``f0_hz``, ``unit``, ``amplitude``,
+                                         ``x_unit`` ("Hz", or "order": then df_hz and f0_hz
+                                         are in orders)
 ``alarms``                               folder of every alarm rule, with ``Acknowledge``
 ``alarms/<rule>``                        one rule; ``…/state``, ``value``, ``alert``, ``danger``,
                                          ``acknowledged``, ``latched``, ``shelved``, ``channel``
@@ -100,6 +102,7 @@ class ProfileLayout:
     unit: str  # display unit of overall, bands, tones and spectrum
     bands: tuple[str, ...]
     tones: tuple[str, ...]
+    x_unit: str = "Hz"  # the spectrum's x axis: "Hz", or "order" for an order profile
 
     def overall(self) -> str:
         return f"{self.path}/overall"
@@ -141,6 +144,7 @@ def plan(cfg: Config, channels: Mapping[str, ChannelState]) -> list[ChannelLayou
                 channel=cid, profile=p, path=f"{path}/{escape(p)}", unit=unit,
                 bands=tuple(b.name for b in bands_for(cfg, cid, p)),
                 tones=tuple(t.name for t in tones_for(cfg, cid, p)),
+                x_unit="order" if getattr(a, "kind", None) == "order" else "Hz",
             ))
         rng = st.range if math.isfinite(st.range) else None
         out.append(ChannelLayout(cid, m, path, st.description, rng, st.input_unit,

@@ -229,7 +229,8 @@ class OpcuaServer:
                     for name, v in (("df_hz", ua.Variant(0.0, ua.VariantType.Double)),
                                     ("f0_hz", ua.Variant(0.0, ua.VariantType.Double)),
                                     ("unit", ua.Variant(p.unit, ua.VariantType.String)),
-                                    ("amplitude", ua.Variant("", ua.VariantType.String))):
+                                    ("amplitude", ua.Variant("", ua.VariantType.String)),
+                                    ("x_unit", ua.Variant(p.x_unit, ua.VariantType.String))):
                         items.append(self._var(sp, name, v, prop=True))
                     self._spectrum_nid.append(self.nid(sp))
                     chan_nids.append(self.nid(sp))

@@ -597,6 +597,21 @@ def test_feed_into_quaver_tcp_source(tmp_path: Path, fmt: str) -> None:
     np.testing.assert_array_equal(np.concatenate([b.data for b in blocks], axis=1), x)
 
 
+def test_check_says_where_the_speed_of_an_order_warning_comes_from(
+    capsys: pytest.CaptureFixture[str]
+) -> None:
+    # The demo's fan takes its speed from a tacho allowed down to 300 r/min: an order band
+    # is judged at that lowest speed, and the warning says so rather than quoting 300 r/min
+    # as if the fan ran there (a speed_rpm channel's warning stays as it was, test below).
+    assert cli.main(["check", "-c", str(EXAMPLES / "demo.toml")]) == 0
+    out = capsys.readouterr().out
+    assert ("band '1x' (4-6 Hz at 300 r/min, the rpm_min of tacho v1-tacho) lies below the "
+            "low-frequency limit") in out
+    at_300 = [w for w in out.splitlines() if "at 300 r/min" in w]
+    assert len(at_300) > 5 and all("at 300 r/min, the rpm_min of tacho v1-tacho" in w
+                                   for w in at_300)
+
+
 def test_check_warns_of_what_cannot_be_measured(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:

@@ -284,6 +284,7 @@ def test_browse_and_read_equal_rest(svc: tuple[RunningService, int], plant: Prod
                      for n in await c.get_node(ua.NodeId(paths[3], idx)).get_properties()}
             assert props["df_hz"] == spec["df_hz"] and props["unit"] == spec["unit"] == "g"
             assert props["amplitude"] == spec["amplitude"]
+            assert props["x_unit"] == spec["x_unit"] == "Hz"
             band = c.get_node(ua.NodeId(paths[1], idx))
             eu = await (await band.get_child(f"{idx}:EngineeringUnits")).read_value()
             assert eu.UnitId == unit_id("K40") and eu.DisplayName.Text == "g"

@@ -310,3 +310,14 @@ def test_order_values_reach_alarms_and_metrics(tmp_path: Path) -> None:
     assert float(line.rsplit(" ", 1)[1]) == pytest.approx(two["value"], rel=1e-6)
     avg = next(ln for ln in metrics.splitlines() if ln.startswith("quaver_order_average_rpm{"))
     assert float(avg.rsplit(" ", 1)[1]) == pytest.approx(bands["speed"]["average_rpm"])
+
+
+def test_the_opcua_layout_says_which_spectra_are_in_orders() -> None:
+    # the OPC UA spectrum node's x_unit property comes from this layout: "order" on the
+    # order profile, "Hz" on the ordinary one of the same channel (docs/opcua.md)
+    from service.opcua.layout import plan
+
+    cfg = parse_config(doc(), source="test")
+    fan = {p.profile: p for ch in plan(cfg, channel_states(cfg, "s", IDS)) if ch.id == "fan"
+           for p in ch.profiles}
+    assert (fan["orders"].x_unit, fan["wide"].x_unit) == ("order", "Hz")
