@@ -230,7 +230,8 @@ def plan_warnings(plan: ProfilePlan, speed_rpm: float | None, speed_why: str = "
         if b.basis == "order" and speed_hz is None:
             continue
         lo, hi = b.edges_hz(speed_hz)
-        at = "" if b.basis == "hz" or plan.order is not None else f" at {speed_rpm:g} r/min{speed_why}"
+        at = ("" if b.basis == "hz" or plan.order is not None
+              else f" at {speed_rpm:g} r/min{speed_why}")
         if hi <= f_low:
             out.append(f"band {b.name!r} ({lo:g}-{hi:g} {u}{at}) lies below {why}: "
                        "it reads null")
