@@ -22,6 +22,7 @@ from .rules import Rule
 from .shelving import ShelvingMixin
 from .states import (
     _A,
+    _BY_RANK,
     _D,
     _L,
     _N,
@@ -190,6 +191,33 @@ class EngineBase(ShelvingMixin, Generic[A]):
                 if ev is not None:
                     events.append(self.noted(ev))
         return events
+
+    def _move(self, a: RuleState, target: int, v: float, t_ns: int,
+              unit: str) -> AlarmEvent:
+        """Move rule ``a`` to the level of rank ``target`` (0 normal, 1 alert, 2 danger; not
+        its present rank), which value ``v`` at ``t_ns`` qualified for; return the event.
+        Which rank a value qualifies for is each engine's own work; this is what follows."""
+        levels = a.levels
+        assert levels is not None
+        before = a.state
+        if target > before.rank:
+            after, level = _BY_RANK[target], levels[target - 1]
+            a.acked = False  # a new, higher condition needs its own acknowledgement
+            a.acked_by, a.acked_ns, a.note = "", None, ""
+            a.peak = after if after.rank > a.peak.rank else a.peak
+        else:
+            level = levels[target] * (1 - a.rule.hysteresis)  # the clear threshold crossed
+            after = _BY_RANK.get(target) or (_L if a.rule.latch and not a.acked else _N)
+        check_transition(before, after, "value")
+        a.state, a.since_ns = after, int(t_ns)
+        if after is _N:
+            a.clear_ack()
+        return AlarmEvent(
+            t_ns=int(t_ns), channel=a.rule.channel, rule=a.rule.id, kind="transition",
+            from_state=before.value, to_state=after.value, value=v, level=level,
+            unit=a.rule.unit or unit, message=self._message(a, before, after, v, level, unit),
+            latched=a.latched, acked_by="", note="",
+        )
 
     def _signal(self, a: RuleState, lost: bool, t_ns: int, cause: str) -> AlarmEvent | None:
         """The loss-of-signal rule ``a``: to its level when ``lost``, back when not."""

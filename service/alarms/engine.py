@@ -20,7 +20,6 @@ from .events import AlarmEvent
 from .rules import Rule
 from .states import (
     _A,
-    _BY_RANK,
     _D,
     _L,
     _N,
@@ -28,7 +27,6 @@ from .states import (
     CLOCK_JITTER_NS,
     SNAPSHOT_VERSION,
     AlarmState,
-    check_transition,
 )
 
 _STATES = tuple(st.value for st in AlarmState)
@@ -522,9 +520,6 @@ class AlarmEngine(EngineBase["_Alarm"]):
     def _transition(self, a: _Alarm, v: float, t_ns: int, unit: str) -> AlarmEvent | None:
         """The state change the rule's pending times call for at ``t_ns`` (value ``v``
         already recorded), and its event; None if the state stays."""
-        levels = a.levels
-        assert levels is not None
-        h = a.rule.hysteresis
         above_ns, below_ns = a.above_ns, a.below_ns
         on_ns, off_ns = round(a.rule.on_delay_s * _NS), round(a.rule.off_delay_s * _NS)
         rank = a.state.rank
@@ -542,33 +537,4 @@ class AlarmEngine(EngineBase["_Alarm"]):
                     break
         if target == rank:
             return None
-        before = a.state
-        if target > rank:
-            after, level = _BY_RANK[target], levels[target - 1]
-            a.acked = False  # a new, higher condition needs its own acknowledgement
-            a.acked_by, a.acked_ns, a.note = "", None, ""
-            a.peak = after if after.rank > a.peak.rank else a.peak
-        else:
-            level = levels[target] * (1 - h)  # the clear threshold crossed
-            after = _BY_RANK.get(target) or (_L if a.rule.latch and not a.acked else _N)
-        check_transition(before, after, "value")
-        a.state, a.since_ns = after, int(t_ns)
-        if after is _N:
-            a.clear_ack()
-        return AlarmEvent(
-            t_ns=int(t_ns),
-            channel=a.rule.channel,
-            rule=a.rule.id,
-            kind="transition",
-            from_state=before.value,
-            to_state=after.value,
-            value=v,
-            level=level,
-            unit=a.rule.unit or unit,
-            message=self._message(a, before, after, v, level, unit),
-            latched=a.latched,
-            acked_by="",
-            note="",
-        )
-
-
+        return self._move(a, target, v, t_ns, unit)

@@ -18,14 +18,11 @@ from .common import EngineBase, RuleState
 from .events import AlarmEvent
 from .rules import Rule
 from .states import (
-    _BY_RANK,
-    _L,
     _N,
     _NS,
     CLOCK_JITTER_NS,
     SNAPSHOT_VERSION,
     AlarmState,
-    check_transition,
 )
 
 _LEARNED = {"learned": True}
@@ -208,36 +205,4 @@ class ReferenceAlarmEngine(EngineBase["_Alarm"]):
                     break
         if target == rank:
             return None
-        before = a.state
-        if target > rank:
-            after, level = _BY_RANK[target], levels[target - 1]
-            a.acked = False  # a new, higher condition needs its own acknowledgement
-            a.acked_by, a.acked_ns, a.note = "", None, ""
-            a.peak = after if after.rank > a.peak.rank else a.peak
-        else:
-            level = levels[target] * (1 - h)  # the clear threshold crossed
-            after = _BY_RANK.get(target) or (_L if a.rule.latch and not a.acked else _N)
-        check_transition(before, after, "value")
-        a.state, a.since_ns = after, int(t_ns)
-        if after is _N:
-            a.clear_ack()
-        return AlarmEvent(
-            t_ns=int(t_ns),
-            channel=a.rule.channel,
-            rule=a.rule.id,
-            kind="transition",
-            from_state=before.value,
-            to_state=after.value,
-            value=v,
-            level=level,
-            unit=a.rule.unit or unit,
-            message=self._message(a, before, after, v, level, unit),
-            latched=a.latched,
-            acked_by="",
-            note="",
-        )
-
-
-
-
-
+        return self._move(a, target, v, t_ns, unit)
