@@ -1,6 +1,6 @@
 """The service process's side of cluster mode: connect to Ray (or start a local one), place
 each group of sources on an actor, and stand in for each source's pipeline: pull its pushes,
-turn them back into frames and hand them to the service exactly as a local pipeline does.
+hand their PushFrames to the service exactly as a local pipeline does.
 
 Ray is imported here only, when a cluster starts (the optional ``ray`` extra). Knows the
 service's pipeline seam (``publish``, ``failed``, evidence) but not the hub, alarms or store."""
@@ -8,6 +8,7 @@ service's pipeline seam (``publish``, ``failed``, evidence) but not the hub, ala
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 import logging
 import os
 import sys
@@ -22,16 +23,19 @@ import numpy as np
 from ..config import Config, SourceConfig
 from ..config.cluster import node_resource
 from ..evidence import Evidence
-from ..pipeline import _peak_rows
 from ..sources import make_source
 from ..sources.base import Source
 from ..speed import NotEnoughRevolutions
-from ..types import ChannelState, SourceCounters, SpectralFrame
+from ..store import HistoryRow
+from ..types import ChannelState, PushFrames, SourceCounters, SpectralFrame
 
 if TYPE_CHECKING:
     from dsp.orders import OrderSpectrum
+
+    from ..alarms import AlarmEvent
+    from ..hub import Hub
 from .actor import SourceGroup
-from .transport import PLAN_FIELDS, PushBatch, apply_states, unpack
+from .transport import PLAN_FIELDS, PushBatch, SpectraWanted, apply_states
 
 log = logging.getLogger("quaver.cluster")
 
@@ -39,6 +43,11 @@ __all__ = ["ActorLost", "Cluster", "RemotePipeline", "RemoteSource", "group_sour
 
 PULL_WAIT_S = 1.0  # a pull returns after this long without a push (our choice)
 CALL_TIMEOUT_S = 30.0  # a start or stop call that takes longer has failed (our choice)
+SPECTRA_EVERY_S = 1.0  # without a subscriber, each group's spectrum comes this often (our choice)
+STALE_KEPT = 1024  # pushes remembered as having come without spectra (the actor keeps fewer)
+SPECTRUM_CALL_S = 2.0  # the spectrum of an alarm's moment: asked of the actor, this bound
+# what a stream subscriber reads a frame's spectrum for (its peaks are found from it)
+SPECTRUM_KINDS = frozenset({"spectrum", "tones"})
 RELOCATABLE = ("file", "simulated")
 
 
@@ -61,8 +70,9 @@ def group_sources(cfg: Config) -> list[tuple[str | None, list[str]]]:
 class Cluster:
     """Ray, connected (or started locally) on first use, and the service's actors."""
 
-    def __init__(self, cfg: Config) -> None:
+    def __init__(self, cfg: Config, hub: Hub | None = None) -> None:
         self.cfg = cfg
+        self.hub = hub
         self.groups = group_sources(cfg)
         self.actors: list[Any] = []
         self.by_source: dict[str, Any] = {}
@@ -127,6 +137,16 @@ class Cluster:
             for sid in ids:
                 self.by_source[sid] = actor
 
+    def spectra_wanted(self) -> SpectraWanted:
+        """Which pushes must bring their spectra: those of channels a hub subscriber reads
+        spectra or tones of (MQTT and OPC UA publishers subscribe like any client)."""
+        subs = [] if self.hub is None else [
+            s for s in self.hub.subscribers if s.kinds & SPECTRUM_KINDS]
+        if any(s.channels is None for s in subs):
+            return SpectraWanted(SPECTRA_EVERY_S, None)
+        return SpectraWanted(SPECTRA_EVERY_S,
+                             frozenset(c for s in subs for c in (s.channels or ())))
+
     async def close(self) -> None:
         import ray
 
@@ -176,7 +196,8 @@ class RemoteSource:
 
     async def start(self) -> None:
         await self.cluster.ensure()
-        await asyncio.wait_for(self.actor.start.remote(), CALL_TIMEOUT_S)
+        await asyncio.wait_for(self.actor.start.remote(self.cluster.spectra_wanted()),
+                               CALL_TIMEOUT_S)
 
     async def aclose(self) -> None:
         pass  # the cluster stops its actors (Cluster.close)
@@ -201,7 +222,7 @@ class RemotePipeline:
 
     source: RemoteSource
     channels: dict[str, ChannelState]
-    publish: Callable[[RemotePipeline, list[SpectralFrame], float], Awaitable[None]]
+    publish: Callable[[RemotePipeline, list[PushFrames], float], Awaitable[None]]
     failures: int = 0
     failed: str = ""
     restarts: int = 0
@@ -209,8 +230,15 @@ class RemotePipeline:
     incarnation: str = ""
     pushes: int = 0
     max_restarts: int = 0  # the actor's bound ([cluster] max_restarts), for the messages
+    # the actor keeps the interval means of the spectral history (service.app asks)
+    keeps_history: bool = True
     _evidence: list[Evidence] = field(default_factory=list)
+    _history: list[HistoryRow] = field(default_factory=list)
     _remote_failures: int = 0
+    # the newest push of each group that came with its spectra, and the recent pushes that
+    # came without: (profile, end index) → their channels
+    _spectra: dict[object, PushFrames] = field(default_factory=dict)
+    _stale: dict[tuple[str, int], list[tuple[str, ...]]] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         self.started_mono = time.monotonic()
@@ -237,8 +265,8 @@ class RemotePipeline:
             # places them from its next block, and a restarted actor gets them again
             written = {cid: (st.manual_rpm, st.manual_by) for cid, st in self.channels.items()
                        if st.manual_rpm is not None or st.manual_by}
-            batches: list[PushBatch] = await actor.pull.remote(self.source.id, PULL_WAIT_S,
-                                                               written)
+            batches: list[PushBatch] = await actor.pull.remote(
+                self.source.id, PULL_WAIT_S, written, self.source.cluster.spectra_wanted())
             for b in batches:
                 await self._take(b)
 
@@ -270,8 +298,59 @@ class RemotePipeline:
             cap = self.channels[cid].runup
             if isinstance(cap, RemoteRunup):
                 cap.records += recs
+        self._history += b.history
+        for push in b.pushes:
+            self._spectra_of(push)
         self.pushes += 1
-        await self.publish(self, unpack(b.groups, _peak_rows), b.latency_s)
+        await self.publish(self, b.pushes, b.latency_s)
+
+    def _spectra_of(self, push: PushFrames) -> None:
+        """A push that came without its spectra takes its group's newest sent ones (and their
+        peaks), at most ``SpectraWanted.every_s`` older, unless a subscriber wanted them."""
+        key = (push.channels, push.profile)
+        if push.power.shape[1]:
+            self._spectra[key] = push
+            return
+        last = self._spectra.get(key)
+        if last is not None:
+            push.power, push.peaks = last.power, last.peaks
+        self._stale.setdefault((push.profile, push.end_index), []).append(push.channels)
+        if len(self._stale) > STALE_KEPT:
+            del self._stale[next(iter(self._stale))]
+
+    def _is_stale(self, f: SpectralFrame) -> bool:
+        return any(f.channel in chans for chans in self._stale.get((f.profile, f.end_index), ()))
+
+    async def exact_spectra(self, events: list[tuple[AlarmEvent, SpectralFrame | None]]
+                            ) -> list[tuple[AlarmEvent, SpectralFrame | None]]:
+        """The events' frames with the spectra of their own moment (for the alarm's stored
+        spectrum and evidence): asked of the actor for frames whose push came without them
+        (one bounded call); a frame the actor no longer has keeps the newest sent one."""
+        ask = [(i, f) for i, (_, f) in enumerate(events) if f is not None and self._is_stale(f)]
+        if not ask:
+            return events
+        try:
+            got = await asyncio.wait_for(self.source.actor.spectra.remote(
+                self.source.id, [(f.profile, f.end_index, f.channel) for _, f in ask]),
+                SPECTRUM_CALL_S)
+        except Exception as e:
+            log.warning("source %s: spectra of %d alarm changes not got (%s); the newest "
+                        "sent ones are kept with them", self.source.id, len(ask), e)
+            return events
+        out = list(events)
+        for (i, f), power in zip(ask, got, strict=True):
+            if power is not None:
+                out[i] = (events[i][0], dataclasses.replace(f, power=np.asarray(power)))
+        return out
+
+    def take_history(self) -> list[HistoryRow]:
+        """The interval means the actor closed since the last call."""
+        out, self._history = self._history, []
+        return out
+
+    def finish_history(self) -> list[HistoryRow]:
+        """At shut-down: those and the intervals still open on the actor."""
+        return self.take_history() + (self._call("finish_history", 5.0) or [])
 
     def reset_analysis(self) -> None:
         """Nothing to forget here: the actor's pipeline restarts its own analysis."""
@@ -341,7 +420,7 @@ class RemoteRunup:
 
 def make_remote(cfg: Config, cluster: Cluster, src_cfg: SourceConfig,
                 states: dict[str, ChannelState],
-                publish: Callable[[RemotePipeline, list[SpectralFrame], float],
+                publish: Callable[[RemotePipeline, list[PushFrames], float],
                                   Awaitable[None]]) -> tuple[Source, RemotePipeline]:
     src = RemoteSource(src_cfg, cluster)
     return src, RemotePipeline(src, states, publish, max_restarts=cfg.cluster.max_restarts)

@@ -11,6 +11,7 @@ from collections.abc import Awaitable, Callable
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pytest
 from clusterkit import frame_differences, local_frames, recording, replay_doc
 
@@ -18,9 +19,11 @@ from service.app import Service
 from service.cluster import head
 from service.cluster.actor import SourceGroup
 from service.config import Config, parse_config
+from service.history import alarm_row
 from service.speed import NotEnoughRevolutions
 from service.speedwrite import write_speed
-from service.types import SpectralFrame
+from service.store import HistoryRow
+from service.types import PushFrames, SpectralFrame
 
 
 class _Method:
@@ -100,14 +103,15 @@ def test_the_head_publishes_the_actors_frames_as_the_local_pipeline_does(
 
     async def go() -> None:
         svc = Service(cfg)
-        publish = svc.hub.publish
+        publish = svc.hub.publish_push
 
-        def capture(frames: Any, latency_s: float = 0.0) -> None:
-            frames = list(frames)
-            got.extend(frames)
-            publish(frames, latency_s)
+        def capture(push: PushFrames, latency_s: float = 0.0) -> None:
+            got.extend(push.frames())
+            publish(push, latency_s)
 
-        svc.hub.publish = capture  # type: ignore[method-assign]
+        svc.hub.publish_push = capture  # type: ignore[method-assign]
+        # a subscriber of every channel's spectra: every push brings its own
+        svc.hub.subscribe().kinds = frozenset({"spectrum"})
         await svc.start()
         try:
             await until(lambda: len(got) >= len(local), 30, "every frame")
@@ -127,6 +131,59 @@ def test_the_head_publishes_the_actors_frames_as_the_local_pipeline_does(
     assert len(got) == len(local)
     for a, b in zip(local, got, strict=True):
         assert frame_differences(a, b, skip=("t_ns",)) == [], (a.channel, a.profile, a.seq)
+
+
+def test_an_alarms_stored_spectrum_is_its_own_moments_though_pushes_came_without(
+        in_process: None, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    doc = replay_doc(recording(tmp_path / "rec.wav"), replay_speed=4.0)
+    # raised 3 s of signal after the first frame (common practice: an on-delay counts on
+    # the frames' own clock), when the pushes have long stopped bringing their spectra
+    doc["alarms"] = [{"channel": "m1-de-h", "overall": True, "alert": 1e-9,
+                      "danger": 1e9, "on_delay_s": 3.0}]
+    local = [f for f in local_frames(doc) if f.channel == "m1-de-h" and f.profile == "wide"]
+    cfg = parse_config({**doc, "service": {"data_dir": str(tmp_path / "data")},
+                        "cluster": {"engine": "ray"}}, source="test")
+    monkeypatch.setattr(head, "SPECTRA_EVERY_S", 60.0)  # only each group's first push
+    rows: list[HistoryRow] = []
+    asked: list[int] = []
+    spectra = SourceGroup.spectra
+
+    def counted(self: SourceGroup, source_id: str, wanted: list[Any]) -> Any:
+        asked.append(len(wanted))
+        return spectra(self, source_id, wanted)
+
+    monkeypatch.setattr(SourceGroup, "spectra", counted)
+
+    async def go() -> None:
+        svc = Service(cfg)
+        put = svc.store.put_history
+
+        def keep(r: Any) -> Any:
+            rows.extend(r)
+            return put(r)
+
+        svc.store.put_history = keep  # type: ignore[method-assign]
+        await svc.start()
+        try:
+            await until(lambda: any(r.reason == "alarm" for r in rows), 30, "alarm spectrum")
+            assert svc.hub.channels["m1-de-h"].status == "ok"
+            await until(lambda: svc.hub.channels["m1-de-h"].frames == len(local), 30,
+                        "the whole recording analysed")
+        finally:
+            await svc.stop()
+
+    run(go())
+    alarm = [r for r in rows if r.reason == "alarm"]
+    assert len(alarm) == 1 and asked == [1]
+    # the stored spectrum is one of the one-process frames' (bit for bit), not the first
+    # one the head was sent
+    match = [k for k, f in enumerate(local)
+             if np.array_equal(alarm_row(f, None).power, alarm[0].power)]
+    assert len(match) == 1 and match[0] >= 12, match  # 3 s at a 0.2 s hop: frame 15
+    # and the interval means came from the actor at shut-down, every frame of the channel
+    means = [r for r in rows if r.reason == "interval" and r.channel == "m1-de-h"
+             and r.profile == "wide"]
+    assert sum(r.frames for r in means) == len(local)
 
 
 def test_a_lost_actor_shows_failed_with_its_reason_and_its_restart_is_taken_up(

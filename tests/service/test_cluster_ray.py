@@ -32,7 +32,7 @@ from ray.cluster_utils import Cluster as RayTestCluster  # noqa: E402
 from service.app import Service  # noqa: E402
 from service.config import parse_config  # noqa: E402
 from service.config.cluster import node_resource  # noqa: E402
-from service.types import SpectralFrame  # noqa: E402
+from service.types import PushFrames, SpectralFrame  # noqa: E402
 
 pytestmark = pytest.mark.slow  # a Ray cluster of three nodes: ~40 s for the file
 
@@ -104,14 +104,15 @@ def test_the_cluster_gives_the_one_process_results(
 
     async def go() -> None:
         svc = Service(cfg)
-        publish = svc.hub.publish
+        publish = svc.hub.publish_push
 
-        def capture(frames: Any, latency_s: float = 0.0) -> None:
-            frames = list(frames)
-            got.extend(frames)
-            publish(frames, latency_s)
+        def capture(push: PushFrames, latency_s: float = 0.0) -> None:
+            got.extend(push.frames())
+            publish(push, latency_s)
 
-        svc.hub.publish = capture  # type: ignore[method-assign]
+        svc.hub.publish_push = capture  # type: ignore[method-assign]
+        # a subscriber of every channel's spectra: every push brings its own
+        svc.hub.subscribe().kinds = frozenset({"spectrum"})
         await svc.start()
         try:
             await until(lambda: len(got) >= len(local), 90, "every frame of the replay")
