@@ -78,6 +78,8 @@ class Cluster:
         self.by_source: dict[str, Any] = {}
         self._started_ray = False
         self._lock = asyncio.Lock()
+        self.replaced = 0  # actors started anew after Ray gave them up
+        self._remote_cls: Any = None
 
     async def ensure(self) -> None:
         async with self._lock:
@@ -118,24 +120,49 @@ class Cluster:
             signal.signal(signal.SIGTERM, term)
 
     def _spawn(self) -> None:
-        import ray
-
-        remote_cls = ray.remote(SourceGroup)
         for node, ids in self.groups:
-            opts: dict[str, Any] = {
-                "max_restarts": self.cfg.cluster.max_restarts, "max_task_retries": 0,
-                # an actor mostly waits on sockets and numpy; a quarter CPU each lets a
-                # node host several, and the node's CPUs bound them all together
-                "num_cpus": 0.25, "max_concurrency": 1000,
-            }
-            if node is not None:
-                opts["resources"] = {node_resource(node): 0.001}
-            else:
-                opts["scheduling_strategy"] = "SPREAD"
-            actor = remote_cls.options(**opts).remote(self.cfg, ids)
+            actor = self._new_actor(node, ids)
             self.actors.append(actor)
             for sid in ids:
                 self.by_source[sid] = actor
+
+    def _new_actor(self, node: str | None, ids: list[str]) -> Any:
+        import ray
+
+        opts: dict[str, Any] = {
+            "max_restarts": self.cfg.cluster.max_restarts, "max_task_retries": 0,
+            # an actor mostly waits on sockets and numpy; a quarter CPU each lets a
+            # node host several, and the node's CPUs bound them all together
+            "num_cpus": 0.25, "max_concurrency": 1000,
+        }
+        if node is not None:
+            opts["resources"] = {node_resource(node): 0.001}
+        else:
+            opts["scheduling_strategy"] = "SPREAD"
+        if self._remote_cls is None:
+            self._remote_cls = ray.remote(SourceGroup)
+        return self._remote_cls.options(**opts).remote(self.cfg, ids)
+
+    async def replace_if_dead(self, actor: Any) -> bool:
+        """After a call to ``actor`` failed: if Ray has given it up (its ``max_restarts``
+        used, or killed for good), start a new actor for its sources in its place; the
+        service's back-off between a failed source's runs (``service.supervise``) paces
+        the attempts. True when the sources now have another actor."""
+        async with self._lock:
+            try:
+                i = next(k for k, a in enumerate(self.actors) if a is actor)
+            except StopIteration:
+                return any(a is not actor for a in self.by_source.values())  # replaced
+            if await asyncio.to_thread(_actor_state, actor) != "DEAD":
+                return False  # alive, or being restarted by Ray
+            node, ids = self.groups[i]
+            self.actors[i] = new = self._new_actor(node, ids)
+            for sid in ids:
+                self.by_source[sid] = new
+            self.replaced += 1
+            log.warning("the actor of %s was given up by Ray; a new one replaces it",
+                        ", ".join(ids))
+            return True
 
     def spectra_wanted(self) -> SpectraWanted:
         """Which pushes must bring their spectra: those of channels a hub subscriber reads
@@ -165,6 +192,20 @@ class Cluster:
         if self._started_ray:
             ray.shutdown()  # on the thread that connected
             self._started_ray = False
+
+
+def _actor_state(actor: Any) -> str | None:
+    """Ray's state of ``actor`` ("ALIVE", "RESTARTING", "DEAD" …) from its control store
+    (``ray._private.state``: no public call gives one actor's state without Ray's
+    dashboard); None when it cannot be read."""
+    try:
+        from ray._private import state
+
+        info = state.actors(actor_id=actor._actor_id.hex())
+        return str(info["State"]) if info else None
+    except Exception as e:  # an older or newer Ray: treated as not known
+        log.info("actor state not read: %s", e)
+        return None
 
 
 class ActorLost(RuntimeError):
@@ -247,19 +288,24 @@ class RemotePipeline:
         """Pull the source's pushes until cancelled; raises when the actor is lost (the
         service reports the source failed and runs this again after its back-off, by which
         time Ray has restarted the actor, on another node if its own was lost)."""
+        actor = self.source.actor
         try:
-            await self._pull_loop()
+            await self._pull_loop(actor)
         except Exception as e:
+            # Ray's text runs to many lines: say what happened and what comes next
+            first = str(e).strip().splitlines()[0][:200] if str(e).strip() else ""
+            if await self.source.cluster.replace_if_dead(actor):
+                raise ActorLost(
+                    f"actor lost ({type(e).__name__}: {first}); Ray gave it up (its "
+                    f"{self.max_restarts} restarts used): a new actor takes its "
+                    "sources") from e
             if type(e).__module__.startswith("ray") and "Actor" in type(e).__name__:
-                # Ray's text runs to many lines: say what happened and what comes next
-                first = str(e).strip().splitlines()[0][:200] if str(e).strip() else ""
                 raise ActorLost(
                     f"actor lost ({type(e).__name__}: {first}); Ray restarts it, on another "
                     f"node if its own is gone (at most {self.max_restarts} times)") from e
             raise
 
-    async def _pull_loop(self) -> None:
-        actor = self.source.actor
+    async def _pull_loop(self, actor: Any) -> None:
         while True:
             # the written speeds travel with every pull (a few bytes): the actor's worker
             # places them from its next block, and a restarted actor gets them again

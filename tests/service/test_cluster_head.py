@@ -73,6 +73,8 @@ def in_process(monkeypatch: pytest.MonkeyPatch) -> None:
         return getattr(self.source.actor.group, method)(self.source.id, *args)
 
     monkeypatch.setattr(head.RemotePipeline, "_call", call)
+    monkeypatch.setattr(head.Cluster, "_new_actor",
+                        lambda self, node, ids: InProcessActor(self.cfg, ids))
     monkeypatch.setattr(head.Cluster, "ensure", ensure)
     monkeypatch.setattr(head.Cluster, "close", close)
 
@@ -259,6 +261,46 @@ def test_a_lost_actor_shows_failed_with_its_reason_and_its_restart_is_taken_up(
             # newest first: ok (committed just after the state is set), after the failure
             await until(lambda: back()[:1] == ["ok"], 30, "the ok event committed")
             assert "failed" in back()
+        finally:
+            await svc.stop()
+
+    run(go())
+
+
+def test_an_actor_ray_gave_up_is_replaced_and_its_source_comes_back(
+        in_process: None, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    cfg = parse_config({
+        "service": {"data_dir": str(tmp_path / "data")},
+        "analysis": {"fmax_hz": 4000.0, "lines": 400, "overlap": 0.5},
+        "cluster": {"engine": "ray", "workers": 1, "max_restarts": 0},
+        "sources": [{"id": "sim", "kind": "simulated", "scenario": "demo",
+                     "sample_rate_hz": 10240.0, "channels": ["p1-de-h"], "speed": 4.0}],
+    }, source="test")
+    # Ray's state of a lost actor with no restarts left
+    monkeypatch.setattr(head, "_actor_state", lambda a: "DEAD" if a.lost else "ALIVE")
+
+    async def go() -> None:
+        svc = Service(cfg)
+        await svc.start()
+        try:
+            st = svc.hub.channels["p1-de-h"]
+            await until(lambda: st.status == "ok", 30, "first frames")
+            assert svc.cluster is not None
+            old = svc.cluster.by_source["sim"]
+            first = svc.by_source["sim"].incarnation  # type: ignore[attr-defined]
+            old.lost = True
+            await until(lambda: st.status == "failed", 30, "failed shown")
+            await old.group.stop()
+            # no one replaces it by hand: the head starts a new actor after its back-off
+            await until(lambda: st.status == "ok", 30, "ok again on a new actor")
+            assert svc.cluster.replaced == 1
+            assert svc.cluster.by_source["sim"] is not old
+            assert svc.cluster.actors == [svc.cluster.by_source["sim"]]
+            assert svc.by_source["sim"].incarnation != first  # type: ignore[attr-defined]
+            failed = [e for e in svc.store.events(limit=100)
+                      if e["kind"] == "status" and e["to_state"] == "failed"]
+            assert failed and all("Ray gave it up (its 0 restarts used): a new actor takes "
+                                  "its sources" in str(e["message"]) for e in failed)
         finally:
             await svc.stop()
 

@@ -217,3 +217,42 @@ def test_a_lost_node_moves_its_relocatable_source_and_nothing_is_lost(
     run(go(), 240)
     print(f"node loss: failed shown after {report['failed_after_s']:.1f} s, recovered after "
           f"{report['recovered_after_s']:.1f} s")
+
+
+def test_an_actor_ray_gave_up_is_started_anew(
+        cluster: tuple[RayTestCluster, dict[str, Any]], tmp_path: Path) -> None:
+    c, _ = cluster
+    cfg = parse_config({
+        "service": {"data_dir": str(tmp_path / "data")},
+        "analysis": {"fmax_hz": 4000.0, "lines": 400, "overlap": 0.5},
+        # no restarts: Ray gives the actor up at its first death
+        "cluster": {"engine": "ray", "address": c.address, "workers": 1, "max_restarts": 0},
+        "sources": [{"id": "sim", "kind": "simulated", "scenario": "demo",
+                     "sample_rate_hz": 10240.0, "channels": ["p1-de-h"]}],
+    }, source="test")
+    report: dict[str, float] = {}
+
+    async def go() -> None:
+        svc = Service(cfg)
+        await svc.start()
+        try:
+            assert svc.cluster is not None
+            st = svc.hub.channels["p1-de-h"]
+            await until(lambda: st.status == "ok" and st.frames > 3, 60, "first frames")
+            old = svc.cluster.by_source["sim"]
+            t_kill = time.monotonic()
+            ray.kill(old, no_restart=True)
+            await until(lambda: st.status == "failed", 60, "failed shown")
+            report["failed_after_s"] = time.monotonic() - t_kill
+            await until(lambda: st.status == "ok" and svc.cluster is not None
+                        and svc.cluster.replaced == 1, 90, "ok again on a new actor")
+            report["recovered_after_s"] = time.monotonic() - t_kill
+            assert svc.cluster.by_source["sim"] is not old
+            where = await asyncio.wait_for(svc.cluster.by_source["sim"].where.remote(), 30)
+            assert where["incarnation"] == svc.by_source["sim"].incarnation  # type: ignore[attr-defined]
+        finally:
+            await svc.stop()
+
+    run(go(), 240)
+    print(f"actor given up: failed shown after {report['failed_after_s']:.1f} s, a new one "
+          f"ok after {report['recovered_after_s']:.1f} s")
