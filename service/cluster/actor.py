@@ -40,6 +40,9 @@ OUTBOX_BATCHES = 4096  # pushes kept for a service that does not pull; then olde
 # the newest pushes of each source kept whole (with their spectra) for the service's
 # requests of the spectrum of an alarm's moment: a few seconds of pushes (our choice)
 RECENT_PUSHES = 32
+# a pull of several sources, woken by one push, waits this long for the others' (our choice:
+# fewer calls, each push at most this much later)
+PULL_GATHER_S = 0.02
 RESTART_FIRST_S, RESTART_MAX_S = 1.0, 30.0  # a failed pipeline runs again (as service.supervise)
 
 
@@ -83,6 +86,8 @@ class SourceGroup:
             self.runs[src_cfg.id] = _Run(
                 p, history=SpectrumHistory(hist.interval_s) if hist.enabled else None)
         self._started = False
+        self._any = asyncio.Event()  # a push of any source waits in its outbox
+        self.gather_s = PULL_GATHER_S
 
     # -- called by the service process ---------------------------------------------------
     async def start(self, spectra: SpectraWanted | None = None) -> str:
@@ -111,10 +116,7 @@ class SourceGroup:
         r = self.runs[source_id]
         if spectra is not None:
             r.wanted = spectra
-        for cid, (rpm, who) in (written or {}).items():
-            st = r.pipeline.channels.get(cid)
-            if st is not None:
-                st.manual_rpm, st.manual_by = rpm, who
+        self._written(r, written)
         if not r.outbox:
             r.ready.clear()
             # asyncio.timeout, not wait_for: on Python 3.11 wait_for can swallow a
@@ -127,6 +129,41 @@ class SourceGroup:
         out = list(r.outbox)
         r.outbox.clear()
         return out
+
+    async def pull_many(self, wait_s: float,
+                        asks: dict[str, dict[str, tuple[float | None, str]]],
+                        spectra: SpectraWanted | None = None) -> dict[str, list[PushBatch]]:
+        """:meth:`pull` of several sources in one call (``asks``: source id → its written
+        speeds): returns when any source of this actor has a push, or after ``wait_s`` s;
+        woken by a push, a moment later (``gather_s``), so that one call takes several."""
+        await self.start()
+        runs = {sid: self.runs[sid] for sid in asks}
+        for sid, r in runs.items():
+            self._written(r, asks[sid])
+            if spectra is not None:
+                r.wanted = spectra
+        if not any(r.outbox for r in runs.values()):
+            self._any.clear()
+            try:
+                async with asyncio.timeout(wait_s):
+                    await self._any.wait()
+            except TimeoutError:
+                pass
+            else:
+                await asyncio.sleep(self.gather_s)
+        out: dict[str, list[PushBatch]] = {}
+        for sid, r in runs.items():
+            if r.outbox:
+                out[sid] = list(r.outbox)
+                r.outbox.clear()
+        return out
+
+    @staticmethod
+    def _written(r: _Run, written: dict[str, tuple[float | None, str]] | None) -> None:
+        for cid, (rpm, who) in (written or {}).items():
+            st = r.pipeline.channels.get(cid)
+            if st is not None:
+                st.manual_rpm, st.manual_by = rpm, who
 
     def request_evidence(self, source_id: str, event_id: int, channel: str, center_index: int,
                          spectrum: dict[str, object]) -> None:
@@ -287,6 +324,7 @@ class SourceGroup:
             r.dropped += 1
         r.outbox.append(batch)
         r.ready.set()
+        self._any.set()
 
 
 def _without_spectra(push: PushFrames) -> PushFrames:
