@@ -46,6 +46,7 @@ CALL_TIMEOUT_S = 30.0  # a start or stop call that takes longer has failed (our 
 SPECTRA_EVERY_S = 1.0  # without a subscriber, each group's spectrum comes this often (our choice)
 STALE_KEPT = 1024  # pushes remembered as having come without spectra (the actor keeps fewer)
 SPECTRUM_CALL_S = 2.0  # the spectrum of an alarm's moment: asked of the actor, this bound
+FINISH_CALL_S = 5.0  # at shut-down: the last evidence and interval means, this bound
 # what a stream subscriber reads a frame's spectrum for (its peaks are found from it)
 SPECTRUM_KINDS = frozenset({"spectrum", "tones"})
 RELOCATABLE = ("file", "simulated")
@@ -273,6 +274,7 @@ class RemoteSource:
         self.counters: SourceCounters = local.counters
         self._status: dict[str, object] = local.status()
         self.cluster = cluster
+        self.pipeline: RemotePipeline | None = None  # set by make_remote
 
     @property
     def fs(self) -> float | None:
@@ -288,7 +290,10 @@ class RemoteSource:
                                CALL_TIMEOUT_S)
 
     async def aclose(self) -> None:
-        pass  # the cluster stops its actors (Cluster.close)
+        # the cluster stops its actors (Cluster.close); before that the source's last
+        # evidence and interval means are fetched, the loop free meanwhile
+        if self.pipeline is not None:
+            await self.pipeline.finish()
 
     def status(self) -> dict[str, object]:
         return {**self._status, "engine": "ray", "node": self.node}
@@ -442,8 +447,26 @@ class RemotePipeline:
         return out
 
     def finish_history(self) -> list[HistoryRow]:
-        """At shut-down: those and the intervals still open on the actor."""
-        return self.take_history() + (self._call("finish_history", 5.0) or [])
+        """At shut-down (after :meth:`finish`): those and the intervals that were still
+        open on the actor."""
+        return self.take_history()
+
+    async def finish(self) -> None:
+        """At shut-down, before the service takes the last evidence and interval means: both
+        asked of the actor at once, in one bounded wait on the loop (not blocking it)."""
+        if self.source.id not in self.source.cluster.by_source:
+            return  # the cluster never started
+        actor, sid = self.source.actor, self.source.id
+        try:
+            ev, rows = await asyncio.wait_for(asyncio.gather(
+                actor.finish_evidence.remote(sid), actor.finish_history.remote(sid)),
+                FINISH_CALL_S)
+        except Exception as e:  # a lost actor has nothing more to give
+            log.warning("source %s: last evidence and interval means not got (%s)", sid,
+                        type(e).__name__)
+            return
+        self._evidence += ev
+        self._history += rows
 
     def reset_analysis(self) -> None:
         """Nothing to forget here: the actor's pipeline restarts its own analysis."""
@@ -454,8 +477,7 @@ class RemotePipeline:
                                                   center_index, spectrum)
 
     def take_evidence(self, *, final: bool = False) -> list[Evidence]:
-        if final:
-            self._evidence += self._call("finish_evidence", 2.0) or []
+        """The evidence the actor finished (at shut-down with what :meth:`finish` got)."""
         out, self._evidence = self._evidence, []
         return out
 
@@ -469,8 +491,10 @@ class RemotePipeline:
         return out
 
     def _call(self, method: str, timeout_s: float, *args: object) -> Any:
-        """A bounded blocking call to the actor (API routes that are read rarely); None when
-        the actor does not answer in time."""
+        """A bounded blocking call to the actor, for the API routes that read what only lives
+        there (waveform, kurtogram, run-up, order spectrum): plain ``def`` routes, run on the
+        server's worker threads, never on the event loop. None when the actor does not
+        answer in time."""
         import ray
 
         try:
@@ -516,4 +540,5 @@ def make_remote(cfg: Config, cluster: Cluster, src_cfg: SourceConfig,
                 publish: Callable[[RemotePipeline, list[PushFrames], float],
                                   Awaitable[None]]) -> tuple[Source, RemotePipeline]:
     src = RemoteSource(src_cfg, cluster)
-    return src, RemotePipeline(src, states, publish, max_restarts=cfg.cluster.max_restarts)
+    src.pipeline = RemotePipeline(src, states, publish, max_restarts=cfg.cluster.max_restarts)
+    return src, src.pipeline

@@ -101,6 +101,7 @@ def test_the_cluster_gives_the_one_process_results(
     cfg = parse_config({**doc, "service": {"data_dir": str(tmp_path / "data")},
                         "cluster": {"engine": "ray", "address": c.address}}, source="test")
     got: list[SpectralFrame] = []
+    took: dict[str, float] = {}
 
     async def go() -> None:
         svc = Service(cfg)
@@ -117,6 +118,13 @@ def test_the_cluster_gives_the_one_process_results(
         try:
             await until(lambda: len(got) >= len(local), 90, "every frame of the replay")
             await asyncio.sleep(0.5)  # nothing more comes
+            # what only lives on the actor, asked as an API route asks (a worker thread):
+            # the newest second of the recording's samples
+            t0 = time.monotonic()
+            wave = await asyncio.to_thread(
+                svc.by_source["rec"].latest_waveform, "m1-de-h", 1.0)
+            took["waveform_s"] = time.monotonic() - t0
+            assert wave is not None and wave[1] == 2560.0 and wave[0].shape == (2560,)
         finally:
             await svc.stop()
 
@@ -126,6 +134,7 @@ def test_the_cluster_gives_the_one_process_results(
     for a, b in zip(local, got, strict=True):
         # t_ns: the replay's clock starts at each run's wall time
         assert frame_differences(a, b, skip=("t_ns",)) == [], (a.channel, a.profile, a.seq)
+    print(f"waveform from the actor in {took['waveform_s']:.3f} s")
 
 
 def test_a_lost_node_moves_its_relocatable_source_and_nothing_is_lost(
