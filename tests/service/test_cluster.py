@@ -19,6 +19,7 @@ from service.cluster.head import Cluster, RemotePipeline, RemoteSource, group_so
 from service.cluster.transport import PushBatch, SpectraWanted
 from service.config import ConfigError, parse_config
 from service.demo import demo_config
+from service.hub import Hub
 from service.pipeline import SourcePipeline, channel_states
 from service.profiles import ProfileBank
 from service.sources import make_source
@@ -94,6 +95,24 @@ def test_a_push_without_spectra_takes_its_groups_newest_sent_ones_at_the_head() 
     assert want.takes(ids) and not want.takes(["other"])
     assert SpectraWanted(1.0, None).takes(["other"])
     assert not SpectraWanted().takes(ids)
+
+
+def test_the_head_wants_every_spectrum_of_the_channels_its_subscribers_read_spectra_of(
+) -> None:
+    cfg = parse_config(replay_doc(Path("x.wav")), source="test")
+    hub = Hub()
+    cluster = Cluster(cfg, hub)
+    assert cluster.spectra_wanted() == SpectraWanted(1.0, frozenset())  # nobody reads them
+    bands = hub.subscribe(["m1-de-h"])
+    bands.kinds = frozenset({"bands", "alarms"})
+    assert cluster.spectra_wanted().channels == frozenset()  # bands travel with every push
+    hub.subscribe(["m1-de-v"]).kinds = frozenset({"tones"})  # peaks come from the spectrum
+    assert cluster.spectra_wanted().channels == frozenset({"m1-de-v"})
+    every = hub.subscribe(None)
+    every.kinds = frozenset({"spectrum"})
+    assert cluster.spectra_wanted().channels is None  # every channel's
+    hub.unsubscribe(every)
+    assert cluster.spectra_wanted().channels == frozenset({"m1-de-v"})
 
 
 def _group_batches(cfg_doc: dict[str, object], spectra: SpectraWanted
