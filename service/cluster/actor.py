@@ -14,6 +14,7 @@ import collections
 import copy
 import functools
 import logging
+import operator
 import time
 import uuid
 from collections.abc import Iterable
@@ -33,6 +34,7 @@ from ..types import ChannelState, PushFrames, PushPeaks
 from .transport import PLAN_FIELDS, PushBatch, SpectraWanted, pack_states
 
 log = logging.getLogger("quaver.cluster")
+_PLAN_VALUES = operator.attrgetter(*PLAN_FIELDS)
 
 __all__ = ["OUTBOX_BATCHES", "SourceGroup"]
 
@@ -292,7 +294,7 @@ class SourceGroup:
         states = p.channels.values()
         plans: dict[str, tuple[object, ...]] = {}
         for st in states:
-            plan = tuple(getattr(st, k) for k in PLAN_FIELDS)
+            plan = _PLAN_VALUES(st)
             if r.plans_sent.get(st.id) != plan:
                 r.plans_sent[st.id] = plans[st.id] = plan
         framed = {cid for push in pushes for cid in push.channels}

@@ -7,6 +7,7 @@ Plain data and numpy only (picklable, no Ray, no asyncio)."""
 
 from __future__ import annotations
 
+import operator
 import time
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
@@ -73,16 +74,18 @@ class PushBatch:
     sent_ns: int = field(default_factory=time.time_ns)
 
 
+_STATE_VALUES = operator.attrgetter(*STATE_FIELDS)
+
+
 def pack_states(states: Iterable[ChannelState]) -> dict[str, tuple[object, ...]]:
-    return {st.id: tuple(getattr(st, k) for k in STATE_FIELDS) for st in states}
+    return {st.id: _STATE_VALUES(st) for st in states}
 
 
 def apply_states(channels: dict[str, ChannelState], states: dict[str, tuple[object, ...]],
                  fields: tuple[str, ...] = STATE_FIELDS) -> None:
-    """Write the worker-side values of ``states`` onto the service's ChannelStates."""
+    """Write the worker-side values of ``states`` onto the service's ChannelStates (plain
+    dataclass fields: one dict update per channel, about half the time of a setattr each)."""
     for cid, values in states.items():
         st = channels.get(cid)
-        if st is None:
-            continue
-        for k, v in zip(fields, values, strict=True):
-            setattr(st, k, v)
+        if st is not None:
+            st.__dict__.update(zip(fields, values, strict=True))
