@@ -11,7 +11,7 @@ import logging
 import time
 from collections.abc import Callable, Iterable
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, cast
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from fastapi import FastAPI
@@ -66,7 +66,7 @@ class Service:
         if cfg.cluster.engine == "ray":
             from .cluster.head import Cluster, make_remote
 
-            self.cluster = Cluster(cfg)
+            self.cluster = Cluster(cfg, self.hub)
         for src_cfg in cfg.sources:
             source = make_source(src_cfg)
             ids = list(source.channel_ids)
@@ -182,6 +182,8 @@ class Service:
             await p.source.aclose()
             self._store_evidence(p, final=True)
             self._store_runups(p)
+            if self.history is not None and getattr(p, "keeps_history", False):
+                self.store.put_history(p.finish_history())  # type: ignore[attr-defined]
         if self.cluster is not None:
             await self.cluster.close()
         if self.history is not None:
@@ -206,16 +208,11 @@ class Service:
 
     # -- per block ---------------------------------------------------------------------
     async def on_frames(
-        self, p: SourcePipeline, pushes: list[PushFrames] | list[SpectralFrame],
-        latency_s: float
+        self, p: SourcePipeline, pushes: list[PushFrames], latency_s: float
     ) -> None:
         """A block's results, one :class:`PushFrames` per analysis group, worked on as
-        arrays over the channels (frames are made only where something reads them); a list
-        of SpectralFrames (what a cluster head unpacks) goes frame by frame."""
-        if pushes and isinstance(pushes[0], SpectralFrame):
-            await self._on_frame_list(p, pushes, latency_s)
-            return
-        batch = cast(list[PushFrames], pushes)
+        arrays over the channels (frames are made only where something reads them)."""
+        batch = pushes
         self._store_evidence(p)
         self._store_runups(p)
         now = time.monotonic()
@@ -225,12 +222,18 @@ class Service:
                 chans[cid].last_frame_mono = now
         # every block: a fault seen by the worker is a state (and an event) at once
         await self._refresh_quality(chans.values())
+        # cluster mode: the actor makes the interval means, where every spectrum is
+        remote_history = getattr(p, "keeps_history", False)
+        if remote_history and self.history is not None:
+            rows = p.take_history()  # type: ignore[attr-defined]
+            if rows:
+                self.store.put_history(rows)
         if not batch:
             return
         events: list[tuple[AlarmEvent, SpectralFrame | None]] = []
         for push in batch:
             self.hub.publish_push(push, latency_s)
-            if self.history is not None:
+            if self.history is not None and not remote_history:
                 closed = self.history.add_push(push)
                 if closed:
                     self.store.put_history(closed)
@@ -243,37 +246,8 @@ class Service:
                                                   [st.fault for st in states], values):
                 events.append((e, push.frame(c)))
         if events:
-            await self.commit_and_announce(p, events)
-
-    async def _on_frame_list(
-        self, p: SourcePipeline, frames: list[SpectralFrame], latency_s: float
-    ) -> None:
-        """:meth:`on_frames` of frames one by one (the cluster head's unpacked batches)."""
-        self._store_evidence(p)
-        self._store_runups(p)
-        now = time.monotonic()
-        for f in frames:
-            p.channels[f.channel].last_frame_mono = now
-        await self._refresh_quality(p.channels.values())
-        if not frames:
-            return
-        self.hub.publish(frames, latency_s)
-        if self.history is not None:
-            closed = self.history.add(frames)
-            if closed:
-                self.store.put_history(closed)
-        events: list[tuple[AlarmEvent, SpectralFrame | None]] = []
-        for f in frames:
-            values = {"overall": f.overall}
-            values.update({f"band:{b.name}": b.value for b in f.bands})
-            values.update({f"tone:{t.name}": t.value for t in f.tones})
-            if not f.primary:
-                values = {trend_key(f.profile, k): v for k, v in values.items()}
-            self.store.record_many(f.channel, f.t_ns, values)
-            st = self.hub.channels[f.channel]
-            for e in self.alarms.evaluate(f, st.status, fault=st.fault):
-                events.append((e, f))
-        if events:
+            if remote_history:  # cluster mode: the spectra of the moment, from the actor
+                events = await p.exact_spectra(events)  # type: ignore[attr-defined]
             await self.commit_and_announce(p, events)
 
     def _trend_keys(self, push: PushFrames) -> list[list[tuple[str, str]]]:

@@ -11,27 +11,40 @@ from __future__ import annotations
 
 import asyncio
 import collections
+import copy
 import functools
 import logging
+import operator
 import time
 import uuid
 from collections.abc import Iterable
 from dataclasses import dataclass, field
 
+import numpy as np
+
 from ..config import Config
 from ..evidence import Evidence
+from ..history import SpectrumHistory
 from ..pipeline import SourcePipeline, channel_states
 from ..profiles import ProfileBank
 from ..sources import make_source
 from ..speed import NotEnoughRevolutions
-from ..types import ChannelState, PushFrames, SpectralFrame
-from .transport import PLAN_FIELDS, PushBatch, pack, pack_states
+from ..store import HistoryRow
+from ..types import ChannelState, PushFrames, PushPeaks
+from .transport import PLAN_FIELDS, PushBatch, SpectraWanted, pack_states
 
 log = logging.getLogger("quaver.cluster")
+_PLAN_VALUES = operator.attrgetter(*PLAN_FIELDS)
 
 __all__ = ["OUTBOX_BATCHES", "SourceGroup"]
 
 OUTBOX_BATCHES = 4096  # pushes kept for a service that does not pull; then oldest dropped
+# the newest pushes of each source kept whole (with their spectra) for the service's
+# requests of the spectrum of an alarm's moment: a few seconds of pushes (our choice)
+RECENT_PUSHES = 32
+# a pull of several sources, woken by one push, waits this long for the others' (our choice:
+# fewer calls, each push at most this much later)
+PULL_GATHER_S = 0.02
 RESTART_FIRST_S, RESTART_MAX_S = 1.0, 30.0  # a failed pipeline runs again (as service.supervise)
 
 
@@ -43,6 +56,14 @@ class _Run:
     plans_sent: dict[str, tuple[object, ...]] = field(default_factory=dict)
     dropped: int = 0
     task: asyncio.Task[None] | None = None
+    # spectra: what the service asked for with its latest pull, when each group's spectrum
+    # was last sent (monotonic s), the recent whole pushes, and the interval means
+    wanted: SpectraWanted = field(default_factory=SpectraWanted)
+    sent_mono: dict[object, float] = field(default_factory=dict)
+    recent: collections.deque[PushFrames] = field(
+        default_factory=lambda: collections.deque(maxlen=RECENT_PUSHES))
+    history: SpectrumHistory | None = None
+    history_rows: list[HistoryRow] = field(default_factory=list)
 
 
 class SourceGroup:
@@ -63,13 +84,20 @@ class SourceGroup:
                 make_bank=functools.partial(ProfileBank, cfg, ids), cfg=cfg,
                 evidence_s=(cfg.service.evidence_before_s, cfg.service.evidence_after_s),
             )
-            self.runs[src_cfg.id] = _Run(p)
+            hist = cfg.history
+            self.runs[src_cfg.id] = _Run(
+                p, history=SpectrumHistory(hist.interval_s) if hist.enabled else None)
         self._started = False
+        self._any = asyncio.Event()  # a push of any source waits in its outbox
+        self.gather_s = PULL_GATHER_S
 
     # -- called by the service process ---------------------------------------------------
-    async def start(self) -> str:
+    async def start(self, spectra: SpectraWanted | None = None) -> str:
         """Open every source (bind, open; raises if one cannot be set up) and start its
-        pipeline. Returns this run's incarnation id."""
+        pipeline. Returns this run's incarnation id. ``spectra``: as :meth:`pull`'s."""
+        if spectra is not None:
+            for r in self.runs.values():
+                r.wanted = spectra
         if not self._started:
             self._started = True
             for r in self.runs.values():
@@ -79,18 +107,18 @@ class SourceGroup:
         return self.incarnation
 
     async def pull(self, source_id: str, wait_s: float,
-                   written: dict[str, tuple[float | None, str]] | None = None
-                   ) -> list[PushBatch]:
+                   written: dict[str, tuple[float | None, str]] | None = None,
+                   spectra: SpectraWanted | None = None) -> list[PushBatch]:
         """The source's pushes since the last pull (oldest first); waits up to ``wait_s`` s
         for one. Starts the sources first if this run of the actor has not (a restart).
         ``written``: the speeds written at the service (PUT /speed, MQTT, OPC UA) by channel,
-        (r/min or None, who), for the worker's next block, as in one process."""
+        (r/min or None, who), for the worker's next block, as in one process. ``spectra``:
+        which pushes carry their spectra from now on (:class:`SpectraWanted`)."""
         await self.start()
         r = self.runs[source_id]
-        for cid, (rpm, who) in (written or {}).items():
-            st = r.pipeline.channels.get(cid)
-            if st is not None:
-                st.manual_rpm, st.manual_by = rpm, who
+        if spectra is not None:
+            r.wanted = spectra
+        self._written(r, written)
         if not r.outbox:
             r.ready.clear()
             # asyncio.timeout, not wait_for: on Python 3.11 wait_for can swallow a
@@ -103,6 +131,41 @@ class SourceGroup:
         out = list(r.outbox)
         r.outbox.clear()
         return out
+
+    async def pull_many(self, wait_s: float,
+                        asks: dict[str, dict[str, tuple[float | None, str]]],
+                        spectra: SpectraWanted | None = None) -> dict[str, list[PushBatch]]:
+        """:meth:`pull` of several sources in one call (``asks``: source id → its written
+        speeds): returns when any source of this actor has a push, or after ``wait_s`` s;
+        woken by a push, a moment later (``gather_s``), so that one call takes several."""
+        await self.start()
+        runs = {sid: self.runs[sid] for sid in asks}
+        for sid, r in runs.items():
+            self._written(r, asks[sid])
+            if spectra is not None:
+                r.wanted = spectra
+        if not any(r.outbox for r in runs.values()):
+            self._any.clear()
+            try:
+                async with asyncio.timeout(wait_s):
+                    await self._any.wait()
+            except TimeoutError:
+                pass
+            else:
+                await asyncio.sleep(self.gather_s)
+        out: dict[str, list[PushBatch]] = {}
+        for sid, r in runs.items():
+            if r.outbox:
+                out[sid] = list(r.outbox)
+                r.outbox.clear()
+        return out
+
+    @staticmethod
+    def _written(r: _Run, written: dict[str, tuple[float | None, str]] | None) -> None:
+        for cid, (rpm, who) in (written or {}).items():
+            st = r.pipeline.channels.get(cid)
+            if st is not None:
+                st.manual_rpm, st.manual_by = rpm, who
 
     def request_evidence(self, source_id: str, event_id: int, channel: str, center_index: int,
                          spectrum: dict[str, object]) -> None:
@@ -134,6 +197,34 @@ class SourceGroup:
 
     def finish_evidence(self, source_id: str) -> list[Evidence]:
         return self.runs[source_id].pipeline.take_evidence(final=True)
+
+    def spectra(self, source_id: str, wanted: list[tuple[str, int, str]]
+                ) -> list[np.ndarray | None]:
+        """The power spectra (input unit², as ``PushFrames.power``) of (profile, end_index,
+        channel) from the source's recent pushes; None for one no longer kept."""
+        recent = self.runs[source_id].recent
+        out: list[np.ndarray | None] = []
+        for profile, end_index, channel in wanted:
+            got = None
+            for push in reversed(recent):
+                if push.end_index == end_index and push.profile == profile \
+                        and channel in push.channels:
+                    got = push.power[push.channels.index(channel)]
+                    break
+            out.append(got)
+        return out
+
+    def finish_history(self, source_id: str) -> list[HistoryRow]:
+        """The interval means still open and not yet sent (at shut-down)."""
+        r = self.runs[source_id]
+        rows = [row for b in r.outbox for row in b.history]  # never pulled
+        for b in r.outbox:
+            b.history = []
+        rows += r.history_rows
+        r.history_rows = []
+        if r.history is not None:
+            rows += r.history.flush()
+        return rows
 
     def where(self) -> dict[str, object]:
         """Which process, host and Ray node (None outside Ray) this run is in."""
@@ -180,26 +271,39 @@ class SourceGroup:
     async def _publish(self, p: SourcePipeline, pushes: list[PushFrames],
                        latency_s: float) -> None:
         r = self.runs[p.source.id]
-        # the transport packs frames (service.cluster.transport); a push could go as it is
-        frames = [f for push in pushes for f in push.frames()]
-        self._put(r, self._batch(r, frames, latency_s))
+        now = time.monotonic()
+        sent: list[PushFrames] = []
+        for push in pushes:
+            r.recent.append(push)
+            if r.history is not None:  # interval means here, where every spectrum is
+                r.history_rows += r.history.add_push(push)
+            # a push carries its spectra when the service wants them (a subscriber of its
+            # channels, or the group's spectrum is older than every_s), else goes without
+            key = (push.channels, push.profile, push.power.shape)
+            last = r.sent_mono.get(key)
+            if last is None or now - last >= r.wanted.every_s or r.wanted.takes(push.channels):
+                r.sent_mono[key] = now
+                sent.append(push)
+            else:
+                sent.append(_without_spectra(push))
+        self._put(r, self._batch(r, sent, latency_s))
 
-    def _batch(self, r: _Run, frames: list[SpectralFrame], latency_s: float) -> PushBatch:
+    def _batch(self, r: _Run, pushes: list[PushFrames], latency_s: float) -> PushBatch:
         p = r.pipeline
         now = time.monotonic()
         states = p.channels.values()
         plans: dict[str, tuple[object, ...]] = {}
         for st in states:
-            plan = tuple(getattr(st, k) for k in PLAN_FIELDS)
+            plan = _PLAN_VALUES(st)
             if r.plans_sent.get(st.id) != plan:
                 r.plans_sent[st.id] = plans[st.id] = plan
-        framed = {f.channel for f in frames}
+        framed = {cid for push in pushes for cid in push.channels}
         runups = {st.id: st.runup for st in states if st.runup is not None}
         status = p.source.status()
         if r.dropped:
             status["outbox_dropped"] = r.dropped
         return PushBatch(
-            source_id=p.source.id, incarnation=self.incarnation, groups=pack(frames),
+            source_id=p.source.id, incarnation=self.incarnation, pushes=pushes,
             states=pack_states(states), plans=plans,
             frame_age_s=_alive_without_frames(states, framed, now),
             counters=p.source.counters, status=status, latency_s=latency_s,
@@ -208,7 +312,13 @@ class SourceGroup:
             runup_setup={cid: (cap.orders, cap.rpm_step) for cid, cap in runups.items()},
             runup_records={cid: recs for cid, cap in runups.items()
                            if (recs := cap.take_records())},
+            history=self._take_history(r),
         )
+
+    @staticmethod
+    def _take_history(r: _Run) -> list[HistoryRow]:
+        rows, r.history_rows = r.history_rows, []
+        return rows
 
     def _put(self, r: _Run, batch: PushBatch) -> None:
         if len(r.outbox) >= OUTBOX_BATCHES:
@@ -216,6 +326,16 @@ class SourceGroup:
             r.dropped += 1
         r.outbox.append(batch)
         r.ready.set()
+        self._any.set()
+
+
+def _without_spectra(push: PushFrames) -> PushFrames:
+    """A copy of ``push`` whose spectra are left behind (``power`` of shape (C, 0)): the
+    bands, overall, tones, quality and speed travel, the ≈ 95 % of the bytes do not."""
+    out = copy.copy(push)  # PushFrames' own __getstate__: the arrays shared, not copied
+    out.power = np.empty((len(push.channels), 0), dtype=push.power.dtype)
+    out.peaks = PushPeaks(out.power, push.peaks.settings, push.peaks._find)
+    return out
 
 
 def _alive_without_frames(states: Iterable[ChannelState], framed: set[str], now: float

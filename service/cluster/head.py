@@ -1,6 +1,6 @@
 """The service process's side of cluster mode: connect to Ray (or start a local one), place
 each group of sources on an actor, and stand in for each source's pipeline: pull its pushes,
-turn them back into frames and hand them to the service exactly as a local pipeline does.
+hand their PushFrames to the service exactly as a local pipeline does.
 
 Ray is imported here only, when a cluster starts (the optional ``ray`` extra). Knows the
 service's pipeline seam (``publish``, ``failed``, evidence) but not the hub, alarms or store."""
@@ -8,6 +8,7 @@ service's pipeline seam (``publish``, ``failed``, evidence) but not the hub, ala
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 import logging
 import os
 import sys
@@ -22,16 +23,19 @@ import numpy as np
 from ..config import Config, SourceConfig
 from ..config.cluster import node_resource
 from ..evidence import Evidence
-from ..pipeline import _peak_rows
 from ..sources import make_source
 from ..sources.base import Source
 from ..speed import NotEnoughRevolutions
-from ..types import ChannelState, SourceCounters, SpectralFrame
+from ..store import HistoryRow
+from ..types import ChannelState, PushFrames, SourceCounters, SpectralFrame
 
 if TYPE_CHECKING:
     from dsp.orders import OrderSpectrum
+
+    from ..alarms import AlarmEvent
+    from ..hub import Hub
 from .actor import SourceGroup
-from .transport import PLAN_FIELDS, PushBatch, apply_states, unpack
+from .transport import PLAN_FIELDS, PushBatch, SpectraWanted, apply_states
 
 log = logging.getLogger("quaver.cluster")
 
@@ -39,6 +43,12 @@ __all__ = ["ActorLost", "Cluster", "RemotePipeline", "RemoteSource", "group_sour
 
 PULL_WAIT_S = 1.0  # a pull returns after this long without a push (our choice)
 CALL_TIMEOUT_S = 30.0  # a start or stop call that takes longer has failed (our choice)
+SPECTRA_EVERY_S = 1.0  # without a subscriber, each group's spectrum comes this often (our choice)
+STALE_KEPT = 1024  # pushes remembered as having come without spectra (the actor keeps fewer)
+SPECTRUM_CALL_S = 2.0  # the spectrum of an alarm's moment: asked of the actor, this bound
+FINISH_CALL_S = 5.0  # at shut-down: the last evidence and interval means, this bound
+# what a stream subscriber reads a frame's spectrum for (its peaks are found from it)
+SPECTRUM_KINDS = frozenset({"spectrum", "tones"})
 RELOCATABLE = ("file", "simulated")
 
 
@@ -61,13 +71,17 @@ def group_sources(cfg: Config) -> list[tuple[str | None, list[str]]]:
 class Cluster:
     """Ray, connected (or started locally) on first use, and the service's actors."""
 
-    def __init__(self, cfg: Config) -> None:
+    def __init__(self, cfg: Config, hub: Hub | None = None) -> None:
         self.cfg = cfg
+        self.hub = hub
         self.groups = group_sources(cfg)
         self.actors: list[Any] = []
         self.by_source: dict[str, Any] = {}
         self._started_ray = False
         self._lock = asyncio.Lock()
+        self.replaced = 0  # actors started anew after Ray gave them up
+        self._remote_cls: Any = None
+        self._pullers: dict[int, _Puller] = {}
 
     async def ensure(self) -> None:
         async with self._lock:
@@ -108,24 +122,68 @@ class Cluster:
             signal.signal(signal.SIGTERM, term)
 
     def _spawn(self) -> None:
-        import ray
-
-        remote_cls = ray.remote(SourceGroup)
         for node, ids in self.groups:
-            opts: dict[str, Any] = {
-                "max_restarts": self.cfg.cluster.max_restarts, "max_task_retries": 0,
-                # an actor mostly waits on sockets and numpy; a quarter CPU each lets a
-                # node host several, and the node's CPUs bound them all together
-                "num_cpus": 0.25, "max_concurrency": 1000,
-            }
-            if node is not None:
-                opts["resources"] = {node_resource(node): 0.001}
-            else:
-                opts["scheduling_strategy"] = "SPREAD"
-            actor = remote_cls.options(**opts).remote(self.cfg, ids)
+            actor = self._new_actor(node, ids)
             self.actors.append(actor)
             for sid in ids:
                 self.by_source[sid] = actor
+
+    def _new_actor(self, node: str | None, ids: list[str]) -> Any:
+        import ray
+
+        opts: dict[str, Any] = {
+            "max_restarts": self.cfg.cluster.max_restarts, "max_task_retries": 0,
+            # an actor mostly waits on sockets and numpy; a quarter CPU each lets a
+            # node host several, and the node's CPUs bound them all together
+            "num_cpus": 0.25, "max_concurrency": 1000,
+        }
+        if node is not None:
+            opts["resources"] = {node_resource(node): 0.001}
+        else:
+            opts["scheduling_strategy"] = "SPREAD"
+        if self._remote_cls is None:
+            self._remote_cls = ray.remote(SourceGroup)
+        return self._remote_cls.options(**opts).remote(self.cfg, ids)
+
+    async def replace_if_dead(self, actor: Any) -> bool:
+        """After a call to ``actor`` failed: if Ray has given it up (its ``max_restarts``
+        used, or killed for good), start a new actor for its sources in its place; the
+        service's back-off between a failed source's runs (``service.supervise``) paces
+        the attempts. True when the sources now have another actor."""
+        async with self._lock:
+            try:
+                i = next(k for k, a in enumerate(self.actors) if a is actor)
+            except StopIteration:
+                return any(a is not actor for a in self.by_source.values())  # replaced
+            if await asyncio.to_thread(_actor_state, actor) != "DEAD":
+                return False  # alive, or being restarted by Ray
+            node, ids = self.groups[i]
+            self.actors[i] = new = self._new_actor(node, ids)
+            for sid in ids:
+                self.by_source[sid] = new
+            self.replaced += 1
+            log.warning("the actor of %s was given up by Ray; a new one replaces it",
+                        ", ".join(ids))
+            return True
+
+    def puller(self, actor: Any) -> _Puller:
+        """The one :class:`_Puller` of ``actor`` (those of replaced actors are dropped)."""
+        p = self._pullers.get(id(actor))
+        if p is None or p.actor is not actor:
+            live = {id(a) for a in self.actors} | {id(a) for a in self.by_source.values()}
+            self._pullers = {k: v for k, v in self._pullers.items() if k in live}
+            p = self._pullers[id(actor)] = _Puller(actor, self)
+        return p
+
+    def spectra_wanted(self) -> SpectraWanted:
+        """Which pushes must bring their spectra: those of channels a hub subscriber reads
+        spectra or tones of (MQTT and OPC UA publishers subscribe like any client)."""
+        subs = [] if self.hub is None else [
+            s for s in self.hub.subscribers if s.kinds & SPECTRUM_KINDS]
+        if any(s.channels is None for s in subs):
+            return SpectraWanted(SPECTRA_EVERY_S, None)
+        return SpectraWanted(SPECTRA_EVERY_S,
+                             frozenset(c for s in subs for c in (s.channels or ())))
 
     async def close(self) -> None:
         import ray
@@ -147,6 +205,57 @@ class Cluster:
             self._started_ray = False
 
 
+def _actor_state(actor: Any) -> str | None:
+    """Ray's state of ``actor`` ("ALIVE", "RESTARTING", "DEAD" …) from its control store
+    (``ray._private.state``: no public call gives one actor's state without Ray's
+    dashboard); None when it cannot be read."""
+    try:
+        from ray._private import state
+
+        info = state.actors(actor_id=actor._actor_id.hex())
+        return str(info["State"]) if info else None
+    except Exception as e:  # an older or newer Ray: treated as not known
+        log.info("actor state not read: %s", e)
+        return None
+
+
+class _Puller:
+    """The pulls of one actor's sources as one call at a time (``SourceGroup.pull_many``):
+    each source asks when it is ready for more; the call in flight takes every source that
+    asked before it started, the next one those that asked since. One call per actor instead
+    of one per source and push: Ray's cost per call, on both sides, is paid less often."""
+
+    def __init__(self, actor: Any, cluster: Cluster) -> None:
+        self.actor, self.cluster = actor, cluster
+        self.asks: dict[str, tuple[asyncio.Future[list[PushBatch]],
+                                   dict[str, tuple[float | None, str]]]] = {}
+        self.task: asyncio.Task[None] | None = None
+
+    async def pull(self, source_id: str, written: dict[str, tuple[float | None, str]]
+                   ) -> list[PushBatch]:
+        fut: asyncio.Future[list[PushBatch]] = asyncio.get_running_loop().create_future()
+        self.asks[source_id] = (fut, written)
+        if self.task is None or self.task.done():
+            self.task = asyncio.create_task(self._run(), name="cluster-pull")
+        return await fut
+
+    async def _run(self) -> None:
+        while self.asks:
+            asks, self.asks = self.asks, {}
+            try:
+                got: dict[str, list[PushBatch]] = await self.actor.pull_many.remote(
+                    PULL_WAIT_S, {sid: w for sid, (_, w) in asks.items()},
+                    self.cluster.spectra_wanted())
+            except Exception as e:  # every source of the actor learns it was lost
+                for fut, _ in asks.values():
+                    if not fut.done():
+                        fut.set_exception(e)
+                continue
+            for sid, (fut, _) in asks.items():
+                if not fut.done():
+                    fut.set_result(got.get(sid, []))
+
+
 class ActorLost(RuntimeError):
     """The actor running a source is gone (its process or node); the source is failed until
     Ray has restarted it."""
@@ -165,6 +274,7 @@ class RemoteSource:
         self.counters: SourceCounters = local.counters
         self._status: dict[str, object] = local.status()
         self.cluster = cluster
+        self.pipeline: RemotePipeline | None = None  # set by make_remote
 
     @property
     def fs(self) -> float | None:
@@ -176,10 +286,14 @@ class RemoteSource:
 
     async def start(self) -> None:
         await self.cluster.ensure()
-        await asyncio.wait_for(self.actor.start.remote(), CALL_TIMEOUT_S)
+        await asyncio.wait_for(self.actor.start.remote(self.cluster.spectra_wanted()),
+                               CALL_TIMEOUT_S)
 
     async def aclose(self) -> None:
-        pass  # the cluster stops its actors (Cluster.close)
+        # the cluster stops its actors (Cluster.close); before that the source's last
+        # evidence and interval means are fetched, the loop free meanwhile
+        if self.pipeline is not None:
+            await self.pipeline.finish()
 
     def status(self) -> dict[str, object]:
         return {**self._status, "engine": "ray", "node": self.node}
@@ -201,7 +315,7 @@ class RemotePipeline:
 
     source: RemoteSource
     channels: dict[str, ChannelState]
-    publish: Callable[[RemotePipeline, list[SpectralFrame], float], Awaitable[None]]
+    publish: Callable[[RemotePipeline, list[PushFrames], float], Awaitable[None]]
     failures: int = 0
     failed: str = ""
     restarts: int = 0
@@ -209,8 +323,15 @@ class RemotePipeline:
     incarnation: str = ""
     pushes: int = 0
     max_restarts: int = 0  # the actor's bound ([cluster] max_restarts), for the messages
+    # the actor keeps the interval means of the spectral history (service.app asks)
+    keeps_history: bool = True
     _evidence: list[Evidence] = field(default_factory=list)
+    _history: list[HistoryRow] = field(default_factory=list)
     _remote_failures: int = 0
+    # the newest push of each group that came with its spectra, and the recent pushes that
+    # came without: (profile, end index) → their channels
+    _spectra: dict[object, PushFrames] = field(default_factory=dict)
+    _stale: dict[tuple[str, int], list[tuple[str, ...]]] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         self.started_mono = time.monotonic()
@@ -219,26 +340,31 @@ class RemotePipeline:
         """Pull the source's pushes until cancelled; raises when the actor is lost (the
         service reports the source failed and runs this again after its back-off, by which
         time Ray has restarted the actor, on another node if its own was lost)."""
+        actor = self.source.actor
         try:
-            await self._pull_loop()
+            await self._pull_loop(actor)
         except Exception as e:
+            # Ray's text runs to many lines: say what happened and what comes next
+            first = str(e).strip().splitlines()[0][:200] if str(e).strip() else ""
+            if await self.source.cluster.replace_if_dead(actor):
+                raise ActorLost(
+                    f"actor lost ({type(e).__name__}: {first}); Ray gave it up (its "
+                    f"{self.max_restarts} restarts used): a new actor takes its "
+                    "sources") from e
             if type(e).__module__.startswith("ray") and "Actor" in type(e).__name__:
-                # Ray's text runs to many lines: say what happened and what comes next
-                first = str(e).strip().splitlines()[0][:200] if str(e).strip() else ""
                 raise ActorLost(
                     f"actor lost ({type(e).__name__}: {first}); Ray restarts it, on another "
                     f"node if its own is gone (at most {self.max_restarts} times)") from e
             raise
 
-    async def _pull_loop(self) -> None:
-        actor = self.source.actor
+    async def _pull_loop(self, actor: Any) -> None:
+        puller = self.source.cluster.puller(actor)
         while True:
             # the written speeds travel with every pull (a few bytes): the actor's worker
             # places them from its next block, and a restarted actor gets them again
             written = {cid: (st.manual_rpm, st.manual_by) for cid, st in self.channels.items()
                        if st.manual_rpm is not None or st.manual_by}
-            batches: list[PushBatch] = await actor.pull.remote(self.source.id, PULL_WAIT_S,
-                                                               written)
+            batches = await puller.pull(self.source.id, written)
             for b in batches:
                 await self._take(b)
 
@@ -270,8 +396,77 @@ class RemotePipeline:
             cap = self.channels[cid].runup
             if isinstance(cap, RemoteRunup):
                 cap.records += recs
+        self._history += b.history
+        for push in b.pushes:
+            self._spectra_of(push)
         self.pushes += 1
-        await self.publish(self, unpack(b.groups, _peak_rows), b.latency_s)
+        await self.publish(self, b.pushes, b.latency_s)
+
+    def _spectra_of(self, push: PushFrames) -> None:
+        """A push that came without its spectra takes its group's newest sent ones (and their
+        peaks), at most ``SpectraWanted.every_s`` older, unless a subscriber wanted them."""
+        key = (push.channels, push.profile)
+        if push.power.shape[1]:
+            self._spectra[key] = push
+            return
+        last = self._spectra.get(key)
+        if last is not None:
+            push.power, push.peaks = last.power, last.peaks
+        self._stale.setdefault((push.profile, push.end_index), []).append(push.channels)
+        if len(self._stale) > STALE_KEPT:
+            del self._stale[next(iter(self._stale))]
+
+    def _is_stale(self, f: SpectralFrame) -> bool:
+        return any(f.channel in chans for chans in self._stale.get((f.profile, f.end_index), ()))
+
+    async def exact_spectra(self, events: list[tuple[AlarmEvent, SpectralFrame | None]]
+                            ) -> list[tuple[AlarmEvent, SpectralFrame | None]]:
+        """The events' frames with the spectra of their own moment (for the alarm's stored
+        spectrum and evidence): asked of the actor for frames whose push came without them
+        (one bounded call); a frame the actor no longer has keeps the newest sent one."""
+        ask = [(i, f) for i, (_, f) in enumerate(events) if f is not None and self._is_stale(f)]
+        if not ask:
+            return events
+        try:
+            got = await asyncio.wait_for(self.source.actor.spectra.remote(
+                self.source.id, [(f.profile, f.end_index, f.channel) for _, f in ask]),
+                SPECTRUM_CALL_S)
+        except Exception as e:
+            log.warning("source %s: spectra of %d alarm changes not got (%s); the newest "
+                        "sent ones are kept with them", self.source.id, len(ask), e)
+            return events
+        out = list(events)
+        for (i, f), power in zip(ask, got, strict=True):
+            if power is not None:
+                out[i] = (events[i][0], dataclasses.replace(f, power=np.asarray(power)))
+        return out
+
+    def take_history(self) -> list[HistoryRow]:
+        """The interval means the actor closed since the last call."""
+        out, self._history = self._history, []
+        return out
+
+    def finish_history(self) -> list[HistoryRow]:
+        """At shut-down (after :meth:`finish`): those and the intervals that were still
+        open on the actor."""
+        return self.take_history()
+
+    async def finish(self) -> None:
+        """At shut-down, before the service takes the last evidence and interval means: both
+        asked of the actor at once, in one bounded wait on the loop (not blocking it)."""
+        if self.source.id not in self.source.cluster.by_source:
+            return  # the cluster never started
+        actor, sid = self.source.actor, self.source.id
+        try:
+            ev, rows = await asyncio.wait_for(asyncio.gather(
+                actor.finish_evidence.remote(sid), actor.finish_history.remote(sid)),
+                FINISH_CALL_S)
+        except Exception as e:  # a lost actor has nothing more to give
+            log.warning("source %s: last evidence and interval means not got (%s)", sid,
+                        type(e).__name__)
+            return
+        self._evidence += ev
+        self._history += rows
 
     def reset_analysis(self) -> None:
         """Nothing to forget here: the actor's pipeline restarts its own analysis."""
@@ -282,8 +477,7 @@ class RemotePipeline:
                                                   center_index, spectrum)
 
     def take_evidence(self, *, final: bool = False) -> list[Evidence]:
-        if final:
-            self._evidence += self._call("finish_evidence", 2.0) or []
+        """The evidence the actor finished (at shut-down with what :meth:`finish` got)."""
         out, self._evidence = self._evidence, []
         return out
 
@@ -297,8 +491,10 @@ class RemotePipeline:
         return out
 
     def _call(self, method: str, timeout_s: float, *args: object) -> Any:
-        """A bounded blocking call to the actor (API routes that are read rarely); None when
-        the actor does not answer in time."""
+        """A bounded blocking call to the actor, for the API routes that read what only lives
+        there (waveform, kurtogram, run-up, order spectrum): plain ``def`` routes, run on the
+        server's worker threads, never on the event loop. None when the actor does not
+        answer in time."""
         import ray
 
         try:
@@ -341,7 +537,8 @@ class RemoteRunup:
 
 def make_remote(cfg: Config, cluster: Cluster, src_cfg: SourceConfig,
                 states: dict[str, ChannelState],
-                publish: Callable[[RemotePipeline, list[SpectralFrame], float],
+                publish: Callable[[RemotePipeline, list[PushFrames], float],
                                   Awaitable[None]]) -> tuple[Source, RemotePipeline]:
     src = RemoteSource(src_cfg, cluster)
-    return src, RemotePipeline(src, states, publish, max_restarts=cfg.cluster.max_restarts)
+    src.pipeline = RemotePipeline(src, states, publish, max_restarts=cfg.cluster.max_restarts)
+    return src, src.pipeline

@@ -49,8 +49,8 @@ class ClusterConfig(StrictModel):
     max_restarts: int = Field(
         3, ge=0, le=1000,
         description="Times Ray restarts an actor that died (its process or its node lost; "
-        "relocatable sources come back on any node with room). Beyond it the actor's sources "
-        "stay failed until the service is restarted.",
+        "relocatable sources come back on any node with room). Beyond it the service starts a "
+        "new actor for its sources (at its back-off: 1, 2, 4 … 30 s between attempts).",
     )
     object_store_mb: int = Field(
         100, ge=75, le=1_000_000,

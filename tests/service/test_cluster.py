@@ -14,22 +14,26 @@ import numpy as np
 import pytest
 from clusterkit import frame_differences, local_frames, recording, replay_doc
 
-from service.cluster.actor import SourceGroup
-from service.cluster.head import group_sources
-from service.cluster.transport import PushBatch, pack, unpack
+from service.cluster.actor import SourceGroup, _without_spectra
+from service.cluster.head import Cluster, RemotePipeline, RemoteSource, group_sources
+from service.cluster.transport import PushBatch, SpectraWanted
 from service.config import ConfigError, parse_config
 from service.demo import demo_config
-from service.pipeline import SourcePipeline, _peak_rows, channel_states
+from service.hub import Hub
+from service.pipeline import SourcePipeline, channel_states
 from service.profiles import ProfileBank
 from service.sources import make_source
+from service.store import HistoryRow
 from service.types import SampleBlock
 
 
-def test_a_push_packed_and_unpacked_gives_the_pipelines_frames() -> None:
+def test_a_push_through_pickle_gives_the_pipelines_frames_and_goes_lighter_without_spectra(
+) -> None:
     # every source of the demo (pumps, gearbox, the variable-speed fan with its tacho), four
     # seconds of the plant model pushed in 0.1 s blocks as the simulated source cuts them
     cfg = demo_config(data_dir="unused")
     pushes = 0
+    whole_bytes = light_bytes = 0
     for src_cfg in cfg.sources:
         src = make_source(src_cfg)
         ids = list(src.channel_ids)
@@ -39,17 +43,30 @@ def test_a_push_packed_and_unpacked_gives_the_pipelines_frames() -> None:
         n = round(0.1 * fs)
         for k in range(0, round(4.0 * fs), n):
             x = src.model.render(k, n)  # type: ignore[attr-defined]
-            frames = p.process(SampleBlock(src_cfg.id, tuple(ids), x, k, k * 1000, fs))
-            # through pickle, as Ray sends it
-            back = unpack(pickle.loads(pickle.dumps(pack(frames))), _peak_rows)
+            got = p.process_pushes(SampleBlock(src_cfg.id, tuple(ids), x, k, k * 1000, fs))
+            frames = [f for push in got for f in push.frames()]
+            # through pickle, as Ray sends it: the same frames
+            whole = pickle.dumps(got)
+            back = [f for push in pickle.loads(whole) for f in push.frames()]
             assert len(back) == len(frames)
             for a, b in zip(frames, back, strict=True):
                 assert frame_differences(a, b) == [], a.channel
+            # without spectra: every value but the spectra (and the peaks found from them)
+            light = pickle.dumps([_without_spectra(push) for push in got])
+            thin = [f for push in pickle.loads(light) for f in push.frames()]
+            for a, b in zip(frames, thin, strict=True):
+                assert frame_differences(a, b, skip=("power", "peaks")) == [], a.channel
+                assert b.power.shape == (0,)
+            whole_bytes += len(whole)
+            light_bytes += len(light)
             pushes += bool(frames)
     assert pushes > 40  # every source made frames in most pushes
+    # the spectra are most of a push's bytes (common practice: lines + 1 float32 per channel
+    # against a few dozen band and tone values)
+    assert light_bytes < 0.25 * whole_bytes, (light_bytes, whole_bytes)
 
 
-def test_pack_keeps_one_batch_per_analysis_group() -> None:
+def test_a_push_without_spectra_takes_its_groups_newest_sent_ones_at_the_head() -> None:
     cfg = parse_config(replay_doc(Path("x.wav")), source="test")
     ids = ["m1-de-h", "m1-de-v"]
     p = SourcePipeline(make_source(cfg.sources[0]), channel_states(cfg, "rec", ids), None,  # type: ignore[arg-type]
@@ -57,42 +74,75 @@ def test_pack_keeps_one_batch_per_analysis_group() -> None:
     t = np.arange(2560 * 3) / 2560.0
     x = np.stack([np.sin(2 * np.pi * 24.75 * t), np.cos(2 * np.pi * 24.75 * t)]).astype(
         np.float32)
-    frames = p.process(SampleBlock("rec", tuple(ids), x, 0, 0, 2560.0))
-    groups = pack(frames)
-    # two profiles ("wide", "narrow"), both channels in each: one batch per profile and hop,
-    # holding both channels' spectra as one [C, lines + 1] array
-    profiles = [g.shared[0] for g in groups]
-    assert set(profiles) == {"wide", "narrow"}
-    assert all(g.channels == tuple(ids) for g in groups)
-    assert {g.power.shape for g in groups} == {(2, 401), (2, 201)}
-    assert sum(len(g.channels) for g in groups) == len(frames)
+    first = p.process_pushes(SampleBlock("rec", tuple(ids), x, 0, 0, 2560.0))
+    later = p.process_pushes(SampleBlock("rec", tuple(ids), x, x.shape[1], 10**9, 2560.0))
+    # two profiles ("wide", "narrow"), both channels in each: one push per profile
+    assert {(q.profile, q.power.shape) for q in first} == {("wide", (2, 401)),
+                                                           ("narrow", (2, 201))}
+    rp = RemotePipeline(RemoteSource(cfg.sources[0], Cluster(cfg)), {}, None)  # type: ignore[arg-type]
+    for q in first:
+        rp._spectra_of(q)
+    thin = [_without_spectra(q) for q in later]
+    for q in thin:
+        rp._spectra_of(q)
+    for q, old in zip(thin, first, strict=True):
+        assert q.power is old.power  # the newest sent
+        f = q.frame(0)
+        assert rp._is_stale(f)
+        assert not rp._is_stale(old.frame(0))
+    # a subscriber of one channel's spectra: pushes with that channel carry theirs
+    want = SpectraWanted(1.0, frozenset({"m1-de-v"}))
+    assert want.takes(ids) and not want.takes(["other"])
+    assert SpectraWanted(1.0, None).takes(["other"])
+    assert not SpectraWanted().takes(ids)
 
 
-def _group_batches(cfg_doc: dict[str, object]) -> list[PushBatch]:
+def test_the_head_wants_every_spectrum_of_the_channels_its_subscribers_read_spectra_of(
+) -> None:
+    cfg = parse_config(replay_doc(Path("x.wav")), source="test")
+    hub = Hub()
+    cluster = Cluster(cfg, hub)
+    assert cluster.spectra_wanted() == SpectraWanted(1.0, frozenset())  # nobody reads them
+    bands = hub.subscribe(["m1-de-h"])
+    bands.kinds = frozenset({"bands", "alarms"})
+    assert cluster.spectra_wanted().channels == frozenset()  # bands travel with every push
+    hub.subscribe(["m1-de-v"]).kinds = frozenset({"tones"})  # peaks come from the spectrum
+    assert cluster.spectra_wanted().channels == frozenset({"m1-de-v"})
+    every = hub.subscribe(None)
+    every.kinds = frozenset({"spectrum"})
+    assert cluster.spectra_wanted().channels is None  # every channel's
+    hub.unsubscribe(every)
+    assert cluster.spectra_wanted().channels == frozenset({"m1-de-v"})
+
+
+def _group_batches(cfg_doc: dict[str, object], spectra: SpectraWanted
+                   ) -> tuple[list[PushBatch], list[HistoryRow]]:
     """Every push of the same recording from a SourceGroup (the actor's work) in this
-    process, pulled as the service process pulls them."""
+    process, pulled as the service process pulls them; and the interval means it made."""
     cfg = parse_config(cfg_doc, source="test")
     out: list[PushBatch] = []
+    rows: list[HistoryRow] = []
 
     async def go() -> None:
         g = SourceGroup(cfg, ["rec"])
         async with asyncio.timeout(60):
-            await g.start()
+            await g.start(spectra)
             task = g.runs["rec"].task
             assert task is not None
             while not (task.done() and not g.runs["rec"].outbox):
-                out.extend(await g.pull("rec", 0.2))
+                out.extend(await g.pull("rec", 0.2, None, spectra))
+            rows.extend(g.finish_history("rec"))
             await g.stop()
 
     asyncio.run(go())
-    return out
+    return out, [r for b in out for r in b.history] + rows
 
 
 def test_the_actors_work_gives_the_local_pipelines_results(tmp_path: Path) -> None:
     doc = replay_doc(recording(tmp_path / "rec.wav"))
     local = local_frames(doc)
-    batches = _group_batches(doc)
-    remote = [f for b in batches for f in unpack(b.groups, _peak_rows)]
+    batches, _ = _group_batches(doc, SpectraWanted(1.0, None))
+    remote = [f for b in batches for push in b.pushes for f in push.frames()]
     # 12 s at fs 2560 (30720 samples): "wide" 1024-point frames every 512 samples →
     # (30720 − 1024) // 512 + 1 = 59 per channel; "narrow" decimated by 4 to 640 Hz,
     # 512-point frames every 256 (1024 input samples), the first ending at the input index
@@ -110,6 +160,32 @@ def test_the_actors_work_gives_the_local_pipelines_results(tmp_path: Path) -> No
     assert last.states["m1-de-h"][1] == 12 * 2560  # STATE_FIELDS[1]: samples
     assert {cid for b in batches for cid in b.plans} == {"m1-de-h", "m1-de-v"}
     assert len({b.incarnation for b in batches}) == 1
+
+
+def test_without_subscribers_spectra_stay_on_the_actor_and_its_interval_means_are_whole(
+        tmp_path: Path) -> None:
+    doc = replay_doc(recording(tmp_path / "rec.wav"))
+    local = local_frames(doc)
+    # nobody reads spectra, one a minute otherwise: only each group's first push has them
+    batches, rows = _group_batches(doc, SpectraWanted(60.0, frozenset()))
+    pushes = [push for b in batches for push in b.pushes]
+    with_spectra = [push for push in pushes if push.power.shape[1]]
+    assert sorted(push.profile for push in with_spectra) == ["narrow", "wide"]
+    remote = [f for push in pushes for f in push.frames()]
+    assert len(remote) == len(local)
+    for a, b in zip(local, remote, strict=True):
+        assert frame_differences(a, b, skip=("t_ns", "power", "peaks")) == [], a.channel
+    # the interval means were made on the actor from every frame's spectrum: a mean times
+    # its frame count is their sum (common practice), so summed over the rows it is the sum
+    # of the one-process frames' spectra, whichever way the replay's clock cut the intervals
+    for cid in ("m1-de-h", "m1-de-v"):
+        for prof in ("wide", "narrow"):
+            mine = [r for r in rows if r.channel == cid and r.profile == prof]
+            theirs = [f.power for f in local if f.channel == cid and f.profile == prof]
+            assert sum(r.frames for r in mine) == len(theirs)
+            total = sum(np.asarray(r.power, dtype=np.float64) * r.frames for r in mine)
+            want = np.sum(np.asarray(theirs, dtype=np.float64), axis=0)
+            np.testing.assert_allclose(total, want, rtol=1e-9)
 
 
 def _cluster_doc(**cluster: object) -> dict[str, object]:

@@ -11,6 +11,7 @@ from collections.abc import Awaitable, Callable
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pytest
 from clusterkit import frame_differences, local_frames, recording, replay_doc
 
@@ -18,9 +19,11 @@ from service.app import Service
 from service.cluster import head
 from service.cluster.actor import SourceGroup
 from service.config import Config, parse_config
+from service.history import alarm_row
 from service.speed import NotEnoughRevolutions
 from service.speedwrite import write_speed
-from service.types import SpectralFrame
+from service.store import HistoryRow
+from service.types import PushFrames, SpectralFrame
 
 
 class _Method:
@@ -70,6 +73,8 @@ def in_process(monkeypatch: pytest.MonkeyPatch) -> None:
         return getattr(self.source.actor.group, method)(self.source.id, *args)
 
     monkeypatch.setattr(head.RemotePipeline, "_call", call)
+    monkeypatch.setattr(head.Cluster, "_new_actor",
+                        lambda self, node, ids: InProcessActor(self.cfg, ids))
     monkeypatch.setattr(head.Cluster, "ensure", ensure)
     monkeypatch.setattr(head.Cluster, "close", close)
 
@@ -100,14 +105,15 @@ def test_the_head_publishes_the_actors_frames_as_the_local_pipeline_does(
 
     async def go() -> None:
         svc = Service(cfg)
-        publish = svc.hub.publish
+        publish = svc.hub.publish_push
 
-        def capture(frames: Any, latency_s: float = 0.0) -> None:
-            frames = list(frames)
-            got.extend(frames)
-            publish(frames, latency_s)
+        def capture(push: PushFrames, latency_s: float = 0.0) -> None:
+            got.extend(push.frames())
+            publish(push, latency_s)
 
-        svc.hub.publish = capture  # type: ignore[method-assign]
+        svc.hub.publish_push = capture  # type: ignore[method-assign]
+        # a subscriber of every channel's spectra: every push brings its own
+        svc.hub.subscribe().kinds = frozenset({"spectrum"})
         await svc.start()
         try:
             await until(lambda: len(got) >= len(local), 30, "every frame")
@@ -127,6 +133,59 @@ def test_the_head_publishes_the_actors_frames_as_the_local_pipeline_does(
     assert len(got) == len(local)
     for a, b in zip(local, got, strict=True):
         assert frame_differences(a, b, skip=("t_ns",)) == [], (a.channel, a.profile, a.seq)
+
+
+def test_an_alarms_stored_spectrum_is_its_own_moments_though_pushes_came_without(
+        in_process: None, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    doc = replay_doc(recording(tmp_path / "rec.wav"), replay_speed=4.0)
+    # raised 3 s of signal after the first frame (common practice: an on-delay counts on
+    # the frames' own clock), when the pushes have long stopped bringing their spectra
+    doc["alarms"] = [{"channel": "m1-de-h", "overall": True, "alert": 1e-9,
+                      "danger": 1e9, "on_delay_s": 3.0}]
+    local = [f for f in local_frames(doc) if f.channel == "m1-de-h" and f.profile == "wide"]
+    cfg = parse_config({**doc, "service": {"data_dir": str(tmp_path / "data")},
+                        "cluster": {"engine": "ray"}}, source="test")
+    monkeypatch.setattr(head, "SPECTRA_EVERY_S", 60.0)  # only each group's first push
+    rows: list[HistoryRow] = []
+    asked: list[int] = []
+    spectra = SourceGroup.spectra
+
+    def counted(self: SourceGroup, source_id: str, wanted: list[Any]) -> Any:
+        asked.append(len(wanted))
+        return spectra(self, source_id, wanted)
+
+    monkeypatch.setattr(SourceGroup, "spectra", counted)
+
+    async def go() -> None:
+        svc = Service(cfg)
+        put = svc.store.put_history
+
+        def keep(r: Any) -> Any:
+            rows.extend(r)
+            return put(r)
+
+        svc.store.put_history = keep  # type: ignore[method-assign]
+        await svc.start()
+        try:
+            await until(lambda: any(r.reason == "alarm" for r in rows), 30, "alarm spectrum")
+            assert svc.hub.channels["m1-de-h"].status == "ok"
+            await until(lambda: svc.hub.channels["m1-de-h"].frames == len(local), 30,
+                        "the whole recording analysed")
+        finally:
+            await svc.stop()
+
+    run(go())
+    alarm = [r for r in rows if r.reason == "alarm"]
+    assert len(alarm) == 1 and asked == [1]
+    # the stored spectrum is one of the one-process frames' (bit for bit), not the first
+    # one the head was sent
+    match = [k for k, f in enumerate(local)
+             if np.array_equal(alarm_row(f, None).power, alarm[0].power)]
+    assert len(match) == 1 and match[0] >= 12, match  # 3 s at a 0.2 s hop: frame 15
+    # and the interval means came from the actor at shut-down, every frame of the channel
+    means = [r for r in rows if r.reason == "interval" and r.channel == "m1-de-h"
+             and r.profile == "wide"]
+    assert sum(r.frames for r in means) == len(local)
 
 
 def test_a_lost_actor_shows_failed_with_its_reason_and_its_restart_is_taken_up(
@@ -202,6 +261,46 @@ def test_a_lost_actor_shows_failed_with_its_reason_and_its_restart_is_taken_up(
             # newest first: ok (committed just after the state is set), after the failure
             await until(lambda: back()[:1] == ["ok"], 30, "the ok event committed")
             assert "failed" in back()
+        finally:
+            await svc.stop()
+
+    run(go())
+
+
+def test_an_actor_ray_gave_up_is_replaced_and_its_source_comes_back(
+        in_process: None, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    cfg = parse_config({
+        "service": {"data_dir": str(tmp_path / "data")},
+        "analysis": {"fmax_hz": 4000.0, "lines": 400, "overlap": 0.5},
+        "cluster": {"engine": "ray", "workers": 1, "max_restarts": 0},
+        "sources": [{"id": "sim", "kind": "simulated", "scenario": "demo",
+                     "sample_rate_hz": 10240.0, "channels": ["p1-de-h"], "speed": 4.0}],
+    }, source="test")
+    # Ray's state of a lost actor with no restarts left
+    monkeypatch.setattr(head, "_actor_state", lambda a: "DEAD" if a.lost else "ALIVE")
+
+    async def go() -> None:
+        svc = Service(cfg)
+        await svc.start()
+        try:
+            st = svc.hub.channels["p1-de-h"]
+            await until(lambda: st.status == "ok", 30, "first frames")
+            assert svc.cluster is not None
+            old = svc.cluster.by_source["sim"]
+            first = svc.by_source["sim"].incarnation  # type: ignore[attr-defined]
+            old.lost = True
+            await until(lambda: st.status == "failed", 30, "failed shown")
+            await old.group.stop()
+            # no one replaces it by hand: the head starts a new actor after its back-off
+            await until(lambda: st.status == "ok", 30, "ok again on a new actor")
+            assert svc.cluster.replaced == 1
+            assert svc.cluster.by_source["sim"] is not old
+            assert svc.cluster.actors == [svc.cluster.by_source["sim"]]
+            assert svc.by_source["sim"].incarnation != first  # type: ignore[attr-defined]
+            failed = [e for e in svc.store.events(limit=100)
+                      if e["kind"] == "status" and e["to_state"] == "failed"]
+            assert failed and all("Ray gave it up (its 0 restarts used): a new actor takes "
+                                  "its sources" in str(e["message"]) for e in failed)
         finally:
             await svc.stop()
 

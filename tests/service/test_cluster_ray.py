@@ -32,7 +32,7 @@ from ray.cluster_utils import Cluster as RayTestCluster  # noqa: E402
 from service.app import Service  # noqa: E402
 from service.config import parse_config  # noqa: E402
 from service.config.cluster import node_resource  # noqa: E402
-from service.types import SpectralFrame  # noqa: E402
+from service.types import PushFrames, SpectralFrame  # noqa: E402
 
 pytestmark = pytest.mark.slow  # a Ray cluster of three nodes: ~40 s for the file
 
@@ -101,21 +101,30 @@ def test_the_cluster_gives_the_one_process_results(
     cfg = parse_config({**doc, "service": {"data_dir": str(tmp_path / "data")},
                         "cluster": {"engine": "ray", "address": c.address}}, source="test")
     got: list[SpectralFrame] = []
+    took: dict[str, float] = {}
 
     async def go() -> None:
         svc = Service(cfg)
-        publish = svc.hub.publish
+        publish = svc.hub.publish_push
 
-        def capture(frames: Any, latency_s: float = 0.0) -> None:
-            frames = list(frames)
-            got.extend(frames)
-            publish(frames, latency_s)
+        def capture(push: PushFrames, latency_s: float = 0.0) -> None:
+            got.extend(push.frames())
+            publish(push, latency_s)
 
-        svc.hub.publish = capture  # type: ignore[method-assign]
+        svc.hub.publish_push = capture  # type: ignore[method-assign]
+        # a subscriber of every channel's spectra: every push brings its own
+        svc.hub.subscribe().kinds = frozenset({"spectrum"})
         await svc.start()
         try:
             await until(lambda: len(got) >= len(local), 90, "every frame of the replay")
             await asyncio.sleep(0.5)  # nothing more comes
+            # what only lives on the actor, asked as an API route asks (a worker thread):
+            # the newest second of the recording's samples
+            t0 = time.monotonic()
+            wave = await asyncio.to_thread(
+                svc.by_source["rec"].latest_waveform, "m1-de-h", 1.0)
+            took["waveform_s"] = time.monotonic() - t0
+            assert wave is not None and wave[1] == 2560.0 and wave[0].shape == (2560,)
         finally:
             await svc.stop()
 
@@ -125,6 +134,7 @@ def test_the_cluster_gives_the_one_process_results(
     for a, b in zip(local, got, strict=True):
         # t_ns: the replay's clock starts at each run's wall time
         assert frame_differences(a, b, skip=("t_ns",)) == [], (a.channel, a.profile, a.seq)
+    print(f"waveform from the actor in {took['waveform_s']:.3f} s")
 
 
 def test_a_lost_node_moves_its_relocatable_source_and_nothing_is_lost(
@@ -216,3 +226,42 @@ def test_a_lost_node_moves_its_relocatable_source_and_nothing_is_lost(
     run(go(), 240)
     print(f"node loss: failed shown after {report['failed_after_s']:.1f} s, recovered after "
           f"{report['recovered_after_s']:.1f} s")
+
+
+def test_an_actor_ray_gave_up_is_started_anew(
+        cluster: tuple[RayTestCluster, dict[str, Any]], tmp_path: Path) -> None:
+    c, _ = cluster
+    cfg = parse_config({
+        "service": {"data_dir": str(tmp_path / "data")},
+        "analysis": {"fmax_hz": 4000.0, "lines": 400, "overlap": 0.5},
+        # no restarts: Ray gives the actor up at its first death
+        "cluster": {"engine": "ray", "address": c.address, "workers": 1, "max_restarts": 0},
+        "sources": [{"id": "sim", "kind": "simulated", "scenario": "demo",
+                     "sample_rate_hz": 10240.0, "channels": ["p1-de-h"]}],
+    }, source="test")
+    report: dict[str, float] = {}
+
+    async def go() -> None:
+        svc = Service(cfg)
+        await svc.start()
+        try:
+            assert svc.cluster is not None
+            st = svc.hub.channels["p1-de-h"]
+            await until(lambda: st.status == "ok" and st.frames > 3, 60, "first frames")
+            old = svc.cluster.by_source["sim"]
+            t_kill = time.monotonic()
+            ray.kill(old, no_restart=True)
+            await until(lambda: st.status == "failed", 60, "failed shown")
+            report["failed_after_s"] = time.monotonic() - t_kill
+            await until(lambda: st.status == "ok" and svc.cluster is not None
+                        and svc.cluster.replaced == 1, 90, "ok again on a new actor")
+            report["recovered_after_s"] = time.monotonic() - t_kill
+            assert svc.cluster.by_source["sim"] is not old
+            where = await asyncio.wait_for(svc.cluster.by_source["sim"].where.remote(), 30)
+            assert where["incarnation"] == svc.by_source["sim"].incarnation  # type: ignore[attr-defined]
+        finally:
+            await svc.stop()
+
+    run(go(), 240)
+    print(f"actor given up: failed shown after {report['failed_after_s']:.1f} s, a new one "
+          f"ok after {report['recovered_after_s']:.1f} s")
