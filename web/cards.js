@@ -158,7 +158,9 @@ export class Cards {
       const s = e.shown;
       const bm = store.bands.get(e.id);
       const levelsChanged = store.alarms !== s.drawnAlarms; // levels come with the alarms
-      const look = `${s.state}|${conn}|${this.tops().get(c.latest?.unit || "")}`;
+      const lim = overallLimits(e.id);
+      // what the sparkline shows besides its points: a change of it redraws at once
+      const look = `${s.state}|${conn}|${this.tops().get(c.latest?.unit || "")}|${lim.alert}|${lim.danger}`;
       if (bm?.seq !== s.bandsSeq || levelsChanged || look !== s.look) {
         s.bandsSeq = bm?.seq;
         const { named } = bandRows(e.id, bm);
@@ -168,7 +170,7 @@ export class Cards {
         e.bars.setRows(top, bm?.unit || "");
       }
       const seq = c.latest?.seq;
-      if (levelsChanged || look !== s.look || s.sparkTick === undefined || (seq !== s.sparkSeq && tick !== s.sparkTick)) {
+      if (look !== s.look || s.sparkTick === undefined || (seq !== s.sparkSeq && tick !== s.sparkTick)) {
         s.sparkTick = tick;
         s.sparkSeq = seq;
         e.spark.surface.invalidate();

@@ -24,9 +24,11 @@ const SUB_DELAY_MS = 250; // scrolling settles before the subscription changes
 // `overall` message's second, so its jitter does not cost a frame of its own
 const SUMMARY_MS = 800;
 // A bands message does not ask for a frame of its own: the cards on screen are refreshed with
-// the next `overall` message (once a second, with the tiles and the sidebar), or after this
-// long without one, so the page paints about once a second instead of once per message.
+// the next `overall` message (once a second, with the tiles and the sidebar), or after CARDS_MS
+// without one, so the page paints about once a second instead of once per message; and never
+// more often than every CARDS_MIN_MS, however fast messages come.
 const CARDS_MS = 1000;
+const CARDS_MIN_MS = 500;
 const FILTER_STATES = [["", "all states"], ["abnormal", "needs attention"], ["danger", "danger"], ["alert", "alert"], ["latched", "latched"], ["quality", "data not ok"], ["normal", "normal"]];
 
 export function mount(root) {
@@ -66,6 +68,7 @@ export function mount(root) {
   let summaryAt = 0;
   let summaryTimer = 0;
   let cardsTimer = 0;
+  let cardsAt = -Infinity;
   const cards = new Cards($("ov-cards"), () => tops);
   let subKey = "";
   let subTimer = 0;
@@ -124,9 +127,17 @@ export function mount(root) {
         schedule(false);
       }, SUMMARY_MS - (now - summaryAt));
     }
-    clearTimeout(cardsTimer);
-    cardsTimer = 0;
-    cards.refresh(now);
+    if (now - cardsAt >= CARDS_MIN_MS) {
+      cardsAt = now;
+      clearTimeout(cardsTimer);
+      cardsTimer = 0;
+      cards.refresh(now);
+    } else if (!cardsTimer) {
+      cardsTimer = setTimeout(() => {
+        cardsTimer = 0;
+        schedule(false);
+      }, CARDS_MIN_MS - (now - cardsAt));
+    }
   }
 
   function summarize(chans) {
