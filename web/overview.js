@@ -164,7 +164,7 @@ export function mount(root) {
       setHTML($("ov-group"), html`<option value="">all groups</option>${gs.map((g) => html`<option value="${g}">${g}</option>`)}`);
       $("ov-group").value = gs.includes(filters.group) ? filters.group : "";
     }
-    tops = sharedTops(chans.map((c) => ({ id: c.id, unit: c.latest?.unit || "", max: store.hist.get(c.id)?.max() ?? 0 })));
+    tops = sharedTops(chans.map((c) => ({ id: c.id, unit: c.latest?.unit || "" })), (id) => store.hist.get(id)?.max() ?? 0);
     const nAbn = summaries.length - n.normal;
     $("ov-sum").textContent = chans.length
       ? `${chans.length} channels on ${summaries.length} machine${summaries.length > 1 ? "s" : ""} · ${nAbn ? `${nAbn} need${nAbn > 1 ? "" : "s"} attention` : "all normal"}${shown < summaries.length ? ` · ${shown} shown` : ""}`
