@@ -19,11 +19,14 @@ export class BandBars {
     this.stale = false;
     this.rowH = compact ? 17 : 34;
     this.height = 0;
+    this.sig = null; // what the last setRows asked to draw (see _sig)
     this.surface = new Surface(canvas, (ctx, w, h) => this._draw(ctx, w, h));
   }
 
+  /** New rows: redrawn only when what the canvas shows changes (a value's digits, a bar's
+   *  length by a pixel, a state, a level), so a value that jitters below what can be seen costs
+   *  nothing. Returns whether a redraw was asked for. */
   setRows(rows, unit) {
-    const n = this.rows.length;
     this.rows = rows;
     this.unit = unit;
     const h = this._tops(rows).at(-1) + (this.compact ? 2 : 10);
@@ -31,7 +34,31 @@ export class BandBars {
       this.height = h;
       this.canvas.style.height = `${h}px`;
     }
+    const sig = this._sig(rows, unit);
+    if (sig === this.sig) return false;
+    this.sig = sig;
     this.surface.invalidate();
+    return true;
+  }
+
+  /** What a drawing of `rows` shows, as a string: equal strings draw the same pixels. */
+  _sig(rows, unit) {
+    const maxes = this._maxes(rows);
+    const px = Math.max(1, this.surface.w || 300); // the bar's length in pixels, near enough
+    return JSON.stringify([unit, this.stale, rows.map((r, i) => [r.name, r.via, r.lo_hz, r.hi_hz, r.x_unit, r.alert, r.danger,
+      r.state, r.more, fmtVal(r.value), Number.isFinite(r.value) ? Math.round(px * Math.min(1.01, Math.max(0, r.value / maxes[i]))) : -1])]);
+  }
+
+  /** Each row's full scale: 1.3 × its highest danger level, else one scale for the rows
+   *  without levels (1.2 × their highest value). */
+  _maxes(rows) {
+    let shared = 0;
+    for (const r of rows) if (!(r.danger > 0) && r.value > shared) shared = r.value;
+    shared = shared > 0 ? shared * 1.2 : 1;
+    return rows.map((r) => {
+      const dmax = Math.max(r.danger || 0, ...(r.more || []).map((m) => m.danger || 0));
+      return dmax > 0 ? dmax * 1.3 : shared;
+    });
   }
 
   /** Each row's top, and the end of the last one: a row with levels is taller in the full
@@ -46,6 +73,7 @@ export class BandBars {
   setStale(s) {
     if (s !== this.stale) {
       this.stale = s;
+      this.sig = null;
       this.surface.invalidate();
     }
   }
@@ -66,9 +94,7 @@ export class BandBars {
       ctx.fillText("no bands yet", this.compact ? 0 : 10, 4);
       return;
     }
-    let shared = 0;
-    for (const r of rows) if (!(r.danger > 0) && r.value > shared) shared = r.value;
-    shared = shared > 0 ? shared * 1.2 : 1;
+    const maxes = this._maxes(rows);
     const c = this.compact;
     const padL = c ? 0 : 10, padR = c ? 0 : 10;
     const nameW = c ? 74 : 0;
@@ -77,8 +103,7 @@ export class BandBars {
     const tops = this._tops(rows);
     rows.forEach((r, i) => {
       const top = tops[i];
-      const dmax = Math.max(r.danger || 0, ...(r.more || []).map((m) => m.danger || 0));
-      const max = dmax > 0 ? dmax * 1.3 : shared;
+      const max = maxes[i];
       const trackY = c ? top + 5 : top + 18;
       const trackH = c ? 7 : 9;
       const abn = r.state === "alert" || r.state === "danger";

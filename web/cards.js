@@ -15,6 +15,8 @@ import { alarmsFor, channelState, fetchWatched, history, overallRing, store } fr
 import { showSpeed } from "./speed.js";
 
 const SEEDS_AT_ONCE = 2; // trend requests in flight while cards come into view
+// A sparkline spans ten minutes on a card about 260 px wide: 2.3 s a pixel.
+export const SPARK_REDRAW_MS = 2500;
 const seeded = new Set(); // channels whose sparkline got its stored ten minutes (this page)
 
 export class Cards {
@@ -140,24 +142,41 @@ export class Cards {
     this._nextSeed();
   }
 
-  /** Update the cards on screen whose values or state changed (call inside one animation frame). */
-  refresh() {
+  /** Update the cards on screen whose values or state changed (call inside one animation
+   *  frame). The bars redraw when what they show changes (bars.js setRows); a sparkline, a
+   *  line of ten-second means where one pixel is more than two seconds, redraws with new
+   *  values at most once per SPARK_REDRAW_MS — every card in the same frame, on the page's
+   *  clock — and at once when its levels, state, scale or the connection change. */
+  refresh(now = performance.now()) {
+    const conn = store.conn;
+    const stale = conn === "reconnecting";
+    const tick = Math.floor(now / SPARK_REDRAW_MS);
     for (const e of this.visible) {
       const c = store.byId.get(e.id);
       if (!c) continue;
       this._text(e, c);
+      const s = e.shown;
       const bm = store.bands.get(e.id);
-      const key = `${bm?.seq}|${c.latest?.seq}|${e.shown.state}|${store.conn}`;
-      if (key === e.shown.key && store.alarms === e.shown.drawnAlarms) continue; // levels come with the alarms
-      e.shown.key = key;
-      e.shown.drawnAlarms = store.alarms;
-      const stale = store.conn === "reconnecting";
-      const { named } = bandRows(e.id, bm);
-      const top = topBands(named, 3);
-      fetchWatched(e.id, top); // values of bars watched on another profile
-      e.bars.setStale(stale);
-      e.bars.setRows(top, bm?.unit || "");
-      e.spark.surface.invalidate();
+      const levelsChanged = store.alarms !== s.drawnAlarms; // levels come with the alarms
+      const lim = overallLimits(e.id);
+      // what the sparkline shows besides its points: a change of it redraws at once
+      const look = `${s.state}|${conn}|${this.tops().get(c.latest?.unit || "")}|${lim.alert}|${lim.danger}`;
+      if (bm?.seq !== s.bandsSeq || levelsChanged || look !== s.look) {
+        s.bandsSeq = bm?.seq;
+        const { named } = bandRows(e.id, bm);
+        const top = topBands(named, 3);
+        fetchWatched(e.id, top); // values of bars watched on another profile
+        e.bars.setStale(stale);
+        e.bars.setRows(top, bm?.unit || "");
+      }
+      const seq = c.latest?.seq;
+      if (look !== s.look || s.sparkTick === undefined || (seq !== s.sparkSeq && tick !== s.sparkTick)) {
+        s.sparkTick = tick;
+        s.sparkSeq = seq;
+        e.spark.surface.invalidate();
+      }
+      s.drawnAlarms = store.alarms;
+      s.look = look;
     }
   }
 
@@ -174,14 +193,15 @@ export class Cards {
     const L = c.latest;
     if (s.seq !== L?.seq || s.status !== c.status || s.conn !== store.conn) {
       s.seq = L?.seq;
-      e.overall.textContent = L ? fmtVal(L.overall) : "—";
+      // a text is written only when it reads differently (a write costs style and layout)
+      setText(e.overall, L ? fmtVal(L.overall) : "—");
       if (L) {
         e.overall.dataset.seq = L.seq;
         e.overall.dataset.value = L.overall;
       }
-      e.unit.textContent = L ? unitLabel(L.unit, "rms") : "";
-      e.what.textContent = !L || L.overall_lo_hz == null ? "overall" // the band comes with a frame
-        : `overall ${fmtHz(L.overall_lo_hz)}–${fmtHz(L.overall_hi_hz)}`;
+      setText(e.unit, L ? unitLabel(L.unit, "rms") : "");
+      setText(e.what, !L || L.overall_lo_hz == null ? "overall" // the band comes with a frame
+        : `overall ${fmtHz(L.overall_lo_hz)}–${fmtHz(L.overall_hi_hz)}`);
     }
     if (s.status !== c.status || s.conn !== store.conn || s.alarms !== store.alarms || s.fault !== c.fault) {
       s.status = c.status;
@@ -243,4 +263,9 @@ export class Cards {
     this.io.disconnect();
     this._dropSurfaces();
   }
+}
+
+/** Write `text` into `el` unless it already reads so. */
+function setText(el, text) {
+  if (el.textContent !== text) el.textContent = text;
 }

@@ -25,6 +25,8 @@ const BEARING = /^(bpfo|bpfi|bsf|ftf)/i;
 const RANGES = { hour: 3600e3, day: 86400e3, month: 30 * 86400e3 };
 const STALE_AFTER_MS = 5000;
 const TREND_STEPS_S = [10, 60, 300, 600, 1800, 3600, 7200, 21600, 86400];
+// An order spectrum is of acceleration only (its unit selector offers no velocity or displacement).
+const ORDER_UNITS = ["g", "m/s2"];
 
 /** The hash of a channel's view: `#/channel/<id>`, or `…?profile=<name>` off its primary profile. */
 export function channelHash(id, profile = "") {
@@ -129,7 +131,7 @@ export function mount(root, id, { profile = "" } = {}) {
   const extras = [mountWave($("#wave-panel"), id), watchName($("#ch-name"), id, app), kgPanel, runups]; // console
   const readout = $("#readout");
   const specCanvas = $("#spec");
-  const sg = new Spectrogram($("#sgram"), { rows: 200 });
+  const sg = new Spectrogram($("#sgram"), { rows: 200, xUnit: () => plot.xUnit });
   const plot = new SpectrumPlot($("#spec"), {
     onView: (v) => sg.setView(v),
     onHover: (info) => {
@@ -145,7 +147,7 @@ export function mount(root, id, { profile = "" } = {}) {
     },
     onKey: (e) => key(e),
   });
-  const hist = mountHistory($("#hist-panel"), { id, plot, sg, view: () => ({ unit: st.unit, amplitude: st.amplitude, profile: st.profile }) });
+  const hist = mountHistory($("#hist-panel"), { id, plot, sg, view: () => ({ unit: st.unit, amplitude: st.amplitude, profile: st.profile, xUnit: plot.xUnit }) });
   plot.logAmp = prefs.logAmp ?? true;
   plot.logFreq = prefs.logFreq ?? false;
   for (const k of Object.keys(plot.show)) if (prefs[`show_${k}`] === false) plot.show[k] = false;
@@ -180,6 +182,7 @@ export function mount(root, id, { profile = "" } = {}) {
     if (p === st.profile) return;
     st.profile = p;
     window.history.replaceState(null, "", channelHash(id, p));
+    syncUnitChoices();
     // Everything drawn belongs to the old profile: start again from its latest messages.
     st.meta = null;
     st.lastSpec = 0;
@@ -247,6 +250,7 @@ export function mount(root, id, { profile = "" } = {}) {
       setHTML(seg, list.map((p) => html`<button data-profile="${p.name}" title="${profileSummary(p)}">${p.name}</button>`));
     }
     for (const b of seg.querySelectorAll("[data-profile]")) b.setAttribute("aria-pressed", String(b.dataset.profile === cur()));
+    if (syncUnitChoices()) setUnit(""); // the profile list came after a velocity unit was chosen
     renderCaption();
   }
 
@@ -306,14 +310,27 @@ export function mount(root, id, { profile = "" } = {}) {
   }
 
   // --- toolbar wiring ---------------------------------------------------------------
-  $("#sel-unit").addEventListener("change", (e) => {
-    st.unit = e.target.value;
+  $("#sel-unit").addEventListener("change", (e) => setUnit(e.target.value));
+  function setUnit(u) {
+    st.unit = u;
     sg.clear();
     hist.reload();
     plot.top = null;
     subscribe();
     loadMeta();
-  });
+  }
+  /** An order spectrum is of acceleration only: its profile offers no velocity or displacement
+   *  unit, and one chosen on another profile falls back to the profile's own. True when the
+   *  unit was changed so. */
+  function syncUnitChoices() {
+    const order = isOrder();
+    const sel = $("#sel-unit");
+    for (const o of sel.options) if (o.value) o.hidden = o.disabled = order && !ORDER_UNITS.includes(o.value);
+    if (!order || !st.unit || ORDER_UNITS.includes(st.unit)) return false;
+    sel.value = "";
+    st.unit = "";
+    return true;
+  }
   $("#sel-amp").addEventListener("change", (e) => {
     st.amplitude = e.target.value;
     sg.clear();

@@ -42,6 +42,17 @@ export function tickOrder(o) {
 }
 
 /** An axis tick label for a frequency (short: "500", "1k", "2.5k"). */
+/** A point of a spectrum's x axis: a frequency ("148.4 Hz"), or on an order spectrum
+ *  (x_unit "order") an order ("order 2.5"). */
+export function fmtX(v, xUnit) {
+  return xUnit === "order" ? `order ${+v.toPrecision(4)}` : fmtHz(v);
+}
+
+/** A tick label of a spectrum's x axis: tickHz, or an order as the spectrum labels it ("2.5×"). */
+export function tickX(v, xUnit) {
+  return xUnit === "order" ? `${+v.toPrecision(3)}×` : tickHz(v);
+}
+
 export function tickHz(f) {
   if (f >= 1000) {
     const k = f / 1000;

@@ -33,7 +33,7 @@ function offsetOf(iso) {
 /**
  * Mount the history panel in `figure` for channel `id`. `plot`: the live SpectrumPlot (the
  * picked spectrum is overlaid on it); `sg`: the Spectrogram (filled from history on the
- * first live spectrum); `view()`: {unit, amplitude, profile} the page shows.
+ * first live spectrum); `view()`: {unit, amplitude, profile, xUnit} the page shows.
  */
 export function mountHistory(figure, { id, plot, sg, view }) {
   const saved = localStorage.getItem("quaver.historyRange");
@@ -44,7 +44,7 @@ export function mountHistory(figure, { id, plot, sg, view }) {
     <canvas id="waterfall" class="plot-waterfall" aria-label="history waterfall of ${id}: time down, frequency across"></canvas>
     <p class="spec-cap" id="hist-legend" aria-live="polite"></p>`);
   const $ = (s) => figure.querySelector(s);
-  const wf = new Waterfall($("#waterfall"), { onPick: (row) => pick(row) });
+  const wf = new Waterfall($("#waterfall"), { onPick: (row) => pick(row), xUnit: () => view().xUnit });
 
   function sync() {
     for (const b of figure.querySelectorAll("[data-hrange]")) b.setAttribute("aria-pressed", String(b.dataset.hrange === st.range));

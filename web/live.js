@@ -133,7 +133,8 @@ export class Live extends EventTarget {
         unit: m.unit, overall: m.overall, overall_lo_hz: m.overall_lo_hz, overall_hi_hz: m.overall_hi_hz,
       },
     };
-    if (!this._chTimer) {
+    // a stream that brings `overall` messages tells the views once a second anyway
+    if (!this._chTimer && !this.sub?.kinds?.includes("overall")) {
       this._chTimer = setTimeout(() => {
         this._chTimer = 0;
         this._emit("channels", this.channels);

@@ -93,23 +93,36 @@ function renderAlarmSummary() {
 // (which change every few seconds on every channel) are patched in place, so a plant of a
 // thousand channels does not rebuild a thousand links each time.
 let sideValues = new Map(); // channel id → its value's <span>
+let sideOf = null; // the channel list the rows were built from
+let sideKey = ""; // and the states, bands and current channel they show
 function renderSide() {
   const cur = currentChannel();
-  const parts = [];
   const vals = [];
-  for (const [machine, chans] of groupByMachine(store.channels)) {
-    parts.push(html`<h3 data-machine="${machine}" title="${machine}"><span>${machineLabel(machine)}</span></h3>`);
-    for (const c of chans) {
-      const k = channelState(c);
-      const abn = STATES[k].rank >= STATES.latched.rank;
-      // a tacho has no overall: its speed, or what its speed status says (no signal …)
-      vals.push([c.id, isTacho(c) ? sideSpeedText(c, STATES[k].word.toLowerCase())
-        : c.latest && isLive(c.status) ? fmtVal(c.latest.overall) : STATES[k].word.toLowerCase()]);
-      parts.push(html`<a class="ch ${abn ? "abn" : ""} ${STATES[k].cls}" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${c.id}" data-state="${k}" title="${chTitle(c.id)}${c.description ? ` — ${c.description}` : ""} — ${STATES[k].word}${overallTitle(c.latest)}"${c.id === cur ? html` aria-current="page"` : ""}>${glyph(k)}<span>${chName(c.id)}</span><span class="v"></span></a>`);
-    }
+  const keys = [cur];
+  for (const c of store.channels) {
+    const k = channelState(c);
+    keys.push(k, c.latest?.overall_lo_hz, c.latest?.overall_hi_hz);
+    // a tacho has no overall: its speed, or what its speed status says (no signal …)
+    vals.push([c.id, isTacho(c) ? sideSpeedText(c, STATES[k].word.toLowerCase())
+      : c.latest && isLive(c.status) ? fmtVal(c.latest.overall) : STATES[k].word.toLowerCase()]);
   }
-  const side = document.getElementById("side");
-  if (updateHTML(side, parts)) sideValues = new Map([...side.querySelectorAll("a.ch")].map((a) => [a.dataset.channel, a.querySelector(".v")]));
+  const key = keys.join("|");
+  // the rows' markup is made only when the list, a state, a band or the current channel changed
+  if (store.channels !== sideOf || key !== sideKey) {
+    sideOf = store.channels;
+    sideKey = key;
+    const parts = [];
+    for (const [machine, chans] of groupByMachine(store.channels)) {
+      parts.push(html`<h3 data-machine="${machine}" title="${machine}"><span>${machineLabel(machine)}</span></h3>`);
+      for (const c of chans) {
+        const k = channelState(c);
+        const abn = STATES[k].rank >= STATES.latched.rank;
+        parts.push(html`<a class="ch ${abn ? "abn" : ""} ${STATES[k].cls}" href="#/channel/${encodeURIComponent(c.id)}" data-channel="${c.id}" data-state="${k}" title="${chTitle(c.id)}${c.description ? ` — ${c.description}` : ""} — ${STATES[k].word}${overallTitle(c.latest)}"${c.id === cur ? html` aria-current="page"` : ""}>${glyph(k)}<span>${chName(c.id)}</span><span class="v"></span></a>`);
+      }
+    }
+    const side = document.getElementById("side");
+    if (updateHTML(side, parts)) sideValues = new Map([...side.querySelectorAll("a.ch")].map((a) => [a.dataset.channel, a.querySelector(".v")]));
+  }
   for (const [id, text] of vals) {
     const el = sideValues.get(id);
     if (el && el.textContent !== text) el.textContent = text;
@@ -188,6 +201,7 @@ function route() {
   }
   window.quaver.view = view?.probe ?? null;
   delete document.getElementById("side").dataset.h; // the current channel changed: redraw
+  sideOf = null;
   renderSide();
 }
 

@@ -20,7 +20,15 @@ import { Cards } from "./cards.js";
 const BANDS_RATE_HZ = 1;
 const SUB_MAX_CHANNELS = 150; // more cards on screen than this (a subscription is ≤ 4 KiB): all
 const SUB_DELAY_MS = 250; // scrolling settles before the subscription changes
-const SUMMARY_MS = 1000; // the tiles and the summary line are recomputed at most this often
+// the tiles and the summary line are recomputed at most this often: a little under the
+// `overall` message's second, so its jitter does not cost a frame of its own
+const SUMMARY_MS = 800;
+// A bands message does not ask for a frame of its own: the cards on screen are refreshed with
+// the next `overall` message (once a second, with the tiles and the sidebar), or after CARDS_MS
+// without one, so the page paints about once a second instead of once per message; and never
+// more often than every CARDS_MIN_MS, however fast messages come.
+const CARDS_MS = 1000;
+const CARDS_MIN_MS = 500;
 const FILTER_STATES = [["", "all states"], ["abnormal", "needs attention"], ["danger", "danger"], ["alert", "alert"], ["latched", "latched"], ["quality", "data not ok"], ["normal", "normal"]];
 
 export function mount(root) {
@@ -59,6 +67,8 @@ export function mount(root) {
   let summaryDue = true;
   let summaryAt = 0;
   let summaryTimer = 0;
+  let cardsTimer = 0;
+  let cardsAt = -Infinity;
   const cards = new Cards($("ov-cards"), () => tops);
   let subKey = "";
   let subTimer = 0;
@@ -117,7 +127,17 @@ export function mount(root) {
         schedule(false);
       }, SUMMARY_MS - (now - summaryAt));
     }
-    cards.refresh();
+    if (now - cardsAt >= CARDS_MIN_MS) {
+      cardsAt = now;
+      clearTimeout(cardsTimer);
+      cardsTimer = 0;
+      cards.refresh(now);
+    } else if (!cardsTimer) {
+      cardsTimer = setTimeout(() => {
+        cardsTimer = 0;
+        schedule(false);
+      }, CARDS_MIN_MS - (now - cardsAt));
+    }
   }
 
   function summarize(chans) {
@@ -144,7 +164,7 @@ export function mount(root) {
       setHTML($("ov-group"), html`<option value="">all groups</option>${gs.map((g) => html`<option value="${g}">${g}</option>`)}`);
       $("ov-group").value = gs.includes(filters.group) ? filters.group : "";
     }
-    tops = sharedTops(chans.map((c) => ({ id: c.id, unit: c.latest?.unit || "", max: store.hist.get(c.id)?.max() ?? 0 })));
+    tops = sharedTops(chans.map((c) => ({ id: c.id, unit: c.latest?.unit || "" })), (id) => store.hist.get(id)?.max() ?? 0);
     const nAbn = summaries.length - n.normal;
     $("ov-sum").textContent = chans.length
       ? `${chans.length} channels on ${summaries.length} machine${summaries.length > 1 ? "s" : ""} · ${nAbn ? `${nAbn} need${nAbn > 1 ? "" : "s"} attention` : "all normal"}${shown < summaries.length ? ` · ${shown} shown` : ""}`
@@ -191,7 +211,14 @@ export function mount(root) {
       renderAlarms();
       schedule(true);
     },
-    bands: () => schedule(false),
+    bands: () => {
+      if (!cardsTimer) {
+        cardsTimer = setTimeout(() => {
+          cardsTimer = 0;
+          schedule(false);
+        }, CARDS_MS);
+      }
+    },
     conn: () => schedule(true),
     "alarm-event": () => loadEvents(),
   };
@@ -230,6 +257,7 @@ export function mount(root) {
       frame?.(); // cancel the pending frame's work
       clearTimeout(summaryTimer);
       clearTimeout(subTimer);
+      clearTimeout(cardsTimer);
       root.removeEventListener("click", click);
       root.removeEventListener("input", onInput);
       for (const [k, f] of Object.entries(on)) app.removeEventListener(k, f);

@@ -45,13 +45,30 @@ export function rulesFor(channelId, kind, name) {
   const out = [];
   const head = `${channelId}|`;
   const tail = `|${kind}|${kind === "overall" ? "overall" : name}`;
-  for (const [k, rule] of store.rules) {
+  for (const k of ruleKeysOf(channelId)) {
     if (!k.startsWith(head) || !k.endsWith(tail) || k.length < head.length + tail.length) continue;
     const pk = k.slice(head.length, k.length - tail.length);
     if (pk.includes("|")) continue;
-    out.push({ pk, profile: pk || primaryOf(channelId) || "", rule });
+    out.push({ pk, profile: pk || primaryOf(channelId) || "", rule: store.rules.get(k) });
   }
   return out;
+}
+
+// The keys of store.rules by channel (ids have no "|"), so that a channel's rules are not
+// looked for among every rule of the plant (a card's bars ask for each of their bands). Keys
+// are only ever added to store.rules: the index is made again when their number changes.
+let ruleIndex = { size: -1, by: new Map() };
+function ruleKeysOf(channelId) {
+  if (ruleIndex.size !== store.rules.size) {
+    const by = new Map();
+    for (const k of store.rules.keys()) {
+      const ch = k.slice(0, k.indexOf("|"));
+      if (!by.has(ch)) by.set(ch, []);
+      by.get(ch).push(k);
+    }
+    ruleIndex = { size: store.rules.size, by };
+  }
+  return ruleIndex.by.get(channelId) ?? [];
 }
 
 /** Bar rows (bandRows) whose value a rule watches on a profile the stream does not bring to

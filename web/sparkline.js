@@ -35,14 +35,14 @@ export function niceCeil(v) {
 /**
  * The plant's shared scale per unit, for sparklines of channels without a danger level: a
  * nice number at or above the highest value any of them showed in the last ten minutes, so
- * equal values draw at equal heights on every such card. `chans`: [{id, unit, max}] (`max`: the
- * highest value of its last ten minutes).
+ * equal values draw at equal heights on every such card. `chans`: [{id, unit}]; `maxOf(id)`:
+ * the highest value of its last ten minutes (asked only of channels without a danger level).
  */
-export function sharedTops(chans) {
+export function sharedTops(chans, maxOf) {
   const mx = new Map();
   for (const c of chans) {
     if (overallLimits(c.id).danger.length) continue;
-    mx.set(c.unit, Math.max(mx.get(c.unit) ?? 0, c.max));
+    mx.set(c.unit, Math.max(mx.get(c.unit) ?? 0, maxOf(c.id)));
   }
   return new Map([...mx].map(([u, m]) => [u, niceCeil(m * 1.1)]));
 }

@@ -1,7 +1,7 @@
 // The scrolling spectrogram: recent spectra of one channel as rows of grey (log amplitude),
 // newest on top, on the spectrum plot's frequency view. Gets data from its caller; no network.
 
-import { fmtHz, fmtVal } from "./fmt.js";
+import { fmtVal, fmtX } from "./fmt.js";
 import { MARGIN, columnExtremes } from "./spectrum.js";
 import { Scale, Surface, border, pal, plateText } from "./plot.js";
 
@@ -12,8 +12,11 @@ function parseHex(c) {
 }
 
 export class Spectrogram {
-  constructor(canvas, { rows = 300 } = {}) {
+  /** `xUnit()`: "Hz", or "order" for an order profile's spectra (read-outs in orders). */
+  constructor(canvas, { rows = 300, xUnit = () => "Hz" } = {}) {
     this.rows = rows;
+    this.canvas = canvas;
+    this.xUnit = xUnit;
     this.ring = new Array(rows).fill(null); // {values, f0, df, t_ns}
     this.head = 0; // next row to write; rows run newest → oldest from head+1 upwards
     this.count = 0;
@@ -168,6 +171,7 @@ export class Spectrogram {
     ctx.textAlign = "left";
     ctx.textBaseline = "top";
     ctx.fillText(`${fmtVal(10 ** lgLo)} … ${fmtVal(top)} (log grey scale)`, L, B + 4);
+    this.canvas.dataset.xUnit = this.xUnit() || "Hz"; // for people in devtools and the tests
 
     if (this.hover && this.hover.x >= L && this.hover.x <= R && this.hover.y >= T && this.hover.y <= B) {
       const k = Math.floor((this.hover.y - T) / rowH);
@@ -175,7 +179,7 @@ export class Spectrogram {
       if (row) {
         const f = xs.val(this.hover.x - L);
         const q = Math.max(0, Math.min(row.values.length - 1, Math.round((f - row.f0) / row.df)));
-        const text = `${fmtHz(row.f0 + q * row.df)} · −${((t0 - row.t_ns) / 1e9).toFixed(1)} s · ${fmtVal(row.values[q])}`;
+        const text = `${fmtX(row.f0 + q * row.df, this.xUnit())} · −${((t0 - row.t_ns) / 1e9).toFixed(1)} s · ${fmtVal(row.values[q])}`;
         ctx.font = `11px ${pal.mono}`;
         plateText(ctx, text, Math.min(this.hover.x + 10, R - 4), this.hover.y, {
           align: this.hover.x + 10 + ctx.measureText(text).width > R ? "right" : "left", fg: pal.ink, bg: pal.panel,

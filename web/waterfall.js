@@ -2,7 +2,7 @@
 // down the page (newest on top, each row as tall as the time it covers), frequency across.
 // Gets pooled rows from its caller (web/history.js); no network.
 
-import { fmtHz, fmtVal, tickHz } from "./fmt.js";
+import { fmtVal, fmtX, tickX } from "./fmt.js";
 import { Scale, Surface, border, linTicks, pal, plateText } from "./plot.js";
 
 const M = { l: 112, r: 14, t: 8, b: 34 };
@@ -32,8 +32,10 @@ export function poolColumns(values, f0, df, fmin, fmax, cols) {
 }
 
 export class Waterfall {
-  constructor(canvas, { onPick } = {}) {
+  /** `xUnit()`: "Hz", or "order" for an order profile's spectra (the axis is in orders). */
+  constructor(canvas, { onPick, xUnit = () => "Hz" } = {}) {
     this.canvas = canvas;
+    this.xUnit = xUnit;
     this.rows = []; // {t0_ns, t_ns, values: Float32Array, live: bool}, oldest first
     this.cols = 0;
     this.fmin = 0;
@@ -188,15 +190,17 @@ export class Waterfall {
 
     // frequency axis
     const xs = new Scale(false).set(this.fmin, this.fmax, L, R);
+    const xu = this.xUnit() || "Hz";
+    this.canvas.dataset.xUnit = xu; // for people in devtools and the tests
     ctx.fillStyle = pal["ink-2"];
     ctx.textAlign = "center";
     ctx.textBaseline = "top";
     for (const f of linTicks(this.fmin, this.fmax, Math.max(2, Math.floor((R - L) / 80)))) {
-      ctx.fillText(tickHz(f), xs.px(f), B + 4);
+      ctx.fillText(tickX(f, xu), xs.px(f), B + 4);
     }
     ctx.fillStyle = pal["ink-3"];
     ctx.textAlign = "left";
-    ctx.fillText(`Hz · ${fmtVal(10 ** lgLo)} … ${fmtVal(top)} ${this.unit} (log grey scale)`, L, B + 18);
+    ctx.fillText(`${xu === "order" ? "orders" : "Hz"} · ${fmtVal(10 ** lgLo)} … ${fmtVal(top)} ${this.unit} (log grey scale)`, L, B + 18);
     // time axis: site times of a few rows (the API's ISO 8601 with the site's offset)
     ctx.textAlign = "right";
     ctx.textBaseline = "middle";
@@ -214,7 +218,7 @@ export class Waterfall {
       if (r) {
         const k = Math.min(this.cols - 1, Math.floor(((this.hover.x - L) / (R - L)) * this.cols));
         const f = this.fmin + (k + 0.5) * ((this.fmax - this.fmin) / this.cols);
-        const text = `${shortTime(r.time, r.t_ns)}${r.live ? " (live)" : ""} · ${fmtHz(f)} · ${fmtVal(r.values[k])} · click: overlay on the spectrum`;
+        const text = `${shortTime(r.time, r.t_ns)}${r.live ? " (live)" : ""} · ${fmtX(f, this.xUnit())} · ${fmtVal(r.values[k])} · click: overlay on the spectrum`;
         ctx.font = `11px ${pal.mono}`;
         plateText(ctx, text, Math.min(this.hover.x + 10, R - 4), this.hover.y, {
           align: this.hover.x + 10 + ctx.measureText(text).width > R ? "right" : "left", fg: pal.ink, bg: pal.panel,

@@ -69,3 +69,49 @@ def test_the_fans_order_spectrum_has_an_axis_in_orders(demo: Service,
     screenshot(pg, "fan-orders")
     assert not log.errors, log.errors
     assert log.console_errors() == [], log.console_errors()
+
+
+UNITS = """() => Object.fromEntries([...document.querySelectorAll('#sel-unit option')]
+    .filter(o => o.value).map(o => [o.value, !o.disabled && !o.hidden]))"""
+X_UNITS = """() => ({sgram: document.querySelector('#sgram').dataset.xUnit,
+    waterfall: document.querySelector('#waterfall').dataset.xUnit})"""
+
+
+def test_an_order_profile_offers_acceleration_only_and_its_history_is_in_orders(
+        demo: Service, page: tuple[Any, PageLog]) -> None:
+    pg, log = page
+    for path in (f"channels/{FAN}/bands?profile=orders",
+                 f"channels/{FAN}/trend?name=overall&profile=orders"):
+        wait_for(lambda path=path: demo.status(path)[0] == 200, f"{path} to answer 200", 60)
+    chan = next(c for c in demo.get("channels") if c["id"] == FAN)
+    primary = chan["profiles"][0]["name"]
+    assert primary != "orders"
+    pg.goto(f"{demo.base_url}/#/channel/{FAN}", wait_until="domcontentloaded")
+    pg.wait_for_selector(f"#seg-profile [data-profile='{primary}']", timeout=30000)
+    # the primary (frequency) profile: velocity and displacement on offer; the spectrogram
+    # and the history waterfall on a frequency axis
+    assert all(pg.evaluate(UNITS).values()), pg.evaluate(UNITS)
+    wait_for(lambda: pg.evaluate(X_UNITS) == {"sgram": "Hz", "waterfall": "Hz"}, "Hz axes", 30)
+    pg.select_option("#sel-unit", "mm/s")
+    pg.click("#seg-profile [data-profile='orders']")
+    # an order spectrum is of acceleration only (the service resamples the acceleration at
+    # constant shaft angle): no velocity or displacement on offer, and the velocity chosen on
+    # the other profile falls back to the profile's own unit
+    def withdrawn() -> dict[str, bool] | None:
+        u: dict[str, bool] = pg.evaluate(UNITS)
+        return None if u["mm/s"] else u
+
+    units = wait_for(withdrawn, "velocity withdrawn on the order profile", 30)
+    assert units == {"mm/s": False, "in/s": False, "g": True, "m/s2": True,
+                     "um": False, "mil": False}, units
+    assert pg.input_value("#sel-unit") == ""
+    assert pg.evaluate("() => window.quaver.live.sub.unit") is None
+    # the spectrogram's read-out and the waterfall's axis are in orders, as the spectrum's
+    wait_for(lambda: pg.evaluate(X_UNITS) == {"sgram": "order", "waterfall": "order"},
+             "order axes", 60)
+    # back on the primary profile everything is on offer again
+    pg.click(f"#seg-profile [data-profile='{primary}']")
+    wait_for(lambda: all(pg.evaluate(UNITS).values()), "every unit again", 30)
+    wait_for(lambda: pg.evaluate(X_UNITS) == {"sgram": "Hz", "waterfall": "Hz"}, "Hz again", 60)
+    assert not log.errors, log.errors
+    assert log.console_errors() == [], log.console_errors()

@@ -273,3 +273,57 @@ def test_no_polling_and_views_reentered_cleanly(plant: Plant, page: tuple[Any, P
     wait_for(lambda: len(shown_tiles(pg)) == PLAN.machines, "every tile again")
     assert not log.errors, log.errors
     assert not log.console_errors(), log.console_errors()
+
+
+# Bands and overall messages of one channel, as the stream would send them, FAST_HZ a second
+# (the service rate-limits the plant view's to 1 per second: this is a page fed faster than
+# that, or a burst after a slow spell); each one's values differ from the last by far more
+# than a pixel of a bar.
+FAST_FEED = """([ch, hz, n]) => new Promise((done) => {
+  const live = window.quaver.live, store = window.quaver.store;
+  const tmpl = store.bands.get(ch), c = store.byId.get(ch);
+  let i = 0;
+  const timer = setInterval(() => {
+    i++;
+    const f = 0.5 + 0.5 * (i % 2);  // every message moves every bar and the overall
+    const seq = 1e9 + i, t_ns = c.latest.timestamp_ns + i * 1e9 / hz;
+    const overall = c.latest.overall * f;
+    live._onMessage(JSON.stringify({...tmpl, seq, timestamp_ns: t_ns, overall,
+      bands: tmpl.bands.map((b) => ({...b, value: b.value * f}))}));
+    live._onMessage(JSON.stringify({kind: "overall", channels: [{id: ch, status: c.status,
+      seq, timestamp_ns: t_ns, overall, unit: c.latest.unit, quality: c.latest.quality,
+      overall_lo_hz: c.latest.overall_lo_hz, overall_hi_hz: c.latest.overall_hi_hz}]}));
+    if (i >= n) { clearInterval(timer); done(i); }
+  }, 1000 / hz);
+})"""
+CANVAS_DRAWS = """([ch, cls]) => Number(document.querySelector(
+    `.card[data-channel="${ch}"] canvas.${cls}`).dataset.draws || 0)"""
+FAST_HZ, FAST_S = 20, 6
+
+
+def test_a_card_on_screen_repaints_at_a_bounded_rate_under_a_fast_feed(
+        plant: Plant, page: tuple[Any, PageLog]) -> None:
+    pg, log = page
+    open_plant(pg, plant.base_url)
+    first = pg.eval_on_selector("#ov-cards .card", "e => e.dataset.channel")
+    wait_for(lambda: pg.evaluate("ch => !!window.quaver.store.bands.get(ch)", first)
+             and pg.evaluate(CANVAS_DRAWS, [first, "minibars"]) > 0
+             and pg.evaluate(CANVAS_DRAWS, [first, "spark"]) > 0, f"the card of {first} drawn")
+    spark0 = pg.evaluate(CANVAS_DRAWS, [first, "spark"])
+    bars0 = pg.evaluate(CANVAS_DRAWS, [first, "minibars"])
+    sent = pg.evaluate(FAST_FEED, [first, FAST_HZ, FAST_HZ * FAST_S])
+    assert sent == FAST_HZ * FAST_S
+    spark = pg.evaluate(CANVAS_DRAWS, [first, "spark"]) - spark0
+    bars = pg.evaluate(CANVAS_DRAWS, [first, "minibars"]) - bars0
+    # the card followed the feed: its overall reads the last message's value
+    shown = pg.eval_on_selector(f".card[data-channel='{first}'] .overall", "e => e.dataset.seq")
+    assert int(shown) >= 1e9, shown
+    # ... but its sparkline (ten minutes on a card ~260 px wide: 2.3 s a pixel) redrew at most
+    # once per 2.5 s (web/cards.js SPARK_REDRAW_MS), not per message: FAST_S s gives at most
+    # FAST_S / 2.5 + 1 ticks of that clock (+1: its levels may change once with the alarms)
+    assert 1 <= spark <= FAST_S / 2.5 + 2, (spark, FAST_HZ * FAST_S)
+    # and its bars (which redraw only when what they show changes, as here every message) at
+    # most every 0.5 s (web/overview.js CARDS_MIN_MS), not per message
+    assert 1 <= bars <= FAST_S / 0.5 + 2, (bars, FAST_HZ * FAST_S)
+    assert not log.errors, log.errors
+    assert not log.console_errors(), log.console_errors()
