@@ -115,7 +115,12 @@ class TcpSource(QueuedSource):
         self._last_rx = 0.0  # loop time of the producer's connect or latest bytes
 
     async def _start(self) -> None:
-        self._server = await asyncio.start_server(self._on_connect, self.host, self.port)
+        # Framed: the stream reader holds a whole frame before it pauses the socket (it
+        # pauses above twice its limit; the default 64 KiB paused and resumed it — two
+        # epoll changes — for every frame over 128 KiB), and one read takes it all.
+        limit = self._frame_read_bytes() if self.fmt == "framed" else 1 << 16
+        self._server = await asyncio.start_server(self._on_connect, self.host, self.port,
+                                                  limit=limit)
         sock = self._server.sockets[0].getsockname()
         self.address = (str(sock[0]), int(sock[1]))
         self.state = "listening"
@@ -192,10 +197,14 @@ class TcpSource(QueuedSource):
         log.warning("source %s: dropped idle producer %s after %.3g s without data",
                     self.id, self.peer, silent_s)
 
-    async def _read(self, reader: asyncio.StreamReader) -> bytes:
+    def _frame_read_bytes(self) -> int:
+        """Bytes of one framed read: at least a whole frame of the largest payload."""
+        return max(self.read_bytes, self.max_frame_bytes + HEADER_SIZE)
+
+    async def _read(self, reader: asyncio.StreamReader, size: int | None = None) -> bytes:
         try:
             async with asyncio.timeout(self.idle_timeout_s):
-                chunk = await reader.read(self.read_bytes)
+                chunk = await reader.read(self.read_bytes if size is None else size)
         except TimeoutError:
             if self._writer is not None and not self._closed:
                 self._idle_drop(asyncio.get_running_loop().time() - self._last_rx)
@@ -269,7 +278,8 @@ class TcpSource(QueuedSource):
     async def _serve_framed(self, reader: asyncio.StreamReader) -> int:
         decoder = FrameDecoder(max_payload_bytes=self.max_frame_bytes)
         seen = 0
-        while chunk := await self._read(reader):
+        size = self._frame_read_bytes()
+        while chunk := await self._read(reader, size):
             for frame in decoder.feed(chunk):
                 problem = self._frame_problem(frame)
                 if problem:
