@@ -61,6 +61,9 @@ log = logging.getLogger(__name__)
 TCP_FORMATS = STREAM_FORMATS
 
 
+FRAMED_READER_LIMIT = 1 << 18  # bytes; pause above 512 KiB buffered (our choice)
+
+
 class TcpSource(QueuedSource):
     """Listens on ``host:port`` for one producer at a time; ``fmt`` is a raw format or
     ``"framed"``; ``fs`` in Hz is the configured sample rate. ``address`` gives the bound
@@ -115,10 +118,12 @@ class TcpSource(QueuedSource):
         self._last_rx = 0.0  # loop time of the producer's connect or latest bytes
 
     async def _start(self) -> None:
-        # Framed: the stream reader holds a whole frame before it pauses the socket (it
-        # pauses above twice its limit; the default 64 KiB paused and resumed it — two
-        # epoll changes — for every frame over 128 KiB), and one read takes it all.
-        limit = self._frame_read_bytes() if self.fmt == "framed" else 1 << 16
+        # Framed: the stream reader pauses the socket above twice its limit; at the default
+        # 64 KiB it paused and resumed it (two epoll changes) for every frame over 128 KiB.
+        # FRAMED_READER_LIMIT holds a few such frames before the producer is held back (a
+        # loop that falls behind must not hide seconds of samples in its own buffer), and
+        # one read takes what is there.
+        limit = FRAMED_READER_LIMIT if self.fmt == "framed" else 1 << 16
         self._server = await asyncio.start_server(self._on_connect, self.host, self.port,
                                                   limit=limit)
         sock = self._server.sockets[0].getsockname()
