@@ -4,8 +4,10 @@ Owns one worker thread per source for the numpy work; knows nothing about HTTP o
 
 Real-time contract: a source's blocks are processed in order on that source's worker
 thread; the event loop only awaits the result and hands frames to the hub. If the worker
-falls behind, the source's bounded queue drops its oldest blocks and counts them
-(``counters.drops``); the pipeline reports that channel as ``overrun`` for a while.
+falls behind, it takes the blocks queued for it as one (up to ``JOIN_MAX_S``; frames do
+not depend on how a stream is cut), and if it falls further behind the source's bounded
+queue drops its oldest blocks and counts them (``counters.drops``); the pipeline reports
+that channel as ``overrun`` for a while.
 """
 
 from __future__ import annotations

@@ -11,7 +11,9 @@ Real-time contract
 * **Overflow.** Blocks wait in a queue of ``queue_blocks``. When it is full the *oldest*
   queued block is dropped, ``counters.drops`` goes up and ``status()["overrun"]`` is true
   until the consumer has emptied the queue. Overflow is never an exception. The dropped
-  block leaves a jump in ``first_index``, so the pipeline sees a gap.
+  block leaves a jump in ``first_index``, so the pipeline sees a gap. A consumer that fell
+  behind may take the queued blocks that continue the one it took as one block
+  (:meth:`QueuedSource.join_queued`).
 * **Bad input** (malformed frames or rows, disconnects, truncation, rotation) is counted in
   ``counters`` with the latest reason in ``counters.last_error``; it never ends the stream.
   Warnings about repeated bad input are logged at most once per ``LOG_EVERY_S`` per kind.
