@@ -144,7 +144,6 @@ class QueuedSource(ABC):
         self._clock = clock
         self._queue: asyncio.Queue[SampleBlock | _End] = asyncio.Queue(maxsize=queue_blocks)
         self._next: SampleBlock | _End | None = None  # taken from the queue, not yet consumed
-        self._paced = False  # blocks were handed over waiting for room (a replay)
         self._started = False
         self._closed = False
         self._tasks: set[asyncio.Task[None]] = set()
@@ -229,10 +228,7 @@ class QueuedSource(ABC):
         blocks that is. A consumer that fell behind takes its backlog in fewer, larger steps
         and pays its per-block costs once (frames do not depend on how a stream is cut);
         with nothing queued it gets ``block`` itself, and a block that does not continue it
-        is the next one it takes. A replay (blocks handed over with ``_emit_wait``: not real
-        time, nothing is ever dropped) is analysed block by block as it was cut."""
-        if self._paced:
-            return block, 1
+        is the next one it takes."""
         parts, n, first = [block.data], block.n, block.first_index
         while self._next is None and not self._queue.empty():
             item = self._queue.get_nowait()
@@ -277,7 +273,6 @@ class QueuedSource(ABC):
 
     async def _emit_wait(self, data: np.ndarray, first_index: int, t0_ns: int) -> None:
         """Hand a block over, waiting for room (a recording replay is not real-time)."""
-        self._paced = True
         if not self._closed:
             await self._queue.put(self._block(data, first_index, t0_ns))
 

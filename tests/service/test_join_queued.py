@@ -95,19 +95,3 @@ def test_a_joined_backlog_gives_the_frames_of_the_blocks_one_by_one(tmp_path: ob
     # the same averages to float32 rounding (streaming equals batch: tests/dsp)
     np.testing.assert_allclose(b.power, a.power, rtol=1e-4, atol=1e-12)
     np.testing.assert_allclose(b.bands, a.bands, rtol=1e-4)
-
-
-def test_a_replay_is_taken_block_by_block() -> None:
-    # a replay hands blocks over waiting for room (nothing dropped, not real time): each is
-    # analysed as it was cut, so every block's push is published (tests/service/test_cluster)
-    async def go() -> None:
-        src = Held("s", IDS, FS, queue_blocks=8)
-        await src.start()
-        for x, k in zip(_blocks([100, 100, 100]), [0, 100, 200], strict=True):
-            await src._emit_wait(x, k, CLOCK_NS + k)
-        first = await src.__anext__()
-        block, count = src.join_queued(first, max_samples=1000)
-        assert count == 1 and block is first and src.status()["queued"] == 2
-        await src.aclose()
-
-    run(go())
