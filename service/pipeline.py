@@ -4,10 +4,8 @@ Owns one worker thread per source for the numpy work; knows nothing about HTTP o
 
 Real-time contract: a source's blocks are processed in order on that source's worker
 thread; the event loop only awaits the result and hands frames to the hub. If the worker
-falls behind, it takes the blocks queued for it as one (up to ``JOIN_MAX_S``; frames do
-not depend on how a stream is cut), and if it falls further behind the source's bounded
-queue drops its oldest blocks and counts them (``counters.drops``); the pipeline reports
-that channel as ``overrun`` for a while.
+falls behind, the source's bounded queue drops its oldest blocks and counts them
+(``counters.drops``); the pipeline reports that channel as ``overrun`` for a while.
 """
 
 from __future__ import annotations
@@ -34,7 +32,7 @@ from .quality import (
     STALE_MIN_S,
     default_stale_after_s,
 )
-from .sources.base import QueuedSource, Source
+from .sources.base import Source
 from .speed import SourceSpeeds
 from .types import (
     ChannelState,
@@ -50,11 +48,6 @@ from .types import (
 log = logging.getLogger("quaver.pipeline")
 
 __all__ = ["OVERALL", "ChannelGroup", "ChannelState", "SourcePipeline", "overall_band"]
-# A worker that fell behind takes the blocks queued for it as one, up to this span (s):
-# the per-block costs (event loop hand-over, checks, one push through hub, trends and
-# alarms) are paid once for them. Our choice: short beside stale_after_s, and a backlog of
-# 0.1 s blocks is taken in fives.
-JOIN_MAX_S = 0.5
 FLAT_MIN_S = 0.05  # identical samples for this long = a flat (dead) sensor; our choice
 
 
@@ -96,12 +89,6 @@ class SourcePipeline:
         try:
             async for block in self.source:
                 t0 = time.perf_counter()
-                # a backlog in one step, once the analysis runs (the first block of a run
-                # is taken alone: it builds the profile bank, as after a restart)
-                if isinstance(self.source, QueuedSource) and self.bank is not None:
-                    block, joined = self.source.join_queued(
-                        block, max(block.n, round(JOIN_MAX_S * block.fs)))
-                    self.blocks += joined - 1
                 pushes = await loop.run_in_executor(self._executor, self.process_pushes, block)
                 self.latency_s = time.perf_counter() - t0
                 await self.publish(self, pushes, self.latency_s)

@@ -11,9 +11,7 @@ Real-time contract
 * **Overflow.** Blocks wait in a queue of ``queue_blocks``. When it is full the *oldest*
   queued block is dropped, ``counters.drops`` goes up and ``status()["overrun"]`` is true
   until the consumer has emptied the queue. Overflow is never an exception. The dropped
-  block leaves a jump in ``first_index``, so the pipeline sees a gap. A consumer that fell
-  behind may take the queued blocks that continue the one it took as one block
-  (:meth:`QueuedSource.join_queued`).
+  block leaves a jump in ``first_index``, so the pipeline sees a gap.
 * **Bad input** (malformed frames or rows, disconnects, truncation, rotation) is counted in
   ``counters`` with the latest reason in ``counters.last_error``; it never ends the stream.
   Warnings about repeated bad input are logged at most once per ``LOG_EVERY_S`` per kind.
@@ -143,7 +141,6 @@ class QueuedSource(ABC):
         self.state = "created"
         self._clock = clock
         self._queue: asyncio.Queue[SampleBlock | _End] = asyncio.Queue(maxsize=queue_blocks)
-        self._next: SampleBlock | _End | None = None  # taken from the queue, not yet consumed
         self._started = False
         self._closed = False
         self._tasks: set[asyncio.Task[None]] = set()
@@ -199,7 +196,6 @@ class QueuedSource(ABC):
         await self._stop()
         while not self._queue.empty():
             self._queue.get_nowait()
-        self._next = None
         self._queue.put_nowait(_END)
         self.state = "closed"
 
@@ -211,41 +207,13 @@ class QueuedSource(ABC):
     async def __anext__(self) -> SampleBlock:
         if not self._started:
             await self.start()
-        if self._next is not None:
-            item, self._next = self._next, None
-        else:
-            item = await self._queue.get()
+        item = await self._queue.get()
         if isinstance(item, _End):
             self._queue.put_nowait(item)  # later calls end too
             raise StopAsyncIteration
         if self._queue.empty():
             self.overrun = False
         return item
-
-    def join_queued(self, block: SampleBlock, max_samples: int) -> tuple[SampleBlock, int]:
-        """``block`` (just taken) joined with the blocks queued behind it that continue it
-        (same channels and rate, no gap), up to ``max_samples`` samples in all, and how many
-        blocks that is. A consumer that fell behind takes its backlog in fewer, larger steps
-        and pays its per-block costs once (frames do not depend on how a stream is cut);
-        with nothing queued it gets ``block`` itself, and a block that does not continue it
-        is the next one it takes."""
-        parts, n, first = [block.data], block.n, block.first_index
-        while self._next is None and not self._queue.empty():
-            item = self._queue.get_nowait()
-            if (isinstance(item, _End) or item.channel_ids != block.channel_ids
-                    or item.fs != block.fs or item.first_index != first + n
-                    or n + item.n > max_samples or item.data.dtype != block.data.dtype):
-                self._next = item
-                break
-            parts.append(item.data)
-            n += item.n
-        if self._next is None and self._queue.empty():
-            self.overrun = False
-        if len(parts) == 1:
-            return block, 1
-        data = np.concatenate(parts, axis=1)
-        return SampleBlock(block.source_id, block.channel_ids, data, first, block.t0_ns,
-                           block.fs), len(parts)
 
     # --- producer side ---------------------------------------------------------------
 
@@ -358,7 +326,7 @@ class QueuedSource(ABC):
             "channels": list(self.channel_ids),
             "state": self.state,
             "overrun": self.overrun,
-            "queued": self._queue.qsize() + (self._next is not None),
+            "queued": self._queue.qsize(),
             **self._status_extra(),
             "counters": self.counters.as_dict(),
         }
