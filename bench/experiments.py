@@ -41,6 +41,10 @@ __all__ = ["fanout", "headroom_and_latency", "memory", "run"]
 
 DRAIN_S = 2.0  # after the last send, every expected frame must be counted within this
 DRAIN_WAIT_S = 30.0  # ... and is waited for this long, so that the counts are final
+# A step is fed at real time only if no block was sent later than this after it was due: a
+# service that reads too slowly holds the feeder back through TCP (its socket buffers fill,
+# sendall waits) instead of dropping blocks, and that is no more real time than a drop.
+FEED_LATE_MAX_S = 1.0
 WARMUP_S = 1.0  # latency samples from the first second of a step are left out (FFT plans)
 FANOUT_CHANNELS_PER_CLIENT = 8
 FANOUT_SETTLE_S = 1.0  # after a step drained, its last frames reach the clients within this
@@ -151,7 +155,7 @@ def _feed_step(plan: BenchPlan, svc: BenchService, feeder: Feeder, sources: list
     overrun = [c for c in after.overrun if c in set(chans)]
     exact = all(after.frames[c] - before.frames[c] == want[c] for c in chans)
     passed = (drops == 0 and gaps == 0 and not overrun and exact and drained is not None
-              and drained <= DRAIN_S)
+              and drained <= DRAIN_S and fed["max_late_ms"] <= 1e3 * FEED_LATE_MAX_S)
     return {
         "channels": len(chans), "sources": len(sources), "seconds": round(fed["wall_s"], 3),
         "blocks": fed["blocks"],

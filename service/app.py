@@ -217,9 +217,15 @@ class Service:
         self._store_runups(p)
         now = time.monotonic()
         chans = p.channels
+        # What REST reads of the push — the frame counters, the latest spectra and the time
+        # of the newest frame — changes in one step (no await between), before the states
+        # derived from them; the stream gets the frames after any status event they cause.
+        if batch and isinstance(p, SourcePipeline):  # a cluster actor counts its own: its
+            p.count_frames(batch)  # channel states come with the push (service.cluster)
         for push in batch:
             for cid in push.channels:
                 chans[cid].last_frame_mono = now
+            self.hub.set_latest(push, latency_s)
         # every block: a fault seen by the worker is a state (and an event) at once
         await self._refresh_quality(chans.values())
         # cluster mode: the actor makes the interval means, where every spectrum is
@@ -232,7 +238,7 @@ class Service:
             return
         events: list[tuple[AlarmEvent, SpectralFrame | None]] = []
         for push in batch:
-            self.hub.publish_push(push, latency_s)
+            self.hub.offer_push(push)
             if self.history is not None and not remote_history:
                 closed = self.history.add_push(push)
                 if closed:

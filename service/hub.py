@@ -201,7 +201,13 @@ class Hub:
                 s.offer(f)
 
     def publish_push(self, push: PushFrames, latency_s: float = 0.0) -> None:
-        """:meth:`publish` of a push's frames, made only when read."""
+        """:meth:`publish` of a push's frames, made only when read: :meth:`set_latest`, then
+        :meth:`offer_push`."""
+        self.set_latest(push, latency_s)
+        self.offer_push(push)
+
+    def set_latest(self, push: PushFrames, latency_s: float = 0.0) -> None:
+        """Make a push's frames the latest of their channels (what REST reads)."""
         profile = push.profile
         by_profile, latest, lat = self.by_profile, self.latest, self.latency_s
         for c, (cid, primary) in enumerate(zip(push.channels, push.primary.tolist(),
@@ -211,6 +217,9 @@ class Hub:
                 latest.put(cid, push, c)
             lat[cid] = latency_s
         self.frames_published += len(push.channels)
+
+    def offer_push(self, push: PushFrames) -> None:
+        """Offer a push's frames to every subscriber (the stream)."""
         for s in self.subscribers:
             s.offer_push(push)
 

@@ -78,6 +78,7 @@ class SourcePipeline:
         self._flat_run: np.ndarray | None = None
         self._flat_last: np.ndarray | None = None
         self._clock: tuple[int, int, float] = (0, 0, 0.0)  # latest block: first_index, t0_ns, fs
+        self._checks: dict[tuple[str, ...], _Checks] = {}  # per channel-id tuple
 
     async def run(self) -> None:
         """Consume the source until it ends or the task is cancelled."""
@@ -104,8 +105,23 @@ class SourcePipeline:
 
     # -- worker thread -----------------------------------------------------------------
     def process(self, block: SampleBlock) -> list[SpectralFrame]:
-        """:meth:`process_pushes`, one :class:`SpectralFrame` per channel and group."""
-        return [f for push in self.process_pushes(block) for f in push.frames()]
+        """:meth:`process_pushes` and :meth:`count_frames`, one :class:`SpectralFrame` per
+        channel and group (for callers without an event loop: ``quaver analyze``, tests)."""
+        pushes = self.process_pushes(block)
+        self.count_frames(pushes)
+        return [f for push in pushes for f in push.frames()]
+
+    def count_frames(self, pushes: Sequence[PushFrames]) -> None:
+        """Add each push's new frames to its primary channels' ``frames`` counters. The
+        publisher calls it where it makes the pushes' spectra visible (the service: on the
+        event loop, beside the hub's latest frames), so no reader sees a counter ahead of
+        the spectrum it counts; :meth:`process_pushes` on the worker leaves it alone."""
+        chans = self.channels
+        for push in pushes:
+            if push.new_frames:
+                for cid, primary in zip(push.channels, push.primary.tolist(), strict=True):
+                    if primary:
+                        chans[cid].frames += push.new_frames
 
     def process_pushes(self, block: SampleBlock) -> list[PushFrames]:
         """Sensor checks, gap handling and analysis of one block (runs on the worker
@@ -139,67 +155,85 @@ class SourcePipeline:
         drops = self.source.counters.drops
         overrun = drops > self._last_drops
         self._last_drops = drops
-        sens = np.array([s.sensitivity for s in states], dtype=np.float32)[:, None]
-        # One pass finds NaN/inf and values beyond the sensor's range (NaN compares false);
-        # such samples become 0 before anything else sees them, so no average, decimator or
-        # ring holds them, and nothing overflows on the way (1e20 g squared is inf in float32).
-        limit = np.array([s.range / abs(s.sensitivity) if s.sensitivity else np.inf
-                          for s in states], dtype=np.float64)[:, None]
-        good = np.abs(x) <= limit
-        in_range = good.all(axis=1)
-        finite = in_range.copy()
+        chk = self._checks.get(block.channel_ids)
+        if chk is None:
+            chk = self._checks[block.channel_ids] = _Checks.of(states)
+        # One pass finds NaN/inf and values beyond the sensor's range: the largest |x| of
+        # each row (NaN propagates through max/min and compares false); such samples become
+        # 0 before anything else sees them, so no average, decimator or ring holds them, and
+        # nothing overflows on the way (1e20 g squared is inf in float32).
+        peak = _row_peak(x)
+        in_range = peak <= chk.limit
+        finite = in_range
         if not in_range.all():
             finite = np.isfinite(x).all(axis=1)
-            x = np.where(good, x, 0.0).astype(np.float32)
+            x = np.where(np.abs(x) <= chk.limit[:, None], x, 0.0).astype(np.float32)
+            peak = _row_peak(x)
+        clipped_rows = peak >= chk.clip  # NaN clip level (none set) compares false
         flat = self._flat_line(x, block.fs, gap)
         if self.speeds is not None and self.speeds.tacho_rows.size == flat.size:
             flat &= ~self.speeds.tacho_rows  # a tacho rests flat between pulses
         hold = round(FAULT_HOLD_S * block.fs)  # a fault is held this many clean samples
         restart = False
-        # plain bools of every channel at once (numpy scalars one by one cost more)
-        finite_l, in_range_l, flat_l = finite.tolist(), in_range.tolist(), flat.tolist()
-        for c, st in enumerate(states):
-            st.fs = block.fs
-            st.samples += block.n
-            st.last_block_ns = block.t0_ns
-            if gap:
+        n, t0_ns = block.n, block.t0_ns
+        if in_range.all() and not flat.any() and not clipped_rows.any() and not any(
+                st.data_status == "sensor-fault" for st in states):
+            # the common case: every channel clean and none in a fault (no per-channel checks)
+            for st in states:
+                st.fs = block.fs
+                st.samples += n
+                st.last_block_ns = t0_ns
+                st.clean_samples += n
+        else:
+            # plain bools of every channel at once (numpy scalars one by one cost more)
+            finite_l, in_range_l = finite.tolist(), in_range.tolist()
+            flat_l, clipped_l = flat.tolist(), clipped_rows.tolist()
+            for c, st in enumerate(states):
+                st.fs = block.fs
+                st.samples += n
+                st.last_block_ns = t0_ns
+                clipped = clipped_l[c]
+                reason = (
+                    "non-finite samples (NaN/inf)"
+                    if not finite_l[c]
+                    else f"values beyond the sensor's range (|x| > {st.range:g} {st.input_unit})"
+                    if not in_range_l[c]
+                    else "flat line"
+                    if flat_l[c]
+                    else "clipping"
+                    if clipped
+                    else ""
+                )
+                if reason:
+                    st.nonfinite_blocks += not finite_l[c]
+                    st.range_blocks += bool(finite_l[c] and not in_range_l[c])
+                    st.flat_blocks += bool(flat_l[c])
+                    st.clipped_blocks += clipped
+                    if st.data_status != "sensor-fault":
+                        st.sensor_faults += 1
+                        log.warning("channel %s: sensor fault: %s", st.id, reason)
+                    st.data_status, st.data_fault = "sensor-fault", reason
+                    st.clean_samples, st.settling = 0, False
+                else:
+                    st.clean_samples += n
+                if not reason and st.data_status == "sensor-fault" and not st.settling and (
+                    st.clean_samples >= hold
+                ):
+                    # The fault is over: restart the analysis so that no average still holds
+                    # the zeros that stood in for the bad samples (the source's other channels
+                    # restart with it, as at a gap; their values stay exact).
+                    restart = st.settling = True
+                    st.data_fault = "analysis restarting after a sensor fault"
+                    log.info("channel %s: sensor fault cleared; analysis restarts", st.id)
+        if gap:
+            for st in states:
                 st.gaps += 1
-            clipped = st.clip_level is not None and bool(np.any(np.abs(x[c]) >= st.clip_level))
-            reason = (
-                "non-finite samples (NaN/inf)"
-                if not finite_l[c]
-                else f"values beyond the sensor's range (|x| > {st.range:g} {st.input_unit})"
-                if not in_range_l[c]
-                else "flat line"
-                if flat_l[c]
-                else "clipping"
-                if clipped
-                else ""
-            )
-            if reason:
-                st.nonfinite_blocks += not finite_l[c]
-                st.range_blocks += bool(finite_l[c] and not in_range_l[c])
-                st.flat_blocks += bool(flat_l[c])
-                st.clipped_blocks += clipped
-                if st.data_status != "sensor-fault":
-                    st.sensor_faults += 1
-                    log.warning("channel %s: sensor fault: %s", st.id, reason)
-                st.data_status, st.data_fault = "sensor-fault", reason
-                st.clean_samples, st.settling = 0, False
-            else:
-                st.clean_samples += block.n
-            if not reason and st.data_status == "sensor-fault" and not st.settling and (
-                st.clean_samples >= hold
-            ):
-                # The fault is over: restart the analysis so that no average still holds the
-                # zeros that stood in for the bad samples (the source's other channels restart
-                # with it, as at a gap; their values stay exact).
-                restart = st.settling = True
-                st.data_fault = "analysis restarting after a sensor fault"
-                log.info("channel %s: sensor fault cleared; analysis restarts", st.id)
-            if overrun:
-                st.overrun_until = now + OVERRUN_HOLD_S
-        x = x * sens  # raw units → engineering units
+        if overrun:
+            until = now + OVERRUN_HOLD_S
+            for st in states:
+                st.overrun_until = until
+        if chk.scale is not None:
+            x = x * chk.scale  # raw units → engineering units
         self.evidence.append(x, block)
         pushes: list[PushFrames] = []
         if gap:
@@ -244,17 +278,25 @@ class SourcePipeline:
         The run of identical samples is carried across blocks (short frames or datagrams
         each hold too few samples to tell), and restarts after a gap."""
         c_count, n = x.shape
-        if self._flat_run is None or self._flat_run.size != c_count or gap:
+        if self._flat_run is None or self._flat_last is None or (
+                self._flat_run.size != c_count or gap):
             self._flat_run = np.zeros(c_count, dtype=np.int64)
             self._flat_last = np.full(c_count, np.nan, dtype=np.float32)
         if n:
             last = x[:, -1]
-            differs = x != last[:, None]
-            any_differs = differs.any(axis=1)
-            # samples after the last one that differs from the block's final value
-            trailing = np.where(any_differs, np.argmax(differs[:, ::-1], axis=1), n)
-            continues = ~any_differs & (last == self._flat_last)
-            self._flat_run = np.where(continues, self._flat_run + n, trailing)
+            # A row whose last two samples differ has a run of 1 (most rows of a live
+            # signal); only the others are searched for where their run began.
+            run = np.ones(c_count, dtype=np.int64)
+            rest = np.flatnonzero(x[:, -2] == last) if n > 1 else np.arange(c_count)
+            if rest.size:
+                xr, lr = x[rest], last[rest]
+                differs = xr != lr[:, None]
+                any_differs = differs.any(axis=1)
+                # samples after the last one that differs from the block's final value
+                trailing = np.where(any_differs, np.argmax(differs[:, ::-1], axis=1), n)
+                continues = ~any_differs & (lr == self._flat_last[rest])
+                run[rest] = np.where(continues, self._flat_run[rest] + n, trailing)
+            self._flat_run = run
             self._flat_last = last.copy()
         flat: np.ndarray = self._flat_run >= FLAT_MIN_S * fs
         return flat
@@ -324,8 +366,6 @@ class SourcePipeline:
         speeds = self.speeds
         for c, cid in enumerate(g.channel_ids):
             st = self.channels[cid]
-            if g.primary[c]:
-                st.frames += new
             if st.settling:  # the first frame since the analysis restarted: clean again
                 st.settling = False
                 st.data_status, st.data_fault = "ok", ""
@@ -370,7 +410,40 @@ class SourcePipeline:
             speed_status=tuple(statuses), speed_variation=variation, speed_varied=varied,
             peaks=peaks, average_restarted=g.order is not None and g.order.restarted,
             average_rpm=math.nan if g.order is None else g.order.average_rpm,
+            new_frames=new,
         )
+
+
+@dataclass(frozen=True)
+class _Checks:
+    """The sensor-check constants of a block's channels as arrays (C of them): the range
+    limit in raw units, the clipping level (NaN: none), and the sensitivity (None when every
+    channel's is 1, so the block need not be copied to be scaled)."""
+
+    limit: np.ndarray
+    clip: np.ndarray
+    scale: np.ndarray | None
+
+    @classmethod
+    def of(cls, states: Sequence[ChannelState]) -> _Checks:
+        sens = np.array([s.sensitivity for s in states], dtype=np.float32)[:, None]
+        limit = np.array([s.range / abs(s.sensitivity) if s.sensitivity else np.inf
+                          for s in states], dtype=np.float64)
+        # float32 levels: the samples are float32 and a level compares with them in float32
+        clip = np.array([math.nan if s.clip_level is None else s.clip_level for s in states],
+                        dtype=np.float32).astype(np.float64)
+        return cls(limit, clip, None if bool((sens == 1.0).all()) else sens)
+
+
+def _row_peak(x: np.ndarray) -> np.ndarray:
+    """max |x| of each row of ``x`` [C, n] as float64 (NaN where a row holds a NaN; −inf
+    for no samples), without an |x| copy of the block."""
+    if not x.shape[1]:
+        return np.full(x.shape[0], -np.inf)
+    hi = x.max(axis=1).astype(np.float64)
+    lo = x.min(axis=1).astype(np.float64)
+    peak: np.ndarray = np.maximum(hi, -lo)
+    return peak
 
 
 def _peak_rows(power_in: np.ndarray, s: PeakSettings) -> list[tuple[ToneValue, ...]]:

@@ -196,6 +196,10 @@ class SourceSpeeds:
                 states[cid].runup = cap
         self._started = False
         self._written: set[str] = set()
+        # channels whose configured speed source can change while running (measured,
+        # estimated, manual): looked up per group and block, so kept as one set
+        self._moving = {cid for cid, ch in self.settings.items()
+                        if ch.speed_source in ("tacho", "estimated", "manual")}
         self._tacho_faults: set[str] = set()  # tachos whose pulses are implausible now
         self._lag: dict[int, int] = {}  # group id → input samples its frames end before a block's
         self._frame: dict[tuple[int, str], FrameSpeed] = {}
@@ -214,10 +218,12 @@ class SourceSpeeds:
 
     def _dynamic(self, cid: str) -> bool:
         """Can ``cid``'s speed change while running (measured, estimated or written)?"""
+        if cid in self._moving or cid in self._written:
+            return True
         if self.states[cid].manual_rpm is not None:
             self._written.add(cid)  # placed from now on, also after the write is withdrawn
-        return (self.settings[cid].speed_source in ("tacho", "estimated", "manual")
-                or cid in self._written)
+            return True
+        return False
 
     def reset(self, next_index: int) -> None:
         """A gap (or a new stream): every tracker starts a new run at ``next_index``."""

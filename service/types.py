@@ -287,14 +287,19 @@ class PushFrames:
       bool [C], ``speed_source``, ``speed_status``: C strings (``service.speed``);
     - ``peaks``: the push's :class:`PushPeaks` (found on first read);
     - ``average_restarted``, ``average_rpm``: an order profile's average (SpectralFrame's
-      fields of the same names; False and NaN for other profiles).
+      fields of the same names; False and NaN for other profiles);
+    - ``new_frames``: frames this push folded into the averages; each primary channel's
+      ``frames`` counter grows by it when the push is published
+      (``SourcePipeline.count_frames``), not on the worker, so that a counter is never
+      read ahead of the spectrum it counts.
     """
 
     __slots__ = (
         "source_id", "channels", "settings", "primary", "seq0", "t_ns", "end_index",
         "averages", "power", "band_names", "bands", "band_edges", "tone_names", "tones",
         "tone_hz", "fault", "speed_rpm", "speed_source", "speed_status", "speed_variation",
-        "speed_varied", "peaks", "average_restarted", "average_rpm", "_frames", "_rows",
+        "speed_varied", "peaks", "average_restarted", "average_rpm", "new_frames", "_frames",
+        "_rows",
     )
 
     def __init__(
@@ -305,7 +310,7 @@ class PushFrames:
         tone_hz: np.ndarray, fault: np.ndarray, speed_rpm: np.ndarray,
         speed_source: tuple[str, ...], speed_status: tuple[str, ...],
         speed_variation: np.ndarray, speed_varied: np.ndarray, peaks: PushPeaks,
-        average_restarted: bool = False, average_rpm: float = math.nan,
+        average_restarted: bool = False, average_rpm: float = math.nan, new_frames: int = 0,
     ) -> None:
         self.source_id, self.channels, self.settings = source_id, channels, settings
         self.primary, self.seq0, self.t_ns, self.end_index = primary, seq0, t_ns, end_index
@@ -317,6 +322,7 @@ class PushFrames:
         self.speed_variation, self.speed_varied = speed_variation, speed_varied
         self.peaks = peaks
         self.average_restarted, self.average_rpm = average_restarted, average_rpm
+        self.new_frames = new_frames
         self._frames: list[SpectralFrame | None] = [None] * len(channels)
         self._rows: tuple[list[object], ...] | None = None
 

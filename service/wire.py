@@ -135,7 +135,7 @@ def check_raw_format(fmt: object) -> RawFormat:
     return fmt  # type: ignore[return-value]
 
 
-def decode_raw(buf: bytes, fmt: str, channels: int) -> tuple[np.ndarray, bytes]:
+def decode_raw(buf: bytes | memoryview, fmt: str, channels: int) -> tuple[np.ndarray, bytes]:
     """Decode interleaved raw samples.
 
     Returns ``(data, leftover)``: ``data`` is float32 ``[channels, n]`` holding the sample
@@ -310,7 +310,7 @@ def implausible_count(data: np.ndarray) -> int:
         return int(np.count_nonzero(np.abs(data) > IMPLAUSIBLE_ABS))
 
 
-def _frame(h: _Header, payload: bytes) -> Frame:
+def _frame(h: _Header, payload: bytes | memoryview) -> Frame:
     data, _ = decode_raw(payload, h.fmt, h.channels)
     return Frame(h.channels, h.fs, h.first_index, h.t_ns, h.fmt, data)
 
@@ -404,13 +404,16 @@ class FrameDecoder:
             end = pos + HEADER_SIZE + h.payload_len
             if len(buf) < end:
                 break
-            payload = bytes(buf[pos + HEADER_SIZE : end])
-            if zlib.crc32(payload) != h.payload_crc:
+            # the payload read in place (the samples are copied once, by decode_raw)
+            with memoryview(buf) as view, view[pos + HEADER_SIZE : end] as payload:
+                good = zlib.crc32(payload) == h.payload_crc
+                frame = _frame(h, payload) if good else None
+            if frame is None:
                 self._reject("payload CRC mismatch")
                 self.skipped_bytes += 1
                 pos += 1
                 continue
-            out.append(_frame(h, payload))
+            out.append(frame)
             self.frames += 1
             self._skipping = False
             pos = end

@@ -271,6 +271,7 @@ class SourceGroup:
     async def _publish(self, p: SourcePipeline, pushes: list[PushFrames],
                        latency_s: float) -> None:
         r = self.runs[p.source.id]
+        p.count_frames(pushes)  # counted with the push, as the service does when it publishes
         now = time.monotonic()
         sent: list[PushFrames] = []
         for push in pushes:

@@ -61,6 +61,9 @@ log = logging.getLogger(__name__)
 TCP_FORMATS = STREAM_FORMATS
 
 
+FRAMED_READER_LIMIT = 1 << 18  # bytes; pause above 512 KiB buffered (our choice)
+
+
 class TcpSource(QueuedSource):
     """Listens on ``host:port`` for one producer at a time; ``fmt`` is a raw format or
     ``"framed"``; ``fs`` in Hz is the configured sample rate. ``address`` gives the bound
@@ -115,7 +118,14 @@ class TcpSource(QueuedSource):
         self._last_rx = 0.0  # loop time of the producer's connect or latest bytes
 
     async def _start(self) -> None:
-        self._server = await asyncio.start_server(self._on_connect, self.host, self.port)
+        # Framed: the stream reader pauses the socket above twice its limit; at the default
+        # 64 KiB it paused and resumed it (two epoll changes) for every frame over 128 KiB.
+        # FRAMED_READER_LIMIT holds a few such frames before the producer is held back (a
+        # loop that falls behind must not hide seconds of samples in its own buffer), and
+        # one read takes what is there.
+        limit = FRAMED_READER_LIMIT if self.fmt == "framed" else 1 << 16
+        self._server = await asyncio.start_server(self._on_connect, self.host, self.port,
+                                                  limit=limit)
         sock = self._server.sockets[0].getsockname()
         self.address = (str(sock[0]), int(sock[1]))
         self.state = "listening"
@@ -192,10 +202,14 @@ class TcpSource(QueuedSource):
         log.warning("source %s: dropped idle producer %s after %.3g s without data",
                     self.id, self.peer, silent_s)
 
-    async def _read(self, reader: asyncio.StreamReader) -> bytes:
+    def _frame_read_bytes(self) -> int:
+        """Bytes of one framed read: at least a whole frame of the largest payload."""
+        return max(self.read_bytes, self.max_frame_bytes + HEADER_SIZE)
+
+    async def _read(self, reader: asyncio.StreamReader, size: int | None = None) -> bytes:
         try:
             async with asyncio.timeout(self.idle_timeout_s):
-                chunk = await reader.read(self.read_bytes)
+                chunk = await reader.read(self.read_bytes if size is None else size)
         except TimeoutError:
             if self._writer is not None and not self._closed:
                 self._idle_drop(asyncio.get_running_loop().time() - self._last_rx)
@@ -269,7 +283,8 @@ class TcpSource(QueuedSource):
     async def _serve_framed(self, reader: asyncio.StreamReader) -> int:
         decoder = FrameDecoder(max_payload_bytes=self.max_frame_bytes)
         seen = 0
-        while chunk := await self._read(reader):
+        size = self._frame_read_bytes()
+        while chunk := await self._read(reader, size):
             for frame in decoder.feed(chunk):
                 problem = self._frame_problem(frame)
                 if problem:

@@ -105,13 +105,13 @@ def test_the_cluster_gives_the_one_process_results(
 
     async def go() -> None:
         svc = Service(cfg)
-        publish = svc.hub.publish_push
+        offer = svc.hub.offer_push  # every push the service publishes goes to the stream
 
-        def capture(push: PushFrames, latency_s: float = 0.0) -> None:
+        def capture(push: PushFrames) -> None:
             got.extend(push.frames())
-            publish(push, latency_s)
+            offer(push)
 
-        svc.hub.publish_push = capture  # type: ignore[method-assign]
+        svc.hub.offer_push = capture  # type: ignore[method-assign]
         # a subscriber of every channel's spectra: every push brings its own
         svc.hub.subscribe().kinds = frozenset({"spectrum"})
         await svc.start()
