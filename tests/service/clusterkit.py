@@ -78,6 +78,20 @@ def frame_differences(a: SpectralFrame, b: SpectralFrame,
     return out
 
 
+def capture_frames(svc: Any, got: list[SpectralFrame]) -> None:
+    """Append to ``got`` every frame of every push ``svc`` (a service.app.Service) offers to
+    the stream, as it is offered, and subscribe to every channel's spectra so that every
+    push brings its own (in cluster mode spectra travel only when someone reads them)."""
+    offer = svc.hub.offer_push
+
+    def capture(push: PushFrames) -> None:
+        got.extend(push.frames())
+        offer(push)
+
+    svc.hub.offer_push = capture
+    svc.hub.subscribe().kinds = frozenset({"spectrum"})
+
+
 def local_frames(cfg_doc: dict[str, object]) -> list[SpectralFrame]:
     """The recording's frames from a SourcePipeline in this process (as the service runs it
     without [cluster])."""

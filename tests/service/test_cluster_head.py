@@ -13,7 +13,13 @@ from typing import Any
 
 import numpy as np
 import pytest
-from clusterkit import frame_differences, local_frames, recording, replay_doc
+from clusterkit import (
+    capture_frames,
+    frame_differences,
+    local_frames,
+    recording,
+    replay_doc,
+)
 
 from service.app import Service
 from service.cluster import head
@@ -23,7 +29,7 @@ from service.history import alarm_row
 from service.speed import NotEnoughRevolutions
 from service.speedwrite import write_speed
 from service.store import HistoryRow
-from service.types import PushFrames, SpectralFrame
+from service.types import SpectralFrame
 
 
 class _Method:
@@ -105,15 +111,7 @@ def test_the_head_publishes_the_actors_frames_as_the_local_pipeline_does(
 
     async def go() -> None:
         svc = Service(cfg)
-        offer = svc.hub.offer_push  # every push the service publishes goes to the stream
-
-        def capture(push: PushFrames) -> None:
-            got.extend(push.frames())
-            offer(push)
-
-        svc.hub.offer_push = capture  # type: ignore[method-assign]
-        # a subscriber of every channel's spectra: every push brings its own
-        svc.hub.subscribe().kinds = frozenset({"spectrum"})
+        capture_frames(svc, got)
         await svc.start()
         try:
             await until(lambda: len(got) >= len(local), 30, "every frame")

@@ -19,7 +19,13 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from clusterkit import frame_differences, local_frames, recording, replay_doc
+from clusterkit import (
+    capture_frames,
+    frame_differences,
+    local_frames,
+    recording,
+    replay_doc,
+)
 
 # Before Ray is imported: every node, server and worker of Ray on loopback (Ray reads this
 # when it is imported; its processes inherit it), no usage reports, no token auth.
@@ -32,7 +38,7 @@ from ray.cluster_utils import Cluster as RayTestCluster  # noqa: E402
 from service.app import Service  # noqa: E402
 from service.config import parse_config  # noqa: E402
 from service.config.cluster import node_resource  # noqa: E402
-from service.types import PushFrames, SpectralFrame  # noqa: E402
+from service.types import SpectralFrame  # noqa: E402
 
 pytestmark = pytest.mark.slow  # a Ray cluster of three nodes: ~40 s for the file
 
@@ -105,15 +111,7 @@ def test_the_cluster_gives_the_one_process_results(
 
     async def go() -> None:
         svc = Service(cfg)
-        offer = svc.hub.offer_push  # every push the service publishes goes to the stream
-
-        def capture(push: PushFrames) -> None:
-            got.extend(push.frames())
-            offer(push)
-
-        svc.hub.offer_push = capture  # type: ignore[method-assign]
-        # a subscriber of every channel's spectra: every push brings its own
-        svc.hub.subscribe().kinds = frozenset({"spectrum"})
+        capture_frames(svc, got)
         await svc.start()
         try:
             await until(lambda: len(got) >= len(local), 90, "every frame of the replay")
