@@ -121,13 +121,7 @@ class SourceGroup:
         self._written(r, written)
         if not r.outbox:
             r.ready.clear()
-            # asyncio.timeout, not wait_for: on Python 3.11 wait_for can swallow a
-            # cancellation that arrives as the event is set (the caller then never stops)
-            try:
-                async with asyncio.timeout(wait_s):
-                    await r.ready.wait()
-            except TimeoutError:
-                pass
+            await _wait_set(r.ready, wait_s)
         out = list(r.outbox)
         r.outbox.clear()
         return out
@@ -146,12 +140,7 @@ class SourceGroup:
                 r.wanted = spectra
         if not any(r.outbox for r in runs.values()):
             self._any.clear()
-            try:
-                async with asyncio.timeout(wait_s):
-                    await self._any.wait()
-            except TimeoutError:
-                pass
-            else:
+            if await _wait_set(self._any, wait_s):
                 await asyncio.sleep(self.gather_s)
         out: dict[str, list[PushBatch]] = {}
         for sid, r in runs.items():
@@ -348,3 +337,15 @@ def _alive_without_frames(states: Iterable[ChannelState], framed: set[str], now:
         if st.id not in framed and st.last_frame_mono is not None:
             out[st.id] = now - st.last_frame_mono
     return out
+
+
+async def _wait_set(event: asyncio.Event, wait_s: float) -> bool:
+    """Wait up to ``wait_s`` s for ``event``; True if it was set. asyncio.timeout, not
+    wait_for: on Python 3.11 wait_for can swallow a cancellation that arrives as the event
+    is set (the caller then never stops)."""
+    try:
+        async with asyncio.timeout(wait_s):
+            await event.wait()
+    except TimeoutError:
+        return False
+    return True
