@@ -19,8 +19,8 @@ submodule          what it holds
 ``analyzer``       :class:`Analyzer` — one analysis of a multi-channel stream (filter bank →
                    averaging → units → bands, tones, peaks); :class:`AnalysisSpec`,
                    :class:`ToneDef`, :func:`low_limit_hz`
-``filterbank``     :class:`FilterBank` — framing, windowing and the batched rfft;
-                   :class:`FrameGrid` (fs, N, hop, lines, Fmax)
+``filterbank``     :class:`FilterBank` — framing, windowing and the batched rfft
+``grid``           :class:`FrameGrid` (fs, N, hop, lines, Fmax), :data:`FMAX_RATIO`
 ``averaging``      :class:`Averager` — linear, exponential and peak-hold averages
 ``scaling``        power spectrum, PSD and amplitude scalings; unit and integration weights
 ``windows``        window samples and figures (coherent gain, ENBW, scalloping, sidelobe)
@@ -47,8 +47,8 @@ from typing import TYPE_CHECKING, Any
 
 # name → submodule holding it; every submodule's __all__, nothing else
 _SUBMODULES = (
-    "analyzer", "averaging", "bands", "decimate", "envelope", "filterbank", "kinematics",
-    "kurtogram", "orders", "scaling", "tacho", "tones", "types", "windows",
+    "analyzer", "averaging", "bands", "decimate", "envelope", "filterbank", "grid",
+    "kinematics", "kurtogram", "orders", "scaling", "tacho", "tones", "types", "windows",
 )
 _PUBLIC: dict[str, str] = {
     "AnalysisSpec": "analyzer", "Analyzer": "analyzer", "ToneDef": "analyzer",
@@ -63,8 +63,8 @@ _PUBLIC: dict[str, str] = {
     "DecimationChain": "decimate", "Decimator": "decimate", "MultiRate": "decimate",
     "StagePlan": "chainplan", "design_stage": "chainplan", "plan_chain": "chainplan",
     "EnvelopeStream": "envelope", "envelope_spectrum": "envelope",
-    "FMAX_RATIO": "filterbank", "FilterBank": "filterbank", "FrameBatch": "filterbank",
-    "FrameGrid": "filterbank", "PowerBatch": "filterbank", "dc_shape": "filterbank",
+    "FMAX_RATIO": "grid", "FilterBank": "filterbank", "FrameBatch": "filterbank",
+    "FrameGrid": "grid", "PowerBatch": "filterbank", "dc_shape": "filterbank",
     "BearingFrequencies": "kinematics", "BearingOrders": "kinematics",
     "bearing_frequencies": "kinematics", "gear_mesh_hz": "kinematics",
     "sidebands": "kinematics",
@@ -246,7 +246,8 @@ if TYPE_CHECKING:  # what type checkers and editors see; the run-time path is __
     from .chainplan import MAX_FACTOR, MIN_FACTOR, ChainPlan, StagePlan, design_stage, plan_chain
     from .decimate import DecimationChain, Decimator, MultiRate
     from .envelope import EnvelopeStream, envelope_spectrum
-    from .filterbank import FMAX_RATIO, FilterBank, FrameBatch, FrameGrid, PowerBatch, dc_shape
+    from .filterbank import FilterBank, FrameBatch, PowerBatch, dc_shape
+    from .grid import FMAX_RATIO, FrameGrid
     from .kinematics import (
         BearingFrequencies,
         BearingOrders,

@@ -16,7 +16,8 @@ import numpy as np
 
 from .averaging import Averager
 from .bands import Band
-from .filterbank import FilterBank, FrameGrid
+from .filterbank import FilterBank
+from .grid import FrameGrid
 from .scaling import (
     DEFAULT_UNIT,
     amplitude_from_power,

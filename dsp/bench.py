@@ -38,7 +38,7 @@ from .analyzer import AnalysisSpec, Analyzer, ToneDef
 from .bands import Band
 from .chainplan import plan_chain
 from .decimate import DecimationChain
-from .filterbank import FrameGrid
+from .grid import FrameGrid
 from .windows import get_window
 
 # CPU time of this thread: every stage runs in it (workers=1, BLAS limited to one thread).

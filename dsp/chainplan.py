@@ -33,7 +33,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.signal
 
-from .filterbank import FMAX_RATIO
+from .grid import FMAX_RATIO
 
 __all__ = [
     "MAX_FACTOR",

@@ -55,7 +55,7 @@ from .chainplan import (
     _pick_factor,
     _stage_plans,
 )
-from .filterbank import FMAX_RATIO
+from .grid import FMAX_RATIO
 from .types import check_index_span
 
 __all__ = ["DecimationChain", "Decimator", "MultiRate"]

@@ -14,7 +14,7 @@ from scipy.signal import firwin, resample_poly
 from scipy.special import i0
 
 from .analyzer import AnalysisSpec, Analyzer
-from .filterbank import FrameGrid
+from .grid import FrameGrid
 from .types import WindowName
 
 __all__ = [

@@ -22,7 +22,7 @@ from dsp.analyzer import AnalysisSpec, Analyzer, ToneDef, low_limit_hz, resolve_
 from dsp.bands import Band
 from dsp.chainplan import plan_chain
 from dsp.decimate import MultiRate
-from dsp.filterbank import FMAX_RATIO, FrameGrid
+from dsp.grid import FMAX_RATIO, FrameGrid
 from dsp.tacho import TachoTracker
 from dsp.windows import window_info
 

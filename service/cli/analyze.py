@@ -18,7 +18,7 @@ from typing import Any
 import numpy as np
 from pydantic import ValidationError
 
-from dsp.filterbank import FMAX_RATIO
+from dsp.grid import FMAX_RATIO
 from dsp.tacho import TachoTracker
 from dsp.types import (
     QUANTITIES,

@@ -12,7 +12,7 @@ import sys
 from types import ModuleType
 
 from dsp.analyzer import resolve_unit
-from dsp.filterbank import FMAX_RATIO
+from dsp.grid import FMAX_RATIO
 
 from ..config import (
     Config,

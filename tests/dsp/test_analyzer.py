@@ -7,7 +7,7 @@ from hypothesis import strategies as st
 
 from dsp.analyzer import AnalysisSpec, Analyzer, ToneDef
 from dsp.bands import Band, band_rms, band_weights
-from dsp.filterbank import FrameGrid
+from dsp.grid import FrameGrid
 
 G_N = 9.80665  # m/s², exact (3rd CGPM, 1901)
 

@@ -12,7 +12,7 @@ from hypothesis import strategies as st
 from dsp.analyzer import AnalysisSpec, Analyzer, ToneDef
 from dsp.chainplan import ChainPlan, StagePlan, design_stage, plan_chain
 from dsp.decimate import DecimationChain, Decimator, MultiRate
-from dsp.filterbank import FrameGrid
+from dsp.grid import FrameGrid
 
 EPS32 = np.finfo(np.float32).eps
 

@@ -7,7 +7,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from dsp.averaging import Averager
-from dsp.filterbank import FilterBank, FrameGrid, dc_shape
+from dsp.filterbank import FilterBank, dc_shape
+from dsp.grid import FrameGrid
 from dsp.scaling import power_spectrum, psd_from_power
 from dsp.windows import get_window
 

@@ -13,7 +13,8 @@ import pytest
 from dsp.analyzer import AnalysisSpec, Analyzer
 from dsp.chainplan import plan_chain
 from dsp.decimate import DecimationChain, Decimator, MultiRate
-from dsp.filterbank import FilterBank, FrameGrid
+from dsp.filterbank import FilterBank
+from dsp.grid import FrameGrid
 from dsp.types import INDEX_MAX, INDEX_MIN, check_index_span
 
 FS = 1024.0

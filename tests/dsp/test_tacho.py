@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 from dsp.analyzer import AnalysisSpec, Analyzer
-from dsp.filterbank import FrameGrid
+from dsp.grid import FrameGrid
 from dsp.tacho import TachoSettings, TachoTracker, speed_from_spectrum, tacho_edges
 
 FS = 25_600.0

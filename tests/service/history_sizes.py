@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from dsp.analyzer import AnalysisSpec, Analyzer
-from dsp.filterbank import FrameGrid
+from dsp.grid import FrameGrid
 from service.config import HistorySettings
 from service.sources.simulated import demo_site
 from service.store import HistoryPolicy, HistoryRow, Store

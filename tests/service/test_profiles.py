@@ -402,7 +402,7 @@ def test_min_band_lines_is_where_a_mid_band_sine_reads_true(window: str) -> None
     # read -1.47 dB with Hann (the 20 Hz band).
     from dsp.analyzer import AnalysisSpec, Analyzer
     from dsp.bands import Band
-    from dsp.filterbank import FrameGrid
+    from dsp.grid import FrameGrid
     from service.profiles import min_band_lines
 
     grid = FrameGrid.from_fmax(1000, 400, overlap=0.75)
