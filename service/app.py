@@ -25,7 +25,7 @@ from .mqtt import MqttPublisher
 from .notify import Notifier
 from .opcua import OpcuaPublisher
 from .operator import commit_action
-from .pipeline import ChannelState, SourcePipeline, channel_states
+from .pipeline import ChannelState, SourcePipeline, analysis_pool, channel_states
 from .profiles import ProfileBank
 from .reload import reload_config
 from .sources import make_source
@@ -67,6 +67,9 @@ class Service:
             from .cluster.head import Cluster, make_remote
 
             self.cluster = Cluster(cfg, self.hub)
+        # the analysis threads every source's pipeline shares (one process; not in cluster mode)
+        self.analysis = None if cfg.cluster.engine == "ray" else analysis_pool(
+            cfg.service.analysis_threads)
         for src_cfg in cfg.sources:
             source = make_source(src_cfg)
             ids = list(source.channel_ids)
@@ -88,6 +91,7 @@ class Service:
                     make_bank=functools.partial(ProfileBank, cfg, ids),
                     cfg=cfg,
                     evidence_s=(cfg.service.evidence_before_s, cfg.service.evidence_after_s),
+                    executor=self.analysis,
                 )
             )
         self.channel_ids = all_ids
@@ -178,6 +182,8 @@ class Service:
         for t in self.tasks:
             t.cancel()
         await asyncio.gather(*self.tasks, return_exceptions=True)
+        if self.analysis is not None:  # a block still being analysed ends first
+            await asyncio.to_thread(self.analysis.shutdown, wait=True, cancel_futures=True)
         for p in self.pipelines:
             await p.source.aclose()
             self._store_evidence(p, final=True)

@@ -1,11 +1,19 @@
 """The pipeline: per source, blocks → sensor checks → dsp analyzers → SpectralFrames for the hub.
 
-Owns one worker thread per source for the numpy work; knows nothing about HTTP or storage.
+The numpy work runs on analysis threads: the service's shared pool (as many threads as
+cores, ``[service] analysis_threads``; see :func:`analysis_pool`) or, without one, a thread
+of the pipeline's own. Knows nothing about HTTP or storage.
 
-Real-time contract: a source's blocks are processed in order on that source's worker
-thread; the event loop only awaits the result and hands frames to the hub. If the worker
-falls behind, the source's bounded queue drops its oldest blocks and counts them
-(``counters.drops``); the pipeline reports that channel as ``overrun`` for a while.
+Real-time contract: a source's blocks are processed in order, one hand-over to an analysis
+thread at a time; the event loop only awaits the result and hands frames to the hub. Blocks
+that are already queued when the pipeline takes one, and continue it (no gap, the same
+channels and rate, up to :data:`BATCH_MAX_S` of samples), go to the thread in the same
+hand-over and are published in the same step: each is analysed exactly as alone (the same
+pushes, counters, alarms and trends), only the thread hand-offs and the per-step work on the
+loop are shared. A block after a gap always starts a hand-over of its own, so its ``gap``
+state is seen. If the analysis falls behind, the source's bounded queue drops its oldest
+blocks and counts them (``counters.drops``); the pipeline reports that channel as
+``overrun`` for a while.
 """
 
 from __future__ import annotations
@@ -13,10 +21,11 @@ from __future__ import annotations
 import asyncio
 import logging
 import math
+import os
 import time
 from collections.abc import Awaitable, Callable, Sequence
-from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass, field
+from concurrent.futures import Executor, ThreadPoolExecutor
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -47,8 +56,22 @@ from .types import (
 
 log = logging.getLogger("quaver.pipeline")
 
-__all__ = ["OVERALL", "ChannelGroup", "ChannelState", "SourcePipeline", "overall_band"]
+__all__ = ["OVERALL", "ChannelGroup", "ChannelState", "SourcePipeline", "analysis_pool",
+           "overall_band"]
 FLAT_MIN_S = 0.05  # identical samples for this long = a flat (dead) sensor; our choice
+# Queued blocks handed to an analysis thread together: at most this much signal (our choice:
+# well under FAULT_HOLD_S, so a fault's state outlives any one hand-over, and a fraction of
+# a second of latency for the first block only when the pipeline is already behind)
+BATCH_MAX_S = 0.5
+
+
+def analysis_pool(threads: int | None = None) -> ThreadPoolExecutor:
+    """The analysis threads the service's pipelines share: ``threads``, default as many as
+    the machine has cores. One thread per source (64 sources: 64 threads) spent about a
+    third of the service's CPU on handing the interpreter lock between threads (context
+    switches) and had a latency tail ten times longer (docs/performance.md)."""
+    count = threads or os.cpu_count() or 1
+    return ThreadPoolExecutor(max_workers=count, thread_name_prefix="analysis")
 
 
 @dataclass
@@ -68,8 +91,8 @@ class SourcePipeline:
     failed: str = ""  # the latest failure's text while it is being restarted
     latency_s: float = 0.0
     speeds: SourceSpeeds | None = None  # running speed per channel (tacho, estimated, …)
+    executor: Executor | None = None  # shared analysis threads (analysis_pool); None: own
     _next_index: int | None = None
-    _executor: ThreadPoolExecutor = field(init=False)
 
     def __post_init__(self) -> None:
         self.started_mono = time.monotonic()  # when this run of the pipeline began
@@ -83,17 +106,34 @@ class SourcePipeline:
     async def run(self) -> None:
         """Consume the source until it ends or the task is cancelled."""
         loop = asyncio.get_running_loop()
-        self._executor = ThreadPoolExecutor(
+        own = self.executor is None
+        executor = self.executor or ThreadPoolExecutor(
             max_workers=1, thread_name_prefix=f"dsp-{self.source.id}"
         )
+        take_ready = getattr(self.source, "take_ready", None)
         try:
             async for block in self.source:
                 t0 = time.perf_counter()
-                pushes = await loop.run_in_executor(self._executor, self.process_pushes, block)
+                blocks = [block]
+                if take_ready is not None and self._continues(block):
+                    blocks += take_ready(block, round(BATCH_MAX_S * block.fs) - block.n)
+                pushes = await loop.run_in_executor(executor, self.process_blocks, blocks)
                 self.latency_s = time.perf_counter() - t0
                 await self.publish(self, pushes, self.latency_s)
         finally:
-            self._executor.shutdown(wait=False, cancel_futures=True)
+            if own:
+                executor.shutdown(wait=False, cancel_futures=True)
+
+    def _continues(self, block: SampleBlock) -> bool:
+        """Does ``block`` continue the stream analysed so far (same rate, no gap)?"""
+        return block.fs == self.fs and block.first_index == self._next_index
+
+    def process_blocks(self, blocks: Sequence[SampleBlock]) -> list[PushFrames]:
+        """:meth:`process_pushes` of each block in turn (on the analysis thread): every
+        block's pushes, in order."""
+        if len(blocks) == 1:
+            return self.process_pushes(blocks[0])
+        return [push for b in blocks for push in self.process_pushes(b)]
 
     def reset_analysis(self) -> None:
         """Forget the engine's state (before running again after a failure): the next block

@@ -25,7 +25,7 @@ import numpy as np
 from ..config import Config
 from ..evidence import Evidence
 from ..history import SpectrumHistory
-from ..pipeline import SourcePipeline, channel_states
+from ..pipeline import SourcePipeline, analysis_pool, channel_states
 from ..profiles import ProfileBank
 from ..sources import make_source
 from ..speed import NotEnoughRevolutions
@@ -73,6 +73,10 @@ class SourceGroup:
         self.cfg = cfg
         self.incarnation = uuid.uuid4().hex  # Ray restarting the actor runs __init__ again
         self.runs: dict[str, _Run] = {}
+        # this actor's sources share its analysis threads (service.pipeline.analysis_pool):
+        # one unless [service] analysis_threads says otherwise (an actor is given a share of
+        # a node's cores, not the node)
+        self.analysis = analysis_pool(cfg.service.analysis_threads or 1)
         for src_cfg in cfg.sources:
             if src_cfg.id not in source_ids:
                 continue
@@ -83,6 +87,7 @@ class SourceGroup:
                 source, states, self._publish,
                 make_bank=functools.partial(ProfileBank, cfg, ids), cfg=cfg,
                 evidence_s=(cfg.service.evidence_before_s, cfg.service.evidence_after_s),
+                executor=self.analysis,
             )
             hist = cfg.history
             self.runs[src_cfg.id] = _Run(
@@ -234,6 +239,7 @@ class SourceGroup:
                 r.task.cancel()
         await asyncio.gather(*(r.task for r in self.runs.values() if r.task is not None),
                              return_exceptions=True)
+        await asyncio.to_thread(self.analysis.shutdown, wait=True, cancel_futures=True)
         for r in self.runs.values():
             await r.pipeline.source.aclose()
 

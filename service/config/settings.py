@@ -108,6 +108,13 @@ class ServiceSettings(StrictModel):
     keep_alive_s: float = Field(
         5.0, gt=0, le=600, description="Idle time before a kept-alive connection is closed, s."
     )
+    analysis_threads: int | None = Field(
+        None,
+        ge=1,
+        le=256,
+        description="Threads the sources share for sensor checks and analysis; default: as "
+        "many as the machine has cores. A source's blocks are always analysed in order.",
+    )
     tls_cert: str | None = Field(
         None,
         description="PEM certificate (chain) file: serve HTTPS and WSS instead of HTTP and WS; "

@@ -141,6 +141,7 @@ class QueuedSource(ABC):
         self.state = "created"
         self._clock = clock
         self._queue: asyncio.Queue[SampleBlock | _End] = asyncio.Queue(maxsize=queue_blocks)
+        self._held: SampleBlock | _End | None = None  # taken by take_ready, next out
         self._started = False
         self._closed = False
         self._tasks: set[asyncio.Task[None]] = set()
@@ -194,6 +195,7 @@ class QueuedSource(ABC):
             t.cancel()
         await asyncio.gather(*tasks, return_exceptions=True)
         await self._stop()
+        self._held = None
         while not self._queue.empty():
             self._queue.get_nowait()
         self._queue.put_nowait(_END)
@@ -207,13 +209,37 @@ class QueuedSource(ABC):
     async def __anext__(self) -> SampleBlock:
         if not self._started:
             await self.start()
-        item = await self._queue.get()
+        if self._held is not None:
+            item, self._held = self._held, None
+        else:
+            item = await self._queue.get()
         if isinstance(item, _End):
             self._queue.put_nowait(item)  # later calls end too
             raise StopAsyncIteration
         if self._queue.empty():
             self.overrun = False
         return item
+
+    def take_ready(self, block: SampleBlock, max_samples: int) -> list[SampleBlock]:
+        """The blocks already queued that continue ``block`` without a gap (same channels
+        and rate), oldest first, up to ``max_samples`` samples in all; never waits. The
+        first queued block that does not continue (or would exceed the limit) stays next
+        in line for ``async for``. The pipeline hands them to its analysis thread with
+        ``block`` in one go (service.pipeline)."""
+        out: list[SampleBlock] = []
+        last, room = block, max_samples
+        while self._held is None and not self._queue.empty():
+            item = self._queue.get_nowait()
+            if (isinstance(item, _End) or item.n > room or item.fs != last.fs
+                    or item.channel_ids != last.channel_ids
+                    or item.first_index != last.first_index + last.n):
+                self._held = item
+                break
+            out.append(item)
+            last, room = item, room - item.n
+        if self._held is None and self._queue.empty():
+            self.overrun = False
+        return out
 
     # --- producer side ---------------------------------------------------------------
 
@@ -326,7 +352,7 @@ class QueuedSource(ABC):
             "channels": list(self.channel_ids),
             "state": self.state,
             "overrun": self.overrun,
-            "queued": self._queue.qsize(),
+            "queued": self._queue.qsize() + int(isinstance(self._held, SampleBlock)),
             **self._status_extra(),
             "counters": self.counters.as_dict(),
         }
