@@ -48,6 +48,12 @@ OBJECT_STORE = 80 * 2**20  # bytes per node: the smallest Ray accepts comfortabl
 @pytest.fixture(scope="module")
 def cluster() -> Iterator[tuple[RayTestCluster, dict[str, Any]]]:
     temp = tempfile.mkdtemp(prefix="qray", dir="/tmp")  # short: Ray's socket paths
+    # Ray 2.60 writes the head's address to <its default temp folder>/ray/ray_current_cluster
+    # whatever temp_dir says, and fails where that folder does not exist (a fresh machine):
+    # its default is pointed at ours (RAY_TMPDIR), so nothing is left in /tmp/ray either
+    os.makedirs(os.path.join(temp, "ray"), exist_ok=True)
+    before = os.environ.get("RAY_TMPDIR")
+    os.environ["RAY_TMPDIR"] = temp
     c = RayTestCluster(initialize_head=True, head_node_args={
         "num_cpus": 0, "include_dashboard": False, "object_store_memory": OBJECT_STORE,
         "temp_dir": temp,
@@ -72,6 +78,10 @@ def cluster() -> Iterator[tuple[RayTestCluster, dict[str, Any]]]:
         if ray.is_initialized():
             ray.shutdown()
         c.shutdown()
+        if before is None:
+            os.environ.pop("RAY_TMPDIR", None)
+        else:
+            os.environ["RAY_TMPDIR"] = before
         shutil.rmtree(temp, ignore_errors=True)
 
 
