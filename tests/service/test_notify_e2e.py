@@ -114,7 +114,7 @@ def test_fault_to_danger_mails_and_posts_once_per_event_across_a_kill(tmp_path: 
             assert "not a machine-protection or safety system" in body
             health = child.get_json("/api/v1/health")
             assert health["notify"]["ok"] is True
-            assert all(e["failed"] == 0 and e["sent"] == n for e in h.values())
+            assert all(e["failed"] == 0 and e["sent"] == n for e in h.values()), (n, h)
             metrics = child_text(child, "/metrics")
             assert f'quaver_notify_sent_total{{entry="ops-hook"}} {float(n)}' in metrics
             assert 'quaver_notify_pending{entry="ops-mail"} 0.0' in metrics
