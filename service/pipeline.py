@@ -67,9 +67,9 @@ BATCH_MAX_S = 0.5
 
 def analysis_pool(threads: int | None = None) -> ThreadPoolExecutor:
     """The analysis threads the service's pipelines share: ``threads``, default as many as
-    the machine has cores. One thread per source (64 sources: 64 threads) spent about a
-    third of the service's CPU on handing the interpreter lock between threads (context
-    switches) and had a latency tail ten times longer (docs/performance.md)."""
+    the machine has cores. With one thread per source (64 sources: 64 threads) the threads
+    mostly took turns at the interpreter lock: on 2 cores the service held 256 channels
+    instead of 384 (docs/performance.md, "Shared analysis threads")."""
     count = threads or os.cpu_count() or 1
     return ThreadPoolExecutor(max_workers=count, thread_name_prefix="analysis")
 
