@@ -92,8 +92,12 @@ def test_fault_to_danger_mails_and_posts_once_per_event_across_a_kill(tmp_path: 
             n = len(ids)
             wait_for(lambda: len(mails) >= n and len(hook.bodies) >= n,
                      f"{n} e-mails and {n} posts", 30.0, on_fail=child.log_tail)
-            h = wait_for(lambda: (lambda h: h if all(e["pending"] == 0 for e in h.values())
-                                  else None)(notify_health(child)), "nothing pending", 15.0)
+            # the counts are the outbox's as of the sender's last pass (empty before its first
+            # one, which reads as nothing pending): wait until they show every row settled
+            h = wait_for(lambda: (lambda h: h if all(e["pending"] == 0
+                                                     and e["sent"] + e["failed"] >= n
+                                                     for e in h.values())
+                                  else None)(notify_health(child)), "every message settled", 15.0)
             sid = key_store_id(hook.bodies[0]["quaver_key"])
             hook_keys = [b["quaver_key"] for b in hook.bodies]
             mail_keys = [m.headers["X-Quaver-Key"] for m in mails]
