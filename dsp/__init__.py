@@ -17,8 +17,9 @@ live in submodules and are exposed here, as ``scipy.signal`` exposes its functio
 submodule          what it holds
 =================  ==========================================================================
 ``analyzer``       :class:`Analyzer` — one analysis of a multi-channel stream (filter bank →
-                   averaging → units → bands, tones, peaks); :class:`AnalysisSpec`,
-                   :class:`ToneDef`, :func:`low_limit_hz`
+                   averaging → units → bands, tones, peaks); :func:`spectrum_peaks`
+``spec``           :class:`AnalysisSpec` — what defines one analysis; :class:`ToneDef`,
+                   :func:`low_limit_hz`, :func:`resolve_unit`
 ``filterbank``     :class:`FilterBank` — framing, windowing and the batched rfft
 ``grid``           :class:`FrameGrid` (fs, N, hop, lines, Fmax), :data:`FMAX_RATIO`
 ``averaging``      :class:`Averager` — linear, exponential and peak-hold averages
@@ -48,11 +49,11 @@ from typing import TYPE_CHECKING, Any
 # name → submodule holding it; every submodule's __all__, nothing else
 _SUBMODULES = (
     "analyzer", "averaging", "bands", "decimate", "envelope", "filterbank", "grid",
-    "kinematics", "kurtogram", "orders", "scaling", "tacho", "tones", "types", "windows",
+    "kinematics", "kurtogram", "orders", "scaling", "spec", "tacho", "tones", "types", "windows",
 )
 _PUBLIC: dict[str, str] = {
-    "AnalysisSpec": "analyzer", "Analyzer": "analyzer", "ToneDef": "analyzer",
-    "low_limit_hz": "analyzer", "resolve_unit": "analyzer", "spectrum_peaks": "analyzer",
+    "AnalysisSpec": "spec", "Analyzer": "analyzer", "ToneDef": "spec",
+    "low_limit_hz": "spec", "resolve_unit": "spec", "spectrum_peaks": "analyzer",
     "Averager": "averaging", "frames_for_time_constant": "averaging",
     "BAND_BASES": "bands", "OCTAVE_FRACTIONS": "bands", "SEVERITY_PRESETS": "bands",
     "Band": "bands", "BandBasis": "bands", "OctaveBand": "bands", "SeverityPreset": "bands",
@@ -218,14 +219,7 @@ def __dir__() -> list[str]:
 
 
 if TYPE_CHECKING:  # what type checkers and editors see; the run-time path is __getattr__
-    from .analyzer import (
-        AnalysisSpec,
-        Analyzer,
-        ToneDef,
-        low_limit_hz,
-        resolve_unit,
-        spectrum_peaks,
-    )
+    from .analyzer import Analyzer, spectrum_peaks
     from .averaging import Averager, frames_for_time_constant
     from .bands import (
         BAND_BASES,
@@ -283,6 +277,7 @@ if TYPE_CHECKING:  # what type checkers and editors see; the run-time path is __
         quantity_of,
         unit_power_weights,
     )
+    from .spec import AnalysisSpec, ToneDef, low_limit_hz, resolve_unit
     from .tacho import (
         SPEED_STATUSES,
         TACHO_EDGES,

@@ -34,11 +34,12 @@ import scipy
 import scipy.fft
 import scipy.signal
 
-from .analyzer import AnalysisSpec, Analyzer, ToneDef
+from .analyzer import Analyzer
 from .bands import Band
 from .chainplan import plan_chain
 from .decimate import DecimationChain
 from .grid import FrameGrid
+from .spec import AnalysisSpec, ToneDef
 from .windows import get_window
 
 # CPU time of this thread: every stage runs in it (workers=1, BLAS limited to one thread).

@@ -13,8 +13,9 @@ from scipy.interpolate import CubicHermiteSpline, CubicSpline
 from scipy.signal import firwin, resample_poly
 from scipy.special import i0
 
-from .analyzer import AnalysisSpec, Analyzer
+from .analyzer import Analyzer
 from .grid import FrameGrid
+from .spec import AnalysisSpec
 from .types import WindowName
 
 __all__ = [

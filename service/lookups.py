@@ -1,5 +1,5 @@
 """What one channel's profile analyses, from the config: its effective analysis settings,
-its bands (as ``dsp.bands.Band``) and its tracked tones (as ``dsp.analyzer.ToneDef``).
+its bands (as ``dsp.bands.Band``) and its tracked tones (as ``dsp.spec.ToneDef``).
 
 The config → dsp lookups the profile plan (``service.profiles``), the alarm rules and the
 config's cross-checks share. Pure functions over a validated config; no I/O."""
@@ -10,9 +10,9 @@ from collections.abc import Callable, Sequence
 
 from pydantic import BaseModel
 
-from dsp.analyzer import ToneDef
 from dsp.bands import Band, octave_bands
 from dsp.kinematics import BearingOrders, bearing_frequencies
+from dsp.spec import ToneDef
 
 from .config.models import Config
 from .config.plant import BandConfig

@@ -18,11 +18,12 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from dsp.analyzer import AnalysisSpec, Analyzer, ToneDef, low_limit_hz, resolve_unit
+from dsp.analyzer import Analyzer
 from dsp.bands import Band
 from dsp.chainplan import plan_chain
 from dsp.decimate import MultiRate
 from dsp.grid import FMAX_RATIO, FrameGrid
+from dsp.spec import AnalysisSpec, ToneDef, low_limit_hz, resolve_unit
 from dsp.tacho import TachoTracker
 from dsp.windows import window_info
 

@@ -9,8 +9,8 @@ import io
 
 import numpy as np
 
-from dsp.analyzer import resolve_unit
 from dsp.scaling import amplitude_from_power, unit_power_weights
+from dsp.spec import resolve_unit
 from dsp.types import AMPLITUDES, check_choice
 
 from .types import SpectralFrame

@@ -12,7 +12,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, fields
 from typing import Any
 
-from dsp.analyzer import resolve_unit
+from dsp.spec import resolve_unit
 from dsp.types import check_choice
 
 from ..config import Config, channel_ids, channel_settings, profiles_of

@@ -13,8 +13,8 @@ from typing import IO, Any
 
 import numpy as np
 
-from dsp.analyzer import ToneDef
 from dsp.bands import Band
+from dsp.spec import ToneDef
 
 from ..config import (
     Config,

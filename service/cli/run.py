@@ -11,8 +11,8 @@ import socket
 import sys
 from types import ModuleType
 
-from dsp.analyzer import resolve_unit
 from dsp.grid import FMAX_RATIO
+from dsp.spec import resolve_unit
 
 from ..config import (
     Config,

@@ -39,7 +39,7 @@ import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 
-from dsp.analyzer import resolve_unit
+from dsp.spec import resolve_unit
 
 from ..config import Config, bands_for, effective_analysis, tones_for
 from ..types import ChannelState

@@ -5,9 +5,10 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from dsp.analyzer import AnalysisSpec, Analyzer, ToneDef
+from dsp.analyzer import Analyzer
 from dsp.bands import Band, band_rms, band_weights
 from dsp.grid import FrameGrid
+from dsp.spec import AnalysisSpec, ToneDef
 
 G_N = 9.80665  # m/s², exact (3rd CGPM, 1901)
 

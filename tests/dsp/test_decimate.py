@@ -9,10 +9,11 @@ import scipy.signal
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from dsp.analyzer import AnalysisSpec, Analyzer, ToneDef
+from dsp.analyzer import Analyzer
 from dsp.chainplan import ChainPlan, StagePlan, design_stage, plan_chain
 from dsp.decimate import DecimationChain, Decimator, MultiRate
 from dsp.grid import FrameGrid
+from dsp.spec import AnalysisSpec, ToneDef
 
 EPS32 = np.finfo(np.float32).eps
 

@@ -10,11 +10,12 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from dsp.analyzer import AnalysisSpec, Analyzer
+from dsp.analyzer import Analyzer
 from dsp.chainplan import plan_chain
 from dsp.decimate import DecimationChain, Decimator, MultiRate
 from dsp.filterbank import FilterBank
 from dsp.grid import FrameGrid
+from dsp.spec import AnalysisSpec
 from dsp.types import INDEX_MAX, INDEX_MIN, check_index_span
 
 FS = 1024.0

@@ -22,8 +22,8 @@ import dsp
 DSP = Path(dsp.__file__).resolve().parent
 # every module of dsp except the benchmark tool and the internal sample buffer
 PUBLIC_MODULES = ("analyzer", "averaging", "bands", "chainplan", "decimate", "envelope",
-                  "filterbank", "grid", "kinematics", "kurtogram", "orders", "scaling", "tacho",
-                  "tones", "types", "windows")
+                  "filterbank", "grid", "kinematics", "kurtogram", "orders", "scaling", "spec",
+                  "tacho", "tones", "types", "windows")
 
 
 def test_the_modules_listed_are_all_of_dsp():

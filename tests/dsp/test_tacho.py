@@ -6,8 +6,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from dsp.analyzer import AnalysisSpec, Analyzer
+from dsp.analyzer import Analyzer
 from dsp.grid import FrameGrid
+from dsp.spec import AnalysisSpec
 from dsp.tacho import TachoSettings, TachoTracker, speed_from_spectrum, tacho_edges
 
 FS = 25_600.0

@@ -16,8 +16,9 @@ from pathlib import Path
 
 import numpy as np
 
-from dsp.analyzer import AnalysisSpec, Analyzer
+from dsp.analyzer import Analyzer
 from dsp.grid import FrameGrid
+from dsp.spec import AnalysisSpec
 from service.config import HistorySettings
 from service.sources.simulated import demo_site
 from service.store import HistoryPolicy, HistoryRow, Store

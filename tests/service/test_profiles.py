@@ -400,9 +400,10 @@ def test_min_band_lines_is_where_a_mid_band_sine_reads_true(window: str) -> None
     # min_band_lines reads a sine at its centre low; from there on it reads it within
     # 0.15 dB (RMS of a sine A/√2, docs/references.md). Third-octave bands of 1.5 lines
     # read -1.47 dB with Hann (the 20 Hz band).
-    from dsp.analyzer import AnalysisSpec, Analyzer
+    from dsp.analyzer import Analyzer
     from dsp.bands import Band
     from dsp.grid import FrameGrid
+    from dsp.spec import AnalysisSpec
     from service.profiles import min_band_lines
 
     grid = FrameGrid.from_fmax(1000, 400, overlap=0.75)
