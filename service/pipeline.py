@@ -131,8 +131,6 @@ class SourcePipeline:
     def process_blocks(self, blocks: Sequence[SampleBlock]) -> list[PushFrames]:
         """:meth:`process_pushes` of each block in turn (on the analysis thread): every
         block's pushes, in order."""
-        if len(blocks) == 1:
-            return self.process_pushes(blocks[0])
         return [push for b in blocks for push in self.process_pushes(b)]
 
     def reset_analysis(self) -> None:

@@ -113,7 +113,8 @@ class ServiceSettings(StrictModel):
         ge=1,
         le=256,
         description="Threads the sources share for sensor checks and analysis; default: as "
-        "many as the machine has cores. A source's blocks are always analysed in order.",
+        "many as the machine has cores (in cluster mode: per worker actor, default 1). A "
+        "source's blocks are always analysed in order.",
     )
     tls_cert: str | None = Field(
         None,

@@ -52,8 +52,15 @@ def cluster() -> Iterator[tuple[RayTestCluster, dict[str, Any]]]:
     # whatever temp_dir says, and fails where that folder does not exist (a fresh machine):
     # its default is pointed at ours (RAY_TMPDIR), so nothing is left in /tmp/ray either
     os.makedirs(os.path.join(temp, "ray"), exist_ok=True)
-    before = os.environ.get("RAY_TMPDIR")
-    os.environ["RAY_TMPDIR"] = temp
+    try:
+        with pytest.MonkeyPatch.context() as env:
+            env.setenv("RAY_TMPDIR", temp)
+            yield from _cluster(temp)
+    finally:
+        shutil.rmtree(temp, ignore_errors=True)
+
+
+def _cluster(temp: str) -> Iterator[tuple[RayTestCluster, dict[str, Any]]]:
     c = RayTestCluster(initialize_head=True, head_node_args={
         "num_cpus": 0, "include_dashboard": False, "object_store_memory": OBJECT_STORE,
         "temp_dir": temp,
@@ -78,11 +85,6 @@ def cluster() -> Iterator[tuple[RayTestCluster, dict[str, Any]]]:
         if ray.is_initialized():
             ray.shutdown()
         c.shutdown()
-        if before is None:
-            os.environ.pop("RAY_TMPDIR", None)
-        else:
-            os.environ["RAY_TMPDIR"] = before
-        shutil.rmtree(temp, ignore_errors=True)
 
 
 async def until(cond: Callable[[], bool], timeout_s: float, what: str) -> float:
